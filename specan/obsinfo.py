@@ -1,0 +1,213 @@
+"""What specan knows about an observation, carried with the spectrum.
+
+A specutils ``Spectrum`` is the one data type passed between stages. Everything
+specan learns about the observation (object, times, pointing, site, medium,
+resolving power, S/N, continuum state) travels in ``spectrum.meta["specan"]`` as
+an :class:`ObsInfo`. Unknown items are ``None`` and are never guessed silently:
+an assumption (for example the air medium of a file that does not say) is
+written to ``warnings``.
+"""
+
+from __future__ import annotations
+
+import dataclasses
+from dataclasses import dataclass, field
+
+import astropy.units as u
+import numpy as np
+from astropy.coordinates import EarthLocation, SkyCoord
+from astropy.time import Time
+
+__all__ = ["ObsInfo", "get_info", "air_to_vacuum", "vacuum_to_air", "AIR_VACUUM_FORMULA"]
+
+META_KEY = "specan"
+
+#: Refractive index of air used for every air <-> vacuum conversion in specan.
+#: Morton (2000, ApJS 130, 403), as implemented by specutils.
+AIR_VACUUM_FORMULA = "Morton2000"
+
+
+@dataclass
+class ObsInfo:
+    """Metadata of one observed spectrum.
+
+    Attributes
+    ----------
+    path : str or None
+        File the spectrum came from.
+    object : str or None
+        Object name (OBJECT keyword or file name stem, see ``warnings``).
+    medium : {"air", "vacuum"}
+        Medium of the wavelength axis as stored.
+    medium_assumed : bool
+        True when the file did not say and specan assumed ``medium``.
+    time_start, time_mid : astropy.time.Time or None
+        Start and middle of the exposure.
+    exptime : astropy.units.Quantity or None
+        Exposure time.
+    ra_deg, dec_deg : float or None
+        Pointing in degrees (ICRS unless ``radesys`` says otherwise).
+    radesys, equinox : str, float or None
+        Reference system of the pointing as stated.
+    site : astropy.coordinates.EarthLocation or None
+        Observatory location.
+    site_source : str or None
+        Where ``site`` came from (keywords or an override).
+    resolving_power : float or None
+        R = lambda / FWHM of the instrument profile, when known.
+    hdu : int or str or None
+        HDU the spectrum was read from.
+    format : str or None
+        Name of the reader that understood the file.
+    snr, snr_err_array : float or None
+        Median S/N per pixel by DER_SNR (Stoehr et al. 2008) and from the error array.
+    normalized : bool
+        True once the flux has been divided by a fitted continuum.
+    warnings : list of str
+        Everything assumed or doubtful about this spectrum.
+    header : dict
+        Original header cards (name -> value), for reference.
+    """
+
+    path: str | None = None
+    object: str | None = None
+    medium: str = "air"
+    medium_assumed: bool = True
+    time_start: Time | None = None
+    time_mid: Time | None = None
+    exptime: u.Quantity | None = None
+    ra_deg: float | None = None
+    dec_deg: float | None = None
+    radesys: str | None = None
+    equinox: float | None = None
+    site: EarthLocation | None = None
+    site_source: str | None = None
+    resolving_power: float | None = None
+    hdu: int | str | None = None
+    format: str | None = None
+    snr: float | None = None
+    snr_err_array: float | None = None
+    normalized: bool = False
+    warnings: list = field(default_factory=list)
+    header: dict = field(default_factory=dict)
+
+    def warn(self, message: str) -> None:
+        """Record an assumption or doubt (once)."""
+        if message not in self.warnings:
+            self.warnings.append(message)
+
+    @property
+    def coord(self) -> SkyCoord | None:
+        """Pointing as a SkyCoord, or None when unknown."""
+        if self.ra_deg is None or self.dec_deg is None:
+            return None
+        frame = (self.radesys or "ICRS").strip().lower()
+        if frame == "fk5":
+            eq = Time(self.equinox or 2000.0, format="jyear")
+            return SkyCoord(self.ra_deg * u.deg, self.dec_deg * u.deg, frame="fk5", equinox=eq)
+        if frame == "fk4":
+            eq = Time(self.equinox or 1950.0, format="byear")
+            return SkyCoord(self.ra_deg * u.deg, self.dec_deg * u.deg, frame="fk4", equinox=eq)
+        return SkyCoord(self.ra_deg * u.deg, self.dec_deg * u.deg, frame="icrs")
+
+    @property
+    def mjd_mid(self) -> float | None:
+        """Mid-exposure MJD (UTC), or None."""
+        return None if self.time_mid is None else float(self.time_mid.utc.mjd)
+
+    def copy(self) -> "ObsInfo":
+        """A copy whose lists and dicts are not shared."""
+        new = dataclasses.replace(self)
+        new.warnings = list(self.warnings)
+        new.header = dict(self.header)
+        return new
+
+    def to_dict(self) -> dict:
+        """JSON-friendly summary (no header)."""
+        site = None
+        if self.site is not None:
+            lon, lat, h = self.site.lon.deg, self.site.lat.deg, self.site.height.to_value(u.m)
+            site = {"lat_deg": float(lat), "lon_deg": float(lon), "height_m": float(h)}
+        return {
+            "file": self.path,
+            "object": self.object,
+            "medium": self.medium,
+            "medium_assumed": self.medium_assumed,
+            "mjd_mid": self.mjd_mid,
+            "exptime_s": None if self.exptime is None else float(self.exptime.to_value(u.s)),
+            "ra_deg": self.ra_deg,
+            "dec_deg": self.dec_deg,
+            "site": site,
+            "site_known": self.site is not None,
+            "resolving_power": self.resolving_power,
+            "snr": self.snr,
+            "warnings": list(self.warnings),
+        }
+
+
+def get_info(spectrum) -> ObsInfo:
+    """Return the :class:`ObsInfo` of ``spectrum``, attaching an empty one if absent.
+
+    Parameters
+    ----------
+    spectrum : specutils.Spectrum
+
+    Returns
+    -------
+    ObsInfo
+    """
+    info = spectrum.meta.get(META_KEY)
+    if not isinstance(info, ObsInfo):
+        info = ObsInfo()
+        info.warn("spectrum built in Python without specan metadata; medium assumed air")
+        spectrum.meta[META_KEY] = info
+    return info
+
+
+def air_to_vacuum(wavelength):
+    """Convert air wavelengths to vacuum (Morton 2000, via specutils).
+
+    Parameters
+    ----------
+    wavelength : astropy.units.Quantity
+        Air wavelength(s).
+
+    Returns
+    -------
+    astropy.units.Quantity
+        Vacuum wavelength(s), in the input unit.
+    """
+    from specutils.utils.wcs_utils import air_to_vac
+
+    w = u.Quantity(wavelength)
+    return air_to_vac(w, method=AIR_VACUUM_FORMULA, scheme="inversion").to(w.unit)
+
+
+def vacuum_to_air(wavelength):
+    """Convert vacuum wavelengths to air (Morton 2000, via specutils).
+
+    Parameters
+    ----------
+    wavelength : astropy.units.Quantity
+        Vacuum wavelength(s).
+
+    Returns
+    -------
+    astropy.units.Quantity
+        Air wavelength(s), in the input unit.
+    """
+    from specutils.utils.wcs_utils import vac_to_air
+
+    w = u.Quantity(wavelength)
+    return vac_to_air(w, method=AIR_VACUUM_FORMULA).to(w.unit)
+
+
+def wavelength_in(spectrum, medium: str) -> np.ndarray:
+    """Spectral axis of ``spectrum`` in Angstrom, converted to ``medium`` if needed."""
+    info = get_info(spectrum)
+    w = spectrum.spectral_axis.to(u.AA)
+    if medium == info.medium:
+        return np.asarray(w.value)
+    if medium == "vacuum":
+        return np.asarray(air_to_vacuum(w).to_value(u.AA))
+    return np.asarray(vacuum_to_air(w).to_value(u.AA))
