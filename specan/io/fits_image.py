@@ -1,0 +1,138 @@
+"""1-D FITS image spectra with a linear or logarithmic wavelength WCS.
+
+Follows the FITS WCS spectral conventions (Greisen et al. 2006, A&A 446, 747):
+CTYPE1 ``WAVE`` (vacuum), ``AWAV`` (air), with the ``-LOG`` algorithm
+(lambda = CRVAL1 * exp(w / CRVAL1), w = CDELT1 * (p - CRPIX1)) or linear; CDELT1 or
+CD1_1; CUNIT1 (m by the standard's default, but Angstrom is what most files mean
+when they omit it: specan guesses from the range and says so). The IRAF
+``DC-FLAG = 1`` log10 convention is also read (common practice).
+The flux unit comes from BUNIT. An error array is taken from an image extension
+called ERR/ERROR/SIGMA/UNCERT (standard deviation) or IVAR (inverse variance)
+or VAR/VARIANCE of the same length.
+"""
+
+from __future__ import annotations
+
+import numpy as np
+
+from ..errors import NoWavelengthError, ReadError, UnitError
+from ._common import RawSpectrum, guess_wave_unit, header_metadata, parse_unit
+
+NAME = "fits-image"
+
+_ERR_NAMES = {"ERR": "std", "ERROR": "std", "SIGMA": "std", "UNCERT": "std", "STDDEV": "std",
+              "IVAR": "ivar", "INVVAR": "ivar", "VAR": "var", "VARIANCE": "var"}
+
+
+def image_hdu_index(hdul, hdu=None):
+    """Index of the first image HDU holding a 1-D spectrum (or the one asked for)."""
+    if hdu is not None:
+        key = int(hdu) if str(hdu).lstrip("-").isdigit() else str(hdu)
+        try:
+            index = hdul.index_of(key)
+        except (KeyError, IndexError) as exc:
+            raise ReadError(f"no HDU {hdu!r} in this file (it has {len(hdul)})") from exc
+        return index if hdul[index].is_image else None
+    for i, h in enumerate(hdul):
+        if h.is_image and h.header.get("NAXIS", 0) >= 1 and h.header.get("NAXIS1", 0) > 1:
+            return i
+    return None
+
+
+def wavelengths_from_header(header, n, wave_unit=None):
+    """Wavelength of each pixel from a FITS spectral WCS; returns (wave, unit, unit_source)."""
+    if "CRVAL1" not in header:
+        raise NoWavelengthError("no CRVAL1: this image has no wavelength axis; try --hdu for another HDU")
+    crval = float(header["CRVAL1"])
+    crpix = float(header.get("CRPIX1", 1.0))
+    cdelt = header.get("CDELT1", header.get("CD1_1"))
+    if cdelt is None or float(cdelt) == 0.0:
+        raise NoWavelengthError("neither CDELT1 nor CD1_1 gives the wavelength step")
+    cdelt = float(cdelt)
+    ctype = str(header.get("CTYPE1", "")).strip().upper()
+    pix = np.arange(1, n + 1, dtype=float)
+    w = cdelt * (pix - crpix)
+    if ctype.endswith("-LOG"):
+        wave = crval * np.exp(w / crval)
+    elif int(header.get("DC-FLAG", 0) or 0) == 1:
+        wave = 10.0 ** (crval + w)  # IRAF log10 convention (common practice)
+    elif ctype in ("", "WAVE", "AWAV", "LINEAR", "LAMBDA", "WAVELENGTH"):
+        wave = crval + w
+    else:
+        raise NoWavelengthError(f"CTYPE1 {ctype!r} is not a wavelength axis (WAVE, AWAV, WAVE-LOG, AWAV-LOG)")
+
+    if wave_unit is not None:
+        return wave, parse_unit(wave_unit), "override"
+    cunit = header.get("CUNIT1")
+    if cunit is not None and str(cunit).strip():
+        try:
+            return wave, parse_unit(cunit), "header"
+        except UnitError as exc:
+            raise UnitError(f"CUNIT1 {cunit!r} is not a wavelength unit; give the unit with --wave-unit") from exc
+    if int(header.get("DC-FLAG", 0) or 0) == 1 or ctype in ("LINEAR", ""):
+        unit = guess_wave_unit(wave)
+    else:
+        # The standard's default for WAVE/AWAV is metres; files that mean it are rare.
+        unit = guess_wave_unit(wave)
+        if unit is None and 2.5e-7 <= np.nanmin(wave) and np.nanmax(wave) <= 2.5e-6:
+            import astropy.units as u
+
+            return wave, u.m, "FITS default (m)"
+    if unit is None:
+        raise NoWavelengthError("CUNIT1 is missing and the range does not say the unit; give --wave-unit")
+    return wave, unit, "guessed from range (no CUNIT1)"
+
+
+def _error_extension(hdul, n, skip):
+    for i, h in enumerate(hdul):
+        if i == skip or not h.is_image or h.data is None:
+            continue
+        kind = _ERR_NAMES.get(str(h.name).strip().upper())
+        if kind and np.asarray(h.data).squeeze().shape == (n,):
+            return kind, np.asarray(h.data, dtype=float).squeeze()
+    return None, None
+
+
+def read(path, hdul=None, hdu=None, wave_unit=None, **_):
+    """Read the 1-D image spectrum in an open HDU list."""
+    index = image_hdu_index(hdul, hdu)
+    if index is None:
+        raise NoWavelengthError("no 1-D image HDU with data; try --hdu", path)
+    h = hdul[index]
+    data = np.asarray(h.data, dtype=float)
+    if data.ndim > 1:
+        squeezed = data.squeeze()
+        if squeezed.ndim == 1:
+            data = squeezed
+        elif data.ndim == 2 and data.shape[0] <= 4:
+            data = data[0]  # multi-band layout: first band is the spectrum (common practice)
+        else:
+            raise ReadError(f"HDU {index} is a {data.ndim}-D image of shape {data.shape}, not a 1-D spectrum", path)
+    n = data.size
+    try:
+        wave, unit, source = wavelengths_from_header(h.header, n, wave_unit)
+    except ReadError as exc:
+        raise type(exc)(exc.reason, path) from exc
+    raw = RawSpectrum(wave=wave, wave_unit=unit, flux=data, unit_source=source)
+    bunit = h.header.get("BUNIT")
+    if bunit:
+        try:
+            import astropy.units as u
+
+            raw.flux_unit = u.Unit(str(bunit), format="fits", parse_strict="raise")
+        except ValueError:
+            raw.info.warn(f"BUNIT {bunit!r} not understood; flux taken as relative")
+    kind, err = _error_extension(hdul, n, index)
+    if kind == "std":
+        raw.err = err
+    elif kind == "var":
+        raw.err = np.sqrt(np.where(err > 0, err, np.nan))
+    elif kind == "ivar":
+        raw.ivar = err
+    # Primary cards (site, time) count too when the spectrum is in an extension.
+    header = hdul[0].header.copy() if index else h.header
+    if index:
+        header.update(h.header)
+    header_metadata(header, raw.info)
+    raw.info.hdu = index
+    return raw
