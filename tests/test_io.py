@@ -1,0 +1,271 @@
+"""Reader tests: real library files, FITS round trips, metadata, air/vacuum, bad input."""
+
+import numpy as np
+import pytest
+import astropy.units as u
+from astropy.io import fits
+from astropy.time import Time
+from astropy.wcs import WCS
+from astropy.coordinates import EarthLocation
+
+import specan
+from specan.errors import (CorruptFileError, EmptyFileError, NoWavelengthError, NonMonotonicError,
+                           SpecanError)
+from specan.obsinfo import air_to_vacuum, get_info, vacuum_to_air
+
+N = 1500
+
+
+def _flux(n=N):
+    x = np.linspace(0, 1, n)
+    return 1.0 + 0.2 * x - 0.5 * np.exp(-0.5 * ((x - 0.4) / 0.003) ** 2)
+
+
+# --- the real reference library ---------------------------------------------------------
+
+@pytest.mark.reference
+def test_every_reference_file_reads_in_nm(jhc1984, jhc_catalog):
+    # JHC (1984) library as distributed here: nm, 349.70-744.2 nm every 0.14 nm, 2819 pixels (its README)
+    for row in jhc_catalog:
+        s = specan.read(jhc1984 / row["file"])
+        w = s.spectral_axis.to_value(u.AA)
+        assert w.size == 2819, row["id"]
+        assert w[0] == pytest.approx(3497.0, abs=1e-6), row["id"]
+        assert w[-1] == pytest.approx(7442.0, abs=2.0), row["id"]
+        assert np.allclose(np.diff(w), 1.4, atol=1e-6)
+        assert get_info(s).object == row["id"]
+
+
+# --- FITS conventions (Greisen et al. 2006); astropy.wcs is the outside reference -------
+
+def _expected_from_wcs(header, n):
+    """Wavelengths in Angstrom by astropy's own WCS implementation of Greisen et al. (2006)."""
+    w = WCS(header, naxis=1)
+    world = w.all_pix2world(np.arange(n, dtype=float), 0)[0]
+    unit = u.Unit(w.wcs.cunit[0]) if str(w.wcs.cunit[0]) else u.m
+    return (world * unit).to_value(u.AA)
+
+
+@pytest.mark.parametrize("ctype,cunit,crval,step,key,crpix", [
+    ("WAVE", "Angstrom", 4000.0, 1.25, "CDELT1", 1.0),
+    ("AWAV", "nm", 400.0, 0.125, "CD1_1", 11.5),
+    ("WAVE-LOG", "m", 4.0e-7, 1.0e-11, "CDELT1", 1.0),
+    ("AWAV-LOG", "um", 0.4, 1.0e-5, "CD1_1", 3.0),
+])
+def test_fits_image_wcs_round_trip(tmp_path, ctype, cunit, crval, step, key, crpix):
+    h = fits.Header()
+    h["CTYPE1"], h["CUNIT1"], h["CRVAL1"], h[key], h["CRPIX1"] = ctype, cunit, crval, step, crpix
+    h["BUNIT"] = "erg / (s cm2 Angstrom)"
+    path = tmp_path / "s.fits"
+    fits.PrimaryHDU(_flux().astype(np.float32), header=h).writeto(path)
+    s = specan.read(path)
+    expected = _expected_from_wcs(h, N)
+    got = s.spectral_axis.to_value(u.AA)
+    assert np.allclose(got, expected, rtol=1e-7, atol=0)
+    assert get_info(s).medium == ("air" if ctype.startswith("AWAV") else "vacuum")
+    assert not get_info(s).medium_assumed
+    assert s.flux.unit == u.erg / u.s / u.cm**2 / u.AA
+
+
+def test_fits_image_without_ctype_or_cunit_guesses_angstrom_and_says_so(tmp_path):
+    h = fits.Header()
+    h["CRVAL1"], h["CDELT1"] = 3800.0, 2.0
+    path = tmp_path / "bare.fits"
+    fits.PrimaryHDU(_flux(), header=h).writeto(path)
+    s = specan.read(path)
+    assert np.allclose(s.spectral_axis.to_value(u.AA), 3800.0 + 2.0 * np.arange(N))
+    info = get_info(s)
+    assert info.medium_assumed and any("guessed" in w for w in info.warnings)
+    assert any("medium not stated" in w for w in info.warnings)
+
+
+def test_fits_image_error_extension_and_multi_extension(tmp_path):
+    h = fits.Header()
+    h["CTYPE1"], h["CUNIT1"], h["CRVAL1"], h["CDELT1"] = "AWAV", "Angstrom", 5000.0, 0.5
+    err = np.full(N, 0.02)
+    hdul = fits.HDUList([fits.PrimaryHDU(), fits.ImageHDU(_flux(), header=h, name="FLUX"),
+                         fits.ImageHDU(err, name="ERR")])
+    path = tmp_path / "mef.fits"
+    hdul.writeto(path)
+    s = specan.read(path)
+    assert get_info(s).hdu == 1
+    assert np.allclose(s.uncertainty.array, 0.02)
+    s2 = specan.read(path, hdu="FLUX")
+    assert np.allclose(s2.spectral_axis.value, s.spectral_axis.value)
+
+
+def test_fits_binary_table_with_inverse_variance(tmp_path):
+    wave = np.linspace(4000.0, 7000.0, N)
+    ivar = np.full(N, 2500.0)
+    ivar[10] = 0.0  # zero weight -> masked
+    cols = [fits.Column("WAVELENGTH", "D", unit="Angstrom", array=wave),
+            fits.Column("FLUX", "E", unit="erg/(s cm2 Angstrom)", array=_flux()),
+            fits.Column("IVAR", "E", array=ivar)]
+    path = tmp_path / "tab.fits"
+    fits.HDUList([fits.PrimaryHDU(), fits.BinTableHDU.from_columns(cols)]).writeto(path)
+    s = specan.read(path)
+    assert np.allclose(s.spectral_axis.to_value(u.AA), wave, rtol=1e-7)
+    assert np.allclose(s.uncertainty.array[~s.mask], 0.02)  # 1/sqrt(2500)
+    assert s.mask[10] and s.mask.sum() == 1
+
+
+def test_fits_table_vector_cells_in_nm(tmp_path):
+    wave = np.linspace(400.0, 700.0, N)
+    cols = [fits.Column("WAVE", f"{N}D", unit="nm", array=wave[None, :]),
+            fits.Column("FLUX", f"{N}E", array=_flux()[None, :]),
+            fits.Column("ERR", f"{N}E", array=np.full((1, N), 0.01))]
+    path = tmp_path / "vec.fits"
+    fits.HDUList([fits.PrimaryHDU(), fits.BinTableHDU.from_columns(cols)]).writeto(path)
+    s = specan.read(path)
+    assert np.allclose(s.spectral_axis.to_value(u.AA), wave * 10, rtol=1e-7)
+
+
+# --- metadata: times, pointing, site --------------------------------------------------------
+
+def _image_with(tmp_path, cards, name="m.fits"):
+    h = fits.Header()
+    h["CTYPE1"], h["CUNIT1"], h["CRVAL1"], h["CDELT1"] = "AWAV", "Angstrom", 4000.0, 1.0
+    for k, v in cards.items():
+        h[k] = v
+    path = tmp_path / name
+    fits.PrimaryHDU(_flux(), header=h).writeto(path)
+    return path
+
+
+def test_mid_exposure_from_date_obs_and_exptime(tmp_path):
+    path = _image_with(tmp_path, {"DATE-OBS": "2026-03-14T21:05:30.5", "EXPTIME": 1200.0, "TIMESYS": "UTC"})
+    info = get_info(specan.read(path))
+    expected = Time("2026-03-14T21:15:30.5", scale="utc")  # start + EXPTIME/2 (FITS standard meaning)
+    assert abs((info.time_mid - expected).to_value(u.s)) < 1e-3
+
+
+def test_mid_exposure_from_mjd_obs(tmp_path):
+    path = _image_with(tmp_path, {"MJD-OBS": 61000.25, "EXPTIME": 864.0})
+    info = get_info(specan.read(path))
+    assert info.mjd_mid == pytest.approx(61000.25 + 0.005, abs=1e-9)
+
+
+@pytest.mark.parametrize("ra,dec", [(83.822083, -5.391111), ("05:35:17.3", "-05:23:28")])
+def test_pointing_degrees_and_sexagesimal(tmp_path, ra, dec):
+    path = _image_with(tmp_path, {"RA": ra, "DEC": dec, "RADESYS": "ICRS"})
+    info = get_info(specan.read(path))
+    assert info.ra_deg == pytest.approx(83.822083, abs=1e-4)  # 5h35m17.3s = 83.82208 deg
+    assert info.dec_deg == pytest.approx(-5.391111, abs=1e-4)
+
+
+def test_site_from_obsgeo_xyz_and_blh(tmp_path):
+    site = EarthLocation.from_geodetic(-17.8792 * u.deg, 28.7606 * u.deg, 2332.0 * u.m)
+    x, y, z = (c.to_value(u.m) for c in site.geocentric)
+    a = get_info(specan.read(_image_with(tmp_path, {"OBSGEO-X": x, "OBSGEO-Y": y, "OBSGEO-Z": z}, "a.fits")))
+    b = get_info(specan.read(_image_with(tmp_path, {"OBSGEO-B": 28.7606, "OBSGEO-L": -17.8792, "OBSGEO-H": 2332.0},
+                                         "b.fits")))
+    for info in (a, b):
+        assert info.site.lat.deg == pytest.approx(28.7606, abs=1e-7)
+        assert info.site.lon.deg == pytest.approx(-17.8792, abs=1e-7)
+        assert info.site.height.to_value(u.m) == pytest.approx(2332.0, abs=1e-3)
+
+
+def test_site_override_and_unknowns_recorded(tmp_path):
+    path = _image_with(tmp_path, {})
+    s = specan.read(path)
+    info = get_info(s)
+    assert info.site is None and info.time_mid is None and info.ra_deg is None
+    assert any("--site" in w for w in info.warnings)
+    s2 = specan.read(path, site="-29.2563,-70.7380,2400", ra="10.5", dec="-20")
+    i2 = get_info(s2)
+    assert i2.site.lat.deg == pytest.approx(-29.2563) and i2.site_source == "override"
+    assert i2.ra_deg == pytest.approx(10.5)
+
+
+# --- text files ---------------------------------------------------------------------------
+
+@pytest.mark.parametrize("header,scale", [("# wavelength [nm]  flux", 10.0), ("# lambda (Angstrom), flux, err", 1.0),
+                                          ("wave_nm,flux", 10.0)])
+def test_text_units_from_header_tokens(tmp_path, header, scale):
+    wave = np.linspace(4000.0, 7000.0, 200) / scale  # values as written, in the file's unit
+    sep = "," if "," in header else " "
+    lines = [header] + [sep.join([f"{w:.9f}", "1.0", "0.1"]) for w in wave]
+    path = tmp_path / "t.txt"
+    path.write_text("\n".join(lines))
+    s = specan.read(path)
+    assert np.allclose(s.spectral_axis.to_value(u.AA), wave * scale, rtol=1e-7)
+
+
+def test_text_without_unit_needs_wave_unit(tmp_path):
+    path = tmp_path / "nounit.dat"
+    path.write_text("\n".join(f"{w} 1.0" for w in np.linspace(4000, 5000, 50)))
+    with pytest.raises(NoWavelengthError, match="--wave-unit"):
+        specan.read(path)
+    s = specan.read(path, wave_unit="Angstrom")
+    assert s.spectral_axis.to_value(u.AA)[0] == pytest.approx(4000.0)
+
+
+# --- air / vacuum (NIST ASD laboratory pairs) -----------------------------------------------
+
+@pytest.mark.parametrize("air,vac", [
+    (6562.80, 6564.61),   # H alpha, NIST ASD
+    (5889.95, 5891.58),   # Na I D2, NIST ASD
+    (3933.66, 3934.78),   # Ca II K, NIST ASD
+    (4861.33, 4862.68),   # H beta, NIST ASD (from memory)
+])
+def test_air_vacuum_pairs_match_laboratory_values(air, vac):
+    assert air_to_vacuum(air * u.AA).to_value(u.AA) == pytest.approx(vac, abs=0.02)
+    assert vacuum_to_air(vac * u.AA).to_value(u.AA) == pytest.approx(air, abs=0.02)
+    back = vacuum_to_air(air_to_vacuum(air * u.AA)).to_value(u.AA)
+    assert back == pytest.approx(air, abs=1e-4)
+
+
+# --- bad input: one-line specan errors ------------------------------------------------------
+
+def test_empty_file(tmp_path):
+    p = tmp_path / "empty.fits"
+    p.write_bytes(b"")
+    with pytest.raises(EmptyFileError, match="empty"):
+        specan.read(p)
+
+
+def test_truncated_fits(tmp_path):
+    path = _image_with(tmp_path, {})
+    data = path.read_bytes()
+    cut = tmp_path / "cut.fits"
+    cut.write_bytes(data[: len(data) - 3000])
+    with pytest.raises(CorruptFileError, match="truncated"):
+        specan.read(cut)
+
+
+def test_non_monotonic_names_the_pixel(tmp_path):
+    wave = np.linspace(4000, 5000, 100)
+    wave[57] = wave[55]
+    p = tmp_path / "nonmono.txt"
+    p.write_text("# wavelength [Angstrom] flux\n" + "\n".join(f"{w} 1.0" for w in wave))
+    with pytest.raises(NonMonotonicError, match="pixel 57"):
+        specan.read(p)
+
+
+def test_decreasing_wavelengths_are_reversed(tmp_path):
+    wave = np.linspace(5000, 4000, 100)
+    p = tmp_path / "dec.txt"
+    p.write_text("# wavelength [Angstrom] flux\n" + "\n".join(f"{w} {w / 1000}" for w in wave))
+    s = specan.read(p)
+    assert np.all(np.diff(s.spectral_axis.value) > 0)
+    assert s.flux.value[0] == pytest.approx(4.0)
+
+
+def test_image_hdu_without_wavelength_axis(tmp_path):
+    p = tmp_path / "nowcs.fits"
+    fits.PrimaryHDU(_flux()).writeto(p)
+    with pytest.raises(NoWavelengthError, match="--hdu"):
+        specan.read(p)
+
+
+def test_spectrum_passed_in_python_is_taken_as_is():
+    from specutils import Spectrum
+
+    s = Spectrum(spectral_axis=np.linspace(4000, 5000, 50) * u.AA, flux=np.ones(50) * u.Jy)
+    out = specan.read(s, medium="vacuum")
+    assert get_info(out).medium == "vacuum"
+    assert np.allclose(out.flux.value, 1.0)
+
+
+def test_errors_form_one_hierarchy():
+    assert issubclass(NonMonotonicError, SpecanError) and issubclass(CorruptFileError, SpecanError)

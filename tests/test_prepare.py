@@ -1,0 +1,144 @@
+"""Preparation tests: continuum against models with a known continuum, S/N, masks, degrading."""
+
+import numpy as np
+import pytest
+import astropy.units as u
+from scipy.special import voigt_profile
+from specutils import Spectrum
+
+import specan
+from specan.obsinfo import ObsInfo
+from specan.prepare import degrade, fit_continuum, mask_telluric, prepare, snr
+
+
+def _spectrum(wave, flux, err=None, medium="vacuum"):
+    from astropy.nddata import StdDevUncertainty
+
+    info = ObsInfo(medium=medium, medium_assumed=False)
+    unc = None if err is None else StdDevUncertainty(err)
+    return Spectrum(spectral_axis=wave * u.AA, flux=flux * u.dimensionless_unscaled, uncertainty=unc,
+                    meta={"specan": info})
+
+
+RESPONSES = {
+    # smooth instrument responses, unknown to the fit (invented for the test)
+    "tilted": lambda w: 1 + 0.5 * ((w - 6000) / 3000) - 0.6 * ((w - 6000) / 3000) ** 2,
+    "blaze": lambda w: np.exp(-0.5 * ((w - 5500) / 1800) ** 2),
+}
+
+
+@pytest.mark.parametrize("response", sorted(RESPONSES))
+def test_continuum_on_kurucz_sun_red(kurucz_sun, response):
+    # Kurucz solar flux model with its true continuum (rms-solar package), R~2000
+    w, f, c = kurucz_sun
+    keep = (w > 3700) & (w < 9000)
+    w, f, c = w[keep], f[keep], c[keep]
+    r = RESPONSES[response](w)
+    fit = fit_continuum(_spectrum(w, f * r)).value
+    ratio = fit / (c * r)
+    red = (w > 5000) & (w < 6800)
+    assert np.median(np.abs(ratio[red] - 1)) < 0.01
+
+
+@pytest.mark.xfail(strict=True, reason="known gap: at R~2000 the solar spectrum between 4000 and 5000 A never "
+                   "reaches its continuum (highest points 0.82-0.95 of it, measured), so an envelope fit is "
+                   "~11% low; meeting 3% needs a blanketing model")
+def test_continuum_on_kurucz_sun_blue(kurucz_sun):
+    w, f, c = kurucz_sun
+    keep = (w > 3700) & (w < 9000)
+    w, f, c = w[keep], f[keep], c[keep]
+    r = RESPONSES["tilted"](w)
+    ratio = fit_continuum(_spectrum(w, f * r)).value / (c * r)
+    blue = (w > 4000) & (w < 5000)
+    assert np.median(np.abs(ratio[blue] - 1)) < 0.03
+
+
+BALMER_AIR = {6562.80: 25.0, 4861.33: 22.0, 4340.46: 20.0, 4101.74: 18.0, 3970.07: 16.0, 3889.05: 12.0,
+              3835.38: 10.0, 3797.90: 8.0}  # NIST ASD wavelengths; Lorentzian FWHM (A) invented for an A dwarf
+
+
+def _a_star(w, snr=None, seed=0):
+    x = np.ones_like(w)
+    for l0, gamma in BALMER_AIR.items():
+        prof = voigt_profile(w - l0, 2.0, gamma / 2) / voigt_profile(0.0, 2.0, gamma / 2)
+        x *= 1 - 0.75 * prof
+    cont = (w / 5000.0) ** -2.5 * (1 + 0.3 * np.sin(w / 900.0))
+    flux = x * cont
+    err = None
+    if snr:
+        sigma = np.median(flux) / snr
+        flux = flux + np.random.default_rng(seed).normal(0, sigma, w.size)
+        err = np.full(w.size, sigma)
+    return flux, cont, err
+
+
+@pytest.mark.parametrize("snr_in", [None, 100])
+def test_continuum_not_dragged_by_balmer_wings(snr_in):
+    w = np.arange(3700.0, 7000.0, 1.5)
+    flux, cont, err = _a_star(w, snr_in)
+    fit = fit_continuum(_spectrum(w, flux, err, medium="air")).value
+    for l0 in (6562.80, 4861.33, 4340.46, 4101.74):  # H alpha ... H delta
+        near = np.abs(w - l0) < 150
+        assert np.max(np.abs(fit[near] / cont[near] - 1)) < 0.02, l0
+
+
+def _check_dersnr(w, flux, snr_in, seed):
+    noisy = flux + np.random.default_rng(seed).normal(0, np.median(flux) / snr_in, flux.size)
+    return snr(_spectrum(w, noisy))["snr"]
+
+
+@pytest.mark.parametrize("snr_in", [10, 30, 100, 200])
+def test_dersnr_recovers_injected_snr_synthetic(snr_in):
+    # DER_SNR, Stoehr et al. (2008): unbiased for noise on a spectrum sampled well enough
+    w = np.arange(3700.0, 7000.0, 1.5)
+    flux, _, _ = _a_star(w)
+    got = _check_dersnr(w, flux, snr_in, seed=snr_in)
+    assert got == pytest.approx(snr_in, rel=0.15)
+
+
+@pytest.mark.reference
+@pytest.mark.parametrize("snr_in", [10, 50, 200])
+def test_dersnr_recovers_injected_snr_real_spectrum(jhc1984, snr_in):
+    s = specan.read(jhc1984 / "spectra" / "HD66171.csv")  # a G2 V star of the JHC (1984) library
+    w, f = s.spectral_axis.to_value(u.AA), s.flux.value
+    assert _check_dersnr(w, f, snr_in, seed=1) == pytest.approx(snr_in, rel=0.15)
+
+
+def test_snr_from_error_array():
+    w = np.linspace(4000, 6000, 1000)
+    s = _spectrum(w, np.full(w.size, 50.0), err=np.full(w.size, 2.0))
+    assert snr(s)["snr_err_array"] == pytest.approx(25.0)
+
+
+def test_telluric_bands_masked_in_either_medium():
+    # O2 A band 7594-7621 A in air (common practice)
+    w = np.linspace(7500.0, 7700.0, 2001)
+    air = mask_telluric(_spectrum(w, np.ones_like(w), medium="air"))
+    assert air.mask[np.abs(w - 7605) < 5].all() and not air.mask[np.abs(w - 7550) < 5].any()
+    vac = mask_telluric(_spectrum(w, np.ones_like(w), medium="vacuum"))
+    # the same band in vacuum wavelengths lies ~2.1 A redder (Morton 2000)
+    assert vac.mask[np.argmin(np.abs(w - 7623.0))] and not air.mask[np.argmin(np.abs(w - 7623.0))]
+
+
+def test_prepare_returns_normalised_masked_spectrum():
+    w = np.arange(3700.0, 7000.0, 1.5)
+    flux, cont, err = _a_star(w, snr=80)
+    flux[100] = np.nan
+    out = prepare(_spectrum(w, flux, err, medium="air"))
+    info = specan.get_info(out)
+    assert info.normalized and info.snr > 40
+    assert out.mask[100]
+    assert np.median(out.flux.value[(w > 5200) & (w < 5800)]) == pytest.approx(1.0, abs=0.02)
+    assert out.flux.unit == u.dimensionless_unscaled
+
+
+def test_degrade_gives_the_target_resolution():
+    # A delta-like line degraded to R=1000 has FWHM lambda/R (Gaussians add in quadrature)
+    w = np.arange(5000.0, 6000.0, 0.02)
+    flux = 1 - 0.5 * np.exp(-0.5 * ((w - 5500) / 0.1) ** 2)
+    s = _spectrum(w, flux)
+    out = degrade(s, 1000.0, from_resolving_power=5500 / (0.1 * 2.3548))
+    depth = 1 - out.flux.value
+    half = w[depth > depth.max() / 2]
+    assert half[-1] - half[0] == pytest.approx(5.5, rel=0.03)
+    assert np.trapezoid(depth, w) == pytest.approx(np.trapezoid(1 - flux, w), rel=2e-3)  # EW conserved
