@@ -1,0 +1,219 @@
+"""The night's Hertzsprung-Russell diagram: Teff against absolute visual magnitude.
+
+Stars are placed by effective temperature (decreasing to the right, by
+convention) and absolute magnitude M_V (bright at the top), with error bars, over
+the main-sequence, giant and supergiant loci of the same calibration table the
+numbers come from (``specan/data/mk_scales.ecsv`` via :mod:`specan.physics`), so
+a star of type X and class Y sits on the locus of class Y by construction unless
+its Teff or M_V came from elsewhere (colour temperature, parallax).
+"""
+
+from __future__ import annotations
+
+import math
+import os
+import tempfile
+from pathlib import Path
+
+import astropy.units as u
+import numpy as np
+
+from . import physics
+
+__all__ = ["hr_points", "plot_hr"]
+
+_LOCI = (("I", "supergiants (I)", "tab:red"), ("III", "giants (III)", "tab:orange"),
+         ("V", "main sequence (V)", "tab:blue"))
+_NAME_KEYS = ("object", "name", "file")
+
+
+def _value(row, *keys, unit=None):
+    """First finite value among ``keys`` of a row (dict or table row), as float, or None."""
+    for key in keys:
+        try:
+            val = row[key]
+        except (KeyError, IndexError, ValueError):
+            continue
+        if val is None or np.ma.is_masked(val):
+            continue
+        try:
+            if isinstance(val, u.Quantity):
+                val = val.to_value(unit) if unit is not None else val.value
+            val = float(val)
+        except (TypeError, ValueError, u.UnitsError):
+            continue
+        if math.isfinite(val):
+            return val
+    return None
+
+
+def _text(row, *keys):
+    for key in keys:
+        try:
+            val = row[key]
+        except (KeyError, IndexError, ValueError):
+            continue
+        if val is None or np.ma.is_masked(val):
+            continue
+        val = str(val).strip()
+        if val and val.lower() not in ("nan", "none", "--"):
+            return val
+    return None
+
+
+def _rows(table_or_rows):
+    if hasattr(table_or_rows, "colnames"):  # astropy Table / QTable
+        names = table_or_rows.colnames
+        return [{n: row[n] for n in names} for row in table_or_rows]
+    return [dict(r) for r in table_or_rows]
+
+
+def hr_points(table_or_rows):
+    """Diagram coordinates of each star, from the keys :func:`specan.physics.derive` writes.
+
+    Teff: ``teff_k`` (else ``teff``, else from ``code`` and ``lumclass`` through the
+    scale). M_V: ``m_v_abs`` (else from ``code`` and ``lumclass``). A star with a
+    type but neither number is placed from its type, so every classified star
+    appears.
+
+    Parameters
+    ----------
+    table_or_rows : astropy Table or iterable of dict
+
+    Returns
+    -------
+    placed : list of dict
+        ``name``, ``teff_k``, ``teff_err_k``, ``m_v_abs``, ``m_v_abs_err``, ``lumclass``, ``origin``.
+    skipped : list of (name, reason)
+    """
+    placed, skipped = [], []
+    for i, row in enumerate(_rows(table_or_rows)):
+        name = _text(row, *_NAME_KEYS) or f"row {i + 1}"
+        status = _text(row, "status")
+        code = _value(row, "code")
+        lum = _text(row, "lumclass")
+        teff = _value(row, "teff_k") or _value(row, "teff", unit=u.K)
+        teff_err = _value(row, "teff_err_k") or _value(row, "teff_err", unit=u.K)
+        m_v = _value(row, "m_v_abs", unit=u.mag)
+        m_v_err = _value(row, "m_v_abs_err", unit=u.mag)
+        origin = "derived"
+        try:
+            if (teff is None or m_v is None) and code is not None:
+                cls = lum or "V"
+                if teff is None:
+                    t, te = physics.teff_from_type(code, cls, _value(row, "subclass_err") or 0.0)
+                    teff, teff_err = float(t.to_value(u.K)), float(te.to_value(u.K))
+                    origin = "from type"
+                if m_v is None and lum is not None:
+                    m, me = physics.absolute_magnitude(code, cls, _value(row, "subclass_err") or 0.0)
+                    m_v, m_v_err = float(m.to_value(u.mag)), float(me.to_value(u.mag))
+                    origin = "from type"
+        except ValueError as err:
+            skipped.append((name, f"type not understood: {err}"))
+            continue
+        if teff is None or m_v is None:
+            why = "not classified" if code is None else "no luminosity class"
+            if status == "error":
+                why = "error row"
+            skipped.append((name, why))
+            continue
+        placed.append({"name": name, "teff_k": teff, "teff_err_k": teff_err, "m_v_abs": m_v,
+                       "m_v_abs_err": m_v_err, "lumclass": lum, "origin": origin})
+    return placed, skipped
+
+
+def plot_hr(table_or_rows, path, title="HR diagram of the night", label=True, dpi=110):
+    """Draw the HR diagram of a set of stars to a PNG file.
+
+    Parameters
+    ----------
+    table_or_rows : astropy Table or iterable of dict
+        One row per star with (some of) ``object``, ``teff_k``, ``teff_err_k``,
+        ``m_v_abs``, ``m_v_abs_err``, ``code``, ``lumclass`` (see :func:`hr_points`).
+        Catalogue rows of ``specan run`` qualify.
+    path : str or Path
+        Output PNG; written to a temporary file and renamed, so a reader never
+        sees half a file.
+    title : str, optional
+    label : bool, optional
+        Write each star's name beside it.
+    dpi : int, optional
+
+    Returns
+    -------
+    dict
+        ``path``, ``plotted`` (names placed), ``skipped`` ((name, reason) pairs),
+        ``xlim``/``ylim`` (axis limits as drawn: Teff decreases to the right,
+        M_V increases downwards) and ``loci`` (class -> number of table points drawn).
+    """
+    from matplotlib.backends.backend_agg import FigureCanvasAgg
+    from matplotlib.figure import Figure
+
+    placed, skipped = hr_points(table_or_rows)
+    fig = Figure(figsize=(7.0, 6.0))
+    FigureCanvasAgg(fig)
+    ax = fig.add_subplot()
+    ax.set_xscale("log")
+
+    scales = physics.load_scales()
+    loci = {}
+    for cls, text, colour in _LOCI:
+        rows = scales[scales["lumclass"] == cls]
+        rows = rows[np.argsort(rows["code"])]
+        ax.plot(rows["teff"].to_value(u.K), rows["m_v"].to_value(u.mag), "-", color=colour, alpha=0.45,
+                lw=2.0, label=text, zorder=1)
+        loci[cls] = len(rows)
+
+    if placed:
+        x = np.array([p["teff_k"] for p in placed])
+        y = np.array([p["m_v_abs"] for p in placed])
+        xe = np.array([p["teff_err_k"] if p["teff_err_k"] is not None else np.nan for p in placed])
+        ye = np.array([p["m_v_abs_err"] if p["m_v_abs_err"] is not None else np.nan for p in placed])
+        ax.errorbar(x, y, xerr=np.where(np.isfinite(xe), xe, 0.0), yerr=np.where(np.isfinite(ye), ye, 0.0),
+                    fmt="o", ms=4, color="k", ecolor="0.45", elinewidth=0.8, capsize=1.5, zorder=3,
+                    label="stars of the night")
+        if label:
+            fs = 7 if len(placed) <= 40 else 5
+            for p in placed:
+                ax.annotate(p["name"][:20], (p["teff_k"], p["m_v_abs"]), fontsize=fs,
+                            xytext=(3, 3), textcoords="offset points", zorder=4)
+    else:
+        ax.text(0.5, 0.5, "no classified stars", ha="center", va="center", transform=ax.transAxes)
+
+    # Limits from the loci and the stars, then inverted: hot on the left, bright at the top.
+    allx = np.concatenate([scales["teff"].to_value(u.K), [p["teff_k"] for p in placed]])
+    ally = np.concatenate([scales["m_v"].to_value(u.mag), [p["m_v_abs"] for p in placed]])
+    ax.set_xlim(allx.max() * 1.15, allx.min() / 1.15)
+    from matplotlib.ticker import FixedLocator, NullFormatter, NullLocator
+
+    ticks = [t for t in (50000, 30000, 20000, 15000, 10000, 7000, 5000, 4000, 3000, 2500)
+             if allx.min() / 1.15 <= t <= allx.max() * 1.15]
+    ax.xaxis.set_major_locator(FixedLocator(ticks))
+    ax.set_xticklabels([f"{t:,}" for t in ticks], fontsize=8)
+    ax.xaxis.set_minor_locator(NullLocator())
+    ax.xaxis.set_minor_formatter(NullFormatter())
+    ax.set_ylim(ally.max() + 1.0, ally.min() - 1.0)
+    ax.set_xlabel("effective temperature (K)")
+    ax.set_ylabel("absolute visual magnitude $M_V$")
+    ax.set_title(title, fontsize=10)
+    ax.legend(loc="lower left", fontsize=7, framealpha=0.8)
+    if skipped:
+        ax.text(0.99, 0.01, f"{len(skipped)} not placed (no type)", ha="right", va="bottom",
+                fontsize=6, transform=ax.transAxes, color="0.4")
+    fig.text(0.01, 0.005, "loci: specan/data/mk_scales.ecsv (Pecaut & Mamajek 2013; Schmidt-Kaler 1982; "
+             "Alonso et al. 1999)", fontsize=5, color="0.4")
+    fig.tight_layout()
+
+    path = Path(path)
+    path.parent.mkdir(parents=True, exist_ok=True)
+    fd, tmp = tempfile.mkstemp(prefix=".hr-", suffix=".png", dir=path.parent)
+    try:
+        with os.fdopen(fd, "wb") as fh:
+            fig.savefig(fh, format="png", dpi=dpi)
+        os.replace(tmp, path)
+    except BaseException:
+        if os.path.exists(tmp):
+            os.unlink(tmp)
+        raise
+    return {"path": str(path), "plotted": [p["name"] for p in placed], "skipped": skipped,
+            "xlim": tuple(ax.get_xlim()), "ylim": tuple(ax.get_ylim()), "loci": loci}
