@@ -808,12 +808,13 @@ def _get(mapping, key, unit=None):
     val = mapping.get(key)
     if val is None:
         return None
+    if np.ma.is_masked(val):
+        return None
     try:
-        if unit is None:
-            return float(val.value if isinstance(val, u.Quantity) else val)
-        return _as_float(val, unit)
+        out = float(val.value if isinstance(val, u.Quantity) else val) if unit is None else _as_float(val, unit)
     except (TypeError, ValueError, u.UnitsError):
         return None
+    return out if out is not None and math.isfinite(out) else None
 
 
 def _class_probs(classification, notes):

@@ -444,3 +444,8 @@ def test_derive_flags_parallax_disagreement():
     res = physics.derive(cls, None, {"v": 9.0, "parallax": 20.0, "parallax_err": 0.1})
     assert "distance_parallax_disagree" in res["flags"]
     assert res["distance_parallax_pc"] == pytest.approx(50.0)
+
+
+def test_derive_treats_nan_and_masked_as_unknown():
+    res = physics.derive({"code": float("nan"), "lumclass": "V"}, {"rv": np.nan * u.km / u.s}, {"v": np.ma.masked})
+    assert res["teff_k"] is None and res["distance_pc"] is None and res["v_total_kms"] is None
