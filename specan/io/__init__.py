@@ -68,14 +68,21 @@ def read(source, **overrides):
     path = Path(source)
     try:
         raw = _read_file(path, overrides)
+        raw.info.path = str(path)
+        if raw.info.format is None:
+            raw.info.format = "unknown"
+        with np.errstate(all="ignore"):
+            return _build(raw, path, overrides)
     except SpecanError as exc:
         if exc.path is None:
             raise type(exc)(exc.reason, path) from exc
         raise
-    raw.info.path = str(path)
-    if raw.info.format is None:
-        raw.info.format = "unknown"
-    return _build(raw, path, overrides)
+    except (ValueError, TypeError, KeyError, IndexError, OverflowError, ZeroDivisionError,
+            AttributeError, UnicodeError, OSError) as exc:
+        # Content we did not foresee (odd keyword types, broken values): still one line
+        # about this file, so a batch can carry on; --debug shows the cause.
+        raise ReadError(f"unreadable content ({type(exc).__name__}: {exc}); check the file's header and "
+                        "data, or convert it to a FITS image or a text table", path) from exc
 
 
 def _read_file(path: Path, overrides) -> RawSpectrum:

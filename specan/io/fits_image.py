@@ -39,16 +39,28 @@ def image_hdu_index(hdul, hdu=None):
     return None
 
 
+def _number(header, key, default=None):
+    value = header.get(key, default)
+    if isinstance(value, bool) or value is None:
+        raise NoWavelengthError(f"keyword {key} is missing or not a number")
+    try:
+        return float(value)
+    except (TypeError, ValueError) as exc:
+        raise NoWavelengthError(f"keyword {key} = {value!r} is not a number") from exc
+
+
 def wavelengths_from_header(header, n, wave_unit=None):
     """Wavelength of each pixel from a FITS spectral WCS; returns (wave, unit, unit_source)."""
     if "CRVAL1" not in header:
         raise NoWavelengthError("no CRVAL1: this image has no wavelength axis; try --hdu for another HDU")
-    crval = float(header["CRVAL1"])
-    crpix = float(header.get("CRPIX1", 1.0))
-    cdelt = header.get("CDELT1", header.get("CD1_1"))
-    if cdelt is None or float(cdelt) == 0.0:
-        raise NoWavelengthError("neither CDELT1 nor CD1_1 gives the wavelength step")
-    cdelt = float(cdelt)
+    crval = _number(header, "CRVAL1")
+    crpix = _number(header, "CRPIX1", 1.0)
+    key = "CDELT1" if "CDELT1" in header else "CD1_1"
+    cdelt = _number(header, key, 0.0)
+    if cdelt == 0.0 or not np.isfinite(cdelt):
+        raise NoWavelengthError("neither CDELT1 nor CD1_1 gives a non-zero wavelength step")
+    if not (np.isfinite(crval) and np.isfinite(crpix)):
+        raise NoWavelengthError("CRVAL1/CRPIX1 are not finite numbers")
     ctype = str(header.get("CTYPE1", "")).strip().upper()
     pix = np.arange(1, n + 1, dtype=float)
     w = cdelt * (pix - crpix)
