@@ -22,15 +22,11 @@ def read(source, **overrides):
     return _read(source, **overrides)
 
 
-def prepare(spectrum, **kwargs):
-    """Mask, measure S/N and normalise; see :func:`specan.prepare.prepare`."""
-    from .prepare import prepare as _prepare
+def __getattr__(name):
+    # ``specan.prepare`` and ``specan.classify`` are stage modules that can be called
+    # like their main functions (see specan/_callable.py); import them on first use.
+    if name in ("prepare", "classify"):
+        import importlib
 
-    return _prepare(spectrum, **kwargs)
-
-
-def classify(spectrum, calibration=None, **kwargs):
-    """MK-classify a spectrum; see :func:`specan.classify.classify`."""
-    from .classify import classify as _classify
-
-    return _classify(spectrum, calibration=calibration, **kwargs)
+        return importlib.import_module(f".{name}", __name__)
+    raise AttributeError(f"module 'specan' has no attribute {name!r}")

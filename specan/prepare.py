@@ -337,3 +337,8 @@ def prepare(spectrum, telluric=True, continuum=True, **fit_options):
     if continuum:
         spec = normalize(spec, **fit_options)
     return spec
+
+
+from ._callable import make_callable as _make_callable  # noqa: E402
+
+_make_callable(__name__, "prepare")

@@ -142,3 +142,11 @@ def test_degrade_gives_the_target_resolution():
     half = w[depth > depth.max() / 2]
     assert half[-1] - half[0] == pytest.approx(5.5, rel=0.03)
     assert np.trapezoid(depth, w) == pytest.approx(np.trapezoid(1 - flux, w), rel=2e-3)  # EW conserved
+
+
+def test_prepare_is_callable_from_the_package_and_still_a_module():
+    w = np.arange(4000.0, 6000.0, 1.0)
+    s = _spectrum(w, 2.0 + 0.0 * w, medium="air")
+    out = specan.prepare(s)
+    assert specan.get_info(out).normalized
+    assert callable(specan.prepare.fit_continuum)
