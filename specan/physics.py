@@ -51,6 +51,7 @@ __all__ = [
     "PHOTOMETRY_COLUMNS",
     "load_photometry",
     "photometry_for",
+    "photometry_from_header",
     "derive",
 ]
 
@@ -792,6 +793,52 @@ def photometry_for(photometry, name):
         if _squash(k) == key:
             return row
     return None
+
+
+def photometry_from_header(spectrum, v_key, v_err_key=None, ebv_key=None):
+    """A photometry row (as :func:`load_photometry` gives) from header keywords the user names.
+
+    Parameters
+    ----------
+    spectrum : specutils.Spectrum
+        Read by :func:`specan.read`; its ``ObsInfo.header`` holds the cards.
+    v_key : str
+        Keyword holding the apparent V magnitude (e.g. "VMAG"; no default, since
+        headers use many names and a wrong guess would give a wrong distance).
+    v_err_key, ebv_key : str, optional
+        Keywords of the V error and E(B-V).
+
+    Returns
+    -------
+    dict or None
+        Row dict (``object``, ``v``, ``v_err``, ``ebv``, position from the
+        pointing), or None when the V keyword is absent or not a number.
+    """
+    from .obsinfo import get_info
+
+    info = get_info(spectrum)
+    header = {str(k).upper(): v for k, v in (info.header or {}).items()}
+
+    def number(key):
+        if not key:
+            return None
+        try:
+            val = float(header.get(key.upper()))
+        except (TypeError, ValueError):
+            return None
+        return val if math.isfinite(val) else None
+
+    v = number(v_key)
+    if v is None:
+        return None
+    v_err, ebv = number(v_err_key), number(ebv_key)
+    row = {key: None for key in _PHOT_UNITS}
+    row.update({"object": info.object, "v": v * u.mag, "v_err": None if v_err is None else v_err * u.mag,
+                "ebv": None if ebv is None else ebv * u.mag, "ra": None, "dec": None})
+    if info.ra_deg is not None and info.dec_deg is not None:
+        c = info.coord.icrs
+        row["ra"], row["dec"] = c.ra.to(u.deg), c.dec.to(u.deg)
+    return row
 
 
 # ============================================================ one entry point

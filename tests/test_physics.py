@@ -449,3 +449,20 @@ def test_derive_flags_parallax_disagreement():
 def test_derive_treats_nan_and_masked_as_unknown():
     res = physics.derive({"code": float("nan"), "lumclass": "V"}, {"rv": np.nan * u.km / u.s}, {"v": np.ma.masked})
     assert res["teff_k"] is None and res["distance_pc"] is None and res["v_total_kms"] is None
+
+
+def test_photometry_from_header_keyword():
+    from specutils import Spectrum
+
+    from specan.obsinfo import ObsInfo
+
+    info = ObsInfo(object="Viento 12", ra_deg=80.0, dec_deg=33.5, radesys="ICRS",
+                   header={"VMAG": 10.5, "E_VMAG": "0.04", "EBV": 0.1, "BAD": "n/a"})
+    s = Spectrum(flux=np.ones(10) * u.one, spectral_axis=np.arange(10) * u.AA + 5000 * u.AA, meta={"specan": info})
+    row = physics.photometry_from_header(s, "vmag", v_err_key="E_VMAG", ebv_key="EBV")
+    assert row["v"] == 10.5 * u.mag and row["v_err"] == 0.04 * u.mag and row["ebv"] == 0.1 * u.mag
+    assert row["ra"].to_value(u.deg) == pytest.approx(80.0)
+    assert physics.photometry_from_header(s, "BAD") is None
+    assert physics.photometry_from_header(s, "NOSUCH") is None
+    res = physics.derive(SUN_CLASSIFICATION, None, row)
+    assert res["distance_pc"] is not None
