@@ -35,7 +35,7 @@ import numpy as np
 from scipy import optimize, stats
 
 from .errors import AnalysisError, ReadError
-from .mktypes import LUMINOSITY_CLASSES, lumclass_to_number, number_to_lumclass
+from .mktypes import lumclass_to_number, number_to_lumclass
 
 __all__ = [
     "load_scales",
@@ -229,7 +229,7 @@ def _flux_as_flambda(spectrum):
     from .obsinfo import get_info
 
     info = get_info(spectrum)
-    wave = spectrum.spectral_axis.to_value(u.AA)
+    wave = spectrum.spectral_axis.to_value(u.AA, equivalencies=u.spectral())
     flux = spectrum.flux
     unit = flux.unit
     if unit.physical_type == "dimensionless" or unit == u.dimensionless_unscaled:
@@ -354,7 +354,10 @@ def colour_temperature(spectrum, ebv=0.0, windows=None, ebv_err=0.0, r_v=3.1, wa
     Raises
     ------
     AnalysisError
-        Normalised or non-flux spectrum, or fewer than 3 usable windows.
+        Normalised or non-flux spectrum, fewer than 3 usable windows, or a fit
+        that runs to the temperature bounds (1,500 or 100,000 K): the optical
+        continuum of stars hotter than ~20,000 K is nearly Rayleigh-Jeans and
+        does not fix a temperature.
     """
     from dust_extinction.parameter_averages import F99
 
@@ -598,7 +601,7 @@ def space_velocity(ra, dec, distance, pmra, pmdec, rv, distance_err=None, pmra_e
         ``unbound_candidate`` (bool), ``unbound_basis`` ("v_total_grf"),
         ``escape_speed``, ``frame`` (parameter set and references).
     """
-    from astropy.coordinates import CartesianDifferential, Galactocentric, SkyCoord
+    from astropy.coordinates import Galactocentric, SkyCoord
 
     params = _galactocentric_parameters()
     frame = Galactocentric(**params["parameters"])
@@ -617,8 +620,7 @@ def space_velocity(ra, dec, distance, pmra, pmdec, rv, distance_err=None, pmra_e
                      distance=d * u.pc, pm_ra_cosdec=a * u.mas / u.yr, pm_dec=b * u.mas / u.yr,
                      radial_velocity=r * kms, frame="icrs")
         g = c.transform_to(frame)
-        vel = g.velocity.d_xyz.to_value(kms) if hasattr(g, "velocity") else None
-        return np.asarray(vel)
+        return np.asarray(g.velocity.d_xyz.to_value(kms))
 
     vxyz = transform(np.atleast_1d(d_pc), np.atleast_1d(pma), np.atleast_1d(pmd), np.atleast_1d(v_r))[:, 0]
     v_total = float(np.linalg.norm(vxyz))
