@@ -1,0 +1,345 @@
+"""Tests of specan/lines.py: identification, equivalent widths, errors, band indices."""
+
+import astropy.units as u
+import numpy as np
+import pytest
+from astropy.nddata import StdDevUncertainty
+from astropy.table import QTable
+from scipy.special import voigt_profile
+from specutils import Spectrum
+
+from specan import lines
+from specan.obsinfo import ObsInfo, air_to_vacuum
+
+GAUSS_FWHM = 2.0 * np.sqrt(2.0 * np.log(2.0))
+C_KMS = 299792.458
+
+
+def make_spectrum(wave, flux, sigma=None, medium="air", resolving_power=None, normalized=True):
+    """A specutils Spectrum with specan metadata (what specan.read + prepare would give)."""
+    info = ObsInfo(medium=medium, medium_assumed=False, resolving_power=resolving_power,
+                   normalized=normalized)
+    unc = None if sigma is None else StdDevUncertainty(np.broadcast_to(sigma, np.shape(flux)).copy())
+    return Spectrum(spectral_axis=np.asarray(wave) * u.AA, flux=np.asarray(flux) * u.dimensionless_unscaled,
+                    uncertainty=unc, meta={"specan": info})
+
+
+def one_line_list(wave_air, name="X_test", species="Fe I"):
+    t = QTable()
+    t["id"] = [name]
+    t["species"] = [species]
+    t["ion"] = [1]
+    t["wave_air"] = [wave_air] * u.AA
+    t["wave_vac"] = air_to_vacuum(t["wave_air"])
+    t["ep_low"] = [np.nan] * u.eV
+    t["loggf"] = [np.nan]
+    t["kind"] = ["atomic"]
+    t["source"] = ["test"]
+    return t
+
+
+def gaussian(x, centre, ew, fwhm):
+    sig = fwhm / GAUSS_FWHM
+    return ew / (sig * np.sqrt(2 * np.pi)) * np.exp(-0.5 * ((x - centre) / sig) ** 2)
+
+
+# ----------------------------------------------------------------------------- closed-form EWs
+
+
+@pytest.mark.parametrize("pix_per_fwhm", [2.0, 3.0, 5.0, 7.5, 10.0])
+def test_gaussian_ew_matches_closed_form(pix_per_fwhm):
+    # Closed form: a Gaussian of depth d and width sigma has EW = d * sigma * sqrt(2 pi)
+    # (exact integral); we build the line from its EW directly.
+    fwhm, ew_true, centre = 2.0, 0.35, 5000.3
+    dx = fwhm / pix_per_fwhm
+    wave = np.arange(4950.0, 5050.0, dx)
+    flux = 1.0 - gaussian(wave, centre, ew_true, fwhm)
+    spec = make_spectrum(wave, flux, sigma=1e-4, resolving_power=centre / fwhm)
+    m = lines.measure(spec, one_line_list(centre))
+    row = m[0]
+    assert row["detected"] and not row["emission"]
+    assert row["ew"].to_value(u.AA) == pytest.approx(ew_true, rel=0.005)
+    assert row["ew_int"].to_value(u.AA) == pytest.approx(ew_true, rel=0.005)
+    assert row["ew_fit"].to_value(u.AA) == pytest.approx(ew_true, rel=0.005)
+    assert row["fwhm"].to_value(u.AA) == pytest.approx(fwhm, rel=0.06)
+    assert row["wave_obs"].to_value(u.AA) == pytest.approx(centre, abs=0.05 * fwhm)
+
+
+@pytest.mark.parametrize("pix_per_fwhm", [2.0, 3.0, 5.0, 10.0])
+def test_voigt_ew_matches_closed_form(pix_per_fwhm):
+    # scipy.special.voigt_profile has unit area, so 1 - W * V has EW = W exactly.
+    sigma, gamma, ew_true, centre = 0.8, 0.4, 0.5, 6000.2
+    fl, fg = 2 * gamma, GAUSS_FWHM * sigma
+    fwhm = 0.5346 * fl + np.sqrt(0.2166 * fl**2 + fg**2)  # Olivero & Longbothum (1977)
+    dx = fwhm / pix_per_fwhm
+    wave = np.arange(5850.0, 6150.0, dx)
+    flux = 1.0 - ew_true * voigt_profile(wave - centre, sigma, gamma)
+    spec = make_spectrum(wave, flux, sigma=1e-4, resolving_power=centre / fg)
+    m = lines.measure(spec, one_line_list(centre), profile="voigt")
+    row = m[0]
+    assert row["profile"] == "voigt"
+    assert row["ew_fit"].to_value(u.AA) == pytest.approx(ew_true, rel=0.005)
+    assert row["fwhm"].to_value(u.AA) == pytest.approx(fwhm, rel=0.05)
+
+
+# ----------------------------------------------------------------------------- Cayrel errors
+
+
+def test_cayrel_error_matches_monte_carlo_scatter():
+    # Cayrel (1988): sigma_EW = 1.5 sqrt(FWHM * pixel) / (S/N). Compared with the
+    # scatter of the reported EW over noisy realisations of one Gaussian line.
+    rng = np.random.default_rng(1988)
+    fwhm, ew_true, centre, snr = 1.5, 0.12, 5500.0, 80.0
+    dx = fwhm / 3.0
+    wave = np.arange(5470.0, 5530.0, dx)
+    clean = 1.0 - gaussian(wave, centre, ew_true, fwhm)
+    ll = one_line_list(centre)
+    ews, cay, errs = [], [], []
+    for _ in range(150):
+        spec = make_spectrum(wave, clean + rng.normal(0, 1 / snr, wave.size), sigma=1 / snr,
+                             resolving_power=centre / fwhm)
+        row = lines.measure(spec, ll)[0]
+        ews.append(row["ew"].to_value(u.AA))
+        cay.append(row["ew_err_cayrel"].to_value(u.AA))
+        errs.append(row["ew_err"].to_value(u.AA))
+    scatter = np.std(ews, ddof=1)
+    ratio = np.median(cay) / scatter
+    assert 0.8 <= ratio <= 1.25, (ratio, scatter, np.median(cay))
+    # the error-array estimate is also honest
+    assert 0.7 <= np.median(errs) / scatter <= 1.4
+    # and the mean is unbiased to within its error
+    assert abs(np.mean(ews) - ew_true) < 4 * scatter / np.sqrt(len(ews)) + 0.01 * ew_true
+
+
+def test_cayrel_formula_value():
+    # Cayrel (1988) worked number: FWHM 0.1 A, pixel 0.02 A, S/N 100 -> 1.5*sqrt(0.002)/100 = 0.67 mA
+    assert lines.cayrel_error(0.1, 0.02, 100.0) == pytest.approx(6.708e-4, rel=1e-3)
+
+
+# ----------------------------------------------------------------------------- the Sun
+
+# Solar equivalent widths from Moore, Minnaert & Houtgast (1966), "The solar spectrum
+# 2935 A to 8770 A" (NBS Monograph 61) -- values recalled, not looked up: "from memory".
+# That atlas is of the disk centre; the Kurucz model is integrated flux at R~2000.
+MMH_EW_AA = {
+    "NaI_D2": 0.752,  # from memory
+    "NaI_D1": 0.564,  # from memory
+    "MgI_b2": 1.259,  # Mg I 5172.7, from memory
+    "MgI_b1": 1.584,  # Mg I 5183.6, from memory
+    "CaII_K": 20.253,  # from memory
+}
+
+
+@pytest.fixture(scope="module")
+def sun_lines(kurucz_sun):
+    from specan.prepare import prepare
+
+    w, f, c = kurucz_sun
+    keep = (w > 3700) & (w < 8800)
+    w, f = w[keep], f[keep]
+    # noiseless model: a nominal S/N of 500 sets the significance scale only
+    spec = make_spectrum(w, f, sigma=f / 500.0, medium="vacuum", resolving_power=2000.0, normalized=False)
+    return lines.measure(prepare(spec))
+
+
+@pytest.mark.parametrize("line_id", sorted(MMH_EW_AA))
+def test_solar_equivalent_widths_within_20_percent(sun_lines, line_id):
+    row = sun_lines[list(sun_lines["id"]).index(line_id)]
+    assert row["detected"]
+    assert row["ew"].to_value(u.AA) == pytest.approx(MMH_EW_AA[line_id], rel=0.20)
+
+
+def test_solar_lines_found_at_vacuum_positions(sun_lines):
+    # the model is in vacuum: the vacuum column must be used, so offsets are small
+    # (Kurucz model, measured minima e.g. Ca II K at 3934.78 A vacuum, tests/conftest.py)
+    strong = sun_lines[sun_lines["detected"] & (sun_lines["depth"] > 0.3)]
+    assert len(strong) > 10
+    assert abs(np.median(strong["velocity"].to_value(u.km / u.s))) < 15.0
+
+
+# ----------------------------------------------------------------------------- emission
+
+
+def test_emission_line_negative_ew_and_flag():
+    rng = np.random.default_rng(3)
+    wave = np.arange(6400.0, 6700.0, 0.5)
+    flux = 1.0 + gaussian(wave, 6562.79, 3.0, 4.0)  # H alpha in emission, EW -3 A
+    flux -= gaussian(wave, 6495.0, 0.3, 2.0)  # Fe I 6495 in absorption
+    flux += rng.normal(0, 0.005, wave.size)
+    spec = make_spectrum(wave, flux, sigma=0.005, resolving_power=6563 / 2.0)
+    m = lines.measure(spec)
+    ha = m[list(m["id"]).index("H_alpha")]
+    assert ha["emission"] and ha["detected"]
+    assert ha["ew"].to_value(u.AA) == pytest.approx(-3.0, rel=0.05)
+    fe = m[list(m["id"]).index("FeI_6495")]
+    assert not fe["emission"] and fe["ew"].to_value(u.AA) == pytest.approx(0.3, rel=0.15)
+    ident = lines.identify(spec)
+    row = ident[list(ident["id"]).index("H_alpha")]
+    assert row["emission"] and row["status"] == "identified"
+
+
+# ----------------------------------------------------------------------------- identification
+
+
+def _synthetic(rv_kms=0.0, extra=None, medium="air", noise=0.003, seed=0):
+    """Normalised spectrum with some stellar-list lines (+ extra unlisted ones) at a velocity."""
+    rng = np.random.default_rng(seed)
+    wave = np.arange(4000.0, 6800.0, 0.6)
+    ll = lines.load_linelist()
+    use = ["H_delta", "H_gamma", "H_beta", "H_alpha", "CaI_4227", "FeI_4384", "MgI_b2", "MgI_b1",
+           "NaI_D2", "NaI_D1", "BaII_4554", "FeI_5270"]
+    col = "wave_vac" if medium == "vacuum" else "wave_air"
+    factor = lines.doppler_factor(rv_kms * u.km / u.s)
+    flux = np.ones(wave.size)
+    for lid in use:
+        lam = ll[list(ll["id"]).index(lid)][col].to_value(u.AA) * factor
+        flux -= gaussian(wave, lam, 3.0 if lid.startswith("H_") else 0.4, 5.0 if lid.startswith("H_") else 2.0)
+    for lam in extra or []:
+        flux -= gaussian(wave, lam, 0.6, 2.0)
+    flux += rng.normal(0, noise, wave.size)
+    return make_spectrum(wave, flux, sigma=noise, medium=medium, resolving_power=5000 / 2.0), use
+
+
+def test_identify_matches_lines_at_given_velocity():
+    spec, used = _synthetic(rv_kms=120.0)
+    t = lines.identify(spec, rv=120 * u.km / u.s)
+    for lid in used:
+        row = t[list(t["id"]).index(lid)]
+        assert row["status"] == "identified", lid
+        assert row["velocity"].to_value(u.km / u.s) == pytest.approx(120.0, abs=15.0), lid
+
+
+def test_identify_estimates_velocity_when_not_given():
+    spec, used = _synthetic(rv_kms=-80.0)
+    t = lines.identify(spec, rv=None)
+    assert t.meta["rv"].to_value(u.km / u.s) == pytest.approx(-80.0, abs=15.0)
+    assert sum(t["status"] == "identified") >= len(used) - 1
+
+
+def test_unidentified_strong_feature_reported():
+    spec, _ = _synthetic(extra=[6100.0])  # no listed line within 6095-6105 A
+    t = lines.identify(spec)
+    un = t[t["status"] == "unidentified"]
+    assert len(un) >= 1
+    assert np.min(np.abs(un["wave_obs"].to_value(u.AA) - 6100.0)) < 0.5
+
+
+def test_blends_marked_within_one_resolution_element():
+    # Mg I b4 5167.32 and Fe I 5167.49 (both in the list) are 0.17 A apart
+    spec, _ = _synthetic()
+    m = lines.measure(spec)
+    b4 = m[list(m["id"]).index("MgI_b4")]
+    assert "FeI_5167" in b4["blend"].split(",")
+    fe = m[list(m["id"]).index("FeI_5167")]
+    assert "MgI_b4" in fe["blend"].split(",")
+    # Na D1 and D2 are 6 A apart: more than one resolution element (2 A) here
+    d2 = m[list(m["id"]).index("NaI_D2")]
+    assert "NaI_D1" not in d2["blend"].split(",")
+
+
+def test_vacuum_spectrum_uses_vacuum_wavelengths():
+    spec, used = _synthetic(medium="vacuum")
+    m = lines.measure(spec)
+    found = m[np.isin(m["id"], used)]
+    assert np.all(found["detected"])
+    assert np.max(np.abs(found["velocity"].to_value(u.km / u.s))) < 10.0
+    # the same spectrum wrongly called air is off by ~85 km/s (air vs vacuum at 5000 A)
+    spec.meta["specan"].medium = "air"
+    t = lines.identify(spec, window=30 * u.km / u.s)
+    assert np.sum(t["status"][np.isin(t["id"], used)] == "identified") < len(used) // 2
+
+
+def test_measure_table_columns_and_units():
+    spec, _ = _synthetic()
+    m = lines.measure(spec)
+    for name in ("id", "species", "wave_air", "wave_vac", "wave_obs", "ew", "ew_err", "ew_err_cayrel",
+                 "ew_fit", "fwhm", "depth", "method", "blend", "detected", "emission"):
+        assert name in m.colnames
+    assert m["ew"].unit == u.AA and m["wave_obs"].unit == u.AA
+    assert set(m["method"]) <= {"integration", "gauss_fit", "voigt_fit", "multi_gauss_fit",
+                                "multi_voigt_fit", "masked", "none"}
+    # undetected lines still carry an EW with an error (an upper limit)
+    weak = m[~m["detected"]]
+    assert len(weak) > 0 and np.all(np.isfinite(weak["ew_err"]))
+    assert np.all(np.abs(weak["ew"]) < 5 * weak["ew_err"] + 0.02 * u.AA)
+
+
+def test_unnormalised_input_is_prepared():
+    spec, _ = _synthetic()
+    wave = spec.spectral_axis.to_value(u.AA)
+    slope = 2.0 + (wave - 4000.0) / 2800.0
+    raw = make_spectrum(wave, spec.flux.value * slope, sigma=0.003 * slope, normalized=False,
+                        resolving_power=2500.0)
+    m = lines.measure(raw)
+    row = m[list(m["id"]).index("NaI_D2")]
+    assert row["ew"].to_value(u.AA) == pytest.approx(0.4, rel=0.1)
+
+
+def test_resolving_power_estimated_when_unknown():
+    rng = np.random.default_rng(5)
+    wave = np.arange(5000.0, 5600.0, 0.4)
+    flux = np.ones(wave.size)
+    for lam in rng.uniform(5010, 5590, 60):
+        flux -= gaussian(wave, lam, rng.uniform(0.05, 0.2), 1.2)
+    flux += rng.normal(0, 0.002, wave.size)
+    spec = make_spectrum(wave, flux, sigma=0.002)
+    t = lines.identify(spec)
+    assert t.meta["resolving_power_source"].startswith("estimated")
+    assert t.meta["resolving_power"] == pytest.approx(5300 / 1.2, rel=0.2)
+
+
+# ----------------------------------------------------------------------------- band indices
+
+
+def _band_table(kind, feature, blue, red):
+    t = QTable()
+    t["name"] = ["test"]
+    for edge, (lo, hi) in (("feature", feature), ("blue", blue), ("red", red)):
+        t[f"{edge}_min_air"] = [lo] * u.AA
+        t[f"{edge}_max_air"] = [hi] * u.AA
+        t[f"{edge}_min_vac"] = air_to_vacuum(t[f"{edge}_min_air"])
+        t[f"{edge}_max_vac"] = air_to_vacuum(t[f"{edge}_max_air"])
+    t["kind"] = [kind]
+    t["source"] = ["test"]
+    return t
+
+
+@pytest.mark.parametrize("kind", ["ew", "magnitude", "ratio"])
+def test_band_index_box_feature_on_sloped_continuum(kind):
+    # A box of depth 0.3 over 20 A on a linear continuum: the straight pseudo-continuum
+    # through the side windows is exact, so EW = 0.3 * 20 A, mag = -2.5 log10(0.7), ratio 0.7.
+    wave = np.arange(5000.0, 5200.0, 0.25)
+    cont = 100.0 + 0.2 * (wave - 5000.0)
+    flux = cont * np.where((wave >= 5090) & (wave <= 5110), 0.7, 1.0)
+    spec = make_spectrum(wave, flux, sigma=0.001 * cont, normalized=False)
+    t = lines.band_indices(spec, _band_table(kind, (5092.0, 5108.0), (5040.0, 5060.0), (5140.0, 5160.0)))
+    expected = {"ew": 0.3 * 16.0, "magnitude": -2.5 * np.log10(0.7), "ratio": 0.7}[kind]
+    assert t["value"][0] == pytest.approx(expected, rel=0.01)
+    assert t["unit"][0] == {"ew": "Angstrom", "magnitude": "mag", "ratio": ""}[kind]
+
+
+def test_band_index_errors_match_monte_carlo():
+    rng = np.random.default_rng(7)
+    wave = np.arange(5000.0, 5200.0, 0.5)
+    clean = np.where((wave >= 5090) & (wave <= 5110), 0.6, 1.0) * 50.0
+    bands = _band_table("magnitude", (5092.0, 5108.0), (5040.0, 5060.0), (5140.0, 5160.0))
+    vals, errs = [], []
+    for _ in range(200):
+        spec = make_spectrum(wave, clean + rng.normal(0, 1.0, wave.size), sigma=1.0, normalized=False)
+        t = lines.band_indices(spec, bands)
+        vals.append(t["value"][0])
+        errs.append(t["err"][0])
+    assert 0.8 <= np.median(errs) / np.std(vals, ddof=1) <= 1.25
+
+
+def test_default_bands_on_solar_model(kurucz_sun):
+    w, f, c = kurucz_sun
+    spec = make_spectrum(w, f, medium="vacuum", normalized=False)
+    t = lines.band_indices(spec)
+    row = {n: (v, e) for n, v, e in zip(t["name"], t["value"], t["err"])}
+    # The Sun's G band and Mg b are strong, TiO absent (common practice: Lick indices of a
+    # G2 V star, e.g. G4300 ~5 A, Mgb ~3-4 A, TiO2 ~0 mag -- from memory, loose bounds)
+    assert 2.0 < row["G4300"][0] < 9.0
+    assert 2.0 < row["Mgb"][0] < 6.0
+    assert abs(row["TiO2"][0]) < 0.05
+    assert np.isfinite(row["NaD"][0])
