@@ -1,0 +1,64 @@
+"""``specan run``: a night's folder in, catalogue, plots and report out."""
+
+from __future__ import annotations
+
+import click
+
+from ._common import exit_with_failures, overrides_from, read_options
+
+FORMATS = ("ecsv", "csv", "fits", "votable")
+
+
+def _formats(ctx, param, value):
+    names = [v.strip().lower() for v in (value or "ecsv").split(",") if v.strip()]
+    bad = [n for n in names if n not in FORMATS]
+    if bad:
+        raise click.BadParameter(f"unknown format(s) {', '.join(bad)}; choose from {', '.join(FORMATS)}")
+    return names
+
+
+@click.command(name="run")
+@click.argument("paths", nargs=-1, required=True)
+@click.option("--out", "out_dir", required=True, type=click.Path(file_okay=False),
+              help="Output folder (catalogue, plots, report); created if needed.")
+@click.option("--jobs", "-j", type=click.IntRange(min=1), default=1, show_default=True,
+              help="Local worker processes.")
+@click.option("--dask", "dask_address", default=None, metavar="ADDRESS",
+              help="Run on an existing dask.distributed cluster (scheduler address, e.g. tcp://host:8786).")
+@click.option("--force", is_flag=True, help="Recompute inputs whose stored results are current.")
+@click.option("--format", "formats", default="ecsv", callback=_formats, show_default=True,
+              help="Catalogue formats, comma-separated: ecsv, csv, fits, votable (ECSV always written).")
+@click.option("--no-plots", is_flag=True, help="Skip the per-spectrum figures.")
+@click.option("--stages", default=None, metavar="LIST",
+              help="Run only these stages, comma-separated (read, prepare, lines, velocity, classify, "
+                   "physics); default all.")
+@read_options
+def command(paths, out_dir, jobs, dask_address, force, formats, no_plots, stages, **kwargs):
+    """Analyse every spectrum in PATHS (files, folders, globs) into a catalogue and report in --out.
+
+    Exit status: the number of inputs that failed (capped at 100), 0 when none did.
+    """
+    from ..pipeline import RunInterrupted, run
+
+    wanted = [s.strip() for s in stages.split(",") if s.strip()] if stages else None
+    try:
+        summary = run(paths, out_dir, jobs=jobs, dask=dask_address, force=force, formats=formats,
+                      overrides=overrides_from(kwargs), plots=not no_plots, stages=wanted)
+    except ValueError as exc:
+        raise click.BadParameter(str(exc), param_hint="--stages") from exc
+    except RunInterrupted as stop:
+        s = stop.summary
+        click.echo(f"specan: interrupted; catalogue of what was done written to {s.outputs.get('ecsv')} "
+                   f"({s.counts.get('not_run', 0)} inputs not run; rerun to finish)", err=True)
+        raise SystemExit(130)
+    counts = ", ".join(f"{n} {k}" for k, n in sorted(summary.counts.items()))
+    click.echo(f"{len(summary.catalogue)} inputs ({counts}; {summary.reused} already current) "
+               f"in {summary.seconds:.1f} s")
+    not_run = [f"{n} ({why})" for n, why in summary.stages.items() if why is not None]
+    if not_run:
+        click.echo("stages not run: " + "; ".join(not_run), err=True)
+    for name, path in summary.outputs.items():
+        click.echo(f"{name}: {path}")
+    for note in summary.notes:
+        click.echo(f"note: {note}", err=True)
+    exit_with_failures(summary.failed)

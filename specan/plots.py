@@ -1,0 +1,257 @@
+"""Figures of a night run: one per spectrum, and the night diagram.
+
+Figures are drawn on ``matplotlib.figure.Figure`` with the Agg canvas rather
+than through pyplot: no global figure registry (memory stays flat over
+thousands of spectra) and no GUI backend, so this works in worker processes
+and on machines without a display.
+"""
+
+from __future__ import annotations
+
+import io
+
+import numpy as np
+
+__all__ = ["spectrum_figures", "night_diagram"]
+
+#: Columns of the lines table that may hold a line's wavelength, best first.
+_WAVE_COLUMNS = ("wave_obs", "center", "centre", "wave", "wavelength", "wave_air", "wave_vac")
+
+
+def _canvas(width, height):
+    from matplotlib.backends.backend_agg import FigureCanvasAgg
+    from matplotlib.figure import Figure
+
+    fig = Figure(figsize=(width, height))
+    FigureCanvasAgg(fig)
+    return fig
+
+
+def _png(fig, dpi) -> bytes:
+    buf = io.BytesIO()
+    fig.savefig(buf, format="png", dpi=dpi)
+    return buf.getvalue()
+
+
+def _spectrum_arrays(spectrum):
+    import astropy.units as u
+
+    wave = np.asarray(spectrum.spectral_axis.to_value(u.AA), float)
+    flux = np.asarray(spectrum.flux.value, float).copy()
+    if spectrum.mask is not None:
+        flux[np.asarray(spectrum.mask, bool)] = np.nan
+    return wave, flux
+
+
+def _line_positions(lines):
+    """(wavelength in Angstrom, label) of detected lines, or [] if the table has no wavelength."""
+    if lines is None or len(lines) == 0:
+        return []
+    col = next((c for c in _WAVE_COLUMNS if c in lines.colnames), None)
+    if col is None:
+        return []
+    import astropy.units as u
+
+    wave = lines[col]
+    wave = np.asarray(wave.to_value(u.AA) if hasattr(wave, "unit") and wave.unit else wave, float)
+    detected = np.asarray(lines["detected"], bool) if "detected" in lines.colnames else np.ones(len(lines), bool)
+    label_col = "id" if "id" in lines.colnames else ("species" if "species" in lines.colnames else None)
+    out = []
+    for i in np.flatnonzero(detected & np.isfinite(wave)):
+        out.append((float(wave[i]), str(lines[label_col][i]) if label_col else ""))
+    return out
+
+
+def _draw_spectrum(ax, spectrum, lines, normalized, small=False):
+    wave, flux = _spectrum_arrays(spectrum)
+    ax.plot(wave, flux, lw=0.5 if small else 0.6, color="k")
+    finite = flux[np.isfinite(flux)]
+    if finite.size:
+        lo, hi = np.percentile(finite, [0.5, 99.5])
+        pad = 0.08 * (hi - lo or 1.0)
+        ax.set_ylim(lo - pad, hi + 3 * pad)
+    ax.set_xlim(wave[0], wave[-1]) if wave.size > 1 else None
+    if small:
+        ax.set_xticks([])
+        ax.set_yticks([])
+        return
+    top = ax.get_ylim()[1]
+    for w, label in _line_positions(lines):
+        ax.axvline(w, color="tab:blue", lw=0.4, alpha=0.6)
+        ax.text(w, top, label, rotation=90, fontsize=5, ha="center", va="top", color="tab:blue", clip_on=True)
+    ax.set_xlabel("wavelength (Angstrom)")
+    ax.set_ylabel("normalised flux" if normalized else "flux")
+
+
+def _draw_ccf(ax, velocity):
+    """Cross-correlation function if the velocity stage returned one."""
+    ccf = None
+    if isinstance(velocity, dict):
+        for vkey, ckey in (("ccf_velocity", "ccf"), ("ccf_v", "ccf"), ("ccf_rv", "ccf")):
+            if vkey in velocity and ckey in velocity:
+                ccf = (velocity[vkey], velocity[ckey])
+                break
+        if ccf is None and isinstance(velocity.get("ccf"), (tuple, list)) and len(velocity["ccf"]) == 2:
+            ccf = tuple(velocity["ccf"])
+    if ccf is None:
+        ax.text(0.5, 0.5, "no cross-correlation function\n(velocity stage did not run or return one)",
+                ha="center", va="center", fontsize=7, transform=ax.transAxes)
+        ax.set_axis_off()
+        return
+    import astropy.units as u
+
+    v = ccf[0].to_value(u.km / u.s) if hasattr(ccf[0], "unit") else np.asarray(ccf[0], float)
+    c = np.asarray(getattr(ccf[1], "value", ccf[1]), float)
+    ax.plot(v, c, color="k", lw=0.7)
+    rv = velocity.get("rv_topo", velocity.get("rv"))
+    if rv is not None:
+        rv = rv.to_value(u.km / u.s) if hasattr(rv, "unit") else float(rv)
+        if np.isfinite(rv):
+            ax.axvline(rv, color="tab:red", lw=0.7)
+    ax.set_xlabel("velocity (km/s)")
+    ax.set_ylabel("CCF")
+
+
+def _draw_criteria(ax, classification):
+    """Classification criteria measured on this star against the standards' values, if given."""
+    crit = classification.get("criteria") if isinstance(classification, dict) else None
+    if not crit:
+        text = "no classification criteria"
+        if isinstance(classification, dict) and classification.get("mk"):
+            text = f"{classification.get('mk')}\n(classifier returned no criteria)"
+        ax.text(0.5, 0.5, text, ha="center", va="center", fontsize=7, transform=ax.transAxes)
+        ax.set_axis_off()
+        return
+    names, star, standard = [], [], []
+    items = crit.items() if isinstance(crit, dict) else crit
+    for name, value in items:
+        if isinstance(value, dict):
+            s, ref = value.get("value"), value.get("standard")
+        elif isinstance(value, (tuple, list)) and len(value) == 2:
+            s, ref = value
+        else:
+            s, ref = value, None
+        names.append(str(name))
+        star.append(float(getattr(s, "value", s)) if s is not None else np.nan)
+        standard.append(float(getattr(ref, "value", ref)) if ref is not None else np.nan)
+    y = np.arange(len(names))
+    ax.scatter(star, y, color="k", s=10, label="this star", zorder=3)
+    if np.isfinite(standard).any():
+        ax.scatter(standard, y, facecolor="none", edgecolor="tab:red", s=25, label="standard")
+    ax.set_yticks(y, names, fontsize=6)
+    ax.legend(fontsize=6, loc="best")
+    ax.set_xlabel("criterion value")
+
+
+def spectrum_figures(spectrum, lines=None, velocity=None, classification=None, title="") -> dict:
+    """Draw one spectrum's figure and thumbnail.
+
+    Parameters
+    ----------
+    spectrum : specutils.Spectrum
+        Normalised (or raw, if preparing did not run) spectrum.
+    lines : astropy.table.QTable, optional
+        Result of the lines stage; detected lines are labelled.
+    velocity, classification : dict, optional
+        Results of those stages (cross-correlation function, criteria).
+    title : str
+        Figure title.
+
+    Returns
+    -------
+    dict
+        ``{"full": PNG bytes, "thumb": PNG bytes}``.
+    """
+    from .obsinfo import get_info
+
+    normalized = bool(get_info(spectrum).normalized)
+    fig = _canvas(10, 7)
+    grid = fig.add_gridspec(2, 2, height_ratios=[1.2, 1])
+    ax = fig.add_subplot(grid[0, :])
+    _draw_spectrum(ax, spectrum, lines, normalized)
+    ax.set_title(title, fontsize=9)
+    _draw_ccf(fig.add_subplot(grid[1, 0]), velocity)
+    _draw_criteria(fig.add_subplot(grid[1, 1]), classification)
+    fig.tight_layout()
+    full = _png(fig, dpi=90)
+
+    small = _canvas(2.4, 0.9)
+    ax = small.add_axes([0.01, 0.03, 0.98, 0.94])
+    _draw_spectrum(ax, spectrum, None, normalized, small=True)
+    thumb = _png(small, dpi=60)
+    return {"full": full, "thumb": thumb}
+
+
+def night_diagram(catalogue, path) -> str:
+    """Draw the night's HR-style diagram (temperature against luminosity) to ``path``.
+
+    Uses :func:`specan.hrdiagram.plot_hr` when that module exists; otherwise
+    plots the catalogue's spectral-type code (or Teff) against luminosity class.
+
+    Returns
+    -------
+    str
+        A note on how the diagram was drawn ("" when by ``plot_hr``).
+    """
+    try:
+        from .hrdiagram import plot_hr
+    except ModuleNotFoundError:
+        plot_hr = None
+    if plot_hr is not None:
+        rows = [dict(zip(catalogue.colnames, row)) for row in catalogue.iterrows()]
+        plot_hr(rows, path)
+        return ""
+    return _plain_night_diagram(catalogue, path)
+
+
+def _column(catalogue, name):
+    if name not in catalogue.colnames:
+        return None
+    col = catalogue[name]
+    data = np.asarray(col, float) if col.dtype.kind in "fiu" else None
+    if data is not None and hasattr(col, "mask"):
+        data = np.where(np.asarray(col.mask, bool), np.nan, data)
+    return data
+
+
+def _plain_night_diagram(catalogue, path) -> str:
+    from .mktypes import lumclass_to_number
+
+    fig = _canvas(6, 4.5)
+    ax = fig.add_subplot()
+    teff = _column(catalogue, "teff")
+    code = _column(catalogue, "code")
+    lum = []
+    for value in (catalogue["lumclass"] if "lumclass" in catalogue.colnames else [""] * len(catalogue)):
+        try:
+            lum.append(lumclass_to_number(str(value)))
+        except ValueError:
+            lum.append(np.nan)
+    lum = np.asarray(lum, float)
+    if teff is not None and np.isfinite(teff).any():
+        x, xlabel = teff, "Teff (K)"
+        ax.set_xscale("log")
+    elif code is not None:
+        x, xlabel = code, "spectral type code (O0=0 ... M0=60)"
+    else:
+        x, xlabel = np.full(len(catalogue), np.nan), "temperature"
+    ok = np.isfinite(x) & np.isfinite(lum)
+    note = ""
+    if ok.any():
+        ax.scatter(x[ok], lum[ok], color="k", s=15)
+        names = catalogue["object"] if "object" in catalogue.colnames else catalogue["file"]
+        for xi, yi, name in zip(x[ok], lum[ok], np.asarray(names)[ok]):
+            ax.annotate(str(name)[:20], (xi, yi), fontsize=6, xytext=(3, 3), textcoords="offset points")
+    else:
+        ax.text(0.5, 0.5, "no classified stars", ha="center", va="center", transform=ax.transAxes)
+        note = "night diagram empty: no star has both a temperature and a luminosity class"
+    if teff is not None and np.isfinite(teff).any():
+        ax.invert_xaxis()  # hot stars on the left, by convention (common practice)
+    ax.set_yticks([1, 2, 3, 4, 5], ["I", "II", "III", "IV", "V"])
+    ax.set_ylim(5.6, 0.4)  # supergiants at the top
+    ax.set_xlabel(xlabel)
+    ax.set_ylabel("luminosity class")
+    ax.set_title("night diagram", fontsize=9)
+    fig.tight_layout()
+    fig.savefig(path, format="png", dpi=90)
+    return note or "night diagram drawn from the catalogue (specan.hrdiagram not available)"

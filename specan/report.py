@@ -1,0 +1,243 @@
+"""The night's HTML report: one static page to share.
+
+The page is self-contained: styles and the little sorting script are inline,
+the night diagram and the thumbnails are embedded as data URIs; each thumbnail
+links to the full per-spectrum figure in ``plots/`` beside the page. Rows that
+need a second look (errors, flags, declined stages) come first.
+
+Every string that can come from an input file (object names, header-derived
+warnings, file names, reasons) goes through :func:`html.escape`, so a header
+cannot inject markup or script into the page.
+"""
+
+from __future__ import annotations
+
+import base64
+import html
+import math
+import urllib.parse
+from pathlib import Path
+
+import numpy as np
+
+__all__ = ["write_report", "report_rows"]
+
+#: Catalogue columns shown in the page (those present), in this order.
+SHOWN = (
+    ("object", "object"),
+    ("file", "file"),
+    ("status", "status"),
+    ("flags", "flags"),
+    ("mk", "MK type"),
+    ("sptype", "type"),
+    ("lumclass", "class"),
+    ("teff", "Teff"),
+    ("rv", "RV"),
+    ("rv_err", "RV err"),
+    ("snr", "S/N"),
+    ("n_lines", "lines"),
+    ("mjd_mid", "MJD"),
+    ("reason", "reason"),
+    ("warnings", "warnings"),
+)
+
+_STYLE = """
+body{font-family:system-ui,sans-serif;margin:1.5em;color:#222}
+table{border-collapse:collapse;font-size:13px}
+th,td{border:1px solid #ccc;padding:3px 6px;vertical-align:top}
+th{background:#eee;cursor:pointer;user-select:none;white-space:nowrap}
+th.asc::after{content:" \\25B2"} th.desc::after{content:" \\25BC"}
+tr.error td{background:#fde2e2} tr.flagged td{background:#fff4d6} tr.not_run td{background:#e8e8e8}
+.flag{display:inline-block;background:#c85;color:#fff;border-radius:3px;padding:0 4px;margin:1px;font-size:12px}
+td.long{max-width:28em;font-size:11px;color:#555}
+img.thumb{display:block;width:144px;height:54px}
+.muted{color:#777}
+"""
+
+# Sorting: click a header to sort by it (numbers by value, text alphabetically),
+# click again to reverse. Hand-written because the page must not load anything.
+_SCRIPT = """
+(function () {
+  var table = document.getElementById("catalogue");
+  var body = table.tBodies[0];
+  var heads = table.tHead.rows[0].cells;
+  function key(cell) {
+    var v = cell.getAttribute("data-value");
+    if (v !== null && v !== "" && !isNaN(Number(v))) return [0, Number(v)];
+    return [1, cell.textContent.trim().toLowerCase()];
+  }
+  function sortBy(index, descending) {
+    var rows = Array.prototype.slice.call(body.rows);
+    rows.sort(function (a, b) {
+      var x = key(a.cells[index]), y = key(b.cells[index]);
+      if (x[0] !== y[0]) return x[0] - y[0];          /* blanks and text after numbers */
+      var c = x[1] < y[1] ? -1 : (x[1] > y[1] ? 1 : 0);
+      if (c === 0) c = Number(a.getAttribute("data-order")) - Number(b.getAttribute("data-order"));
+      return descending ? -c : c;
+    });
+    rows.forEach(function (r) { body.appendChild(r); });
+  }
+  Array.prototype.forEach.call(heads, function (th, i) {
+    if (th.classList.contains("nosort")) return;
+    th.addEventListener("click", function () {
+      var desc = th.classList.contains("asc");
+      Array.prototype.forEach.call(heads, function (h) { h.classList.remove("asc", "desc"); });
+      th.classList.add(desc ? "desc" : "asc");
+      sortBy(i, desc);
+    });
+  });
+  /* A link can carry its order: report.html#sort=snr or #sort=-snr (descending). */
+  var m = /^#sort=(-?)(.+)$/.exec(decodeURIComponent(location.hash || ""));
+  if (m) {
+    Array.prototype.forEach.call(heads, function (th, i) {
+      if (th.getAttribute("data-column") === m[2]) {
+        th.classList.add(m[1] ? "desc" : "asc");
+        sortBy(i, m[1] === "-");
+      }
+    });
+  }
+  document.body.setAttribute("data-sortable", "ready");
+})();
+"""
+
+
+def _esc(value) -> str:
+    return html.escape("" if value is None else str(value), quote=True)
+
+
+def _cell_value(col, i):
+    """(text, sort value) of one catalogue cell; masked and NaN are blank."""
+    value = col[i]
+    masked = bool(np.ma.getmaskarray(col)[i]) if hasattr(col, "mask") else False
+    if masked:
+        return "", ""
+    if col.dtype.kind == "f":
+        v = float(value)
+        if not math.isfinite(v):
+            return "", ""
+        # four significant digits, but every integer digit of large numbers (MJD, Teff)
+        text = f"{v:.3f}" if abs(v) >= 1e4 else f"{v:.4g}"
+        return text, repr(v)
+    if col.dtype.kind in "iu":
+        return str(int(value)), str(int(value))
+    if col.dtype.kind == "b":
+        return ("yes" if value else "no"), ""
+    return str(value), ""
+
+
+def _needs_look(values) -> int:
+    """Order rows: errors, then flagged or declined, then the rest."""
+    if values.get("status") == "error":
+        return 0
+    if values.get("flags") or values.get("status") in ("partial", "not_run"):
+        return 1
+    return 2
+
+
+def report_rows(catalogue):
+    """Row indices of the catalogue in report order (needing a look first, then by file)."""
+    status = [str(s) for s in catalogue["status"]]
+    flags = [str(f) for f in catalogue["flags"]]
+    files = [str(f) for f in catalogue["file"]]
+    return sorted(range(len(catalogue)),
+                  key=lambda i: (_needs_look({"status": status[i], "flags": flags[i]}), files[i], i))
+
+
+def _data_uri(path: Path) -> str | None:
+    try:
+        data = path.read_bytes()
+    except OSError:
+        return None
+    return "data:image/png;base64," + base64.b64encode(data).decode("ascii")
+
+
+def _href(relative: str) -> str:
+    # Our own relative path (plots/<safe stem>-<id>.png); quoted anyway.
+    return _esc(urllib.parse.quote(relative, safe="/"))
+
+
+def write_report(catalogue, out_dir, path, diagram=None, stages=None) -> Path:
+    """Write the night's HTML report.
+
+    Parameters
+    ----------
+    catalogue : astropy.table.Table
+        The night catalogue (see :func:`specan.pipeline.assemble_catalogue`).
+    out_dir : str or os.PathLike
+        Output folder; plot paths in the catalogue are relative to it.
+    path : str or os.PathLike
+        Where to write the page.
+    diagram : str or os.PathLike, optional
+        Night diagram PNG to embed.
+    stages : dict, optional
+        Stage -> None if available, else why it did not run.
+
+    Returns
+    -------
+    pathlib.Path
+    """
+    out = Path(out_dir)
+    shown = [(name, label) for name, label in SHOWN if name in catalogue.colnames]
+    counts = {}
+    for s in catalogue["status"]:
+        counts[str(s)] = counts.get(str(s), 0) + 1
+
+    parts = ["<!DOCTYPE html>", '<html lang="en"><head><meta charset="utf-8">',
+             "<title>specan night report</title>", f"<style>{_STYLE}</style></head><body>",
+             "<h1>Night report</h1>"]
+    summary = ", ".join(f"{_esc(n)} {_esc(k)}" for k, n in sorted(counts.items()))
+    parts.append(f'<p id="summary">{len(catalogue)} inputs: {summary}. '
+                 f'Created {_esc(catalogue.meta.get("created_utc", ""))} by specan '
+                 f'{_esc(catalogue.meta.get("specan_version", ""))}.</p>')
+    if stages:
+        ran = [n for n, why in stages.items() if why is None]
+        parts.append(f'<p id="stages">Stages run: {_esc(", ".join(ran) or "none")}.')
+        missing = [(n, why) for n, why in stages.items() if why is not None]
+        if missing:
+            parts.append(" Not run: " + "; ".join(f"{_esc(n)} ({_esc(w)})" for n, w in missing) + ".")
+        parts.append("</p>")
+    if diagram is not None:
+        uri = _data_uri(Path(diagram))
+        if uri:
+            parts.append(f'<h2>Night diagram</h2><img id="night-diagram" src="{uri}" '
+                         'alt="night diagram: temperature against luminosity class">')
+
+    parts.append("<h2>Catalogue</h2><p class=\"muted\">Rows needing a look come first; "
+                 "click a column heading to sort. Full catalogue with units: catalogue.ecsv.</p>")
+    parts.append('<table id="catalogue"><thead><tr><th class="nosort">plot</th>')
+    for name, label in shown:
+        unit = catalogue[name].unit
+        unit_text = f" ({_esc(unit)})" if unit is not None and str(unit) else ""
+        parts.append(f'<th data-column="{_esc(name)}">{_esc(label)}{unit_text}</th>')
+    parts.append("</tr></thead><tbody>")
+
+    cols = {name: catalogue[name] for name, _ in shown}
+    for order, i in enumerate(report_rows(catalogue)):
+        status = str(catalogue["status"][i])
+        flags = [f for f in str(catalogue["flags"][i]).split(",") if f]
+        cls = status if status in ("error", "not_run") else ("flagged" if flags or status == "partial" else "ok")
+        parts.append(f'<tr class="{cls}" data-order="{order}" data-file="{_esc(catalogue["file"][i])}">')
+        thumb = str(catalogue["thumbnail"][i]) if "thumbnail" in catalogue.colnames else ""
+        full = str(catalogue["plot"][i]) if "plot" in catalogue.colnames else ""
+        uri = _data_uri(out / thumb) if thumb else None
+        if uri and full:
+            obj = str(catalogue["object"][i]) if "object" in catalogue.colnames else ""
+            parts.append(f'<td><a href="{_href(full)}"><img class="thumb" src="{uri}" '
+                         f'alt="spectrum of {_esc(obj)}"></a></td>')
+        else:
+            parts.append('<td class="muted">no plot</td>')
+        for name, _ in shown:
+            text, sort_value = _cell_value(cols[name], i)
+            if name == "flags":
+                body = "".join(f'<span class="flag">{_esc(f)}</span>' for f in flags)
+                parts.append(f'<td data-value="">{body}</td>')
+            elif name in ("reason", "warnings"):
+                parts.append(f'<td class="long">{_esc(text)}</td>')
+            else:
+                parts.append(f'<td data-value="{_esc(sort_value)}">{_esc(text)}</td>')
+        parts.append("</tr>")
+    parts.append("</tbody></table>")
+    parts.append(f"<script>{_SCRIPT}</script></body></html>")
+    target = Path(path)
+    target.write_text("\n".join(parts), encoding="utf-8")
+    return target

@@ -1,0 +1,304 @@
+"""The night run (specan/pipeline.py, specan/cli/run.py) and the demo night.
+
+Plumbing tests use small spectra written by the test itself (a sloped
+continuum with Balmer absorption lines and noise), so they check the run's
+safety properties whatever the science stages can do today. The demo-night
+test checks the science against the truth table written by
+scripts/make_demo_night.py.
+"""
+
+from __future__ import annotations
+
+import json
+import os
+import signal
+import subprocess
+import sys
+import time
+from pathlib import Path
+
+import numpy as np
+import pytest
+from astropy.io import fits
+from astropy.table import Table
+
+from specan import pipeline
+from specan.cli import main as cli_main
+from specan.obsinfo import get_info
+
+ROOT = Path(__file__).resolve().parents[1]
+DEMO = ROOT / "sample_spectra"
+
+# Plumbing tests run only the foundation stages: the science stages are
+# checked by the demo-night test and by their own modules' tests.
+BASIC = ("read", "prepare")
+BASIC_CLI = ("--stages", "read,prepare")
+
+# Balmer lines in air, Angstrom (# NIST ASD, from memory)
+BALMER_AIR = (6562.79, 4861.35, 4340.47, 4101.74)
+
+
+def write_spectrum(path, name="Test star", seed=0, n=1500, start=3900.0, step=2.0, rv=0.0, site=True):
+    """A FITS image spectrum with a linear air-wavelength WCS and the usual header keywords."""
+    rng = np.random.default_rng(seed)
+    wave = start + step * np.arange(n)
+    cont = 1.0e4 * (1.0 + 0.1 * (wave - wave.mean()) / np.ptp(wave))
+    depth = np.zeros(n)
+    shift = 1.0 + rv / 299792.458
+    for w0 in BALMER_AIR:
+        depth += 0.5 * np.exp(-0.5 * ((wave - w0 * shift) / 4.0) ** 2)
+    flux = cont * (1.0 - depth) + rng.normal(0.0, 100.0, n)
+    h = fits.Header()
+    h["OBJECT"] = name
+    h["CTYPE1"], h["CUNIT1"], h["CRPIX1"], h["CRVAL1"], h["CDELT1"] = "AWAV", "Angstrom", 1.0, start, step
+    h["DATE-OBS"] = "2025-09-14T22:00:00"
+    h["EXPTIME"] = 600.0
+    h["RA"], h["DEC"], h["RADESYS"] = 310.0, 40.0, "ICRS"
+    if site:
+        h["OBSGEO-X"], h["OBSGEO-Y"], h["OBSGEO-Z"] = 4912345.0, -585432.0, 4019876.0
+    h["SPEC_RP"] = 1500.0
+    fits.PrimaryHDU(flux.astype(np.float32), header=h).writeto(path, overwrite=True)
+    return Path(path)
+
+
+def small_night(folder, count=3):
+    """``count`` good spectra plus an empty file, a truncated FITS file and a non-spectrum."""
+    folder.mkdir(parents=True, exist_ok=True)
+    good = [write_spectrum(folder / f"star_{i:02d}.fits", name=f"Star {i}", seed=i, rv=20.0 * i)
+            for i in range(count)]
+    (folder / "empty.fits").write_bytes(b"")
+    data = good[0].read_bytes()
+    (folder / "truncated.fits").write_bytes(data[: len(data) // 2 + 5])
+    (folder / "garbage.txt").write_text("this is not a spectrum\nat all\n")
+    return folder
+
+
+@pytest.fixture
+def fixed_code(monkeypatch):
+    """Freeze the code fingerprint: others editing specan meanwhile must not look like a code change."""
+    monkeypatch.setattr(pipeline, "code_fingerprint", lambda: "test")
+
+
+def run_cli(*args):
+    """Run ``specan`` in this process; return its exit status."""
+    try:
+        return cli_main(list(map(str, args)))
+    except SystemExit as exc:
+        return exc.code
+
+
+# ----------------------------------------------------------------------------- inputs
+
+
+def test_collect_inputs_expands_folders_globs_and_keeps_missing(tmp_path):
+    night = small_night(tmp_path / "night", count=2)
+    (night / "notes.md").write_text("observing log")
+    (night / "truth.ecsv").write_text("# %ECSV 1.0\n")
+    (night / ".hidden.fits").write_bytes(b"")
+    got = pipeline.collect_inputs([night, str(night / "star_00.fits"), str(tmp_path / "nope.fits"),
+                                   str(night / "star_*.fits"), str(tmp_path / "none_*.fits")])
+    names = [Path(p).name for p in got]
+    # folder: spectrum suffixes only, sorted, hidden files skipped; each file once
+    assert names[:5] == ["empty.fits", "garbage.txt", "star_00.fits", "star_01.fits", "truncated.fits"]
+    # a missing file and a glob matching nothing are kept, so they become error rows
+    assert names[5:] == ["nope.fits", "none_*.fits"]
+
+
+def test_safe_stem_is_plain_ascii():
+    assert pipeline.safe_stem("../../etc/pass wd.fits") == "pass_wd"
+    assert pipeline.safe_stem("a<b>&c 'd'.txt") == "a_b_c_d"
+    assert pipeline.safe_stem("....fits") == "spectrum"
+
+
+# ----------------------------------------------------------------------------- one row per input
+
+
+def test_run_one_row_per_input_errors_with_reasons(tmp_path, fixed_code):
+    night = small_night(tmp_path / "night")
+    out = tmp_path / "out"
+    missing = tmp_path / "missing.fits"
+    status = run_cli("run", night, missing, "--out", out, *BASIC_CLI)
+    cat = Table.read(out / "catalogue.ecsv")
+    assert len(cat) == 7 and len(set(cat["file"])) == 7
+    by_name = {Path(f).name: row for f, row in zip(cat["file"], cat)}
+    bad = ("empty.fits", "truncated.fits", "garbage.txt", "missing.fits")
+    for name in bad:
+        assert by_name[name]["status"] == "error", name
+        assert str(by_name[name]["reason"]).startswith("read: "), by_name[name]["reason"]
+    assert "truncated" in str(by_name["truncated.fits"]["reason"])
+    assert "no such file" in str(by_name["missing.fits"]["reason"])
+    for i in range(3):
+        row = by_name[f"star_{i:02d}.fits"]
+        assert row["status"] in ("ok", "partial")
+        assert row["object"] == f"Star {i}"
+        assert str(row["stages_run"]).startswith("read")
+        assert (out / row["plot"]).is_file() and (out / row["thumbnail"]).is_file()
+    # exit status = number of failed inputs
+    assert status == 4
+    # units come with the columns
+    assert cat["ra"].unit == "deg" and cat["mjd_mid"].unit == "d" and cat["exptime"].unit == "s"
+    assert (out / "report.html").is_file() and (out / "night_diagram.png").is_file()
+
+
+def test_stage_that_raises_becomes_error_row(tmp_path, fixed_code, monkeypatch):
+    night = tmp_path / "night"
+    night.mkdir()
+    for i in range(2):
+        write_spectrum(night / f"s{i}.fits", name=f"S{i}", seed=i)
+    real = pipeline._stage_function
+
+    def patched(name):
+        stage = real(name)
+        if name != "prepare":
+            return stage
+
+        def prepare_with_bug(spectrum):
+            if Path(get_info(spectrum).path).name == "s1.fits":
+                raise RuntimeError("simulated bug")
+            return stage(spectrum)
+        return prepare_with_bug
+
+    monkeypatch.setattr(pipeline, "_stage_function", patched)
+    summary = pipeline.run([night], tmp_path / "out", plots=False, stages=BASIC)
+    rows = {Path(f).name: r for f, r in zip(summary.catalogue["file"], summary.catalogue)}
+    assert rows["s1.fits"]["status"] == "error"
+    assert "prepare: internal error RuntimeError: simulated bug" in rows["s1.fits"]["reason"]
+    assert rows["s0.fits"]["status"] in ("ok", "partial")
+    assert "prepare" in rows["s0.fits"]["stages_run"] and "prepare" not in rows["s1.fits"]["stages_run"]
+    assert summary.failed == 1
+
+
+def test_outputs_stay_inside_out_dir_whatever_names_contain(tmp_path, fixed_code):
+    night = tmp_path / "night"
+    night.mkdir()
+    write_spectrum(night / "a b;$(x).fits", name="../../../../tmp/evil", seed=1)
+    write_spectrum(night / "..fits", name="/etc/passwd", seed=2)
+    write_spectrum(night / "c.fits", name="..\\..\\windows <b>", seed=3)
+    out = tmp_path / "out"
+    before = set(tmp_path.parent.iterdir())
+    pipeline.run([night], out, stages=BASIC)
+    assert set(tmp_path.parent.iterdir()) == before
+    for p in out.rglob("*"):
+        assert p.resolve().is_relative_to(out.resolve())
+        assert not p.name.startswith("."), p  # no temporary files left behind
+    plots = sorted(p.name for p in (out / "plots").iterdir())
+    assert all(set(n) <= set("abcdefghijklmnopqrstuvwxyzABCDEFGHIJKLMNOPQRSTUVWXYZ0123456789._-") for n in plots)
+
+
+def test_catalogue_formats_read_back(tmp_path, fixed_code):
+    night = small_night(tmp_path / "night", count=2)
+    out = tmp_path / "out"
+    run_cli("run", night, "--out", out, "--format", "ecsv,csv,fits,votable", "--no-plots", *BASIC_CLI)
+    ref = Table.read(out / "catalogue.ecsv")
+    for name, fmt in (("catalogue.csv", "ascii.csv"), ("catalogue.fits", "fits"), ("catalogue.vot", "votable")):
+        t = Table.read(out / name, format=fmt)
+        assert len(t) == len(ref), name
+        assert [str(x) for x in t["file"]] == [str(x) for x in ref["file"]], name
+        assert [str(x) for x in t["status"]] == [str(x) for x in ref["status"]], name
+        if fmt != "ascii.csv":  # CSV carries no units; the others do
+            assert t["ra"].unit == "deg" and t["exptime"].unit == "s", name
+        ok = np.asarray(ref["status"] != "error")
+        assert np.allclose(np.asarray(t["ra"], float)[ok], np.asarray(ref["ra"], float)[ok]), name
+
+
+# ----------------------------------------------------------------------------- reruns
+
+
+def test_rerun_skips_current_inputs_unless_forced_or_changed(tmp_path, fixed_code):
+    night = tmp_path / "night"
+    night.mkdir()
+    for i in range(3):
+        write_spectrum(night / f"s{i}.fits", name=f"S{i}", seed=i)
+    out = tmp_path / "out"
+    first = pipeline.run([night], out, plots=False, stages=BASIC)
+    assert first.reused == 0
+    records = {p.name: p.stat().st_mtime_ns for p in (out / "records").iterdir()}
+    second = pipeline.run([night], out, plots=False, stages=BASIC)
+    assert second.reused == 3
+    assert {p.name: p.stat().st_mtime_ns for p in (out / "records").iterdir()} == records
+    assert second.catalogue["file"].tolist() == first.catalogue["file"].tolist()
+
+    write_spectrum(night / "s1.fits", name="S1 changed", seed=11)  # new content
+    third = pipeline.run([night], out, plots=False, stages=BASIC)
+    assert third.reused == 2
+    assert "S1 changed" in third.catalogue["object"].tolist()
+
+    assert pipeline.run([night], out, plots=False, stages=BASIC, overrides={"resolving_power": 900.0}).reused == 0
+    assert pipeline.run([night], out, plots=False, stages=BASIC, overrides={"resolving_power": 900.0}).reused == 3
+    forced = pipeline.run([night], out, plots=False, stages=BASIC, overrides={"resolving_power": 900.0}, force=True)
+    assert forced.reused == 0
+
+
+def _read_rows(out):
+    cat = Table.read(out / "catalogue.ecsv")
+    return cat, [str(f) for f in cat["file"]]
+
+
+@pytest.mark.slow
+@pytest.mark.parametrize("sig", [signal.SIGTERM, signal.SIGKILL])
+def test_killed_run_then_rerun_gives_complete_catalogue(tmp_path, sig):
+    night = tmp_path / "night"
+    night.mkdir()
+    n = 8
+    for i in range(n):
+        write_spectrum(night / f"s{i}.fits", name=f"S{i}", seed=i, n=800)
+    out = tmp_path / "out"
+    cmd = [sys.executable, "-m", "specan", "run", str(night), "--out", str(out), "--no-plots", *BASIC_CLI]
+    proc = subprocess.Popen(cmd, cwd=ROOT, stdout=subprocess.PIPE, stderr=subprocess.PIPE)
+    deadline = time.time() + 120
+    while time.time() < deadline:
+        if (out / "records").is_dir() and len(list((out / "records").glob("*.json"))) >= 2:
+            break
+        if proc.poll() is not None:
+            break
+        time.sleep(0.05)
+    assert proc.poll() is None, "run finished before it could be interrupted"
+    proc.send_signal(sig)
+    proc.communicate(timeout=60)
+    done = len(list((out / "records").glob("*.json")))
+    assert 2 <= done < n
+    if sig == signal.SIGTERM:
+        # stopped cleanly: the catalogue is there, complete, with the unfinished inputs marked
+        assert proc.returncode == 130
+        cat, files = _read_rows(out)
+        assert len(files) == n == len(set(files))
+        assert (cat["status"] == "not_run").sum() == n - done
+    # no temporary files left behind as results
+    assert all(json.loads(p.read_text())["values"]["file"] for p in (out / "records").glob("*.json"))
+
+    code_before = pipeline.code_fingerprint()
+    rerun = subprocess.run(cmd, cwd=ROOT, capture_output=True, text=True, timeout=300)
+    assert rerun.returncode == 0, rerun.stderr
+    cat, files = _read_rows(out)
+    assert len(files) == n == len(set(files))
+    assert sorted(Path(f).name for f in files) == sorted(f"s{i}.fits" for i in range(n))
+    assert set(cat["status"]) <= {"ok", "partial"}
+    if pipeline.code_fingerprint() == code_before:  # others may edit specan while this runs
+        assert f"{done} already current" in rerun.stdout, rerun.stdout
+
+
+# ----------------------------------------------------------------------------- parallel and distributed
+
+
+def _comparable(cat):
+    return {name: [None if np.ma.is_masked(v) else v for v in cat[name].tolist()] for name in cat.colnames}
+
+
+@pytest.mark.slow
+def test_jobs_and_dask_give_the_same_catalogue(tmp_path, fixed_code):
+    night = small_night(tmp_path / "night", count=2)
+    one = pipeline.run([night], tmp_path / "one", jobs=1, plots=False).catalogue
+    two = pipeline.run([night], tmp_path / "two", jobs=2, plots=False).catalogue
+
+    distributed = pytest.importorskip("distributed")
+    with distributed.LocalCluster(n_workers=2, processes=True, threads_per_worker=1,
+                                  dashboard_address=None) as cluster:
+        on_dask = pipeline.run([night], tmp_path / "dask", dask=cluster.scheduler_address, plots=False).catalogue
+    assert len(one) == 5
+    assert one.colnames == two.colnames == on_dask.colnames
+    ref, by_jobs, by_dask = _comparable(one), _comparable(two), _comparable(on_dask)
+    for name in one.colnames:
+        assert by_jobs[name] == ref[name], name
+        assert by_dask[name] == ref[name], name
+    for name in one.colnames:
+        assert one[name].unit == two[name].unit == on_dask[name].unit
