@@ -7,6 +7,7 @@ file, adding rows and passing the path. Every row names its ``source``.
 
 from __future__ import annotations
 
+from functools import lru_cache
 from importlib.resources import files
 from pathlib import Path
 
@@ -53,10 +54,16 @@ def list_path(name_or_path) -> Path:
     return Path(str(packaged))
 
 
+@lru_cache(maxsize=16)
+def _parse(path: str, mtime_ns: int) -> QTable:
+    """Parse an ECSV file once per (path, modification time): YAML headers are slow to read."""
+    return QTable.read(path, format="ascii.ecsv")
+
+
 def _read(name_or_path) -> QTable:
     path = list_path(name_or_path)
     try:
-        table = QTable.read(path, format="ascii.ecsv")
+        table = _parse(str(path.resolve()), path.stat().st_mtime_ns).copy()
     except Exception as exc:  # noqa: BLE001 - any parse failure is the user's file
         raise SpecanError(f"cannot read line list {path}: {exc}") from exc
     table.meta.setdefault("path", str(path))

@@ -36,7 +36,7 @@ from .errors import AnalysisError
 from .linelist import load_bands, load_linelist
 from .obsinfo import get_info
 
-__all__ = ["identify", "measure", "band_indices", "cayrel_error", "doppler_factor"]
+__all__ = ["identify", "measure", "band_indices", "analyse", "cayrel_error", "doppler_factor"]
 
 C_KMS = 299792.458  # speed of light, km/s (SI definition)
 GAUSS_FWHM = 2.0 * np.sqrt(2.0 * np.log(2.0))  # FWHM / sigma of a Gaussian
@@ -559,6 +559,27 @@ def _profiles(x, centres, shift, sigma, gamma, profile):
     return dx, np.exp(-0.5 * (dx / sigma) ** 2) / (sigma * np.sqrt(2 * np.pi))
 
 
+def _voigt_and_derivatives(dx, sigma, gamma):
+    """Voigt profile and its derivatives in x, sigma and gamma via the Faddeeva function.
+
+    V = Re w(z) / (sigma sqrt(2 pi)), z = (x + i gamma) / (sigma sqrt 2), and
+    w'(z) = -2 z w(z) + 2i / sqrt(pi) (Abramowitz & Stegun 7.1.20), so one call of
+    ``scipy.special.wofz`` gives the analytic Jacobian of a Voigt fit.
+    """
+    from scipy.special import wofz
+
+    s2 = sigma * np.sqrt(2.0)
+    norm = sigma * np.sqrt(2.0 * np.pi)
+    z = (dx + 1j * gamma) / s2
+    w = wofz(z)
+    dw = -2.0 * z * w + 2j / np.sqrt(np.pi)
+    v = w.real / norm
+    d_x = dw.real / (s2 * norm)
+    d_gamma = -dw.imag / (s2 * norm)
+    d_sigma = -(dw * z).real / (sigma * norm) - v / sigma
+    return v, d_x, d_sigma, d_gamma
+
+
 def _fit(data, lo, hi, cont, centres, profile, max_shift, sig_inst, sign=1.0):
     """Least-squares profile fit over pixels lo..hi; component 0 is the target.
 
@@ -609,8 +630,19 @@ def _fit(data, lo, hi, cont, centres, profile, max_shift, sig_inst, sign=1.0):
         j[:, k:] = -(cont[:, None] * prof.T)
         return j * wts[:, None]
 
+    def jac_voigt(p):
+        dx = x[None, :] - (centres[:, None] + p[0])
+        v, d_x, d_s, d_g = _voigt_and_derivatives(dx, p[1], p[2])
+        ws = p[k:][:, None]
+        j = np.empty((x.size, p.size))
+        j[:, 0] = cont * (ws * d_x).sum(axis=0)
+        j[:, 1] = -cont * (ws * d_s).sum(axis=0)
+        j[:, 2] = -cont * (ws * d_g).sum(axis=0)
+        j[:, k:] = -(cont[:, None] * v.T)
+        return j * wts[:, None]
+
     try:
-        res = least_squares(resid, p0, jac="2-point" if voigt else jac, bounds=(lb, ub),
+        res = least_squares(resid, p0, jac=jac_voigt if voigt else jac, bounds=(lb, ub),
                             x_scale="jac", max_nfev=100, ftol=1e-6, xtol=1e-6, gtol=1e-8)
     except (ValueError, FloatingPointError):
         return None
@@ -856,6 +888,8 @@ def measure(spectrum, linelist=None, rv=0 * u.km / u.s, resolving_power=None, pr
         else:
             method[i] = "integration"
             cols["ew"][i], cols["ew_err"][i] = ew_int, ew_int_err
+        # significant in the matched filter AND an equivalent width clear of its error
+        detected[i] = detected[i] and abs(cols["ew"][i]) > 2.0 * cols["ew_err"][i]
         fwhm_c = cols["fwhm"][i] if np.isfinite(cols["fwhm"][i]) else fw
         noise = np.median(sig_sel[np.isfinite(sig_sel)]) if np.isfinite(sig_sel).any() else np.nan
         cols["ew_err_cayrel"][i] = cayrel_error(fwhm_c, data.dx[ic], 1.0 / noise)
@@ -1038,3 +1072,28 @@ def band_indices(spectrum, bands=None, rv=0 * u.km / u.s):
     out.meta["rv"] = u.Quantity(rv, u.km / u.s)
     out.meta["medium"] = info.medium
     return out
+
+
+def analyse(spectrum, linelist=None, bands=None, rv=0 * u.km / u.s, resolving_power=None, **options):
+    """Lines and band indices of one spectrum, preparing it once.
+
+    Parameters
+    ----------
+    spectrum : specutils.Spectrum
+    linelist, bands : str, path or QTable, optional
+        Line list for :func:`measure`, band definitions for :func:`band_indices`.
+    rv : Quantity or None
+        Radial velocity (``None``: estimated by :func:`measure`; the indices use it too).
+    resolving_power : float, optional
+    **options
+        Passed to :func:`measure`.
+
+    Returns
+    -------
+    dict
+        ``{"lines": QTable from measure, "indices": QTable from band_indices}``.
+    """
+    spec = _normalised(spectrum)
+    table = measure(spec, linelist, rv=rv, resolving_power=resolving_power, **options)
+    indices = band_indices(spec, bands, rv=table.meta["rv"])
+    return {"lines": table, "indices": indices}

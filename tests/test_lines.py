@@ -343,3 +343,87 @@ def test_default_bands_on_solar_model(kurucz_sun):
     assert 2.0 < row["Mgb"][0] < 6.0
     assert abs(row["TiO2"][0]) < 0.05
     assert np.isfinite(row["NaD"][0])
+
+
+# ----------------------------------------------------------------------------- reference library
+
+
+@pytest.fixture(scope="module")
+def jhc_balmer(jhc1984, jhc_catalog):
+    """(type code, MK type, mean EW of H beta, H gamma, H delta, identify table or None) per star."""
+    import specan
+    from specan.mktypes import sptype_to_code
+    from specan.prepare import prepare
+
+    balmer = lines.load_linelist()
+    balmer = balmer[np.isin(balmer["id"], ["H_beta", "H_gamma", "H_delta"])]
+    out = []
+    for row in jhc_catalog:
+        spec = prepare(specan.read(jhc1984 / row["file"]))
+        m = lines.measure(spec, balmer)
+        ident = lines.identify(spec) if str(row["sptype"]).startswith("A") else None
+        out.append((sptype_to_code(row["sptype"]), str(row["mk"]), float(np.nanmean(m["ew"].value)), ident))
+    return out
+
+
+@pytest.mark.reference
+@pytest.mark.slow
+def test_balmer_lines_identified_in_every_a_star(jhc_balmer):
+    a_stars = [r for r in jhc_balmer if r[3] is not None]
+    assert len(a_stars) >= 10
+    for code, mk, _, ident in a_stars:
+        for lid in ("H_alpha", "H_beta", "H_gamma"):
+            row = ident[list(ident["id"]).index(lid)]
+            assert row["status"] == "identified", (mk, lid)
+            assert not row["emission"], (mk, lid)
+
+
+@pytest.mark.reference
+@pytest.mark.slow
+def test_balmer_strength_peaks_between_late_b_and_early_f(jhc_balmer):
+    # common practice: hydrogen lines are strongest near A0-A2 (Balmer maximum)
+    groups = {"O": (0, 10), "early B": (10, 15), "late B": (15, 20), "A": (20, 30), "early F": (30, 35),
+              "late F": (35, 40), "G": (40, 50), "K": (50, 60), "M": (60, 70)}
+    medians = {}
+    for name, (lo, hi) in groups.items():
+        ews = [ew for code, _, ew, _ in jhc_balmer if lo <= code < hi and np.isfinite(ew)]
+        if ews:
+            medians[name] = float(np.median(ews))
+    peak = max(medians, key=medians.get)
+    assert peak in ("late B", "A", "early F"), medians
+    # and clearly above the hot and cool ends
+    for far in ("O", "early B", "G"):
+        assert medians[peak] > 1.5 * medians[far], medians
+
+
+# ----------------------------------------------------------------------------- command line
+
+
+def test_cli_lines_json_and_table(tmp_path):
+    import json
+
+    from click.testing import CliRunner
+
+    from specan.cli import cli
+
+    spec, used = _synthetic()
+    wave = spec.spectral_axis.to_value(u.AA)
+    path = tmp_path / "star.txt"
+    # a plain two-column text file as an observer would have it (wavelength in Angstrom)
+    np.savetxt(path, np.column_stack([wave, 1000.0 * spec.flux.value]),
+               header="Wavelength [Angstrom]    Flux", fmt="%.4f")
+    runner = CliRunner()
+    res = runner.invoke(cli, ["lines", str(path), "--json", "--resolving-power", "2500"])
+    assert res.exit_code == 0, res.output
+    d = json.loads(res.output.strip().splitlines()[-1])
+    assert d["file"] == str(path)
+    row = {r["id"]: r for r in d["lines"]}["NaI_D2"]
+    for key in ("id", "species", "wave_air_aa", "wave_vac_aa", "ew_aa", "ew_err_aa", "fwhm_aa", "depth",
+                "method", "blend", "detected"):
+        assert key in row
+    assert row["detected"] and row["ew_aa"] == pytest.approx(0.4, rel=0.15)
+    assert "NaD" in d["indices"] and set(d["indices"]["NaD"]) >= {"value", "err"}
+    res = runner.invoke(cli, ["lines", str(path), "--resolving-power", "2500"])
+    assert res.exit_code == 0 and "NaI_D2" in res.output and "indices:" in res.output
+    missing = runner.invoke(cli, ["lines", str(tmp_path / "absent.fits"), "--json"])
+    assert missing.exit_code != 0

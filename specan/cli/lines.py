@@ -1,0 +1,101 @@
+"""``specan lines``: equivalent widths and band indices of each file (thin layer over specan.lines)."""
+
+import click
+
+from ._common import echo_json, exit_with_failures, for_each_file, overrides_from, read_options
+
+
+def _aa(q):
+    return float(q.to_value("Angstrom"))
+
+
+def lines_file(path, overrides, options):
+    """Read one file, measure its lines and indices; return the dict the command prints."""
+    from .. import read
+    from ..lines import analyse
+
+    res = analyse(read(path, **overrides), **options)
+    table, indices = res["lines"], res["indices"]
+    rows = []
+    for r in table:
+        rows.append({
+            "id": str(r["id"]), "species": str(r["species"]),
+            "wave_air_aa": _aa(r["wave_air"]), "wave_vac_aa": _aa(r["wave_vac"]),
+            "wave_obs_aa": _aa(r["wave_obs"]),
+            "ew_aa": _aa(r["ew"]), "ew_err_aa": _aa(r["ew_err"]),
+            "ew_err_cayrel_aa": _aa(r["ew_err_cayrel"]), "ew_fit_aa": _aa(r["ew_fit"]),
+            "fwhm_aa": _aa(r["fwhm"]), "depth": float(r["depth"]), "method": str(r["method"]),
+            "blend": [b for b in str(r["blend"]).split(",") if b],
+            "detected": bool(r["detected"]), "emission": bool(r["emission"]),
+        })
+    idx = {str(r["name"]): {"value": float(r["value"]), "err": float(r["err"]), "unit": str(r["unit"])}
+           for r in indices}
+    meta = table.meta
+    return {"file": str(path), "rv_kms": float(meta["rv"].to_value("km/s")),
+            "resolving_power": meta["resolving_power"],
+            "resolving_power_source": meta["resolving_power_source"], "medium": meta["medium"],
+            "lines": rows, "indices": idx}
+
+
+def _fmt(v, spec):
+    return "nan" if v is None or v != v else format(v, spec)
+
+
+@click.command("lines")
+@click.argument("files", nargs=-1, required=True, type=click.Path())
+@read_options
+@click.option("--list", "linelist", default=None,
+              help="Line list: 'stellar' (default) or an ECSV file (see linelists/README.md).")
+@click.option("--bands", default=None, help="Band-index definitions: 'bands' (default) or an ECSV file.")
+@click.option("--rv", default="0", show_default=True,
+              help="Radial velocity in km/s used to place the lines, or 'auto' to estimate it.")
+@click.option("--profile", type=click.Choice(["auto", "gauss", "voigt"]), default="auto", show_default=True,
+              help="Profile fitted to lines (auto: Voigt for hydrogen and very strong lines).")
+@click.option("--all", "show_all", is_flag=True, help="Also list lines that were not detected.")
+@click.option("--json", "as_json", is_flag=True, help="One JSON object per line per file.")
+@click.pass_context
+def command(ctx, files, linelist, bands, rv, profile, show_all, as_json, **kwargs):
+    """Equivalent widths, widths and band indices of each spectrum FILE."""
+    import astropy.units as u
+
+    if rv.strip().lower() == "auto":
+        rv_q = None
+    else:
+        try:
+            rv_q = float(rv) * u.km / u.s
+        except ValueError:
+            raise click.BadParameter(f"{rv!r} is neither a number (km/s) nor 'auto'", param_hint="--rv")
+    overrides = overrides_from(kwargs)
+    options = {"linelist": linelist, "bands": bands, "rv": rv_q, "profile": profile}
+
+    def show(path, d):
+        if as_json:
+            echo_json(d)
+            return
+        click.echo(f"{d['file']}: rv {d['rv_kms']:+.1f} km/s, R {d['resolving_power']:.0f} "
+                   f"({d['resolving_power_source']}), {d['medium']} wavelengths")
+        click.echo(f"  {'line':<12} {'lab':>9} {'obs':>9} {'EW/A':>8} {'err':>7} {'FWHM':>6} "
+                   f"{'depth':>6}  method / notes")
+        for r in d["lines"]:
+            if not (r["detected"] or show_all):
+                continue
+            lab = r["wave_vac_aa"] if d["medium"] == "vacuum" else r["wave_air_aa"]
+            notes = [r["method"]]
+            if r["emission"]:
+                notes.append("EMISSION")
+            if not r["detected"]:
+                notes.append("not detected")
+            if r["blend"]:
+                notes.append("blend: " + ",".join(r["blend"]))
+            click.echo(f"  {r['id']:<12} {lab:9.2f} {_fmt(r['wave_obs_aa'], '9.2f')} "
+                       f"{_fmt(r['ew_aa'], '8.3f')} {_fmt(r['ew_err_aa'], '7.3f')} "
+                       f"{_fmt(r['fwhm_aa'], '6.2f')} {_fmt(r['depth'], '6.3f')}  {'; '.join(notes)}")
+        shown = {k: v for k, v in d["indices"].items() if v["value"] == v["value"]}
+        if shown:
+            click.echo("  indices: " + ", ".join(
+                f"{k} {v['value']:.3f}+-{v['err']:.3f}{(' ' + v['unit']) if v['unit'] else ''}"
+                for k, v in shown.items()))
+
+    failures = for_each_file(files, lambda p: lines_file(p, overrides, options), show,
+                             as_json=as_json, debug=ctx.obj.get("debug", False) if ctx.obj else False)
+    exit_with_failures(failures)
