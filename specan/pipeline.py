@@ -104,7 +104,8 @@ CORE_COLUMNS = (
                      "(see reason); error: unreadable input or a stage failed unexpectedly; "
                      "not_run: the run was interrupted before this input"),
     ("reason", None, "why a stage failed or declined, one clause per stage"),
-    ("flags", None, "comma-separated flags raised by the stages"),
+    ("flags", None, "comma-separated flags raised by the stages, plus emission_lines (the lines "
+                    "stage detected lines in emission) and low_snr (S/N per pixel below LOW_SNR)"),
     ("stages_run", None, "stages that produced a result for this input"),
     ("mjd_mid", "d", "mid-exposure MJD (UTC)"),
     ("exptime", "s", "exposure time"),
@@ -388,6 +389,14 @@ def _lines_columns(rec, table):
     if "emission" in cols:
         emission = np.asarray(table["emission"], bool) & detected
         rec.set("n_emission", int(emission.sum()))
+        if emission.any():
+            rec.add_flags(["emission_lines"])
+
+
+#: S/N per pixel below which a spectrum is flagged ``low_snr``: the classification
+#: criteria and line measurements become unreliable well before S/N 20 at R ~ 2000
+#: (common practice).
+LOW_SNR = 20.0
 
 
 def analyse_file(path, settings=None) -> dict:
@@ -465,7 +474,10 @@ def analyse_file(path, settings=None) -> dict:
     # The stages may add warnings to the carried metadata as they go.
     from .obsinfo import get_info
 
-    rec.warnings.extend(str(w) for w in get_info(spectrum).warnings)
+    info = get_info(spectrum)
+    rec.warnings.extend(str(w) for w in info.warnings)
+    if info.snr is not None and np.isfinite(info.snr) and info.snr < LOW_SNR:
+        rec.add_flags(["low_snr"])
 
     plots = {}
     if settings.get("plots", True):
