@@ -29,7 +29,7 @@ from astropy.nddata import StdDevUncertainty
 from astropy.table import QTable
 from scipy.ndimage import gaussian_filter1d
 from scipy.optimize import least_squares
-from scipy.signal import find_peaks
+from scipy.signal import find_peaks, peak_prominences
 from scipy.special import voigt_profile
 
 from .errors import AnalysisError
@@ -43,6 +43,10 @@ GAUSS_FWHM = 2.0 * np.sqrt(2.0 * np.log(2.0))  # FWHM / sigma of a Gaussian
 
 # Matched-filter significance above which a feature counts as detected (common practice: 3-5 sigma).
 DETECT_SIGMA = 4.0
+# Smallest depth (below the surrounding crests, or the local continuum) counted as a line:
+# continuum ripples and flat-field residuals of a few 0.1% are significant at very high
+# S/N but are not lines (common practice: ~1% systematic floor at these resolutions).
+MIN_DEPTH = 0.01
 # Pixels per resolution element assumed when neither the caller nor the file gives R and the
 # spectrum has too few clean lines to measure it (common practice: ~2-3 pixels per FWHM).
 DEFAULT_PIXELS_PER_FWHM = 2.5
@@ -70,8 +74,8 @@ def doppler_factor(rv):
 def cayrel_error(fwhm, pixel, snr):
     """Equivalent-width error of a Gaussian line from Cayrel (1988).
 
-    ``sigma_EW = 1.5 * sqrt(FWHM * pixel) / (S/N)`` (Cayrel de Strobel & Spite 1988,
-    IAU Symp. 132, 345; the form most quoted since; continuum placement not included).
+    ``sigma_EW = 1.5 * sqrt(FWHM * pixel) / (S/N)`` (Cayrel 1988, IAU Symp. 132, 345;
+    from memory; continuum placement not included).
 
     Parameters
     ----------
@@ -271,13 +275,16 @@ def _lab_column(data):
     return "wave_vac" if data.medium == "vacuum" else "wave_air"
 
 
-def _features(data, detect_sigma):
+def _features(data, detect_sigma, min_depth=MIN_DEPTH):
     """Absorption and emission features.
 
     Peaks of the matched-filter significance, plus local extrema of the flux itself
     that stand out of their surroundings by 3 sigma (prominence) where the matched
     filter is significant: at low resolution neighbouring lines merge into one
     broad filter peak, and the flux minima still separate them (for deblending).
+    Every feature must also stand out of the smoothed flux around it by
+    ``min_depth`` (prominence): at very high S/N, continuum ripples of a few tenths
+    of a per cent are significant but are not lines.
     """
     out = []
     noise = float(np.median(data.sigma[data.good]))
@@ -290,7 +297,20 @@ def _features(data, detect_sigma):
         if raw.size and peaks.size:
             near = np.abs(data.wave[raw][:, None] - data.wave[peaks][None, :]) < 0.5 * fwp[None, :]
             raw = raw[~near.any(axis=1)]
-        for p in np.concatenate([peaks, raw]).astype(int):
+        cand = np.concatenate([peaks, raw]).astype(int)
+        if cand.size:
+            # prominence in the smoothed flux, at the extremum nearest each candidate
+            sm = -sign * data.smooth
+            ext, _ = find_peaks(sm)
+            if ext.size:
+                j = np.clip(np.searchsorted(ext, cand), 1, max(ext.size - 1, 1))
+                left, right = ext[np.maximum(j - 1, 0)], ext[np.minimum(j, ext.size - 1)]
+                nearest = np.where(np.abs(left - cand) <= np.abs(right - cand), left, right)
+                prom = peak_prominences(sm, nearest)[0]
+                cand = cand[prom >= max(min_depth, 0.0)]
+            else:
+                cand = cand[:0]
+        for p in cand:
             # parabolic refinement of the peak position (in pixels)
             frac = 0.0
             if 0 < p < s.size - 1:
@@ -360,7 +380,7 @@ def _prepare_list(linelist, kinds):
 
 
 def identify(spectrum, linelist=None, rv=0 * u.km / u.s, resolving_power=None, window=None,
-             detect_sigma=DETECT_SIGMA, strong_depth=0.1):
+             detect_sigma=DETECT_SIGMA, strong_depth=0.1, min_depth=MIN_DEPTH):
     """Find features and match them to a line list.
 
     A Gaussian matched filter at the instrument's resolution gives, at each pixel,
@@ -388,6 +408,8 @@ def identify(spectrum, linelist=None, rv=0 * u.km / u.s, resolving_power=None, w
         Matched-filter significance for a feature.
     strong_depth : float
         Unmatched features at least this deep are reported as unidentified.
+    min_depth : float
+        Features must stand this far out of the smoothed flux around them.
 
     Returns
     -------
@@ -417,7 +439,7 @@ def identify(spectrum, linelist=None, rv=0 * u.km / u.s, resolving_power=None, w
         win_kms = np.full(pred.shape, u.Quantity(window, u.km / u.s).value)
     win = pred * win_kms / C_KMS
 
-    pos, sig, depth, emis = _features(data, detect_sigma)
+    pos, sig, depth, emis = _features(data, detect_sigma, min_depth)
     ids = [str(i) for i in t["id"]]
     n = len(t)
     wave_obs = np.full(n, np.nan)
@@ -740,7 +762,7 @@ def _fit_gauss(data, lo, hi, cont, centres, max_shift, sig_line, sign=1.0):
 
 
 def measure(spectrum, linelist=None, rv=0 * u.km / u.s, resolving_power=None, profile="auto",
-            window=None, detect_sigma=DETECT_SIGMA, kinds=("atomic",)):
+            window=None, detect_sigma=DETECT_SIGMA, kinds=("atomic",), min_depth=MIN_DEPTH):
     """Measure every listed line the spectrum covers.
 
     Per line: the centre is the matched feature (see :func:`identify`) or the
@@ -774,6 +796,8 @@ def measure(spectrum, linelist=None, rv=0 * u.km / u.s, resolving_power=None, pr
     kinds : sequence of str
         Line-list ``kind`` values to measure (band heads are measured by
         :func:`band_indices`).
+    min_depth : float
+        Features must stand this far out of the smoothed flux around them.
 
     Returns
     -------
@@ -805,7 +829,7 @@ def measure(spectrum, linelist=None, rv=0 * u.km / u.s, resolving_power=None, pr
                else np.full(n, u.Quantity(window, u.km / u.s).value))
     win = pred * win_kms / C_KMS
     blend = _blends(pred, ids, fwhm_at) if n else []
-    pos, fsig, _, femis = _features(data, detect_sigma)
+    pos, fsig, _, femis = _features(data, detect_sigma, min_depth)
     is_h = np.array([s == "H I" for s in species], bool)
 
     cols = {k: np.full(n, np.nan) for k in ("wave_obs", "ew", "ew_err", "ew_err_cayrel", "ew_int",
@@ -817,13 +841,13 @@ def measure(spectrum, linelist=None, rv=0 * u.km / u.s, resolving_power=None, pr
     emission = np.zeros(n, bool)
 
     for i in range(n):
-        centre, max_shift = pred[i], win[i]
+        centre, max_shift, matched = pred[i], win[i], False
         if pos.size:
             k = int(np.argmin(np.abs(pos - pred[i])))
             if abs(pos[k] - pred[i]) <= win[i]:
                 # a matched feature fixes the centre; the fit may only refine it (a wide
                 # shift would let blended components trade places)
-                centre, max_shift = pos[k], 0.5 * fwhm_at[i]
+                centre, max_shift, matched = pos[k], 0.5 * fwhm_at[i], True
         ic = data.index(centre)
         if ic > 0 and abs(data.wave[ic - 1] - centre) < abs(data.wave[ic] - centre):
             ic -= 1
@@ -835,10 +859,20 @@ def measure(spectrum, linelist=None, rv=0 * u.km / u.s, resolving_power=None, pr
         s_c = float(data.signif[ic])
         sign = -1.0 if s_c < -detect_sigma else 1.0
         cols["significance"][i] = s_c
-        detected[i] = sign * s_c >= detect_sigma
+        # a line is detected where identification found a feature for it (significant in
+        # the matched filter and standing out of its surroundings by min_depth)
+        detected[i] = matched and sign * s_c >= detect_sigma
         emission[i] = sign < 0
         max_half = max(60.0 * fw, 40.0) if is_h[i] else 25.0 * fw
-        lo, hi, levels, cut = _window(data, ic, sign, fw, max_half)
+        if matched:
+            lo, hi, levels, cut = _window(data, ic, sign, fw, max_half)
+        else:
+            # nothing found here: integrate +-1 line width against the local level around it
+            # (an upper limit; inside another line's wing that wing is the continuum)
+            lo = int(np.searchsorted(data.wave, centre - fw))
+            hi = int(np.clip(np.searchsorted(data.wave, centre + fw), lo + 1, data.wave.size - 1))
+            lo = min(lo, hi - 1)
+            levels, cut = (float(data.smooth[lo]), float(data.smooth[hi])), False
         sel = slice(lo, hi + 1)
         cont = _local_continuum(data, lo, hi, levels)
         ew_int = float(np.sum((1.0 - data.flux[sel] / cont) * data.dx[sel]))
@@ -858,12 +892,15 @@ def measure(spectrum, linelist=None, rv=0 * u.km / u.s, resolving_power=None, pr
         inside = np.flatnonzero((pred >= data.wave[lo]) & (pred <= data.wave[hi]) & (is_h == is_h[i]))
         inside = [j for j in inside if j != i]
         shift = centre - pred[i]
-        centres = [centre] + [pred[j] + shift for j in inside]
+        centres = [centre]
+        # lines closer than 0.6 line widths cannot be told apart: they stay one component
+        # (the target's EW is then theirs together, and ``blend`` names them)
+        candidates = [pred[j] + shift for j in inside]
         if pos.size:
-            extra = pos[(pos >= data.wave[lo]) & (pos <= data.wave[hi]) & (femis == (sign < 0))]
-            for e in extra:
-                if min(abs(e - c) for c in centres) > 0.6 * fw:
-                    centres.append(e)
+            candidates += list(pos[(pos >= data.wave[lo]) & (pos <= data.wave[hi]) & (femis == (sign < 0))])
+        for c in candidates:
+            if min(abs(c - x) for x in centres) > 0.6 * fw:
+                centres.append(c)
         n_extra = len(centres) - 1
         centres = np.array(centres)
         # strong lines with damping wings: deep core and a window many widths wide

@@ -259,9 +259,14 @@ def test_measure_table_columns_and_units():
     assert set(m["method"]) <= {"integration", "gauss_fit", "voigt_fit", "multi_gauss_fit",
                                 "multi_voigt_fit", "masked", "none"}
     # undetected lines still carry an EW with an error (an upper limit)
+    # (lines more than two resolution elements (2 x 2 A) from any line put into the spectrum;
+    # closer ones integrate part of their neighbour's profile)
     weak = m[~m["detected"]]
     assert len(weak) > 0 and np.all(np.isfinite(weak["ew_err"]))
-    assert np.all(np.abs(weak["ew"]) < 5 * weak["ew_err"] + 0.02 * u.AA)
+    put = m["wave_air"][m["detected"]].to_value(u.AA)
+    far = np.array([np.min(np.abs(put - w)) > 4.0 for w in weak["wave_air"].to_value(u.AA)])
+    assert far.sum() > 20
+    assert np.all(np.abs(weak["ew"][far]) < 5 * weak["ew_err"][far] + 0.02 * u.AA)
 
 
 def test_unnormalised_input_is_prepared():
