@@ -432,3 +432,24 @@ def test_cli_lines_json_and_table(tmp_path):
     assert res.exit_code == 0 and "NaI_D2" in res.output and "indices:" in res.output
     missing = runner.invoke(cli, ["lines", str(tmp_path / "absent.fits"), "--json"])
     assert missing.exit_code != 0
+
+
+def test_masked_line_core_is_not_measured():
+    spec, _ = _synthetic()
+    wave = spec.spectral_axis.to_value(u.AA)
+    mask = np.abs(wave - 5889.95) < 2.0  # e.g. a cosmic-ray hit flagged by the reader
+    masked = Spectrum(spectral_axis=spec.spectral_axis, flux=spec.flux, uncertainty=spec.uncertainty,
+                      mask=mask, meta=spec.meta)
+    m = lines.measure(masked)
+    d2 = m[list(m["id"]).index("NaI_D2")]
+    assert d2["method"] == "masked" and not d2["detected"] and np.isnan(d2["ew"])
+    d1 = m[list(m["id"]).index("NaI_D1")]
+    assert d1["detected"] and d1["ew"].to_value(u.AA) == pytest.approx(0.4, rel=0.15)
+
+
+def test_user_line_list_path(tmp_path):
+    spec, _ = _synthetic()
+    path = tmp_path / "mine.ecsv"
+    one_line_list(5889.95, name="my_D2", species="Na I").write(path, format="ascii.ecsv")
+    m = lines.measure(spec, path)
+    assert list(m["id"]) == ["my_D2"] and m["detected"][0]
