@@ -128,10 +128,10 @@ def test_injection_recovery_kurucz(kurucz_model):
         for snr in (10, 30, 100, 200):
             for k, v in enumerate(np.linspace(-900, 900, 6) + rng.uniform(-20, 20, 6)):
                 s = _observe(kurucz_model, r, v, snr=snr, seed=int(1000 * r + 10 * snr + k))
-                res = velocity.measure(s, template=tmpl, barycentric=False)
+                res = velocity.measure(s, template=tmpl, barycentric=False, n_resample=20)
                 assert res["frame"] == "topocentric"
                 rows.append((r, snr, v, res["rv"].to_value(KMS), res["rv_err_mc"].to_value(KMS),
-                             res["rv_err_td"].to_value(KMS)))
+                             res["rv_err_td"].to_value(KMS), res["rv_err"].to_value(KMS)))
     a = np.array(rows)
     err = a[:, 3] - a[:, 2]
     for r in (1000.0, 1500.0, 2000.0):
@@ -144,10 +144,10 @@ def test_injection_recovery_kurucz(kurucz_model):
         # and at high S/N each star on its own is within 1% of a resolution element
         hi = sel & (a[:, 1] >= 100)
         assert np.all(np.abs(err[hi]) < 0.01 * resel + 3 * a[hi, 4])
-    pull_mc = err / a[:, 4]
-    pull_td = err / a[:, 5]
-    assert 0.8 <= np.std(pull_mc) <= 1.25, np.std(pull_mc)
-    assert 0.8 <= np.std(pull_td) <= 1.25, np.std(pull_td)
+    # the reported error and both estimates behind it (72 stars: the std of a unit pull is known to ~8%)
+    for col in (6, 4, 5):
+        pull = err / a[:, col]
+        assert 0.8 <= np.std(pull) <= 1.25, (col, np.std(pull))
 
 
 def test_scatter_within_cramer_rao(kurucz_model):
@@ -155,12 +155,25 @@ def test_scatter_within_cramer_rao(kurucz_model):
     for r, snr in ((2000.0, 30), (1000.0, 100)):
         tmpl = _rest_template(kurucz_model, r)
         v = 317.0
-        got = [velocity.measure(_observe(kurucz_model, r, v, snr=snr, seed=500 + i), template=tmpl,
+        got = [velocity.measure(_observe(kurucz_model, r, v, snr=snr, seed=int(r) + snr + i), template=tmpl,
                                 errors="td", barycentric=False)["rv"].to_value(KMS) for i in range(40)]
         scatter = np.std(got, ddof=1)
         bound = _crb(kurucz_model, r, v, snr)
         # an unbiased estimator cannot beat the bound; 40 trials know the scatter to ~11%
         assert 0.8 * bound < scatter < 1.3 * bound, (r, snr, scatter, bound)
+
+
+def test_errors_from_der_snr_without_error_array():
+    """No error array: the noise comes from DER_SNR (Stoehr et al. 2008); errors still calibrated."""
+    pulls = []
+    for i in range(24):
+        v = -600.0 + 50.0 * i
+        s = synth.spectrum("G8" if i % 2 else "K3", "V", resolving_power=2500, rv=v * KMS, snr=40, seed=70 + i)
+        s.uncertainty = None
+        res = velocity.measure(s, template=s.meta["synth"]["sptype"] + " V", n_resample=20)
+        assert any("DER_SNR" in n for n in res["notes"])
+        pulls.append((res["rv"].to_value(KMS) - v) / res["rv_err"].to_value(KMS))
+    assert 0.7 <= np.std(pulls) <= 1.35, np.std(pulls)
 
 
 def test_builtin_templates_on_the_kurucz_sun(kurucz_model):
@@ -494,3 +507,25 @@ def test_cli_json(tmp_path):
     assert lines[0]["frame"] == "barycentric" and lines[1]["frame"] == "topocentric"
     assert abs(lines[1]["rv_kms"] - 61.0) < 1.0
     assert "no_barycentric" in lines[1]["flags"] and lines[1]["bary_corr_kms"] is None
+
+
+@pytest.mark.reference
+def test_real_spectra_of_the_reference_library(jhc1984, jhc_catalog):
+    """Real, unnormalised JHC (1984) spectra: prepared, measured, sane.
+
+    The library's README (measured, not promised): line minima of B-F stars sit some tens of km/s
+    off their laboratory positions with a scatter of about 50 km/s, so no velocity truth here; a
+    wrong correlation peak would show up as hundreds of km/s.
+    """
+    import specan
+
+    picks = [row for row in jhc_catalog if row["lumclass"] in ("V", "III") and row["sptype"][0] in "BAFGK"]
+    got = []
+    for row in picks[:: max(1, len(picks) // 8)][:8]:
+        s = specan.read(jhc1984 / row["file"], resolving_power=1300)  # ~4.5 A FWHM at 5800 A (README)
+        res = velocity.measure(s, errors="td")
+        assert res["frame"] == "topocentric" and "no_barycentric" in res["flags"]
+        assert any("prepare" in n for n in res["notes"])
+        got.append(res["rv"].to_value(KMS))
+    assert np.all(np.abs(got) < 300), got
+    assert np.std(got) < 120, got
