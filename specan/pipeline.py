@@ -292,6 +292,10 @@ def _json_safe(value):
     return value
 
 
+_UNIT_SUFFIXES = (("_pc", "pc"), ("_k", "K"), ("_kms", "km / s"), ("_mas", "mas"), ("_masyr", "mas / yr"),
+                  ("_deg", "deg"), ("_mag", "mag"))
+
+
 class _Recorder:
     """Collects one input's results while the stages run."""
 
@@ -318,9 +322,13 @@ class _Recorder:
             if plain is None:
                 continue
             name = str(key)
+            unit = plain[1]
+            if unit is None and isinstance(plain[0], float):
+                # plain floats with their unit in the key name (physics: distance_pc, teff_k...)
+                unit = next((u for sfx, u in _UNIT_SUFFIXES if name.endswith(sfx)), None)
             if name in self.values or name in _CORE_NAMES:
                 name = f"{stage}_{name}"
-            self.set(name, plain[0], plain[1])
+            self.set(name, plain[0], unit)
 
     def add_flags(self, flags):
         if flags is None:
@@ -399,6 +407,29 @@ def _lines_columns(rec, table):
 LOW_SNR = 20.0
 
 
+_PHOTOMETRY_CACHE = {}
+
+
+def _photometry_row(path, name, rec):
+    """This object's row of the photometry file (loaded once per process), or None."""
+    if not path:
+        return None
+    try:
+        from .physics import load_photometry, photometry_for
+
+        key = (path, os.stat(path).st_mtime_ns)
+        if key not in _PHOTOMETRY_CACHE:
+            _PHOTOMETRY_CACHE.clear()
+            _PHOTOMETRY_CACHE[key] = load_photometry(path)
+        row = photometry_for(_PHOTOMETRY_CACHE[key], name)
+    except (OSError, SpecanError) as exc:
+        rec.warnings.append(f"photometry not used: {getattr(exc, 'reason', exc)}")
+        return None
+    if row is None:
+        rec.warnings.append(f"no photometry for {name!r} in {os.path.basename(path)}")
+    return row
+
+
 def analyse_file(path, settings=None) -> dict:
     """Run every available stage on one input and draw its plots.
 
@@ -411,9 +442,10 @@ def analyse_file(path, settings=None) -> dict:
     path : str
         Input file.
     settings : dict, optional
-        ``{"overrides": {...}, "plots": bool, "stages": [...]}``;
-        ``overrides`` go to ``specan.read``; ``stages`` (default all) names
-        the stages to run.
+        ``{"overrides": {...}, "plots": bool, "stages": [...], "photometry":
+        path}``; ``overrides`` go to ``specan.read``; ``stages`` (default
+        all) names the stages to run; ``photometry`` is a per-object CSV
+        (see ``specan.physics.load_photometry``) for distances.
 
     Returns
     -------
@@ -466,8 +498,9 @@ def analyse_file(path, settings=None) -> dict:
         if isinstance(classification, dict):
             rec.add_stage_dict("classify", classification)
     if stages["physics"] is None and isinstance(classification, dict):
+        photometry = _photometry_row(settings.get("photometry"), rec.values.get("object"), rec)
         physics = _guarded(rec, "physics", _stage_function("physics"),
-                           classification, velocity, None, spectrum)
+                           classification, velocity, photometry, spectrum)
         if isinstance(physics, dict):
             rec.add_stage_dict("physics", physics)
 
@@ -726,7 +759,8 @@ def _sigterm_as_interrupt():
 
 def _results_local(todo, settings, jobs):
     """Yield (path, result) for each input, in this process or in ``jobs`` local processes."""
-    if jobs <= 1:
+    jobs = min(jobs, len(todo))
+    if jobs <= 1:  # also when there is nothing (left) to do: no workers to start
         for path in todo:
             yield path, analyse_file(path, settings)
         return
@@ -762,7 +796,7 @@ def _results_dask(todo, settings, address):
 
 
 def run(paths, out_dir, jobs=1, dask=None, force=False, formats=("ecsv",), overrides=None,
-        plots=True, report=True, progress=None, stages=None) -> RunSummary:
+        plots=True, report=True, progress=None, stages=None, photometry=None) -> RunSummary:
     """Analyse a night: every input through every available stage, then catalogue and report.
 
     Parameters
@@ -786,6 +820,11 @@ def run(paths, out_dir, jobs=1, dask=None, force=False, formats=("ecsv",), overr
         Draw per-spectrum plots / write the night diagram and HTML report.
     stages : sequence of str, optional
         Run only these stages (``read`` always runs); default every stage.
+    photometry : str or os.PathLike, optional
+        Per-object photometry CSV (V, E(B-V), parallax...; see
+        ``specan.physics.load_photometry``), matched by object name, for
+        distances and space velocities. Its content is part of the settings:
+        editing it makes the results stale.
     progress : bool, optional
         Show a progress bar; default: only when stderr is a terminal.
 
@@ -812,9 +851,11 @@ def run(paths, out_dir, jobs=1, dask=None, force=False, formats=("ecsv",), overr
     if wanted:
         stages = {n: (why if n in wanted else "not asked for") for n, why in stages.items()}
     settings = {"overrides": {k: overrides[k] for k in sorted(overrides or {})}, "plots": bool(plots),
-                "stages": wanted}
+                "stages": wanted, "photometry": None if photometry is None else os.path.abspath(photometry)}
+    phot_hash = _sha256_file(photometry) if photometry is not None and os.path.isfile(photometry) else None
     settings_hash = hashlib.sha256(json.dumps(
-        {"settings": settings, "code": code_fingerprint(), "stages": stages}, sort_keys=True,
+        {"settings": settings, "code": code_fingerprint(), "stages": stages, "photometry": phot_hash},
+        sort_keys=True,
         default=str).encode()).hexdigest()
 
     records, todo, keys, reused = {}, [], {}, 0

@@ -225,6 +225,13 @@ def test_rerun_skips_current_inputs_unless_forced_or_changed(tmp_path, fixed_cod
 
     assert pipeline.run([night], out, plots=False, stages=BASIC, overrides={"resolving_power": 900.0}).reused == 0
     assert pipeline.run([night], out, plots=False, stages=BASIC, overrides={"resolving_power": 900.0}).reused == 3
+    phot = tmp_path / "phot.csv"
+    phot.write_text("object,V\nS0,9.5\n")
+    assert pipeline.run([night], out, plots=False, stages=BASIC, photometry=phot).reused == 0
+    assert pipeline.run([night], out, plots=False, stages=BASIC, photometry=phot).reused == 3
+    phot.write_text("object,V\nS0,9.7\n")  # new photometry: results are stale
+    assert pipeline.run([night], out, plots=False, stages=BASIC, photometry=phot).reused == 0
+
     forced = pipeline.run([night], out, plots=False, stages=BASIC, overrides={"resolving_power": 900.0}, force=True)
     assert forced.reused == 0
 

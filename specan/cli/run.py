@@ -29,11 +29,14 @@ def _formats(ctx, param, value):
 @click.option("--format", "formats", default="ecsv", callback=_formats, show_default=True,
               help="Catalogue formats, comma-separated: ecsv, csv, fits, votable (ECSV always written).")
 @click.option("--no-plots", is_flag=True, help="Skip the per-spectrum figures.")
+@click.option("--photometry", type=click.Path(exists=True, dir_okay=False), default=None,
+              help="CSV of per-object V magnitudes, E(B-V), parallaxes... (matched by object name) "
+                   "for distances.")
 @click.option("--stages", default=None, metavar="LIST",
               help="Run only these stages, comma-separated (read, prepare, lines, velocity, classify, "
                    "physics); default all.")
 @read_options
-def command(paths, out_dir, jobs, dask_address, force, formats, no_plots, stages, **kwargs):
+def command(paths, out_dir, jobs, dask_address, force, formats, no_plots, photometry, stages, **kwargs):
     """Analyse every spectrum in PATHS (files, folders, globs) into a catalogue and report in --out.
 
     Exit status: the number of inputs that failed (capped at 100), 0 when none did.
@@ -43,7 +46,8 @@ def command(paths, out_dir, jobs, dask_address, force, formats, no_plots, stages
     wanted = [s.strip() for s in stages.split(",") if s.strip()] if stages else None
     try:
         summary = run(paths, out_dir, jobs=jobs, dask=dask_address, force=force, formats=formats,
-                      overrides=overrides_from(kwargs), plots=not no_plots, stages=wanted)
+                      overrides=overrides_from(kwargs), plots=not no_plots, stages=wanted,
+                      photometry=photometry)
     except ValueError as exc:
         raise click.BadParameter(str(exc), param_hint="--stages") from exc
     except RunInterrupted as stop:
