@@ -43,8 +43,8 @@ def _spectrum_arrays(spectrum):
     return wave, flux
 
 
-def _line_positions(lines):
-    """(wavelength in Angstrom, label) of detected lines, or [] if the table has no wavelength."""
+def _line_positions(lines, limit=None):
+    """(wavelength in Angstrom, label) of detected lines (the ``limit`` deepest), or []."""
     if lines is None or len(lines) == 0:
         return []
     col = next((c for c in _WAVE_COLUMNS if c in lines.colnames), None)
@@ -56,10 +56,11 @@ def _line_positions(lines):
     wave = np.asarray(wave.to_value(u.AA) if hasattr(wave, "unit") and wave.unit else wave, float)
     detected = np.asarray(lines["detected"], bool) if "detected" in lines.colnames else np.ones(len(lines), bool)
     label_col = "id" if "id" in lines.colnames else ("species" if "species" in lines.colnames else None)
-    out = []
-    for i in np.flatnonzero(detected & np.isfinite(wave)):
-        out.append((float(wave[i]), str(lines[label_col][i]) if label_col else ""))
-    return out
+    index = np.flatnonzero(detected & np.isfinite(wave))
+    if limit is not None and index.size > limit and "depth" in lines.colnames:
+        depth = np.abs(np.nan_to_num(np.asarray(getattr(lines["depth"], "value", lines["depth"]), float)[index]))
+        index = np.sort(index[np.argsort(depth)[::-1][:limit]])
+    return [(float(wave[i]), str(lines[label_col][i]) if label_col else "") for i in index]
 
 
 def _draw_spectrum(ax, spectrum, lines, normalized, small=False):
@@ -67,23 +68,72 @@ def _draw_spectrum(ax, spectrum, lines, normalized, small=False):
     ax.plot(wave, flux, lw=0.5 if small else 0.6, color="k")
     finite = flux[np.isfinite(flux)]
     if finite.size:
-        lo, hi = np.percentile(finite, [0.5, 99.5])
-        pad = 0.08 * (hi - lo or 1.0)
-        ax.set_ylim(lo - pad, hi + 3 * pad)
+        # the full depth of the lines, but not a single hot pixel, sets the scale
+        lo, hi = finite.min(), np.percentile(finite, 99.8)
+        pad = 0.05 * (hi - lo or 1.0)
+        ax.set_ylim(lo - pad, hi + (1 if small else 6) * pad)
     ax.set_xlim(wave[0], wave[-1]) if wave.size > 1 else None
     if small:
         ax.set_xticks([])
         ax.set_yticks([])
         return
     top = ax.get_ylim()[1]
-    for w, label in _line_positions(lines):
-        ax.axvline(w, color="tab:blue", lw=0.4, alpha=0.6)
-        ax.text(w, top, label, rotation=90, fontsize=5, ha="center", va="top", color="tab:blue", clip_on=True)
+    # only the deepest lines are named, or the labels would hide each other
+    for w, label in _line_positions(lines, limit=30):
+        ax.axvline(w, color="tab:blue", lw=0.4, alpha=0.5)
+        ax.text(w, top, label, rotation=90, fontsize=6, ha="center", va="top", color="tab:blue", clip_on=True)
     ax.set_xlabel("wavelength (Angstrom)")
     ax.set_ylabel("normalised flux" if normalized else "flux")
 
 
-def _draw_ccf(ax, velocity):
+def _draw_rest_frame_lines(ax, spectrum, lines, velocity):
+    """Deepest detected lines in velocity space about their rest wavelengths.
+
+    Shown when the velocity stage gives no cross-correlation function: with the
+    measured velocity removed, the profiles should be centred on zero.
+    """
+    import astropy.units as u
+
+    rv = velocity.get("rv_topo", velocity.get("rv")) if isinstance(velocity, dict) else None
+    rest_col = "wave_air" if "wave_air" in getattr(lines, "colnames", ()) else None
+    if rv is None or lines is None or rest_col is None or "detected" not in lines.colnames:
+        return False
+    from .obsinfo import get_info
+
+    rest = np.asarray(lines[rest_col].to_value(u.AA) if hasattr(lines[rest_col], "unit") else lines[rest_col], float)
+    if get_info(spectrum).medium == "vacuum" and "wave_vac" in lines.colnames:
+        rest = np.asarray(getattr(lines["wave_vac"], "value", lines["wave_vac"]), float)
+    depth = np.asarray(getattr(lines["depth"], "value", lines["depth"]), float) if "depth" in lines.colnames \
+        else np.ones(len(lines))
+    emission = np.asarray(lines["emission"], bool) if "emission" in lines.colnames else np.zeros(len(lines), bool)
+    # blended features are not centred on one rest wavelength
+    blend = np.zeros(len(lines), bool)
+    if "blend" in lines.colnames:
+        col = lines["blend"]
+        blend = (np.asarray([str(b).strip() != "" for b in col]) if col.dtype.kind in "US"
+                 else np.asarray(col, bool))
+    pick = np.flatnonzero(np.asarray(lines["detected"], bool) & ~emission & ~blend & np.isfinite(depth)
+                          & np.isfinite(rest))
+    if pick.size == 0:
+        return False
+    pick = pick[np.argsort(np.abs(depth[pick]))[::-1][:4]]
+    rv = float(rv.to_value(u.km / u.s)) if hasattr(rv, "unit") else float(rv)
+    wave, flux = _spectrum_arrays(spectrum)
+    c = 299792.458  # km/s
+    for k, i in enumerate(pick):
+        v = c * (wave / rest[i] - 1.0) - rv
+        near = np.abs(v) < 400
+        if near.any():
+            ax.plot(v[near], flux[near] - 0.3 * k, lw=0.8, label=str(lines["id"][i]) if "id" in lines.colnames else "")
+    ax.axvline(0.0, color="tab:red", lw=0.7)
+    ax.set_xlim(-400, 400)
+    ax.set_xlabel("velocity about the rest wavelength, measured RV removed (km/s)")
+    ax.set_ylabel("flux (offset)")
+    ax.legend(fontsize=6, loc="lower right")
+    return True
+
+
+def _draw_ccf(ax, velocity, spectrum=None, lines=None):
     """Cross-correlation function if the velocity stage returned one."""
     ccf = None
     if isinstance(velocity, dict):
@@ -93,6 +143,8 @@ def _draw_ccf(ax, velocity):
                 break
         if ccf is None and isinstance(velocity.get("ccf"), (tuple, list)) and len(velocity["ccf"]) == 2:
             ccf = tuple(velocity["ccf"])
+    if ccf is None and _draw_rest_frame_lines(ax, spectrum, lines, velocity):
+        return
     if ccf is None:
         ax.text(0.5, 0.5, "no cross-correlation function\n(velocity stage did not run or return one)",
                 ha="center", va="center", fontsize=7, transform=ax.transAxes)
@@ -170,7 +222,7 @@ def spectrum_figures(spectrum, lines=None, velocity=None, classification=None, t
     ax = fig.add_subplot(grid[0, :])
     _draw_spectrum(ax, spectrum, lines, normalized)
     ax.set_title(title, fontsize=9)
-    _draw_ccf(fig.add_subplot(grid[1, 0]), velocity)
+    _draw_ccf(fig.add_subplot(grid[1, 0]), velocity, spectrum, lines)
     _draw_criteria(fig.add_subplot(grid[1, 1]), classification)
     fig.tight_layout()
     full = _png(fig, dpi=90)
