@@ -307,7 +307,13 @@ def _features(data, detect_sigma, min_depth=MIN_DEPTH):
                 left, right = ext[np.maximum(j - 1, 0)], ext[np.minimum(j, ext.size - 1)]
                 nearest = np.where(np.abs(left - cand) <= np.abs(right - cand), left, right)
                 prom = peak_prominences(sm, nearest)[0]
-                cand = cand[prom >= max(min_depth, 0.0)]
+                keep = prom >= max(min_depth, 0.0)
+                if sign < 0:
+                    # a crest between absorption lines is prominent too: emission must also
+                    # rise 3 min_depth above the normalised continuum (continuum placement
+                    # in cool stars is uncertain by a few per cent)
+                    keep &= data.smooth[cand] - 1.0 >= 3.0 * min_depth
+                cand = cand[keep]
             else:
                 cand = cand[:0]
         for p in cand:
