@@ -356,6 +356,8 @@ class _Recorder:
 
 
 _CORE_NAMES = {name for name, _, _ in CORE_COLUMNS}
+_CORE_STRINGS = {"file", "object", "status", "reason", "flags", "stages_run", "medium", "warnings", "plot",
+                 "thumbnail"}
 
 
 def _guarded(rec, stage, func, *args, **kwargs):
@@ -635,11 +637,15 @@ def assemble_catalogue(records, meta=None):
     for name in names:
         raw = [r["values"].get(name) for r in records]
         present = [v for v in raw if v is not None]
-        if present and all(isinstance(v, bool) for v in present):
+        if name in _CORE_STRINGS:
+            kind, fill = str, ""
+        elif not present:
+            kind, fill = np.float64, np.nan  # nothing measured anywhere (e.g. no second CCF peak)
+        elif all(isinstance(v, bool) for v in present):
             kind, fill = bool, False
-        elif present and all(isinstance(v, int) and not isinstance(v, bool) for v in present):
+        elif all(isinstance(v, int) and not isinstance(v, bool) for v in present):
             kind, fill = np.int64, 0
-        elif present and all(isinstance(v, (int, float)) and not isinstance(v, bool) for v in present):
+        elif all(isinstance(v, (int, float)) and not isinstance(v, bool) for v in present):
             kind, fill = np.float64, np.nan
         else:
             kind, fill = str, ""
@@ -782,7 +788,12 @@ def _results_dask(todo, settings, address):
     """Yield (path, result) for each input from a dask.distributed cluster."""
     from distributed import Client, as_completed
 
-    with Client(address, set_as_default=False) as client:
+    try:
+        client = Client(address, set_as_default=False, timeout="20s")
+    except (OSError, TimeoutError) as exc:
+        raise SpecanError(f"cannot reach the dask scheduler at {address} ({exc}); "
+                          "check the address or run with --jobs instead") from exc
+    with client:
         futures = client.map(analyse_file, todo, settings=settings, pure=False)
         path_of = {f.key: p for f, p in zip(futures, todo)}
         try:

@@ -113,11 +113,13 @@ def test_safe_stem_is_plain_ascii():
 # ----------------------------------------------------------------------------- one row per input
 
 
-def test_run_one_row_per_input_errors_with_reasons(tmp_path, fixed_code):
+def test_run_one_row_per_input_errors_with_reasons(tmp_path, fixed_code, capsys):
     night = small_night(tmp_path / "night")
     out = tmp_path / "out"
     missing = tmp_path / "missing.fits"
     status = run_cli("run", night, missing, "--out", out, *BASIC_CLI)
+    err = capsys.readouterr().err
+    assert "%|" not in err  # no progress bar when stderr is not a terminal
     cat = Table.read(out / "catalogue.ecsv")
     assert len(cat) == 7 and len(set(cat["file"])) == 7
     by_name = {Path(f).name: row for f, row in zip(cat["file"], cat)}
@@ -183,6 +185,13 @@ def test_outputs_stay_inside_out_dir_whatever_names_contain(tmp_path, fixed_code
         assert not p.name.startswith("."), p  # no temporary files left behind
     plots = sorted(p.name for p in (out / "plots").iterdir())
     assert all(set(n) <= set("abcdefghijklmnopqrstuvwxyzABCDEFGHIJKLMNOPQRSTUVWXYZ0123456789._-") for n in plots)
+
+
+def test_unknown_format_or_stage_is_a_usage_error(tmp_path, capsys):
+    assert run_cli("run", tmp_path, "--out", tmp_path / "o", "--format", "ecsv,xls") == 2
+    assert "xls" in capsys.readouterr().err
+    assert run_cli("run", tmp_path, "--out", tmp_path / "o", "--stages", "read,astrology") == 2
+    assert "astrology" in capsys.readouterr().err
 
 
 def test_catalogue_formats_read_back(tmp_path, fixed_code):

@@ -43,13 +43,18 @@ def command(paths, out_dir, jobs, dask_address, force, formats, no_plots, photom
     """
     from ..pipeline import RunInterrupted, run
 
+    from ..pipeline import STAGES
+
     wanted = [s.strip() for s in stages.split(",") if s.strip()] if stages else None
+    names = [name for name, _, _ in STAGES]
+    unknown = [s for s in wanted or () if s not in names]
+    if unknown:
+        raise click.BadParameter(f"unknown stage(s) {', '.join(unknown)}; choose from {', '.join(names)}",
+                                 param_hint="--stages")
     try:
         summary = run(paths, out_dir, jobs=jobs, dask=dask_address, force=force, formats=formats,
                       overrides=overrides_from(kwargs), plots=not no_plots, stages=wanted,
                       photometry=photometry)
-    except ValueError as exc:
-        raise click.BadParameter(str(exc), param_hint="--stages") from exc
     except RunInterrupted as stop:
         s = stop.summary
         click.echo(f"specan: interrupted; catalogue of what was done written to {s.outputs.get('ecsv')} "
