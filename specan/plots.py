@@ -155,12 +155,21 @@ def _draw_ccf(ax, velocity, spectrum=None, lines=None):
     v = ccf[0].to_value(u.km / u.s) if hasattr(ccf[0], "unit") else np.asarray(ccf[0], float)
     c = np.asarray(getattr(ccf[1], "value", ccf[1]), float)
     ax.plot(v, c, color="k", lw=0.7)
-    rv = velocity.get("rv_topo", velocity.get("rv"))
-    if rv is not None:
-        rv = rv.to_value(u.km / u.s) if hasattr(rv, "unit") else float(rv)
-        if np.isfinite(rv):
-            ax.axvline(rv, color="tab:red", lw=0.7)
-    ax.set_xlabel("velocity (km/s)")
+    peak = v[np.nanargmax(c)] if np.isfinite(c).any() else 0.0
+    ax.axvline(peak, color="tab:red", lw=0.7, label="peak")
+    second = velocity.get("second_peak_rv")
+    if second is not None:
+        second = second.to_value(u.km / u.s) if hasattr(second, "unit") else float(second)
+        rv, rv_topo = velocity.get("rv"), velocity.get("rv_topo")
+        if rv is not None and rv_topo is not None:
+            # second_peak_rv is in the frame of rv; the CCF axis is topocentric
+            second -= float(u.Quantity(rv, u.km / u.s).value - u.Quantity(rv_topo, u.km / u.s).value)
+        if np.isfinite(second):
+            ax.axvline(second, color="tab:orange", lw=0.7, ls="--", label="second peak")
+    # the peak and its neighbourhood (a companion within 1,500 km/s), not the whole lag range
+    ax.set_xlim(peak - 1500, peak + 1500)
+    ax.legend(fontsize=6, loc="upper right")
+    ax.set_xlabel("velocity of the template shift (km/s)")
     ax.set_ylabel("CCF")
 
 
@@ -218,13 +227,14 @@ def spectrum_figures(spectrum, lines=None, velocity=None, classification=None, t
 
     normalized = bool(get_info(spectrum).normalized)
     fig = _canvas(10, 7)
-    grid = fig.add_gridspec(2, 2, height_ratios=[1.2, 1])
+    # fixed margins: tight_layout would draw the figure twice (a fifth of the time per spectrum)
+    grid = fig.add_gridspec(2, 2, height_ratios=[1.2, 1], left=0.07, right=0.98, bottom=0.08, top=0.95,
+                            hspace=0.3, wspace=0.3)
     ax = fig.add_subplot(grid[0, :])
     _draw_spectrum(ax, spectrum, lines, normalized)
     ax.set_title(title, fontsize=9)
     _draw_ccf(fig.add_subplot(grid[1, 0]), velocity, spectrum, lines)
     _draw_criteria(fig.add_subplot(grid[1, 1]), classification)
-    fig.tight_layout()
     full = _png(fig, dpi=90)
 
     small = _canvas(2.4, 0.9)
