@@ -139,7 +139,7 @@ def crb_table(model, n):
             errs, reps = [], []
             for i in range(n):
                 v = 123.0
-                res = velocity.measure(observe(model, r, v, snr=snr, seed=7000 + i), template=tmpl,
+                res = velocity.measure(observe(model, r, v, snr=snr, seed=int(r) * 1000 + snr * 100 + i), template=tmpl,
                                        barycentric=False)
                 errs.append(res["rv"].value - v)
                 reps.append(res["rv_err"].value)

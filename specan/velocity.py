@@ -388,7 +388,7 @@ def _cover_taper(valid, ntap=8):
     return np.where(valid, 0.5 - 0.5 * np.cos(np.pi * np.clip(dist / ntap, 0, 1)), 0.0)
 
 
-@functools.lru_cache(maxsize=128)
+@functools.lru_cache(maxsize=48)  # the 14-type grid for a few instrument set-ups
 def _synthetic_template(sptype, lumclass, resolving_power, ln0, step, n, kind="synth", hp_sigma=None):
     from . import synth
 
@@ -607,23 +607,17 @@ def _parse_template(template):
     return kind, parts[0], (parts[1] if len(parts) > 1 else "V"), None
 
 
-def _resolving_power(data, notes):
+def _resolving_power(data):
+    """(R, known): the stated resolving power, or a first guess from the sampling (2.5 pixels/FWHM)."""
     if data.info.resolving_power:
-        return float(data.info.resolving_power)
-    # estimate: autocorrelation FWHM of the spectrum's line pattern / sqrt 2 = line FWHM
-    g = data.taper * (data.flux - 1.0)
-    g = g - g.mean()
-    m = sfft.next_fast_len(2 * data.n)
-    acf = sfft.irfft(np.abs(sfft.rfft(g, m)) ** 2, m)
-    acf = np.concatenate([acf[-60:], acf[:61]])
-    j = np.arange(-60, 61)
-    fw = _fwhm_pixels(j, acf, acf[60])
-    if not np.isfinite(fw) or fw <= 0:
-        fw = 2.5 * math.sqrt(2)
-    r = 1.0 / (fw / math.sqrt(2.0) * data.step)
-    notes.append(f"resolving power unknown: R ~ {r:.0f} estimated from the width of the spectrum's own lines "
-                 "(use --resolving-power to set it)")
-    return r
+        return float(data.info.resolving_power), True
+    med = float(np.median(np.diff(data.spline_x)))
+    return 1.0 / (2.5 * med), False
+
+
+# Multipliers of the first guess tried when the resolving power is unknown (sampling of 1.7-5
+# pixels per FWHM, the range of real spectrographs; common practice).
+_R_SCAN = (0.5, 0.6, 0.7, 0.85, 1.0, 1.2, 1.45)
 
 
 def measure(spectrum, template=None, *, reference=None, template_rv=0 * u.km / u.s, vmax=2000 * u.km / u.s,
@@ -680,11 +674,14 @@ def measure(spectrum, template=None, *, reference=None, template_rv=0 * u.km / u
         ``bary_corr``, ``v_grf`` (Quantities in km/s or None), ``template`` (name),
         ``ccf_height``, ``flags`` (list of str), ``second_peak_rv``, ``rv_err_td``,
         ``rv_err_mc``, ``notes`` (list of str), plus ``template_scores`` (name -> peak
-        height of the automatic choice), ``ccf_fwhm``, ``r_td`` and ``z_bary``.
+        height of the automatic choice), ``ccf_fwhm``, ``r_td``, ``z_bary`` and the
+        normalised CCF about the peak, ``ccf`` against topocentric ``ccf_velocity``.
     """
     from . import synth
     from ._offline import IERS_NOTE
 
+    if errors not in ("both", "td", "mc"):
+        raise ValueError(f"errors must be 'both', 'td' or 'mc', not {errors!r}")
     notes = []
     flags = []
     spectrum = _normalised(spectrum, notes)
@@ -694,7 +691,7 @@ def measure(spectrum, template=None, *, reference=None, template_rv=0 * u.km / u
     vmax_kms = u.Quantity(vmax, u.km / u.s).value
     smax = int(math.ceil(math.log(float(doppler_factor(vmax_kms * u.km / u.s))) / step))
     ntap = 8
-    res_r = _resolving_power(data, notes)
+    res_r, r_known = _resolving_power(data)
     r_key = float(f"{res_r:.3g}")
     fwhm_grid = 1.0 / (res_r * step)  # resolution element in grid pixels
     hp = float(highpass) * fwhm_grid if highpass else None
@@ -722,14 +719,15 @@ def measure(spectrum, template=None, *, reference=None, template_rv=0 * u.km / u
 
         ref = reference if not isinstance(reference, (str, Path)) else _read(reference)
         rname = get_info(ref).object or get_info(ref).path or "reference exposure"
-        chosen = _spectrum_template(ref, ln0, step, next_, res_r, f"reference {rname}", notes, hp_sigma=hp)
+        chosen = _spectrum_template(ref, ln0, step, next_, res_r if r_known else None, f"reference {rname}", notes,
+                                    hp_sigma=hp)
         flags.append("relative")
     elif kind in ("spectrum", "file"):
         from . import read as _read
 
         tspec = obj if kind == "spectrum" else _read(obj)
         tname = get_info(tspec).object or (str(obj) if kind == "file" else "user template")
-        chosen = _spectrum_template(tspec, ln0, step, next_, res_r, f"user {tname}", notes,
+        chosen = _spectrum_template(tspec, ln0, step, next_, res_r if r_known else None, f"user {tname}", notes,
                                     rv_kms=u.Quantity(template_rv, u.km / u.s).value, hp_sigma=hp)
     else:
         if sptype is None:
@@ -749,8 +747,21 @@ def measure(spectrum, template=None, *, reference=None, template_rv=0 * u.km / u
             sptype, lumclass = best[1], best[2]
             notes.append(f"template chosen automatically: best normalised correlation of {len(scores)} "
                          f"synthetic types ({sptype} {lumclass}, {best[0]:.3f})")
-        chosen = _synthetic_template(sptype, lumclass, r_key, round(ln0, 12), step, next_,
-                                     kind="synth" if kind in ("synth", "auto") else "mask", hp_sigma=hp)
+        tkind = "synth" if kind in ("synth", "auto") else "mask"
+        chosen = _synthetic_template(sptype, lumclass, r_key, round(ln0, 12), step, next_, kind=tkind, hp_sigma=hp)
+        if not r_known:
+            # resolving power unknown: the template width that correlates best
+            best = None
+            for fac in _R_SCAN:
+                rr = float(f"{res_r * fac:.3g}")
+                t = _synthetic_template(sptype, lumclass, rr, round(ln0, 12), step, next_, kind=tkind, hp_sigma=hp)
+                pk = _peak(_Correlation(arrays, t, pad, m, d_ffts), pad, smax, min_overlap, total_w)
+                if pk is not None and (best is None or pk[1] > best[0]):
+                    best = (pk[1], rr, t)
+            if best is not None:
+                res_r, chosen = best[1], best[2]
+            notes.append(f"resolving power unknown: R ~ {res_r:.0f} from the template width that correlates "
+                         "best (use --resolving-power to set it)")
 
     corr = _Correlation(arrays, chosen, pad, m, d_ffts)
     pk = _peak(corr, pad, smax, min_overlap, total_w)
@@ -775,8 +786,8 @@ def measure(spectrum, template=None, *, reference=None, template_rv=0 * u.km / u
     sig_a = float(np.sqrt(np.nanmean(resid[~core] ** 2)) / math.sqrt(2.0))
     r_td = h / (math.sqrt(2.0) * sig_a) if sig_a > 0 else float("inf")
     w_curv = 2.3548 * math.sqrt(h / abs(curv)) if curv < 0 else fwhm_px
-    # Tonry & Davis write sigma = (3/8) w / (1 + r), the constant calibrated for their filtered CCF.
-    # For this normalised, unfiltered CCF the small-noise limit is exact: the peak moves by
+    # Tonry & Davis write sigma = (3/8) w / (1 + r), the constant calibrated for their CCF and filter.
+    # For this normalised CCF the small-noise limit is exact: the peak moves by
     # n'(s0)/|c''|, with var n' = sigma_n^2 |c''| / h for a matched template, so
     # sigma = sqrt(h/|c''|) / r = w / (2.3548 r). Injections confirm it (tests/test_velocity.py);
     # the published 3/8 and 1 + r underestimate our errors by ~25%.
@@ -811,7 +822,6 @@ def measure(spectrum, template=None, *, reference=None, template_rv=0 * u.km / u
     f_topo = z_s * tmpl_factor
     rv_topo = _kms(f_topo)
     if second is not None:
-        second_rv = _kms(math.exp(second * step) * tmpl_factor) * u.km / u.s
         flags.append("composite")
 
     bary = None
@@ -836,6 +846,8 @@ def measure(spectrum, template=None, *, reference=None, template_rv=0 * u.km / u
     if f_b is None:
         flags.append("no_barycentric")
     rv = _kms(f_b) if f_b is not None else rv_topo
+    if second is not None:  # in the same frame as rv
+        second_rv = _kms(math.exp(second * step) * tmpl_factor * (f_b / f_topo if f_b else 1.0)) * u.km / u.s
 
     v_grf = None
     if not relative and info.ra_deg is not None and info.dec_deg is not None:
@@ -886,6 +898,8 @@ def measure(spectrum, template=None, *, reference=None, template_rv=0 * u.km / u
         "ccf_fwhm": fwhm_px * abs(dvds) * kms if np.isfinite(fwhm_px) else None,
         "r_td": r_td,
         "z_bary": None if f_b is None else f_b - 1.0,
+        "ccf_velocity": velocity_from_factor(np.exp((s0 + j) * step) * tmpl_factor),
+        "ccf": vals,
     }
 
 

@@ -408,6 +408,14 @@ def test_air_and_vacuum_spectra_give_the_same_velocity():
     assert 70 < 55.0 - wrong < 90  # (n - 1) c ~ 83 km/s (Morton 2000)
 
 
+def test_unknown_resolving_power():
+    s = synth.spectrum("F5", resolving_power=3000, rv=222 * KMS, snr=50, seed=1)
+    get_info(s).resolving_power = None
+    res = velocity.measure(s)
+    assert any("resolving power unknown" in n and "--resolving-power" in n for n in res["notes"])
+    assert abs(res["rv"].to_value(KMS) - 222) < 4 * res["rv_err"].to_value(KMS) + 0.5
+
+
 def test_line_mask_and_user_template_with_partial_overlap(tmp_path):
     import specan
 
