@@ -58,6 +58,8 @@ __all__ = [
 ]
 
 C_KMS = _c.to_value(u.km / u.s)
+#: Order of the spline that resamples spectra onto the ln-lambda grid.
+_SPLINE_K = 3
 FWHM_TO_SIGMA = 1.0 / (2.0 * math.sqrt(2.0 * math.log(2.0)))
 
 #: Default |v_GRF| above which a star is flagged ``high_velocity`` (common practice).
@@ -331,7 +333,7 @@ class _Data:
         self.spline_x = lnw
         self.grid = grid
         self.step = step
-        self.flux = make_interp_spline(lnw, f_fill, k=3)(grid)
+        self.flux = make_interp_spline(lnw, f_fill, k=_SPLINE_K)(grid)
         badg = np.interp(grid, lnw, bad.astype(float)) > 1e-6
         self.sigma = np.interp(grid, lnw, np.where(np.isfinite(sig), sig, np.nanmedian(sig)))
         self.native_flux = f_fill
@@ -354,9 +356,15 @@ class _Template:
 
     def __init__(self, name, t_minus_1, cover, rv_kms=0.0, info=None, hp_sigma=None):
         self.name = name
-        self.T0 = t_minus_1 * cover  # unfiltered: the single-star model is built from it like the data
+        # unfiltered, zero where not covered (as the data are at masked pixels); the single-star
+        # model is built from it like the data
+        self.T0 = np.where(cover > 0, t_minus_1, 0.0)
         self.hp_sigma = hp_sigma
-        self.T = _highpass(self.T0, hp_sigma) * cover
+        th = _highpass(self.T0, hp_sigma, cover > 0)
+        # the coverage taper is a weight: T = V t enters the cross term, V t^2 the template energy,
+        # so that a noiseless shifted copy correlates to exactly 1 even where the taper is < 1
+        self.T = th * cover
+        self.T2 = th * th * cover
         self.V = cover
         self.rv_kms = rv_kms
         self.info = info
@@ -364,23 +372,38 @@ class _Template:
 
     def ffts(self, m):
         if m not in self._fft:
-            self._fft[m] = (sfft.rfft(self.T, m), sfft.rfft(self.T ** 2, m), sfft.rfft(self.V, m))
+            self._fft[m] = (sfft.rfft(self.T, m), sfft.rfft(self.T2, m), sfft.rfft(self.V, m))
         return self._fft[m]
 
 
-def _highpass(x, sigma):
-    """Subtract a Gaussian-smoothed copy (Tonry & Davis' low-frequency cut, done in pixel space so the
-    spectrum and the template get the same filter before the normalisation sums)."""
-    if not sigma:
-        return x
+def _gauss_smooth(x, sigma):
     n = x.shape[0]
     size = sfft.next_fast_len(n + int(math.ceil(8 * sigma)))  # zero padding: no wrap-around
     k = np.arange(size // 2 + 1) / size
-    smooth = np.exp(-2.0 * (np.pi * sigma * k) ** 2)  # Fourier transform of the Gaussian
+    kern = np.exp(-2.0 * (np.pi * sigma * k) ** 2)  # Fourier transform of the Gaussian
     if x.ndim == 2:
-        smooth = smooth[:, None]
-    low = sfft.irfft(sfft.rfft(x, size, axis=0) * smooth, size, axis=0)[:n]
-    return x - low
+        kern = kern[:, None]
+    return sfft.irfft(sfft.rfft(x, size, axis=0) * kern, size, axis=0)[:n]
+
+
+def _highpass(x, sigma, valid):
+    """Subtract the local mean: a Gaussian-smoothed copy over the valid pixels only.
+
+    Tonry & Davis' low-frequency cut, done in pixel space so that spectrum and template get the
+    same filter before the normalisation sums. The mean is a normalised convolution (smoothed
+    values over smoothed coverage), so masked gaps and the ends of the data do not pull it
+    towards zero: otherwise lines next to a gap would be filtered differently in a star and in
+    its shifted template, a bias growing with the velocity.
+    """
+    if not sigma:
+        return np.where(valid if x.ndim == 1 else valid[:, None], x, 0.0)
+    v = valid.astype(float)
+    vv = v if x.ndim == 1 else v[:, None]
+    num = _gauss_smooth(x * vv, sigma)
+    den = _gauss_smooth(v, sigma)
+    den = den if x.ndim == 1 else den[:, None]
+    low = num / np.maximum(den, 1e-3)
+    return (x - low) * vv
 
 
 def _cover_taper(valid, ntap=8):
@@ -441,7 +464,7 @@ def _spectrum_template(spec, ln0, step, n, target_r, name, notes, rv_kms=0.0, hp
     grid = ln0 + step * np.arange(n)
     inside = (grid >= lnw[~bad][0]) & (grid <= lnw[~bad][-1])
     flux = np.ones(n)
-    flux[inside] = make_interp_spline(lnw, np.where(bad, 1.0, f), k=3)(grid[inside])
+    flux[inside] = make_interp_spline(lnw, np.where(bad, 1.0, f), k=_SPLINE_K)(grid[inside])
     badg = np.interp(grid, lnw, bad.astype(float), left=1.0, right=1.0) > 1e-6
     valid = inside & ~badg
     tr = tinfo.resolving_power
@@ -707,7 +730,7 @@ def measure(spectrum, template=None, *, reference=None, template_rv=0 * u.km / u
     w_noise = 1.0 / np.clip(data.sigma, 1e-12, None) ** 2
     w_noise /= np.median(w_noise[data.valid])
     weight = data.taper * w_noise
-    arrays = _data_arrays(_highpass(data.flux - 1.0, hp), weight)
+    arrays = _data_arrays(_highpass(data.flux - 1.0, hp, data.valid), weight)
     d_ffts = tuple(sfft.rfft(a, m) for a in arrays)
     total_w = float(np.sum(weight))
 
@@ -908,8 +931,8 @@ def _resample_error(data, weight, template, pad, m, s0, err_px, k, seed, hp):
     rng = np.random.default_rng(seed)
     noise = rng.normal(size=(data.native_flux.size, k)) * data.native_sigma[:, None]
     # the same cubic interpolation the data went through, applied to each realisation
-    f = make_interp_spline(data.spline_x, data.native_flux[:, None] + noise, k=3, axis=0)(data.grid)  # (n, k)
-    d = _highpass(f - 1.0, hp)
+    f = make_interp_spline(data.spline_x, data.native_flux[:, None] + noise, k=_SPLINE_K, axis=0)(data.grid)  # (n, k)
+    d = _highpass(f - 1.0, hp, data.valid)
     mean = (weight @ d) / weight.sum()
     d = d - mean
     a1 = weight[:, None] * d
@@ -963,8 +986,12 @@ def _single_star_ccf(template, valid, weight, pad, m, s0, half):
     n = valid.size
     phase = np.exp(-2j * np.pi * np.arange(m // 2 + 1) * (s0 - pad) / m)
     model = sfft.irfft(sfft.rfft(template.T0, m) * phase, m)[:n]  # template(x - s0) on the data window
-    model = _highpass(np.where(valid, model, 0.0), template.hp_sigma)
-    mcorr = _Correlation(_data_arrays(model, weight), template, pad, m)
+    # where the template has gaps (its own tellurics, its ends) the model star is unknown: leave
+    # those pixels out rather than treat them as continuum
+    known = sfft.irfft(sfft.rfft((template.V > 0).astype(float), m) * phase, m)[:n] > 0.5
+    ok = valid & known
+    model = _highpass(model, template.hp_sigma, ok)
+    mcorr = _Correlation(_data_arrays(model, weight * ok), template, pad, m)
     _, mvals, _ = _ccf_about(mcorr, s0, half)
     if not np.isfinite(mvals[half]) or mvals[half] <= 0:
         return None
