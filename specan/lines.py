@@ -257,9 +257,57 @@ class _Data:
             # variance of a weighted mean with kernel weights g: sum(g^2 w) / sum(g w)^2
             self.smooth_err[sel] = np.sqrt(k2 * f_w2 / np.maximum((k1 * f_w) ** 2, 1e-300))
         self.smooth = np.where(np.isfinite(self.smooth), self.smooth, 1.0)
+        s3 = 3.0 * float(np.median(self.sig_pix))
+        f_w = np.maximum(gaussian_filter1d(w, s3, mode="nearest"), 1e-300)
+        self.smooth_wide = gaussian_filter1d(wf, s3, mode="nearest") / f_w
+        self.smooth_wide = np.where(np.isfinite(self.smooth_wide), self.smooth_wide, 1.0)
+        j = np.arange(-int(4 * s3 + 0.5), int(4 * s3 + 0.5) + 1)
+        k1, k2 = np.exp(-0.5 * (j / s3) ** 2).sum(), np.exp(-((j / s3) ** 2)).sum()
+        f_w2 = gaussian_filter1d(w, s3 / np.sqrt(2.0), mode="nearest")
+        self.smooth_wide_err = np.sqrt(k2 * f_w2 / np.maximum((k1 * f_w) ** 2, 1e-300))
+
+    def divided(self, model):
+        """A copy with flux and noise divided by ``model`` (filters recomputed)."""
+        import copy
+
+        new = copy.copy(self)
+        new.flux = self.flux / model
+        new.sigma = self.sigma / model
+        new.weight = np.where(self.good, 1.0 / new.sigma**2, 0.0)
+        new._filter()
+        return new
 
     def index(self, wave):
         return int(np.clip(np.searchsorted(self.wave, wave), 0, self.wave.size - 1))
+
+
+def _hydrogen_model(data, fits, pred, fwhm_at, is_h, detected, ep_low):
+    """Transmission of the fitted hydrogen absorption lines on the pixel grid, or None.
+
+    A hydrogen line with a listed low-excitation line (lower level below 1 eV, e.g.
+    Ca II H beside H epsilon) closer than 0.6 line widths is left out: in cool stars
+    that partner can outweigh the hydrogen line and the fit cannot tell them apart.
+    High-excitation partners (He II Pickering lines beside the Balmer lines) do not
+    block: their share of an unresolvable blend goes to hydrogen.
+    """
+    model = np.ones(data.wave.size)
+    used = 0
+    others = pred[(~is_h) & (np.nan_to_num(ep_low, nan=0.0) < 1.0)]
+    for i, fit in fits.items():
+        if not is_h[i] or not detected[i] or fit["sign"] < 0 or fit["ew"] <= 0:
+            continue
+        if others.size and np.min(np.abs(others - fit["centre"])) < 0.6 * fwhm_at[i]:
+            continue  # an unresolvable blend with a listed line: keep it whole
+        dx = data.wave - fit["centre"]
+        if fit["profile"] == "voigt":
+            prof = voigt_profile(dx, fit["sigma"], fit["gamma"])
+        else:
+            prof = np.exp(-0.5 * (dx / fit["sigma"]) ** 2) / (fit["sigma"] * np.sqrt(2 * np.pi))
+        model *= 1.0 - fit["ew"] * prof
+        used += 1
+    if not used:
+        return None
+    return np.clip(model, 0.05, 1.0)
 
 
 def _normalised(spectrum):
@@ -509,7 +557,7 @@ def _meta(data, rv_q):
 # ----------------------------------------------------------------------------- measure
 
 
-def _window(data, ic, sign, min_half, max_half):
+def _window(data, ic, sign, min_half, max_half, wide=False):
     """Adaptive integration window around pixel ``ic``.
 
     Walk outward on the smoothed flux until it is back at the continuum (within
@@ -528,8 +576,11 @@ def _window(data, ic, sign, min_half, max_half):
     cut : bool
         True when a neighbouring line cut the window.
     """
-    depth = sign * (1.0 - data.smooth)
-    err = data.smooth_err
+    # hydrogen lines walk on a flux smoothed over three line widths: the metal lines in
+    # their wings must not end the window
+    smooth = data.smooth_wide if wide else data.smooth
+    depth = sign * (1.0 - smooth)
+    err = data.smooth_wide_err if wide else data.smooth_err
     x0 = data.wave[ic]
     d0 = max(depth[ic], 0.0)
     edges, levels, cut = [], [], False
@@ -540,7 +591,7 @@ def _window(data, ic, sign, min_half, max_half):
         while True:
             nxt = i + step
             if nxt < 0 or nxt >= data.wave.size or abs(data.wave[nxt] - x0) > max_half:
-                end, level = i, data.smooth[i]
+                end, level = i, smooth[i]
                 break
             i = nxt
             trail.append(i)
@@ -555,11 +606,12 @@ def _window(data, ic, sign, min_half, max_half):
             if di > best + max(3.0 * noise, 5e-3) and dist >= 0.5 * min_half:
                 end, level, cut = best_i, 1.0, True
                 break
-            if dist >= 2.0 * min_half:
+            if dist >= 2.0 * min_half and not wide:
+                # (not for hydrogen: Stark wings fall off slowly yet carry much of the EW)
                 # the pixel one instrument FWHM back toward the centre
                 back = trail[max(len(trail) - 1 - int(np.ceil(min_half / data.dx[i])), 0)]
                 if depth[back] - di < max(2.0 * noise, 0.01 * d0):
-                    end, level = i, data.smooth[i]
+                    end, level = i, smooth[i]
                     break
         # a plateau within the noise of the continuum is the continuum
         if abs(1.0 - level) <= 3.0 * err[end]:
@@ -608,7 +660,7 @@ def _voigt_and_derivatives(dx, sigma, gamma):
     return v, d_x, d_sigma, d_gamma
 
 
-def _fit(data, lo, hi, cont, centres, profile, max_shift, sig_inst, sign=1.0):
+def _fit(data, lo, hi, cont, centres, profile, max_shift, sig_inst, sign=1.0, skip=None, free_width=False):
     """Least-squares profile fit over pixels lo..hi; component 0 is the target.
 
     Model: ``cont(x) * (1 - sum_k W_k P(x - c_k - shift; sigma[, gamma]))`` with P a
@@ -620,6 +672,8 @@ def _fit(data, lo, hi, cont, centres, profile, max_shift, sig_inst, sign=1.0):
     sel = slice(lo, hi + 1)
     x, y = data.wave[sel], data.flux[sel]
     wts = np.sqrt(data.weight[sel])
+    if skip is not None:
+        wts = np.where(skip, 0.0, wts)
     ncomp = len(centres)
     if (wts > 0).sum() < (3 + ncomp):
         return None
@@ -639,7 +693,8 @@ def _fit(data, lo, hi, cont, centres, profile, max_shift, sig_inst, sign=1.0):
     # instrument (or the star's rotation) sets it, and a free width soaks up the
     # wings of unresolved neighbours. Damping wings go to the Voigt's Lorentzian part.
     lb = [-max_shift, 0.95 * sig_inst] + ([0.0] if voigt else []) + [w_lo] * ncomp
-    ub = [max_shift, 1.05 * sig_inst] + ([span] if voigt else []) + [w_hi] * ncomp
+    # (hydrogen: thermal and Stark broadening widen the core beyond the instrument)
+    ub = [max_shift, span if free_width else 1.05 * sig_inst] + ([span] if voigt else []) + [w_hi] * ncomp
     lb, ub = np.array(lb), np.array(ub)
     p0 = np.clip(np.array(p0, float), lb + 1e-6 * (ub - lb), ub - 1e-6 * (ub - lb))
     k = 3 if voigt else 2
@@ -768,7 +823,8 @@ def _fit_gauss(data, lo, hi, cont, centres, max_shift, sig_line, sign=1.0):
 
 
 def measure(spectrum, linelist=None, rv=0 * u.km / u.s, resolving_power=None, profile="auto",
-            window=None, detect_sigma=DETECT_SIGMA, kinds=("atomic",), min_depth=MIN_DEPTH):
+            window=None, detect_sigma=DETECT_SIGMA, kinds=("atomic",), min_depth=MIN_DEPTH,
+            divide_hydrogen=True):
     """Measure every listed line the spectrum covers.
 
     Per line: the centre is the matched feature (see :func:`identify`) or the
@@ -804,6 +860,10 @@ def measure(spectrum, linelist=None, rv=0 * u.km / u.s, resolving_power=None, pr
         :func:`band_indices`).
     min_depth : float
         Features must stand this far out of the smoothed flux around them.
+    divide_hydrogen : bool
+        Measure the other lines on the spectrum divided by the fitted hydrogen
+        profiles (hydrogen lines with a listed low-excitation line closer than 0.6
+        line widths, such as H epsilon and Ca II H, are left in).
 
     Returns
     -------
@@ -846,7 +906,7 @@ def measure(spectrum, linelist=None, rv=0 * u.km / u.s, resolving_power=None, pr
     detected = np.zeros(n, bool)
     emission = np.zeros(n, bool)
 
-    for i in range(n):
+    def one(i, data, pos, femis):
         centre, max_shift, matched = pred[i], win[i], False
         if pos.size:
             k = int(np.argmin(np.abs(pos - pred[i])))
@@ -861,7 +921,7 @@ def measure(spectrum, linelist=None, rv=0 * u.km / u.s, resolving_power=None, pr
         core = np.abs(data.wave - centre) <= 0.5 * fw
         if not data.good[core].any():
             method[i] = "masked"
-            continue
+            return
         s_c = float(data.signif[ic])
         sign = -1.0 if s_c < -detect_sigma else 1.0
         cols["significance"][i] = s_c
@@ -871,7 +931,7 @@ def measure(spectrum, linelist=None, rv=0 * u.km / u.s, resolving_power=None, pr
         emission[i] = sign < 0
         max_half = max(60.0 * fw, 40.0) if is_h[i] else 25.0 * fw
         if matched:
-            lo, hi, levels, cut = _window(data, ic, sign, fw, max_half)
+            lo, hi, levels, cut = _window(data, ic, sign, fw, max_half, wide=bool(is_h[i]))
         else:
             # nothing found here: integrate +-1 line width against the local level around it
             # (an upper limit; inside another line's wing that wing is the continuum)
@@ -902,11 +962,26 @@ def measure(spectrum, linelist=None, rv=0 * u.km / u.s, resolving_power=None, pr
         # lines closer than 0.6 line widths cannot be told apart: they stay one component
         # (the target's EW is then theirs together, and ``blend`` names them)
         candidates = [pred[j] + shift for j in inside]
-        if pos.size:
-            candidates += list(pos[(pos >= data.wave[lo]) & (pos <= data.wave[hi]) & (femis == (sign < 0))])
+        in_win = pos[(pos >= data.wave[lo]) & (pos <= data.wave[hi]) & (femis == (sign < 0))] if pos.size \
+            else np.zeros(0)
+        if not is_h[i]:
+            candidates += list(in_win)
         for c in candidates:
             if min(abs(c - x) for x in centres) > 0.6 * fw:
                 centres.append(c)
+        # hydrogen profiles are fitted around the metal lines in their wings: those
+        # pixels get no weight (a shared Voigt width would give each metal line Stark wings)
+        # (the features found there, and the listed lines, which on a steep wing may
+        # make no local minimum of their own)
+        skip = None
+        if is_h[i]:
+            listed = pred[(~is_h) & (pred >= data.wave[lo]) & (pred <= data.wave[hi])] + shift
+            others = np.concatenate([in_win, listed])
+            if others.size:
+                xw = data.wave[lo:hi + 1]
+                far = np.abs(others[:, None] - np.asarray(centres)[None, :]).min(axis=1) > 0.6 * fw
+                if far.any():
+                    skip = (np.abs(xw[None, :] - others[far][:, None]) < 1.2 * fw).any(axis=0)
         n_extra = len(centres) - 1
         centres = np.array(centres)
         # strong lines with damping wings: deep core and a window many widths wide
@@ -915,17 +990,19 @@ def measure(spectrum, linelist=None, rv=0 * u.km / u.s, resolving_power=None, pr
         fit = None
         if detected[i]:
             if use_voigt:
-                fit = _fit(data, lo, hi, cont, centres, "voigt", max_shift, fw / GAUSS_FWHM, sign)
+                fit = _fit(data, lo, hi, cont, centres, "voigt", max_shift, fw / GAUSS_FWHM, sign, skip,
+                           free_width=bool(is_h[i]))
             else:
                 fit = _fit_gauss(data, lo, hi, cont, centres, max_shift, fw / GAUSS_FWHM, sign)
         if fit is not None:
+            fits[i] = dict(fit, profile="voigt" if use_voigt else "gauss", sign=sign)
             cols["ew_fit"][i], cols["ew_fit_err"][i] = fit["ew"], fit["ew_err"]
             cols["fwhm"][i] = fit["fwhm"]
             cols["wave_obs"][i] = fit["centre"]
             prof_used[i] = "voigt" if use_voigt else "gauss"
         else:
             cols["fwhm"][i] = _half_width(data, ic, lo, hi, sign)
-        if fit is not None and (cut or n_extra):
+        if fit is not None and (cut or n_extra or is_h[i]):
             method[i] = ("multi_" if n_extra else "") + prof_used[i] + "_fit"
             cols["ew"][i], cols["ew_err"][i] = fit["ew"], fit["ew_err"]
         else:
@@ -936,6 +1013,20 @@ def measure(spectrum, linelist=None, rv=0 * u.km / u.s, resolving_power=None, pr
         fwhm_c = cols["fwhm"][i] if np.isfinite(cols["fwhm"][i]) else fw
         noise = np.median(sig_sel[np.isfinite(sig_sel)]) if np.isfinite(sig_sel).any() else np.nan
         cols["ew_err_cayrel"][i] = cayrel_error(fwhm_c, data.dx[ic], 1.0 / noise)
+    fits = {}
+    # Hydrogen first: the other lines are then measured on the spectrum divided by the
+    # fitted hydrogen profiles, so a metal line in a Balmer wing is measured against the
+    # wing (its local continuum), not against a continuum the wing lies far below.
+    for i in np.flatnonzero(is_h):
+        one(i, data, pos, femis)
+    data_m, pos_m, femis_m = data, pos, femis
+    if divide_hydrogen:
+        model = _hydrogen_model(data, fits, pred, fwhm_at, is_h, detected, t["ep_low"].to_value(u.eV))
+        if model is not None:
+            data_m = data.divided(model)
+            pos_m, _, _, femis_m = _features(data_m, detect_sigma, min_depth)
+    for i in np.flatnonzero(~is_h):
+        one(i, data_m, pos_m, femis_m)
     velocity = C_KMS * (cols["wave_obs"] - lab) / lab
 
     out = QTable()

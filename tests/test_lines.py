@@ -453,3 +453,24 @@ def test_user_line_list_path(tmp_path):
     one_line_list(5889.95, name="my_D2", species="Na I").write(path, format="ascii.ecsv")
     m = lines.measure(spec, path)
     assert list(m["id"]) == ["my_D2"] and m["detected"][0]
+
+
+def test_metal_lines_in_a_balmer_wing_measured_against_the_wing():
+    # An A-star-like H gamma (Voigt, EW 12 A; closed form as in the Voigt test) with two
+    # weak lines in its wings, multiplied in (F = F_H * F_metal): their EWs relative to the
+    # wing are the ones put in (0.10 and 0.08 A).
+    rng = np.random.default_rng(11)
+    wave = np.arange(4200.0, 4500.0, 0.5)
+    hyd = 1.0 - 12.0 * voigt_profile(wave - 4340.47, 2.0, 4.0)
+    metal = 1.0 - gaussian(wave, 4325.76, 0.10, 2.0) - gaussian(wave, 4351.77, 0.08, 2.0)
+    spec = make_spectrum(wave, hyd * metal + rng.normal(0, 0.002, wave.size), sigma=0.002,
+                         resolving_power=4340 / 2.0)
+    m = lines.measure(spec)
+    row = {r["id"]: r for r in m}
+    assert row["H_gamma"]["ew"].to_value(u.AA) == pytest.approx(12.0, rel=0.05)
+    assert row["FeI_4326"]["ew"].to_value(u.AA) == pytest.approx(0.10, rel=0.15)
+    assert row["FeII_4352"]["ew"].to_value(u.AA) == pytest.approx(0.08, rel=0.15)
+    # without dividing out hydrogen the wing lines come out far too weak
+    plain = lines.measure(spec, divide_hydrogen=False)
+    fe = plain[list(plain["id"]).index("FeII_4352")]
+    assert fe["ew"].to_value(u.AA) < 0.5 * 0.08
