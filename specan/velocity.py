@@ -324,7 +324,9 @@ class _Data:
         if step is None:
             dl = np.diff(lnw)
             dl = dl[dl > 0]
-            step = float(np.percentile(dl, 5))  # sample the finest part of the spectrum natively
+            # sample the finest part of the spectrum natively, but not a few stray close pixels
+            # (overlapping merged orders) at the cost of a huge grid
+            step = max(float(np.percentile(dl, 5)), float(np.median(dl)) / 3.0)
         good = ~bad
         lo, hi = lnw[good][0], lnw[good][-1]
         n = int(math.floor((hi - lo) / step)) + 1
