@@ -296,6 +296,8 @@ def _hydrogen_model(data, fits, pred, fwhm_at, is_h, detected, ep_low):
     for i, fit in fits.items():
         if not is_h[i] or not detected[i] or fit["sign"] < 0 or fit["ew"] <= 0:
             continue
+        if not abs(fit["ew"] - fit["ew_int"]) <= 0.3 * abs(fit["ew_int"]):
+            continue  # the profile does not describe the line (continuum trouble): leave it
         if others.size and np.min(np.abs(others - fit["centre"])) < 0.6 * fwhm_at[i]:
             continue  # an unresolvable blend with a listed line: keep it whole
         dx = data.wave - fit["centre"]
@@ -570,9 +572,9 @@ def _window(data, ic, sign, min_half, max_half, wide=False):
     lo, hi : int
         Edge pixels.
     levels : (float, float)
-        Local continuum at each edge: 1 where the walk reached the continuum or a
-        neighbour's crest (wings belong to the line), the smoothed flux where it
-        stopped on a plateau or at the limit.
+        Local continuum at each edge: 1 where the walk reached the continuum, a
+        neighbour's crest (wings belong to the line) or the limit, the smoothed
+        flux where it stopped on a plateau.
     cut : bool
         True when a neighbouring line cut the window.
     """
@@ -591,7 +593,8 @@ def _window(data, ic, sign, min_half, max_half, wide=False):
         while True:
             nxt = i + step
             if nxt < 0 or nxt >= data.wave.size or abs(data.wave[nxt] - x0) > max_half:
-                end, level = i, smooth[i]
+                # still falling at the limit: a wing, not a pseudo-continuum
+                end, level = i, 1.0
                 break
             i = nxt
             trail.append(i)
@@ -606,11 +609,17 @@ def _window(data, ic, sign, min_half, max_half, wide=False):
             if di > best + max(3.0 * noise, 5e-3) and dist >= 0.5 * min_half:
                 end, level, cut = best_i, 1.0, True
                 break
-            if dist >= 2.0 * min_half and not wide:
-                # (not for hydrogen: Stark wings fall off slowly yet carry much of the EW)
+            if not wide and dist >= 2.0 * min_half:
                 # the pixel one instrument FWHM back toward the centre
                 back = trail[max(len(trail) - 1 - int(np.ceil(min_half / data.dx[i])), 0)]
                 if depth[back] - di < max(2.0 * noise, 0.01 * d0):
+                    end, level = i, smooth[i]
+                    break
+            elif wide and dist >= 10.0 * min_half:
+                # hydrogen: Stark wings fall off slowly yet carry much of the EW, so the
+                # plateau test looks five widths back and asks for a 10% relative fall
+                back = trail[max(len(trail) - 1 - int(np.ceil(5.0 * min_half / data.dx[i])), 0)]
+                if depth[back] - di < max(2.0 * noise, 0.1 * di):
                     end, level = i, smooth[i]
                     break
         # a plateau within the noise of the continuum is the continuum
@@ -929,7 +938,7 @@ def measure(spectrum, linelist=None, rv=0 * u.km / u.s, resolving_power=None, pr
         # the matched filter and standing out of its surroundings by min_depth)
         detected[i] = matched and sign * s_c >= detect_sigma
         emission[i] = sign < 0
-        max_half = max(60.0 * fw, 40.0) if is_h[i] else 25.0 * fw
+        max_half = max(25.0 * fw, 80.0) if is_h[i] else 25.0 * fw
         if matched:
             lo, hi, levels, cut = _window(data, ic, sign, fw, max_half, wide=bool(is_h[i]))
         else:
@@ -995,14 +1004,17 @@ def measure(spectrum, linelist=None, rv=0 * u.km / u.s, resolving_power=None, pr
             else:
                 fit = _fit_gauss(data, lo, hi, cont, centres, max_shift, fw / GAUSS_FWHM, sign)
         if fit is not None:
-            fits[i] = dict(fit, profile="voigt" if use_voigt else "gauss", sign=sign)
+            fits[i] = dict(fit, profile="voigt" if use_voigt else "gauss", sign=sign, ew_int=ew_int)
             cols["ew_fit"][i], cols["ew_fit_err"][i] = fit["ew"], fit["ew_err"]
             cols["fwhm"][i] = fit["fwhm"]
             cols["wave_obs"][i] = fit["centre"]
             prof_used[i] = "voigt" if use_voigt else "gauss"
         else:
             cols["fwhm"][i] = _half_width(data, ic, lo, hi, sign)
-        if fit is not None and (cut or n_extra or is_h[i]):
+        # hydrogen lines are integrated: on real low-resolution spectra the continuum
+        # errors under their broad wings make free Voigt fits unreliable (measured on the
+        # JHC library); the fit is reported in ew_fit and used to divide hydrogen out
+        if fit is not None and (cut or n_extra) and not is_h[i]:
             method[i] = ("multi_" if n_extra else "") + prof_used[i] + "_fit"
             cols["ew"][i], cols["ew_err"][i] = fit["ew"], fit["ew_err"]
         else:
