@@ -394,7 +394,7 @@ def _blends(waves, ids, fwhm):
     order = np.argsort(waves)
     ws = waves[order]
     out = [""] * len(waves)
-    for k, i in enumerate(order):
+    for i in order:
         lo = np.searchsorted(ws, waves[i] - fwhm[i])
         hi = np.searchsorted(ws, waves[i] + fwhm[i], side="right")
         others = [ids[order[j]] for j in range(lo, hi) if order[j] != i]
@@ -402,7 +402,7 @@ def _blends(waves, ids, fwhm):
     return out
 
 
-def _resolve_rv(data, rv, table, lab):
+def _resolve_rv(data, rv, lab):
     if rv is not None:
         return u.Quantity(rv, u.km / u.s)
     # crude estimate: offsets of the strongest features to their nearest listed line within
@@ -482,7 +482,7 @@ def identify(spectrum, linelist=None, rv=0 * u.km / u.s, resolving_power=None, w
     table = _prepare_list(linelist, None)
     col = _lab_column(data)
     lab_all = table[col].to_value(u.AA)
-    rv_q = _resolve_rv(data, rv, table, lab_all)
+    rv_q = _resolve_rv(data, rv, lab_all)
     factor = doppler_factor(rv_q)
     pred_all = lab_all * factor
     cov = _covered(data, pred_all)
@@ -890,7 +890,7 @@ def measure(spectrum, linelist=None, rv=0 * u.km / u.s, resolving_power=None, pr
     table = _prepare_list(linelist, kinds)
     col = _lab_column(data)
     lab_all = table[col].to_value(u.AA)
-    rv_q = _resolve_rv(data, rv, table, lab_all)
+    rv_q = _resolve_rv(data, rv, lab_all)
     factor = doppler_factor(rv_q)
     pred_all = lab_all * factor
     cov = _covered(data, pred_all)
@@ -904,7 +904,7 @@ def measure(spectrum, linelist=None, rv=0 * u.km / u.s, resolving_power=None, pr
                else np.full(n, u.Quantity(window, u.km / u.s).value))
     win = pred * win_kms / C_KMS
     blend = _blends(pred, ids, fwhm_at) if n else []
-    pos, fsig, _, femis = _features(data, detect_sigma, min_depth)
+    pos, _, _, femis = _features(data, detect_sigma, min_depth)
     is_h = np.array([s == "H I" for s in species], bool)
 
     cols = {k: np.full(n, np.nan) for k in ("wave_obs", "ew", "ew_err", "ew_err_cayrel", "ew_int",
@@ -1160,7 +1160,7 @@ def band_indices(spectrum, bands=None, rv=0 * u.km / u.s):
     factor = doppler_factor(rv)
     names, values, errs, units = [], [], [], []
     for row in table:
-        def edge(name):
+        def edge(name, row=row):
             return float(u.Quantity(row[name + suffix], u.AA).value) * factor
 
         fmin, fmax = edge("feature_min"), edge("feature_max")

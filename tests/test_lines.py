@@ -376,7 +376,7 @@ def jhc_balmer(jhc1984, jhc_catalog):
 def test_balmer_lines_identified_in_every_a_star(jhc_balmer):
     a_stars = [r for r in jhc_balmer if r[3] is not None]
     assert len(a_stars) >= 10
-    for code, mk, _, ident in a_stars:
+    for _, mk, _, ident in a_stars:
         for lid in ("H_alpha", "H_beta", "H_gamma"):
             row = ident[list(ident["id"]).index(lid)]
             assert row["status"] == "identified", (mk, lid)

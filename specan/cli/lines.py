@@ -64,7 +64,7 @@ def command(ctx, files, linelist, bands, rv, profile, show_all, as_json, **kwarg
         try:
             rv_q = float(rv) * u.km / u.s
         except ValueError:
-            raise click.BadParameter(f"{rv!r} is neither a number (km/s) nor 'auto'", param_hint="--rv")
+            raise click.BadParameter(f"{rv!r} is neither a number (km/s) nor 'auto'", param_hint="--rv") from None
     overrides = overrides_from(kwargs)
     options = {"linelist": linelist, "bands": bands, "rv": rv_q, "profile": profile}
 
