@@ -554,6 +554,28 @@ def _peak(corr, pad, smax, min_overlap, total_weight):
     return int(s[j]), float(vals[j])
 
 
+def _quick_peak(d_ffts, template, vrows, pad, m, smax, min_overlap, total_weight):
+    """Integer-lag peak height of one template, reusing the coverage rows shared by the synthetic grid."""
+    A1, A2, _ = d_ffts
+    BT, BT2, _ = template.ffts(m)
+    c = sfft.irfft(np.stack([np.conj(A1) * BT, np.conj(A2) * BT, np.conj(A2) * BT2]), m, axis=1)
+    ccf, c2v = _Correlation.combine((c[0], c[1], c[2], vrows[0], vrows[1], vrows[2]))
+    k = np.arange(0, 2 * pad + 1)
+    s = pad - k
+    vals = ccf[k]
+    ok = (np.abs(s) <= smax) & (c2v[k] >= min_overlap * total_weight) & np.isfinite(vals)
+    if not ok.any():
+        return None
+    j = np.argmax(np.where(ok, vals, -np.inf))
+    return int(s[j]), float(vals[j])
+
+
+def _coverage_rows(d_ffts, template, m):
+    A1, A2, A3 = d_ffts
+    BV = template.ffts(m)[2]
+    return sfft.irfft(np.stack([np.conj(A1) * BV, np.conj(A3) * BV, np.conj(A2) * BV]), m, axis=1)
+
+
 def _refine(corr, s_int):
     """Sub-pixel peak of the Fourier-interpolated CCF: (lag, height, curvature)."""
     x0 = float(s_int)
@@ -758,10 +780,12 @@ def measure(spectrum, template=None, *, reference=None, template_rv=0 * u.km / u
         if sptype is None:
             grid_types = tuple(template_grid or synth.TEMPLATE_TYPES)
             best = None
+            vrows = None
             for st, lc in grid_types:
                 t = _synthetic_template(st, lc, r_key, round(ln0, 12), step, next_, hp_sigma=hp)
-                corr = _Correlation(arrays, t, pad, m, d_ffts)
-                pk = _peak(corr, pad, smax, min_overlap, total_w)
+                if vrows is None:  # every synthetic template has the same coverage
+                    vrows = _coverage_rows(d_ffts, t, m)
+                pk = _quick_peak(d_ffts, t, vrows, pad, m, smax, min_overlap, total_w)
                 if pk is None:
                     continue
                 scores[t.name] = pk[1]
@@ -780,7 +804,7 @@ def measure(spectrum, template=None, *, reference=None, template_rv=0 * u.km / u
             for fac in _R_SCAN:
                 rr = float(f"{res_r * fac:.3g}")
                 t = _synthetic_template(sptype, lumclass, rr, round(ln0, 12), step, next_, kind=tkind, hp_sigma=hp)
-                pk = _peak(_Correlation(arrays, t, pad, m, d_ffts), pad, smax, min_overlap, total_w)
+                pk = _quick_peak(d_ffts, t, _coverage_rows(d_ffts, t, m), pad, m, smax, min_overlap, total_w)
                 if pk is not None and (best is None or pk[1] > best[0]):
                     best = (pk[1], rr, t)
             if best is not None:
@@ -934,13 +958,12 @@ def _resample_error(data, weight, template, pad, m, s0, err_px, k, seed, hp):
     noise = rng.normal(size=(data.native_flux.size, k)) * data.native_sigma[:, None]
     # the same cubic interpolation the data went through, applied to each realisation
     f = make_interp_spline(data.spline_x, data.native_flux[:, None] + noise, k=_SPLINE_K, axis=0)(data.grid)  # (n, k)
-    d = _highpass(f - 1.0, hp, data.valid)
-    mean = (weight @ d) / weight.sum()
-    d = d - mean
-    a1 = weight[:, None] * d
-    a3 = weight[:, None] * d * d
-    A1 = sfft.rfft(a1, m, axis=0).T
-    A3 = sfft.rfft(a3, m, axis=0).T
+    d = np.ascontiguousarray(_highpass(f - 1.0, hp, data.valid).T)  # (k, n): rows are realisations
+    d -= (d @ weight)[:, None] / weight.sum()
+    a1 = d * weight
+    a3 = a1 * d
+    A1 = sfft.rfft(a1, m, axis=1)  # (k, nf), C-contiguous
+    A3 = sfft.rfft(a3, m, axis=1)
     A2 = sfft.rfft(weight, m)
     BT, BT2, BV = template.ffts(m)
     nf = A2.size
@@ -952,20 +975,26 @@ def _resample_error(data, weight, template, pad, m, s0, err_px, k, seed, hp):
     h = float(np.clip(3.0 * (err_px if np.isfinite(err_px) else 0.2), 0.05, 0.6))
     offs = np.linspace(-h, h, 5)
     ph = np.exp(2j * np.pi * np.outer(freq, pad - (s0 + offs)) / m) * wts[:, None]  # (nf, 5)
-
-    def ev(X, kmax=nf):
-        return (X[..., :kmax] @ ph[:kmax]).real / m
-
     # the coverage window is smooth: its spectrum (and the terms it multiplies) ends early
     pv = np.abs(BV) ** 2
     tail = np.cumsum(pv[::-1])[::-1] / pv.sum()
     kv = int(np.searchsorted(-tail, -1e-14)) + 1
-    c1t = ev(np.conj(A1) * BT)  # (k, 5)
-    c1v = ev(np.conj(A1[:, :kv]) * BV[:kv], kv)
-    c3v = ev(np.conj(A3[:, :kv]) * BV[:kv], kv)
-    c2t = ev((np.conj(A2) * BT)[None, :])
-    c2t2 = ev((np.conj(A2) * BT2)[None, :])
-    c2v = ev((np.conj(A2) * BV)[None, :])
+
+    def ev(A, B, kmax=nf):
+        # sum_f Re(conj(A_f) B_f ph_f) for every row of A, as one real matrix product on the
+        # interleaved (re, im) view: Re(conj(a) p) = a.re p.re + a.im p.im
+        p = B[:kmax, None] * ph[:kmax]
+        pint = np.empty((2 * kmax, p.shape[1]))
+        pint[0::2], pint[1::2] = p.real, p.imag
+        a = np.ascontiguousarray(np.atleast_2d(A)[:, :kmax]).view(np.float64)
+        return (a @ pint) / m
+
+    c1t = ev(A1, BT)  # (k, 5)
+    c1v = ev(A1, BV, kv)
+    c3v = ev(A3, BV, kv)
+    c2t = ev(A2, BT)
+    c2t2 = ev(A2, BT2)
+    c2v = ev(A2, BV)
     ccf, _ = _Correlation.combine((c1t, c2t, c2t2, c1v, c3v, c2v))
     # cubic through the stencil of each realisation; its maximum near the centre (Newton)
     coef = np.polynomial.polynomial.polyfit(offs, ccf.T, 3)  # (4, k)
