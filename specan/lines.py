@@ -1220,8 +1220,9 @@ def band_indices(spectrum, bands=None, rv=0 * u.km / u.s):
     return out
 
 
-def analyse(spectrum, linelist=None, bands=None, rv=0 * u.km / u.s, resolving_power=None, **options):
-    """Lines and band indices of one spectrum, preparing it once.
+def analyse(spectrum, linelist=None, bands=None, rv=0 * u.km / u.s, resolving_power=None,
+            unidentified=True, **options):
+    """Lines, band indices and unidentified features of one spectrum, preparing it once.
 
     Parameters
     ----------
@@ -1231,15 +1232,23 @@ def analyse(spectrum, linelist=None, bands=None, rv=0 * u.km / u.s, resolving_po
     rv : Quantity or None
         Radial velocity (``None``: estimated by :func:`measure`; the indices use it too).
     resolving_power : float, optional
+    unidentified : bool
+        Also run :func:`identify` and return its unidentified strong features.
     **options
         Passed to :func:`measure`.
 
     Returns
     -------
     dict
-        ``{"lines": QTable from measure, "indices": QTable from band_indices}``.
+        ``{"lines": QTable from measure, "indices": QTable from band_indices,
+        "unidentified": rows of identify with status "unidentified" (or None)}``.
     """
     spec = _normalised(spectrum)
     table = measure(spec, linelist, rv=rv, resolving_power=resolving_power, **options)
     indices = band_indices(spec, bands, rv=table.meta["rv"])
-    return {"lines": table, "indices": indices}
+    unknown = None
+    if unidentified:
+        ident = identify(spec, linelist, rv=table.meta["rv"], resolving_power=resolving_power,
+                         **{k: v for k, v in options.items() if k in ("window", "detect_sigma", "min_depth")})
+        unknown = ident[np.asarray(ident["status"]) == "unidentified"]
+    return {"lines": table, "indices": indices, "unidentified": unknown}

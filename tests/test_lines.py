@@ -428,6 +428,7 @@ def test_cli_lines_json_and_table(tmp_path):
         assert key in row
     assert row["detected"] and row["ew_aa"] == pytest.approx(0.4, rel=0.15)
     assert "NaD" in d["indices"] and set(d["indices"]["NaD"]) >= {"value", "err"}
+    assert d["unidentified"] == []  # every line put in is listed
     res = runner.invoke(cli, ["lines", str(path), "--resolving-power", "2500"])
     assert res.exit_code == 0 and "NaI_D2" in res.output and "indices:" in res.output
     missing = runner.invoke(cli, ["lines", str(tmp_path / "absent.fits"), "--json"])

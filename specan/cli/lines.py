@@ -30,11 +30,14 @@ def lines_file(path, overrides, options):
         })
     idx = {str(r["name"]): {"value": float(r["value"]), "err": float(r["err"]), "unit": str(r["unit"])}
            for r in indices}
+    unknown = [{"wave_obs_aa": _aa(r["wave_obs"]), "depth": float(r["depth"]),
+                "significance": float(r["significance"]), "emission": bool(r["emission"])}
+               for r in (res["unidentified"] if res["unidentified"] is not None else [])]
     meta = table.meta
     return {"file": str(path), "rv_kms": float(meta["rv"].to_value("km/s")),
             "resolving_power": meta["resolving_power"],
             "resolving_power_source": meta["resolving_power_source"], "medium": meta["medium"],
-            "lines": rows, "indices": idx}
+            "lines": rows, "indices": idx, "unidentified": unknown}
 
 
 def _fmt(v, spec):
@@ -90,6 +93,9 @@ def command(ctx, files, linelist, bands, rv, profile, show_all, as_json, **kwarg
             click.echo(f"  {r['id']:<12} {lab:9.2f} {_fmt(r['wave_obs_aa'], '9.2f')} "
                        f"{_fmt(r['ew_aa'], '8.3f')} {_fmt(r['ew_err_aa'], '7.3f')} "
                        f"{_fmt(r['fwhm_aa'], '6.2f')} {_fmt(r['depth'], '6.3f')}  {'; '.join(notes)}")
+        if d["unidentified"]:
+            click.echo("  unidentified strong features: " + ", ".join(
+                f"{u['wave_obs_aa']:.1f}{' (emission)' if u['emission'] else ''}" for u in d["unidentified"]))
         shown = {k: v for k, v in d["indices"].items() if v["value"] == v["value"]}
         if shown:
             click.echo("  indices: " + ", ".join(
