@@ -158,7 +158,7 @@ CRITERIA = {
                      source="Lick Ca4227 bands, Worthey et al. (1994); Gray & Corbally (2009) ch. 7 (from memory)"),
     "fe_ii_4173": dict(feature=[(4170.0, 4180.0)], blue=(4160.0, 4167.0), red=(4183.0, 4190.0),
                        tracks="Fe II/Ti II 4172-4178: luminosity in A-F", source="Gray & Corbally (2009) ch. 6 (from memory)"),
-    "fei_4144": dict(feature=[(4140.0, 4148.0)], blue=(4160.0, 4167.0), red=(4183.0, 4190.0),
+    "fei_4144": dict(feature=[(4140.0, 4148.0)], blue=(4130.0, 4137.0), red=(4160.0, 4167.0),
                      tracks="Fe I 4144: reference for Fe II/Ti II 4172-4178", source="Gray & Corbally (2009) ch. 6 (from memory)"),
     "cri_4254": dict(feature=[(4250.0, 4258.0)], blue=(4241.0, 4248.0), red=(4262.0, 4268.0),
                      tracks="Cr I 4254: G-K", source="Gray & Corbally (2009) ch. 7 (from memory)"),
@@ -1204,3 +1204,10 @@ def classify(spectrum, calibration=None, rv=None):
     elif not isinstance(calibration, Calibration):
         calibration = Calibration.load(calibration)
     return calibration.classify(spectrum, rv=rv)
+
+
+# ``specan.classify`` is both this module and, by the public API, a function:
+# make the module callable as :func:`classify` (see specan/_callable.py).
+from ._callable import make_callable as _make_callable  # noqa: E402
+
+_make_callable(__name__, "classify")
