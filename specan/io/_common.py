@@ -134,6 +134,18 @@ def _card(header, *names):
     return None
 
 
+def _float_card(header, info, *names):
+    """A numeric card's value as float, or None (with a warning when it is not a number)."""
+    value = _card(header, *names)
+    if value is None:
+        return None
+    try:
+        return float(value)
+    except (TypeError, ValueError):
+        info.warn(f"{names[0]} {value!r} is not a number; ignored")
+        return None
+
+
 def _time(value, fmt, scale):
     try:
         if fmt == "mjd":
@@ -162,12 +174,9 @@ def header_metadata(header, info: ObsInfo) -> ObsInfo:
     if scale not in ("utc", "tt", "tai", "tdb", "tcb", "tcg", "ut1"):
         info.warn(f"TIMESYS {scale!r} not understood; UTC assumed")
         scale = "utc"
-    exptime = _card(header, "EXPTIME", "EXPOSURE", "TELAPSE")
+    exptime = _float_card(header, info, "EXPTIME", "EXPOSURE", "TELAPSE")
     if exptime is not None:
-        try:
-            info.exptime = float(exptime) * u.s
-        except (TypeError, ValueError):
-            info.warn(f"EXPTIME {exptime!r} is not a number; ignored")
+        info.exptime = exptime * u.s
 
     mid = _card(header, "DATE-AVG")
     if mid is not None:
@@ -212,12 +221,7 @@ def header_metadata(header, info: ObsInfo) -> ObsInfo:
     radesys = _card(header, "RADESYS", "RADECSYS")
     if radesys is not None:
         info.radesys = str(radesys).strip().upper()
-    equinox = _card(header, "EQUINOX", "EPOCH")
-    if equinox is not None:
-        try:
-            info.equinox = float(equinox)
-        except (TypeError, ValueError):
-            info.warn(f"EQUINOX {equinox!r} is not a number; ignored")
+    info.equinox = _float_card(header, info, "EQUINOX", "EPOCH")
     if info.radesys is None and info.equinox is not None and info.ra_deg is not None:
         # FITS standard: without RADESYS, EQUINOX < 1984 means FK4, otherwise FK5.
         info.radesys = "FK4" if info.equinox < 1984.0 else "FK5"
@@ -243,12 +247,7 @@ def header_metadata(header, info: ObsInfo) -> ObsInfo:
     else:
         info.medium, info.medium_assumed = _medium_from_cards(header)
 
-    rp = _card(header, "SPEC_RP", "RESPOWER")
-    if rp is not None:
-        try:
-            info.resolving_power = float(rp)
-        except (TypeError, ValueError):
-            info.warn(f"resolving power {rp!r} is not a number; ignored")
+    info.resolving_power = _float_card(header, info, "SPEC_RP", "RESPOWER")
     return info
 
 
