@@ -72,7 +72,8 @@ def read(path, hdul=None, hdu=None, wave_unit=None, **_):
         raise ReadError(f"columns {wcol} ({wave.size}) and {fcol} ({flux.size}) differ in length", path)
     tunit = h.columns[wcol].unit
     if wcol.upper() == "LOGLAM":
-        wave = 10.0 ** wave
+        with np.errstate(over="ignore"):
+            wave = 10.0 ** wave  # overflow -> inf, rejected later as not finite
         import astropy.units as u
 
         unit, source = u.AA, "LOGLAM (log10 Angstrom)"
