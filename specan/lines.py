@@ -839,10 +839,17 @@ def measure(spectrum, linelist=None, rv=0 * u.km / u.s, resolving_power=None, pr
     Per line: the centre is the matched feature (see :func:`identify`) or the
     Doppler-shifted laboratory wavelength. The equivalent width is integrated
     directly over an adaptive window (outward until the smoothed flux is back at
-    the continuum or a neighbouring line begins) and fitted with a profile (one
-    component per listed line inside the window, shared shift and width). ``ew``
-    is the direct integral for isolated lines and the fit when the window was cut
-    by a neighbour or holds other listed lines (``method`` says which).
+    the continuum, levels off on a pseudo-continuum, or a neighbouring line
+    begins; the local continuum is taken from the window edges) and fitted with a
+    profile (one component per listed line and per unlisted feature inside the
+    window; shared shift and width, the width held near the spectrum's line
+    width). ``ew`` is the direct integral for isolated lines and the fit when the
+    window was cut by a neighbour or holds other components (``method`` says
+    which); hydrogen lines are always integrated (their fit is in ``ew_fit``).
+    Hydrogen is measured first and its fitted profiles divided out before the
+    other lines are measured, so lines in Balmer wings are measured against the
+    wing. Lines with no feature found are not ``detected``; their EW is
+    integrated over +-1 line width against the local level (an upper limit).
     Uncertainties: ``ew_err`` from the error array (or DER_SNR noise), and
     ``ew_err_cayrel`` from Cayrel (1988). Emission lines get negative equivalent
     widths and ``emission`` True.
@@ -858,8 +865,8 @@ def measure(spectrum, linelist=None, rv=0 * u.km / u.s, resolving_power=None, pr
     resolving_power : float, optional
         Overrides ``info.resolving_power``.
     profile : {"auto", "gauss", "voigt"}
-        Fitted profile; ``"auto"`` uses Voigt for hydrogen lines and lines much
-        broader than the instrument, Gaussian otherwise.
+        Fitted profile; ``"auto"`` uses Voigt for hydrogen lines and for very deep
+        (> 0.7) lines with windows over four line widths wide, Gaussian otherwise.
     window : Quantity, optional
         Matching half-window in velocity (see :func:`identify`).
     detect_sigma : float
