@@ -119,7 +119,8 @@ def _snr_arrays(wave, flux, err, mask, path=None):
     if good.sum() < 10:
         raise AnalysisError("fewer than 10 usable pixels: cannot measure S/N", path)
     packed = Spectrum(spectral_axis=wave[good] * u.AA, flux=flux[good] * u.dimensionless_unscaled)
-    value = float(snr_derived(packed).value)
+    with np.errstate(divide="ignore", invalid="ignore"):  # noiseless models: S/N infinite -> None
+        value = float(snr_derived(packed).value)
     from_err = None
     if err is not None:
         ok = good & np.isfinite(err) & (err > 0)
