@@ -105,7 +105,7 @@ CORE_COLUMNS = (
                      "not_run: the run was interrupted before this input"),
     ("reason", None, "why a stage failed or declined, one clause per stage"),
     ("flags", None, "comma-separated flags raised by the stages, plus emission_lines (the lines "
-                    "stage detected lines in emission) and low_snr (S/N per pixel below LOW_SNR)"),
+                    "stage detected H alpha or H beta in emission) and low_snr (S/N per pixel below LOW_SNR)"),
     ("stages_run", None, "stages that produced a result for this input"),
     ("mjd_mid", "d", "mid-exposure MJD (UTC)"),
     ("exptime", "s", "exposure time"),
@@ -399,9 +399,15 @@ def _lines_columns(rec, table):
     if "emission" in cols:
         emission = np.asarray(table["emission"], bool) & detected
         rec.set("n_emission", int(emission.sum()))
-        if emission.any():
+        # An emission-line star (Be, Me, T Tauri...) is recognised by its Balmer
+        # lines, H alpha first (common practice); a single weak metal "emission"
+        # is more often a continuum ripple than a star worth a second look.
+        if "id" in cols and any(str(i) in EMISSION_FLAG_LINES for i in table["id"][emission]):
             rec.add_flags(["emission_lines"])
 
+
+#: Lines whose detection in emission raises the ``emission_lines`` flag.
+EMISSION_FLAG_LINES = ("H_alpha", "H_beta")
 
 #: S/N per pixel below which a spectrum is flagged ``low_snr``: the classification
 #: criteria and line measurements become unreliable well before S/N 20 at R ~ 2000

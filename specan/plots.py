@@ -195,12 +195,20 @@ def _draw_criteria(ax, classification):
         names.append(str(name))
         star.append(float(getattr(s, "value", s)) if s is not None else np.nan)
         standard.append(float(getattr(ref, "value", ref)) if ref is not None else np.nan)
+    names, star, standard = np.asarray(names), np.asarray(star, float), np.asarray(standard, float)
+    # the strongest features at this type, or fifty labels would hide each other
+    strength = np.nan_to_num(np.fmax(np.abs(star), np.abs(standard)), nan=-1.0)
+    keep = np.sort(np.argsort(strength)[::-1][:15])
+    names, star, standard = names[keep], star[keep], standard[keep]
     y = np.arange(len(names))
     ax.scatter(star, y, color="k", s=10, label="this star", zorder=3)
     if np.isfinite(standard).any():
         ax.scatter(standard, y, facecolor="none", edgecolor="tab:red", s=25, label="standard")
     ax.set_yticks(y, names, fontsize=6)
     ax.legend(fontsize=6, loc="best")
+    mk = classification.get("mk")
+    ax.set_title(f"strongest criteria, against the standards' relations at {mk}" if mk else
+                 "strongest criteria", fontsize=7)
     ax.set_xlabel("criterion value")
 
 
