@@ -413,7 +413,7 @@ def _cover_taper(valid, ntap=8):
     return np.where(valid, 0.5 - 0.5 * np.cos(np.pi * np.clip(dist / ntap, 0, 1)), 0.0)
 
 
-@functools.lru_cache(maxsize=48)  # the 14-type grid for a few instrument set-ups
+@functools.lru_cache(maxsize=160)  # the 14-type grid and refinements for a few instrument set-ups
 def _synthetic_template(sptype, lumclass, resolving_power, ln0, step, n, kind="synth", hp_sigma=None):
     from . import synth
 
@@ -793,6 +793,19 @@ def measure(spectrum, template=None, *, reference=None, template_rv=0 * u.km / u
                     best = (pk[1], st, lc)
             if best is None:
                 raise AnalysisError("no template correlates with the spectrum", info.path)
+            # refine around the best grid type: neighbouring subtypes and the other luminosity classes
+            from .mktypes import code_to_sptype, sptype_to_code
+
+            code0 = sptype_to_code(best[1])
+            near = {(code_to_sptype(min(max(code0 + dc, 0.0), 69.0), 1), best[2]) for dc in (-3, -1.5, 1.5, 3)}
+            near |= {(best[1], lc) for lc in ("V", "III", "I") if lc != best[2]}
+            for st, lc in sorted(near - set(grid_types)):
+                t = _synthetic_template(st, lc, r_key, round(ln0, 12), step, next_, hp_sigma=hp)
+                pk = _quick_peak(d_ffts, t, vrows, pad, m, smax, min_overlap, total_w)
+                if pk is not None:
+                    scores[t.name] = pk[1]
+                    if pk[1] > best[0]:
+                        best = (pk[1], st, lc)
             sptype, lumclass = best[1], best[2]
             notes.append(f"template chosen automatically: best normalised correlation of {len(scores)} "
                          f"synthetic types ({sptype} {lumclass}, {best[0]:.3f})")
@@ -855,7 +868,18 @@ def measure(spectrum, template=None, *, reference=None, template_rv=0 * u.km / u
         notes.append(f"empirical error from {n_resample} noise realisations ({data.noise_source})")
 
     # second peak: residual after removing the single-star CCF shape
-    second = _second_peak(resid, vals, j, s0, h, sig_a, smax, composite_min_ratio, composite_min_sigma)
+    second = _second_peak(resid, model, j, s0, h, sig_a, smax, composite_min_ratio, composite_min_sigma)
+    if second is not None:
+        fit = _two_component_fit(vals, model, j, s0, h, *second) if model is not None else None
+        if fit is not None:
+            s1, s2, h1, h2 = fit
+            if h2 > h1:  # the primary is the stronger correlation
+                s1, s2 = s2, s1
+            s0, second = s1, s2
+            notes.append("composite: both velocities from a two-component fit of the CCF (single-star shape "
+                         "of the template); rv_err is that of the blended peak")
+        else:
+            second = second[0]
     second_rv = None
 
     # velocities: shift -> topocentric (template's own velocity composed) -> barycentric
@@ -1029,11 +1053,15 @@ def _single_star_ccf(template, valid, weight, pad, m, s0, half):
     return mvals / mvals[half]
 
 
-def _second_peak(resid, vals, j, s0, h, sig_a, smax, min_ratio, min_sigma):
-    """Lag of a significant second peak in the residual CCF, or None."""
+def _second_peak(resid, model, j, s0, h, sig_a, smax, min_ratio, min_sigma):
+    """Lag of a significant second peak in the residual CCF, or None.
+
+    Only the core of the single-star shape (its half width at half maximum) is excluded, so a
+    companion blended into the wing of the main peak still shows in the residual.
+    """
     lag = s0 + j
-    fw = _fwhm_pixels(j, vals, h)
-    excl = np.abs(j) <= max(1.0 * (fw if np.isfinite(fw) else 3.0), 2.0)
+    hw = 0.5 * _fwhm_pixels(j, model, 1.0) if model is not None else float("nan")
+    excl = np.abs(j) <= max(hw if np.isfinite(hw) else 2.0, 2.0)
     ok = ~excl & (np.abs(lag) <= smax) & np.isfinite(resid)
     if not ok.any():
         return None
@@ -1044,4 +1072,31 @@ def _second_peak(resid, vals, j, s0, h, sig_a, smax, min_ratio, min_sigma):
     y0, y1, y2 = resid[i - 1], resid[i], resid[i + 1]
     den = y0 - 2 * y1 + y2
     d = 0.5 * (y0 - y2) / den if den < 0 else 0.0
-    return float(lag[i] + d)
+    return float(lag[i] + d), float(resid[i])
+
+
+def _two_component_fit(vals, model, j, s0, h, s2, h2):
+    """Deblend a composite CCF: vals ~ h1 M(j - d1) + h2 M(j - d2), M the single-star shape.
+
+    Returns (s1, s2, h1, h2) or None when the fit fails.
+    """
+    from scipy.optimize import least_squares
+
+    shape = make_interp_spline(j.astype(float), model, k=3)
+    d2 = s2 - s0
+    win = np.abs(j) <= abs(d2) + 2.0 * max(2.0, _fwhm_pixels(j, model, 1.0))
+    jj, yy = j[win].astype(float), vals[win]
+    lo, hi = jj[0] + 1, jj[-1] - 1
+
+    def resid(p):
+        h1, a1, hb, a2 = p
+        return h1 * shape(np.clip(jj - a1, j[0], j[-1])) + hb * shape(np.clip(jj - a2, j[0], j[-1])) - yy
+
+    try:
+        fit = least_squares(resid, [h, 0.0, h2, d2], bounds=([0, lo, 0, lo], [2, hi, 2, hi]))
+    except ValueError:
+        return None
+    if not fit.success:
+        return None
+    h1, a1, hb, a2 = fit.x
+    return s0 + a1, s0 + a2, h1, hb
