@@ -475,6 +475,13 @@ def test_composite_spectrum_second_peak():
     assert "composite" in res["flags"]
     assert res["rv"].to_value(KMS) == pytest.approx(-120, abs=8)
     assert res["second_peak_rv"].to_value(KMS) == pytest.approx(180, abs=15)
+    # blended: separation ~2 resolution elements (R = 4000), different types
+    b2 = synth.binary(("F8", "V"), ("G4", "V"), rv1=-67 * KMS, rv2=88 * KMS, light_ratio=0.6,
+                      resolving_power=4000, snr=150, seed=5)
+    res2 = velocity.measure(b2)
+    assert "composite" in res2["flags"]
+    assert res2["rv"].to_value(KMS) == pytest.approx(-67, abs=5)
+    assert res2["second_peak_rv"].to_value(KMS) == pytest.approx(88, abs=20)
     # single stars are not flagged
     for sp in ("B5", "A0", "G2", "M2"):
         single = velocity.measure(synth.spectrum(sp, resolving_power=5000, rv=30 * KMS, snr=50, seed=9))
