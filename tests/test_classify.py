@@ -384,6 +384,11 @@ def test_load_rejects_other_files(tmp_path):
         C.Calibration.load(bad)
     with pytest.raises(ReadError, match="not found"):
         C.Calibration.load(tmp_path / "missing.json")
+    # a calibration measured with other band limits must not be applied silently
+    data = C.default_calibration().to_dict()
+    data["criteria"][0]["blue"] = [4500.0, 4510.0]
+    with pytest.raises(ReadError, match="other criteria definitions"):
+        C.Calibration.from_dict(data)
 
 
 def test_default_calibration_provenance():
