@@ -10,6 +10,9 @@
    noise) by S/N and resolving power, matched template.
 
 Run:  python benchmarks/bench_velocity.py [--quick]
+
+Timings depend on the machine's load; on a shared machine OPENBLAS_NUM_THREADS=1 avoids BLAS
+threads fighting other processes (the figures in the README were measured that way).
 """
 
 from __future__ import annotations
@@ -150,7 +153,7 @@ def crb_table(model, n):
 def auto_speed():
     from specan import synth
 
-    print("\n== specan.velocity.measure timing, automatic template (14 synthetic types), R = 2000 ==")
+    print("\n== specan.velocity.measure timing, automatic template (14-type grid + refinement), R = 2000 ==")
     s = synth.spectrum("K1", "III", rv=-321 * KMS, snr=50, seed=1)
     velocity.measure(s)  # templates built and cached
     for errors in ("both", "td"):
@@ -164,7 +167,10 @@ def auto_speed():
 
 
 if __name__ == "__main__":
+    import os
+
     quick = "--quick" in sys.argv
+    print(f"OPENBLAS_NUM_THREADS={os.environ.get('OPENBLAS_NUM_THREADS', 'unset')}")
     model = kurucz()
     n = 10 if quick else 30
     for snr in (30, 100):
