@@ -12,7 +12,7 @@
 Run:  python benchmarks/bench_velocity.py [--quick]
 
 Timings depend on the machine's load; on a shared machine OPENBLAS_NUM_THREADS=1 avoids BLAS
-threads fighting other processes (the figures in the README were measured that way).
+threads fighting other processes (the figures in the issue-4 report were measured that way).
 """
 
 from __future__ import annotations
