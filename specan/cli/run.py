@@ -43,7 +43,7 @@ def command(paths, out_dir, jobs, dask_address, force, formats, no_plots, photom
     """
     from ..pipeline import RunInterrupted, run
 
-    from ..pipeline import STAGES
+    from ..pipeline import SPECTRUM_SUFFIXES, STAGES
 
     wanted = [s.strip() for s in stages.split(",") if s.strip()] if stages else None
     names = [name for name, _, _ in STAGES]
@@ -60,7 +60,10 @@ def command(paths, out_dir, jobs, dask_address, force, formats, no_plots, photom
         click.echo(f"specan: interrupted; catalogue of what was done written to {s.outputs.get('ecsv')} "
                    f"({s.counts.get('not_run', 0)} inputs not run; rerun to finish)", err=True)
         raise SystemExit(130)
-    counts = ", ".join(f"{n} {k}" for k, n in sorted(summary.counts.items()))
+    if len(summary.catalogue) == 0:
+        click.echo("specan: warning: no spectra found (folders are searched for files ending in "
+                   f"{', '.join(SPECTRUM_SUFFIXES)}; name other files explicitly)", err=True)
+    counts = ", ".join(f"{n} {k}" for k, n in sorted(summary.counts.items())) or "nothing to do"
     click.echo(f"{len(summary.catalogue)} inputs ({counts}; {summary.reused} already current) "
                f"in {summary.seconds:.1f} s")
     not_run = [f"{n} ({why})" for n, why in summary.stages.items() if why is not None]
