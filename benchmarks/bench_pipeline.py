@@ -28,6 +28,7 @@ from __future__ import annotations
 
 import argparse
 import os
+import shutil
 import subprocess
 import sys
 import tempfile
@@ -110,7 +111,8 @@ def main(argv=None):
     t0 = time.perf_counter()
     make_spectra(work / "spectra_all", max(counts))
     print(f"# wrote {max(counts)} spectra in {time.perf_counter() - t0:.1f} s to {work}")
-    print(f"# python {sys.version.split()[0]}, {os.cpu_count()} CPUs, extra options: {' '.join(extra) or 'none'}")
+    print(f"# python {sys.version.split()[0]}, {os.cpu_count()} CPUs, extra options: {' '.join(extra) or 'none'}, "
+          f"load average before: {os.getloadavg()[0]:.1f}")
     print(f"{'spectra':>8} {'jobs':>5} {'seconds':>9} {'spectra/s':>10} {'peak MB':>8} {'rerun s':>8} {'failed':>7}")
     for count in counts:
         folder = work / f"spectra_{count}"
@@ -121,10 +123,11 @@ def main(argv=None):
                 os.link(work / "spectra_all" / name, folder / name)
         for jobs in jobs_list:
             out = work / f"out_{count}_{jobs}"
+            shutil.rmtree(out, ignore_errors=True)  # the first run must compute everything
             seconds, peak, failed = run_once(folder, out, jobs, extra)
             again, _, _ = run_once(folder, out, jobs, extra)
             print(f"{count:>8} {jobs:>5} {seconds:>9.1f} {count / seconds:>10.2f} {peak:>8.0f} {again:>8.1f} "
-                  f"{failed:>7}", flush=True)
+                  f"{failed:>7}   load {os.getloadavg()[0]:.1f}", flush=True)
 
 
 if __name__ == "__main__":
