@@ -105,7 +105,7 @@ def _esc(value) -> str:
     return html.escape("" if value is None else str(value), quote=True)
 
 
-def _cell_value(col, i):
+def _cell_value(col, i, name=""):
     """(text, sort value) of one catalogue cell; masked and NaN are blank."""
     value = col[i]
     masked = bool(np.ma.getmaskarray(col)[i]) if hasattr(col, "mask") else False
@@ -115,8 +115,12 @@ def _cell_value(col, i):
         v = float(value)
         if not math.isfinite(v):
             return "", ""
-        # four significant digits, but every integer digit of large numbers (MJD, Teff)
-        text = f"{v:.3f}" if abs(v) >= 1e4 else f"{v:.4g}"
+        if name.startswith("mjd"):
+            text = f"{v:.5f}"  # about a second
+        elif abs(v) >= 1000:
+            text = f"{v:.0f}"  # every integer digit (Teff), no more
+        else:
+            text = f"{v:.4g}"
         return text, repr(v)
     if col.dtype.kind in "iu":
         return str(int(value)), str(int(value))
@@ -178,6 +182,8 @@ def write_report(catalogue, out_dir, path, diagram=None, stages=None) -> Path:
     """
     out = Path(out_dir)
     shown = [(name, label) for name, label in SHOWN if name in catalogue.colnames]
+    if "mk" in catalogue.colnames:  # the MK type already says both
+        shown = [(name, label) for name, label in shown if name not in ("sptype", "lumclass")]
     counts = {}
     for s in catalogue["status"]:
         counts[str(s)] = counts.get(str(s), 0) + 1
@@ -232,7 +238,7 @@ def write_report(catalogue, out_dir, path, diagram=None, stages=None) -> Path:
             else:
                 emit('<td class="muted">no plot</td>')
             for name, _ in shown:
-                text, sort_value = _cell_value(cols[name], i)
+                text, sort_value = _cell_value(cols[name], i, name)
                 if name == "flags":
                     body = "".join(f'<span class="flag">{_esc(f)}</span>' for f in flags)
                     emit(f'<td data-value="">{body}</td>')
