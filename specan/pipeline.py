@@ -416,6 +416,18 @@ LOW_SNR = 20.0
 
 
 _PHOTOMETRY_CACHE = {}
+_CALIBRATION_CACHE = {}
+
+
+def _calibration(path):
+    """The MK calibration in ``path`` (loaded once per process), or None for the default."""
+    if not path:
+        return None
+    if path not in _CALIBRATION_CACHE:
+        import importlib
+
+        _CALIBRATION_CACHE[path] = importlib.import_module("specan.classify").Calibration.load(path)
+    return _CALIBRATION_CACHE[path]
 
 
 def _photometry_row(path, name, rec):
@@ -502,13 +514,21 @@ def analyse_file(path, settings=None) -> dict:
         if isinstance(velocity, dict):
             rec.add_stage_dict("velocity", velocity)
     if stages["classify"] is None:
-        classification = _guarded(rec, "classify", _stage_function("classify"), spectrum)
+        options = {}
+        calibration = _calibration(settings.get("calibration"))
+        if calibration is not None:
+            options["calibration"] = calibration
+        if isinstance(velocity, dict) and velocity.get("rv_topo") is not None:
+            # The velocity stage has measured the shift already (in the spectrum's frame).
+            options["rv"] = velocity["rv_topo"]
+        classification = _guarded(rec, "classify", _stage_function("classify"), spectrum, **options)
         if isinstance(classification, dict):
             rec.add_stage_dict("classify", classification)
     if stages["physics"] is None and isinstance(classification, dict):
         photometry = _photometry_row(settings.get("photometry"), rec.values.get("object"), rec)
+        # The spectrum as read (not normalised) keeps its flux unit for a colour temperature.
         physics = _guarded(rec, "physics", _stage_function("physics"),
-                           classification, velocity, photometry, spectrum)
+                           classification, velocity, photometry, raw)
         if isinstance(physics, dict):
             rec.add_stage_dict("physics", physics)
 
@@ -813,7 +833,7 @@ def _results_dask(todo, settings, address):
 
 
 def run(paths, out_dir, jobs=1, dask=None, force=False, formats=("ecsv",), overrides=None,
-        plots=True, report=True, progress=None, stages=None, photometry=None) -> RunSummary:
+        plots=True, report=True, progress=None, stages=None, photometry=None, calibration=None) -> RunSummary:
     """Analyse a night: every input through every available stage, then catalogue and report.
 
     Parameters
@@ -842,6 +862,9 @@ def run(paths, out_dir, jobs=1, dask=None, force=False, formats=("ecsv",), overr
         ``specan.physics.load_photometry``), matched by object name, for
         distances and space velocities. Its content is part of the settings:
         editing it makes the results stale.
+    calibration : str or os.PathLike, optional
+        MK calibration file from ``specan calibrate`` (default: the shipped
+        one); its content is part of the settings too.
     progress : bool, optional
         Show a progress bar; default: only when stderr is a terminal.
 
@@ -868,10 +891,15 @@ def run(paths, out_dir, jobs=1, dask=None, force=False, formats=("ecsv",), overr
     if wanted:
         stages = {n: (why if n in wanted else "not asked for") for n, why in stages.items()}
     settings = {"overrides": {k: overrides[k] for k in sorted(overrides or {})}, "plots": bool(plots),
-                "stages": wanted, "photometry": None if photometry is None else os.path.abspath(photometry)}
+                "stages": wanted, "photometry": None if photometry is None else os.path.abspath(photometry),
+                "calibration": None if calibration is None else os.path.abspath(calibration)}
+    if calibration is not None and not os.path.isfile(calibration):
+        raise ValueError(f"calibration file {calibration} does not exist")
     phot_hash = _sha256_file(photometry) if photometry is not None and os.path.isfile(photometry) else None
+    cal_hash = _sha256_file(calibration) if calibration is not None else None
     settings_hash = hashlib.sha256(json.dumps(
-        {"settings": settings, "code": code_fingerprint(), "stages": stages, "photometry": phot_hash},
+        {"settings": settings, "code": code_fingerprint(), "stages": stages, "photometry": phot_hash,
+         "calibration": cal_hash},
         sort_keys=True,
         default=str).encode()).hexdigest()
 

@@ -28,6 +28,7 @@ from specan.obsinfo import get_info
 
 ROOT = Path(__file__).resolve().parents[1]
 DEMO = ROOT / "sample_spectra"
+DEMO_CALIBRATION = "tordo_calibration.json"  # scripts/make_demo_calibration.py
 
 # Plumbing tests run only the foundation stages: the science stages are
 # checked by the demo-night test and by their own modules' tests.
@@ -342,7 +343,10 @@ def demo(tmp_path_factory):
     if not (DEMO / "truth.ecsv").is_file():
         pytest.fail("sample_spectra/truth.ecsv missing: run scripts/make_demo_night.py")
     out = tmp_path_factory.mktemp("demo_out")
-    summary = pipeline.run([DEMO], out, jobs=2)
+    # The demo night is classified against its own spectrograph's standards, as an observer
+    # would (scripts/make_demo_calibration.py); the default JHC calibration does not fit the
+    # synthetic model's line strengths.
+    summary = pipeline.run([DEMO], out, jobs=2, calibration=DEMO / DEMO_CALIBRATION)
     truth = Table.read(DEMO / "truth.ecsv")
     rows = {Path(f).name: r for f, r in zip(summary.catalogue["file"], summary.catalogue)}
     return summary, truth, rows, out
@@ -462,7 +466,7 @@ def test_demo_files_are_what_the_script_writes(tmp_path):
     spec.loader.exec_module(module)
     truth = module.make_night(tmp_path)
     fresh = sorted(p.name for p in tmp_path.iterdir())
-    committed = sorted(p.name for p in DEMO.iterdir())
+    committed = sorted(p.name for p in DEMO.iterdir() if p.name != DEMO_CALIBRATION)
     assert fresh == committed
     stale = []
     for name in fresh:
@@ -490,5 +494,24 @@ def test_demo_files_are_what_the_script_writes(tmp_path):
         if not same:
             stale.append(name)
     assert not stale, f"sample_spectra is stale ({', '.join(stale)}): rerun scripts/make_demo_night.py"
-    assert 12 <= len(committed) - 1 <= 20  # spectra, besides truth.ecsv
-    assert sum((DEMO / name).stat().st_size for name in committed) < 3e6  # "a few MB at most"
+    assert 12 <= len(committed) - 1 <= 20  # spectra, besides truth.ecsv (and the calibration)
+    assert sum(p.stat().st_size for p in DEMO.iterdir()) < 3e6  # "a few MB at most"
+
+
+@pytest.mark.slow
+def test_demo_calibration_is_what_its_script_fits(tmp_path):
+    """The committed demo calibration holds the criteria a fresh fit of the synthetic standards gives."""
+    import json
+
+    fresh = tmp_path / "cal.json"
+    import subprocess
+    import sys
+
+    subprocess.run([sys.executable, str(ROOT / "scripts" / "make_demo_calibration.py"), "--out", str(fresh)],
+                   check=True, capture_output=True, timeout=600)
+    new, old = json.loads(fresh.read_text()), json.loads((DEMO / DEMO_CALIBRATION).read_text())
+    std_new, std_old = new["standards"], old["standards"]
+    assert [s["id"] for s in std_new] == [s["id"] for s in std_old]
+    a = np.array([s["criteria"] for s in std_new], float)
+    b = np.array([s["criteria"] for s in std_old], float)
+    assert np.allclose(a, b, rtol=1e-6, atol=1e-9, equal_nan=True), "rerun scripts/make_demo_calibration.py"

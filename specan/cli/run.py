@@ -35,8 +35,12 @@ def _formats(ctx, param, value):
 @click.option("--stages", default=None, metavar="LIST",
               help="Run only these stages, comma-separated (read, prepare, lines, velocity, classify, "
                    "physics); default all.")
+@click.option("--calibration", default=None, type=click.Path(exists=True, dir_okay=False),
+              help="MK calibration file from 'specan calibrate' (default: the built-in one, fitted on "
+                   "the Jacoby, Hunter & Christian 1984 library).")
 @read_options
-def command(paths, out_dir, jobs, dask_address, force, formats, no_plots, photometry, stages, **kwargs):
+def command(paths, out_dir, jobs, dask_address, force, formats, no_plots, photometry, stages, calibration,
+            **kwargs):
     """Analyse every spectrum in PATHS (files, folders, globs) into a catalogue and report in --out.
 
     Exit status: the number of inputs that failed (capped at 100), 0 when none did.
@@ -54,7 +58,7 @@ def command(paths, out_dir, jobs, dask_address, force, formats, no_plots, photom
     try:
         summary = run(paths, out_dir, jobs=jobs, dask=dask_address, force=force, formats=formats,
                       overrides=overrides_from(kwargs), plots=not no_plots, stages=wanted,
-                      photometry=photometry)
+                      photometry=photometry, calibration=calibration)
     except RunInterrupted as stop:
         s = stop.summary
         click.echo(f"specan: interrupted; catalogue of what was done written to {s.outputs.get('ecsv')} "
