@@ -198,6 +198,18 @@ def fit_continuum(spectrum, smoothing=300.0 * u.AA, window=12.0 * u.AA, below_we
         sig = float(np.median(err[good][np.isfinite(err[good])]))
     if k > 1 and np.isfinite(sig) and sig > 0:
         ay -= sig * norm.ppf((k - 0.375) / (k + 0.25))  # Blom (1958) expected maximum
+    # Emission lines and cosmic rays make anchors that stand far above their neighbours;
+    # an upper envelope would follow them, so they are dropped: an anchor more than
+    # 4 robust sigma (and 2%) above the running median of 7 anchors is a spike.
+    if ax.size >= 7:
+        from scipy.ndimage import median_filter
+
+        ref = median_filter(ay, size=7, mode="nearest")
+        dev = ay - ref
+        mad = 1.4826 * np.median(np.abs(dev))
+        spike = dev > np.maximum(4.0 * mad, 0.02 * np.abs(ref))
+        if spike.any() and (~spike).sum() >= 8:
+            ax, ay = ax[~spike], ay[~spike]
     scale = smoothing.to_value(u.AA)
     smoother = _PSpline(ax, lam=(scale / (2 * np.pi)) ** 4, knot_spacing=scale / 10.0)
     weights = np.ones(ax.size)

@@ -150,3 +150,15 @@ def test_prepare_is_callable_from_the_package_and_still_a_module():
     out = specan.prepare(s)
     assert specan.get_info(out).normalized
     assert callable(specan.prepare.fit_continuum)
+
+
+def test_continuum_not_pulled_up_by_emission_lines():
+    # An emission-line star (invented: H alpha and H beta in emission, peaks 5x and 2x the continuum)
+    w = np.arange(3700.0, 7000.0, 1.5)
+    flux, cont, err = _a_star(w, snr=100)
+    for l0, peak in ((6562.80, 5.0), (4861.33, 2.0)):
+        flux = flux + cont * peak * np.exp(-0.5 * ((w - l0) / 3.0) ** 2)
+    fit = fit_continuum(_spectrum(w, flux, err, medium="air")).value
+    ratio = fit / cont
+    assert np.max(np.abs(ratio[(w > 4000) & (w < 6900)] - 1)) < 0.05
+    assert np.median(np.abs(ratio - 1)) < 0.02
