@@ -556,10 +556,18 @@ def analyse_file(path, settings=None) -> dict:
 # --------------------------------------------------------------------------- writing
 
 
+def _file_mode():
+    """Permissions a new file gets here (mkstemp makes 0600 files; outputs are meant to be shared)."""
+    mask = os.umask(0)
+    os.umask(mask)
+    return 0o666 & ~mask
+
+
 def _atomic_write_bytes(path: Path, data: bytes):
     path.parent.mkdir(parents=True, exist_ok=True)
     fd, tmp = tempfile.mkstemp(prefix=f".{path.name}.", suffix=".tmp", dir=path.parent)
     try:
+        os.fchmod(fd, _FILE_MODE)
         with os.fdopen(fd, "wb") as fh:
             fh.write(data)
             fh.flush()
@@ -571,15 +579,20 @@ def _atomic_write_bytes(path: Path, data: bytes):
         raise
 
 
+_FILE_MODE = _file_mode()
+
+
 @contextlib.contextmanager
 def atomic_path(path: Path):
     """Yield a temporary path beside ``path``; on success it replaces ``path`` atomically."""
     path = Path(path)
     path.parent.mkdir(parents=True, exist_ok=True)
     fd, tmp = tempfile.mkstemp(prefix=f".{path.stem}.", suffix=path.suffix, dir=path.parent)
+    os.fchmod(fd, _FILE_MODE)
     os.close(fd)
     try:
         yield Path(tmp)
+        os.chmod(tmp, _FILE_MODE)  # the writer may have replaced our file with its own temporary one
         os.replace(tmp, path)
     except BaseException:
         with contextlib.suppress(OSError):
