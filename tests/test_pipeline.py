@@ -141,6 +141,11 @@ def test_run_one_row_per_input_errors_with_reasons(tmp_path, fixed_code, capsys)
     # units come with the columns
     assert cat["ra"].unit == "deg" and cat["mjd_mid"].unit == "d" and cat["exptime"].unit == "s"
     assert (out / "report.html").is_file() and (out / "night_diagram.png").is_file()
+    # outputs get the usual permissions (the temporary files they come from are private)
+    umask = os.umask(0)
+    os.umask(umask)
+    for name in ("catalogue.ecsv", "report.html", "night_diagram.png", by_name["star_00.fits"]["plot"]):
+        assert (out / name).stat().st_mode & 0o777 == 0o666 & ~umask, name
 
 
 def test_stage_that_raises_becomes_error_row(tmp_path, fixed_code, monkeypatch):
