@@ -68,8 +68,8 @@ def _draw_spectrum(ax, spectrum, lines, normalized, small=False):
     ax.plot(wave, flux, lw=0.5 if small else 0.6, color="k")
     finite = flux[np.isfinite(flux)]
     if finite.size:
-        # the full depth of the lines, but not a single hot pixel, sets the scale
-        lo, hi = finite.min(), np.percentile(finite, 99.8)
+        # the full depth of absorption lines and the full height of emission lines set the scale
+        lo, hi = finite.min(), finite.max()
         pad = 0.05 * (hi - lo or 1.0)
         ax.set_ylim(lo - pad, hi + (1 if small else 6) * pad)
     ax.set_xlim(wave[0], wave[-1]) if wave.size > 1 else None
