@@ -160,6 +160,46 @@ def _href(relative: str) -> str:
     return _esc(urllib.parse.quote(relative, safe="/"))
 
 
+def _distinct(catalogue, name):
+    """Distinct non-empty values of a column, as strings."""
+    if name not in catalogue.colnames:
+        return []
+    seen = []
+    for v in catalogue[name]:
+        text = "" if v is None or (hasattr(v, "mask") and v.mask) else str(v)
+        if text and text not in ("--", "nan") and text not in seen:
+            seen.append(text)
+    return seen
+
+
+def _assumptions_html(catalogue) -> str:
+    """What every number in the report rests on (calibration, frames, offline data, resolution)."""
+    from ._offline import IERS_NOTE
+    from .obsinfo import AIR_VACUUM_FORMULA
+
+    items = []
+    cals = _distinct(catalogue, "calibration")
+    if cals:
+        items.append("MK calibration: " + "; ".join(_esc(c) for c in cals) + ".")
+    powers = _distinct(catalogue, "resolving_power")
+    if powers:
+        items.append("Resolving power as stated or assumed per file: " + ", ".join(_esc(p) for p in powers[:8])
+                     + ("..." if len(powers) > 8 else "") + "; spectra are smoothed to the calibration's "
+                     "resolution before classifying.")
+    items.append(f"Air/vacuum wavelengths converted with {_esc(AIR_VACUUM_FORMULA)} (Morton 2000); files that do "
+                 "not state their medium are taken as air (see each row's warnings).")
+    items.append(_esc(IERS_NOTE) + ". Velocities are barycentric where time, pointing and site are known, "
+                 "otherwise topocentric and flagged no_barycentric.")
+    from .velocity import ESCAPE_SPEED, HIGH_VELOCITY
+
+    items.append("Galactic rest frame: astropy's Galactocentric defaults (v4.0); high_velocity above "
+                 f"{HIGH_VELOCITY.to_value('km/s'):.0f} km/s, unbound_candidate above "
+                 f"{ESCAPE_SPEED.to_value('km/s'):.0f} km/s (Piffl et al. 2014), on the velocity named in each row.")
+    items.append("Distances and extinction only where photometry was given; E(B-V) as given, "
+                 "Fitzpatrick (1999) law with R_V = 3.1; no reddening assumed otherwise.")
+    return ('<h2>Assumptions</h2><ul id="assumptions">' + "".join(f"<li>{i}</li>" for i in items) + "</ul>")
+
+
 def write_report(catalogue, out_dir, path, diagram=None, stages=None) -> Path:
     """Write the night's HTML report.
 
@@ -213,6 +253,7 @@ def write_report(catalogue, out_dir, path, diagram=None, stages=None) -> Path:
                 emit(f'<h2>Night diagram</h2><img id="night-diagram" src="{uri}" '
                              'alt="night diagram: temperature against luminosity class">')
 
+        emit(_assumptions_html(catalogue))
         emit("<h2>Catalogue</h2><p class=\"muted\">Rows needing a look come first; "
                      "click a column heading to sort. Full catalogue with units: catalogue.ecsv.</p>")
         emit('<table id="catalogue"><thead><tr><th class="nosort">plot</th>')

@@ -207,3 +207,17 @@ def test_report_of_a_real_run(tmp_path, monkeypatch):
     # errors first
     statuses = [r["attrs"]["class"] for r in dom.rows]
     assert statuses[:3] == ["error"] * 3
+
+
+def test_report_states_its_assumptions(tmp_path, monkeypatch):
+    from test_pipeline import BASIC, small_night
+
+    monkeypatch.setattr(pipeline, "code_fingerprint", lambda: "test")
+    night = small_night(tmp_path / "night", count=1)
+    out = tmp_path / "out"
+    pipeline.run([night], out, stages=BASIC)
+    html = (out / "report.html").read_text()
+    section = html[html.index('id="assumptions"'):]
+    section = section[: section.index("</ul>")]
+    for needed in ("Morton 2000", "IERS", "Galactocentric", "533 km/s", "Fitzpatrick (1999)"):
+        assert needed in section, needed
