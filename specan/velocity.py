@@ -544,6 +544,11 @@ def _data_arrays(d_minus_1, weight):
 def _peak(corr, pad, smax, min_overlap, total_weight):
     """Integer-lag peak within |s| <= smax: (s_int, height, ccf array over s, overlap)."""
     ccf, c2v = corr.integer_lags()
+    return _best_lag(ccf, c2v, pad, smax, min_overlap, total_weight)
+
+
+def _best_lag(ccf, c2v, pad, smax, min_overlap, total_weight):
+    """(lag, height) of the highest CCF value within |lag| <= smax and enough overlap, or None."""
     k = np.arange(0, 2 * pad + 1)
     s = pad - k
     vals = ccf[k]
@@ -560,14 +565,7 @@ def _quick_peak(d_ffts, template, vrows, pad, m, smax, min_overlap, total_weight
     BT, BT2, _ = template.ffts(m)
     c = sfft.irfft(np.stack([np.conj(A1) * BT, np.conj(A2) * BT, np.conj(A2) * BT2]), m, axis=1)
     ccf, c2v = _Correlation.combine((c[0], c[1], c[2], vrows[0], vrows[1], vrows[2]))
-    k = np.arange(0, 2 * pad + 1)
-    s = pad - k
-    vals = ccf[k]
-    ok = (np.abs(s) <= smax) & (c2v[k] >= min_overlap * total_weight) & np.isfinite(vals)
-    if not ok.any():
-        return None
-    j = np.argmax(np.where(ok, vals, -np.inf))
-    return int(s[j]), float(vals[j])
+    return _best_lag(ccf, c2v, pad, smax, min_overlap, total_weight)
 
 
 def _coverage_rows(d_ffts, template, m):
