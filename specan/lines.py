@@ -424,6 +424,20 @@ def _resolve_rv(data, rv, lab):
     return float(np.median(v[np.abs(v - centre) < 50])) * u.km / u.s
 
 
+def _lines_in_range(data, linelist, kinds, rv):
+    """The listed lines the spectrum covers at velocity ``rv`` (estimated when "auto"/None).
+
+    Returns (table rows, lab wavelengths, predicted wavelengths, rv Quantity,
+    predicted wavelengths of the whole list) in the spectrum's medium.
+    """
+    table = _prepare_list(linelist, kinds)
+    lab_all = table[_lab_column(data)].to_value(u.AA)
+    rv_q = _resolve_rv(data, rv, lab_all)
+    pred_all = lab_all * doppler_factor(rv_q)
+    cov = _covered(data, pred_all)
+    return table[cov], lab_all[cov], pred_all[cov], rv_q, pred_all
+
+
 def _prepare_list(linelist, kinds):
     table = load_linelist() if linelist is None else (
         linelist if isinstance(linelist, QTable) else load_linelist(linelist))
@@ -479,15 +493,7 @@ def identify(spectrum, linelist=None, rv=0 * u.km / u.s, resolving_power=None, w
     """
     spec = _normalised(spectrum)
     data = _Data(spec, resolving_power)
-    table = _prepare_list(linelist, None)
-    col = _lab_column(data)
-    lab_all = table[col].to_value(u.AA)
-    rv_q = _resolve_rv(data, rv, lab_all)
-    factor = doppler_factor(rv_q)
-    pred_all = lab_all * factor
-    cov = _covered(data, pred_all)
-    t = table[cov]
-    lab, pred = lab_all[cov], pred_all[cov]
+    t, lab, pred, rv_q, pred_all = _lines_in_range(data, linelist, None, rv)
     fwhm_at = np.interp(pred, data.wave, data.line_fwhm)
     if window is None:
         win_kms = np.maximum(C_KMS * fwhm_at / pred, 20.0)
@@ -525,7 +531,7 @@ def identify(spectrum, linelist=None, rv=0 * u.km / u.s, resolving_power=None, w
 
     # strong features nothing in the list explains
     un = (~used) & (np.abs(depth) >= strong_depth)
-    if lab_all.size and un.any():
+    if pred_all.size and un.any():
         near = np.min(np.abs(pred_all[None, :] - pos[un, None]), axis=1)
         fw = np.interp(pos[un], data.wave, data.line_fwhm)
         keep = np.flatnonzero(un)[near > np.maximum(fw, pos[un] * 20.0 / C_KMS)]
@@ -894,15 +900,7 @@ def measure(spectrum, linelist=None, rv=0 * u.km / u.s, resolving_power=None, pr
         raise ValueError("profile must be 'auto', 'gauss' or 'voigt'")
     spec = _normalised(spectrum)
     data = _Data(spec, resolving_power)
-    table = _prepare_list(linelist, kinds)
-    col = _lab_column(data)
-    lab_all = table[col].to_value(u.AA)
-    rv_q = _resolve_rv(data, rv, lab_all)
-    factor = doppler_factor(rv_q)
-    pred_all = lab_all * factor
-    cov = _covered(data, pred_all)
-    t = table[cov]
-    lab, pred = lab_all[cov], pred_all[cov]
+    t, lab, pred, rv_q, pred_all = _lines_in_range(data, linelist, kinds, rv)
     ids = [str(i) for i in t["id"]]
     species = [str(s) for s in t["species"]]
     n = len(t)

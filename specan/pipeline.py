@@ -40,7 +40,6 @@ import contextlib
 import glob
 import hashlib
 import importlib
-import io
 import json
 import math
 import os

@@ -1,6 +1,5 @@
 """Property-based test: whatever the input, the reader returns a Spectrum or raises a SpecanError."""
 
-import io
 
 import numpy as np
 from astropy.io import fits

@@ -419,7 +419,6 @@ def test_unknown_resolving_power():
 
 
 def test_line_mask_and_user_template_with_partial_overlap(tmp_path):
-    import specan
 
     s = synth.spectrum("G5", resolving_power=3000, rv=-233 * KMS, snr=60, seed=4,
                        wave_range=(4500, 8800) * u.AA)

@@ -9,19 +9,18 @@ with a one-line reason.
 
 from __future__ import annotations
 
-import os
 import warnings
 from pathlib import Path
 
 import astropy.units as u
 import numpy as np
-from astropy.nddata import InverseVariance, StdDevUncertainty
+from astropy.nddata import StdDevUncertainty
 
 from ..errors import (CorruptFileError, EmptyFileError, MetadataError, NoWavelengthError,
                       NonMonotonicError, ReadError, SpecanError, UnitError)
 from ..obsinfo import META_KEY, ObsInfo
 from . import fits_image, fits_table, text
-from ._common import RawSpectrum, parse_angle, parse_site, parse_unit
+from ._common import RawSpectrum, parse_angle, parse_site
 
 __all__ = ["read", "READERS", "OVERRIDES"]
 
