@@ -27,15 +27,20 @@ _LOCI = (("I", "supergiants (I)", "tab:red"), ("III", "giants (III)", "tab:orang
 _NAME_KEYS = ("object", "name", "file")
 
 
-def _value(row, *keys, unit=None):
-    """First finite value among ``keys`` of a row (dict or table row), as float, or None."""
+def _present(row, keys):
+    """The values of ``keys`` that the row (dict or table row) has and that are not masked or None."""
     for key in keys:
         try:
             val = row[key]
         except (KeyError, IndexError, ValueError):
             continue
-        if val is None or np.ma.is_masked(val):
-            continue
+        if val is not None and not np.ma.is_masked(val):
+            yield val
+
+
+def _value(row, *keys, unit=None):
+    """First finite value among ``keys`` of a row (dict or table row), as float, or None."""
+    for val in _present(row, keys):
         try:
             if isinstance(val, u.Quantity):
                 val = val.to_value(unit) if unit is not None else val.value
@@ -48,13 +53,8 @@ def _value(row, *keys, unit=None):
 
 
 def _text(row, *keys):
-    for key in keys:
-        try:
-            val = row[key]
-        except (KeyError, IndexError, ValueError):
-            continue
-        if val is None or np.ma.is_masked(val):
-            continue
+    """First non-empty text among ``keys`` of a row, or None."""
+    for val in _present(row, keys):
         val = str(val).strip()
         if val and val.lower() not in ("nan", "none", "--"):
             return val
