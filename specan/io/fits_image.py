@@ -4,7 +4,7 @@ Follows the FITS WCS spectral conventions (Greisen et al. 2006, A&A 446, 747):
 CTYPE1 ``WAVE`` (vacuum), ``AWAV`` (air), with the ``-LOG`` algorithm
 (lambda = CRVAL1 * exp(w / CRVAL1), w = CDELT1 * (p - CRPIX1)) or linear; CDELT1 or
 CD1_1; CUNIT1 (m by the standard's default, but Angstrom is what most files mean
-when they omit it: specan guesses from the range and says so). The IRAF
+when they omit it: specan guesses from the range and says so). The older
 ``DC-FLAG = 1`` log10 convention is also read (common practice).
 The flux unit comes from BUNIT. An error array is taken from an image extension
 called ERR/ERROR/SIGMA/UNCERT (standard deviation) or IVAR (inverse variance)
@@ -67,7 +67,7 @@ def wavelengths_from_header(header, n, wave_unit=None):
     if ctype.endswith("-LOG"):
         wave = crval * np.exp(w / crval)
     elif int(header.get("DC-FLAG", 0) or 0) == 1:
-        wave = 10.0 ** (crval + w)  # IRAF log10 convention (common practice)
+        wave = 10.0 ** (crval + w)  # older DC-FLAG log10 convention (common practice)
     elif ctype in ("", "WAVE", "AWAV", "LINEAR", "LAMBDA", "WAVELENGTH"):
         wave = crval + w
     else:
