@@ -66,12 +66,17 @@ def mask_bad(spectrum):
         Same data, ``mask`` True where the pixel is unusable.
     """
     wave, flux, err, mask = _arrays(spectrum)
-    mask |= ~np.isfinite(flux)
-    if not get_info(spectrum).normalized:
-        mask |= flux <= 0
+    return _with(spectrum, mask=mask | _bad_pixels(flux, err, get_info(spectrum).normalized))
+
+
+def _bad_pixels(flux, err, normalized):
+    """True where flux or error is unusable (non-finite, non-positive flux, zero weight)."""
+    bad = ~np.isfinite(flux)
+    if not normalized:
+        bad |= flux <= 0
     if err is not None:
-        mask |= ~np.isfinite(err) | (err <= 0)
-    return _with(spectrum, mask=mask)
+        bad |= ~np.isfinite(err) | (err <= 0)
+    return bad
 
 
 def telluric_mask(wave_aa, medium="air", bands=TELLURIC_BANDS_AIR):
@@ -127,14 +132,6 @@ def _snr_arrays(wave, flux, err, mask, path=None):
         if ok.sum() >= 10:
             from_err = float(np.median(flux[ok] / err[ok]))
     return {"snr": value if np.isfinite(value) else None, "snr_err_array": from_err}
-
-
-def _dersnr_noise(flux):
-    """Per-pixel noise from the DER_SNR estimator's differences (Stoehr et al. 2008), in flux units."""
-    if flux.size < 5:
-        return np.full(flux.shape, np.nan)
-    d = np.abs(2.0 * flux[2:-2] - flux[:-4] - flux[4:])
-    return np.full(flux.shape, 1.482602 / np.sqrt(6.0) * np.median(d))
 
 
 def fit_continuum(spectrum, smoothing=300.0 * u.AA, window=12.0 * u.AA, below_weight=0.005, max_iter=50):
@@ -378,9 +375,7 @@ def prepare(spectrum, telluric=True, continuum=True, **fit_options):
         return spectrum
     # One pass over the arrays (each Spectrum construction costs ~8 ms in specutils).
     wave, flux, err, mask = _arrays(spectrum)
-    mask |= ~np.isfinite(flux) | (flux <= 0)
-    if err is not None:
-        mask |= ~np.isfinite(err) | (err <= 0)
+    mask |= _bad_pixels(flux, err, normalized=False)
     if telluric:
         mask |= telluric_mask(wave, info.medium)
     s = _snr_arrays(wave, flux, err, mask, info.path)
