@@ -50,6 +50,7 @@ from pathlib import Path
 
 import astropy.units as u
 import numpy as np
+from scipy.integrate import cumulative_trapezoid
 
 from .errors import AnalysisError, ReadError
 from .mktypes import code_to_sptype, lumclass_to_number, number_to_lumclass, sptype_to_code
@@ -259,10 +260,10 @@ def _band_means(wave, flux, good, bands):
     velocities). A band that falls outside the spectrum gets NaN.
     """
     f = np.where(good, flux, np.interp(wave, wave[good], flux[good]))
-    cum = np.concatenate([[0.0], np.cumsum(0.5 * (f[1:] + f[:-1]) * np.diff(wave))])
+    cum = cumulative_trapezoid(f, wave, initial=0.0)
     lo, hi = bands[..., 0], bands[..., 1]
     mean = (np.interp(hi, wave, cum) - np.interp(lo, wave, cum)) / (hi - lo)
-    cgood = np.concatenate([[0.0], np.cumsum(0.5 * (good[1:] + good[:-1]) * np.diff(wave))])
+    cgood = cumulative_trapezoid(good.astype(float), wave, initial=0.0)
     frac = (np.interp(hi, wave, cgood) - np.interp(lo, wave, cgood)) / (hi - lo)
     outside = (lo < wave[0]) | (hi > wave[-1])
     mean = np.where(outside, np.nan, mean)
