@@ -122,10 +122,7 @@ class _Data:
         # floor: noiseless models would give infinite weights
         self.sigma = np.where(bad, np.inf, np.maximum(sigma, 1e-5))
         self.weight = np.where(bad, 0.0, 1.0 / self.sigma**2)
-        edges = np.concatenate([[1.5 * self.wave[0] - 0.5 * self.wave[1]],
-                                0.5 * (self.wave[1:] + self.wave[:-1]),
-                                [1.5 * self.wave[-1] - 0.5 * self.wave[-2]]])
-        self.dx = np.diff(edges)  # pixel widths, Angstrom
+        self.dx = np.diff(_pixel_edges(self.wave))  # pixel widths, Angstrom
         self.r_source = "argument"
         r = resolving_power if resolving_power is not None else info.resolving_power
         narrow = self._narrow_line_width()
