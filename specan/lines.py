@@ -636,7 +636,7 @@ def _window(data, ic, sign, min_half, max_half, wide=False):
 
 
 def _local_continuum(data, lo, hi, levels):
-    """Straight line between the edge levels, sign-safe (never above 1 for absorption)."""
+    """Straight line between the two edge levels over pixels ``lo..hi``."""
     x = data.wave[lo:hi + 1]
     if hi == lo:
         return np.full(1, levels[0])
@@ -699,8 +699,8 @@ def _fit(data, lo, hi, cont, centres, profile, max_shift, sig_inst, sign=1.0, sk
     p0 = [0.0, sig_inst] + ([0.2 * sig_inst] if voigt else []) + w0
     # absorption components absorb, emission components emit (a free sign lets
     # neighbouring components cancel each other)
+    # (a start value of the wrong sign is clipped into these bounds below)
     w_lo, w_hi = (0.0, wmax) if sign > 0 else (-50.0 * wmax, 0.0)
-    w0 = [abs(w) * sign for w in w0]
     # The Gaussian width stays near the spectrum's line width: at these resolutions the
     # instrument (or the star's rotation) sets it, and a free width soaks up the
     # wings of unresolved neighbours. Damping wings go to the Voigt's Lorentzian part.
