@@ -373,14 +373,10 @@ def _model_flux(wvac_obs, code, lumnum, resolving_power, rv_kms, vbroad_kms, emi
 
 
 def _teff(code, lumclass):
-    try:
-        from .physics import teff_from_type
+    from .physics import teff_from_type
 
-        teff, _ = teff_from_type(code, lumclass)
-        return float(u.Quantity(teff, u.K).value)
-    except ImportError:  # physics module not installed: a small local scale (# from memory)
-        return float(10 ** np.interp(code, [5, 10, 20, 30, 40, 42, 50, 60, 65],
-                                     np.log10([42000, 30000, 9700, 7200, 5900, 5770, 5250, 3850, 3100])))
+    teff, _ = teff_from_type(code, lumclass)
+    return float(u.Quantity(teff, u.K).value)
 
 
 def _blackbody(wave_aa, teff):
