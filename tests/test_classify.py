@@ -137,6 +137,25 @@ def test_criteria_ignore_a_continuum_slope(jhc_spectra):
     assert np.nanmax(np.abs(tilted - base)) < 0.005
 
 
+def test_band_good_fraction_follows_the_mask():
+    # The good-pixel fraction of a band is the masked length over the band length (trapezoid of a
+    # 0/1 mask, common practice): a band 30% masked keeps the criterion (min_good 0.5), one 70%
+    # masked loses it, and nothing else changes. (A bool-array sum once made every fraction ~half.)
+    wave = np.arange(3800.0, 7400.0, 1.0)
+    flux = 1.0 - 0.3 * np.exp(-0.5 * ((wave - 4340.5) / 3.0) ** 2)   # invented line at Hgamma
+    lo, hi = C.CRITERIA["hgamma_core"]["feature"][0]
+    j = C.criteria_names().index("hgamma_core")
+    base, _ = C.measure_criteria(wave, flux)
+    for masked, measured in ((0.3, True), (0.7, False)):
+        mask = (wave >= lo) & (wave < lo + masked * (hi - lo))
+        vals, _ = C.measure_criteria(wave, flux, mask=mask)
+        assert np.isfinite(vals[j]) == measured
+        if measured:   # bad pixels are bridged by interpolation, so the depth hardly moves
+            assert abs(vals[j] - base[j]) < 0.05
+    mean, frac = C._band_means(wave, flux, np.ones(wave.size, bool), np.array([[4000.0, 4100.0]]))
+    assert frac[0] == pytest.approx(1.0)
+
+
 def test_criteria_track_temperature(jhc_criteria):
     # Published behaviour of the MK criteria (Gray & Corbally 2009, from memory): the Balmer
     # lines peak in the A stars, Ca II K grows from A to K, TiO appears only in M stars.
