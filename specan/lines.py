@@ -297,12 +297,9 @@ def _hydrogen_model(data, fits, pred, fwhm_at, is_h, detected, ep_low):
             continue  # the profile does not describe the line (continuum trouble): leave it
         if others.size and np.min(np.abs(others - fit["centre"])) < 0.6 * fwhm_at[i]:
             continue  # an unresolvable blend with a listed line: keep it whole
-        dx = data.wave - fit["centre"]
-        if fit["profile"] == "voigt":
-            prof = voigt_profile(dx, fit["sigma"], fit["gamma"])
-        else:
-            prof = np.exp(-0.5 * (dx / fit["sigma"]) ** 2) / (fit["sigma"] * np.sqrt(2 * np.pi))
-        model *= 1.0 - fit["ew"] * prof
+        _, prof = _profiles(data.wave, np.array([fit["centre"]]), 0.0, fit["sigma"], fit["gamma"],
+                            fit["profile"])
+        model *= 1.0 - fit["ew"] * prof[0]
         used += 1
     if not used:
         return None
