@@ -43,7 +43,6 @@ from __future__ import annotations
 
 import functools
 import json
-import math
 from datetime import datetime, timezone
 from importlib import resources
 from pathlib import Path
@@ -59,7 +58,6 @@ from .obsinfo import get_info, wavelength_in
 #: Flags :func:`classify` may raise (the ``flags`` list holds those raised).
 FLAGS = ("low_snr", "out_of_range", "peculiar", "emission", "composite")
 
-C_KMS = 299792.458  # speed of light, km/s (exact, SI definition)
 FORMAT_NAME = "specan-mk-calibration"
 FORMAT_VERSION = 1
 DEFAULT_FILE = "calibration_jhc1984.json"
@@ -369,6 +367,7 @@ def _smooth_to_fwhm(wave, flux, good, fwhm_in, fwhm_out):
     fg = np.interp(grid, wave[good], flux[good])
     gg = np.interp(grid, wave, good.astype(float))
     fin = np.broadcast_to(np.interp(grid, wave, np.broadcast_to(fwhm_in, wave.shape)), grid.shape)
+    # FWHM = 2 sqrt(2 ln 2) sigma = 2.3548 sigma for a Gaussian (common practice)
     sig = np.sqrt(np.clip(fwhm_out ** 2 - fin ** 2, 0.0, None)) / 2.3548 / step   # pixels
     if np.all(sig < 0.3):
         return grid, fg, gg > 0.5
@@ -461,9 +460,10 @@ def spectrum_criteria(spectrum, resolution=4.5 * u.AA, rv=None, measure_velocity
     if rv is not None:
         v = float(u.Quantity(rv, u.km / u.s).value)
         if np.isfinite(v):
-            # relativistic Doppler factor, as specan.velocity.shift_to_rest; the air/vacuum
-            # distinction of the factor is below 3e-4 of the shift, negligible here
-            wave = wave / math.sqrt((1.0 + v / C_KMS) / (1.0 - v / C_KMS))
+            from .velocity import doppler_factor
+
+            # the air/vacuum distinction of the factor is below 3e-4 of the shift, negligible here
+            wave = wave / doppler_factor(v * u.km / u.s)
         else:
             rv = None
 
@@ -612,10 +612,12 @@ def _definitions():
 #: S/N per pixel below which the ``low_snr`` flag is raised (common practice: criteria at
 #: R ~ 1000-2000 become unreliable well before S/N 20; same threshold as specan.pipeline).
 LOW_SNR = 20.0
-#: A line rising this far above its pseudo-continuum (plus 3 sigma of noise) is emission.
+#: A line rising this far above its pseudo-continuum (plus 3 sigma of noise) is emission
+#: (our convention, not a published threshold).
 EMISSION_DEPTH = -0.05
 #: Criteria whose features lie entirely blueward / redward of this (A) form the two halves
-#: compared for the ``composite`` flag (a hot star dominates the blue, a cool one the red).
+#: compared for the ``composite`` flag (a hot star dominates the blue, a cool one the red);
+#: our choice, splitting the criteria list roughly in half.
 SPLIT_WAVELENGTH = 4600.0
 _TAUS = (1.0, 1.5, 2.0, 3.0, 4.0, 6.0, 8.0, 12.0, 16.0)
 _FINE_STEP = 0.25
@@ -856,6 +858,7 @@ class Calibration:
                 hits.append(abs(c - truth) <= max(err, 0.5))
                 e.append(c - truth)
             cover = float(np.mean(hits))
+            # 0.683: probability within 1 sigma of a Gaussian (common practice)
             if best is None or abs(cover - 0.683) < abs(best[1] - 0.683):
                 best = (tau, cover, np.array(e))
         self.tau_ = best[0]
