@@ -400,7 +400,8 @@ def _resolve_rv(data, rv, lab):
     if rv is not None:
         return u.Quantity(rv, u.km / u.s)
     # crude estimate: offsets of the strongest features to their nearest listed line within
-    # +-400 km/s, histogram mode refined by the median around it
+    # +-400 km/s (specan choice: wider than the velocities of nearly all Galactic stars,
+    # common practice), histogram mode refined by the median around it
     pos, sig, _, emis = _features(data, 2 * DETECT_SIGMA)
     if pos.size < 3:
         return 0.0 * u.km / u.s
@@ -752,7 +753,7 @@ def _fit(data, lo, hi, cont, centres, profile, max_shift, sig_inst, sign=1.0, sk
     gamma = p[2] if voigt else 0.0
     if voigt:
         fl, fg = 2.0 * gamma, GAUSS_FWHM * sigma
-        fwhm = 0.5346 * fl + np.sqrt(0.2166 * fl**2 + fg**2)  # Olivero & Longbothum (1977)
+        fwhm = 0.5346 * fl + np.sqrt(0.2166 * fl**2 + fg**2)  # Olivero & Longbothum (1977), from memory
         peak = p[k] * voigt_profile(0.0, sigma, gamma)
     else:
         fwhm = GAUSS_FWHM * sigma
@@ -1108,7 +1109,7 @@ def band_indices(spectrum, bands=None, rv=0 * u.km / u.s):
     """Band indices: a feature window against a pseudo-continuum through side windows.
 
     The pseudo-continuum is the straight line through the mean fluxes of the blue and
-    red windows at their centres (Lick convention, Worthey et al. 1994); with one
+    red windows at their centres (Lick convention, Worthey et al. 1994, from memory); with one
     window it is flat. ``kind`` "ew": integral of (1 - F/Fc) in Angstrom;
     "magnitude": -2.5 log10 of the mean of F/Fc over the feature; "ratio": the mean
     of F/Fc. Errors propagate the pixel errors of the feature and of both windows.
@@ -1145,7 +1146,10 @@ def band_indices(spectrum, bands=None, rv=0 * u.km / u.s):
     if spectrum.mask is not None:
         bad |= np.asarray(spectrum.mask, bool)
     if sigma is None:
-        # DER_SNR per-pixel noise (Stoehr et al. 2008), relative to the local flux
+        # DER_SNR per-pixel noise (Stoehr et al. 2008), relative to the local flux. Written
+        # here rather than specutils' snr_derived, which gives one S/N against the median flux:
+        # un-normalised flux varies across the bands, so each pixel's difference is scaled by
+        # its own flux first.
         f = np.where(bad, np.nan, flux)
         dd = np.abs(2.0 * f[2:-2] - f[:-4] - f[4:]) / np.abs(f[2:-2])
         rel = 1.482602 / np.sqrt(6.0) * np.nanmedian(dd) if np.isfinite(dd).any() else 0.0

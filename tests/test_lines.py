@@ -112,7 +112,8 @@ def test_cayrel_error_matches_monte_carlo_scatter():
 
 
 def test_cayrel_formula_value():
-    # Cayrel (1988) worked number: FWHM 0.1 A, pixel 0.02 A, S/N 100 -> 1.5*sqrt(0.002)/100 = 0.67 mA
+    # Cayrel (1988) formula (from memory) evaluated by hand for FWHM 0.1 A, pixel 0.02 A, S/N 100:
+    # 1.5*sqrt(0.002)/100 = 0.67 mA
     assert lines.cayrel_error(0.1, 0.02, 100.0) == pytest.approx(6.708e-4, rel=1e-3)
 
 
