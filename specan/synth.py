@@ -29,6 +29,7 @@ from scipy.special import erfcx, voigt_profile
 
 from .mktypes import lumclass_to_number, sptype_to_code
 from .obsinfo import META_KEY, ObsInfo, air_to_vacuum
+from .velocity import doppler_factor as _doppler_factor
 
 __all__ = [
     "spectrum",
@@ -271,8 +272,7 @@ def doppler_factor(rv) -> float:
     -------
     float
     """
-    beta = u.Quantity(rv, u.km / u.s).to_value(u.km / u.s) / C_KMS
-    return float(np.sqrt((1.0 + beta) / (1.0 - beta)))
+    return float(_doppler_factor(rv))
 
 
 def log_wavelength_grid(wave_range=(3700, 8800) * u.AA, resolving_power=2000, pixels_per_fwhm=2.5):
@@ -354,8 +354,7 @@ _CORE_LIMIT = 0.9
 
 def _model_flux(wvac_obs, code, lumnum, resolving_power, rv_kms, vbroad_kms, emission):
     """Continuum-normalised model flux at observed vacuum wavelengths (Angstrom)."""
-    beta = rv_kms / C_KMS
-    rest = wvac_obs / np.sqrt((1.0 + beta) / (1.0 - beta))
+    rest = wvac_obs / doppler_factor(rv_kms * u.km / u.s)
     emission = dict(emission or {})
     tau = _optical_depth(rest, code, lumnum, resolving_power, vbroad_kms, tuple(emission))
     flux = 1.0 - _CORE_LIMIT * (1.0 - np.exp(-tau / _CORE_LIMIT))
