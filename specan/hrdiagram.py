@@ -198,10 +198,11 @@ def plot_hr(table_or_rows, path, title="HR diagram of the night", label=True, dp
     ax.set_title(title, fontsize=10)
     ax.legend(loc="lower left", fontsize=7, framealpha=0.8)
     if skipped:
-        ax.text(0.99, 0.01, f"{len(skipped)} not placed (no type)", ha="right", va="bottom",
+        ax.text(0.99, 0.01, f"{len(skipped)} not placed (no type or class, or error)", ha="right", va="bottom",
                 fontsize=6, transform=ax.transAxes, color="0.4")
-    fig.text(0.01, 0.005, "loci: specan/data/mk_scales.ecsv (Pecaut & Mamajek 2013; Schmidt-Kaler 1982; "
-             "Alonso et al. 1999)", fontsize=5, color="0.4")
+    fig.text(0.01, 0.005, "loci: specan/data/mk_scales.ecsv (Pecaut & Mamajek 2013; Martins et al. 2005; "
+             "Schmidt-Kaler 1982; Alonso et al. 1999; Levesque et al. 2005; values from memory)",
+             fontsize=5, color="0.4")
     fig.tight_layout()
 
     path = Path(path)
