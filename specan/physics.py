@@ -434,6 +434,13 @@ def _as_float(value, unit):
     return None if not math.isfinite(v) else v
 
 
+def _mixture(weights, values, errors):
+    """Mean and standard deviation of a mixture of Gaussians N(values_k, errors_k) with weights summing to 1."""
+    w, m, s = (np.asarray(a, float) for a in (weights, values, errors))
+    mean = float(np.sum(w * m))
+    return mean, float(math.sqrt(max(np.sum(w * (s**2 + m**2)) - mean**2, 0.0)))
+
+
 def _normalise_probs(lumclass_prob):
     """Class-probability dict (any keys I..V, Ia...) -> {class number: prob}, summing to 1."""
     if isinstance(lumclass_prob, str):
@@ -523,8 +530,7 @@ def spectroscopic_distance(v_mag, v_err, code, code_err, lumclass_prob, ebv=None
     k = math.log(10.0) / 5.0
     # E[10^(mu/5+1)] of a Gaussian mu is exp(k mu + k^2 s^2 / 2) * 10 (lognormal mean).
     d_mean = float(np.sum(p * d(mu_k) * np.exp(0.5 * (k * sig_k) ** 2)))
-    m_mean = float(np.sum(p * m))
-    m_sd = float(math.sqrt(max(np.sum(p * (s**2 + m**2)) - m_mean**2, 0.0)))
+    m_mean, m_sd = _mixture(p, m, s)
     components = [
         {"lumclass": number_to_lumclass(n), "prob": float(pk), "m_v_abs": float(mk) * u.mag,
          "m_v_abs_err": float(sk) * u.mag, "distance": float(d(muk)) * u.pc}
@@ -939,18 +945,12 @@ def derive(classification, velocity=None, photometry=None, spectrum=None, escape
             notes.append("luminosity class unknown: Teff from the dwarf scale, no M_V or distance")
         t, te = zip(*[(a.to_value(u.K), b.to_value(u.K))
                       for a, b in (teff_from_type(code, n, code_err) for n in mix)])
-        w = np.array(list(mix.values()))
-        t, te = np.array(t), np.array(te)
-        t_mean = float(np.sum(w * t))
-        out["teff_k"] = t_mean
-        out["teff_err_k"] = float(math.sqrt(max(np.sum(w * (te**2 + t**2)) - t_mean**2, 0.0)))
+        w = list(mix.values())
+        out["teff_k"], out["teff_err_k"] = _mixture(w, t, te)
         if probs is not None:
             mv = [absolute_magnitude(code, n, code_err) for n in probs]
-            m = np.array([a.to_value(u.mag) for a, _ in mv])
-            s = np.array([b.to_value(u.mag) for _, b in mv])
-            m_mean = float(np.sum(w * m))
-            out["m_v_abs"] = m_mean
-            out["m_v_abs_err"] = float(math.sqrt(max(np.sum(w * (s**2 + m**2)) - m_mean**2, 0.0)))
+            out["m_v_abs"], out["m_v_abs_err"] = _mixture(w, [a.to_value(u.mag) for a, _ in mv],
+                                                          [b.to_value(u.mag) for _, b in mv])
 
     # --- reddening
     ebv = _get(photometry, "ebv", u.mag)
