@@ -522,10 +522,9 @@ def spectroscopic_distance(v_mag, v_err, code, code_err, lumclass_prob, ebv=None
         return float(np.sum(p * stats.norm.cdf((mu - mu_k) / sig_k)))
 
     lo_b, hi_b = float(np.min(mu_k - 10 * sig_k)), float(np.max(mu_k + 10 * sig_k))
-    q = {}
-    for level in (0.15865525393145707, 0.5, 0.8413447460685429):  # -1, 0, +1 sigma of a Gaussian
-        q[level] = optimize.brentq(lambda x: cdf(x) - level, lo_b, hi_b, xtol=1e-10)
-    mu16, mu50, mu84 = q[0.15865525393145707], q[0.5], q[0.8413447460685429]
+    # The mixture's percentiles at -1, 0 and +1 sigma of a Gaussian.
+    mu16, mu50, mu84 = (optimize.brentq(lambda x: cdf(x) - level, lo_b, hi_b, xtol=1e-10)
+                        for level in stats.norm.cdf([-1.0, 0.0, 1.0]))
     d = lambda mu: 10.0 ** (mu / 5.0 + 1.0)  # noqa: E731  distance modulus definition, pc
     k = math.log(10.0) / 5.0
     # E[10^(mu/5+1)] of a Gaussian mu is exp(k mu + k^2 s^2 / 2) * 10 (lognormal mean).
@@ -643,7 +642,7 @@ def space_velocity(ra, dec, distance, pmra, pmdec, rv, distance_err=None, pmra_e
         sb = rng.normal(pmd, u.Quantity(pmdec_err, u.mas / u.yr).value if pmdec_err is not None else 0.0, n_samples)
         sr = rng.normal(v_r, u.Quantity(rv_err, kms).value if rv_err is not None else 0.0, n_samples)
         speeds = np.linalg.norm(transform(np.exp(sd), sa, sb, sr), axis=0)
-        lo, hi = np.percentile(speeds, [15.865525393145707, 84.13447460685429])
+        lo, hi = np.percentile(speeds, 100.0 * stats.norm.cdf([-1.0, 1.0]))   # +-1 sigma of a Gaussian
         v_total_err = 0.5 * (hi - lo) * kms
         p_unbound = float(np.mean(speeds > v_esc))
     return {
