@@ -70,7 +70,7 @@ def command(ctx, files, template, template_rv, reference, vmax, errors, high_vel
 
     def show(path, d):
         if as_json:
-            echo_json({k: v for k, v in d.items() if k != "notes"} | {"notes": d["notes"]})
+            echo_json(d)
             return
         err = "n/a" if d["rv_err_kms"] is None else f"{d['rv_err_kms']:.2f}"
         click.echo(f"{d['file']}: {d['rv_kms']:+.2f} +- {err} km/s ({d['frame']}), "
