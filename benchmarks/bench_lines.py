@@ -27,7 +27,7 @@ def synthetic_spectrum(npix=4000, resolving_power=3000.0, snr=100.0, seed=42):
     ll = load_linelist()
     for row in ll[ll["kind"] == "atomic"]:
         lam = row["wave_air"].to_value(u.AA)
-        sig = lam / resolving_power / 2.3548
+        sig = lam / resolving_power / lines.GAUSS_FWHM
         if row["species"] == "H I":
             flux -= rng.uniform(3.0, 8.0) * voigt_profile(wave - lam, sig, 1.5)
         else:
