@@ -305,9 +305,9 @@ class _Data:
             from .prepare import telluric_mask
 
             bad |= telluric_mask(w, "vacuum")
-        good_f = f[~bad]
-        noise = _dersnr_sigma(good_f) if good_f.size > 10 else np.nan
         if sig is None:
+            good_f = f[~bad]
+            noise = _dersnr_sigma(good_f) if good_f.size > 10 else np.nan
             self.noise_source = "DER_SNR at the continuum, scaled as sqrt(flux)"
             # photon noise: sigma proportional to sqrt(flux) (common practice for count-limited data)
             sig = (noise if noise > 0 else np.nan) * np.sqrt(np.clip(f, 0.05, None))
