@@ -118,8 +118,10 @@ def _draw_rest_frame_lines(ax, spectrum, lines, velocity):
         return False
     pick = pick[np.argsort(np.abs(depth[pick]))[::-1][:4]]
     rv = float(rv.to_value(u.km / u.s)) if hasattr(rv, "unit") else float(rv)
+    from astropy.constants import c as _c
+
     wave, flux = _spectrum_arrays(spectrum)
-    c = 299792.458  # km/s
+    c = _c.to_value(u.km / u.s)
     for k, i in enumerate(pick):
         v = c * (wave / rest[i] - 1.0) - rv
         near = np.abs(v) < 400
@@ -136,13 +138,9 @@ def _draw_rest_frame_lines(ax, spectrum, lines, velocity):
 def _draw_ccf(ax, velocity, spectrum=None, lines=None):
     """Cross-correlation function if the velocity stage returned one."""
     ccf = None
-    if isinstance(velocity, dict):
-        for vkey, ckey in (("ccf_velocity", "ccf"), ("ccf_v", "ccf"), ("ccf_rv", "ccf")):
-            if vkey in velocity and ckey in velocity:
-                ccf = (velocity[vkey], velocity[ckey])
-                break
-        if ccf is None and isinstance(velocity.get("ccf"), (tuple, list)) and len(velocity["ccf"]) == 2:
-            ccf = tuple(velocity["ccf"])
+    # the keys specan.velocity.measure returns
+    if isinstance(velocity, dict) and "ccf_velocity" in velocity and "ccf" in velocity:
+        ccf = (velocity["ccf_velocity"], velocity["ccf"])
     if ccf is None and _draw_rest_frame_lines(ax, spectrum, lines, velocity):
         return
     if ccf is None:
