@@ -285,7 +285,7 @@ def _plain(value):
 
 
 def _json_safe(value):
-    """Strings for the things JSON cannot hold (NaN stays: Python's json reads it back)."""
+    """None for an infinity, which JSON cannot hold (NaN stays: Python's json reads it back)."""
     if isinstance(value, float) and math.isinf(value):
         return None
     return value
@@ -423,8 +423,6 @@ def _calibration(path):
     if not path:
         return None
     if path not in _CALIBRATION_CACHE:
-        import importlib
-
         _CALIBRATION_CACHE[path] = importlib.import_module("specan.classify").Calibration.load(path)
     return _CALIBRATION_CACHE[path]
 
