@@ -6,14 +6,14 @@ import click
 
 from ._common import exit_with_failures, overrides_from, read_options
 
-FORMATS = ("ecsv", "csv", "fits", "votable")
-
 
 def _formats(ctx, param, value):
+    from ..pipeline import CATALOGUE_FORMATS  # the formats the pipeline can write; imported late for start-up
+
     names = [v.strip().lower() for v in (value or "ecsv").split(",") if v.strip()]
-    bad = [n for n in names if n not in FORMATS]
+    bad = [n for n in names if n not in CATALOGUE_FORMATS]
     if bad:
-        raise click.BadParameter(f"unknown format(s) {', '.join(bad)}; choose from {', '.join(FORMATS)}")
+        raise click.BadParameter(f"unknown format(s) {', '.join(bad)}; choose from {', '.join(CATALOGUE_FORMATS)}")
     return names
 
 
@@ -45,9 +45,7 @@ def command(paths, out_dir, jobs, dask_address, force, formats, no_plots, photom
 
     Exit status: the number of inputs that failed (capped at 100), 0 when none did.
     """
-    from ..pipeline import RunInterrupted, run
-
-    from ..pipeline import SPECTRUM_SUFFIXES, STAGES
+    from ..pipeline import SPECTRUM_SUFFIXES, STAGES, RunInterrupted, run
 
     wanted = [s.strip() for s in stages.split(",") if s.strip()] if stages else None
     names = [name for name, _, _ in STAGES]
