@@ -21,7 +21,6 @@ Usage::
 from __future__ import annotations
 
 import argparse
-import importlib
 from pathlib import Path
 
 import astropy.units as u
@@ -29,6 +28,7 @@ import numpy as np
 
 import specan  # noqa: F401 - offline configuration
 from specan import synth
+from specan.classify import Calibration
 from specan.mktypes import code_to_sptype
 
 ROOT = Path(__file__).resolve().parents[1]
@@ -56,9 +56,8 @@ def main():
     ap = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     ap.add_argument("--out", default=str(ROOT / "sample_spectra" / "tordo_calibration.json"))
     args = ap.parse_args()
-    classify = importlib.import_module("specan.classify")
     grid = standards()
-    cal = classify.Calibration(resolution=FWHM * u.AA, measure_velocity=False,
+    cal = Calibration(resolution=FWHM * u.AA, measure_velocity=False,
                                source=f"{len(grid)} synthetic standards of specan's own model (types O5-M5, "
                                       f"classes I-V, R={RESOLVING_POWER:.0f}, at rest, S/N 300) made by "
                                       "scripts/make_demo_calibration.py for the demo night")
