@@ -402,7 +402,7 @@ def _resolve_rv(data, rv, lab):
     # crude estimate: offsets of the strongest features to their nearest listed line within
     # +-400 km/s (specan choice: wider than the velocities of nearly all Galactic stars,
     # common practice), histogram mode refined by the median around it
-    pos, sig, _, emis = _features(data, 2 * DETECT_SIGMA)
+    pos, _, _, emis = _features(data, 2 * DETECT_SIGMA)
     if pos.size < 3:
         return 0.0 * u.km / u.s
     keep = ~emis
