@@ -542,7 +542,7 @@ def _data_arrays(d_minus_1, weight):
 
 
 def _peak(corr, pad, smax, min_overlap, total_weight):
-    """Integer-lag peak within |s| <= smax: (s_int, height, ccf array over s, overlap)."""
+    """Integer-lag peak within |s| <= smax: (s_int, height), or None (see :func:`_best_lag`)."""
     ccf, c2v = corr.integer_lags()
     return _best_lag(ccf, c2v, pad, smax, min_overlap, total_weight)
 
