@@ -38,10 +38,11 @@ def main(argv=None):
     if not catalog.is_file():
         print(f"fit_default_calibration: no catalog.csv in {args.library}", file=sys.stderr)
         return 1
-    n = sum(1 for line in catalog.read_text().splitlines()[1:] if line.strip())
     # The library is at 4.5 A FWHM (its README); velocities are measured and removed per star.
-    cal = classify.calibrate_catalog(catalog, source=SOURCE.format(n=n), resolution=4.5 * classify.u.AA,
+    cal = classify.calibrate_catalog(catalog, resolution=4.5 * classify.u.AA,
                                      progress=lambda p: print(f"  {p.name}", file=sys.stderr))
+    n = len(cal.standards_)   # the rows calibrate_catalog actually read
+    cal.source = SOURCE.format(n=n)
     cal.save(args.out)
     cv = cal.cv_
     print(f"wrote {args.out}: {n} standards, likelihood temperature {cal.tau_:g}; internal "

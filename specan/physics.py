@@ -265,6 +265,7 @@ def _window_points(wave, flux, good, windows, min_pixels=5):
         for _ in range(5):
             coef = np.polyfit(x[keep] - x.mean(), y[keep], 1)
             resid = y - np.polyval(coef, x - x.mean())
+            # robust sigma: 1.4826 x median absolute deviation for Gaussian noise (common practice)
             sig = 1.4826 * np.median(np.abs(resid[keep] - np.median(resid[keep])))
             new = resid > -2.0 * sig if sig > 0 else keep
             if new.sum() < min_pixels or np.array_equal(new, keep):
