@@ -842,10 +842,10 @@ def measure(spectrum, template=None, *, reference=None, template_rv=0 * u.km / u
     # For noise alone the antisymmetric part has variance sigma_n^2 (1 - rho(2j)) / 2, biased low
     # where CCF noise is correlated over many lags (broad template features); the residual
     # itself has variance sigma_n^2 at every lag, so sigma_a = rms(residual) / sqrt2.
-    core = np.abs(j) <= max(2.0, (2.3548 * math.sqrt(h / abs(curv))) if curv < 0 else 2.0)
+    w_curv = 2.3548 * math.sqrt(h / abs(curv)) if curv < 0 else fwhm_px
+    core = np.abs(j) <= max(2.0, w_curv if curv < 0 else 2.0)
     sig_a = float(np.sqrt(np.nanmean(resid[~core] ** 2)) / math.sqrt(2.0))
     r_td = h / (math.sqrt(2.0) * sig_a) if sig_a > 0 else float("inf")
-    w_curv = 2.3548 * math.sqrt(h / abs(curv)) if curv < 0 else fwhm_px
     # Tonry & Davis write sigma = (3/8) w / (1 + r), the constant calibrated for their CCF and filter.
     # For this normalised CCF the small-noise limit is exact: the peak moves by
     # n'(s0)/|c''|, with var n' = sigma_n^2 |c''| / h for a matched template, so
