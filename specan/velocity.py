@@ -939,7 +939,7 @@ def measure(spectrum, template=None, *, reference=None, template_rv=0 * u.km / u
     if abs(rv_topo) > 0.95 * vmax_kms:
         flags.append("at_search_limit")
         notes.append(f"peak at the edge of the +-{vmax_kms:.0f} km/s search range: increase vmax")
-    if h < 0.2:
+    if h < 0.2:  # our own threshold on the normalised peak height, not a published value
         flags.append("weak_correlation")
     notes.append("velocities are relativistic Doppler velocities; 1+z composed multiplicatively")
 
