@@ -32,7 +32,7 @@ from specutils import Spectrum
 from specan import velocity
 from specan.obsinfo import META_KEY, ObsInfo
 
-C_KMS = 299792.458
+C_KMS = 299792.458  # km/s, exact (SI definition of the metre)
 KMS = u.km / u.s
 R_KURUCZ = 2000.0
 
