@@ -14,9 +14,6 @@ import numpy as np
 
 __all__ = ["spectrum_figures", "night_diagram"]
 
-#: Columns of the lines table that may hold a line's wavelength, best first.
-_WAVE_COLUMNS = ("wave_obs", "center", "centre", "wave", "wavelength", "wave_air", "wave_vac")
-
 
 def _canvas(width, height):
     from matplotlib.backends.backend_agg import FigureCanvasAgg
@@ -47,12 +44,11 @@ def _line_positions(lines, limit=None):
     """(wavelength in Angstrom, label) of detected lines (the ``limit`` deepest), or []."""
     if lines is None or len(lines) == 0:
         return []
-    col = next((c for c in _WAVE_COLUMNS if c in lines.colnames), None)
-    if col is None:
+    if "wave_obs" not in lines.colnames:  # the observed wavelength, as specan.lines.measure gives it
         return []
     import astropy.units as u
 
-    wave = lines[col]
+    wave = lines["wave_obs"]
     wave = np.asarray(wave.to_value(u.AA) if hasattr(wave, "unit") and wave.unit else wave, float)
     detected = np.asarray(lines["detected"], bool) if "detected" in lines.colnames else np.ones(len(lines), bool)
     label_col = "id" if "id" in lines.colnames else ("species" if "species" in lines.colnames else None)
@@ -182,14 +178,9 @@ def _draw_criteria(ax, classification):
         ax.set_axis_off()
         return
     names, star, standard = [], [], []
-    items = crit.items() if isinstance(crit, dict) else crit
-    for name, value in items:
-        if isinstance(value, dict):
-            s, ref = value.get("value"), value.get("standard")
-        elif isinstance(value, (tuple, list)) and len(value) == 2:
-            s, ref = value
-        else:
-            s, ref = value, None
+    # specan.classify gives {name: {"value": star's or None, "standard": the relation's at the fitted type}}
+    for name, value in crit.items():
+        s, ref = value.get("value"), value.get("standard")
         names.append(str(name))
         star.append(float(getattr(s, "value", s)) if s is not None else np.nan)
         standard.append(float(getattr(ref, "value", ref)) if ref is not None else np.nan)
