@@ -129,11 +129,11 @@ def _cell_value(col, i, name=""):
     return str(value), ""
 
 
-def _needs_look(values) -> int:
+def _needs_look(status, flags) -> int:
     """Order rows: errors, then flagged or declined, then the rest."""
-    if values.get("status") == "error":
+    if status == "error":
         return 0
-    if values.get("flags") or values.get("status") in ("partial", "not_run"):
+    if flags or status in ("partial", "not_run"):
         return 1
     return 2
 
@@ -144,7 +144,7 @@ def report_rows(catalogue):
     flags = [str(f) for f in catalogue["flags"]]
     files = [str(f) for f in catalogue["file"]]
     return sorted(range(len(catalogue)),
-                  key=lambda i: (_needs_look({"status": status[i], "flags": flags[i]}), files[i], i))
+                  key=lambda i: (_needs_look(status[i], flags[i]), files[i], i))
 
 
 def _data_uri(path: Path) -> str | None:
