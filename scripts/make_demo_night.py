@@ -187,7 +187,8 @@ def make_night(out: Path) -> Table:
         })
 
     # A broken file: a FITS image cut off in the middle of its data block (a
-    # transfer that stopped), so its size is not a multiple of 2880 bytes.
+    # transfer that stopped), so its size is not a multiple of 2880 bytes (the FITS block size;
+    # FITS Standard 4.0, from memory).
     h = _header(BROKEN, 10.0, 30.0, NIGHT_START + len(STARS) * 25 * u.min, 2000)
     fname = f"{BROKEN.lower().replace('-', '_')}.fits"
     full = out / fname
