@@ -45,7 +45,7 @@ def write_spectrum(path, name="Test star", seed=0, n=1500, start=3900.0, step=2.
     wave = start + step * np.arange(n)
     cont = 1.0e4 * (1.0 + 0.1 * (wave - wave.mean()) / np.ptp(wave))
     depth = np.zeros(n)
-    shift = 1.0 + rv / 299792.458
+    shift = 1.0 + rv / 299792.458  # speed of light in km/s (exact, SI definition)
     for w0 in BALMER_AIR:
         depth += 0.5 * np.exp(-0.5 * ((wave - w0 * shift) / 4.0) ** 2)
     flux = cont * (1.0 - depth) + rng.normal(0.0, 100.0, n)
@@ -510,12 +510,7 @@ def test_demo_files_are_what_the_script_writes(tmp_path):
 @pytest.mark.slow
 def test_demo_calibration_is_what_its_script_fits(tmp_path):
     """The committed demo calibration holds the criteria a fresh fit of the synthetic standards gives."""
-    import json
-
     fresh = tmp_path / "cal.json"
-    import subprocess
-    import sys
-
     subprocess.run([sys.executable, str(ROOT / "scripts" / "make_demo_calibration.py"), "--out", str(fresh)],
                    check=True, capture_output=True, timeout=600)
     new, old = json.loads(fresh.read_text()), json.loads((DEMO / DEMO_CALIBRATION).read_text())
