@@ -638,11 +638,35 @@ def _criterion_side():
 _SIDE = _criterion_side()
 
 
+def _fit_two_scale(X, code, lum, grid, settings):
+    """Class offsets from a wide window in type, then the mean relation from a narrow one.
+
+    The luminosity-class terms of a criterion change slowly with type, but a window
+    of a few standards (enough for the mean relation) holds one or two giants at
+    most, so fitted there they are mostly noise. They are therefore fitted with the
+    wider ``class_bandwidth`` / ``class_neighbours`` window; each standard is then
+    moved to class V with those offsets and the mean relation and scatter are fitted
+    in the narrow window, class terms fixed (an infinite ridge).
+    With ``class_bandwidth`` 0 (and in calibrations saved before it existed) the one-window fit.
+    """
+    cb = settings.get("class_bandwidth")
+    if not cb:
+        return _fit_relations(X, code, lum, grid, settings["bandwidth"], settings["neighbours"],
+                              settings["ridge"], settings["scatter_floor"])
+    _, offsets, _, _ = _fit_relations(X, code, lum, grid, cb, settings["class_neighbours"],
+                                      (settings["ridge"][0], settings["class_ridge"]), settings["scatter_floor"])
+    at_code = np.stack([np.stack([np.interp(code, grid, offsets[:, j, k]) for k in range(2)], axis=-1)
+                        for j in range(X.shape[1])], axis=1)                   # (n, J, 2)
+    lb = _lum_basis(lum)
+    dwarf = X - np.einsum("njk,nk->nj", at_code, lb)
+    mean, _, scatter, neff = _fit_relations(dwarf, code, lum, grid, settings["bandwidth"], settings["neighbours"],
+                                            (settings["ridge"][0], 1e9), settings["scatter_floor"])
+    return mean, offsets, scatter, neff
+
+
 def _fit_model(X, code, lum, settings, grid):
     """Relations, scatter and redundancy weights from a criteria matrix (one fit)."""
-    mean, offsets, scatter, neff = _fit_relations(
-        X, code, lum, grid, settings["bandwidth"], settings["neighbours"], settings["ridge"],
-        settings["scatter_floor"])
+    mean, offsets, scatter, neff = _fit_two_scale(X, code, lum, grid, settings)
     # Standardised residuals of the standards about the model at their own type and class
     gi = np.clip(np.round((code - grid[0]) / (grid[1] - grid[0])).astype(int), 0, len(grid) - 1)
     model = mean[gi] + np.einsum("njk,nk->nj", offsets[gi], _lum_basis(lum))
@@ -719,6 +743,10 @@ class Calibration:
         The window widens until it holds this many standards (sparse parts of a library).
     ridge : (float, float)
         Ridge on the local slope in code and on the luminosity-class terms.
+    class_bandwidth, class_neighbours, class_ridge : float, int, float
+        The wider window (and its ridge) in which the luminosity-class terms are
+        fitted (see :func:`_fit_two_scale`); ``class_bandwidth=0`` fits them in the
+        narrow window with ``ridge[1]``.
     scatter_floor : float
         Added in quadrature to every learnt scatter (no criterion is trusted to better than this).
     dof : float
@@ -743,12 +771,14 @@ class Calibration:
     """
 
     def __init__(self, resolution=4.5 * u.AA, source="", bandwidth=1.5, neighbours=6, ridge=(0.1, 0.5),
-                 scatter_floor=0.003, dof=4.0, redundancy_power=0.5, depth_scale_sigma=0.3, grid_step=1.0,
-                 cv_folds=5, measure_velocity=True):
+                 class_bandwidth=4.0, class_neighbours=16, class_ridge=0.1, scatter_floor=0.003, dof=4.0,
+                 redundancy_power=0.5, depth_scale_sigma=0.3, grid_step=1.0, cv_folds=5, measure_velocity=True):
         self.resolution = u.Quantity(resolution, u.AA)
         self.source = str(source)
         self.settings = {"bandwidth": float(bandwidth), "neighbours": int(neighbours),
-                         "ridge": [float(r) for r in ridge], "scatter_floor": float(scatter_floor),
+                         "ridge": [float(r) for r in ridge], "class_bandwidth": float(class_bandwidth),
+                         "class_neighbours": int(class_neighbours), "class_ridge": float(class_ridge),
+                         "scatter_floor": float(scatter_floor),
                          "dof": float(dof), "redundancy_power": float(redundancy_power),
                          "depth_scale_sigma": float(depth_scale_sigma),
                          "grid_step": float(grid_step), "cv_folds": int(cv_folds)}
@@ -1088,6 +1118,8 @@ class Calibration:
         s = data["settings"]
         cal = cls(resolution=data["resolution_fwhm_angstrom"] * u.AA, source=data.get("source", ""),
                   bandwidth=s["bandwidth"], neighbours=s["neighbours"], ridge=tuple(s["ridge"]),
+                  class_bandwidth=s.get("class_bandwidth", 0.0), class_neighbours=s.get("class_neighbours", 0),
+                  class_ridge=s.get("class_ridge", s["ridge"][1]),
                   scatter_floor=s["scatter_floor"], dof=s["dof"], redundancy_power=s["redundancy_power"],
                   depth_scale_sigma=s.get("depth_scale_sigma", 0.0),
                   grid_step=s["grid_step"], cv_folds=s["cv_folds"])

@@ -181,8 +181,9 @@ def test_cv_median_error_at_most_1_5_subclasses(cross_validation):
 
 
 @pytest.mark.reference
-@pytest.mark.xfail(strict=True, reason="measured 75.5% within 2 subclasses in this 10-fold CV (target 80%): late-B "
-                                       "supergiants classed B1-B2, G-K dwarfs and giants confused")
+@pytest.mark.xfail(strict=True, reason="measured 76.6% within 2 subclasses in this 10-fold CV (target 80%): late-B "
+                                       "supergiants classed B1-B3, K5-M2 stars classed K6-K7 or M3, G-K dwarfs and "
+                                       "giants confused")
 def test_cv_type_within_2_subclasses_for_80_percent(cross_validation):
     # JHC (1984) published types; acceptance: within 2 subclasses for >= 80% of stars
     assert np.mean(np.abs(cross_validation["err"]) <= 2.0) >= 0.80
@@ -196,8 +197,9 @@ def test_cv_type_within_3_subclasses_for_78_percent(cross_validation):
 
 
 @pytest.mark.reference
-@pytest.mark.xfail(strict=True, reason="measured 64.5% (49/76) of B-K stars in the right luminosity group "
-                                       "(target 75%): half the B-K giants are classed dwarfs at 4.5 A")
+@pytest.mark.xfail(strict=True, reason="measured 65.8% (50/76) of B-K stars in the right luminosity group "
+                                       "(target 75%): 11 of 26 B-K giants classed dwarfs, 8 of 29 dwarfs classed "
+                                       "giants at 4.5 A")
 def test_cv_luminosity_group_for_75_percent_of_b_to_k(cross_validation):
     # JHC (1984) published classes; acceptance: group (I / II-III / IV-V) right for >= 75% of B-K
     t = cross_validation["table"]
@@ -256,14 +258,12 @@ def test_sun_degraded_to_r1000(sun_spectrum):
 
 
 def test_sun_is_more_likely_a_dwarf_than_a_giant(sun_spectrum):
-    # Weaker than the class acceptance below, which fails: IV + V outweigh I-III.
+    # Beyond the class acceptance below: the class probabilities, not only the most probable class,
+    # favour a dwarf (measured IV + V = 0.57 with the default calibration, R = 2000).
     p = C.classify(sun_spectrum)["lumclass_prob"]
     assert p["IV"] + p["V"] > p["I"] + p["II"] + p["III"]
 
 
-@pytest.mark.xfail(strict=True, reason="measured: class III (probabilities I 0.05, II 0.16, III 0.32, "
-                                       "IV 0.29, V 0.19): dwarf and giant G stars are hardly separated "
-                                       "by the 4.5 A criteria (see the CV confusion table)")
 def test_sun_class_iv_or_v(sun_spectrum):
     # The Sun is G2 V (IAU 2015 Resolution B3 context); acceptance: class IV-V, also at R=1000
     from specan.prepare import degrade
