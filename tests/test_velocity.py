@@ -528,6 +528,18 @@ def test_cli_json(tmp_path):
     assert "no_barycentric" in lines[1]["flags"] and lines[1]["bary_corr_kms"] is None
 
 
+def test_cli_help_quotes_the_module_thresholds():
+    # The CLI leaves both thresholds to specan.velocity's constants; its help must quote them rightly.
+    from click.testing import CliRunner
+
+    from specan.cli import cli
+    from specan.velocity import ESCAPE_SPEED, HIGH_VELOCITY
+
+    text = " ".join(CliRunner().invoke(cli, ["velocity", "--help"]).output.split())
+    assert f"[default: {HIGH_VELOCITY.to_value(KMS):g}]" in text
+    assert f"[default: {ESCAPE_SPEED.to_value(KMS):g}," in text
+
+
 @pytest.mark.reference
 def test_real_spectra_of_the_reference_library(jhc1984, jhc_catalog):
     """Real, unnormalised JHC (1984) spectra: prepared, measured, sane.

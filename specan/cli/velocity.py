@@ -47,10 +47,12 @@ def measure_file(path, overrides, options):
 @click.option("--vmax", type=float, default=2000.0, show_default=True, help="Search range +-km/s.")
 @click.option("--errors", type=click.Choice(["both", "td", "mc"]), default="both", show_default=True,
               help="Error estimates: Tonry-Davis r statistic, noise resampling, or both.")
-@click.option("--high-velocity", type=float, default=300.0, show_default=True,
-              help="|v_GRF| (km/s) above which a star is flagged high_velocity.")
-@click.option("--escape-speed", type=float, default=533.0, show_default=True,
-              help="Local escape speed (km/s) for unbound_candidate (Piffl et al. 2014).")
+# The two thresholds default to specan.velocity's constants (not repeated here, so the CLI and
+# the Python API cannot drift apart; the help quotes them and a test checks it does so rightly).
+@click.option("--high-velocity", type=float, default=None,
+              help="|v_GRF| (km/s) above which a star is flagged high_velocity [default: 300].")
+@click.option("--escape-speed", type=float, default=None,
+              help="Local escape speed (km/s) for unbound_candidate [default: 533, Piffl et al. 2014].")
 @click.option("--no-telluric-mask", is_flag=True, help="Do not mask telluric bands.")
 @click.option("--json", "as_json", is_flag=True, help="One JSON object per line per file.")
 @click.pass_context
@@ -61,8 +63,11 @@ def command(ctx, files, template, template_rv, reference, vmax, errors, high_vel
 
     overrides = overrides_from(kwargs)
     options = {"template": template, "template_rv": template_rv * u.km / u.s, "vmax": vmax * u.km / u.s,
-               "errors": errors, "high_velocity": high_velocity * u.km / u.s,
-               "escape_speed": escape_speed * u.km / u.s, "telluric": not no_telluric_mask}
+               "errors": errors, "telluric": not no_telluric_mask}
+    if high_velocity is not None:
+        options["high_velocity"] = high_velocity * u.km / u.s
+    if escape_speed is not None:
+        options["escape_speed"] = escape_speed * u.km / u.s
     if reference is not None:
         from .. import read
 
