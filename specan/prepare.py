@@ -18,16 +18,24 @@ __all__ = ["TELLURIC_BANDS_AIR", "mask_bad", "mask_telluric", "snr", "fit_contin
 
 C_KMS = 299792.458  # speed of light, km/s (SI definition)
 
-#: Telluric absorption bands masked by default, air wavelengths in Angstrom (common practice:
-#: O2 B band, O2 A band and the strongest water bands of the optical).
-TELLURIC_BANDS_AIR = (
-    (6274.0, 6330.0, "O2 gamma band"),
-    (6867.0, 6884.0, "O2 B band"),
-    (7165.0, 7330.0, "H2O"),
-    (7594.0, 7621.0, "O2 A band"),
-    (8130.0, 8350.0, "H2O"),
-    (8950.0, 9800.0, "H2O"),
-)
+
+def _default_telluric_bands():
+    """(lo, hi, id) in air Angstrom of the absorption bands marked ``masked`` in the telluric list.
+
+    One definition for the whole package: ``linelists/telluric.ecsv`` (O2 gamma, B and A bands
+    and the strong water bands; common practice, edges from memory).
+    """
+    from .linelist import load_telluric
+
+    t = load_telluric()
+    keep = (t["kind"] == "absorption_band") & np.asarray(t["masked"], bool)
+    lo, hi = t["wave_min_air"][keep].to_value(u.AA), t["wave_max_air"][keep].to_value(u.AA)
+    return tuple((float(a), float(b), str(i)) for a, b, i in zip(lo, hi, t["id"][keep]))
+
+
+#: Telluric absorption bands masked by default: (lo, hi, id), air wavelengths in Angstrom,
+#: read from the packaged telluric list (:func:`specan.linelist.load_telluric`).
+TELLURIC_BANDS_AIR = _default_telluric_bands()
 
 
 def _arrays(spectrum):
