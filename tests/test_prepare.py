@@ -53,6 +53,19 @@ def test_continuum_on_kurucz_sun_blue(kurucz_sun):
     assert np.median(np.abs(ratio[blue] - 1)) < 0.03
 
 
+@pytest.mark.parametrize("snr_in", [10, 30, 100])
+def test_continuum_of_pure_noise_is_its_mean(snr_in):
+    # A flat spectrum with white noise and its error array: the continuum is the mean level
+    # (common practice); an upper envelope of the noise sat 1.1 sigma high (measured).
+    w = np.arange(4000.0, 7000.0, 1.0)
+    bias = []
+    for seed in range(3):
+        flux = 1.0 + np.random.default_rng(seed).normal(0.0, 1.0 / snr_in, w.size)
+        fit = fit_continuum(_spectrum(w, flux, np.full(w.size, 1.0 / snr_in), medium="air")).value
+        bias.append(np.median(fit - 1.0) * snr_in)
+    assert abs(np.mean(bias)) < 0.4   # in units of the noise; measured 0.2
+
+
 BALMER_AIR = {6562.80: 25.0, 4861.33: 22.0, 4340.46: 20.0, 4101.74: 18.0, 3970.07: 16.0, 3889.05: 12.0,
               3835.38: 10.0, 3797.90: 8.0}  # NIST ASD wavelengths; Lorentzian FWHM (A) invented for an A dwarf
 
