@@ -292,6 +292,19 @@ def test_no_lines_detected_in_pure_noise(snr):
     assert int(np.sum(lines.measure(raw)["detected"])) <= 2
 
 
+def test_analyse_equals_measure_and_identify_called_apart():
+    # analyse shares one internal build between measure and identify: same results as apart.
+    from specan import synth
+
+    spec = synth.spectrum("G2", "V", snr=80, seed=2)
+    both = lines.analyse(spec)
+    m = lines.measure(spec)
+    ident = lines.identify(spec, rv=m.meta["rv"])
+    assert np.allclose(both["lines"]["ew"].value, m["ew"].value, equal_nan=True)
+    assert list(both["unidentified"]["id"]) == [i for i, st in zip(ident["id"], ident["status"])
+                                                if st == "unidentified"]
+
+
 def test_resolving_power_estimated_when_unknown():
     rng = np.random.default_rng(5)
     wave = np.arange(5000.0, 5600.0, 0.4)
