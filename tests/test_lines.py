@@ -281,14 +281,16 @@ def test_unnormalised_input_is_prepared():
     assert row["ew"].to_value(u.AA) == pytest.approx(0.4, rel=0.1)
 
 
+@pytest.mark.parametrize("with_errors", [True, False])
 @pytest.mark.parametrize("snr", [30, 100])
-def test_no_lines_detected_in_pure_noise(snr):
-    # A featureless, unnormalised spectrum with white noise and its error array: a 4-sigma
-    # matched filter over the default list's ~140 windows should find about nothing (common
-    # practice). Measured: 0-1 lines; 13-20 before the continuum stopped riding the noise.
+def test_no_lines_detected_in_pure_noise(snr, with_errors):
+    # A featureless, unnormalised spectrum with white noise, with or without its error array:
+    # a 4-sigma matched filter over the default list's ~140 windows should find about nothing
+    # (common practice). Measured: 0-1 lines; 13-20 before the continuum stopped riding the noise.
     wave = np.arange(4000.0, 7000.0, 1.0)
     flux = 100.0 * (1.0 + np.random.default_rng(snr).normal(0.0, 1.0 / snr, wave.size))
-    raw = make_spectrum(wave, flux, sigma=100.0 / snr, normalized=False, resolving_power=2000.0)
+    raw = make_spectrum(wave, flux, sigma=100.0 / snr if with_errors else None, normalized=False,
+                        resolving_power=2000.0)
     assert int(np.sum(lines.measure(raw)["detected"])) <= 2
 
 
