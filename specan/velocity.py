@@ -819,16 +819,24 @@ def measure(spectrum, template=None, *, reference=None, template_rv=0 * u.km / u
         if not r_known:
             # resolving power unknown: the template width that correlates best
             best = None
-            for fac in _R_SCAN:
-                rr = float(f"{res_r * fac:.3g}")
+            tried = [float(f"{res_r * fac:.3g}") for fac in _R_SCAN]
+            for rr in tried:
                 t = _synthetic_template(sptype, lumclass, rr, round(ln0, 12), step, next_, kind=tkind, hp_sigma=hp)
                 pk = _quick_peak(d_ffts, t, _coverage_rows(d_ffts, t, m), pad, m, smax, min_overlap, total_w)
                 if pk is not None and (best is None or pk[1] > best[0]):
                     best = (pk[1], rr, t)
             if best is not None:
                 res_r, chosen = best[1], best[2]
-            notes.append(f"resolving power unknown: R ~ {res_r:.0f} from the template width that correlates "
-                         "best (use --resolving-power to set it)")
+            if res_r in (tried[0], tried[-1]):
+                # at the end of the scan the estimate is a bound, not a value (the JHC (1984)
+                # spectra, R ~ 1100 at 5000 A, all stop at the low end: measured)
+                notes.append(f"resolving power unknown: the template width that correlates best is the "
+                             f"{'broadest' if res_r == tried[0] else 'sharpest'} tried (R {res_r:.0f}; "
+                             f"range {tried[0]:.0f}-{tried[-1]:.0f}), so R may lie beyond it "
+                             "(use --resolving-power to set it)")
+            else:
+                notes.append(f"resolving power unknown: R ~ {res_r:.0f} from the template width that "
+                             "correlates best (use --resolving-power to set it)")
 
     corr = _Correlation(arrays, chosen, pad, m, d_ffts)
     pk = _peak(corr, pad, smax, min_overlap, total_w)

@@ -421,6 +421,16 @@ def test_unknown_resolving_power():
     assert abs(res["rv"].to_value(KMS) - 222) < 4 * res["rv_err"].to_value(KMS) + 0.5
 
 
+def test_unknown_resolving_power_at_the_end_of_the_scan_is_a_bound():
+    # R = 500 sampled at 0.5 A: the first guess (2.5 pixels per FWHM, R ~ 4300) is far too
+    # sharp, so even the broadest template tried is sharper than the star; the note must say
+    # that the figure is a bound, not an estimate.
+    s = synth.spectrum("G2", resolving_power=500, wave=np.arange(4000.0, 6800.0, 0.5) * u.AA, snr=100, seed=1)
+    get_info(s).resolving_power = None
+    notes = [n for n in velocity.measure(s, barycentric=False, errors="td")["notes"] if "resolving power" in n]
+    assert notes and "broadest tried" in notes[0] and "may lie beyond" in notes[0]
+
+
 def test_line_mask_and_user_template_with_partial_overlap(tmp_path):
 
     s = synth.spectrum("G5", resolving_power=3000, rv=-233 * KMS, snr=60, seed=4,
