@@ -527,6 +527,10 @@ def analyse_file(path, settings=None) -> dict:
         physics = _guarded(rec, "physics", _stage_function("physics"),
                            classification, velocity, photometry, raw)
         if isinstance(physics, dict):
+            if "teff" in rec.values:
+                # the physics stage repeats the classifier's Teff (the same class-probability
+                # mixture of the same scales): one column, not two
+                physics = {k: v for k, v in physics.items() if k not in ("teff_k", "teff_err_k")}
             rec.add_stage_dict("physics", physics)
 
     # The stages may add warnings to the carried metadata as they go.

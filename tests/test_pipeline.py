@@ -416,6 +416,15 @@ def test_demo_types_within_two_subclasses(demo):
 
 
 @pytest.mark.slow
+def test_demo_teff_is_one_column_with_its_unit(demo):
+    # The classifier and the physics stage give the same Teff; the catalogue carries it once.
+    summary, _, _, _ = demo
+    cat = summary.catalogue
+    assert "teff" in cat.colnames and "teff_k" not in cat.colnames and "physics_teff_k" not in cat.colnames
+    assert str(cat["teff"].unit) == "K"
+
+
+@pytest.mark.slow
 def test_demo_velocities_within_three_reported_errors(demo):
     _, truth, rows, _ = demo
     misses = []
