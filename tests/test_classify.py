@@ -257,6 +257,15 @@ def test_sun_degraded_to_r1000(sun_spectrum):
     _check_sun(res)
 
 
+def test_sun_without_a_stated_resolving_power(kurucz_sun):
+    # The same Kurucz Sun with no resolving power in its metadata: specan estimates R from the
+    # narrowest lines (true R = 2000, the fixture's) and gets the type it gets when told.
+    w, f, _ = kurucz_sun
+    res = C.classify(_spectrum(w, f, medium="vacuum", snr=500.0, path="kurucz_sun_no_r"))
+    _check_sun(res)
+    assert any("estimated from the narrowest lines" in n for n in res["notes"])
+
+
 def test_sun_is_more_likely_a_dwarf_than_a_giant(sun_spectrum):
     # Beyond the class acceptance below: the class probabilities, not only the most probable class,
     # favour a dwarf (measured IV + V = 0.57 with the default calibration, R = 2000).
