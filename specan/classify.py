@@ -51,7 +51,8 @@ import astropy.units as u
 import numpy as np
 from scipy.integrate import cumulative_trapezoid
 
-from .errors import AnalysisError, ReadError, SpecanError
+from .errors import AnalysisError, ReadError
+from .lines import estimate_resolving_power
 from .mktypes import code_to_sptype, lumclass_to_number, number_to_lumclass, sptype_to_code
 from .obsinfo import get_info, wavelength_in
 
@@ -396,25 +397,6 @@ def _snr_of(spectrum, info):
     return value if np.isfinite(value) and value > 0 else None
 
 
-def _estimated_resolving_power(spectrum):
-    """R from the narrowest lines (specan.lines), or None when they give none.
-
-    Measured: 1847 on the Kurucz solar model at R = 2000; about 750 on the JHC (1984)
-    spectra, whose 4.5 A FWHM is R ~ 1100 at 5000 A (blends read as broad lines), so
-    there the estimate errs towards a broad line spread and little smoothing, as
-    assuming the calibration's resolution would.
-    """
-    from .lines import _Data
-    from .prepare import prepare
-
-    try:
-        spec = spectrum if get_info(spectrum).normalized else prepare(spectrum)
-        data = _Data(spec)
-    except SpecanError:
-        return None
-    return data.resolving_power if data.r_source.startswith("estimated") else None
-
-
 def spectrum_criteria(spectrum, resolution=4.5 * u.AA, rv=None, measure_velocity=True,
                       assume_resolution=None):
     """Measure the classification criteria of a spectrum in its rest frame at a given resolution.
@@ -493,7 +475,7 @@ def spectrum_criteria(spectrum, resolution=4.5 * u.AA, rv=None, measure_velocity
         fwhm_in = wave / float(info.resolving_power)
     elif assume_resolution is not None:
         fwhm_in = float(u.Quantity(assume_resolution, u.AA).value)
-    elif (r_est := _estimated_resolving_power(spectrum)) is not None:
+    elif (r_est := estimate_resolving_power(spectrum)) is not None:
         fwhm_in = wave / r_est
         notes.append(f"resolving power unknown: R ~ {r_est:.0f} estimated from the narrowest lines "
                      "(give the resolving power to the reader to avoid the estimate)")

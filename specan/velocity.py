@@ -744,6 +744,17 @@ def measure(spectrum, template=None, *, reference=None, template_rv=0 * u.km / u
     smax = int(math.ceil(math.log(float(doppler_factor(vmax_kms * u.km / u.s))) / step))
     ntap = 8
     res_r, r_known = _resolving_power(data)
+    if not r_known:
+        # The widths of the narrowest lines tell R better than the template-width scan below,
+        # which prefers broad templates on real spectra (Kurucz Sun at R = 2000: 1360 by the
+        # scan, 1847 by the lines; velocity scatter 1.9 against 1.1 km/s at S/N 100, measured).
+        from .lines import estimate_resolving_power
+
+        r_est = estimate_resolving_power(spectrum)
+        if r_est is not None:
+            res_r, r_known = float(r_est), True
+            notes.append(f"resolving power unknown: R ~ {res_r:.0f} estimated from the narrowest lines "
+                         "(use --resolving-power to set it)")
     r_key = float(f"{res_r:.3g}")
     fwhm_grid = 1.0 / (res_r * step)  # resolution element in grid pixels
     hp = float(highpass) * fwhm_grid if highpass else None

@@ -261,7 +261,7 @@ def _read_rows(out):
 def test_killed_run_then_rerun_gives_complete_catalogue(tmp_path, sig):
     night = tmp_path / "night"
     night.mkdir()
-    n = 8
+    n = 16   # enough that the run is still going when the signal lands, on a busy machine too
     for i in range(n):
         write_spectrum(night / f"s{i}.fits", name=f"S{i}", seed=i, n=800)
     out = tmp_path / "out"
