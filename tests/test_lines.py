@@ -462,6 +462,32 @@ def test_cli_lines_json_and_table(tmp_path):
     assert missing.exit_code != 0
 
 
+def test_cli_lines_of_a_fast_star(tmp_path):
+    # A synthetic K1 III (specan.synth) at +600 km/s, R = 2000: by default the CLI takes the
+    # velocity stage's velocity, so the lines are found as for the star at rest (at rv 0 most
+    # of them fall outside their one-resolution-element windows).
+    import json
+
+    from click.testing import CliRunner
+
+    from specan import synth
+    from specan.cli import cli
+
+    counts = {}
+    for name, rv in (("rest", 0.0), ("fast", 600.0)):
+        s = synth.spectrum("K1", "III", resolving_power=2000, rv=rv * u.km / u.s, snr=100, seed=5)
+        path = tmp_path / f"{name}.txt"
+        np.savetxt(path, np.column_stack([s.spectral_axis.to_value(u.AA), 1000.0 * s.flux.value]),
+                   header="Wavelength [Angstrom]    Flux", fmt="%.4f")
+        res = CliRunner().invoke(cli, ["lines", str(path), "--json", "--resolving-power", "2000"])
+        assert res.exit_code == 0, res.output
+        d = json.loads(res.output.strip().splitlines()[-1])
+        counts[name] = sum(r["detected"] for r in d["lines"])
+        assert d["rv_source"].startswith("velocity stage")
+        assert d["rv_kms"] == pytest.approx(rv, abs=5.0)
+    assert counts["fast"] >= 0.9 * counts["rest"] > 0
+
+
 def test_masked_line_core_is_not_measured():
     spec, _ = _synthetic()
     wave = spec.spectral_axis.to_value(u.AA)

@@ -2,6 +2,7 @@
 
 import click
 
+from ..errors import SpecanError
 from ._common import echo_json, exit_with_failures, for_each_file, overrides_from, read_options
 
 
@@ -14,7 +15,22 @@ def lines_file(path, overrides, options):
     from .. import read
     from ..lines import analyse
 
-    res = analyse(read(path, **overrides), **options)
+    spectrum = read(path, **overrides)
+    options = dict(options)
+    rv_source = "given"
+    if options["rv"] == "measure":
+        # each line is looked for within one resolution element of its shifted place, so the
+        # star's velocity matters (at rest a 560 km/s star at R~2000 lost most of its lines)
+        from ..velocity import measure
+
+        try:
+            options["rv"] = measure(spectrum, errors="td", barycentric=False)["rv_topo"]
+            rv_source = "velocity stage (cross-correlation)"
+        except SpecanError:
+            options["rv"] = None
+    if options["rv"] is None:
+        rv_source = "estimated from the strongest features"
+    res = analyse(spectrum, **options)
     table, indices = res["lines"], res["indices"]
     rows = []
     for r in table:
@@ -34,7 +50,7 @@ def lines_file(path, overrides, options):
                 "significance": float(r["significance"]), "emission": bool(r["emission"])}
                for r in (res["unidentified"] if res["unidentified"] is not None else [])]
     meta = table.meta
-    return {"file": str(path), "rv_kms": float(meta["rv"].to_value("km/s")),
+    return {"file": str(path), "rv_kms": float(meta["rv"].to_value("km/s")), "rv_source": rv_source,
             "resolving_power": meta["resolving_power"],
             "resolving_power_source": meta["resolving_power_source"], "medium": meta["medium"],
             "lines": rows, "indices": idx, "unidentified": unknown}
@@ -50,8 +66,9 @@ def _fmt(v, spec):
 @click.option("--list", "linelist", default=None,
               help="Line list: 'stellar' (default) or an ECSV file (see linelists/README.md).")
 @click.option("--bands", default=None, help="Band-index definitions: 'bands' (default) or an ECSV file.")
-@click.option("--rv", default="0", show_default=True,
-              help="Radial velocity in km/s used to place the lines, or 'auto' to estimate it.")
+@click.option("--rv", default="measure", show_default=True,
+              help="Radial velocity in km/s used to place the lines; 'measure' takes the velocity "
+                   "stage's (cross-correlation), 'auto' estimates it from the strongest features.")
 @click.option("--profile", type=click.Choice(["auto", "gauss", "voigt"]), default="auto", show_default=True,
               help="Profile fitted to lines (auto: Voigt for hydrogen and very strong lines).")
 @click.option("--all", "show_all", is_flag=True, help="Also list lines that were not detected.")
@@ -63,11 +80,14 @@ def command(ctx, files, linelist, bands, rv, profile, show_all, as_json, **kwarg
 
     if rv.strip().lower() == "auto":
         rv_q = None
+    elif rv.strip().lower() == "measure":
+        rv_q = "measure"
     else:
         try:
             rv_q = float(rv) * u.km / u.s
         except ValueError:
-            raise click.BadParameter(f"{rv!r} is neither a number (km/s) nor 'auto'", param_hint="--rv") from None
+            raise click.BadParameter(f"{rv!r} is neither a number (km/s) nor 'measure' or 'auto'",
+                                     param_hint="--rv") from None
     overrides = overrides_from(kwargs)
     options = {"linelist": linelist, "bands": bands, "rv": rv_q, "profile": profile}
 
@@ -75,7 +95,7 @@ def command(ctx, files, linelist, bands, rv, profile, show_all, as_json, **kwarg
         if as_json:
             echo_json(d)
             return
-        click.echo(f"{d['file']}: rv {d['rv_kms']:+.1f} km/s, R {d['resolving_power']:.0f} "
+        click.echo(f"{d['file']}: rv {d['rv_kms']:+.1f} km/s ({d['rv_source']}), R {d['resolving_power']:.0f} "
                    f"({d['resolving_power_source']}), {d['medium']} wavelengths")
         click.echo(f"  {'line':<12} {'lab':>9} {'obs':>9} {'EW/A':>8} {'err':>7} {'FWHM':>6} "
                    f"{'depth':>6}  method / notes")
