@@ -1,6 +1,6 @@
 """specan: analyse a night of stellar absorption-line spectra.
 
-read -> prepare (mask, S/N, continuum) -> lines -> velocity -> classify -> report.
+read -> prepare (mask, S/N, continuum) -> velocity -> lines -> classify -> physics -> report.
 """
 
 from ._offline import configure_offline

@@ -33,7 +33,7 @@ def _formats(ctx, param, value):
               help="CSV of per-object V magnitudes, E(B-V), parallaxes... (matched by object name) "
                    "for distances.")
 @click.option("--stages", default=None, metavar="LIST",
-              help="Run only these stages, comma-separated (read, prepare, lines, velocity, classify, "
+              help="Run only these stages, comma-separated (read, prepare, velocity, lines, classify, "
                    "physics); default all.")
 @click.option("--calibration", default=None, type=click.Path(exists=True, dir_okay=False),
               help="MK calibration file from 'specan calibrate' (default: the built-in one, fitted on "
