@@ -121,6 +121,11 @@ def test_run_one_row_per_input_errors_with_reasons(tmp_path, fixed_code, capsys)
     status = run_cli("run", night, missing, "--out", out, *BASIC_CLI)
     err = capsys.readouterr().err
     assert "%|" not in err  # no progress bar when stderr is not a terminal
+    # each failed input is named on the terminal with its reason, one line each
+    failed_lines = [line for line in err.splitlines() if line.startswith("specan: error: ")]
+    assert len(failed_lines) == 4
+    assert any("truncated.fits" in line and "truncated" in line.split("truncated.fits", 1)[1]
+               for line in failed_lines)
     cat = Table.read(out / "catalogue.ecsv")
     assert len(cat) == 7 and len(set(cat["file"])) == 7
     by_name = {Path(f).name: row for f, row in zip(cat["file"], cat)}

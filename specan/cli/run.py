@@ -17,6 +17,10 @@ def _formats(ctx, param, value):
     return names
 
 
+#: Failed inputs named one per line on the terminal; beyond this, a count (a night can hold thousands).
+MAX_LISTED = 20
+
+
 @click.command(name="run")
 @click.argument("paths", nargs=-1, required=True)
 @click.option("--out", "out_dir", required=True, type=click.Path(file_okay=False),
@@ -71,6 +75,14 @@ def command(paths, out_dir, jobs, dask_address, force, formats, no_plots, photom
     not_run = [f"{n} ({why})" for n, why in summary.stages.items() if why is not None]
     if not_run:
         click.echo("stages not run: " + "; ".join(not_run), err=True)
+    # each failed input on its own line, so the terminal says which file and why (the
+    # catalogue holds the same reasons, the 'status' and 'reason' columns)
+    failed = [(str(r["file"]), str(r["reason"])) for r in summary.catalogue if str(r["status"]) == "error"]
+    for file, reason in failed[:MAX_LISTED]:
+        click.echo(f"specan: error: {file}: {reason}", err=True)
+    if len(failed) > MAX_LISTED:
+        click.echo(f"specan: ... and {len(failed) - MAX_LISTED} more failed inputs: see the catalogue's "
+                   "status and reason columns", err=True)
     for name, path in summary.outputs.items():
         click.echo(f"{name}: {path}")
     for note in summary.notes:

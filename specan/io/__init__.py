@@ -113,7 +113,8 @@ def _read_fits(path, size, forced, opts) -> RawSpectrum:
 
     if size % 2880:
         # FITS files are whole 2880-byte records (FITS standard 4.0, sect. 3.1).
-        raise CorruptFileError(f"size {size} bytes is not a multiple of 2880: the FITS file is truncated", path)
+        raise CorruptFileError(f"size {size} bytes is not a multiple of 2880: the FITS file is truncated "
+                               "(copy or export it again from the original)", path)
     try:
         with warnings.catch_warnings():
             warnings.simplefilter("error", fits.verify.VerifyWarning)
