@@ -119,7 +119,8 @@ def read(path, hdul=None, hdu=None, wave_unit=None, **_):
         elif data.ndim == 2 and data.shape[0] <= 4:
             data = data[0]  # multi-band layout: first band is the spectrum (common practice)
         else:
-            raise ReadError(f"HDU {index} is a {data.ndim}-D image of shape {data.shape}, not a 1-D spectrum", path)
+            raise ReadError(f"HDU {index} is a {data.ndim}-D image of shape {data.shape}, not a 1-D spectrum "
+                            "(specan reads extracted spectra; choose another HDU with --hdu)", path)
     n = data.size
     try:
         wave, unit, source = wavelengths_from_header(h.header, n, wave_unit)
