@@ -266,7 +266,9 @@ def _read_rows(out):
 def test_killed_run_then_rerun_gives_complete_catalogue(tmp_path, sig):
     night = tmp_path / "night"
     night.mkdir()
-    n = 16   # enough that the run is still going when the signal lands, on a busy machine too
+    # read + prepare take ~10 ms a file, so the run must still have many files to go when the
+    # signal lands (with 8 it once finished first on a busy machine)
+    n = 24
     for i in range(n):
         write_spectrum(night / f"s{i}.fits", name=f"S{i}", seed=i, n=800)
     out = tmp_path / "out"
@@ -278,7 +280,7 @@ def test_killed_run_then_rerun_gives_complete_catalogue(tmp_path, sig):
             break
         if proc.poll() is not None:
             break
-        time.sleep(0.05)
+        time.sleep(0.01)
     assert proc.poll() is None, "run finished before it could be interrupted"
     proc.send_signal(sig)
     proc.communicate(timeout=60)
