@@ -96,7 +96,7 @@ def cayrel_error(fwhm, pixel, snr):
 class _Data:
     """Plain arrays of one normalised spectrum plus everything derived once."""
 
-    def __init__(self, spectrum, resolving_power=None):
+    def __init__(self, spectrum, resolving_power=None, width_only=False):
         info = get_info(spectrum)
         self.info = info
         self.medium = info.medium
@@ -126,7 +126,9 @@ class _Data:
         self.dx = np.diff(_pixel_edges(self.wave))  # pixel widths, Angstrom
         self.r_source = "argument"
         r = resolving_power if resolving_power is not None else info.resolving_power
-        narrow = self._narrow_line_width()
+        narrow = self.narrow = self._narrow_line_width()
+        if width_only:   # all estimate_resolving_power needs: no R, widths or matched filter
+            return
         if r is None:
             if narrow is not None:
                 r, self.r_source = 1.0 / narrow, "estimated from the narrowest lines"
@@ -300,10 +302,10 @@ def estimate_resolving_power(spectrum):
     from .errors import SpecanError
 
     try:
-        data = _Data(_normalised(spectrum), None)
+        narrow = _Data(_normalised(spectrum), width_only=True).narrow
     except SpecanError:
         return None
-    return data.resolving_power if data.r_source.startswith("estimated") else None
+    return None if narrow is None else 1.0 / narrow
 
 
 def _hydrogen_model(data, fits, pred, fwhm_at, is_h, detected, ep_low):
