@@ -25,6 +25,7 @@ import warnings
 
 import astropy.units as u
 import numpy as np
+from astropy.constants import c as _c
 from astropy.nddata import StdDevUncertainty
 from astropy.table import QTable
 from scipy.ndimage import gaussian_filter1d
@@ -35,11 +36,12 @@ from scipy.special import voigt_profile
 from .errors import AnalysisError
 from .linelist import load_bands, load_linelist
 from .obsinfo import get_info
+from .velocity import doppler_factor
 
 __all__ = ["identify", "measure", "band_indices", "analyse", "cayrel_error", "doppler_factor",
            "estimate_resolving_power"]
 
-C_KMS = 299792.458  # speed of light, km/s (SI definition)
+C_KMS = _c.to_value(u.km / u.s)
 GAUSS_FWHM = 2.0 * np.sqrt(2.0 * np.log(2.0))  # FWHM / sigma of a Gaussian
 
 # Matched-filter significance above which a feature counts as detected (common practice: 3-5 sigma).
@@ -54,22 +56,6 @@ DEFAULT_PIXELS_PER_FWHM = 2.5
 
 
 # ----------------------------------------------------------------------------- helpers
-
-
-def doppler_factor(rv):
-    """Relativistic Doppler factor lambda_obs / lambda_rest for a radial velocity.
-
-    Parameters
-    ----------
-    rv : astropy.units.Quantity
-        Radial velocity, positive receding.
-
-    Returns
-    -------
-    float
-    """
-    beta = u.Quantity(rv, u.km / u.s).to_value(u.km / u.s) / C_KMS
-    return float(np.sqrt((1.0 + beta) / (1.0 - beta)))
 
 
 def cayrel_error(fwhm, pixel, snr):

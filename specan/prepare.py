@@ -8,8 +8,9 @@ from __future__ import annotations
 
 import warnings
 
-import numpy as np
 import astropy.units as u
+import numpy as np
+from astropy.constants import c as _c
 from astropy.nddata import StdDevUncertainty
 
 from .errors import AnalysisError
@@ -18,7 +19,7 @@ from .obsinfo import META_KEY, get_info, vacuum_to_air
 __all__ = ["TELLURIC_BANDS_AIR", "mask_bad", "mask_telluric", "snr", "fit_continuum", "normalize",
            "degrade", "prepare"]
 
-C_KMS = 299792.458  # speed of light, km/s (SI definition)
+C_KMS = _c.to_value(u.km / u.s)
 #: Continuum anchors this many standard deviations (of a maximum of noisy pixels) below the
 #: fit keep full weight. Measured with error arrays, S/N 10-300: on flat spectra the fit's
 #: bias is +0.2 sigma at 1.0 against +1.1 with no tolerance and 0.0 at 2.0; on a synthetic
