@@ -461,7 +461,7 @@ def _prepare_list(linelist, kinds):
 
 
 def identify(spectrum, linelist=None, rv=0 * u.km / u.s, resolving_power=None, window=None,
-             detect_sigma=DETECT_SIGMA, strong_depth=0.1, min_depth=MIN_DEPTH):
+             detect_sigma=DETECT_SIGMA, strong_depth=0.1, min_depth=MIN_DEPTH, _data=None):
     """Find features and match them to a line list.
 
     A Gaussian matched filter at the instrument's resolution gives, at each pixel,
@@ -502,12 +502,8 @@ def identify(spectrum, linelist=None, rv=0 * u.km / u.s, resolving_power=None, w
         ``wave_obs``, ``velocity`` (obs - lab), ``significance``, ``depth``,
         ``emission``, ``blend``, ``status``. ``meta`` holds rv, R and medium.
     """
-    data = _Data(_normalised(spectrum), resolving_power)
-    return _identify(data, linelist, rv, window, detect_sigma, strong_depth, min_depth)
-
-
-def _identify(data, linelist, rv, window, detect_sigma, strong_depth, min_depth):
-    """:func:`identify` on already built data (so :func:`analyse` builds it once)."""
+    # _data: the internal arrays already built from this spectrum (analyse builds them once)
+    data = _data if _data is not None else _Data(_normalised(spectrum), resolving_power)
     t, lab, pred, rv_q, pred_all = _lines_in_range(data, linelist, None, rv)
     fwhm_at = np.interp(pred, data.wave, data.line_fwhm)
     if window is None:
@@ -854,7 +850,7 @@ def _fit_gauss(data, lo, hi, cont, centres, max_shift, sig_line, sign=1.0):
 
 def measure(spectrum, linelist=None, rv=0 * u.km / u.s, resolving_power=None, profile="auto",
             window=None, detect_sigma=DETECT_SIGMA, kinds=("atomic",), min_depth=MIN_DEPTH,
-            divide_hydrogen=True):
+            divide_hydrogen=True, _data=None):
     """Measure every listed line the spectrum covers.
 
     Per line: the centre is the matched feature (see :func:`identify`) or the
@@ -913,12 +909,8 @@ def measure(spectrum, linelist=None, rv=0 * u.km / u.s, resolving_power=None, pr
     """
     if profile not in ("auto", "gauss", "voigt"):
         raise ValueError("profile must be 'auto', 'gauss' or 'voigt'")
-    data = _Data(_normalised(spectrum), resolving_power)
-    return _measure(data, linelist, rv, profile, window, detect_sigma, kinds, min_depth, divide_hydrogen)
-
-
-def _measure(data, linelist, rv, profile, window, detect_sigma, kinds, min_depth, divide_hydrogen):
-    """:func:`measure` on already built data (so :func:`analyse` builds it once)."""
+    # _data: the internal arrays already built from this spectrum (analyse builds them once)
+    data = _data if _data is not None else _Data(_normalised(spectrum), resolving_power)
     t, lab, pred, rv_q, pred_all = _lines_in_range(data, linelist, kinds, rv)
     ids = [str(i) for i in t["id"]]
     species = [str(s) for s in t["species"]]
@@ -1270,19 +1262,13 @@ def analyse(spectrum, linelist=None, bands=None, rv=0 * u.km / u.s, resolving_po
         ``{"lines": QTable from measure, "indices": QTable from band_indices,
         "unidentified": rows of identify with status "unidentified" (or None)}``.
     """
-    import inspect
-
     spec = _normalised(spectrum)
     data = _Data(spec, resolving_power)   # built once for measure and identify (~30 ms)
-    m = inspect.signature(measure).bind(spec, linelist, rv=rv, resolving_power=resolving_power, **options)
-    m.apply_defaults()
-    a = m.arguments
-    table = _measure(data, linelist, rv, a["profile"], a["window"], a["detect_sigma"], a["kinds"],
-                     a["min_depth"], a["divide_hydrogen"])
+    table = measure(spec, linelist, rv=rv, resolving_power=resolving_power, _data=data, **options)
     indices = band_indices(spec, bands, rv=table.meta["rv"])
     unknown = None
     if unidentified:
-        strong = inspect.signature(identify).parameters["strong_depth"].default
-        ident = _identify(data, linelist, table.meta["rv"], a["window"], a["detect_sigma"], strong, a["min_depth"])
+        ident = identify(spec, linelist, rv=table.meta["rv"], resolving_power=resolving_power, _data=data,
+                         **{k: v for k, v in options.items() if k in ("window", "detect_sigma", "min_depth")})
         unknown = ident[np.asarray(ident["status"]) == "unidentified"]
     return {"lines": table, "indices": indices, "unidentified": unknown}
