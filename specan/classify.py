@@ -398,7 +398,7 @@ def _snr_of(spectrum, info):
 
 
 def spectrum_criteria(spectrum, resolution=4.5 * u.AA, rv=None, measure_velocity=True,
-                      assume_resolution=None):
+                      assume_resolution=None, resolving_power=None):
     """Measure the classification criteria of a spectrum in its rest frame at a given resolution.
 
     Parameters
@@ -415,6 +415,9 @@ def spectrum_criteria(spectrum, resolution=4.5 * u.AA, rv=None, measure_velocity
     assume_resolution : astropy.units.Quantity, optional
         FWHM of the spectrum when its metadata do not give a resolving power.
         Default: the pixel size decides, see Notes.
+    resolving_power : float, optional
+        Resolving power already estimated from the narrowest lines (the velocity stage
+        reports it), used when the metadata give none: saves estimating it again.
 
     Returns
     -------
@@ -452,6 +455,8 @@ def spectrum_criteria(spectrum, resolution=4.5 * u.AA, rv=None, measure_velocity
             from . import velocity
 
             vres = velocity.measure(spectrum, errors="td", barycentric=False)
+            if resolving_power is None and vres.get("resolving_power_source") == "narrowest lines":
+                resolving_power = vres["resolving_power"]
             rv = vres.get("rv_topo")
             if rv is None:
                 rv = vres.get("rv")
@@ -475,7 +480,7 @@ def spectrum_criteria(spectrum, resolution=4.5 * u.AA, rv=None, measure_velocity
         fwhm_in = wave / float(info.resolving_power)
     elif assume_resolution is not None:
         fwhm_in = float(u.Quantity(assume_resolution, u.AA).value)
-    elif (r_est := estimate_resolving_power(spectrum)) is not None:
+    elif (r_est := resolving_power or estimate_resolving_power(spectrum)) is not None:
         fwhm_in = wave / r_est
         notes.append(f"resolving power unknown: R ~ {r_est:.0f} estimated from the narrowest lines "
                      "(give the resolving power to the reader to avoid the estimate)")
@@ -936,9 +941,9 @@ class Calibration:
             self._fine = _fine(self.model_, self.settings["depth_scale_sigma"])
         return self._fine
 
-    def classify(self, spectrum, rv=None):
+    def classify(self, spectrum, rv=None, resolving_power=None):
         """MK type of a spectrum; see :func:`classify` for the result."""
-        meas = spectrum_criteria(spectrum, self.resolution, rv=rv)
+        meas = spectrum_criteria(spectrum, self.resolution, rv=rv, resolving_power=resolving_power)
         out = self.classify_criteria(meas["values"], meas["noise"], snr=meas["snr"])
         out["notes"] = meas["notes"] + out["notes"]
         out["rv"] = meas["rv"]
@@ -1260,7 +1265,7 @@ def default_calibration():
     return Calibration.from_dict(json.loads(text), DEFAULT_FILE)
 
 
-def classify(spectrum, calibration=None, rv=None):
+def classify(spectrum, calibration=None, rv=None, resolving_power=None):
     """MK spectral type, luminosity class, Teff and flags of a spectrum.
 
     Parameters
@@ -1272,6 +1277,9 @@ def classify(spectrum, calibration=None, rv=None):
         A fitted calibration or its file; default: the shipped JHC (1984) one.
     rv : astropy.units.Quantity, optional
         Known velocity of the spectrum (skips the velocity measurement).
+    resolving_power : float, optional
+        Resolving power already estimated from the narrowest lines, used when the
+        metadata give none (see :func:`spectrum_criteria`).
 
     Returns
     -------
@@ -1290,7 +1298,7 @@ def classify(spectrum, calibration=None, rv=None):
         calibration = default_calibration()
     elif not isinstance(calibration, Calibration):
         calibration = Calibration.load(calibration)
-    return calibration.classify(spectrum, rv=rv)
+    return calibration.classify(spectrum, rv=rv, resolving_power=resolving_power)
 
 
 # ``specan.classify`` is both this module and, by the public API, a function:

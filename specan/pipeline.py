@@ -113,6 +113,8 @@ CORE_COLUMNS = (
     ("site_known", None, "observatory location known (needed for the barycentric correction)"),
     ("medium", None, "medium of the wavelength scale as stored"),
     ("resolving_power", None, "resolving power R = lambda / FWHM"),
+    ("resolving_power_source", None, "where R comes from: file (or option), narrowest lines, "
+                                     "template-width scan (see the velocity notes)"),
     ("snr", None, "median S/N per pixel (DER_SNR)"),
     ("n_lines", None, "lines detected by the lines stage"),
     ("n_emission", None, "detected lines in emission"),
@@ -387,6 +389,8 @@ def _info_columns(rec, spectrum):
     rec.set("site_known", info.site is not None)
     rec.set("medium", info.medium)
     rec.set("resolving_power", info.resolving_power)
+    if info.resolving_power is not None:
+        rec.set("resolving_power_source", "file")
     rec.set("snr", info.snr)
     rec.warnings.extend(str(w) for w in info.warnings)
 
@@ -508,16 +512,25 @@ def analyse_file(path, settings=None) -> dict:
     if stages["velocity"] is None:
         velocity = _guarded(rec, "velocity", _stage_function("velocity"), spectrum)
         if isinstance(velocity, dict):
-            rec.add_stage_dict("velocity", velocity)
+            r_keys = ("resolving_power", "resolving_power_source")
+            rec.add_stage_dict("velocity", {k: v for k, v in velocity.items() if k not in r_keys})
+            if rec.values.get("resolving_power") is None:   # not stated: the velocity stage's estimate
+                for key in r_keys:
+                    rec.set(key, velocity.get(key))
+    # A resolving power the velocity stage had to estimate (the file states none) serves the
+    # later stages too, rather than each estimating it again.
+    r_estimated = {}
+    if isinstance(velocity, dict) and velocity.get("resolving_power_source") == "narrowest lines":
+        r_estimated["resolving_power"] = velocity["resolving_power"]
     if stages["lines"] is None:
-        options = {}
+        options = dict(r_estimated)
         if isinstance(velocity, dict) and velocity.get("rv_topo") is not None:
             options["rv"] = velocity["rv_topo"]   # the shift seen in the data
         lines = _guarded(rec, "lines", _stage_function("lines"), spectrum, **options)
         if lines is not None:
             _lines_columns(rec, lines)
     if stages["classify"] is None:
-        options = {}
+        options = dict(r_estimated)
         calibration = _calibration(settings.get("calibration"))
         if calibration is not None:
             options["calibration"] = calibration

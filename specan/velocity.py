@@ -744,6 +744,7 @@ def measure(spectrum, template=None, *, reference=None, template_rv=0 * u.km / u
     smax = int(math.ceil(math.log(float(doppler_factor(vmax_kms * u.km / u.s))) / step))
     ntap = 8
     res_r, r_known = _resolving_power(data)
+    r_source = "file" if r_known else "template-width scan"
     if not r_known:
         # The widths of the narrowest lines tell R better than the template-width scan below,
         # which prefers broad templates on real spectra (Kurucz Sun at R = 2000: 1360 by the
@@ -752,7 +753,7 @@ def measure(spectrum, template=None, *, reference=None, template_rv=0 * u.km / u
 
         r_est = estimate_resolving_power(spectrum)
         if r_est is not None:
-            res_r, r_known = float(r_est), True
+            res_r, r_known, r_source = float(r_est), True, "narrowest lines"
             notes.append(f"resolving power unknown: R ~ {res_r:.0f} estimated from the narrowest lines "
                          "(use --resolving-power to set it)")
     r_key = float(f"{res_r:.3g}")
@@ -839,6 +840,7 @@ def measure(spectrum, template=None, *, reference=None, template_rv=0 * u.km / u
             if best is not None:
                 res_r, chosen = best[1], best[2]
             if res_r in (tried[0], tried[-1]):
+                r_source = "template-width scan (a bound)"
                 # at the end of the scan the estimate is a bound, not a value (the JHC (1984)
                 # spectra, R ~ 1100 at 5000 A, all stop at the low end: measured)
                 notes.append(f"resolving power unknown: the template width that correlates best is the "
@@ -994,6 +996,8 @@ def measure(spectrum, template=None, *, reference=None, template_rv=0 * u.km / u
         "template_scores": scores,
         "ccf_fwhm": fwhm_px * abs(dvds) * kms if np.isfinite(fwhm_px) else None,
         "r_td": r_td,
+        "resolving_power": res_r,
+        "resolving_power_source": r_source,
         "z_bary": None if f_b is None else f_b - 1.0,
         "ccf_velocity": velocity_from_factor(np.exp((s0 + j) * step) * tmpl_factor),
         "ccf": vals,

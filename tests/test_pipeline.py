@@ -306,6 +306,26 @@ def test_killed_run_then_rerun_gives_complete_catalogue(tmp_path, sig):
         assert f"{done} already current" in rerun.stdout, rerun.stdout
 
 
+def test_unstated_resolving_power_estimated_once_and_catalogued(tmp_path, kurucz_sun, monkeypatch):
+    # The Kurucz solar model (rms-solar, R = 2000 by its fixture) as a text file that states no
+    # resolving power: the velocity stage estimates R from the narrowest lines, the catalogue
+    # says so, and the later stages reuse the estimate instead of making their own.
+    import specan.lines
+
+    w, f, _ = kurucz_sun
+    keep = (w > 3800) & (w < 7400)
+    path = tmp_path / "sun.txt"
+    np.savetxt(path, np.column_stack([w[keep], f[keep]]), header="vacuum wavelength [Angstrom]  flux",
+               fmt="%.5f")
+    calls = []
+    real = specan.lines.estimate_resolving_power
+    monkeypatch.setattr(specan.lines, "estimate_resolving_power", lambda s: calls.append(1) or real(s))
+    values = pipeline.analyse_file(str(path), {"plots": False, "overrides": {"medium": "vacuum"}})["values"]
+    assert values["resolving_power_source"] == "narrowest lines"
+    assert values["resolving_power"] == pytest.approx(2000.0, rel=0.15)
+    assert len(calls) == 1
+
+
 # ----------------------------------------------------------------------------- parallel and distributed
 
 
