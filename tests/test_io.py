@@ -200,6 +200,15 @@ def test_text_without_unit_needs_wave_unit(tmp_path):
     assert s.spectral_axis.to_value(u.AA)[0] == pytest.approx(4000.0)
 
 
+def test_text_with_four_columns_is_refused_not_truncated(tmp_path):
+    # 2-3 columns are understood (wavelength, flux, error); a fourth would be dropped unseen.
+    path = tmp_path / "four.txt"
+    path.write_text("# wavelength [Angstrom] flux err sky\n"
+                    + "\n".join(f"{w} 1.0 0.1 5.0" for w in np.linspace(4000, 5000, 50)))
+    with pytest.raises(SpecanError, match="2-3 columns"):
+        specan.read(path)
+
+
 # --- air / vacuum (NIST ASD laboratory pairs) -----------------------------------------------
 
 @pytest.mark.parametrize("air,vac", [

@@ -100,7 +100,7 @@ def read(path, wave_unit=None, **_):
     if not rows:
         raise EmptyFileError("no data rows (only comments or nothing)", path)
     ncol = len(rows[0])
-    if ncol < 2 or ncol > 4:
+    if ncol < 2 or ncol > 3:
         raise ReadError(f"expected 2-3 columns (wavelength, flux[, error]), found {ncol} on line {first_data_line}", path)
     bad = [i for i, r in enumerate(rows) if len(r) != ncol]
     if bad:
