@@ -888,6 +888,16 @@ def _class_probs(classification, notes):
     return None
 
 
+#: Units of the plain floats :func:`derive` returns (their keys also carry them: ``_k``, ``_pc``...).
+DERIVED_UNITS = {
+    "teff_k": "K", "teff_err_k": "K", "teff_color_k": "K", "teff_color_err_k": "K",
+    "m_v_abs": "mag", "m_v_abs_err": "mag", "a_v": "mag",
+    "distance_pc": "pc", "distance_err_pc": "pc", "distance_lo_pc": "pc", "distance_hi_pc": "pc",
+    "distance_parallax_pc": "pc",
+    "v_total_kms": "km / s", "v_total_err_kms": "km / s", "v_tangential_kms": "km / s",
+}
+
+
 def derive(classification, velocity=None, photometry=None, spectrum=None, escape_speed=ESCAPE_SPEED, r_v=3.1):
     """Physical quantities of one star from its classification, velocity, photometry and spectrum.
 
@@ -943,10 +953,15 @@ def derive(classification, velocity=None, photometry=None, spectrum=None, escape
         mix = probs or {5: 1.0}
         if probs is None:
             notes.append("luminosity class unknown: Teff from the dwarf scale, no M_V or distance")
-        t, te = zip(*[(a.to_value(u.K), b.to_value(u.K))
-                      for a, b in (teff_from_type(code, n, code_err) for n in mix)])
         w = list(mix.values())
-        out["teff_k"], out["teff_err_k"] = _mixture(w, t, te)
+        given = _get(classification, "teff", u.K), _get(classification, "teff_err", u.K)
+        if None not in given:
+            # specan.classify already gives this same class-probability mixture of the scales
+            out["teff_k"], out["teff_err_k"] = given
+        else:
+            t, te = zip(*[(a.to_value(u.K), b.to_value(u.K))
+                          for a, b in (teff_from_type(code, n, code_err) for n in mix)])
+            out["teff_k"], out["teff_err_k"] = _mixture(w, t, te)
         if probs is not None:
             mv = [absolute_magnitude(code, n, code_err) for n in probs]
             out["m_v_abs"], out["m_v_abs_err"] = _mixture(w, [a.to_value(u.mag) for a, _ in mv],

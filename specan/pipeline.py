@@ -293,10 +293,6 @@ def _json_safe(value):
     return value
 
 
-_UNIT_SUFFIXES = (("_pc", "pc"), ("_k", "K"), ("_kms", "km / s"), ("_mas", "mas"), ("_masyr", "mas / yr"),
-                  ("_deg", "deg"), ("_mag", "mag"))
-
-
 class _Recorder:
     """Collects one input's results while the stages run."""
 
@@ -313,8 +309,12 @@ class _Recorder:
         if unit:
             self.units[name] = unit
 
-    def add_stage_dict(self, stage, result):
-        """Scalar entries of a stage's result dict become columns (prefixed on a clash)."""
+    def add_stage_dict(self, stage, result, units=None):
+        """Scalar entries of a stage's result dict become columns (prefixed on a clash).
+
+        ``units`` maps keys whose values are plain floats to their unit (the physics
+        stage returns such floats, see ``specan.physics.DERIVED_UNITS``).
+        """
         for key, raw in result.items():
             if key == "flags":
                 self.add_flags(raw)
@@ -323,10 +323,7 @@ class _Recorder:
             if plain is None:
                 continue
             name = str(key)
-            unit = plain[1]
-            if unit is None and isinstance(plain[0], float):
-                # plain floats with their unit in the key name (physics: distance_pc, teff_k...)
-                unit = next((u for sfx, u in _UNIT_SUFFIXES if name.endswith(sfx)), None)
+            unit = plain[1] or (units or {}).get(name)
             if name in self.values or name in _CORE_NAMES:
                 name = f"{stage}_{name}"
             self.set(name, plain[0], unit)
@@ -550,7 +547,9 @@ def analyse_file(path, settings=None) -> dict:
                 # the physics stage repeats the classifier's Teff (the same class-probability
                 # mixture of the same scales): one column, not two
                 physics = {k: v for k, v in physics.items() if k not in ("teff_k", "teff_err_k")}
-            rec.add_stage_dict("physics", physics)
+            from .physics import DERIVED_UNITS
+
+            rec.add_stage_dict("physics", physics, units=DERIVED_UNITS)
 
     # The stages may add warnings to the carried metadata as they go.
     from .obsinfo import get_info

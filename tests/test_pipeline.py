@@ -455,12 +455,14 @@ def test_demo_lines_found_at_any_velocity(demo):
 
 
 @pytest.mark.slow
-def test_demo_teff_is_one_column_with_its_unit(demo):
+def test_demo_teff_is_one_column_and_magnitudes_have_units(demo):
     # The classifier and the physics stage give the same Teff; the catalogue carries it once.
     summary, _, _, _ = demo
     cat = summary.catalogue
     assert "teff" in cat.colnames and "teff_k" not in cat.colnames and "physics_teff_k" not in cat.colnames
     assert str(cat["teff"].unit) == "K"
+    # the physics stage's magnitudes carry their unit too, as every number in the catalogue
+    assert str(cat["m_v_abs"].unit) == "mag" and str(cat["m_v_abs_err"].unit) == "mag"
 
 
 @pytest.mark.slow
