@@ -11,8 +11,6 @@ its Teff or M_V came from elsewhere (colour temperature, parallax).
 from __future__ import annotations
 
 import math
-import os
-import tempfile
 from pathlib import Path
 
 import astropy.units as u
@@ -207,14 +205,8 @@ def plot_hr(table_or_rows, path, title="HR diagram of the night", label=True, dp
 
     path = Path(path)
     path.parent.mkdir(parents=True, exist_ok=True)
-    fd, tmp = tempfile.mkstemp(prefix=".hr-", suffix=".png", dir=path.parent)
-    try:
-        with os.fdopen(fd, "wb") as fh:
-            fig.savefig(fh, format="png", dpi=dpi)
-        os.replace(tmp, path)
-    except BaseException:
-        if os.path.exists(tmp):
-            os.unlink(tmp)
-        raise
+    # written in place: a caller that needs the file to appear whole (the night run) writes
+    # to a temporary path of its own (specan.pipeline.atomic_path)
+    fig.savefig(path, format="png", dpi=dpi)
     return {"path": str(path), "plotted": [p["name"] for p in placed], "skipped": skipped,
             "xlim": tuple(ax.get_xlim()), "ylim": tuple(ax.get_ylim()), "loci": loci}

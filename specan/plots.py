@@ -242,75 +242,14 @@ def spectrum_figures(spectrum, lines=None, velocity=None, classification=None, t
 
 
 def night_diagram(catalogue, path) -> str:
-    """Draw the night's HR-style diagram (temperature against luminosity) to ``path``.
-
-    Uses :func:`specan.hrdiagram.plot_hr` when that module exists; otherwise
-    plots the catalogue's spectral-type code (or Teff) against luminosity class.
+    """Draw the night's HR diagram (:func:`specan.hrdiagram.plot_hr`) to ``path``.
 
     Returns
     -------
     str
-        A note on how the diagram was drawn ("" when by ``plot_hr``).
+        A note for the run's summary ("": the diagram itself counts the stars it could not place).
     """
-    try:
-        from .hrdiagram import plot_hr
-    except ModuleNotFoundError:
-        plot_hr = None
-    if plot_hr is not None:
-        rows = [dict(zip(catalogue.colnames, row)) for row in catalogue.iterrows()]
-        plot_hr(rows, path)
-        return ""
-    return _plain_night_diagram(catalogue, path)
+    from .hrdiagram import plot_hr
 
-
-def _column(catalogue, name):
-    if name not in catalogue.colnames:
-        return None
-    col = catalogue[name]
-    data = np.asarray(col, float) if col.dtype.kind in "fiu" else None
-    if data is not None and hasattr(col, "mask"):
-        data = np.where(np.asarray(col.mask, bool), np.nan, data)
-    return data
-
-
-def _plain_night_diagram(catalogue, path) -> str:
-    from .mktypes import lumclass_to_number
-
-    fig = _canvas(6, 4.5)
-    ax = fig.add_subplot()
-    teff = _column(catalogue, "teff")
-    code = _column(catalogue, "code")
-    lum = []
-    for value in (catalogue["lumclass"] if "lumclass" in catalogue.colnames else [""] * len(catalogue)):
-        try:
-            lum.append(lumclass_to_number(str(value)))
-        except ValueError:
-            lum.append(np.nan)
-    lum = np.asarray(lum, float)
-    if teff is not None and np.isfinite(teff).any():
-        x, xlabel = teff, "Teff (K)"
-        ax.set_xscale("log")
-    elif code is not None:
-        x, xlabel = code, "spectral type code (O0=0 ... M0=60)"
-    else:
-        x, xlabel = np.full(len(catalogue), np.nan), "temperature"
-    ok = np.isfinite(x) & np.isfinite(lum)
-    note = ""
-    if ok.any():
-        ax.scatter(x[ok], lum[ok], color="k", s=15)
-        names = catalogue["object"] if "object" in catalogue.colnames else catalogue["file"]
-        for xi, yi, name in zip(x[ok], lum[ok], np.asarray(names)[ok]):
-            ax.annotate(str(name)[:20], (xi, yi), fontsize=6, xytext=(3, 3), textcoords="offset points")
-    else:
-        ax.text(0.5, 0.5, "no classified stars", ha="center", va="center", transform=ax.transAxes)
-        note = "night diagram empty: no star has both a temperature and a luminosity class"
-    if teff is not None and np.isfinite(teff).any():
-        ax.invert_xaxis()  # hot stars on the left, by convention (common practice)
-    ax.set_yticks([1, 2, 3, 4, 5], ["I", "II", "III", "IV", "V"])
-    ax.set_ylim(5.6, 0.4)  # supergiants at the top
-    ax.set_xlabel(xlabel)
-    ax.set_ylabel("luminosity class")
-    ax.set_title("night diagram", fontsize=9)
-    fig.tight_layout()
-    fig.savefig(path, format="png", dpi=90)
-    return note or "night diagram drawn from the catalogue (specan.hrdiagram not available)"
+    plot_hr(catalogue, path)
+    return ""
