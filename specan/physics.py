@@ -34,7 +34,9 @@ import astropy.units as u
 import numpy as np
 from scipy import optimize, stats
 
-from .errors import AnalysisError, ReadError
+from .errors import AnalysisError, MetadataError, ReadError
+from .io._common import parse_angle
+from .velocity import ESCAPE_SPEED  # Piffl et al. (2014), defined once in specan.velocity
 from .mktypes import lumclass_to_number, number_to_lumclass
 
 __all__ = [
@@ -555,8 +557,6 @@ def spectroscopic_distance(v_mag, v_err, code, code_err, lumclass_prob, ebv=None
 
 # ============================================================ space velocity
 
-#: Local Galactic escape speed, 533 (+54 -41) km/s: Piffl et al. (2014, A&A 562, A91) (from memory).
-ESCAPE_SPEED = 533.0 * u.km / u.s
 
 
 def _galactocentric_parameters():
@@ -689,17 +689,6 @@ def _squash(name: str) -> str:
     return re.sub(r"[^a-z0-9]", "", str(name).lower())
 
 
-def _parse_angle(text, is_ra):
-    from astropy.coordinates import Angle
-
-    s = str(text).strip()
-    try:
-        return float(s) * u.deg
-    except ValueError:
-        pass
-    return Angle(s, unit=u.hourangle if is_ra else u.deg).to(u.deg)
-
-
 def load_photometry(path):
     """Read a per-object photometry/astrometry CSV.
 
@@ -779,10 +768,11 @@ def load_photometry(path):
         for key in ("ra", "dec"):
             text = cell(key)
             try:
-                rec[key] = _parse_angle(text, key == "ra") if text else None
-            except ValueError:
+                deg = parse_angle(text, u.hourangle if key == "ra" else u.deg, key) if text else None
+            except MetadataError:
                 raise ReadError(f"data line {lineno} ({name}): {key} = {text!r} is not an angle",
                                 path=path) from None
+            rec[key] = None if deg is None else deg * u.deg
         out[name] = rec
     return out
 
