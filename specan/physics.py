@@ -558,7 +558,6 @@ def spectroscopic_distance(v_mag, v_err, code, code_err, lumclass_prob, ebv=None
 # ============================================================ space velocity
 
 
-
 def _galactocentric_parameters():
     from astropy.coordinates import galactocentric_frame_defaults
 
