@@ -24,7 +24,7 @@ def make_files(folder: Path, n: int, pixels: int):
     paths = []
     for i in range(n):
         h = fits.Header()
-        h.update({"CTYPE1": "AWAV", "CUNIT1": "Angstrom", "CRVAL1": 3800.0, "CDELT1": 1.2, "OBJECT": f"bench-{i}",
+        h.update({"CTYPE1": "AWAV", "CUNIT1": "Angstrom", "CRPIX1": 1.0, "CRVAL1": 3800.0, "CDELT1": 1.2, "OBJECT": f"bench-{i}",
                   "DATE-OBS": "2026-11-30T22:00:00", "EXPTIME": 300.0, "RA": 10.0 + i % 300, "DEC": -20.0,
                   "OBSGEO-B": -30.0, "OBSGEO-L": 20.0, "OBSGEO-H": 1500.0})
         flux = (base * (w / 5000.0) ** -1.5 + rng.normal(0, 0.02, pixels)).astype(np.float32)

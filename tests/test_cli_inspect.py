@@ -14,7 +14,7 @@ def _run(*args):
 
 def _good(tmp_path):
     h = fits.Header()
-    h.update({"CTYPE1": "AWAV", "CUNIT1": "Angstrom", "CRVAL1": 4000.0, "CDELT1": 1.0, "OBJECT": "Vela-17",
+    h.update({"CTYPE1": "AWAV", "CUNIT1": "Angstrom", "CRPIX1": 1.0, "CRVAL1": 4000.0, "CDELT1": 1.0, "OBJECT": "Vela-17",
               "DATE-OBS": "2026-11-30T22:00:00", "EXPTIME": 600.0, "RA": 150.25, "DEC": -30.5,
               "OBSGEO-B": -30.0, "OBSGEO-L": 20.0, "OBSGEO-H": 1500.0})
     rng = np.random.default_rng(0)

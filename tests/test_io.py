@@ -73,10 +73,26 @@ def test_fits_image_without_ctype_or_cunit_guesses_angstrom_and_says_so(tmp_path
     path = tmp_path / "bare.fits"
     fits.PrimaryHDU(_flux(), header=h).writeto(path)
     s = specan.read(path)
-    assert np.allclose(s.spectral_axis.to_value(u.AA), 3800.0 + 2.0 * np.arange(N))
+    # no CRPIX1: the standard's default 0, as astropy.wcs applies it (units in Angstrom here)
+    expected = _expected_from_wcs(h, N) * 1e-10
+    assert np.allclose(s.spectral_axis.to_value(u.AA), expected, rtol=1e-12, atol=0)
+    assert s.spectral_axis.to_value(u.AA)[0] == pytest.approx(3802.0)
     info = get_info(s)
     assert info.medium_assumed and any("guessed" in w for w in info.warnings)
     assert any("medium not stated" in w for w in info.warnings)
+    assert any("CRPIX1 missing" in w for w in info.warnings)
+
+
+def test_fits_image_pc_matrix_scales_the_step(tmp_path):
+    # CDELT1 with PC1_1 = 2: the step is their product (Greisen & Calabretta 2002), as astropy.wcs has it
+    h = fits.Header()
+    h["CTYPE1"], h["CUNIT1"], h["CRVAL1"], h["CDELT1"], h["PC1_1"], h["CRPIX1"] = \
+        "WAVE", "Angstrom", 4000.0, 1.0, 2.0, 1.0
+    path = tmp_path / "pc.fits"
+    fits.PrimaryHDU(_flux(), header=h).writeto(path)
+    got = specan.read(path).spectral_axis.to_value(u.AA)
+    assert np.allclose(got, _expected_from_wcs(h, N), rtol=1e-12, atol=0)
+    assert got[1] - got[0] == pytest.approx(2.0)
 
 
 def test_fits_image_error_extension_and_multi_extension(tmp_path):

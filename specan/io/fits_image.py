@@ -54,9 +54,12 @@ def wavelengths_from_header(header, n, wave_unit=None):
     if "CRVAL1" not in header:
         raise NoWavelengthError("no CRVAL1: this image has no wavelength axis; try --hdu for another HDU")
     crval = _number(header, "CRVAL1")
-    crpix = _number(header, "CRPIX1", 1.0)
-    key = "CDELT1" if "CDELT1" in header else "CD1_1"
-    cdelt = _number(header, key, 0.0)
+    # defaults as the FITS WCS standard sets them (Greisen & Calabretta 2002): CRPIX1 0, PC1_1 1
+    crpix = _number(header, "CRPIX1", 0.0)
+    if "CDELT1" in header:
+        cdelt = _number(header, "CDELT1", 0.0) * _number(header, "PC1_1", 1.0)
+    else:
+        cdelt = _number(header, "CD1_1", 0.0)
     if cdelt == 0.0 or not np.isfinite(cdelt):
         raise NoWavelengthError("neither CDELT1 nor CD1_1 gives a non-zero wavelength step")
     if not (np.isfinite(crval) and np.isfinite(crpix)):
@@ -127,6 +130,9 @@ def read(path, hdul=None, hdu=None, wave_unit=None, **_):
     except ReadError as exc:
         raise type(exc)(exc.reason, path) from exc
     raw = RawSpectrum(wave=wave, wave_unit=unit, flux=data, unit_source=source)
+    if "CRPIX1" not in h.header:
+        raw.info.warn("CRPIX1 missing: reference pixel 0 as the FITS WCS standard sets it (CRVAL1 is the "
+                      "wavelength one pixel before the first); write CRPIX1 = 1 if CRVAL1 is the first pixel's")
     bunit = h.header.get("BUNIT")
     if bunit:
         try:
