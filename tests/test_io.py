@@ -110,6 +110,27 @@ def test_fits_image_error_extension_and_multi_extension(tmp_path):
     assert np.allclose(s2.spectral_axis.value, s.spectral_axis.value)
 
 
+def test_gzipped_fits_read_like_plain_fits(tmp_path):
+    # .fits.gz (README, pipeline suffixes): specan's own FITS reader, options included, as astropy opens it
+    import gzip
+
+    h = fits.Header()
+    h["CTYPE1"], h["CUNIT1"], h["CRVAL1"], h["CDELT1"], h["CRPIX1"] = "AWAV", "Angstrom", 5000.0, 0.5, 1.0
+    plain = tmp_path / "mef.fits"
+    fits.HDUList([fits.PrimaryHDU(), fits.ImageHDU(_flux(), header=h, name="FLUX"),
+                  fits.ImageHDU(np.full(N, 0.02), name="ERR")]).writeto(plain)
+    packed = tmp_path / "mef.fits.gz"
+    packed.write_bytes(gzip.compress(plain.read_bytes()))
+    a, b = specan.read(plain), specan.read(packed, hdu="FLUX")
+    assert get_info(b).format == get_info(a).format == "fits-image"
+    assert np.array_equal(a.spectral_axis.value, b.spectral_axis.value)
+    assert np.allclose(b.uncertainty.array, 0.02)
+    # cut short: a one-line error, not a crash
+    (tmp_path / "cut.fits.gz").write_bytes(packed.read_bytes()[:200])
+    with pytest.raises(SpecanError, match="truncated"):
+        specan.read(tmp_path / "cut.fits.gz")
+
+
 def test_fits_binary_table_with_inverse_variance(tmp_path):
     wave = np.linspace(4000.0, 7000.0, N)
     ivar = np.full(N, 2500.0)

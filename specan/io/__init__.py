@@ -99,8 +99,18 @@ def _read_file(path: Path, overrides) -> RawSpectrum:
         raise EmptyFileError("the file is empty (0 bytes)", path)
     forced = overrides.get("format")
     opts = {k: overrides.get(k) for k in ("hdu", "wave_unit")}
-    if head.startswith(b"SIMPLE  =") and forced in (None, "fits-image", "fits-table"):
-        return _read_fits(path, size, forced, opts)
+    gzipped = head.startswith(b"\x1f\x8b")   # gzip magic: astropy opens .fits.gz itself
+    inner = head
+    if gzipped:
+        import gzip
+
+        try:
+            with gzip.open(path, "rb") as fh:
+                inner = fh.read(9)
+        except (OSError, EOFError):
+            raise CorruptFileError("gzip-compressed but cannot be decompressed: is it truncated?", path) from None
+    if inner.startswith(b"SIMPLE  =") and forced in (None, "fits-image", "fits-table"):
+        return _read_fits(path, None if gzipped else size, forced, opts)
     if forced in (None, "text") and text.identify(path, head):
         raw = text.read(path, **opts)
         raw.info.format = text.NAME
@@ -111,7 +121,7 @@ def _read_file(path: Path, overrides) -> RawSpectrum:
 def _read_fits(path, size, forced, opts) -> RawSpectrum:
     from astropy.io import fits
 
-    if size % 2880:
+    if size is not None and size % 2880:   # (size None: compressed, checked when decompressed)
         # FITS files are whole 2880-byte records (FITS standard 4.0, sect. 3.1).
         raise CorruptFileError(f"size {size} bytes is not a multiple of 2880: the FITS file is truncated "
                                "(copy or export it again from the original)", path)
@@ -120,13 +130,14 @@ def _read_fits(path, size, forced, opts) -> RawSpectrum:
             warnings.simplefilter("error", fits.verify.VerifyWarning)
             warnings.filterwarnings("ignore", category=fits.verify.VerifyWarning, message=".*(card|Card|keyword).*")
             hdul = fits.open(path, memmap=False, lazy_load_hdus=False)
-    except (OSError, ValueError, fits.verify.VerifyError, fits.verify.VerifyWarning, IndexError, TypeError) as exc:
+    except (OSError, EOFError, ValueError, fits.verify.VerifyError, fits.verify.VerifyWarning, IndexError,
+            TypeError) as exc:
         raise CorruptFileError(f"not a readable FITS file ({exc}); is it truncated?", path) from exc
     with hdul:
         try:
             for h in hdul:
                 _ = h.data  # force the read: truncation shows here
-        except (OSError, ValueError, TypeError, IndexError) as exc:
+        except (OSError, EOFError, ValueError, TypeError, IndexError) as exc:
             raise CorruptFileError(f"FITS data cannot be read ({exc}); is the file truncated?", path) from exc
         readers = [r for r in (fits_image, fits_table) if forced in (None, r.NAME)]
         errors = []
