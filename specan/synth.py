@@ -34,6 +34,7 @@ from .velocity import doppler_factor as _doppler_factor
 __all__ = [
     "spectrum",
     "template",
+    "normalised_flux",
     "binary",
     "line_strengths",
     "log_wavelength_grid",
@@ -477,6 +478,16 @@ def spectrum(sptype="G2", lumclass="V", *, resolving_power=2000, wave=None, wave
               "rv_kms": rv_kms, "vbroad_kms": vb, "snr": snr, "seed": seed, "emission": dict(emission or {})}
     return _make(wave, flux, medium=medium, resolving_power=resolving_power, snr=snr, seed=seed,
                  continuum_array=cont, name=f"synthetic {sptype} {lumclass}", params=params)
+
+
+def normalised_flux(sptype, lumclass, wave_vac, resolving_power):
+    """Continuum-normalised model flux at rest, at vacuum wavelengths given as plain Angstrom.
+
+    The flux :func:`spectrum` computes, without building a Spectrum around it (the
+    velocity stage makes some twenty templates per measurement from this).
+    """
+    return _model_flux(np.asarray(wave_vac, float), float(sptype_to_code(sptype)), lumclass_to_number(lumclass),
+                       resolving_power, 0.0, 0.0, None)
 
 
 def template(sptype, resolving_power, wave, lumclass="V", medium="air"):

@@ -425,10 +425,8 @@ def _synthetic_template(sptype, lumclass, resolving_power, ln0, step, n, kind="s
     from . import synth
 
     grid = ln0 + step * np.arange(n)
-    wave = np.exp(grid) * u.AA
     if kind == "synth":
-        flux = synth.spectrum(sptype, lumclass, resolving_power=resolving_power, wave=wave,
-                              medium="vacuum").flux.value
+        flux = synth.normalised_flux(sptype, lumclass, np.exp(grid), resolving_power)
         name = f"synthetic {sptype} {lumclass}"
     else:
         flux = _mask_flux(grid, sptype, lumclass, resolving_power)

@@ -148,3 +148,10 @@ def test_binary_and_emission():
     assert ew == pytest.approx(-20.0, abs=1.0)  # an emission line has negative absorption EW
     with pytest.raises(ValueError):
         synth.spectrum("B2", emission={"no_such_line": 1.0})
+
+
+def test_normalised_flux_is_the_spectrum_flux():
+    # The velocity stage's templates come from synth.normalised_flux: the same numbers as spectrum()
+    w = np.exp(np.log(3800.0) + 1e-4 * np.arange(6000))
+    full = synth.spectrum("K1", "III", resolving_power=2000, wave=w * u.AA, medium="vacuum").flux.value
+    assert np.array_equal(synth.normalised_flux("K1", "III", w, 2000), full)
