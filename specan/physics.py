@@ -254,9 +254,12 @@ def _window_points(wave, flux, good, windows, min_pixels=5):
     """One continuum point per window: straight line with low points clipped, taken at the window centre.
 
     Absorption lines only push flux down, so the clipping is one-sided (points
-    more than 2 robust sigma below the line are dropped, 5 passes); hand-written
-    because astropy's sigma clipping is symmetric.
+    more than 2 robust sigma below the line are dropped, 5 passes). The loop is
+    written here because the clipping is about the fitted line, refitted each
+    pass; astropy's ``sigma_clip`` clips about a central value of the data.
     """
+    from astropy.stats import mad_std
+
     pts = []
     for lo, hi in windows:
         sel = good & (wave >= lo) & (wave <= hi)
@@ -267,8 +270,7 @@ def _window_points(wave, flux, good, windows, min_pixels=5):
         for _ in range(5):
             coef = np.polyfit(x[keep] - x.mean(), y[keep], 1)
             resid = y - np.polyval(coef, x - x.mean())
-            # robust sigma: 1.4826 x median absolute deviation for Gaussian noise (common practice)
-            sig = 1.4826 * np.median(np.abs(resid[keep] - np.median(resid[keep])))
+            sig = mad_std(resid[keep])   # robust sigma (1.4826 x median absolute deviation)
             new = resid > -2.0 * sig if sig > 0 else keep
             if new.sum() < min_pixels or np.array_equal(new, keep):
                 break
