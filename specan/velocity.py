@@ -194,21 +194,25 @@ def galactic_rest_frame_velocity(rv, coord):
         v_GRF in km/s, with astropy's Galactocentric "v4.0" defaults (solar motion
         Drimmel & Poggio 2018 / Reid & Brunthaler 2004, R0 GRAVITY 2018).
     """
-    from astropy.coordinates import SkyCoord
+    icrs = coord.icrs
+    ra, dec = icrs.ra.rad, icrs.dec.rad
+    toward = np.array([np.cos(dec) * np.cos(ra), np.cos(dec) * np.sin(ra), np.sin(dec)])
+    return (u.Quantity(rv, u.km / u.s).value + float(_sun_velocity_icrs() @ toward)) * (u.km / u.s)
+
+
+@functools.lru_cache(maxsize=1)
+def _sun_velocity_icrs():
+    """The Sun's velocity in the Galactic rest frame, on ICRS axes (km/s), computed once.
+
+    A point at rest at the Galactic centre, seen from the barycentre, moves at minus the
+    Sun's velocity; astropy's Galactocentric transformation gives it on ICRS axes.
+    """
+    from astropy.coordinates import CartesianDifferential, CartesianRepresentation, SkyCoord
 
     frame, _ = _galcen()
-    icrs = coord.icrs
-    # a star at rest relative to the barycentre has the Sun's Galactocentric velocity;
-    # the line of sight in Galactocentric axes is the difference of two points along it
-    d = [1.0, 2.0] * u.kpc
-    pts = SkyCoord(ra=[icrs.ra.deg] * 2 * u.deg, dec=[icrs.dec.deg] * 2 * u.deg, distance=d,
-                   pm_ra_cosdec=[0, 0] * u.mas / u.yr, pm_dec=[0, 0] * u.mas / u.yr,
-                   radial_velocity=[0, 0] * u.km / u.s, frame="icrs").transform_to(frame)
-    xyz = pts.cartesian.xyz.to_value(u.kpc)
-    los = xyz[:, 1] - xyz[:, 0]
-    los /= np.linalg.norm(los)
-    vsun = pts.velocity.d_xyz.to_value(u.km / u.s)[:, 0]
-    return (u.Quantity(rv, u.km / u.s).value + float(vsun @ los)) * (u.km / u.s)
+    rest = CartesianRepresentation([0.0, 0.0, 0.0] * u.kpc,
+                                   differentials=CartesianDifferential([0.0, 0.0, 0.0] * u.km / u.s))
+    return -SkyCoord(rest, frame=frame).icrs.velocity.d_xyz.to_value(u.km / u.s)
 
 
 def shift_to_rest(spectrum, rv):
