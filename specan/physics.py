@@ -608,10 +608,12 @@ def space_velocity(ra, dec, distance, pmra, pmdec, rv, distance_err=None, pmra_e
         ``unbound_candidate`` (bool), ``unbound_basis`` ("v_total_grf"),
         ``escape_speed``, ``frame`` (parameter set and references).
     """
-    from astropy.coordinates import Galactocentric, SkyCoord
+    from astropy.coordinates import SkyCoord
+
+    from .velocity import _galcen
 
     params = _galactocentric_parameters()
-    frame = Galactocentric(**params["parameters"])
+    frame = _galcen()[0]   # the one (cached) frame the velocity stage's v_GRF uses too
     kms = u.km / u.s
     ra_d = u.Quantity(ra, u.deg).value
     dec_d = u.Quantity(dec, u.deg).value
