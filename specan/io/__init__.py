@@ -170,12 +170,7 @@ def _read_fallback(path) -> RawSpectrum:
                         f"({type(exc).__name__}); convert it or name the format", path) from exc
     if isinstance(spec, (list, tuple)) or getattr(spec, "flux", None) is None or spec.flux.ndim != 1:
         raise ReadError("specutils read several or multi-dimensional spectra; specan needs one 1-D spectrum", path)
-    raw = RawSpectrum(wave=np.asarray(spec.spectral_axis.value, dtype=float), wave_unit=spec.spectral_axis.unit,
-                      flux=np.asarray(spec.flux.value, dtype=float), flux_unit=spec.flux.unit)
-    if spec.uncertainty is not None:
-        raw.err = np.asarray(spec.uncertainty.represent_as(StdDevUncertainty).array, dtype=float)
-    if spec.mask is not None:
-        raw.mask = np.asarray(spec.mask, dtype=bool)
+    raw = _raw_from_spectrum(spec, ObsInfo())
     raw.info.format = "specutils"
     if "header" in spec.meta:
         from ._common import header_metadata
@@ -184,6 +179,17 @@ def _read_fallback(path) -> RawSpectrum:
             header_metadata(spec.meta["header"], raw.info)
         except (SpecanError, TypeError, KeyError, AttributeError):
             raw.info.warn("header from specutils not usable for metadata")
+    return raw
+
+
+def _raw_from_spectrum(spec, info) -> RawSpectrum:
+    """The arrays of a specutils Spectrum (errors as standard deviations, mask) with ``info``."""
+    raw = RawSpectrum(wave=np.asarray(spec.spectral_axis.value, dtype=float), wave_unit=spec.spectral_axis.unit,
+                      flux=np.asarray(spec.flux.value, dtype=float), flux_unit=spec.flux.unit, info=info)
+    if spec.uncertainty is not None:
+        raw.err = np.asarray(spec.uncertainty.represent_as(StdDevUncertainty).array, dtype=float)
+    if spec.mask is not None:
+        raw.mask = np.asarray(spec.mask, dtype=bool)
     return raw
 
 
@@ -198,13 +204,7 @@ def _from_spectrum(spec, overrides):
                            mask=spec.mask, meta=dict(spec.meta))
             new.meta[META_KEY] = info
             return new
-    raw = RawSpectrum(wave=np.asarray(spec.spectral_axis.value, dtype=float), wave_unit=spec.spectral_axis.unit,
-                      flux=np.asarray(spec.flux.value, dtype=float), flux_unit=spec.flux.unit,
-                      info=info if isinstance(info, ObsInfo) else ObsInfo())
-    if spec.uncertainty is not None:
-        raw.err = np.asarray(spec.uncertainty.represent_as(StdDevUncertainty).array, dtype=float)
-    if spec.mask is not None:
-        raw.mask = np.asarray(spec.mask, dtype=bool)
+    raw = _raw_from_spectrum(spec, info if isinstance(info, ObsInfo) else ObsInfo())
     raw.info.format = raw.info.format or "python"
     return _build(raw, raw.info.path, overrides)
 
