@@ -54,7 +54,8 @@ def wavelengths_from_header(header, n, wave_unit=None):
     if "CRVAL1" not in header:
         raise NoWavelengthError("no CRVAL1: this image has no wavelength axis; try --hdu for another HDU")
     crval = _number(header, "CRVAL1")
-    # defaults as the FITS WCS standard sets them (Greisen & Calabretta 2002): CRPIX1 0, PC1_1 1
+    # defaults as the FITS WCS standard sets them (Greisen & Calabretta 2002, from memory; astropy.wcs
+    # agrees, tests/test_io.py): CRPIX1 0, PC1_1 1
     crpix = _number(header, "CRPIX1", 0.0)
     if "CDELT1" in header:
         cdelt = _number(header, "CDELT1", 0.0) * _number(header, "PC1_1", 1.0)
