@@ -973,6 +973,14 @@ def run(paths, out_dir, jobs=1, dask=None, force=False, formats=("ecsv",), overr
     finally:
         if bar is not None:
             bar.close()
+    if interrupted:
+        # The signal may land between a record reaching the disk and its being noted here; the
+        # disk is the truth, so an input whose current record exists counts as done.
+        for path in todo:
+            if path not in records:
+                stored = _load_current(out, _path_id(path), keys[path])
+                if stored is not None:
+                    records[path] = stored
 
     ordered = [records.get(p) or _not_run_record(p, "run interrupted before this input; rerun to finish")
                for p in inputs]

@@ -306,6 +306,35 @@ def test_killed_run_then_rerun_gives_complete_catalogue(tmp_path, sig):
         assert f"{done} already current" in rerun.stdout, rerun.stdout
 
 
+def test_interrupt_just_after_a_record_is_written_counts_that_record(tmp_path, monkeypatch):
+    # The race CI once hit: the signal lands after a record reached the disk but before the run
+    # noted it, so the catalogue said 22 not run while only 21 were. The disk must win.
+    night = tmp_path / "night"
+    night.mkdir()
+    n = 5
+    for i in range(n):
+        write_spectrum(night / f"s{i}.fits", name=f"S{i}", seed=i, n=600)
+    out = tmp_path / "out"
+    real_write = pipeline._atomic_write_bytes
+    written = []
+
+    def write_then_interrupt(path, data):
+        real_write(path, data)
+        if Path(path).parent.name == "records":
+            written.append(path)
+            if len(written) == 2:
+                raise KeyboardInterrupt("signal 15")
+
+    monkeypatch.setattr(pipeline, "_atomic_write_bytes", write_then_interrupt)
+    with pytest.raises(pipeline.RunInterrupted) as info:
+        pipeline.run([night], out, plots=False, stages=BASIC, progress=False)
+    cat = info.value.summary.catalogue
+    on_disk = len(list((out / "records").glob("*.json")))
+    assert on_disk == 2
+    assert (cat["status"] == "not_run").sum() == n - on_disk
+    assert (Table.read(out / "catalogue.ecsv")["status"] == "not_run").sum() == n - on_disk
+
+
 def test_unstated_resolving_power_estimated_once_and_catalogued(tmp_path, kurucz_sun, monkeypatch):
     # The Kurucz solar model (rms-solar, R = 2000 by its fixture) as a text file that states no
     # resolving power: the velocity stage estimates R from the narrowest lines, the catalogue
