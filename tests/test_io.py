@@ -315,3 +315,41 @@ def test_spectrum_passed_in_python_is_taken_as_is():
 
 def test_errors_form_one_hierarchy():
     assert issubclass(NonMonotonicError, SpecanError) and issubclass(CorruptFileError, SpecanError)
+
+
+def test_fits_without_final_padding_is_read_with_a_warning(tmp_path):
+    # FITS standard 4.0 sect. 3.1: files are whole 2880-byte records. Some writers drop the last
+    # record's padding; the data are complete, so the file is read and the omission is noted.
+    # A cut inside the data, or one that loses the end of a later HDU, is still refused.
+    path = _image_with(tmp_path, {})
+    data = path.read_bytes()
+    with fits.open(path) as hdul:
+        end = hdul.fileinfo(len(hdul) - 1)["datLoc"] + hdul[-1].size
+    assert end < len(data) and len(data) % 2880 == 0
+    short = tmp_path / "unpadded.fits"
+    short.write_bytes(data[:end])
+    spec = specan.read(short)
+    ref = specan.read(path)
+    assert np.array_equal(spec.flux.value, ref.flux.value)
+    assert any("2880" in w for w in get_info(spec).warnings)
+    for cut in (end - 8, end - 1):
+        bad = tmp_path / f"cut{cut}.fits"
+        bad.write_bytes(data[:cut])
+        with pytest.raises(CorruptFileError, match="truncated"):
+            specan.read(bad)
+
+
+def test_fits_cut_inside_an_extension_header_is_refused(tmp_path):
+    # astropy drops an HDU whose header is cut, with a warning; specan must not read on silently
+    h = fits.Header()
+    h["CTYPE1"], h["CUNIT1"], h["CRVAL1"], h["CDELT1"], h["CRPIX1"] = "AWAV", "Angstrom", 5000.0, 0.5, 1.0
+    plain = tmp_path / "mef.fits"
+    fits.HDUList([fits.PrimaryHDU(), fits.ImageHDU(_flux(), header=h, name="FLUX"),
+                  fits.ImageHDU(np.full(N, 0.02), name="ERR")]).writeto(plain)
+    data = plain.read_bytes()
+    with fits.open(plain) as hdul:
+        err_header = hdul.fileinfo(2)["hdrLoc"]
+    cut = tmp_path / "cut.fits"
+    cut.write_bytes(data[: err_header + 100])
+    with pytest.raises(CorruptFileError, match="truncated"):
+        specan.read(cut)

@@ -121,30 +121,47 @@ def _read_file(path: Path, overrides) -> RawSpectrum:
 def _read_fits(path, size, forced, opts) -> RawSpectrum:
     from astropy.io import fits
 
-    if size is not None and size % 2880:   # (size None: compressed, checked when decompressed)
-        # FITS files are whole 2880-byte records (FITS standard 4.0, sect. 3.1).
-        raise CorruptFileError(f"size {size} bytes is not a multiple of 2880: the FITS file is truncated "
-                               "(copy or export it again from the original)", path)
+    truncated = CorruptFileError(f"size {size} bytes is not a multiple of 2880 and the file does not end where "
+                                 "its last HDU's data ends: the FITS file is truncated (copy or export it again "
+                                 "from the original)", path)
+    unpadded = size is not None and size % 2880 != 0   # (size None: compressed, checked when decompressed)
     try:
         with warnings.catch_warnings():
             warnings.simplefilter("error", fits.verify.VerifyWarning)
             warnings.filterwarnings("ignore", category=fits.verify.VerifyWarning, message=".*(card|Card|keyword).*")
+            # astropy's own "may have been truncated" note: judged below, from the sizes
+            warnings.filterwarnings("ignore", message="File may have been truncated")
             hdul = fits.open(path, memmap=False, lazy_load_hdus=False)
     except (OSError, EOFError, ValueError, fits.verify.VerifyError, fits.verify.VerifyWarning, IndexError,
             TypeError) as exc:
-        raise CorruptFileError(f"not a readable FITS file ({exc}); is it truncated?", path) from exc
+        raise (truncated if unpadded else
+               CorruptFileError(f"not a readable FITS file ({exc}); is it truncated?", path)) from exc
     with hdul:
         try:
             for h in hdul:
                 _ = h.data  # force the read: truncation shows here
         except (OSError, EOFError, ValueError, TypeError, IndexError) as exc:
             raise CorruptFileError(f"FITS data cannot be read ({exc}); is the file truncated?", path) from exc
+        if unpadded:
+            # FITS files are whole 2880-byte records (FITS standard 4.0, sect. 3.1), but some writers
+            # omit the final padding. Such a file is complete when it ends exactly where its last
+            # HDU's data ends; anything else (e.g. a cut in a later header, which astropy drops
+            # with a warning) is a truncated file.
+            last = len(hdul) - 1
+            if hdul.fileinfo(last)["datLoc"] + hdul[last].size != size:
+                raise truncated
+            unpadded_note = "FITS file not padded to whole 2880-byte records (FITS standard 4.0 sect. 3.1); " \
+                            "its data are complete and were read"
+        else:
+            unpadded_note = None
         readers = [r for r in (fits_image, fits_table) if forced in (None, r.NAME)]
         errors = []
         for reader in readers:
             try:
                 raw = reader.read(path, hdul=hdul, **opts)
                 raw.info.format = reader.NAME
+                if unpadded_note:
+                    raw.info.warn(unpadded_note)
                 return raw
             except NoWavelengthError as exc:
                 errors.append(exc)
