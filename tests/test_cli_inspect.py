@@ -56,3 +56,20 @@ def test_debug_shows_traceback(tmp_path):
     bad.write_text("")
     res = _run("--debug", "inspect", str(bad))
     assert res.returncode != 0 and "Traceback" in res.stderr
+
+
+def test_every_reader_option_is_a_read_override_and_reaches_the_reader(tmp_path):
+    # the options table in specan.cli._common is the one list; each entry must be a keyword
+    # specan.read accepts, and a value given on the command line must arrive there
+    from specan.cli import _common
+    from specan.io import OVERRIDES
+
+    assert set(_common._READ_OPTIONS) <= set(OVERRIDES)
+    res = _run("inspect", "--json", "--medium", "vacuum", "--resolving-power", "1234", "--ra", "10.5",
+               "--dec", "-20.25", "--site", "-30,20,1500", str(_good(tmp_path)))
+    assert res.returncode == 0, res.stderr
+    d = json.loads(res.stdout.strip().splitlines()[0])
+    assert d["medium"] == "vacuum"
+    assert d["ra_deg"] == 10.5 and d["dec_deg"] == -20.25
+    kwargs = {k: None for k in _common._READ_OPTIONS} | {"hdu": "0", "wave_unit": "nm", "json": True}
+    assert _common.overrides_from(kwargs) == {"hdu": "0", "wave_unit": "nm"}

@@ -14,30 +14,33 @@ from ..errors import SpecanError
 __all__ = ["read_options", "overrides_from", "for_each_file", "to_jsonable", "echo_json"]
 
 
+#: The reader options every file-reading subcommand accepts: ``specan.read`` keyword -> (flag,
+#: click settings). One table, so the options and what is passed on cannot drift apart.
+_READ_OPTIONS = {
+    "hdu": ("--hdu", dict(default=None, help="FITS HDU (index or EXTNAME) holding the spectrum.")),
+    "wave_unit": ("--wave-unit", dict(
+        default=None, help="Wavelength unit of text files without one in their header (e.g. nm, Angstrom).")),
+    "medium": ("--medium", dict(type=click.Choice(["air", "vacuum"]), default=None,
+                                help="Medium of the wavelength scale when the file does not state it.")),
+    "site": ("--site", dict(default=None,
+                            help="Observatory as 'lat,lon,height' (deg, deg east, m), overriding the header.")),
+    "ra": ("--ra", dict(default=None, help="Right ascension (deg or h:m:s), overriding the header.")),
+    "dec": ("--dec", dict(default=None, help="Declination (deg or d:m:s), overriding the header.")),
+    "resolving_power": ("--resolving-power", dict(
+        type=float, default=None, help="Resolving power R = lambda/FWHM when the file does not state it.")),
+}
+
+
 def read_options(func):
     """Options every file-reading subcommand accepts (passed to ``specan.read``)."""
-    opts = [
-        click.option("--hdu", default=None, help="FITS HDU (index or EXTNAME) holding the spectrum."),
-        click.option("--wave-unit", default=None,
-                     help="Wavelength unit of text files without one in their header (e.g. nm, Angstrom)."),
-        click.option("--medium", type=click.Choice(["air", "vacuum"]), default=None,
-                     help="Medium of the wavelength scale when the file does not state it."),
-        click.option("--site", default=None,
-                     help="Observatory as 'lat,lon,height' (deg, deg east, m), overriding the header."),
-        click.option("--ra", default=None, help="Right ascension (deg or h:m:s), overriding the header."),
-        click.option("--dec", default=None, help="Declination (deg or d:m:s), overriding the header."),
-        click.option("--resolving-power", type=float, default=None,
-                     help="Resolving power R = lambda/FWHM when the file does not state it."),
-    ]
-    for opt in reversed(opts):
-        func = opt(func)
+    for key, (flag, settings) in reversed(list(_READ_OPTIONS.items())):
+        func = click.option(flag, key, **settings)(func)
     return func
 
 
 def overrides_from(kwargs: dict) -> dict:
     """Pick the reader overrides out of a subcommand's keyword arguments."""
-    keys = ("hdu", "wave_unit", "medium", "site", "ra", "dec", "resolving_power")
-    return {k: kwargs[k] for k in keys if kwargs.get(k) is not None}
+    return {k: kwargs[k] for k in _READ_OPTIONS if kwargs.get(k) is not None}
 
 
 def to_jsonable(value):

@@ -125,12 +125,18 @@ def _read_fits(path, size, forced, opts) -> RawSpectrum:
                                  "its last HDU's data ends: the FITS file is truncated (copy or export it again "
                                  "from the original)", path)
     unpadded = size is not None and size % 2880 != 0   # (size None: compressed, checked when decompressed)
+    if unpadded and size < 2880:     # not even one whole header record
+        raise truncated
     try:
         with warnings.catch_warnings():
             warnings.simplefilter("error", fits.verify.VerifyWarning)
             warnings.filterwarnings("ignore", category=fits.verify.VerifyWarning, message=".*(card|Card|keyword).*")
-            # astropy's own "may have been truncated" note: judged below, from the sizes
-            warnings.filterwarnings("ignore", message="File may have been truncated")
+            if unpadded:
+                # astropy's notes on a short file ("may have been truncated", null bytes in a cut
+                # header) would reach the user's terminal; the sizes are judged below instead
+                from astropy.utils.exceptions import AstropyUserWarning
+
+                warnings.filterwarnings("ignore", category=AstropyUserWarning)
             hdul = fits.open(path, memmap=False, lazy_load_hdus=False)
     except (OSError, EOFError, ValueError, fits.verify.VerifyError, fits.verify.VerifyWarning, IndexError,
             TypeError) as exc:
