@@ -31,6 +31,23 @@ class RawSpectrum:
     #: how the wavelength unit was decided ("header", "guessed from range", ...)
     unit_source: str = "header"
 
+    def set_uncertainty(self, kind: str, values) -> None:
+        """Store an uncertainty array given as ``"std"``, ``"var"`` or ``"ivar"``.
+
+        A variance becomes a standard deviation here (non-positive: unknown, NaN); an
+        inverse variance is kept as it is, because its zeros mark unusable pixels and
+        ``specan.read`` turns them into the mask.
+        """
+        values = np.asarray(values, dtype=float)
+        if kind == "std":
+            self.err = values
+        elif kind == "var":
+            self.err = np.sqrt(np.where(values > 0, values, np.nan))
+        elif kind == "ivar":
+            self.ivar = values
+        else:
+            raise ValueError(f"uncertainty kind {kind!r}: expected 'std', 'var' or 'ivar'")
+
 
 # Unit spellings met in headers and text files; astropy parses the rest.
 _UNIT_WORDS = {

@@ -143,12 +143,8 @@ def read(path, hdul=None, hdu=None, wave_unit=None, **_):
         except ValueError:
             raw.info.warn(f"BUNIT {bunit!r} not understood; flux taken as relative")
     kind, err = _error_extension(hdul, n, index)
-    if kind == "std":
-        raw.err = err
-    elif kind == "var":
-        raw.err = np.sqrt(np.where(err > 0, err, np.nan))
-    elif kind == "ivar":
-        raw.ivar = err
+    if kind is not None:
+        raw.set_uncertainty(kind, err)
     # Primary cards (site, time) count too when the spectrum is in an extension.
     header = hdul[0].header.copy() if index else h.header
     if index:

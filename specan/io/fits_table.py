@@ -99,12 +99,7 @@ def read(path, hdul=None, hdu=None, wave_unit=None, **_):
         kind = ERR_NAMES[ecol.upper()]
         e = column(ecol)
         if e.size == flux.size:
-            if kind == "std":
-                raw.err = e
-            elif kind == "var":
-                raw.err = np.sqrt(np.where(e > 0, e, np.nan))
-            else:
-                raw.ivar = e
+            raw.set_uncertainty(kind, e)
     header = hdul[0].header.copy()
     header.update(h.header)
     if wcol.upper() in ("AWAV", "WAVE_AIR"):
