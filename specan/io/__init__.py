@@ -147,6 +147,8 @@ def _read_fits(path, size, forced, opts) -> RawSpectrum:
             for h in hdul:
                 _ = h.data  # force the read: truncation shows here
         except (OSError, EOFError, ValueError, TypeError, IndexError) as exc:
+            if unpadded:   # short of whole records and the data cannot be read: cut, say so plainly
+                raise truncated from exc
             raise CorruptFileError(f"FITS data cannot be read ({exc}); is the file truncated?", path) from exc
         if unpadded:
             # FITS files are whole 2880-byte records (FITS standard 4.0, sect. 3.1), but some writers
