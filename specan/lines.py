@@ -904,8 +904,12 @@ def measure(spectrum, linelist=None, rv=0 * u.km / u.s, resolving_power=None, pr
         Columns ``id``, ``species``, ``wave_air``, ``wave_vac``, ``wave_obs``,
         ``velocity``, ``ew``, ``ew_err``, ``ew_err_cayrel``, ``ew_int``,
         ``ew_int_err``, ``ew_fit``, ``ew_fit_err``, ``fwhm``, ``depth``,
-        ``significance``, ``window_min``, ``window_max``, ``method``, ``profile``,
-        ``blend``, ``detected``, ``emission``; ``meta`` holds rv, R and medium.
+        ``significance``, ``fit_chi2``, ``window_min``, ``window_max``, ``method``,
+        ``profile``, ``blend``, ``detected``, ``emission``; ``meta`` holds rv, R and
+        medium. ``fit_chi2`` is the reduced chi-square of the profile fit (NaN when
+        none was fitted): near 1 when noise limits the line; far above 1 when the
+        profile model does (unresolved blends), and the errors, which count noise
+        only, then understate the equivalent width's true uncertainty.
     """
     if profile not in ("auto", "gauss", "voigt"):
         raise ValueError("profile must be 'auto', 'gauss' or 'voigt'")
@@ -925,7 +929,7 @@ def measure(spectrum, linelist=None, rv=0 * u.km / u.s, resolving_power=None, pr
 
     cols = {k: np.full(n, np.nan) for k in ("wave_obs", "ew", "ew_err", "ew_err_cayrel", "ew_int",
                                              "ew_int_err", "ew_fit", "ew_fit_err", "fwhm", "depth",
-                                             "significance", "window_min", "window_max")}
+                                             "significance", "window_min", "window_max", "fit_chi2")}
     method = np.array(["none"] * n, dtype=object)
     prof_used = np.array([""] * n, dtype=object)
     detected = np.zeros(n, bool)
@@ -1022,6 +1026,7 @@ def measure(spectrum, linelist=None, rv=0 * u.km / u.s, resolving_power=None, pr
         if fit is not None:
             fits[i] = dict(fit, profile="voigt" if use_voigt else "gauss", sign=sign, ew_int=ew_int)
             cols["ew_fit"][i], cols["ew_fit_err"][i] = fit["ew"], fit["ew_err"]
+            cols["fit_chi2"][i] = fit["chi2"]
             cols["fwhm"][i] = fit["fwhm"]
             cols["wave_obs"][i] = fit["centre"]
             prof_used[i] = "voigt" if use_voigt else "gauss"
@@ -1068,6 +1073,7 @@ def measure(spectrum, linelist=None, rv=0 * u.km / u.s, resolving_power=None, pr
         out[name] = cols[name] * u.AA
     out["depth"] = cols["depth"]
     out["significance"] = cols["significance"]
+    out["fit_chi2"] = cols["fit_chi2"]
     out["window_min"] = cols["window_min"] * u.AA
     out["window_max"] = cols["window_max"] * u.AA
     out["method"] = [str(m) for m in method]

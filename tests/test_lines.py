@@ -111,6 +111,29 @@ def test_cayrel_error_matches_monte_carlo_scatter():
     assert abs(np.mean(ews) - ew_true) < 4 * scatter / np.sqrt(len(ews)) + 0.01 * ew_true
 
 
+def test_fit_chi2_near_one_for_a_true_model_and_large_for_a_wrong_one():
+    # Common practice: with the right model and the right errors the reduced chi-square of a
+    # least-squares fit scatters about 1. A line with damping wings fitted by the Gaussian at
+    # the instrument's width (what ``auto`` uses for weak lines) must show a large chi-square at
+    # high S/N: the column is how a user tells model-limited from noise-limited lines.
+    rng = np.random.default_rng(7)
+    fwhm, ew_true, centre = 1.5, 0.12, 5500.0
+    dx = fwhm / 3.0
+    wave = np.arange(5470.0, 5530.0, dx)
+    ll = one_line_list(centre)
+    good = []
+    for _ in range(40):
+        flux = 1.0 - gaussian(wave, centre, ew_true, fwhm) + rng.normal(0, 1 / 80, wave.size)
+        row = lines.measure(make_spectrum(wave, flux, sigma=1 / 80, resolving_power=centre / fwhm), ll)[0]
+        good.append(float(row["fit_chi2"]))
+    assert 0.7 <= np.nanmedian(good) <= 1.3, np.nanmedian(good)
+    sig = fwhm / GAUSS_FWHM
+    wings = 1.0 - 3 * ew_true * voigt_profile(wave - centre, sig, 0.8) + rng.normal(0, 1 / 1000, wave.size)
+    row = lines.measure(make_spectrum(wave, wings, sigma=1 / 1000, resolving_power=centre / fwhm), ll,
+                        profile="gauss")[0]
+    assert row["fit_chi2"] > 5.0
+
+
 def test_cayrel_formula_value():
     # Cayrel (1988) formula (from memory) evaluated by hand for FWHM 0.1 A, pixel 0.02 A, S/N 100:
     # 1.5*sqrt(0.002)/100 = 0.67 mA
@@ -254,7 +277,7 @@ def test_measure_table_columns_and_units():
     spec, _ = _synthetic()
     m = lines.measure(spec)
     for name in ("id", "species", "wave_air", "wave_vac", "wave_obs", "ew", "ew_err", "ew_err_cayrel",
-                 "ew_fit", "fwhm", "depth", "method", "blend", "detected", "emission"):
+                 "ew_fit", "fwhm", "depth", "fit_chi2", "method", "blend", "detected", "emission"):
         assert name in m.colnames
     assert m["ew"].unit == u.AA and m["wave_obs"].unit == u.AA
     assert set(m["method"]) <= {"integration", "gauss_fit", "voigt_fit", "multi_gauss_fit",
@@ -450,7 +473,7 @@ def test_cli_lines_json_and_table(tmp_path):
     d = json.loads(res.output.strip().splitlines()[-1])
     assert d["file"] == str(path)
     row = {r["id"]: r for r in d["lines"]}["NaI_D2"]
-    for key in ("id", "species", "wave_air_aa", "wave_vac_aa", "ew_aa", "ew_err_aa", "fwhm_aa", "depth",
+    for key in ("id", "species", "wave_air_aa", "wave_vac_aa", "ew_aa", "ew_err_aa", "fwhm_aa", "depth", "fit_chi2",
                 "method", "blend", "detected"):
         assert key in row
     assert row["detected"] and row["ew_aa"] == pytest.approx(0.4, rel=0.15)

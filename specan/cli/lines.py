@@ -40,7 +40,8 @@ def lines_file(path, overrides, options):
             "wave_obs_aa": _aa(r["wave_obs"]),
             "ew_aa": _aa(r["ew"]), "ew_err_aa": _aa(r["ew_err"]),
             "ew_err_cayrel_aa": _aa(r["ew_err_cayrel"]), "ew_fit_aa": _aa(r["ew_fit"]),
-            "fwhm_aa": _aa(r["fwhm"]), "depth": float(r["depth"]), "method": str(r["method"]),
+            "fwhm_aa": _aa(r["fwhm"]), "depth": float(r["depth"]), "fit_chi2": float(r["fit_chi2"]),
+            "method": str(r["method"]),
             "blend": [b for b in str(r["blend"]).split(",") if b],
             "detected": bool(r["detected"]), "emission": bool(r["emission"]),
         })
