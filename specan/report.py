@@ -49,7 +49,7 @@ th{background:#eee;cursor:pointer;user-select:none;white-space:nowrap}
 th.asc::after{content:" \\25B2"} th.desc::after{content:" \\25BC"}
 tr.error td{background:#fde2e2} tr.flagged td{background:#fff4d6} tr.not_run td{background:#e8e8e8}
 .flag{display:inline-block;background:#c85;color:#fff;border-radius:3px;padding:0 4px;margin:1px;font-size:12px}
-td.long{max-width:28em;font-size:11px;color:#555}
+td.long{min-width:16em;max-width:28em;font-size:11px;color:#555}
 img.thumb{display:block;width:144px;height:54px}
 .muted{color:#777}
 """
