@@ -53,7 +53,7 @@ from scipy.integrate import cumulative_trapezoid
 
 from .errors import AnalysisError, ReadError
 from .lines import estimate_resolving_power
-from .mktypes import code_to_sptype, lumclass_to_number, number_to_lumclass, sptype_to_code
+from .mktypes import code_to_sptype, lumclass_to_number, marks_emission, number_to_lumclass, sptype_to_code
 from .obsinfo import get_info, wavelength_in
 
 #: Flags :func:`classify` may raise (the ``flags`` list holds those raised).
@@ -648,6 +648,22 @@ def _criterion_side():
 
 _SIDE = _criterion_side()
 
+#: Air wavelengths (A) of the lines a star's own emission fills in: H-alpha to H-epsilon and
+#: Ca II K and H (NIST ASD, from memory).
+_EMISSION_LINES = (6562.8, 4861.3, 4340.5, 4101.7, 3970.1, 3933.7, 3968.5)
+
+
+def _emission_sensitive():
+    """Criteria whose feature band holds one of :data:`_EMISSION_LINES` (ratios: either part)."""
+    hit = {name: any(lo <= w <= hi for lo, hi in spec["feature"] for w in _EMISSION_LINES)
+           for name, spec in CRITERIA.items()}
+    for name, (a, b, _) in RATIOS.items():
+        hit[name] = hit[a] or hit[b]
+    return np.array([hit[n] for n in criteria_names()])
+
+
+_EMISSION_SENSITIVE = _emission_sensitive()
+
 
 def _fit_two_scale(X, code, lum, grid, settings):
     """Class offsets from a wide window in type, then the mean relation from a narrow one.
@@ -845,7 +861,7 @@ class Calibration:
             ``self``, fitted.
         """
         X = np.asarray(X, float)
-        code, lum, sptypes, lumclasses = _parse_labels(labels)
+        code, lum, sptypes, lumclasses, emission = _parse_labels(labels)
         if X.shape != (len(code), len(criteria_names())):
             raise ValueError(f"criteria matrix has shape {X.shape}, expected ({len(code)}, "
                              f"{len(criteria_names())})")
@@ -854,11 +870,17 @@ class Calibration:
         ids = [f"standard {i + 1}" for i in range(len(code))] if ids is None else [str(i) for i in ids]
         step = self.settings["grid_step"]
         grid = np.arange(np.floor(code.min() / step) * step, code.max() + step / 2, step)
-        self.model_ = _fit_model(X, code, lum, self.settings, grid)
+        # A standard whose type marks emission lines ("M4.5E", "B2 Ve") says nothing about the
+        # absorption those lines have at its type: its criteria on them are left out of the fit.
+        # (The JHC library's dMe star, kept in, widened the H-alpha scatter of the M types
+        # sixfold, so that H-alpha emission 45% above the continuum went unflagged: measured.)
+        X_fit = X.copy()
+        X_fit[np.ix_(emission, _EMISSION_SENSITIVE)] = np.nan
+        self.model_ = _fit_model(X_fit, code, lum, self.settings, grid)
         self.standards_ = [{"id": i, "sptype": s, "lumclass": lc, "code": float(c), "criteria": x}
                            for i, s, lc, c, x in zip(ids, sptypes, lumclasses, code, X)]
         self._fine = None
-        self._internal_cv(X, code, lum)
+        self._internal_cv(X_fit, code, lum)
         from . import __version__
 
         self.code_version_ = __version__
@@ -1184,8 +1206,8 @@ def _split_distance(x, noise, fine, dof, tau):
 
 
 def _parse_labels(labels):
-    """MK labels -> (codes, class numbers, temperature types, class names)."""
-    codes, lums, sptypes, lumclasses = [], [], [], []
+    """MK labels -> (codes, class numbers, temperature types, class names, emission marked)."""
+    codes, lums, sptypes, lumclasses, emission = [], [], [], [], []
     for lab in labels:
         if isinstance(lab, str):
             parts = lab.split()
@@ -1199,7 +1221,8 @@ def _parse_labels(labels):
         lums.append(float(n))
         sptypes.append(str(sp))
         lumclasses.append(number_to_lumclass(n))
-    return np.array(codes), np.array(lums), sptypes, lumclasses
+        emission.append(marks_emission(sp, lc))
+    return np.array(codes), np.array(lums), sptypes, lumclasses, np.array(emission, bool)
 
 
 # ---------------------------------------------------------------------------

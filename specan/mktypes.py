@@ -19,6 +19,7 @@ __all__ = [
     "number_to_lumclass",
     "parse_mk",
     "luminosity_group",
+    "marks_emission",
 ]
 
 TEMPERATURE_CLASSES = "OBAFGKM"
@@ -93,6 +94,25 @@ def parse_mk(mk: str) -> tuple[float, str | None]:
         except ValueError:
             continue
     return code, lum
+
+
+def marks_emission(*parts: str) -> bool:
+    """True when an MK type's qualifiers mark emission lines ("M4.5E", "B2 Ve", "O5 If").
+
+    The MK suffix ``e`` marks emission lines, and ``f`` marks the N III / He II emission of
+    Of stars (Gray & Corbally 2009, from memory). ``pec`` (peculiar) is not emission. Pass
+    the temperature type and the luminosity class as written.
+    """
+    o_star = False
+    for part in parts:
+        text = str(part or "").strip()
+        m = _SPTYPE_RE.match(text)
+        o_star = o_star or bool(m and m.group(1).upper() == "O")
+        rest = text[m.end():] if m else _LUM_RE.sub("", text, count=1)
+        rest = re.sub(r"pec", "", rest, flags=re.IGNORECASE)
+        if re.search(r"e", rest, re.IGNORECASE) or (o_star and re.search(r"f", rest, re.IGNORECASE)):
+            return True
+    return False
 
 
 def luminosity_group(lumclass: str) -> str:

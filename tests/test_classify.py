@@ -352,6 +352,45 @@ def test_emission_flag_on_published_emission_star(jhc_spectra, calibration_witho
 
 
 @pytest.mark.reference
+def test_emission_flag_with_the_emission_star_among_the_standards(jhc_spectra):
+    # The shipped calibration keeps SAO 81292 (M4.5e V) as a standard. Its emission lines must
+    # not enter the relations: kept in, they widened the M-type H-alpha scatter sixfold and this
+    # star's own H-alpha, 19% above the pseudo-continuum, went unflagged (measured).
+    res = C.default_calibration().classify(jhc_spectra["SAO81292"], rv=0 * u.km / u.s)
+    assert "emission" in res["flags"]
+
+
+def test_emission_marked_standards_do_not_shape_the_balmer_relations():
+    # MK notation (Gray & Corbally 2009, from memory): a suffix e marks emission lines, f the
+    # emission of Of stars, pec is only peculiar.
+    from specan.mktypes import marks_emission
+
+    assert marks_emission("M4.5E") and marks_emission("B2", "Ve") and marks_emission("O5", "If")
+    assert not any(marks_emission(*t) for t in (("A2pec", "V"), ("G2", "V"), ("MPF4", "V"), ("B1", "Iab")))
+    # invented criteria: 40 standards on smooth relations; one marked e gets an absurd H-alpha
+    rng = np.random.default_rng(3)
+    names = C.criteria_names()
+    codes = np.linspace(20.0, 59.0, 40)
+    X = np.array([np.sin(codes / 10.0 + j) * 0.2 + 0.3 for j in range(len(names))]).T
+    X += rng.normal(0, 0.005, X.shape)
+    labels = [(f"{'AFGK'[int(c // 10) - 2]}{c % 10:.1f}", "V") for c in codes]
+    marked = list(labels)
+    marked[20] = (marked[20][0] + "e", "V")
+    ha = names.index("halpha")
+    odd = X.copy()
+    odd[20, ha] = -0.9
+    plain = C.Calibration().fit_criteria(X, labels).model_
+    with_e = C.Calibration().fit_criteria(odd, marked).model_
+    without_e = C.Calibration().fit_criteria(odd, labels).model_
+    near = np.abs(plain["grid"] - codes[20]) < 2
+    assert np.allclose(with_e["mean"][near, ha], plain["mean"][near, ha], atol=0.02)
+    assert np.max(np.abs(without_e["mean"][near, ha] - plain["mean"][near, ha])) > 0.05
+    # criteria away from the emission lines still learn from the marked standard
+    mg = names.index("mg_b")
+    assert np.array_equal(with_e["mean"][:, mg], without_e["mean"][:, mg])
+
+
+@pytest.mark.reference
 def test_no_flags_on_plain_standards(jhc_spectra, calibration_without):
     for sid in ("HD116608", "HD66171", "HD26946"):
         res = calibration_without.classify(jhc_spectra[sid], rv=0 * u.km / u.s)
