@@ -474,6 +474,14 @@ def spectrum_criteria(spectrum, resolution=4.5 * u.AA, rv=None, measure_velocity
         else:
             rv = None
 
+    # Only the wavelengths the criteria use (and a margin for the smoothing): the pixel size and
+    # the smoothing grid come from medians, which a spectrum reaching far outside (a model from
+    # the ultraviolet to the infrared, measured) would set from pixels nowhere near the bands.
+    margin = 10.0 * fwhm_out
+    near = (wave >= _BANDS.min() - margin) & (wave <= _BANDS.max() + margin)
+    if (good & near).sum() >= 20 and not near.all():
+        first, last = np.flatnonzero(near)[[0, -1]]
+        wave, flux, good = wave[first:last + 1], flux[first:last + 1], good[first:last + 1]
     # Resolution of the input
     pixel = float(np.median(np.diff(wave)))
     if info.resolving_power:

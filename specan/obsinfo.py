@@ -180,7 +180,15 @@ def air_to_vacuum(wavelength):
     from specutils.utils.wcs_utils import air_to_vac
 
     w = u.Quantity(wavelength)
-    return air_to_vac(w, method=AIR_VACUUM_FORMULA, scheme="inversion").to(w.unit)
+    n_min = _refraction_at_formula_limit()
+    low = w.to_value(u.AA) < _FORMULA_MIN_AA / n_min      # the limit, as an air wavelength
+    if not np.any(low):
+        return air_to_vac(w, method=AIR_VACUUM_FORMULA, scheme="inversion").to(w.unit)
+    out = np.atleast_1d(w * n_min).astype(float)
+    high = ~np.atleast_1d(low)
+    if high.any():
+        out[high] = air_to_vac(np.atleast_1d(w)[high], method=AIR_VACUUM_FORMULA, scheme="inversion").to(w.unit)
+    return out.reshape(w.shape)
 
 
 def vacuum_to_air(wavelength):
@@ -199,7 +207,28 @@ def vacuum_to_air(wavelength):
     from specutils.utils.wcs_utils import vac_to_air
 
     w = u.Quantity(wavelength)
-    return vac_to_air(w, method=AIR_VACUUM_FORMULA).to(w.unit)
+    low = w.to_value(u.AA) < _FORMULA_MIN_AA
+    if not np.any(low):
+        return vac_to_air(w, method=AIR_VACUUM_FORMULA).to(w.unit)
+    out = np.atleast_1d(w / _refraction_at_formula_limit()).astype(float)
+    high = ~np.atleast_1d(low)
+    if high.any():
+        out[high] = vac_to_air(np.atleast_1d(w)[high], method=AIR_VACUUM_FORMULA).to(w.unit)
+    return out.reshape(w.shape)
+
+
+#: Shortest wavelength (Angstrom) for which specutils accepts the Morton (2000) formula. Below
+#: it the refractive index of this wavelength is held, so that a spectrum reaching into the
+#: ultraviolet still converts (continuously) instead of failing; air wavelengths are not used
+#: below 2000 A anyway (common practice), and the index changes by 6% of (n - 1) from 2500 to
+#: 2000 A (Greisen et al. 2006 formula in specutils, measured), about 0.04 A there.
+_FORMULA_MIN_AA = 2500.0
+
+
+def _refraction_at_formula_limit() -> float:
+    from specutils.utils.wcs_utils import refraction_index
+
+    return float(refraction_index(_FORMULA_MIN_AA * u.AA, method=AIR_VACUUM_FORMULA))
 
 
 def wavelength_in(spectrum, medium: str) -> np.ndarray:

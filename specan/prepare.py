@@ -315,10 +315,16 @@ class _PSpline:
         n_int = max(int(np.ceil((hi - lo) / knot_spacing)), 1)
         h = (hi - lo) / n_int if hi > lo else 1.0
         self.knots = lo + h * np.arange(-3, n_int + 4)
+        from scipy import sparse
+
         self.basis = BSpline.design_matrix(np.clip(x, lo, hi), self.knots, 3).tocsr()
         ncoef = self.basis.shape[1]
-        d2 = np.diff(np.eye(ncoef), n=2, axis=0)
-        self.penalty = (lam / h**3) * (d2.T @ d2)
+        # second differences of the coefficients, kept sparse: a dense (ncoef, ncoef) matrix
+        # grows with the square of the wavelength range (a model spectrum from 0.15 to 300
+        # microns asked for 74 GB)
+        d2 = sparse.diags([np.ones(ncoef - 2), -2.0 * np.ones(ncoef - 2), np.ones(ncoef - 2)], [0, 1, 2],
+                          shape=(ncoef - 2, ncoef))
+        self.penalty = ((lam / h**3) * (d2.T @ d2)).tocsr()
         self.lo, self.hi = lo, hi
 
     def fit(self, y, w):
@@ -327,11 +333,11 @@ class _PSpline:
 
         # The normal equations are banded (bandwidth 3): solve them as such. Dense
         # LAPACK through a busy multi-threaded BLAS was 30x slower here (measured).
-        normal = (self.basis.T @ self.basis.multiply(w[:, None])).toarray() + self.penalty
+        normal = (self.basis.T @ self.basis.multiply(w[:, None])).tocsr() + self.penalty
         n = normal.shape[0]
         bands = np.zeros((4, n))
         for k in range(4):
-            bands[3 - k, k:] = np.diagonal(normal, k)
+            bands[3 - k, k:] = normal.diagonal(k)
         coef = solveh_banded(bands, self.basis.T @ (w * y))
         spline = BSpline(self.knots, coef, 3, extrapolate=True)
         return lambda xx: spline(np.clip(np.asarray(xx, float), self.lo, self.hi))

@@ -271,6 +271,20 @@ def test_sun_without_a_stated_resolving_power(kurucz_sun):
     assert any("estimated from the narrowest lines" in n for n in res["notes"])
 
 
+def test_sun_over_the_whole_model_range(sun_spectrum):
+    # The Kurucz model from 0.15 to 300 microns (rms-solar) in one spectrum: the continuum fit
+    # once asked for a 74 GB matrix there, and the criteria's smoothing grid took its step from
+    # the infrared pixels (K0.5 III instead of G2 V, measured). It must classify as the
+    # optical part does.
+    from conftest import _kurucz_arrays
+
+    w, f, _ = _kurucz_arrays()
+    full = C.classify(_spectrum(w, f, medium="vacuum", resolving_power=2000.0, snr=500.0, path="sun_full"))
+    optical = C.classify(sun_spectrum)
+    _check_sun(full)
+    assert abs(full["code"] - optical["code"]) <= 0.5 and full["lumclass"] == optical["lumclass"]
+
+
 def test_sun_is_more_likely_a_dwarf_than_a_giant(sun_spectrum):
     # Beyond the class acceptance below: the class probabilities, not only the most probable class,
     # favour a dwarf (measured IV + V = 0.57 with the default calibration, R = 2000).

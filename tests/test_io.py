@@ -353,3 +353,20 @@ def test_fits_cut_inside_an_extension_header_is_refused(tmp_path):
     cut.write_bytes(data[: err_header + 100])
     with pytest.raises(CorruptFileError, match="truncated"):
         specan.read(cut)
+
+
+def test_air_vacuum_conversion_reaches_into_the_ultraviolet():
+    # specutils refuses the Morton (2000) formula below 2500 A; a spectrum reaching there (a
+    # model, or a space-ultraviolet one merged with optical) must still convert: continuous,
+    # increasing, and exactly specutils' Morton (2000) values from 2500 A up.
+    from specutils.utils.wcs_utils import vac_to_air
+
+    w = np.linspace(1200.0, 9000.0, 20001) * u.AA
+    air = vacuum_to_air(w)
+    assert np.all(np.diff(air.value) > 0)
+    assert np.max(np.abs(np.diff(air.value) - np.diff(w.value))) < 1e-3     # no jump at 2500 A
+    high = w >= 2500 * u.AA
+    assert np.allclose(air[high].value, vac_to_air(w[high], method="Morton2000").value, rtol=0, atol=1e-9)
+    back = air_to_vacuum(air)
+    assert np.max(np.abs(back - w).to_value(u.AA)) < 1e-3
+    assert vacuum_to_air(5000.0 * u.AA).shape == ()
