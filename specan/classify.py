@@ -333,7 +333,10 @@ def measure_criteria(wave, flux, mask=None, snr=None, pixel=None, min_good=0.5):
         xm = _BAND_MID[feat]
         cont = fb[i] + (fr[i] - fb[i]) * (xm - xb[i]) / (xr[i] - xb[i])
         widths = _BANDS[feat, 1] - _BANDS[feat, 0]
-        depth[i] = 1.0 - np.sum(widths * mean[feat] / cont) / widths.sum()
+        if np.all(cont > 0):
+            depth[i] = 1.0 - np.sum(widths * mean[feat] / cont) / widths.sum()
+        else:   # no positive flux beside the feature (a zero or sky-subtracted spectrum): undefined
+            depth[i] = np.nan
     resid = np.clip(1.0 - depth, 1e-3, None)
     ratios = np.log(resid[_RATIO_IDX[:, 0]] / resid[_RATIO_IDX[:, 1]])
     values = np.concatenate([depth, ratios])
@@ -1005,7 +1008,7 @@ class Calibration:
         n_ok, n_all = int(ok.sum()), len(x)
         if n_ok < 5:
             raise AnalysisError(f"only {n_ok} of {n_all} classification criteria measurable "
-                                "(wavelength coverage 3500-7400 A needed)")
+                                "(they need positive flux over 3500-7400 A)")
         dof = self.settings["dof"]
         grid = fine["grid"]
         p, ll, z2 = _posterior(x, noise, fine, dof, self.tau_, ok)

@@ -1062,7 +1062,7 @@ def _resample_error(data, weight, template, pad, m, s0, err_px, k, seed, hp):
     # the coverage window is smooth: its spectrum (and the terms it multiplies) ends early
     pv = np.abs(BV) ** 2
     tail = np.cumsum(pv[::-1])[::-1] / pv.sum()
-    kv = int(np.searchsorted(-tail, -1e-14)) + 1
+    kv = min(int(np.searchsorted(-tail, -1e-14)) + 1, nf)   # (never past the last frequency)
 
     def ev(A, B, kmax=nf):
         # sum_f Re(conj(A_f) B_f ph_f) for every row of A, as one real matrix product on the
