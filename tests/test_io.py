@@ -370,3 +370,32 @@ def test_air_vacuum_conversion_reaches_into_the_ultraviolet():
     back = air_to_vacuum(air)
     assert np.max(np.abs(back - w).to_value(u.AA)) < 1e-3
     assert vacuum_to_air(5000.0 * u.AA).shape == ()
+
+
+@pytest.mark.parametrize("shape", ["bands", "bands_apertures"])
+def test_multi_band_image_of_one_aperture(tmp_path, shape):
+    # The layout long-slit extraction packages write for one aperture (common practice, card
+    # names from memory): bands along the last-but-one axes, BANDIDn naming each; band 1 is the
+    # optimally extracted spectrum and the band named "sigma" its standard deviation.
+    flux = _flux()
+    bands = np.stack([flux, flux * 1.1, np.full(N, 0.3), np.full(N, 0.02)])
+    data = bands if shape == "bands" else bands[:, None, :]
+    h = fits.Header()
+    h["CTYPE1"], h["CUNIT1"], h["CRVAL1"], h["CDELT1"], h["CRPIX1"] = "AWAV", "Angstrom", 4000.0, 1.0, 1.0
+    for k, name in enumerate(["spectrum - background fit, weights variance, clean no",
+                              "raw - background fit, weights none, clean no",
+                              "background - background fit", "sigma - background fit, weights variance, clean no"]):
+        h[f"BANDID{k + 1}"] = name
+    path = tmp_path / "bands.fits"
+    fits.PrimaryHDU(data, header=h).writeto(path)
+    s = specan.read(path)
+    assert np.allclose(s.flux.value, flux)
+    assert np.allclose(s.uncertainty.array, 0.02)
+    assert any("band 4" in w and "sigma" in w for w in get_info(s).warnings)
+    # without band names: the first band, no errors, and the warning says so
+    for k in range(1, 5):
+        del h[f"BANDID{k}"]
+    fits.PrimaryHDU(data, header=h).writeto(path, overwrite=True)
+    s = specan.read(path)
+    assert np.allclose(s.flux.value, flux) and s.uncertainty is None
+    assert any("no band named sigma" in w for w in get_info(s).warnings)

@@ -8,7 +8,8 @@ when they omit it: specan guesses from the range and says so). The older
 ``DC-FLAG = 1`` log10 convention is also read (common practice).
 The flux unit comes from BUNIT. An error array is taken from an image extension
 called ERR/ERROR/SIGMA/UNCERT (standard deviation) or IVAR (inverse variance)
-or VAR/VARIANCE of the same length.
+or VAR/VARIANCE of the same length, or from a band named ``sigma...`` (BANDIDn)
+of a multi-band image of one aperture, whose first band is the spectrum.
 """
 
 from __future__ import annotations
@@ -116,12 +117,25 @@ def read(path, hdul=None, hdu=None, wave_unit=None, **_):
         raise NoWavelengthError("no 1-D image HDU with data; try --hdu", path)
     h = hdul[index]
     data = np.asarray(h.data, dtype=float)
+    sigma_band, band_note = None, None
     if data.ndim > 1:
         squeezed = data.squeeze()
+        # multi-band layout of one extracted aperture, (bands, N) or (bands, 1, N): the first band
+        # is the spectrum; with BANDIDn cards naming them, a band called "sigma..." is its
+        # standard deviation (the layout long-slit extraction packages write, common practice)
+        bands = data if data.ndim == 2 else (data[:, 0, :] if data.ndim == 3 and data.shape[1] == 1 else None)
         if squeezed.ndim == 1:
             data = squeezed
-        elif data.ndim == 2 and data.shape[0] <= 4:
-            data = data[0]  # multi-band layout: first band is the spectrum (common practice)
+        elif bands is not None and bands.shape[0] <= 4:
+            names = [str(h.header.get(f"BANDID{k + 1}", "")).strip() for k in range(bands.shape[0])]
+            sigma = [k for k, name in enumerate(names) if name.lower().startswith("sigma")]
+            data = bands[0]
+            if sigma:
+                sigma_band = bands[sigma[0]]
+            described = f" ({names[0]!r})" if names[0] else ""
+            band_note = (f"{bands.shape[0]}-band image: band 1{described} read as the spectrum"
+                         + (f", band {sigma[0] + 1} ({names[sigma[0]]!r}) as its standard deviation" if sigma
+                            else "; no band named sigma, so no errors from the file"))
         else:
             raise ReadError(f"HDU {index} is a {data.ndim}-D image of shape {data.shape}, not a 1-D spectrum "
                             "(specan reads extracted spectra; choose another HDU with --hdu)", path)
@@ -142,9 +156,13 @@ def read(path, hdul=None, hdu=None, wave_unit=None, **_):
             raw.flux_unit = u.Unit(str(bunit), format="fits", parse_strict="raise")
         except ValueError:
             raw.info.warn(f"BUNIT {bunit!r} not understood; flux taken as relative")
+    if band_note:
+        raw.info.warn(band_note)
     kind, err = _error_extension(hdul, n, index)
     if kind is not None:
         raw.set_uncertainty(kind, err)
+    elif sigma_band is not None:
+        raw.set_uncertainty("std", sigma_band)
     # Primary cards (site, time) count too when the spectrum is in an extension.
     header = hdul[0].header.copy() if index else h.header
     if index:
