@@ -827,6 +827,7 @@ class Calibration:
         self.tau_class_ = None
         self.limits_ = None
         self.cv_ = None
+        self.skipped_ = []
         self.created_ = None
         self.code_version_ = None
 
@@ -1131,6 +1132,7 @@ class Calibration:
                     "offset_supergiant": _round(m["offsets"][:, j, 1]),
                     "scatter": _round(m["scatter"][:, j])}
                 for j, n in enumerate(names)},
+            "skipped_standards": list(getattr(self, "skipped_", [])),
             "standards": [{"id": s["id"], "sptype": s["sptype"], "lumclass": s["lumclass"],
                            "code": s["code"], "criteria": _round(s["criteria"])} for s in self.standards_],
         }
@@ -1182,6 +1184,7 @@ class Calibration:
         cal.tau_class_ = float(data.get("likelihood_temperature_classes", cal.tau_))
         cal.limits_ = dict(data["limits"])
         cal.cv_ = data.get("internal_cross_validation")
+        cal.skipped_ = list(data.get("skipped_standards", []))
         cal.created_ = data.get("created")
         cal.code_version_ = data.get("code_version")
         cal._fine = None
@@ -1246,8 +1249,9 @@ def calibrate_catalog(catalog, source=None, reader_options=None, progress=None, 
     Parameters
     ----------
     catalog : str or Path
-        CSV with columns ``file`` (path relative to the catalogue), ``sptype`` and
-        ``lumclass`` (optional ``id``), like the reference library's ``catalog.csv``.
+        CSV with columns ``file`` (path relative to the catalogue) and either
+        ``sptype`` and ``lumclass`` or ``mk`` (``"G2 V"``); optional ``id``. The
+        reference library's ``catalog.csv`` has this form.
     source : str, optional
         Description written to the calibration (default: the catalogue path).
     reader_options : dict, optional
@@ -1260,9 +1264,13 @@ def calibrate_catalog(catalog, source=None, reader_options=None, progress=None, 
     Returns
     -------
     Calibration
+        Fitted. A row whose file cannot be read or measured, or whose type cannot be
+        parsed, is left out and listed in ``skipped_`` (file, reason), which the
+        calibration file records; the fit needs at least 8 usable standards.
     """
     from astropy.table import Table
 
+    from .errors import SpecanError
     from .io import read
 
     catalog = Path(catalog)
@@ -1272,19 +1280,39 @@ def calibrate_catalog(catalog, source=None, reader_options=None, progress=None, 
         raise ReadError("catalogue not found", catalog) from None
     except Exception as exc:  # noqa: BLE001 - any parse failure becomes one clear line
         raise ReadError(f"catalogue is not a readable CSV ({exc})", catalog) from None
-    missing = [c for c in ("file", "sptype", "lumclass") if c not in table.colnames]
-    if missing:
-        raise ReadError(f"catalogue lacks column(s) {', '.join(missing)} (need file, sptype, lumclass)", catalog)
-    spectra, labels, ids = [], [], []
+    split = "sptype" in table.colnames and "lumclass" in table.colnames
+    if "file" not in table.colnames or not (split or "mk" in table.colnames):
+        raise ReadError("catalogue needs a file column and either sptype and lumclass or mk "
+                        f"(it has {', '.join(table.colnames)})", catalog)
+    cal = Calibration(source=source or str(catalog), **settings)
+    X, labels, ids, skipped = [], [], [], []
     for row in table:
         path = catalog.parent / str(row["file"])
         if progress is not None:
             progress(path)
-        spectra.append(read(path, **(reader_options or {})))
-        labels.append((str(row["sptype"]), str(row["lumclass"])))
+        try:
+            if split:
+                label = (str(row["sptype"]), str(row["lumclass"]))
+            else:
+                parts = str(row["mk"]).split(maxsplit=1)
+                label = (parts[0], parts[1] if len(parts) > 1 else "")
+            _parse_labels([label])   # refuses a type or class it cannot read
+            spectrum = read(path, **(reader_options or {}))
+            values = spectrum_criteria(spectrum, cal.resolution, measure_velocity=cal.measure_velocity,
+                                       assume_resolution=cal.resolution)["values"]
+        except (SpecanError, ValueError) as exc:
+            skipped.append({"file": str(row["file"]), "reason": str(getattr(exc, "reason", exc))})
+            continue
+        X.append(values)
+        labels.append(label)
         ids.append(str(row["id"]) if "id" in table.colnames else Path(str(row["file"])).stem)
-    cal = Calibration(source=source or str(catalog), **settings)
-    return cal.fit(spectra, labels, ids=ids)
+    if not X:
+        raise AnalysisError(f"no usable standard in the catalogue ({len(skipped)} rows skipped; first: "
+                            f"{skipped[0]['file']}: {skipped[0]['reason']})" if skipped else
+                            "the catalogue lists no standards", catalog)
+    cal.fit_criteria(np.array(X), labels, ids=ids)
+    cal.skipped_ = skipped
+    return cal
 
 
 @functools.lru_cache(maxsize=1)

@@ -561,6 +561,28 @@ def test_cli_calibrate_then_classify(jhc1984, jhc_catalog, tmp_path):
     assert json.loads(res.output.strip().splitlines()[-1])["mk"]
 
 
+@pytest.mark.reference
+def test_calibrate_with_an_mk_column_skips_bad_rows_and_says_so(jhc1984, jhc_catalog, tmp_path):
+    # An observer's catalogue: one "mk" column, absolute paths, a missing file and a type that
+    # is not MK. The good rows are fitted; the others are listed (stderr, the file) and counted
+    # in the exit status, as the other commands count failed files.
+    from click.testing import CliRunner
+
+    from specan.cli import cli
+
+    rows = ["file,mk"] + [f"{jhc1984 / str(r['file'])},{r['mk']}" for r in jhc_catalog[::6]]
+    rows += [f"{tmp_path / 'gone.fits'},G2 V", f"{jhc1984 / str(jhc_catalog[0]['file'])},Q9 X"]
+    cat = tmp_path / "mine.csv"
+    cat.write_text("\n".join(rows) + "\n")
+    out_file = tmp_path / "mine.json"
+    res = CliRunner().invoke(cli, ["calibrate", str(cat), "--out", str(out_file), "--no-velocity"], obj={})
+    assert res.exit_code == 2, res.output
+    assert "16 standards" in res.output
+    assert "skipped standard" in res.output and "gone.fits" in res.output and "'X'" in res.output
+    cal = C.Calibration.load(out_file)
+    assert len(cal.standards_) == 16 and len(cal.skipped_) == 2
+
+
 def test_cli_calibrate_reports_missing_columns(tmp_path):
     from specan.cli import main
 
