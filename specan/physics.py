@@ -692,7 +692,7 @@ def _squash(name: str) -> str:
     return re.sub(r"[^a-z0-9]", "", str(name).lower())
 
 
-def load_photometry(path):
+def load_photometry(path, bad_rows=None):
     """Read a per-object photometry/astrometry CSV.
 
     The file is comma-separated with a header line; lines starting with ``#``
@@ -705,6 +705,11 @@ def load_photometry(path):
     Parameters
     ----------
     path : str or Path
+    bad_rows : dict, optional
+        When given, a data line that cannot be used (a value that is not a number or an
+        angle, an empty name, an object listed twice) does not stop the reading: it is
+        left out and recorded here as object name -> reason (an empty name as
+        ``"line N"``), so one typo costs one star, not the night.
 
     Returns
     -------
@@ -717,8 +722,8 @@ def load_photometry(path):
     Raises
     ------
     ReadError
-        Missing or unreadable file, missing object/V column, a non-numeric value,
-        or an object listed twice.
+        Missing or unreadable file, or missing object/V column; without ``bad_rows``
+        also a non-numeric value, an empty name or an object listed twice.
     """
     import csv
 
@@ -746,38 +751,53 @@ def load_photometry(path):
         if need not in where:
             raise ReadError(f"photometry file needs a '{need}' column (accepted names: "
                             f"{', '.join(PHOTOMETRY_COLUMNS[need])}); found {header}", path=path)
-    out = {}
+    out, seen = {}, set()
     for lineno, row in enumerate(reader, start=2):
         if not any(c.strip() for c in row):
             continue
         cell = lambda key: row[where[key]].strip() if key in where and where[key] < len(row) else ""  # noqa: E731
         name = cell("object")
-        if not name:
-            raise ReadError(f"data line {lineno}: empty object name", path=path)
-        if name in out:
-            raise ReadError(f"object {name!r} listed twice (data line {lineno})", path=path)
-        rec = {"object": name}
-        for key, unit in _PHOT_UNITS.items():
-            text = cell(key)
-            if text == "" or text.lower() in ("nan", "na", "none", "--"):
-                rec[key] = None
-                continue
-            try:
-                val = float(text)
-            except ValueError:
-                raise ReadError(f"data line {lineno} ({name}): {header[where[key]]!r} = {text!r} is not a number",
-                                path=path) from None
-            rec[key] = None if not math.isfinite(val) else val * unit
-        for key in ("ra", "dec"):
-            text = cell(key)
-            try:
-                deg = parse_angle(text, u.hourangle if key == "ra" else u.deg, key) if text else None
-            except MetadataError:
-                raise ReadError(f"data line {lineno} ({name}): {key} = {text!r} is not an angle",
-                                path=path) from None
-            rec[key] = None if deg is None else deg * u.deg
+        try:
+            rec = _photometry_record(lineno, name, cell, header, where, seen, path)
+        except ReadError as exc:
+            if bad_rows is None:
+                raise
+            bad_rows[name or f"line {lineno}"] = exc.reason
+            out.pop(name, None)     # listed twice: no line of it is trusted
+            continue
+        finally:
+            seen.add(name)
         out[name] = rec
     return out
+
+
+def _photometry_record(lineno, name, cell, header, where, seen, path):
+    """One data line of a photometry file as a row dict (see :func:`load_photometry`)."""
+    if not name:
+        raise ReadError(f"data line {lineno}: empty object name", path=path)
+    if name in seen:
+        raise ReadError(f"object {name!r} listed twice (data line {lineno})", path=path)
+    rec = {"object": name}
+    for key, unit in _PHOT_UNITS.items():
+        text = cell(key)
+        if text == "" or text.lower() in ("nan", "na", "none", "--"):
+            rec[key] = None
+            continue
+        try:
+            val = float(text)
+        except ValueError:
+            raise ReadError(f"data line {lineno} ({name}): {header[where[key]]!r} = {text!r} is not a number",
+                            path=path) from None
+        rec[key] = None if not math.isfinite(val) else val * unit
+    for key in ("ra", "dec"):
+        text = cell(key)
+        try:
+            deg = parse_angle(text, u.hourangle if key == "ra" else u.deg, key) if text else None
+        except MetadataError:
+            raise ReadError(f"data line {lineno} ({name}): {key} = {text!r} is not an angle",
+                            path=path) from None
+        rec[key] = None if deg is None else deg * u.deg
+    return rec
 
 
 def photometry_for(photometry, name):

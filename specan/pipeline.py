@@ -438,13 +438,19 @@ def _photometry_row(path, name, rec):
         key = (path, os.stat(path).st_mtime_ns)
         if key not in _PHOTOMETRY_CACHE:
             _PHOTOMETRY_CACHE.clear()
-            _PHOTOMETRY_CACHE[key] = load_photometry(path)
-        row = photometry_for(_PHOTOMETRY_CACHE[key], name)
+            bad = {}
+            _PHOTOMETRY_CACHE[key] = (load_photometry(path, bad_rows=bad), bad)
+        rows, bad = _PHOTOMETRY_CACHE[key]
+        row = photometry_for(rows, name)
     except (OSError, SpecanError) as exc:
         rec.warnings.append(f"photometry not used: {getattr(exc, 'reason', exc)}")
         return None
     if row is None:
-        rec.warnings.append(f"no photometry for {name!r} in {os.path.basename(path)}")
+        # a line of the file that could not be used costs its own star only, and says why
+        # (the problems are keyed by name as the rows are, so the same matching finds them)
+        reason = photometry_for(bad, name)
+        rec.warnings.append(f"photometry for {name!r} not used: {reason}" if reason else
+                            f"no photometry for {name!r} in {os.path.basename(path)}")
     return row
 
 

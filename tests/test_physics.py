@@ -392,6 +392,18 @@ def test_load_photometry_errors(tmp_path, text, message):
         physics.load_photometry(p)
 
 
+def test_load_photometry_keeps_the_good_lines_when_asked(tmp_path):
+    # With bad_rows, one typo costs one star: the other lines are read, the bad ones are named
+    # with their reasons (an object listed twice trusts none of its lines).
+    p = tmp_path / "night.csv"
+    p.write_text("object,V,V_err\nA,10,0.1\nB,abc,0.1\nC,9,0.1\nC,9.5,0.1\nC,9.7,0.1\n,8,0.1\nD,7,0.1\n")
+    bad = {}
+    rows = physics.load_photometry(p, bad_rows=bad)
+    assert sorted(rows) == ["A", "D"]
+    assert rows["D"]["v"].to_value(u.mag) == 7.0
+    assert "not a number" in bad["B"] and "listed twice" in bad["C"] and "empty object name" in bad["line 7"]
+
+
 def test_load_photometry_missing_file(tmp_path):
     from specan.errors import ReadError
 

@@ -598,3 +598,21 @@ def test_demo_calibration_is_what_its_script_fits(tmp_path):
     a = np.array([s["criteria"] for s in std_new], float)
     b = np.array([s["criteria"] for s in std_old], float)
     assert np.allclose(a, b, rtol=1e-6, atol=1e-9, equal_nan=True), "rerun scripts/make_demo_calibration.py"
+
+
+def test_one_bad_photometry_line_costs_one_star(tmp_path):
+    # A typo in one line of the photometry file must not take the night's distances with it:
+    # the star it belongs to says why it has none, the others get theirs.
+    night = tmp_path / "night"
+    night.mkdir()
+    for i in range(2):
+        write_spectrum(night / f"s{i}.fits", name=f"S{i}", seed=i)
+    phot = tmp_path / "phot.csv"
+    phot.write_text("object,V,V_err\nS0,9.7,0.02\nS1,9.x,0.02\n")
+    res = pipeline.run([night], tmp_path / "out", plots=False, photometry=phot,
+                       stages=("read", "prepare", "velocity", "classify", "physics"))
+    rows = {str(r["object"]): r for r in res.catalogue}
+    assert np.isfinite(float(rows["S0"]["distance_pc"]))
+    assert "photometry for 'S1' not used" in str(rows["S1"]["warnings"])
+    assert "not a number" in str(rows["S1"]["warnings"])
+    assert "photometry" not in str(rows["S0"]["warnings"])

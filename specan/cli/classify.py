@@ -72,7 +72,10 @@ def command(ctx, files, calibration, photometry, v_keyword, as_json, **kwargs):
     if photometry:
         from ..physics import load_photometry
 
-        phot = load_photometry(photometry)
+        bad = {}
+        phot = load_photometry(photometry, bad_rows=bad)
+        for name, reason in bad.items():   # the other objects' lines are still used
+            click.echo(f"specan: warning: photometry line for {name!r} not used: {reason}", err=True)
 
     def show(path, d):
         if as_json:
