@@ -399,3 +399,12 @@ def test_multi_band_image_of_one_aperture(tmp_path, shape):
     s = specan.read(path)
     assert np.allclose(s.flux.value, flux) and s.uncertainty is None
     assert any("no band named sigma" in w for w in get_info(s).warnings)
+
+
+def test_unstandard_site_keywords_are_named_not_guessed(tmp_path):
+    # SITELAT/SITELONG and the like carry no agreed longitude sign: specan must not guess
+    # (a sign error biases the barycentric correction), but must say what it saw and the fix.
+    info = get_info(specan.read(_image_with(tmp_path, {"SITELAT": "+28 45 38", "SITELONG": "-17 52 45",
+                                                       "DATE-OBS": "2026-03-14T21:05:30"})))
+    assert info.site is None
+    assert any("SITELONG=-17 52 45" in w and "--site" in w for w in info.warnings)

@@ -255,6 +255,18 @@ def header_metadata(header, info: ObsInfo) -> ObsInfo:
                 info.site_source = "OBSGEO-B/L/H"
     except (TypeError, ValueError) as exc:
         raise MetadataError(f"observatory position keywords are not numbers ({exc})") from exc
+    if info.site is None:
+        # Acquisition programs write the site under other names, with differing longitude sign
+        # conventions (east- or west-positive); a wrong guess would silently bias the
+        # barycentric correction by up to twice the Earth's rotation speed, so say what is
+        # there and how to give it rather than guess.
+        found = {k: _card(header, k) for k in ("SITELAT", "SITELONG", "SITEELEV", "LATITUDE", "LONGITUD",
+                                               "LONGITUDE", "ALTITUDE", "OBS-LAT", "OBS-LONG", "OBS-ELEV")}
+        found = {k: v for k, v in found.items() if v is not None}
+        if found:
+            listed = ", ".join(f"{k}={v}" for k, v in found.items())
+            info.warn(f"site keywords {listed} not used (their longitude sign convention varies); "
+                      "give the site as --site lat,lon,height with longitude east-positive")
 
     ctype = str(_card(header, "CTYPE1") or "").strip().upper()
     if ctype.startswith("AWAV"):
