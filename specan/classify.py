@@ -391,10 +391,14 @@ def _snr_of(spectrum, info):
     """S/N per pixel: the carried value, else DER_SNR (Stoehr et al. 2008) via specutils."""
     if info.snr is not None and np.isfinite(info.snr) and info.snr > 0:
         return float(info.snr)
+    import warnings
+
     from specutils.analysis import snr_derived
 
     try:
-        value = float(snr_derived(spectrum))
+        with warnings.catch_warnings():
+            warnings.simplefilter("ignore", RuntimeWarning)   # 0/0 on a flat or empty spectrum
+            value = float(snr_derived(spectrum))
     except Exception:  # noqa: BLE001 - a failed S/N estimate only drops the noise term
         return None
     return value if np.isfinite(value) and value > 0 else None
@@ -634,6 +638,10 @@ def _definitions():
 #: S/N per pixel below which the ``low_snr`` flag is raised (common practice: criteria at
 #: R ~ 1000-2000 become unreliable well before S/N 20; same threshold as specan.pipeline).
 LOW_SNR = 20.0
+#: A spectrum whose criteria sum to less than this fraction of the weakest standard's absolute
+#: depth has no absorption features to classify by (our choice: the JHC standards' weakest, an
+#: O5 star, sums to 1.08; noise at S/N 100 adds about 0.2).
+FEATURELESS = 0.3
 #: A line rising this far above its pseudo-continuum (plus 3 sigma of noise) is emission
 #: (our convention, not a published threshold).
 EMISSION_DEPTH = -0.05
@@ -892,6 +900,7 @@ class Calibration:
         self.standards_ = [{"id": i, "sptype": s, "lumclass": lc, "code": float(c), "criteria": x}
                            for i, s, lc, c, x in zip(ids, sptypes, lumclasses, code, X)]
         self._fine = None
+        self._weakest = None
         self._internal_cv(X_fit, code, lum)
         from . import __version__
 
@@ -1041,6 +1050,13 @@ class Calibration:
             flags.append("peculiar")
             notes.append(f"criteria fit the {sptype} {lumclass} relations worse than 97.5% of the "
                          f"standards did (fit quality {quality:.2f} > {self.limits_['quality_p975']:.2f})")
+        strength = float(np.nansum(np.abs(x[:len(CRITERIA)])))
+        if strength < FEATURELESS * self._weakest_standard():
+            # the hottest types have the weakest lines, so a spectrum without any fits them
+            # within their wide scatter; say that it has no lines instead of quietly calling it O
+            flags.append("peculiar")
+            notes.append(f"no absorption features: summed depth of the criteria {strength:.2f}, under "
+                         f"{FEATURELESS:g} of the weakest standard's (a featureless spectrum; the type means little)")
         names = criteria_names()
         model = _class_means(fine["mean"], fine["offsets"], np.ones(n_all, bool))[gi, li]
         scatter = fine["scatter"][gi]
@@ -1084,6 +1100,13 @@ class Calibration:
             "flags": flags, "notes": notes, "fit_quality": quality, "criteria": criteria,
             "calibration": self.source,
         }
+
+    def _weakest_standard(self):
+        """Smallest summed absolute depth of the depth criteria among the standards."""
+        if getattr(self, "_weakest", None) is None:
+            S = np.array([st["criteria"] for st in self.standards_], float)[:, :len(CRITERIA)]
+            self._weakest = float(np.min(np.nansum(np.abs(S), axis=1)))
+        return self._weakest
 
     def _nearest(self, x, noise, ok, gi, k=3):
         fine = self._fine

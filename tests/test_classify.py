@@ -404,6 +404,18 @@ def test_emission_marked_standards_do_not_shape_the_balmer_relations():
     assert np.array_equal(with_e["mean"][:, mg], without_e["mean"][:, mg])
 
 
+def test_featureless_spectrum_is_flagged_not_quietly_typed():
+    # A spectrum with no lines at all (a blank or featureless object, noise S/N 200): the
+    # hottest types, whose lines are weakest, fit it within their scatter, so without this check
+    # it came out "O5 I" with no word of warning (measured).
+    rng = np.random.default_rng(5)
+    w = np.arange(3600.0, 7400.0, 1.4)
+    res = C.classify(_spectrum(w, 1.0 + rng.normal(0, 0.005, w.size), resolving_power=1200.0, snr=200.0,
+                               path="blank"), rv=0 * u.km / u.s)
+    assert "peculiar" in res["flags"]
+    assert any("no absorption features" in n for n in res["notes"])
+
+
 @pytest.mark.reference
 def test_no_flags_on_plain_standards(jhc_spectra, calibration_without):
     for sid in ("HD116608", "HD66171", "HD26946"):
