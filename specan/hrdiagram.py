@@ -120,6 +120,40 @@ def hr_points(table_or_rows):
     return placed, skipped
 
 
+# Candidate label positions around a point (offset in points, horizontal alignment), tried in turn.
+_LABEL_SPOTS = ((3, 3, "left"), (3, -9, "left"), (-3, 3, "right"), (-3, -9, "right"),
+                (3, 11, "left"), (3, -17, "left"), (-3, 11, "right"), (-3, -17, "right"))
+
+
+def _label_points(ax, placed, fontsize):
+    """Name each star beside its point, moving a label to the first free spot around it.
+
+    Stars of the same type crowd one place on the diagram, and labels written at one fixed
+    offset covered each other. Box sizes are estimated from the font size (a character is
+    about 0.6 em wide), which is enough to keep names apart without drawing twice.
+    """
+    pts = ax.transData.transform([(p["teff_k"], p["m_v_abs"]) for p in placed]) * 72.0 / ax.figure.dpi
+    taken = []
+
+    def free(box):
+        return all(box[2] <= b[0] or box[0] >= b[2] or box[3] <= b[1] or box[1] >= b[3] for b in taken)
+
+    for (px, py), p in sorted(zip(pts, placed), key=lambda t: -t[0][1]):
+        name = p["name"][:20]
+        w, h = 0.6 * fontsize * len(name), fontsize
+        for dx, dy, ha in _LABEL_SPOTS:
+            x0 = px + dx if ha == "left" else px + dx - w
+            box = (x0, py + dy, x0 + w, py + dy + h)
+            if free(box):
+                break
+        else:   # every spot taken: the first one, overlapping
+            dx, dy, ha = _LABEL_SPOTS[0]
+            box = (px + dx, py + dy, px + dx + w, py + dy + h)
+        taken.append(box)
+        ax.annotate(name, (p["teff_k"], p["m_v_abs"]), fontsize=fontsize, xytext=(dx, dy),
+                    textcoords="offset points", ha=ha, zorder=4)
+
+
 def plot_hr(table_or_rows, path, title="HR diagram of the night", label=True, dpi=110):
     """Draw the HR diagram of a set of stars to a PNG file.
 
@@ -170,11 +204,6 @@ def plot_hr(table_or_rows, path, title="HR diagram of the night", label=True, dp
         ax.errorbar(x, y, xerr=np.where(np.isfinite(xe), xe, 0.0), yerr=np.where(np.isfinite(ye), ye, 0.0),
                     fmt="o", ms=4, color="k", ecolor="0.45", elinewidth=0.8, capsize=1.5, zorder=3,
                     label="stars of the night")
-        if label:
-            fs = 7 if len(placed) <= 40 else 5
-            for p in placed:
-                ax.annotate(p["name"][:20], (p["teff_k"], p["m_v_abs"]), fontsize=fs,
-                            xytext=(3, 3), textcoords="offset points", zorder=4)
     else:
         ax.text(0.5, 0.5, "no classified stars", ha="center", va="center", transform=ax.transAxes)
 
@@ -191,6 +220,8 @@ def plot_hr(table_or_rows, path, title="HR diagram of the night", label=True, dp
     ax.xaxis.set_minor_locator(NullLocator())
     ax.xaxis.set_minor_formatter(NullFormatter())
     ax.set_ylim(ally.max() + 1.0, ally.min() - 1.0)
+    if placed and label:
+        _label_points(ax, placed, fontsize=7 if len(placed) <= 40 else 5)
     ax.set_xlabel("effective temperature (K)")
     ax.set_ylabel("absolute visual magnitude $M_V$")
     ax.set_title(title, fontsize=10)

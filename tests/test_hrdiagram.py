@@ -90,3 +90,23 @@ def test_reference_library_on_the_diagram(tmp_path, jhc_catalog):
     out = hrdiagram.plot_hr(Table(rows=rows), tmp_path / "jhc.png")
     assert len(out["plotted"]) == len(jhc_catalog)
     _check_png(out["path"])
+
+
+def test_crowded_labels_do_not_cover_each_other():
+    # Six stars of one type (the common case of a cluster night): every name must stay readable.
+    from matplotlib.backends.backend_agg import FigureCanvasAgg
+    from matplotlib.figure import Figure
+
+    fig = Figure(figsize=(6, 5))
+    FigureCanvasAgg(fig)
+    ax = fig.add_subplot()
+    placed = [{"name": f"CLUSTER-STAR-{i}", "teff_k": 5800.0 + 5 * i, "m_v_abs": 4.7 + 0.02 * i} for i in range(6)]
+    ax.set_xlim(9000, 3000)
+    ax.set_ylim(10, 0)
+    hrdiagram._label_points(ax, placed, fontsize=7)
+    renderer = fig.canvas.get_renderer()
+    boxes = [t.get_window_extent(renderer) for t in ax.texts]
+    assert len(boxes) == 6
+    for i in range(6):
+        for j in range(i + 1, 6):
+            assert not boxes[i].overlaps(boxes[j]), (placed[i]["name"], placed[j]["name"])
