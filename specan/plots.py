@@ -59,6 +59,22 @@ def _line_positions(lines, limit=None):
     return [(float(wave[i]), str(lines[label_col][i]) if label_col else "") for i in index]
 
 
+#: Font size (points) of the line names on the spectrum.
+LINE_LABEL_SIZE = 6
+
+
+def _depth_order(lines, candidates):
+    """Indices of ``candidates`` (from :func:`_line_positions`), deepest line first."""
+    import astropy.units as u
+
+    wave = lines["wave_obs"]
+    wave = np.asarray(wave.to_value(u.AA) if hasattr(wave, "unit") and wave.unit else wave, float)
+    depth = (np.abs(np.nan_to_num(np.asarray(getattr(lines["depth"], "value", lines["depth"]), float)))
+             if "depth" in lines.colnames else np.ones(len(lines)))
+    by_wave = {float(w): d for w, d in zip(wave, depth)}
+    return sorted(range(len(candidates)), key=lambda i: -by_wave.get(candidates[i][0], 0.0))
+
+
 def _draw_spectrum(ax, spectrum, lines, normalized, small=False):
     wave, flux = _spectrum_arrays(spectrum)
     ax.plot(wave, flux, lw=0.5 if small else 0.6, color="k")
@@ -74,10 +90,24 @@ def _draw_spectrum(ax, spectrum, lines, normalized, small=False):
         ax.set_yticks([])
         return
     top = ax.get_ylim()[1]
-    # only the deepest lines are named, or the labels would hide each other
-    for w, label in _line_positions(lines, limit=30):
-        ax.axvline(w, color="tab:blue", lw=0.4, alpha=0.5)
-        ax.text(w, top, label, rotation=90, fontsize=6, ha="center", va="top", color="tab:blue", clip_on=True)
+    # Only the deepest lines are named, each at least a label's width from the others (the
+    # blue of a cool star has a line every few Angstrom, and thirty names written where the
+    # lines fall covered each other); every named line is marked.
+    candidates = _line_positions(lines, limit=120)
+    if candidates:
+        depth_order = _depth_order(lines, candidates)
+        x_pt = ax.transData.transform([(w, 0.0) for w, _ in candidates])[:, 0] * 72.0 / ax.figure.dpi
+        kept = []
+        for i in depth_order:
+            if len(kept) == 30:
+                break
+            if all(abs(x_pt[i] - x_pt[j]) >= 1.3 * LINE_LABEL_SIZE for j in kept):
+                kept.append(i)
+        for i in sorted(kept):
+            w, label = candidates[i]
+            ax.axvline(w, color="tab:blue", lw=0.4, alpha=0.5)
+            ax.text(w, top, label, rotation=90, fontsize=LINE_LABEL_SIZE, ha="center", va="top", color="tab:blue",
+                    clip_on=True)
     ax.set_xlabel("wavelength (Angstrom)")
     ax.set_ylabel("normalised flux" if normalized else "flux")
 
