@@ -10,7 +10,7 @@ from astropy.coordinates import EarthLocation
 
 import specan
 from specan.errors import (CorruptFileError, EmptyFileError, NoWavelengthError, NonMonotonicError,
-                           SpecanError)
+                           ReadError, SpecanError)
 from specan.obsinfo import air_to_vacuum, get_info, vacuum_to_air
 
 N = 1500
@@ -408,3 +408,15 @@ def test_unstandard_site_keywords_are_named_not_guessed(tmp_path):
                                                        "DATE-OBS": "2026-03-14T21:05:30"})))
     assert info.site is None
     assert any("SITELONG=-17 52 45" in w and "--site" in w for w in info.warnings)
+
+
+def test_image_of_several_apertures_is_refused_with_the_fix(tmp_path):
+    # Rows that are apertures (APNUMn cards name each), not bands of one: reading row 1 as "the"
+    # spectrum would silently drop the others, so the reader says what the file is instead.
+    h = fits.Header()
+    h["CTYPE1"], h["CUNIT1"], h["CRVAL1"], h["CDELT1"], h["CRPIX1"] = "AWAV", "Angstrom", 4000.0, 1.0, 1.0
+    h["APNUM1"], h["APNUM2"], h["APNUM3"] = "1 1 10.5 20.5", "2 2 40.1 50.2", "3 3 70.0 80.3"
+    path = tmp_path / "apertures.fits"
+    fits.PrimaryHDU(np.stack([_flux(), _flux(), _flux()]), header=h).writeto(path)
+    with pytest.raises(ReadError, match="3 apertures"):
+        specan.read(path)
