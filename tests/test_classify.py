@@ -49,7 +49,8 @@ def jhc_criteria(jhc_spectra, jhc_catalog):
     cross-validation judges the procedure users get. (Without the velocities, which the
     library's README puts at some tens of km/s, the interleaved 10-fold CV read 76.6%
     within 2 subclasses against 73.4% with them; over 8 random type-stratified fold
-    partitions the two gave 71.8% and 74.2% on average, so the difference is fold noise.)
+    partitions the two gave 71.8% and 74.2% on average, so the difference is fold noise.
+    ``benchmarks/cv_classify.py`` measures these spreads.)
     """
     ids, X, labels = [], [], []
     for row in jhc_catalog:
@@ -184,10 +185,10 @@ def test_cv_median_error_at_most_1_5_subclasses(cross_validation):
 
 
 @pytest.mark.reference
-@pytest.mark.xfail(strict=True, reason="measured 73.4% within 2 subclasses in this 10-fold CV, 74.2% +- 1.8% over 8 "
-                                       "random type-stratified fold partitions (target 80%): late-B supergiants "
-                                       "classed B1.5-B3, early-A stars 3-5 subclasses off, K5-M3 stars (11 in the "
-                                       "library) and G-K dwarfs/giants confused")
+@pytest.mark.xfail(strict=True, reason="measured 73.4% within 2 subclasses in this 10-fold CV, 71.3% +- 1.4% over 8 "
+                                       "random type-stratified fold partitions (benchmarks/cv_classify.py; target "
+                                       "80%): late-B supergiants classed B1.5-B3, early-A stars 3-5 subclasses off, "
+                                       "K5-M3 stars (11 in the library) and G-K dwarfs/giants confused")
 def test_cv_type_within_2_subclasses_for_80_percent(cross_validation):
     # JHC (1984) published types; acceptance: within 2 subclasses for >= 80% of stars
     assert np.mean(np.abs(cross_validation["err"]) <= 2.0) >= 0.80
@@ -201,10 +202,10 @@ def test_cv_type_within_3_subclasses_for_78_percent(cross_validation):
 
 
 @pytest.mark.reference
-@pytest.mark.xfail(strict=True, reason="measured 65.8% (50/76) of B-K stars in the right luminosity group, 64.0% +- "
-                                       "2.0% over 8 random type-stratified fold partitions (target 75%): 11 of 26 "
-                                       "B-K giants classed dwarfs, 8 of 29 dwarfs classed giants at 4.5 A; even at "
-                                       "the published type the model puts 64% in the right group")
+@pytest.mark.xfail(strict=True, reason="measured 65.8% (50/76) of B-K stars in the right luminosity group, 64.1% +- "
+                                       "2.0% over 8 random type-stratified fold partitions (benchmarks/cv_classify.py; "
+                                       "target 75%): 11 of 26 B-K giants classed dwarfs, 8 of 29 dwarfs classed giants "
+                                       "at 4.5 A; given the published type the model puts 62% in the right group")
 def test_cv_luminosity_group_for_75_percent_of_b_to_k(cross_validation):
     # JHC (1984) published classes; acceptance: group (I / II-III / IV-V) right for >= 75% of B-K
     t = cross_validation["table"]
