@@ -129,9 +129,9 @@ def test_sun_spectroscopic_distance(sun_spectrum, v_mag, expected_pc):
     assert abs(res["teff_color_k"] - 5772) < 400  # IAU 2015 B3 nominal solar Teff
 
 
-@pytest.mark.xfail(strict=True, reason="known gap (measured): specan classifies the Kurucz Sun G2 IV but with "
-                   "class probabilities I 0.04, II 0.15, III 0.26, IV 0.28, V 0.27, so the class mixture puts it "
-                   "at ~32 pc (68% range 10-199 pc) instead of 10; needs better luminosity criteria (issue 5)")
+@pytest.mark.xfail(strict=True, reason="known gap (measured): specan classifies the Kurucz Sun G2 V but with "
+                   "class probabilities I 0.04, II 0.14, III 0.25, IV 0.28, V 0.28, so the class mixture puts it "
+                   "at ~31 pc (68% range 10-186 pc) instead of 10; needs better luminosity criteria (issue 5)")
 def test_sun_distance_with_the_classifier_type(sun_spectrum):
     # Same acceptance with the type specan itself assigns to the Kurucz Sun, once the classifier exists.
     classify = pytest.importorskip("specan.classify", reason="specan.classify not available yet")
