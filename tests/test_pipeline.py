@@ -616,3 +616,12 @@ def test_one_bad_photometry_line_costs_one_star(tmp_path):
     assert "photometry for 'S1' not used" in str(rows["S1"]["warnings"])
     assert "not a number" in str(rows["S1"]["warnings"])
     assert "photometry" not in str(rows["S0"]["warnings"])
+
+
+def test_run_summary_counts_flags():
+    # the terminal summary of `specan run` says how many stars raise each flag, most frequent first
+    from specan.cli.run import flag_counts
+
+    cat = Table({"flags": np.ma.array(["low_snr,emission", "", "emission", "x"], mask=[False, False, False, True])})
+    assert flag_counts(cat) == [("emission", 2), ("low_snr", 1)]
+    assert flag_counts(Table({"file": ["a"]})) == []
