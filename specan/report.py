@@ -20,7 +20,7 @@ from pathlib import Path
 
 import numpy as np
 
-__all__ = ["write_report", "report_rows"]
+__all__ = ["write_report", "report_rows", "flag_counts"]
 
 #: Catalogue columns shown in the page (those present), in this order.
 SHOWN = (
@@ -40,6 +40,17 @@ SHOWN = (
     ("reason", "reason"),
     ("warnings", "warnings"),
 )
+
+def flag_counts(catalogue):
+    """[(flag, number of rows raising it)], most frequent first, from a night catalogue."""
+    counts = {}
+    if "flags" in catalogue.colnames:
+        for value in catalogue["flags"]:
+            text = "" if np.ma.is_masked(value) or value is None else str(value)
+            for flag in {f.strip() for f in text.split(",") if f.strip()}:
+                counts[flag] = counts.get(flag, 0) + 1
+    return sorted(counts.items(), key=lambda t: (-t[1], t[0]))
+
 
 _STYLE = """
 body{font-family:system-ui,sans-serif;margin:1.5em;color:#222}
@@ -240,6 +251,10 @@ def write_report(catalogue, out_dir, path, diagram=None, stages=None) -> Path:
         emit(f'<p id="summary">{len(catalogue)} inputs: {summary}. '
                      f'Created {_esc(catalogue.meta.get("created_utc", ""))} by specan '
                      f'{_esc(catalogue.meta.get("specan_version", ""))}.</p>')
+        flagged = flag_counts(catalogue)
+        if flagged:
+            emit('<p id="flags">Flags raised: '
+                 + ", ".join(f'<span class="flag">{_esc(k)}</span> {n}' for k, n in flagged) + ".</p>")
         if stages:
             ran = [n for n, why in stages.items() if why is None]
             emit(f'<p id="stages">Stages run: {_esc(", ".join(ran) or "none")}.')

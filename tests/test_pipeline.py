@@ -10,6 +10,7 @@ scripts/make_demo_night.py.
 from __future__ import annotations
 
 import json
+import re
 import os
 import signal
 import subprocess
@@ -452,6 +453,8 @@ def test_demo_every_input_one_row_and_broken_file_reason(demo):
             assert row["status"] in ("ok", "partial"), (t["file"], row["reason"])
     assert summary.failed == 1
     assert (out / "report.html").is_file() and (out / "night_diagram.png").is_file()
+    # the report's head counts the flags (the planted fast star raises high_velocity)
+    assert re.search(r'<p id="flags">Flags raised:.*high_velocity</span> 1', (out / "report.html").read_text())
 
 
 @pytest.mark.slow
@@ -619,8 +622,8 @@ def test_one_bad_photometry_line_costs_one_star(tmp_path):
 
 
 def test_run_summary_counts_flags():
-    # the terminal summary of `specan run` says how many stars raise each flag, most frequent first
-    from specan.cli.run import flag_counts
+    # `specan run`'s terminal summary and the report say how many stars raise each flag
+    from specan.report import flag_counts
 
     cat = Table({"flags": np.ma.array(["low_snr,emission", "", "emission", "x"], mask=[False, False, False, True])})
     assert flag_counts(cat) == [("emission", 2), ("low_snr", 1)]

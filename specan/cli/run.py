@@ -21,19 +21,6 @@ def _formats(ctx, param, value):
 MAX_LISTED = 20
 
 
-def flag_counts(catalogue):
-    """[(flag, number of rows raising it)], most frequent first, from a night catalogue."""
-    import numpy as np
-
-    counts = {}
-    if "flags" in catalogue.colnames:
-        for value in catalogue["flags"]:
-            text = "" if np.ma.is_masked(value) or value is None else str(value)
-            for flag in {f.strip() for f in text.split(",") if f.strip()}:
-                counts[flag] = counts.get(flag, 0) + 1
-    return sorted(counts.items(), key=lambda t: (-t[1], t[0]))
-
-
 @click.command(name="run")
 @click.argument("paths", nargs=-1, required=True)
 @click.option("--out", "out_dir", required=True, type=click.Path(file_okay=False),
@@ -85,6 +72,8 @@ def command(paths, out_dir, jobs, dask_address, force, formats, no_plots, photom
     counts = ", ".join(f"{n} {k}" for k, n in sorted(summary.counts.items())) or "nothing to do"
     click.echo(f"{len(summary.catalogue)} inputs ({counts}; {summary.reused} already current) "
                f"in {summary.seconds:.1f} s")
+    from ..report import flag_counts
+
     flagged = flag_counts(summary.catalogue)
     if flagged:   # what deserves a second look, by flag (the report lists those stars first)
         click.echo("flags: " + ", ".join(f"{k} {n}" for k, n in flagged))
