@@ -267,9 +267,10 @@ def _read_rows(out):
 def test_killed_run_then_rerun_gives_complete_catalogue(tmp_path, sig):
     night = tmp_path / "night"
     night.mkdir()
-    # read + prepare take ~10 ms a file, so the run must still have many files to go when the
-    # signal lands (with 8 it once finished first on a busy machine)
-    n = 24
+    # read + prepare take 2-10 ms a file, so the run must still have many files to go when the
+    # signal lands: with 8, and later with 24, it once finished its loop before the signal came
+    # (done == n, measured); 120 files leave hundreds of milliseconds of work
+    n = 120
     for i in range(n):
         write_spectrum(night / f"s{i}.fits", name=f"S{i}", seed=i, n=800)
     out = tmp_path / "out"
