@@ -25,7 +25,10 @@ __all__ = [
 TEMPERATURE_CLASSES = "OBAFGKM"
 LUMINOSITY_CLASSES = ("I", "II", "III", "IV", "V")
 
-_SPTYPE_RE = re.compile(r"^\s*(?:MP|SD|D)?\s*([OBAFGKM])\s*(\d+(?:\.\d+)?)?", re.IGNORECASE)
+# Prefixes: MP (metal-poor, as the JHC catalogue writes it), sd (subdwarf) and the Mount Wilson
+# dwarf prefix d (from memory). An upper-case D is not a prefix: "DA2" is a white dwarf, whose
+# number is not an MK subclass, and must not read as A2.
+_SPTYPE_RE = re.compile(r"^\s*(?:[Mm][Pp]|[Ss][Dd]|d)?\s*([OBAFGKMobafgkm])\s*(\d+(?:\.\d+)?)?")
 _LUM_RE = re.compile(r"(?<![A-Z])(V|IV|III|II|I)(?:a|ab|b)?(?![A-Z])")
 
 

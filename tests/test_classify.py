@@ -375,6 +375,16 @@ def test_emission_flag_with_the_emission_star_among_the_standards(jhc_spectra):
     assert "emission" in res["flags"]
 
 
+def test_type_prefixes_and_white_dwarfs():
+    # MK notation (Gray & Corbally 2009, from memory): MP metal-poor (as the JHC catalogue writes
+    # it), sd subdwarf, d the Mount Wilson dwarf prefix. A white dwarf type (DA2, DB) has no MK
+    # subclass and must be refused, not read as A2 or B: a calibration catalogue then skips it.
+    assert sptype_to_code("MPF4") == 34.0 and sptype_to_code("sdB5") == 15.0 and sptype_to_code("dG2") == 42.0
+    for wd in ("DA2", "DB", "DZ8"):
+        with pytest.raises(ValueError):
+            sptype_to_code(wd)
+
+
 def test_emission_marked_standards_do_not_shape_the_balmer_relations():
     # MK notation (Gray & Corbally 2009, from memory): a suffix e marks emission lines, f the
     # emission of Of stars, pec is only peculiar.
