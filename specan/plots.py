@@ -41,7 +41,7 @@ def _spectrum_arrays(spectrum):
 
 
 def _line_positions(lines, limit=None):
-    """(wavelength in Angstrom, label) of detected lines (the ``limit`` deepest), or []."""
+    """(wavelength in Angstrom, label) of detected lines, deepest first (the ``limit`` deepest), or []."""
     if lines is None or len(lines) == 0:
         return []
     if "wave_obs" not in lines.colnames:  # the observed wavelength, as specan.lines.measure gives it
@@ -53,26 +53,14 @@ def _line_positions(lines, limit=None):
     detected = np.asarray(lines["detected"], bool) if "detected" in lines.colnames else np.ones(len(lines), bool)
     label_col = "id" if "id" in lines.colnames else ("species" if "species" in lines.colnames else None)
     index = np.flatnonzero(detected & np.isfinite(wave))
-    if limit is not None and index.size > limit and "depth" in lines.colnames:
+    if "depth" in lines.colnames:
         depth = np.abs(np.nan_to_num(np.asarray(getattr(lines["depth"], "value", lines["depth"]), float)[index]))
-        index = np.sort(index[np.argsort(depth)[::-1][:limit]])
-    return [(float(wave[i]), str(lines[label_col][i]) if label_col else "") for i in index]
+        index = index[np.argsort(-depth, kind="stable")]
+    return [(float(wave[i]), str(lines[label_col][i]) if label_col else "") for i in index[:limit]]
 
 
 #: Font size (points) of the line names on the spectrum.
 LINE_LABEL_SIZE = 6
-
-
-def _depth_order(lines, candidates):
-    """Indices of ``candidates`` (from :func:`_line_positions`), deepest line first."""
-    import astropy.units as u
-
-    wave = lines["wave_obs"]
-    wave = np.asarray(wave.to_value(u.AA) if hasattr(wave, "unit") and wave.unit else wave, float)
-    depth = (np.abs(np.nan_to_num(np.asarray(getattr(lines["depth"], "value", lines["depth"]), float)))
-             if "depth" in lines.colnames else np.ones(len(lines)))
-    by_wave = {float(w): d for w, d in zip(wave, depth)}
-    return sorted(range(len(candidates)), key=lambda i: -by_wave.get(candidates[i][0], 0.0))
 
 
 def _draw_spectrum(ax, spectrum, lines, normalized, small=False):
@@ -95,10 +83,9 @@ def _draw_spectrum(ax, spectrum, lines, normalized, small=False):
     # lines fall covered each other); every named line is marked.
     candidates = _line_positions(lines, limit=120)
     if candidates:
-        depth_order = _depth_order(lines, candidates)
         x_pt = ax.transData.transform([(w, 0.0) for w, _ in candidates])[:, 0] * 72.0 / ax.figure.dpi
         kept = []
-        for i in depth_order:
+        for i in range(len(candidates)):   # deepest first
             if len(kept) == 30:
                 break
             if all(abs(x_pt[i] - x_pt[j]) >= 1.3 * LINE_LABEL_SIZE for j in kept):
