@@ -11,6 +11,7 @@ written to ``warnings``.
 from __future__ import annotations
 
 import dataclasses
+import functools
 from dataclasses import dataclass, field
 
 import astropy.units as u
@@ -181,14 +182,8 @@ def air_to_vacuum(wavelength):
 
     w = u.Quantity(wavelength)
     n_min = _refraction_at_formula_limit()
-    low = w.to_value(u.AA) < _FORMULA_MIN_AA / n_min      # the limit, as an air wavelength
-    if not np.any(low):
-        return air_to_vac(w, method=AIR_VACUUM_FORMULA, scheme="inversion").to(w.unit)
-    out = np.atleast_1d(w * n_min).astype(float)
-    high = ~np.atleast_1d(low)
-    if high.any():
-        out[high] = air_to_vac(np.atleast_1d(w)[high], method=AIR_VACUUM_FORMULA, scheme="inversion").to(w.unit)
-    return out.reshape(w.shape)
+    return _below_limit_held(w, w.to_value(u.AA) < _FORMULA_MIN_AA / n_min, w * n_min,   # limit in air
+                             lambda q: air_to_vac(q, method=AIR_VACUUM_FORMULA, scheme="inversion"))
 
 
 def vacuum_to_air(wavelength):
@@ -207,14 +202,8 @@ def vacuum_to_air(wavelength):
     from specutils.utils.wcs_utils import vac_to_air
 
     w = u.Quantity(wavelength)
-    low = w.to_value(u.AA) < _FORMULA_MIN_AA
-    if not np.any(low):
-        return vac_to_air(w, method=AIR_VACUUM_FORMULA).to(w.unit)
-    out = np.atleast_1d(w / _refraction_at_formula_limit()).astype(float)
-    high = ~np.atleast_1d(low)
-    if high.any():
-        out[high] = vac_to_air(np.atleast_1d(w)[high], method=AIR_VACUUM_FORMULA).to(w.unit)
-    return out.reshape(w.shape)
+    return _below_limit_held(w, w.to_value(u.AA) < _FORMULA_MIN_AA, w / _refraction_at_formula_limit(),
+                             lambda q: vac_to_air(q, method=AIR_VACUUM_FORMULA))
 
 
 #: Shortest wavelength (Angstrom) for which specutils accepts the Morton (2000) formula. Below
@@ -225,10 +214,22 @@ def vacuum_to_air(wavelength):
 _FORMULA_MIN_AA = 2500.0
 
 
+@functools.lru_cache(maxsize=1)
 def _refraction_at_formula_limit() -> float:
     from specutils.utils.wcs_utils import refraction_index
 
     return float(refraction_index(_FORMULA_MIN_AA * u.AA, method=AIR_VACUUM_FORMULA))
+
+
+def _below_limit_held(w, low, held, formula):
+    """``formula(w)`` where the formula is defined, ``held`` (converted with the index of the limit) below."""
+    if not np.any(low):
+        return formula(w).to(w.unit)
+    out = np.atleast_1d(held).astype(float)
+    high = ~np.atleast_1d(low)
+    if high.any():
+        out[high] = formula(np.atleast_1d(w)[high]).to(w.unit)
+    return out.reshape(w.shape)
 
 
 def wavelength_in(spectrum, medium: str) -> np.ndarray:
