@@ -6,6 +6,7 @@ pixels masked, S/N measured, flux divided by a robust continuum.
 
 from __future__ import annotations
 
+import functools
 import warnings
 
 import astropy.units as u
@@ -282,6 +283,7 @@ def _noise_without_errors(flux, half_width=100):
     return np.where(np.isfinite(weight), weight * s6, 0.0)
 
 
+@functools.lru_cache(maxsize=64)   # k is the same for every spectrum of a set-up; the integral is not free
 def _normal_maximum_moments(k):
     """Mean and standard deviation of the largest of ``k`` standard normal deviates.
 
@@ -309,14 +311,13 @@ class _PSpline:
     """
 
     def __init__(self, x, lam, knot_spacing):
+        from scipy import sparse
         from scipy.interpolate import BSpline
 
         lo, hi = float(x[0]), float(x[-1])
         n_int = max(int(np.ceil((hi - lo) / knot_spacing)), 1)
         h = (hi - lo) / n_int if hi > lo else 1.0
         self.knots = lo + h * np.arange(-3, n_int + 4)
-        from scipy import sparse
-
         self.basis = BSpline.design_matrix(np.clip(x, lo, hi), self.knots, 3).tocsr()
         ncoef = self.basis.shape[1]
         # second differences of the coefficients, kept sparse: a dense (ncoef, ncoef) matrix

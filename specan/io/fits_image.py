@@ -124,7 +124,7 @@ def read(path, hdul=None, hdu=None, wave_unit=None, **_):
         # is the spectrum; with BANDIDn cards naming them, a band called "sigma..." is its
         # standard deviation (the layout long-slit extraction packages write, common practice)
         bands = data if data.ndim == 2 else (data[:, 0, :] if data.ndim == 3 and data.shape[1] == 1 else None)
-        apertures = sum(1 for k in range(1, 1000) if f"APNUM{k}" in h.header) if "APNUM2" in h.header else 1
+        apertures = sum(1 for key in h.header if key.startswith("APNUM"))
         if squeezed.ndim == 1:
             data = squeezed
         elif apertures > 1 and data.ndim == 2:
