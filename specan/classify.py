@@ -457,11 +457,14 @@ def spectrum_criteria(spectrum, resolution=4.5 * u.AA, rv=None, measure_velocity
 
     # Rest frame: criteria bands are 10-40 A wide, so a shift of 1000 km/s (13 A at 4000 A)
     # would move features out of their bands.
+    lines_asked = False   # whether the narrowest lines were already asked for R (and how they answered)
     if rv is None and measure_velocity:
         try:
             from . import velocity
 
             vres = velocity.measure(spectrum, errors="td", barycentric=False)
+            # without R in the metadata the velocity stage has asked the narrowest lines already
+            lines_asked = not info.resolving_power
             if resolving_power is None and vres.get("resolving_power_source") == "narrowest lines":
                 resolving_power = vres["resolving_power"]
             rv = vres.get("rv_topo")
@@ -495,7 +498,7 @@ def spectrum_criteria(spectrum, resolution=4.5 * u.AA, rv=None, measure_velocity
         fwhm_in = wave / float(info.resolving_power)
     elif assume_resolution is not None:
         fwhm_in = float(u.Quantity(assume_resolution, u.AA).value)
-    elif (r_est := resolving_power or estimate_resolving_power(spectrum)) is not None:
+    elif (r_est := resolving_power or (None if lines_asked else estimate_resolving_power(spectrum))) is not None:
         fwhm_in = wave / r_est
         notes.append(f"resolving power unknown: R ~ {r_est:.0f} estimated from the narrowest lines "
                      "(give the resolving power to the reader to avoid the estimate)")
@@ -857,13 +860,15 @@ class Calibration:
         Calibration
             ``self``, fitted.
         """
-        X = []
-        for spec in spectra:
-            X.append(spectrum_criteria(spec, self.resolution, measure_velocity=self.measure_velocity,
-                                       assume_resolution=self.resolution)["values"])
+        X = [self._standard_criteria(spec) for spec in spectra]
         if ids is None:
             ids = [get_info(s).object or f"standard {i + 1}" for i, s in enumerate(spectra)]
         return self.fit_criteria(np.array(X), labels, ids=ids)
+
+    def _standard_criteria(self, spectrum):
+        """A standard's criteria, measured at this calibration's resolution (which it is taken to have)."""
+        return spectrum_criteria(spectrum, self.resolution, measure_velocity=self.measure_velocity,
+                                 assume_resolution=self.resolution)["values"]
 
     def fit_criteria(self, X, labels, ids=None):
         """Learn the relations from already measured criteria (rows in :func:`criteria_names` order).
@@ -1327,8 +1332,7 @@ def calibrate_catalog(catalog, source=None, reader_options=None, progress=None, 
                 label = (parts[0], parts[1] if len(parts) > 1 else "")
             _parse_labels([label])   # refuses a type or class it cannot read
             spectrum = read(path, **(reader_options or {}))
-            values = spectrum_criteria(spectrum, cal.resolution, measure_velocity=cal.measure_velocity,
-                                       assume_resolution=cal.resolution)["values"]
+            values = cal._standard_criteria(spectrum)
         except (SpecanError, ValueError) as exc:
             skipped.append({"file": str(row["file"]), "reason": str(getattr(exc, "reason", exc))})
             continue
