@@ -574,6 +574,20 @@ def test_cli_classify_json(jhc1984):
     assert row["sptype"].startswith("G")   # published G2 V (in the default calibration's standards)
 
 
+def _calibrate_from_rows(rows, tmp_path):
+    """Write a catalogue of ``rows`` (CSV lines), run ``specan calibrate`` on it (no velocities):
+    (click result, the calibration written, its path)."""
+    from click.testing import CliRunner
+
+    from specan.cli import cli
+
+    cat = tmp_path / "standards.csv"
+    cat.write_text("\n".join(rows) + "\n")
+    out_file = tmp_path / "mine.json"
+    res = CliRunner().invoke(cli, ["calibrate", str(cat), "--out", str(out_file), "--no-velocity"], obj={})
+    return res, (C.Calibration.load(out_file) if out_file.is_file() else None), out_file
+
+
 @pytest.mark.reference
 def test_cli_calibrate_then_classify(jhc1984, jhc_catalog, tmp_path):
     from click.testing import CliRunner
@@ -587,13 +601,9 @@ def test_cli_calibrate_then_classify(jhc1984, jhc_catalog, tmp_path):
     for row in jhc_catalog[::6]:
         rel = os.path.relpath(jhc1984 / str(row["file"]), tmp_path)
         rows.append(f"{rel},{row['sptype']},{row['lumclass']},{row['id']}")
-    cat = tmp_path / "standards.csv"
-    cat.write_text("\n".join(rows) + "\n")
-    out_file = tmp_path / "mine.json"
-    res = CliRunner().invoke(cli, ["calibrate", str(cat), "--out", str(out_file), "--no-velocity"], obj={})
+    res, cal, out_file = _calibrate_from_rows(rows, tmp_path)
     assert res.exit_code == 0, res.output
     assert "16 standards" in res.output
-    cal = C.Calibration.load(out_file)
     assert len(cal.standards_) == 16
     f = str(jhc1984 / "spectra" / "HD26946.csv")
     res = CliRunner().invoke(cli, ["classify", "--json", "--calibration", str(out_file), f], obj={})
@@ -606,20 +616,12 @@ def test_calibrate_with_an_mk_column_skips_bad_rows_and_says_so(jhc1984, jhc_cat
     # An observer's catalogue: one "mk" column, absolute paths, a missing file and a type that
     # is not MK. The good rows are fitted; the others are listed (stderr, the file) and counted
     # in the exit status, as the other commands count failed files.
-    from click.testing import CliRunner
-
-    from specan.cli import cli
-
     rows = ["file,mk"] + [f"{jhc1984 / str(r['file'])},{r['mk']}" for r in jhc_catalog[::6]]
     rows += [f"{tmp_path / 'gone.fits'},G2 V", f"{jhc1984 / str(jhc_catalog[0]['file'])},Q9 X"]
-    cat = tmp_path / "mine.csv"
-    cat.write_text("\n".join(rows) + "\n")
-    out_file = tmp_path / "mine.json"
-    res = CliRunner().invoke(cli, ["calibrate", str(cat), "--out", str(out_file), "--no-velocity"], obj={})
+    res, cal, _ = _calibrate_from_rows(rows, tmp_path)
     assert res.exit_code == 2, res.output
     assert "16 standards" in res.output
     assert "skipped standard" in res.output and "gone.fits" in res.output and "'X'" in res.output
-    cal = C.Calibration.load(out_file)
     assert len(cal.standards_) == 16 and len(cal.skipped_) == 2
 
 

@@ -95,6 +95,20 @@ def test_fits_image_pc_matrix_scales_the_step(tmp_path):
     assert got[1] - got[0] == pytest.approx(2.0)
 
 
+def _linear_header(crval, cdelt):
+    """A linear air-wavelength WCS in Angstrom whose first pixel is at ``crval``."""
+    h = fits.Header()
+    h["CTYPE1"], h["CUNIT1"], h["CRVAL1"], h["CDELT1"], h["CRPIX1"] = "AWAV", "Angstrom", crval, cdelt, 1.0
+    return h
+
+
+def _mef_file(path):
+    """An empty primary HDU, the spectrum in extension FLUX and its error in ERR; the path."""
+    fits.HDUList([fits.PrimaryHDU(), fits.ImageHDU(_flux(), header=_linear_header(5000.0, 0.5), name="FLUX"),
+                  fits.ImageHDU(np.full(N, 0.02), name="ERR")]).writeto(path)
+    return path
+
+
 def test_fits_image_error_extension_and_multi_extension(tmp_path):
     h = fits.Header()
     h["CTYPE1"], h["CUNIT1"], h["CRVAL1"], h["CDELT1"] = "AWAV", "Angstrom", 5000.0, 0.5
@@ -114,11 +128,7 @@ def test_gzipped_fits_read_like_plain_fits(tmp_path):
     # .fits.gz (README, pipeline suffixes): specan's own FITS reader, options included, as astropy opens it
     import gzip
 
-    h = fits.Header()
-    h["CTYPE1"], h["CUNIT1"], h["CRVAL1"], h["CDELT1"], h["CRPIX1"] = "AWAV", "Angstrom", 5000.0, 0.5, 1.0
-    plain = tmp_path / "mef.fits"
-    fits.HDUList([fits.PrimaryHDU(), fits.ImageHDU(_flux(), header=h, name="FLUX"),
-                  fits.ImageHDU(np.full(N, 0.02), name="ERR")]).writeto(plain)
+    plain = _mef_file(tmp_path / "mef.fits")
     packed = tmp_path / "mef.fits.gz"
     packed.write_bytes(gzip.compress(plain.read_bytes()))
     a, b = specan.read(plain), specan.read(packed, hdu="FLUX")
@@ -341,11 +351,7 @@ def test_fits_without_final_padding_is_read_with_a_warning(tmp_path):
 
 def test_fits_cut_inside_an_extension_header_is_refused(tmp_path):
     # astropy drops an HDU whose header is cut, with a warning; specan must not read on silently
-    h = fits.Header()
-    h["CTYPE1"], h["CUNIT1"], h["CRVAL1"], h["CDELT1"], h["CRPIX1"] = "AWAV", "Angstrom", 5000.0, 0.5, 1.0
-    plain = tmp_path / "mef.fits"
-    fits.HDUList([fits.PrimaryHDU(), fits.ImageHDU(_flux(), header=h, name="FLUX"),
-                  fits.ImageHDU(np.full(N, 0.02), name="ERR")]).writeto(plain)
+    plain = _mef_file(tmp_path / "mef.fits")
     data = plain.read_bytes()
     with fits.open(plain) as hdul:
         err_header = hdul.fileinfo(2)["hdrLoc"]
@@ -380,8 +386,7 @@ def test_multi_band_image_of_one_aperture(tmp_path, shape):
     flux = _flux()
     bands = np.stack([flux, flux * 1.1, np.full(N, 0.3), np.full(N, 0.02)])
     data = bands if shape == "bands" else bands[:, None, :]
-    h = fits.Header()
-    h["CTYPE1"], h["CUNIT1"], h["CRVAL1"], h["CDELT1"], h["CRPIX1"] = "AWAV", "Angstrom", 4000.0, 1.0, 1.0
+    h = _linear_header(4000.0, 1.0)
     for k, name in enumerate(["spectrum - background fit, weights variance, clean no",
                               "raw - background fit, weights none, clean no",
                               "background - background fit", "sigma - background fit, weights variance, clean no"]):
@@ -413,8 +418,7 @@ def test_unstandard_site_keywords_are_named_not_guessed(tmp_path):
 def test_image_of_several_apertures_is_refused_with_the_fix(tmp_path):
     # Rows that are apertures (APNUMn cards name each), not bands of one: reading row 1 as "the"
     # spectrum would silently drop the others, so the reader says what the file is instead.
-    h = fits.Header()
-    h["CTYPE1"], h["CUNIT1"], h["CRVAL1"], h["CDELT1"], h["CRPIX1"] = "AWAV", "Angstrom", 4000.0, 1.0, 1.0
+    h = _linear_header(4000.0, 1.0)
     h["APNUM1"], h["APNUM2"], h["APNUM3"] = "1 1 10.5 20.5", "2 2 40.1 50.2", "3 3 70.0 80.3"
     path = tmp_path / "apertures.fits"
     fits.PrimaryHDU(np.stack([_flux(), _flux(), _flux()]), header=h).writeto(path)

@@ -75,6 +75,14 @@ def small_night(folder, count=3):
     return folder
 
 
+def plain_night(folder, count, pixels=1500):
+    """``count`` good spectra s0.fits... (objects S0...), nothing else."""
+    folder.mkdir(parents=True, exist_ok=True)
+    for i in range(count):
+        write_spectrum(folder / f"s{i}.fits", name=f"S{i}", seed=i, n=pixels)
+    return folder
+
+
 @pytest.fixture
 def fixed_code(monkeypatch):
     """Freeze the code fingerprint: others editing specan meanwhile must not look like a code change."""
@@ -155,10 +163,7 @@ def test_run_one_row_per_input_errors_with_reasons(tmp_path, fixed_code, capsys)
 
 
 def test_stage_that_raises_becomes_error_row(tmp_path, fixed_code, monkeypatch):
-    night = tmp_path / "night"
-    night.mkdir()
-    for i in range(2):
-        write_spectrum(night / f"s{i}.fits", name=f"S{i}", seed=i)
+    night = plain_night(tmp_path / "night", 2)
     real = pipeline._stage_function
 
     def patched(name):
@@ -226,10 +231,7 @@ def test_catalogue_formats_read_back(tmp_path, fixed_code):
 
 
 def test_rerun_skips_current_inputs_unless_forced_or_changed(tmp_path, fixed_code):
-    night = tmp_path / "night"
-    night.mkdir()
-    for i in range(3):
-        write_spectrum(night / f"s{i}.fits", name=f"S{i}", seed=i)
+    night = plain_night(tmp_path / "night", 3)
     out = tmp_path / "out"
     first = pipeline.run([night], out, plots=False, stages=BASIC)
     assert first.reused == 0
@@ -265,14 +267,11 @@ def _read_rows(out):
 @pytest.mark.slow
 @pytest.mark.parametrize("sig", [signal.SIGTERM, signal.SIGKILL])
 def test_killed_run_then_rerun_gives_complete_catalogue(tmp_path, sig):
-    night = tmp_path / "night"
-    night.mkdir()
     # read + prepare take 2-10 ms a file, so the run must still have many files to go when the
     # signal lands: with 8, and later with 24, it once finished its loop before the signal came
     # (done == n, measured); 120 files leave hundreds of milliseconds of work
     n = 120
-    for i in range(n):
-        write_spectrum(night / f"s{i}.fits", name=f"S{i}", seed=i, n=800)
+    night = plain_night(tmp_path / "night", n, pixels=800)
     out = tmp_path / "out"
     cmd = [sys.executable, "-m", "specan", "run", str(night), "--out", str(out), "--no-plots", *BASIC_CLI]
     proc = subprocess.Popen(cmd, cwd=ROOT, stdout=subprocess.PIPE, stderr=subprocess.PIPE)
@@ -311,11 +310,8 @@ def test_killed_run_then_rerun_gives_complete_catalogue(tmp_path, sig):
 def test_interrupt_just_after_a_record_is_written_counts_that_record(tmp_path, monkeypatch):
     # The race CI once hit: the signal lands after a record reached the disk but before the run
     # noted it, so the catalogue said 22 not run while only 21 were. The disk must win.
-    night = tmp_path / "night"
-    night.mkdir()
     n = 5
-    for i in range(n):
-        write_spectrum(night / f"s{i}.fits", name=f"S{i}", seed=i, n=600)
+    night = plain_night(tmp_path / "night", n, pixels=600)
     out = tmp_path / "out"
     real_write = pipeline._atomic_write_bytes
     written = []
@@ -607,10 +603,7 @@ def test_demo_calibration_is_what_its_script_fits(tmp_path):
 def test_one_bad_photometry_line_costs_one_star(tmp_path):
     # A typo in one line of the photometry file must not take the night's distances with it:
     # the star it belongs to says why it has none, the others get theirs.
-    night = tmp_path / "night"
-    night.mkdir()
-    for i in range(2):
-        write_spectrum(night / f"s{i}.fits", name=f"S{i}", seed=i)
+    night = plain_night(tmp_path / "night", 2)
     phot = tmp_path / "phot.csv"
     phot.write_text("object,V,V_err\nS0,9.7,0.02\nS1,9.x,0.02\n")
     res = pipeline.run([night], tmp_path / "out", plots=False, photometry=phot,
