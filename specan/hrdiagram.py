@@ -130,7 +130,8 @@ def _label_points(ax, placed, fontsize):
 
     Stars of the same type crowd one place on the diagram, and labels written at one fixed
     offset covered each other. Box sizes are estimated from the font size (a character is
-    about 0.6 em wide), which is enough to keep names apart without drawing twice.
+    about 0.6 em wide in sans-serif faces, common practice), which is enough to keep names apart
+    without drawing twice.
     """
     pts = ax.transData.transform([(p["teff_k"], p["m_v_abs"]) for p in placed]) * 72.0 / ax.figure.dpi
     taken = []
