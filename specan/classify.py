@@ -52,9 +52,12 @@ import numpy as np
 from scipy.integrate import cumulative_trapezoid
 
 from .errors import AnalysisError, ReadError
+from .doppler import doppler_factor
 from .lines import estimate_resolving_power
+from .mkscales import teff_from_type
 from .mktypes import code_to_sptype, lumclass_to_number, marks_emission, number_to_lumclass, sptype_to_code
 from .obsinfo import get_info, wavelength_in
+from .resolution import smooth_to_fwhm
 
 #: Flags :func:`classify` may raise (the ``flags`` list holds those raised).
 FLAGS = ("low_snr", "out_of_range", "peculiar", "emission", "composite")
@@ -353,40 +356,6 @@ def measure_criteria(wave, flux, mask=None, snr=None, pixel=None, min_good=0.5):
 # From a Spectrum to criteria: rest frame, calibration resolution, S/N
 # ---------------------------------------------------------------------------
 
-def _smooth_to_fwhm(wave, flux, good, fwhm_in, fwhm_out):
-    """Gaussian smoothing from an instrumental FWHM ``fwhm_in(wave)`` to a constant ``fwhm_out`` (A).
-
-    Hand-written rather than :func:`specan.prepare.degrade` because the
-    calibration's resolution is constant in Angstrom (a grating spectrograph,
-    like the reference library), while ``degrade`` works at constant resolving
-    power. The flux goes onto a uniform grid; the kernel width varies with
-    wavelength when the input is at constant R, so the flux is smoothed at a few
-    kernel widths and each pixel interpolates between the two bracketing ones.
-    Returns (grid, smoothed flux, good-pixel mask on the grid).
-    """
-    from scipy.ndimage import gaussian_filter1d
-
-    step = float(np.median(np.diff(wave)))
-    grid = np.arange(wave[0], wave[-1] + step / 2, step)
-    fg = np.interp(grid, wave[good], flux[good])
-    gg = np.interp(grid, wave, good.astype(float))
-    fin = np.broadcast_to(np.interp(grid, wave, np.broadcast_to(fwhm_in, wave.shape)), grid.shape)
-    # FWHM = 2 sqrt(2 ln 2) sigma = 2.3548 sigma for a Gaussian (common practice)
-    sig = np.sqrt(np.clip(fwhm_out ** 2 - fin ** 2, 0.0, None)) / 2.3548 / step   # pixels
-    if np.all(sig < 0.3):
-        return grid, fg, gg > 0.5
-    levels = np.unique(np.round(np.linspace(sig.min(), sig.max(), 5), 3))
-    smooth = np.array([gaussian_filter1d(fg, lv, mode="nearest") if lv > 0.3 else fg for lv in levels])
-    gsm = gaussian_filter1d(gg, float(levels.max()), mode="nearest")
-    if len(levels) == 1:
-        return grid, smooth[0], gsm > 0.5
-    j = np.clip(np.searchsorted(levels, sig) - 1, 0, len(levels) - 2)
-    t = np.clip((sig - levels[j]) / (levels[j + 1] - levels[j]), 0.0, 1.0)
-    idx = np.arange(grid.size)
-    out = smooth[j, idx] * (1.0 - t) + smooth[j + 1, idx] * t
-    return grid, out, gsm > 0.5
-
-
 def _snr_of(spectrum, info):
     """S/N per pixel: the carried value, else DER_SNR (Stoehr et al. 2008) via specutils."""
     if info.snr is not None and np.isfinite(info.snr) and info.snr > 0:
@@ -477,8 +446,6 @@ def spectrum_criteria(spectrum, resolution=4.5 * u.AA, rv=None, measure_velocity
     if rv is not None:
         v = float(u.Quantity(rv, u.km / u.s).value)
         if np.isfinite(v):
-            from .velocity import doppler_factor
-
             # the air/vacuum distinction of the factor is below 3e-4 of the shift, negligible here
             wave = wave / doppler_factor(v * u.km / u.s)
         else:
@@ -508,7 +475,7 @@ def spectrum_criteria(spectrum, resolution=4.5 * u.AA, rv=None, measure_velocity
     else:
         fwhm_in = 2.5 * pixel
         notes.append(f"resolving power unknown: assumed 2.5 pixels per resolution element ({2.5 * pixel:.2g} A)")
-    grid, fs, gs = _smooth_to_fwhm(wave, flux, good, fwhm_in, fwhm_out)
+    grid, fs, gs = smooth_to_fwhm(wave, flux, good, fwhm_in, fwhm_out)
     values, noise = measure_criteria(grid, fs, ~gs, snr=snr, pixel=pixel)
     return {"values": values, "noise": noise, "snr": snr,
             "rv": None if rv is None else u.Quantity(rv, u.km / u.s), "notes": notes}
@@ -1013,8 +980,6 @@ class Calibration:
         dict
             As :func:`classify`.
         """
-        from . import physics
-
         fine = self._check()
         x = np.asarray(values, float)
         noise = np.zeros_like(x) if noise is None else np.nan_to_num(np.asarray(noise, float))
@@ -1084,12 +1049,12 @@ class Calibration:
             notes.append(f"blue and red criteria disagree by {split:.1f} subclasses "
                          "(two stars of different type?)")
         # result
-        # Teff: the published type-Teff scale of each class (specan.physics), averaged over the
+        # Teff: the published type-Teff scale of each class (specan.mkscales), averaged over the
         # class probabilities; the error adds the spread between the classes' values.
         tk = np.empty(len(_LUMS))
         te = np.empty(len(_LUMS))
         for n, lc in enumerate(_LUMS):
-            t, e = physics.teff_from_type(code, number_to_lumclass(lc), code_err)
+            t, e = teff_from_type(code, number_to_lumclass(lc), code_err)
             tk[n], te[n] = t.to_value(u.K), e.to_value(u.K)
         teff_value = float(np.sum(pl * tk))
         teff = teff_value * u.K
@@ -1382,7 +1347,7 @@ def classify(spectrum, calibration=None, rv=None, resolving_power=None):
         ``sptype`` ("G2"), ``lumclass`` ("V"), ``mk`` ("G2 V"), ``code`` (O0=0 ... M0=60),
         ``subclass_err`` (1 sigma, subclasses), ``lumclass_prob`` (class -> probability),
         ``teff`` and ``teff_err`` (Quantity K: the type-Teff scale of each class from
-        :func:`specan.physics.teff_from_type` -- Pecaut & Mamajek 2013 for dwarfs and the other
+        :func:`specan.mkscales.teff_from_type` -- Pecaut & Mamajek 2013 for dwarfs and the other
         scales named there -- averaged over ``lumclass_prob``, the spread added to the error),
         ``nearest_standards`` (list of {id, mk, distance}), ``flags`` (list of the raised
         ones among :data:`FLAGS`), ``notes`` (list of str), ``fit_quality``,

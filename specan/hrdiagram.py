@@ -3,7 +3,7 @@
 Stars are placed by effective temperature (decreasing to the right, by
 convention) and absolute magnitude M_V (bright at the top), with error bars, over
 the main-sequence, giant and supergiant loci of the same calibration table the
-numbers come from (``specan/data/mk_scales.ecsv`` via :mod:`specan.physics`), so
+numbers come from (``specan/data/mk_scales.ecsv`` via :mod:`specan.mkscales`), so
 a star of type X and class Y sits on the locus of class Y by construction unless
 its Teff or M_V came from elsewhere (colour temperature, parallax).
 """
@@ -16,7 +16,7 @@ from pathlib import Path
 import astropy.units as u
 import numpy as np
 
-from . import physics
+from . import mkscales
 
 __all__ = ["hr_points", "plot_hr"]
 
@@ -99,11 +99,11 @@ def hr_points(table_or_rows):
             if (teff is None or m_v is None) and code is not None:
                 cls = lum or "V"
                 if teff is None:
-                    t, te = physics.teff_from_type(code, cls, _value(row, "subclass_err") or 0.0)
+                    t, te = mkscales.teff_from_type(code, cls, _value(row, "subclass_err") or 0.0)
                     teff, teff_err = float(t.to_value(u.K)), float(te.to_value(u.K))
                     origin = "from type"
                 if m_v is None and lum is not None:
-                    m, me = physics.absolute_magnitude(code, cls, _value(row, "subclass_err") or 0.0)
+                    m, me = mkscales.absolute_magnitude(code, cls, _value(row, "subclass_err") or 0.0)
                     m_v, m_v_err = float(m.to_value(u.mag)), float(me.to_value(u.mag))
                     origin = "from type"
         except ValueError as err:
@@ -188,7 +188,7 @@ def plot_hr(table_or_rows, path, title="HR diagram of the night", label=True, dp
     ax = fig.add_subplot()
     ax.set_xscale("log")
 
-    scales = physics.load_scales()
+    scales = mkscales.load_scales()
     loci = {}
     for cls, text, colour in _LOCI:
         rows = scales[scales["lumclass"] == cls]

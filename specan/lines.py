@@ -21,7 +21,6 @@ column is chosen to match.
 
 from __future__ import annotations
 
-import warnings
 
 import astropy.units as u
 import numpy as np
@@ -33,16 +32,16 @@ from scipy.optimize import least_squares
 from scipy.signal import find_peaks, peak_prominences
 from scipy.special import voigt_profile
 
-from .errors import AnalysisError
 from .linelist import load_bands, load_linelist
 from .obsinfo import get_info
-from .velocity import doppler_factor
+from . import resolution
+from .doppler import doppler_factor
+from .resolution import DEFAULT_PIXELS_PER_FWHM, GAUSS_FWHM, narrowest_line_width, normalised_arrays
 
 __all__ = ["identify", "measure", "band_indices", "analyse", "cayrel_error", "doppler_factor",
            "estimate_resolving_power"]
 
 C_KMS = _c.to_value(u.km / u.s)
-GAUSS_FWHM = 2.0 * np.sqrt(2.0 * np.log(2.0))  # FWHM / sigma of a Gaussian
 
 # Matched-filter significance above which a feature counts as detected (common practice: 3-5 sigma).
 DETECT_SIGMA = 4.0
@@ -50,9 +49,6 @@ DETECT_SIGMA = 4.0
 # continuum ripples and flat-field residuals of a few 0.1% are significant at very high
 # S/N but are not lines (common practice: ~1% systematic floor at these resolutions).
 MIN_DEPTH = 0.01
-# Pixels per resolution element assumed when neither the caller nor the file gives R and the
-# spectrum has too few clean lines to measure it (common practice: ~2-3 pixels per FWHM).
-DEFAULT_PIXELS_PER_FWHM = 2.5
 
 
 # ----------------------------------------------------------------------------- helpers
@@ -82,39 +78,17 @@ def cayrel_error(fwhm, pixel, snr):
 class _Data:
     """Plain arrays of one normalised spectrum plus everything derived once."""
 
-    def __init__(self, spectrum, resolving_power=None, width_only=False):
+    def __init__(self, spectrum, resolving_power=None):
         info = get_info(spectrum)
         self.info = info
         self.medium = info.medium
-        self.wave = np.asarray(spectrum.spectral_axis.to_value(u.AA), float)
-        flux = np.asarray(spectrum.flux.value, float)
-        bad = ~np.isfinite(flux)
-        if spectrum.mask is not None:
-            bad |= np.asarray(spectrum.mask, bool)
-        sigma = None
-        if spectrum.uncertainty is not None:
-            sigma = np.asarray(spectrum.uncertainty.represent_as(StdDevUncertainty).array, float)
-            bad |= ~np.isfinite(sigma) | (sigma <= 0)
-        self.good = ~bad
-        if self.good.sum() < 10:
-            raise AnalysisError("fewer than 10 usable pixels: no lines can be measured", info.path)
-        # masked pixels: interpolate the flux so integrals and filters are defined; weight 0 below
-        idx = np.flatnonzero(self.good)
-        self.flux = np.where(bad, np.interp(self.wave, self.wave[idx], flux[idx]), flux)
-        if sigma is None:
-            sigma = np.full(flux.shape, self._dersnr_noise())
-            self.noise_source = "DER_SNR"
-        else:
-            self.noise_source = "error array"
-        # floor: noiseless models would give infinite weights
-        self.sigma = np.where(bad, np.inf, np.maximum(sigma, 1e-5))
-        self.weight = np.where(bad, 0.0, 1.0 / self.sigma**2)
+        arrays = normalised_arrays(spectrum)
+        self.wave, self.flux, self.sigma, self.good, self.noise_source = arrays
+        self.weight = np.where(self.good, 1.0 / self.sigma**2, 0.0)
         self.dx = np.diff(_pixel_edges(self.wave))  # pixel widths, Angstrom
         self.r_source = "argument"
         r = resolving_power if resolving_power is not None else info.resolving_power
-        narrow = self.narrow = self._narrow_line_width()
-        if width_only:   # all estimate_resolving_power needs: no R, widths or matched filter
-            return
+        narrow = self.narrow = narrowest_line_width(self.wave, self.flux, self.sigma, self.good)
         if r is None:
             if narrow is not None:
                 r, self.r_source = 1.0 / narrow, "estimated from the narrowest lines"
@@ -135,81 +109,6 @@ class _Data:
         self.line_fwhm = self.fwhm * self.broadening
         self.sig_pix = self.line_fwhm / GAUSS_FWHM / self.dx
         self._filter()
-
-    def _dersnr_noise(self):
-        """Noise per pixel of the normalised flux by DER_SNR (Stoehr et al. 2008, via specutils)."""
-        from specutils import Spectrum
-        from specutils.analysis import snr_derived
-
-        g = self.good
-        packed = Spectrum(spectral_axis=self.wave[g] * u.AA, flux=self.flux[g] * u.dimensionless_unscaled)
-        with warnings.catch_warnings():
-            warnings.simplefilter("ignore")
-            snr = float(snr_derived(packed).value)
-        med = float(np.median(self.flux[g]))
-        if not np.isfinite(snr) or snr <= 0:
-            return 1e-5
-        return max(med / snr, 1e-5)
-
-    def _narrow_line_width(self):
-        """FWHM / lambda of the narrowest clean lines, or None.
-
-        Log-parabola (Caruana) fits below the local crest level to up to 40 isolated features of
-        middling significance found with a 1-pixel matched filter (the strongest
-        tenth are left out: saturated and pressure-broadened lines); the 10th
-        percentile of their FWHM / lambda (10th: at low resolution most features are
-        blends; measured on the Kurucz solar model). Lines are never narrower than the
-        instrument, so this is the instrument's width where lines are
-        unresolved, and the stars' own broadening (rotation) where they are not.
-        """
-        dx = np.median(np.diff(self.wave))
-        d = np.where(self.good, 1.0 - self.flux, 0.0)
-        w = np.where(self.good, 1.0 / self.sigma**2, 0.0)
-        s = 1.0
-        num = gaussian_filter1d(w * d, s, mode="nearest")
-        den = gaussian_filter1d(w, s / np.sqrt(2.0), mode="nearest")
-        sig = num / np.sqrt(np.maximum(den, 1e-300))
-        peaks, _ = find_peaks(sig, height=max(5.0, float(np.nanpercentile(sig, 50))), distance=3)
-        # isolated peaks only (no other peak within 5 pixels), and not the strongest tenth:
-        # those are the broad (saturated, pressure-broadened) lines
-        if peaks.size > 2:
-            gap = np.diff(peaks)
-            iso = np.ones(peaks.size, bool)
-            iso[1:] &= gap >= 5
-            iso[:-1] &= gap >= 5
-            peaks = peaks[iso]
-        if peaks.size < 5:
-            return None
-        order = np.argsort(sig[peaks])[::-1]
-        peaks = peaks[order[peaks.size // 10:][:40]]
-        fwhms = []
-        for p in peaks:
-            lo, hi = max(p - 5, 0), min(p + 6, self.wave.size)
-            if hi - lo < 7:
-                continue
-            # depth below the local upper level (crowded spectra sit below the continuum)
-            j = p - lo
-            seg = self.flux[lo:hi]
-            depth = min(seg[:j + 1].max(), seg[j:].max()) - seg
-            if depth[j] <= 0:
-                continue
-            # core points above half depth, at least the three around the minimum
-            core = np.flatnonzero(depth >= 0.5 * depth[j])
-            core = core[np.abs(core - j) <= max(1, np.abs(core - j).min() + 3)]
-            if core.size < 3:
-                core = np.arange(j - 1, j + 2)
-            dd = depth[core]
-            if core.min() < 0 or core.max() >= depth.size or np.any(dd <= 0):
-                continue
-            # a Gaussian's log is a parabola: ln d = c - (x - x0)^2 / (2 sigma^2) (Caruana's method)
-            xx = self.wave[lo:hi][core] - self.wave[p]
-            a2 = np.polyfit(xx, np.log(dd), 2)[0]
-            if a2 >= 0:
-                continue
-            fwhms.append(GAUSS_FWHM * np.sqrt(-0.5 / a2) / self.wave[p])
-        if len(fwhms) < 5:
-            return None
-        return float(max(np.percentile(fwhms, 10), 1.5 * dx / np.median(self.wave)))
 
     def _filter(self):
         """Matched filter significance, weighted smoothed flux and its noise, at each pixel's width.
@@ -270,28 +169,24 @@ class _Data:
 def estimate_resolving_power(spectrum):
     """Resolving power from the widths of the narrowest lines, or None when they give none.
 
-    For spectra whose metadata state no resolving power (the velocity and
-    classification stages use it before falling back on assumptions).
+    :func:`specan.resolution.estimate_resolving_power` for a spectrum that may not be
+    continuum-normalised yet (then :func:`specan.prepare.prepare` is applied first).
 
     Parameters
     ----------
     spectrum : specutils.Spectrum
-        Normalised or not (then :func:`specan.prepare.prepare` is applied).
 
     Returns
     -------
     float or None
-        R = lambda / FWHM. Measured: 1847 on the Kurucz solar model at R = 2000;
-        about 750-800 on the JHC (1984) spectra, whose 4.5 A FWHM is R ~ 1100 at
-        5000 A (at that resolution most features are blends and read broad).
+        R = lambda / FWHM.
     """
     from .errors import SpecanError
 
     try:
-        narrow = _Data(_normalised(spectrum), width_only=True).narrow
+        return resolution.estimate_resolving_power(_normalised(spectrum))
     except SpecanError:
         return None
-    return None if narrow is None else 1.0 / narrow
 
 
 def _hydrogen_model(data, fits, pred, fwhm_at, is_h, detected, ep_low):

@@ -19,7 +19,8 @@ import numpy as np
 from astropy.coordinates import EarthLocation, SkyCoord
 from astropy.time import Time
 
-__all__ = ["ObsInfo", "get_info", "air_to_vacuum", "vacuum_to_air", "AIR_VACUUM_FORMULA"]
+__all__ = ["ObsInfo", "get_info", "air_to_vacuum", "vacuum_to_air", "AIR_VACUUM_FORMULA", "wavelength_in",
+           "spectrum_arrays", "replace_parts"]
 
 META_KEY = "specan"
 
@@ -241,3 +242,32 @@ def wavelength_in(spectrum, medium: str) -> np.ndarray:
     if medium == "vacuum":
         return np.asarray(air_to_vacuum(w).to_value(u.AA))
     return np.asarray(vacuum_to_air(w).to_value(u.AA))
+
+
+def spectrum_arrays(spectrum):
+    """Wavelength (Angstrom, the spectrum's medium), flux, sigma (or None) and mask as plain arrays.
+
+    The mask is a fresh boolean array (True = bad), all False when the spectrum has none.
+    """
+    from astropy.nddata import StdDevUncertainty
+
+    wave = spectrum.spectral_axis.to_value(u.AA)
+    flux = np.asarray(spectrum.flux.value, dtype=float)
+    err = None
+    if spectrum.uncertainty is not None:
+        err = np.asarray(spectrum.uncertainty.represent_as(StdDevUncertainty).array, dtype=float)
+    mask = np.zeros(flux.shape, bool) if spectrum.mask is None else np.asarray(spectrum.mask, bool).copy()
+    return wave, flux, err, mask
+
+
+def replace_parts(spectrum, flux=None, err=None, mask=None, unit=None, meta=None):
+    """A new Spectrum on the same spectral axis with some parts replaced (plain arrays in ``unit``)."""
+    from astropy.nddata import StdDevUncertainty
+    from specutils import Spectrum
+
+    unit = spectrum.flux.unit if unit is None else unit
+    flux_q = spectrum.flux if flux is None else flux * unit
+    unc = spectrum.uncertainty if err is None else StdDevUncertainty(err * unit)
+    new_meta = dict(spectrum.meta) if meta is None else meta
+    return Spectrum(spectral_axis=spectrum.spectral_axis, flux=flux_q, uncertainty=unc,
+                    mask=spectrum.mask if mask is None else mask, meta=new_meta)

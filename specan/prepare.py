@@ -11,16 +11,14 @@ import warnings
 
 import astropy.units as u
 import numpy as np
-from astropy.constants import c as _c
-from astropy.nddata import StdDevUncertainty
 
 from .errors import AnalysisError
-from .obsinfo import META_KEY, get_info, vacuum_to_air
+from .obsinfo import META_KEY, get_info, replace_parts, spectrum_arrays, vacuum_to_air
+from .resolution import degrade
 
 __all__ = ["TELLURIC_BANDS_AIR", "mask_bad", "mask_telluric", "snr", "fit_continuum", "normalize",
            "degrade", "prepare"]
 
-C_KMS = _c.to_value(u.km / u.s)
 #: Continuum anchors this many standard deviations (of a maximum of noisy pixels) below the
 #: fit keep full weight. Measured with error arrays, S/N 10-300: on flat spectra the fit's
 #: bias is +0.2 sigma at 1.0 against +1.1 with no tolerance and 0.0 at 2.0; on a synthetic
@@ -50,29 +48,6 @@ def _default_telluric_bands():
 TELLURIC_BANDS_AIR = _default_telluric_bands()
 
 
-def _arrays(spectrum):
-    """Wavelength (Angstrom), flux, sigma (or None) and mask as float arrays."""
-    wave = spectrum.spectral_axis.to_value(u.AA)
-    flux = np.asarray(spectrum.flux.value, dtype=float)
-    err = None
-    if spectrum.uncertainty is not None:
-        err = np.asarray(spectrum.uncertainty.represent_as(StdDevUncertainty).array, dtype=float)
-    mask = np.zeros(flux.shape, bool) if spectrum.mask is None else np.asarray(spectrum.mask, bool).copy()
-    return wave, flux, err, mask
-
-
-def _with(spectrum, flux=None, err=None, mask=None, unit=None, meta=None):
-    """A new Spectrum sharing the spectral axis, with some parts replaced."""
-    from specutils import Spectrum
-
-    unit = spectrum.flux.unit if unit is None else unit
-    flux_q = spectrum.flux if flux is None else flux * unit
-    unc = spectrum.uncertainty if err is None else StdDevUncertainty(err * unit)
-    new_meta = dict(spectrum.meta) if meta is None else meta
-    return Spectrum(spectral_axis=spectrum.spectral_axis, flux=flux_q, uncertainty=unc,
-                    mask=spectrum.mask if mask is None else mask, meta=new_meta)
-
-
 def mask_bad(spectrum):
     """Mask non-finite, non-positive and zero-weight pixels.
 
@@ -85,8 +60,8 @@ def mask_bad(spectrum):
     specutils.Spectrum
         Same data, ``mask`` True where the pixel is unusable.
     """
-    wave, flux, err, mask = _arrays(spectrum)
-    return _with(spectrum, mask=mask | _bad_pixels(flux, err, get_info(spectrum).normalized))
+    wave, flux, err, mask = spectrum_arrays(spectrum)
+    return replace_parts(spectrum, mask=mask | _bad_pixels(flux, err, get_info(spectrum).normalized))
 
 
 def _bad_pixels(flux, err, normalized):
@@ -116,9 +91,9 @@ def mask_telluric(spectrum, bands=TELLURIC_BANDS_AIR):
     -------
     specutils.Spectrum
     """
-    wave, flux, err, mask = _arrays(spectrum)
+    wave, flux, err, mask = spectrum_arrays(spectrum)
     mask |= telluric_mask(wave, get_info(spectrum).medium, bands)
-    return _with(spectrum, mask=mask)
+    return replace_parts(spectrum, mask=mask)
 
 
 def snr(spectrum):
@@ -132,7 +107,7 @@ def snr(spectrum):
     dict
         ``{"snr": DER_SNR value, "snr_err_array": median flux/sigma or None}``.
     """
-    wave, flux, err, mask = _arrays(spectrum)
+    wave, flux, err, mask = spectrum_arrays(spectrum)
     return _snr_arrays(wave, flux, err, mask, get_info(spectrum).path)
 
 
@@ -192,7 +167,7 @@ def fit_continuum(spectrum, smoothing=300.0 * u.AA, window=12.0 * u.AA, below_we
     astropy.units.Quantity
         Continuum at every pixel, in the flux unit.
     """
-    wave, flux, err, mask = _arrays(spectrum)
+    wave, flux, err, mask = spectrum_arrays(spectrum)
     good = ~mask & np.isfinite(flux)
     if good.sum() < 20:
         raise AnalysisError("fewer than 20 usable pixels: cannot fit a continuum", get_info(spectrum).path)
@@ -363,7 +338,7 @@ def normalize(spectrum, continuum=None, **fit_options):
     """
     if continuum is None:
         continuum = fit_continuum(spectrum, **fit_options)
-    wave, flux, err, mask = _arrays(spectrum)
+    wave, flux, err, mask = spectrum_arrays(spectrum)
     c = np.asarray(u.Quantity(continuum).to_value(spectrum.flux.unit), float)
     bad = ~np.isfinite(c) | (c <= 0)
     with np.errstate(divide="ignore", invalid="ignore"):
@@ -374,62 +349,7 @@ def normalize(spectrum, continuum=None, **fit_options):
     info.normalized = True
     meta[META_KEY] = info
     meta["continuum"] = u.Quantity(continuum)
-    return _with(spectrum, flux=nflux, err=nerr, mask=mask | bad, unit=u.dimensionless_unscaled, meta=meta)
-
-
-def degrade(spectrum, resolving_power, from_resolving_power=None):
-    """Convolve to a lower resolving power with a Gaussian in log wavelength.
-
-    The kernel's FWHM in velocity is c * sqrt(1/R_out^2 - 1/R_in^2) (Gaussians add in
-    quadrature). The flux is interpolated onto a uniform log-wavelength grid, smoothed
-    with ``scipy.ndimage.gaussian_filter1d`` and interpolated back onto the original
-    pixels (linear interpolation done with numpy: this is on hot paths).
-
-    Parameters
-    ----------
-    spectrum : specutils.Spectrum
-    resolving_power : float
-        Target R = lambda / FWHM.
-    from_resolving_power : float, optional
-        The spectrum's own R; defaults to ``info.resolving_power``, else treated as infinite.
-
-    Returns
-    -------
-    specutils.Spectrum
-        Same pixels, degraded flux; ``info.resolving_power`` set to the target.
-    """
-    from scipy.ndimage import gaussian_filter1d
-
-    info = get_info(spectrum)
-    r_in = from_resolving_power or info.resolving_power
-    r_out = float(resolving_power)
-    if r_in is not None and r_in <= r_out:
-        return spectrum
-    fwhm_kms = C_KMS * np.sqrt(1.0 / r_out**2 - (0.0 if r_in is None else 1.0 / r_in**2))
-    wave, flux, err, mask = _arrays(spectrum)
-    good = ~mask
-    if good.sum() < 4:
-        raise AnalysisError("too few usable pixels to degrade", info.path)
-    lw = np.log(wave)
-    # Native sampling: a coarser grid would alias lines narrower than the kernel away.
-    dlog = float(np.min(np.diff(lw)))
-    grid = np.arange(lw[0], lw[-1] + dlog / 2, dlog)
-    fg = np.interp(grid, lw[good], flux[good])
-    sigma_pix = fwhm_kms / C_KMS / dlog / 2.3548
-    sm = gaussian_filter1d(fg, sigma_pix, mode="nearest")
-    nflux = np.interp(lw, grid, sm)
-    nerr = None
-    if err is not None:
-        # Smoothing over n_eff independent pixels lowers the per-pixel noise by sqrt(n_eff)
-        # (approximate: neighbouring output pixels become correlated).
-        pix_kms = C_KMS * np.median(np.diff(lw)) if lw.size > 1 else fwhm_kms
-        n_eff = max(1.0, 2.0 * np.sqrt(np.pi) * (fwhm_kms / 2.3548) / pix_kms)
-        nerr = np.where(np.isfinite(err), err / np.sqrt(n_eff), np.inf)
-    meta = dict(spectrum.meta)
-    new_info = info.copy()
-    new_info.resolving_power = r_out
-    meta[META_KEY] = new_info
-    return _with(spectrum, flux=nflux, err=nerr, meta=meta)
+    return replace_parts(spectrum, flux=nflux, err=nerr, mask=mask | bad, unit=u.dimensionless_unscaled, meta=meta)
 
 
 def prepare(spectrum, telluric=True, continuum=True, **fit_options):
@@ -456,7 +376,7 @@ def prepare(spectrum, telluric=True, continuum=True, **fit_options):
     if info.normalized:
         return spectrum
     # One pass over the arrays (each Spectrum construction costs ~8 ms in specutils).
-    wave, flux, err, mask = _arrays(spectrum)
+    wave, flux, err, mask = spectrum_arrays(spectrum)
     mask |= _bad_pixels(flux, err, normalized=False)
     if telluric:
         mask |= telluric_mask(wave, info.medium)
@@ -467,7 +387,7 @@ def prepare(spectrum, telluric=True, continuum=True, **fit_options):
         info.warn(f"low S/N ({info.snr:.1f} per pixel by DER_SNR)")
     meta = dict(spectrum.meta)
     meta[META_KEY] = info
-    spec = _with(spectrum, mask=mask, meta=meta)
+    spec = replace_parts(spectrum, mask=mask, meta=meta)
     if continuum:
         spec = normalize(spec, **fit_options)
     return spec

@@ -201,7 +201,7 @@ def _assumptions_html(catalogue) -> str:
                  "not state their medium are taken as air (see each row's warnings).")
     items.append(_esc(IERS_NOTE) + ". Velocities are barycentric where time, pointing and site are known, "
                  "otherwise topocentric and flagged no_barycentric.")
-    from .velocity import ESCAPE_SPEED, HIGH_VELOCITY
+    from .frames import ESCAPE_SPEED, HIGH_VELOCITY
 
     items.append("Galactic rest frame: astropy's Galactocentric defaults (v4.0); high_velocity above "
                  f"{HIGH_VELOCITY.to_value('km/s'):.0f} km/s, unbound_candidate above "

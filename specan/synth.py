@@ -29,7 +29,8 @@ from scipy.special import erfcx, voigt_profile
 
 from .mktypes import lumclass_to_number, sptype_to_code
 from .obsinfo import META_KEY, ObsInfo, air_to_vacuum
-from .velocity import doppler_factor as _doppler_factor
+from .doppler import doppler_factor as _doppler_factor
+from .mkscales import teff_from_type
 
 __all__ = [
     "spectrum",
@@ -373,8 +374,6 @@ def _model_flux(wvac_obs, code, lumnum, resolving_power, rv_kms, vbroad_kms, emi
 
 
 def _teff(code, lumclass):
-    from .physics import teff_from_type
-
     teff, _ = teff_from_type(code, lumclass)
     return float(u.Quantity(teff, u.K).value)
 

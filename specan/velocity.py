@@ -38,13 +38,21 @@ from pathlib import Path
 
 import astropy.units as u
 import numpy as np
-from astropy.constants import c as _c
 from scipy import fft as sfft
 from scipy.interpolate import make_interp_spline
 from scipy.ndimage import distance_transform_edt, gaussian_filter1d
 
+from . import templates
+from ._offline import IERS_NOTE
+from .doppler import C_KMS, doppler_factor, shift_to_rest, velocity_from_factor
+from .doppler import velocity_kms as _kms
 from .errors import AnalysisError, SpecanError
-from .obsinfo import META_KEY, get_info, wavelength_in
+from .frames import (ESCAPE_SPEED, HIGH_VELOCITY, barycentric_correction, galactic_frame_note,
+                     galactic_rest_frame_velocity, missing_for_barycentric)
+from .mktypes import code_to_sptype, parse_mk, sptype_to_code
+from .obsinfo import get_info, wavelength_in
+from . import resolution
+from .resolution import FWHM_TO_SIGMA
 
 __all__ = [
     "measure",
@@ -57,196 +65,8 @@ __all__ = [
     "ESCAPE_SPEED",
 ]
 
-C_KMS = _c.to_value(u.km / u.s)
 #: Order of the spline that resamples spectra onto the ln-lambda grid.
 _SPLINE_K = 3
-FWHM_TO_SIGMA = 1.0 / (2.0 * math.sqrt(2.0 * math.log(2.0)))
-
-#: Default |v_GRF| above which a star is flagged ``high_velocity`` (common practice).
-HIGH_VELOCITY = 300.0 * u.km / u.s
-#: Default local escape speed: Piffl et al. (2014, A&A 562, A91), 533 km/s (from memory).
-ESCAPE_SPEED = 533.0 * u.km / u.s
-
-
-# ---------------------------------------------------------------------------
-# Doppler conversions
-# ---------------------------------------------------------------------------
-def doppler_factor(rv, convention="relativistic"):
-    """Wavelength ratio 1 + z = lambda_obs / lambda_rest of a radial velocity.
-
-    Parameters
-    ----------
-    rv : astropy.units.Quantity
-        Velocity, positive receding (scalar or array).
-    convention : {"relativistic", "optical"}
-        ``relativistic``: sqrt((1 + beta) / (1 - beta)); ``optical``: 1 + v/c.
-
-    Returns
-    -------
-    numpy.ndarray or float
-    """
-    beta = u.Quantity(rv, u.km / u.s).to_value(u.km / u.s) / C_KMS
-    if convention == "optical":
-        return 1.0 + beta
-    if convention != "relativistic":
-        raise ValueError(f"convention must be 'relativistic' or 'optical', not {convention!r}")
-    return np.sqrt((1.0 + beta) / (1.0 - beta))
-
-
-def velocity_from_factor(factor, convention="relativistic"):
-    """Radial velocity of a wavelength ratio 1 + z (inverse of :func:`doppler_factor`).
-
-    Returns
-    -------
-    astropy.units.Quantity
-        km/s.
-    """
-    f = np.asarray(factor, dtype=float)
-    if convention == "optical":
-        beta = f - 1.0
-    elif convention == "relativistic":
-        beta = (f * f - 1.0) / (f * f + 1.0)
-    else:
-        raise ValueError(f"convention must be 'relativistic' or 'optical', not {convention!r}")
-    return beta * C_KMS * (u.km / u.s)
-
-
-def _kms(factor):
-    return float(velocity_from_factor(factor).value)
-
-
-# ---------------------------------------------------------------------------
-# Frames
-# ---------------------------------------------------------------------------
-def _missing_for_barycentric(info):
-    missing = []
-    if info.time_mid is None:
-        missing.append("observation time (header DATE-OBS with EXPTIME, or MJD-OBS)")
-    if info.ra_deg is None or info.dec_deg is None:
-        missing.append("pointing (header RA/DEC, or the --ra/--dec options)")
-    if info.site is None:
-        missing.append("observatory site (header OBSGEO-X/Y/Z or OBSGEO-B/L/H, or the --site option)")
-    return missing
-
-
-def barycentric_correction(info):
-    """Barycentric velocity correction at mid-exposure, by astropy.
-
-    Parameters
-    ----------
-    info : specan.obsinfo.ObsInfo
-        Needs ``time_mid``, ``ra_deg``/``dec_deg`` (with ``radesys``) and ``site``.
-
-    Returns
-    -------
-    astropy.units.Quantity
-        ``SkyCoord.radial_velocity_correction(kind="barycentric", obstime=info.time_mid,
-        location=info.site)`` in km/s: add it to a topocentric velocity (as
-        (1 + z_b) = (1 + z_obs)(1 + v_corr/c)).
-
-    Raises
-    ------
-    specan.errors.MetadataError
-        Naming what is missing and the keyword or option that supplies it.
-    """
-    from .errors import MetadataError
-
-    missing = _missing_for_barycentric(info)
-    if missing:
-        raise MetadataError("no barycentric correction: missing " + "; ".join(missing), info.path)
-    corr = info.coord.radial_velocity_correction(kind="barycentric", obstime=info.time_mid, location=info.site)
-    return corr.to(u.km / u.s)
-
-
-def _xyz(vec):
-    """km/s components of a Cartesian representation or differential."""
-    q = vec.d_xyz if hasattr(vec, "d_xyz") else vec.xyz
-    return q.to_value(u.km / u.s)
-
-
-@functools.lru_cache(maxsize=1)
-def _galcen():
-    from astropy.coordinates import Galactocentric, galactocentric_frame_defaults
-
-    params = galactocentric_frame_defaults.get_from_registry("v4.0")
-    refs = params.get("references", {})
-    frame = Galactocentric(**params["parameters"])
-    v = _xyz(frame.galcen_v_sun)
-    text = (f"Galactic rest frame: astropy Galactocentric 'v4.0' parameters, v_sun = "
-            f"({v[0]:.2f}, {v[1]:.2f}, {v[2]:.2f}) km/s"
-            f" ({'; '.join(f'{k}: {r}' for k, r in refs.items() if k in ('galcen_v_sun', 'galcen_distance'))})")
-    return frame, text
-
-
-def galactic_rest_frame_velocity(rv, coord):
-    """Line-of-sight velocity in the Galactic rest frame: ``rv`` plus the Sun's motion projected.
-
-    Parameters
-    ----------
-    rv : astropy.units.Quantity
-        Barycentric radial velocity.
-    coord : astropy.coordinates.SkyCoord
-        Direction of the star.
-
-    Returns
-    -------
-    astropy.units.Quantity
-        v_GRF in km/s, with astropy's Galactocentric "v4.0" defaults (solar motion
-        Drimmel & Poggio 2018 / Reid & Brunthaler 2004, R0 GRAVITY 2018).
-    """
-    icrs = coord.icrs
-    ra, dec = icrs.ra.rad, icrs.dec.rad
-    toward = np.array([np.cos(dec) * np.cos(ra), np.cos(dec) * np.sin(ra), np.sin(dec)])
-    return (u.Quantity(rv, u.km / u.s).value + float(_sun_velocity_icrs() @ toward)) * (u.km / u.s)
-
-
-@functools.lru_cache(maxsize=1)
-def _sun_velocity_icrs():
-    """The Sun's velocity in the Galactic rest frame, on ICRS axes (km/s), computed once.
-
-    A point at rest at the Galactic centre, seen from the barycentre, moves at minus the
-    Sun's velocity; astropy's Galactocentric transformation gives it on ICRS axes.
-    """
-    from astropy.coordinates import CartesianDifferential, CartesianRepresentation, SkyCoord
-
-    frame, _ = _galcen()
-    rest = CartesianRepresentation([0.0, 0.0, 0.0] * u.kpc,
-                                   differentials=CartesianDifferential([0.0, 0.0, 0.0] * u.km / u.s))
-    return -SkyCoord(rest, frame=frame).icrs.velocity.d_xyz.to_value(u.km / u.s)
-
-
-def shift_to_rest(spectrum, rv):
-    """Shift a spectrum to its rest frame (relativistic Doppler).
-
-    The division by 1 + z is done on vacuum wavelengths and the axis converted back
-    to the spectrum's medium, so the result is exact in air too.
-
-    Parameters
-    ----------
-    spectrum : specutils.Spectrum
-    rv : astropy.units.Quantity
-        Velocity of the spectrum (as measured, e.g. ``measure(s)["rv_topo"]``).
-
-    Returns
-    -------
-    specutils.Spectrum
-        Same flux, uncertainty and mask; ``meta`` copied with a new ObsInfo noting the shift.
-    """
-    from specutils import Spectrum
-
-    from .obsinfo import vacuum_to_air
-
-    info = get_info(spectrum)
-    unit = spectrum.spectral_axis.unit
-    f = float(doppler_factor(rv))
-    wvac = wavelength_in(spectrum, "vacuum") / f
-    w = wvac if info.medium == "vacuum" else vacuum_to_air(wvac * u.AA).to_value(u.AA)
-    meta = dict(spectrum.meta)
-    new = info.copy()
-    new.warn(f"shifted to rest by {u.Quantity(rv, u.km / u.s).value:.2f} km/s")
-    meta[META_KEY] = new
-    return Spectrum(flux=spectrum.flux, spectral_axis=(w * u.AA).to(unit, equivalencies=u.spectral()),
-                    uncertainty=spectrum.uncertainty, mask=spectrum.mask, meta=meta)
 
 
 # ---------------------------------------------------------------------------
@@ -443,36 +263,10 @@ def _cover_taper(valid, ntap=8):
 
 
 @functools.lru_cache(maxsize=160)  # the 14-type grid and refinements for a few instrument set-ups
-def _synthetic_template(sptype, lumclass, resolving_power, ln0, step, n, kind="synth", hp_sigma=None):
-    from . import synth
-
-    grid = ln0 + step * np.arange(n)
-    if kind == "synth":
-        flux = synth.normalised_flux(sptype, lumclass, np.exp(grid), resolving_power)
-        name = f"synthetic {sptype} {lumclass}"
-    else:
-        flux = _mask_flux(grid, sptype, lumclass, resolving_power)
-        name = f"line mask {sptype} {lumclass}"
-    cover = _cover_taper(np.ones(n, bool))
-    return _Template(name, flux - 1.0, cover, hp_sigma=hp_sigma)
-
-
-def _mask_flux(grid, sptype, lumclass, resolving_power):
-    """Weighted line mask: a Gaussian of the instrumental width per atomic line, depth ~ model strength."""
-    from . import synth
-
-    t = synth.line_strengths(sptype, lumclass)
-    sel = (np.asarray(t["kind"]) == "atomic") & (np.asarray(t["strength"]) > 0)
-    lnc = np.log(t["wave_vac"].to_value(u.AA)[sel])
-    ew = np.asarray(t["strength"])[sel]
-    sig = FWHM_TO_SIGMA / float(resolving_power)
-    # weight = central depth a line of that EW would have at this resolution, capped (# common practice)
-    depth = np.minimum(ew / (np.exp(lnc) * sig * math.sqrt(2 * math.pi)), 0.8)
-    out = np.zeros_like(grid)
-    for c, dep in zip(lnc, depth):
-        j0, j1 = np.searchsorted(grid, [c - 6 * sig, c + 6 * sig])
-        out[j0:j1] += dep * np.exp(-0.5 * ((grid[j0:j1] - c) / sig) ** 2)
-    return 1.0 - out
+def _builtin_template(sptype, lumclass, resolving_power, ln0, step, n, kind="synth", hp_sigma=None):
+    """A built-in template (:func:`specan.templates.on_log_grid`) ready for correlation."""
+    name, flux, valid = templates.on_log_grid(sptype, lumclass, resolving_power, ln0, step, n, kind=kind)
+    return _Template(name, flux - 1.0, _cover_taper(valid), hp_sigma=hp_sigma)
 
 
 def _spectrum_template(spec, ln0, step, n, target_r, name, notes, rv_kms=0.0, hp_sigma=None, clip=True):
@@ -679,8 +473,6 @@ def _parse_template(template):
         text = text[5:].lstrip(":").strip()
     if not text:
         return kind, None, None, None
-    from .mktypes import parse_mk
-
     try:
         parse_mk(text)
     except ValueError:
@@ -760,9 +552,6 @@ def measure(spectrum, template=None, *, reference=None, template_rv=0 * u.km / u
         height of the automatic choice), ``ccf_fwhm``, ``r_td``, ``z_bary`` and the
         normalised CCF about the peak, ``ccf`` against topocentric ``ccf_velocity``.
     """
-    from . import synth
-    from ._offline import IERS_NOTE
-
     if errors not in ("both", "td", "mc"):
         raise ValueError(f"errors must be 'both', 'td' or 'mc', not {errors!r}")
     notes = []
@@ -780,9 +569,7 @@ def measure(spectrum, template=None, *, reference=None, template_rv=0 * u.km / u
         # The widths of the narrowest lines tell R better than the template-width scan below,
         # which prefers broad templates on real spectra (Kurucz Sun at R = 2000: 1360 by the
         # scan, 1847 by the lines; velocity scatter 1.9 against 1.1 km/s at S/N 100, measured).
-        from .lines import estimate_resolving_power
-
-        r_est = estimate_resolving_power(spectrum)
+        r_est = resolution.estimate_resolving_power(spectrum)
         if r_est is not None:
             res_r, r_known, r_source = float(r_est), True, "narrowest lines"
             notes.append(f"resolving power unknown: R ~ {res_r:.0f} estimated from the narrowest lines "
@@ -827,11 +614,11 @@ def measure(spectrum, template=None, *, reference=None, template_rv=0 * u.km / u
                                     clip=clip_emission)
     else:
         if sptype is None:
-            grid_types = tuple(template_grid or synth.TEMPLATE_TYPES)
+            grid_types = tuple(template_grid or templates.automatic_types())
             best = None
             vrows = None
             for st, lc in grid_types:
-                t = _synthetic_template(st, lc, r_key, round(ln0, 12), step, next_, hp_sigma=hp)
+                t = _builtin_template(st, lc, r_key, round(ln0, 12), step, next_, hp_sigma=hp)
                 if vrows is None:  # every synthetic template has the same coverage
                     vrows = _coverage_rows(d_ffts, t, m)
                 pk = _quick_peak(d_ffts, t, vrows, pad, m, smax, min_overlap, total_w)
@@ -843,13 +630,11 @@ def measure(spectrum, template=None, *, reference=None, template_rv=0 * u.km / u
             if best is None:
                 raise AnalysisError("no template correlates with the spectrum", info.path)
             # refine around the best grid type: neighbouring subtypes and the other luminosity classes
-            from .mktypes import code_to_sptype, sptype_to_code
-
             code0 = sptype_to_code(best[1])
             near = {(code_to_sptype(min(max(code0 + dc, 0.0), 69.0), 1), best[2]) for dc in (-3, -1.5, 1.5, 3)}
             near |= {(best[1], lc) for lc in ("V", "III", "I") if lc != best[2]}
             for st, lc in sorted(near - set(grid_types)):
-                t = _synthetic_template(st, lc, r_key, round(ln0, 12), step, next_, hp_sigma=hp)
+                t = _builtin_template(st, lc, r_key, round(ln0, 12), step, next_, hp_sigma=hp)
                 pk = _quick_peak(d_ffts, t, vrows, pad, m, smax, min_overlap, total_w)
                 if pk is not None:
                     scores[t.name] = pk[1]
@@ -859,13 +644,13 @@ def measure(spectrum, template=None, *, reference=None, template_rv=0 * u.km / u
             notes.append(f"template chosen automatically: best normalised correlation of {len(scores)} "
                          f"synthetic types ({sptype} {lumclass}, {best[0]:.3f})")
         tkind = "synth" if kind in ("synth", "auto") else "mask"
-        chosen = _synthetic_template(sptype, lumclass, r_key, round(ln0, 12), step, next_, kind=tkind, hp_sigma=hp)
+        chosen = _builtin_template(sptype, lumclass, r_key, round(ln0, 12), step, next_, kind=tkind, hp_sigma=hp)
         if not r_known:
             # resolving power unknown: the template width that correlates best
             best = None
             tried = [float(f"{res_r * fac:.3g}") for fac in _R_SCAN]
             for rr in tried:
-                t = _synthetic_template(sptype, lumclass, rr, round(ln0, 12), step, next_, kind=tkind, hp_sigma=hp)
+                t = _builtin_template(sptype, lumclass, rr, round(ln0, 12), step, next_, kind=tkind, hp_sigma=hp)
                 pk = _quick_peak(d_ffts, t, _coverage_rows(d_ffts, t, m), pad, m, smax, min_overlap, total_w)
                 if pk is not None and (best is None or pk[1] > best[0]):
                     best = (pk[1], rr, t)
@@ -946,7 +731,7 @@ def measure(spectrum, template=None, *, reference=None, template_rv=0 * u.km / u
     if chosen.rv_kms and not relative:
         tmpl_factor = float(doppler_factor(chosen.rv_kms * u.km / u.s))
         tinfo = chosen.info
-        if tinfo is not None and not _missing_for_barycentric(tinfo):
+        if tinfo is not None and not missing_for_barycentric(tinfo):
             tmpl_factor /= 1.0 + barycentric_correction(tinfo).value / C_KMS
         else:
             notes.append("template velocity taken as topocentric (template lacks time/site/pointing)")
@@ -956,12 +741,12 @@ def measure(spectrum, template=None, *, reference=None, template_rv=0 * u.km / u
         flags.append("composite")
 
     bary = None
-    missing = _missing_for_barycentric(info)
+    missing = missing_for_barycentric(info)
     if barycentric and not missing:
         bary = barycentric_correction(info).value
         if relative:
             rinfo = chosen.info
-            if rinfo is not None and not _missing_for_barycentric(rinfo):
+            if rinfo is not None and not missing_for_barycentric(rinfo):
                 f_b = f_topo * (1.0 + bary / C_KMS) / (1.0 + barycentric_correction(rinfo).value / C_KMS)
             else:
                 f_b = None
@@ -983,7 +768,7 @@ def measure(spectrum, template=None, *, reference=None, template_rv=0 * u.km / u
     v_grf = None
     if not relative and info.ra_deg is not None and info.dec_deg is not None:
         v_grf = galactic_rest_frame_velocity(rv * u.km / u.s, info.coord).value
-        notes.append(_galcen()[1])
+        notes.append(galactic_frame_note())
         if f_b is None:
             notes.append("v_grf from the topocentric velocity: uncertain by up to 30 km/s (Earth's orbit)")
         notes.append("v_grf is the line-of-sight component only: a lower bound on the star's Galactic speed")

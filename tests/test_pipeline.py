@@ -337,7 +337,7 @@ def test_unstated_resolving_power_estimated_once_and_catalogued(tmp_path, kurucz
     # The Kurucz solar model (rms-solar, R = 2000 by its fixture) as a text file that states no
     # resolving power: the velocity stage estimates R from the narrowest lines, the catalogue
     # says so, and the later stages reuse the estimate instead of making their own.
-    import specan.lines
+    import specan.resolution
 
     w, f, _ = kurucz_sun
     keep = (w > 3800) & (w < 7400)
@@ -345,8 +345,8 @@ def test_unstated_resolving_power_estimated_once_and_catalogued(tmp_path, kurucz
     np.savetxt(path, np.column_stack([w[keep], f[keep]]), header="vacuum wavelength [Angstrom]  flux",
                fmt="%.5f")
     calls = []
-    real = specan.lines.estimate_resolving_power
-    monkeypatch.setattr(specan.lines, "estimate_resolving_power", lambda s: calls.append(1) or real(s))
+    real = specan.resolution.estimate_resolving_power
+    monkeypatch.setattr(specan.resolution, "estimate_resolving_power", lambda s: calls.append(1) or real(s))
     values = pipeline.analyse_file(str(path), {"plots": False, "overrides": {"medium": "vacuum"}})["values"]
     assert values["resolving_power_source"] == "narrowest lines"
     assert values["resolving_power"] == pytest.approx(2000.0, rel=0.15)

@@ -1,6 +1,5 @@
 """Per-spectrum figures: what they show must be readable."""
 
-import astropy.units as u
 import numpy as np
 
 from specan import lines, plots, prepare, synth

@@ -426,9 +426,9 @@ def test_unknown_resolving_power_at_the_end_of_the_scan_is_a_bound(monkeypatch):
     # R = 500 sampled at 0.5 A: the first guess (2.5 pixels per FWHM, R ~ 4300) is far too
     # sharp, so even the broadest template tried is sharper than the star; the note must say
     # that the figure is a bound, not an estimate.
-    import specan.lines
+    import specan.resolution
 
-    monkeypatch.setattr(specan.lines, "estimate_resolving_power", lambda spectrum: None)
+    monkeypatch.setattr(specan.resolution, "estimate_resolving_power", lambda spectrum: None)
     s = synth.spectrum("G2", resolving_power=500, wave=np.arange(4000.0, 6800.0, 0.5) * u.AA, snr=100, seed=1)
     get_info(s).resolving_power = None
     notes = [n for n in velocity.measure(s, barycentric=False, errors="td")["notes"] if "resolving power" in n]

@@ -22,7 +22,7 @@ from ..obsinfo import META_KEY, ObsInfo
 from . import fits_image, fits_table, text
 from ._common import RawSpectrum, parse_angle, parse_site
 
-__all__ = ["read", "READERS", "OVERRIDES"]
+__all__ = ["read", "READERS", "OVERRIDES", "parse_angle", "parse_site"]
 
 #: Format readers tried in order; each has NAME, identify(path, head) and read(path, **opts).
 READERS = (fits_image, fits_table, text)

@@ -1,0 +1,278 @@
+"""Resolution: how sharp a spectrum is, how to estimate it, and how to make it blunter.
+
+Shared by the stages that need a resolving power the file does not state (lines,
+velocity, classify) and by those that match one resolution to another (templates,
+calibration standards). ``R = lambda / FWHM`` throughout; instrumental profiles are
+Gaussian (common practice at R ~ 1,000-20,000), so widths add in quadrature.
+"""
+
+from __future__ import annotations
+
+import math
+import warnings
+from typing import NamedTuple
+
+import astropy.units as u
+import numpy as np
+from scipy.ndimage import gaussian_filter1d
+from scipy.signal import find_peaks
+
+from .doppler import C_KMS
+from .errors import AnalysisError
+from .obsinfo import META_KEY, get_info, replace_parts, spectrum_arrays
+
+__all__ = [
+    "GAUSS_FWHM",
+    "FWHM_TO_SIGMA",
+    "DEFAULT_PIXELS_PER_FWHM",
+    "NormalisedArrays",
+    "normalised_arrays",
+    "narrowest_line_width",
+    "estimate_resolving_power",
+    "degrade",
+    "smooth_to_fwhm",
+]
+
+#: FWHM / sigma of a Gaussian, 2 sqrt(2 ln 2) = 2.3548 (common practice).
+GAUSS_FWHM = 2.0 * math.sqrt(2.0 * math.log(2.0))
+#: sigma / FWHM of a Gaussian.
+FWHM_TO_SIGMA = 1.0 / GAUSS_FWHM
+#: Pixels per resolution element assumed when neither the caller nor the file gives R and the
+#: spectrum has too few clean lines to measure it (common practice: ~2-3 pixels per FWHM).
+DEFAULT_PIXELS_PER_FWHM = 2.5
+
+
+class NormalisedArrays(NamedTuple):
+    """Plain arrays of a continuum-normalised spectrum, ready for line work."""
+
+    wave: np.ndarray      #: Angstrom, in the spectrum's medium
+    flux: np.ndarray      #: masked pixels interpolated from their neighbours
+    sigma: np.ndarray     #: per-pixel noise (error array, else DER_SNR), never below 1e-5
+    good: np.ndarray      #: True where the pixel is usable
+    noise_source: str     #: "error array" or "DER_SNR"
+
+
+def _dersnr_noise(wave, flux, good):
+    """Noise per pixel of the normalised flux by DER_SNR (Stoehr et al. 2008, via specutils)."""
+    from specutils import Spectrum
+    from specutils.analysis import snr_derived
+
+    packed = Spectrum(spectral_axis=wave[good] * u.AA, flux=flux[good] * u.dimensionless_unscaled)
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        snr = float(snr_derived(packed).value)
+    med = float(np.median(flux[good]))
+    if not np.isfinite(snr) or snr <= 0:
+        return 1e-5
+    return max(med / snr, 1e-5)
+
+
+def normalised_arrays(spectrum, min_good=10):
+    """Wavelength, flux, noise and good-pixel mask of a normalised spectrum as plain arrays.
+
+    Masked pixels get the flux interpolated from their neighbours (so integrals and filters
+    are defined) and are marked in ``good``; without an error array the noise is the
+    DER_SNR estimate, one value for every pixel.
+
+    Raises
+    ------
+    specan.errors.AnalysisError
+        With fewer than ``min_good`` usable pixels.
+    """
+    info = get_info(spectrum)
+    wave, flux, sigma, mask = spectrum_arrays(spectrum)
+    wave = np.asarray(wave, float)
+    bad = ~np.isfinite(flux) | mask
+    if sigma is not None:
+        bad |= ~np.isfinite(sigma) | (sigma <= 0)
+    good = ~bad
+    if good.sum() < min_good:
+        raise AnalysisError(f"fewer than {min_good} usable pixels: no lines can be measured", info.path)
+    idx = np.flatnonzero(good)
+    flux = np.where(bad, np.interp(wave, wave[idx], flux[idx]), flux)
+    if sigma is None:
+        sigma = np.full(flux.shape, _dersnr_noise(wave, flux, good))
+        source = "DER_SNR"
+    else:
+        source = "error array"
+    # floor: noiseless models would give infinite weights
+    sigma = np.where(bad, np.inf, np.maximum(sigma, 1e-5))
+    return NormalisedArrays(wave, flux, sigma, good, source)
+
+
+def narrowest_line_width(wave, flux, sigma, good):
+    """FWHM / lambda of the narrowest clean lines of a normalised spectrum, or None.
+
+    Log-parabola (Caruana) fits below the local crest level to up to 40 isolated features of
+    middling significance found with a 1-pixel matched filter (the strongest
+    tenth are left out: saturated and pressure-broadened lines); the 10th
+    percentile of their FWHM / lambda (10th: at low resolution most features are
+    blends; measured on the Kurucz solar model). Lines are never narrower than the
+    instrument, so this is the instrument's width where lines are
+    unresolved, and the stars' own broadening (rotation) where they are not.
+    """
+    dx = np.median(np.diff(wave))
+    d = np.where(good, 1.0 - flux, 0.0)
+    w = np.where(good, 1.0 / sigma**2, 0.0)
+    s = 1.0
+    num = gaussian_filter1d(w * d, s, mode="nearest")
+    den = gaussian_filter1d(w, s / np.sqrt(2.0), mode="nearest")
+    sig = num / np.sqrt(np.maximum(den, 1e-300))
+    peaks, _ = find_peaks(sig, height=max(5.0, float(np.nanpercentile(sig, 50))), distance=3)
+    # isolated peaks only (no other peak within 5 pixels), and not the strongest tenth:
+    # those are the broad (saturated, pressure-broadened) lines
+    if peaks.size > 2:
+        gap = np.diff(peaks)
+        iso = np.ones(peaks.size, bool)
+        iso[1:] &= gap >= 5
+        iso[:-1] &= gap >= 5
+        peaks = peaks[iso]
+    if peaks.size < 5:
+        return None
+    order = np.argsort(sig[peaks])[::-1]
+    peaks = peaks[order[peaks.size // 10:][:40]]
+    fwhms = [f for f in (_caruana_fwhm(wave, flux, p) for p in peaks) if f is not None]
+    if len(fwhms) < 5:
+        return None
+    return float(max(np.percentile(fwhms, 10), 1.5 * dx / np.median(wave)))
+
+
+def _caruana_fwhm(wave, flux, p):
+    """FWHM / lambda of the feature at pixel ``p`` from a parabola through log depth, or None."""
+    lo, hi = max(p - 5, 0), min(p + 6, wave.size)
+    if hi - lo < 7:
+        return None
+    # depth below the local upper level (crowded spectra sit below the continuum)
+    j = p - lo
+    seg = flux[lo:hi]
+    depth = min(seg[:j + 1].max(), seg[j:].max()) - seg
+    if depth[j] <= 0:
+        return None
+    # core points above half depth, at least the three around the minimum
+    core = np.flatnonzero(depth >= 0.5 * depth[j])
+    core = core[np.abs(core - j) <= max(1, np.abs(core - j).min() + 3)]
+    if core.size < 3:
+        core = np.arange(j - 1, j + 2)
+    dd = depth[core]
+    if core.min() < 0 or core.max() >= depth.size or np.any(dd <= 0):
+        return None
+    # a Gaussian's log is a parabola: ln d = c - (x - x0)^2 / (2 sigma^2) (Caruana's method)
+    xx = wave[lo:hi][core] - wave[p]
+    a2 = np.polyfit(xx, np.log(dd), 2)[0]
+    if a2 >= 0:
+        return None
+    return GAUSS_FWHM * np.sqrt(-0.5 / a2) / wave[p]
+
+
+def estimate_resolving_power(spectrum):
+    """Resolving power of a continuum-normalised spectrum from its narrowest lines, or None.
+
+    Parameters
+    ----------
+    spectrum : specutils.Spectrum
+        Continuum-normalised (``specan.prepare`` output); :func:`specan.lines.estimate_resolving_power`
+        takes one that is not.
+
+    Returns
+    -------
+    float or None
+        R = lambda / FWHM. Measured: 1847 on the Kurucz solar model at R = 2000;
+        about 750-800 on the JHC (1984) spectra, whose 4.5 A FWHM is R ~ 1100 at
+        5000 A (at that resolution most features are blends and read broad).
+    """
+    if not get_info(spectrum).normalized:
+        raise ValueError("estimate_resolving_power needs a continuum-normalised spectrum (specan.prepare)")
+    try:
+        a = normalised_arrays(spectrum)
+    except AnalysisError:
+        return None
+    narrow = narrowest_line_width(a.wave, a.flux, a.sigma, a.good)
+    return None if narrow is None else 1.0 / narrow
+
+
+def degrade(spectrum, resolving_power, from_resolving_power=None):
+    """Convolve to a lower resolving power with a Gaussian in log wavelength.
+
+    The kernel's FWHM in velocity is c * sqrt(1/R_out^2 - 1/R_in^2) (Gaussians add in
+    quadrature). The flux is interpolated onto a uniform log-wavelength grid, smoothed
+    with ``scipy.ndimage.gaussian_filter1d`` and interpolated back onto the original
+    pixels (linear interpolation done with numpy: this is on hot paths).
+
+    Parameters
+    ----------
+    spectrum : specutils.Spectrum
+    resolving_power : float
+        Target R = lambda / FWHM.
+    from_resolving_power : float, optional
+        The spectrum's own R; defaults to ``info.resolving_power``, else treated as infinite.
+
+    Returns
+    -------
+    specutils.Spectrum
+        Same pixels, degraded flux; ``info.resolving_power`` set to the target.
+    """
+    info = get_info(spectrum)
+    r_in = from_resolving_power or info.resolving_power
+    r_out = float(resolving_power)
+    if r_in is not None and r_in <= r_out:
+        return spectrum
+    fwhm_kms = C_KMS * np.sqrt(1.0 / r_out**2 - (0.0 if r_in is None else 1.0 / r_in**2))
+    wave, flux, err, mask = spectrum_arrays(spectrum)
+    good = ~mask
+    if good.sum() < 4:
+        raise AnalysisError("too few usable pixels to degrade", info.path)
+    lw = np.log(wave)
+    # Native sampling: a coarser grid would alias lines narrower than the kernel away.
+    dlog = float(np.min(np.diff(lw)))
+    grid = np.arange(lw[0], lw[-1] + dlog / 2, dlog)
+    fg = np.interp(grid, lw[good], flux[good])
+    sigma_pix = fwhm_kms / C_KMS / dlog / 2.3548
+    sm = gaussian_filter1d(fg, sigma_pix, mode="nearest")
+    nflux = np.interp(lw, grid, sm)
+    nerr = None
+    if err is not None:
+        # Smoothing over n_eff independent pixels lowers the per-pixel noise by sqrt(n_eff)
+        # (approximate: neighbouring output pixels become correlated).
+        pix_kms = C_KMS * np.median(np.diff(lw)) if lw.size > 1 else fwhm_kms
+        n_eff = max(1.0, 2.0 * np.sqrt(np.pi) * (fwhm_kms / 2.3548) / pix_kms)
+        nerr = np.where(np.isfinite(err), err / np.sqrt(n_eff), np.inf)
+    meta = dict(spectrum.meta)
+    new_info = info.copy()
+    new_info.resolving_power = r_out
+    meta[META_KEY] = new_info
+    return replace_parts(spectrum, flux=nflux, err=nerr, meta=meta)
+
+
+def smooth_to_fwhm(wave, flux, good, fwhm_in, fwhm_out):
+    """Gaussian smoothing from an instrumental FWHM ``fwhm_in(wave)`` to a constant ``fwhm_out`` (A).
+
+    Hand-written rather than :func:`degrade` because a calibration's resolution is
+    constant in Angstrom (a grating spectrograph, like the reference libraries), while
+    ``degrade`` works at constant resolving power. The flux goes onto a uniform grid; the
+    kernel width varies with wavelength when the input is at constant R, so the flux is
+    smoothed at a few kernel widths and each pixel interpolates between the two bracketing
+    ones.
+
+    Returns
+    -------
+    grid, smoothed flux, good-pixel mask on the grid : numpy.ndarray
+    """
+    step = float(np.median(np.diff(wave)))
+    grid = np.arange(wave[0], wave[-1] + step / 2, step)
+    fg = np.interp(grid, wave[good], flux[good])
+    gg = np.interp(grid, wave, good.astype(float))
+    fin = np.broadcast_to(np.interp(grid, wave, np.broadcast_to(fwhm_in, wave.shape)), grid.shape)
+    # FWHM = 2 sqrt(2 ln 2) sigma = 2.3548 sigma for a Gaussian (common practice)
+    sig = np.sqrt(np.clip(fwhm_out ** 2 - fin ** 2, 0.0, None)) / 2.3548 / step   # pixels
+    if np.all(sig < 0.3):
+        return grid, fg, gg > 0.5
+    levels = np.unique(np.round(np.linspace(sig.min(), sig.max(), 5), 3))
+    smooth = np.array([gaussian_filter1d(fg, lv, mode="nearest") if lv > 0.3 else fg for lv in levels])
+    gsm = gaussian_filter1d(gg, float(levels.max()), mode="nearest")
+    if len(levels) == 1:
+        return grid, smooth[0], gsm > 0.5
+    j = np.clip(np.searchsorted(levels, sig) - 1, 0, len(levels) - 2)
+    t = np.clip((sig - levels[j]) / (levels[j + 1] - levels[j]), 0.0, 1.0)
+    idx = np.arange(grid.size)
+    out = smooth[j, idx] * (1.0 - t) + smooth[j + 1, idx] * t
+    return grid, out, gsm > 0.5
