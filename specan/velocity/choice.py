@@ -1,0 +1,239 @@
+"""Which template, at which resolving power.
+
+The template is a user spectrum (a file or a Spectrum, e.g. an RV standard), a reference
+exposure of the same star (the velocity is then relative to it), one built-in type, or the
+automatic choice: every type of the built-in grid is scored by its normalised correlation peak,
+then the neighbouring subtypes and luminosity classes of the best. When the spectrum's
+resolving power is unknown and the narrowest lines do not tell it, the built-in template's
+width is scanned too. Candidates are lists of :class:`~.prepared.BuiltinCandidate`, prepared on
+the set-up's grid and then scored together (:func:`~.correlation.template_peaks`).
+"""
+
+from __future__ import annotations
+
+from pathlib import Path
+from typing import NamedTuple
+
+import astropy.units as u
+import numpy as np
+
+from .. import resolution, templates
+from ..errors import AnalysisError, SpecanError
+from ..mktypes import code_to_sptype, parse_mk, sptype_to_code
+from ..obsinfo import get_info
+from .correlation import best_index, coverage_rows, template_peaks
+from .prepared import BuiltinCandidate, PreparedTemplate, prepare_builtin, spectrum_template
+
+__all__ = ["R_SCAN", "ResolvingPower", "TemplateRequest", "TemplateChoice", "settle_resolving_power",
+           "parse_template", "choose_template", "user_template", "reference_template", "automatic_type",
+           "neighbour_types", "scan_resolving_power"]
+
+# Multipliers of the first guess tried when the resolving power is unknown (sampling of 1.7-5
+# pixels per FWHM, the range of real spectrographs; common practice).
+R_SCAN = (0.5, 0.6, 0.7, 0.85, 1.0, 1.2, 1.45)
+
+
+# ---------------------------------------------------------------------------
+# Resolving power
+# ---------------------------------------------------------------------------
+class ResolvingPower(NamedTuple):
+    """The spectrum's resolving power, whether it is known (else a guess to scan) and whence."""
+
+    value: float
+    known: bool
+    source: str
+
+    @property
+    def template_key(self):
+        """The value built-in templates are made at (3 significant figures: shared between spectra)."""
+        return float(f"{self.value:.3g}")
+
+
+def _sampling_guess(observed):
+    """(R, known): the stated resolving power, or a first guess from the sampling (2.5 pixels/FWHM)."""
+    if observed.info.resolving_power:
+        return float(observed.info.resolving_power), True
+    med = float(np.median(np.diff(observed.spline_x)))
+    return 1.0 / (2.5 * med), False
+
+
+def settle_resolving_power(observed, spectrum, notes):
+    """:class:`ResolvingPower` of the spectrum: stated, else from its narrowest lines, else a guess.
+
+    A guess (``known`` False) is settled later by the template-width scan.
+    """
+    res_r, r_known = _sampling_guess(observed)
+    if r_known:
+        return ResolvingPower(res_r, True, "file")
+    # The widths of the narrowest lines tell R better than the template-width scan below,
+    # which prefers broad templates on real spectra (Kurucz Sun at R = 2000: 1360 by the
+    # scan, 1847 by the lines; velocity scatter 1.9 against 1.1 km/s at S/N 100, measured).
+    r_est = resolution.estimate_resolving_power(spectrum)
+    if r_est is None:
+        return ResolvingPower(res_r, False, "template-width scan")
+    notes.append(f"resolving power unknown: R ~ {float(r_est):.0f} estimated from the narrowest lines "
+                 "(use --resolving-power to set it)")
+    return ResolvingPower(float(r_est), True, "narrowest lines")
+
+
+# ---------------------------------------------------------------------------
+# What the caller asked for
+# ---------------------------------------------------------------------------
+class TemplateRequest(NamedTuple):
+    """``kind`` ('auto' | 'synth' | 'mask' | 'spectrum' | 'file'), MK type if given, and the object."""
+
+    kind: str
+    sptype: str | None
+    lumclass: str | None
+    obj: object
+
+
+def parse_template(template):
+    """The :class:`TemplateRequest` of ``measure``'s ``template`` argument."""
+    from specutils import Spectrum
+
+    if template is None or (isinstance(template, str) and template.strip().lower() in ("", "auto")):
+        return TemplateRequest("auto", None, None, None)
+    if isinstance(template, Spectrum):
+        return TemplateRequest("spectrum", None, None, template)
+    if isinstance(template, Path) or (isinstance(template, str) and Path(template).is_file()):
+        return TemplateRequest("file", None, None, Path(template))
+    text = str(template).strip()
+    kind = "synth"
+    low = text.lower()
+    if low.startswith("mask"):
+        kind, text = "mask", text[4:].lstrip(":").strip()
+    elif low.startswith("synth"):
+        text = text[5:].lstrip(":").strip()
+    if not text:
+        return TemplateRequest(kind, None, None, None)
+    try:
+        parse_mk(text)
+    except ValueError:
+        raise SpecanError(f"template {template!r} is neither a file nor an MK type (use e.g. 'G2 V', "
+                          "'mask:K0 III', 'auto' or a path)") from None
+    parts = text.split()
+    return TemplateRequest(kind, parts[0], (parts[1] if len(parts) > 1 else "V"), None)
+
+
+# ---------------------------------------------------------------------------
+# The choice
+# ---------------------------------------------------------------------------
+class TemplateChoice(NamedTuple):
+    """The prepared template, the resolving power as finally settled, the scores of the automatic
+    choice (template name -> peak height) and whether the velocity is relative to a reference."""
+
+    template: PreparedTemplate
+    power: ResolvingPower
+    scores: dict
+    relative: bool
+
+
+def choose_template(request, search, power, *, reference=None, template_rv=0 * u.km / u.s, template_grid=None,
+                    clip_emission=True, notes, where=None):
+    """The :class:`TemplateChoice` for a :class:`TemplateRequest` (a ``reference`` exposure wins).
+
+    ``search`` is the spectrum's :class:`~.correlation.PeakSearch`, ``power`` its
+    :class:`ResolvingPower`; ``where`` names the spectrum in errors.
+    """
+    grid = search.lags.templates
+    target_r = power.value if power.known else None
+    if reference is not None:
+        return TemplateChoice(reference_template(reference, grid, target_r, clip_emission, notes), power, {}, True)
+    if request.kind in ("spectrum", "file"):
+        chosen = user_template(request, u.Quantity(template_rv, u.km / u.s).value, grid, target_r, clip_emission,
+                               notes)
+        return TemplateChoice(chosen, power, {}, False)
+    sptype, lumclass, scores = request.sptype, request.lumclass, {}
+    if sptype is None:
+        (sptype, lumclass), scores = automatic_type(search, power.template_key, template_grid, notes, where)
+    kind = "synth" if request.kind in ("synth", "auto") else "mask"
+    candidate = BuiltinCandidate(sptype, lumclass, power.template_key, kind)
+    chosen = prepare_builtin(candidate, grid)
+    if not power.known:
+        # resolving power unknown: the template width that correlates best
+        chosen, power = scan_resolving_power(search, candidate, power, chosen, notes)
+    return TemplateChoice(chosen, power, scores, False)
+
+
+def reference_template(reference, grid, target_r, clip_emission, notes):
+    """A reference exposure (Spectrum or path) prepared as the template."""
+    from .. import read
+
+    ref = reference if not isinstance(reference, (str, Path)) else read(reference)
+    rname = get_info(ref).object or get_info(ref).path or "reference exposure"
+    return spectrum_template(ref, grid, target_r, f"reference {rname}", notes, clip=clip_emission)
+
+
+def user_template(request, rv_kms, grid, target_r, clip_emission, notes):
+    """A user template (request kind 'spectrum' or 'file') at barycentric velocity ``rv_kms``."""
+    from .. import read
+
+    tspec = request.obj if request.kind == "spectrum" else read(request.obj)
+    tname = get_info(tspec).object or (str(request.obj) if request.kind == "file" else "user template")
+    return spectrum_template(tspec, grid, target_r, f"user {tname}", notes, rv_kms=rv_kms, clip=clip_emission)
+
+
+def automatic_type(search, resolving_power, template_grid, notes, where=None):
+    """((sptype, lumclass), scores): the built-in type that correlates best.
+
+    The grid (``template_grid`` or :func:`specan.templates.automatic_types`) is scored first,
+    then the neighbours of its best (:func:`neighbour_types`).
+    """
+    grid = search.lags.templates
+    grid_types = tuple(template_grid or templates.automatic_types())
+    candidates = [BuiltinCandidate(st, lc, resolving_power) for st, lc in grid_types]
+    prepared = [prepare_builtin(c, grid) for c in candidates]
+    shared = None
+    if prepared:  # every synthetic template has the same coverage
+        shared = coverage_rows(search.side.ffts, prepared[0], search.lags.m)
+    peaks = template_peaks(search, prepared, shared)
+    best = best_index(peaks)
+    if best is None:
+        raise AnalysisError("no template correlates with the spectrum", where)
+    more = [BuiltinCandidate(st, lc, resolving_power) for st, lc in neighbour_types(grid_types[best], grid_types)]
+    more_prepared = [prepare_builtin(c, grid) for c in more]
+    peaks += template_peaks(search, more_prepared, shared)
+    candidates += more
+    scores = {t.name: pk[1] for t, pk in zip(prepared + more_prepared, peaks) if pk is not None}
+    best = best_index(peaks)
+    sptype, lumclass = candidates[best].sptype, candidates[best].lumclass
+    notes.append(f"template chosen automatically: best normalised correlation of {len(scores)} "
+                 f"synthetic types ({sptype} {lumclass}, {peaks[best][1]:.3f})")
+    return (sptype, lumclass), scores
+
+
+def neighbour_types(best, grid_types):
+    """Types to try next to ``best`` (sptype, lumclass) that the grid lacks, in sorted order."""
+    # refine around the best grid type: neighbouring subtypes and the other luminosity classes
+    sptype, lumclass = best
+    code0 = sptype_to_code(sptype)
+    near = {(code_to_sptype(min(max(code0 + dc, 0.0), 69.0), 1), lumclass) for dc in (-3, -1.5, 1.5, 3)}
+    near |= {(sptype, lc) for lc in ("V", "III", "I") if lc != lumclass}
+    return sorted(near - set(grid_types))
+
+
+def scan_resolving_power(search, candidate, power, chosen, notes):
+    """(template, :class:`ResolvingPower`): the width of ``candidate`` that correlates best.
+
+    The widths tried are :data:`R_SCAN` times the first guess ``power``; ``chosen`` stays when
+    none correlates. At either end of the scan the value is reported as a bound.
+    """
+    tried = [float(f"{power.value * fac:.3g}") for fac in R_SCAN]
+    widths = [prepare_builtin(candidate._replace(resolving_power=rr), search.lags.templates) for rr in tried]
+    best = best_index(template_peaks(search, widths))
+    res_r, source = power.value, power.source
+    if best is not None:
+        res_r, chosen = tried[best], widths[best]
+    if res_r in (tried[0], tried[-1]):
+        source = "template-width scan (a bound)"
+        # at the end of the scan the estimate is a bound, not a value (the JHC (1984)
+        # spectra, R ~ 1100 at 5000 A, all stop at the low end: measured)
+        notes.append(f"resolving power unknown: the template width that correlates best is the "
+                     f"{'broadest' if res_r == tried[0] else 'sharpest'} tried (R {res_r:.0f}; "
+                     f"range {tried[0]:.0f}-{tried[-1]:.0f}), so R may lie beyond it "
+                     "(use --resolving-power to set it)")
+    else:
+        notes.append(f"resolving power unknown: R ~ {res_r:.0f} from the template width that "
+                     "correlates best (use --resolving-power to set it)")
+    return chosen, ResolvingPower(res_r, False, source)

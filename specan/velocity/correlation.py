@@ -1,0 +1,296 @@
+"""The normalised FFT cross-correlation, its peak, and the CCF about the peak.
+
+Every lag is normalised by the overlap actually used (a zero-normalised correlation: means
+and energies of both sides over the overlap), from six FFT products of the weighted data
+arrays with the template arrays (:class:`Correlation`). The integer-lag peak is refined by
+evaluating the correlation as a Fourier series at fractional lags (band-limited
+interpolation, no parabola "peak locking").
+
+Scoring many candidate templates against one spectrum (:func:`template_peaks`) needs only the
+integer-lag peak of each; the spectrum's transforms (:class:`ObservedSide`) are made once.
+"""
+
+from __future__ import annotations
+
+import math
+from typing import NamedTuple
+
+import numpy as np
+from scipy import fft as sfft
+
+from ..errors import AnalysisError
+from .grid import LagWindow, highpass
+
+__all__ = ["ObservedSide", "PeakSearch", "Correlation", "Peak", "PeakCCF", "correlation_arrays",
+           "observed_side", "best_lag", "integer_peak", "quick_peak", "coverage_rows", "template_peaks",
+           "best_index", "refine", "ccf_about", "fwhm_pixels", "single_star_ccf", "correlate", "ccf_about_peak"]
+
+
+# ---------------------------------------------------------------------------
+# The spectrum's side of every correlation
+# ---------------------------------------------------------------------------
+class ObservedSide(NamedTuple):
+    """Weighted data arrays (w d, w, w d^2) of one spectrum, their FFTs and the total weight."""
+
+    weight: np.ndarray
+    arrays: tuple
+    ffts: tuple
+    total_weight: float
+
+
+class PeakSearch(NamedTuple):
+    """Where a correlation peak may lie: one spectrum's side, its lag window, the least overlap.
+
+    A lag counts only where it uses at least ``min_overlap`` of the spectrum's weight.
+    """
+
+    side: ObservedSide
+    lags: LagWindow
+    min_overlap: float
+
+
+def correlation_arrays(d_minus_1, weight):
+    """(w d, w, w d^2) with d the data minus their weighted mean."""
+    mean = np.sum(weight * d_minus_1) / np.sum(weight)
+    d = d_minus_1 - mean
+    return (weight * d, weight, weight * d * d)
+
+
+def observed_side(observed, lags):
+    """The :class:`ObservedSide` of an :class:`~.grid.ObservedGrid`, high-pass filtered as templates are."""
+    # data side: weights = taper x inverse variance (normalised), zero on masked pixels
+    w_noise = 1.0 / np.clip(observed.sigma, 1e-12, None) ** 2
+    w_noise /= np.median(w_noise[observed.valid])
+    weight = observed.taper * w_noise
+    arrays = correlation_arrays(highpass(observed.flux - 1.0, lags.templates.hp_sigma, observed.valid), weight)
+    d_ffts = tuple(sfft.rfft(a, lags.m) for a in arrays)
+    return ObservedSide(weight, arrays, d_ffts, float(np.sum(weight)))
+
+
+# ---------------------------------------------------------------------------
+# The correlation of one template
+# ---------------------------------------------------------------------------
+class Correlation:
+    """Zero-normalised cross-correlation of data-side arrays with one template, at any lag.
+
+    Lag s (pixels of the grid, positive = spectrum redshifted relative to the template)
+    maps to FFT index k = pad - s of C(a, b)[k] = sum_x a(x) b(x + k).
+    """
+
+    def __init__(self, data_arrays, template, pad, m, d_ffts=None):
+        self.pad = pad
+        self.m = m
+        a1, a2, a3 = data_arrays
+        A1, A2, A3 = d_ffts if d_ffts is not None else (sfft.rfft(a1, m), sfft.rfft(a2, m), sfft.rfft(a3, m))
+        BT, BT2, BV = template.ffts(m)
+        # cross-spectra: rows = C(a1,T), C(a2,T), C(a2,T2), C(a1,V), C(a3,V), C(a2,V)
+        self.X = np.stack([np.conj(A1) * BT, np.conj(A2) * BT, np.conj(A2) * BT2,
+                           np.conj(A1) * BV, np.conj(A3) * BV, np.conj(A2) * BV])
+        self.freq = np.arange(self.X.shape[1])
+        wts = np.full(self.X.shape[1], 2.0)
+        wts[0] = 1.0
+        if m % 2 == 0:
+            wts[-1] = 1.0
+        self.Xw = self.X * wts
+
+    @staticmethod
+    def combine(c):
+        """(normalised CCF, overlap weight) from the six correlation rows."""
+        c1t, c2t, c2t2, c1v, c3v, c2v = c
+        nw = np.where(c2v > 1e-9, c2v, np.nan)
+        num = c1t - c1v * c2t / nw
+        e = c2t2 - c2t ** 2 / nw
+        d = c3v - c1v ** 2 / nw
+        with np.errstate(invalid="ignore", divide="ignore"):
+            return num / np.sqrt(np.clip(e, 1e-300, None) * np.clip(d, 1e-300, None)), c2v
+
+    def integer_lags(self, frac=0.0):
+        """Normalised CCF at lags s = pad - k + ... for k = 0..m-1, shifted by ``frac`` pixels of s."""
+        X = self.X
+        if frac:
+            X = X * np.exp(-2j * np.pi * self.freq * frac / self.m)
+        c = sfft.irfft(X, self.m, axis=1)
+        return self.combine(c)
+
+    def at(self, s):
+        """Normalised CCF at fractional lags ``s`` (array) by Fourier-series evaluation."""
+        s = np.atleast_1d(np.asarray(s, float))
+        k = self.pad - s
+        ph = np.exp(2j * np.pi * np.outer(self.freq, k) / self.m)  # (nf, ns)
+        c = (self.Xw @ ph).real / self.m
+        return self.combine(c)[0]
+
+
+# ---------------------------------------------------------------------------
+# Integer-lag peaks, one template or many
+# ---------------------------------------------------------------------------
+def best_lag(ccf, c2v, pad, smax, min_overlap, total_weight):
+    """(lag, height) of the highest CCF value within |lag| <= smax and enough overlap, or None."""
+    k = np.arange(0, 2 * pad + 1)
+    s = pad - k
+    vals = ccf[k]
+    ok = (np.abs(s) <= smax) & (c2v[k] >= min_overlap * total_weight) & np.isfinite(vals)
+    if not ok.any():
+        return None
+    j = np.argmax(np.where(ok, vals, -np.inf))
+    return int(s[j]), float(vals[j])
+
+
+def integer_peak(corr, pad, smax, min_overlap, total_weight):
+    """Integer-lag peak within |s| <= smax: (s_int, height), or None (see :func:`best_lag`)."""
+    ccf, c2v = corr.integer_lags()
+    return best_lag(ccf, c2v, pad, smax, min_overlap, total_weight)
+
+
+def quick_peak(d_ffts, template, vrows, pad, m, smax, min_overlap, total_weight):
+    """Integer-lag peak height of one template, reusing the coverage rows shared by the synthetic grid."""
+    A1, A2, _ = d_ffts
+    BT, BT2, _ = template.ffts(m)
+    c = sfft.irfft(np.stack([np.conj(A1) * BT, np.conj(A2) * BT, np.conj(A2) * BT2]), m, axis=1)
+    ccf, c2v = Correlation.combine((c[0], c[1], c[2], vrows[0], vrows[1], vrows[2]))
+    return best_lag(ccf, c2v, pad, smax, min_overlap, total_weight)
+
+
+def coverage_rows(d_ffts, template, m):
+    """The three correlation rows that involve only the template's coverage V."""
+    A1, A2, A3 = d_ffts
+    BV = template.ffts(m)[2]
+    return sfft.irfft(np.stack([np.conj(A1) * BV, np.conj(A3) * BV, np.conj(A2) * BV]), m, axis=1)
+
+
+def template_peaks(search, candidates, shared_coverage=None):
+    """Integer-lag peak, (lag, height) or None, of each prepared template in ``candidates``.
+
+    ``shared_coverage``: the coverage rows (:func:`coverage_rows`) when every candidate has
+    the same coverage (built-in templates on one grid); else each candidate's own are used.
+    """
+    side, lags = search.side, search.lags
+    peaks = []
+    for t in candidates:
+        vrows = shared_coverage if shared_coverage is not None else coverage_rows(side.ffts, t, lags.m)
+        peaks.append(quick_peak(side.ffts, t, vrows, lags.pad, lags.m, lags.smax, search.min_overlap,
+                                side.total_weight))
+    return peaks
+
+
+def best_index(peaks):
+    """Index of the highest of ``peaks`` ((lag, height) or None), the first on ties; None if none."""
+    best = None
+    for i, pk in enumerate(peaks):
+        if pk is not None and (best is None or pk[1] > peaks[best][1]):
+            best = i
+    return best
+
+
+# ---------------------------------------------------------------------------
+# The refined peak and the CCF about it
+# ---------------------------------------------------------------------------
+class Peak(NamedTuple):
+    """Sub-pixel correlation peak: lag (grid pixels), normalised height, curvature there."""
+
+    lag: float
+    height: float
+    curvature: float
+
+
+def refine(corr, s_int):
+    """Sub-pixel peak of the Fourier-interpolated CCF: (lag, height, curvature)."""
+    x0 = float(s_int)
+    for h in (0.8, 0.12):
+        offs = np.linspace(-h, h, 9)
+        vals = corr.at(x0 + offs)
+        coef = np.polynomial.polynomial.polyfit(offs, vals, 4)
+        d1 = np.polynomial.polynomial.polyder(coef, 1)
+        d2 = np.polynomial.polynomial.polyder(coef, 2)
+        x = offs[np.argmax(vals)]
+        for _ in range(20):
+            g2 = np.polynomial.polynomial.polyval(x, d2)
+            x = float(np.clip(x - np.polynomial.polynomial.polyval(x, d1) / (g2 if g2 < 0 else -1e-9), -h, h))
+        x0 = x0 + x
+    height = float(np.polynomial.polynomial.polyval(x, coef))
+    curv = float(np.polynomial.polynomial.polyval(x, d2))
+    return Peak(x0, height, curv)
+
+
+def correlate(search, template, where=None):
+    """(:class:`Correlation`, refined :class:`Peak`) of the spectrum with one prepared template.
+
+    Raises :class:`~specan.errors.AnalysisError` (about ``where``) when no positive peak lies
+    in the search range.
+    """
+    side, lags = search.side, search.lags
+    corr = Correlation(side.arrays, template, lags.pad, lags.m, side.ffts)
+    pk = integer_peak(corr, lags.pad, lags.smax, search.min_overlap, side.total_weight)
+    if pk is None or not np.isfinite(pk[1]) or pk[1] <= 0:
+        raise AnalysisError(f"no correlation peak with template {template.name}", where)
+    return corr, refine(corr, pk[0])
+
+
+def ccf_about(corr, s0, half):
+    """Normalised CCF at s0 + j for integer j in [-half, half] (exact fractional centring)."""
+    frac = s0 - math.floor(s0)
+    ccf, c2v = corr.integer_lags(frac=frac)
+    base = math.floor(s0)
+    j = np.arange(-half, half + 1)
+    k = (corr.pad - (base + j)) % corr.m  # lag s = base + frac + j  <->  index pad - base - j after shift
+    return j, ccf[k], c2v[k]
+
+
+def fwhm_pixels(j, vals, h):
+    """Full width (pixels) at ``h``/2 of the CCF ``vals`` about j = 0; NaN when it does not fall that low."""
+    half = h / 2.0
+    mid = np.flatnonzero(j == 0)[0]
+    right = mid
+    while right + 1 < len(vals) and vals[right + 1] > half:
+        right += 1
+    left = mid
+    while left - 1 >= 0 and vals[left - 1] > half:
+        left -= 1
+    if right + 1 >= len(vals) or left - 1 < 0:
+        return float("nan")
+    xr = j[right] + (vals[right] - half) / (vals[right] - vals[right + 1])
+    xl = j[left] - (vals[left] - half) / (vals[left] - vals[left - 1])
+    return float(xr - xl)
+
+
+def single_star_ccf(template, valid, weight, pad, m, s0, half):
+    """CCF a noiseless star identical to the template, shifted by s0, would give (1 at the peak).
+
+    The model star goes through the same steps as the data (window, masks, high-pass, weights),
+    so edge and gap effects of those steps are in the model, not mistaken for noise.
+    """
+    n = valid.size
+    phase = np.exp(-2j * np.pi * np.arange(m // 2 + 1) * (s0 - pad) / m)
+    model = sfft.irfft(sfft.rfft(template.T0, m) * phase, m)[:n]  # template(x - s0) on the data window
+    # where the template has gaps (its own tellurics, its ends) the model star is unknown: leave
+    # those pixels out rather than treat them as continuum
+    known = sfft.irfft(sfft.rfft((template.V > 0).astype(float), m) * phase, m)[:n] > 0.5
+    ok = valid & known
+    model = highpass(model, template.hp_sigma, ok)
+    mcorr = Correlation(correlation_arrays(model, weight * ok), template, pad, m)
+    _, mvals, _ = ccf_about(mcorr, s0, half)
+    if not np.isfinite(mvals[half]) or mvals[half] <= 0:
+        return None
+    return mvals / mvals[half]
+
+
+class PeakCCF(NamedTuple):
+    """The CCF about the peak: lags ``j`` (pixels from the peak), ``values``, the single-star
+    ``model`` (1 at the peak; None when it cannot be formed), the ``residual`` after removing
+    it scaled to the peak height, and the FWHM (pixels) of the values."""
+
+    j: np.ndarray
+    values: np.ndarray
+    model: np.ndarray | None
+    residual: np.ndarray
+    fwhm_px: float
+
+
+def ccf_about_peak(corr, template, valid, weight, lags, peak):
+    """The :class:`PeakCCF` for ``|j| <= lags.half`` about ``peak`` (data ``valid`` and ``weight``)."""
+    s0, h = peak.lag, peak.height
+    # CCF about the peak, and the single-star shape (the template seen through the same window)
+    j, vals, _ = ccf_about(corr, s0, lags.half)
+    model = single_star_ccf(template, valid, weight, lags.pad, lags.m, s0, lags.half)
+    resid = vals - h * model if model is not None else vals
+    return PeakCCF(j, vals, model, resid, fwhm_pixels(j, vals, h))

@@ -1,0 +1,315 @@
+"""The observed side on the ln-lambda grid, the lag window, and the filters both sides share.
+
+A spectrum is resampled onto a grid uniform in ln(vacuum wavelength), where a Doppler shift is
+a translation; masked pixels (tellurics, bad pixels, emission spikes) are marked invalid and the
+weights taper to zero at the ends and around gaps. :class:`LagWindow` fixes, for one spectrum,
+how far the lags reach and where (and on how many pixels) templates must be prepared so that no
+lag loses data. The high-pass filter and the coverage taper are applied alike to the spectrum
+and to every template.
+"""
+
+from __future__ import annotations
+
+import math
+from dataclasses import dataclass
+from typing import NamedTuple
+
+import astropy.units as u
+import numpy as np
+from scipy import fft as sfft
+from scipy.interpolate import make_interp_spline
+from scipy.ndimage import distance_transform_edt
+
+from ..doppler import doppler_factor
+from ..doppler import velocity_kms as _kms
+from ..errors import AnalysisError
+from ..obsinfo import get_info, wavelength_in
+
+__all__ = ["SPLINE_K", "COVER_TAPER", "ObservedGrid", "TemplateGrid", "LagWindow", "normalised",
+           "observe_on_grid", "lag_window", "kms_per_pixel", "sigma_array", "hot_pixels", "noise_from_flux",
+           "dersnr_sigma", "gauss_smooth", "highpass", "cover_taper"]
+
+#: Order of the spline that resamples spectra onto the ln-lambda grid.
+SPLINE_K = 3
+
+#: Width (grid pixels) of the cosine taper at the edges of a template's coverage.
+COVER_TAPER = 8
+
+
+# ---------------------------------------------------------------------------
+# Pixels, noise and the normalised spectrum
+# ---------------------------------------------------------------------------
+def sigma_array(spectrum):
+    """The spectrum's 1-sigma errors as a float array, or None when it has none."""
+    if spectrum.uncertainty is None:
+        return None
+    from astropy.nddata import StdDevUncertainty
+
+    return np.asarray(spectrum.uncertainty.represent_as(StdDevUncertainty).array, dtype=float)
+
+
+def hot_pixels(f, sig, bad):
+    """Pixels above the continuum by 5 sigma and 5% (emission lines, cosmic rays), widened by 3 pixels.
+
+    Emission lines and cosmic rays anti-correlate with an absorption template. The same rule
+    is applied to a user template or reference exposure: a feature above the pseudo-continuum
+    that both contain (a real continuum peak) must be excluded from both, or the high-pass
+    filter sees it in one only and shifts the peak (a K1 I library spectrum against itself
+    read 9.4 km/s instead of 0 when only the star was clipped, measured).
+    """
+    hot = (f > 1.0 + np.maximum(5.0 * np.nan_to_num(sig, nan=np.inf), 0.05)) & ~bad
+    if hot.any():
+        hot = np.convolve(hot.astype(float), np.ones(7), mode="same") > 0
+    return hot
+
+
+def noise_from_flux(f, bad):
+    """Per-pixel noise of a spectrum without errors: DER_SNR at the continuum, scaled as sqrt(flux)."""
+    good_f = f[~bad]
+    noise = dersnr_sigma(good_f) if good_f.size > 10 else np.nan
+    # photon noise: sigma proportional to sqrt(flux) (common practice for count-limited data)
+    return (noise if noise > 0 else np.nan) * np.sqrt(np.clip(f, 0.05, None))
+
+
+def dersnr_sigma(flux):
+    """Noise at the continuum by DER_SNR (Stoehr et al. 2008): 1.482602/sqrt(6) median|2f_i - f_(i-2) - f_(i+2)|.
+
+    Only triplets near the continuum (0.9 < f < 1.1) are used when there are enough: sharp
+    lines and band heads add to the second differences and would inflate the noise.
+    """
+    d = np.abs(2.0 * flux[2:-2] - flux[:-4] - flux[4:])
+    near = (np.abs(flux[2:-2] - 1) < 0.1) & (np.abs(flux[:-4] - 1) < 0.1) & (np.abs(flux[4:] - 1) < 0.1)
+    if near.sum() >= 100:
+        d = d[near]
+    return 1.482602 / math.sqrt(6.0) * float(np.median(d))
+
+
+def normalised(spectrum, notes):
+    """The spectrum itself when continuum-normalised, else :func:`specan.prepare.prepare` of it (noted)."""
+    info = get_info(spectrum)
+    if info.normalized:
+        return spectrum
+    try:
+        from ..prepare import prepare
+    except ImportError as exc:  # pragma: no cover - prepare is part of the package
+        raise AnalysisError("spectrum is not continuum-normalised and specan.prepare is unavailable") from exc
+    notes.append("spectrum continuum-normalised by specan.prepare.prepare")
+    return prepare(spectrum)
+
+
+# ---------------------------------------------------------------------------
+# The observed side on its ln-lambda grid
+# ---------------------------------------------------------------------------
+@dataclass(frozen=True)
+class ObservedGrid:
+    """The observed side: arrays on the ln-lambda grid.
+
+    ``grid`` (ln lambda_vac, ``n`` points of ``step``) carries ``flux``, ``sigma``, ``valid``
+    and the cosine ``taper``; ``spline_x``, ``native_flux`` and ``native_sigma`` are the
+    native pixels (masked ones filled with the continuum and zero error) from which noise
+    realisations are resampled the way the data were.
+    """
+
+    info: object
+    noise_source: str
+    spline_x: np.ndarray
+    grid: np.ndarray
+    step: float
+    n: int
+    flux: np.ndarray
+    sigma: np.ndarray
+    native_flux: np.ndarray
+    native_sigma: np.ndarray
+    valid: np.ndarray
+    taper: np.ndarray
+
+
+class _Pixels(NamedTuple):
+    wave: np.ndarray  # vacuum, sorted
+    flux: np.ndarray
+    sigma: np.ndarray | None
+    bad: np.ndarray
+
+
+def _usable_pixels(spectrum, info, telluric):
+    """Sorted vacuum pixels with their bad-pixel mask (non-finite, masked, zero error, tellurics)."""
+    w = wavelength_in(spectrum, "vacuum")
+    f = np.asarray(spectrum.flux.value, dtype=float)
+    sig = sigma_array(spectrum)
+    bad = ~np.isfinite(f) | ~np.isfinite(w)
+    if spectrum.mask is not None:
+        bad |= np.asarray(spectrum.mask, bool)
+    if sig is not None:
+        bad |= ~np.isfinite(sig) | (sig <= 0)
+    order = np.argsort(w)
+    w, f, bad = w[order], f[order], bad[order]
+    sig = None if sig is None else sig[order]
+    if (~bad).sum() < 50:
+        raise AnalysisError("fewer than 50 usable pixels: no velocity", info.path)
+    if telluric:
+        from ..prepare import telluric_mask
+
+        bad |= telluric_mask(w, "vacuum")
+    return _Pixels(w, f, sig, bad)
+
+
+def _native_step(lnw):
+    """Grid step (in ln lambda) of a spectrum with native pixels at ``lnw``."""
+    dl = np.diff(lnw)
+    dl = dl[dl > 0]
+    # sample the finest part of the spectrum natively, but not a few stray close pixels
+    # (overlapping merged orders) at the cost of a huge grid
+    return max(float(np.percentile(dl, 5)), float(np.median(dl)) / 3.0)
+
+
+def _edge_taper(valid):
+    """Weights rising as a cosine over ~ 2% of the range at both ends and 5 pixels at gap edges."""
+    n = valid.size
+    ntap_end = max(5, int(0.02 * n))
+    dist = distance_transform_edt(np.pad(valid, 1, constant_values=False))[1:-1]
+    edge = np.minimum(np.arange(n) + 1, n - np.arange(n))
+    taper = np.clip(np.minimum(dist / 5.0, edge / ntap_end), 0.0, 1.0)
+    return np.where(valid, 0.5 - 0.5 * np.cos(np.pi * taper), 0.0)
+
+
+def observe_on_grid(spectrum, *, step=None, telluric=True, clip_emission=True, notes=None):
+    """The normalised ``spectrum`` on a ln-lambda grid of ``step`` (default: its finest sampling).
+
+    Tellurics (``telluric``) and pixels well above the continuum (``clip_emission``,
+    :func:`hot_pixels`) are masked; a spectrum without errors gets DER_SNR noise
+    (:func:`noise_from_flux`). Notes are appended to ``notes``.
+    """
+    notes = notes if notes is not None else []
+    info = get_info(spectrum)
+    w, f, sig, bad = _usable_pixels(spectrum, info, telluric)
+    if sig is None:
+        sig = noise_from_flux(f, bad)
+        noise_source = "DER_SNR at the continuum, scaled as sqrt(flux)"
+    else:
+        noise_source = "error array"
+    if clip_emission:
+        hot = hot_pixels(f, sig, bad)
+        if hot.any():
+            notes.append(f"{int(hot.sum())} pixels above the continuum (emission/cosmic rays) excluded")
+            bad |= hot
+    lnw = np.log(w)
+    step = _native_step(lnw) if step is None else step
+    good = ~bad
+    lo, hi = lnw[good][0], lnw[good][-1]
+    n = int(math.floor((hi - lo) / step)) + 1
+    grid = lo + step * np.arange(n)
+    f_fill = np.where(bad, 1.0, f)
+    valid = ~(np.interp(grid, lnw, bad.astype(float)) > 1e-6)
+    return ObservedGrid(
+        info=info, noise_source=noise_source, spline_x=lnw, grid=grid, step=step, n=n,
+        flux=make_interp_spline(lnw, f_fill, k=SPLINE_K)(grid),
+        sigma=np.interp(grid, lnw, np.where(np.isfinite(sig), sig, np.nanmedian(sig))),
+        native_flux=f_fill, native_sigma=np.where(bad, 0.0, np.nan_to_num(sig)),
+        valid=valid, taper=_edge_taper(valid))
+
+
+# ---------------------------------------------------------------------------
+# Lags, and the extended grid templates are prepared on
+# ---------------------------------------------------------------------------
+@dataclass(frozen=True)
+class TemplateGrid:
+    """Where templates are prepared for one set-up: ``n`` points of ``step`` from ``ln0`` (ln lambda_vac).
+
+    It extends the spectrum's grid by the lag window on both sides; ``hp_sigma`` is the
+    high-pass sigma (grid pixels) both sides are filtered with, None for none.
+    """
+
+    ln0: float
+    step: float
+    n: int
+    hp_sigma: float | None
+
+
+@dataclass(frozen=True)
+class LagWindow:
+    """The lags of one spectrum's correlations, in pixels of its grid.
+
+    Lag s (positive = spectrum redshifted relative to the template) is searched within
+    ``|s| <= smax`` (``vmax_kms``); the CCF about the peak is examined for ``|j| <= half``;
+    templates start ``pad`` pixels before the spectrum, and FFTs have length ``m``.
+    """
+
+    step: float
+    n: int
+    vmax_kms: float
+    smax: int
+    half: int
+    pad: int
+    m: int
+    templates: TemplateGrid
+
+
+def lag_window(observed, vmax, resolving_power, highpass):
+    """The :class:`LagWindow` of ``observed`` for a search range +-``vmax`` at ``resolving_power``.
+
+    ``highpass`` is the high-pass sigma in resolution elements (None or 0: no filter).
+    """
+    step, n = observed.step, observed.n
+    vmax_kms = u.Quantity(vmax, u.km / u.s).value
+    smax = int(math.ceil(math.log(float(doppler_factor(vmax_kms * u.km / u.s))) / step))
+    fwhm_grid = 1.0 / (resolving_power * step)  # resolution element in grid pixels
+    hp = float(highpass) * fwhm_grid if highpass else None
+    # lags examined for the error and second-peak statistics: the search range, and several
+    # high-pass lengths so that the CCF noise decorrelates within the window
+    half = int(max(smax, 40, math.ceil(6 * (hp or 0))))
+    pad = half + COVER_TAPER + 4
+    ln0 = observed.grid[0] - pad * step
+    m = sfft.next_fast_len(2 * n + 2 * pad)
+    return LagWindow(step=step, n=n, vmax_kms=vmax_kms, smax=smax, half=half, pad=pad, m=m,
+                     templates=TemplateGrid(ln0=ln0, step=step, n=n + 2 * pad, hp_sigma=hp))
+
+
+def kms_per_pixel(s, step):
+    """Velocity (km/s) spanned by one grid pixel of lag about lag ``s``."""
+    return _kms(math.exp((s + 0.5) * step)) - _kms(math.exp((s - 0.5) * step))
+
+
+# ---------------------------------------------------------------------------
+# Filters shared by both sides
+# ---------------------------------------------------------------------------
+def gauss_smooth(x, sigma):
+    """Gaussian smoothing along axis 0 with zero boundaries, by FFT.
+
+    Hand-written rather than ``scipy.ndimage.gaussian_filter1d(mode="constant")`` because the
+    high-pass sigma is tens of pixels and the noise realisations arrive as an (n, k) block: one
+    FFT per column costs the same at any sigma, and the kernel is the exact Gaussian transform
+    (no truncation at 4 sigma).
+    """
+    n = x.shape[0]
+    size = sfft.next_fast_len(n + int(math.ceil(8 * sigma)))  # zero padding: no wrap-around
+    k = np.arange(size // 2 + 1) / size
+    kern = np.exp(-2.0 * (np.pi * sigma * k) ** 2)  # Fourier transform of the Gaussian
+    if x.ndim == 2:
+        kern = kern[:, None]
+    return sfft.irfft(sfft.rfft(x, size, axis=0) * kern, size, axis=0)[:n]
+
+
+def highpass(x, sigma, valid):
+    """Subtract the local mean: a Gaussian-smoothed copy over the valid pixels only.
+
+    Tonry & Davis' low-frequency cut, done in pixel space so that spectrum and template get the
+    same filter before the normalisation sums. The mean is a normalised convolution (smoothed
+    values over smoothed coverage), so masked gaps and the ends of the data do not pull it
+    towards zero: otherwise lines next to a gap would be filtered differently in a star and in
+    its shifted template, a bias growing with the velocity.
+    """
+    if not sigma:
+        return np.where(valid if x.ndim == 1 else valid[:, None], x, 0.0)
+    v = valid.astype(float)
+    vv = v if x.ndim == 1 else v[:, None]
+    num = gauss_smooth(x * vv, sigma)
+    den = gauss_smooth(v, sigma)
+    den = den if x.ndim == 1 else den[:, None]
+    low = num / np.maximum(den, 1e-3)
+    return (x - low) * vv
+
+
+def cover_taper(valid, ntap=COVER_TAPER):
+    """Coverage weights of a template: 1 inside, a cosine over ``ntap`` pixels at every edge, 0 outside."""
+    dist = distance_transform_edt(np.pad(valid, 1, constant_values=False))[1:-1]
+    return np.where(valid, 0.5 - 0.5 * np.cos(np.pi * np.clip(dist / ntap, 0, 1)), 0.0)

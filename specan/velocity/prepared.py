@@ -1,0 +1,148 @@
+"""Templates prepared for correlation on a set-up's extended grid (:class:`~.grid.TemplateGrid`).
+
+A template is anything with a normalised flux: a built-in type from :mod:`specan.templates`
+(synthetic spectrum or line mask) or a user spectrum (template file, RV standard, reference
+exposure). Preparing it means: resample onto the extended grid, mask what the spectrum's own
+rules would mask, degrade to the spectrum's resolution, high-pass filter and taper its coverage.
+What comes out (:class:`PreparedTemplate`) depends on the set-up only, not on the spectrum, and
+keeps its FFTs per transform length, so one preparation serves every spectrum of the set-up.
+"""
+
+from __future__ import annotations
+
+import functools
+import math
+from typing import NamedTuple
+
+import numpy as np
+from scipy import fft as sfft
+from scipy.interpolate import make_interp_spline
+from scipy.ndimage import gaussian_filter1d
+
+from .. import templates
+from ..errors import AnalysisError
+from ..obsinfo import get_info, wavelength_in
+from ..resolution import FWHM_TO_SIGMA
+from .grid import SPLINE_K, cover_taper, highpass, hot_pixels, noise_from_flux, normalised, sigma_array
+
+__all__ = ["PreparedTemplate", "BuiltinCandidate", "builtin_template", "prepare_builtin", "spectrum_template"]
+
+
+class PreparedTemplate:
+    """Template side on the grid ln0 - pad*step ... : arrays T (flux - 1, tapered) and V (coverage)."""
+
+    def __init__(self, name, t_minus_1, cover, rv_kms=0.0, info=None, hp_sigma=None):
+        self.name = name
+        # unfiltered, zero where not covered (as the data are at masked pixels); the single-star
+        # model is built from it like the data
+        self.T0 = np.where(cover > 0, t_minus_1, 0.0)
+        self.hp_sigma = hp_sigma
+        th = highpass(self.T0, hp_sigma, cover > 0)
+        # the coverage taper is a weight: T = V t enters the cross term, V t^2 the template energy,
+        # so that a noiseless shifted copy correlates to exactly 1 even where the taper is < 1
+        self.T = th * cover
+        self.T2 = th * th * cover
+        self.V = cover
+        self.rv_kms = rv_kms
+        self.info = info
+        self._fft = {}
+
+    def ffts(self, m):
+        """Real FFTs of length ``m`` of T, T^2 (weighted) and V, computed once per length."""
+        if m not in self._fft:
+            self._fft[m] = (sfft.rfft(self.T, m), sfft.rfft(self.T2, m), sfft.rfft(self.V, m))
+        return self._fft[m]
+
+
+# ---------------------------------------------------------------------------
+# Built-in templates
+# ---------------------------------------------------------------------------
+class BuiltinCandidate(NamedTuple):
+    """A built-in template to try: MK type, resolving power and kind (``"synth"`` or ``"mask"``)."""
+
+    sptype: str
+    lumclass: str
+    resolving_power: float
+    kind: str = "synth"
+
+
+@functools.lru_cache(maxsize=160)  # the 14-type grid and refinements for a few instrument set-ups
+def builtin_template(sptype, lumclass, resolving_power, ln0, step, n, kind="synth", hp_sigma=None):
+    """A built-in template (:func:`specan.templates.on_log_grid`) ready for correlation."""
+    name, flux, valid = templates.on_log_grid(sptype, lumclass, resolving_power, ln0, step, n, kind=kind)
+    return PreparedTemplate(name, flux - 1.0, cover_taper(valid), hp_sigma=hp_sigma)
+
+
+def prepare_builtin(candidate, grid):
+    """:func:`builtin_template` of a :class:`BuiltinCandidate` on a :class:`~.grid.TemplateGrid`.
+
+    The grid start is rounded (1e-12 in ln lambda) so that spectra of one set-up share cached
+    templates.
+    """
+    return builtin_template(candidate.sptype, candidate.lumclass, candidate.resolving_power,
+                            round(grid.ln0, 12), grid.step, grid.n, kind=candidate.kind, hp_sigma=grid.hp_sigma)
+
+
+# ---------------------------------------------------------------------------
+# User spectra as templates
+# ---------------------------------------------------------------------------
+def _template_pixels(spec, clip, notes):
+    """Sorted (ln lambda_vac, flux, bad) of a normalised template spectrum."""
+    w = wavelength_in(spec, "vacuum")
+    f = np.asarray(spec.flux.value, float)
+    bad = ~np.isfinite(f)
+    if spec.mask is not None:
+        bad |= np.asarray(spec.mask, bool)
+    from ..prepare import telluric_mask
+
+    bad |= telluric_mask(w, "vacuum")  # tellurics sit at the template's own topocentric wavelengths
+    order = np.argsort(w)
+    w, f, bad = w[order], f[order], bad[order]
+    if clip:
+        sig = sigma_array(spec)
+        sig = noise_from_flux(f, bad) if sig is None else sig[order]
+        hot = hot_pixels(f, sig, bad)
+        if hot.any():
+            notes.append(f"{int(hot.sum())} template pixels above the continuum excluded, as in the spectrum")
+            bad |= hot
+    return np.log(w), f, bad
+
+
+def _on_grid(lnw, f, bad, grid):
+    """(flux, valid) of template pixels resampled onto ``grid``: continuum outside their range."""
+    n = grid.size
+    inside = (grid >= lnw[~bad][0]) & (grid <= lnw[~bad][-1])
+    flux = np.ones(n)
+    flux[inside] = make_interp_spline(lnw, np.where(bad, 1.0, f), k=SPLINE_K)(grid[inside])
+    badg = np.interp(grid, lnw, bad.astype(float), left=1.0, right=1.0) > 1e-6
+    return flux, inside & ~badg
+
+
+def _to_resolution(flux, valid, tr, target_r, step, notes):
+    """The template flux degraded from resolving power ``tr`` to ``target_r`` when sharper."""
+    if target_r and tr and tr > target_r * 1.05:
+        # degrade the template to the spectrum's resolution (Gaussian, constant in ln lambda)
+        ker = math.sqrt((1.0 / target_r) ** 2 - (1.0 / tr) ** 2) * FWHM_TO_SIGMA / step
+        flux = 1.0 + gaussian_filter1d(np.where(valid, flux - 1.0, 0.0), ker, mode="constant")
+        notes.append(f"template degraded from R={tr:.0f} to R={target_r:.0f}")
+    elif not (target_r and tr):
+        notes.append("template resolution or spectrum resolution unknown: template used as given")
+    return flux
+
+
+def spectrum_template(spec, grid, target_r, name, notes, rv_kms=0.0, clip=True):
+    """A user spectrum (template file, RV standard or reference exposure) on the extended grid.
+
+    ``grid`` is a :class:`~.grid.TemplateGrid`; ``target_r`` the spectrum's resolving power
+    when known (else None: the template is used at its own). With ``clip`` its pixels far above
+    the continuum are excluded by the rule the star's are (:func:`~.grid.hot_pixels`).
+    """
+    spec = normalised(spec, notes)
+    tinfo = get_info(spec)
+    lnw, f, bad = _template_pixels(spec, clip, notes)
+    flux, valid = _on_grid(lnw, f, bad, grid.ln0 + grid.step * np.arange(grid.n))
+    flux = _to_resolution(flux, valid, tinfo.resolving_power, target_r, grid.step, notes)
+    if valid.sum() < 50:
+        raise AnalysisError(f"template {name} does not overlap the spectrum")
+    return PreparedTemplate(name, flux - 1.0, cover_taper(valid), rv_kms=rv_kms, info=tinfo,
+                            hp_sigma=grid.hp_sigma)
