@@ -136,7 +136,7 @@ def choose_template(request, search, power, *, reference=None, template_rv=0 * u
     ``search`` is the spectrum's :class:`~.correlation.PeakSearch`, ``power`` its
     :class:`ResolvingPower`; ``where`` names the spectrum in errors.
     """
-    grid = search.lags.templates
+    grid = search.lags.template_grid
     target_r = power.value if power.known else None
     if reference is not None:
         return TemplateChoice(reference_template(reference, grid, target_r, clip_emission, notes), power, {}, True)
@@ -180,7 +180,7 @@ def automatic_type(search, resolving_power, template_grid, notes, where=None):
     The grid (``template_grid`` or :func:`specan.templates.automatic_types`) is scored first,
     then the neighbours of its best (:func:`neighbour_types`).
     """
-    grid = search.lags.templates
+    grid = search.lags.template_grid
     grid_types = tuple(template_grid or templates.automatic_types())
     candidates = [BuiltinCandidate(st, lc, resolving_power) for st, lc in grid_types]
     prepared = [prepare_builtin(c, grid) for c in candidates]
@@ -220,7 +220,7 @@ def scan_resolving_power(search, candidate, power, chosen, notes):
     none correlates. At either end of the scan the value is reported as a bound.
     """
     tried = [float(f"{power.value * fac:.3g}") for fac in R_SCAN]
-    widths = [prepare_builtin(candidate._replace(resolving_power=rr), search.lags.templates) for rr in tried]
+    widths = [prepare_builtin(candidate._replace(resolving_power=rr), search.lags.template_grid) for rr in tried]
     best = best_index(template_peaks(search, widths))
     res_r, source = power.value, power.source
     if best is not None:

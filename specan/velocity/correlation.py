@@ -62,7 +62,7 @@ def observed_side(observed, lags):
     w_noise = 1.0 / np.clip(observed.sigma, 1e-12, None) ** 2
     w_noise /= np.median(w_noise[observed.valid])
     weight = observed.taper * w_noise
-    arrays = correlation_arrays(highpass(observed.flux - 1.0, lags.templates.hp_sigma, observed.valid), weight)
+    arrays = correlation_arrays(highpass(observed.flux - 1.0, lags.hp_sigma, observed.valid), weight)
     d_ffts = tuple(sfft.rfft(a, lags.m) for a in arrays)
     return ObservedSide(weight, arrays, d_ffts, float(np.sum(weight)))
 

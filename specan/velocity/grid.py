@@ -23,7 +23,7 @@ from scipy.ndimage import distance_transform_edt
 from ..doppler import doppler_factor
 from ..doppler import velocity_kms as _kms
 from ..errors import AnalysisError
-from ..obsinfo import get_info, wavelength_in
+from ..obsinfo import ObsInfo, get_info, wavelength_in
 
 __all__ = ["SPLINE_K", "COVER_TAPER", "ObservedGrid", "TemplateGrid", "LagWindow", "normalised",
            "observe_on_grid", "lag_window", "kms_per_pixel", "sigma_array", "hot_pixels", "noise_from_flux",
@@ -110,7 +110,7 @@ class ObservedGrid:
     realisations are resampled the way the data were.
     """
 
-    info: object
+    info: ObsInfo
     noise_source: str
     spline_x: np.ndarray
     grid: np.ndarray
@@ -231,7 +231,8 @@ class LagWindow:
 
     Lag s (positive = spectrum redshifted relative to the template) is searched within
     ``|s| <= smax`` (``vmax_kms``); the CCF about the peak is examined for ``|j| <= half``;
-    templates start ``pad`` pixels before the spectrum, and FFTs have length ``m``.
+    templates start ``pad`` pixels before the spectrum (on ``template_grid``), and FFTs have
+    length ``m``.
     """
 
     step: float
@@ -241,7 +242,12 @@ class LagWindow:
     half: int
     pad: int
     m: int
-    templates: TemplateGrid
+    template_grid: TemplateGrid
+
+    @property
+    def hp_sigma(self):
+        """High-pass sigma (grid pixels) of both sides, None for none."""
+        return self.template_grid.hp_sigma
 
 
 def lag_window(observed, vmax, resolving_power, highpass):
@@ -261,7 +267,7 @@ def lag_window(observed, vmax, resolving_power, highpass):
     ln0 = observed.grid[0] - pad * step
     m = sfft.next_fast_len(2 * n + 2 * pad)
     return LagWindow(step=step, n=n, vmax_kms=vmax_kms, smax=smax, half=half, pad=pad, m=m,
-                     templates=TemplateGrid(ln0=ln0, step=step, n=n + 2 * pad, hp_sigma=hp))
+                     template_grid=TemplateGrid(ln0=ln0, step=step, n=n + 2 * pad, hp_sigma=hp))
 
 
 def kms_per_pixel(s, step):

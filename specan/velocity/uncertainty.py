@@ -149,7 +149,7 @@ def estimate_errors(which, td, peak, observed, search, template, n_resample, see
     rv_err_mc = None
     if which in ("both", "mc") and n_resample and n_resample >= 5:
         err_px = resample_error(observed, search.side.weight, template, lags.pad, lags.m, peak.lag, td.err_px,
-                                n_resample, seed, lags.templates.hp_sigma)
+                                n_resample, seed, lags.hp_sigma)
         rv_err_mc = abs(err_px * dvds)
         notes.append(f"empirical error from {n_resample} noise realisations ({observed.noise_source})")
     return VelocityErrors(rv_err_td, rv_err_mc)
