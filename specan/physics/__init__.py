@@ -20,11 +20,11 @@ import astropy.units as u
 import numpy as np
 from scipy import optimize, stats
 
-from .errors import AnalysisError, MetadataError, ReadError
-from .io import parse_angle
-from .frames import ESCAPE_SPEED, GALACTOCENTRIC_PARAMETERS, galactocentric_frame, galactocentric_parameters
-from .mkscales import absolute_magnitude, load_scales, lumclass_number, scale_range, teff_from_type
-from .mktypes import number_to_lumclass
+from ..errors import AnalysisError, MetadataError, ReadError
+from ..io import parse_angle
+from ..frames import ESCAPE_SPEED, GALACTOCENTRIC_PARAMETERS, galactocentric_frame, galactocentric_parameters
+from ..mkscales import absolute_magnitude, load_scales, lumclass_number, scale_range, teff_from_type
+from ..mktypes import number_to_lumclass
 
 __all__ = [
     "load_scales",
@@ -65,7 +65,7 @@ EXTINCTION_LAW = "Fitzpatrick (1999), dust_extinction.parameter_averages.F99"
 
 def _flux_as_flambda(spectrum):
     """(wave_AA, F_lambda, relative) as plain arrays; relative=True for dimensionless flux."""
-    from .obsinfo import get_info
+    from ..obsinfo import get_info
 
     info = get_info(spectrum)
     wave = spectrum.spectral_axis.to_value(u.AA, equivalencies=u.spectral())
@@ -657,7 +657,7 @@ def photometry_from_header(spectrum, v_key, v_err_key=None, ebv_key=None):
         Row dict (``object``, ``v``, ``v_err``, ``ebv``, position from the
         pointing), or None when the V keyword is absent or not a number.
     """
-    from .obsinfo import get_info
+    from ..obsinfo import get_info
 
     info = get_info(spectrum)
     header = {str(k).upper(): v for k, v in (info.header or {}).items()}
@@ -874,7 +874,7 @@ def derive(classification, velocity=None, photometry=None, spectrum=None, escape
     rv = _get(velocity, "rv", u.km / u.s)
     ra, dec = _get(photometry, "ra", u.deg), _get(photometry, "dec", u.deg)
     if (ra is None or dec is None) and spectrum is not None:
-        from .obsinfo import get_info
+        from ..obsinfo import get_info
 
         info = get_info(spectrum)
         if info.ra_deg is not None and info.dec_deg is not None:
