@@ -92,6 +92,7 @@ def _class_magnitudes(probs, code, code_err):
 
 
 def _mixture_cdf(mu, p, mu_k, sig_k):
+    """CDF at ``mu`` of the mixture of N(mu_k, sig_k) with weights ``p``."""
     return float(np.sum(p * stats.norm.cdf((mu - mu_k) / sig_k)))
 
 

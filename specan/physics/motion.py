@@ -37,6 +37,7 @@ def _tangential_speed(pma, pmd, d_pc):
 
 
 def _sigma(err, unit):
+    """An optional error as a float in ``unit``; 0 when not given."""
     return u.Quantity(err, unit).value if err is not None else 0.0
 
 

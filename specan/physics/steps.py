@@ -297,6 +297,7 @@ def position(photometry, spectrum):
 
 
 def _optional(value, unit):
+    """``value * unit``, or None for None."""
     return None if value is None else value * unit
 
 
