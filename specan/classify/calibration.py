@@ -232,7 +232,7 @@ class Calibration:
 
     def _flags(self, x, noise, ok, snr, est, quality, model):
         """The (flag, note) pairs raised for criteria ``x`` read as ``est``, in :data:`FLAGS` order."""
-        fine, limits = self._fine, self.limits_
+        fine, limits = self.lattice_model(), self.limits_
         split = split_distance(x, noise, fine, self.settings["dof"], self.tau_)
         return (flags.low_snr(snr)
                 + flags.out_of_range(int(ok.sum()), len(x), est.code, fine["grid"], quality, limits["quality_p90"])
