@@ -48,14 +48,14 @@ def cross_validate(X, labels, fold):
     for f in range(fold.max() + 1):
         train = np.flatnonzero(fold != f)
         cal = C.Calibration(resolution=FWHM).fit_criteria(X[train], [labels[i] for i in train])
-        fine = cal._check()
+        fine = cal.lattice_model()
         for i in np.flatnonzero(fold == f):
             res = cal.classify_criteria(X[i])
             err[i] = res["code"] - codes[i]
             if 10 <= codes[i] < 60:   # B0-K9
                 truth = luminosity_group(labels[i][1])
                 group_right.append(luminosity_group(res["lumclass"]) == truth)
-                _, ll, _ = C._posterior(X[i], np.zeros(X.shape[1]), fine, cal.settings["dof"], 1.0)
+                _, ll, _ = C.posterior(X[i], np.zeros(X.shape[1]), fine, cal.settings["dof"], 1.0)
                 at = int(np.argmin(np.abs(fine["grid"] - codes[i])))
                 best = C.number_to_lumclass(int(np.argmax(ll[at])) + 1)
                 group_at_type.append(luminosity_group(best) == truth)

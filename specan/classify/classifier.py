@@ -1,0 +1,62 @@
+"""The public entry point: classify a spectrum with the shipped or a given calibration."""
+
+from __future__ import annotations
+
+import functools
+import json
+from importlib import resources
+
+from ..errors import AnalysisError
+from .calibration import Calibration
+
+__all__ = ["DEFAULT_FILE", "default_calibration", "classify"]
+
+DEFAULT_FILE = "calibration_jhc1984.json"
+
+
+@functools.lru_cache(maxsize=1)
+def default_calibration():
+    """The calibration shipped with specan (fitted from the JHC 1984 library)."""
+    try:
+        ref = resources.files("specan.data").joinpath(DEFAULT_FILE)
+        text = ref.read_text(encoding="utf-8")
+    except FileNotFoundError:
+        raise AnalysisError(f"default calibration {DEFAULT_FILE} missing from specan/data: regenerate it "
+                            "with scripts/fit_default_calibration.py") from None
+    return Calibration.from_dict(json.loads(text), DEFAULT_FILE)
+
+
+def classify(spectrum, calibration=None, rv=None, resolving_power=None):
+    """MK spectral type, luminosity class, Teff and flags of a spectrum.
+
+    Parameters
+    ----------
+    spectrum : specutils.Spectrum
+        Observed spectrum (normalised or not; air or vacuum; any velocity up to
+        +-2000 km/s, measured and removed with :mod:`specan.velocity`).
+    calibration : Calibration, str or Path, optional
+        A fitted calibration or its file; default: the shipped JHC (1984) one.
+    rv : astropy.units.Quantity, optional
+        Known velocity of the spectrum (skips the velocity measurement).
+    resolving_power : float, optional
+        Resolving power already estimated from the narrowest lines, used when the
+        metadata give none (see :func:`specan.classify.spectrum_criteria`).
+
+    Returns
+    -------
+    dict
+        ``sptype`` ("G2"), ``lumclass`` ("V"), ``mk`` ("G2 V"), ``code`` (O0=0 ... M0=60),
+        ``subclass_err`` (1 sigma, subclasses), ``lumclass_prob`` (class -> probability),
+        ``teff`` and ``teff_err`` (Quantity K: the type-Teff scale of each class from
+        :func:`specan.mkscales.teff_from_type` -- Pecaut & Mamajek 2013 for dwarfs and the other
+        scales named there -- averaged over ``lumclass_prob``, the spread added to the error),
+        ``nearest_standards`` (list of {id, mk, distance}), ``flags`` (list of the raised
+        ones among :data:`specan.classify.FLAGS`), ``notes`` (list of str), ``fit_quality``,
+        ``criteria`` (name -> {value, standard}), ``rv`` (velocity removed) and
+        ``calibration`` (its source).
+    """
+    if calibration is None:
+        calibration = default_calibration()
+    elif not isinstance(calibration, Calibration):
+        calibration = Calibration.load(calibration)
+    return calibration.classify(spectrum, rv=rv, resolving_power=resolving_power)
