@@ -1,0 +1,70 @@
+"""The fitted hydrogen lines as a transmission model, divided out before the other lines are measured."""
+
+from __future__ import annotations
+
+import astropy.units as u
+import numpy as np
+
+from .components import MIN_SEPARATION
+from .data import find_features
+from .profiles import profiles
+
+__all__ = ["hydrogen_model", "without_hydrogen"]
+
+
+def without_hydrogen(data, features, results, targets, ep_low, detect_sigma, min_depth):
+    """The arrays and their features with the fitted hydrogen lines divided out.
+
+    Parameters
+    ----------
+    data : LineData
+    features : Features
+        Found on ``data``.
+    results : dict of int to LineResult
+        The hydrogen lines measured so far.
+    targets : Targets
+    ep_low : Quantity
+        Lower-level excitation of each listed line.
+    detect_sigma, min_depth : float
+        For the features of the divided arrays (see :func:`specan.lines.data.find_features`).
+
+    Returns
+    -------
+    (LineData, Features)
+        ``data`` and ``features`` themselves when no hydrogen line can be divided out.
+    """
+    model = hydrogen_model(data, results, targets, ep_low.to_value(u.eV))
+    if model is None:
+        return data, features
+    divided = data.divided(model)
+    return divided, find_features(divided, detect_sigma, min_depth)
+
+
+def hydrogen_model(data, results, targets, ep_low):
+    """Transmission of the fitted hydrogen absorption lines on the pixel grid, or None.
+
+    A hydrogen line with a listed low-excitation line (lower level below 1 eV, e.g.
+    Ca II H beside H epsilon) closer than 0.6 line widths is left out: in cool stars
+    that partner can outweigh the hydrogen line and the fit cannot tell them apart.
+    High-excitation partners (He II Pickering lines beside the Balmer lines) do not
+    block: their share of an unresolvable blend goes to hydrogen.
+    """
+    pred, is_h = targets.pred, targets.hydrogen
+    model = np.ones(data.wave.size)
+    used = 0
+    others = pred[(~is_h) & (np.nan_to_num(ep_low, nan=0.0) < 1.0)]
+    for i, result in results.items():
+        fit = result.fit
+        if fit is None or not is_h[i] or not result.detected or fit["sign"] < 0 or fit["ew"] <= 0:
+            continue
+        if not abs(fit["ew"] - fit["ew_int"]) <= 0.3 * abs(fit["ew_int"]):
+            continue  # the profile does not describe the line (continuum trouble): leave it
+        if others.size and np.min(np.abs(others - fit["centre"])) < MIN_SEPARATION * targets.fwhm[i]:
+            continue  # an unresolvable blend with a listed line: keep it whole
+        _, prof = profiles(data.wave, np.array([fit["centre"]]), 0.0, fit["sigma"], fit["gamma"],
+                           fit["profile"])
+        model *= 1.0 - fit["ew"] * prof[0]
+        used += 1
+    if not used:
+        return None
+    return np.clip(model, 0.05, 1.0)

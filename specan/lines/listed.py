@@ -1,0 +1,119 @@
+"""The listed side of line work: which lines of a list a spectrum covers, where they fall at
+the star's velocity, how far a feature may lie from them, and which of them blend.
+"""
+
+from __future__ import annotations
+
+from typing import NamedTuple
+
+import astropy.units as u
+import numpy as np
+from astropy.table import QTable
+
+from ..doppler import C_KMS, doppler_factor
+from ..linelist import load_linelist
+from .data import DETECT_SIGMA, find_features
+
+__all__ = ["ListedLines", "lines_in_range", "line_widths", "match_windows", "blends", "velocities"]
+
+
+class ListedLines(NamedTuple):
+    """The listed lines a spectrum covers, in the spectrum's medium."""
+
+    rows: QTable            #: their rows of the line list
+    lab: np.ndarray         #: laboratory wavelengths, Angstrom
+    pred: np.ndarray        #: Doppler-shifted (predicted observed) wavelengths, Angstrom
+    rv: u.Quantity          #: the velocity they are shifted by
+    pred_all: np.ndarray    #: predicted wavelengths of the whole list (covered or not)
+
+
+def lines_in_range(data, linelist, kinds, rv):
+    """The listed lines the spectrum covers at velocity ``rv`` (estimated when None).
+
+    Returns
+    -------
+    ListedLines
+    """
+    table = _prepare_list(linelist, kinds)
+    lab_all = table[_lab_column(data)].to_value(u.AA)
+    rv_q = _resolve_rv(data, rv, lab_all)
+    pred_all = lab_all * doppler_factor(rv_q)
+    cov = _covered(data, pred_all)
+    return ListedLines(table[cov], lab_all[cov], pred_all[cov], rv_q, pred_all)
+
+
+def _prepare_list(linelist, kinds):
+    table = load_linelist() if linelist is None else (
+        linelist if isinstance(linelist, QTable) else load_linelist(linelist))
+    if kinds is not None and "kind" in table.colnames:
+        table = table[np.isin(np.asarray(table["kind"]).astype(str), list(kinds))]
+    return table
+
+
+def _lab_column(data):
+    return "wave_vac" if data.medium == "vacuum" else "wave_air"
+
+
+def _covered(data, lab_obs):
+    """Lines whose observed position lies inside the spectrum with one FWHM to spare."""
+    lo = data.wave[0] + data.fwhm[0]
+    hi = data.wave[-1] - data.fwhm[-1]
+    return (lab_obs > lo) & (lab_obs < hi)
+
+
+def _resolve_rv(data, rv, lab):
+    if rv is not None:
+        return u.Quantity(rv, u.km / u.s)
+    # crude estimate: offsets of the strongest features to their nearest listed line within
+    # +-400 km/s (specan choice: wider than the velocities of nearly all Galactic stars,
+    # common practice), histogram mode refined by the median around it
+    pos, _, _, emis = find_features(data, 2 * DETECT_SIGMA)
+    if pos.size < 3:
+        return 0.0 * u.km / u.s
+    keep = ~emis
+    pos = pos[keep]
+    ls = np.sort(lab)
+    j = np.clip(np.searchsorted(ls, pos), 1, ls.size - 1)
+    near = np.where(np.abs(ls[j - 1] - pos) < np.abs(ls[j] - pos), ls[j - 1], ls[j])
+    v = C_KMS * (pos - near) / near
+    v = v[np.abs(v) < 400]
+    if v.size < 3:
+        return 0.0 * u.km / u.s
+    hist, edges = np.histogram(v, bins=np.arange(-400, 401, 25))
+    centre = 0.5 * (edges[np.argmax(hist)] + edges[np.argmax(hist) + 1])
+    return float(np.median(v[np.abs(v - centre) < 50])) * u.km / u.s
+
+
+def line_widths(data, pred):
+    """The spectrum's line FWHM (Angstrom) at each predicted position."""
+    return np.interp(pred, data.wave, data.line_fwhm)
+
+
+def match_windows(pred, fwhm_at, window):
+    """Half-window (Angstrom) within which a feature is matched to each listed line.
+
+    ``window`` is a velocity; None gives one resolution element (c/R), at least 20 km/s.
+    """
+    if window is None:
+        win_kms = np.maximum(C_KMS * fwhm_at / pred, 20.0)
+    else:
+        win_kms = np.full(pred.shape, u.Quantity(window, u.km / u.s).value)
+    return pred * win_kms / C_KMS
+
+
+def blends(waves, ids, fwhm):
+    """For each line, the ids of the other listed lines within one resolution element."""
+    order = np.argsort(waves)
+    ws = waves[order]
+    out = [""] * len(waves)
+    for i in order:
+        lo = np.searchsorted(ws, waves[i] - fwhm[i])
+        hi = np.searchsorted(ws, waves[i] + fwhm[i], side="right")
+        others = [ids[order[j]] for j in range(lo, hi) if order[j] != i]
+        out[i] = ",".join(others)
+    return out
+
+
+def velocities(wave_obs, lab):
+    """Velocity offsets c (obs - lab) / lab, km/s, of observed against laboratory wavelengths."""
+    return C_KMS * (wave_obs - lab) / lab

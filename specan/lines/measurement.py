@@ -1,0 +1,354 @@
+"""Measurement of listed lines: centres, depths, equivalent widths (integrated and fitted),
+FWHM and their uncertainties.
+
+:func:`measure` is the recipe; each step is a function of its own. Per line the steps
+are: match a feature (:func:`match_feature`), choose the window
+(:func:`specan.lines.windows.line_window`), integrate (:func:`integrated_ew`), fit the
+line or blend (:func:`fit_line`), choose the reported equivalent width
+(:func:`chosen_ew`) and estimate the errors (:func:`window_noise`, :func:`cayrel_error`).
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+from typing import NamedTuple
+
+import astropy.units as u
+import numpy as np
+from astropy.table import QTable
+
+from ..resolution import GAUSS_FWHM
+from .components import component_centres, window_features, wing_mask
+from .data import DETECT_SIGMA, MIN_DEPTH, LineData, find_features, normalised
+from .hydrogen import without_hydrogen
+from .listed import blends, line_widths, lines_in_range, match_windows, velocities
+from .profiles import fit_gauss, fit_profile
+from .windows import line_window, local_continuum
+
+__all__ = ["measure", "cayrel_error", "Targets", "LineResult", "line_targets", "measure_lines",
+           "measure_line", "match_feature", "integrated_ew", "central_depth", "use_voigt", "fit_line",
+           "chosen_ew", "window_noise", "half_width", "line_table"]
+
+#: Profiles :func:`measure` can fit.
+PROFILES = ("auto", "gauss", "voigt")
+
+
+def cayrel_error(fwhm, pixel, snr):
+    """Equivalent-width error of a Gaussian line from Cayrel (1988).
+
+    ``sigma_EW = 1.5 * sqrt(FWHM * pixel) / (S/N)`` (Cayrel 1988, IAU Symp. 132, 345;
+    from memory; continuum placement not included).
+
+    Parameters
+    ----------
+    fwhm, pixel : astropy.units.Quantity or float
+        Line FWHM and pixel size (same unit).
+    snr : float
+        Continuum signal-to-noise ratio per pixel.
+
+    Returns
+    -------
+    Quantity or float
+        In the unit of ``fwhm``.
+    """
+    return 1.5 * np.sqrt(fwhm * pixel) / snr
+
+
+def measure(spectrum, linelist=None, rv=0 * u.km / u.s, resolving_power=None, profile="auto",
+            window=None, detect_sigma=DETECT_SIGMA, kinds=("atomic",), min_depth=MIN_DEPTH,
+            divide_hydrogen=True, _data=None):
+    """Measure every listed line the spectrum covers.
+
+    Per line: the centre is the matched feature (see :func:`identify`) or the
+    Doppler-shifted laboratory wavelength. The equivalent width is integrated
+    directly over an adaptive window (outward until the smoothed flux is back at
+    the continuum, levels off on a pseudo-continuum, or a neighbouring line
+    begins; the local continuum is taken from the window edges) and fitted with a
+    profile (one component per listed line and per unlisted feature inside the
+    window; shared shift and width, the width held near the spectrum's line
+    width). ``ew`` is the direct integral for isolated lines and the fit when the
+    window was cut by a neighbour or holds other components (``method`` says
+    which); hydrogen lines are always integrated (their fit is in ``ew_fit``).
+    Hydrogen is measured first and its fitted profiles divided out before the
+    other lines are measured, so lines in Balmer wings are measured against the
+    wing. Lines with no feature found are not ``detected``; their EW is
+    integrated over +-1 line width against the local level (an upper limit).
+    Uncertainties: ``ew_err`` from the error array (or DER_SNR noise), and
+    ``ew_err_cayrel`` from Cayrel (1988). Emission lines get negative equivalent
+    widths and ``emission`` True.
+
+    Parameters
+    ----------
+    spectrum : specutils.Spectrum
+        Normalised or not (then :func:`specan.prepare.prepare` is applied).
+    linelist : str, path or QTable, optional
+        Default: the packaged ``"stellar"`` list.
+    rv : Quantity or None
+        Radial velocity of the star (``None``: estimated, see :func:`identify`).
+    resolving_power : float, optional
+        Overrides ``info.resolving_power``.
+    profile : {"auto", "gauss", "voigt"}
+        Fitted profile; ``"auto"`` uses Voigt for hydrogen lines and for very deep
+        (> 0.7) lines with windows over four line widths wide, Gaussian otherwise.
+    window : Quantity, optional
+        Matching half-window in velocity (see :func:`identify`).
+    detect_sigma : float
+        Matched-filter significance above which a line is ``detected``.
+    kinds : sequence of str
+        Line-list ``kind`` values to measure (band heads are measured by
+        :func:`band_indices`).
+    min_depth : float
+        Features must stand this far out of the smoothed flux around them.
+    divide_hydrogen : bool
+        Measure the other lines on the spectrum divided by the fitted hydrogen
+        profiles (hydrogen lines with a listed low-excitation line closer than 0.6
+        line widths, such as H epsilon and Ca II H, are left in).
+
+    Returns
+    -------
+    astropy.table.QTable
+        Columns ``id``, ``species``, ``wave_air``, ``wave_vac``, ``wave_obs``,
+        ``velocity``, ``ew``, ``ew_err``, ``ew_err_cayrel``, ``ew_int``,
+        ``ew_int_err``, ``ew_fit``, ``ew_fit_err``, ``fwhm``, ``depth``,
+        ``significance``, ``fit_chi2``, ``window_min``, ``window_max``, ``method``,
+        ``profile``, ``blend``, ``detected``, ``emission``; ``meta`` holds rv, R and
+        medium. ``fit_chi2`` is the reduced chi-square of the profile fit (NaN when
+        none was fitted): near 1 when noise limits the line; far above 1 when the
+        profile model does (unresolved blends), and the errors, which count noise
+        only, then understate the equivalent width's true uncertainty.
+    """
+    if profile not in PROFILES:
+        raise ValueError("profile must be 'auto', 'gauss' or 'voigt'")
+    # _data: the internal arrays already built from this spectrum (analyse builds them once)
+    data = _data if _data is not None else LineData(normalised(spectrum), resolving_power)
+    listed = lines_in_range(data, linelist, kinds, rv)
+    targets = line_targets(data, listed, window)
+    features = find_features(data, detect_sigma, min_depth)
+    # Hydrogen first: the other lines are then measured on the spectrum divided by the
+    # fitted hydrogen profiles, so a metal line in a Balmer wing is measured against the
+    # wing (its local continuum), not against a continuum the wing lies far below.
+    results = measure_lines(data, features, targets, np.flatnonzero(targets.hydrogen), profile, detect_sigma)
+    data_m, features_m = data, features
+    if divide_hydrogen:
+        data_m, features_m = without_hydrogen(data, features, results, targets, listed.rows["ep_low"],
+                                              detect_sigma, min_depth)
+    results.update(measure_lines(data_m, features_m, targets, np.flatnonzero(~targets.hydrogen), profile,
+                                 detect_sigma))
+    return line_table(data, listed, targets, [results[i] for i in range(targets.pred.size)])
+
+
+class Targets(NamedTuple):
+    """Where each listed line is looked for (one element per line)."""
+
+    pred: np.ndarray      #: Doppler-shifted laboratory wavelength, Angstrom
+    fwhm: np.ndarray      #: the spectrum's line FWHM there, Angstrom
+    match: np.ndarray     #: half-window for matching a feature, Angstrom
+    hydrogen: np.ndarray  #: bool: a hydrogen line
+
+
+def line_targets(data, listed, window):
+    """:class:`Targets` of the listed lines (``window``: matching half-window in velocity or None)."""
+    fwhm_at = line_widths(data, listed.pred)
+    hydrogen = np.array([str(s) == "H I" for s in listed.rows["species"]], bool)
+    return Targets(listed.pred, fwhm_at, match_windows(listed.pred, fwhm_at, window), hydrogen)
+
+
+@dataclass
+class LineResult:
+    """What measuring one line gives (NaN where a quantity was not measured)."""
+
+    wave_obs: float = np.nan
+    ew: float = np.nan
+    ew_err: float = np.nan
+    ew_err_cayrel: float = np.nan
+    ew_int: float = np.nan
+    ew_int_err: float = np.nan
+    ew_fit: float = np.nan
+    ew_fit_err: float = np.nan
+    fwhm: float = np.nan
+    depth: float = np.nan
+    significance: float = np.nan
+    window_min: float = np.nan
+    window_max: float = np.nan
+    fit_chi2: float = np.nan
+    method: str = "none"
+    profile: str = ""
+    detected: bool = False
+    emission: bool = False
+    #: the profile fit (see :mod:`specan.lines.profiles`) with its ``profile``, ``sign``
+    #: and the line's ``ew_int``, or None
+    fit: dict | None = None
+
+
+def measure_lines(data, features, targets, which, profile, detect_sigma):
+    """:func:`measure_line` of each line index in ``which``, as ``{index: LineResult}``."""
+    return {int(i): measure_line(data, features, targets, i, profile, detect_sigma) for i in which}
+
+
+def measure_line(data, features, targets, i, profile, detect_sigma):
+    """Measure listed line ``i`` on ``data``, whose features are ``features``.
+
+    Returns
+    -------
+    LineResult
+        ``method`` "masked" (and nothing measured) when the line's core has no good pixel.
+    """
+    fw, hydrogen = targets.fwhm[i], bool(targets.hydrogen[i])
+    centre, max_shift, matched = match_feature(features, targets.pred[i], targets.match[i], fw)
+    ic = data.nearest_pixel(centre)
+    if not data.good[np.abs(data.wave - centre) <= 0.5 * fw].any():
+        return LineResult(method="masked")
+    s_c = float(data.signif[ic])
+    sign = -1.0 if s_c < -detect_sigma else 1.0
+    # a line is detected where identification found a feature for it (significant in
+    # the matched filter and standing out of its surroundings by min_depth)
+    detected = matched and sign * s_c >= detect_sigma
+    window = line_window(data, ic, centre, sign, fw, hydrogen, matched)
+    cont = local_continuum(data, window)
+    ew_int, ew_int_err = integrated_ew(data, window, cont)
+    result = LineResult(wave_obs=centre, ew_int=ew_int, ew_int_err=ew_int_err, significance=s_c,
+                        depth=central_depth(data, ic, centre, window, cont, sign),
+                        window_min=data.wave[window.lo], window_max=data.wave[window.hi], emission=sign < 0)
+    in_win = window_features(data, features, window, sign)
+    centres = component_centres(data, targets, i, centre, window, in_win)
+    skip = wing_mask(data, targets, i, centre, window, in_win, centres) if hydrogen else None
+    voigt = use_voigt(profile, hydrogen, result.depth, data, window, fw)
+    fit = fit_line(data, window, cont, centres, voigt, max_shift, fw, sign, skip, hydrogen) if detected else None
+    if fit is not None:
+        result.profile = "voigt" if voigt else "gauss"
+        result.fit = dict(fit, profile=result.profile, sign=sign, ew_int=ew_int)
+        result.ew_fit, result.ew_fit_err, result.fit_chi2 = fit["ew"], fit["ew_err"], fit["chi2"]
+        result.fwhm, result.wave_obs = fit["fwhm"], fit["centre"]
+    else:
+        result.fwhm = half_width(data, ic, window.lo, window.hi, sign)
+    result.method, result.ew, result.ew_err = chosen_ew(fit, result.profile, window.cut, len(centres) - 1,
+                                                        hydrogen, ew_int, ew_int_err)
+    # significant in the matched filter AND an equivalent width clear of its error
+    result.detected = detected and abs(result.ew) > 2.0 * result.ew_err
+    fwhm_c = result.fwhm if np.isfinite(result.fwhm) else fw
+    result.ew_err_cayrel = cayrel_error(fwhm_c, data.dx[ic], 1.0 / window_noise(data, window))
+    return result
+
+
+def match_feature(features, pred, match, fwhm):
+    """Centre, allowed fit shift and whether a feature lies within ``match`` of ``pred``.
+
+    Without a feature the line is measured at ``pred`` and its fit may shift by ``match``.
+    """
+    pos = features.position
+    if pos.size:
+        k = int(np.argmin(np.abs(pos - pred)))
+        if abs(pos[k] - pred) <= match:
+            # a matched feature fixes the centre; the fit may only refine it (a wide
+            # shift would let blended components trade places)
+            return pos[k], 0.5 * fwhm, True
+    return pred, match, False
+
+
+def integrated_ew(data, window, cont):
+    """Equivalent width integrated directly over the window against ``cont``, and its error."""
+    sel = slice(window.lo, window.hi + 1)
+    ew_int = float(np.sum((1.0 - data.flux[sel] / cont) * data.dx[sel]))
+    sig_sel = data.sigma[sel]
+    ok = np.isfinite(sig_sel)
+    ew_int_err = float(np.sqrt(np.sum(np.where(ok, sig_sel / cont * data.dx[sel], 0.0) ** 2)))
+    return ew_int, ew_int_err
+
+
+def central_depth(data, ic, centre, window, cont, sign):
+    """Depth of the deepest pixel (emission: height of the highest) next to the centre, against ``cont``."""
+    near = slice(max(ic - 1, 0), min(ic + 2, data.wave.size))
+    fl = data.flux[near]
+    c_mid = float(np.interp(centre, data.wave[window.lo:window.hi + 1], cont))
+    return 1.0 - (fl.min() if sign > 0 else fl.max()) / c_mid
+
+
+def use_voigt(profile, hydrogen, depth, data, window, fwhm):
+    """Whether the line is fitted with a Voigt profile (else Gaussian)."""
+    # strong lines with damping wings: deep core and a window many widths wide
+    strong = depth > 0.7 and (data.wave[window.hi] - data.wave[window.lo]) > 4.0 * fwhm
+    return profile == "voigt" or (profile == "auto" and (hydrogen or strong))
+
+
+def fit_line(data, window, cont, centres, voigt, max_shift, fwhm, sign, skip, hydrogen):
+    """Profile fit of a line (component 0) and its companions over the window, or None.
+
+    Gaussian fits take the fast variable-projection path; Voigt fits iterate, and a
+    hydrogen line's Gaussian width is free (thermal and Stark broadening).
+    """
+    if voigt:
+        return fit_profile(data, window.lo, window.hi, cont, centres, "voigt", max_shift, fwhm / GAUSS_FWHM,
+                           sign, skip, free_width=hydrogen)
+    return fit_gauss(data, window.lo, window.hi, cont, centres, max_shift, fwhm / GAUSS_FWHM, sign)
+
+
+def chosen_ew(fit, profile, cut, n_extra, hydrogen, ew_int, ew_int_err):
+    """The reported equivalent width: ``(method, ew, ew_err)``.
+
+    The fit where a neighbour cut the window or the fit holds ``n_extra`` other
+    components; the direct integral otherwise.
+    """
+    # hydrogen lines are integrated: on real low-resolution spectra the continuum
+    # errors under their broad wings make free Voigt fits unreliable (measured on the
+    # JHC library); the fit is reported in ew_fit and used to divide hydrogen out
+    if fit is not None and (cut or n_extra) and not hydrogen:
+        return ("multi_" if n_extra else "") + profile + "_fit", fit["ew"], fit["ew_err"]
+    return "integration", ew_int, ew_int_err
+
+
+def window_noise(data, window):
+    """Typical noise per pixel of the normalised flux over the window (NaN when none is known)."""
+    sig_sel = data.sigma[window.lo:window.hi + 1]
+    ok = np.isfinite(sig_sel)
+    return np.median(sig_sel[ok]) if ok.any() else np.nan
+
+
+def half_width(data, ic, lo, hi, sign):
+    """FWHM from the half-depth crossings of the data (no fit available)."""
+    d = sign * (1.0 - data.flux[lo:hi + 1])
+    j = ic - lo
+    if d.size < 3 or d[j] <= 0:
+        return np.nan
+    half = 0.5 * d[j]
+    x = data.wave[lo:hi + 1]
+    left = np.flatnonzero(d[:j] < half)
+    right = np.flatnonzero(d[j:] < half)
+    if not left.size or not right.size:
+        return np.nan
+    a = left[-1]
+    b = j + right[0]
+    xl = np.interp(half, [d[a], d[a + 1]], [x[a], x[a + 1]]) if d[a + 1] != d[a] else x[a]
+    xr = np.interp(half, [d[b], d[b - 1]], [x[b], x[b - 1]]) if d[b - 1] != d[b] else x[b]
+    return float(xr - xl)
+
+
+_FLOAT_COLUMNS = ("wave_obs", "ew", "ew_err", "ew_err_cayrel", "ew_int", "ew_int_err", "ew_fit", "ew_fit_err",
+                  "fwhm", "depth", "significance", "window_min", "window_max", "fit_chi2")
+
+
+def line_table(data, listed, targets, results):
+    """The table :func:`measure` returns, from one :class:`LineResult` per listed line."""
+    t = listed.rows
+    ids = [str(i) for i in t["id"]]
+    cols = {name: np.array([getattr(r, name) for r in results], float) for name in _FLOAT_COLUMNS}
+    out = QTable()
+    out["id"] = ids
+    out["species"] = [str(s) for s in t["species"]]
+    out["wave_air"] = t["wave_air"].to(u.AA)
+    out["wave_vac"] = t["wave_vac"].to(u.AA)
+    out["wave_obs"] = cols["wave_obs"] * u.AA
+    out["velocity"] = velocities(cols["wave_obs"], listed.lab) * u.km / u.s
+    for name in ("ew", "ew_err", "ew_err_cayrel", "ew_int", "ew_int_err", "ew_fit", "ew_fit_err", "fwhm"):
+        out[name] = cols[name] * u.AA
+    out["depth"] = cols["depth"]
+    out["significance"] = cols["significance"]
+    out["fit_chi2"] = cols["fit_chi2"]
+    out["window_min"] = cols["window_min"] * u.AA
+    out["window_max"] = cols["window_max"] * u.AA
+    out["method"] = [str(r.method) for r in results]
+    out["profile"] = [str(r.profile) for r in results]
+    out["blend"] = [str(b) for b in blends(listed.pred, ids, targets.fwhm)]
+    out["detected"] = np.array([r.detected for r in results], bool)
+    out["emission"] = np.array([r.emission for r in results], bool)
+    out.meta.update(data.meta(listed.rv))
+    return out
