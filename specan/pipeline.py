@@ -114,6 +114,7 @@ def available_stages() -> dict:
 
 
 def _stage_function(name):
+    """The function that implements a stage, looked up when the stage runs."""
     module, func = next((m, f) for n, m, f in STAGES if n == name)
     return getattr(importlib.import_module(module), func)
 
@@ -155,7 +156,8 @@ def analyse_file(path, settings=None) -> dict:
         ``{"overrides": {...}, "plots": bool, "stages": [...], "photometry":
         path}``; ``overrides`` go to ``specan.read``; ``stages`` (default
         all) names the stages to run; ``photometry`` is a per-object CSV
-        (see ``specan.physics.load_photometry``) for distances.
+        (see ``specan.physics.load_photometry``) for distances;
+        ``calibration`` an MK calibration file (default: the shipped one).
 
     Returns
     -------
