@@ -187,8 +187,26 @@ def plot_hr(table_or_rows, path, title="HR diagram of the night", label=True, dp
     FigureCanvasAgg(fig)
     ax = fig.add_subplot()
     ax.set_xscale("log")
-
     scales = mkscales.load_scales()
+    loci = _draw_loci(ax, scales)
+    _draw_stars(ax, placed)
+    _set_limits_and_ticks(ax, scales, placed)
+    if placed and label:
+        _label_points(ax, placed, fontsize=7 if len(placed) <= 40 else 5)
+    _annotate(fig, ax, title, skipped)
+    fig.tight_layout()
+
+    path = Path(path)
+    path.parent.mkdir(parents=True, exist_ok=True)
+    # written in place: a caller that needs the file to appear whole (the night run) writes
+    # to a temporary path of its own (specan.night.files.atomic_path)
+    fig.savefig(path, format="png", dpi=dpi)
+    return {"path": str(path), "plotted": [p["name"] for p in placed], "skipped": skipped,
+            "xlim": tuple(ax.get_xlim()), "ylim": tuple(ax.get_ylim()), "loci": loci}
+
+
+def _draw_loci(ax, scales) -> dict:
+    """The supergiant, giant and main-sequence loci of the scale table; class -> points drawn."""
     loci = {}
     for cls, text, colour in _LOCI:
         rows = scales[scales["lumclass"] == cls]
@@ -196,24 +214,30 @@ def plot_hr(table_or_rows, path, title="HR diagram of the night", label=True, dp
         ax.plot(rows["teff"].to_value(u.K), rows["m_v"].to_value(u.mag), "-", color=colour, alpha=0.45,
                 lw=2.0, label=text, zorder=1)
         loci[cls] = len(rows)
+    return loci
 
-    if placed:
-        x = np.array([p["teff_k"] for p in placed])
-        y = np.array([p["m_v_abs"] for p in placed])
-        xe = np.array([p["teff_err_k"] if p["teff_err_k"] is not None else np.nan for p in placed])
-        ye = np.array([p["m_v_abs_err"] if p["m_v_abs_err"] is not None else np.nan for p in placed])
-        ax.errorbar(x, y, xerr=np.where(np.isfinite(xe), xe, 0.0), yerr=np.where(np.isfinite(ye), ye, 0.0),
-                    fmt="o", ms=4, color="k", ecolor="0.45", elinewidth=0.8, capsize=1.5, zorder=3,
-                    label="stars of the night")
-    else:
+
+def _draw_stars(ax, placed):
+    """The stars with their error bars (a missing error drawn as none), or a note that there are none."""
+    if not placed:
         ax.text(0.5, 0.5, "no classified stars", ha="center", va="center", transform=ax.transAxes)
+        return
+    x = np.array([p["teff_k"] for p in placed])
+    y = np.array([p["m_v_abs"] for p in placed])
+    xe = np.array([p["teff_err_k"] if p["teff_err_k"] is not None else np.nan for p in placed])
+    ye = np.array([p["m_v_abs_err"] if p["m_v_abs_err"] is not None else np.nan for p in placed])
+    ax.errorbar(x, y, xerr=np.where(np.isfinite(xe), xe, 0.0), yerr=np.where(np.isfinite(ye), ye, 0.0),
+                fmt="o", ms=4, color="k", ecolor="0.45", elinewidth=0.8, capsize=1.5, zorder=3,
+                label="stars of the night")
 
-    # Limits from the loci and the stars, then inverted: hot on the left, bright at the top.
+
+def _set_limits_and_ticks(ax, scales, placed):
+    """Limits from the loci and the stars, then inverted: hot on the left, bright at the top."""
+    from matplotlib.ticker import FixedLocator, NullFormatter, NullLocator
+
     allx = np.concatenate([scales["teff"].to_value(u.K), [p["teff_k"] for p in placed]])
     ally = np.concatenate([scales["m_v"].to_value(u.mag), [p["m_v_abs"] for p in placed]])
     ax.set_xlim(allx.max() * 1.15, allx.min() / 1.15)
-    from matplotlib.ticker import FixedLocator, NullFormatter, NullLocator
-
     ticks = [t for t in (50000, 30000, 20000, 15000, 10000, 7000, 5000, 4000, 3000, 2500)
              if allx.min() / 1.15 <= t <= allx.max() * 1.15]
     ax.xaxis.set_major_locator(FixedLocator(ticks))
@@ -221,8 +245,10 @@ def plot_hr(table_or_rows, path, title="HR diagram of the night", label=True, dp
     ax.xaxis.set_minor_locator(NullLocator())
     ax.xaxis.set_minor_formatter(NullFormatter())
     ax.set_ylim(ally.max() + 1.0, ally.min() - 1.0)
-    if placed and label:
-        _label_points(ax, placed, fontsize=7 if len(placed) <= 40 else 5)
+
+
+def _annotate(fig, ax, title, skipped):
+    """Axis labels, title, legend, how many stars were not placed, and where the loci come from."""
     ax.set_xlabel("effective temperature (K)")
     ax.set_ylabel("absolute visual magnitude $M_V$")
     ax.set_title(title, fontsize=10)
@@ -233,12 +259,3 @@ def plot_hr(table_or_rows, path, title="HR diagram of the night", label=True, dp
     fig.text(0.01, 0.005, "loci: specan/data/mk_scales.ecsv (Pecaut & Mamajek 2013; Martins et al. 2005; "
              "Schmidt-Kaler 1982; Alonso et al. 1999; Levesque et al. 2005; values from memory)",
              fontsize=5, color="0.4")
-    fig.tight_layout()
-
-    path = Path(path)
-    path.parent.mkdir(parents=True, exist_ok=True)
-    # written in place: a caller that needs the file to appear whole (the night run) writes
-    # to a temporary path of its own (specan.pipeline.atomic_path)
-    fig.savefig(path, format="png", dpi=dpi)
-    return {"path": str(path), "plotted": [p["name"] for p in placed], "skipped": skipped,
-            "xlim": tuple(ax.get_xlim()), "ylim": tuple(ax.get_ylim()), "loci": loci}

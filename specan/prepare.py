@@ -174,6 +174,20 @@ def fit_continuum(spectrum, smoothing=300.0 * u.AA, window=12.0 * u.AA, below_we
     x, y = wave[good], flux[good]
     step = np.median(np.diff(x))
     k = int(np.clip(round(window.to_value(u.AA) / step), 1, max(1, x.size // 8)))
+    ax, ay = _window_maxima(x, y, k)
+    noise = err[good] if err is not None else _noise_without_errors(y)
+    ay, sig = _lowered_for_noise(ay, noise, k)
+    ax, ay, sig = _without_spikes(ax, ay, sig)
+    fit = _upper_envelope(ax, ay, sig, smoothing, below_weight, max_iter)
+    full = fit(wave)
+    # Outside the anchors hold the end values rather than extrapolating a cubic.
+    full[wave < ax[0]] = fit(ax[:1])[0]
+    full[wave > ax[-1]] = fit(ax[-1:])[0]
+    return full * spectrum.flux.unit
+
+
+def _window_maxima(x, y, k):
+    """(wavelength, flux) of the highest pixel in each run of ``k`` pixels (the last run may be shorter)."""
     n = (x.size // k) * k
     xr, yr = x[:n].reshape(-1, k), y[:n].reshape(-1, k)
     j = np.argmax(yr, axis=1)
@@ -182,37 +196,57 @@ def fit_continuum(spectrum, smoothing=300.0 * u.AA, window=12.0 * u.AA, below_we
     if n < x.size:  # the leftover pixels form a last, shorter window
         jl = n + int(np.argmax(y[n:]))
         ax, ay = np.append(ax, x[jl]), np.append(ay, y[jl])
+    return ax, ay
+
+
+def _lowered_for_noise(ay, e, k):
+    """Anchors lowered by the expected maximum of ``k`` noisy pixels, and the spread of that maximum.
+
+    Returns the anchors and, per anchor, the standard deviation of a maximum of ``k``
+    pixels of its window's noise ``e`` (zeros where there is no noise to tell).
+    """
     # Each anchor (the maximum of k pixels) is lowered by the expected maximum of k normal
     # deviates (Blom 1958), and anchors up to ANCHOR_TOLERANCE standard deviations of such a
     # maximum below the fit keep full weight, so the fit runs near the middle of the noise
     # instead of along its upper edge. The noise is the error array's, or, without one,
     # what _noise_without_errors can tell from the flux (nothing, for noiseless models and
     # for spectra whose noise was smoothed by resampling).
-    sig = np.zeros(ax.size)
-    e = err[good] if err is not None else _noise_without_errors(y)
-    if k > 1 and np.any(e > 0):
-        e = np.where(np.isfinite(e) & (e > 0), e, np.nan)
-        with warnings.catch_warnings():
-            warnings.simplefilter("ignore", RuntimeWarning)   # all-NaN windows
-            sig_w = np.nanmedian(e[:n].reshape(-1, k), axis=1)
-            if n < x.size:
-                sig_w = np.append(sig_w, np.nanmedian(e[n:]))
-        sig = np.where(np.isfinite(sig_w), sig_w, 0.0)
-        e_max, sd_max = _normal_maximum_moments(k)
-        ay -= sig * e_max
-        sig = sig * sd_max
+    sig = np.zeros(ay.size)
+    if not (k > 1 and np.any(e > 0)):
+        return ay, sig
+    n = (e.size // k) * k
+    e = np.where(np.isfinite(e) & (e > 0), e, np.nan)
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore", RuntimeWarning)   # all-NaN windows
+        sig_w = np.nanmedian(e[:n].reshape(-1, k), axis=1)
+        if n < e.size:
+            sig_w = np.append(sig_w, np.nanmedian(e[n:]))
+    sig = np.where(np.isfinite(sig_w), sig_w, 0.0)
+    e_max, sd_max = _normal_maximum_moments(k)
+    ay -= sig * e_max
+    return ay, sig * sd_max
+
+
+def _without_spikes(ax, ay, sig):
+    """The anchors without spikes (emission lines, cosmic rays)."""
     # Emission lines and cosmic rays make anchors that stand far above their neighbours;
     # an upper envelope would follow them, so they are dropped: an anchor more than
     # 4 robust sigma (and 2%) above the running median of 7 anchors is a spike.
-    if ax.size >= 7:
-        from scipy.ndimage import median_filter
+    if ax.size < 7:
+        return ax, ay, sig
+    from scipy.ndimage import median_filter
 
-        ref = median_filter(ay, size=7, mode="nearest")
-        dev = ay - ref
-        mad = 1.4826 * np.median(np.abs(dev))
-        spike = dev > np.maximum(4.0 * mad, 0.02 * np.abs(ref))
-        if spike.any() and (~spike).sum() >= 8:
-            ax, ay, sig = ax[~spike], ay[~spike], sig[~spike]
+    ref = median_filter(ay, size=7, mode="nearest")
+    dev = ay - ref
+    mad = 1.4826 * np.median(np.abs(dev))
+    spike = dev > np.maximum(4.0 * mad, 0.02 * np.abs(ref))
+    if spike.any() and (~spike).sum() >= 8:
+        return ax[~spike], ay[~spike], sig[~spike]
+    return ax, ay, sig
+
+
+def _upper_envelope(ax, ay, sig, smoothing, below_weight, max_iter):
+    """The penalised spline through the anchors, reweighted until anchors below it stop changing."""
     scale = smoothing.to_value(u.AA)
     smoother = _PSpline(ax, lam=(scale / (2 * np.pi)) ** 4, knot_spacing=scale / 10.0)
     weights = np.ones(ax.size)
@@ -222,11 +256,7 @@ def fit_continuum(spectrum, smoothing=300.0 * u.AA, window=12.0 * u.AA, below_we
         if np.array_equal(new, weights):
             break
         weights = new
-    full = fit(wave)
-    # Outside the anchors hold the end values rather than extrapolating a cubic.
-    full[wave < ax[0]] = fit(ax[:1])[0]
-    full[wave > ax[-1]] = fit(ax[-1:])[0]
-    return full * spectrum.flux.unit
+    return fit
 
 
 def _noise_without_errors(flux, half_width=100):

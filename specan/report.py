@@ -232,77 +232,106 @@ def write_report(catalogue, out_dir, path, diagram=None, stages=None) -> Path:
     pathlib.Path
     """
     out = Path(out_dir)
-    shown = [(name, label) for name, label in SHOWN if name in catalogue.colnames]
-    if "mk" in catalogue.colnames:  # the MK type already says both
-        shown = [(name, label) for name, label in shown if name not in ("sptype", "lumclass")]
-    counts = {}
-    for s in catalogue["status"]:
-        counts[str(s)] = counts.get(str(s), 0) + 1
-
+    cols = {name: catalogue[name] for name, _ in _shown(catalogue)}
     # Written as it is built: with thumbnails embedded the page grows with the
     # night, the memory used to write it does not.
     target = Path(path)
     with target.open("w", encoding="utf-8") as fh:
         emit = fh.write
-        emit("\n".join(["<!DOCTYPE html>", '<html lang="en"><head><meta charset="utf-8">',
-                        "<title>specan night report</title>", f"<style>{_STYLE}</style></head><body>",
-                        "<h1>Night report</h1>"]))
-        summary = ", ".join(f"{_esc(n)} {_esc(k)}" for k, n in sorted(counts.items()))
-        emit(f'<p id="summary">{len(catalogue)} inputs: {summary}. '
-                     f'Created {_esc(catalogue.meta.get("created_utc", ""))} by specan '
-                     f'{_esc(catalogue.meta.get("specan_version", ""))}.</p>')
-        flagged = flag_counts(catalogue)
-        if flagged:
-            emit('<p id="flags">Flags raised: '
-                 + ", ".join(f'<span class="flag">{_esc(k)}</span> {n}' for k, n in flagged) + ".</p>")
-        if stages:
-            ran = [n for n, why in stages.items() if why is None]
-            emit(f'<p id="stages">Stages run: {_esc(", ".join(ran) or "none")}.')
-            missing = [(n, why) for n, why in stages.items() if why is not None]
-            if missing:
-                emit(" Not run: " + "; ".join(f"{_esc(n)} ({_esc(w)})" for n, w in missing) + ".")
-            emit("</p>")
-        if diagram is not None:
-            uri = _data_uri(Path(diagram))
-            if uri:
-                emit(f'<h2>Night diagram</h2><img id="night-diagram" src="{uri}" '
-                             'alt="night diagram: temperature against luminosity class">')
-
+        emit(_head_html(catalogue, stages, diagram))
         emit(_assumptions_html(catalogue))
-        emit("<h2>Catalogue</h2><p class=\"muted\">Rows needing a look come first; "
-                     "click a column heading to sort. Full catalogue with units: catalogue.ecsv.</p>")
-        emit('<table id="catalogue"><thead><tr><th class="nosort">plot</th>')
-        for name, label in shown:
-            unit = catalogue[name].unit
-            unit_text = f" ({_esc(unit)})" if unit is not None and str(unit) else ""
-            emit(f'<th data-column="{_esc(name)}">{_esc(label)}{unit_text}</th>')
-        emit("</tr></thead><tbody>")
-
-        cols = {name: catalogue[name] for name, _ in shown}
+        emit(_table_head_html(catalogue))
         for order, i in enumerate(report_rows(catalogue)):
-            status = str(catalogue["status"][i])
-            flags = [f for f in str(catalogue["flags"][i]).split(",") if f]
-            cls = status if status in ("error", "not_run") else ("flagged" if flags or status == "partial" else "ok")
-            emit(f'<tr class="{cls}" data-order="{order}" data-file="{_esc(catalogue["file"][i])}">')
-            thumb = str(catalogue["thumbnail"][i]) if "thumbnail" in catalogue.colnames else ""
-            full = str(catalogue["plot"][i]) if "plot" in catalogue.colnames else ""
-            uri = _data_uri(out / thumb) if thumb else None
-            if uri and full:
-                obj = str(catalogue["object"][i]) if "object" in catalogue.colnames else ""
-                emit(f'<td><a href="{_href(full)}"><img class="thumb" src="{uri}" '
-                             f'alt="spectrum of {_esc(obj)}"></a></td>')
-            else:
-                emit('<td class="muted">no plot</td>')
-            for name, _ in shown:
-                text, sort_value = _cell_value(cols[name], i, name)
-                if name == "flags":
-                    body = "".join(f'<span class="flag">{_esc(f)}</span>' for f in flags)
-                    emit(f'<td data-value="">{body}</td>')
-                elif name in ("reason", "warnings"):
-                    emit(f'<td class="long">{_esc(text)}</td>')
-                else:
-                    emit(f'<td data-value="{_esc(sort_value)}">{_esc(text)}</td>')
-            emit("</tr>")
+            emit(_row_html(catalogue, out, cols, order, i))
         emit("</tbody></table>")
         emit(f"<script>{_SCRIPT}</script></body></html>")
     return target
+
+
+def _shown(catalogue):
+    """(column, label) of the catalogue columns the page shows, in order."""
+    shown = [(name, label) for name, label in SHOWN if name in catalogue.colnames]
+    if "mk" in catalogue.colnames:  # the MK type already says both
+        shown = [(name, label) for name, label in shown if name not in ("sptype", "lumclass")]
+    return shown
+
+
+def _head_html(catalogue, stages, diagram) -> str:
+    """The page's head and what comes before the tables: summary, flags, stages, night diagram."""
+    counts = {}
+    for s in catalogue["status"]:
+        counts[str(s)] = counts.get(str(s), 0) + 1
+    parts = ["\n".join(["<!DOCTYPE html>", '<html lang="en"><head><meta charset="utf-8">',
+                        "<title>specan night report</title>", f"<style>{_STYLE}</style></head><body>",
+                        "<h1>Night report</h1>"])]
+    summary = ", ".join(f"{_esc(n)} {_esc(k)}" for k, n in sorted(counts.items()))
+    parts.append(f'<p id="summary">{len(catalogue)} inputs: {summary}. '
+                 f'Created {_esc(catalogue.meta.get("created_utc", ""))} by specan '
+                 f'{_esc(catalogue.meta.get("specan_version", ""))}.</p>')
+    flagged = flag_counts(catalogue)
+    if flagged:
+        parts.append('<p id="flags">Flags raised: '
+                     + ", ".join(f'<span class="flag">{_esc(k)}</span> {n}' for k, n in flagged) + ".</p>")
+    if stages:
+        parts.append(_stages_html(stages))
+    if diagram is not None:
+        uri = _data_uri(Path(diagram))
+        if uri:
+            parts.append(f'<h2>Night diagram</h2><img id="night-diagram" src="{uri}" '
+                         'alt="night diagram: temperature against luminosity class">')
+    return "".join(parts)
+
+
+def _stages_html(stages) -> str:
+    """Which stages ran, and why the others did not."""
+    ran = [n for n, why in stages.items() if why is None]
+    text = f'<p id="stages">Stages run: {_esc(", ".join(ran) or "none")}.'
+    missing = [(n, why) for n, why in stages.items() if why is not None]
+    if missing:
+        text += " Not run: " + "; ".join(f"{_esc(n)} ({_esc(w)})" for n, w in missing) + "."
+    return text + "</p>"
+
+
+def _table_head_html(catalogue) -> str:
+    """The catalogue table's heading row (a column's unit beside its label)."""
+    parts = ["<h2>Catalogue</h2><p class=\"muted\">Rows needing a look come first; "
+             "click a column heading to sort. Full catalogue with units: catalogue.ecsv.</p>",
+             '<table id="catalogue"><thead><tr><th class="nosort">plot</th>']
+    for name, label in _shown(catalogue):
+        unit = catalogue[name].unit
+        unit_text = f" ({_esc(unit)})" if unit is not None and str(unit) else ""
+        parts.append(f'<th data-column="{_esc(name)}">{_esc(label)}{unit_text}</th>')
+    parts.append("</tr></thead><tbody>")
+    return "".join(parts)
+
+
+def _row_html(catalogue, out, cols, order, i) -> str:
+    """One catalogue row: its thumbnail (linking to the full figure), then the shown columns."""
+    status = str(catalogue["status"][i])
+    flags = [f for f in str(catalogue["flags"][i]).split(",") if f]
+    cls = status if status in ("error", "not_run") else ("flagged" if flags or status == "partial" else "ok")
+    parts = [f'<tr class="{cls}" data-order="{order}" data-file="{_esc(catalogue["file"][i])}">',
+             _plot_cell_html(catalogue, out, i)]
+    for name, col in cols.items():
+        text, sort_value = _cell_value(col, i, name)
+        if name == "flags":
+            body = "".join(f'<span class="flag">{_esc(f)}</span>' for f in flags)
+            parts.append(f'<td data-value="">{body}</td>')
+        elif name in ("reason", "warnings"):
+            parts.append(f'<td class="long">{_esc(text)}</td>')
+        else:
+            parts.append(f'<td data-value="{_esc(sort_value)}">{_esc(text)}</td>')
+    parts.append("</tr>")
+    return "".join(parts)
+
+
+def _plot_cell_html(catalogue, out, i) -> str:
+    """The row's thumbnail, embedded, linking to its full figure; or "no plot"."""
+    thumb = str(catalogue["thumbnail"][i]) if "thumbnail" in catalogue.colnames else ""
+    full = str(catalogue["plot"][i]) if "plot" in catalogue.colnames else ""
+    uri = _data_uri(out / thumb) if thumb else None
+    if uri and full:
+        obj = str(catalogue["object"][i]) if "object" in catalogue.colnames else ""
+        return (f'<td><a href="{_href(full)}"><img class="thumb" src="{uri}" '
+                f'alt="spectrum of {_esc(obj)}"></a></td>')
+    return '<td class="muted">no plot</td>'

@@ -417,6 +417,16 @@ def _make(wave, flux, *, medium, resolving_power, snr, seed, continuum_array, na
     return Spectrum(flux=flux * u.dimensionless_unscaled, spectral_axis=wave, uncertainty=uncertainty, meta=meta)
 
 
+def _with_continuum(flux, continuum, w_aa, code, lumclass):
+    """(flux, continuum array or None): normalised flux, or times a Planck curve at the type's Teff."""
+    if continuum is None:
+        return flux, None
+    if continuum != "blackbody":
+        raise ValueError(f"continuum must be None or 'blackbody', not {continuum!r}")
+    cont = _blackbody(w_aa, _teff(code, lumclass))
+    return flux * cont, cont
+
+
 def spectrum(sptype="G2", lumclass="V", *, resolving_power=2000, wave=None, wave_range=(3700, 8800) * u.AA,
              pixels_per_fwhm=2.5, rv=0 * u.km / u.s, medium="air", continuum=None, snr=None, seed=None,
              vbroad=0 * u.km / u.s, emission=None):
@@ -466,13 +476,8 @@ def spectrum(sptype="G2", lumclass="V", *, resolving_power=2000, wave=None, wave
     wave, w_aa, wvac = _axis(wave, wave_range, resolving_power, pixels_per_fwhm, medium)
     rv_kms = u.Quantity(rv, u.km / u.s).value
     vb = u.Quantity(vbroad, u.km / u.s).value
-    flux = _model_flux(wvac, code, lumnum, resolving_power, rv_kms, vb, emission)
-    cont = None
-    if continuum == "blackbody":
-        cont = _blackbody(w_aa, _teff(code, lumclass))
-        flux = flux * cont
-    elif continuum is not None:
-        raise ValueError(f"continuum must be None or 'blackbody', not {continuum!r}")
+    flux, cont = _with_continuum(_model_flux(wvac, code, lumnum, resolving_power, rv_kms, vb, emission),
+                                 continuum, w_aa, code, lumclass)
     params = {"sptype": sptype, "lumclass": lumclass, "resolving_power": float(resolving_power),
               "rv_kms": rv_kms, "vbroad_kms": vb, "snr": snr, "seed": seed, "emission": dict(emission or {})}
     return _make(wave, flux, medium=medium, resolving_power=resolving_power, snr=snr, seed=seed,

@@ -25,6 +25,7 @@ from astropy.table import Table
 
 from specan import pipeline
 from specan.cli import main as cli_main
+from specan.night import records as night_records
 from specan.obsinfo import get_info
 
 ROOT = Path(__file__).resolve().parents[1]
@@ -313,7 +314,7 @@ def test_interrupt_just_after_a_record_is_written_counts_that_record(tmp_path, m
     n = 5
     night = plain_night(tmp_path / "night", n, pixels=600)
     out = tmp_path / "out"
-    real_write = pipeline._atomic_write_bytes
+    real_write = night_records.atomic_write_bytes
     written = []
 
     def write_then_interrupt(path, data):
@@ -323,7 +324,7 @@ def test_interrupt_just_after_a_record_is_written_counts_that_record(tmp_path, m
             if len(written) == 2:
                 raise KeyboardInterrupt("signal 15")
 
-    monkeypatch.setattr(pipeline, "_atomic_write_bytes", write_then_interrupt)
+    monkeypatch.setattr(night_records, "atomic_write_bytes", write_then_interrupt)
     with pytest.raises(pipeline.RunInterrupted) as info:
         pipeline.run([night], out, plots=False, stages=BASIC, progress=False)
     cat = info.value.summary.catalogue

@@ -119,14 +119,22 @@ def _read_file(path: Path, overrides) -> RawSpectrum:
 
 
 def _read_fits(path, size, forced, opts) -> RawSpectrum:
-    from astropy.io import fits
-
     truncated = CorruptFileError(f"size {size} bytes is not a multiple of 2880 and the file does not end where "
                                  "its last HDU's data ends: the FITS file is truncated (copy or export it again "
                                  "from the original)", path)
     unpadded = size is not None and size % 2880 != 0   # (size None: compressed, checked when decompressed)
     if unpadded and size < 2880:     # not even one whole header record
         raise truncated
+    hdul = _open_fits(path, unpadded, truncated)
+    with hdul:
+        unpadded_note = _check_complete(hdul, path, size, unpadded, truncated)
+        return _fits_spectrum(hdul, path, forced, opts, unpadded_note)
+
+
+def _open_fits(path, unpadded, truncated):
+    """The file's HDU list, every HDU loaded; a file astropy cannot open is corrupt (or ``truncated``)."""
+    from astropy.io import fits
+
     try:
         with warnings.catch_warnings():
             warnings.simplefilter("error", fits.verify.VerifyWarning)
@@ -137,48 +145,54 @@ def _read_fits(path, size, forced, opts) -> RawSpectrum:
                 from astropy.utils.exceptions import AstropyUserWarning
 
                 warnings.filterwarnings("ignore", category=AstropyUserWarning)
-            hdul = fits.open(path, memmap=False, lazy_load_hdus=False)
+            return fits.open(path, memmap=False, lazy_load_hdus=False)
     except (OSError, EOFError, ValueError, fits.verify.VerifyError, fits.verify.VerifyWarning, IndexError,
             TypeError) as exc:
         raise (truncated if unpadded else
                CorruptFileError(f"not a readable FITS file ({exc}); is it truncated?", path)) from exc
-    with hdul:
+
+
+def _check_complete(hdul, path, size, unpadded, truncated):
+    """Read every HDU's data; None for a whole file, a note for a complete but unpadded one."""
+    try:
+        for h in hdul:
+            _ = h.data  # force the read: truncation shows here
+    except (OSError, EOFError, ValueError, TypeError, IndexError) as exc:
+        if unpadded:   # short of whole records and the data cannot be read: cut, say so plainly
+            raise truncated from exc
+        raise CorruptFileError(f"FITS data cannot be read ({exc}); is the file truncated?", path) from exc
+    if not unpadded:
+        return None
+    # FITS files are whole 2880-byte records (FITS standard 4.0, sect. 3.1), but some writers
+    # omit the final padding. Such a file is complete when it ends exactly where its last
+    # HDU's data ends; anything else (e.g. a cut in a later header, which astropy drops
+    # with a warning) is a truncated file.
+    last = len(hdul) - 1
+    if hdul.fileinfo(last)["datLoc"] + hdul[last].size != size:
+        raise truncated
+    return "FITS file not padded to whole 2880-byte records (FITS standard 4.0 sect. 3.1); " \
+           "its data are complete and were read"
+
+
+def _fits_spectrum(hdul, path, forced, opts, unpadded_note) -> RawSpectrum:
+    """The spectrum of the first FITS reader (image, then table) that finds one."""
+    readers = [r for r in (fits_image, fits_table) if forced in (None, r.NAME)]
+    errors = []
+    for reader in readers:
         try:
-            for h in hdul:
-                _ = h.data  # force the read: truncation shows here
-        except (OSError, EOFError, ValueError, TypeError, IndexError) as exc:
-            if unpadded:   # short of whole records and the data cannot be read: cut, say so plainly
-                raise truncated from exc
-            raise CorruptFileError(f"FITS data cannot be read ({exc}); is the file truncated?", path) from exc
-        if unpadded:
-            # FITS files are whole 2880-byte records (FITS standard 4.0, sect. 3.1), but some writers
-            # omit the final padding. Such a file is complete when it ends exactly where its last
-            # HDU's data ends; anything else (e.g. a cut in a later header, which astropy drops
-            # with a warning) is a truncated file.
-            last = len(hdul) - 1
-            if hdul.fileinfo(last)["datLoc"] + hdul[last].size != size:
-                raise truncated
-            unpadded_note = "FITS file not padded to whole 2880-byte records (FITS standard 4.0 sect. 3.1); " \
-                            "its data are complete and were read"
-        else:
-            unpadded_note = None
-        readers = [r for r in (fits_image, fits_table) if forced in (None, r.NAME)]
-        errors = []
-        for reader in readers:
-            try:
-                raw = reader.read(path, hdul=hdul, **opts)
-                raw.info.format = reader.NAME
-                if unpadded_note:
-                    raw.info.warn(unpadded_note)
-                return raw
-            except NoWavelengthError as exc:
-                errors.append(exc)
-                if opts.get("hdu") is not None and forced is None:
-                    continue
-        if errors:
-            # When no reader found a spectrum say so once, with the most specific reason.
-            specific = [e for e in errors if "try --hdu" not in e.reason] or errors
-            raise specific[0]
+            raw = reader.read(path, hdul=hdul, **opts)
+            raw.info.format = reader.NAME
+            if unpadded_note:
+                raw.info.warn(unpadded_note)
+            return raw
+        except NoWavelengthError as exc:
+            errors.append(exc)
+            if opts.get("hdu") is not None and forced is None:
+                continue
+    if errors:
+        # When no reader found a spectrum say so once, with the most specific reason.
+        specific = [e for e in errors if "try --hdu" not in e.reason] or errors
+        raise specific[0]
     raise NoWavelengthError("no spectrum found in any HDU; try --hdu", path)
 
 
@@ -239,6 +253,19 @@ def _build(raw: RawSpectrum, path, overrides):
     from specutils import Spectrum
 
     info = raw.info
+    wave_q, order = _wavelengths(raw, path)
+    flux, err, mask = _flux_and_mask(raw, order, path)
+    _apply_overrides(info, overrides, path)
+    _warn_missing(info, path)
+    flux_unit = raw.flux_unit if raw.flux_unit is not None else u.dimensionless_unscaled
+    uncertainty = None if err is None else StdDevUncertainty(err * flux_unit)
+    spec = Spectrum(spectral_axis=wave_q, flux=flux * flux_unit, uncertainty=uncertainty, mask=mask,
+                    meta={META_KEY: info})
+    return spec
+
+
+def _wavelengths(raw: RawSpectrum, path):
+    """(wavelengths in Angstrom, increasing; the pixel order that makes them so), checked."""
     wave = np.asarray(raw.wave, dtype=float).ravel()
     flux = np.asarray(raw.flux, dtype=float).ravel()
     n = wave.size
@@ -251,16 +278,7 @@ def _build(raw: RawSpectrum, path, overrides):
     if not np.all(np.isfinite(wave)):
         i = int(np.flatnonzero(~np.isfinite(wave))[0])
         raise NonMonotonicError(f"wavelength at pixel {i} is not a finite number", path)
-    step = np.diff(wave)
-    if np.all(step < 0):
-        order = slice(None, None, -1)
-    elif np.all(step > 0):
-        order = slice(None)
-    else:
-        sign = np.sign(np.median(step)) or 1.0
-        i = int(np.flatnonzero(step * sign <= 0)[0]) + 1
-        raise NonMonotonicError(f"wavelengths are not monotonic at pixel {i} "
-                                f"({wave[i - 1]:.6g} then {wave[i]:.6g}); the file needs sorting or repair", path)
+    order = _increasing(wave, path)
     try:
         wave_q = (wave[order] * raw.wave_unit).to(u.AA)
     except u.UnitConversionError as exc:
@@ -268,9 +286,26 @@ def _build(raw: RawSpectrum, path, overrides):
     if wave_q.value[0] <= 0:
         raise NoWavelengthError(f"wavelengths start at {wave_q[0]:.4g}, not positive; check --wave-unit", path)
     if raw.unit_source.startswith("guessed"):
-        info.warn(f"wavelength unit {raw.wave_unit} {raw.unit_source}; override with --wave-unit")
-    flux = flux[order]
+        raw.info.warn(f"wavelength unit {raw.wave_unit} {raw.unit_source}; override with --wave-unit")
+    return wave_q, order
 
+
+def _increasing(wave, path):
+    """The slice that makes a strictly monotonic axis increase; a non-monotonic one is refused."""
+    step = np.diff(wave)
+    if np.all(step < 0):
+        return slice(None, None, -1)
+    if np.all(step > 0):
+        return slice(None)
+    sign = np.sign(np.median(step)) or 1.0
+    i = int(np.flatnonzero(step * sign <= 0)[0]) + 1
+    raise NonMonotonicError(f"wavelengths are not monotonic at pixel {i} "
+                            f"({wave[i - 1]:.6g} then {wave[i]:.6g}); the file needs sorting or repair", path)
+
+
+def _flux_and_mask(raw: RawSpectrum, order, path):
+    """(flux with unusable pixels zeroed, standard deviations or None, mask True where unusable)."""
+    flux = np.asarray(raw.flux, dtype=float).ravel()[order]
     mask = ~np.isfinite(flux)
     err = None
     if raw.err is not None:
@@ -287,8 +322,11 @@ def _build(raw: RawSpectrum, path, overrides):
     flux = np.where(np.isfinite(flux), flux, 0.0)
     if mask.all():
         raise ReadError("every pixel is non-finite or has zero weight", path)
+    return flux, err, mask
 
-    _apply_overrides(info, overrides, path)
+
+def _warn_missing(info: ObsInfo, path):
+    """Say what the file does not state and what is assumed instead (naming the object after the file)."""
     if info.medium_assumed:
         info.warn("medium not stated (no CTYPE1 AWAV/WAVE); air assumed, as for ground-based arc calibrations; "
                   "set --medium if wrong")
@@ -301,12 +339,6 @@ def _build(raw: RawSpectrum, path, overrides):
         info.warn("no observatory position (OBSGEO-*): give --site lat,lon,height for a barycentric correction")
     if info.ra_deg is None:
         info.warn("no pointing (RA/DEC): give --ra/--dec for a barycentric correction")
-
-    flux_unit = raw.flux_unit if raw.flux_unit is not None else u.dimensionless_unscaled
-    uncertainty = None if err is None else StdDevUncertainty(err * flux_unit)
-    spec = Spectrum(spectral_axis=wave_q, flux=flux * flux_unit, uncertainty=uncertainty, mask=mask,
-                    meta={META_KEY: info})
-    return spec
 
 
 def _apply_overrides(info: ObsInfo, overrides, path):

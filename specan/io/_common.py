@@ -186,48 +186,69 @@ def header_metadata(header, info: ObsInfo) -> ObsInfo:
     obj = _card(header, "OBJECT", "OBJNAME", "TARGNAME")
     if obj is not None:
         info.object = str(obj).strip()
+    scale = _time_scale(header, info)
+    exptime = _float_card(header, info, "EXPTIME", "EXPOSURE", "TELAPSE")
+    if exptime is not None:
+        info.exptime = exptime * u.s
+    _times(header, info, scale)
+    _pointing(header, info)
+    _site(header, info)
+    info.medium, info.medium_assumed = _medium(header)
+    info.resolving_power = _float_card(header, info, "SPEC_RP", "RESPOWER")
+    return info
 
+
+def _time_scale(header, info) -> str:
+    """The time scale TIMESYS names (lower case), UTC when it names none or one not understood."""
     scale = str(_card(header, "TIMESYS") or "UTC").strip().lower()
     if scale not in ("utc", "tt", "tai", "tdb", "tcb", "tcg", "ut1"):
         info.warn(f"TIMESYS {scale!r} not understood; UTC assumed")
         scale = "utc"
-    exptime = _float_card(header, info, "EXPTIME", "EXPOSURE", "TELAPSE")
-    if exptime is not None:
-        info.exptime = exptime * u.s
+    return scale
 
+
+def _times(header, info, scale):
+    """Start and mid-exposure times: the mid-time as stated, else from the start."""
     mid = _card(header, "DATE-AVG")
     if mid is not None:
         info.time_mid = _time(mid, "iso", scale)
     elif _card(header, "MJD-AVG") is not None:
         info.time_mid = _time(_card(header, "MJD-AVG"), "mjd", scale)
+    info.time_start = _start_time(header, info, scale)
+    if info.time_mid is None and info.time_start is not None:
+        info.time_mid = _mid_from_start(header, info, info.time_start, scale)
 
-    start = None
+
+def _start_time(header, info, scale):
+    """Start of the exposure from DATE-BEG/DATE-OBS (with TIME-OBS or UT for a bare date) or MJD-BEG/MJD-OBS."""
     date_obs = _card(header, "DATE-BEG", "DATE-OBS")
-    if date_obs is not None:
-        s = str(date_obs).strip()
-        ut = _card(header, "TIME-OBS", "UT", "UTSTART", "UT-START")
-        if "T" not in s and len(s) <= 10 and ut is not None:
-            s = f"{s}T{str(ut).strip()}"
-        elif "T" not in s and len(s) <= 10:
-            info.warn(f"DATE-OBS {s!r} has no time of day; the start is taken as 00:00 and the mid-time is unreliable")
-        start = _time(s, "iso", scale)
-    else:
+    if date_obs is None:
         mjd = _card(header, "MJD-BEG", "MJD-OBS")
-        if mjd is not None:
-            start = _time(mjd, "mjd", scale)
-    info.time_start = start
-    if info.time_mid is None and start is not None:
-        end = _card(header, "DATE-END")
-        end_mjd = _card(header, "MJD-END")
-        if end is not None or end_mjd is not None:
-            stop = _time(end, "iso", scale) if end is not None else _time(end_mjd, "mjd", scale)
-            info.time_mid = start + (stop - start) / 2
-        elif info.exptime is not None:
-            info.time_mid = start + info.exptime / 2
-        else:
-            info.time_mid = start
-            info.warn("no EXPTIME: the start of the exposure is used as its mid-time")
+        return None if mjd is None else _time(mjd, "mjd", scale)
+    s = str(date_obs).strip()
+    ut = _card(header, "TIME-OBS", "UT", "UTSTART", "UT-START")
+    if "T" not in s and len(s) <= 10 and ut is not None:
+        s = f"{s}T{str(ut).strip()}"
+    elif "T" not in s and len(s) <= 10:
+        info.warn(f"DATE-OBS {s!r} has no time of day; the start is taken as 00:00 and the mid-time is unreliable")
+    return _time(s, "iso", scale)
 
+
+def _mid_from_start(header, info, start, scale):
+    """Mid-exposure time from the start: halfway to DATE-END/MJD-END, else plus half of EXPTIME."""
+    end = _card(header, "DATE-END")
+    end_mjd = _card(header, "MJD-END")
+    if end is not None or end_mjd is not None:
+        stop = _time(end, "iso", scale) if end is not None else _time(end_mjd, "mjd", scale)
+        return start + (stop - start) / 2
+    if info.exptime is not None:
+        return start + info.exptime / 2
+    info.warn("no EXPTIME: the start of the exposure is used as its mid-time")
+    return start
+
+
+def _pointing(header, info):
+    """RA/DEC in degrees (checked to be in range), the reference system and the equinox."""
     ra = _card(header, "RA", "OBJRA", "OBJCTRA", "RA_OBJ", "TARG_RA")
     dec = _card(header, "DEC", "OBJDEC", "OBJCTDEC", "DEC_OBJ", "TARG_DEC")
     if ra is not None and dec is not None:
@@ -243,6 +264,9 @@ def header_metadata(header, info: ObsInfo) -> ObsInfo:
         # FITS standard: without RADESYS, EQUINOX < 1984 means FK4, otherwise FK5.
         info.radesys = "FK4" if info.equinox < 1984.0 else "FK5"
 
+
+def _site(header, info):
+    """The observatory from OBSGEO-X/Y/Z or OBSGEO-B/L/H; other site keywords are named, not used."""
     try:
         x, y, z = (_card(header, k) for k in ("OBSGEO-X", "OBSGEO-Y", "OBSGEO-Z"))
         if None not in (x, y, z):
@@ -268,16 +292,15 @@ def header_metadata(header, info: ObsInfo) -> ObsInfo:
             info.warn(f"site keywords {listed} not used (their longitude sign convention varies); "
                       "give the site as --site lat,lon,height with longitude east-positive")
 
+
+def _medium(header):
+    """(medium, assumed) from CTYPE1 (AWAV air, WAVE vacuum), else from the other cards."""
     ctype = str(_card(header, "CTYPE1") or "").strip().upper()
     if ctype.startswith("AWAV"):
-        info.medium, info.medium_assumed = "air", False
-    elif ctype.startswith("WAVE"):
-        info.medium, info.medium_assumed = "vacuum", False
-    else:
-        info.medium, info.medium_assumed = _medium_from_cards(header)
-
-    info.resolving_power = _float_card(header, info, "SPEC_RP", "RESPOWER")
-    return info
+        return "air", False
+    if ctype.startswith("WAVE"):
+        return "vacuum", False
+    return _medium_from_cards(header)
 
 
 def _medium_from_cards(header):

@@ -66,15 +66,33 @@ def _unit_from_header(lines):
 
 def read(path, wave_unit=None, **_):
     """Read a text spectrum; see the module docstring."""
+    header_lines, cards, rows, first_data_line = _parse(_decoded(path), path)
+    data = _data_array(rows, first_data_line, path)
+    unit, source = _wave_unit(wave_unit, header_lines, path)
+    ncol = data.shape[1]
+    raw_spec = RawSpectrum(wave=data[:, 0], wave_unit=unit, flux=data[:, 1],
+                           err=data[:, 2] if ncol >= 3 else None, unit_source=source)
+    if cards:
+        header_metadata(_header(cards), raw_spec.info)
+    if raw_spec.info.object is None:
+        raw_spec.info.object = _object_from_header_lines(header_lines)
+    return raw_spec
+
+
+def _decoded(path) -> str:
+    """The file's text (UTF-8, else Latin-1); an empty file is refused."""
     with open(path, "rb") as fh:
         raw = fh.read()
     if not raw.strip():
         raise EmptyFileError("the file is empty", path)
     try:
-        text = raw.decode("utf-8")
+        return raw.decode("utf-8")
     except UnicodeDecodeError:
-        text = raw.decode("latin-1")
+        return raw.decode("latin-1")
 
+
+def _parse(text, path):
+    """(header lines, header cards, data rows as tokens, line number of the first data row)."""
     header_lines, cards, rows = [], {}, []
     first_data_line = None
     for lineno, line in enumerate(text.splitlines(), start=1):
@@ -97,6 +115,11 @@ def read(path, wave_unit=None, **_):
         if first_data_line is None:
             first_data_line = lineno
         rows.append(tokens)
+    return header_lines, cards, rows, first_data_line
+
+
+def _data_array(rows, first_data_line, path):
+    """The data rows as a float array of 2 or 3 columns, every row as wide as the first."""
     if not rows:
         raise EmptyFileError("no data rows (only comments or nothing)", path)
     ncol = len(rows[0])
@@ -105,8 +128,11 @@ def read(path, wave_unit=None, **_):
     bad = [i for i, r in enumerate(rows) if len(r) != ncol]
     if bad:
         raise ReadError(f"data row {bad[0] + 1} has {len(rows[bad[0]])} columns, the first has {ncol}", path)
-    data = np.array(rows, dtype=float)
+    return np.array(rows, dtype=float)
 
+
+def _wave_unit(wave_unit, header_lines, path):
+    """(wavelength unit, where it came from): the override, else the header; neither is refused."""
     unit, source = None, "header"
     if wave_unit is not None:
         unit, source = parse_unit(wave_unit), "override"
@@ -115,26 +141,29 @@ def read(path, wave_unit=None, **_):
     if unit is None:
         raise NoWavelengthError(
             "no wavelength unit in the file's header (e.g. '# wavelength [nm]'); give it with --wave-unit", path)
+    return unit, source
 
-    raw_spec = RawSpectrum(wave=data[:, 0], wave_unit=unit, flux=data[:, 1],
-                           err=data[:, 2] if ncol >= 3 else None, unit_source=source)
-    if cards:
-        from astropy.io.fits import Header
 
-        hdr = Header()
-        for key, value in cards.items():
-            try:
-                hdr[key] = _coerce(value)
-            except (ValueError, KeyError):
-                continue
-        header_metadata(hdr, raw_spec.info)
-    if raw_spec.info.object is None:
-        for line in header_lines[:3]:
-            m = re.match(r"^(?:file|object|star|name)\s+(\S.*)$", line, re.IGNORECASE)
-            if m:
-                raw_spec.info.object = m.group(1).strip()
-                break
-    return raw_spec
+def _header(cards):
+    """A FITS header of the ``KEY = value`` lines (values a FITS card cannot hold are skipped)."""
+    from astropy.io.fits import Header
+
+    hdr = Header()
+    for key, value in cards.items():
+        try:
+            hdr[key] = _coerce(value)
+        except (ValueError, KeyError):
+            continue
+    return hdr
+
+
+def _object_from_header_lines(header_lines):
+    """An object name from a 'file|object|star|name <name>' line among the first three, or None."""
+    for line in header_lines[:3]:
+        m = re.match(r"^(?:file|object|star|name)\s+(\S.*)$", line, re.IGNORECASE)
+        if m:
+            return m.group(1).strip()
+    return None
 
 
 def _coerce(value: str):

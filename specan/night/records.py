@@ -1,0 +1,118 @@
+"""One stored record per input, and when a stored record is current.
+
+Each input's result is one small JSON record, ``records/<id>.json``, written
+atomically after its plots (``plots/<file>-<id>.png`` and its thumbnail), so a
+record always has its plots and an interrupted run never leaves half a
+result. A record is current when its key matches: the input's content hash and
+the hash of the run settings (which include specan's own code, see
+:func:`code_fingerprint`).
+"""
+
+from __future__ import annotations
+
+import hashlib
+import json
+import os
+from pathlib import Path
+
+from .files import atomic_write_bytes, inside
+from .inputs import path_id, safe_stem, sha256_file
+
+__all__ = ["RECORD_VERSION", "code_fingerprint", "record_key", "not_run_record", "RecordStore"]
+
+RECORD_VERSION = 1
+
+
+def code_fingerprint() -> str:
+    """Hash of specan's own code and data files: results computed by other code are not current."""
+    root = Path(__file__).resolve().parents[1]   # the specan package, whatever subfolder this is in
+    h = hashlib.sha256()
+    files = sorted(p for p in root.rglob("*") if p.suffix in (".py", ".ecsv", ".json") and p.is_file())
+    linelists = root.parent / "linelists"
+    if linelists.is_dir():
+        files += sorted(linelists.glob("*.ecsv"))
+    for p in files:
+        h.update(str(p.relative_to(p.parents[1])).encode())
+        h.update(p.read_bytes())
+    return h.hexdigest()
+
+
+def record_key(path, settings_hash) -> dict:
+    """What a stored record of ``path`` must match to be current: its content and the settings."""
+    try:
+        content = sha256_file(path) if os.path.isfile(path) else "missing"
+    except OSError as exc:
+        content = f"unreadable: {exc}"
+    return {"input": content, "settings": settings_hash}
+
+
+def not_run_record(path, why) -> dict:
+    """The record of an input the run did not reach."""
+    values = {"file": str(path), "status": "not_run", "reason": why, "flags": "", "stages_run": ""}
+    return {"values": values, "units": {}}
+
+
+class RecordStore:
+    """The records and per-spectrum plots of one output folder.
+
+    Parameters
+    ----------
+    out_dir : str or os.PathLike
+        The run's output folder; every file goes inside it.
+    """
+
+    def __init__(self, out_dir):
+        self.out = Path(out_dir)
+
+    def _record_path(self, pid) -> Path:
+        return inside(self.out, Path("records") / f"{pid}.json")
+
+    def put(self, path, key, result) -> dict:
+        """Write one input's plots, then its record (so a record always has its plots).
+
+        Parameters
+        ----------
+        path : str
+            The input.
+        key : dict
+            Its record key (see :func:`record_key`).
+        result : dict
+            What :func:`specan.pipeline.analyse_file` returned for it.
+
+        Returns
+        -------
+        dict
+            The record as stored: ``version``, ``key``, ``values`` (with the plot
+            paths relative to the output folder) and ``units``.
+        """
+        pid = path_id(path)
+        values = dict(result["values"])
+        values["plot"] = values["thumbnail"] = None
+        plots = result.get("plots") or {}
+        if plots.get("full"):
+            stem = f"{safe_stem(path)}-{pid[:8]}"
+            full = Path("plots") / f"{stem}.png"
+            thumb = Path("plots") / f"{stem}_thumb.png"
+            atomic_write_bytes(inside(self.out, full), plots["full"])
+            values["plot"] = full.as_posix()
+            if plots.get("thumb"):
+                atomic_write_bytes(inside(self.out, thumb), plots["thumb"])
+                values["thumbnail"] = thumb.as_posix()
+        record = {"version": RECORD_VERSION, "key": key, "values": values, "units": result.get("units", {})}
+        atomic_write_bytes(self._record_path(pid), json.dumps(record, allow_nan=True).encode())
+        return record
+
+    def current(self, path, key):
+        """The stored record of an input when it is current (same content and settings), else None."""
+        p = self._record_path(path_id(path))
+        try:
+            record = json.loads(p.read_text())
+        except (OSError, ValueError):
+            return None
+        if record.get("version") != RECORD_VERSION or record.get("key") != key:
+            return None
+        for col in ("plot", "thumbnail"):
+            rel = record["values"].get(col)
+            if rel and not (self.out / rel).is_file():
+                return None
+        return record
