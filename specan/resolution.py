@@ -244,14 +244,15 @@ def degrade(spectrum, resolving_power, from_resolving_power=None):
 
 
 def smooth_to_fwhm(wave, flux, good, fwhm_in, fwhm_out):
-    """Gaussian smoothing from an instrumental FWHM ``fwhm_in(wave)`` to a constant ``fwhm_out`` (A).
+    """Gaussian smoothing from an instrumental FWHM ``fwhm_in(wave)`` to ``fwhm_out(wave)`` (A).
 
-    Hand-written rather than :func:`degrade` because a calibration's resolution is
-    constant in Angstrom (a grating spectrograph, like the reference libraries), while
+    Hand-written rather than :func:`degrade` because a calibration's or a library's resolution
+    is constant in Angstrom (a grating spectrograph, like the reference libraries), while
     ``degrade`` works at constant resolving power. The flux goes onto a uniform grid; the
-    kernel width varies with wavelength when the input is at constant R, so the flux is
+    kernel width varies with wavelength when one side is at constant R, so the flux is
     smoothed at a few kernel widths and each pixel interpolates between the two bracketing
-    ones.
+    ones. Either FWHM is a scalar or an array over ``wave``; where ``fwhm_out`` is not above
+    ``fwhm_in`` the flux is left as it is.
 
     Returns
     -------
@@ -262,8 +263,9 @@ def smooth_to_fwhm(wave, flux, good, fwhm_in, fwhm_out):
     fg = np.interp(grid, wave[good], flux[good])
     gg = np.interp(grid, wave, good.astype(float))
     fin = np.broadcast_to(np.interp(grid, wave, np.broadcast_to(fwhm_in, wave.shape)), grid.shape)
+    fout = fwhm_out if np.ndim(fwhm_out) == 0 else np.interp(grid, wave, fwhm_out)
     # FWHM = 2 sqrt(2 ln 2) sigma = 2.3548 sigma for a Gaussian (common practice)
-    sig = np.sqrt(np.clip(fwhm_out ** 2 - fin ** 2, 0.0, None)) / 2.3548 / step   # pixels
+    sig = np.sqrt(np.clip(fout ** 2 - fin ** 2, 0.0, None)) / 2.3548 / step   # pixels
     if np.all(sig < 0.3):
         return grid, fg, gg > 0.5
     levels = np.unique(np.round(np.linspace(sig.min(), sig.max(), 5), 3))

@@ -16,6 +16,7 @@ import pytest
 
 ROOT = Path(__file__).resolve().parents[1]
 JHC_DIR = ROOT.parent / "shared" / "reference" / "jhc1984"
+MILES_DIR = ROOT.parent / "shared" / "reference" / "miles"
 
 
 @pytest.fixture(scope="session")
@@ -24,6 +25,14 @@ def jhc1984():
     if not (JHC_DIR / "catalog.csv").is_file():
         pytest.skip(f"reference library not present at {JHC_DIR} (only on development and CI machines)")
     return JHC_DIR
+
+
+@pytest.fixture(scope="session")
+def miles():
+    """Folder of the MILES library's development part, or skip with the reason."""
+    if not (MILES_DIR / "catalog.csv").is_file():
+        pytest.skip(f"MILES reference library not present at {MILES_DIR} (only on development and CI machines)")
+    return MILES_DIR
 
 
 @pytest.fixture(scope="session")

@@ -180,12 +180,44 @@ def test_builtin_templates_on_the_kurucz_sun(kurucz_model):
     """Automatic synthetic template (in vacuum, at R) on the Kurucz Sun: right family, small bias."""
     errs = []
     for v in (-640.0, 35.0, 820.0):
-        res = velocity.measure(_observe(kurucz_model, 2000.0, v, snr=100, seed=abs(int(v)) + 7), barycentric=False)
+        res = velocity.measure(_observe(kurucz_model, 2000.0, v, snr=100, seed=abs(int(v)) + 7), barycentric=False,
+                               template="synth")
         assert res["template"].split()[1][0] in "FGK", res["template"]  # the Sun is G2 V
         assert "composite" not in res["flags"]
         errs.append(res["rv"].to_value(KMS) - v)
     # template mismatch (a 220-line model against Kurucz's full line list): within 2% of a resolution element
     assert np.all(np.abs(errs) < 0.02 * C_KMS / 2000.0), errs
+
+
+def _library_default_on_kurucz(kurucz_model):
+    errs, types = [], []
+    for v in (-640.0, 35.0, 820.0):
+        res = velocity.measure(_observe(kurucz_model, 2000.0, v, snr=100, seed=abs(int(v)) + 7), barycentric=False)
+        assert res["template_kind"] == "library", res["template"]
+        types.append(res["template_type"])
+        errs.append(res["rv"].to_value(KMS) - v)
+    return np.array(errs), types
+
+
+def test_library_templates_by_default_on_the_kurucz_sun(kurucz_model):
+    """No template given: an observed library template wins on a realistic spectrum, of the Sun's family.
+
+    The Kurucz model is not one of the library's stars (MILES, observed); its velocity against
+    the library G1 V group is 5.4 km/s low at R = 2000 (measured; -2.4 at R = 5000, -6 at
+    R = 1000 from the user-path benchmark): the model's blends against real stars', and the
+    library's own rest frame (a few km/s, its README). The bound guards that figure.
+    """
+    errs, types = _library_default_on_kurucz(kurucz_model)
+    assert all(t.split()[0][0] == "G" for t in types), types  # the Sun is G2 V
+    assert np.all(np.abs(errs) < 0.04 * C_KMS / 2000.0), errs
+
+
+@pytest.mark.xfail(strict=True, reason="measured: the library default is 5.4 km/s low on the Kurucz Sun at R = 2000 "
+                   "(3.6% of a resolution element; target 1%), model-versus-star mismatch and the library's "
+                   "rest frame")
+def test_library_default_bias_within_one_percent_of_a_resolution_element(kurucz_model):
+    errs, _ = _library_default_on_kurucz(kurucz_model)
+    assert np.all(np.abs(errs) < 0.01 * C_KMS / 2000.0), errs
 
 
 # ---------------------------------------------------------------------------
@@ -580,7 +612,10 @@ def test_real_spectra_of_the_reference_library(jhc1984, jhc_catalog):
     picks = [row for row in jhc_catalog if row["lumclass"] in ("V", "III") and row["sptype"][0] in "BAFGK"]
     got = []
     for row in picks[:: max(1, len(picks) // 8)][:8]:
-        s = specan.read(jhc1984 / row["file"], resolving_power=1300)  # ~4.5 A FWHM at 5800 A (README)
+        # The README says 4.5 A FWHM, but these copies are ~13 A (fitted against MILES stars of the
+        # same types: 12-13.5 A, measured), R ~ 400 at 5000 A. Stated 3x too sharp (R = 1300), the
+        # library templates locked on wrong peaks (+237, +320 km/s for the K0 V and G6 III, measured).
+        s = specan.read(jhc1984 / row["file"], resolving_power=400)
         res = velocity.measure(s, errors="td")
         assert res["frame"] == "topocentric" and "no_barycentric" in res["flags"]
         assert any("prepare" in n for n in res["notes"])

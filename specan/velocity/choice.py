@@ -2,10 +2,13 @@
 
 The template is a user spectrum (a file or a Spectrum, e.g. an RV standard), a reference
 exposure of the same star (the velocity is then relative to it), one built-in type, or the
-automatic choice: every type of the built-in grid is scored by its normalised correlation peak,
-then the neighbouring subtypes and luminosity classes of the best. When the spectrum's
-resolving power is unknown and the narrowest lines do not tell it, the built-in template's
-width is scanned too. Candidates are lists of :class:`~.prepared.BuiltinCandidate`, prepared on
+automatic choice. The automatic choice scores the empirical library templates
+(:func:`specan.templates.library_templates`) beside the synthetic grid by their normalised
+correlation peaks, where the library covers at least :data:`LIBRARY_MIN_COVER` of the
+spectrum's weight; elsewhere (far red, far blue) only the synthetic grid. The synthetic grid's
+best type is refined among its neighbouring subtypes and luminosity classes. When the
+spectrum's resolving power is unknown and the narrowest lines do not tell it, the width of a
+synthetic template of the chosen type is scanned too. Candidates are lists of :class:`~.prepared.BuiltinCandidate`, prepared on
 the set-up's grid and then scored together (:func:`~.correlation.template_peaks`).
 """
 
@@ -20,17 +23,20 @@ import numpy as np
 from .. import resolution, templates
 from ..errors import AnalysisError, SpecanError
 from ..mktypes import code_to_sptype, parse_mk, sptype_to_code
-from ..obsinfo import get_info
+from ..obsinfo import get_info, vacuum_to_air
 from .correlation import best_index, coverage_rows, template_peaks
 from .prepared import BuiltinCandidate, PreparedTemplate, prepare_builtin, spectrum_template
 
-__all__ = ["R_SCAN", "ResolvingPower", "TemplateRequest", "TemplateChoice", "settle_resolving_power",
-           "parse_template", "choose_template", "user_template", "reference_template", "automatic_type",
-           "neighbour_types", "scan_resolving_power"]
+__all__ = ["R_SCAN", "LIBRARY_MIN_COVER", "ResolvingPower", "TemplateRequest", "TemplateChoice",
+           "settle_resolving_power", "parse_template", "choose_template", "user_template", "reference_template",
+           "automatic_type", "automatic_library", "library_cover", "neighbour_types", "scan_resolving_power"]
 
 # Multipliers of the first guess tried when the resolving power is unknown (sampling of 1.7-5
 # pixels per FWHM, the range of real spectrographs; common practice).
 R_SCAN = (0.5, 0.6, 0.7, 0.85, 1.0, 1.2, 1.45)
+#: Smallest share of the spectrum's correlation weight inside the library's wavelength range for
+#: the automatic choice to use library templates (our choice: a template must see most of the star).
+LIBRARY_MIN_COVER = 0.5
 
 
 # ---------------------------------------------------------------------------
@@ -80,7 +86,8 @@ def settle_resolving_power(observed, spectrum, notes):
 # What the caller asked for
 # ---------------------------------------------------------------------------
 class TemplateRequest(NamedTuple):
-    """``kind`` ('auto' | 'synth' | 'mask' | 'spectrum' | 'file'), MK type if given, and the object."""
+    """``kind`` ('auto' | 'library' | 'synth' | 'mask' | 'spectrum' | 'file'), MK type or library
+    template name if given, and the object."""
 
     kind: str
     sptype: str | None
@@ -105,6 +112,14 @@ def parse_template(template):
         kind, text = "mask", text[4:].lstrip(":").strip()
     elif low.startswith("synth"):
         text = text[5:].lstrip(":").strip()
+    elif low.startswith("library"):
+        kind, text = "library", text[7:].lstrip(":").strip()
+        if not text:
+            return TemplateRequest("auto", None, None, None)
+        names = [t.name for t in templates.library_templates()]
+        if text not in names:
+            raise SpecanError(f"no library template {text!r}; choose from: {', '.join(names)}")
+        return TemplateRequest("library", None, None, text)
     if not text:
         return TemplateRequest(kind, None, None, None)
     try:
@@ -121,12 +136,15 @@ def parse_template(template):
 # ---------------------------------------------------------------------------
 class TemplateChoice(NamedTuple):
     """The prepared template, the resolving power as finally settled, the scores of the automatic
-    choice (template name -> peak height) and whether the velocity is relative to a reference."""
+    choice (template name -> peak height), whether the velocity is relative to a reference, and
+    the built-in template's MK type and kind (None for user templates)."""
 
     template: PreparedTemplate
     power: ResolvingPower
     scores: dict
     relative: bool
+    mk: str | None = None
+    kind: str | None = None
 
 
 def choose_template(request, search, power, *, reference=None, template_rv=0 * u.km / u.s, template_grid=None,
@@ -144,16 +162,77 @@ def choose_template(request, search, power, *, reference=None, template_rv=0 * u
         chosen = user_template(request, u.Quantity(template_rv, u.km / u.s).value, grid, target_r, clip_emission,
                                notes)
         return TemplateChoice(chosen, power, {}, False)
-    sptype, lumclass, scores = request.sptype, request.lumclass, {}
-    if sptype is None:
-        (sptype, lumclass), scores = automatic_type(search, power.template_key, template_grid, notes, where)
-    kind = "synth" if request.kind in ("synth", "auto") else "mask"
-    candidate = BuiltinCandidate(sptype, lumclass, power.template_key, kind)
+    candidate, scores = builtin_request(request, search, power, template_grid, notes, where)
     chosen = prepare_builtin(candidate, grid)
     if not power.known:
-        # resolving power unknown: the template width that correlates best
-        chosen, power = scan_resolving_power(search, candidate, power, chosen, notes)
-    return TemplateChoice(chosen, power, scores, False)
+        # resolving power unknown: the width of a synthetic template of that type that correlates best
+        synthetic = candidate._replace(kind="synth" if candidate.kind == "library" else candidate.kind, name=None)
+        chosen, power = scan_resolving_power(search, synthetic, power, prepare_builtin(synthetic, grid), notes)
+        if candidate.kind == "library":
+            chosen = prepare_builtin(candidate._replace(resolving_power=power.template_key), grid)
+    return TemplateChoice(chosen, power, scores, False, f"{candidate.sptype} {candidate.lumclass}", candidate.kind)
+
+
+def builtin_request(request, search, power, template_grid, notes, where=None):
+    """(:class:`BuiltinCandidate`, scores) of a request for a built-in template or the automatic choice."""
+    r_key = power.template_key
+    if request.kind == "library":
+        entry = next(t for t in templates.library_templates() if t.name == request.obj)
+        return BuiltinCandidate(entry.sptype, entry.lumclass, r_key, "library", entry.name), {}
+    if request.sptype is not None:
+        return BuiltinCandidate(request.sptype, request.lumclass, r_key, "mask" if request.kind == "mask" else "synth"), {}
+    if request.kind == "auto" and template_grid is None:
+        cover = library_cover(search)
+        if cover >= LIBRARY_MIN_COVER:
+            return automatic_library(search, r_key, notes, where)
+        notes.append(f"library templates cover {cover:.0%} of the spectrum (3545-7405 A): synthetic templates used")
+    (sptype, lumclass), scores = automatic_type(search, r_key, template_grid, notes, where)
+    return BuiltinCandidate(sptype, lumclass, r_key, "mask" if request.kind == "mask" else "synth"), scores
+
+
+def library_cover(search):
+    """Share of the spectrum's correlation weight at wavelengths the library templates cover."""
+    lags = search.lags
+    ln_w = lags.template_grid.ln0 + lags.step * (lags.pad + np.arange(lags.n))
+    first, last = templates.library_coverage()
+    w_air = vacuum_to_air(np.exp(ln_w) * u.AA).to_value(u.AA)
+    weight = search.side.weight
+    total = float(np.sum(weight))
+    return float(np.sum(weight[(w_air >= first) & (w_air <= last)]) / total) if total > 0 else 0.0
+
+
+def automatic_library(search, resolving_power, notes, where=None):
+    """(:class:`BuiltinCandidate`, scores): the library or synthetic template that correlates best.
+
+    The library templates are observed stars; the synthetic grid (:func:`automatic_type`) is
+    scored beside them, for the types the library lacks (O stars) and for spectra unlike any
+    library group. The higher normalised peak wins: on real stars that is a library template
+    (the Kurucz solar model: library G1 V, peak 0.968, measured), on specan's own synthetic
+    spectra a synthetic one.
+    """
+    grid = search.lags.template_grid
+    candidates = [BuiltinCandidate(t.sptype, t.lumclass, resolving_power, "library", t.name)
+                  for t in templates.library_templates()]
+    prepared = [prepare_builtin(c, grid) for c in candidates]
+    peaks = template_peaks(search, prepared)
+    scores = {t.name: pk[1] for t, pk in zip(prepared, peaks) if pk is not None}
+    best = best_index(peaks)
+    synthetic_notes = []
+    try:
+        (sptype, lumclass), more = automatic_type(search, resolving_power, None, synthetic_notes, where)
+    except AnalysisError:
+        if best is None:
+            raise
+        more = {}
+    scores.update(more)
+    top_synthetic = max(more.values()) if more else -np.inf
+    if best is None or top_synthetic > peaks[best][1]:
+        notes.extend(synthetic_notes)
+        return BuiltinCandidate(sptype, lumclass, resolving_power), scores
+    notes.append(f"template chosen automatically: best normalised correlation of {len(scores)} library "
+                 f"and synthetic templates ({prepared[best].name}, {peaks[best][1]:.3f}; best synthetic "
+                 f"{top_synthetic:.3f})")
+    return candidates[best], scores
 
 
 def reference_template(reference, grid, target_r, clip_emission, notes):

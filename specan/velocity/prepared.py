@@ -58,19 +58,22 @@ class PreparedTemplate:
 # Built-in templates
 # ---------------------------------------------------------------------------
 class BuiltinCandidate(NamedTuple):
-    """A built-in template to try: MK type, resolving power and kind (``"synth"`` or ``"mask"``)."""
+    """A built-in template to try: MK type, resolving power, kind (:data:`specan.templates.KINDS`)
+    and, for the library, the template's name (its type is then the group's nominal one)."""
 
     sptype: str
     lumclass: str
     resolving_power: float
     kind: str = "synth"
+    name: str | None = None
 
 
-@functools.lru_cache(maxsize=160)  # the 14-type grid and refinements for a few instrument set-ups
-def builtin_template(sptype, lumclass, resolving_power, ln0, step, n, kind="synth", hp_sigma=None):
+@functools.lru_cache(maxsize=256)  # the library or synthetic grid, refinements, a few instrument set-ups
+def builtin_template(sptype, lumclass, resolving_power, ln0, step, n, kind="synth", hp_sigma=None, name=None):
     """A built-in template (:func:`specan.templates.on_log_grid`) ready for correlation."""
-    name, flux, valid = templates.on_log_grid(sptype, lumclass, resolving_power, ln0, step, n, kind=kind)
-    return PreparedTemplate(name, flux - 1.0, cover_taper(valid), hp_sigma=hp_sigma)
+    label, flux, valid = templates.on_log_grid(sptype, lumclass, resolving_power, ln0, step, n, kind=kind,
+                                               name=name)
+    return PreparedTemplate(label, flux - 1.0, cover_taper(valid), hp_sigma=hp_sigma)
 
 
 def prepare_builtin(candidate, grid):
@@ -80,7 +83,8 @@ def prepare_builtin(candidate, grid):
     templates.
     """
     return builtin_template(candidate.sptype, candidate.lumclass, candidate.resolving_power,
-                            round(grid.ln0, 12), grid.step, grid.n, kind=candidate.kind, hp_sigma=grid.hp_sigma)
+                            round(grid.ln0, 12), grid.step, grid.n, kind=candidate.kind, hp_sigma=grid.hp_sigma,
+                            name=candidate.name)
 
 
 # ---------------------------------------------------------------------------

@@ -48,6 +48,8 @@ def result_dict(choice, peak, about, td, errors, rv_err, companion, frames, flag
         "bary_corr": _kms_or_none(frames.bary_corr),
         "v_grf": _kms_or_none(frames.v_grf),
         "template": choice.template.name,
+        "template_type": choice.mk,
+        "template_kind": choice.kind,
         "ccf_height": peak.height,
         "flags": flags,
         "second_peak_rv": _kms_or_none(frames.second_rv),
