@@ -129,11 +129,11 @@ def test_sun_spectroscopic_distance(sun_spectrum, v_mag, expected_pc):
     assert abs(res["teff_color_k"] - 5772) < 400  # IAU 2015 B3 nominal solar Teff
 
 
-@pytest.mark.xfail(strict=True, reason="known gap (measured): specan classifies the Kurucz Sun G2 V but with "
-                   "class probabilities I 0.04, II 0.14, III 0.25, IV 0.28, V 0.28, so the class mixture puts it "
-                   "at ~31 pc (68% range 10-186 pc) instead of 10; needs better luminosity criteria (issue 5)")
 def test_sun_distance_with_the_classifier_type(sun_spectrum):
-    # Same acceptance with the type specan itself assigns to the Kurucz Sun, once the classifier exists.
+    # Same acceptance with the type specan itself assigns to the Kurucz Sun. With the JHC-only
+    # calibration the class probabilities were flat (III 0.25, IV 0.28, V 0.28) and the mixture
+    # put the Sun at 31 pc; the combined calibration and the measured log g make it V with
+    # probability 0.82 (G5.5 V), 9.1 pc (measured).
     classify = pytest.importorskip("specan.classify", reason="specan.classify not available yet")
     import specan
 

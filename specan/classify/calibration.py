@@ -20,7 +20,8 @@ import numpy as np
 from ..errors import AnalysisError, ReadError
 from ..mktypes import lumclass_to_number, marks_emission, number_to_lumclass, sptype_to_code
 from ..obsinfo import get_info
-from . import flags
+from . import flags, gravity
+from .atmosphere import atmosphere_columns, gravity_agreement, measure_atmosphere
 from .criteria import CRITERIA, EMISSION_SENSITIVE, criteria_names, definitions
 from .crossval import cross_validate
 from .measure import spectrum_criteria
@@ -187,15 +188,32 @@ class Calibration:
             self._fine = fine_model(self.model_, self.settings["depth_scale_sigma"])
         return self._fine
 
-    def classify(self, spectrum, rv=None, resolving_power=None):
-        """MK type of a spectrum; see :func:`specan.classify.classify` for the result."""
+    def classify(self, spectrum, rv=None, resolving_power=None, parameters=True):
+        """MK type of a spectrum; see :func:`specan.classify.classify` for the result.
+
+        With ``parameters`` the atmospheric parameters are measured too
+        (:func:`specan.parameters.measure`) and the surface gravity weighs the luminosity classes
+        (:mod:`specan.classify.gravity`).
+        """
         meas = spectrum_criteria(spectrum, self.resolution, rv=rv, resolving_power=resolving_power)
-        out = self.classify_criteria(meas["values"], meas["noise"], snr=meas["snr"])
+        atmosphere = (measure_atmosphere(spectrum, meas["rv"], meas["notes"], meas["input_fwhm"],
+                                         meas["input_resolving_power"]) if parameters else None)
+        weights = None
+        if atmosphere is not None and atmosphere["broader_than_model"]:
+            meas["notes"].append("log g not used for the luminosity class: the spectrum is broader than the "
+                                 "parameter model")
+        elif atmosphere is not None:
+            weights, z = gravity.class_weights(atmosphere["logg"].value, atmosphere["logg_err"].value,
+                                               atmosphere["teff"].value)
+        out = self.classify_criteria(meas["values"], meas["noise"], snr=meas["snr"], class_weight=weights)
         out["notes"] = meas["notes"] + out["notes"]
         out["rv"] = meas["rv"]
+        out.update(atmosphere_columns(atmosphere))
+        if weights is not None:
+            gravity_agreement(out, z)
         return out
 
-    def classify_criteria(self, values, noise=None, snr=None):
+    def classify_criteria(self, values, noise=None, snr=None, class_weight=None):
         """MK type from criteria already measured (in :func:`criteria_names` order).
 
         Parameters
@@ -205,6 +223,8 @@ class Calibration:
             1-sigma measurement noise of each criterion (zeros if None).
         snr : float, optional
             S/N per pixel, for the ``low_snr`` flag.
+        class_weight : ndarray (5,), optional
+            An independent likelihood of each luminosity class I..V (the surface gravity's).
 
         Returns
         -------
@@ -214,7 +234,7 @@ class Calibration:
         fine = self.lattice_model()
         x, noise, ok = _usable_criteria(values, noise)
         p, ll, z2 = posterior(x, noise, fine, self.settings["dof"], self.tau_, ok)
-        est = read_posterior(p, ll, fine["grid"], self.tau_class_)
+        est = read_posterior(p, ll, fine["grid"], self.tau_class_, class_weight)
         quality = fit_quality(z2, fine["weights"], ok, est.code_index, est.class_index)
         model = class_means(fine["mean"], fine["offsets"], np.ones(len(x), bool))[est.code_index, est.class_index]
         raised = self._flags(x, noise, ok, snr, est, quality, model)
@@ -378,7 +398,12 @@ def _without_emission_lines(X, emission):
     sixfold, so that H-alpha emission 45% above the continuum went unflagged: measured.)
     """
     X_fit = X.copy()
-    X_fit[np.ix_(emission, EMISSION_SENSITIVE)] = np.nan
+    # A standard whose H-alpha rises above its pseudo-continuum by more than the emission flag's
+    # depth shows emission its type does not mark (the MILES M6 V star m0884: -0.28, unmarked,
+    # widened the M-dwarf H-alpha scatter so that the JHC dMe star went unflagged: measured).
+    halpha = X[:, criteria_names().index("halpha")]
+    shows = np.nan_to_num(halpha, nan=0.0) < flags.EMISSION_DEPTH
+    X_fit[np.ix_(np.asarray(emission, bool) | shows, EMISSION_SENSITIVE)] = np.nan
     return X_fit
 
 

@@ -11,12 +11,12 @@ from .calibration import Calibration
 
 __all__ = ["DEFAULT_FILE", "default_calibration", "classify"]
 
-DEFAULT_FILE = "calibration_jhc1984.json"
+DEFAULT_FILE = "calibration_default.json"
 
 
 @functools.lru_cache(maxsize=1)
 def default_calibration():
-    """The calibration shipped with specan (fitted from the JHC 1984 library)."""
+    """The calibration shipped with specan (fitted on the JHC 1984 and MILES libraries at 13 A FWHM)."""
     try:
         ref = resources.files("specan.data").joinpath(DEFAULT_FILE)
         text = ref.read_text(encoding="utf-8")
@@ -26,7 +26,7 @@ def default_calibration():
     return Calibration.from_dict(json.loads(text), DEFAULT_FILE)
 
 
-def classify(spectrum, calibration=None, rv=None, resolving_power=None):
+def classify(spectrum, calibration=None, rv=None, resolving_power=None, parameters=True):
     """MK spectral type, luminosity class, Teff and flags of a spectrum.
 
     Parameters
@@ -41,6 +41,9 @@ def classify(spectrum, calibration=None, rv=None, resolving_power=None):
     resolving_power : float, optional
         Resolving power already estimated from the narrowest lines, used when the
         metadata give none (see :func:`specan.classify.spectrum_criteria`).
+    parameters : bool
+        Also measure Teff, log g and [Fe/H] (:func:`specan.parameters.measure`) and let the
+        surface gravity weigh the luminosity classes (:mod:`specan.classify.gravity`).
 
     Returns
     -------
@@ -52,11 +55,13 @@ def classify(spectrum, calibration=None, rv=None, resolving_power=None):
         scales named there -- averaged over ``lumclass_prob``, the spread added to the error),
         ``nearest_standards`` (list of {id, mk, distance}), ``flags`` (list of the raised
         ones among :data:`specan.classify.FLAGS`), ``notes`` (list of str), ``fit_quality``,
-        ``criteria`` (name -> {value, standard}), ``rv`` (velocity removed) and
-        ``calibration`` (its source).
+        ``criteria`` (name -> {value, standard}), ``rv`` (velocity removed),
+        ``calibration`` (its source), and with ``parameters`` ``teff_spec``, ``teff_spec_err`` (K),
+        ``logg``, ``logg_err``, ``feh``, ``feh_err`` (dex) and ``parameters_chi2`` (None where
+        not measured). The flag ``gravity_conflict`` says the log g and the class disagree.
     """
     if calibration is None:
         calibration = default_calibration()
     elif not isinstance(calibration, Calibration):
         calibration = Calibration.load(calibration)
-    return calibration.classify(spectrum, rv=rv, resolving_power=resolving_power)
+    return calibration.classify(spectrum, rv=rv, resolving_power=resolving_power, parameters=parameters)

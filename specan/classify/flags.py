@@ -12,10 +12,10 @@ from ..mktypes import code_to_sptype
 from .criteria import criteria_names
 
 __all__ = ["FLAGS", "LOW_SNR", "FEATURELESS", "EMISSION_DEPTH", "low_snr", "out_of_range", "poor_fit",
-           "featureless", "emission", "composite"]
+           "featureless", "emission", "composite", "gravity_conflict"]
 
 #: Flags :func:`specan.classify.classify` may raise (the ``flags`` list holds those raised).
-FLAGS = ("low_snr", "out_of_range", "peculiar", "emission", "composite")
+FLAGS = ("low_snr", "out_of_range", "peculiar", "emission", "composite", "gravity_conflict")
 
 #: S/N per pixel below which the ``low_snr`` flag is raised (common practice: criteria at
 #: R ~ 1000-2000 become unreliable well before S/N 20; same threshold as specan.pipeline).
@@ -96,4 +96,19 @@ def composite(split, split_limit):
     if split is not None and split > split_limit:
         return [("composite", f"blue and red criteria disagree by {split:.1f} subclasses "
                               "(two stars of different type?)")]
+    return []
+
+
+def gravity_conflict(lumclass, z, limit):
+    """``gravity_conflict`` when the measured log g lies more than ``limit`` sigma from the class's.
+
+    ``z`` holds, for classes I..V, the measured log g's distance from each class's expected one
+    in combined sigma (:func:`specan.classify.gravity.class_weights`).
+    """
+    from ..mktypes import lumclass_to_number
+
+    zc = float(z[lumclass_to_number(lumclass) - 1])
+    if abs(zc) > limit:
+        return [("gravity_conflict", f"the measured log g is {abs(zc):.1f} sigma from class {lumclass}'s at this "
+                                     "Teff: luminosity class and gravity disagree")]
     return []

@@ -73,8 +73,11 @@ def spectrum_criteria(spectrum, resolution=4.5 * u.AA, rv=None, measure_velocity
                                 resolving_power, lines_asked)
     grid, fs, gs = smooth_to_fwhm(wave, flux, good, fwhm_in, fwhm_out)
     values, noise = measure_criteria(grid, fs, ~gs, snr=snr, pixel=pixel)
+    constant = np.ndim(fwhm_in) == 0
     return {"values": values, "noise": noise, "snr": snr,
-            "rv": None if rv is None else u.Quantity(rv, u.km / u.s), "notes": notes + note}
+            "rv": None if rv is None else u.Quantity(rv, u.km / u.s), "notes": notes + note,
+            "input_fwhm": float(fwhm_in) if constant else None,
+            "input_resolving_power": None if constant else float(np.median(wave / fwhm_in))}
 
 
 def _usable_pixels(spectrum, info):

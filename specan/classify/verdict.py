@@ -31,7 +31,7 @@ class TypeEstimate(NamedTuple):
     class_index: int          # lattice column of the class
 
 
-def read_posterior(p, ll, grid, tau_class):
+def read_posterior(p, ll, grid, tau_class, class_weight=None):
     """Type, its uncertainty and the class probabilities from a posterior.
 
     Parameters
@@ -44,13 +44,21 @@ def read_posterior(p, ll, grid, tau_class):
         Type codes of the lattice rows.
     tau_class : float
         Temperature of the class probabilities.
+    class_weight : ndarray (5,), optional
+        An independent likelihood of each class I..V (e.g. from the surface gravity,
+        :mod:`specan.classify.gravity`), multiplied into the posterior and the class probabilities.
 
     Returns
     -------
     TypeEstimate
     """
+    if class_weight is not None:
+        p = p * np.asarray(class_weight, float)[None, :]
+        p = p / p.sum()
     code, code_err, _ = summarise(p, grid)
     pl = np.exp((ll - ll.max()) / tau_class).sum(axis=0)
+    if class_weight is not None:
+        pl = pl * np.asarray(class_weight, float)
     pl /= pl.sum()
     code_err = max(code_err, 0.5)    # standards' own types are quoted to half a subclass at best
     # The most probable class. (Tried on the library in 10-fold CV: the median of the ordered

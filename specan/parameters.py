@@ -1,0 +1,398 @@
+"""Atmospheric parameters from the spectrum: Teff, log g and [Fe/H] with uncertainties.
+
+Method: a data-driven spectral model learnt from the MILES library's observed stars and their
+published parameters (Cenarro et al. 2007; Prugniel et al. 2011): at every pixel the
+continuum-normalised flux is a quadratic function of the scaled labels (log Teff, log g, [Fe/H])
+(the generative, quadratic-in-labels model of Ness et al. 2015, ApJ 808, 16), plus an intrinsic
+scatter per pixel. One such model is fitted around each of a ladder of temperature nodes, its
+training stars weighted by a Gaussian in log Teff about the node (a local, piecewise model: one
+quadratic cannot follow the spectra from M to B stars). A star's labels are those whose model
+spectrum, times a low-order polynomial (what is left of continuum and response differences),
+fits it best in chi-square, with the model of the node nearest the answer.
+
+Inputs are brought to the model's footing exactly as the library was: shifted to rest, air
+wavelengths, smoothed to the model's resolution (:data:`MODEL_FWHM`), resampled onto the model's
+pixels and continuum-normalised by :func:`specan.prepare.prepare`.
+
+Uncertainties: the fit's own (from its Jacobian, scaled by the reduced chi-square when above 1)
+combined in quadrature with the model's cross-validated scatter at that node (stored in the
+model file by ``scripts/fit_parameter_model.py``): the part of the error that comes from the
+model and the library's labels, which no noise estimate sees.
+"""
+
+from __future__ import annotations
+
+import functools
+import math
+from importlib import resources
+from pathlib import Path
+from typing import NamedTuple
+
+import astropy.units as u
+import numpy as np
+from scipy.optimize import least_squares
+
+from .doppler import doppler_factor
+from .errors import AnalysisError
+from .obsinfo import META_KEY, get_info, wavelength_in
+from .resolution import smooth_to_fwhm
+
+__all__ = ["MODEL_FILE", "MODEL_FWHM", "LABELS", "model_wavelengths", "scale_labels", "broader_than_model",
+           "ModelInput", "on_model_grid", "ParameterModel",
+           "default_model", "fit_labels", "measure"]
+
+#: The packaged model (``scripts/fit_parameter_model.py`` regenerates it).
+MODEL_FILE = "parameters_miles.fits"
+#: Resolution of the model (FWHM, Angstrom): the library's 2.5 A degraded to what most spectra reach.
+MODEL_FWHM = 4.5
+#: Model pixels: air wavelengths, 2.5 pixels per FWHM, over the library's range less its ends.
+WAVE_RANGE = (3700.0, 7350.0)
+PIXEL = MODEL_FWHM / 2.5
+LABELS = ("teff", "logg", "feh")
+#: Label scaling (x - centre) / width, so that quadratic terms are of order one.
+SCALE_CENTRE = np.array([3.7, 3.5, -0.3])     # log10 Teff, log g, [Fe/H]
+SCALE_WIDTH = np.array([0.1, 1.0, 0.5])
+#: Degree of the multiplicative polynomial fitted with the labels (continuum residuals).
+POLY_DEGREE = 3
+
+
+def model_wavelengths():
+    """Air wavelengths (Angstrom) of the model's pixels."""
+    return np.arange(WAVE_RANGE[0], WAVE_RANGE[1] + PIXEL / 2, PIXEL)
+
+
+def scale_labels(labels):
+    """Scaled labels from (Teff K, log g, [Fe/H]) rows."""
+    labels = np.atleast_2d(np.asarray(labels, float))
+    raw = np.column_stack([np.log10(labels[:, 0]), labels[:, 1], labels[:, 2]])
+    return (raw - SCALE_CENTRE) / SCALE_WIDTH
+
+
+def _unscale(scaled):
+    raw = np.asarray(scaled, float) * SCALE_WIDTH + SCALE_CENTRE
+    return np.array([10.0 ** raw[0], raw[1], raw[2]])
+
+
+def _design(scaled):
+    """Quadratic design matrix: 1, t, g, f, t^2, g^2, f^2, tg, tf, gf for each row of scaled labels."""
+    x = np.atleast_2d(scaled)
+    t, g, f = x[:, 0], x[:, 1], x[:, 2]
+    return np.column_stack([np.ones_like(t), t, g, f, t * t, g * g, f * f, t * g, t * f, g * f])
+
+
+# ---------------------------------------------------------------------------
+# A spectrum on the model's footing
+# ---------------------------------------------------------------------------
+class ModelInput(NamedTuple):
+    """A spectrum on the model's pixels: normalised flux, usable pixels, and whether it is broader."""
+
+    flux: np.ndarray
+    good: np.ndarray
+    broader: bool
+
+
+def broader_than_model(wave, fwhm_in):
+    """True when a spectrum's FWHM (A, scalar or per pixel) exceeds the model's over its wavelengths.
+
+    The model's errors were measured on spectra at its resolution; broader spectra lose the
+    detail it relies on (the JHC copies at ~13 A gave worse luminosity groups with their log g
+    than without it: 62% against 67% of B-K stars, measured), so their parameters are not used
+    to weigh the luminosity classes.
+    """
+    return float(np.median(np.broadcast_to(fwhm_in, np.shape(wave)))) > MODEL_FWHM * 1.1
+
+
+def on_model_grid(spectrum, rv=None, fwhm_in=None, notes=None, resolving_power=None):
+    """Rest-frame, air, model-resolution, continuum-normalised flux on the model pixels.
+
+    Parameters
+    ----------
+    spectrum : specutils.Spectrum
+        As read (normalised or not).
+    rv : astropy.units.Quantity, optional
+        The spectrum's velocity (topocentric, as seen in the data); None: taken as at rest.
+    fwhm_in : float, optional
+        The spectrum's FWHM in Angstrom; default lambda / R (``resolving_power``, else its
+        metadata's), else 2.5 pixels.
+    notes : list, optional
+        Receives a sentence per assumption.
+    resolving_power : float, optional
+        The spectrum's R when its metadata do not state it (e.g. estimated by another stage).
+
+    Returns
+    -------
+    ModelInput
+        ``flux`` and ``good`` on :func:`model_wavelengths` (``good`` False outside the spectrum
+        and on masked pixels); ``broader`` when the spectrum is broader than the model.
+    """
+    from specutils import Spectrum
+
+    from .obsinfo import ObsInfo
+    from .prepare import prepare
+
+    notes = notes if notes is not None else []
+    info = get_info(spectrum)
+    wave = wavelength_in(spectrum, "air")
+    flux = np.asarray(spectrum.flux.value, float)
+    good = np.isfinite(flux) & np.isfinite(wave)
+    if spectrum.mask is not None:
+        good &= ~np.asarray(spectrum.mask, bool)
+    order = np.argsort(wave)
+    wave, flux, good = wave[order], flux[order], good[order]
+    if rv is not None:
+        wave = wave / float(doppler_factor(u.Quantity(rv, u.km / u.s)))
+    grid = model_wavelengths()
+    near = (wave >= grid[0] - 5 * MODEL_FWHM) & (wave <= grid[-1] + 5 * MODEL_FWHM)
+    if (good & near).sum() < 50:
+        raise AnalysisError("the spectrum does not overlap the parameter model's 3700-7350 A", info.path)
+    wave, flux, good = wave[near], flux[near], good[near]
+    if fwhm_in is None:
+        if info.resolving_power or resolving_power:
+            fwhm_in = wave / float(info.resolving_power or resolving_power)
+        else:
+            fwhm_in = 2.5 * float(np.median(np.diff(wave)))
+            notes.append("resolving power unknown: taken as 2.5 pixels per FWHM for the parameters")
+    broader = broader_than_model(wave, fwhm_in)
+    if broader:
+        notes.append(f"spectrum broader than the parameter model's {MODEL_FWHM:g} A FWHM: parameters less certain "
+                     "than their errors say")
+    fine, smooth, fine_good = smooth_to_fwhm(wave, np.where(good, flux, 0.0), good, fwhm_in, MODEL_FWHM)
+    inside = (grid >= fine[0]) & (grid <= fine[-1])
+    on = np.interp(grid, fine, smooth)
+    ok = inside & (np.interp(grid, fine, fine_good.astype(float)) > 0.99)
+    if ok.sum() < 50:
+        raise AnalysisError("too few usable pixels on the parameter model's wavelengths", info.path)
+    positive = np.where(ok & (on > 0), on, np.nan)
+    carrier = Spectrum(flux=np.nan_to_num(positive, nan=1.0) * u.dimensionless_unscaled, spectral_axis=grid * u.AA,
+                       mask=~np.isfinite(positive),
+                       meta={META_KEY: ObsInfo(medium="air", medium_assumed=False, resolving_power=5000.0 / MODEL_FWHM)})
+    normed = prepare(carrier, telluric=False)
+    out = np.asarray(normed.flux.value, float)
+    return ModelInput(out, ok & np.isfinite(out) & ~np.asarray(normed.mask, bool), broader)
+
+
+# ---------------------------------------------------------------------------
+# The model
+# ---------------------------------------------------------------------------
+class ParameterModel:
+    """Piecewise quadratic-in-labels spectral model on :func:`model_wavelengths`.
+
+    Attributes
+    ----------
+    nodes : ndarray (k,)
+        log10 Teff of the node models.
+    coef : ndarray (k, 10, n)
+        Quadratic coefficients of each node's model at each pixel.
+    scatter : ndarray (k, n)
+        Intrinsic scatter (flux units) of each node's model at each pixel.
+    cv_sd : ndarray (k, 3)
+        Cross-validated scatter of Teff (fraction), log g (dex), [Fe/H] (dex) at each node.
+    source : str
+        What the model was fitted on.
+    """
+
+    def __init__(self, nodes, coef, scatter, cv_sd, source=""):
+        self.nodes = np.asarray(nodes, float)
+        self.coef = np.asarray(coef, float)
+        self.scatter = np.asarray(scatter, float)
+        self.cv_sd = np.asarray(cv_sd, float)
+        self.source = source
+
+    @classmethod
+    def fit(cls, flux, labels, nodes, width=1.0, source="", clip=4.0):
+        """Fit node models to normalised library fluxes (rows, NaN = unusable) and their labels.
+
+        ``width`` is the Gaussian weight's sigma in node spacings. Stars whose mean squared
+        residual exceeds ``clip`` times the model scatter are left out of a second pass
+        (label or spectrum outliers).
+        """
+        flux = np.asarray(flux, float)
+        x = scale_labels(labels)
+        lt = np.log10(np.asarray(labels, float)[:, 0])
+        nodes = np.asarray(nodes, float)
+        spacing = np.gradient(nodes)
+        coefs, scatters = [], []
+        for node, sp in zip(nodes, spacing):
+            w = np.exp(-0.5 * ((lt - node) / (width * sp)) ** 2)
+            coef, s2 = _weighted_fit(x, flux, w, clip)
+            coefs.append(coef)
+            scatters.append(np.sqrt(s2))
+        return cls(nodes, np.array(coefs), np.array(scatters), np.zeros((len(nodes), 3)), source)
+
+    def predict(self, k, scaled):
+        """Model flux of node ``k`` at scaled labels (one row)."""
+        return _design(scaled)[0] @ self.coef[k]
+
+    def nearest(self, scaled):
+        """Index of the node nearest a scaled label row's temperature."""
+        lt = scaled[0] * SCALE_WIDTH[0] + SCALE_CENTRE[0]
+        return int(np.argmin(np.abs(self.nodes - lt)))
+
+    def save(self, path):
+        """Write the model as a FITS file (coefficients, scatter, nodes, CV scatter, provenance)."""
+        from astropy.io import fits
+
+        primary = fits.PrimaryHDU(self.coef.astype(np.float32))
+        h = primary.header
+        h["CTYPE1"], h["CUNIT1"], h["CRPIX1"], h["CRVAL1"], h["CDELT1"] = "AWAV", "Angstrom", 1.0, WAVE_RANGE[0], PIXEL
+        h["FWHM"] = (MODEL_FWHM, "model resolution, Angstrom")
+        h["POLYDEG"] = POLY_DEGREE
+        for k, part in enumerate(_chunks(self.source)):
+            h[f"SOURCE{k}"] = part
+        hdus = [primary, fits.ImageHDU(self.scatter.astype(np.float32), name="SCATTER"),
+                fits.ImageHDU(self.nodes, name="NODES"), fits.ImageHDU(self.cv_sd, name="CVSD")]
+        fits.HDUList(hdus).writeto(path, overwrite=True)
+
+    @classmethod
+    def load(cls, path=None):
+        """Read a model written by :meth:`save` (default: the packaged one)."""
+        from astropy.io import fits
+
+        if path is None:
+            with resources.as_file(resources.files("specan.data") / MODEL_FILE) as p:
+                return cls.load(p)
+        with fits.open(Path(path)) as hdus:
+            h = hdus[0].header
+            if abs(h["FWHM"] - MODEL_FWHM) > 1e-6 or abs(h["CDELT1"] - PIXEL) > 1e-9:
+                raise AnalysisError(f"parameter model {path} was made for other pixels or resolution")
+            source = "".join(str(h[k]) for k in h if k.startswith("SOURCE"))
+            return cls(hdus["NODES"].data, hdus[0].data, hdus["SCATTER"].data, hdus["CVSD"].data, source)
+
+
+def _chunks(text, size=68):
+    return [text[i:i + size] for i in range(0, len(text), size)] or [""]
+
+
+def _weighted_fit(x, flux, w, clip):
+    """Per-pixel weighted least squares of flux on the quadratic design, two passes (outliers out)."""
+    A = _design(x)
+    usable = np.isfinite(flux)
+    y = np.where(usable, flux, 0.0)
+    for _ in range(2):
+        coef = np.empty((A.shape[1], flux.shape[1]))
+        # one normal-equation solve per pixel with the pixel's own usable stars (vectorised by
+        # stacking: the Gram matrices differ only where stars have unusable pixels)
+        W = w[:, None] * usable
+        G = np.einsum("si,sj,sp->pij", A, A, W)
+        b = np.einsum("si,sp->pi", A, W * y)
+        coef = np.linalg.solve(G + 1e-9 * np.eye(A.shape[1]), b[..., None])[..., 0].T
+        resid = np.where(usable, y - A @ coef, 0.0)
+        s2 = np.maximum((W * resid ** 2).sum(0) / np.maximum(W.sum(0), 1e-12), 1e-8)
+        chi = (resid ** 2 / s2 * usable).sum(1) / np.maximum(usable.sum(1), 1)
+        w = w * (chi < clip)
+    return coef, s2
+
+
+@functools.lru_cache(maxsize=1)
+def default_model():
+    """The packaged :class:`ParameterModel` (cached)."""
+    return ParameterModel.load()
+
+
+# ---------------------------------------------------------------------------
+# Fitting labels
+# ---------------------------------------------------------------------------
+def _poly_basis(n):
+    x = np.linspace(-1.0, 1.0, n)
+    return np.polynomial.legendre.legvander(x, POLY_DEGREE)
+
+
+def _residuals(model, k, scaled, y, good, sigma, basis):
+    """Residuals (in sigma) of y against model x best multiplicative polynomial (solved linearly)."""
+    m = model.predict(k, scaled)
+    B = basis[good] * m[good, None]
+    wts = 1.0 / sigma[good]
+    c, *_ = np.linalg.lstsq(B * wts[:, None], y[good] * wts, rcond=None)
+    return (y[good] - B @ c) * wts
+
+
+def _first_guess(model, y, good, sigma, basis):
+    """Scaled labels of the best chi-square on a coarse grid of each node's model."""
+    best = None
+    for k, node in enumerate(model.nodes):
+        t = (node - SCALE_CENTRE[0]) / SCALE_WIDTH[0]
+        for g in np.linspace(-2.5, 1.3, 8):        # log g 1.0 ... 4.8
+            for f in np.linspace(-2.4, 1.0, 5):    # [Fe/H] -1.5 ... +0.2
+                x = np.array([t, g, f])
+                c2 = float(np.sum(_residuals(model, k, x, y, good, sigma, basis) ** 2))
+                if best is None or c2 < best[0]:
+                    best = (c2, x)
+    return best[1]
+
+
+def fit_labels(model, flux, good, sigma=None):
+    """Best-fitting (Teff, log g, [Fe/H]) of a flux on the model's pixels.
+
+    Returns
+    -------
+    dict
+        ``labels`` (Teff K, log g, [Fe/H]), ``errors`` (statistical, same units), ``node``
+        (index), ``chi2_reduced``.
+    """
+    y = np.asarray(flux, float)
+    good = np.asarray(good, bool) & np.isfinite(y)
+    basis = _poly_basis(y.size)
+    # without a noise estimate the model's own scatter is the error; the reduced chi-square then
+    # scales the covariance up when the spectrum's noise or mismatch is larger
+    sig0 = np.zeros_like(y) if sigma is None else np.asarray(sigma, float)
+    x = _first_guess(model, y, good, np.hypot(sig0, np.nanmedian(model.scatter, axis=0)), basis)
+    k = model.nearest(x)
+    for _ in range(3):   # the node nearest the answer, until it settles
+        sig = np.hypot(sig0, model.scatter[k])
+        sol = least_squares(lambda p: _residuals(model, k, p, y, good, sig, basis), x, method="lm")
+        x = sol.x
+        k_new = model.nearest(x)
+        if k_new == k:
+            break
+        k = k_new
+    dof = max(int(good.sum()) - 3 - (POLY_DEGREE + 1), 1)
+    chi2 = 2.0 * sol.cost / dof
+    cov = np.linalg.pinv(sol.jac.T @ sol.jac) * max(chi2, 1.0)
+    err_scaled = np.sqrt(np.clip(np.diag(cov), 0.0, None)) * SCALE_WIDTH
+    labels = _unscale(x)
+    errors = np.array([labels[0] * math.log(10.0) * err_scaled[0], err_scaled[1], err_scaled[2]])
+    return {"labels": labels, "errors": errors, "node": k, "chi2_reduced": float(chi2)}
+
+
+def measure(spectrum, rv=None, model=None, fwhm_in=None, resolving_power=None):
+    """Teff, log g and [Fe/H] of a spectrum, with uncertainties (see the module docstring).
+
+    Parameters
+    ----------
+    spectrum : specutils.Spectrum
+    rv : astropy.units.Quantity, optional
+        Velocity to remove (as seen in the data); None: the spectrum is taken as at rest.
+    model : ParameterModel, optional
+        Default: the packaged model fitted on the MILES library.
+    fwhm_in : float, optional
+        FWHM of the spectrum (Angstrom) when its metadata give no resolving power.
+    resolving_power : float, optional
+        R of the spectrum when its metadata give none (e.g. estimated from its lines).
+
+    Returns
+    -------
+    dict
+        ``teff``, ``teff_err`` (K), ``logg`` (dex(cm s-2)), ``logg_err``, ``feh``, ``feh_err`` (dex)
+        as Quantities (``.value`` gives the plain number); ``chi2_reduced``; ``node_teff`` (K, the node model used); ``notes``.
+        Errors combine the fit's with the model's cross-validated scatter at the node;
+        ``broader_than_model`` says the spectrum is broader than the model (:func:`broader_than_model`).
+    """
+    notes = []
+    model = model or default_model()
+    flux, good, broader = on_model_grid(spectrum, rv=rv, fwhm_in=fwhm_in, notes=notes,
+                                        resolving_power=resolving_power)
+    res = fit_labels(model, flux, good)
+    k = res["node"]
+    teff, logg, feh = res["labels"]
+    stat = res["errors"]
+    sys_sd = model.cv_sd[k]
+    errs = np.hypot(stat, np.array([teff * sys_sd[0], sys_sd[1], sys_sd[2]]))
+    lo, hi = 10 ** model.nodes[0], 10 ** model.nodes[-1]
+    if not lo <= teff <= hi:
+        notes.append(f"Teff {teff:.0f} K outside the model's {lo:.0f}-{hi:.0f} K: parameters extrapolated")
+    notes.append(f"atmospheric parameters from a quadratic spectral model of the MILES library at "
+                 f"{MODEL_FWHM:g} A (node {10 ** model.nodes[k]:.0f} K; errors include its cross-validated scatter)")
+    gravity = u.dex(u.cm / u.s ** 2)
+    return {"teff": teff * u.K, "teff_err": errs[0] * u.K, "logg": logg * gravity, "logg_err": errs[1] * u.dex,
+            "feh": feh * u.dex, "feh_err": errs[2] * u.dex, "chi2_reduced": res["chi2_reduced"],
+            "node_teff": 10 ** model.nodes[k] * u.K, "broader_than_model": broader, "notes": notes}
