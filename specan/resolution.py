@@ -9,10 +9,8 @@ Gaussian (common practice at R ~ 1,000-20,000), so widths add in quadrature.
 from __future__ import annotations
 
 import math
-import warnings
 from typing import NamedTuple
 
-import astropy.units as u
 import numpy as np
 from scipy.ndimage import gaussian_filter1d
 from scipy.signal import find_peaks
@@ -47,32 +45,19 @@ class NormalisedArrays(NamedTuple):
 
     wave: np.ndarray      #: Angstrom, in the spectrum's medium
     flux: np.ndarray      #: masked pixels interpolated from their neighbours
-    sigma: np.ndarray     #: per-pixel noise (error array, else DER_SNR), never below 1e-5
+    sigma: np.ndarray     #: per-pixel noise (error array, else from the flux), never below 1e-5
     good: np.ndarray      #: True where the pixel is usable
-    noise_source: str     #: "error array" or "DER_SNR"
+    noise_source: str     #: "error array" or how the flux-based noise was measured
 
 
-def _dersnr_noise(wave, flux, good):
-    """Noise per pixel of the normalised flux by DER_SNR (Stoehr et al. 2008, via specutils)."""
-    from specutils import Spectrum
-    from specutils.analysis import snr_derived
-
-    packed = Spectrum(spectral_axis=wave[good] * u.AA, flux=flux[good] * u.dimensionless_unscaled)
-    with warnings.catch_warnings():
-        warnings.simplefilter("ignore")
-        snr = float(snr_derived(packed).value)
-    med = float(np.median(flux[good]))
-    if not np.isfinite(snr) or snr <= 0:
-        return 1e-5
-    return max(med / snr, 1e-5)
-
-
-def normalised_arrays(spectrum, min_good=10):
+def normalised_arrays(spectrum, min_good=10, resolving_power=None):
     """Wavelength, flux, noise and good-pixel mask of a normalised spectrum as plain arrays.
 
     Masked pixels get the flux interpolated from their neighbours (so integrals and filters
-    are defined) and are marked in ``good``; without an error array the noise is the
-    DER_SNR estimate, one value for every pixel.
+    are defined) and are marked in ``good``; without an error array the noise is
+    :func:`specan.noise.flux_noise` of the normalised flux (the noise plateau near Nyquist
+    with the lines' leak removed, block by block along the spectrum), at
+    ``resolving_power`` (default ``info.resolving_power``, else 2.5 pixels per FWHM).
 
     Raises
     ------
@@ -91,8 +76,12 @@ def normalised_arrays(spectrum, min_good=10):
     idx = np.flatnonzero(good)
     flux = np.where(bad, np.interp(wave, wave[idx], flux[idx]), flux)
     if sigma is None:
-        sigma = np.full(flux.shape, _dersnr_noise(wave, flux, good))
-        source = "DER_SNR"
+        from .noise import flux_noise, pixels_per_fwhm
+
+        est = flux_noise(flux, good, pixels_per_fwhm(wave, resolving_power or info.resolving_power))
+        # no noise found (a noiseless model): the floor below stands in
+        sigma = np.where(np.isfinite(est.sigma), est.sigma, 1e-5)
+        source = est.method
     else:
         source = "error array"
     # floor: noiseless models would give infinite weights
