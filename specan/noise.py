@@ -212,6 +212,12 @@ def flux_noise(flux, good=None, pixels_per_fwhm=None, block=BLOCK):
     with np.errstate(divide="ignore", invalid="ignore"):
         ratio = y[good] / sigma[good]
     snr = float(np.median(ratio)) if ratio.size else None
+    if method.startswith("flux: DER_SNR"):
+        # the S/N as DER_SNR defines it over the whole spectrum (median flux / noise of the
+        # usable pixels, Stoehr et al. 2008), as specan reported before the plateau method
+        packed = y[good]
+        der = 1.482602 / np.sqrt(6.0) * np.median(np.abs(2.0 * packed[2:-2] - packed[:-4] - packed[4:]))
+        snr = float(np.median(packed) / der) if der > 0 else None
     if snr is None or not np.isfinite(snr) or snr > NOISELESS_SNR:
         # a noiseless model: the "noise" left is rounding; no S/N to report
         return FluxNoise(sigma, None, method + "; no noise found (a noiseless model?)")

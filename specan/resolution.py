@@ -50,7 +50,25 @@ class NormalisedArrays(NamedTuple):
     noise_source: str     #: "error array" or how the flux-based noise was measured
 
 
-def normalised_arrays(spectrum, min_good=10, resolving_power=None):
+def _dersnr_noise(wave, flux, good):
+    """Noise per pixel of the normalised flux by DER_SNR (Stoehr et al. 2008, via specutils)."""
+    import warnings
+
+    import astropy.units as u
+    from specutils import Spectrum
+    from specutils.analysis import snr_derived
+
+    packed = Spectrum(spectral_axis=wave[good] * u.AA, flux=flux[good] * u.dimensionless_unscaled)
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        snr = float(snr_derived(packed).value)
+    med = float(np.median(flux[good]))
+    if not np.isfinite(snr) or snr <= 0:
+        return 1e-5
+    return max(med / snr, 1e-5)
+
+
+def normalised_arrays(spectrum, min_good=10, resolving_power=None, dersnr=False):
     """Wavelength, flux, noise and good-pixel mask of a normalised spectrum as plain arrays.
 
     Masked pixels get the flux interpolated from their neighbours (so integrals and filters
@@ -58,6 +76,9 @@ def normalised_arrays(spectrum, min_good=10, resolving_power=None):
     :func:`specan.noise.flux_noise` of the normalised flux (the noise plateau near Nyquist
     with the lines' leak removed, block by block along the spectrum), at
     ``resolving_power`` (default ``info.resolving_power``, else 2.5 pixels per FWHM).
+    ``dersnr=True`` gives instead one DER_SNR value (Stoehr et al. 2008) for every pixel:
+    the narrowest-line search of :func:`estimate_resolving_power` had its thresholds set with
+    it, and the stages that estimate R (classification, velocity) keep it.
 
     Raises
     ------
@@ -75,7 +96,10 @@ def normalised_arrays(spectrum, min_good=10, resolving_power=None):
         raise AnalysisError(f"fewer than {min_good} usable pixels: no lines can be measured", info.path)
     idx = np.flatnonzero(good)
     flux = np.where(bad, np.interp(wave, wave[idx], flux[idx]), flux)
-    if sigma is None:
+    if sigma is None and dersnr:
+        sigma = np.full(flux.shape, _dersnr_noise(wave, flux, good))
+        source = "DER_SNR"
+    elif sigma is None:
         from .noise import flux_noise, pixels_per_fwhm
 
         est = flux_noise(flux, good, pixels_per_fwhm(wave, resolving_power or info.resolving_power))
@@ -172,7 +196,7 @@ def estimate_resolving_power(spectrum):
     if not get_info(spectrum).normalized:
         raise ValueError("estimate_resolving_power needs a continuum-normalised spectrum (specan.prepare)")
     try:
-        a = normalised_arrays(spectrum)
+        a = normalised_arrays(spectrum, dersnr=True)
     except AnalysisError:
         return None
     narrow = narrowest_line_width(a.wave, a.flux, a.sigma, a.good)

@@ -155,7 +155,10 @@ class LineData:
         self.wave, self.flux, self.sigma, self.good, self.noise_source = normalised_arrays(
             spectrum, resolving_power=resolving_power)
         self.dx = np.diff(pixel_edges(self.wave))  # pixel widths, Angstrom
-        self.narrow = narrowest_line_width(self.wave, self.flux, self.sigma, self.good)
+        # the narrowest-line search keeps the one-value DER_SNR noise its thresholds were set with
+        narrow_sigma = (self.sigma if self.noise_source == "error array"
+                        else normalised_arrays(spectrum, dersnr=True).sigma)
+        self.narrow = narrowest_line_width(self.wave, self.flux, narrow_sigma, self.good)
         r, self.r_source = _resolving_power(resolving_power, info.resolving_power, self.narrow, self.wave)
         self.resolving_power = float(r)
         if self.noise_source != "error array" and resolving_power is None and info.resolving_power is None:
