@@ -61,8 +61,19 @@ class ObsInfo:
         HDU the spectrum was read from.
     format : str or None
         Name of the reader that understood the file.
-    snr, snr_err_array : float or None
-        Median S/N per pixel by DER_SNR (Stoehr et al. 2008) and from the error array.
+    snr : float or None
+        Median S/N per pixel, the best estimate available: ``snr_err_array`` when the file
+        has an error array, else ``snr_flux`` (``snr_source`` says which).
+    snr_source : str or None
+        ``"error array"`` or ``"flux"``.
+    snr_err_array : float or None
+        Median flux / error over the usable pixels.
+    snr_flux : float or None
+        Median S/N per pixel from the flux alone (:func:`specan.noise.flux_noise`: the
+        high-frequency noise plateau with the lines' leak removed, or DER_SNR where the
+        pixels are correlated; ``snr_flux_method`` says which).
+    snr_flux_method : str or None
+        How ``snr_flux`` was measured.
     normalized : bool
         True once the flux has been divided by a fitted continuum.
     warnings : list of str
@@ -89,6 +100,9 @@ class ObsInfo:
     format: str | None = None
     snr: float | None = None
     snr_err_array: float | None = None
+    snr_source: str | None = None
+    snr_flux: float | None = None
+    snr_flux_method: str | None = None
     normalized: bool = False
     warnings: list = field(default_factory=list)
     header: dict = field(default_factory=dict)
@@ -143,6 +157,9 @@ class ObsInfo:
             "site_known": self.site is not None,
             "resolving_power": self.resolving_power,
             "snr": self.snr,
+            "snr_source": self.snr_source,
+            "snr_err_array": self.snr_err_array,
+            "snr_flux": self.snr_flux,
             "warnings": list(self.warnings),
         }
 

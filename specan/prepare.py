@@ -96,37 +96,50 @@ def mask_telluric(spectrum, bands=TELLURIC_BANDS_AIR):
     return replace_parts(spectrum, mask=mask)
 
 
-def snr(spectrum):
-    """Median S/N per pixel: DER_SNR always, and from the error array when there is one.
+def snr(spectrum, resolving_power=None):
+    """Median S/N per pixel: the best estimate, and the error array's and the flux's apart.
 
-    DER_SNR is Stoehr et al. (2008), via ``specutils.analysis.snr_derived`` on the
-    unmasked pixels; it needs no error array and is robust to lines.
+    With an error array the S/N is the median of flux / error (the file's own
+    statement); the flux-based estimate (:func:`specan.noise.flux_noise`: the white-noise
+    plateau of the power spectrum near Nyquist, the lines' leak into it removed, after
+    Brault & White 1971) is always made too, so the two can be compared. Without an error
+    array the flux-based estimate is the answer. DER_SNR (Stoehr et al. 2008) alone counts
+    the lines of line-rich spectra as noise (S/N 43 for the Kurucz Sun at R 2000 and a
+    true S/N 300, measured); it remains the fallback where the pixels are correlated.
+
+    Parameters
+    ----------
+    spectrum : specutils.Spectrum
+    resolving_power : float, optional
+        Default ``info.resolving_power``; else 2.5 pixels per FWHM are assumed.
 
     Returns
     -------
     dict
-        ``{"snr": DER_SNR value, "snr_err_array": median flux/sigma or None}``.
+        ``snr`` (the best estimate), ``snr_source`` ("error array" or "flux"),
+        ``snr_err_array`` (or None), ``snr_flux`` (or None: a noiseless model),
+        ``snr_flux_method``.
     """
     wave, flux, err, mask = spectrum_arrays(spectrum)
-    return _snr_arrays(wave, flux, err, mask, get_info(spectrum).path)
+    info = get_info(spectrum)
+    return _snr_arrays(wave, flux, err, mask, info.path, resolving_power or info.resolving_power)
 
 
-def _snr_arrays(wave, flux, err, mask, path=None):
-    from specutils import Spectrum
-    from specutils.analysis import snr_derived
+def _snr_arrays(wave, flux, err, mask, path=None, resolving_power=None):
+    from .noise import flux_noise, pixels_per_fwhm
 
     good = ~mask & np.isfinite(flux)
     if good.sum() < 10:
         raise AnalysisError("fewer than 10 usable pixels: cannot measure S/N", path)
-    packed = Spectrum(spectral_axis=wave[good] * u.AA, flux=flux[good] * u.dimensionless_unscaled)
-    with np.errstate(divide="ignore", invalid="ignore"):  # noiseless models: S/N infinite -> None
-        value = float(snr_derived(packed).value)
+    est = flux_noise(flux, good, pixels_per_fwhm(wave, resolving_power))
     from_err = None
     if err is not None:
         ok = good & np.isfinite(err) & (err > 0)
         if ok.sum() >= 10:
             from_err = float(np.median(flux[ok] / err[ok]))
-    return {"snr": value if np.isfinite(value) else None, "snr_err_array": from_err}
+    best, source = (from_err, "error array") if from_err is not None else (est.snr, "flux")
+    return {"snr": best, "snr_source": source, "snr_err_array": from_err, "snr_flux": est.snr,
+            "snr_flux_method": est.method}
 
 
 def fit_continuum(spectrum, smoothing=300.0 * u.AA, window=12.0 * u.AA, below_weight=0.005, max_iter=50):
@@ -399,7 +412,8 @@ def prepare(spectrum, telluric=True, continuum=True, **fit_options):
     Returns
     -------
     specutils.Spectrum
-        Normalised (if asked), masked; ``info.snr``/``info.snr_err_array`` set.
+        Normalised (if asked), masked; ``info.snr``, ``info.snr_source``, ``info.snr_err_array``,
+        ``info.snr_flux`` and ``info.snr_flux_method`` set (see :func:`snr`).
         A spectrum already normalised is returned unchanged.
     """
     info = get_info(spectrum)
@@ -410,11 +424,12 @@ def prepare(spectrum, telluric=True, continuum=True, **fit_options):
     mask |= _bad_pixels(flux, err, normalized=False)
     if telluric:
         mask |= telluric_mask(wave, info.medium)
-    s = _snr_arrays(wave, flux, err, mask, info.path)
+    s = _snr_arrays(wave, flux, err, mask, info.path, info.resolving_power)
     info = info.copy()
-    info.snr, info.snr_err_array = s["snr"], s["snr_err_array"]
+    info.snr, info.snr_source, info.snr_err_array = s["snr"], s["snr_source"], s["snr_err_array"]
+    info.snr_flux, info.snr_flux_method = s["snr_flux"], s["snr_flux_method"]
     if info.snr is not None and info.snr < 5:
-        info.warn(f"low S/N ({info.snr:.1f} per pixel by DER_SNR)")
+        info.warn(f"low S/N ({info.snr:.1f} per pixel, from the {info.snr_source})")
     meta = dict(spectrum.meta)
     meta[META_KEY] = info
     spec = replace_parts(spectrum, mask=mask, meta=meta)

@@ -9,10 +9,8 @@ Gaussian (common practice at R ~ 1,000-20,000), so widths add in quadrature.
 from __future__ import annotations
 
 import math
-import warnings
 from typing import NamedTuple
 
-import astropy.units as u
 import numpy as np
 from scipy.ndimage import gaussian_filter1d
 from scipy.signal import find_peaks
@@ -47,13 +45,16 @@ class NormalisedArrays(NamedTuple):
 
     wave: np.ndarray      #: Angstrom, in the spectrum's medium
     flux: np.ndarray      #: masked pixels interpolated from their neighbours
-    sigma: np.ndarray     #: per-pixel noise (error array, else DER_SNR), never below 1e-5
+    sigma: np.ndarray     #: per-pixel noise (error array, else from the flux), never below 1e-5
     good: np.ndarray      #: True where the pixel is usable
-    noise_source: str     #: "error array" or "DER_SNR"
+    noise_source: str     #: "error array" or how the flux-based noise was measured
 
 
 def _dersnr_noise(wave, flux, good):
     """Noise per pixel of the normalised flux by DER_SNR (Stoehr et al. 2008, via specutils)."""
+    import warnings
+
+    import astropy.units as u
     from specutils import Spectrum
     from specutils.analysis import snr_derived
 
@@ -67,12 +68,17 @@ def _dersnr_noise(wave, flux, good):
     return max(med / snr, 1e-5)
 
 
-def normalised_arrays(spectrum, min_good=10):
+def normalised_arrays(spectrum, min_good=10, resolving_power=None, dersnr=False):
     """Wavelength, flux, noise and good-pixel mask of a normalised spectrum as plain arrays.
 
     Masked pixels get the flux interpolated from their neighbours (so integrals and filters
-    are defined) and are marked in ``good``; without an error array the noise is the
-    DER_SNR estimate, one value for every pixel.
+    are defined) and are marked in ``good``; without an error array the noise is
+    :func:`specan.noise.flux_noise` of the normalised flux (the noise plateau near Nyquist
+    with the lines' leak removed, block by block along the spectrum), at
+    ``resolving_power`` (default ``info.resolving_power``, else 2.5 pixels per FWHM).
+    ``dersnr=True`` gives instead one DER_SNR value (Stoehr et al. 2008) for every pixel:
+    the narrowest-line search of :func:`estimate_resolving_power` had its thresholds set with
+    it, and the stages that estimate R (classification, velocity) keep it.
 
     Raises
     ------
@@ -90,9 +96,16 @@ def normalised_arrays(spectrum, min_good=10):
         raise AnalysisError(f"fewer than {min_good} usable pixels: no lines can be measured", info.path)
     idx = np.flatnonzero(good)
     flux = np.where(bad, np.interp(wave, wave[idx], flux[idx]), flux)
-    if sigma is None:
+    if sigma is None and dersnr:
         sigma = np.full(flux.shape, _dersnr_noise(wave, flux, good))
         source = "DER_SNR"
+    elif sigma is None:
+        from .noise import flux_noise, pixels_per_fwhm
+
+        est = flux_noise(flux, good, pixels_per_fwhm(wave, resolving_power or info.resolving_power))
+        # no noise found (a noiseless model): the floor below stands in
+        sigma = np.where(np.isfinite(est.sigma), est.sigma, 1e-5)
+        source = est.method
     else:
         source = "error array"
     # floor: noiseless models would give infinite weights
@@ -183,7 +196,7 @@ def estimate_resolving_power(spectrum):
     if not get_info(spectrum).normalized:
         raise ValueError("estimate_resolving_power needs a continuum-normalised spectrum (specan.prepare)")
     try:
-        a = normalised_arrays(spectrum)
+        a = normalised_arrays(spectrum, dersnr=True)
     except AnalysisError:
         return None
     narrow = narrowest_line_width(a.wave, a.flux, a.sigma, a.good)

@@ -32,7 +32,8 @@ def test_inspect_json_fields(tmp_path):
         assert key in d
     assert d["object"] == "Vela-17" and d["medium"] == "air" and d["n_pixels"] == 3000
     assert d["wave_min_aa"] == 4000.0 and d["wave_max_aa"] == 6999.0
-    assert 40 < d["snr"] < 60  # injected S/N 50 (DER_SNR, Stoehr 2008)
+    assert 40 < d["snr"] < 60  # injected S/N 50
+    assert d["snr_source"] == "flux" and d["snr_err_array"] is None and d["snr_flux"] == d["snr"]
     assert d["site_known"] is True
     from astropy.time import Time
 
@@ -73,3 +74,23 @@ def test_every_reader_option_is_a_read_override_and_reaches_the_reader(tmp_path)
     assert d["ra_deg"] == 10.5 and d["dec_deg"] == -20.25
     kwargs = {k: None for k in _common._READ_OPTIONS} | {"hdu": "0", "wave_unit": "nm", "json": True}
     assert _common.overrides_from(kwargs) == {"hdu": "0", "wave_unit": "nm"}
+
+
+def test_inspect_reports_the_error_array_and_the_flux_estimate(tmp_path):
+    # An error array that claims S/N 30 on a spectrum whose real noise is S/N 60: the error
+    # array is what the file states and is reported, the flux-based S/N is shown beside it
+    # (issue 13: DER_SNR used to be reported even when the file had an error array)
+    rng = np.random.default_rng(1)
+    w = np.arange(4000.0, 7000.0, 1.0)
+    flux = 1.0 + rng.normal(0.0, 1.0 / 60, w.size)
+    path = tmp_path / "with_errors.txt"
+    np.savetxt(path, np.column_stack([w, flux, np.full(w.size, 1.0 / 30)]))
+    res = _run("inspect", "--json", "--wave-unit", "Angstrom", str(path))
+    assert res.returncode == 0, res.stderr
+    d = json.loads(res.stdout.strip().splitlines()[0])
+    assert d["snr_source"] == "error array"
+    assert abs(d["snr"] - 30.0) < 1.0 and d["snr"] == d["snr_err_array"]
+    assert abs(d["snr_flux"] - 60.0) < 6.0   # within 10% of the injected noise
+    text = _run("inspect", "--wave-unit", "Angstrom", str(path))
+    assert text.returncode == 0, text.stderr
+    assert "S/N per pixel 30 (from the error array); from the flux " in text.stdout

@@ -555,3 +555,150 @@ def test_metal_lines_in_a_balmer_wing_measured_against_the_wing():
     plain = lines.measure(spec, divide_hydrogen=False)
     fe = plain[list(plain["id"]).index("FeII_4352")]
     assert fe["ew"].to_value(u.AA) < 0.5 * 0.08
+
+
+# ----------------------------------------------------------------------------- errors without an error array
+# Issue 13: equivalent-width errors without an error array within 1.3x those the true error
+# array gives (median over the lines detected both ways). With DER_SNR noise they were
+# 1.9x (S/N 30) and 4.0x (S/N 100) on the Kurucz Sun at R 2000, 1.1-1.7x on the synthetic
+# stars (measured before the change; after: 0.96-1.16x, see benchmarks/bench_noise.py).
+
+
+def _ew_error_ratio(wave, flux, err, resolving_power, medium):
+    # unnormalised input: prepare() fits the continuum, as for a user's file
+    with_err = lines.measure(make_spectrum(wave, flux, sigma=err, medium=medium, resolving_power=resolving_power,
+                                           normalized=False))
+    without = lines.measure(make_spectrum(wave, flux, medium=medium, resolving_power=resolving_power,
+                                          normalized=False))
+    assert without.meta["noise_source"].startswith("flux")
+    both = np.asarray(with_err["detected"]) & np.asarray(without["detected"])
+    assert list(with_err["id"]) == list(without["id"]) and both.sum() >= 10
+    return float(np.median(without["ew_err"][both] / with_err["ew_err"][both]))
+
+
+@pytest.mark.parametrize("snr", [30, 100])
+def test_ew_errors_without_error_array_on_kurucz_sun(kurucz_sun, snr):
+    w, f, _ = kurucz_sun   # Kurucz solar model (rms-solar), R 2000
+    keep = (w > 3700) & (w < 8800)
+    w, f = w[keep], f[keep]
+    sigma = np.full(f.size, np.median(f) / snr)
+    noisy = f + np.random.default_rng(snr).normal(0.0, 1.0, f.size) * sigma
+    ratio = _ew_error_ratio(w, noisy, sigma, 2000.0, "vacuum")
+    assert 1 / 1.3 <= ratio <= 1.3, ratio
+
+
+@pytest.mark.parametrize("sptype", ["A2", "K2"])
+@pytest.mark.parametrize("resolving_power", [1000, 20000])
+def test_ew_errors_without_error_array_on_synthetic_stars(sptype, resolving_power):
+    from specan import synth
+
+    for snr in (30, 100):
+        s = synth.spectrum(sptype, "V", resolving_power=resolving_power, snr=snr, seed=1,
+                           wave_range=(3800, 6800) * u.AA, continuum="blackbody")
+        ratio = _ew_error_ratio(s.spectral_axis.to_value(u.AA), s.flux.value, s.uncertainty.array,
+                                float(resolving_power), "air")
+        assert 1 / 1.3 <= ratio <= 1.3, (snr, ratio)
+
+
+# ----------------------------------------------------------------------------- strong lines
+# Issue 13: strong lines measured over windows their own wings set. Published solar
+# equivalent widths: Moore, Minnaert & Houtgast (1966), "The solar spectrum 2935 A to
+# 8770 A" (NBS Monograph 61), disk centre; values recalled, not looked up.
+SOLAR_STRONG_EW_AA = {
+    "CaII_K": 20.253,   # from memory (MMH 1966)
+    "CaII_H": 15.467,   # from memory (MMH 1966)
+    "NaI_D2": 0.752,    # from memory (MMH 1966)
+    "NaI_D1": 0.564,    # from memory (MMH 1966)
+    "MgI_b4": 0.935,    # Mg I 5167.3, from memory (MMH 1966)
+    "MgI_b2": 1.259,    # Mg I 5172.7, from memory (MMH 1966)
+    "MgI_b1": 1.584,    # Mg I 5183.6, from memory (MMH 1966)
+    "H_alpha": 4.020,   # from memory (MMH 1966)
+    "H_beta": 3.680,    # from memory (MMH 1966)
+}
+# The project has no solar spectrum above R 2000 (the Kurucz model of rms-solar is R 2000),
+# so the issue's R >= 5000 solar check cannot be made; damped synthetic lines stand in below.
+
+# Measured at R 2000 against the continuum prepare() fits (a pseudo-continuum, ~11% low in
+# the blue, see tests/test_prepare.py) and against the model's own continuum:
+#   K 17.70 / 23.50, H 17.10 / 25.38, D2 0.858 / 0.888, D1 0.653 / 0.694, b4 0.730 / 0.797,
+#   b2 1.453 / 1.538, b1 1.539 / 1.619, Halpha 3.502 / 4.048, Hbeta 5.464 / 6.863 A.
+_HBETA_GAP = ("H beta at R 2000 holds the metal lines inside its window (4847-4882 A): measured 5.46 A "
+              "against the fitted continuum (+48%) and 6.86 A against the true one (+87%); its Voigt fit "
+              "reads 5.50 / 7.24 A (chi2 552)")
+_TRUE_CONTINUUM_GAPS = {
+    "H_beta": _HBETA_GAP,
+    "CaII_H": ("against the true continuum Ca II H at R 2000 reads 25.4 A (+64%): its wings, fitted out to "
+               "100 A, take up the ~11% line blanketing of the unresolved weak lines around it, which the "
+               "fitted pseudo-continuum removes (17.1 A, +11%)"),
+}
+
+
+@pytest.fixture(scope="module")
+def sun_lines_true_continuum(kurucz_sun):
+    w, f, c = kurucz_sun
+    keep = (w > 3700) & (w < 8800)
+    w, f, c = w[keep], f[keep] / c[keep], c[keep]
+    spec = make_spectrum(w, f, sigma=f / 500.0, medium="vacuum", resolving_power=2000.0, normalized=True)
+    return lines.measure(spec)
+
+
+def _strong_param(gaps):
+    return [pytest.param(k, marks=pytest.mark.xfail(strict=True, reason=gaps[k])) if k in gaps else k
+            for k in sorted(SOLAR_STRONG_EW_AA)]
+
+
+@pytest.mark.parametrize("line_id", _strong_param({"H_beta": _HBETA_GAP}))
+def test_solar_strong_lines_within_25_percent(sun_lines, line_id):
+    # against the continuum specan fits (what a user gets)
+    row = sun_lines[list(sun_lines["id"]).index(line_id)]
+    assert row["detected"]
+    assert row["ew"].to_value(u.AA) == pytest.approx(SOLAR_STRONG_EW_AA[line_id], rel=0.25)
+
+
+@pytest.mark.parametrize("line_id", _strong_param(_TRUE_CONTINUUM_GAPS))
+def test_solar_strong_lines_against_the_true_continuum(sun_lines_true_continuum, line_id):
+    t = sun_lines_true_continuum
+    row = t[list(t["id"]).index(line_id)]
+    assert row["detected"]
+    assert row["ew"].to_value(u.AA) == pytest.approx(SOLAR_STRONG_EW_AA[line_id], rel=0.25)
+
+
+def test_solar_ca_k_window_reaches_its_wings(sun_lines):
+    # the window is reported with each line; Ca II K's reaches tens of Angstrom (its wings)
+    row = sun_lines[list(sun_lines["id"]).index("CaII_K")]
+    assert row["method"] == "wing_voigt_fit"
+    assert (row["window_max"] - row["window_min"]).to_value(u.AA) > 60.0
+
+
+def _damped_line(resolving_power, seed=4, weak_lines=True, snr=200.0):
+    """A Ca II K-like line (pure damping wings, EW 22 A) among weak lines, and its own EW."""
+    from scipy.ndimage import gaussian_filter1d
+
+    rng = np.random.default_rng(seed)
+    centre = 3933.66
+    fine = np.arange(3700.0, 4170.0, 0.01)
+    tau_line = 40.0 * voigt_profile(fine - centre, 0.05, 1.0) / voigt_profile(0.0, 0.05, 1.0)
+    tau = tau_line.copy()
+    if weak_lines:
+        for x in rng.uniform(3710.0, 4160.0, 250):
+            tau += rng.uniform(0.05, 0.6) * np.exp(-0.5 * ((fine - x) / 0.05) ** 2)
+    ew_true = float(np.trapezoid(1.0 - np.exp(-tau_line), fine))
+    smooth = gaussian_filter1d(np.exp(-tau), centre / resolving_power / GAUSS_FWHM / 0.01)
+    wave = np.arange(3720.0, 4150.0, centre / resolving_power / 2.5)
+    flux = np.interp(wave, fine, smooth) + rng.normal(0.0, 1.0 / snr, wave.size)
+    spec = make_spectrum(wave, flux, sigma=np.full(wave.size, 1.0 / snr), resolving_power=resolving_power)
+    return spec, ew_true
+
+
+@pytest.mark.parametrize("resolving_power", [2000, 5000, 20000])
+@pytest.mark.parametrize("weak_lines", [False, True])
+def test_damped_line_equivalent_width_from_its_wings(resolving_power, weak_lines):
+    # Issue 13: at R 5000 the solar K line read 3.5 A of ~20 (its wings not integrated);
+    # before this change this line read 17.0-17.2 A at R 2000, 2.1-2.5 A at R 5000 and 0.17-0.19 A
+    # at R 20000 (measured). Measured now: 23.3-24.2 A for a true 22.0 A (a Voigt is not quite the
+    # shape of a saturated line; the weak lines' blanketing in the wings adds up to 0.9 A).
+    spec, ew_true = _damped_line(resolving_power, weak_lines=weak_lines)
+    row = lines.measure(spec, one_line_list(3933.66, "CaII_K", "Ca II"))[0]
+    assert row["method"] == "wing_voigt_fit"
+    assert row["ew"].to_value(u.AA) == pytest.approx(ew_true, rel=0.15)
+    assert row["window_min"].to_value(u.AA) < 3933.66 - 40 and row["window_max"].to_value(u.AA) > 3933.66 + 40

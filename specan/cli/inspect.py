@@ -26,7 +26,10 @@ def summarize(path, overrides):
         "medium": info.medium,
         "n_pixels": int(wave.size),
         "snr": s["snr"],
+        "snr_source": s["snr_source"],
         "snr_err_array": s["snr_err_array"],
+        "snr_flux": s["snr_flux"],
+        "snr_flux_method": s["snr_flux_method"],
         "mjd_mid": info.mjd_mid,
         "ra_deg": info.ra_deg,
         "dec_deg": info.dec_deg,
@@ -49,12 +52,17 @@ def command(ctx, files, as_json, **kwargs):
         if as_json:
             echo_json(d)
             return
-        snr = "n/a" if d["snr"] is None else f"{d['snr']:.0f}"
+        source = d["snr_flux_method"] if d["snr_source"] == "flux" else d["snr_source"]
+        snr = "n/a" if d["snr"] is None else f"{d['snr']:.0f} (from the {source})"
+        if d["snr_err_array"] is not None:
+            flux_part = "none found" if d["snr_flux"] is None else f"{d['snr_flux']:.0f}"
+            snr += f"; from the flux {flux_part}"
         when = "unknown" if d["mjd_mid"] is None else f"MJD {d['mjd_mid']:.5f}"
         where = "unknown" if d["ra_deg"] is None else f"{d['ra_deg']:.5f} {d['dec_deg']:+.5f} deg"
         click.echo(f"{d['file']}: {d['object']}  [{d['format']}]")
         click.echo(f"  {d['wave_min_aa']:.2f}-{d['wave_max_aa']:.2f} A ({d['medium']}), {d['n_pixels']} px, "
-                   f"S/N {snr} (DER_SNR), flux {d['flux_unit']}")
+                   f"flux {d['flux_unit']}")
+        click.echo(f"  S/N per pixel {snr}")
         click.echo(f"  mid-exposure {when}; pointing {where}; site {'known' if d['site_known'] else 'unknown'}")
         for w in d["warnings"]:
             click.echo(f"  note: {w}")

@@ -142,7 +142,7 @@ class LineData:
     """Plain arrays of one normalised spectrum plus everything derived once.
 
     ``wave``, ``flux``, ``sigma``, ``good`` (from :func:`specan.resolution.normalised_arrays`:
-    the error array, else DER_SNR noise, says ``noise_source``), ``weight``, pixel widths
+    the error array, else the noise measured from the flux, says ``noise_source``), ``weight``, pixel widths
     ``dx``, the resolving power and the line width ``line_fwhm`` at each pixel, and the
     matched filter at that width (``signif``, ``smooth``, ``smooth_err``, and
     ``smooth_wide``/``smooth_wide_err`` over three line widths).
@@ -152,12 +152,20 @@ class LineData:
         info = get_info(spectrum)
         self.info = info
         self.medium = info.medium
-        self.wave, self.flux, self.sigma, self.good, self.noise_source = normalised_arrays(spectrum)
-        self.weight = np.where(self.good, 1.0 / self.sigma**2, 0.0)
+        self.wave, self.flux, self.sigma, self.good, self.noise_source = normalised_arrays(
+            spectrum, resolving_power=resolving_power)
         self.dx = np.diff(pixel_edges(self.wave))  # pixel widths, Angstrom
-        self.narrow = narrowest_line_width(self.wave, self.flux, self.sigma, self.good)
+        # the narrowest-line search keeps the one-value DER_SNR noise its thresholds were set with
+        narrow_sigma = (self.sigma if self.noise_source == "error array"
+                        else normalised_arrays(spectrum, dersnr=True).sigma)
+        self.narrow = narrowest_line_width(self.wave, self.flux, narrow_sigma, self.good)
         r, self.r_source = _resolving_power(resolving_power, info.resolving_power, self.narrow, self.wave)
         self.resolving_power = float(r)
+        if self.noise_source != "error array" and resolving_power is None and info.resolving_power is None:
+            # the flux-based noise separates noise from lines by the instrument's width:
+            # measure it again at the resolving power found from the lines
+            self.sigma = normalised_arrays(spectrum, resolving_power=self.resolving_power).sigma
+        self.weight = np.where(self.good, 1.0 / self.sigma**2, 0.0)
         # the instrument can never be sampled finer than ~1 pixel per FWHM
         self.fwhm = np.maximum(self.wave / self.resolving_power, self.dx)
         self.broadening = _broadening(self.narrow, self.resolving_power)

@@ -23,11 +23,11 @@ from .data import DETECT_SIGMA, MIN_DEPTH, LineData, find_features, normalised
 from .hydrogen import without_hydrogen
 from .listed import blends, line_widths, lines_in_range, match_windows, velocities
 from .profiles import fit_gauss, fit_profile
-from .windows import line_window, local_continuum
+from .windows import line_window, local_continuum, profile_window, wing_reach
 
 __all__ = ["measure", "cayrel_error", "Targets", "LineResult", "line_targets", "measure_lines",
            "measure_line", "match_feature", "integrated_ew", "central_depth", "use_voigt", "fit_line",
-           "chosen_ew", "window_noise", "half_width", "line_table"]
+           "chosen_ew", "window_noise", "half_width", "line_table", "wing_fit"]
 
 #: Profiles :func:`measure` can fit.
 PROFILES = ("auto", "gauss", "voigt")
@@ -196,6 +196,11 @@ def measure_line(data, features, targets, i, profile, detect_sigma):
     fw, hydrogen = targets.fwhm[i], bool(targets.hydrogen[i])
     centre, max_shift, matched = match_feature(features, targets.pred[i], targets.match[i], fw)
     ic = data.nearest_pixel(centre)
+    if not matched and data.signif[ic] >= detect_sigma and 1.0 - data.smooth[ic] > 0.5:
+        # a saturated core, flat over many line widths, has no single minimum to be found
+        # (noise picks one anywhere in it): a deep, significant line at the listed place
+        # is the line itself
+        matched, max_shift = True, 0.5 * fw
     if not data.good[np.abs(data.wave - centre) <= 0.5 * fw].any():
         return LineResult(method="masked")
     s_c = float(data.signif[ic])
@@ -223,11 +228,79 @@ def measure_line(data, features, targets, i, profile, detect_sigma):
         result.fwhm = half_width(data, ic, window.lo, window.hi, sign)
     result.method, result.ew, result.ew_err = chosen_ew(fit, result.profile, window.cut, len(centres) - 1,
                                                         hydrogen, ew_int, ew_int_err)
+    if fit is not None and voigt and not hydrogen and sign > 0:
+        wing = wing_fit(data, features, targets, i, result.wave_obs, fit, fw)
+        if wing is not None:
+            fit, wwin = wing
+            result.fit = dict(fit, profile="voigt", sign=sign, ew_int=ew_int)
+            result.ew_fit, result.ew_fit_err, result.fit_chi2 = fit["ew"], fit["ew_err"], fit["chi2"]
+            result.fwhm, result.wave_obs = fit["fwhm"], fit["centre"]
+            result.method, result.ew, result.ew_err = "wing_voigt_fit", fit["ew"], fit["ew_err"]
+            result.window_min, result.window_max = data.wave[wwin.lo], data.wave[wwin.hi]
+            window = wwin
     # significant in the matched filter AND an equivalent width clear of its error
     result.detected = detected and abs(result.ew) > 2.0 * result.ew_err
     fwhm_c = result.fwhm if np.isfinite(result.fwhm) else fw
     result.ew_err_cayrel = cayrel_error(fwhm_c, data.dx[ic], 1.0 / window_noise(data, window))
     return result
+
+
+def wing_fit(data, features, targets, i, centre, fit, fwhm, max_iter=3):
+    """A strong line's Voigt fit over the window its own wings set, or None.
+
+    The window reaches where the fitted profile's depth falls to the noise
+    (:func:`specan.lines.windows.wing_reach`, at most
+    :data:`~specan.lines.windows.MAX_WING`), the fit is repeated over it and the window
+    set again from the new fit, until it stops growing (``max_iter`` times at most).
+    Inside the wings, the other strong lines (listed lines of central depth above 0.5,
+    such as Ca II H beside K, or the other Mg b lines) are fitted as components with the
+    same profile; the weaker lines and unlisted features there get no weight (their
+    pixels, 1.2 line widths around them, are left out, as for the hydrogen wings), so
+    blends do not add to the equivalent width. The equivalent width is the fitted
+    profile's area, the wings beyond the window included.
+
+    Returns
+    -------
+    (dict, Window) or None
+        None when the wings reach no farther than the first window or the fit fails.
+    """
+    from .components import MIN_SEPARATION
+
+    pred = targets.pred
+    shift = centre - pred[i]
+    best = None
+    reach0 = 0.0
+    for _ in range(max_iter):
+        noise = float(np.nanmedian(data.sigma[data.good])) if data.good.any() else 1e-3
+        # where the wing's depth is down to the noise of a few pixels, or 0.2%
+        # (a continuum placed better than that is rare; common practice)
+        threshold = max(noise / np.sqrt(5.0), 2e-3)
+        reach = wing_reach(fit["ew"], fit["sigma"], fit["gamma"], threshold)
+        if reach <= 1.05 * reach0 or reach <= 3.0 * fwhm:
+            break
+        reach0 = reach
+        win = profile_window(data, centre, reach)
+        lo, hi = data.wave[win.lo], data.wave[win.hi]
+        others = np.flatnonzero((pred >= lo) & (pred <= hi) & ~targets.hydrogen)
+        others = others[others != i]
+        depth_at = 1.0 - np.interp(pred[others] + shift, data.wave, data.smooth)
+        strong = others[depth_at > 0.5]
+        centres = [centre]
+        for c in pred[strong] + shift:
+            if min(abs(c - x) for x in centres) > MIN_SEPARATION * fwhm:
+                centres.append(c)
+        centres = np.array(centres)
+        weak_pos = np.concatenate([pred[np.setdiff1d(others, strong)] + shift, features.position[
+            (features.position >= lo) & (features.position <= hi)]])
+        x = data.wave[win.lo:win.hi + 1]
+        far = np.abs(weak_pos[:, None] - centres[None, :]).min(axis=1) > MIN_SEPARATION * fwhm
+        skip = (np.abs(x[None, :] - weak_pos[far][:, None]) < 1.2 * fwhm).any(axis=0) if far.any() else None
+        cont = np.ones(x.size)
+        new = fit_profile(data, win.lo, win.hi, cont, centres, "voigt", 0.5 * fwhm, fwhm / GAUSS_FWHM, 1.0, skip)
+        if new is None or not np.isfinite(new["ew"]) or new["ew"] <= 0:
+            break
+        fit, best = new, (new, win)
+    return best
 
 
 def match_feature(features, pred, match, fwhm):

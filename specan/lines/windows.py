@@ -6,7 +6,13 @@ from typing import NamedTuple
 
 import numpy as np
 
-__all__ = ["Window", "line_window", "adaptive_window", "fixed_window", "local_continuum"]
+__all__ = ["Window", "line_window", "adaptive_window", "fixed_window", "profile_window", "wing_reach",
+           "local_continuum", "MAX_WING"]
+
+#: Farthest a strong line's window reaches from its centre, Angstrom: the solar Ca II K
+#: wings are tens of Angstrom wide (common practice); beyond ~100 A the continuum fit
+#: itself (smoothing scale 300 A) can no longer tell wing from continuum.
+MAX_WING = 100.0
 
 
 class Window(NamedTuple):
@@ -107,6 +113,9 @@ def _on_plateau(data, depth, trail, dist, noise, d0, min_half, wide):
     """Whether the depth at the walk's last pixel has stopped falling."""
     i = trail[-1]
     di = depth[i]
+    if di > 0.5 * d0:
+        # still in the line's core: a saturated core is flat, but it is not a pseudo-continuum
+        return False
     if not wide and dist >= 2.0 * min_half:
         # the pixel one instrument FWHM back toward the centre
         back = trail[max(len(trail) - 1 - int(np.ceil(min_half / data.dx[i])), 0)]
@@ -117,6 +126,28 @@ def _on_plateau(data, depth, trail, dist, noise, d0, min_half, wide):
         back = trail[max(len(trail) - 1 - int(np.ceil(5.0 * min_half / data.dx[i])), 0)]
         return depth[back] - di < max(2.0 * noise, 0.1 * di)
     return False
+
+
+def wing_reach(ew, sigma, gamma, threshold):
+    """Distance (A) from the centre at which a Voigt line of ``ew`` falls to ``threshold`` depth.
+
+    The Lorentzian wing ``ew gamma / (pi x^2)`` sets it where it is wider than the Gaussian
+    core (3 sigma, where the core has fallen to 1% of its peak).
+    """
+    lorentz = np.sqrt(max(ew, 0.0) * max(gamma, 0.0) / (np.pi * threshold))
+    return float(max(lorentz, 3.0 * sigma))
+
+
+def profile_window(data, centre, reach, max_half=MAX_WING):
+    """The window reaching ``reach`` Angstrom (at most ``max_half``) to each side of ``centre``.
+
+    Its edges are where a fitted profile's wings meet the continuum (see :func:`wing_reach`),
+    so the local continuum is the normalised continuum itself, 1.
+    """
+    half = min(reach, max_half)
+    lo = int(np.clip(np.searchsorted(data.wave, centre - half), 0, data.wave.size - 2))
+    hi = int(np.clip(np.searchsorted(data.wave, centre + half), lo + 1, data.wave.size - 1))
+    return Window(lo, hi, (1.0, 1.0), False)
 
 
 def local_continuum(data, window):
