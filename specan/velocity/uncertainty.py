@@ -18,9 +18,10 @@ from scipy import fft as sfft
 from scipy.interpolate import make_interp_spline
 
 from .correlation import Correlation
-from .grid import SPLINE_K, highpass, kms_per_pixel
+from .grid import SPLINE_K, gauss_smooth, highpass, kms_per_pixel
 
-__all__ = ["TonryDavis", "VelocityErrors", "tonry_davis", "resample_error", "estimate_errors", "reported_error"]
+__all__ = ["TonryDavis", "VelocityErrors", "SegmentErrors", "tonry_davis", "resample_error", "estimate_errors",
+           "reported_error", "segment_errors", "zero_point_error", "content_seed", "spline_adjoint", "ErrorBudget", "error_budget"]
 
 
 # ---------------------------------------------------------------------------
@@ -62,7 +63,7 @@ def tonry_davis(about, peak):
 # ---------------------------------------------------------------------------
 def _noisy_data_ffts(observed, weight, hp, m, k, seed):
     """FFTs (k, nf) of w d and w d^2 for ``k`` noise realisations added to the spectrum."""
-    rng = np.random.default_rng(seed)
+    rng = np.random.default_rng(content_seed(observed, seed))
     noise = rng.normal(size=(observed.native_flux.size, k)) * observed.native_sigma[:, None]
     # the same cubic interpolation the data went through, applied to each realisation
     f = make_interp_spline(observed.spline_x, observed.native_flux[:, None] + noise, k=SPLINE_K,
@@ -81,20 +82,32 @@ def _phase_sums(A, B, ph, m, kmax):
     pint = np.empty((2 * kmax, p.shape[1]))
     pint[0::2], pint[1::2] = p.real, p.imag
     a = np.ascontiguousarray(np.atleast_2d(A)[:, :kmax]).view(np.float64)
-    return (a @ pint) / m
+    # elementwise products and numpy's sums, not a BLAS product: BLAS changes its summation
+    # order with the thread count, and the error would differ between ways of running
+    return np.stack([np.sum(a * pint[:, j], axis=1) for j in range(pint.shape[1])], axis=1) / m
 
 
 def _cubic_maxima(offs, ccf, h):
     """Offset of the maximum near the centre of a cubic through each row of ``ccf`` at ``offs`` (Newton)."""
-    coef = np.polynomial.polynomial.polyfit(offs, ccf.T, 3)  # (4, k)
-    d1 = np.polynomial.polynomial.polyder(coef, 1)
-    d2 = np.polynomial.polynomial.polyder(coef, 2)
+    from .bank import fit_matrix
+
+    coef = np.sum(ccf[:, None, :] * fit_matrix(offs, 3)[None, :, :], axis=2)  # (k, 4), fixed fit matrix
     x = np.zeros(ccf.shape[0])
     for _ in range(6):
-        g1 = np.polynomial.polynomial.polyval(x, d1, tensor=False)
-        g2 = np.polynomial.polynomial.polyval(x, d2, tensor=False)
+        g1 = coef[:, 1] + 2 * coef[:, 2] * x + 3 * coef[:, 3] * x * x
+        g2 = 2 * coef[:, 2] + 6 * coef[:, 3] * x
         x = np.clip(x - g1 / np.where(g2 < 0, g2, -1e-9), -2 * h, 2 * h)
     return x
+
+
+def content_seed(observed, seed):
+    """A seed made from the spectrum's own numbers and ``seed``: the same spectrum gets the same noise
+    realisations in any process, in any order, whatever else was measured before."""
+    import zlib
+
+    crc = zlib.crc32(np.ascontiguousarray(observed.native_flux, float).tobytes())
+    crc = zlib.crc32(np.ascontiguousarray(observed.native_sigma, float).tobytes(), crc)
+    return np.random.SeedSequence([int(seed), crc])
 
 
 def resample_error(observed, weight, template, pad, m, s0, err_px, k, seed, hp):
@@ -144,7 +157,7 @@ def estimate_errors(which, td, peak, observed, search, template, n_resample, see
     """
     lags = search.lags
     dvds = kms_per_pixel(peak.lag, lags.step)
-    rv_err_td = abs(td.err_px * dvds) if which in ("both", "td") and np.isfinite(td.err_px) else None
+    rv_err_td = abs(td.err_px * dvds) if which in ("auto", "both", "td") and np.isfinite(td.err_px) else None
     # empirical error: add noise like the spectrum's own and re-measure (vectorised)
     rv_err_mc = None
     if which in ("both", "mc") and n_resample and n_resample >= 5:
@@ -156,7 +169,8 @@ def estimate_errors(which, td, peak, observed, search, template, n_resample, see
 
 
 def reported_error(errors, notes):
-    """The error to report (km/s or None): the larger of the two :class:`VelocityErrors`."""
+    """The larger of the two :class:`VelocityErrors` (km/s or None): the error reported before the
+    error budget (:func:`error_budget`), kept for comparison."""
     # Reported error: the larger of the two. With a matched template they agree (injections); with a
     # mismatched one the residual CCF (hence the TD estimate) also carries the mismatch, which noise
     # resampling cannot see.
@@ -165,3 +179,177 @@ def reported_error(errors, notes):
     if errors.mc is not None and errors.td is not None and errors.td > 2 * errors.mc:
         notes.append("Tonry-Davis error well above the noise-resampling one: template mismatch dominates")
     return rv_err
+
+
+# ---------------------------------------------------------------------------
+# The noise error by propagation, and the segments' scatter (template mismatch)
+# ---------------------------------------------------------------------------
+_ADJOINTS = {}
+
+
+def spline_adjoint(x, grid):
+    """A function u -> S^T u, S the cubic interpolation (not-a-knot) from samples at ``x`` to ``grid``.
+
+    The interpolant is B A^-1 y (A, B the B-spline design matrices at the samples and on the
+    grid), so its transpose is A^-T B^T: a sparse LU of A^T, made once per set-up (cached by the
+    sample positions and the grid).
+    """
+    import hashlib
+
+    from scipy.interpolate import BSpline
+    from scipy.sparse.linalg import splu
+
+    key = (hashlib.sha1(np.ascontiguousarray(x).tobytes()).hexdigest(), float(grid[0]), float(grid[-1]), grid.size)
+    if key not in _ADJOINTS:
+        if len(_ADJOINTS) > 8:
+            _ADJOINTS.pop(next(iter(_ADJOINTS)))
+        t = make_interp_spline(x, np.zeros_like(x), k=SPLINE_K).t
+        b_grid = BSpline.design_matrix(np.clip(grid, x[0], x[-1]), t, SPLINE_K).tocsr()
+        lu = splu(BSpline.design_matrix(x, t, SPLINE_K).T.tocsc())
+        _ADJOINTS[key] = (b_grid.T.tocsr(), lu)
+    bt, lu = _ADJOINTS[key]
+    return lambda u: lu.solve(np.asarray(bt @ u))
+
+
+def _highpass_adjoint(y, sigma, valid):
+    """Transpose of :func:`~.grid.highpass` applied to the columns of ``y``: H = V (I - Gv^-1 G V)."""
+    v = valid.astype(float)[:, None]
+    if not sigma:
+        return v * y
+    den = np.maximum(gauss_smooth(valid.astype(float), sigma), 1e-3)[:, None]
+    return v * y - v * gauss_smooth(v * y / den, sigma)
+
+
+class SegmentErrors(NamedTuple):
+    """Noise error (grid pixels) of the peak, and the velocity segments' scatter about it.
+
+    ``offsets`` and ``sigmas`` (pixels) are the velocities of the ``n`` wavelength segments
+    relative to the whole spectrum's and their noise errors; ``birge`` is the Birge ratio
+    sqrt(chi^2 / (n - 1)) of the segments (1 for noise alone), NaN with fewer than 2.
+    """
+
+    noise_px: float
+    offsets: np.ndarray
+    sigmas: np.ndarray
+    birge: float
+    n: int
+
+
+def _segments(info, n_seg):
+    """Start indices of ``n_seg`` segments holding equal shares of the velocity information ``info``."""
+    cum = np.cumsum(info)
+    if cum[-1] <= 0:
+        return np.array([0])
+    starts = np.searchsorted(cum, cum[-1] * np.arange(n_seg) / n_seg, side="right")
+    starts[0] = 0
+    return np.unique(starts)
+
+
+def segment_errors(observed, search, template, s0, m, resels):
+    """:class:`SegmentErrors` of the peak at lag ``s0`` of ``template`` (a :class:`~.prepared.PreparedTemplate`).
+
+    The spectrum is cut into segments of equal velocity information (weight times the squared
+    slope of the shifted template); each segment's velocity against the same template is the
+    vertex of the normalised CCF through lags s0 - 1/2, s0, s0 + 1/2, from its own sums. The
+    noise error of each, and of the whole, is the linear propagation of the native pixels'
+    errors through every step the data went through (spline onto the grid, high-pass, weights,
+    correlation): exactly the scatter noise resampling would find, without random numbers.
+    ``m`` is an FFT length of at least the template's; ``resels`` the number of resolution
+    elements in the spectrum (segments hold at least 25 each, at most 10 segments: our choice,
+    enough lines in each for a velocity, enough segments for a scatter).
+    """
+    lags = search.lags
+    n, pad = lags.n, lags.pad
+    a1, a2, a3 = search.side.arrays
+    w = search.side.weight
+    h = 0.5
+    deltas = np.array([-h, 0.0, h])
+    F = np.stack(template.ffts(m))                                   # (3, nf): T, T2, V
+    nf = F.shape[1]
+    tau = pad - (s0 + deltas)  # lag s uses template pixels x + pad - s
+    ph = np.exp(2j * np.pi * np.outer(tau, np.arange(nf)) / m)       # (3 deltas, nf)
+    b = sfft.irfft(F[:, None, :] * ph[None, :, :], m, axis=-1)[..., :n]  # (3 arrays, 3 deltas, n)
+    bT, bT2, bV = b
+    n_seg = int(np.clip(resels // 25, 2, 10))
+    starts = _segments(w * (bT[2] - bT[0]) ** 2, n_seg)
+    ends = np.append(starts[1:], n)
+
+    def sums(x):  # (3 deltas, n) -> (3 deltas, segments + whole)
+        part = np.add.reduceat(x, starts, axis=-1)
+        return np.concatenate([part, np.sum(x, axis=-1, keepdims=True)], axis=-1)
+
+    rows = (sums(a1 * bT), sums(a2 * bT), sums(a2 * bT2), sums(a1 * bV), sums(a3 * bV), sums(a2 * bV))
+    c, _ = Correlation.combine(rows)                                  # (3 deltas, K + 1)
+    den = c[0] - 2.0 * c[1] + c[2]
+    good = np.isfinite(den) & (den < 0)
+    offsets = np.where(good, h * (c[0] - c[2]) / (2.0 * np.where(good, den, -1.0)), np.nan)
+    curv = den / h ** 2
+    # gradient of each vertex with respect to the data on the grid (zero outside its segment)
+    c2v = np.maximum(rows[5], 1e-300)
+    mu = rows[1] / c2v                                                # template mean over the overlap
+    energy = np.clip(rows[2] - rows[1] ** 2 / c2v, 1e-300, None)
+    data_energy = np.clip(rows[4][1] - rows[3][1] ** 2 / c2v[1], 1e-300, None)
+    k_total = starts.size + 1
+    seg_of = np.repeat(np.arange(starts.size), ends - starts)
+    grads = np.zeros((n, k_total))
+    for col, index in ((seg_of, np.arange(n)), (np.full(n, starts.size), np.arange(n))):
+        plus = (bT[2] - mu[2][col] * bV[2]) / np.sqrt(energy[2][col])
+        minus = (bT[0] - mu[0][col] * bV[0]) / np.sqrt(energy[0][col])
+        scale = np.where(good[col], -1.0 / (2.0 * h * np.where(good[col], curv[col], -1.0)
+                                            * np.sqrt(data_energy[col])), 0.0)
+        grads[index, col] = w * (plus - minus) * scale
+    u = _highpass_adjoint(grads, lags.hp_sigma, observed.valid)
+    z = spline_adjoint(observed.spline_x, observed.grid)(u)          # (native pixels, K + 1)
+    var = np.sum((observed.native_sigma[:, None] * z) ** 2, axis=0)
+    sig = np.sqrt(var)
+    seg_off, seg_sig = offsets[:-1], sig[:-1]
+    use = good[:-1] & np.isfinite(seg_off) & (seg_sig > 0)
+    birge = float("nan")
+    if use.sum() >= 2:
+        wt = 1.0 / seg_sig[use] ** 2
+        mean = np.sum(wt * seg_off[use]) / np.sum(wt)
+        birge = math.sqrt(float(np.sum(wt * (seg_off[use] - mean) ** 2)) / (use.sum() - 1))
+    return SegmentErrors(float(sig[-1]) if good[-1] else float("nan"), seg_off, seg_sig, birge, int(use.sum()))
+
+
+class ErrorBudget(NamedTuple):
+    """The reported error and its parts, km/s.
+
+    ``total`` = sqrt(noise^2 max(1, birge^2) + choice^2 + zero_point^2); ``mismatch`` is the
+    part of the segments' scatter beyond noise, ``noise sqrt(max(0, birge^2 - 1))``; ``template``
+    collects what the template contributes (mismatch, choice, zero point) in quadrature.
+    """
+
+    total: float
+    noise: float
+    mismatch: float
+    choice: float
+    zero_point: float
+    template: float
+
+
+def error_budget(noise, birge, choice, zero_point):
+    """:class:`ErrorBudget` from the noise error, the Birge ratio of the segments, the spread of the
+    templates' velocities and their zero-point error (all km/s but the ratio)."""
+    # Birge (1932): a scatter beyond the stated errors scales them; only an excess counts, so
+    # noise alone keeps the propagated error (the ratio's own scatter would otherwise shrink it)
+    excess = max(0.0, birge * birge - 1.0) if np.isfinite(birge) else 0.0
+    mismatch = noise * math.sqrt(excess)
+    template = math.sqrt(mismatch ** 2 + choice ** 2 + zero_point ** 2)
+    return ErrorBudget(math.sqrt(noise ** 2 + template ** 2), noise, mismatch, choice, zero_point, template)
+
+
+def zero_point_error(mixture):
+    """Rest-frame uncertainty (km/s) of the templates averaged: the library's per-template standard
+    error of its median member (:attr:`specan.templates.LibraryTemplate.zero_point_err_kms`),
+    weighted as the velocities are; 0 for synthetic and user templates (their zero point is
+    the line list's, or the user's ``template_rv``)."""
+    from .. import templates
+
+    zp = {t.name: t.zero_point_err_kms for t in templates.library_templates()}
+    total = 0.0
+    for member in mixture:
+        cand = member.candidate
+        if cand is not None and cand.kind == "library":
+            total += member.weight * zp.get(cand.name, 0.0) ** 2
+    return math.sqrt(total)

@@ -1,0 +1,255 @@
+"""All candidate templates of one set-up, stacked and Fourier-transformed once, scored in one batch.
+
+A :class:`TemplateBank` holds the prepared built-in templates of one set-up (the extended
+ln-lambda grid of :class:`~.grid.TemplateGrid` and the resolving power) as 2-D arrays, one row
+a template, with their real FFTs. Spectra of the same set-up reuse it (it is cached), so a
+spectrum costs one batched product and one 2-D inverse FFT for all candidates
+(:func:`score_bank`), not a loop over templates.
+
+The FFT length of the bank is the template length rounded up to a fast size: the correlation
+is circular there, but every lag the peak may lie at (``|s| <= smax <= pad``) sums over data
+pixels that fall inside the template, so no wrapped term enters (see :func:`short_length`).
+"""
+
+from __future__ import annotations
+
+import functools
+from typing import NamedTuple
+
+import numpy as np
+from scipy import fft as sfft
+
+from .prepared import prepare_builtin
+
+__all__ = ["TemplateBank", "BankScores", "short_length", "template_bank", "score_bank", "fourier_rows",
+           "WEIGHT_SCALE", "MAX_MIXTURE", "MIN_WEIGHT", "mixture_weights", "fit_matrix", "poly_peaks",
+           "short_side", "refine_peak", "REFINE_OFFSETS"]
+
+#: Scale of the template weights, as a fraction of the best template's unexplained variance
+#: 1 - h: a template whose peak is lower by 0.25 (1 - h_best) weighs 1/e of the best (our
+#: choice; it makes templates that correlate within the noise of the heights share the weight).
+WEIGHT_SCALE = 0.25
+#: At most this many templates enter the velocity, those of weight >= MIN_WEIGHT (our choice).
+MAX_MIXTURE = 5
+MIN_WEIGHT = 0.05
+
+
+def short_length(lags):
+    """FFT length for correlations whose lags stay within +-pad: the template length, made fast."""
+    return sfft.next_fast_len(lags.template_grid.n, real=True)
+
+
+class TemplateBank:
+    """Prepared built-in templates of one set-up, stacked: names, candidates, arrays and FFTs.
+
+    ``T``, ``T2`` and ``V`` are (K, N) arrays (high-passed template times coverage, its square
+    times coverage, coverage); ``FT``, ``FT2`` their real FFTs at length ``m`` truncated to the
+    ``nf`` frequencies where any template has power; coverages are grouped (``groups`` maps
+    each template to a row of ``V_unique``/``FV``).
+    """
+
+    def __init__(self, candidates, prepared, m):
+        self.candidates = tuple(candidates)
+        self.templates = tuple(prepared)
+        self.names = tuple(t.name for t in prepared)
+        self.m = m
+        self.T = np.stack([t.T for t in prepared])
+        self.T2 = np.stack([t.T2 for t in prepared])
+        cov = np.stack([t.V for t in prepared])
+        unique, groups = np.unique(cov, axis=0, return_inverse=True)
+        self.V_unique = unique
+        self.groups = np.asarray(groups).ravel()
+        FT = sfft.rfft(self.T, m, axis=1)
+        # the templates are band-limited by the resolution: frequencies where no template has
+        # power above 1e-14 of its peak add nothing to any correlation (and cost time)
+        power = np.max(np.abs(FT) ** 2, axis=0)
+        keep = np.flatnonzero(power > 1e-14 * power.max())
+        self.nf = int(keep[-1]) + 1 if keep.size else FT.shape[1]
+        self.FT = np.ascontiguousarray(FT[:, :self.nf])
+        self.FT2 = np.ascontiguousarray(sfft.rfft(self.T2, m, axis=1))
+        self.FV = np.ascontiguousarray(sfft.rfft(unique, m, axis=1))
+
+    def __len__(self):
+        return len(self.templates)
+
+
+@functools.lru_cache(maxsize=16)
+def _bank(candidates, ln0, step, n, hp_sigma, m):
+    from .grid import TemplateGrid
+
+    grid = TemplateGrid(ln0=ln0, step=step, n=n, hp_sigma=hp_sigma)
+    return TemplateBank(candidates, [prepare_builtin(c, grid) for c in candidates], m)
+
+
+def template_bank(candidates, lags):
+    """The (cached) :class:`TemplateBank` of ``candidates`` on the set-up of ``lags``."""
+    g = lags.template_grid
+    return _bank(tuple(candidates), round(g.ln0, 12), g.step, g.n, g.hp_sigma, short_length(lags))
+
+
+class BankScores(NamedTuple):
+    """Per template: integer-lag peak ``lag`` (None where no peak), ``height`` (parabola vertex of
+    the normalised CCF about it)."""
+
+    lag: list
+    height: np.ndarray
+
+
+def score_bank(search, bank, data_short):
+    """:class:`BankScores` of every template of ``bank`` against one spectrum.
+
+    The cross term of every template comes from one product and one 2-D inverse FFT; the
+    normalisation (template energy and data energy over the overlap) varies slowly with lag
+    and is taken at each template's integer peak by direct sums. Heights rank and weight the
+    templates; velocities come from :func:`fourier_rows` (exact normalisation at every lag).
+    ``data_short`` holds the rFFTs of the data arrays at the bank's length.
+    """
+    side, lags = search.side, search.lags
+    pad, n, m = lags.pad, lags.n, bank.m
+    cross = sfft.irfft(np.conj(data_short[0][:bank.nf]) * bank.FT, m, axis=1)  # C(a1, T)[k], lag s = pad - k
+    s = np.arange(-lags.smax, lags.smax + 1)
+    c1 = cross[:, pad - s]                                                      # (K, L)
+    # overlap of each coverage at each lag: only lags using enough of the spectrum's weight count
+    over = sfft.irfft(np.conj(data_short[1])[None, :] * bank.FV, m, axis=1)[:, pad - s]
+    ok = over[bank.groups] >= search.min_overlap * side.total_weight
+    masked = np.where(ok, c1, -np.inf)
+    j = np.argmax(masked, axis=1)
+    rows = np.arange(len(bank))
+    found = np.isfinite(masked[rows, j])
+    # parabola vertex of the cross term about the integer peak (a smooth score: ranks must not
+    # jump with the sub-pixel phase of the star)
+    y1 = c1[rows, j]
+    y0 = c1[rows, np.clip(j - 1, 0, s.size - 1)]
+    y2 = c1[rows, np.clip(j + 1, 0, s.size - 1)]
+    den = y0 - 2.0 * y1 + y2
+    inner = (j > 0) & (j < s.size - 1) & (den < 0)
+    vertex = np.where(inner, y1 - 0.125 * (y0 - y2) ** 2 / np.where(inner, den, -1.0), y1)
+    a1, a2, a3 = side.arrays
+    idx = (pad - s[j])[:, None] + np.arange(n)[None, :]   # lag s uses template pixels x + pad - s
+    window = lambda arr: np.take_along_axis(arr, idx, axis=1)  # noqa: E731 - (K, n) gathers
+    cov = window(bank.V_unique[bank.groups])
+    c2v = np.maximum(np.sum(cov * a2, axis=1), 1e-300)
+    c1v = np.sum(cov * a1, axis=1)
+    c2t = np.sum(window(bank.T) * a2, axis=1)
+    e = np.sum(window(bank.T2) * a2, axis=1) - c2t ** 2 / c2v
+    d = np.sum(cov * a3, axis=1) - c1v ** 2 / c2v
+    with np.errstate(invalid="ignore", divide="ignore"):
+        h = (vertex - c1v * c2t / c2v) / np.sqrt(np.clip(e, 1e-300, None) * np.clip(d, 1e-300, None))
+    h = np.where(found & np.isfinite(h), h, -np.inf)
+    return BankScores([int(s[j[i]]) if np.isfinite(h[i]) else None for i in rows], h)
+
+
+def mixture_weights(heights):
+    """Weights of templates by peak height: exp(-(h_best - h) / (WEIGHT_SCALE (1 - h_best))), the
+    best :data:`MAX_MIXTURE` of weight >= :data:`MIN_WEIGHT` kept; returns (indices, weights)."""
+    h = np.asarray(heights, float)
+    finite = np.isfinite(h)
+    if not finite.any():
+        return np.array([], int), np.array([])
+    best = float(np.max(h[finite]))
+    scale = WEIGHT_SCALE * max(1.0 - best, 1e-4)
+    w = np.where(finite, np.exp(-(best - np.where(finite, h, best)) / scale), 0.0)
+    order = np.argsort(-w, kind="stable")[:MAX_MIXTURE]
+    order = order[w[order] >= MIN_WEIGHT]
+    return order, w[order] / np.sum(w[order])
+
+
+# ---------------------------------------------------------------------------
+# Exact normalised correlation at fractional lags, several templates at once
+# ---------------------------------------------------------------------------
+def _phases(m, nf, k):
+    """(nf, L) weights 2 exp(2 pi i f k / m) / m of a real inverse DFT at fractional indices k."""
+    f = np.arange(nf)
+    ph = np.exp(2j * np.pi * np.outer(f, k) / m) * (2.0 / m)
+    ph[0] *= 0.5
+    if m % 2 == 0 and nf == m // 2 + 1:
+        ph[-1] *= 0.5
+    return ph
+
+
+def fourier_rows(data_short, FT, FT2, FV, m, pad, lags_s):
+    """The six correlation rows (see :class:`~.correlation.Correlation`) at fractional lags.
+
+    ``FT``, ``FT2``, ``FV``: (T, nf) FFTs of T templates' arrays (any nf up to m//2+1: the
+    templates' band limit); returns (6, T, L). Sums are numpy's own (elementwise product and
+    a pairwise sum), never BLAS: BLAS reductions change their order with the thread count,
+    and the result would not be bit-identical between ways of running.
+    """
+    A1, A2, A3 = data_short
+    nt = FT.shape[1]
+    ph_full = _phases(m, A1.size, pad - np.asarray(lags_s, float))
+    ph = ph_full[:nt]
+
+    def rows(A, B, p):
+        x = np.conj(A[:B.shape[1]])[None, :] * B          # (T, nf)
+        return np.sum((x[:, :, None] * p[None, :, :]).real, axis=1)   # (T, L)
+
+    return np.stack([rows(A1, FT, ph), rows(A2, FT, ph), rows(A2, FT2, ph_full[:FT2.shape[1]]),
+                     rows(A1, FV, ph_full[:FV.shape[1]]), rows(A3, FV, ph_full[:FV.shape[1]]),
+                     rows(A2, FV, ph_full[:FV.shape[1]])])
+
+
+@functools.lru_cache(maxsize=16)
+def _fit_matrix(offsets, degree):
+    vander = np.vander(np.asarray(offsets, float), degree + 1, increasing=True)
+    return np.linalg.pinv(vander)
+
+
+def fit_matrix(offsets, degree):
+    """Least-squares polynomial fit as a fixed (degree+1, len(offsets)) matrix (coefficients, low first)."""
+    return _fit_matrix(tuple(float(o) for o in offsets), int(degree))
+
+
+def poly_peaks(offsets, values, degree=4, bound=None):
+    """Offset and value of the maximum near 0 of a polynomial fitted to each row of ``values``.
+
+    Newton's method on the fitted polynomial, vectorised over rows; deterministic (a fixed
+    fit matrix applied by elementwise sums).
+    """
+    values = np.atleast_2d(values)
+    fm = fit_matrix(offsets, degree)
+    coef = np.sum(values[:, None, :] * fm[None, :, :], axis=2)  # (R, degree+1)
+    powers = np.arange(degree + 1)
+    d1 = coef[:, 1:] * powers[1:]
+    d2 = d1[:, 1:] * powers[1:-1]
+    bound = float(np.max(np.abs(offsets))) if bound is None else bound
+    x = np.asarray(offsets)[np.argmax(values, axis=1)].astype(float)
+
+    def pv(c, xx):
+        return np.sum(c * xx[:, None] ** np.arange(c.shape[1]), axis=1)
+
+    for _ in range(30):
+        g1, g2 = pv(d1, x), pv(d2, x)
+        x = np.clip(x - g1 / np.where(g2 < 0, g2, -1e-9), -bound, bound)
+    return x, pv(coef, x), pv(d2, x)
+
+
+def short_side(search):
+    """rFFTs of the spectrum's three data arrays at the bank length (:func:`short_length`)."""
+    m = short_length(search.lags)
+    return tuple(sfft.rfft(a, m) for a in search.side.arrays)
+
+
+#: Lag offsets (pixels) of the two refinement passes about a peak: a quartic through five points
+#: within one pixel, then within a fifth of a pixel of the first estimate.
+REFINE_OFFSETS = ((-1.0, -0.5, 0.0, 0.5, 1.0), (-0.2, -0.1, 0.0, 0.1, 0.2))
+
+
+def refine_peak(template, lag, data_short, m, pad):
+    """(lag, height, curvature) of the normalised CCF's maximum near integer lag ``lag`` (exact).
+
+    The correlation is evaluated as a Fourier series at fractional lags (band-limited
+    interpolation: no parabola "peak locking") and its maximum found by Newton's method on a
+    quartic through five lags, twice (:data:`REFINE_OFFSETS`).
+    """
+    from .correlation import Correlation
+
+    FT, FT2, FV = (x[None, :] for x in template.ffts(m))
+    x0 = float(lag)
+    for offs in REFINE_OFFSETS:
+        c, _ = Correlation.combine(fourier_rows(data_short, FT, FT2, FV, m, pad, x0 + np.asarray(offs))[:, 0, :])
+        if not np.all(np.isfinite(c)):
+            break
+        dx, height, curv = poly_peaks(offs, c[None, :])
+        x0 += float(dx[0])
+    return x0, float(height[0]), float(curv[0])
