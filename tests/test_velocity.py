@@ -659,3 +659,78 @@ def test_short_spectrum_around_h_alpha():
     res = velocity.measure(short, errors="both")   # the resampling step is what this guards
     assert np.isfinite(res["rv_err_mc"].to_value(KMS))
     assert abs(res["rv"].to_value(KMS)) < 4 * res["rv_err"].to_value(KMS) + 1.0   # synthesised at rest
+
+
+# ---------------------------------------------------------------------------
+# Reader assumptions carried into the velocity
+# ---------------------------------------------------------------------------
+def test_undeclared_medium_is_flagged_in_velocity_json(tmp_path):
+    """A file that does not state its medium: the velocity says so, by how much it would move, how to fix it.
+
+    The size is the refractive index of air at the spectrum's wavelengths (Morton 2000, via
+    specutils): (n - 1) c ~ 83 km/s in the visible (common practice).
+    """
+    import io
+    from contextlib import redirect_stdout
+
+    from specan.cli import main
+
+    spec = _linear_spec("G8", 61.0)
+    path = tmp_path / "undeclared.fits"
+    _write_fits(path, spec, {})
+    with fits.open(path, mode="update") as hdus:
+        del hdus[0].header["CTYPE1"]   # no AWAV/WAVE: the reader assumes air
+    for extra, assumed in (([], True), (["--medium", "air"], False)):
+        buf = io.StringIO()
+        with redirect_stdout(buf):
+            assert main(["velocity", str(path), "--json", *extra]) == 0
+        d = json.loads(buf.getvalue().splitlines()[0])
+        assert d["medium_assumed"] is assumed
+        assert ("medium_assumed" in d["flags"]) is assumed
+        if assumed:
+            assert 75 < -d["medium_shift_kms"] < 90
+            note = next(n for n in d["notes"] if n.startswith("wavelength medium not stated"))
+            assert "--medium vacuum" in note and "more negative" in note
+        else:
+            assert d["medium_shift_kms"] is None
+        assert abs(d["rv_kms"] - 61.0) < 1.0
+
+
+# ---------------------------------------------------------------------------
+# Determinism: the same numbers however the measurement is run
+# ---------------------------------------------------------------------------
+_DETERMINISM_SCRIPT = """
+import json, sys, warnings
+import astropy.units as u
+warnings.simplefilter("ignore")
+from specan import synth, velocity
+first = sys.argv[1] == "other-first"
+if first:   # fill the template caches with another set-up and star first
+    velocity.measure(synth.spectrum("A2", "V", resolving_power=2500, rv=-80 * u.km / u.s, snr=60, seed=9))
+s = synth.spectrum("G8", "V", resolving_power=3000, rv=37 * u.km / u.s, snr=40, seed=3)
+r = velocity.measure(s, barycentric=False, errors="both")
+keys = ("rv", "rv_err", "rv_err_noise", "rv_err_template", "rv_err_td", "rv_err_mc")
+print(json.dumps({k: r[k].to_value(u.km / u.s).hex() for k in keys} | {"templates": [t["name"] for t in r["templates"]]}))
+"""
+
+
+def test_velocity_is_bit_identical_across_threads_and_history(tmp_path):
+    """BLAS thread counts, cache history and process must not change a single bit of the result.
+
+    Run in fresh processes with 1 and 2 BLAS threads, one of them after measuring another star
+    (so the caches hold other templates). The resampled error is seeded from the spectrum.
+    """
+    import os
+    import subprocess
+    import sys
+    from pathlib import Path
+
+    root = str(Path(__file__).resolve().parents[1])
+    outs = []
+    for threads, order in (("1", "alone"), ("2", "other-first"), ("2", "alone")):
+        env = dict(os.environ, OPENBLAS_NUM_THREADS=threads, OMP_NUM_THREADS=threads,
+                   PYTHONPATH=root + os.pathsep + os.environ.get("PYTHONPATH", ""))
+        run = subprocess.run([sys.executable, "-c", _DETERMINISM_SCRIPT, order], env=env, capture_output=True,
+                             text=True, check=True)
+        outs.append(json.loads(run.stdout.strip().splitlines()[-1]))
+    assert outs[0] == outs[1] == outs[2], outs

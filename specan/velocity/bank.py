@@ -125,14 +125,21 @@ def score_bank(search, bank, data_short):
     inner = (j > 0) & (j < s.size - 1) & (den < 0)
     vertex = np.where(inner, y1 - 0.125 * (y0 - y2) ** 2 / np.where(inner, den, -1.0), y1)
     a1, a2, a3 = side.arrays
-    idx = (pad - s[j])[:, None] + np.arange(n)[None, :]   # lag s uses template pixels x + pad - s
-    window = lambda arr: np.take_along_axis(arr, idx, axis=1)  # noqa: E731 - (K, n) gathers
-    cov = window(bank.V_unique[bank.groups])
-    c2v = np.maximum(np.sum(cov * a2, axis=1), 1e-300)
-    c1v = np.sum(cov * a1, axis=1)
-    c2t = np.sum(window(bank.T) * a2, axis=1)
-    e = np.sum(window(bank.T2) * a2, axis=1) - c2t ** 2 / c2v
-    d = np.sum(cov * a3, axis=1) - c1v ** 2 / c2v
+    # sums over the data window at each template's peak lag: contiguous slices, one per distinct lag
+    c2v, c1v, c3v, c2t, c2t2 = (np.empty(len(bank)) for _ in range(5))
+    peak_lag = s[j]
+    for lag in np.unique(peak_lag):
+        sel = np.flatnonzero(peak_lag == lag)
+        start = pad - int(lag)          # lag s uses template pixels x + pad - s
+        cov = bank.V_unique[bank.groups[sel], start:start + n]
+        c2v[sel] = np.sum(cov * a2, axis=1)
+        c1v[sel] = np.sum(cov * a1, axis=1)
+        c3v[sel] = np.sum(cov * a3, axis=1)
+        c2t[sel] = np.sum(bank.T[sel, start:start + n] * a2, axis=1)
+        c2t2[sel] = np.sum(bank.T2[sel, start:start + n] * a2, axis=1)
+    c2v = np.maximum(c2v, 1e-300)
+    e = c2t2 - c2t ** 2 / c2v
+    d = c3v - c1v ** 2 / c2v
     with np.errstate(invalid="ignore", divide="ignore"):
         h = (vertex - c1v * c2t / c2v) / np.sqrt(np.clip(e, 1e-300, None) * np.clip(d, 1e-300, None))
     h = np.where(found & np.isfinite(h), h, -np.inf)
@@ -157,14 +164,24 @@ def mixture_weights(heights):
 # ---------------------------------------------------------------------------
 # Exact normalised correlation at fractional lags, several templates at once
 # ---------------------------------------------------------------------------
-def _phases(m, nf, k):
-    """(nf, L) weights 2 exp(2 pi i f k / m) / m of a real inverse DFT at fractional indices k."""
+@functools.lru_cache(maxsize=64)
+def _offset_phases(m, nf, offsets):
+    """(L, nf) exp(2 pi i f o / m) (2 / m) for fixed offsets o, the inverse DFT's weights included."""
     f = np.arange(nf)
-    ph = np.exp(2j * np.pi * np.outer(f, k) / m) * (2.0 / m)
-    ph[0] *= 0.5
+    ph = np.exp(2j * np.pi * np.outer(np.asarray(offsets), f) / m) * (2.0 / m)
+    ph[:, 0] *= 0.5
     if m % 2 == 0 and nf == m // 2 + 1:
-        ph[-1] *= 0.5
+        ph[:, -1] *= 0.5
     return ph
+
+
+def _phases(m, nf, k):
+    """(L, nf) weights 2 exp(2 pi i f k / m) / m of a real inverse DFT at fractional indices k
+    (a common part times cached offset phases: one complex exponential per frequency)."""
+    k = np.asarray(k, float)
+    k0 = float(k[len(k) // 2])
+    base = np.exp(2j * np.pi * np.arange(nf) * k0 / m)
+    return base[None, :] * _offset_phases(m, nf, tuple(np.round(k - k0, 12)))
 
 
 def fourier_rows(data_short, FT, FT2, FV, m, pad, lags_s):
@@ -176,17 +193,16 @@ def fourier_rows(data_short, FT, FT2, FV, m, pad, lags_s):
     and the result would not be bit-identical between ways of running.
     """
     A1, A2, A3 = data_short
-    nt = FT.shape[1]
-    ph_full = _phases(m, A1.size, pad - np.asarray(lags_s, float))
-    ph = ph_full[:nt]
+    ph_full = _phases(m, max(FT.shape[1], FT2.shape[1], FV.shape[1]), pad - np.asarray(lags_s, float))
 
-    def rows(A, B, p):
-        x = np.conj(A[:B.shape[1]])[None, :] * B          # (T, nf)
-        return np.sum((x[:, :, None] * p[None, :, :]).real, axis=1)   # (T, L)
+    def rows(A, B):
+        nb = B.shape[1]
+        x = np.conj(A[:nb])[None, :] * B                  # (T, nf)
+        pr, pi = ph_full.real[:, :nb], ph_full.imag[:, :nb]
+        # Re(x p) summed over frequencies, contiguous sums per lag
+        return np.stack([np.sum(x.real * pr[i] - x.imag * pi[i], axis=1) for i in range(pr.shape[0])], axis=1)
 
-    return np.stack([rows(A1, FT, ph), rows(A2, FT, ph), rows(A2, FT2, ph_full[:FT2.shape[1]]),
-                     rows(A1, FV, ph_full[:FV.shape[1]]), rows(A3, FV, ph_full[:FV.shape[1]]),
-                     rows(A2, FV, ph_full[:FV.shape[1]])])
+    return np.stack([rows(A1, FT), rows(A2, FT), rows(A2, FT2), rows(A1, FV), rows(A3, FV), rows(A2, FV)])
 
 
 @functools.lru_cache(maxsize=16)
@@ -215,10 +231,13 @@ def poly_peaks(offsets, values, degree=4, bound=None):
     bound = float(np.max(np.abs(offsets))) if bound is None else bound
     x = np.asarray(offsets)[np.argmax(values, axis=1)].astype(float)
 
-    def pv(c, xx):
-        return np.sum(c * xx[:, None] ** np.arange(c.shape[1]), axis=1)
+    def pv(c, xx):  # Horner
+        out = c[:, -1].copy()
+        for i in range(c.shape[1] - 2, -1, -1):
+            out = out * xx + c[:, i]
+        return out
 
-    for _ in range(30):
+    for _ in range(12):
         g1, g2 = pv(d1, x), pv(d2, x)
         x = np.clip(x - g1 / np.where(g2 < 0, g2, -1e-9), -bound, bound)
     return x, pv(coef, x), pv(d2, x)
@@ -244,7 +263,7 @@ def refine_peak(template, lag, data_short, m, pad):
     """
     from .correlation import Correlation
 
-    FT, FT2, FV = (x[None, :] for x in template.ffts(m))
+    FT, FT2, FV = (x[None, :] for x in template.band_ffts(m))
     x0 = float(lag)
     for offs in REFINE_OFFSETS:
         c, _ = Correlation.combine(fourier_rows(data_short, FT, FT2, FV, m, pad, x0 + np.asarray(offs))[:, 0, :])
