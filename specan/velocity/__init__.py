@@ -54,7 +54,7 @@ import numpy as np
 
 from ..doppler import doppler_factor, shift_to_rest, velocity_from_factor
 from ..frames import ESCAPE_SPEED, HIGH_VELOCITY, barycentric_correction, galactic_rest_frame_velocity
-from .bank import refine_peak, short_length, short_side
+from .bank import refine_peaks, short_length, short_side
 from .choice import choose_template, parse_template, settle_resolving_power
 from .companion import Companion, detect_companion
 from .correlation import Correlation, Peak, PeakSearch, ccf_about_peak, observed_side
@@ -165,7 +165,8 @@ def measure(spectrum, template=None, *, reference=None, template_rv=0 * u.km / u
     td = tonry_davis(about, peak)
     errs = estimate_errors(errors, td, peak, observed, search, best, n_resample, seed, notes)
     resels = lags.n * lags.step * choice.power.value
-    segments = segment_errors(observed, search, best, peak.lag, short_length(lags), resels)
+    segments = segment_errors(observed, search, [(m.template, p.lag, m.weight) for m, p in zip(choice.mixture, peaks)],
+                              short_length(lags), resels)
     companion = detect_companion(about, peak, td.sigma_a, lags.smax, composite_min_ratio, composite_min_sigma, notes)
     weights = [m.weight for m in choice.mixture]
     mean_lag = sum(w * p.lag for w, p in zip(weights, peaks))
@@ -196,8 +197,7 @@ def _refined_peaks(search, mixture, data_short, where):
     from .correlation import integer_peak
 
     lags = search.lags
-    m = short_length(lags)
-    out = []
+    found = []
     for member in mixture:
         lag = member.lag
         if lag is None:
@@ -206,7 +206,9 @@ def _refined_peaks(search, mixture, data_short, where):
             if pk is None or not np.isfinite(pk[1]) or pk[1] <= 0:
                 raise AnalysisError(f"no correlation peak with template {member.template.name}", where)
             lag = pk[0]
-        out.append(Peak(*refine_peak(member.template, lag, data_short, m, lags.pad)))
+        found.append(lag)
+    x, h, c = refine_peaks([m.template for m in mixture], found, data_short, short_length(lags), lags.pad)
+    out = [Peak(float(a), float(b), float(d)) for a, b, d in zip(x, h, c)]
     if not (np.isfinite(out[0].height) and out[0].height > 0):
         raise AnalysisError(f"no correlation peak with template {mixture[0].template.name}", where)
     return out

@@ -23,7 +23,7 @@ from .prepared import prepare_builtin
 
 __all__ = ["TemplateBank", "BankScores", "short_length", "template_bank", "score_bank", "fourier_rows",
            "WEIGHT_SCALE", "MAX_MIXTURE", "MIN_WEIGHT", "mixture_weights", "fit_matrix", "poly_peaks",
-           "short_side", "refine_peak", "REFINE_OFFSETS"]
+           "short_side", "refine_peaks", "REFINE_OFFSETS"]
 
 #: Scale of the template weights, as a fraction of the best template's unexplained variance
 #: 1 - h: a template whose peak is lower by 0.25 (1 - h_best) weighs 1/e of the best (our
@@ -35,8 +35,9 @@ MIN_WEIGHT = 0.05
 
 
 def short_length(lags):
-    """FFT length for correlations whose lags stay within +-pad: the template length, made fast."""
-    return sfft.next_fast_len(lags.template_grid.n, real=True)
+    """FFT length of the set-up's correlations: the template length made fast (lags stay within
+    +-pad, so no term wraps around; see :func:`~.grid.lag_window`)."""
+    return lags.m
 
 
 class TemplateBank:
@@ -131,10 +132,10 @@ def score_bank(search, bank, data_short):
     for lag in np.unique(peak_lag):
         sel = np.flatnonzero(peak_lag == lag)
         start = pad - int(lag)          # lag s uses template pixels x + pad - s
-        cov = bank.V_unique[bank.groups[sel], start:start + n]
-        c2v[sel] = np.sum(cov * a2, axis=1)
-        c1v[sel] = np.sum(cov * a1, axis=1)
-        c3v[sel] = np.sum(cov * a3, axis=1)
+        for g in np.unique(bank.groups[sel]):   # coverage sums once per coverage, not per template
+            cov = bank.V_unique[g, start:start + n]
+            into = sel[bank.groups[sel] == g]
+            c2v[into], c1v[into], c3v[into] = np.sum(cov * a2), np.sum(cov * a1), np.sum(cov * a3)
         c2t[sel] = np.sum(bank.T[sel, start:start + n] * a2, axis=1)
         c2t2[sel] = np.sum(bank.T2[sel, start:start + n] * a2, axis=1)
     c2v = np.maximum(c2v, 1e-300)
@@ -245,8 +246,7 @@ def poly_peaks(offsets, values, degree=4, bound=None):
 
 def short_side(search):
     """rFFTs of the spectrum's three data arrays at the bank length (:func:`short_length`)."""
-    m = short_length(search.lags)
-    return tuple(sfft.rfft(a, m) for a in search.side.arrays)
+    return search.side.ffts
 
 
 #: Lag offsets (pixels) of the two refinement passes about a peak: a quartic through five points
@@ -254,21 +254,45 @@ def short_side(search):
 REFINE_OFFSETS = ((-1.0, -0.5, 0.0, 0.5, 1.0), (-0.2, -0.1, 0.0, 0.1, 0.2))
 
 
-def refine_peak(template, lag, data_short, m, pad):
-    """(lag, height, curvature) of the normalised CCF's maximum near integer lag ``lag`` (exact).
+def _stacked(arrays):
+    """(T, nf) array of 1-D FFTs of different band limits, zero-padded to the longest."""
+    nf = max(x.size for x in arrays)
+    out = np.zeros((len(arrays), nf), complex)
+    for i, x in enumerate(arrays):
+        out[i, :x.size] = x
+    return out
 
-    The correlation is evaluated as a Fourier series at fractional lags (band-limited
-    interpolation: no parabola "peak locking") and its maximum found by Newton's method on a
-    quartic through five lags, twice (:data:`REFINE_OFFSETS`).
+
+def refine_peaks(templates, lags, data_ffts, m, pad):
+    """(lag, height, curvature) arrays of each template's normalised-CCF maximum near its integer ``lags``.
+
+    The correlations are evaluated as Fourier series at fractional lags (band-limited
+    interpolation: no parabola "peak locking"), all templates at once, and each maximum found
+    by Newton's method on a quartic through five lags, twice (:data:`REFINE_OFFSETS`). Sums
+    are numpy's own (``einsum`` without BLAS): bit-identical whatever the thread count.
     """
     from .correlation import Correlation
 
-    FT, FT2, FV = (x[None, :] for x in template.band_ffts(m))
-    x0 = float(lag)
+    bands = [t.band_ffts(m) for t in templates]
+    FT, FT2, FV = (_stacked([b[i] for b in bands]) for i in range(3))
+    nf = max(FT.shape[1], FT2.shape[1], FV.shape[1])
+    A = [a[:nf] for a in data_ffts]
+    x0 = np.asarray(lags, float)
+    f = np.arange(nf)
+    height = curv = np.full(x0.size, np.nan)
     for offs in REFINE_OFFSETS:
-        c, _ = Correlation.combine(fourier_rows(data_short, FT, FT2, FV, m, pad, x0 + np.asarray(offs))[:, 0, :])
-        if not np.all(np.isfinite(c)):
-            break
-        dx, height, curv = poly_peaks(offs, c[None, :])
-        x0 += float(dx[0])
-    return x0, float(height[0]), float(curv[0])
+        # phases of lag s = x0 + o at index k = pad - s: one exponential per frequency and template
+        base = np.exp(2j * np.pi * np.outer(pad - x0, f) / m)                 # (T, nf)
+        ph = base[:, None, :] * np.conj(_offset_phases(m, nf, tuple(offs)))[None, :, :]  # (T, L, nf)
+
+        # the six correlation rows of every template, (6, T, nf), against the same phases
+        X = np.zeros((6, x0.size, nf), complex)
+        for r, (a, B) in enumerate(((A[0], FT), (A[1], FT), (A[1], FT2), (A[0], FV), (A[2], FV), (A[1], FV))):
+            X[r, :, :B.shape[1]] = np.conj(a[:B.shape[1]])[None, :] * B
+        c, _ = Correlation.combine(np.einsum("rtf,tlf->rtl", X.real, ph.real)
+                                   - np.einsum("rtf,tlf->rtl", X.imag, ph.imag))
+        ok = np.all(np.isfinite(c), axis=1)
+        dx, h, cv = poly_peaks(offs, np.where(ok[:, None], c, 0.0))
+        x0 = np.where(ok, x0 + dx, x0)
+        height, curv = np.where(ok, h, np.nan), np.where(ok, cv, np.nan)
+    return x0, height, curv

@@ -1,15 +1,15 @@
 """Which template, at which resolving power.
 
 The template is a user spectrum (a file or a Spectrum, e.g. an RV standard), a reference
-exposure of the same star (the velocity is then relative to it), one built-in type, or the
-automatic choice. The automatic choice scores the empirical library templates
-(:func:`specan.templates.library_templates`) beside the synthetic grid by their normalised
-correlation peaks, where the library covers at least :data:`LIBRARY_MIN_COVER` of the
-spectrum's weight; elsewhere (far red, far blue) only the synthetic grid. The synthetic grid's
-best type is refined among its neighbouring subtypes and luminosity classes. When the
-spectrum's resolving power is unknown and the narrowest lines do not tell it, the width of a
-synthetic template of the chosen type is scanned too. Candidates are lists of :class:`~.prepared.BuiltinCandidate`, prepared on
-the set-up's grid and then scored together (:func:`~.correlation.template_peaks`).
+exposure of the same star (the velocity is then relative to it), one built-in template, or the
+automatic choice. The automatic choice (:func:`automatic_mixture`) scores, in one batch
+(:mod:`.bank`), the empirical library templates (:func:`specan.templates.library_templates`,
+where the library covers at least :data:`LIBRARY_MIN_COVER` of the spectrum's weight) and the
+synthetic grid, then the synthetic grid's neighbours of its best type; the templates whose
+peaks come close to the best are kept with weights (:func:`~.bank.mixture_weights`) and the
+velocity is their weighted mean. When the spectrum's resolving power is unknown and the
+narrowest lines do not tell it, the width of a synthetic template of the best type is scanned
+first. Candidates are :class:`~.prepared.BuiltinCandidate` lists.
 """
 
 from __future__ import annotations

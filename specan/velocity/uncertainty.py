@@ -235,75 +235,110 @@ class SegmentErrors(NamedTuple):
     n: int
 
 
-def _segments(info, n_seg):
-    """Start indices of ``n_seg`` segments holding equal shares of the velocity information ``info``."""
+def _segments(info, n_seg, fwhm_px):
+    """Start indices of ``n_seg`` segments holding about equal shares of the velocity information ``info``.
+
+    Each boundary is moved to the quietest pixel (least information, smoothed over a resolution
+    element) within two resolution elements of the equal-share point: a line cut in two pulls
+    the velocities of its two segments in opposite directions, a scatter the whole spectrum's
+    velocity does not have (Birge ratios of 2-4 at S/N 100 with matched templates, measured).
+    """
     cum = np.cumsum(info)
     if cum[-1] <= 0:
         return np.array([0])
-    starts = np.searchsorted(cum, cum[-1] * np.arange(n_seg) / n_seg, side="right")
-    starts[0] = 0
-    return np.unique(starts)
+    box = max(1, int(round(fwhm_px)))
+    quiet = np.convolve(info, np.ones(box) / box, mode="same")
+    reach = max(1, int(round(2 * fwhm_px)))
+    starts = [0]
+    for q in np.searchsorted(cum, cum[-1] * np.arange(1, n_seg) / n_seg, side="right"):
+        lo, hi = max(starts[-1] + 1, q - reach), min(info.size - 1, q + reach + 1)
+        if hi > lo:
+            starts.append(lo + int(np.argmin(quiet[lo:hi])))
+    return np.unique(np.asarray(starts))
 
 
-def segment_errors(observed, search, template, s0, m, resels):
-    """:class:`SegmentErrors` of the peak at lag ``s0`` of ``template`` (a :class:`~.prepared.PreparedTemplate`).
+def _template_segments(search, template, s0, m, starts, h):
+    """(offsets, good, gradients) of one template's segment velocities about its peak ``s0``.
 
-    The spectrum is cut into segments of equal velocity information (weight times the squared
-    slope of the shifted template); each segment's velocity against the same template is the
-    vertex of the normalised CCF through lags s0 - 1/2, s0, s0 + 1/2, from its own sums. The
-    noise error of each, and of the whole, is the linear propagation of the native pixels'
-    errors through every step the data went through (spline onto the grid, high-pass, weights,
-    correlation): exactly the scatter noise resampling would find, without random numbers.
-    ``m`` is an FFT length of at least the template's; ``resels`` the number of resolution
-    elements in the spectrum (segments hold at least 25 each, at most 10 segments: our choice,
-    enough lines in each for a velocity, enough segments for a scatter).
+    ``offsets`` (K + 1: the segments, then the whole) are vertex offsets in pixels; ``gradients``
+    (n, K + 1) their derivatives with respect to the data on the grid (zero outside each segment).
     """
     lags = search.lags
     n, pad = lags.n, lags.pad
     a1, a2, a3 = search.side.arrays
     w = search.side.weight
-    h = 0.5
-    deltas = np.array([-h, 0.0, h])
     F = np.stack(template.ffts(m))                                   # (3, nf): T, T2, V
-    nf = F.shape[1]
-    tau = pad - (s0 + deltas)  # lag s uses template pixels x + pad - s
-    ph = np.exp(2j * np.pi * np.outer(tau, np.arange(nf)) / m)       # (3 deltas, nf)
-    b = sfft.irfft(F[:, None, :] * ph[None, :, :], m, axis=-1)[..., :n]  # (3 arrays, 3 deltas, n)
-    bT, bT2, bV = b
-    n_seg = int(np.clip(resels // 25, 2, 10))
-    starts = _segments(w * (bT[2] - bT[0]) ** 2, n_seg)
-    ends = np.append(starts[1:], n)
+    tau = pad - (s0 + np.array([-h, 0.0, h]))  # lag s uses template pixels x + pad - s
+    ph = np.exp(2j * np.pi * np.outer(tau, np.arange(F.shape[1])) / m)
+    bT, bT2, bV = sfft.irfft(F[:, None, :] * ph[None, :, :], m, axis=-1)[..., :n]  # each (3 lags, n)
 
-    def sums(x):  # (3 deltas, n) -> (3 deltas, segments + whole)
-        part = np.add.reduceat(x, starts, axis=-1)
-        return np.concatenate([part, np.sum(x, axis=-1, keepdims=True)], axis=-1)
+    def sums(x):  # (3 lags, n) -> (3 lags, segments + whole)
+        return np.concatenate([np.add.reduceat(x, starts, axis=-1), np.sum(x, axis=-1, keepdims=True)], axis=-1)
 
     rows = (sums(a1 * bT), sums(a2 * bT), sums(a2 * bT2), sums(a1 * bV), sums(a3 * bV), sums(a2 * bV))
-    c, _ = Correlation.combine(rows)                                  # (3 deltas, K + 1)
+    c, _ = Correlation.combine(rows)                                  # (3 lags, K + 1)
     den = c[0] - 2.0 * c[1] + c[2]
     good = np.isfinite(den) & (den < 0)
     offsets = np.where(good, h * (c[0] - c[2]) / (2.0 * np.where(good, den, -1.0)), np.nan)
     curv = den / h ** 2
-    # gradient of each vertex with respect to the data on the grid (zero outside its segment)
+    # derivative of each vertex with respect to the data: -(dc(+h) - dc(-h)) / (2h c''), with
+    # dc/dd = w (T - mu V) / sqrt(E D) (mu the template's mean over the overlap, E and D the
+    # template's and the data's energies there; the data energy's own change cancels at the peak)
     c2v = np.maximum(rows[5], 1e-300)
-    mu = rows[1] / c2v                                                # template mean over the overlap
+    mu = rows[1] / c2v
     energy = np.clip(rows[2] - rows[1] ** 2 / c2v, 1e-300, None)
     data_energy = np.clip(rows[4][1] - rows[3][1] ** 2 / c2v[1], 1e-300, None)
-    k_total = starts.size + 1
-    seg_of = np.repeat(np.arange(starts.size), ends - starts)
-    grads = np.zeros((n, k_total))
-    for col, index in ((seg_of, np.arange(n)), (np.full(n, starts.size), np.arange(n))):
+    k = starts.size
+    ends = np.append(starts[1:], n)
+    grads = np.zeros((n, k + 1))
+    for col in (np.repeat(np.arange(k), ends - starts), np.full(n, k)):
         plus = (bT[2] - mu[2][col] * bV[2]) / np.sqrt(energy[2][col])
         minus = (bT[0] - mu[0][col] * bV[0]) / np.sqrt(energy[0][col])
         scale = np.where(good[col], -1.0 / (2.0 * h * np.where(good[col], curv[col], -1.0)
                                             * np.sqrt(data_energy[col])), 0.0)
-        grads[index, col] = w * (plus - minus) * scale
+        grads[np.arange(n), col] = w * (plus - minus) * scale
+    return offsets, good, grads
+
+
+def segment_errors(observed, search, members, m, resels):
+    """:class:`SegmentErrors` of a velocity averaged over templates.
+
+    ``members`` are (template, peak lag, weight) of the averaged templates, the best first. The
+    spectrum is cut into segments of equal velocity information (weight times the squared
+    slope of the best template); each segment's velocity against each template is the vertex
+    of the normalised CCF through lags s0 - 1/2, s0, s0 + 1/2 from its own sums, averaged with
+    the templates' weights as the whole velocity is. The noise error of each, and of the whole,
+    is the linear propagation of the native pixels' errors through every step the data went
+    through (spline onto the grid, high-pass, weights, correlation, average): exactly the
+    scatter noise resampling would find, without random numbers. ``m`` is the set-up's FFT
+    length; ``resels`` the number of resolution elements in the spectrum (segments hold at
+    least 25 each, at most 10 segments: our choice, enough lines in each for a velocity, enough
+    segments for a scatter).
+    """
+    lags = search.lags
+    n = lags.n
+    h = 0.5
+    best, s_best, _ = members[0]
+    F = np.stack(best.ffts(m)[:1])
+    ph = np.exp(2j * np.pi * np.outer(lags.pad - (s_best + np.array([-h, h])), np.arange(F.shape[1])) / m)
+    slope = sfft.irfft(F * ph, m, axis=-1)[:, :n]
+    starts = _segments(search.side.weight * (slope[1] - slope[0]) ** 2, int(np.clip(resels // 25, 2, 10)),
+                       n / max(resels, 1.0))
+    total_w = sum(wt for _, _, wt in members)
+    mean_lag = sum(wt * s0 for _, s0, wt in members) / total_w
+    offsets = np.zeros(starts.size + 1)
+    good = np.ones(starts.size + 1, bool)
+    grads = np.zeros((n, starts.size + 1))
+    for template, s0, wt in members:
+        off, ok, g = _template_segments(search, template, s0, m, starts, h)
+        offsets += wt / total_w * (s0 + np.where(ok, off, 0.0) - mean_lag)
+        good &= ok
+        grads += wt / total_w * g
     u = _highpass_adjoint(grads, lags.hp_sigma, observed.valid)
     z = spline_adjoint(observed.spline_x, observed.grid)(u)          # (native pixels, K + 1)
-    var = np.sum((observed.native_sigma[:, None] * z) ** 2, axis=0)
-    sig = np.sqrt(var)
-    seg_off, seg_sig = offsets[:-1], sig[:-1]
-    use = good[:-1] & np.isfinite(seg_off) & (seg_sig > 0)
+    sig = np.sqrt(np.sum((observed.native_sigma[:, None] * z) ** 2, axis=0))
+    seg_off, seg_sig = np.where(good, offsets, np.nan)[:-1], sig[:-1]
+    use = good[:-1] & (seg_sig > 0)
     birge = float("nan")
     if use.sum() >= 2:
         wt = 1.0 / seg_sig[use] ** 2
