@@ -212,9 +212,9 @@ def test_library_templates_by_default_on_the_kurucz_sun(kurucz_model):
     assert np.all(np.abs(errs) < 0.04 * C_KMS / 2000.0), errs
 
 
-@pytest.mark.xfail(strict=True, reason="measured: the library default is 5.4 km/s low on the Kurucz Sun at R = 2000 "
-                   "(3.6% of a resolution element; target 1%), model-versus-star mismatch and the library's "
-                   "rest frame")
+@pytest.mark.xfail(strict=True, reason="measured: the library default is 4.8-5.2 km/s low on the Kurucz Sun at "
+                   "R = 2000 (3.2-3.5% of a resolution element; target 1%; 5.4 with the single best template "
+                   "before the average), model-versus-star mismatch and the library's rest frame")
 def test_library_default_bias_within_one_percent_of_a_resolution_element(kurucz_model):
     errs, _ = _library_default_on_kurucz(kurucz_model)
     assert np.all(np.abs(errs) < 0.01 * C_KMS / 2000.0), errs
@@ -734,3 +734,63 @@ def test_velocity_is_bit_identical_across_threads_and_history(tmp_path):
                              text=True, check=True)
         outs.append(json.loads(run.stdout.strip().splitlines()[-1]))
     assert outs[0] == outs[1] == outs[2], outs
+
+
+# ---------------------------------------------------------------------------
+# The user's path: a spectrum no template was made from, no template given
+# ---------------------------------------------------------------------------
+def _user_file_runs(kurucz_model, r, snr, n=10):
+    """The Kurucz Sun times an unknown smooth response, not normalised, on linear pixels, at +-900 km/s;
+    error arrays on every other spectrum. Returns (measured - true, rv_err, Cramer-Rao bound) in km/s."""
+    lng, fl = kurucz_model(r)
+    spl = make_interp_spline(lng, fl, k=3)
+    lo, hi = 3850.0, 7300.0
+    pix = np.arange(lo, hi, lo / (r * 2.5))
+    response = 1.0 + 0.3 * np.sin((pix - lo) / (hi - lo) * 2.5)
+    rng = np.random.default_rng(int(r + snr))
+    dv, err = [], []
+    for i in range(n):
+        v = rng.uniform(-900, 900)
+        flux = spl(np.log(pix) - np.log(velocity.doppler_factor(v * KMS)))
+        sig = np.sqrt(np.clip(flux, 1e-3, None)) / snr
+        obs = (flux + rng.normal(size=flux.size) * sig) * response
+        info = ObsInfo(object="sun", medium="vacuum", medium_assumed=False, resolving_power=r)
+        s = Spectrum(flux=obs * u.dimensionless_unscaled, spectral_axis=pix * u.AA,
+                     uncertainty=StdDevUncertainty(sig * response) if i % 2 == 0 else None, meta={META_KEY: info})
+        res = velocity.measure(s, barycentric=False)
+        dv.append(res["rv"].to_value(KMS) - v)
+        err.append(res["rv_err"].to_value(KMS))
+    clean = spl(np.log(pix))
+    slope = spl(np.log(pix) - np.log(velocity.doppler_factor(0.5 * KMS))) - spl(
+        np.log(pix) - np.log(velocity.doppler_factor(-0.5 * KMS)))
+    bound = 1.0 / np.sqrt(np.sum((slope / (np.sqrt(clean) / snr)) ** 2))  # Bouchy, Pepe & Queloz (2001)
+    return np.array(dv), np.array(err), bound
+
+
+@pytest.mark.slow
+def test_user_path_scatter_within_twice_the_cramer_rao_bound(kurucz_model):
+    """No template, a star no template was made from: scatter <= 2x the Cramer-Rao bound at S/N >= 30 (issue 11).
+
+    The bound is computed from the noiseless input (Bouchy, Pepe & Queloz 2001, photon-noise
+    form). Before the templates were averaged the choice flipped between two library templates
+    2.5 km/s apart at R 2000, S/N 100: 4.4x the bound (measured).
+    """
+    for r, snr in ((2000.0, 30.0), (2000.0, 100.0), (5000.0, 100.0)):
+        dv, _, bound = _user_file_runs(kurucz_model, r, snr)
+        assert np.std(dv, ddof=1) < 2.0 * bound, (r, snr, np.std(dv, ddof=1), bound)
+
+
+@pytest.mark.slow
+@pytest.mark.xfail(strict=True, reason="measured (benchmarks/bench_velocity.py --user): on the Kurucz Sun every "
+                   "built-in template reads -2 to -6 km/s (-1.5 to -6.4% of a resolution element; target 1%) and "
+                   "the error budget covers part of it: pulls (measured - true)/rv_err have rms 1.2-1.5 at "
+                   "S/N >= 30, sd about their mean 0.03-0.3 (the offset is common to all spectra)")
+def test_user_path_bias_and_pulls(kurucz_model):
+    """Issue 11's acceptance on the Kurucz Sun read as a user's file: bias within 1% of a resolution
+    element, and (measured - true)/rv_err with rms and sd in 0.8-1.25."""
+    for r, snr in ((2000.0, 30.0), (2000.0, 100.0), (5000.0, 100.0)):
+        dv, err, _ = _user_file_runs(kurucz_model, r, snr)
+        pull = dv / err
+        assert abs(np.mean(dv)) < 0.01 * C_KMS / r, (r, snr, np.mean(dv))
+        assert 0.8 <= np.sqrt(np.mean(pull ** 2)) <= 1.25, (r, snr, pull)
+        assert 0.8 <= np.std(pull, ddof=1) <= 1.25, (r, snr, pull)
