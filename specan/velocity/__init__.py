@@ -165,8 +165,10 @@ def measure(spectrum, template=None, *, reference=None, template_rv=0 * u.km / u
     td = tonry_davis(about, peak)
     errs = estimate_errors(errors, td, peak, observed, search, best, n_resample, seed, notes)
     resels = lags.n * lags.step * choice.power.value
-    segments = segment_errors(observed, search, [(m.template, p.lag, m.weight) for m, p in zip(choice.mixture, peaks)],
-                              short_length(lags), resels)
+    # the segments of the average over the templates that carry most of its weight (the best always)
+    heavy = [(m.template, p.lag, m.weight) for i, (m, p) in enumerate(zip(choice.mixture, peaks))
+             if i == 0 or m.weight >= 0.2]
+    segments = segment_errors(observed, search, heavy, short_length(lags), resels)
     companion = detect_companion(about, peak, td.sigma_a, lags.smax, composite_min_ratio, composite_min_sigma, notes)
     weights = [m.weight for m in choice.mixture]
     mean_lag = sum(w * p.lag for w, p in zip(weights, peaks))

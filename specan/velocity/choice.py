@@ -14,6 +14,7 @@ first. Candidates are :class:`~.prepared.BuiltinCandidate` lists.
 
 from __future__ import annotations
 
+import functools
 from pathlib import Path
 from typing import NamedTuple
 
@@ -269,15 +270,22 @@ def automatic_mixture(search, resolving_power, template_grid, notes, where=None,
     return chosen, scores
 
 
+@functools.lru_cache(maxsize=16)
+def _library_mask(ln0, step, n):
+    """Grid pixels (one set-up's data window) at air wavelengths the library templates cover."""
+    ln_w = ln0 + step * np.arange(n)
+    first, last = templates.library_coverage()
+    w_air = vacuum_to_air(np.exp(ln_w) * u.AA).to_value(u.AA)
+    return (w_air >= first) & (w_air <= last)
+
+
 def library_cover(search):
     """Share of the spectrum's correlation weight at wavelengths the library templates cover."""
     lags = search.lags
-    ln_w = lags.template_grid.ln0 + lags.step * (lags.pad + np.arange(lags.n))
-    first, last = templates.library_coverage()
-    w_air = vacuum_to_air(np.exp(ln_w) * u.AA).to_value(u.AA)
+    inside = _library_mask(round(lags.template_grid.ln0 + lags.step * lags.pad, 12), lags.step, lags.n)
     weight = search.side.weight
     total = float(np.sum(weight))
-    return float(np.sum(weight[(w_air >= first) & (w_air <= last)]) / total) if total > 0 else 0.0
+    return float(np.sum(weight[inside]) / total) if total > 0 else 0.0
 
 
 def reference_template(reference, grid, target_r, clip_emission, notes):
