@@ -8,8 +8,19 @@
    (measured - true) are printed for both.
 2. Scatter / Cramer-Rao bound for a pure shift (computed from the noiseless model and the
    noise) by S/N and resolving power, matched template.
+3. ``--speed``: ms per 4,000-pixel spectrum, side by side in one run: specan with no template
+   (every built-in template scored, velocity and error budget) against
+   ``specutils.analysis.template_correlate`` with one template (the Kurucz model at rest).
+4. ``--user``: the user's path with no template: the Kurucz Sun times an unknown smooth
+   response (not normalised; error arrays on half the spectra), R 1,000-5,000, S/N 10-200,
+   +-900 km/s: bias (also in % of a resolution element), scatter / Cramer-Rao bound (from the
+   noiseless input; Bouchy, Pepe & Queloz 2001), and the pulls (measured - true) / rv_err:
+   their sd about their mean and their rms about zero (which also counts the bias).
+5. ``--other-types``: specan's synthetic stars of types the synthetic grid lacks, same figures.
+6. ``--miles``: MILES library stars (``../shared/reference/miles``, at rest in the library's
+   frame), each measured without the library templates whose group it belongs to.
 
-Run:  python benchmarks/bench_velocity.py [--quick]
+Run:  python benchmarks/bench_velocity.py [--quick] [--speed] [--user] [--other-types] [--miles]
 
 Timings depend on the machine's load; on a shared machine OPENBLAS_NUM_THREADS=1 avoids BLAS
 threads fighting other processes (the figures in the issue-4 report were measured that way).
@@ -166,6 +177,145 @@ def auto_speed():
               f"({s.flux.size} pixels), rv {res['rv'].value:.2f} (true -321), {res['template']}")
 
 
+def speed(model, n):
+    """ms per 4,000-pixel spectrum: specan (no template: all built-in templates) vs specutils (one template)."""
+    pix = np.arange(4000.0, 4000.0 + 4000 * 0.625, 0.625)  # 4,000 pixels, R 2000 at ~2.5-4 pixels per FWHM
+    r = 2000.0
+
+    def obs(v, snr=None, seed=0):
+        flux = model(r)(np.log(pix) - np.log(velocity.doppler_factor(v * KMS)))
+        unc = None
+        if snr:
+            sig = np.sqrt(np.clip(flux, 1e-3, None)) / snr
+            flux = flux + np.random.default_rng(seed).normal(size=flux.size) * sig
+            unc = StdDevUncertainty(sig)
+        info = ObsInfo(object="Kurucz Sun", medium="vacuum", medium_assumed=False, resolving_power=r,
+                       normalized=True)
+        return Spectrum(flux=flux * u.dimensionless_unscaled, spectral_axis=pix * u.AA, uncertainty=unc,
+                        meta={META_KEY: info})
+
+    tmpl = obs(0.0)
+    rng = np.random.default_rng(5)
+    spectra = [(v, obs(v, 50.0, 200 + i)) for i, v in enumerate(rng.uniform(-300, 300, n))]
+    t0 = time.perf_counter()
+    velocity.measure(spectra[0][1], barycentric=False)
+    first = time.perf_counter() - t0
+    rows = {"specan, no template (all built-in templates, error budget)": [],
+            "specutils template_correlate, one template": []}
+    errs = {k: [] for k in rows}
+    for v, s in spectra:
+        for name, fn in zip(rows, (lambda: velocity.measure(s, barycentric=False)["rv"].value,
+                                   lambda: specutils_velocity(s, tmpl, "fft", subtract_continuum=True))):
+            t = time.perf_counter()
+            got = fn()
+            rows[name].append(time.perf_counter() - t)
+            errs[name].append(got - v)
+    print(f"\n== speed: {pix.size}-pixel Kurucz Sun spectra, R {r:.0f}, S/N 50, {n} spectra ==")
+    print(f"specan's first spectrum of the set-up (templates built and transformed): {1e3 * first:.0f} ms")
+    med = {k: 1e3 * np.median(t) for k, t in rows.items()}
+    for name in rows:
+        e = np.asarray(errs[name])
+        print(f"{name:60s} median {med[name]:7.1f} ms  rms error {np.sqrt(np.mean(e ** 2)):6.2f} km/s")
+    a, b = med.values()
+    print(f"specutils / specan time ratio: {b / a:.2f} (target >= 5); specan < 5 ms: {a < 5}")
+
+
+def _pull_line(label, dv, err, resel, crb_kms, ms):
+    dv, err = np.asarray(dv), np.asarray(err)
+    pull = dv / err
+    ratio = np.std(dv, ddof=1) / crb_kms if crb_kms else float("nan")
+    print(f"{label:26s} bias {dv.mean():+6.2f} ({100 * dv.mean() / resel:+5.2f}% resel) scatter {np.std(dv, ddof=1):6.2f}"
+          f" /CRB {ratio:5.2f} pull sd {np.std(pull, ddof=1):4.2f} rms {np.sqrt(np.mean(pull ** 2)):4.2f} "
+          f"mean err {err.mean():6.2f} {ms:5.0f} ms")
+
+
+def user_path(model, n):
+    """The Kurucz Sun as a user's file (smooth response, no template), R 1000-5000, S/N 10-200."""
+    print("\n== user path: Kurucz Sun x smooth response, no template, +-900 km/s ==")
+    lo, hi = 3850.0, 7300.0
+    for r in (1000.0, 2000.0, 5000.0):
+        pix = np.arange(lo, hi, lo / (r * 2.5))
+        resp = 1.0 + 0.3 * np.sin((pix - lo) / (hi - lo) * 2.5)
+        f = lambda vv: model(r)(np.log(pix) - np.log(velocity.doppler_factor(vv * KMS)))  # noqa: E731
+        clean, deriv = f(0.0), f(0.5) - f(-0.5)
+        for snr in (10.0, 30.0, 100.0, 200.0):
+            rng = np.random.default_rng(7)
+            dv, err, t = [], [], 0.0
+            crb_kms = 1.0 / np.sqrt(np.sum((deriv / (np.sqrt(clean) / snr)) ** 2))
+            for i in range(n):
+                v = rng.uniform(-900, 900)
+                flux = f(v)
+                sig = np.sqrt(np.clip(flux, 1e-3, None)) / snr
+                obs = (flux + np.random.default_rng(100 + i).normal(size=flux.size) * sig) * resp
+                info = ObsInfo(object="sun", medium="vacuum", medium_assumed=False, resolving_power=r)
+                s = Spectrum(flux=obs * u.dimensionless_unscaled, spectral_axis=pix * u.AA,
+                             uncertainty=StdDevUncertainty(sig * resp) if i % 2 == 0 else None, meta={META_KEY: info})
+                t0 = time.perf_counter()
+                res = velocity.measure(s, barycentric=False)
+                t += time.perf_counter() - t0
+                dv.append(res["rv"].value - v)
+                err.append(res["rv_err"].value)
+            _pull_line(f"R {r:5.0f} S/N {snr:4.0f}", dv, err, C_KMS / r, crb_kms, 1e3 * t / n)
+
+
+OTHER_TYPES = (("F3", "IV"), ("G4", "IV"), ("K2.5", "II"), ("A7", "III"), ("K5", "III"), ("G0", "III"))
+
+
+def other_types(n):
+    """specan's synthetic stars of types the synthetic grid lacks (no template given)."""
+    from specan import synth
+
+    print("\n== synthetic stars of types off the synthetic grid, no template, +-900 km/s ==")
+    for r in (1000.0, 2000.0, 5000.0):
+        for snr in (10.0, 30.0, 100.0, 200.0):
+            rng = np.random.default_rng(11)
+            dv, err, t = [], [], 0.0
+            for i in range(n):
+                st, lc = OTHER_TYPES[i % len(OTHER_TYPES)]
+                v = rng.uniform(-900, 900)
+                s = synth.spectrum(st, lc, resolving_power=r, rv=v * KMS, snr=snr, seed=300 + i,
+                                   wave_range=(3850, 7300) * u.AA)
+                t0 = time.perf_counter()
+                res = velocity.measure(s, barycentric=False)
+                t += time.perf_counter() - t0
+                dv.append(res["rv"].value - v)
+                err.append(res["rv_err"].value)
+            _pull_line(f"R {r:5.0f} S/N {snr:4.0f}", dv, err, C_KMS / r, None, 1e3 * t / n)
+
+
+def miles_stars(n):
+    """MILES stars (at rest in the library's frame) without their own groups' templates."""
+    from astropy.io import fits
+    from astropy.table import Table
+
+    import specan
+    from specan import templates
+
+    folder = Path(__file__).resolve().parents[2] / "shared" / "reference" / "miles"
+    if not (folder / "catalog.csv").is_file():
+        print("\n(MILES reference library not present: skipped)")
+        return
+    cat = Table.read(folder / "catalog.csv", format="ascii.csv")
+    with fits.open(Path(specan.__file__).parent / "data" / templates.LIBRARY_FILE) as hdus:
+        groups = Table(hdus["GROUPS"].data)
+    member_of = {}
+    for g in groups:
+        for star in str(g["members"]).split():
+            member_of.setdefault(star, []).append(str(g["name"]))
+    rows = [r for r in cat if str(r["mk"]).strip() not in ("", "--")]
+    pick = rows[:: max(1, len(rows) // n)][:n]
+    print(f"\n== MILES stars ({len(pick)}), each without its own groups' templates; truth 0 (library frame) ==")
+    dv, err, names = [], [], []
+    for r in pick:
+        s = specan.read(folder / r["file"], resolving_power=2000.0, medium="air")  # 2.5 A FWHM at 5000 A
+        res = velocity.measure(s, barycentric=False, exclude_templates=member_of.get(str(r["id"]), ()))
+        dv.append(res["rv"].value)
+        err.append(res["rv_err"].value)
+        names.append(f"{r['mk']}->{res['template_type']}")
+    _pull_line("MILES", dv, err, C_KMS / 2000.0, None, float("nan"))
+    print("types (star -> best template):", ", ".join(names[:20]))
+
+
 if __name__ == "__main__":
     import os
 
@@ -173,7 +323,17 @@ if __name__ == "__main__":
     print(f"OPENBLAS_NUM_THREADS={os.environ.get('OPENBLAS_NUM_THREADS', 'unset')}")
     model = kurucz()
     n = 10 if quick else 30
-    for snr in (30, 100):
-        compare(model, n, snr)
-    crb_table(model, 10 if quick else 40)
-    auto_speed()
+    chosen = [a for a in sys.argv[1:] if a.startswith("--") and a != "--quick"]
+    if not chosen:
+        for snr in (30, 100):
+            compare(model, n, snr)
+        crb_table(model, 10 if quick else 40)
+        auto_speed()
+    if "--speed" in chosen or not chosen:
+        speed(model, 10 if quick else 40)
+    if "--user" in chosen:
+        user_path(model, 8 if quick else 20)
+    if "--other-types" in chosen:
+        other_types(6 if quick else 18)
+    if "--miles" in chosen:
+        miles_stars(20 if quick else 60)

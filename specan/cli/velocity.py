@@ -28,8 +28,19 @@ def measure_file(path, overrides, options):
         "ccf_height": res["ccf_height"],
         "flags": res["flags"],
         "second_peak_rv_kms": _q(res["second_peak_rv"]),
+        "rv_err_noise_kms": _q(res["rv_err_noise"]),
+        "rv_err_template_kms": _q(res["rv_err_template"]),
+        "rv_err_mismatch_kms": _q(res["rv_err_mismatch"]),
+        "rv_err_choice_kms": _q(res["rv_err_choice"]),
+        "rv_err_zero_point_kms": _q(res["rv_err_zero_point"]),
+        "birge_ratio": res["birge_ratio"],
         "rv_err_td_kms": _q(res["rv_err_td"]),
         "rv_err_mc_kms": _q(res["rv_err_mc"]),
+        "template_type": res["template_type"],
+        "template_kind": res["template_kind"],
+        "templates": [{**t, "rv_offset": _q(t["rv_offset"])} for t in res["templates"]],
+        "medium_assumed": res["medium_assumed"],
+        "medium_shift_kms": _q(res["medium_shift"]),
         "notes": res["notes"],
     }
 
@@ -38,15 +49,17 @@ def measure_file(path, overrides, options):
 @click.argument("files", nargs=-1, required=True, type=click.Path())
 @read_options
 @click.option("--template", default=None,
-              help="'auto' (default: best built-in synthetic type), an MK type ('G2 V'), 'mask' or "
+              help="'auto' (default: every built-in template scored, the velocity averaged over the best), "
+                   "'library:NAME', an MK type ('G2 V'), 'synth' (best synthetic type), 'mask' or "
                    "'mask:K0 III' (line mask), or a spectrum FILE (e.g. an RV standard).")
 @click.option("--template-rv", type=float, default=0.0, show_default=True,
               help="Barycentric velocity (km/s) of a template FILE.")
 @click.option("--reference", default=None, type=click.Path(exists=True),
               help="Reference exposure of the same star: report velocities relative to it.")
 @click.option("--vmax", type=float, default=2000.0, show_default=True, help="Search range +-km/s.")
-@click.option("--errors", type=click.Choice(["both", "td", "mc"]), default="both", show_default=True,
-              help="Error estimates: Tonry-Davis r statistic, noise resampling, or both.")
+@click.option("--errors", type=click.Choice(["auto", "both", "td", "mc"]), default="auto", show_default=True,
+              help="Error estimates reported beside the error budget: 'auto'/'td' the Tonry-Davis r statistic, "
+                   "'both'/'mc' also noise resampling.")
 # The two thresholds default to specan.velocity's constants (not repeated here, so the CLI and
 # the Python API cannot drift apart; the help quotes them and a test checks it does so rightly).
 @click.option("--high-velocity", type=float, default=None,
@@ -92,7 +105,8 @@ def command(ctx, files, template, template_rv, reference, vmax, errors, high_vel
         if d["flags"]:
             click.echo("  flags: " + ", ".join(d["flags"]))
         for note in d["notes"]:
-            if note.startswith(("topocentric", "no Galactic", "peak at the edge", "|v_grf|")):
+            if note.startswith(("topocentric", "no Galactic", "peak at the edge", "|v_grf|", "wavelength medium",
+                                "no CRPIX1", "wavelength unit", "error budget")):
                 click.echo(f"  note: {note}")
 
     failures = for_each_file(files, lambda p: measure_file(p, overrides, options), show, as_json,

@@ -16,13 +16,21 @@ Before correlating, both sides lose their low frequencies (a Gaussian of
 pixel space): broad bands, Balmer wings and continuum residuals then neither
 dominate the correlation nor make its noise correlated over many lags.
 
-Errors: ``rv_err_td`` is the Tonry & Davis r-statistic estimate, written
-``w / (2.3548 r)`` with ``r = h / (sqrt 2 sigma_a)`` (see
-:func:`~specan.velocity.uncertainty.tonry_davis` for why not their 3/8 w/(1+r));
-``rv_err_mc`` re-measures the velocity after adding noise
-with the spectrum's own error array (or the DER_SNR noise, Stoehr et al. 2008)
-``n_resample`` times: for an estimator linear in the noise the scatter of those
-velocities about the measured one equals its error. ``rv_err`` is the larger.
+Templates: with no template given every built-in template is scored in one batch (the empirical
+library and the synthetic grid, :mod:`.bank`); the velocity is the weighted mean of those whose
+peaks come close to the best, so a star between two templates does not jump from one to the
+other with the noise.
+
+Errors (:func:`~specan.velocity.uncertainty.error_budget`): ``rv_err`` combines
+``rv_err_noise``, the propagation of the pixel errors through every step of the measurement
+(no random numbers); ``rv_err_mismatch``, the scatter of the velocities of independent
+wavelength segments against the same template beyond their noise (Birge ratio: template
+mismatch differs from line to line); ``rv_err_choice``, the spread of the averaged templates'
+velocities; and ``rv_err_zero_point``, the library templates' own rest-frame uncertainty.
+``rv_err_td`` (Tonry & Davis r statistic, written ``w / (2.3548 r)`` with
+``r = h / (sqrt 2 sigma_a)``, see :func:`~specan.velocity.uncertainty.tonry_davis`) and, on
+request, ``rv_err_mc`` (the scatter over ``n_resample`` noise realisations, seeded from the
+spectrum's content) are reported beside it.
 
 Velocities are relativistic Doppler velocities, 1 + z = sqrt((1 + b)/(1 - b)).
 Barycentric correction: astropy's ``SkyCoord.radial_velocity_correction``
@@ -42,16 +50,18 @@ CCF about it), :mod:`.choice` (resolving power and template choice), :mod:`.unce
 from __future__ import annotations
 
 import astropy.units as u
+import numpy as np
 
 from ..doppler import doppler_factor, shift_to_rest, velocity_from_factor
 from ..frames import ESCAPE_SPEED, HIGH_VELOCITY, barycentric_correction, galactic_rest_frame_velocity
+from .bank import refine_peaks, short_length, short_side
 from .choice import choose_template, parse_template, settle_resolving_power
-from .companion import detect_companion
-from .correlation import PeakSearch, ccf_about_peak, correlate, observed_side
+from .companion import Companion, detect_companion
+from .correlation import Correlation, Peak, PeakSearch, ccf_about_peak, observed_side
 from .frame_velocities import apply_frames
-from .grid import lag_window, normalised, observe_on_grid
-from .result import result_dict, velocity_flags
-from .uncertainty import estimate_errors, reported_error, tonry_davis
+from .grid import kms_per_pixel, lag_window, normalised, observe_on_grid
+from .result import assumption_flags, result_dict, velocity_flags
+from .uncertainty import error_budget, estimate_errors, segment_errors, tonry_davis, zero_point_error
 
 __all__ = [
     "measure",
@@ -66,9 +76,10 @@ __all__ = [
 
 
 def measure(spectrum, template=None, *, reference=None, template_rv=0 * u.km / u.s, vmax=2000 * u.km / u.s,
-            errors="both", n_resample=40, seed=0, telluric=True, clip_emission=True, barycentric=True,
+            errors="auto", n_resample=40, seed=0, telluric=True, clip_emission=True, barycentric=True,
             high_velocity=HIGH_VELOCITY, escape_speed=ESCAPE_SPEED, min_overlap=0.3,
-            composite_min_ratio=0.25, composite_min_sigma=6.0, template_grid=None, highpass=8.0):
+            composite_min_ratio=0.25, composite_min_sigma=6.0, template_grid=None, highpass=8.0,
+            exclude_templates=()):
     """Radial velocity of one spectrum by FFT cross-correlation.
 
     Parameters
@@ -76,12 +87,13 @@ def measure(spectrum, template=None, *, reference=None, template_rv=0 * u.km / u
     spectrum : specutils.Spectrum
         Observed spectrum; normalised with :func:`specan.prepare.prepare` if not yet.
     template : None, str, path or specutils.Spectrum
-        ``None``/``"auto"``: the built-in synthetic grid (O-M, at the spectrum's
-        resolution and in its medium), best normalised correlation wins;
-        ``"G2 V"`` (or ``"synth:G2 V"``): one synthetic type; ``"mask"`` /
-        ``"mask:K0 III"``: a weighted line mask from the line list (of the best
-        synthetic type if none given); a file path or a Spectrum: a user template
-        (e.g. an RV standard; its velocity is ``template_rv``).
+        ``None``/``"auto"``: every built-in template (the empirical library where it covers
+        the spectrum, and the synthetic grid, at the spectrum's resolution and in its medium)
+        is scored; the velocity is the weighted mean over those that correlate nearly as well
+        as the best; ``"library:<name>"``, ``"G2 V"`` (or ``"synth:G2 V"``): one built-in
+        template; ``"synth"``: the best synthetic type; ``"mask"`` / ``"mask:K0 III"``: a
+        weighted line mask from the line list (of the best synthetic type if none given); a file
+        path or a Spectrum: a user template (e.g. an RV standard; its velocity is ``template_rv``).
     reference : specutils.Spectrum or path, optional
         A reference exposure of the same star: the result is the velocity relative
         to it (flag ``relative``), barycentric if both exposures have the metadata.
@@ -89,12 +101,13 @@ def measure(spectrum, template=None, *, reference=None, template_rv=0 * u.km / u
         Barycentric velocity of a user template (0: at rest).
     vmax : astropy.units.Quantity
         Velocity search range +-vmax.
-    errors : {"both", "td", "mc"}
-        Which error estimates to compute.
+    errors : {"auto", "both", "td", "mc"}
+        Extra error estimates reported beside the error budget: "auto" and "td" the Tonry &
+        Davis estimate, "both" and "mc" also noise resampling (``n_resample`` realisations).
     n_resample : int
-        Noise realisations for the empirical error.
+        Noise realisations for the resampled error.
     seed : int
-        Seed of those realisations.
+        Seed of those realisations (combined with the spectrum's own numbers).
     telluric, clip_emission : bool
         Mask telluric bands / exclude pixels well above the continuum.
     barycentric : bool
@@ -107,23 +120,33 @@ def measure(spectrum, template=None, *, reference=None, template_rv=0 * u.km / u
         A second peak (after removing the expected single-star shape) is significant when
         above this fraction of the main peak and this many CCF noise sigmas.
     template_grid : sequence of (sptype, lumclass), optional
-        Types tried by the automatic choice (default ``synth.TEMPLATE_TYPES``).
+        Synthetic types tried by the automatic choice (default ``synth.TEMPLATE_TYPES``); given,
+        the choice is among synthetic types only.
     highpass : float or None
         Low-frequency cut: a Gaussian of this sigma, in resolution elements, is smoothed out
         of spectrum and template (continuum residuals, band and wing shapes); None disables.
+    exclude_templates : sequence of str
+        Library template names the automatic choice must not use (e.g. a group the star
+        belongs to, when testing on library stars).
 
     Returns
     -------
     dict
-        ``rv``, ``rv_err``, ``frame`` ("barycentric" | "topocentric"), ``rv_topo``,
-        ``bary_corr``, ``v_grf`` (Quantities in km/s or None), ``template`` (name),
-        ``ccf_height``, ``flags`` (list of str), ``second_peak_rv``, ``rv_err_td``,
-        ``rv_err_mc``, ``notes`` (list of str), plus ``template_scores`` (name -> peak
-        height of the automatic choice), ``ccf_fwhm``, ``r_td``, ``z_bary`` and the
-        normalised CCF about the peak, ``ccf`` against topocentric ``ccf_velocity``.
+        ``rv``, ``rv_err`` (the error budget's total: noise, template mismatch, template choice
+        and zero point), ``frame`` ("barycentric" | "topocentric"), ``rv_topo``, ``bary_corr``,
+        ``v_grf`` (Quantities in km/s or None), ``template`` (the best template's name),
+        ``template_type``, ``template_kind``, ``templates`` (those averaged: name, kind, type,
+        weight, velocity), ``ccf_height``, ``flags`` (list of str), ``second_peak_rv``, the
+        error parts ``rv_err_noise``, ``rv_err_template``, ``rv_err_mismatch``,
+        ``rv_err_choice``, ``rv_err_zero_point`` and ``birge_ratio``, ``n_segments``,
+        ``rv_err_td``, ``rv_err_mc`` (None unless asked), ``medium_assumed`` and
+        ``medium_shift`` (the velocity change if the other medium were right), ``notes``, plus
+        ``template_scores`` (name -> peak height of the automatic choice), ``ccf_fwhm``,
+        ``r_td``, ``z_bary`` and the normalised CCF about the peak, ``ccf`` against topocentric
+        ``ccf_velocity``.
     """
-    if errors not in ("both", "td", "mc"):
-        raise ValueError(f"errors must be 'both', 'td' or 'mc', not {errors!r}")
+    if errors not in ("auto", "both", "td", "mc"):
+        raise ValueError(f"errors must be 'auto', 'both', 'td' or 'mc', not {errors!r}")
     notes = []
     spectrum = normalised(spectrum, notes)
     observed = observe_on_grid(spectrum, telluric=telluric, clip_emission=clip_emission, notes=notes)
@@ -131,15 +154,63 @@ def measure(spectrum, template=None, *, reference=None, template_rv=0 * u.km / u
     power = settle_resolving_power(observed, spectrum, notes)
     lags = lag_window(observed, vmax, power.value, highpass)
     search = PeakSearch(observed_side(observed, lags), lags, min_overlap)
+    data_short = short_side(search)
     choice = choose_template(parse_template(template), search, power, reference=reference, template_rv=template_rv,
-                             template_grid=template_grid, clip_emission=clip_emission, notes=notes, where=where)
-    corr, peak = correlate(search, choice.template, where)
-    about = ccf_about_peak(corr, choice.template, observed.valid, search.side.weight, lags, peak)
+                             template_grid=template_grid, clip_emission=clip_emission, notes=notes, where=where,
+                             data_short=data_short, exclude=tuple(exclude_templates))
+    peaks = _refined_peaks(search, choice.mixture, data_short, where)
+    best, peak = choice.mixture[0].template, peaks[0]
+    corr = Correlation(search.side.arrays, best, lags.pad, lags.m, search.side.ffts)
+    about = ccf_about_peak(corr, best, observed.valid, search.side.weight, lags, peak)
     td = tonry_davis(about, peak)
-    errs = estimate_errors(errors, td, peak, observed, search, choice.template, n_resample, seed, notes)
+    errs = estimate_errors(errors, td, peak, observed, search, best, n_resample, seed, notes)
+    resels = lags.n * lags.step * choice.power.value
+    # the segments of the average over the templates that carry most of its weight (the best always)
+    heavy = [(m.template, p.lag, m.weight) for i, (m, p) in enumerate(zip(choice.mixture, peaks))
+             if i == 0 or m.weight >= 0.2]
+    segments = segment_errors(observed, search, heavy, short_length(lags), resels)
     companion = detect_companion(about, peak, td.sigma_a, lags.smax, composite_min_ratio, composite_min_sigma, notes)
-    frames = apply_frames(companion, lags.step, choice.template, observed.info, relative=choice.relative,
+    weights = [m.weight for m in choice.mixture]
+    mean_lag = sum(w * p.lag for w, p in zip(weights, peaks))
+    spread_px = sum(w * (p.lag - mean_lag) ** 2 for w, p in zip(weights, peaks)) ** 0.5
+    if companion.second is None:
+        companion = Companion(mean_lag, None)
+    frames = apply_frames(companion, lags.step, best, observed.info, relative=choice.relative,
                           barycentric=barycentric, high_velocity=high_velocity, escape_speed=escape_speed, notes=notes)
+    dvds = abs(kms_per_pixel(companion.primary, lags.step))
+    noise_kms = segments.noise_px * dvds
+    if not (noise_kms > 0):  # propagation failed (no curvature): the resampled or Tonry-Davis error
+        noise_kms = next((e for e in (errs.mc, errs.td) if e is not None and e > 0), float("nan"))
+        notes.append("noise error from the correlation noise (propagation through the segments failed)")
+    budget = error_budget(noise_kms, segments.birge, spread_px * dvds, zero_point_error(choice.mixture))
+    notes.append(f"error budget: noise {budget.noise:.3g} (pixel errors: {observed.noise_source}), template mismatch {budget.mismatch:.3g} (Birge ratio "
+                 f"{segments.birge:.2f} of {segments.n} wavelength segments), template choice {budget.choice:.3g}, "
+                 f"template zero point {budget.zero_point:.3g} km/s")
     flags = velocity_flags(choice.relative, companion, frames, lags.vmax_kms, peak.height, notes)
-    rv_err = reported_error(errs, notes)
-    return result_dict(choice, peak, about, td, errs, rv_err, companion, frames, flags, notes, lags.step)
+    flags += assumption_flags(spectrum, observed.info, notes)
+    return result_dict(choice, peak, peaks, about, td, errs, budget, segments, companion, frames, flags, notes,
+                       lags.step, spectrum)
+
+
+def _refined_peaks(search, mixture, data_short, where):
+    """The refined :class:`~.correlation.Peak` of every template of the mixture (its integer peak
+    found by a full correlation where the choice did not give it)."""
+    from ..errors import AnalysisError
+    from .correlation import integer_peak
+
+    lags = search.lags
+    found = []
+    for member in mixture:
+        lag = member.lag
+        if lag is None:
+            corr = Correlation(search.side.arrays, member.template, lags.pad, lags.m, search.side.ffts)
+            pk = integer_peak(corr, lags.pad, lags.smax, search.min_overlap, search.side.total_weight)
+            if pk is None or not np.isfinite(pk[1]) or pk[1] <= 0:
+                raise AnalysisError(f"no correlation peak with template {member.template.name}", where)
+            lag = pk[0]
+        found.append(lag)
+    x, h, c = refine_peaks([m.template for m in mixture], found, data_short, short_length(lags), lags.pad)
+    out = [Peak(float(a), float(b), float(d)) for a, b, d in zip(x, h, c)]
+    if not (np.isfinite(out[0].height) and out[0].height > 0):
+        raise AnalysisError(f"no correlation peak with template {mixture[0].template.name}", where)
+    return out

@@ -1,19 +1,20 @@
 """Which template, at which resolving power.
 
 The template is a user spectrum (a file or a Spectrum, e.g. an RV standard), a reference
-exposure of the same star (the velocity is then relative to it), one built-in type, or the
-automatic choice. The automatic choice scores the empirical library templates
-(:func:`specan.templates.library_templates`) beside the synthetic grid by their normalised
-correlation peaks, where the library covers at least :data:`LIBRARY_MIN_COVER` of the
-spectrum's weight; elsewhere (far red, far blue) only the synthetic grid. The synthetic grid's
-best type is refined among its neighbouring subtypes and luminosity classes. When the
-spectrum's resolving power is unknown and the narrowest lines do not tell it, the width of a
-synthetic template of the chosen type is scanned too. Candidates are lists of :class:`~.prepared.BuiltinCandidate`, prepared on
-the set-up's grid and then scored together (:func:`~.correlation.template_peaks`).
+exposure of the same star (the velocity is then relative to it), one built-in template, or the
+automatic choice. The automatic choice (:func:`automatic_mixture`) scores, in one batch
+(:mod:`.bank`), the empirical library templates (:func:`specan.templates.library_templates`,
+where the library covers at least :data:`LIBRARY_MIN_COVER` of the spectrum's weight) and the
+synthetic grid, then the synthetic grid's neighbours of its best type; the templates whose
+peaks come close to the best are kept with weights (:func:`~.bank.mixture_weights`) and the
+velocity is their weighted mean. When the spectrum's resolving power is unknown and the
+narrowest lines do not tell it, the width of a synthetic template of the best type is scanned
+first. Candidates are :class:`~.prepared.BuiltinCandidate` lists.
 """
 
 from __future__ import annotations
 
+import functools
 from pathlib import Path
 from typing import NamedTuple
 
@@ -24,12 +25,13 @@ from .. import resolution, templates
 from ..errors import AnalysisError, SpecanError
 from ..mktypes import code_to_sptype, parse_mk, sptype_to_code
 from ..obsinfo import get_info, vacuum_to_air
-from .correlation import best_index, coverage_rows, template_peaks
+from .bank import mixture_weights, score_bank, short_side, template_bank
+from .correlation import best_index, template_peaks
 from .prepared import BuiltinCandidate, PreparedTemplate, prepare_builtin, spectrum_template
 
 __all__ = ["R_SCAN", "LIBRARY_MIN_COVER", "ResolvingPower", "TemplateRequest", "TemplateChoice",
            "settle_resolving_power", "parse_template", "choose_template", "user_template", "reference_template",
-           "automatic_type", "automatic_library", "library_cover", "neighbour_types", "scan_resolving_power"]
+           "automatic_type", "automatic_mixture", "MixtureMember", "library_cover", "neighbour_types", "scan_resolving_power"]
 
 # Multipliers of the first guess tried when the resolving power is unknown (sampling of 1.7-5
 # pixels per FWHM, the range of real spectrographs; common practice).
@@ -134,10 +136,22 @@ def parse_template(template):
 # ---------------------------------------------------------------------------
 # The choice
 # ---------------------------------------------------------------------------
+class MixtureMember(NamedTuple):
+    """One template of the velocity: prepared template, weight, integer peak lag (None: to be
+    found), the candidate it was made from (None for user templates) and its score."""
+
+    template: PreparedTemplate
+    weight: float
+    lag: int | None
+    candidate: BuiltinCandidate | None
+    score: float | None
+
+
 class TemplateChoice(NamedTuple):
     """The prepared template, the resolving power as finally settled, the scores of the automatic
-    choice (template name -> peak height), whether the velocity is relative to a reference, and
-    the built-in template's MK type and kind (None for user templates)."""
+    choice (template name -> peak height), whether the velocity is relative to a reference, the
+    built-in template's MK type and kind (None for user templates), and the templates whose
+    velocities are averaged (:class:`MixtureMember`, the best first; one for a chosen template)."""
 
     template: PreparedTemplate
     power: ResolvingPower
@@ -145,24 +159,38 @@ class TemplateChoice(NamedTuple):
     relative: bool
     mk: str | None = None
     kind: str | None = None
+    mixture: tuple = ()
 
 
 def choose_template(request, search, power, *, reference=None, template_rv=0 * u.km / u.s, template_grid=None,
-                    clip_emission=True, notes, where=None):
+                    clip_emission=True, notes, where=None, data_short=None, exclude=()):
     """The :class:`TemplateChoice` for a :class:`TemplateRequest` (a ``reference`` exposure wins).
 
     ``search`` is the spectrum's :class:`~.correlation.PeakSearch`, ``power`` its
-    :class:`ResolvingPower`; ``where`` names the spectrum in errors.
+    :class:`ResolvingPower`; ``where`` names the spectrum in errors; ``data_short`` the data
+    arrays' FFTs at the template bank's length; ``exclude`` names library templates not to use.
     """
     grid = search.lags.template_grid
     target_r = power.value if power.known else None
     if reference is not None:
-        return TemplateChoice(reference_template(reference, grid, target_r, clip_emission, notes), power, {}, True)
+        chosen = reference_template(reference, grid, target_r, clip_emission, notes)
+        return TemplateChoice(chosen, power, {}, True, mixture=(MixtureMember(chosen, 1.0, None, None, None),))
     if request.kind in ("spectrum", "file"):
         chosen = user_template(request, u.Quantity(template_rv, u.km / u.s).value, grid, target_r, clip_emission,
                                notes)
-        return TemplateChoice(chosen, power, {}, False)
-    candidate, scores = builtin_request(request, search, power, template_grid, notes, where)
+        return TemplateChoice(chosen, power, {}, False, mixture=(MixtureMember(chosen, 1.0, None, None, None),))
+    if request.kind == "auto" and not power.known:
+        # resolving power unknown: settle it with the synthetic template of the best type, then choose
+        (sptype, lumclass), _ = automatic_type(search, power.template_key, template_grid, [], where, data_short)
+        synthetic = BuiltinCandidate(sptype, lumclass, power.template_key)
+        _, power = scan_resolving_power(search, synthetic, power, prepare_builtin(synthetic, grid), notes)
+    if request.kind == "auto":
+        members, scores = automatic_mixture(search, power.template_key, template_grid, notes, where, data_short,
+                                            exclude)
+        best = members[0]
+        return TemplateChoice(best.template, power, scores, False, f"{best.candidate.sptype} {best.candidate.lumclass}",
+                              best.candidate.kind, tuple(members))
+    candidate, scores = builtin_request(request, search, power, template_grid, notes, where, data_short)
     chosen = prepare_builtin(candidate, grid)
     if not power.known:
         # resolving power unknown: the width of a synthetic template of that type that correlates best
@@ -170,69 +198,94 @@ def choose_template(request, search, power, *, reference=None, template_rv=0 * u
         chosen, power = scan_resolving_power(search, synthetic, power, prepare_builtin(synthetic, grid), notes)
         if candidate.kind == "library":
             chosen = prepare_builtin(candidate._replace(resolving_power=power.template_key), grid)
-    return TemplateChoice(chosen, power, scores, False, f"{candidate.sptype} {candidate.lumclass}", candidate.kind)
+    return TemplateChoice(chosen, power, scores, False, f"{candidate.sptype} {candidate.lumclass}", candidate.kind,
+                          (MixtureMember(chosen, 1.0, None, candidate, None),))
 
 
-def builtin_request(request, search, power, template_grid, notes, where=None):
-    """(:class:`BuiltinCandidate`, scores) of a request for a built-in template or the automatic choice."""
+def builtin_request(request, search, power, template_grid, notes, where=None, data_short=None):
+    """(:class:`BuiltinCandidate`, scores) of a request for one built-in template or kind."""
     r_key = power.template_key
     if request.kind == "library":
         entry = next(t for t in templates.library_templates() if t.name == request.obj)
         return BuiltinCandidate(entry.sptype, entry.lumclass, r_key, "library", entry.name), {}
     if request.sptype is not None:
         return BuiltinCandidate(request.sptype, request.lumclass, r_key, "mask" if request.kind == "mask" else "synth"), {}
-    if request.kind == "auto" and template_grid is None:
+    (sptype, lumclass), scores = automatic_type(search, r_key, template_grid, notes, where, data_short)
+    return BuiltinCandidate(sptype, lumclass, r_key, "mask" if request.kind == "mask" else "synth"), scores
+
+
+def _scored(search, candidates, data_short):
+    """(bank, :class:`~.bank.BankScores`) of ``candidates`` on the spectrum's set-up."""
+    bank = template_bank(candidates, search.lags)
+    return bank, score_bank(search, bank, data_short if data_short is not None else short_side(search))
+
+
+def automatic_mixture(search, resolving_power, template_grid, notes, where=None, data_short=None, exclude=()):
+    """([:class:`MixtureMember`], scores): the templates whose velocities are averaged, best first.
+
+    Every built-in template is scored in one batch (:func:`~.bank.score_bank`): the library
+    templates (observed stars; where they cover at least :data:`LIBRARY_MIN_COVER` of the
+    spectrum's weight and unless ``template_grid`` restricts the choice to synthetic types), the
+    synthetic grid, then the synthetic neighbours of the best synthetic type. Templates are
+    weighted by how close their peak comes to the best (:func:`~.bank.mixture_weights`): a star
+    between two templates gets both, so the velocity moves smoothly from one to the other
+    instead of jumping when noise reorders them, and their disagreement enters the error.
+    """
+    lags = search.lags
+    candidates = []
+    if template_grid is None:
         cover = library_cover(search)
         if cover >= LIBRARY_MIN_COVER:
-            return automatic_library(search, r_key, notes, where)
-        notes.append(f"library templates cover {cover:.0%} of the spectrum (3545-7405 A): synthetic templates used")
-    (sptype, lumclass), scores = automatic_type(search, r_key, template_grid, notes, where)
-    return BuiltinCandidate(sptype, lumclass, r_key, "mask" if request.kind == "mask" else "synth"), scores
+            candidates += [BuiltinCandidate(t.sptype, t.lumclass, resolving_power, "library", t.name)
+                           for t in templates.library_templates() if t.name not in set(exclude)]
+        else:
+            notes.append(f"library templates cover {cover:.0%} of the spectrum (3545-7405 A): synthetic templates "
+                         "used")
+    grid_types = tuple(template_grid or templates.automatic_types())
+    synthetic = [BuiltinCandidate(st, lc, resolving_power) for st, lc in grid_types]
+    bank, sc = _scored(search, candidates + synthetic, data_short)
+    members = list(zip(bank.templates, sc.lag, bank.candidates, sc.height))
+    syn = [x for x in members if x[2].kind == "synth"]
+    best_syn = max(range(len(syn)), key=lambda i: syn[i][3]) if syn else None
+    if best_syn is not None and np.isfinite(syn[best_syn][3]):
+        c = syn[best_syn][2]
+        more = [BuiltinCandidate(st, lc, resolving_power)
+                for st, lc in neighbour_types((c.sptype, c.lumclass), grid_types)]
+        if more:
+            bank2, sc2 = _scored(search, more, data_short)
+            members += list(zip(bank2.templates, sc2.lag, bank2.candidates, sc2.height))
+    heights = np.array([x[3] for x in members])
+    if not np.isfinite(heights).any():
+        raise AnalysisError("no template correlates with the spectrum", where)
+    scores = {x[0].name: float(x[3]) for x in members if np.isfinite(x[3])}
+    index, weights = mixture_weights(heights)
+    chosen = [MixtureMember(members[i][0], float(wt), members[i][1], members[i][2], float(members[i][3]))
+              for i, wt in zip(index, weights)]
+    n_lib = sum(1 for x in members if x[2].kind == "library" and np.isfinite(x[3]))
+    kinds = f"{n_lib} library and {len(scores) - n_lib} synthetic" if n_lib else f"{len(scores)} synthetic"
+    used = ", ".join(f"{m.template.name} {m.weight:.2f}" for m in chosen)
+    notes.append(f"template chosen automatically: best normalised correlation of {kinds} templates "
+                 f"({chosen[0].template.name}, {chosen[0].score:.3f}); velocity averaged over {used} "
+                 "(weights by peak height)")
+    return chosen, scores
+
+
+@functools.lru_cache(maxsize=16)
+def _library_mask(ln0, step, n):
+    """Grid pixels (one set-up's data window) at air wavelengths the library templates cover."""
+    ln_w = ln0 + step * np.arange(n)
+    first, last = templates.library_coverage()
+    w_air = vacuum_to_air(np.exp(ln_w) * u.AA).to_value(u.AA)
+    return (w_air >= first) & (w_air <= last)
 
 
 def library_cover(search):
     """Share of the spectrum's correlation weight at wavelengths the library templates cover."""
     lags = search.lags
-    ln_w = lags.template_grid.ln0 + lags.step * (lags.pad + np.arange(lags.n))
-    first, last = templates.library_coverage()
-    w_air = vacuum_to_air(np.exp(ln_w) * u.AA).to_value(u.AA)
+    inside = _library_mask(round(lags.template_grid.ln0 + lags.step * lags.pad, 12), lags.step, lags.n)
     weight = search.side.weight
     total = float(np.sum(weight))
-    return float(np.sum(weight[(w_air >= first) & (w_air <= last)]) / total) if total > 0 else 0.0
-
-
-def automatic_library(search, resolving_power, notes, where=None):
-    """(:class:`BuiltinCandidate`, scores): the library or synthetic template that correlates best.
-
-    The library templates are observed stars; the synthetic grid (:func:`automatic_type`) is
-    scored beside them, for the types the library lacks (O stars) and for spectra unlike any
-    library group. The higher normalised peak wins: on real stars that is a library template
-    (the Kurucz solar model: library G1 V, peak 0.968, measured), on specan's own synthetic
-    spectra a synthetic one.
-    """
-    grid = search.lags.template_grid
-    candidates = [BuiltinCandidate(t.sptype, t.lumclass, resolving_power, "library", t.name)
-                  for t in templates.library_templates()]
-    prepared = [prepare_builtin(c, grid) for c in candidates]
-    peaks = template_peaks(search, prepared)
-    scores = {t.name: pk[1] for t, pk in zip(prepared, peaks) if pk is not None}
-    best = best_index(peaks)
-    synthetic_notes = []
-    try:
-        (sptype, lumclass), more = automatic_type(search, resolving_power, None, synthetic_notes, where)
-    except AnalysisError:
-        if best is None:
-            raise
-        more = {}
-    scores.update(more)
-    top_synthetic = max(more.values()) if more else -np.inf
-    if best is None or top_synthetic > peaks[best][1]:
-        notes.extend(synthetic_notes)
-        return BuiltinCandidate(sptype, lumclass, resolving_power), scores
-    notes.append(f"template chosen automatically: best normalised correlation of {len(scores)} library "
-                 f"and synthetic templates ({prepared[best].name}, {peaks[best][1]:.3f}; best synthetic "
-                 f"{top_synthetic:.3f})")
-    return candidates[best], scores
+    return float(np.sum(weight[inside]) / total) if total > 0 else 0.0
 
 
 def reference_template(reference, grid, target_r, clip_emission, notes):
@@ -253,32 +306,30 @@ def user_template(request, rv_kms, grid, target_r, clip_emission, notes):
     return spectrum_template(tspec, grid, target_r, f"user {tname}", notes, rv_kms=rv_kms, clip=clip_emission)
 
 
-def automatic_type(search, resolving_power, template_grid, notes, where=None):
-    """((sptype, lumclass), scores): the built-in type that correlates best.
+def automatic_type(search, resolving_power, template_grid, notes, where=None, data_short=None):
+    """((sptype, lumclass), scores): the synthetic type that correlates best.
 
     The grid (``template_grid`` or :func:`specan.templates.automatic_types`) is scored first,
-    then the neighbours of its best (:func:`neighbour_types`).
+    then the neighbours of its best (:func:`neighbour_types`), each set in one batch.
     """
-    grid = search.lags.template_grid
     grid_types = tuple(template_grid or templates.automatic_types())
     candidates = [BuiltinCandidate(st, lc, resolving_power) for st, lc in grid_types]
-    prepared = [prepare_builtin(c, grid) for c in candidates]
-    shared = None
-    if prepared:  # every synthetic template has the same coverage
-        shared = coverage_rows(search.side.ffts, prepared[0], search.lags.m)
-    peaks = template_peaks(search, prepared, shared)
-    best = best_index(peaks)
-    if best is None:
+    bank, sc = _scored(search, candidates, data_short)
+    if not np.isfinite(sc.height).any():
         raise AnalysisError("no template correlates with the spectrum", where)
+    best = int(np.argmax(sc.height))
     more = [BuiltinCandidate(st, lc, resolving_power) for st, lc in neighbour_types(grid_types[best], grid_types)]
-    more_prepared = [prepare_builtin(c, grid) for c in more]
-    peaks += template_peaks(search, more_prepared, shared)
-    candidates += more
-    scores = {t.name: pk[1] for t, pk in zip(prepared + more_prepared, peaks) if pk is not None}
-    best = best_index(peaks)
+    names, heights = list(bank.names), list(sc.height)
+    if more:
+        bank2, sc2 = _scored(search, more, data_short)
+        candidates += more
+        names += list(bank2.names)
+        heights += list(sc2.height)
+    scores = {nm: float(h) for nm, h in zip(names, heights) if np.isfinite(h)}
+    best = int(np.argmax(heights))
     sptype, lumclass = candidates[best].sptype, candidates[best].lumclass
     notes.append(f"template chosen automatically: best normalised correlation of {len(scores)} "
-                 f"synthetic types ({sptype} {lumclass}, {peaks[best][1]:.3f})")
+                 f"synthetic types ({sptype} {lumclass}, {heights[best]:.3f})")
     return (sptype, lumclass), scores
 
 

@@ -263,9 +263,11 @@ def lag_window(observed, vmax, resolving_power, highpass):
     # lags examined for the error and second-peak statistics: the search range, and several
     # high-pass lengths so that the CCF noise decorrelates within the window
     half = int(max(smax, 40, math.ceil(6 * (hp or 0))))
-    pad = half + COVER_TAPER + 4
+    # templates reach past the data by every lag the CCF about any allowed peak uses, so that one
+    # FFT length just above the template's serves every correlation: no lag ever wraps around
+    pad = half + smax + COVER_TAPER + 4
     ln0 = observed.grid[0] - pad * step
-    m = sfft.next_fast_len(2 * n + 2 * pad)
+    m = sfft.next_fast_len(n + 2 * pad, real=True)
     return LagWindow(step=step, n=n, vmax_kms=vmax_kms, smax=smax, half=half, pad=pad, m=m,
                      template_grid=TemplateGrid(ln0=ln0, step=step, n=n + 2 * pad, hp_sigma=hp))
 

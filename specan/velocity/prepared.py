@@ -53,6 +53,19 @@ class PreparedTemplate:
             self._fft[m] = (sfft.rfft(self.T, m), sfft.rfft(self.T2, m), sfft.rfft(self.V, m))
         return self._fft[m]
 
+    def band_ffts(self, m):
+        """:meth:`ffts` each cut where its power has fallen below 1e-14 of its peak for good
+        (resolution and smooth coverage band-limit them: the rest adds nothing to a correlation)."""
+        key = ("band", m)
+        if key not in self._fft:
+            cut = []
+            for f in self.ffts(m):
+                p = np.abs(f) ** 2
+                keep = np.flatnonzero(p > 1e-14 * p.max()) if p.max() > 0 else np.array([0])
+                cut.append(np.ascontiguousarray(f[:int(keep[-1]) + 1]))
+            self._fft[key] = tuple(cut)
+        return self._fft[key]
+
 
 # ---------------------------------------------------------------------------
 # Built-in templates

@@ -5,10 +5,10 @@ from __future__ import annotations
 import astropy.units as u
 import numpy as np
 
-from ..doppler import velocity_from_factor
+from ..doppler import C_KMS, velocity_from_factor
 from .grid import kms_per_pixel
 
-__all__ = ["velocity_flags", "result_dict"]
+__all__ = ["velocity_flags", "assumption_flags", "medium_shift_kms", "result_dict"]
 
 
 def velocity_flags(relative, companion, frames, vmax_kms, height, notes):
@@ -32,17 +32,76 @@ def velocity_flags(relative, companion, frames, vmax_kms, height, notes):
     return flags
 
 
+def medium_shift_kms(spectrum, info):
+    """Velocity change (km/s) if the wavelengths were in the other medium than ``info.medium``.
+
+    Negative when the file was read as air (vacuum wavelengths read as air look redder by the
+    refractive index of air: their true velocity is lower), positive the other way round; the
+    index at the spectrum's median wavelength (Morton 2000, via :mod:`specan.obsinfo`).
+    """
+    from ..obsinfo import air_to_vacuum
+
+    lam = float(np.median(spectrum.spectral_axis.to_value(u.AA)))
+    ratio = float(air_to_vacuum(lam * u.AA).to_value(u.AA)) / lam
+    shift = C_KMS * (ratio - 1.0)
+    return -shift if info.medium == "air" else shift
+
+
+def assumption_flags(spectrum, info, notes):
+    """Flags (and notes) for what the reader assumed that moves the velocity.
+
+    ``medium_assumed``: the file did not state its wavelength medium (a vacuum spectrum read as
+    air is ~83 km/s too positive); ``wavelength_zero_point_assumed``: no CRPIX1 (a reference
+    pixel off by one shifts every wavelength by a pixel); ``wavelength_unit_assumed``: the unit
+    was guessed (a wrong guess gives no sensible velocity at all).
+    """
+    flags = []
+    if info.medium_assumed:
+        other = "vacuum" if info.medium == "air" else "air"
+        shift = medium_shift_kms(spectrum, info)
+        flags.append("medium_assumed")
+        notes.append(f"wavelength medium not stated: {info.medium} assumed; if the wavelengths are in {other}, "
+                     f"the velocity is {abs(shift):.0f} km/s more {'negative' if shift < 0 else 'positive'} "
+                     f"(set --medium {other})")
+    warned = " ".join(info.warnings)
+    if "CRPIX1 missing" in warned:
+        w = spectrum.spectral_axis.to_value(u.AA)
+        per_pixel = C_KMS * float(np.median(np.diff(w)) / np.median(w))
+        flags.append("wavelength_zero_point_assumed")
+        notes.append(f"no CRPIX1 in the file: reference pixel assumed; one pixel off moves the velocity by "
+                     f"{per_pixel:.0f} km/s")
+    if "wavelength unit" in warned and "guessed" in warned:
+        flags.append("wavelength_unit_assumed")
+        notes.append("wavelength unit guessed by the reader: if wrong the velocity is meaningless (set --wave-unit)")
+    return flags
+
+
 def _kms_or_none(value):
     return None if value is None else value * (u.km / u.s)
 
 
-def result_dict(choice, peak, about, td, errors, rv_err, companion, frames, flags, notes, step):
+def _finite_or_none(value):
+    return None if value is None or not np.isfinite(value) else float(value)
+
+
+def result_dict(choice, peak, peaks, about, td, errors, budget, segments, companion, frames, flags, notes, step,
+                spectrum):
     """The result of ``measure`` from its steps' outputs (see its Returns); velocities in km/s."""
     kms = u.km / u.s
     dvds = kms_per_pixel(peak.lag, step)
+    members = []
+    for member, pk in zip(choice.mixture, peaks):
+        cand = member.candidate
+        members.append({"name": member.template.name, "kind": None if cand is None else cand.kind,
+                        "type": None if cand is None else f"{cand.sptype} {cand.lumclass}",
+                        "weight": member.weight, "score": member.score,
+                        "rv_offset": (pk.lag - companion.primary) * abs(dvds) * kms})
+    from ..obsinfo import get_info
+
+    sinfo = get_info(spectrum)
     return {
         "rv": frames.rv * kms,
-        "rv_err": _kms_or_none(rv_err),
+        "rv_err": _kms_or_none(_finite_or_none(budget.total)),
         "frame": "barycentric" if frames.f_bary is not None else "topocentric",
         "rv_topo": frames.rv_topo * kms,
         "bary_corr": _kms_or_none(frames.bary_corr),
@@ -50,11 +109,21 @@ def result_dict(choice, peak, about, td, errors, rv_err, companion, frames, flag
         "template": choice.template.name,
         "template_type": choice.mk,
         "template_kind": choice.kind,
+        "templates": members,
         "ccf_height": peak.height,
         "flags": flags,
         "second_peak_rv": _kms_or_none(frames.second_rv),
+        "rv_err_noise": _kms_or_none(_finite_or_none(budget.noise)),
+        "rv_err_template": _kms_or_none(_finite_or_none(budget.template)),
+        "rv_err_mismatch": _kms_or_none(_finite_or_none(budget.mismatch)),
+        "rv_err_choice": _kms_or_none(_finite_or_none(budget.choice)),
+        "rv_err_zero_point": _kms_or_none(_finite_or_none(budget.zero_point)),
+        "birge_ratio": _finite_or_none(segments.birge),
+        "n_segments": segments.n,
         "rv_err_td": _kms_or_none(errors.td),
         "rv_err_mc": _kms_or_none(errors.mc),
+        "medium_assumed": bool(sinfo.medium_assumed),
+        "medium_shift": medium_shift_kms(spectrum, sinfo) * kms if sinfo.medium_assumed else None,
         "notes": notes,
         "template_scores": choice.scores,
         "ccf_fwhm": about.fwhm_px * abs(dvds) * kms if np.isfinite(about.fwhm_px) else None,
@@ -62,6 +131,6 @@ def result_dict(choice, peak, about, td, errors, rv_err, companion, frames, flag
         "resolving_power": choice.power.value,
         "resolving_power_source": choice.power.source,
         "z_bary": None if frames.f_bary is None else frames.f_bary - 1.0,
-        "ccf_velocity": velocity_from_factor(np.exp((companion.primary + about.j) * step) * frames.template_factor),
+        "ccf_velocity": velocity_from_factor(np.exp((peak.lag + about.j) * step) * frames.template_factor),
         "ccf": about.values,
     }
