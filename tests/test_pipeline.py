@@ -128,7 +128,7 @@ def test_run_one_row_per_input_errors_with_reasons(tmp_path, fixed_code, capsys)
     night = small_night(tmp_path / "night")
     out = tmp_path / "out"
     missing = tmp_path / "missing.fits"
-    status = run_cli("run", night, missing, "--out", out, *BASIC_CLI)
+    status = run_cli("run", night, missing, "--out", out, "--plot-for", "Star 1", *BASIC_CLI)
     err = capsys.readouterr().err
     assert "%|" not in err  # no progress bar when stderr is not a terminal
     # each failed input is named on the terminal with its reason, one line each
@@ -150,7 +150,11 @@ def test_run_one_row_per_input_errors_with_reasons(tmp_path, fixed_code, capsys)
         assert row["status"] in ("ok", "partial")
         assert row["object"] == f"Star {i}"
         assert str(row["stages_run"]).startswith("read")
-        assert (out / row["plot"]).is_file() and (out / row["thumbnail"]).is_file()
+        # figures by default for the flagged stars only, and for the one named with --plot-for
+        if i == 1 or _text(row["flags"]):
+            assert (out / row["plot"]).is_file() and (out / row["thumbnail"]).is_file()
+        else:
+            assert not _text(row["plot"]) and not _text(row["thumbnail"])
     # exit status = number of failed inputs
     assert status == 4
     # units come with the columns
@@ -159,7 +163,7 @@ def test_run_one_row_per_input_errors_with_reasons(tmp_path, fixed_code, capsys)
     # outputs get the usual permissions (the temporary files they come from are private)
     umask = os.umask(0)
     os.umask(umask)
-    for name in ("catalogue.ecsv", "report.html", "night_diagram.png", by_name["star_00.fits"]["plot"]):
+    for name in ("catalogue.ecsv", "report.html", "night_diagram.png", by_name["star_01.fits"]["plot"]):
         assert (out / name).stat().st_mode & 0o777 == 0o666 & ~umask, name
 
 
@@ -196,7 +200,7 @@ def test_outputs_stay_inside_out_dir_whatever_names_contain(tmp_path, fixed_code
     write_spectrum(night / "c.fits", name="..\\..\\windows <b>", seed=3)
     out = tmp_path / "out"
     before = set(tmp_path.parent.iterdir())
-    pipeline.run([night], out, stages=BASIC)
+    pipeline.run([night], out, stages=BASIC, plots="all")
     assert set(tmp_path.parent.iterdir()) == before
     for p in out.rglob("*"):
         assert p.resolve().is_relative_to(out.resolve())
