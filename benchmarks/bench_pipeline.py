@@ -28,7 +28,7 @@ Usage::
     python benchmarks/bench_pipeline.py --profile 40
     python benchmarks/bench_pipeline.py --counts 1000 --jobs 1,2 --plots none,flagged
     python benchmarks/bench_pipeline.py --counts 1000,100000 --jobs 1 --plots none --stages read,prepare
-    python benchmarks/bench_pipeline.py --compare-with /work/main
+    git archive 1a733f4 | tar -x -C /tmp/slow && python benchmarks/bench_pipeline.py --compare-with /tmp/slow
 """
 
 from __future__ import annotations
@@ -189,7 +189,9 @@ def run_once(folder, out, jobs, extra, pythonpath=None):
     if pythonpath:
         env["PYTHONPATH"] = str(pythonpath)
     t0 = time.perf_counter()
-    proc = subprocess.Popen(cmd, stdout=subprocess.DEVNULL, stderr=subprocess.PIPE, env=env)
+    # run from the checkout whose specan is asked for (python -m puts the working folder first)
+    proc = subprocess.Popen(cmd, stdout=subprocess.DEVNULL, stderr=subprocess.PIPE, env=env,
+                            cwd=str(pythonpath) if pythonpath else None)
     # wait4: the child's resource use, including the workers it waited for;
     # ru_maxrss (kB on Linux) is the largest of those processes.
     _, status, usage = os.wait4(proc.pid, 0)

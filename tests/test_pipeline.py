@@ -777,3 +777,26 @@ def test_chunks_cover_every_input_once():
         chunks = list(executors._chunks(todo, size))
         assert [p for c in chunks for p in c] == todo
         assert len(chunks) >= min(count, 4 * workers) or size == executors.MAX_CHUNK
+
+
+def test_catalogue_and_report_written_a_few_rows_at_a_time(tmp_path, fixed_code, monkeypatch):
+    # Chunks of two rows: the catalogue, the report's rows (errors first) and the counts come out
+    # as from one table.
+    night = small_night(tmp_path / "night", count=3)
+    whole = pipeline.run([night], tmp_path / "whole", stages=BASIC, plots="none")
+    monkeypatch.setattr(pipeline, "WRITE_CHUNK", 2)
+    chunked = pipeline.run([night], tmp_path / "chunked", stages=BASIC, plots="none")
+    assert chunked.counts == whole.counts
+    a, b = whole.catalogue, chunked.catalogue
+    assert a.colnames == b.colnames
+    assert _comparable(a) == _comparable(b)
+    page = (tmp_path / "chunked" / "report.html").read_text()
+    classes = re.findall(r'<tr class="(\w+)" data-order', page)
+    assert len(classes) == 6 and classes[:3] == ["error"] * 3 and "error" not in classes[3:]
+
+
+def test_progress_bar_shows_rate_and_time_left(tmp_path, fixed_code, capsys):
+    night = plain_night(tmp_path / "night", 3)
+    pipeline.run([night], tmp_path / "out", stages=BASIC, plots="none", progress=True)
+    err = capsys.readouterr().err
+    assert "3/3" in err and "left" in err and "spectrum/s" in err
