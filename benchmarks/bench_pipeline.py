@@ -183,7 +183,7 @@ def profile(paths, out):
 
 
 def run_once(folder, out, jobs, extra, pythonpath=None):
-    """Run ``specan run``; return (seconds, peak RSS in MB, exit status)."""
+    """Run ``specan run``; return (seconds, peak RSS in MB, exit status, CPU seconds of it and its workers)."""
     cmd = [sys.executable, "-m", "specan", "run", str(folder), "--out", str(out), "--jobs", str(jobs), *extra]
     env = dict(os.environ)
     if pythonpath:
@@ -200,7 +200,7 @@ def run_once(folder, out, jobs, extra, pythonpath=None):
     err = proc.stderr.read().decode(errors="replace")
     if proc.returncode not in range(0, 101):
         raise SystemExit(f"specan run failed ({proc.returncode}): {err[-2000:]}")
-    return seconds, usage.ru_maxrss / 1024.0, proc.returncode
+    return seconds, usage.ru_maxrss / 1024.0, proc.returncode, usage.ru_utime + usage.ru_stime
 
 
 def drawn_share(out):
@@ -221,7 +221,9 @@ def throughput(args, work):
     print(f"# {max(counts)} spectra of {PIXELS} px ready in {time.perf_counter() - t0:.1f} s in {work}")
     print(f"# python {sys.version.split()[0]}, {os.cpu_count()} CPUs, stages: {args.stages or 'all'}, "
           f"load average before: {os.getloadavg()[0]:.1f}")
-    print(f"{'spectra':>8} {'jobs':>5} {'plots':>8} {'seconds':>9} {'spectra/s':>10} {'peak MB':>8} "
+    # CPU ms per spectrum (the command and its workers, start-up included) does not depend on what
+    # else runs on the machine: equal figures for 1 and 2 jobs mean that 2 free cores give 2x
+    print(f"{'spectra':>8} {'jobs':>5} {'plots':>8} {'seconds':>9} {'spectra/s':>10} {'cpu ms':>7} {'peak MB':>8} "
           f"{'drawn':>6} {'rerun s':>8} {'failed':>7}")
     for count in counts:
         folder = work / f"spectra_{count}"
@@ -235,9 +237,10 @@ def throughput(args, work):
                 extra = ["--plots", plots] + (["--stages", args.stages] if args.stages else [])
                 out = work / f"out_{count}_{jobs}_{plots}"
                 shutil.rmtree(out, ignore_errors=True)  # the first run must compute everything
-                seconds, peak, failed = run_once(folder, out, jobs, extra)
+                seconds, peak, failed, cpu = run_once(folder, out, jobs, extra)
                 again = run_once(folder, out, jobs, extra)[0] if args.rerun else float("nan")
-                print(f"{count:>8} {jobs:>5} {plots:>8} {seconds:>9.1f} {count / seconds:>10.2f} {peak:>8.0f} "
+                print(f"{count:>8} {jobs:>5} {plots:>8} {seconds:>9.1f} {count / seconds:>10.2f} "
+                      f"{1e3 * cpu / count:>7.0f} {peak:>8.0f} "
                       f"{drawn_share(out):>6.1%} {again:>8.1f} {failed:>7}   load {os.getloadavg()[0]:.1f}",
                       flush=True)
                 if not args.keep:
@@ -255,7 +258,7 @@ def compare(other, work):
         out = work / f"demo_{name}"
         shutil.rmtree(out, ignore_errors=True)
         # --no-plots: the option both versions know
-        seconds, _, _ = run_once(demo, out, 1, calibration + ["--no-plots"], pythonpath=path)
+        seconds = run_once(demo, out, 1, calibration + ["--no-plots"], pythonpath=path)[0]
         tables[name] = Table.read(out / "catalogue.ecsv", format="ascii.ecsv")
         print(f"# demo night with {path}: {seconds:.1f} s")
     a, b = tables["this"], tables["other"]

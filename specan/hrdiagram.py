@@ -148,6 +148,13 @@ class HRPoints:
 
     def add(self, table_or_rows):
         """Place the stars of a table or of rows (see :func:`hr_points`)."""
+        if hasattr(table_or_rows, "colnames"):
+            # only the columns the diagram reads, as plain rows (a table row per star was slow)
+            names = [n for n in _DIAGRAM_KEYS if n in table_or_rows.colnames]
+            units = {n: table_or_rows[n].unit for n in names}
+            columns = [_plain_values(table_or_rows[n]) for n in names]
+            table_or_rows = [{n: (v * units[n] if units[n] is not None and v is not None else v)
+                              for n, v in zip(names, values)} for values in zip(*columns)]
         placed, skipped = hr_points(table_or_rows)
         if placed:
             self._parts.append(np.array([[p["teff_k"], _nan(p["teff_err_k"]), p["m_v_abs"], _nan(p["m_v_abs_err"])]
@@ -164,6 +171,18 @@ class HRPoints:
 
     def __len__(self):
         return sum(len(a) for a in self._parts)
+
+
+#: The columns :func:`hr_points` reads.
+_DIAGRAM_KEYS = (*_NAME_KEYS, "status", "code", "lumclass", "teff_k", "teff", "teff_err_k", "teff_err", "m_v_abs",
+                 "m_v_abs_err", "subclass_err")
+
+
+def _plain_values(column):
+    """A column's values as Python objects, None where masked."""
+    if getattr(column, "mask", None) is not None and np.any(column.mask):
+        return [None if m else v for v, m in zip(np.asarray(column).tolist(), np.asarray(column.mask).tolist())]
+    return np.asarray(column).tolist()
 
 
 def _nan(value):
