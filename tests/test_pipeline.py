@@ -737,7 +737,8 @@ def test_streamed_catalogue_is_the_table_astropy_writes(tmp_path):
     for i in range(7):
         values = {"file": f"f{i}.fits", "object": f"star {i}" if i != 3 else None, "status": "ok",
                   "snr": None if i == 2 else 10.0 + i, "n_lines": i, "odd": "x" if i == 5 else None,
-                  "bright": i % 2 == 0, "note": f"a, \"quoted\" {i}"}
+                  "bright": i % 2 == 0, "note": f"a, \"quoted\" {i}", "maybe": None if i == 1 else i > 2,
+                  "count": None if i == 6 else -i, "tiny": None if i == 0 else 1e-300 * i, "huge": float(i) * 1e17}
         if i > 3:
             values["late"] = 1.5 * i
         records.append({"values": values, "units": {"snr": None, "late": "km / s"}})
