@@ -9,7 +9,8 @@ installation; the catalogue says which ran), draws its plots and writes:
         one row per input: the results with units, or ``status=error`` and the
         reason;
     ``plots/<file>-<id>.png``, ``plots/<file>-<id>_thumb.png``
-        per-spectrum figure and its thumbnail;
+        per-spectrum figure and its thumbnail, by default for the flagged
+        inputs only (see ``plots`` and ``plot_for`` of :func:`run`);
     ``night_diagram.png``
         the classified stars by temperature and luminosity;
     ``report.html``
@@ -23,9 +24,13 @@ Safety of results (why the work is laid out this way):
   file, then ``os.replace``) after its plots; the catalogue is assembled from
   the records of the inputs named on this run, so an interrupted run never
   leaves half a row, and a rerun never duplicates one;
+* the catalogue, the report and the night diagram are written from the
+  records a chunk of rows at a time: the memory of a run does not grow with
+  the number of inputs;
 * a record is current when the input's content hash and the run settings
-  (reader overrides, plot choice, specan's own code) match; current inputs
-  are not recomputed unless ``force``;
+  (reader overrides, stages, photometry, calibration, specan's own code)
+  match, and it has the figure the run asks for; current inputs are not
+  recomputed unless ``force``;
 * all workers (in-process, local processes, dask) run the same function,
   :func:`analyse_file`, and return plain data; only this process writes
   files, so results do not depend on how they were computed;
@@ -56,10 +61,9 @@ from .errors import SpecanError
 from .night import executors
 from .night.catalogue import (CATALOGUE_FORMATS, CORE_COLUMNS, assemble_catalogue, catalogue_meta,  # noqa: F401
                               status_counts, write_catalogue)
-from .night.files import atomic_path  # noqa: F401 - part of this module's API
+from .night.files import atomic_path, flush_to_disk  # noqa: F401 - atomic_path: part of this module's API
 from .night.inputs import SPECTRUM_SUFFIXES, collect_inputs, safe_stem, sha256_file  # noqa: F401
 from .night.products import write_night_products
-from .night.files import flush_to_disk
 from .night.records import RecordStore, code_fingerprint, content_hash, not_run_record, record_key
 from .night.row import (EMISSION_FLAG_LINES, LOW_SNR, PLOT_CHOICES, Recorder, final_info, info_columns,  # noqa: F401
                         lines_columns, plot_wanted)
