@@ -233,6 +233,7 @@ def throughput(args, work):
     # else runs on the machine: equal figures for 1 and 2 jobs mean that 2 free cores give 2x
     print(f"{'spectra':>8} {'jobs':>5} {'plots':>8} {'seconds':>9} {'spectra/s':>10} {'cpu ms':>7} {'peak MB':>8} "
           f"{'drawn':>6} {'rerun s':>8} {'failed':>7}")
+    rates = {}
     for count in counts:
         folder = work / f"spectra_{count}"
         if not folder.exists():
@@ -252,8 +253,20 @@ def throughput(args, work):
                       f"{1e3 * cpu / count:>7.0f} {peak:>8.0f} "
                       f"{drawn_share(out):>6.1%} {again:>8.1f} {failed:>7}   load {os.getloadavg()[0]:.1f}",
                       flush=True)
+                rates[count, jobs, plots] = (count / seconds, cpu / count)
                 if not args.keep:
                     shutil.rmtree(out, ignore_errors=True)
+    # the issue's targets (issue 12), from the figures above
+    for count in counts:
+        for plots, target in (("none", 20.0), ("flagged", 15.0)):
+            if (count, 1, plots) in rates:
+                rate = rates[count, 1, plots][0]
+                print(f"# {count} spectra, one job, figures {plots}: {rate:.2f} spectra/s against >= {target:.0f}: "
+                      f"{'met' if rate >= target else 'not met'}")
+            if (count, 1, plots) in rates and (count, 2, plots) in rates:
+                (r1, c1), (r2, c2) = rates[count, 1, plots], rates[count, 2, plots]
+                print(f"# {count} spectra, figures {plots}: 2 jobs / 1 job = {r2 / r1:.2f}x wall clock (>= 1.8: "
+                      f"{'met' if r2 / r1 >= 1.8 else 'not met'}); CPU per spectrum {c2 / c1:.2f}x")
 
 
 def compare(other, work):

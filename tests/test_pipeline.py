@@ -801,3 +801,16 @@ def test_progress_bar_shows_rate_and_time_left(tmp_path, fixed_code, capsys):
     pipeline.run([night], tmp_path / "out", stages=BASIC, plots="none", progress=True)
     err = capsys.readouterr().err
     assert "3/3" in err and "left" in err and "spectrum/s" in err
+
+
+def test_local_workers_compute_with_one_thread_per_library(monkeypatch):
+    # Every worker process starts with the numerical libraries pinned to one thread (dask's
+    # workers do the same), so that sums come out in the same order however the night is run;
+    # the run's own environment is left as it was.
+    from specan.night import executors
+
+    monkeypatch.setenv("OPENBLAS_NUM_THREADS", "7")
+    names = ["OPENBLAS_NUM_THREADS", "OMP_NUM_THREADS", "MKL_NUM_THREADS"]
+    got = dict(executors.results_local(os.getenv, names, "unset", 2))
+    assert got == {name: "1" for name in names}
+    assert os.environ["OPENBLAS_NUM_THREADS"] == "7"
