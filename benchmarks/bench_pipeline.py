@@ -1,32 +1,45 @@
 #!/usr/bin/env python
-"""Throughput and memory of ``specan run`` (specan/pipeline.py).
+"""Throughput, memory and per-stage cost of ``specan run`` (specan/pipeline.py).
 
-Writes N synthetic spectra (FITS images with a linear air-wavelength WCS, R =
-2000, 3800-7200 A at 1 A per pixel, S/N 50-150, types O-M; made by
-``specan.synth``) and runs the real command on them in a fresh process for
-each case, with a fresh output folder:
+Writes N synthetic spectra (FITS images of 4,000 pixels with a linear
+air-wavelength WCS, 3700-7299 A at 0.9 A per pixel, R = 2000, S/N 50-150 but
+one in twelve at S/N 12, types O-M; made by ``specan.synth``, not stored in the
+repository) and classifies them against the synthetic standards of the same
+model (``sample_spectra/tordo_calibration.json``, as the demo night is), so
+that about a tenth of them are flagged (the low-S/N ones, and the odd
+``peculiar``; against the built-in calibration from real stars four fifths of
+these synthetic spectra come out ``peculiar`` or ``composite``), and:
 
-* spectra per second for each count and number of jobs (wall clock of the
-  whole command: start-up, every stage, plots, catalogue, report);
-* peak resident memory (largest process: the run itself or one of its
-  workers, from ``wait4``), which must stay flat as the count grows;
-* the same command run again on the finished folder (everything current,
-  nothing recomputed).
+* ``--profile K``: runs :func:`specan.pipeline.analyse_file` in this process on
+  K of them and prints ms per spectrum for each stage (read, prepare,
+  velocity, lines, classify with the velocity given, physics), for a figure
+  (per figure drawn, every spectrum drawn here), for storing the record, and
+  for writing the catalogue and report from the records; then the functions
+  with the most time of their own (cProfile) inside each package, so that the
+  hot spots of every stage can be fixed where they live;
+* otherwise runs the real command in a fresh process for each case, with a
+  fresh output folder: spectra per second (wall clock of the whole command:
+  start-up, every stage, figures, catalogue, report), peak resident memory
+  (largest process: the run itself or one of its workers, from ``wait4``),
+  the share of spectra drawn, and the same command again on the finished
+  folder (everything current, nothing recomputed). Cases run side by side,
+  so their ratios come from one run of this script.
+* ``--compare-with DIR``: runs the demo night (``sample_spectra``) with this
+  code and with the specan of another checkout (e.g. the slow path before the
+  night run was made fast) and compares every catalogue column both have.
 
 Usage::
 
-    python benchmarks/bench_pipeline.py                      # 100 and 1,000 spectra, 1 and 2 jobs
-    python benchmarks/bench_pipeline.py --counts 100 --jobs 1,2
-    python benchmarks/bench_pipeline.py --counts 100,1000 --jobs 1 --stages read --no-plots
-
-The full default is long (the science stages take seconds per spectrum on
-one core); the figures measured for the README are in the issue notes with
-the exact command used.
+    python benchmarks/bench_pipeline.py --profile 40
+    python benchmarks/bench_pipeline.py --counts 1000 --jobs 1,2 --plots none,flagged
+    python benchmarks/bench_pipeline.py --counts 1000,100000 --jobs 1 --plots none --stages read,prepare
+    git archive 1a733f4 | tar -x -C /tmp/slow && python benchmarks/bench_pipeline.py --compare-with /tmp/slow
 """
 
 from __future__ import annotations
 
 import argparse
+import collections
 import os
 import shutil
 import subprocess
@@ -41,6 +54,10 @@ TYPES = [("O9", "V"), ("B2", "V"), ("B8", "III"), ("A0", "V"), ("A5", "V"), ("F0
          ("G0", "V"), ("G5", "III"), ("K0", "III"), ("K2", "V"), ("K5", "III"), ("M0", "III"), ("M3", "V"),
          ("F2", "I"), ("G8", "II"), ("B5", "I"), ("K7", "V"), ("A2", "III"), ("G2", "V")]
 DISTINCT = 40  # distinct synthetic spectra; the rest are copies with their own header (own content hash)
+PIXELS, START, STEP = 4000, 3700.0, 0.9
+LOW_SNR = 12.0   # below specan.night.row.LOW_SNR (20): flagged low_snr
+ROOT = Path(__file__).resolve().parents[1]
+CALIBRATION = ROOT / "sample_spectra" / "tordo_calibration.json"
 
 
 def make_spectra(folder: Path, count: int) -> list:
@@ -51,39 +68,138 @@ def make_spectra(folder: Path, count: int) -> list:
     from specan import synth
 
     folder.mkdir(parents=True, exist_ok=True)
-    wave = np.arange(3800.0, 7200.5, 1.0)
+    wave = START + STEP * np.arange(PIXELS)
     base = []
     for i in range(min(DISTINCT, count)):
         sptype, lumclass = TYPES[i % len(TYPES)]
         rng = np.random.default_rng(i)
+        snr = float(rng.uniform(50, 150)) if i % 12 != 11 else LOW_SNR
         spec = synth.spectrum(sptype, lumclass, resolving_power=2000, wave=wave * u.AA,
                               rv=float(rng.uniform(-80, 80)) * u.km / u.s, continuum="blackbody",
-                              snr=float(rng.uniform(50, 150)), seed=i)
+                              snr=snr, seed=i)
         base.append((np.asarray(spec.flux.value, np.float32) * 1.0e4, sptype, lumclass))
+    template = fits.Header()
+    template["CTYPE1"], template["CUNIT1"], template["CRPIX1"] = "AWAV", "Angstrom", 1.0
+    template["CRVAL1"], template["CDELT1"] = START, STEP
+    template["DATE-OBS"] = "2025-09-14T22:00:00"
+    template["EXPTIME"] = 600.0
+    template["OBSGEO-B"], template["OBSGEO-L"], template["OBSGEO-H"] = 39.3, -6.8, 640.0
+    template["SPEC_RP"] = 2000.0
     paths = []
     for i in range(count):
-        path = folder / f"bench_{i:05d}.fits"
+        path = folder / f"bench_{i:06d}.fits"
         paths.append(path)
         if path.exists():
             continue
-        flux, sptype, lumclass = base[i % len(base)]
-        h = fits.Header()
-        h["OBJECT"] = f"BENCH-{i:05d}"
-        h["CTYPE1"], h["CUNIT1"], h["CRPIX1"], h["CRVAL1"], h["CDELT1"] = "AWAV", "Angstrom", 1.0, 3800.0, 1.0
-        h["DATE-OBS"] = "2025-09-14T22:00:00"
-        h["EXPTIME"] = 600.0
+        flux, _, _ = base[i % len(base)]
+        h = template.copy()
+        h["OBJECT"] = f"BENCH-{i:06d}"
         h["RA"], h["DEC"] = float(i % 360), 30.0
-        h["OBSGEO-B"], h["OBSGEO-L"], h["OBSGEO-H"] = 39.3, -6.8, 640.0
-        h["SPEC_RP"] = 2000.0
         fits.PrimaryHDU(flux, header=h).writeto(path)
     return paths
 
 
-def run_once(folder, out, jobs, extra):
-    """Run ``specan run``; return (seconds, peak RSS in MB, exit status)."""
-    cmd = [sys.executable, "-m", "specan", "run", str(folder), "--out", str(out), "--jobs", str(jobs), *extra]
+# --------------------------------------------------------------------------- per stage
+
+
+def profile(paths, out):
+    """Per-stage ms per spectrum in this process, then the cProfile hot spots per package."""
+    import cProfile
+    import pstats
+
+    from specan import pipeline
+    from specan.night.records import RecordStore, record_key
+
+    spent = collections.defaultdict(float)
+    real = pipeline._stage_function
+
+    def timed(name):
+        func = real(name)
+
+        def stage(*args, **kwargs):
+            t = time.perf_counter()
+            try:
+                return func(*args, **kwargs)
+            finally:
+                spent[name] += time.perf_counter() - t
+        return stage
+
+    real_plots = pipeline._plots
+    drawn = [0]
+
+    def plots(*args, **kwargs):
+        t = time.perf_counter()
+        try:
+            return real_plots(*args, **kwargs)
+        finally:
+            spent["figure (per figure)"] += time.perf_counter() - t
+            drawn[0] += 1
+
+    pipeline._stage_function, pipeline._plots = timed, plots
+    settings = {"plots": "all", "calibration": str(CALIBRATION)}
+    pipeline.analyse_file(str(paths[0]), settings)   # imports, templates, calibration: once per process
+    spent.clear()
+    drawn[0] = 0
+    store = RecordStore(out)
     t0 = time.perf_counter()
-    proc = subprocess.Popen(cmd, stdout=subprocess.DEVNULL, stderr=subprocess.PIPE)
+    for p in paths:
+        result = pipeline.analyse_file(str(p), settings)
+        t = time.perf_counter()
+        store.put(str(p), record_key(str(p), "bench", result["input_sha256"]), result)
+        spent["store the record"] += time.perf_counter() - t
+    total = time.perf_counter() - t0
+    pipeline._stage_function, pipeline._plots = real, real_plots
+    # the same again under cProfile (its own overhead makes it slower: shares, not absolute times)
+    prof = cProfile.Profile()
+    prof.enable()
+    for p in paths:
+        pipeline.analyse_file(str(p), settings)
+    prof.disable()
+    t = time.perf_counter()
+    stages = pipeline._stage_status(None)
+    pipeline._write_night([str(p) for p in paths], store, "bench", Path(out), ["ecsv"], stages,
+                          {"overrides": {}, "plots": "all", "plot_for": []}, True, False)
+    spent["catalogue + report"] = time.perf_counter() - t
+    n = len(paths)
+    print(f"# per stage, ms per spectrum, {n} spectra of {PIXELS} px in one process; "
+          f"load average {os.getloadavg()[0]:.1f}")
+    for name in ("read", "prepare", "velocity", "lines", "classify", "physics", "figure (per figure)",
+                 "store the record", "catalogue + report"):
+        per = spent[name] / (max(drawn[0], 1) if name.startswith("figure") else n)
+        print(f"  {name:22s} {1e3 * per:8.1f}")
+    print(f"  {'whole analyse_file':22s} {1e3 * total / n:8.1f}  (every spectrum drawn)")
+    stats = pstats.Stats(prof)
+    by_package = collections.defaultdict(list)
+    for (file, line, func), (cc, nc, tt, ct, callers) in stats.stats.items():
+        if "/specan/" in file:
+            package = file.split("/specan/", 1)[1].split("/")[0].replace(".py", "")
+        elif "site-packages/" in file:
+            package = "lib:" + file.split("site-packages/", 1)[1].split("/")[0]
+        else:
+            package = "builtin"
+        by_package[package].append((tt, ct, nc, f"{Path(file).name}:{line}({func})"))
+    print("# under cProfile (slower by its own overhead): own time per package, ms per spectrum, and its "
+          "three hottest functions (own / cumulative ms)")
+    order = sorted(by_package.items(), key=lambda kv: -sum(t[0] for t in kv[1]))
+    for package, rows in order[:14]:
+        rows.sort(reverse=True)
+        hot = "; ".join(f"{name} {1e3 * tt / n:.1f}/{1e3 * ct / n:.1f}" for tt, ct, _, name in rows[:3])
+        print(f"  {package:24s} {1e3 * sum(r[0] for r in rows) / n:7.1f}  {hot}")
+
+
+# --------------------------------------------------------------------------- whole runs
+
+
+def run_once(folder, out, jobs, extra, pythonpath=None):
+    """Run ``specan run``; return (seconds, peak RSS in MB, exit status, CPU seconds of it and its workers)."""
+    cmd = [sys.executable, "-m", "specan", "run", str(folder), "--out", str(out), "--jobs", str(jobs), *extra]
+    env = dict(os.environ)
+    if pythonpath:
+        env["PYTHONPATH"] = str(pythonpath)
+    t0 = time.perf_counter()
+    # run from the checkout whose specan is asked for (python -m puts the working folder first)
+    proc = subprocess.Popen(cmd, stdout=subprocess.DEVNULL, stderr=subprocess.PIPE, env=env,
+                            cwd=str(pythonpath) if pythonpath else None)
     # wait4: the child's resource use, including the workers it waited for;
     # ru_maxrss (kB on Linux) is the largest of those processes.
     _, status, usage = os.wait4(proc.pid, 0)
@@ -92,42 +208,121 @@ def run_once(folder, out, jobs, extra):
     err = proc.stderr.read().decode(errors="replace")
     if proc.returncode not in range(0, 101):
         raise SystemExit(f"specan run failed ({proc.returncode}): {err[-2000:]}")
-    return seconds, usage.ru_maxrss / 1024.0, proc.returncode
+    return seconds, usage.ru_maxrss / 1024.0, proc.returncode, usage.ru_utime + usage.ru_stime
 
 
-def main(argv=None):
-    parser = argparse.ArgumentParser(description=__doc__.splitlines()[0])
-    parser.add_argument("--counts", default="100,1000", help="numbers of spectra, comma-separated")
-    parser.add_argument("--jobs", default="1,2", help="numbers of jobs, comma-separated")
-    parser.add_argument("--stages", default=None, help="passed to specan run --stages (default: all)")
-    parser.add_argument("--no-plots", action="store_true", help="passed to specan run")
-    parser.add_argument("--workdir", type=Path, default=None, help="where to write spectra and outputs")
-    args = parser.parse_args(argv)
+def drawn_share(out):
+    """Share of catalogue rows with a figure."""
+    from astropy.table import Table
+
+    cat = Table.read(out / "catalogue.ecsv", format="ascii.ecsv")
+    plots = [not np.ma.is_masked(p) and bool(str(p)) for p in cat["plot"]]
+    return float(np.mean(plots)) if len(plots) else 0.0
+
+
+def throughput(args, work):
     counts = [int(c) for c in args.counts.split(",")]
     jobs_list = [int(j) for j in args.jobs.split(",")]
-    extra = (["--stages", args.stages] if args.stages else []) + (["--no-plots"] if args.no_plots else [])
-    work = args.workdir or Path(tempfile.mkdtemp(prefix="specan-bench-"))
-
+    plot_list = [p.strip() for p in args.plots.split(",")]
     t0 = time.perf_counter()
     make_spectra(work / "spectra_all", max(counts))
-    print(f"# wrote {max(counts)} spectra in {time.perf_counter() - t0:.1f} s to {work}")
-    print(f"# python {sys.version.split()[0]}, {os.cpu_count()} CPUs, extra options: {' '.join(extra) or 'none'}, "
+    print(f"# {max(counts)} spectra of {PIXELS} px ready in {time.perf_counter() - t0:.1f} s in {work}")
+    print(f"# python {sys.version.split()[0]}, {os.cpu_count()} CPUs, stages: {args.stages or 'all'}, "
           f"load average before: {os.getloadavg()[0]:.1f}")
-    print(f"{'spectra':>8} {'jobs':>5} {'seconds':>9} {'spectra/s':>10} {'peak MB':>8} {'rerun s':>8} {'failed':>7}")
+    # CPU ms per spectrum (the command and its workers, start-up included) does not depend on what
+    # else runs on the machine: equal figures for 1 and 2 jobs mean that 2 free cores give 2x
+    print(f"{'spectra':>8} {'jobs':>5} {'plots':>8} {'seconds':>9} {'spectra/s':>10} {'cpu ms':>7} {'peak MB':>8} "
+          f"{'drawn':>6} {'rerun s':>8} {'failed':>7}")
+    rates = {}
     for count in counts:
         folder = work / f"spectra_{count}"
         if not folder.exists():
             folder.mkdir()
             for i in range(count):
-                name = f"bench_{i:05d}.fits"
+                name = f"bench_{i:06d}.fits"
                 os.link(work / "spectra_all" / name, folder / name)
-        for jobs in jobs_list:
-            out = work / f"out_{count}_{jobs}"
-            shutil.rmtree(out, ignore_errors=True)  # the first run must compute everything
-            seconds, peak, failed = run_once(folder, out, jobs, extra)
-            again, _, _ = run_once(folder, out, jobs, extra)
-            print(f"{count:>8} {jobs:>5} {seconds:>9.1f} {count / seconds:>10.2f} {peak:>8.0f} {again:>8.1f} "
-                  f"{failed:>7}   load {os.getloadavg()[0]:.1f}", flush=True)
+        for plots in plot_list:
+            for jobs in jobs_list:
+                extra = (["--plots", plots, "--calibration", str(CALIBRATION)]
+                         + (["--stages", args.stages] if args.stages else []))
+                out = work / f"out_{count}_{jobs}_{plots}"
+                shutil.rmtree(out, ignore_errors=True)  # the first run must compute everything
+                seconds, peak, failed, cpu = run_once(folder, out, jobs, extra)
+                again = run_once(folder, out, jobs, extra)[0] if args.rerun else float("nan")
+                print(f"{count:>8} {jobs:>5} {plots:>8} {seconds:>9.1f} {count / seconds:>10.2f} "
+                      f"{1e3 * cpu / count:>7.0f} {peak:>8.0f} "
+                      f"{drawn_share(out):>6.1%} {again:>8.1f} {failed:>7}   load {os.getloadavg()[0]:.1f}",
+                      flush=True)
+                rates[count, jobs, plots] = (count / seconds, cpu / count)
+                if not args.keep:
+                    shutil.rmtree(out, ignore_errors=True)
+    # the issue's targets (issue 12), from the figures above
+    for count in counts:
+        for plots, target in (("none", 20.0), ("flagged", 15.0)):
+            if (count, 1, plots) in rates:
+                rate = rates[count, 1, plots][0]
+                print(f"# {count} spectra, one job, figures {plots}: {rate:.2f} spectra/s against >= {target:.0f}: "
+                      f"{'met' if rate >= target else 'not met'}")
+            if (count, 1, plots) in rates and (count, 2, plots) in rates:
+                (r1, c1), (r2, c2) = rates[count, 1, plots], rates[count, 2, plots]
+                print(f"# {count} spectra, figures {plots}: 2 jobs / 1 job = {r2 / r1:.2f}x wall clock (>= 1.8: "
+                      f"{'met' if r2 / r1 >= 1.8 else 'not met'}); CPU per spectrum {c2 / c1:.2f}x")
+
+
+def compare(other, work):
+    """The demo night through this code and another checkout's: every shared column compared."""
+    from astropy.table import Table
+
+    demo = ROOT / "sample_spectra"
+    calibration = ["--calibration", str(demo / "tordo_calibration.json")]
+    tables = {}
+    for name, path in (("this", ROOT), ("other", Path(other))):
+        out = work / f"demo_{name}"
+        shutil.rmtree(out, ignore_errors=True)
+        # --no-plots: the option both versions know
+        seconds = run_once(demo, out, 1, calibration + ["--no-plots"], pythonpath=path)[0]
+        tables[name] = Table.read(out / "catalogue.ecsv", format="ascii.ecsv")
+        print(f"# demo night with {path}: {seconds:.1f} s")
+    a, b = tables["this"], tables["other"]
+    assert list(a["file"]) == list(b["file"])
+    ignore = {"plot", "thumbnail", "warnings"}
+    same, differ = [], []
+    for col in a.colnames:
+        if col not in b.colnames or col in ignore:
+            continue
+        x = [None if np.ma.is_masked(v) else v for v in a[col].tolist()]
+        y = [None if np.ma.is_masked(v) else v for v in b[col].tolist()]
+        (same if x == y else differ).append(col)
+    print(f"# columns identical: {len(same)}; differing: {', '.join(differ) or 'none'}; "
+          f"only here: {', '.join(c for c in a.colnames if c not in b.colnames) or 'none'}; "
+          f"only there: {', '.join(c for c in b.colnames if c not in a.colnames) or 'none'}")
+    for col in differ:
+        x, y = np.asarray(a[col], float), np.asarray(b[col], float)
+        print(f"  {col}: largest difference {np.nanmax(np.abs(x - y)):.3g}")
+
+
+def main(argv=None):
+    parser = argparse.ArgumentParser(description=__doc__.splitlines()[0])
+    parser.add_argument("--counts", default="1000", help="numbers of spectra, comma-separated")
+    parser.add_argument("--jobs", default="1,2", help="numbers of jobs, comma-separated")
+    parser.add_argument("--plots", default="none,flagged", help="--plots choices to run, comma-separated")
+    parser.add_argument("--stages", default=None, help="passed to specan run --stages (default: all)")
+    parser.add_argument("--rerun", action="store_true", help="time a second run on the finished folder")
+    parser.add_argument("--keep", action="store_true", help="keep the output folders")
+    parser.add_argument("--profile", type=int, default=0, metavar="K", help="per-stage profile of K spectra")
+    parser.add_argument("--compare-with", default=None, metavar="DIR",
+                        help="another checkout whose specan runs the demo night for comparison")
+    parser.add_argument("--workdir", type=Path, default=None, help="where to write spectra and outputs")
+    args = parser.parse_args(argv)
+    work = args.workdir or Path(tempfile.mkdtemp(prefix="specan-bench-"))
+    work.mkdir(parents=True, exist_ok=True)
+    if args.compare_with:
+        compare(args.compare_with, work)
+    elif args.profile:
+        paths = make_spectra(work / "spectra_all", args.profile)
+        profile(paths, work / "out_profile")
+    else:
+        throughput(args, work)
 
 
 if __name__ == "__main__":

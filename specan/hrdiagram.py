@@ -18,7 +18,7 @@ import numpy as np
 
 from . import mkscales
 
-__all__ = ["hr_points", "plot_hr"]
+__all__ = ["hr_points", "plot_hr", "HRPoints", "LABEL_LIMIT"]
 
 _LOCI = (("I", "supergiants (I)", "tab:red"), ("III", "giants (III)", "tab:orange"),
          ("V", "main sequence (V)", "tab:blue"))
@@ -120,6 +120,75 @@ def hr_points(table_or_rows):
     return placed, skipped
 
 
+#: Stars named on the diagram at most: beyond, names would cover the diagram (and placing them
+#: costs the square of their number); the points are still all drawn.
+LABEL_LIMIT = 150
+
+#: Names kept for the result's ``plotted`` list at most (a night of 100,000 keeps the first ones).
+NAMES_KEPT = 10000
+
+#: Above this many stars, points without error bars (a hundred thousand error bars are a grey cloud).
+ERRORBAR_LIMIT = 2000
+
+
+class HRPoints:
+    """The diagram's stars, gathered a chunk of rows at a time: a few numbers per star.
+
+    :func:`hr_points` of each chunk, kept as arrays (Teff, M_V and their errors), with the
+    names of the first ``NAMES_KEPT`` stars placed and of the first few skipped, so that a
+    night of any size is drawn without holding its rows.
+    """
+
+    def __init__(self):
+        self._parts = []
+        self.names = []
+        self.lumclasses = []
+        self.skipped = []
+        self.n_skipped = 0
+
+    def add(self, table_or_rows):
+        """Place the stars of a table or of rows (see :func:`hr_points`)."""
+        if hasattr(table_or_rows, "colnames"):
+            # only the columns the diagram reads, as plain rows (a table row per star was slow)
+            names = [n for n in _DIAGRAM_KEYS if n in table_or_rows.colnames]
+            units = {n: table_or_rows[n].unit for n in names}
+            columns = [_plain_values(table_or_rows[n]) for n in names]
+            table_or_rows = [{n: (v * units[n] if units[n] is not None and v is not None else v)
+                              for n, v in zip(names, values)} for values in zip(*columns)]
+        placed, skipped = hr_points(table_or_rows)
+        if placed:
+            self._parts.append(np.array([[p["teff_k"], _nan(p["teff_err_k"]), p["m_v_abs"], _nan(p["m_v_abs_err"])]
+                                         for p in placed], float))
+            room = NAMES_KEPT - len(self.names)
+            self.names.extend(p["name"] for p in placed[:max(room, 0)])
+        self.n_skipped += len(skipped)
+        self.skipped.extend(skipped[:max(0, 20 - len(self.skipped))])
+
+    @property
+    def values(self):
+        """(n, 4) array: Teff, its error, M_V, its error (NaN: no error)."""
+        return np.concatenate(self._parts) if self._parts else np.zeros((0, 4))
+
+    def __len__(self):
+        return sum(len(a) for a in self._parts)
+
+
+#: The columns :func:`hr_points` reads.
+_DIAGRAM_KEYS = (*_NAME_KEYS, "status", "code", "lumclass", "teff_k", "teff", "teff_err_k", "teff_err", "m_v_abs",
+                 "m_v_abs_err", "subclass_err")
+
+
+def _plain_values(column):
+    """A column's values as Python objects, None where masked."""
+    if getattr(column, "mask", None) is not None and np.any(column.mask):
+        return [None if m else v for v, m in zip(np.asarray(column).tolist(), np.asarray(column.mask).tolist())]
+    return np.asarray(column).tolist()
+
+
+def _nan(value):
+    return np.nan if value is None else float(value)
+
+
 # Candidate label positions around a point (offset in points, horizontal alignment), tried in turn.
 _LABEL_SPOTS = ((3, 3, "left"), (3, -9, "left"), (-3, 3, "right"), (-3, -9, "right"),
                 (3, 11, "left"), (3, -17, "left"), (-3, 11, "right"), (-3, -17, "right"))
@@ -182,18 +251,23 @@ def plot_hr(table_or_rows, path, title="HR diagram of the night", label=True, dp
     from matplotlib.backends.backend_agg import FigureCanvasAgg
     from matplotlib.figure import Figure
 
-    placed, skipped = hr_points(table_or_rows)
+    points = table_or_rows
+    if not isinstance(points, HRPoints):
+        points = HRPoints()
+        points.add(table_or_rows)
+    values = points.values
     fig = Figure(figsize=(7.0, 6.0))
     FigureCanvasAgg(fig)
     ax = fig.add_subplot()
     ax.set_xscale("log")
     scales = mkscales.load_scales()
     loci = _draw_loci(ax, scales)
-    _draw_stars(ax, placed)
-    _set_limits_and_ticks(ax, scales, placed)
-    if placed and label:
+    _draw_stars(ax, values)
+    _set_limits_and_ticks(ax, scales, values)
+    if len(values) and label and len(values) <= LABEL_LIMIT:
+        placed = [{"name": n, "teff_k": v[0], "m_v_abs": v[2]} for n, v in zip(points.names, values)]
         _label_points(ax, placed, fontsize=7 if len(placed) <= 40 else 5)
-    _annotate(fig, ax, title, skipped)
+    _annotate(fig, ax, title, points.n_skipped, len(values) if len(values) > LABEL_LIMIT and label else 0)
     fig.tight_layout()
 
     path = Path(path)
@@ -201,7 +275,7 @@ def plot_hr(table_or_rows, path, title="HR diagram of the night", label=True, dp
     # written in place: a caller that needs the file to appear whole (the night run) writes
     # to a temporary path of its own (specan.night.files.atomic_path)
     fig.savefig(path, format="png", dpi=dpi)
-    return {"path": str(path), "plotted": [p["name"] for p in placed], "skipped": skipped,
+    return {"path": str(path), "plotted": list(points.names[:len(values)]), "skipped": points.skipped,
             "xlim": tuple(ax.get_xlim()), "ylim": tuple(ax.get_ylim()), "loci": loci}
 
 
@@ -217,26 +291,26 @@ def _draw_loci(ax, scales) -> dict:
     return loci
 
 
-def _draw_stars(ax, placed):
+def _draw_stars(ax, values):
     """The stars with their error bars (a missing error drawn as none), or a note that there are none."""
-    if not placed:
+    if not len(values):
         ax.text(0.5, 0.5, "no classified stars", ha="center", va="center", transform=ax.transAxes)
         return
-    x = np.array([p["teff_k"] for p in placed])
-    y = np.array([p["m_v_abs"] for p in placed])
-    xe = np.array([p["teff_err_k"] if p["teff_err_k"] is not None else np.nan for p in placed])
-    ye = np.array([p["m_v_abs_err"] if p["m_v_abs_err"] is not None else np.nan for p in placed])
+    x, xe, y, ye = values.T
+    if len(values) > ERRORBAR_LIMIT:
+        ax.plot(x, y, ".", ms=1.5, color="k", alpha=0.3, zorder=3, label="stars of the night", rasterized=True)
+        return
     ax.errorbar(x, y, xerr=np.where(np.isfinite(xe), xe, 0.0), yerr=np.where(np.isfinite(ye), ye, 0.0),
                 fmt="o", ms=4, color="k", ecolor="0.45", elinewidth=0.8, capsize=1.5, zorder=3,
                 label="stars of the night")
 
 
-def _set_limits_and_ticks(ax, scales, placed):
+def _set_limits_and_ticks(ax, scales, values):
     """Limits from the loci and the stars, then inverted: hot on the left, bright at the top."""
     from matplotlib.ticker import FixedLocator, NullFormatter, NullLocator
 
-    allx = np.concatenate([scales["teff"].to_value(u.K), [p["teff_k"] for p in placed]])
-    ally = np.concatenate([scales["m_v"].to_value(u.mag), [p["m_v_abs"] for p in placed]])
+    allx = np.concatenate([scales["teff"].to_value(u.K), values[:, 0]])
+    ally = np.concatenate([scales["m_v"].to_value(u.mag), values[:, 2]])
     ax.set_xlim(allx.max() * 1.15, allx.min() / 1.15)
     ticks = [t for t in (50000, 30000, 20000, 15000, 10000, 7000, 5000, 4000, 3000, 2500)
              if allx.min() / 1.15 <= t <= allx.max() * 1.15]
@@ -247,14 +321,19 @@ def _set_limits_and_ticks(ax, scales, placed):
     ax.set_ylim(ally.max() + 1.0, ally.min() - 1.0)
 
 
-def _annotate(fig, ax, title, skipped):
+def _annotate(fig, ax, title, n_skipped, unlabelled=0):
     """Axis labels, title, legend, how many stars were not placed, and where the loci come from."""
     ax.set_xlabel("effective temperature (K)")
     ax.set_ylabel("absolute visual magnitude $M_V$")
     ax.set_title(title, fontsize=10)
     ax.legend(loc="lower left", fontsize=7, framealpha=0.8)
-    if skipped:
-        ax.text(0.99, 0.01, f"{len(skipped)} not placed (no type or class, or error)", ha="right", va="bottom",
+    notes = []
+    if n_skipped:
+        notes.append(f"{n_skipped} not placed (no type or class, or error)")
+    if unlabelled:
+        notes.append(f"{unlabelled} stars: too many to name")
+    if notes:
+        ax.text(0.99, 0.01, "; ".join(notes), ha="right", va="bottom",
                 fontsize=6, transform=ax.transAxes, color="0.4")
     fig.text(0.01, 0.005, "loci: specan/data/mk_scales.ecsv (Pecaut & Mamajek 2013; Martins et al. 2005; "
              "Schmidt-Kaler 1982; Alonso et al. 1999; Levesque et al. 2005; values from memory)",

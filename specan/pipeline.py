@@ -9,7 +9,8 @@ installation; the catalogue says which ran), draws its plots and writes:
         one row per input: the results with units, or ``status=error`` and the
         reason;
     ``plots/<file>-<id>.png``, ``plots/<file>-<id>_thumb.png``
-        per-spectrum figure and its thumbnail;
+        per-spectrum figure and its thumbnail, by default for the flagged
+        inputs only (see ``plots`` and ``plot_for`` of :func:`run`);
     ``night_diagram.png``
         the classified stars by temperature and luminosity;
     ``report.html``
@@ -23,9 +24,13 @@ Safety of results (why the work is laid out this way):
   file, then ``os.replace``) after its plots; the catalogue is assembled from
   the records of the inputs named on this run, so an interrupted run never
   leaves half a row, and a rerun never duplicates one;
+* the catalogue, the report and the night diagram are written from the
+  records a chunk of rows at a time: the memory of a run does not grow with
+  the number of inputs;
 * a record is current when the input's content hash and the run settings
-  (reader overrides, plot choice, specan's own code) match; current inputs
-  are not recomputed unless ``force``;
+  (reader overrides, stages, photometry, calibration, specan's own code)
+  match, and it has the figure the run asks for; current inputs are not
+  recomputed unless ``force``;
 * all workers (in-process, local processes, dask) run the same function,
   :func:`analyse_file`, and return plain data; only this process writes
   files, so results do not depend on how they were computed;
@@ -43,24 +48,25 @@ catalogue (``night.catalogue``) and the diagram and report
 from __future__ import annotations
 
 import contextlib
+import functools
 import hashlib
 import importlib
 import json
 import os
 import sys
 import time
-from dataclasses import dataclass, field
 from pathlib import Path
 
 from .errors import SpecanError
 from .night import executors
 from .night.catalogue import (CATALOGUE_FORMATS, CORE_COLUMNS, assemble_catalogue, catalogue_meta,  # noqa: F401
                               status_counts, write_catalogue)
-from .night.files import atomic_path  # noqa: F401 - part of this module's API
+from .night.files import atomic_path, flush_to_disk  # noqa: F401 - atomic_path: part of this module's API
 from .night.inputs import SPECTRUM_SUFFIXES, collect_inputs, safe_stem, sha256_file  # noqa: F401
 from .night.products import write_night_products
-from .night.records import RecordStore, code_fingerprint, not_run_record, record_key
-from .night.row import EMISSION_FLAG_LINES, LOW_SNR, Recorder, final_info, info_columns, lines_columns  # noqa: F401
+from .night.records import RecordStore, code_fingerprint, content_hash, not_run_record, record_key
+from .night.row import (EMISSION_FLAG_LINES, LOW_SNR, PLOT_CHOICES, Recorder, final_info, info_columns,  # noqa: F401
+                        lines_columns, plot_wanted)
 
 __all__ = [
     "STAGES",
@@ -142,37 +148,45 @@ def _stage_status(wanted=None) -> dict:
 
 
 def analyse_file(path, settings=None) -> dict:
-    """Run every available stage on one input and draw its plots.
+    """Run every available stage on one input and draw its plots when asked for.
 
     This is the unit of work sent to local processes and dask workers; it
     writes nothing and returns plain data, so results do not depend on where
-    it ran.
+    it ran. One carrier flows through the stages: the spectrum is read once,
+    prepared once, and that prepared spectrum is what the velocity, lines and
+    classify stages (and the figure) see.
 
     Parameters
     ----------
     path : str
         Input file.
     settings : dict, optional
-        ``{"overrides": {...}, "plots": bool, "stages": [...], "photometry":
-        path}``; ``overrides`` go to ``specan.read``; ``stages`` (default
-        all) names the stages to run; ``photometry`` is a per-object CSV
-        (see ``specan.physics.load_photometry``) for distances;
+        ``{"overrides": {...}, "plots": "flagged"|"all"|"none" (or a bool: all
+        or none), "plot_for": [names], "stages": [...], "photometry": path,
+        "calibration": path}``; ``overrides`` go to ``specan.read``;
+        ``plots`` says which inputs get a figure (see
+        :func:`specan.night.row.plot_wanted`; default ``all`` here, as before);
+        ``stages`` (default all) names the stages to run; ``photometry`` is a
+        per-object CSV (see ``specan.physics.load_photometry``) for distances;
         ``calibration`` an MK calibration file (default: the shipped one).
 
     Returns
     -------
     dict
         ``{"values": {column: value}, "units": {column: unit}, "plots":
-        {"full": bytes, "thumb": bytes} or {}}``.
+        {"full": bytes, "thumb": bytes} or {}, "input_sha256": content hash
+        (taken before reading), "drawable": whether a figure can be drawn}``.
     """
     settings = settings or {}
+    # hashed before reading: a file replaced meanwhile leaves a record that is stale, never wrong
+    content = content_hash(path)
     stages = _stage_status(settings.get("stages"))
     runs = {name for name, why in stages.items() if why is None}
     rec = Recorder(path)
     raw = _read(rec, path, dict(settings.get("overrides") or {}), stages["read"])
     if raw is None:
         rec.values["status"] = "error"
-        return {**rec.finish(), "plots": {}}
+        return {**rec.finish(), "plots": {}, "input_sha256": content, "drawable": False}
     spectrum = _prepare(rec, raw) if "prepare" in runs else raw
     # The velocity first: the lines stage matches each listed line within one resolution
     # element of its shifted position, so it needs the star's velocity (at rest it lost most
@@ -184,8 +198,23 @@ def analyse_file(path, settings=None) -> dict:
     if "physics" in runs and isinstance(classification, dict):
         _physics(rec, raw, velocity, classification, settings.get("photometry"))
     final_info(rec, spectrum)
-    plots = _plots(rec, path, spectrum, lines, velocity, classification) if settings.get("plots", True) else {}
-    return {**rec.finish(), "plots": plots}
+    result = rec.finish()
+    plots, drawable = {}, True
+    if plot_wanted(result["values"], *_plot_choice(settings)):
+        plots = _plots(rec, path, spectrum, lines, velocity, classification)
+        drawable = bool(plots)   # a figure that failed to draw is not retried on every rerun
+        result = rec.finish()    # the figure may have added a warning
+    return {**result, "plots": plots, "input_sha256": content, "drawable": drawable}
+
+
+def _plot_choice(settings):
+    """(choice, named) of the settings: which inputs get a figure (see ``plot_wanted``)."""
+    choice = settings.get("plots", "all")
+    if choice is True or choice is None:
+        choice = "all"
+    elif choice is False:
+        choice = "none"
+    return choice, tuple(settings.get("plot_for") or ())
 
 
 def _read(rec, path, overrides, unavailable=None):
@@ -217,7 +246,9 @@ def _velocity(rec, spectrum):
     velocity = rec.run_stage("velocity", _stage_function("velocity"), spectrum)
     if isinstance(velocity, dict):
         r_keys = ("resolving_power", "resolving_power_source")
-        rec.add_stage_dict("velocity", {k: v for k, v in velocity.items() if k not in r_keys})
+        # medium_assumed: the reader's column already (the same fact, one column)
+        rec.add_stage_dict("velocity", {k: v for k, v in velocity.items()
+                                        if k not in r_keys and k != "medium_assumed"})
         if rec.values.get("resolving_power") is None:   # not stated: the velocity stage's estimate
             for key in r_keys:
                 rec.set(key, velocity.get(key))
@@ -329,41 +360,82 @@ def _photometry_row(path, name, rec):
 # --------------------------------------------------------------------------- the night
 
 
-@dataclass
 class RunSummary:
     """What a run did.
 
     Attributes
     ----------
     catalogue : astropy.table.Table
-        The catalogue as written.
+        The catalogue as written (read back from ``catalogue.ecsv`` when first asked
+        for: a run keeps no table of the night in memory).
     outputs : dict
         Name -> path of each output (catalogues, report, night diagram).
     counts : dict
         Rows per status (``ok``, ``partial``, ``error``, ``not_run``).
     reused : int
         Inputs whose stored results were current and were not recomputed.
+    analysed : int
+        Inputs analysed by this run.
     stages : dict
         Stage -> None if it ran, else why it did not.
     interrupted : bool
         True if the run was stopped before every input was done.
     seconds : float
         Wall-clock duration.
+    notes : list of str
+        How the night products were made, and what could not be.
+    flags : list of (str, int)
+        Rows raising each flag, most frequent first.
+    failed_inputs : list of (str, str)
+        (file, reason) of the first :data:`MAX_FAILED_KEPT` failed inputs.
+    plotted : int
+        Rows with a per-spectrum figure.
+    medium_assumed : int
+        Rows whose wavelength medium the reader assumed.
     """
 
-    catalogue: object
-    outputs: dict
-    counts: dict
-    reused: int
-    stages: dict
-    interrupted: bool = False
-    seconds: float = 0.0
-    notes: list = field(default_factory=list)
+    def __init__(self, catalogue=None, outputs=None, counts=None, reused=0, stages=None, interrupted=False,
+                 seconds=0.0, notes=None, analysed=0, flags=(), failed_inputs=(), plotted=0, medium_assumed=0):
+        self._catalogue = catalogue
+        self.outputs = dict(outputs or {})
+        self.counts = dict(counts or {})
+        self.reused, self.analysed = int(reused), int(analysed)
+        self.stages = dict(stages or {})
+        self.interrupted, self.seconds = bool(interrupted), float(seconds)
+        self.notes = list(notes or [])
+        self.flags, self.failed_inputs = list(flags), list(failed_inputs)
+        self.plotted, self.medium_assumed = int(plotted), int(medium_assumed)
+
+    @property
+    def catalogue(self):
+        """The night catalogue (loaded from ``catalogue.ecsv`` on first use)."""
+        if self._catalogue is None and self.outputs.get("ecsv") is not None:
+            from astropy.table import Table
+
+            self._catalogue = Table.read(self.outputs["ecsv"], format="ascii.ecsv")
+        return self._catalogue
+
+    @property
+    def inputs(self) -> int:
+        """Rows of the catalogue (one per input)."""
+        return int(sum(self.counts.values()))
 
     @property
     def failed(self) -> int:
         """Inputs that failed (status ``error``)."""
         return int(self.counts.get("error", 0))
+
+    @property
+    def rate(self) -> float:
+        """Inputs analysed per second of the run (0 when none was)."""
+        return self.analysed / self.seconds if self.seconds > 0 else 0.0
+
+
+#: Failed inputs a summary names (the catalogue has them all).
+MAX_FAILED_KEPT = 100
+
+#: Records per chunk when the catalogue and report are written (memory per chunk, not per night).
+WRITE_CHUNK = 500
 
 
 class RunInterrupted(KeyboardInterrupt):
@@ -375,8 +447,13 @@ class RunInterrupted(KeyboardInterrupt):
 
 
 def run(paths, out_dir, jobs=1, dask=None, force=False, formats=("ecsv",), overrides=None,
-        plots=True, report=True, progress=None, stages=None, photometry=None, calibration=None) -> RunSummary:
+        plots="flagged", report=True, progress=None, stages=None, photometry=None, calibration=None,
+        plot_for=None) -> RunSummary:
     """Analyse a night: every input through every available stage, then catalogue and report.
+
+    Results are stored one record per input as they come, and the catalogue,
+    the night diagram and the report are written from the records a chunk at
+    a time, so the memory a run needs does not grow with the number of inputs.
 
     Parameters
     ----------
@@ -395,8 +472,17 @@ def run(paths, out_dir, jobs=1, dask=None, force=False, formats=("ecsv",), overr
         Catalogue formats among ``CATALOGUE_FORMATS``; ECSV is always written.
     overrides : dict, optional
         Reader overrides for every input (see ``specan.read``).
-    plots, report : bool
-        Draw per-spectrum plots / write the night diagram and HTML report.
+    plots : {"flagged", "all", "none"} or bool
+        Which inputs get a per-spectrum figure: ``flagged`` (default) the rows
+        with a flag or a declined or failed stage, ``all`` every readable input,
+        ``none`` none; True and False mean ``all`` and ``none``. The inputs named
+        in ``plot_for`` are drawn whatever the choice. The choice is not part of
+        the stored results' settings: asking for more figures later redraws only
+        the inputs that lack one.
+    plot_for : iterable of str, optional
+        Objects or files (path, file name, or name without suffix) to draw.
+    report : bool
+        Write the night diagram and HTML report.
     stages : sequence of str, optional
         Run only these stages (``read`` always runs); default every stage.
     photometry : str or os.PathLike, optional
@@ -408,7 +494,7 @@ def run(paths, out_dir, jobs=1, dask=None, force=False, formats=("ecsv",), overr
         MK calibration file from ``specan calibrate`` (default: the shipped
         one); its content is part of the settings too.
     progress : bool, optional
-        Show a progress bar; default: only when stderr is a terminal.
+        Show a progress bar (rate and time left); default: only when stderr is a terminal.
 
     Returns
     -------
@@ -418,27 +504,27 @@ def run(paths, out_dir, jobs=1, dask=None, force=False, formats=("ecsv",), overr
     out = Path(out_dir)
     out.mkdir(parents=True, exist_ok=True)
     formats = _checked_formats(formats)
+    choice = _checked_plot_choice(plots)
+    named = tuple(str(n) for n in (plot_for or ()))
     inputs = collect_inputs(paths)
     wanted = _checked_stages(stages)
     stages = _stage_status(wanted)
-    settings = _run_settings(overrides, plots, wanted, photometry, calibration)
+    settings = _run_settings(overrides, choice, named, wanted, photometry, calibration)
     settings_hash = _settings_hash(settings, stages, photometry, calibration)
     store = RecordStore(out)
-    keys = {path: record_key(path, settings_hash) for path in inputs}
-    records = {} if force else _current_records(store, keys)
-    reused = len(records)
+    wants = functools.partial(plot_wanted, choice=choice, named=named)
+    todo = list(inputs) if force else [p for p in inputs if _current(store, p, settings_hash, wants) is None]
+    reused = len(inputs) - len(todo)
     with _progress_bar(len(inputs), reused, progress) as bar:
-        new, interrupted = _analyse_rest([p for p in inputs if p not in records], settings, store, keys,
-                                         executors.results, jobs, dask, bar)
-    records.update(new)
-    ordered = [records.get(p) or not_run_record(p, "run interrupted before this input; rerun to finish")
-               for p in inputs]
-    counts = status_counts(ordered)
-    catalogue = assemble_catalogue(ordered, meta=catalogue_meta(len(inputs), counts, interrupted, stages,
-                                                                settings["overrides"]))
-    outputs, notes = _write_outputs(catalogue, out, formats, stages, report)
-    summary = RunSummary(catalogue=catalogue, outputs=outputs, counts=counts, reused=reused, stages=stages,
-                         interrupted=interrupted, seconds=time.perf_counter() - t0, notes=notes)
+        analysed, interrupted = _analyse_rest(todo, settings, settings_hash, store, executors.results, jobs,
+                                              dask, bar)
+    del todo
+    night = _write_night(inputs, store, settings_hash, out, formats, stages, settings, report, interrupted)
+    flush_to_disk()
+    summary = RunSummary(outputs=night["outputs"], counts=night["counts"], reused=reused, stages=stages,
+                         interrupted=interrupted, seconds=time.perf_counter() - t0, notes=night["notes"],
+                         analysed=analysed, flags=night["flags"], failed_inputs=night["failed"],
+                         plotted=night["plotted"], medium_assumed=night["medium_assumed"])
     if interrupted:
         raise RunInterrupted(summary)
     return summary
@@ -453,10 +539,22 @@ def _checked_formats(formats) -> list:
     return formats
 
 
-def _run_settings(overrides, plots, wanted, photometry, calibration) -> dict:
+def _checked_plot_choice(plots) -> str:
+    """The plot choice as one of PLOT_CHOICES (True: all, False: none)."""
+    if plots is True:
+        return "all"
+    if plots is False or plots is None:
+        return "none"
+    if plots not in PLOT_CHOICES:
+        raise ValueError(f"unknown plot choice {plots!r}; choose from {', '.join(PLOT_CHOICES)}")
+    return plots
+
+
+def _run_settings(overrides, plots, plot_for, wanted, photometry, calibration) -> dict:
     """The settings every input is analysed with (see :func:`analyse_file`)."""
-    settings = {"overrides": {k: overrides[k] for k in sorted(overrides or {})}, "plots": bool(plots),
-                "stages": wanted, "photometry": None if photometry is None else os.path.abspath(photometry),
+    settings = {"overrides": {k: overrides[k] for k in sorted(overrides or {})}, "plots": plots,
+                "plot_for": list(plot_for), "stages": wanted,
+                "photometry": None if photometry is None else os.path.abspath(photometry),
                 "calibration": None if calibration is None else os.path.abspath(calibration)}
     if calibration is not None and not os.path.isfile(calibration):
         raise ValueError(f"calibration file {calibration} does not exist")
@@ -464,40 +562,44 @@ def _run_settings(overrides, plots, wanted, photometry, calibration) -> dict:
 
 
 def _settings_hash(settings, stages, photometry, calibration) -> str:
-    """Hash of all a result depends on besides its input: settings, stages, code, photometry, calibration."""
+    """Hash of all a result depends on besides its input: settings, stages, code, photometry, calibration.
+
+    Which figures are drawn is not part of it: a record lacking a figure now asked for is
+    redone on its own (see :meth:`specan.night.records.RecordStore.current`).
+    """
     phot_hash = sha256_file(photometry) if photometry is not None and os.path.isfile(photometry) else None
     cal_hash = sha256_file(calibration) if calibration is not None else None
+    results = {k: v for k, v in settings.items() if k not in ("plots", "plot_for")}
     return hashlib.sha256(json.dumps(
-        {"settings": settings, "code": code_fingerprint(), "stages": stages, "photometry": phot_hash,
+        {"settings": results, "code": code_fingerprint(), "stages": stages, "photometry": phot_hash,
          "calibration": cal_hash},
         sort_keys=True,
         default=str).encode()).hexdigest()
 
 
-def _current_records(store, keys) -> dict:
-    """Input -> its stored record, for the inputs whose stored record is current."""
-    found = {}
-    for path, key in keys.items():
-        record = store.current(path, key)
-        if record is not None:
-            found[path] = record
-    return found
+def _current(store, path, settings_hash, plot_wanted_for=None):
+    """The stored record of ``path`` when it is current, else None (no file is hashed when none is stored)."""
+    if not store.exists(path):
+        return None
+    return store.current(path, record_key(path, settings_hash), plot_wanted_for)
 
 
 @contextlib.contextmanager
 def _progress_bar(total, done, progress):
-    """A progress bar over the inputs (shown when asked, by default only on a terminal)."""
+    """A progress bar over the inputs with the rate and the time left (by default only on a terminal)."""
     from tqdm import tqdm
 
     show = sys.stderr.isatty() if progress is None else bool(progress)
-    bar = tqdm(total=total, initial=done, disable=not show, unit="spectrum", desc="specan run", file=sys.stderr)
+    bar = tqdm(total=total, initial=done, disable=not show, unit="spectrum", desc="specan run", file=sys.stderr,
+               smoothing=0.05, bar_format="{desc}: {percentage:3.0f}%|{bar}| {n_fmt}/{total_fmt} "
+                                         "[{elapsed} elapsed, {remaining} left, {rate_fmt}]")
     try:
         yield bar
     finally:
         bar.close()
 
 
-def _analyse_rest(todo, settings, store, keys, executor, jobs, dask, bar):
+def _analyse_rest(todo, settings, settings_hash, store, executor, jobs, dask, bar):
     """Analyse the inputs that have no current record, storing each record as its result comes.
 
     Parameters
@@ -506,10 +608,10 @@ def _analyse_rest(todo, settings, store, keys, executor, jobs, dask, bar):
         Inputs to analyse.
     settings : dict
         See :func:`analyse_file`.
+    settings_hash : str
+        The settings part of every record key.
     store : specan.night.records.RecordStore
         Where the records go.
-    keys : dict
-        Input -> its record key.
     executor : callable
         ``executor(func, todo, settings, jobs=, dask=)`` yielding ``(path, result)``
         (see :func:`specan.night.executors.results`).
@@ -520,36 +622,123 @@ def _analyse_rest(todo, settings, store, keys, executor, jobs, dask, bar):
 
     Returns
     -------
-    records : dict
-        Input -> stored record.
+    analysed : int
+        Records stored.
     interrupted : bool
         Ctrl-C or SIGTERM stopped the work before every input was done.
     """
-    records, interrupted = {}, False
+    analysed, interrupted = 0, False
     with executors.sigterm_as_interrupt():
         results = executor(analyse_file, todo, settings, jobs=jobs, dask=dask)
         try:
             for path, result in results:
-                records[path] = store.put(path, keys[path], result)
+                store.put(path, record_key(path, settings_hash, result.get("input_sha256")), result)
+                analysed += 1
                 bar.update(1)
         except KeyboardInterrupt:
+            # The signal may land between a record reaching the disk and its being counted
+            # here; the catalogue is made from the disk, which is the truth.
             interrupted = True
             results.close()
-    if interrupted:
-        # The signal may land between a record reaching the disk and its being noted here; the
-        # disk is the truth, so an input whose current record exists counts as done.
-        records.update(_current_records(store, {p: keys[p] for p in todo if p not in records}))
-    return records, interrupted
+    return analysed, interrupted
 
 
-def _write_outputs(catalogue, out, formats, stages, report):
-    """Write the catalogue in each format, then the night products; (outputs, notes)."""
+def _night_records(inputs, store, settings_hash, interrupted, present=None):
+    """(index, record) of every input in order: its current record, or a ``not_run`` one.
+
+    ``present`` (a boolean array, one per input) says which inputs have a current record
+    when a first pass has found out already; otherwise each is checked (and noted in it).
+    """
+    why = ("run interrupted before this input; rerun to finish" if interrupted else
+           "no current result stored; rerun to finish")
+    for i, path in enumerate(inputs):
+        record = None
+        if present is None or present[i]:
+            record = store.load(path) if present is not None else _current(store, path, settings_hash)
+        yield i, record if record is not None else not_run_record(path, why)
+
+
+def _chunked(items, size):
+    chunk = []
+    for item in items:
+        chunk.append(item)
+        if len(chunk) == size:
+            yield chunk
+            chunk = []
+    if chunk:
+        yield chunk
+
+
+class _Tally:
+    """What the summary and the report head say about the night, gathered one record at a time."""
+
+    def __init__(self):
+        self.counts, self.flags, self.failed, self.distinct = {}, {}, [], {"calibration": [], "resolving_power": []}
+        self.plotted = self.medium_assumed = 0
+
+    def add(self, record):
+        v = record["values"]
+        status = v.get("status", "error")
+        self.counts[status] = self.counts.get(status, 0) + 1
+        for flag in {f for f in str(v.get("flags") or "").split(",") if f}:
+            self.flags[flag] = self.flags.get(flag, 0) + 1
+        if status == "error" and len(self.failed) < MAX_FAILED_KEPT:
+            self.failed.append((str(v.get("file")), str(v.get("reason") or "")))
+        self.plotted += bool(v.get("plot"))
+        self.medium_assumed += v.get("medium_assumed") is True
+        for name, seen in self.distinct.items():
+            value = v.get(name)
+            if value is not None and str(value) not in seen and len(seen) <= 8:
+                seen.append(str(value))
+
+    def flag_list(self):
+        return sorted(self.flags.items(), key=lambda t: (-t[1], t[0]))
+
+
+def _write_night(inputs, store, settings_hash, out, formats, stages, settings, report, interrupted) -> dict:
+    """Catalogue in each format, then the night diagram and report, from the stored records.
+
+    Two passes over the records: the first learns the columns and counts, the second writes
+    the rows a chunk at a time (catalogue, report rows, diagram points); memory holds one
+    chunk, not the night.
+    """
+    import numpy as np
+
+    from .night.catalogue import CatalogueSchema, CatalogueWriter
+
+    present = np.zeros(len(inputs), bool)
+    schema, tally = CatalogueSchema(), _Tally()
+    for i, record in _night_records(inputs, store, settings_hash, interrupted):
+        present[i] = record["values"].get("status") != "not_run"
+        schema.add(record)
+        tally.add(record)
+    meta = catalogue_meta(len(inputs), tally.counts, interrupted, stages, settings["overrides"])
     outputs, notes = {}, []
     # Catalogue first: even if the report fails, the results are safe.
     with executors.sigterm_as_interrupt():
-        for fmt, path in zip(formats, write_catalogue(catalogue, out, formats)):
-            outputs[fmt] = path
+        night_rows = None
         if report:
-            products, notes = write_night_products(catalogue, out, stages)
-            outputs.update(products)
-    return outputs, notes
+            from .night.products import NightRows
+
+            night_rows = NightRows(out, schema.table([]))
+        try:
+            with CatalogueWriter(schema, out, formats, meta) as writer:
+                for chunk in _chunked(_night_records(inputs, store, settings_hash, interrupted, present),
+                                      WRITE_CHUNK):
+                    table = schema.table([r for _, r in chunk])
+                    writer.write(table)
+                    if night_rows is not None:
+                        night_rows.add(table, chunk[0][0])
+            outputs.update(writer.paths)
+            if night_rows is not None:
+                night = {"inputs": len(inputs), "counts": tally.counts, "flags": tally.flag_list(),
+                         "created_utc": meta["created_utc"], "specan_version": meta["specan_version"],
+                         "distinct": tally.distinct, "plotted": tally.plotted, "plots": settings["plots"],
+                         "plot_for": settings["plot_for"], "medium_assumed": tally.medium_assumed}
+                products, notes = night_rows.write_products(night, stages)
+                outputs.update(products)
+        finally:
+            if night_rows is not None:
+                night_rows.close()
+    return {"outputs": outputs, "notes": notes, "counts": tally.counts, "flags": tally.flag_list(),
+            "failed": tally.failed, "plotted": tally.plotted, "medium_assumed": tally.medium_assumed}

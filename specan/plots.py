@@ -4,6 +4,11 @@ Figures are drawn on ``matplotlib.figure.Figure`` with the Agg canvas rather
 than through pyplot: no global figure registry (memory stays flat over
 thousands of spectra) and no GUI backend, so this works in worker processes
 and on machines without a display.
+
+A process draws every spectrum on one figure, made once and cleared between
+spectra (making a figure and its grid of axes was a fifth of a drawing), and
+the figure is rendered once: the PNG is encoded from the rendered pixels, and
+the thumbnail is the spectrum panel of the same pixels, shrunk.
 """
 
 from __future__ import annotations
@@ -11,6 +16,10 @@ from __future__ import annotations
 import io
 
 import numpy as np
+
+#: Resolution (dots per inch) of the per-spectrum figure, and the thumbnail's size in pixels.
+FIGURE_DPI = 90
+THUMB_SIZE = (144, 54)
 
 __all__ = ["spectrum_figures", "night_diagram"]
 
@@ -90,9 +99,11 @@ def _draw_spectrum(ax, spectrum, lines, normalized, small=False):
                 break
             if all(abs(x_pt[i] - x_pt[j]) >= 1.3 * LINE_LABEL_SIZE for j in kept):
                 kept.append(i)
+        # one collection for the markers (an axvline each was a tenth of the drawing)
+        ax.vlines([candidates[i][0] for i in kept], 0.0, 1.0, transform=ax.get_xaxis_transform(),
+                  color="tab:blue", lw=0.4, alpha=0.5)
         for i in sorted(kept):
             w, label = candidates[i]
-            ax.axvline(w, color="tab:blue", lw=0.4, alpha=0.5)
             ax.text(w, top, label, rotation=90, fontsize=LINE_LABEL_SIZE, ha="center", va="top", color="tab:blue",
                     clip_on=True)
     ax.set_xlabel("wavelength (Angstrom)")
@@ -218,6 +229,73 @@ def _draw_criteria(ax, classification):
     ax.set_xlabel("criterion value")
 
 
+_REUSED = {}
+
+
+def _spectrum_figure():
+    """This process's figure for spectra and its three axes (spectrum, CCF, criteria), made once."""
+    if "figure" not in _REUSED:
+        fig = _canvas(10, 7)
+        fig.set_dpi(FIGURE_DPI)
+        # fixed margins: tight_layout would draw the figure twice (a fifth of the time per spectrum)
+        grid = fig.add_gridspec(2, 2, height_ratios=[1.2, 1], left=0.07, right=0.98, bottom=0.08, top=0.95,
+                                hspace=0.3, wspace=0.3)
+        axes = (fig.add_subplot(grid[0, :]), fig.add_subplot(grid[1, 0]), fig.add_subplot(grid[1, 1]))
+        _REUSED["figure"] = (fig, axes)
+    fig, axes = _REUSED["figure"]
+    for ax in axes:
+        _emptied(ax)
+    return fig, axes
+
+
+def _emptied(ax):
+    """The axes without what the previous spectrum drew, its ticks kept.
+
+    ``Axes.clear`` would drop the tick objects too, and making them again on the next draw
+    was a third of a figure's time.
+    """
+    from matplotlib.ticker import AutoLocator, ScalarFormatter
+
+    for artist in [*ax.lines, *ax.collections, *ax.texts, *ax.patches, *ax.images]:
+        artist.remove()
+    if ax.get_legend() is not None:
+        ax.get_legend().remove()
+    ax.set_title("")
+    ax.set_xlabel("")
+    ax.set_ylabel("")
+    for axis in (ax.xaxis, ax.yaxis):   # the criteria panel names its ticks
+        axis.set_major_locator(AutoLocator())
+        axis.set_major_formatter(ScalarFormatter())
+    ax.relim()
+    ax.set_autoscale_on(True)
+    ax.set_axis_on()   # a panel with nothing to show was switched off for the previous spectrum
+
+
+def _encode_png(rgb) -> bytes:
+    """PNG bytes of an (h, w, 3) uint8 image."""
+    from PIL import Image
+
+    buf = io.BytesIO()
+    # fast compression: the figures are line drawings on white, level 1 is within a few per cent
+    # of the default's size at a fraction of its time
+    Image.fromarray(rgb).save(buf, format="png", compress_level=1)
+    return buf.getvalue()
+
+
+def _thumbnail(rgb, ax) -> bytes:
+    """The spectrum panel of the rendered figure (inside its frame), shrunk to THUMB_SIZE."""
+    from PIL import Image
+
+    height = rgb.shape[0]
+    box = ax.get_window_extent()
+    x0, x1 = int(np.ceil(box.x0)) + 1, int(np.floor(box.x1)) - 1
+    y0, y1 = height - int(np.floor(box.y1)) + 1, height - int(np.ceil(box.y0)) - 1   # pixel rows from the top
+    panel = Image.fromarray(np.ascontiguousarray(rgb[y0:y1, x0:x1]))
+    buf = io.BytesIO()
+    panel.resize(THUMB_SIZE, Image.Resampling.BOX).save(buf, format="png", compress_level=1)
+    return buf.getvalue()
+
+
 def spectrum_figures(spectrum, lines=None, velocity=None, classification=None, title="") -> dict:
     """Draw one spectrum's figure and thumbnail.
 
@@ -235,27 +313,20 @@ def spectrum_figures(spectrum, lines=None, velocity=None, classification=None, t
     Returns
     -------
     dict
-        ``{"full": PNG bytes, "thumb": PNG bytes}``.
+        ``{"full": PNG bytes, "thumb": PNG bytes}``: the figure, and its spectrum
+        panel shrunk to ``THUMB_SIZE`` pixels.
     """
     from .obsinfo import get_info
 
     normalized = bool(get_info(spectrum).normalized)
-    fig = _canvas(10, 7)
-    # fixed margins: tight_layout would draw the figure twice (a fifth of the time per spectrum)
-    grid = fig.add_gridspec(2, 2, height_ratios=[1.2, 1], left=0.07, right=0.98, bottom=0.08, top=0.95,
-                            hspace=0.3, wspace=0.3)
-    ax = fig.add_subplot(grid[0, :])
+    fig, (ax, ax_ccf, ax_criteria) = _spectrum_figure()
     _draw_spectrum(ax, spectrum, lines, normalized)
     ax.set_title(title, fontsize=9)
-    _draw_ccf(fig.add_subplot(grid[1, 0]), velocity, spectrum, lines)
-    _draw_criteria(fig.add_subplot(grid[1, 1]), classification)
-    full = _png(fig, dpi=90)
-
-    small = _canvas(2.4, 0.9)
-    ax = small.add_axes([0.01, 0.03, 0.98, 0.94])
-    _draw_spectrum(ax, spectrum, None, normalized, small=True)
-    thumb = _png(small, dpi=60)
-    return {"full": full, "thumb": thumb}
+    _draw_ccf(ax_ccf, velocity, spectrum, lines)
+    _draw_criteria(ax_criteria, classification)
+    fig.canvas.draw()
+    rgb = np.asarray(fig.canvas.buffer_rgba())[:, :, :3]
+    return {"full": _encode_png(rgb), "thumb": _thumbnail(rgb, ax)}
 
 
 def night_diagram(catalogue, path) -> str:

@@ -15,12 +15,14 @@ from __future__ import annotations
 import base64
 import html
 import math
+import shutil
+import tempfile
 import urllib.parse
 from pathlib import Path
 
 import numpy as np
 
-__all__ = ["write_report", "report_rows", "flag_counts"]
+__all__ = ["write_report", "report_rows", "flag_counts", "ReportRows", "write_report_page", "night_of"]
 
 #: Catalogue columns shown in the page (those present), in this order.
 SHOWN = (
@@ -63,6 +65,7 @@ tr.error td{background:#fde2e2} tr.flagged td{background:#fff4d6} tr.not_run td{
 td.long{min-width:16em;max-width:28em;font-size:11px;color:#555}
 img.thumb{display:block;width:144px;height:54px}
 .muted{color:#777}
+.medium-note{display:block;color:#a40;font-size:11px}
 """
 
 # Sorting: click a header to sort by it (numbers by value, text alphabetically),
@@ -183,16 +186,19 @@ def _distinct(catalogue, name):
     return seen
 
 
-def _assumptions_html(catalogue) -> str:
-    """What every number in the report rests on (calibration, frames, offline data, resolution)."""
+def _assumptions_html(distinct) -> str:
+    """What every number in the report rests on (calibration, frames, offline data, resolution).
+
+    ``distinct`` maps ``calibration`` and ``resolving_power`` to their distinct values in the night.
+    """
     from ._offline import IERS_NOTE
     from .obsinfo import AIR_VACUUM_FORMULA
 
     items = []
-    cals = _distinct(catalogue, "calibration")
+    cals = distinct.get("calibration") or []
     if cals:
         items.append("MK calibration: " + "; ".join(_esc(c) for c in cals) + ".")
-    powers = _distinct(catalogue, "resolving_power")
+    powers = distinct.get("resolving_power") or []
     if powers:
         items.append("Resolving power as stated or assumed per file: " + ", ".join(_esc(p) for p in powers[:8])
                      + ("..." if len(powers) > 8 else "") + "; spectra are smoothed to the calibration's "
@@ -238,14 +244,111 @@ def write_report(catalogue, out_dir, path, diagram=None, stages=None) -> Path:
     target = Path(path)
     with target.open("w", encoding="utf-8") as fh:
         emit = fh.write
-        emit(_head_html(catalogue, stages, diagram))
-        emit(_assumptions_html(catalogue))
+        emit(_head_html(night_of(catalogue), stages, diagram))
         emit(_table_head_html(catalogue))
         for order, i in enumerate(report_rows(catalogue)):
             emit(_row_html(catalogue, out, cols, order, i))
-        emit("</tbody></table>")
-        emit(f"<script>{_SCRIPT}</script></body></html>")
+        emit(_TAIL)
     return target
+
+
+_TAIL = f"</tbody></table><script>{_SCRIPT}</script></body></html>"
+
+#: Report groups in page order: rows needing a look first (see :func:`_needs_look`).
+_GROUPS = 3
+
+
+class ReportRows:
+    """The report's rows, written as the catalogue's chunks come, a temporary file per group.
+
+    The page shows rows needing a look first (errors, then flagged or declined rows, then
+    the rest; within a group in input order): each group's rows go to their own temporary
+    file, and :func:`write_report_page` joins them, so no row is held in memory.
+
+    Parameters
+    ----------
+    out_dir : str or os.PathLike
+        Output folder; plot paths in the catalogue are relative to it.
+    columns : astropy.table.Table
+        The catalogue with no rows: its columns and units make the table head.
+    """
+
+    def __init__(self, out_dir, columns):
+        self.out = Path(out_dir)
+        self.columns = columns
+        self._files = [tempfile.TemporaryFile("w+", encoding="utf-8") for _ in range(_GROUPS)]
+
+    def add(self, chunk, first_index=0):
+        """Write the rows of a catalogue chunk; ``first_index`` is the input number of its first row."""
+        cols = {name: chunk[name] for name, _ in _shown(chunk)}
+        status = [str(v) for v in chunk["status"]]
+        flags = [str(v) for v in chunk["flags"]]
+        for i in range(len(chunk)):
+            group = _needs_look(status[i], flags[i])
+            # the order a sort falls back on: the page's own (group, then input)
+            order = group * 10 ** 12 + first_index + i
+            self._files[group].write(_row_html(chunk, self.out, cols, order, i))
+
+    def copy_to(self, fh):
+        """Write every row, in page order, to the open page ``fh``."""
+        for f in self._files:
+            f.flush()
+            f.seek(0)
+            shutil.copyfileobj(f, fh)
+
+    def close(self):
+        """Drop the temporary files."""
+        for f in self._files:
+            f.close()
+
+
+def write_report_page(path, rows, night, stages=None, diagram=None) -> Path:
+    """Write the HTML report from rows written beforehand (:class:`ReportRows`).
+
+    Parameters
+    ----------
+    path : str or os.PathLike
+        Where to write the page.
+    rows : ReportRows
+        The catalogue's rows.
+    night : dict
+        What the page's head says (see :func:`night_of`): ``inputs``, ``counts``,
+        ``flags``, ``created_utc``, ``specan_version``, ``distinct``, ``plotted``,
+        ``plots``, ``plot_for``, ``medium_assumed``.
+    stages : dict, optional
+        Stage -> None if available, else why it did not run.
+    diagram : str or os.PathLike, optional
+        Night diagram PNG to embed.
+
+    Returns
+    -------
+    pathlib.Path
+    """
+    target = Path(path)
+    with target.open("w", encoding="utf-8") as fh:
+        fh.write(_head_html(night, stages, diagram))
+        fh.write(_table_head_html(rows.columns))
+        rows.copy_to(fh)
+        fh.write(_TAIL)
+    return target
+
+
+def night_of(catalogue) -> dict:
+    """What the report's head says about a night, from its catalogue table (see :func:`write_report_page`)."""
+    counts = {}
+    for v in catalogue["status"]:
+        counts[str(v)] = counts.get(str(v), 0) + 1
+    plotted = 0
+    if "plot" in catalogue.colnames:
+        plotted = sum(1 for v in catalogue["plot"] if not np.ma.is_masked(v) and str(v))
+    assumed = 0
+    if "medium_assumed" in catalogue.colnames:
+        assumed = int(np.sum(np.ma.filled(np.asarray(catalogue["medium_assumed"]) == True, False)))  # noqa: E712
+    return {"inputs": len(catalogue), "counts": counts, "flags": flag_counts(catalogue),
+            "created_utc": catalogue.meta.get("created_utc", ""),
+            "specan_version": catalogue.meta.get("specan_version", ""),
+            "distinct": {name: _distinct(catalogue, name) for name in ("calibration", "resolving_power")},
+            "plotted": plotted, "plots": None, "plot_for": [], "medium_assumed": assumed}
 
 
 def _shown(catalogue):
@@ -256,22 +359,24 @@ def _shown(catalogue):
     return shown
 
 
-def _head_html(catalogue, stages, diagram) -> str:
-    """The page's head and what comes before the tables: summary, flags, stages, night diagram."""
-    counts = {}
-    for s in catalogue["status"]:
-        counts[str(s)] = counts.get(str(s), 0) + 1
+def _head_html(night, stages, diagram) -> str:
+    """The page's head and what comes before the table: summary, flags, figures, stages, diagram, assumptions."""
     parts = ["\n".join(["<!DOCTYPE html>", '<html lang="en"><head><meta charset="utf-8">',
                         "<title>specan night report</title>", f"<style>{_STYLE}</style></head><body>",
                         "<h1>Night report</h1>"])]
-    summary = ", ".join(f"{_esc(n)} {_esc(k)}" for k, n in sorted(counts.items()))
-    parts.append(f'<p id="summary">{len(catalogue)} inputs: {summary}. '
-                 f'Created {_esc(catalogue.meta.get("created_utc", ""))} by specan '
-                 f'{_esc(catalogue.meta.get("specan_version", ""))}.</p>')
-    flagged = flag_counts(catalogue)
-    if flagged:
+    summary = ", ".join(f"{_esc(n)} {_esc(k)}" for k, n in sorted(night["counts"].items()))
+    parts.append(f'<p id="summary">{night["inputs"]} inputs: {summary}. '
+                 f'Created {_esc(night.get("created_utc", ""))} by specan '
+                 f'{_esc(night.get("specan_version", ""))}.</p>')
+    if night["flags"]:
         parts.append('<p id="flags">Flags raised: '
-                     + ", ".join(f'<span class="flag">{_esc(k)}</span> {n}' for k, n in flagged) + ".</p>")
+                     + ", ".join(f'<span class="flag">{_esc(k)}</span> {n}' for k, n in night["flags"]) + ".</p>")
+    parts.append(_plots_html(night))
+    if night.get("medium_assumed"):
+        parts.append(f'<p id="medium">{night["medium_assumed"]} of {night["inputs"]} spectra come from files '
+                     "that do not state their wavelength medium (air or vacuum); the reader assumed it "
+                     "(see the medium column and each row's note). A wrong assumption moves the velocity by "
+                     f"about {_medium_shift():.0f} km/s; rerun with --medium air or --medium vacuum.</p>")
     if stages:
         parts.append(_stages_html(stages))
     if diagram is not None:
@@ -279,7 +384,41 @@ def _head_html(catalogue, stages, diagram) -> str:
         if uri:
             parts.append(f'<h2>Night diagram</h2><img id="night-diagram" src="{uri}" '
                          'alt="night diagram: temperature against luminosity class">')
+    parts.append(_assumptions_html(night.get("distinct") or {}))
     return "".join(parts)
+
+
+def _plots_html(night) -> str:
+    """Which rows have a per-spectrum figure, and how to ask for the others."""
+    how = {"flagged": "drawn for the rows with a flag, a declined or a failed stage",
+           "all": "drawn for every spectrum that could be read",
+           "none": "not asked for"}.get(night.get("plots"), "as the run asked")
+    named = night.get("plot_for") or []
+    if named:
+        how += ", and for " + ", ".join(_esc(n) for n in named[:10]) + ("..." if len(named) > 10 else "")
+    return (f'<p id="plots">Per-spectrum figures: {night.get("plotted", 0)} of {night["inputs"]} rows have one '
+            f"({_esc(how)}); the others show \"no plot\". <code>specan run ... --plots all</code> draws every "
+            "spectrum, <code>--plot-for NAME</code> the ones named; only the figures missing are drawn.</p>")
+
+
+def _medium_shift() -> float:
+    from .night.row import medium_shift_kms
+
+    return medium_shift_kms()
+
+
+def _medium_note(catalogue, i) -> str:
+    """A row's note when the reader assumed its wavelength medium, saying what a wrong guess costs."""
+    if "medium_assumed" not in catalogue.colnames:
+        return ""
+    value = catalogue["medium_assumed"][i]
+    if np.ma.is_masked(value) or not bool(value):
+        return ""
+    medium = str(catalogue["medium"][i]) if "medium" in catalogue.colnames else "air"
+    other, sign = ("vacuum", "more negative") if medium != "vacuum" else ("air", "more positive")
+    return (f'<span class="medium-note">medium not stated, {_esc(medium)} assumed: if the wavelengths are '
+            f"{other}, the velocity is about {_medium_shift():.0f} km/s {sign}; rerun with "
+            f"--medium {other}.</span>")
 
 
 def _stages_html(stages) -> str:
@@ -317,7 +456,9 @@ def _row_html(catalogue, out, cols, order, i) -> str:
         if name == "flags":
             body = "".join(f'<span class="flag">{_esc(f)}</span>' for f in flags)
             parts.append(f'<td data-value="">{body}</td>')
-        elif name in ("reason", "warnings"):
+        elif name == "warnings":
+            parts.append(f'<td class="long">{_medium_note(catalogue, i)}{_esc(text)}</td>')
+        elif name == "reason":
             parts.append(f'<td class="long">{_esc(text)}</td>')
         else:
             parts.append(f'<td data-value="{_esc(sort_value)}">{_esc(text)}</td>')

@@ -212,6 +212,19 @@ def test_site_from_obsgeo_xyz_and_blh(tmp_path):
         assert info.site.height.to_value(u.m) == pytest.approx(2332.0, abs=1e-3)
 
 
+def test_site_made_once_per_observatory_and_each_file_gets_its_own(tmp_path):
+    # The reader keeps the EarthLocation of each observatory it has met (a night shares one);
+    # a file from another observatory must still get its own, and a repeat the same place.
+    cards = [{"OBSGEO-B": 28.7606, "OBSGEO-L": -17.8792, "OBSGEO-H": 2332.0},
+             {"OBSGEO-B": -24.6272, "OBSGEO-L": -70.4042, "OBSGEO-H": 2635.0},
+             {"OBSGEO-B": 28.7606, "OBSGEO-L": -17.8792, "OBSGEO-H": 2332.0}]
+    sites = [get_info(specan.read(_image_with(tmp_path, c, f"s{i}.fits"))).site for i, c in enumerate(cards)]
+    for site, c in zip(sites, cards):
+        assert site.lat.deg == pytest.approx(c["OBSGEO-B"], abs=1e-7)
+        assert site.lon.deg == pytest.approx(c["OBSGEO-L"], abs=1e-7)
+    assert sites[0] is sites[2] and sites[1] is not sites[0]
+
+
 def test_site_override_and_unknowns_recorded(tmp_path):
     path = _image_with(tmp_path, {})
     s = specan.read(path)

@@ -128,7 +128,7 @@ def test_run_one_row_per_input_errors_with_reasons(tmp_path, fixed_code, capsys)
     night = small_night(tmp_path / "night")
     out = tmp_path / "out"
     missing = tmp_path / "missing.fits"
-    status = run_cli("run", night, missing, "--out", out, *BASIC_CLI)
+    status = run_cli("run", night, missing, "--out", out, "--plot-for", "Star 1", *BASIC_CLI)
     err = capsys.readouterr().err
     assert "%|" not in err  # no progress bar when stderr is not a terminal
     # each failed input is named on the terminal with its reason, one line each
@@ -150,7 +150,11 @@ def test_run_one_row_per_input_errors_with_reasons(tmp_path, fixed_code, capsys)
         assert row["status"] in ("ok", "partial")
         assert row["object"] == f"Star {i}"
         assert str(row["stages_run"]).startswith("read")
-        assert (out / row["plot"]).is_file() and (out / row["thumbnail"]).is_file()
+        # figures by default for the flagged stars only, and for the one named with --plot-for
+        if i == 1 or _text(row["flags"]):
+            assert (out / row["plot"]).is_file() and (out / row["thumbnail"]).is_file()
+        else:
+            assert not _text(row["plot"]) and not _text(row["thumbnail"])
     # exit status = number of failed inputs
     assert status == 4
     # units come with the columns
@@ -159,7 +163,7 @@ def test_run_one_row_per_input_errors_with_reasons(tmp_path, fixed_code, capsys)
     # outputs get the usual permissions (the temporary files they come from are private)
     umask = os.umask(0)
     os.umask(umask)
-    for name in ("catalogue.ecsv", "report.html", "night_diagram.png", by_name["star_00.fits"]["plot"]):
+    for name in ("catalogue.ecsv", "report.html", "night_diagram.png", by_name["star_01.fits"]["plot"]):
         assert (out / name).stat().st_mode & 0o777 == 0o666 & ~umask, name
 
 
@@ -196,7 +200,7 @@ def test_outputs_stay_inside_out_dir_whatever_names_contain(tmp_path, fixed_code
     write_spectrum(night / "c.fits", name="..\\..\\windows <b>", seed=3)
     out = tmp_path / "out"
     before = set(tmp_path.parent.iterdir())
-    pipeline.run([night], out, stages=BASIC)
+    pipeline.run([night], out, stages=BASIC, plots="all")
     assert set(tmp_path.parent.iterdir()) == before
     for p in out.rglob("*"):
         assert p.resolve().is_relative_to(out.resolve())
@@ -623,3 +627,191 @@ def test_run_summary_counts_flags():
     cat = Table({"flags": np.ma.array(["low_snr,emission", "", "emission", "x"], mask=[False, False, False, True])})
     assert flag_counts(cat) == [("emission", 2), ("low_snr", 1)]
     assert flag_counts(Table({"file": ["a"]})) == []
+
+
+# ----------------------------------------------------------------------------- medium assumed (issue 11 item 3)
+
+
+def _vacuum_table_without_medium(path, rv=30.0):
+    """A FITS table spectrum in vacuum wavelengths whose header and columns do not say so."""
+    import astropy.units as u
+
+    from specan import synth
+
+    spec = synth.spectrum("G2", "V", resolving_power=2000, wave_range=(4000, 6800) * u.AA, medium="vacuum",
+                          rv=rv * u.km / u.s, snr=200, seed=3)
+    cols = [fits.Column(name="WAVELENGTH", format="D", unit="Angstrom", array=spec.spectral_axis.to_value(u.AA)),
+            fits.Column(name="FLUX", format="D", array=np.asarray(spec.flux.value, float))]
+    hdu = fits.BinTableHDU.from_columns(cols)
+    hdu.header["OBJECT"] = "VACSTAR"
+    fits.HDUList([fits.PrimaryHDU(), hdu]).writeto(path, overwrite=True)
+    return Path(path)
+
+
+def test_assumed_medium_is_flagged_in_catalogue_and_report(tmp_path, fixed_code):
+    # The reader cannot know that these are vacuum wavelengths: it assumes air, the velocity comes
+    # out (n - 1) c too high, and the catalogue and the report must say so; --medium fixes it.
+    from specan.night.row import medium_shift_kms
+
+    night = tmp_path / "night"
+    night.mkdir()
+    _vacuum_table_without_medium(night / "vac.fits")
+    stages = ("read", "prepare", "velocity")
+    assumed = pipeline.run([night], tmp_path / "assumed", plots="none", stages=stages).catalogue
+    stated = pipeline.run([night], tmp_path / "stated", plots="none", stages=stages,
+                          overrides={"medium": "vacuum"}).catalogue
+    assert bool(assumed["medium_assumed"][0]) is True and str(assumed["medium"][0]) == "air"
+    assert bool(stated["medium_assumed"][0]) is False and str(stated["medium"][0]) == "vacuum"
+    # one column, whichever stage also reports it
+    assert "velocity_medium_assumed" not in assumed.colnames
+    # the wrong medium costs ~83 km/s, as the note says (Morton 2000 refractive index of air)
+    shift = float(assumed["rv"][0]) - float(stated["rv"][0])
+    assert shift == pytest.approx(medium_shift_kms(), abs=2.0)
+    assert float(stated["rv"][0]) == pytest.approx(30.0, abs=2.0)
+    page = (tmp_path / "assumed" / "report.html").read_text()
+    note = re.search(r'<span class="medium-note">([^<]*)</span>', page)
+    assert note and "83 km/s more negative" in note.group(1) and "--medium vacuum" in note.group(1)
+    assert 'id="medium"' in page
+    assert '<span class="medium-note">' not in (tmp_path / "stated" / "report.html").read_text()
+
+
+# ----------------------------------------------------------------------------- figures on demand
+
+
+def test_figures_for_flagged_and_named_stars_and_more_on_request(tmp_path, fixed_code, monkeypatch):
+    # One star is low S/N (flagged low_snr): by default only it gets a figure; a star named with
+    # plot_for gets one too; asking for all later draws only the missing ones, nothing else reruns.
+    night = plain_night(tmp_path / "night", 3)
+    rng = np.random.default_rng(5)
+    with fits.open(night / "s2.fits", mode="update") as h:
+        h[0].data = (h[0].data + rng.normal(0, 2000.0, h[0].data.size)).astype(np.float32)
+    out = tmp_path / "out"
+    first = pipeline.run([night], out, stages=BASIC)
+    rows = {str(r["object"]): r for r in first.catalogue}
+    assert "low_snr" in _text(rows["S2"]["flags"])
+    assert _text(rows["S2"]["plot"]) and not _text(rows["S0"]["plot"]) and not _text(rows["S1"]["plot"])
+    assert first.plotted == 1
+    page = (out / "report.html").read_text()
+    assert re.search(r'<p id="plots">Per-spectrum figures: 1 of 3 rows', page)
+
+    calls = []
+    real = pipeline.analyse_file
+    monkeypatch.setattr(pipeline, "analyse_file", lambda p, s: calls.append(Path(p).name) or real(p, s))
+    named = pipeline.run([night], out, stages=BASIC, plot_for=["S0"])
+    assert calls == ["s0.fits"] and named.reused == 2
+    assert _text({str(r["object"]): r for r in named.catalogue}["S0"]["plot"])
+    calls.clear()
+    every = pipeline.run([night], out, stages=BASIC, plots="all")
+    assert calls == ["s1.fits"] and every.plotted == 3
+    calls.clear()
+    assert pipeline.run([night], out, stages=BASIC, plots="none").reused == 3 and calls == []
+
+
+def test_thumbnail_is_the_spectrum_panel_of_the_same_render(tmp_path):
+    import io
+
+    from PIL import Image
+
+    from specan import plots, prepare, synth
+
+    spec = prepare.prepare(synth.spectrum("A0", "V", resolving_power=2000, snr=100, seed=1))
+    first = plots.spectrum_figures(spec, title="one")
+    again = plots.spectrum_figures(spec, title="one")   # drawn on the reused figure: the same picture
+    assert first == again
+    full = np.asarray(Image.open(io.BytesIO(first["full"])).convert("L"), float)
+    thumb = np.asarray(Image.open(io.BytesIO(first["thumb"])).convert("L"), float)
+    assert thumb.shape == plots.THUMB_SIZE[::-1]
+    assert full.shape == (7 * plots.FIGURE_DPI, 10 * plots.FIGURE_DPI)
+    # the spectrum is drawn: dark pixels in the thumbnail, not an empty frame
+    assert (thumb < 200).mean() > 0.02
+
+
+# ----------------------------------------------------------------------------- streaming
+
+
+def test_streamed_catalogue_is_the_table_astropy_writes(tmp_path):
+    # The catalogue written a chunk at a time reads back as the one table written at once.
+    from specan.night.catalogue import CatalogueSchema, CatalogueWriter
+
+    records = []
+    for i in range(7):
+        values = {"file": f"f{i}.fits", "object": f"star {i}" if i != 3 else None, "status": "ok",
+                  "snr": None if i == 2 else 10.0 + i, "n_lines": i, "odd": "x" if i == 5 else None,
+                  "bright": i % 2 == 0, "note": f"a, \"quoted\" {i}", "maybe": None if i == 1 else i > 2,
+                  "count": None if i == 6 else -i, "tiny": None if i == 0 else 1e-300 * i, "huge": float(i) * 1e17}
+        if i > 3:
+            values["late"] = 1.5 * i
+        records.append({"values": values, "units": {"snr": None, "late": "km / s"}})
+    whole = pipeline.assemble_catalogue(records, meta={"a": 1})
+    pipeline.write_catalogue(whole, tmp_path / "whole", ["ecsv", "csv"])
+    schema = CatalogueSchema()
+    for r in records:
+        schema.add(r)
+    with CatalogueWriter(schema, tmp_path / "chunks", ["ecsv", "csv", "fits"], {"a": 1}) as writer:
+        for k in range(0, 7, 3):
+            writer.write(schema.table(records[k:k + 3]))
+    for name in ("catalogue.ecsv", "catalogue.csv"):
+        assert (tmp_path / "chunks" / name).read_text() == (tmp_path / "whole" / name).read_text(), name
+    back = Table.read(tmp_path / "chunks" / "catalogue.fits")
+    assert len(back) == 7 and list(back["late"].mask) == [True] * 4 + [False] * 3
+
+
+def test_summary_without_the_catalogue_in_memory(tmp_path, fixed_code):
+    # The summary counts what the terminal prints; the table itself is read back only when asked for.
+    night = small_night(tmp_path / "night", count=2)
+    summary = pipeline.run([night], tmp_path / "out", stages=BASIC, plots="none")
+    assert summary._catalogue is None
+    assert summary.counts == {"error": 3, "ok": 2} or summary.counts == {"ok": 2, "error": 3}
+    assert sorted(Path(f).name for f, _ in summary.failed_inputs) == ["empty.fits", "garbage.txt",
+                                                                      "truncated.fits"]
+    assert summary.analysed == 5 and summary.rate > 0
+    assert len(summary.catalogue) == 5
+
+
+def test_chunks_cover_every_input_once():
+    from specan.night import executors
+
+    for count, workers in ((1, 1), (7, 2), (100, 2), (100000, 2), (50, 16)):
+        size = executors.chunk_size(count, workers)
+        assert 1 <= size <= executors.MAX_CHUNK
+        todo = [str(i) for i in range(count)]
+        chunks = list(executors._chunks(todo, size))
+        assert [p for c in chunks for p in c] == todo
+        # many tasks per worker (so that the last ones end close together), or chunks as large as allowed
+        assert len(chunks) >= min(count, executors.TASKS_PER_WORKER * workers) // 2 or size == executors.MAX_CHUNK
+
+
+def test_catalogue_and_report_written_a_few_rows_at_a_time(tmp_path, fixed_code, monkeypatch):
+    # Chunks of two rows: the catalogue, the report's rows (errors first) and the counts come out
+    # as from one table.
+    night = small_night(tmp_path / "night", count=3)
+    whole = pipeline.run([night], tmp_path / "whole", stages=BASIC, plots="none")
+    monkeypatch.setattr(pipeline, "WRITE_CHUNK", 2)
+    chunked = pipeline.run([night], tmp_path / "chunked", stages=BASIC, plots="none")
+    assert chunked.counts == whole.counts
+    a, b = whole.catalogue, chunked.catalogue
+    assert a.colnames == b.colnames
+    assert _comparable(a) == _comparable(b)
+    page = (tmp_path / "chunked" / "report.html").read_text()
+    classes = re.findall(r'<tr class="(\w+)" data-order', page)
+    assert len(classes) == 6 and classes[:3] == ["error"] * 3 and "error" not in classes[3:]
+
+
+def test_progress_bar_shows_rate_and_time_left(tmp_path, fixed_code, capsys):
+    night = plain_night(tmp_path / "night", 3)
+    pipeline.run([night], tmp_path / "out", stages=BASIC, plots="none", progress=True)
+    err = capsys.readouterr().err
+    assert "3/3" in err and "left" in err and "spectrum/s" in err
+
+
+def test_local_workers_compute_with_one_thread_per_library(monkeypatch):
+    # Every worker process starts with the numerical libraries pinned to one thread (dask's
+    # workers do the same), so that sums come out in the same order however the night is run;
+    # the run's own environment is left as it was.
+    from specan.night import executors
+
+    monkeypatch.setenv("OPENBLAS_NUM_THREADS", "7")
+    names = ["OPENBLAS_NUM_THREADS", "OMP_NUM_THREADS", "MKL_NUM_THREADS"]
+    got = dict(executors.results_local(os.getenv, names, "unset", 2))
+    assert got == {name: "1" for name in names}
+    assert os.environ["OPENBLAS_NUM_THREADS"] == "7"

@@ -190,7 +190,7 @@ def test_report_of_a_real_run(tmp_path, monkeypatch):
     night = small_night(tmp_path / "night", count=2)
     write_spectrum(night / "evil.fits", name=EVIL, seed=7)
     out = tmp_path / "out"
-    summary = pipeline.run([night], out, stages=BASIC)
+    summary = pipeline.run([night], out, stages=BASIC, plots="all")
     dom = _Dom(dump_dom(out / "report.html", tmp_path))
     assert dom.body.get("data-sortable") == "ready" and "data-pwned" not in dom.body
     assert dom.scripts == 1

@@ -2,6 +2,8 @@
 
 from __future__ import annotations
 
+import contextlib
+import io
 import time
 from pathlib import Path
 
@@ -10,7 +12,7 @@ import numpy as np
 from .files import atomic_path, inside
 
 __all__ = ["CORE_COLUMNS", "CATALOGUE_FORMATS", "status_counts", "catalogue_meta", "assemble_catalogue",
-           "write_catalogue"]
+           "write_catalogue", "CatalogueSchema", "CatalogueWriter"]
 
 #: Catalogue formats: name -> (file suffix, astropy writer format).
 CATALOGUE_FORMATS = {
@@ -38,6 +40,8 @@ CORE_COLUMNS = (
     ("dec", "deg", "declination of the pointing"),
     ("site_known", None, "observatory location known (needed for the barycentric correction)"),
     ("medium", None, "medium of the wavelength scale as stored"),
+    ("medium_assumed", None, "the file does not state its medium and the reader assumed it: if that is "
+                             "wrong the velocity is off by about 83 km/s (see the report; --medium fixes it)"),
     ("resolving_power", None, "resolving power R = lambda / FWHM"),
     ("resolving_power_source", None, "where R comes from: file (or option), narrowest lines, "
                                      "template-width scan (see the velocity notes)"),
@@ -96,6 +100,67 @@ def catalogue_meta(inputs, counts, interrupted, stages, overrides) -> dict:
     }
 
 
+class CatalogueSchema:
+    """The catalogue's columns, learnt one record at a time (memory: the columns, not the rows).
+
+    Column names come core first (``CORE_COLUMNS``), then in order of first appearance; a
+    column's unit is the first one given; its type is decided from every value present
+    (all booleans: bool; all integers: int64; all numbers: float64; anything else: string).
+    """
+
+    def __init__(self):
+        self.names = [n for n, _, _ in CORE_COLUMNS]
+        self._known = set(self.names)
+        self.units = {n: u for n, u, _ in CORE_COLUMNS if u}
+        # per column: [any value present, all bool, all int, all number]
+        self._seen = {}
+
+    def add(self, record):
+        """Take in one record's columns, units and value types."""
+        for k, v in record["values"].items():
+            if k not in self._known:
+                self._known.add(k)
+                self.names.append(k)
+            if v is None or k in _CORE_STRINGS:
+                continue
+            seen = self._seen.setdefault(k, [False, True, True, True])
+            seen[0] = True
+            is_bool = isinstance(v, bool)
+            seen[1] &= is_bool
+            seen[2] &= isinstance(v, int) and not is_bool
+            seen[3] &= isinstance(v, (int, float)) and not is_bool
+        for k, unit in record.get("units", {}).items():
+            self.units.setdefault(k, unit)
+
+    def kind(self, name):
+        """(type, fill value for a missing entry) of a column."""
+        if name in _CORE_STRINGS:
+            return str, ""
+        seen = self._seen.get(name)
+        if not seen or not seen[0]:
+            return np.float64, np.nan  # nothing measured anywhere (e.g. no second CCF peak)
+        if seen[1]:
+            return bool, False
+        if seen[2]:
+            return np.int64, 0
+        if seen[3]:
+            return np.float64, np.nan
+        return str, ""
+
+    def table(self, records, meta=None):
+        """The rows of ``records`` as a table with this schema's columns, types and units."""
+        from astropy.table import Table
+
+        descriptions = {n: d for n, _, d in CORE_COLUMNS}
+        table = Table(meta=dict(meta or {}))
+        for name in self.names:
+            col = _column(self.kind(name), name, [r["values"].get(name) for r in records])
+            col.unit = self.units.get(name)
+            col.description = descriptions.get(name)
+            table.add_column(col)
+        return table
+
+
 def assemble_catalogue(records, meta=None):
     """Build the catalogue table (one row per record, in the given order).
 
@@ -112,52 +177,17 @@ def assemble_catalogue(records, meta=None):
         Core columns first (see ``CORE_COLUMNS``), then the stage results in
         order of first appearance; units on the columns; missing values masked.
     """
-    from astropy.table import Table
-
-    names, units = _names_and_units(records)
-    descriptions = {n: d for n, _, d in CORE_COLUMNS}
-    table = Table(meta=dict(meta or {}))
-    for name in names:
-        col = _column(name, [r["values"].get(name) for r in records])
-        col.unit = units.get(name)
-        col.description = descriptions.get(name)
-        table.add_column(col)
-    return table
-
-
-def _names_and_units(records):
-    """Column names (core first, then in order of first appearance) and their units."""
-    names = [n for n, _, _ in CORE_COLUMNS]
-    units = {n: u for n, u, _ in CORE_COLUMNS if u}
+    schema = CatalogueSchema()
     for r in records:
-        for k in r["values"]:
-            if k not in names:
-                names.append(k)
-        for k, unit in r.get("units", {}).items():
-            units.setdefault(k, unit)
-    return names, units
+        schema.add(r)
+    return schema.table(records, meta)
 
 
-def _column_kind(name, present):
-    """(type, fill value for a missing entry) of a column from its values present."""
-    if name in _CORE_STRINGS:
-        return str, ""
-    if not present:
-        return np.float64, np.nan  # nothing measured anywhere (e.g. no second CCF peak)
-    if all(isinstance(v, bool) for v in present):
-        return bool, False
-    if all(isinstance(v, int) and not isinstance(v, bool) for v in present):
-        return np.int64, 0
-    if all(isinstance(v, (int, float)) and not isinstance(v, bool) for v in present):
-        return np.float64, np.nan
-    return str, ""
-
-
-def _column(name, raw):
+def _column(kind_and_fill, name, raw):
     """One catalogue column from its raw values (None where missing)."""
     from astropy.table import Column, MaskedColumn
 
-    kind, fill = _column_kind(name, [v for v in raw if v is not None])
+    kind, fill = kind_and_fill
     if kind is str:
         data = ["" if v is None else str(v) for v in raw]
         # Strings are never masked: an empty string reads back the same in every format.
@@ -165,6 +195,113 @@ def _column(name, raw):
     mask = np.array([v is None for v in raw], bool)
     data = np.array([fill if v is None else v for v in raw], dtype=kind)
     return MaskedColumn(data, name=name, mask=mask)
+
+
+class CatalogueWriter:
+    """Write the catalogue a chunk of rows at a time, in each format, atomically.
+
+    ECSV and CSV are streamed: the header (written by astropy from the table with no rows)
+    and then each chunk's rows as astropy's own writer formats them, so the memory used
+    does not grow with the night. FITS and VOTable need the whole table at once: those
+    copies (on request only) collect the chunks and are written at the end.
+
+    Parameters
+    ----------
+    schema : CatalogueSchema
+        The columns (every record already added).
+    out_dir : pathlib.Path
+        Output folder.
+    formats : sequence of str
+        Among ``CATALOGUE_FORMATS``.
+    meta : dict
+        Table metadata.
+    """
+
+    def __init__(self, schema, out_dir, formats, meta):
+        self.schema, self.out, self.formats, self.meta = schema, Path(out_dir), list(formats), dict(meta)
+        self.paths = {f: inside(self.out, Path("catalogue" + CATALOGUE_FORMATS[f][0])) for f in self.formats}
+        self._stack = contextlib.ExitStack()
+        self._streams = {}
+        self._held = []
+
+    def __enter__(self):
+        empty = self.schema.table([], self.meta)
+        for fmt in self.formats:
+            if fmt not in _STREAMED:
+                continue
+            tmp = self._stack.enter_context(atomic_path(self.paths[fmt]))
+            fh = self._stack.enter_context(open(tmp, "w", encoding="utf-8", newline=""))
+            self._streams[fmt] = fh
+            fh.write(_written(empty, fmt))
+        return self
+
+    def write(self, chunk):
+        """Append a chunk of rows (a table from :meth:`CatalogueSchema.table`)."""
+        if self._streams:
+            text = _as_text(chunk)
+            for fmt, fh in self._streams.items():
+                fh.write(_rows_only(_written(text, fmt), fmt))
+        if any(f not in _STREAMED for f in self.formats):
+            self._held.append(chunk)
+
+    def __exit__(self, exc_type, exc, tb):
+        try:
+            if exc_type is None:
+                held = [f for f in self.formats if f not in _STREAMED]
+                if held:
+                    from astropy.table import vstack
+
+                    table = vstack(self._held) if self._held else self.schema.table([])
+                    table.meta = dict(self.meta)
+                    write_catalogue(table, self.out, held)
+        finally:
+            self._stack.__exit__(exc_type, exc, tb)   # renames the streamed files into place
+        return False
+
+
+#: Formats written a chunk at a time (text formats whose header does not depend on the rows).
+_STREAMED = ("ecsv", "csv")
+
+
+def _as_text(chunk):
+    """The chunk with each masked column as the text astropy writes for it ("" where masked).
+
+    astropy's text writers take a masked column element by element (a tenth of a
+    millisecond each, most of the catalogue's writing time); a column's values formatted by
+    astropy itself (``info.iter_str_vals``) and written as text come out the same (numbers
+    and booleans need no quoting, a masked entry is ``""`` either way), and only the
+    rows are kept (the header comes from the typed table).
+    """
+    from astropy.table import Column, MaskedColumn
+
+    out = chunk.copy(copy_data=False)
+    for name in out.colnames:
+        col = out[name]
+        if not isinstance(col, MaskedColumn):
+            continue
+        mask = np.asarray(col.mask, bool)
+        plain = Column(np.asarray(col.data.data if hasattr(col.data, "data") else col.data), name=name)
+        if not mask.any():
+            out.replace_column(name, plain)
+            continue
+        text = [("" if m else v) for v, m in zip(plain.info.iter_str_vals(), mask.tolist())]
+        out.replace_column(name, Column(text, name=name, dtype=str))
+    return out
+
+
+def _written(table, fmt) -> str:
+    buf = io.StringIO()
+    table.write(buf, format=CATALOGUE_FORMATS[fmt][1])
+    return buf.getvalue()
+
+
+def _rows_only(text, fmt) -> str:
+    """The data rows of a written chunk, without the header (ECSV: comment lines and the names line)."""
+    pos = 0
+    if fmt == "ecsv":
+        while text.startswith("#", pos):
+            pos = text.index("\n", pos) + 1
+    return text[text.index("\n", pos) + 1:]
 
 
 def write_catalogue(table, out_dir, formats=("ecsv",)) -> list:

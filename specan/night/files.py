@@ -3,6 +3,14 @@
 A reader (a rerun, the report, a person) never sees half a file: each file is
 written to a temporary name beside its target and renamed over it
 (``os.replace``), so an interrupted run leaves the old file or the new one.
+
+Files are not flushed to the disk one by one: a flush costs ~4 ms on this
+project's machine, three per spectrum (record, figure, thumbnail) were more
+than the whole analysis of a spectrum is meant to take. The rename alone is
+atomic against a killed process (the file system holds the data until it is
+written); against a power cut, :func:`flush_to_disk` is called once at the end
+of a run (and ext4, the usual Linux file system, writes a renamed file's data
+before the rename itself; ``auto_da_alloc``, its default).
 """
 
 from __future__ import annotations
@@ -12,7 +20,7 @@ import os
 import tempfile
 from pathlib import Path
 
-__all__ = ["inside", "atomic_write_bytes", "atomic_path"]
+__all__ = ["inside", "atomic_write_bytes", "atomic_path", "flush_to_disk"]
 
 
 def inside(base: Path, target: Path) -> Path:
@@ -34,15 +42,13 @@ _FILE_MODE = _file_mode()
 
 
 def atomic_write_bytes(path: Path, data: bytes):
-    """Write ``data`` to ``path`` atomically (temporary file beside it, flushed to disk, renamed)."""
+    """Write ``data`` to ``path`` atomically (temporary file beside it, then renamed over ``path``)."""
     path.parent.mkdir(parents=True, exist_ok=True)
     fd, tmp = tempfile.mkstemp(prefix=f".{path.name}.", suffix=".tmp", dir=path.parent)
     try:
         os.fchmod(fd, _FILE_MODE)
         with os.fdopen(fd, "wb") as fh:
             fh.write(data)
-            fh.flush()
-            os.fsync(fh.fileno())
         os.replace(tmp, path)
     except BaseException:
         with contextlib.suppress(OSError):
@@ -66,3 +72,9 @@ def atomic_path(path: Path):
         with contextlib.suppress(OSError):
             os.unlink(tmp)
         raise
+
+
+def flush_to_disk():
+    """Ask the operating system to write every file of this run to the disk (once, at the end)."""
+    if hasattr(os, "sync"):
+        os.sync()

@@ -18,9 +18,9 @@ from pathlib import Path
 from .files import atomic_write_bytes, inside
 from .inputs import path_id, safe_stem, sha256_file
 
-__all__ = ["RECORD_VERSION", "code_fingerprint", "record_key", "not_run_record", "RecordStore"]
+__all__ = ["RECORD_VERSION", "code_fingerprint", "content_hash", "record_key", "not_run_record", "RecordStore"]
 
-RECORD_VERSION = 1
+RECORD_VERSION = 2
 
 
 def code_fingerprint() -> str:
@@ -37,13 +37,21 @@ def code_fingerprint() -> str:
     return h.hexdigest()
 
 
-def record_key(path, settings_hash) -> dict:
-    """What a stored record of ``path`` must match to be current: its content and the settings."""
+def content_hash(path) -> str:
+    """What identifies an input's content in a record key (its SHA-256, or why there is none)."""
     try:
-        content = sha256_file(path) if os.path.isfile(path) else "missing"
+        return sha256_file(path) if os.path.isfile(path) else "missing"
     except OSError as exc:
-        content = f"unreadable: {exc}"
-    return {"input": content, "settings": settings_hash}
+        return f"unreadable: {exc}"
+
+
+def record_key(path, settings_hash, content=None) -> dict:
+    """What a stored record of ``path`` must match to be current: its content and the settings.
+
+    ``content`` is the content hash when already known (the worker hashes the file before it
+    reads it, so a file changed meanwhile makes its record stale, never wrong).
+    """
+    return {"input": content_hash(path) if content is None else content, "settings": settings_hash}
 
 
 def not_run_record(path, why) -> dict:
@@ -98,21 +106,39 @@ class RecordStore:
             if plots.get("thumb"):
                 atomic_write_bytes(inside(self.out, thumb), plots["thumb"])
                 values["thumbnail"] = thumb.as_posix()
-        record = {"version": RECORD_VERSION, "key": key, "values": values, "units": result.get("units", {})}
+        record = {"version": RECORD_VERSION, "key": key, "values": values, "units": result.get("units", {}),
+                  "drawable": bool(result.get("drawable", False))}
         atomic_write_bytes(self._record_path(pid), json.dumps(record, allow_nan=True).encode())
         return record
 
-    def current(self, path, key):
-        """The stored record of an input when it is current (same content and settings), else None."""
-        p = self._record_path(path_id(path))
+    def exists(self, path) -> bool:
+        """Whether a record of this input is stored (current or not)."""
+        return self._record_path(path_id(path)).is_file()
+
+    def load(self, path):
+        """The stored record of an input as it is (None when there is none or it cannot be read)."""
         try:
-            record = json.loads(p.read_text())
+            return json.loads(self._record_path(path_id(path)).read_bytes())
         except (OSError, ValueError):
             return None
-        if record.get("version") != RECORD_VERSION or record.get("key") != key:
+
+    def current(self, path, key, plot_wanted=None):
+        """The stored record of an input when it is current, else None.
+
+        Current: same content and settings, its figures on disk, and a figure when
+        ``plot_wanted(values)`` asks for one and the input could be drawn (the figures
+        asked for are not part of the settings: asking for more redraws only those).
+        """
+        if not self.exists(path):  # a first run reads no file
             return None
+        record = self.load(path)
+        if record is None or record.get("version") != RECORD_VERSION or record.get("key") != key:
+            return None
+        values = record["values"]
         for col in ("plot", "thumbnail"):
-            rel = record["values"].get(col)
+            rel = values.get(col)
             if rel and not (self.out / rel).is_file():
                 return None
+        if plot_wanted is not None and not values.get("plot") and record.get("drawable") and plot_wanted(values):
+            return None
         return record

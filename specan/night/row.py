@@ -15,7 +15,12 @@ import numpy as np
 from ..errors import SpecanError
 from .catalogue import CORE_COLUMNS
 
-__all__ = ["Recorder", "info_columns", "lines_columns", "final_info", "EMISSION_FLAG_LINES", "LOW_SNR"]
+__all__ = ["Recorder", "info_columns", "lines_columns", "final_info", "EMISSION_FLAG_LINES", "LOW_SNR",
+           "PLOT_CHOICES", "plot_wanted", "medium_shift_kms"]
+
+#: Which inputs get a per-spectrum figure: ``flagged`` (the default: rows with a flag or a
+#: declined or failed stage, and those named), ``all``, ``none``.
+PLOT_CHOICES = ("flagged", "all", "none")
 
 #: Lines whose detection in emission raises the ``emission_lines`` flag.
 EMISSION_FLAG_LINES = ("H_alpha", "H_beta")
@@ -146,6 +151,9 @@ def info_columns(rec, spectrum):
     rec.set("dec", info.dec_deg, "deg")
     rec.set("site_known", info.site is not None)
     rec.set("medium", info.medium)
+    # the reader assumed the medium (the file does not state it): a velocity off by ~83 km/s
+    # if the assumption is wrong, so the row says so (the velocity stage names it the same way)
+    rec.set("medium_assumed", bool(info.medium_assumed))
     rec.set("resolving_power", info.resolving_power)
     if info.resolving_power is not None:
         rec.set("resolving_power_source", "file")
@@ -177,3 +185,53 @@ def final_info(rec, spectrum):
     rec.warnings.extend(str(w) for w in info.warnings)
     if info.snr is not None and np.isfinite(info.snr) and info.snr < LOW_SNR:
         rec.add_flags(["low_snr"])
+
+
+def plot_wanted(values, choice="flagged", named=()) -> bool:
+    """Whether a row's per-spectrum figure is asked for.
+
+    Parameters
+    ----------
+    values : dict
+        The row (``file``, ``object``, ``status``, ``flags``).
+    choice : {"flagged", "all", "none"}
+        ``flagged``: rows with a flag, or whose status is not ``ok`` (a stage declined or
+        failed); ``all``; ``none`` (only the named ones).
+    named : iterable of str
+        Objects or files (as given, or their file name, with or without the suffix) always drawn.
+
+    Returns
+    -------
+    bool
+    """
+    if named and _is_named(values, named):
+        return True
+    if choice == "all":
+        return True
+    if choice == "flagged":
+        return bool(values.get("flags")) or values.get("status") not in ("ok", None)
+    return False
+
+
+def _is_named(values, named) -> bool:
+    import os
+
+    file = str(values.get("file") or "")
+    base = os.path.basename(file)
+    candidates = {file, base, base.split(".")[0], str(values.get("object") or "")} - {""}
+    return any(str(n) in candidates for n in named)
+
+
+def medium_shift_kms(wavelength_aa=5500.0) -> float:
+    """How much faster a spectrum in vacuum wavelengths reads when taken as air (km/s).
+
+    (n - 1) c with the refractive index of air at ``wavelength_aa`` (Morton 2000, via
+    :func:`specan.obsinfo.air_to_vacuum`): about 83 km/s across the optical.
+    """
+    import astropy.units as u
+    from astropy.constants import c
+
+    from ..obsinfo import air_to_vacuum
+
+    n = float(air_to_vacuum(wavelength_aa * u.AA).to_value(u.AA)) / wavelength_aa
+    return (n - 1.0) * c.to_value(u.km / u.s)
