@@ -20,7 +20,7 @@ from astropy.coordinates import EarthLocation, SkyCoord
 from astropy.time import Time
 
 __all__ = ["ObsInfo", "get_info", "air_to_vacuum", "vacuum_to_air", "AIR_VACUUM_FORMULA", "wavelength_in",
-           "spectrum_arrays", "replace_parts"]
+           "spectrum_arrays", "replace_parts", "air_vacuum_velocity_kms"]
 
 META_KEY = "specan"
 
@@ -202,6 +202,20 @@ def air_to_vacuum(wavelength):
     n_min = _refraction_at_formula_limit()
     return _below_limit_held(w, w.to_value(u.AA) < _FORMULA_MIN_AA / n_min, w * n_min,   # limit in air
                              lambda q: air_to_vac(q, method=AIR_VACUUM_FORMULA, scheme="inversion"))
+
+
+def air_vacuum_velocity_kms(wavelength=5500.0 * u.AA) -> float:
+    """The velocity (km/s) that mistaking vacuum wavelengths for air adds: (n - 1) c.
+
+    ``n`` is the refractive index of air at ``wavelength`` (Morton 2000, as in
+    :func:`air_to_vacuum`): about 83 km/s across the optical. Positive; the sign of a given
+    mistake is the caller's.
+    """
+    from astropy.constants import c
+
+    w = u.Quantity(wavelength, u.AA)
+    n = float(air_to_vacuum(w).to_value(u.AA) / w.to_value(u.AA))
+    return (n - 1.0) * c.to_value(u.km / u.s)
 
 
 def vacuum_to_air(wavelength):

@@ -63,7 +63,6 @@ from .night.catalogue import (CATALOGUE_FORMATS, CORE_COLUMNS, assemble_catalogu
                               status_counts, write_catalogue)
 from .night.files import atomic_path, flush_to_disk  # noqa: F401 - atomic_path: part of this module's API
 from .night.inputs import SPECTRUM_SUFFIXES, collect_inputs, safe_stem, sha256_file  # noqa: F401
-from .night.products import write_night_products
 from .night.records import RecordStore, code_fingerprint, content_hash, not_run_record, record_key
 from .night.row import (EMISSION_FLAG_LINES, LOW_SNR, PLOT_CHOICES, Recorder, final_info, info_columns,  # noqa: F401
                         lines_columns, plot_wanted)
@@ -245,10 +244,11 @@ def _velocity(rec, spectrum):
     """The velocity stage's result; its columns, and R where the file states none."""
     velocity = rec.run_stage("velocity", _stage_function("velocity"), spectrum)
     if isinstance(velocity, dict):
+        from .velocity import RESULT_UNITS
         r_keys = ("resolving_power", "resolving_power_source")
         # medium_assumed: the reader's column already (the same fact, one column)
         rec.add_stage_dict("velocity", {k: v for k, v in velocity.items()
-                                        if k not in r_keys and k != "medium_assumed"})
+                                        if k not in r_keys and k != "medium_assumed"}, units=RESULT_UNITS)
         if rec.values.get("resolving_power") is None:   # not stated: the velocity stage's estimate
             for key in r_keys:
                 rec.set(key, velocity.get(key))

@@ -402,9 +402,9 @@ def _plots_html(night) -> str:
 
 
 def _medium_shift() -> float:
-    from .night.row import medium_shift_kms
+    from .obsinfo import air_vacuum_velocity_kms
 
-    return medium_shift_kms()
+    return air_vacuum_velocity_kms()
 
 
 def _medium_note(catalogue, i) -> str:

@@ -651,7 +651,7 @@ def _vacuum_table_without_medium(path, rv=30.0):
 def test_assumed_medium_is_flagged_in_catalogue_and_report(tmp_path, fixed_code):
     # The reader cannot know that these are vacuum wavelengths: it assumes air, the velocity comes
     # out (n - 1) c too high, and the catalogue and the report must say so; --medium fixes it.
-    from specan.night.row import medium_shift_kms
+    from specan.obsinfo import air_vacuum_velocity_kms
 
     night = tmp_path / "night"
     night.mkdir()
@@ -664,9 +664,11 @@ def test_assumed_medium_is_flagged_in_catalogue_and_report(tmp_path, fixed_code)
     assert bool(stated["medium_assumed"][0]) is False and str(stated["medium"][0]) == "vacuum"
     # one column, whichever stage also reports it
     assert "velocity_medium_assumed" not in assumed.colnames
+    # a velocity column keeps its unit where no row has a value (medium stated: no shift)
+    assert stated["medium_shift"].unit == "km / s" and assumed["medium_shift"].unit == "km / s"
     # the wrong medium costs ~83 km/s, as the note says (Morton 2000 refractive index of air)
     shift = float(assumed["rv"][0]) - float(stated["rv"][0])
-    assert shift == pytest.approx(medium_shift_kms(), abs=2.0)
+    assert shift == pytest.approx(air_vacuum_velocity_kms(), abs=2.0)
     assert float(stated["rv"][0]) == pytest.approx(30.0, abs=2.0)
     page = (tmp_path / "assumed" / "report.html").read_text()
     note = re.search(r'<span class="medium-note">([^<]*)</span>', page)

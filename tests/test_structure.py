@@ -124,3 +124,17 @@ def test_every_subpackage_is_installed():
     found = {_module_name(p.parent / "__init__.py") for p in PACKAGE.rglob("__init__.py")}
     assert found, "no package found under specan/"
     assert found <= listed, f"not listed in pyproject.toml packages: {sorted(found - listed)}"
+
+
+def test_every_data_file_is_installed():
+    # package data is listed by pattern; a data file of a new kind (the FITS templates once) is
+    # read in an editable install and missing from a wheel.
+    import fnmatch
+    import re
+
+    text = (PACKAGE.parent / "pyproject.toml").read_text()   # tomllib is 3.11+; we support 3.10
+    patterns = re.findall(r'"([^"]+)"', re.search(r'^"specan\.data" = \[(.*?)\]', text, re.M | re.S).group(1))
+    files = [p.name for p in (PACKAGE / "data").iterdir() if p.is_file() and not re.match(r".*\.pyc?$", p.name)]
+    assert files, "no data file found under specan/data"
+    missing = [f for f in files if not any(fnmatch.fnmatch(f, pat) for pat in patterns)]
+    assert not missing, f"not matched by pyproject.toml package-data: {missing}"

@@ -16,7 +16,7 @@ from ..errors import SpecanError
 from .catalogue import CORE_COLUMNS
 
 __all__ = ["Recorder", "info_columns", "lines_columns", "final_info", "EMISSION_FLAG_LINES", "LOW_SNR",
-           "PLOT_CHOICES", "plot_wanted", "medium_shift_kms"]
+           "PLOT_CHOICES", "plot_wanted"]
 
 #: Which inputs get a per-spectrum figure: ``flagged`` (the default: rows with a flag or a
 #: declined or failed stage, and those named), ``all``, ``none``.
@@ -220,18 +220,3 @@ def _is_named(values, named) -> bool:
     base = os.path.basename(file)
     candidates = {file, base, base.split(".")[0], str(values.get("object") or "")} - {""}
     return any(str(n) in candidates for n in named)
-
-
-def medium_shift_kms(wavelength_aa=5500.0) -> float:
-    """How much faster a spectrum in vacuum wavelengths reads when taken as air (km/s).
-
-    (n - 1) c with the refractive index of air at ``wavelength_aa`` (Morton 2000, via
-    :func:`specan.obsinfo.air_to_vacuum`): about 83 km/s across the optical.
-    """
-    import astropy.units as u
-    from astropy.constants import c
-
-    from ..obsinfo import air_to_vacuum
-
-    n = float(air_to_vacuum(wavelength_aa * u.AA).to_value(u.AA)) / wavelength_aa
-    return (n - 1.0) * c.to_value(u.km / u.s)

@@ -60,11 +60,12 @@ from .companion import Companion, detect_companion
 from .correlation import Correlation, Peak, PeakSearch, ccf_about_peak, observed_side
 from .frame_velocities import apply_frames
 from .grid import kms_per_pixel, lag_window, normalised, observe_on_grid
-from .result import assumption_flags, result_dict, velocity_flags
+from .result import RESULT_UNITS, assumption_flags, result_dict, velocity_flags
 from .uncertainty import error_budget, estimate_errors, segment_errors, tonry_davis, zero_point_error
 
 __all__ = [
     "measure",
+    "RESULT_UNITS",
     "barycentric_correction",
     "shift_to_rest",
     "doppler_factor",

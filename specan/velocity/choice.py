@@ -231,7 +231,6 @@ def automatic_mixture(search, resolving_power, template_grid, notes, where=None,
     between two templates gets both, so the velocity moves smoothly from one to the other
     instead of jumping when noise reorders them, and their disagreement enters the error.
     """
-    lags = search.lags
     candidates = []
     if template_grid is None:
         cover = library_cover(search)

@@ -8,7 +8,14 @@ import numpy as np
 from ..doppler import C_KMS, velocity_from_factor
 from .grid import kms_per_pixel
 
-__all__ = ["velocity_flags", "assumption_flags", "medium_shift_kms", "result_dict"]
+__all__ = ["velocity_flags", "assumption_flags", "medium_shift_kms", "result_dict", "RESULT_UNITS"]
+
+#: Units of the result's velocities, for tables that must carry them even when every row is
+#: missing one (``rv_err_mc`` unless asked for, ``medium_shift`` unless the medium was assumed).
+RESULT_UNITS = {k: "km / s" for k in (
+    "rv", "rv_err", "rv_topo", "bary_corr", "v_grf", "second_peak_rv", "rv_err_noise", "rv_err_template",
+    "rv_err_mismatch", "rv_err_choice", "rv_err_zero_point", "rv_err_td", "rv_err_mc", "medium_shift",
+    "ccf_fwhm")}
 
 
 def velocity_flags(relative, companion, frames, vmax_kms, height, notes):
@@ -39,11 +46,9 @@ def medium_shift_kms(spectrum, info):
     refractive index of air: their true velocity is lower), positive the other way round; the
     index at the spectrum's median wavelength (Morton 2000, via :mod:`specan.obsinfo`).
     """
-    from ..obsinfo import air_to_vacuum
+    from ..obsinfo import air_vacuum_velocity_kms
 
-    lam = float(np.median(spectrum.spectral_axis.to_value(u.AA)))
-    ratio = float(air_to_vacuum(lam * u.AA).to_value(u.AA)) / lam
-    shift = C_KMS * (ratio - 1.0)
+    shift = air_vacuum_velocity_kms(float(np.median(spectrum.spectral_axis.to_value(u.AA))) * u.AA)
     return -shift if info.medium == "air" else shift
 
 

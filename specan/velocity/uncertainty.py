@@ -277,7 +277,8 @@ def _template_segments(search, template, s0, m, starts, h):
 
     rows = (sums(a1 * bT), sums(a2 * bT), sums(a2 * bT2), sums(a1 * bV), sums(a3 * bV), sums(a2 * bV))
     c, _ = Correlation.combine(rows)                                  # (3 lags, K + 1)
-    den = c[0] - 2.0 * c[1] + c[2]
+    with np.errstate(invalid="ignore"):  # a segment with no overlap gives inf - inf: marked not good below
+        den = c[0] - 2.0 * c[1] + c[2]
     good = np.isfinite(den) & (den < 0)
     offsets = np.where(good, h * (c[0] - c[2]) / (2.0 * np.where(good, den, -1.0)), np.nan)
     curv = den / h ** 2
