@@ -232,6 +232,26 @@ def test_catalogue_formats_read_back(tmp_path, fixed_code):
         assert np.allclose(np.asarray(t["ra"], float)[ok], np.asarray(ref["ra"], float)[ok]), name
 
 
+def test_catalogue_says_where_the_snr_comes_from(tmp_path, fixed_code):
+    # one file with an error array (a FITS table with an error column), one without: the S/N of the
+    # first is the error array's (median flux / sigma: 30 by construction), the second's the flux's
+    import astropy.units as u
+
+    from specan import synth
+
+    night = plain_night(tmp_path / "night", 1)
+    spec = synth.spectrum("G2", "V", resolving_power=2000, wave_range=(4000, 6800) * u.AA, snr=30, seed=4)
+    cols = [fits.Column(name="WAVELENGTH", format="D", unit="Angstrom", array=spec.spectral_axis.to_value(u.AA)),
+            fits.Column(name="FLUX", format="D", array=np.asarray(spec.flux.value, float)),
+            fits.Column(name="ERROR", format="D", array=np.asarray(spec.uncertainty.array, float))]
+    fits.HDUList([fits.PrimaryHDU(), fits.BinTableHDU.from_columns(cols)]).writeto(night / "t.fits")
+    cat = pipeline.run([night], tmp_path / "out", plots="none", stages=BASIC).catalogue
+    rows = {Path(str(r["file"])).name: r for r in cat}
+    assert str(rows["s0.fits"]["snr_source"]) == "flux"
+    assert str(rows["t.fits"]["snr_source"]) == "error array"
+    assert float(rows["t.fits"]["snr"]) == pytest.approx(30.0, rel=0.1)
+
+
 # ----------------------------------------------------------------------------- reruns
 
 

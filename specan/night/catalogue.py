@@ -45,7 +45,9 @@ CORE_COLUMNS = (
     ("resolving_power", None, "resolving power R = lambda / FWHM"),
     ("resolving_power_source", None, "where R comes from: file (or option), narrowest lines, "
                                      "template-width scan (see the velocity notes)"),
-    ("snr", None, "median S/N per pixel (DER_SNR)"),
+    ("snr", None, "median S/N per pixel: from the error array where the file has one, else from the flux "
+                  "(specan.noise; see snr_source)"),
+    ("snr_source", None, "where snr comes from: error array, or flux"),
     ("n_lines", None, "lines detected by the lines stage"),
     ("n_emission", None, "detected lines in emission"),
     ("warnings", None, "assumptions and doubts recorded while reading and analysing"),
@@ -54,7 +56,7 @@ CORE_COLUMNS = (
 )
 
 _CORE_STRINGS = {"file", "object", "status", "reason", "flags", "stages_run", "medium", "warnings", "plot",
-                 "thumbnail"}
+                 "thumbnail", "snr_source"}
 
 
 def status_counts(records) -> dict:

@@ -158,6 +158,7 @@ def info_columns(rec, spectrum):
     if info.resolving_power is not None:
         rec.set("resolving_power_source", "file")
     rec.set("snr", info.snr)
+    rec.set("snr_source", info.snr_source)
     rec.warnings.extend(str(w) for w in info.warnings)
 
 
