@@ -673,7 +673,9 @@ class _Tally:
     """What the summary and the report head say about the night, gathered one record at a time."""
 
     def __init__(self):
-        self.counts, self.flags, self.failed, self.distinct = {}, {}, [], {"calibration": [], "resolving_power": []}
+        from .report import DISTINCT_COLUMNS
+
+        self.counts, self.flags, self.failed, self.distinct = {}, {}, [], {name: [] for name in DISTINCT_COLUMNS}
         self.plotted = self.medium_assumed = 0
 
     def add(self, record):

@@ -186,10 +186,14 @@ def _distinct(catalogue, name):
     return seen
 
 
-def _assumptions_html(distinct) -> str:
-    """What every number in the report rests on (calibration, frames, offline data, resolution).
+#: Columns whose distinct values in a night the report's assumptions name.
+DISTINCT_COLUMNS = ("calibration", "resolving_power", "template_kind", "teff_spec")
 
-    ``distinct`` maps ``calibration`` and ``resolving_power`` to their distinct values in the night.
+
+def _assumptions_html(distinct) -> str:
+    """What every number in the report rests on (calibration, templates, models, frames, offline data).
+
+    ``distinct`` maps each of :data:`DISTINCT_COLUMNS` to its distinct values in the night (at most 9).
     """
     from ._offline import IERS_NOTE
     from .obsinfo import AIR_VACUUM_FORMULA
@@ -203,6 +207,23 @@ def _assumptions_html(distinct) -> str:
         items.append("Resolving power as stated or assumed per file: " + ", ".join(_esc(p) for p in powers[:8])
                      + ("..." if len(powers) > 8 else "") + "; spectra are smoothed to the calibration's "
                      "resolution before classifying.")
+    kinds = distinct.get("template_kind") or []
+    if kinds:
+        items.append("Velocity templates: " + " and ".join(
+            {"library": "medians of MILES library stars (Sanchez-Blazquez et al. 2006; in the library's rest frame, "
+                        "its zero point uncertain by 0.7-5 km/s per template and counted in rv_err)",
+             "synth": "specan's synthetic spectra at laboratory wavelengths",
+             "mask": "line masks at laboratory wavelengths",
+             "spectrum": "spectra the user gave", "file": "spectra the user gave"}.get(k, _esc(k)) for k in kinds)
+            + "; rv_err combines the noise, the segments' scatter beyond it, the templates' spread and the "
+            "zero point (columns rv_err_*).")
+    if distinct.get("teff_spec"):
+        from .parameters import MODEL_FWHM
+
+        items.append(f"Teff from the spectrum, log g and [Fe/H]: a quadratic spectral model learnt from the MILES "
+                     f"library at {MODEL_FWHM:g} A FWHM (Cenarro et al. 2007; Prugniel et al. 2011 parameters); its "
+                     "errors include its cross-validated scatter; spectra broader than the model do not let log g "
+                     "weigh the luminosity class.")
     items.append(f"Air/vacuum wavelengths converted with {_esc(AIR_VACUUM_FORMULA)} (Morton 2000); files that do "
                  "not state their medium are taken as air (see each row's warnings).")
     items.append(_esc(IERS_NOTE) + ". Velocities are barycentric where time, pointing and site are known, "
@@ -347,7 +368,7 @@ def night_of(catalogue) -> dict:
     return {"inputs": len(catalogue), "counts": counts, "flags": flag_counts(catalogue),
             "created_utc": catalogue.meta.get("created_utc", ""),
             "specan_version": catalogue.meta.get("specan_version", ""),
-            "distinct": {name: _distinct(catalogue, name) for name in ("calibration", "resolving_power")},
+            "distinct": {name: _distinct(catalogue, name) for name in DISTINCT_COLUMNS},
             "plotted": plotted, "plots": None, "plot_for": [], "medium_assumed": assumed}
 
 

@@ -221,3 +221,20 @@ def test_report_states_its_assumptions(tmp_path, monkeypatch):
     section = section[: section.index("</ul>")]
     for needed in ("Morton 2000", "IERS", "Galactocentric", "533 km/s", "Fitzpatrick (1999)"):
         assert needed in section, needed
+
+
+def test_report_names_the_templates_and_the_parameter_model(tmp_path, monkeypatch):
+    # the velocity templates and the parameter model are assumptions too (their sources: MILES)
+    from test_pipeline import plain_night
+
+    monkeypatch.setattr(pipeline, "code_fingerprint", lambda: "test")
+    night = plain_night(tmp_path / "night", 1)
+    out = tmp_path / "out"
+    cat = pipeline.run([night], out, stages=("read", "prepare", "velocity", "classify"), plots="none").catalogue
+    html = (out / "report.html").read_text()
+    section = html[html.index('id="assumptions"'):]
+    section = section[: section.index("</ul>")]
+    assert "Velocity templates:" in section and "rv_err combines" in section
+    kind = str(cat["template_kind"][0])
+    assert {"library": "MILES library", "synth": "synthetic spectra"}[kind] in section
+    assert "quadratic spectral model learnt from the MILES library at 4.5 A" in section
