@@ -677,6 +677,10 @@ def test_classify_reports_the_library_neighbours(sun_spectrum):
     assert all(35 <= sptype_to_code(n["mk"].split()[0]) <= 52 for n in near)
     plain = C.classify(sun_spectrum, rv=0 * u.km / u.s, parameters=False, neighbours=False)
     assert plain["type_evidence"] == "criteria" and plain["library_neighbours"] == []
+    # a calibration of one's own standards types in its own system: no library comparison unless asked
+    own = C.classify(sun_spectrum, calibration=ROOT / "sample_spectra" / "tordo_calibration.json",
+                     rv=0 * u.km / u.s, parameters=False)
+    assert own["type_evidence"] == "criteria"
 
 
 def test_classify_goes_on_without_the_library_comparison():

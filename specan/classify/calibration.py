@@ -188,13 +188,14 @@ class Calibration:
             self._fine = fine_model(self.model_, self.settings["depth_scale_sigma"])
         return self._fine
 
-    def classify(self, spectrum, rv=None, resolving_power=None, parameters=True, neighbours=True):
+    def classify(self, spectrum, rv=None, resolving_power=None, parameters=True, neighbours=False):
         """MK type of a spectrum; see :func:`specan.classify.classify` for the result.
 
         With ``parameters`` the atmospheric parameters are measured too
         (:func:`specan.parameters.measure`) and the surface gravity weighs the luminosity classes
         (:mod:`specan.classify.gravity`). With ``neighbours`` the whole spectrum is compared with
-        the library stars (:mod:`specan.classify.neighbours`) and their types weigh the type.
+        the library stars (:mod:`specan.classify.neighbours`) and their types weigh the type
+        (:func:`specan.classify.classify` asks for it with the shipped calibration).
         """
         meas = spectrum_criteria(spectrum, self.resolution, rv=rv, resolving_power=resolving_power)
         evidence = (_library_evidence(spectrum, meas["rv"], meas["notes"], meas["input_fwhm"],
