@@ -26,7 +26,7 @@ in the other library: HD 94028 is in both).
 
 Targets (issue "A real reference library"): JHC >= 85% within 2 subclasses and luminosity group
 >= 80% (B-K); MILES >= 80% / >= 75%; F-K Teff rms <= 2.5%, log g <= 0.35 dex, [Fe/H] <= 0.2 dex.
-Run: ``python benchmarks/cv_classify.py [partitions]`` (default 3; about 15 minutes on 2 cores).
+Run: ``python benchmarks/cv_classify.py [partitions]`` (default 3; about 20 minutes on 2 cores).
 """
 
 from __future__ import annotations
