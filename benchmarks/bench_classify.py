@@ -5,6 +5,11 @@ R = 2000, ~4,800 pixels), S/N stated as 500. Three timings, median of repeats:
 
 - ``classify``: the whole call, velocity measured with specan.velocity and removed;
 - ``classify, rv given``: velocity known (what a pipeline that already measured it pays);
+- ``classify, rv given, no library comparison``: the same without the comparison with the
+  library stars (``neighbours=False``), so its cost shows;
+- ``library comparison``: the spectrum put on the comparison's footing and compared with every
+  library star (:func:`specan.classify.neighbours.measure`), and the comparison alone
+  (one set of matrix products over the 459 stars);
 - ``criteria -> type``: the likelihood on the (code, class) lattice alone.
 
 If the reference library is present, also the time to fit a calibration on its
@@ -51,10 +56,16 @@ def timed(fn, repeats):
 def main(repeats=20):
     spec = sun()
     cal = C.default_calibration()
+    from specan.classify import neighbours
+
     meas = C.spectrum_criteria(spec, cal.resolution, rv=0 * u.km / u.s)
+    flux, good = neighbours.on_grid(spec, rv=0 * u.km / u.s)
     rows = [
         ("classify (velocity measured)", lambda: C.classify(spec)),
         ("classify, rv given", lambda: C.classify(spec, rv=0 * u.km / u.s)),
+        ("  ... no library comparison", lambda: C.classify(spec, rv=0 * u.km / u.s, neighbours=False)),
+        ("library comparison", lambda: neighbours.measure(spec, rv=0 * u.km / u.s)),
+        ("  ... comparison alone", lambda: neighbours.compare(flux, good)),
         ("criteria -> type only", lambda: cal.classify_criteria(meas["values"], meas["noise"], meas["snr"])),
     ]
     print(f"{spec.flux.size} pixels, default calibration ({len(cal.standards_)} standards), {repeats} repeats")

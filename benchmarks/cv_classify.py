@@ -14,11 +14,19 @@ in the other library: HD 94028 is in both).
    MILES stars' log g and Teff are their held-out predictions from the parameter model's 10-fold CV
    (``scripts/fit_parameter_model.py``); JHC stars' come from the packaged model, fitted on MILES
    only. The class-gravity relations are refitted on each fold's MILES training stars.
-3. **Atmospheric parameters**: the parameter model's own 10-fold CV on MILES (F-K, cooler, hotter).
+3. The same **with the library neighbours** weighing the type (specan.classify.neighbours, as
+   ``specan.classify`` does by default): each JHC star compared with every MILES star of the shipped
+   comparison set (its twin left out), each MILES star with all the others (itself and any star of
+   the same name left out: leave-one-out). ``+n`` in the keys; ``MILES+g+n`` and ``JHC+n`` are what
+   ``specan classify`` does for spectra like each library's (log g is not used at the JHC's 13 A).
+   Also the neighbours alone (weighted median type and weighted class vote of the voting stars),
+   and the upper bound set by the published types themselves: how often JHC's second published
+   type (``alt_mk``, where given) lies within 2 subclasses of the first, and in the same group.
+4. **Atmospheric parameters**: the parameter model's own 10-fold CV on MILES (F-K, cooler, hotter).
 
 Targets (issue "A real reference library"): JHC >= 85% within 2 subclasses and luminosity group
 >= 80% (B-K); MILES >= 80% / >= 75%; F-K Teff rms <= 2.5%, log g <= 0.35 dex, [Fe/H] <= 0.2 dex.
-Run: ``python benchmarks/cv_classify.py [partitions]`` (default 3; about 15 minutes on 2 cores).
+Run: ``python benchmarks/cv_classify.py [partitions]`` (default 3; about 20 minutes on 2 cores).
 """
 
 from __future__ import annotations
@@ -48,14 +56,75 @@ def _script(name):
     return module
 
 
-def measure():
-    """Criteria, labels, ids and rest-frame velocities of both libraries (the default calibration's recipe)."""
+def measure(velocities=None):
+    """Criteria, labels, ids of both libraries and the resolution (the default calibration's recipe).
+
+    ``velocities`` (a list) receives the JHC stars' removed velocities.
+    """
     fit = _script("fit_default_calibration")
     with warnings.catch_warnings():
         warnings.simplefilter("ignore")
-        Xj, Lj, Ij = fit.measure_jhc(REFERENCE / "jhc1984", C)
+        Xj, Lj, Ij = fit.measure_jhc(REFERENCE / "jhc1984", C, velocities)
         Xm, Lm, Im, _ = fit.measure_miles(REFERENCE / "miles", C)
     return np.array(Xj), Lj, Ij, np.array(Xm), Lm, Im, fit.RESOLUTION_AA
+
+
+def library_evidence(ids_jhc, velocities, ids_miles):
+    """specan.classify.neighbours evidence of every JHC star (at its velocity, ~13 A) and, leave-one-out,
+    of every MILES standard (at rest, 2.5 A), against the shipped comparison set."""
+    from astropy.table import Table
+
+    from specan.classify import neighbours
+
+    ref = neighbours.default_reference()
+    out = {}
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        cat = Table.read(REFERENCE / "jhc1984" / "catalog.csv", format="ascii.csv")
+        files = {f"jhc1984:{r['id']}": r["file"] for r in cat}
+        for i, rv in zip(ids_jhc, velocities):
+            s = specan.read(REFERENCE / "jhc1984" / str(files[i]))
+            flux, good = neighbours.on_grid(s, rv=rv, fwhm_in=13.0)
+            out[i] = neighbours.compare(flux, good, ref, exclude=[TWINS[i]] if i in TWINS else ())
+        name = dict(zip(ref.ids, ref.names))
+        for i in ids_miles:   # the comparison set holds exactly the MILES standards
+            k = ref.ids.index(i)
+            out[i] = neighbours.compare(ref.flux[k], ref.good[k], ref, exclude=(i, name[i]))
+    return [out[i] for i in ids_jhc], [out[i] for i in ids_miles]
+
+
+def neighbours_alone(evidence):
+    """(code, lumclass) of each star from its voting library stars alone: weighted median type, weighted class vote."""
+    from specan.mktypes import lumclass_to_number
+
+    out = []
+    for e in evidence:
+        idx, w = e.weights()
+        codes = e.reference.codes[idx]
+        order = np.argsort(codes, kind="stable")
+        code = codes[order][np.searchsorted(np.cumsum(w[order]) / w.sum(), 0.5)]
+        lums = np.array([lumclass_to_number(e.reference.mk[i].split(None, 1)[1]) for i in idx])
+        votes = [w[lums == n].sum() for n in range(1, 6)]
+        out.append((float(code), C.number_to_lumclass(1 + int(np.argmax(votes)))))
+    return out
+
+
+def published_agreement():
+    """(n, within 2 subclasses, same luminosity group) of JHC's alt_mk against its mk, where given."""
+    from astropy.table import Table
+
+    from specan.mktypes import parse_mk
+
+    cat = Table.read(REFERENCE / "jhc1984" / "catalog.csv", format="ascii.csv")
+    pairs = []
+    for r in cat:
+        alt = "" if np.ma.is_masked(r["alt_mk"]) else str(r["alt_mk"]).strip()
+        if alt:
+            code, lc = parse_mk(alt)
+            pairs.append((abs(code - sptype_to_code(str(r["sptype"]))) <= 2,
+                          luminosity_group(lc) == luminosity_group(str(r["lumclass"]))))
+    pairs = np.array(pairs, bool).reshape(-1, 2)
+    return len(pairs), float(pairs[:, 0].mean()), float(pairs[:, 1].mean())
 
 
 def miles_parameters():
@@ -112,17 +181,20 @@ def _score(pred_codes, pred_lums, codes, lums):
     return float(np.mean(np.abs(err) <= 2)), float(np.median(np.abs(err))), float(np.mean(right))
 
 
-def cross_validate(X, L, ids, X_other, L_other, ids_other, fold, resolution, gravity_inputs=None):
+def cross_validate(X, L, ids, X_other, L_other, ids_other, fold, resolution, gravity_inputs=None, evidence=None):
     """Predictions for (X, L) from calibrations fitted on the other folds plus the other library.
 
     ``gravity_inputs``: (teff, logg, logg_err) per star of X and a function fold -> relations
-    table; when given, also the predictions with the gravity weights.
+    table; when given, also the predictions with the gravity weights. ``evidence``: the
+    library comparison of each star of X; when given, a dict of the predictions with it
+    (``plain``, ``weighted``) is returned as a third item.
     """
     import astropy.units as u
 
     from specan.classify import gravity
 
     plain, weighted = [None] * len(L), [None] * len(L)
+    with_n = {"plain": [None] * len(L), "weighted": [None] * len(L)}
     for f in range(fold.max() + 1):
         train = np.flatnonzero(fold != f)
         twins = {TWINS.get(ids[i]) for i in np.flatnonzero(fold == f)}
@@ -133,11 +205,19 @@ def cross_validate(X, L, ids, X_other, L_other, ids_other, fold, resolution, gra
         for i in np.flatnonzero(fold == f):
             r = cal.classify_criteria(X[i])
             plain[i] = (r["code"], r["lumclass"])
+            if evidence is not None:
+                r = cal.classify_criteria(X[i], neighbours=evidence[i])
+                with_n["plain"][i] = (r["code"], r["lumclass"])
             if gravity_inputs:
                 t, g, ge = gravity_inputs[0][i]
                 w = gravity.class_weights(g, ge, t, table)[0] if np.isfinite(g) else None
                 r = cal.classify_criteria(X[i], class_weight=w)
                 weighted[i] = (r["code"], r["lumclass"])
+                if evidence is not None:
+                    r = cal.classify_criteria(X[i], class_weight=w, neighbours=evidence[i])
+                    with_n["weighted"][i] = (r["code"], r["lumclass"])
+    if evidence is not None:
+        return plain, weighted, with_n
     return plain, weighted
 
 
@@ -148,7 +228,9 @@ def main(partitions=3, folds=10):
             return 1
     from specan.classify.gravity import relations_from_table
 
-    Xj, Lj, Ij, Xm, Lm, Im, res = measure()
+    rvj = []
+    Xj, Lj, Ij, Xm, Lm, Im, res = measure(rvj)
+    ej, em = library_evidence(Ij, rvj, Im)
     fit, catalog, labels, trainable, pred = miles_parameters()
     teff = labels[:, 0]
     fk = (teff >= 4000) & (teff <= 7000)
@@ -172,17 +254,20 @@ def main(partitions=3, folds=10):
     lums_j = [lc for _, lc in Lj]
     lums_m = [lc for _, lc in Lm]
     full = relations_from_table(fit.class_gravity(catalog, labels, trainable))
-    runs = {"JHC": [], "JHC+g": [], "MILES": [], "MILES+g": []}
+    runs = {"JHC": [], "JHC+g": [], "JHC+n": [], "MILES": [], "MILES+g": [], "MILES+n": [], "MILES+g+n": []}
     rng = np.random.default_rng(2026)
     for p in range(partitions + 1):
         fj = _folds(codes_j, folds, None if p == 0 else rng)
         fm = _folds(codes_m, folds, None if p == 0 else rng)
         # JHC stars are not in the relations' training set: the full MILES relations serve every fold
-        pj, wj = cross_validate(Xj, Lj, Ij, Xm, Lm, Im, fj, res, (jg, lambda f: full))
-        pm, wm = cross_validate(Xm, Lm, Im, Xj, Lj, Ij, fm, res,
-                                (mg, lambda f: relations_without({Im[i] for i in np.flatnonzero(fm == f)})))
+        pj, wj, nj = cross_validate(Xj, Lj, Ij, Xm, Lm, Im, fj, res, (jg, lambda f: full), ej)
+        pm, wm, nm = cross_validate(Xm, Lm, Im, Xj, Lj, Ij, fm, res,
+                                    (mg, lambda f: relations_without({Im[i] for i in np.flatnonzero(fm == f)})), em)
         for key, got, codes, lums in (("JHC", pj, codes_j, lums_j), ("JHC+g", wj, codes_j, lums_j),
-                                      ("MILES", pm, codes_m, lums_m), ("MILES+g", wm, codes_m, lums_m)):
+                                      ("JHC+n", nj["plain"], codes_j, lums_j),
+                                      ("MILES", pm, codes_m, lums_m), ("MILES+g", wm, codes_m, lums_m),
+                                      ("MILES+n", nm["plain"], codes_m, lums_m),
+                                      ("MILES+g+n", nm["weighted"], codes_m, lums_m)):
             runs[key].append(_score([g[0] for g in got], [g[1] for g in got], codes, lums))
         label = "interleaved folds" if p == 0 else f"random partition {p}"
         print(f"{label}: " + "; ".join(f"{k} within 2 {v[-1][0]:.1%} median {v[-1][1]:.2f} lum group {v[-1][2]:.1%}"
@@ -196,6 +281,14 @@ def main(partitions=3, folds=10):
         print(f"  {key:8s} interleaved: within 2 {v[0, 0]:.1%}, median {v[0, 1]:.2f}, lum group B-K {v[0, 2]:.1%}; "
               f"{len(rand)} random partitions: {rand[:, 0].mean():.1%} +- {sd[0]:.1%}, "
               f"{rand[:, 1].mean():.2f} +- {sd[1]:.2f}, {rand[:, 2].mean():.1%} +- {sd[2]:.1%}")
+    print("\nlibrary neighbours alone (no criteria; JHC against all MILES standards, MILES leave-one-out):")
+    for key, ev, codes, lums in (("JHC", ej, codes_j, lums_j), ("MILES", em, codes_m, lums_m)):
+        got = neighbours_alone(ev)
+        s = _score([g[0] for g in got], [g[1] for g in got], codes, lums)
+        print(f"  {key:8s} within 2 {s[0]:.1%}, median {s[1]:.2f}, lum group B-K {s[2]:.1%}")
+    n, within, group = published_agreement()
+    print(f"\npublished types against each other: JHC's second type (alt_mk, {n} stars) within 2 subclasses of "
+          f"the first for {within:.1%}, same luminosity group for {group:.1%}")
     return 0
 
 

@@ -75,7 +75,8 @@ def miles_label(row):
     return sp, lc + ("e" if marks_emission(_text(row["sptype_published"])) else "")
 
 
-def measure_jhc(folder, classify):
+def measure_jhc(folder, classify, velocities=None):
+    """Criteria, labels and ids of the JHC stars; ``velocities`` (a list) receives each one's removed velocity."""
     import astropy.units as u
 
     import specan
@@ -88,6 +89,8 @@ def measure_jhc(folder, classify):
         res = classify.spectrum_criteria(s, RESOLUTION_AA * u.AA, measure_velocity=True,
                                          assume_resolution=RESOLUTION_AA * u.AA)
         X.append(res["values"])
+        if velocities is not None:
+            velocities.append(res["rv"])
         labels.append((str(row["sptype"]), str(row["lumclass"])))
         ids.append(f"jhc1984:{row['id']}")
         print(f"  {ids[-1]}", file=sys.stderr)

@@ -20,7 +20,7 @@ import numpy as np
 from ..errors import AnalysisError, ReadError
 from ..mktypes import lumclass_to_number, marks_emission, number_to_lumclass, sptype_to_code
 from ..obsinfo import get_info
-from . import flags, gravity
+from . import flags, gravity, neighbours as library
 from .atmosphere import atmosphere_columns, gravity_agreement, measure_atmosphere
 from .criteria import CRITERIA, EMISSION_SENSITIVE, criteria_names, definitions
 from .crossval import cross_validate
@@ -188,14 +188,18 @@ class Calibration:
             self._fine = fine_model(self.model_, self.settings["depth_scale_sigma"])
         return self._fine
 
-    def classify(self, spectrum, rv=None, resolving_power=None, parameters=True):
+    def classify(self, spectrum, rv=None, resolving_power=None, parameters=True, neighbours=False):
         """MK type of a spectrum; see :func:`specan.classify.classify` for the result.
 
         With ``parameters`` the atmospheric parameters are measured too
         (:func:`specan.parameters.measure`) and the surface gravity weighs the luminosity classes
-        (:mod:`specan.classify.gravity`).
+        (:mod:`specan.classify.gravity`). With ``neighbours`` the whole spectrum is compared with
+        the library stars (:mod:`specan.classify.neighbours`) and their types weigh the type
+        (:func:`specan.classify.classify` asks for it with the shipped calibration).
         """
         meas = spectrum_criteria(spectrum, self.resolution, rv=rv, resolving_power=resolving_power)
+        evidence = (_library_evidence(spectrum, meas["rv"], meas["notes"], meas["input_fwhm"],
+                                      meas["input_resolving_power"]) if neighbours else None)
         atmosphere = (measure_atmosphere(spectrum, meas["rv"], meas["notes"], meas["input_fwhm"],
                                          meas["input_resolving_power"]) if parameters else None)
         weights = None
@@ -205,7 +209,8 @@ class Calibration:
         elif atmosphere is not None:
             weights, z = gravity.class_weights(atmosphere["logg"].value, atmosphere["logg_err"].value,
                                                atmosphere["teff"].value)
-        out = self.classify_criteria(meas["values"], meas["noise"], snr=meas["snr"], class_weight=weights)
+        out = self.classify_criteria(meas["values"], meas["noise"], snr=meas["snr"], class_weight=weights,
+                                     neighbours=evidence)
         out["notes"] = meas["notes"] + out["notes"]
         out["rv"] = meas["rv"]
         out.update(atmosphere_columns(atmosphere))
@@ -213,7 +218,7 @@ class Calibration:
             gravity_agreement(out, z)
         return out
 
-    def classify_criteria(self, values, noise=None, snr=None, class_weight=None):
+    def classify_criteria(self, values, noise=None, snr=None, class_weight=None, neighbours=None):
         """MK type from criteria already measured (in :func:`criteria_names` order).
 
         Parameters
@@ -225,6 +230,8 @@ class Calibration:
             S/N per pixel, for the ``low_snr`` flag.
         class_weight : ndarray (5,), optional
             An independent likelihood of each luminosity class I..V (the surface gravity's).
+        neighbours : specan.classify.neighbours.Evidence, optional
+            The spectrum's comparison with the library stars: their types weigh the type posterior.
 
         Returns
         -------
@@ -234,7 +241,8 @@ class Calibration:
         fine = self.lattice_model()
         x, noise, ok = _usable_criteria(values, noise)
         p, ll, z2 = posterior(x, noise, fine, self.settings["dof"], self.tau_, ok)
-        est = read_posterior(p, ll, fine["grid"], self.tau_class_, class_weight)
+        type_weight = None if neighbours is None else neighbours.type_likelihood(fine["grid"])
+        est = read_posterior(p, ll, fine["grid"], self.tau_class_, class_weight, type_weight)
         quality = fit_quality(z2, fine["weights"], ok, est.code_index, est.class_index)
         model = class_means(fine["mean"], fine["offsets"], np.ones(len(x), bool))[est.code_index, est.class_index]
         raised = self._flags(x, noise, ok, snr, est, quality, model)
@@ -248,6 +256,8 @@ class Calibration:
                                                    fine["weights"]),
             "flags": [f for f, _ in raised], "notes": [n for _, n in raised], "fit_quality": quality,
             "criteria": criteria_table(x, ok, model), "calibration": self.source,
+            "type_evidence": "criteria" if neighbours is None else "criteria and library neighbours",
+            "library_neighbours": [] if neighbours is None else neighbours.named(),
         }
 
     def _flags(self, x, noise, ok, snr, est, quality, model):
@@ -337,6 +347,18 @@ class Calibration:
         except (json.JSONDecodeError, UnicodeDecodeError) as exc:
             raise ReadError(f"calibration file is not valid JSON ({exc})", path) from None
         return cls.from_dict(data, path)
+
+
+def _library_evidence(spectrum, rv, notes, fwhm=None, resolving_power=None):
+    """The spectrum's comparison with the library stars, or None (with a note) where it cannot be made.
+
+    ``fwhm`` (A) or ``resolving_power``: the resolution the criteria took the spectrum to have.
+    """
+    try:
+        return library.measure(spectrum, rv=rv, fwhm_in=fwhm, resolving_power=resolving_power, notes=notes)
+    except AnalysisError as exc:
+        notes.append(f"type from the criteria alone, no library comparison: {getattr(exc, 'reason', exc)}")
+        return None
 
 
 # ---------------------------------------------------------------------------

@@ -26,7 +26,7 @@ def default_calibration():
     return Calibration.from_dict(json.loads(text), DEFAULT_FILE)
 
 
-def classify(spectrum, calibration=None, rv=None, resolving_power=None, parameters=True):
+def classify(spectrum, calibration=None, rv=None, resolving_power=None, parameters=True, neighbours=None):
     """MK spectral type, luminosity class, Teff and flags of a spectrum.
 
     Parameters
@@ -44,6 +44,13 @@ def classify(spectrum, calibration=None, rv=None, resolving_power=None, paramete
     parameters : bool
         Also measure Teff, log g and [Fe/H] (:func:`specan.parameters.measure`) and let the
         surface gravity weigh the luminosity classes (:mod:`specan.classify.gravity`).
+    neighbours : bool, optional
+        Also compare the whole spectrum with the MILES library stars (at rest, 13 A FWHM,
+        normalised alike; :mod:`specan.classify.neighbours`) and let the types of the nearest
+        weigh the type posterior (the class stays the criteria's and the gravity's). Default:
+        with the shipped calibration, whose standards include those stars, yes; with a
+        calibration of one's own standards, no (their system, not the library's, defines the
+        types: the synthetic demo standards' A3 V star, for one, is most like MILES B6-B8 stars).
 
     Returns
     -------
@@ -59,9 +66,15 @@ def classify(spectrum, calibration=None, rv=None, resolving_power=None, paramete
         ``calibration`` (its source), and with ``parameters`` ``teff_spec``, ``teff_spec_err`` (K),
         ``logg``, ``logg_err``, ``feh``, ``feh_err`` (dex) and ``parameters_chi2`` (None where
         not measured). The flag ``gravity_conflict`` says the log g and the class disagree.
+        ``type_evidence`` ("criteria" or "criteria and library neighbours") and
+        ``library_neighbours`` (list of {id, name, mk, rms, weight}: the nearest library stars,
+        nearest first, ``rms`` their normalised-flux difference, ``weight`` their share of the vote).
     """
+    if neighbours is None:
+        neighbours = calibration is None
     if calibration is None:
         calibration = default_calibration()
     elif not isinstance(calibration, Calibration):
         calibration = Calibration.load(calibration)
-    return calibration.classify(spectrum, rv=rv, resolving_power=resolving_power, parameters=parameters)
+    return calibration.classify(spectrum, rv=rv, resolving_power=resolving_power, parameters=parameters,
+                                neighbours=neighbours)

@@ -31,7 +31,7 @@ class TypeEstimate(NamedTuple):
     class_index: int          # lattice column of the class
 
 
-def read_posterior(p, ll, grid, tau_class, class_weight=None):
+def read_posterior(p, ll, grid, tau_class, class_weight=None, type_weight=None):
     """Type, its uncertainty and the class probabilities from a posterior.
 
     Parameters
@@ -47,6 +47,10 @@ def read_posterior(p, ll, grid, tau_class, class_weight=None):
     class_weight : ndarray (5,), optional
         An independent likelihood of each class I..V (e.g. from the surface gravity,
         :mod:`specan.classify.gravity`), multiplied into the posterior and the class probabilities.
+    type_weight : ndarray (G,), optional
+        An independent likelihood of each type code of ``grid`` (e.g. from the library stars most
+        like the spectrum, :mod:`specan.classify.neighbours`), multiplied into the type posterior;
+        the class probabilities stay the criteria's (and ``class_weight``'s).
 
     Returns
     -------
@@ -54,6 +58,9 @@ def read_posterior(p, ll, grid, tau_class, class_weight=None):
     """
     if class_weight is not None:
         p = p * np.asarray(class_weight, float)[None, :]
+        p = p / p.sum()
+    if type_weight is not None:
+        p = p * np.asarray(type_weight, float)[:, None]
         p = p / p.sum()
     code, code_err, _ = summarise(p, grid)
     pl = np.exp((ll - ll.max()) / tau_class).sum(axis=0)

@@ -27,6 +27,8 @@ def classify_file(path, overrides, calibration, photometry=None, v_keyword=None)
         "teff_err_k": float(res["teff_err"].to_value("K")),
         "flags": list(res["flags"]),
         "nearest_standards": res["nearest_standards"],
+        "type_evidence": res["type_evidence"],
+        "library_neighbours": res["library_neighbours"],
         "rv_kms": None if res["rv"] is None else float(res["rv"].to_value("km/s")),
         "notes": list(res["notes"]),
     }
@@ -86,6 +88,9 @@ def command(ctx, files, calibration, photometry, v_keyword, as_json, **kwargs):
                    f"Teff {d['teff_k']:.0f} +- {d['teff_err_k']:.0f} K")
         near = ", ".join(f"{s['id']} {s['mk']}" for s in d["nearest_standards"])
         click.echo(f"  nearest standards: {near}")
+        if d["library_neighbours"]:
+            like = ", ".join(f"{s['name']} {s['mk']}" for s in d["library_neighbours"])
+            click.echo(f"  most alike library stars (MILES): {like}")
         if d["distance_pc"] is not None:
             click.echo(f"  distance {d['distance_pc']:.0f} pc ({d['distance_lo_pc']:.0f}-{d['distance_hi_pc']:.0f}), "
                        f"M_V {d['m_v_abs']:.2f}")
