@@ -187,7 +187,7 @@ def _distinct(catalogue, name):
 
 
 #: Columns whose distinct values in a night the report's assumptions name.
-DISTINCT_COLUMNS = ("calibration", "resolving_power", "template_kind", "teff_spec")
+DISTINCT_COLUMNS = ("calibration", "resolving_power", "template_kind", "teff_spec", "type_evidence")
 
 
 def _assumptions_html(distinct) -> str:
@@ -202,6 +202,10 @@ def _assumptions_html(distinct) -> str:
     cals = distinct.get("calibration") or []
     if cals:
         items.append("MK calibration: " + "; ".join(_esc(c) for c in cals) + ".")
+    if any("neighbours" in e for e in distinct.get("type_evidence") or []):
+        items.append("Spectral types weighed by the MILES library stars whose whole spectra match best (at rest, "
+                     "13 A FWHM; Sanchez-Blazquez et al. 2006), beside the calibration's criteria; the luminosity "
+                     "class is the criteria's.")
     powers = distinct.get("resolving_power") or []
     if powers:
         items.append("Resolving power as stated or assumed per file: " + ", ".join(_esc(p) for p in powers[:8])

@@ -238,3 +238,6 @@ def test_report_names_the_templates_and_the_parameter_model(tmp_path, monkeypatc
     kind = str(cat["template_kind"][0])
     assert {"library": "MILES library", "synth": "synthetic spectra"}[kind] in section
     assert "quadratic spectral model learnt from the MILES library at 4.5 A" in section
+    # the built-in calibration types with the library neighbours, and the report says so
+    assert str(cat["type_evidence"][0]) == "criteria and library neighbours"
+    assert "MILES library stars whose whole spectra match best" in section
