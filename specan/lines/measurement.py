@@ -22,11 +22,12 @@ from .components import component_centres, window_features, wing_mask
 from .data import DETECT_SIGMA, MIN_DEPTH, LineData, find_features, normalised
 from .hydrogen import without_hydrogen
 from .listed import blends, line_widths, lines_in_range, match_windows, velocities
+from .batchfit import fit_batched_voigt, fit_planned
 from .profiles import fit_gauss, fit_profile
 from .windows import line_window, local_continuum, profile_window, wing_reach
 
 __all__ = ["measure", "cayrel_error", "Targets", "LineResult", "line_targets", "measure_lines",
-           "measure_line", "match_feature", "integrated_ew", "central_depth", "use_voigt", "fit_line",
+           "measure_line", "LinePlan", "plan_line", "finish_line", "match_feature", "integrated_ew", "central_depth", "use_voigt", "fit_line",
            "chosen_ew", "window_noise", "half_width", "line_table", "wing_fit"]
 
 #: Profiles :func:`measure` can fit.
@@ -56,7 +57,7 @@ def cayrel_error(fwhm, pixel, snr):
 
 def measure(spectrum, linelist=None, rv=0 * u.km / u.s, resolving_power=None, profile="auto",
             window=None, detect_sigma=DETECT_SIGMA, kinds=("atomic",), min_depth=MIN_DEPTH,
-            divide_hydrogen=True, _data=None):
+            divide_hydrogen=True, _data=None, _batched=True):
     """Measure every listed line the spectrum covers.
 
     Per line: the centre is the matched feature (see :func:`identify`) or the
@@ -119,6 +120,8 @@ def measure(spectrum, linelist=None, rv=0 * u.km / u.s, resolving_power=None, pr
     """
     if profile not in PROFILES:
         raise ValueError("profile must be 'auto', 'gauss' or 'voigt'")
+    # _batched=False: every line fitted on its own (scipy's least_squares for the Voigt fits), the
+    # reference the batched fits are tested against (tests/test_lines_batched.py)
     # _data: the internal arrays already built from this spectrum (analyse builds them once)
     data = _data if _data is not None else LineData(normalised(spectrum), resolving_power)
     listed = lines_in_range(data, linelist, kinds, rv)
@@ -127,13 +130,14 @@ def measure(spectrum, linelist=None, rv=0 * u.km / u.s, resolving_power=None, pr
     # Hydrogen first: the other lines are then measured on the spectrum divided by the
     # fitted hydrogen profiles, so a metal line in a Balmer wing is measured against the
     # wing (its local continuum), not against a continuum the wing lies far below.
-    results = measure_lines(data, features, targets, np.flatnonzero(targets.hydrogen), profile, detect_sigma)
+    results = measure_lines(data, features, targets, np.flatnonzero(targets.hydrogen), profile, detect_sigma,
+                            _batched)
     data_m, features_m = data, features
     if divide_hydrogen:
         data_m, features_m = without_hydrogen(data, features, results, targets, listed.rows["ep_low"],
                                               detect_sigma, min_depth)
     results.update(measure_lines(data_m, features_m, targets, np.flatnonzero(~targets.hydrogen), profile,
-                                 detect_sigma))
+                                 detect_sigma, _batched))
     return line_table(data, listed, targets, [results[i] for i in range(targets.pred.size)])
 
 
@@ -180,9 +184,21 @@ class LineResult:
     fit: dict | None = None
 
 
-def measure_lines(data, features, targets, which, profile, detect_sigma):
-    """:func:`measure_line` of each line index in ``which``, as ``{index: LineResult}``."""
-    return {int(i): measure_line(data, features, targets, i, profile, detect_sigma) for i in which}
+def measure_lines(data, features, targets, which, profile, detect_sigma, batched=True):
+    """:func:`measure_line` of each line index in ``which``, as ``{index: LineResult}``.
+
+    ``batched`` (default) fits all the lines together (:func:`specan.lines.batchfit.fit_planned`:
+    one vectorised solve per kind of fit instead of one fit call per line); False fits them one
+    by one (:func:`measure_line`), the reference the batched path is tested against.
+    """
+    if not batched:
+        return {int(i): measure_line(data, features, targets, i, profile, detect_sigma) for i in which}
+    plans = {int(i): plan_line(data, features, targets, i, profile, detect_sigma) for i in which}
+    wanted = [p for p in plans.values() if p.wants_fit]
+    fits = fit_planned(data, wanted)
+    for plan, fit in zip(wanted, fits):
+        plan.fit = fit
+    return {i: finish_line(data, features, targets, i, plan, fit_batched_voigt) for i, plan in plans.items()}
 
 
 def measure_line(data, features, targets, i, profile, detect_sigma):
@@ -193,6 +209,36 @@ def measure_line(data, features, targets, i, profile, detect_sigma):
     LineResult
         ``method`` "masked" (and nothing measured) when the line's core has no good pixel.
     """
+    plan = plan_line(data, features, targets, i, profile, detect_sigma)
+    if plan.wants_fit:
+        plan.fit = fit_line(data, plan.window, plan.cont, plan.centres, plan.voigt, plan.max_shift, plan.fw,
+                            plan.sign, plan.skip, plan.hydrogen)
+    return finish_line(data, features, targets, i, plan, fit_profile)
+
+
+@dataclass
+class LinePlan:
+    """One line up to its profile fit: what :func:`plan_line` found and the fit it asks for."""
+
+    result: LineResult
+    fw: float = np.nan
+    hydrogen: bool = False
+    ic: int = 0
+    sign: float = 1.0
+    detected: bool = False
+    max_shift: float = np.nan
+    window: object = None
+    cont: np.ndarray | None = None
+    centres: np.ndarray | None = None
+    skip: np.ndarray | None = None
+    voigt: bool = False
+    wants_fit: bool = False
+    #: the profile fit once made (None: none asked for, or it failed)
+    fit: dict | None = None
+
+
+def plan_line(data, features, targets, i, profile, detect_sigma):
+    """Everything about listed line ``i`` that comes before its profile fit (see :class:`LinePlan`)."""
     fw, hydrogen = targets.fwhm[i], bool(targets.hydrogen[i])
     centre, max_shift, matched = match_feature(features, targets.pred[i], targets.match[i], fw)
     ic = data.nearest_pixel(centre)
@@ -202,7 +248,7 @@ def measure_line(data, features, targets, i, profile, detect_sigma):
         # is the line itself
         matched, max_shift = True, 0.5 * fw
     if not data.good[np.abs(data.wave - centre) <= 0.5 * fw].any():
-        return LineResult(method="masked")
+        return LinePlan(LineResult(method="masked"))
     s_c = float(data.signif[ic])
     sign = -1.0 if s_c < -detect_sigma else 1.0
     # a line is detected where identification found a feature for it (significant in
@@ -218,18 +264,31 @@ def measure_line(data, features, targets, i, profile, detect_sigma):
     centres = component_centres(data, targets, i, centre, window, in_win)
     skip = wing_mask(data, targets, i, centre, window, in_win, centres) if hydrogen else None
     voigt = use_voigt(profile, hydrogen, result.depth, data, window, fw)
-    fit = fit_line(data, window, cont, centres, voigt, max_shift, fw, sign, skip, hydrogen) if detected else None
+    return LinePlan(result, fw, hydrogen, ic, sign, detected, max_shift, window, cont, centres, skip, voigt,
+                    wants_fit=detected)
+
+
+def finish_line(data, features, targets, i, plan, fitter):
+    """The :class:`LineResult` of a planned line whose fit (``plan.fit``) is made.
+
+    ``fitter`` makes the wing fits of strong lines (:func:`wing_fit`).
+    """
+    result = plan.result
+    if plan.window is None:   # masked
+        return result
+    fit, window, fw, sign, hydrogen, voigt = plan.fit, plan.window, plan.fw, plan.sign, plan.hydrogen, plan.voigt
+    ew_int, ew_int_err = result.ew_int, result.ew_int_err
     if fit is not None:
         result.profile = "voigt" if voigt else "gauss"
         result.fit = dict(fit, profile=result.profile, sign=sign, ew_int=ew_int)
         result.ew_fit, result.ew_fit_err, result.fit_chi2 = fit["ew"], fit["ew_err"], fit["chi2"]
         result.fwhm, result.wave_obs = fit["fwhm"], fit["centre"]
     else:
-        result.fwhm = half_width(data, ic, window.lo, window.hi, sign)
-    result.method, result.ew, result.ew_err = chosen_ew(fit, result.profile, window.cut, len(centres) - 1,
+        result.fwhm = half_width(data, plan.ic, window.lo, window.hi, sign)
+    result.method, result.ew, result.ew_err = chosen_ew(fit, result.profile, window.cut, len(plan.centres) - 1,
                                                         hydrogen, ew_int, ew_int_err)
     if fit is not None and voigt and not hydrogen and sign > 0:
-        wing = wing_fit(data, features, targets, i, result.wave_obs, fit, fw)
+        wing = wing_fit(data, features, targets, i, result.wave_obs, fit, fw, fitter=fitter)
         if wing is not None:
             fit, wwin = wing
             result.fit = dict(fit, profile="voigt", sign=sign, ew_int=ew_int)
@@ -239,13 +298,13 @@ def measure_line(data, features, targets, i, profile, detect_sigma):
             result.window_min, result.window_max = data.wave[wwin.lo], data.wave[wwin.hi]
             window = wwin
     # significant in the matched filter AND an equivalent width clear of its error
-    result.detected = detected and abs(result.ew) > 2.0 * result.ew_err
+    result.detected = plan.detected and abs(result.ew) > 2.0 * result.ew_err
     fwhm_c = result.fwhm if np.isfinite(result.fwhm) else fw
-    result.ew_err_cayrel = cayrel_error(fwhm_c, data.dx[ic], 1.0 / window_noise(data, window))
+    result.ew_err_cayrel = cayrel_error(fwhm_c, data.dx[plan.ic], 1.0 / window_noise(data, window))
     return result
 
 
-def wing_fit(data, features, targets, i, centre, fit, fwhm, max_iter=3):
+def wing_fit(data, features, targets, i, centre, fit, fwhm, max_iter=3, fitter=fit_profile):
     """A strong line's Voigt fit over the window its own wings set, or None.
 
     The window reaches where the fitted profile's depth falls to the noise
@@ -258,6 +317,9 @@ def wing_fit(data, features, targets, i, centre, fit, fwhm, max_iter=3):
     pixels, 1.2 line widths around them, are left out, as for the hydrogen wings), so
     blends do not add to the equivalent width. The equivalent width is the fitted
     profile's area, the wings beyond the window included.
+
+    ``fitter`` is :func:`specan.lines.profiles.fit_profile` or a function of the same call
+    (the batched path's).
 
     Returns
     -------
@@ -296,7 +358,7 @@ def wing_fit(data, features, targets, i, centre, fit, fwhm, max_iter=3):
         far = np.abs(weak_pos[:, None] - centres[None, :]).min(axis=1) > MIN_SEPARATION * fwhm
         skip = (np.abs(x[None, :] - weak_pos[far][:, None]) < 1.2 * fwhm).any(axis=0) if far.any() else None
         cont = np.ones(x.size)
-        new = fit_profile(data, win.lo, win.hi, cont, centres, "voigt", 0.5 * fwhm, fwhm / GAUSS_FWHM, 1.0, skip)
+        new = fitter(data, win.lo, win.hi, cont, centres, "voigt", 0.5 * fwhm, fwhm / GAUSS_FWHM, 1.0, skip)
         if new is None or not np.isfinite(new["ew"]) or new["ew"] <= 0:
             break
         fit, best = new, (new, win)
