@@ -120,3 +120,31 @@ def test_batched_voigt_converges_where_it_stops():
     assert fast["ew"] == pytest.approx(4.0, abs=5 * fast["ew_err"])
     assert abs(fast["ew"] - slow["ew"]) < EW_TOL * slow["ew_err"]
     assert fast["chi2"] <= slow["chi2"] * (1 + 1e-9)
+
+
+def test_vectorised_windows_equal_the_walks():
+    # line_windows walks every line at once; each window must be the one line_window walks
+    from specan.lines.data import DETECT_SIGMA, MIN_DEPTH, LineData, find_features
+    from specan.lines.listed import lines_in_range
+    from specan.lines.measurement import line_start, line_targets
+    from specan.lines.windows import line_window, line_windows
+
+    truth = Table.read(DEMO / "truth.ecsv", format="ascii.ecsv")
+    compared = 0
+    for row in truth[~truth["broken"]][:8]:
+        data = LineData(prepare(read(DEMO / row["file"])))
+        listed = lines_in_range(data, None, ("atomic",), row["rv_topo"] * u.km / u.s)
+        targets = line_targets(data, listed, None)
+        features = find_features(data, DETECT_SIGMA, MIN_DEPTH)
+        # on the spectrum and on a copy with a ripple (other plateaus, other cuts)
+        for d in (data, data.divided(0.97 + 0.03 * np.cos(data.wave / 50.0))):
+            starts = [line_start(d, features, targets, i, DETECT_SIGMA) for i in range(targets.pred.size)]
+            idx = [i for i, st in enumerate(starts) if st is not None]
+            batch = line_windows(d, [starts[i] for i in idx], targets.fwhm[idx], targets.hydrogen[idx])
+            for i, window in zip(idx, batch):
+                st = starts[i]
+                one = line_window(d, st.ic, st.centre, st.sign, targets.fwhm[i], bool(targets.hydrogen[i]),
+                                  st.matched)
+                assert tuple(one) == tuple(window), (row["file"], listed.rows["id"][i])
+                compared += 1
+    assert compared > 1000

@@ -113,10 +113,16 @@ def matched_filter(flux, weight, sig_pix):
         s = float(np.exp(level * step))
         sel = q == level
         k1, k2 = _kernel_sums(s)  # sums of the kernel g and of g**2
-        f_wd = gaussian_filter1d(wd, s, mode="nearest")[sel]
-        f_wf = gaussian_filter1d(wf, s, mode="nearest")[sel]
-        f_w = gaussian_filter1d(w, s, mode="nearest")[sel]
-        f_w2 = gaussian_filter1d(w, s / np.sqrt(2.0), mode="nearest")[sel]
+        # filter only the stretch this width serves, plus the kernel's reach (gaussian_filter1d
+        # truncates at 4 sigma): the same sums at those pixels, for a fraction of the work
+        idx = np.flatnonzero(sel)
+        reach = int(4.0 * s + 0.5) + 1
+        part = slice(max(idx[0] - reach, 0), min(idx[-1] + reach + 1, n))
+        sub = sel[part]
+        f_wd = gaussian_filter1d(wd[part], s, mode="nearest")[sub]
+        f_wf = gaussian_filter1d(wf[part], s, mode="nearest")[sub]
+        f_w = gaussian_filter1d(w[part], s, mode="nearest")[sub]
+        f_w2 = gaussian_filter1d(w[part], s / np.sqrt(2.0), mode="nearest")[sub]
         # S = sum(w g d) / sqrt(sum(w g^2)): amplitude over its error for a Gaussian at each pixel
         signif[sel] = k1 * f_wd / np.sqrt(np.maximum(k2 * f_w2, 1e-300))
         safe = np.maximum(f_w, 1e-300)

@@ -24,10 +24,10 @@ from .hydrogen import without_hydrogen
 from .listed import blends, line_widths, lines_in_range, match_windows, velocities
 from .batchfit import fit_batched_voigt, fit_planned
 from .profiles import fit_gauss, fit_profile
-from .windows import line_window, local_continuum, profile_window, wing_reach
+from .windows import line_window, line_windows, local_continuum, profile_window, wing_reach
 
 __all__ = ["measure", "cayrel_error", "Targets", "LineResult", "line_targets", "measure_lines",
-           "measure_line", "LinePlan", "plan_line", "finish_line", "match_feature", "integrated_ew", "central_depth", "use_voigt", "fit_line",
+           "measure_line", "LinePlan", "LineStart", "line_start", "plan_line", "finish_line", "match_feature", "integrated_ew", "central_depth", "use_voigt", "fit_line",
            "chosen_ew", "window_noise", "half_width", "line_table", "wing_fit"]
 
 #: Profiles :func:`measure` can fit.
@@ -193,7 +193,12 @@ def measure_lines(data, features, targets, which, profile, detect_sigma, batched
     """
     if not batched:
         return {int(i): measure_line(data, features, targets, i, profile, detect_sigma) for i in which}
-    plans = {int(i): plan_line(data, features, targets, i, profile, detect_sigma) for i in which}
+    starts = {int(i): line_start(data, features, targets, i, detect_sigma) for i in which}
+    found = [i for i, st in starts.items() if st is not None]
+    windows = dict(zip(found, line_windows(data, [starts[i] for i in found], targets.fwhm[found],
+                                           targets.hydrogen[found])))
+    plans = {i: plan_line(data, features, targets, i, profile, detect_sigma, starts[i], windows.get(i))
+             for i in starts}
     wanted = [p for p in plans.values() if p.wants_fit]
     fits = fit_planned(data, wanted)
     for plan, fit in zip(wanted, fits):
@@ -237,9 +242,20 @@ class LinePlan:
     fit: dict | None = None
 
 
-def plan_line(data, features, targets, i, profile, detect_sigma):
-    """Everything about listed line ``i`` that comes before its profile fit (see :class:`LinePlan`)."""
-    fw, hydrogen = targets.fwhm[i], bool(targets.hydrogen[i])
+class LineStart(NamedTuple):
+    """Where a line is measured: what :func:`line_start` finds before its window is chosen."""
+
+    centre: float     #: the matched feature, or the shifted laboratory wavelength, Angstrom
+    max_shift: float  #: how far the fit may move the centre, Angstrom
+    matched: bool     #: a feature was matched (or the core is saturated at the listed place)
+    ic: int           #: the pixel nearest the centre
+    sign: float       #: 1 absorption, -1 emission
+    detected: bool    #: significant in the matched filter at a matched feature
+
+
+def line_start(data, features, targets, i, detect_sigma):
+    """:class:`LineStart` of listed line ``i``, or None when its core has no good pixel."""
+    fw = targets.fwhm[i]
     centre, max_shift, matched = match_feature(features, targets.pred[i], targets.match[i], fw)
     ic = data.nearest_pixel(centre)
     if not matched and data.signif[ic] >= detect_sigma and 1.0 - data.smooth[ic] > 0.5:
@@ -247,14 +263,34 @@ def plan_line(data, features, targets, i, profile, detect_sigma):
         # (noise picks one anywhere in it): a deep, significant line at the listed place
         # is the line itself
         matched, max_shift = True, 0.5 * fw
-    if not data.good[np.abs(data.wave - centre) <= 0.5 * fw].any():
-        return LinePlan(LineResult(method="masked"))
+    # the pixels within half a width (found by bisection, then the exact test on those few)
+    near = slice(max(int(np.searchsorted(data.wave, centre - 0.6 * fw)) - 1, 0),
+                 int(np.searchsorted(data.wave, centre + 0.6 * fw)) + 1)
+    if not data.good[near][np.abs(data.wave[near] - centre) <= 0.5 * fw].any():
+        return None
     s_c = float(data.signif[ic])
     sign = -1.0 if s_c < -detect_sigma else 1.0
     # a line is detected where identification found a feature for it (significant in
     # the matched filter and standing out of its surroundings by min_depth)
     detected = matched and sign * s_c >= detect_sigma
-    window = line_window(data, ic, centre, sign, fw, hydrogen, matched)
+    return LineStart(centre, max_shift, matched, ic, sign, detected)
+
+
+def plan_line(data, features, targets, i, profile, detect_sigma, start=None, window=None):
+    """Everything about listed line ``i`` that comes before its profile fit (see :class:`LinePlan`).
+
+    ``start`` (:func:`line_start`) and ``window`` (:func:`~specan.lines.windows.line_window`)
+    when already found (the batched path finds all windows at once).
+    """
+    fw, hydrogen = targets.fwhm[i], bool(targets.hydrogen[i])
+    if start is None:
+        start = line_start(data, features, targets, i, detect_sigma)
+    if start is None:
+        return LinePlan(LineResult(method="masked"))
+    centre, max_shift, matched, ic, sign, detected = start
+    s_c = float(data.signif[ic])
+    if window is None:
+        window = line_window(data, ic, centre, sign, fw, hydrogen, matched)
     cont = local_continuum(data, window)
     ew_int, ew_int_err = integrated_ew(data, window, cont)
     result = LineResult(wave_obs=centre, ew_int=ew_int, ew_int_err=ew_int_err, significance=s_c,
@@ -332,8 +368,8 @@ def wing_fit(data, features, targets, i, centre, fit, fwhm, max_iter=3, fitter=f
     shift = centre - pred[i]
     best = None
     reach0 = 0.0
+    noise = float(np.nanmedian(data.sigma[data.good])) if data.good.any() else 1e-3
     for _ in range(max_iter):
-        noise = float(np.nanmedian(data.sigma[data.good])) if data.good.any() else 1e-3
         # where the wing's depth is down to the noise of a few pixels, or 0.2%
         # (a continuum placed better than that is rare; common practice)
         threshold = max(noise / np.sqrt(5.0), 2e-3)
@@ -434,8 +470,14 @@ def chosen_ew(fit, profile, cut, n_extra, hydrogen, ew_int, ew_int_err):
 def window_noise(data, window):
     """Typical noise per pixel of the normalised flux over the window (NaN when none is known)."""
     sig_sel = data.sigma[window.lo:window.hi + 1]
-    ok = np.isfinite(sig_sel)
-    return np.median(sig_sel[ok]) if ok.any() else np.nan
+    sig_sel = sig_sel[np.isfinite(sig_sel)]
+    n = sig_sel.size
+    if not n:
+        return np.nan
+    # np.median's value (the middle one, or the mean of the middle two) without its overhead,
+    # which was a tenth of the lines stage once the fits were batched (bench_lines.py)
+    part = np.partition(sig_sel, [(n - 1) // 2, n // 2])
+    return part[n // 2] if n % 2 else 0.5 * (part[n // 2 - 1] + part[n // 2])
 
 
 def half_width(data, ic, lo, hi, sign):
