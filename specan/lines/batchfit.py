@@ -239,56 +239,67 @@ def voigt_batch(data, problems, max_iter=MAX_ITER, decrement=DECREMENT, cost_tol
         p[row, :n], lb[row, :n], ub[row, :n] = starts[row]
         real[row, :n] = True
     model = _VoigtModel(x, y, cont, wts, centres)
-    r, jac = model(p, np.arange(nb))
+    r, jac = model(p)
     cost = 0.5 * np.einsum("bp,bp->b", r, r)
     finite = np.isfinite(cost)   # least_squares: "residuals are not finite in the initial point"
-    lam, nu = np.full(nb, 1e-3), np.full(nb, 2.0)
-    done = ~finite
     converged = np.zeros(nb, bool)
     eye = np.eye(npar)
+    # the problems still iterating, their state packed together (unpacked as each stops)
+    act = np.flatnonzero(finite)
+    P, R, J, C = p[act], r[act], jac[act], cost[act]
+    LB, UB, REAL = lb[act], ub[act], real[act]
+    span = UB - LB
+    near_lo, near_hi = LB + 1e-12 * span, UB - 1e-12 * span
+    lam, nu = np.full(act.size, 1e-3), np.full(act.size, 2.0)
+    work = model.rows(act)
     for _ in range(max_iter):
-        act = np.flatnonzero(~done)
         if not act.size:
             break
-        ja, ra, pa = jac[act], r[act], p[act]
-        grad = np.einsum("bpn,bp->bn", ja, ra)
-        jtj = ja.transpose(0, 2, 1) @ ja
-        span = ub[act] - lb[act]
+        grad = np.einsum("bpn,bp->bn", J, R)
+        jtj = J.transpose(0, 2, 1) @ J
         # on a bound with the gradient pushing outward: held there this step
-        held = (~real[act] | ((pa <= lb[act] + 1e-12 * span) & (grad > 0))
-                | ((pa >= ub[act] - 1e-12 * span) & (grad < 0)))
+        held = ~REAL | ((P <= near_lo) & (grad > 0)) | ((P >= near_hi) & (grad < 0))
         diag = np.einsum("bnn->bn", jtj)
         # Marquardt's scaling by the curvature of each parameter (floored: a flat direction)
         diag = np.maximum(diag, 1e-12 * diag.max(axis=1, keepdims=True) + 1e-300)
         free = ~held
         keep = free[:, :, None] & free[:, None, :]
+        held_eye = held[:, :, None] * eye
+        diag_eye = diag[:, :, None] * eye
         rhs = np.where(held, 0.0, -grad)
         # the Gauss-Newton decrement (the cost a full undamped step would remove): ~0 only
         # at an optimum, whatever the damping, so it is what tells convergence
-        gn = _solve(np.where(keep, jtj + 1e-12 * diag[:, :, None] * eye, 0.0) + held[:, :, None] * eye, rhs)
-        small = 0.5 * np.einsum("bn,bn->b", rhs, gn) <= np.maximum(decrement, cost_tol * cost[act])
-        step = _solve(np.where(keep, jtj + lam[act, None, None] * diag[:, :, None] * eye, 0.0)
-                      + held[:, :, None] * eye, rhs)
-        pn = np.clip(pa + step, lb[act], ub[act])
-        st = pn - pa
+        gn = _solve(np.where(keep, jtj + 1e-12 * diag_eye, 0.0) + held_eye, rhs)
+        small = 0.5 * np.einsum("bn,bn->b", rhs, gn) <= np.maximum(decrement, cost_tol * C)
+        step = _solve(np.where(keep, jtj + lam[:, None, None] * diag_eye, 0.0) + held_eye, rhs)
+        pn = np.clip(P + step, LB, UB)
+        st = pn - P
         predicted = -np.einsum("bn,bn->b", grad, st) - 0.5 * np.einsum("bn,bnm,bm->b", st, jtj, st)
-        rn, jn = model(pn, act)
+        rn, jn = work(pn)
         cn = 0.5 * np.einsum("bp,bp->b", rn, rn)
-        better = np.isfinite(cn) & (cn < cost[act])
+        better = np.isfinite(cn) & (cn < C)
         # Nielsen's (1999) damping update: by how well the linearised model predicted the
         # decrease (rho), gently; doubling factors after failures (from memory)
-        rho = (cost[act] - cn) / np.maximum(predicted, 1e-300)
-        lam[act] = np.where(better, lam[act] * np.maximum(1.0 / 3.0, 1.0 - (2.0 * np.clip(rho, 0, 1) - 1.0) ** 3),
-                            lam[act] * nu[act])
-        lam[act] = np.maximum(lam[act], 1e-15)
-        nu[act] = np.where(better, 2.0, 2.0 * nu[act])
-        up = act[better]
-        p[up], r[up], jac[up], cost[up] = pn[better], rn[better], jn[better], cn[better]
+        rho = (C - cn) / np.maximum(predicted, 1e-300)
+        lam = np.maximum(np.where(better, lam * np.maximum(1.0 / 3.0, 1.0 - (2.0 * np.clip(rho, 0, 1) - 1.0) ** 3),
+                                  lam * nu), 1e-15)
+        nu = np.where(better, 2.0, 2.0 * nu)
+        P = np.where(better[:, None], pn, P)
+        R = np.where(better[:, None], rn, R)
+        J = np.where(better[:, None, None], jn, J)
+        C = np.where(better, cn, C)
         # stop: at the optimum (the decrement, before this step, a negligible fraction of the
         # cost), or the damping has grown so large that no step lowers the cost
-        stop = small | (lam[act] > 1e12)
-        converged[act[stop]] = small[stop]
-        done[act[stop]] = True
+        stop = small | (lam > 1e12)
+        if stop.any():
+            rows = act[stop]
+            p[rows], jac[rows], cost[rows] = P[stop], J[stop], C[stop]
+            converged[rows] = small[stop]
+            go = ~stop
+            act = act[go]
+            P, R, J, C, LB, UB, REAL = P[go], R[go], J[go], C[go], LB[go], UB[go], REAL[go]
+            near_lo, near_hi, lam, nu = near_lo[go], near_hi[go], lam[go], nu[go]
+            work = model.rows(act)
     for row, k in enumerate(live):
         if not converged[row]:
             if finite[row]:
@@ -315,7 +326,7 @@ def _solve(m, rhs):
 
 
 class _VoigtModel:
-    """Weighted residuals and Jacobian of the Voigt window model, for a subset of the problems.
+    """Weighted residuals and Jacobian of the Voigt window model, for a set of problems.
 
     Model (as :func:`specan.lines.profiles.fit_profile`): ``cont (1 - sum_k W_k V(x - c_k - shift;
     sigma, gamma))``; parameters ``(shift, sigma, gamma, W_1..W_n)``; profile and derivatives
@@ -325,13 +336,17 @@ class _VoigtModel:
     def __init__(self, x, y, cont, wts, centres):
         self.x, self.y, self.cont, self.wts, self.centres = x, y, cont, wts, centres
 
-    def __call__(self, p, rows):
-        x, cont, wts = self.x[rows], self.cont[rows], self.wts[rows]
-        dx = x[:, None, :] - (self.centres[rows][:, :, None] + p[:, 0, None, None])   # (b, C, P)
+    def rows(self, rows):
+        """The model of the problems ``rows`` only."""
+        return _VoigtModel(self.x[rows], self.y[rows], self.cont[rows], self.wts[rows], self.centres[rows])
+
+    def __call__(self, p):
+        x, cont, wts = self.x, self.cont, self.wts
+        dx = x[:, None, :] - (self.centres[:, :, None] + p[:, 0, None, None])   # (b, C, P)
         v, d_x, d_s, d_g = voigt_and_derivatives(dx, p[:, 1, None, None], p[:, 2, None, None])
         ws = p[:, 3:, None]
-        r = (cont * (1.0 - np.sum(ws * v, axis=1)) - self.y[rows]) * wts
-        jac = np.empty((len(rows), x.shape[1], p.shape[1]))
+        r = (cont * (1.0 - np.sum(ws * v, axis=1)) - self.y) * wts
+        jac = np.empty((p.shape[0], x.shape[1], p.shape[1]))
         jac[:, :, 0] = cont * np.sum(ws * d_x, axis=1)
         jac[:, :, 1] = -cont * np.sum(ws * d_s, axis=1)
         jac[:, :, 2] = -cont * np.sum(ws * d_g, axis=1)
