@@ -148,3 +148,36 @@ def test_vectorised_windows_equal_the_walks():
                 assert tuple(one) == tuple(window), (row["file"], listed.rows["id"][i])
                 compared += 1
     assert compared > 1000
+
+
+def test_vectorised_line_starts_equal_one_by_one():
+    # line_starts: matching, nearest pixel, saturated cores, masked cores, sign and detection
+    import copy
+
+    from specan.lines.data import DETECT_SIGMA, MIN_DEPTH, LineData, find_features
+    from specan.lines.listed import lines_in_range
+    from specan.lines.measurement import line_start, line_starts, line_targets
+
+    truth = Table.read(DEMO / "truth.ecsv", format="ascii.ecsv")
+    masked = compared = 0
+    for row in truth[~truth["broken"]][:6]:
+        data = LineData(prepare(read(DEMO / row["file"])))
+        listed = lines_in_range(data, None, ("atomic",), row["rv_topo"] * u.km / u.s)
+        targets = line_targets(data, listed, None)
+        features = find_features(data, DETECT_SIGMA, MIN_DEPTH)
+        holed = copy.copy(data)
+        holed.good = data.good.copy()
+        for c in targets.pred[::7]:   # holes over the cores of some lines
+            holed.good[np.abs(data.wave - c) < 3.0] = False
+        for d in (data, holed):
+            which = np.arange(targets.pred.size)
+            batch = line_starts(d, features, targets, which, DETECT_SIGMA)
+            for i, st in zip(which, batch):
+                one = line_start(d, features, targets, i, DETECT_SIGMA)
+                assert (one is None) == (st is None)
+                if one is None:
+                    masked += 1
+                else:
+                    assert tuple(one) == tuple(st)
+                compared += 1
+    assert masked > 10 and compared > 1000

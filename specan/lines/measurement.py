@@ -27,7 +27,7 @@ from .profiles import fit_gauss, fit_profile
 from .windows import line_window, line_windows, local_continuum, profile_window, wing_reach
 
 __all__ = ["measure", "cayrel_error", "Targets", "LineResult", "line_targets", "measure_lines",
-           "measure_line", "LinePlan", "LineStart", "line_start", "plan_line", "finish_line", "match_feature", "integrated_ew", "central_depth", "use_voigt", "fit_line",
+           "measure_line", "LinePlan", "LineStart", "line_start", "line_starts", "plan_line", "finish_line", "match_feature", "integrated_ew", "central_depth", "use_voigt", "fit_line",
            "chosen_ew", "window_noise", "half_width", "line_table", "wing_fit"]
 
 #: Profiles :func:`measure` can fit.
@@ -193,7 +193,7 @@ def measure_lines(data, features, targets, which, profile, detect_sigma, batched
     """
     if not batched:
         return {int(i): measure_line(data, features, targets, i, profile, detect_sigma) for i in which}
-    starts = {int(i): line_start(data, features, targets, i, detect_sigma) for i in which}
+    starts = dict(zip((int(i) for i in which), line_starts(data, features, targets, which, detect_sigma)))
     found = [i for i, st in starts.items() if st is not None]
     windows = dict(zip(found, line_windows(data, [starts[i] for i in found], targets.fwhm[found],
                                            targets.hydrogen[found])))
@@ -274,6 +274,43 @@ def line_start(data, features, targets, i, detect_sigma):
     # the matched filter and standing out of its surroundings by min_depth)
     detected = matched and sign * s_c >= detect_sigma
     return LineStart(centre, max_shift, matched, ic, sign, detected)
+
+
+def line_starts(data, features, targets, which, detect_sigma):
+    """:func:`line_start` of every line index in ``which`` at once (the same tests, vectorised)."""
+    which = np.asarray(which, int)
+    pred, match, fw = targets.pred[which], targets.match[which], targets.fwhm[which]
+    pos = features.position
+    if pos.size and which.size:
+        dist = np.abs(pos[None, :] - pred[:, None])
+        k = np.argmin(dist, axis=1)
+        matched = dist[np.arange(which.size), k] <= match
+        centre = np.where(matched, pos[k], pred)
+    else:
+        matched = np.zeros(which.size, bool)
+        centre = pred.copy()
+    max_shift = np.where(matched, 0.5 * fw, match)
+    n = data.wave.size
+    ic = np.clip(np.searchsorted(data.wave, centre), 0, n - 1)
+    prev = np.maximum(ic - 1, 0)
+    ic = ic - ((ic > 0) & (np.abs(data.wave[prev] - centre) < np.abs(data.wave[ic] - centre)))
+    # a saturated core at the listed place (see line_start)
+    saturated = ~matched & (data.signif[ic] >= detect_sigma) & (1.0 - data.smooth[ic] > 0.5)
+    matched = matched | saturated
+    max_shift = np.where(saturated, 0.5 * fw, max_shift)
+    # a good pixel within half a width (bisection for the candidates, then the exact test)
+    lo = np.maximum(np.searchsorted(data.wave, centre - 0.6 * fw) - 1, 0)
+    hi = np.searchsorted(data.wave, centre + 0.6 * fw) + 1
+    span = int(max((hi - lo).max(), 1)) if which.size else 1
+    pix = lo[:, None] + np.arange(span)[None, :]
+    inside = pix < np.minimum(hi, n)[:, None]
+    pix = np.minimum(pix, n - 1)
+    usable = (inside & data.good[pix] & (np.abs(data.wave[pix] - centre[:, None]) <= (0.5 * fw)[:, None])).any(axis=1)
+    s_c = data.signif[ic]
+    sign = np.where(s_c < -detect_sigma, -1.0, 1.0)
+    detected = matched & (sign * s_c >= detect_sigma)
+    return [LineStart(float(centre[m]), float(max_shift[m]), bool(matched[m]), int(ic[m]), float(sign[m]),
+                      bool(detected[m])) if usable[m] else None for m in range(which.size)]
 
 
 def plan_line(data, features, targets, i, profile, detect_sigma, start=None, window=None):
