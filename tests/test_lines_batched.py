@@ -1,19 +1,23 @@
-"""The batched profile fits of specan/lines/batchfit.py against the one-by-one fits they replace.
+"""The batched line measurement of specan/lines/ against the one-by-one path it replaces.
 
-``lines.measure`` fits all lines of a spectrum together (``_batched=True``, the default);
-``_batched=False`` fits them one by one (scipy ``least_squares`` for the Voigt fits), the
-slow path. Stated tolerance (also in the README): the same lines detected, the same method,
-profile and emission flag; every equivalent width (``ew``, ``ew_int``, ``ew_fit``) within 0.05
-of the line's own error; their errors within 1% of each other; centre and FWHM within 1% of
-the FWHM. Where a fit's optimum is ill-determined, ``least_squares`` stops (ftol 1e-6) before
-the batched fit does: such a fit may differ by more, but then it must reach a chi-square no
-higher than the slow path's. Measured on the demo night (velocities as planted) and the
-Kurucz Sun: largest differences 0.045 of the error (EW), 2.1e-3 (errors), 1.2e-3 of the FWHM
-(centre); one fit of another optimum (HeII 6560 in trf3_11, 0.15 of its error, chi2 1.149
-against the slow path's 1.156). Where the profile model limits a fit (reduced chi2 > 1) the
-error, which counts noise only, is taken times sqrt(chi2): on the Sun against its true
-continuum H12, He II 4859 and Ca II 8662 (chi2 7029, 1201, 807) differ by 0.05-0.06 of the
-noise-only error (He II 4859 and Ca II 8662 through the hydrogen profiles divided out).
+``lines.measure`` finds every line's start and window at once and makes all its profile fits
+together (``_batched=True``, the default: specan/lines/batchfit.py); ``_batched=False`` walks
+and fits the lines one by one (scipy ``least_squares`` for the Voigt fits), the slow path.
+
+Stated tolerance: the same lines detected, the same method, profile and emission flag; every
+equivalent width (``ew``, ``ew_int``, ``ew_fit``) within 0.05 of the line's own error, taken
+times sqrt(reduced chi2) where the profile model rather than the noise limits the fit (chi2 > 1:
+the errors count noise only, see ``lines.measure``); the errors within 1% of each other; centre
+and FWHM within 1% of the FWHM. Where a fit's optimum is ill-determined ``least_squares`` stops
+(its ftol, 1e-6) before the batched fit does; such a fit may differ by more ("another optimum"),
+but then the batched fit must reach a chi2 no higher than the slow path's.
+
+Measured (tests below; the velocities of the demo night as planted): demo night, 18 spectra,
+2773 lines, 1573 fits: largest differences 0.018 of the error (EW), 3.1e-3 (errors), 9.8e-4
+of the FWHM (centre); one fit at another optimum (He II 6560 in trf3_11: -0.3439 against
+-0.3397 A, 0.14 of its error 0.030 A; chi2 1.149 batched, 1.156 one by one). Kurucz Sun
+(fitted / true continuum), 174 lines: 6e-4 / 2.7e-3 of the error, none at another optimum.
+The windows and line starts are the same to the last bit (the tests at the end).
 """
 
 from pathlib import Path

@@ -3,7 +3,7 @@
 :func:`specan.lines.measurement.measure` asks for one small fit per line (a Gaussian by
 variable projection, or a Voigt by bounded nonlinear least squares): a few parameters
 each, some 150 per spectrum. Made one by one, the Python overhead of each call outweighs
-its arithmetic (scipy's ``least_squares`` alone spent ~2.5 ms a Voigt fit, measured in
+its arithmetic (scipy's ``least_squares`` alone spent ~2.7 ms a Voigt fit, measured in
 ``benchmarks/bench_lines.py``). Here every fit of one kind advances together:
 
 - :func:`gauss_batch`: the variable-projection grid of :func:`.profiles.fit_gauss`,
@@ -18,9 +18,10 @@ its arithmetic (scipy's ``least_squares`` alone spent ~2.5 ms a Voigt fit, measu
   couple their damping and stopping), so this one is written here. Bounds are those of
   :func:`.profiles.start_and_bounds`, kept by projecting each step onto them and by
   holding a parameter on its bound while the gradient pushes it outward (an active-set
-  projected Levenberg-Marquardt, common practice). It converges to the optimum
-  ``least_squares`` finds, more tightly than that one stops (its ``ftol`` of 1e-6):
-  the agreement is tested in ``tests/test_lines_batched.py``.
+  projected Levenberg-Marquardt, common practice). Where the optimum is well determined it
+  converges to the one ``least_squares`` finds, more tightly than that one stops (its
+  ``ftol`` of 1e-6); where it is not (flat valleys of some hydrogen fits) the two may stop
+  at different points of the valley. Both are measured in ``tests/test_lines_batched.py``.
 """
 
 from __future__ import annotations
@@ -28,22 +29,22 @@ from __future__ import annotations
 import numpy as np
 
 from ..resolution import GAUSS_FWHM
-from .profiles import (best_grid_point, fit_profile, fit_summary, refined_shift, start_and_bounds, voigt_and_derivatives,
-                       window_arrays)
+from .profiles import (best_grid_point, fit_profile, fit_summary, refined_shift, start_and_bounds,
+                       voigt_and_derivatives, window_arrays)
 
 __all__ = ["fit_planned", "fit_batched_voigt", "gauss_batch", "voigt_batch"]
 
 #: The iteration stops when a full Gauss-Newton step would lower the cost (half the
 #: chi-square) by less than this: 1e-6 puts the fit within ~sqrt(2e-6) = 0.0014 of each
-#: parameter's own error from the optimum (a chi-square rise of 1 is one error), still ten
-#: times closer if the convergence is slow and linear, as in the long valleys of the damped
-#: lines, where the decrement underestimates the distance left. ``least_squares`` stops at a
-#: relative cost change of 1e-6 (its ftol), which on a chi-square of a few hundred is no closer.
+#: parameter's own error from the optimum (a chi-square rise of 1 is one error), where the
+#: convergence is quadratic; where it is slow and linear (the long valleys of damped lines)
+#: the decrement underestimates the distance left, by 1/(1 - rate). ``least_squares`` stops
+#: at a relative cost change of 1e-6 (its ftol), no closer on a chi-square of a few hundred.
 DECREMENT = 1e-6
 #: ... or by less than this fraction of the cost (fits whose chi-square is huge: the profile
 #: model, not the noise, limits them, and their errors understate the uncertainty).
 COST_TOL = 1e-12
-#: Most iterations of the batch; a problem not converged by then (14 of 502 Voigt fits on the
+#: Most iterations of the batch; a problem not converged by then (12 of 502 Voigt fits on the
 #: 40 spectra of ``benchmarks/bench_lines.py``, measured; mostly hydrogen lines whose equivalent
 #: width and damping width trade along a long curved valley) is fitted on its own by
 #: :func:`specan.lines.profiles.fit_profile`, the one-by-one path.

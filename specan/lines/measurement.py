@@ -6,6 +6,11 @@ are: match a feature (:func:`match_feature`), choose the window
 (:func:`specan.lines.windows.line_window`), integrate (:func:`integrated_ew`), fit the
 line or blend (:func:`fit_line`), choose the reported equivalent width
 (:func:`chosen_ew`) and estimate the errors (:func:`window_noise`, :func:`cayrel_error`).
+
+By default (:func:`measure_lines` with ``batched``) the steps run for all lines together:
+the starts (:func:`line_starts`) and windows (:func:`specan.lines.windows.line_windows`)
+vectorised, the fits batched (:mod:`specan.lines.batchfit`); the one-by-one path
+(:func:`measure_line`) stays as the reference they are tested against.
 """
 
 from __future__ import annotations
@@ -27,8 +32,9 @@ from .profiles import fit_gauss, fit_profile
 from .windows import line_window, line_windows, local_continuum, profile_window, wing_reach
 
 __all__ = ["measure", "cayrel_error", "Targets", "LineResult", "line_targets", "measure_lines",
-           "measure_line", "LinePlan", "LineStart", "line_start", "line_starts", "plan_line", "finish_line", "match_feature", "integrated_ew", "central_depth", "use_voigt", "fit_line",
-           "chosen_ew", "window_noise", "half_width", "line_table", "wing_fit"]
+           "measure_line", "LinePlan", "LineStart", "line_start", "line_starts", "plan_line", "finish_line",
+           "match_feature", "integrated_ew", "central_depth", "use_voigt", "fit_line", "chosen_ew",
+           "window_noise", "half_width", "line_table", "wing_fit"]
 
 #: Profiles :func:`measure` can fit.
 PROFILES = ("auto", "gauss", "voigt")
@@ -305,7 +311,8 @@ def line_starts(data, features, targets, which, detect_sigma):
     pix = lo[:, None] + np.arange(span)[None, :]
     inside = pix < np.minimum(hi, n)[:, None]
     pix = np.minimum(pix, n - 1)
-    usable = (inside & data.good[pix] & (np.abs(data.wave[pix] - centre[:, None]) <= (0.5 * fw)[:, None])).any(axis=1)
+    near = np.abs(data.wave[pix] - centre[:, None]) <= (0.5 * fw)[:, None]
+    usable = (inside & data.good[pix] & near).any(axis=1)
     s_c = data.signif[ic]
     sign = np.where(s_c < -detect_sigma, -1.0, 1.0)
     detected = matched & (sign * s_c >= detect_sigma)

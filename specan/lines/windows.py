@@ -6,8 +6,8 @@ from typing import NamedTuple
 
 import numpy as np
 
-__all__ = ["Window", "line_window", "line_windows", "adaptive_window", "fixed_window", "profile_window", "wing_reach",
-           "local_continuum", "MAX_WING"]
+__all__ = ["Window", "line_window", "line_windows", "adaptive_window", "adaptive_windows", "fixed_window",
+           "profile_window", "wing_reach", "local_continuum", "MAX_WING"]
 
 #: Farthest a strong line's window reaches from its centre, Angstrom: the solar Ca II K
 #: wings are tens of Angstrom wide (common practice); beyond ~100 A the continuum fit
