@@ -1,13 +1,32 @@
-"""Benchmark: ms per spectrum to identify and measure the default line list.
+"""Benchmark: ms per spectrum of the lines stage (``specan.lines.measure``), and where they go.
 
-A synthetic 4,000-pixel normalised spectrum (3800-7000 A, 0.8 A pixels, R = 3000,
-S/N 100 per pixel) carrying every atomic line of the default stellar list
-(Gaussians of random equivalent width; Voigt Balmer lines), in the spirit of an
-F/G star. Run: ``python benchmarks/bench_lines.py [repeats]``.
+Two sets of spectra:
+
+* ``pipeline``: the 40 distinct synthetic spectra of ``benchmarks/bench_pipeline.py``
+  (4,000 px, 3700-7299 A, R = 2000, S/N 12-150, types O-M; made by ``specan.synth``),
+  read, prepared and given their velocity by the velocity stage first, so the lines stage
+  sees what ``specan run`` gives it (the figure issue 12 sets: lines <= 15 ms);
+* ``dense``: one normalised 4,000-px spectrum (3800-7000 A, R = 3000, S/N 100) carrying
+  every atomic line of the default list (Gaussians of random EW; Voigt Balmer lines).
+
+For each it prints ms per spectrum of ``measure`` (median of ``--repeats`` passes), the
+one-by-one fits (``measure(_batched=False)``, when the specan being run has that switch)
+side by side, and with ``--profile`` the functions with the most time of their own under
+cProfile. Run the same script against another checkout for a before/after figure::
+
+    OPENBLAS_NUM_THREADS=1 python benchmarks/bench_lines.py --profile
+    OPENBLAS_NUM_THREADS=1 PYTHONPATH=/path/to/old/checkout python benchmarks/bench_lines.py
 """
 
+import argparse
+import cProfile
+import inspect
+import os
+import pstats
 import sys
+import tempfile
 import time
+from pathlib import Path
 
 import astropy.units as u
 import numpy as np
@@ -15,12 +34,16 @@ from astropy.nddata import StdDevUncertainty
 from scipy.special import voigt_profile
 from specutils import Spectrum
 
+import specan
 from specan import lines
 from specan.linelist import load_linelist
 from specan.obsinfo import ObsInfo
 
+sys.path.insert(0, str(Path(__file__).resolve().parent))
+import bench_pipeline  # noqa: E402  (the same synthetic spectra as the night-run benchmark)
 
-def synthetic_spectrum(npix=4000, resolving_power=3000.0, snr=100.0, seed=42):
+
+def dense_spectrum(npix=4000, resolving_power=3000.0, snr=100.0, seed=42):
     rng = np.random.default_rng(seed)
     wave = np.linspace(3800.0, 7000.0, npix)
     flux = np.ones(npix)
@@ -39,25 +62,83 @@ def synthetic_spectrum(npix=4000, resolving_power=3000.0, snr=100.0, seed=42):
                     uncertainty=StdDevUncertainty(np.full(npix, 1 / snr)), meta={"specan": info})
 
 
-def main(repeats=5):
-    spec = synthetic_spectrum()
-    lines.measure(spec)  # warm-up (imports, caches)
-    t_id, t_me = [], []
+def pipeline_spectra(count, workdir):
+    """(prepared spectrum, options the velocity stage gives the lines stage) of ``count`` spectra."""
+    from specan import prepare, read, velocity
+    from specan.pipeline import _known_from_velocity
+
+    out = []
+    for path in bench_pipeline.make_spectra(workdir / "spectra", count):
+        spec = prepare(read(str(path)))
+        out.append((spec, _known_from_velocity(velocity.measure(spec))))
+    return out
+
+
+def timed(cases, repeats, **options):
+    """Median over ``repeats`` passes of the ms per spectrum of measuring ``cases``: (wall, CPU).
+
+    The CPU time of this process depends less on what else runs on the machine.
+    """
+    wall, cpu = [], []
     for _ in range(repeats):
-        t0 = time.perf_counter()
-        ident = lines.identify(spec)
-        t1 = time.perf_counter()
-        table = lines.measure(spec)
-        t2 = time.perf_counter()
-        t_id.append(t1 - t0)
-        t_me.append(t2 - t1)
-    n_id = int(np.sum(ident["status"] == "identified"))
-    print(f"spectrum: {spec.flux.size} pixels, {len(table)} listed atomic lines covered, "
-          f"{int(table['detected'].sum())} detected, {n_id} list entries identified")
-    print(f"identify: {1e3 * np.median(t_id):.1f} ms per spectrum (median of {repeats})")
-    print(f"measure:  {1e3 * np.median(t_me):.1f} ms per spectrum (median of {repeats})")
-    print(f"total:    {1e3 * (np.median(t_id) + np.median(t_me)):.1f} ms per spectrum")
+        t0, c0 = time.perf_counter(), time.process_time()
+        for spec, known in cases:
+            lines.measure(spec, **known, **options)
+        wall.append((time.perf_counter() - t0) / len(cases))
+        cpu.append((time.process_time() - c0) / len(cases))
+    return 1e3 * float(np.median(wall)), 1e3 * float(np.median(cpu))
+
+
+def hot_spots(cases, top):
+    """The ``top`` functions with the most own time under cProfile, ms per spectrum."""
+    prof = cProfile.Profile()
+    prof.enable()
+    for spec, known in cases:
+        lines.measure(spec, **known)
+    prof.disable()
+    rows = []
+    for (file, line, func), (cc, nc, tt, ct, callers) in pstats.Stats(prof).stats.items():
+        where = file.split("/specan/", 1)[1] if "/specan/" in file else (
+            "lib:" + file.split("site-packages/", 1)[1] if "site-packages/" in file else file)
+        rows.append((tt, ct, nc, f"{where}:{line}({func})"))
+    rows.sort(reverse=True)
+    n = len(cases)
+    total = sum(r[0] for r in rows)
+    print(f"  under cProfile (slower by its own overhead): {1e3 * total / n:.1f} ms per spectrum; "
+          f"own / cumulative ms per spectrum, calls per spectrum:")
+    for tt, ct, nc, name in rows[:top]:
+        print(f"    {1e3 * tt / n:6.2f} {1e3 * ct / n:7.2f} {nc / n:8.1f}  {name}")
+
+
+def main(argv=None):
+    parser = argparse.ArgumentParser(description=__doc__.splitlines()[0])
+    parser.add_argument("--count", type=int, default=40, help="pipeline spectra (at most 40 distinct)")
+    parser.add_argument("--repeats", type=int, default=3)
+    parser.add_argument("--profile", action="store_true", help="print the cProfile hot spots")
+    parser.add_argument("--top", type=int, default=15)
+    parser.add_argument("--workdir", type=Path, default=None)
+    args = parser.parse_args(argv)
+    work = args.workdir or Path(tempfile.mkdtemp(prefix="specan-bench-lines-"))
+    has_switch = "_batched" in inspect.signature(lines.measure).parameters
+    print(f"# specan from {Path(specan.__file__).parent}; load average {os.getloadavg()[0]:.1f}; "
+          f"OPENBLAS_NUM_THREADS={os.environ.get('OPENBLAS_NUM_THREADS', 'unset')}")
+    sets = {"pipeline": pipeline_spectra(args.count, work), "dense": [(dense_spectrum(), {})]}
+    for name, cases in sets.items():
+        lines.measure(cases[0][0], **cases[0][1])   # imports, caches
+        fast, fast_cpu = timed(cases, args.repeats)
+        table = lines.measure(cases[0][0], **cases[0][1])
+        line = (f"{name:9s} {len(cases):3d} spectra, {len(table)} lines in the first: "
+                f"measure {fast:6.1f} ms per spectrum (CPU {fast_cpu:5.1f})")
+        if has_switch:
+            slow, slow_cpu = timed(cases, args.repeats, _batched=False)
+            line += f"; one-by-one fits {slow:6.1f} ms (CPU {slow_cpu:5.1f}; {slow_cpu / fast_cpu:.2f}x)"
+        print(line, flush=True)
+        if name == "pipeline":
+            # issue 12's target for the lines stage of a night run
+            print(f"# lines stage {fast:.1f} ms per spectrum against <= 15 ms: {'met' if fast <= 15.0 else 'not met'}")
+        if args.profile:
+            hot_spots(cases, args.top)
 
 
 if __name__ == "__main__":
-    main(int(sys.argv[1]) if len(sys.argv) > 1 else 5)
+    main()

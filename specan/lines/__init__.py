@@ -26,6 +26,7 @@ The modules, one concern each:
 - :mod:`.windows`: measurement windows and the local continuum;
 - :mod:`.components`: the components of a blend fit;
 - :mod:`.profiles`: Gaussian and Voigt profiles and their fits;
+- :mod:`.batchfit`: all the fits of a spectrum at once (the default path of :func:`measure`);
 - :mod:`.hydrogen`: the fitted hydrogen lines divided out;
 - :mod:`.measurement`: :func:`measure`, step by step;
 - :mod:`.bands`: :func:`band_indices`;

@@ -113,10 +113,16 @@ def matched_filter(flux, weight, sig_pix):
         s = float(np.exp(level * step))
         sel = q == level
         k1, k2 = _kernel_sums(s)  # sums of the kernel g and of g**2
-        f_wd = gaussian_filter1d(wd, s, mode="nearest")[sel]
-        f_wf = gaussian_filter1d(wf, s, mode="nearest")[sel]
-        f_w = gaussian_filter1d(w, s, mode="nearest")[sel]
-        f_w2 = gaussian_filter1d(w, s / np.sqrt(2.0), mode="nearest")[sel]
+        # filter only the stretch this width serves, plus the kernel's reach (gaussian_filter1d
+        # truncates at 4 sigma): the same sums at those pixels, for a fraction of the work
+        idx = np.flatnonzero(sel)
+        reach = int(4.0 * s + 0.5) + 1
+        part = slice(max(idx[0] - reach, 0), min(idx[-1] + reach + 1, n))
+        sub = sel[part]
+        f_wd = gaussian_filter1d(wd[part], s, mode="nearest")[sub]
+        f_wf = gaussian_filter1d(wf[part], s, mode="nearest")[sub]
+        f_w = gaussian_filter1d(w[part], s, mode="nearest")[sub]
+        f_w2 = gaussian_filter1d(w[part], s / np.sqrt(2.0), mode="nearest")[sub]
         # S = sum(w g d) / sqrt(sum(w g^2)): amplitude over its error for a Gaussian at each pixel
         signif[sel] = k1 * f_wd / np.sqrt(np.maximum(k2 * f_w2, 1e-300))
         safe = np.maximum(f_w, 1e-300)
@@ -233,8 +239,9 @@ def find_features(data, detect_sigma, min_depth=MIN_DEPTH):
     for sign in (1.0, -1.0):
         s = sign * np.where(data.good, data.signif, 0.0)
         cand = _candidates(data, s, sign, detect_sigma, noise)
-        for p in _standing_out(data, cand, sign, min_depth):
-            out.append((_refined_position(data, s, p), sign * float(s[p]), 1.0 - float(data.smooth[p]), sign < 0))
+        kept = _standing_out(data, cand, sign, min_depth)
+        for pos, p in zip(_refined_positions(data, s, kept), kept):
+            out.append((pos, sign * float(s[p]), 1.0 - float(data.smooth[p]), sign < 0))
     out.sort()
     if not out:
         return Features(np.zeros(0), np.zeros(0), np.zeros(0), np.zeros(0, bool))
@@ -275,11 +282,14 @@ def _standing_out(data, cand, sign, min_depth):
     return cand[keep]
 
 
-def _refined_position(data, s, p):
-    """Wavelength of the peak at pixel ``p`` of ``s``, refined by a parabola (in pixels)."""
-    frac = 0.0
-    if 0 < p < s.size - 1:
-        a, b, c = s[p - 1], s[p], s[p + 1]
-        den = a - 2 * b + c
-        frac = 0.5 * (a - c) / den if den < 0 else 0.0
-    return float(np.interp(p + np.clip(frac, -0.5, 0.5), np.arange(s.size), data.wave))
+def _refined_positions(data, s, peaks):
+    """Wavelengths of the peaks at pixels ``peaks`` of ``s``, each refined by a parabola (in pixels)."""
+    peaks = np.asarray(peaks, int)
+    frac = np.zeros(peaks.size)
+    inner = (peaks > 0) & (peaks < s.size - 1)
+    p = peaks[inner]
+    a, b, c = s[p - 1], s[p], s[p + 1]
+    den = a - 2 * b + c
+    with np.errstate(divide="ignore", invalid="ignore"):
+        frac[inner] = np.where(den < 0, 0.5 * (a - c) / den, 0.0)
+    return [float(v) for v in np.interp(peaks + np.clip(frac, -0.5, 0.5), np.arange(s.size), data.wave)]

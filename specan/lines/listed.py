@@ -42,11 +42,21 @@ def lines_in_range(data, linelist, kinds, rv):
     return ListedLines(table[cov], lab_all[cov], pred_all[cov], rv_q, pred_all)
 
 
+#: The packaged list, read and filtered once per process and kind selection: reading and
+#: filtering it took ~3 ms a spectrum (benchmarks/bench_lines.py). Callers only index it.
+_PACKAGED = {}
+
+
 def _prepare_list(linelist, kinds):
+    key = None if kinds is None else tuple(kinds)
+    if linelist is None and key in _PACKAGED:
+        return _PACKAGED[key]
     table = load_linelist() if linelist is None else (
         linelist if isinstance(linelist, QTable) else load_linelist(linelist))
     if kinds is not None and "kind" in table.colnames:
         table = table[np.isin(np.asarray(table["kind"]).astype(str), list(kinds))]
+    if linelist is None:
+        _PACKAGED[key] = table
     return table
 
 

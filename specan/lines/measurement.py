@@ -6,6 +6,11 @@ are: match a feature (:func:`match_feature`), choose the window
 (:func:`specan.lines.windows.line_window`), integrate (:func:`integrated_ew`), fit the
 line or blend (:func:`fit_line`), choose the reported equivalent width
 (:func:`chosen_ew`) and estimate the errors (:func:`window_noise`, :func:`cayrel_error`).
+
+By default (:func:`measure_lines` with ``batched``) the steps run for all lines together:
+the starts (:func:`line_starts`) and windows (:func:`specan.lines.windows.line_windows`)
+vectorised, the fits batched (:mod:`specan.lines.batchfit`); the one-by-one path
+(:func:`measure_line`) stays as the reference they are tested against.
 """
 
 from __future__ import annotations
@@ -22,12 +27,14 @@ from .components import component_centres, window_features, wing_mask
 from .data import DETECT_SIGMA, MIN_DEPTH, LineData, find_features, normalised
 from .hydrogen import without_hydrogen
 from .listed import blends, line_widths, lines_in_range, match_windows, velocities
+from .batchfit import fit_batched_voigt, fit_planned
 from .profiles import fit_gauss, fit_profile
-from .windows import line_window, local_continuum, profile_window, wing_reach
+from .windows import line_window, line_windows, local_continuum, profile_window, wing_reach
 
 __all__ = ["measure", "cayrel_error", "Targets", "LineResult", "line_targets", "measure_lines",
-           "measure_line", "match_feature", "integrated_ew", "central_depth", "use_voigt", "fit_line",
-           "chosen_ew", "window_noise", "half_width", "line_table", "wing_fit"]
+           "measure_line", "LinePlan", "LineStart", "line_start", "line_starts", "plan_line", "finish_line",
+           "match_feature", "integrated_ew", "central_depth", "use_voigt", "fit_line", "chosen_ew",
+           "window_noise", "half_width", "line_table", "wing_fit"]
 
 #: Profiles :func:`measure` can fit.
 PROFILES = ("auto", "gauss", "voigt")
@@ -56,7 +63,7 @@ def cayrel_error(fwhm, pixel, snr):
 
 def measure(spectrum, linelist=None, rv=0 * u.km / u.s, resolving_power=None, profile="auto",
             window=None, detect_sigma=DETECT_SIGMA, kinds=("atomic",), min_depth=MIN_DEPTH,
-            divide_hydrogen=True, _data=None):
+            divide_hydrogen=True, _data=None, _batched=True):
     """Measure every listed line the spectrum covers.
 
     Per line: the centre is the matched feature (see :func:`identify`) or the
@@ -119,6 +126,8 @@ def measure(spectrum, linelist=None, rv=0 * u.km / u.s, resolving_power=None, pr
     """
     if profile not in PROFILES:
         raise ValueError("profile must be 'auto', 'gauss' or 'voigt'")
+    # _batched=False: every line fitted on its own (scipy's least_squares for the Voigt fits), the
+    # reference the batched fits are tested against (tests/test_lines_batched.py)
     # _data: the internal arrays already built from this spectrum (analyse builds them once)
     data = _data if _data is not None else LineData(normalised(spectrum), resolving_power)
     listed = lines_in_range(data, linelist, kinds, rv)
@@ -127,13 +136,14 @@ def measure(spectrum, linelist=None, rv=0 * u.km / u.s, resolving_power=None, pr
     # Hydrogen first: the other lines are then measured on the spectrum divided by the
     # fitted hydrogen profiles, so a metal line in a Balmer wing is measured against the
     # wing (its local continuum), not against a continuum the wing lies far below.
-    results = measure_lines(data, features, targets, np.flatnonzero(targets.hydrogen), profile, detect_sigma)
+    results = measure_lines(data, features, targets, np.flatnonzero(targets.hydrogen), profile, detect_sigma,
+                            _batched)
     data_m, features_m = data, features
     if divide_hydrogen:
         data_m, features_m = without_hydrogen(data, features, results, targets, listed.rows["ep_low"],
                                               detect_sigma, min_depth)
     results.update(measure_lines(data_m, features_m, targets, np.flatnonzero(~targets.hydrogen), profile,
-                                 detect_sigma))
+                                 detect_sigma, _batched))
     return line_table(data, listed, targets, [results[i] for i in range(targets.pred.size)])
 
 
@@ -180,9 +190,26 @@ class LineResult:
     fit: dict | None = None
 
 
-def measure_lines(data, features, targets, which, profile, detect_sigma):
-    """:func:`measure_line` of each line index in ``which``, as ``{index: LineResult}``."""
-    return {int(i): measure_line(data, features, targets, i, profile, detect_sigma) for i in which}
+def measure_lines(data, features, targets, which, profile, detect_sigma, batched=True):
+    """:func:`measure_line` of each line index in ``which``, as ``{index: LineResult}``.
+
+    ``batched`` (default) fits all the lines together (:func:`specan.lines.batchfit.fit_planned`:
+    one vectorised solve per kind of fit instead of one fit call per line); False fits them one
+    by one (:func:`measure_line`), the reference the batched path is tested against.
+    """
+    if not batched:
+        return {int(i): measure_line(data, features, targets, i, profile, detect_sigma) for i in which}
+    starts = dict(zip((int(i) for i in which), line_starts(data, features, targets, which, detect_sigma)))
+    found = [i for i, st in starts.items() if st is not None]
+    windows = dict(zip(found, line_windows(data, [starts[i] for i in found], targets.fwhm[found],
+                                           targets.hydrogen[found])))
+    plans = {i: plan_line(data, features, targets, i, profile, detect_sigma, starts[i], windows.get(i))
+             for i in starts}
+    wanted = [p for p in plans.values() if p.wants_fit]
+    fits = fit_planned(data, wanted)
+    for plan, fit in zip(wanted, fits):
+        plan.fit = fit
+    return {i: finish_line(data, features, targets, i, plan, fit_batched_voigt) for i, plan in plans.items()}
 
 
 def measure_line(data, features, targets, i, profile, detect_sigma):
@@ -193,7 +220,48 @@ def measure_line(data, features, targets, i, profile, detect_sigma):
     LineResult
         ``method`` "masked" (and nothing measured) when the line's core has no good pixel.
     """
-    fw, hydrogen = targets.fwhm[i], bool(targets.hydrogen[i])
+    plan = plan_line(data, features, targets, i, profile, detect_sigma)
+    if plan.wants_fit:
+        plan.fit = fit_line(data, plan.window, plan.cont, plan.centres, plan.voigt, plan.max_shift, plan.fw,
+                            plan.sign, plan.skip, plan.hydrogen)
+    return finish_line(data, features, targets, i, plan, fit_profile)
+
+
+@dataclass
+class LinePlan:
+    """One line up to its profile fit: what :func:`plan_line` found and the fit it asks for."""
+
+    result: LineResult
+    fw: float = np.nan
+    hydrogen: bool = False
+    ic: int = 0
+    sign: float = 1.0
+    detected: bool = False
+    max_shift: float = np.nan
+    window: object = None
+    cont: np.ndarray | None = None
+    centres: np.ndarray | None = None
+    skip: np.ndarray | None = None
+    voigt: bool = False
+    wants_fit: bool = False
+    #: the profile fit once made (None: none asked for, or it failed)
+    fit: dict | None = None
+
+
+class LineStart(NamedTuple):
+    """Where a line is measured: what :func:`line_start` finds before its window is chosen."""
+
+    centre: float     #: the matched feature, or the shifted laboratory wavelength, Angstrom
+    max_shift: float  #: how far the fit may move the centre, Angstrom
+    matched: bool     #: a feature was matched (or the core is saturated at the listed place)
+    ic: int           #: the pixel nearest the centre
+    sign: float       #: 1 absorption, -1 emission
+    detected: bool    #: significant in the matched filter at a matched feature
+
+
+def line_start(data, features, targets, i, detect_sigma):
+    """:class:`LineStart` of listed line ``i``, or None when its core has no good pixel."""
+    fw = targets.fwhm[i]
     centre, max_shift, matched = match_feature(features, targets.pred[i], targets.match[i], fw)
     ic = data.nearest_pixel(centre)
     if not matched and data.signif[ic] >= detect_sigma and 1.0 - data.smooth[ic] > 0.5:
@@ -201,14 +269,72 @@ def measure_line(data, features, targets, i, profile, detect_sigma):
         # (noise picks one anywhere in it): a deep, significant line at the listed place
         # is the line itself
         matched, max_shift = True, 0.5 * fw
-    if not data.good[np.abs(data.wave - centre) <= 0.5 * fw].any():
-        return LineResult(method="masked")
+    # the pixels within half a width (found by bisection, then the exact test on those few)
+    near = slice(max(int(np.searchsorted(data.wave, centre - 0.6 * fw)) - 1, 0),
+                 int(np.searchsorted(data.wave, centre + 0.6 * fw)) + 1)
+    if not data.good[near][np.abs(data.wave[near] - centre) <= 0.5 * fw].any():
+        return None
     s_c = float(data.signif[ic])
     sign = -1.0 if s_c < -detect_sigma else 1.0
     # a line is detected where identification found a feature for it (significant in
     # the matched filter and standing out of its surroundings by min_depth)
     detected = matched and sign * s_c >= detect_sigma
-    window = line_window(data, ic, centre, sign, fw, hydrogen, matched)
+    return LineStart(centre, max_shift, matched, ic, sign, detected)
+
+
+def line_starts(data, features, targets, which, detect_sigma):
+    """:func:`line_start` of every line index in ``which`` at once (the same tests, vectorised)."""
+    which = np.asarray(which, int)
+    pred, match, fw = targets.pred[which], targets.match[which], targets.fwhm[which]
+    pos = features.position
+    if pos.size and which.size:
+        dist = np.abs(pos[None, :] - pred[:, None])
+        k = np.argmin(dist, axis=1)
+        matched = dist[np.arange(which.size), k] <= match
+        centre = np.where(matched, pos[k], pred)
+    else:
+        matched = np.zeros(which.size, bool)
+        centre = pred.copy()
+    max_shift = np.where(matched, 0.5 * fw, match)
+    n = data.wave.size
+    ic = np.clip(np.searchsorted(data.wave, centre), 0, n - 1)
+    prev = np.maximum(ic - 1, 0)
+    ic = ic - ((ic > 0) & (np.abs(data.wave[prev] - centre) < np.abs(data.wave[ic] - centre)))
+    # a saturated core at the listed place (see line_start)
+    saturated = ~matched & (data.signif[ic] >= detect_sigma) & (1.0 - data.smooth[ic] > 0.5)
+    matched = matched | saturated
+    max_shift = np.where(saturated, 0.5 * fw, max_shift)
+    # a good pixel within half a width (bisection for the candidates, then the exact test)
+    lo = np.maximum(np.searchsorted(data.wave, centre - 0.6 * fw) - 1, 0)
+    hi = np.searchsorted(data.wave, centre + 0.6 * fw) + 1
+    span = int(max((hi - lo).max(), 1)) if which.size else 1
+    pix = lo[:, None] + np.arange(span)[None, :]
+    inside = pix < np.minimum(hi, n)[:, None]
+    pix = np.minimum(pix, n - 1)
+    near = np.abs(data.wave[pix] - centre[:, None]) <= (0.5 * fw)[:, None]
+    usable = (inside & data.good[pix] & near).any(axis=1)
+    s_c = data.signif[ic]
+    sign = np.where(s_c < -detect_sigma, -1.0, 1.0)
+    detected = matched & (sign * s_c >= detect_sigma)
+    return [LineStart(float(centre[m]), float(max_shift[m]), bool(matched[m]), int(ic[m]), float(sign[m]),
+                      bool(detected[m])) if usable[m] else None for m in range(which.size)]
+
+
+def plan_line(data, features, targets, i, profile, detect_sigma, start=None, window=None):
+    """Everything about listed line ``i`` that comes before its profile fit (see :class:`LinePlan`).
+
+    ``start`` (:func:`line_start`) and ``window`` (:func:`~specan.lines.windows.line_window`)
+    when already found (the batched path finds all windows at once).
+    """
+    fw, hydrogen = targets.fwhm[i], bool(targets.hydrogen[i])
+    if start is None:
+        start = line_start(data, features, targets, i, detect_sigma)
+    if start is None:
+        return LinePlan(LineResult(method="masked"))
+    centre, max_shift, matched, ic, sign, detected = start
+    s_c = float(data.signif[ic])
+    if window is None:
+        window = line_window(data, ic, centre, sign, fw, hydrogen, matched)
     cont = local_continuum(data, window)
     ew_int, ew_int_err = integrated_ew(data, window, cont)
     result = LineResult(wave_obs=centre, ew_int=ew_int, ew_int_err=ew_int_err, significance=s_c,
@@ -218,18 +344,31 @@ def measure_line(data, features, targets, i, profile, detect_sigma):
     centres = component_centres(data, targets, i, centre, window, in_win)
     skip = wing_mask(data, targets, i, centre, window, in_win, centres) if hydrogen else None
     voigt = use_voigt(profile, hydrogen, result.depth, data, window, fw)
-    fit = fit_line(data, window, cont, centres, voigt, max_shift, fw, sign, skip, hydrogen) if detected else None
+    return LinePlan(result, fw, hydrogen, ic, sign, detected, max_shift, window, cont, centres, skip, voigt,
+                    wants_fit=detected)
+
+
+def finish_line(data, features, targets, i, plan, fitter):
+    """The :class:`LineResult` of a planned line whose fit (``plan.fit``) is made.
+
+    ``fitter`` makes the wing fits of strong lines (:func:`wing_fit`).
+    """
+    result = plan.result
+    if plan.window is None:   # masked
+        return result
+    fit, window, fw, sign, hydrogen, voigt = plan.fit, plan.window, plan.fw, plan.sign, plan.hydrogen, plan.voigt
+    ew_int, ew_int_err = result.ew_int, result.ew_int_err
     if fit is not None:
         result.profile = "voigt" if voigt else "gauss"
         result.fit = dict(fit, profile=result.profile, sign=sign, ew_int=ew_int)
         result.ew_fit, result.ew_fit_err, result.fit_chi2 = fit["ew"], fit["ew_err"], fit["chi2"]
         result.fwhm, result.wave_obs = fit["fwhm"], fit["centre"]
     else:
-        result.fwhm = half_width(data, ic, window.lo, window.hi, sign)
-    result.method, result.ew, result.ew_err = chosen_ew(fit, result.profile, window.cut, len(centres) - 1,
+        result.fwhm = half_width(data, plan.ic, window.lo, window.hi, sign)
+    result.method, result.ew, result.ew_err = chosen_ew(fit, result.profile, window.cut, len(plan.centres) - 1,
                                                         hydrogen, ew_int, ew_int_err)
     if fit is not None and voigt and not hydrogen and sign > 0:
-        wing = wing_fit(data, features, targets, i, result.wave_obs, fit, fw)
+        wing = wing_fit(data, features, targets, i, result.wave_obs, fit, fw, fitter=fitter)
         if wing is not None:
             fit, wwin = wing
             result.fit = dict(fit, profile="voigt", sign=sign, ew_int=ew_int)
@@ -239,13 +378,13 @@ def measure_line(data, features, targets, i, profile, detect_sigma):
             result.window_min, result.window_max = data.wave[wwin.lo], data.wave[wwin.hi]
             window = wwin
     # significant in the matched filter AND an equivalent width clear of its error
-    result.detected = detected and abs(result.ew) > 2.0 * result.ew_err
+    result.detected = plan.detected and abs(result.ew) > 2.0 * result.ew_err
     fwhm_c = result.fwhm if np.isfinite(result.fwhm) else fw
-    result.ew_err_cayrel = cayrel_error(fwhm_c, data.dx[ic], 1.0 / window_noise(data, window))
+    result.ew_err_cayrel = cayrel_error(fwhm_c, data.dx[plan.ic], 1.0 / window_noise(data, window))
     return result
 
 
-def wing_fit(data, features, targets, i, centre, fit, fwhm, max_iter=3):
+def wing_fit(data, features, targets, i, centre, fit, fwhm, max_iter=3, fitter=fit_profile):
     """A strong line's Voigt fit over the window its own wings set, or None.
 
     The window reaches where the fitted profile's depth falls to the noise
@@ -259,6 +398,9 @@ def wing_fit(data, features, targets, i, centre, fit, fwhm, max_iter=3):
     blends do not add to the equivalent width. The equivalent width is the fitted
     profile's area, the wings beyond the window included.
 
+    ``fitter`` is :func:`specan.lines.profiles.fit_profile` or a function of the same call
+    (the batched path's).
+
     Returns
     -------
     (dict, Window) or None
@@ -270,8 +412,8 @@ def wing_fit(data, features, targets, i, centre, fit, fwhm, max_iter=3):
     shift = centre - pred[i]
     best = None
     reach0 = 0.0
+    noise = float(np.nanmedian(data.sigma[data.good])) if data.good.any() else 1e-3
     for _ in range(max_iter):
-        noise = float(np.nanmedian(data.sigma[data.good])) if data.good.any() else 1e-3
         # where the wing's depth is down to the noise of a few pixels, or 0.2%
         # (a continuum placed better than that is rare; common practice)
         threshold = max(noise / np.sqrt(5.0), 2e-3)
@@ -296,7 +438,7 @@ def wing_fit(data, features, targets, i, centre, fit, fwhm, max_iter=3):
         far = np.abs(weak_pos[:, None] - centres[None, :]).min(axis=1) > MIN_SEPARATION * fwhm
         skip = (np.abs(x[None, :] - weak_pos[far][:, None]) < 1.2 * fwhm).any(axis=0) if far.any() else None
         cont = np.ones(x.size)
-        new = fit_profile(data, win.lo, win.hi, cont, centres, "voigt", 0.5 * fwhm, fwhm / GAUSS_FWHM, 1.0, skip)
+        new = fitter(data, win.lo, win.hi, cont, centres, "voigt", 0.5 * fwhm, fwhm / GAUSS_FWHM, 1.0, skip)
         if new is None or not np.isfinite(new["ew"]) or new["ew"] <= 0:
             break
         fit, best = new, (new, win)
@@ -372,8 +514,14 @@ def chosen_ew(fit, profile, cut, n_extra, hydrogen, ew_int, ew_int_err):
 def window_noise(data, window):
     """Typical noise per pixel of the normalised flux over the window (NaN when none is known)."""
     sig_sel = data.sigma[window.lo:window.hi + 1]
-    ok = np.isfinite(sig_sel)
-    return np.median(sig_sel[ok]) if ok.any() else np.nan
+    sig_sel = sig_sel[np.isfinite(sig_sel)]
+    n = sig_sel.size
+    if not n:
+        return np.nan
+    # np.median's value (the middle one, or the mean of the middle two) without its overhead,
+    # which was a tenth of the lines stage once the fits were batched (bench_lines.py)
+    part = np.partition(sig_sel, [(n - 1) // 2, n // 2])
+    return part[n // 2] if n % 2 else 0.5 * (part[n // 2 - 1] + part[n // 2])
 
 
 def half_width(data, ic, lo, hi, sign):

@@ -27,7 +27,7 @@ def profiles(x, centres, shift, sigma, gamma, profile):
     return dx, np.exp(-0.5 * (dx / sigma) ** 2) / (sigma * np.sqrt(2 * np.pi))
 
 
-def _voigt_and_derivatives(dx, sigma, gamma):
+def voigt_and_derivatives(dx, sigma, gamma):
     """Voigt profile and its derivatives in x, sigma and gamma via the Faddeeva function.
 
     V = Re w(z) / (sigma sqrt(2 pi)), z = (x + i gamma) / (sigma sqrt 2), and
@@ -46,7 +46,7 @@ def _voigt_and_derivatives(dx, sigma, gamma):
     return v, d_x, d_sigma, d_gamma
 
 
-def _window_arrays(data, lo, hi, skip=None):
+def window_arrays(data, lo, hi, skip=None):
     """Wavelengths, flux and sqrt weights over pixels lo..hi (``skip``: pixels given no weight)."""
     sel = slice(lo, hi + 1)
     wts = np.sqrt(data.weight[sel])
@@ -73,11 +73,11 @@ def fit_profile(data, lo, hi, cont, centres, profile, max_shift, sig_inst, sign=
     dict or None
         See the module docstring; None when the fit fails or has too few pixels.
     """
-    x, y, wts = _window_arrays(data, lo, hi, skip)
+    x, y, wts = window_arrays(data, lo, hi, skip)
     if (wts > 0).sum() < (3 + len(centres)):
         return None
     voigt = profile == "voigt"
-    p0, lb, ub = _start_and_bounds(data, x, cont, centres, voigt, max_shift, sig_inst, sign, free_width)
+    p0, lb, ub = start_and_bounds(data, x, cont, centres, voigt, max_shift, sig_inst, sign, free_width)
     try:
         res = least_squares(_residuals, p0, jac=_jacobian_voigt if voigt else _jacobian_gauss,
                             bounds=(lb, ub), args=(x, y, cont, wts, centres, voigt),
@@ -91,10 +91,10 @@ def fit_profile(data, lo, hi, cont, centres, profile, max_shift, sig_inst, sign=
     except np.linalg.LinAlgError:
         return None
     dof = max(int((wts > 0).sum()) - res.x.size, 1)
-    return _summary(res.x, cov, centres, voigt, float(np.sum(res.fun**2)) / dof)
+    return fit_summary(res.x, cov, centres, voigt, float(np.sum(res.fun**2)) / dof)
 
 
-def _start_and_bounds(data, x, cont, centres, voigt, max_shift, sig_inst, sign, free_width):
+def start_and_bounds(data, x, cont, centres, voigt, max_shift, sig_inst, sign, free_width):
     """Start values and bounds of (shift, sigma[, gamma], W_1..W_n)."""
     ncomp = len(centres)
     span = max(x[-1] - x[0], 2 * sig_inst)
@@ -140,7 +140,7 @@ def _jacobian_gauss(p, x, y, cont, wts, centres, voigt):
 def _jacobian_voigt(p, x, y, cont, wts, centres, voigt):
     k = 3
     dx = x[None, :] - (centres[:, None] + p[0])
-    v, d_x, d_s, d_g = _voigt_and_derivatives(dx, p[1], p[2])
+    v, d_x, d_s, d_g = voigt_and_derivatives(dx, p[1], p[2])
     ws = p[k:][:, None]
     j = np.empty((x.size, p.size))
     j[:, 0] = cont * (ws * d_x).sum(axis=0)
@@ -150,7 +150,7 @@ def _jacobian_voigt(p, x, y, cont, wts, centres, voigt):
     return j * wts[:, None]
 
 
-def _summary(p, cov, centres, voigt, chi2):
+def fit_summary(p, cov, centres, voigt, chi2):
     """The fit dict of best parameters ``p`` with covariance ``cov``."""
     k = 3 if voigt else 2
     w_err = float(np.sqrt(max(cov[k, k], 0.0)))
@@ -184,23 +184,23 @@ def fit_gauss(data, lo, hi, cont, centres, max_shift, sig_line, sign=1.0):
     dict or None
         See the module docstring.
     """
-    x, y, wts = _window_arrays(data, lo, hi)
+    x, y, wts = window_arrays(data, lo, hi)
     ncomp = len(centres)
     if (wts > 0).sum() < (3 + ncomp):
         return None
     b = (cont - y) * wts
     step = sig_line / 4.0
-    sh, sg = _shift_width_grid(max_shift, step, sig_line)
+    sh, sg = shift_width_grid(max_shift, step, sig_line)
     try:
         a, ata, atb, w = _solve_on_grid(x, cont * wts, b, centres, sh, sg)
     except np.linalg.LinAlgError:
         return None
     chi2 = b @ b - np.sum(w * atb, axis=1)
-    best, wbest, cbest = _best_grid_point(a, b, w, chi2, sign)
+    best, wbest, cbest = best_grid_point(a, b, w, chi2, sign)
     if best is None:
         return None
     sig = sg[best]
-    shift = _refined_shift(chi2, sh, sg, best, step)
+    shift = refined_shift(chi2, sh, sg, best, step)
     try:
         cov = np.linalg.inv(ata[best])
     except np.linalg.LinAlgError:
@@ -212,7 +212,7 @@ def fit_gauss(data, lo, hi, cont, centres, max_shift, sig_line, sign=1.0):
             "chi2": float(cbest) / dof, "sigma": float(sig), "gamma": 0.0}
 
 
-def _shift_width_grid(max_shift, step, sig_line):
+def shift_width_grid(max_shift, step, sig_line):
     """Shifts (steps of ``step`` up to ``max_shift``) times widths (0.95, 1, 1.05 ``sig_line``), flattened."""
     nsh = int(np.floor(max_shift / step))
     shifts = np.arange(-nsh, nsh + 1) * step
@@ -238,7 +238,7 @@ def _solve_on_grid(x, cw, b, centres, sh, sg):
     return a, ata, atb, w
 
 
-def _best_grid_point(a, b, w, chi2, sign):
+def best_grid_point(a, b, w, chi2, sign):
     """The grid point of least chi-square whose components all have the line's sign.
 
     Grid points whose solution has components of the wrong sign are solved with
@@ -259,7 +259,7 @@ def _best_grid_point(a, b, w, chi2, sign):
     return best, wbest, cbest
 
 
-def _refined_shift(chi2, sh, sg, best, step):
+def refined_shift(chi2, sh, sg, best, step):
     """Shift of grid point ``best`` refined by a parabola through chi2 at its neighbouring shifts (same width)."""
     shift, sig = sh[best], sg[best]
     same = np.flatnonzero(sg == sig)

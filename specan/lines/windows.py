@@ -6,8 +6,8 @@ from typing import NamedTuple
 
 import numpy as np
 
-__all__ = ["Window", "line_window", "adaptive_window", "fixed_window", "profile_window", "wing_reach",
-           "local_continuum", "MAX_WING"]
+__all__ = ["Window", "line_window", "line_windows", "adaptive_window", "adaptive_windows", "fixed_window",
+           "profile_window", "wing_reach", "local_continuum", "MAX_WING"]
 
 #: Farthest a strong line's window reaches from its centre, Angstrom: the solar Ca II K
 #: wings are tens of Angstrom wide (common practice); beyond ~100 A the continuum fit
@@ -35,6 +35,135 @@ def line_window(data, ic, centre, sign, fwhm, hydrogen, matched):
         return fixed_window(data, centre, fwhm)
     max_half = max(25.0 * fwhm, 80.0) if hydrogen else 25.0 * fwhm
     return adaptive_window(data, ic, sign, fwhm, max_half, wide=hydrogen)
+
+
+def line_windows(data, starts, fwhm, hydrogen):
+    """:func:`line_window` of many lines at once: the same windows, the walks vectorised.
+
+    Parameters
+    ----------
+    data : LineData
+    starts : sequence
+        Per line ``(centre, max_shift, matched, ic, sign, ...)``
+        (:class:`~specan.lines.measurement.LineStart`).
+    fwhm, hydrogen : array
+        Per line: its line width (Angstrom) and whether it is a hydrogen line.
+
+    Returns
+    -------
+    list of Window
+    """
+    out = [None] * len(starts)
+    walk = []
+    for k, st in enumerate(starts):
+        if st[2]:
+            walk.append(k)
+        else:
+            out[k] = fixed_window(data, st[0], fwhm[k])
+    if walk:
+        k = np.array(walk)
+        fw = np.asarray(fwhm, float)[k]
+        wide = np.asarray(hydrogen, bool)[k]
+        ic = np.array([starts[j][3] for j in walk])
+        sign = np.array([starts[j][4] for j in walk], float)
+        max_half = np.where(wide, np.maximum(25.0 * fw, 80.0), 25.0 * fw)
+        for j, window in zip(walk, adaptive_windows(data, ic, sign, fw, max_half, wide)):
+            out[j] = window
+    return out
+
+
+def adaptive_windows(data, ic, sign, min_half, max_half, wide):
+    """:func:`adaptive_window` of many lines (arrays, one element per line): the same windows.
+
+    The walks of :func:`_walk` step by step for all lines and both directions at once: each
+    stopping rule becomes a test over the pixels of the walk, and a walk stops at the first
+    pixel where one holds (in the order :func:`_walk` tests them). The comparisons are the
+    same, so are the windows.
+    """
+    ends, levels, cuts = [], [], []
+    for step in (-1, 1):
+        end, level, cut = _walks(data, ic, sign, min_half, max_half, wide, step)
+        err_end = np.where(wide, data.smooth_wide_err[end], data.smooth_err[end])
+        # a plateau within the noise of the continuum is the continuum
+        level = np.where(np.abs(1.0 - level) <= 3.0 * err_end, 1.0, level)
+        ends.append(end)
+        levels.append(level)
+        cuts.append(cut)
+    out = []
+    for m in range(ic.size):
+        edges = [int(ends[0][m]), int(ends[1][m])]
+        lv = [float(levels[0][m]), float(levels[1][m])]
+        if edges[0] > edges[1]:
+            edges, lv = edges[::-1], lv[::-1]
+        out.append(Window(edges[0], edges[1], (lv[0], lv[1]), bool(cuts[0][m] or cuts[1][m])))
+    return out
+
+
+def _walks(data, ic, sign, min_half, max_half, wide, step):
+    """:func:`_walk` of every line in direction ``step``: (edge pixels, levels there, cut)."""
+    n = data.wave.size
+    nl = ic.size
+    x0 = data.wave[ic]
+    # steps a walk can take before the spectrum ends or max_half is passed
+    limit = np.where(step > 0, np.searchsorted(data.wave, x0 + max_half, side="right") - 1 - ic,
+                     ic - np.searchsorted(data.wave, x0 - max_half, side="left"))
+    jmax = int(max(np.max(limit) + 2, 2))
+    j = np.arange(1, jmax + 1)
+    idx = ic[:, None] + step * j[None, :]                          # (lines, steps)
+    inside = (idx >= 0) & (idx < n)
+    idc = np.clip(idx, 0, n - 1)
+    dist = np.abs(data.wave[idc] - x0[:, None])
+    valid = inside & (dist <= max_half[:, None])
+    # the first step that leaves the spectrum or passes max_half ends the walk one pixel back
+    valid &= np.logical_and.accumulate(valid, axis=1)
+    w = wide[:, None]
+    smooth = np.where(w, data.smooth_wide[idc], data.smooth[idc])
+    err = np.where(w, data.smooth_wide_err[idc], data.smooth_err[idc])
+    depth = sign[:, None] * (1.0 - smooth)
+    s0 = np.where(wide, data.smooth_wide[ic], data.smooth[ic])
+    depth0 = sign * (1.0 - s0)
+    d0 = np.maximum(depth0, 0.0)
+    # the running minimum of the depth (the walk's ``best``) and the step it was last lowered at
+    best = np.minimum.accumulate(np.concatenate([depth0[:, None], depth], axis=1), axis=1)
+    lowered = depth < best[:, :-1]
+    last = np.maximum.accumulate(np.where(lowered, j[None, :], 0), axis=1)
+    best = best[:, 1:]
+    mh = min_half[:, None]
+    at_continuum = (depth <= np.maximum(err, 2e-3)) & (dist >= mh)
+    neighbour = (depth > best + np.maximum(3.0 * err, 5e-3)) & (dist >= 0.5 * mh)
+    # the plateau test of _on_plateau: one line width back (hydrogen: five) along the walk
+    back_steps = np.ceil(np.where(w, 5.0, 1.0) * mh / data.dx[idc]).astype(int)
+    # (clipped: steps past the spectrum's end are not valid anyway)
+    back = np.clip(ic[:, None] + step * np.maximum(j[None, :] - back_steps, 0), 0, n - 1)
+    fall = _depth_at(data, back, sign, wide) - depth
+    flat = np.where(w, (dist >= 10.0 * mh) & (fall < np.maximum(2.0 * err, 0.1 * depth)),
+                    (dist >= 2.0 * mh) & (fall < np.maximum(2.0 * err, 0.01 * d0[:, None])))
+    plateau = ~(depth > 0.5 * d0[:, None]) & flat
+    stops = valid & (at_continuum | neighbour | plateau)
+    any_stop = stops.any(axis=1)
+    first = np.where(any_stop, np.argmax(stops, axis=1), -1)
+    rows = np.arange(nl)
+    nvalid = valid.sum(axis=1)
+    # no rule held: the walk ends at its last valid pixel (the limit), level 1, not cut
+    end = ic + step * nvalid
+    level = np.ones(nl)
+    cut = np.zeros(nl, bool)
+    f = np.maximum(first, 0)
+    hit = any_stop
+    pix = idc[rows, f]
+    is_cont = hit & at_continuum[rows, f]
+    is_nb = hit & ~is_cont & neighbour[rows, f]
+    is_pl = hit & ~is_cont & ~is_nb
+    end = np.where(is_cont | is_pl, pix, end)
+    end = np.where(is_nb, ic + step * last[rows, f], end)
+    cut = is_nb
+    level = np.where(is_pl, smooth[rows, f], level)
+    return end.astype(int), level, cut
+
+
+def _depth_at(data, pixels, sign, wide):
+    """Depth ``sign (1 - smoothed flux)`` at ``pixels`` (lines x steps), on the wide smoothing where ``wide``."""
+    return sign[:, None] * (1.0 - np.where(wide[:, None], data.smooth_wide[pixels], data.smooth[pixels]))
 
 
 def fixed_window(data, centre, fwhm):

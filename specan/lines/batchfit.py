@@ -1,0 +1,355 @@
+"""All the profile fits of a spectrum at once: the same fits as :mod:`.profiles`, batched.
+
+:func:`specan.lines.measurement.measure` asks for one small fit per line (a Gaussian by
+variable projection, or a Voigt by bounded nonlinear least squares): a few parameters
+each, some 150 per spectrum. Made one by one, the Python overhead of each call outweighs
+its arithmetic (scipy's ``least_squares`` alone spent ~2.7 ms a Voigt fit, measured in
+``benchmarks/bench_lines.py``). Here every fit of one kind advances together:
+
+- :func:`gauss_batch`: the variable-projection grid of :func:`.profiles.fit_gauss`,
+  solved for all lines with the same number of components and grid in one stack of
+  normal equations (windows padded with pixels of zero weight, which add nothing);
+  the same arithmetic, so the same answers to rounding.
+- :func:`voigt_batch`: the model of :func:`.profiles.fit_profile` fitted by a
+  vectorised Levenberg-Marquardt iteration, each problem with its own parameters
+  (a block-diagonal Jacobian: one small block per line), its own damping and its own
+  convergence. scipy has no solver for many small least-squares problems at once
+  (``least_squares`` takes one problem; stacking them into one sparse problem would
+  couple their damping and stopping), so this one is written here. Bounds are those of
+  :func:`.profiles.start_and_bounds`, kept by projecting each step onto them and by
+  holding a parameter on its bound while the gradient pushes it outward (an active-set
+  projected Levenberg-Marquardt, common practice). Where the optimum is well determined it
+  converges to the one ``least_squares`` finds, more tightly than that one stops (its
+  ``ftol`` of 1e-6); where it is not (flat valleys of some hydrogen fits) the two may stop
+  at different points of the valley. Both are measured in ``tests/test_lines_batched.py``.
+"""
+
+from __future__ import annotations
+
+import numpy as np
+
+from ..resolution import GAUSS_FWHM
+from .profiles import (best_grid_point, fit_profile, fit_summary, refined_shift, start_and_bounds,
+                       voigt_and_derivatives, window_arrays)
+
+__all__ = ["fit_planned", "fit_batched_voigt", "gauss_batch", "voigt_batch"]
+
+#: The iteration stops when a full Gauss-Newton step would lower the cost (half the
+#: chi-square) by less than this: 1e-6 puts the fit within ~sqrt(2e-6) = 0.0014 of each
+#: parameter's own error from the optimum (a chi-square rise of 1 is one error), where the
+#: convergence is quadratic; where it is slow and linear (the long valleys of damped lines)
+#: the decrement underestimates the distance left, by 1/(1 - rate). ``least_squares`` stops
+#: at a relative cost change of 1e-6 (its ftol), no closer on a chi-square of a few hundred.
+DECREMENT = 1e-6
+#: ... or by less than this fraction of the cost (fits whose chi-square is huge: the profile
+#: model, not the noise, limits them, and their errors understate the uncertainty).
+COST_TOL = 1e-12
+#: Most iterations of the batch; a problem not converged by then (12 of 502 Voigt fits on the
+#: 40 spectra of ``benchmarks/bench_lines.py``, measured; mostly hydrogen lines whose equivalent
+#: width and damping width trade along a long curved valley) is fitted on its own by
+#: :func:`specan.lines.profiles.fit_profile`, the one-by-one path.
+MAX_ITER = 40
+
+
+def fit_planned(data, plans):
+    """The profile fits ``plans`` ask for (:class:`~specan.lines.measurement.LinePlan`), in order.
+
+    Returns
+    -------
+    list of dict or None
+        One fit (see :mod:`specan.lines.profiles`) per plan, None where it failed.
+    """
+    fits = [None] * len(plans)
+    gauss = [k for k, p in enumerate(plans) if not p.voigt]
+    voigt = [k for k, p in enumerate(plans) if p.voigt]
+    g = gauss_batch(data, [(p.window.lo, p.window.hi, p.cont, p.centres, p.max_shift, p.fw / GAUSS_FWHM, p.sign)
+                           for p in (plans[k] for k in gauss)])
+    v = voigt_batch(data, [(p.window.lo, p.window.hi, p.cont, p.centres, p.max_shift, p.fw / GAUSS_FWHM, p.sign,
+                            p.skip, p.hydrogen) for p in (plans[k] for k in voigt)])
+    for k, fit in zip(gauss + voigt, g + v):
+        fits[k] = fit
+    return fits
+
+
+def fit_batched_voigt(data, lo, hi, cont, centres, profile, max_shift, sig_inst, sign=1.0, skip=None,
+                      free_width=False):
+    """:func:`specan.lines.profiles.fit_profile` (Voigt) by :func:`voigt_batch`, for a single fit."""
+    if profile != "voigt":
+        raise ValueError("the batched fit is a Voigt fit")
+    return voigt_batch(data, [(lo, hi, cont, centres, max_shift, sig_inst, sign, skip, free_width)])[0]
+
+
+# ----------------------------------------------------------------------------- Gaussian
+
+
+def gauss_batch(data, problems):
+    """:func:`specan.lines.profiles.fit_gauss` of every problem.
+
+    Parameters
+    ----------
+    data : LineData
+    problems : list of tuple
+        ``(lo, hi, cont, centres, max_shift, sig_line, sign)`` as :func:`fit_gauss` takes them.
+
+    Returns
+    -------
+    list of dict or None
+    """
+    out = [None] * len(problems)
+    groups = {}
+    for k, (lo, hi, cont, centres, max_shift, sig_line, sign) in enumerate(problems):
+        nsh = int(np.floor(max_shift / (sig_line / 4.0)))
+        groups.setdefault((len(centres), nsh), []).append(k)
+    for (ncomp, nsh), ks in groups.items():
+        _gauss_group(data, problems, ks, ncomp, nsh, out)
+    return out
+
+
+def _padded(data, problems, ks, skip_index=None):
+    """Window arrays of problems ``ks`` padded to one length: x, y, cont, sqrt weights, good pixels."""
+    n = np.array([problems[k][1] - problems[k][0] + 1 for k in ks])
+    size = int(n.max())
+    shape = (len(ks), size)
+    x, y, cont, wts = np.empty(shape), np.zeros(shape), np.zeros(shape), np.zeros(shape)
+    for row, k in enumerate(ks):
+        pr = problems[k]
+        xs, ys, ws = window_arrays(data, pr[0], pr[1], None if skip_index is None else pr[skip_index])
+        m = xs.size
+        x[row, :m], x[row, m:] = xs, xs[-1]
+        y[row, :m], cont[row, :m], wts[row, :m] = ys, pr[2], ws
+    return x, y, cont, wts, (wts > 0).sum(axis=1)
+
+
+def _gauss_group(data, problems, ks, ncomp, nsh, out):
+    """The problems ``ks`` (``ncomp`` components, shift grid of ``2 nsh + 1`` steps) into ``out``."""
+    ks = [k for k in ks if (np.sqrt(data.weight[problems[k][0]:problems[k][1] + 1]) > 0).sum() >= 3 + ncomp]
+    if not ks:
+        return
+    x, y, cont, wts, ngood = _padded(data, problems, ks)
+    centres = np.array([problems[k][3] for k in ks], float)          # (L, C)
+    sig_line = np.array([problems[k][5] for k in ks], float)
+    sign = np.array([problems[k][6] for k in ks], float)
+    step = sig_line / 4.0
+    # the grid of shift_width_grid, line by line: shifts in steps of sigma/4, widths 0.95-1.05
+    sh = np.repeat(np.arange(-nsh, nsh + 1), 3)[None, :] * step[:, None]      # (L, G)
+    sg = sig_line[:, None] * np.tile(np.array([0.95, 1.0, 1.05]), 2 * nsh + 1)[None, :]
+    b = (cont - y) * wts
+    cw = cont * wts
+    dx = x[:, None, None, :] - (centres[:, None, :, None] + sh[:, :, None, None])   # (L, G, C, P)
+    s4 = sg[:, :, None, None]
+    a = np.exp(-0.5 * (dx / s4) ** 2) / (s4 * np.sqrt(2 * np.pi)) * cw[:, None, None, :]
+    ata = a @ a.transpose(0, 1, 3, 2) + 1e-12 * np.eye(ncomp)
+    atb = a @ b[:, None, :, None]
+    try:
+        w = np.linalg.solve(ata, atb)[..., 0]                            # (L, G, C)
+    except np.linalg.LinAlgError:
+        # one singular normal matrix stops the whole stack: fit that group line by line
+        from .profiles import fit_gauss
+
+        for k in ks:
+            lo, hi, cnt, cen, max_shift, sig, sgn = problems[k]
+            out[k] = fit_gauss(data, lo, hi, cnt, cen, max_shift, sig, sgn)
+        return
+    atb = atb[..., 0]
+    chi2 = np.einsum("lp,lp->l", b, b)[:, None] - np.sum(w * atb, axis=2)     # (L, G)
+    best = np.argmin(chi2, axis=1)
+    rows = np.arange(len(ks))
+    wbest = w[rows, best]
+    cbest = chi2[rows, best]
+    for row in np.flatnonzero(~np.all(sign[:, None] * wbest >= 0, axis=1)):
+        # the best grid point has components of the wrong sign: the one-by-one rule (NNLS
+        # on the best few grid points) over this line's own pixels
+        m = problems[ks[row]][1] - problems[ks[row]][0] + 1
+        bg, wb, cb = best_grid_point(a[row, :, :, :m], b[row, :m], w[row], chi2[row], sign[row])
+        if bg is None:
+            best[row] = -1
+            continue
+        best[row], wbest[row], cbest[row] = bg, wb, cb
+    ok = best >= 0
+    try:
+        cov = np.linalg.inv(ata[rows[ok], best[ok]])
+    except np.linalg.LinAlgError:
+        cov = None
+    j = 0
+    for row, k in enumerate(ks):
+        if not ok[row]:
+            continue
+        if cov is None:
+            try:
+                c00 = np.linalg.inv(ata[row, best[row]])[0, 0]
+            except np.linalg.LinAlgError:
+                continue
+        else:
+            c00 = cov[j, 0, 0]
+            j += 1
+        sig = sg[row, best[row]]
+        shift = refined_shift(chi2[row], sh[row], sg[row], best[row], step[row])
+        dof = max(int(ngood[row]) - ncomp - 2, 1)
+        peak = wbest[row, 0] / (sig * np.sqrt(2 * np.pi))
+        out[k] = {"ew": float(wbest[row, 0]), "ew_err": float(np.sqrt(max(c00, 0.0))),
+                  "centre": float(centres[row, 0] + shift), "fwhm": float(GAUSS_FWHM * sig),
+                  "depth": float(peak), "chi2": float(cbest[row]) / dof, "sigma": float(sig), "gamma": 0.0}
+
+
+# ----------------------------------------------------------------------------- Voigt
+
+
+def voigt_batch(data, problems, max_iter=MAX_ITER, decrement=DECREMENT, cost_tol=COST_TOL):
+    """:func:`specan.lines.profiles.fit_profile` (Voigt) of every problem, all iterated together.
+
+    Parameters
+    ----------
+    data : LineData
+    problems : list of tuple
+        ``(lo, hi, cont, centres, max_shift, sig_inst, sign, skip, free_width)`` as
+        :func:`fit_profile` takes them.
+    max_iter : int
+        Most iterations; a problem not converged by then is fitted by :func:`fit_profile`.
+    decrement, cost_tol : float
+        Convergence: a full Gauss-Newton step would lower the cost by less than ``decrement``
+        or than ``cost_tol`` times the cost.
+
+    Returns
+    -------
+    list of dict or None
+    """
+    out = [None] * len(problems)
+    live, starts = [], []
+    for k, (lo, hi, cont, centres, max_shift, sig_inst, sign, skip, free_width) in enumerate(problems):
+        x, _, wts = window_arrays(data, lo, hi, skip)
+        if (wts > 0).sum() < 3 + len(centres):
+            continue
+        p0, lb, ub = start_and_bounds(data, x, cont, centres, True, max_shift, sig_inst, sign, free_width)
+        if np.any(lb >= ub) or not np.all(np.isfinite(p0)):
+            continue   # least_squares refuses these (a ValueError, so no fit)
+        live.append(k)
+        starts.append((p0, lb, ub))
+    if not live:
+        return out
+    x, y, cont, wts, ngood = _padded(data, problems, live, skip_index=7)
+    nb = len(live)
+    ncomp = np.array([len(problems[k][3]) for k in live])
+    npar = 3 + int(ncomp.max())
+    # padded components: no width, held at zero (their columns never enter a step)
+    centres = np.zeros((nb, npar - 3))
+    p, lb, ub = np.zeros((nb, npar)), np.full((nb, npar), -1.0), np.ones((nb, npar))
+    real = np.zeros((nb, npar), bool)
+    for row, k in enumerate(live):
+        n = 3 + ncomp[row]
+        centres[row, :ncomp[row]] = problems[k][3]
+        p[row, :n], lb[row, :n], ub[row, :n] = starts[row]
+        real[row, :n] = True
+    model = _VoigtModel(x, y, cont, wts, centres)
+    r, jac = model(p)
+    cost = 0.5 * np.einsum("bp,bp->b", r, r)
+    finite = np.isfinite(cost)   # least_squares: "residuals are not finite in the initial point"
+    converged = np.zeros(nb, bool)
+    eye = np.eye(npar)
+    # the problems still iterating, their state packed together (unpacked as each stops)
+    act = np.flatnonzero(finite)
+    P, R, J, C = p[act], r[act], jac[act], cost[act]
+    LB, UB, REAL = lb[act], ub[act], real[act]
+    span = UB - LB
+    near_lo, near_hi = LB + 1e-12 * span, UB - 1e-12 * span
+    lam, nu = np.full(act.size, 1e-3), np.full(act.size, 2.0)
+    work = model.rows(act)
+    for _ in range(max_iter):
+        if not act.size:
+            break
+        grad = np.einsum("bpn,bp->bn", J, R)
+        jtj = J.transpose(0, 2, 1) @ J
+        # on a bound with the gradient pushing outward: held there this step
+        held = ~REAL | ((P <= near_lo) & (grad > 0)) | ((P >= near_hi) & (grad < 0))
+        diag = np.einsum("bnn->bn", jtj)
+        # Marquardt's scaling by the curvature of each parameter (floored: a flat direction)
+        diag = np.maximum(diag, 1e-12 * diag.max(axis=1, keepdims=True) + 1e-300)
+        free = ~held
+        keep = free[:, :, None] & free[:, None, :]
+        held_eye = held[:, :, None] * eye
+        diag_eye = diag[:, :, None] * eye
+        rhs = np.where(held, 0.0, -grad)
+        # the Gauss-Newton decrement (the cost a full undamped step would remove): ~0 only
+        # at an optimum, whatever the damping, so it is what tells convergence
+        gn = _solve(np.where(keep, jtj + 1e-12 * diag_eye, 0.0) + held_eye, rhs)
+        small = 0.5 * np.einsum("bn,bn->b", rhs, gn) <= np.maximum(decrement, cost_tol * C)
+        step = _solve(np.where(keep, jtj + lam[:, None, None] * diag_eye, 0.0) + held_eye, rhs)
+        pn = np.clip(P + step, LB, UB)
+        st = pn - P
+        predicted = -np.einsum("bn,bn->b", grad, st) - 0.5 * np.einsum("bn,bnm,bm->b", st, jtj, st)
+        rn, jn = work(pn)
+        cn = 0.5 * np.einsum("bp,bp->b", rn, rn)
+        better = np.isfinite(cn) & (cn < C)
+        # Nielsen's (1999) damping update: by how well the linearised model predicted the
+        # decrease (rho), gently; doubling factors after failures (from memory)
+        rho = (C - cn) / np.maximum(predicted, 1e-300)
+        lam = np.maximum(np.where(better, lam * np.maximum(1.0 / 3.0, 1.0 - (2.0 * np.clip(rho, 0, 1) - 1.0) ** 3),
+                                  lam * nu), 1e-15)
+        nu = np.where(better, 2.0, 2.0 * nu)
+        P = np.where(better[:, None], pn, P)
+        R = np.where(better[:, None], rn, R)
+        J = np.where(better[:, None, None], jn, J)
+        C = np.where(better, cn, C)
+        # stop: at the optimum (the decrement, before this step, a negligible fraction of the
+        # cost), or the damping has grown so large that no step lowers the cost
+        stop = small | (lam > 1e12)
+        if stop.any():
+            rows = act[stop]
+            p[rows], jac[rows], cost[rows] = P[stop], J[stop], C[stop]
+            converged[rows] = small[stop]
+            go = ~stop
+            act = act[go]
+            P, R, J, C, LB, UB, REAL = P[go], R[go], J[go], C[go], LB[go], UB[go], REAL[go]
+            near_lo, near_hi, lam, nu = near_lo[go], near_hi[go], lam[go], nu[go]
+            work = model.rows(act)
+    for row, k in enumerate(live):
+        if not converged[row]:
+            if finite[row]:
+                lo, hi, cnt, cen, max_shift, sig_inst, sign, skip, free_width = problems[k]
+                out[k] = fit_profile(data, lo, hi, cnt, cen, "voigt", max_shift, sig_inst, sign, skip, free_width)
+            continue
+        n = 3 + ncomp[row]
+        jr = jac[row][:, :n]
+        try:
+            cov = np.linalg.pinv(jr.T @ jr)
+        except np.linalg.LinAlgError:
+            continue
+        dof = max(int(ngood[row]) - n, 1)
+        out[k] = fit_summary(p[row, :n], cov, problems[k][3], True, float(2.0 * cost[row]) / dof)
+    return out
+
+
+def _solve(m, rhs):
+    """Solutions of the stacked systems ``m x = rhs`` (least squares where one is singular)."""
+    try:
+        return np.linalg.solve(m, rhs[..., None])[..., 0]
+    except np.linalg.LinAlgError:
+        return np.stack([np.linalg.lstsq(mi, ri, rcond=None)[0] for mi, ri in zip(m, rhs)])
+
+
+class _VoigtModel:
+    """Weighted residuals and Jacobian of the Voigt window model, for a set of problems.
+
+    Model (as :func:`specan.lines.profiles.fit_profile`): ``cont (1 - sum_k W_k V(x - c_k - shift;
+    sigma, gamma))``; parameters ``(shift, sigma, gamma, W_1..W_n)``; profile and derivatives
+    from one Faddeeva evaluation (:func:`specan.lines.profiles.voigt_and_derivatives`).
+    """
+
+    def __init__(self, x, y, cont, wts, centres):
+        self.x, self.y, self.cont, self.wts, self.centres = x, y, cont, wts, centres
+
+    def rows(self, rows):
+        """The model of the problems ``rows`` only."""
+        return _VoigtModel(self.x[rows], self.y[rows], self.cont[rows], self.wts[rows], self.centres[rows])
+
+    def __call__(self, p):
+        x, cont, wts = self.x, self.cont, self.wts
+        dx = x[:, None, :] - (self.centres[:, :, None] + p[:, 0, None, None])   # (b, C, P)
+        v, d_x, d_s, d_g = voigt_and_derivatives(dx, p[:, 1, None, None], p[:, 2, None, None])
+        ws = p[:, 3:, None]
+        r = (cont * (1.0 - np.sum(ws * v, axis=1)) - self.y) * wts
+        jac = np.empty((p.shape[0], x.shape[1], p.shape[1]))
+        jac[:, :, 0] = cont * np.sum(ws * d_x, axis=1)
+        jac[:, :, 1] = -cont * np.sum(ws * d_s, axis=1)
+        jac[:, :, 2] = -cont * np.sum(ws * d_g, axis=1)
+        jac[:, :, 3:] = -(cont[:, None, :] * v).transpose(0, 2, 1)
+        return r, jac * wts[:, :, None]
