@@ -281,7 +281,8 @@ def voigt_batch(data, problems, max_iter=MAX_ITER, decrement=DECREMENT, cost_tol
         better = np.isfinite(cn) & (cn < C)
         # Nielsen's (1999) damping update: by how well the linearised model predicted the
         # decrease (rho), gently; doubling factors after failures (from memory)
-        rho = (C - cn) / np.maximum(predicted, 1e-300)
+        with np.errstate(over="ignore"):   # a tiny predicted decrease: rho is clipped to [0, 1] below
+            rho = (C - cn) / np.maximum(predicted, 1e-300)
         lam = np.maximum(np.where(better, lam * np.maximum(1.0 / 3.0, 1.0 - (2.0 * np.clip(rho, 0, 1) - 1.0) ** 3),
                                   lam * nu), 1e-15)
         nu = np.where(better, 2.0, 2.0 * nu)
@@ -315,6 +316,15 @@ def voigt_batch(data, problems, max_iter=MAX_ITER, decrement=DECREMENT, cost_tol
             continue
         dof = max(int(ngood[row]) - n, 1)
         out[k] = fit_summary(p[row, :n], cov, problems[k][3], True, float(2.0 * cost[row]) / dof)
+        if not abs(out[k]["ew"]) > out[k]["ew_err"]:
+            # an ill-determined fit (a flat valley where depth and damping trade): the batch may
+            # settle on a worse point of it than least_squares (Fe I 3820 in a MILES G9.5 III star:
+            # chi2 0.748 against 0.639, measured), so the one-by-one fit is made too and the
+            # better kept
+            lo, hi, cnt, cen, max_shift, sig_inst, sign, skip, free_width = problems[k]
+            slow = fit_profile(data, lo, hi, cnt, cen, "voigt", max_shift, sig_inst, sign, skip, free_width)
+            if slow is not None and slow["chi2"] < out[k]["chi2"]:
+                out[k] = slow
     return out
 
 
