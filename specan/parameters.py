@@ -34,7 +34,7 @@ from scipy.optimize import least_squares
 
 from .doppler import doppler_factor
 from .errors import AnalysisError
-from .obsinfo import META_KEY, get_info, wavelength_in
+from .obsinfo import get_info, wavelength_in
 from .resolution import smooth_to_fwhm
 
 __all__ = ["MODEL_FILE", "MODEL_FWHM", "LABELS", "model_wavelengths", "scale_labels", "broader_than_model",
@@ -125,10 +125,7 @@ def on_model_grid(spectrum, rv=None, fwhm_in=None, notes=None, resolving_power=N
         ``flux`` and ``good`` on :func:`model_wavelengths` (``good`` False outside the spectrum
         and on masked pixels); ``broader`` when the spectrum is broader than the model.
     """
-    from specutils import Spectrum
-
-    from .obsinfo import ObsInfo
-    from .prepare import prepare
+    from .prepare import normalise_arrays
 
     notes = notes if notes is not None else []
     info = get_info(spectrum)
@@ -163,12 +160,10 @@ def on_model_grid(spectrum, rv=None, fwhm_in=None, notes=None, resolving_power=N
     if ok.sum() < 50:
         raise AnalysisError("too few usable pixels on the parameter model's wavelengths", info.path)
     positive = np.where(ok & (on > 0), on, np.nan)
-    carrier = Spectrum(flux=np.nan_to_num(positive, nan=1.0) * u.dimensionless_unscaled, spectral_axis=grid * u.AA,
-                       mask=~np.isfinite(positive),
-                       meta={META_KEY: ObsInfo(medium="air", medium_assumed=False, resolving_power=5000.0 / MODEL_FWHM)})
-    normed = prepare(carrier, telluric=False)
-    out = np.asarray(normed.flux.value, float)
-    return ModelInput(out, ok & np.isfinite(out) & ~np.asarray(normed.mask, bool), broader)
+    # prepare()'s normalisation without its S/N and Spectrum objects: the same flux to the bit
+    # (tests/test_parameters.py), which the shipped model was trained on
+    out, bad = normalise_arrays(grid, np.nan_to_num(positive, nan=1.0), ~np.isfinite(positive), telluric=False)
+    return ModelInput(out, ok & np.isfinite(out) & ~bad, broader)
 
 
 # ---------------------------------------------------------------------------

@@ -17,7 +17,7 @@ from .obsinfo import META_KEY, get_info, replace_parts, spectrum_arrays, vacuum_
 from .resolution import degrade
 
 __all__ = ["TELLURIC_BANDS_AIR", "mask_bad", "mask_telluric", "snr", "fit_continuum", "normalize",
-           "degrade", "prepare"]
+           "normalise_arrays", "degrade", "prepare"]
 
 #: Continuum anchors this many standard deviations (of a maximum of noisy pixels) below the
 #: fit keep full weight. Measured with error arrays, S/N 10-300: on flat spectra the fit's
@@ -181,9 +181,17 @@ def fit_continuum(spectrum, smoothing=300.0 * u.AA, window=12.0 * u.AA, below_we
         Continuum at every pixel, in the flux unit.
     """
     wave, flux, err, mask = spectrum_arrays(spectrum)
+    full = _continuum_arrays(wave, flux, err, mask, smoothing, window, below_weight, max_iter,
+                             get_info(spectrum).path)
+    return full * spectrum.flux.unit
+
+
+def _continuum_arrays(wave, flux, err, mask, smoothing=300.0 * u.AA, window=12.0 * u.AA, below_weight=0.005,
+                      max_iter=50, path=None):
+    """:func:`fit_continuum` on plain arrays (the one implementation both paths share)."""
     good = ~mask & np.isfinite(flux)
     if good.sum() < 20:
-        raise AnalysisError("fewer than 20 usable pixels: cannot fit a continuum", get_info(spectrum).path)
+        raise AnalysisError("fewer than 20 usable pixels: cannot fit a continuum", path)
     x, y = wave[good], flux[good]
     step = np.median(np.diff(x))
     k = int(np.clip(round(window.to_value(u.AA) / step), 1, max(1, x.size // 8)))
@@ -196,7 +204,7 @@ def fit_continuum(spectrum, smoothing=300.0 * u.AA, window=12.0 * u.AA, below_we
     # Outside the anchors hold the end values rather than extrapolating a cubic.
     full[wave < ax[0]] = fit(ax[:1])[0]
     full[wave > ax[-1]] = fit(ax[-1:])[0]
-    return full * spectrum.flux.unit
+    return full
 
 
 def _window_maxima(x, y, k):
@@ -393,6 +401,47 @@ def normalize(spectrum, continuum=None, **fit_options):
     meta[META_KEY] = info
     meta["continuum"] = u.Quantity(continuum)
     return replace_parts(spectrum, flux=nflux, err=nerr, mask=mask | bad, unit=u.dimensionless_unscaled, meta=meta)
+
+
+def normalise_arrays(wave, flux, mask=None, telluric=True, medium="air"):
+    """Continuum-normalised flux and mask of plain arrays, as :func:`prepare` gives them.
+
+    For the package's own resampled copies of a spectrum (the parameter model's and the
+    library comparison's pixels): the same masks and the same :func:`fit_continuum` with its
+    default settings, so the flux is the one ``prepare`` returns for a Spectrum of these arrays
+    (no error array, not yet normalised) to the last bit, without what such copies do not need:
+    the S/N estimate (a quarter of ``prepare``'s time on them) and the Spectrum objects
+    (specutils builds a WCS for each, three per call; together most of the rest, measured).
+
+    Parameters
+    ----------
+    wave : numpy.ndarray
+        Wavelengths (Angstrom, increasing) in ``medium``.
+    flux : numpy.ndarray
+        Flux (any unit; no error array).
+    mask : numpy.ndarray, optional
+        True where a pixel is bad already.
+    telluric : bool
+        Mask the telluric bands too, as ``prepare`` does by default.
+    medium : {"air", "vacuum"}
+
+    Returns
+    -------
+    flux, mask : numpy.ndarray
+        Normalised flux (1 where the continuum is unusable) and the mask (True = bad).
+    """
+    wave = np.asarray(wave, float)
+    flux = np.asarray(flux, float)
+    mask = np.zeros(flux.shape, bool) if mask is None else np.array(mask, bool)
+    mask |= _bad_pixels(flux, None, normalized=False)
+    if telluric:
+        mask |= telluric_mask(wave, medium)
+    c = _continuum_arrays(wave, flux, None, mask)
+    # as normalize() divides
+    bad = ~np.isfinite(c) | (c <= 0)
+    with np.errstate(divide="ignore", invalid="ignore"):
+        nflux = np.where(bad, 1.0, flux / c)
+    return nflux, mask | bad
 
 
 def prepare(spectrum, telluric=True, continuum=True, **fit_options):

@@ -271,3 +271,60 @@ def test_resampled_noise_falls_back_to_dersnr():
     est = flux_noise(np.interp(x[:-1] + 0.5, x, y))
     assert "DER_SNR" in est.method
     assert est.snr == pytest.approx(100.0 * np.sqrt(2.0), rel=0.15)   # per-pixel: 0.01 / sqrt(2)
+
+
+# ---------------------------------------------------------------------------
+# The light path of the package's own resampled copies (parameters, library comparison)
+# ---------------------------------------------------------------------------
+def _checked_light_path(monkeypatch):
+    """Make every normalise_arrays call also run prepare() on a Spectrum of the same arrays and compare.
+
+    Returns the list of the calls' pixel counts (so a test can see the callers went through it).
+    """
+    import specan.prepare as prep
+
+    light = prep.normalise_arrays
+    calls = []
+
+    def checked(wave, flux, mask=None, telluric=True, medium="air"):
+        out, bad = light(wave, flux, mask, telluric, medium)
+        carrier = Spectrum(flux=np.asarray(flux) * u.dimensionless_unscaled, spectral_axis=np.asarray(wave) * u.AA,
+                           mask=mask, meta={"specan": ObsInfo(medium=medium, medium_assumed=False)})
+        full = prep.prepare(carrier, telluric=telluric)
+        # bit for bit: the shipped parameter model and library set were made through prepare()
+        assert np.array_equal(out, full.flux.value, equal_nan=True)
+        assert np.array_equal(bad, full.mask)
+        calls.append(out.size)
+        return out, bad
+
+    monkeypatch.setattr(prep, "normalise_arrays", checked)
+    return calls
+
+
+def _classify_inputs(spectrum, **kw):
+    from specan import parameters
+    from specan.classify import neighbours
+
+    parameters.on_model_grid(spectrum, rv=0 * u.km / u.s, **kw)
+    neighbours.on_grid(spectrum, rv=0 * u.km / u.s, **kw)
+
+
+def test_light_normalisation_is_prepare_to_the_bit_on_the_kurucz_sun(kurucz_sun, monkeypatch):
+    w, f, _ = kurucz_sun
+    calls = _checked_light_path(monkeypatch)
+    for r in (2000.0, 800.0):
+        info = ObsInfo(medium="vacuum", medium_assumed=False, resolving_power=r)
+        _classify_inputs(Spectrum(flux=f * u.dimensionless_unscaled, spectral_axis=w * u.AA, meta={"specan": info}))
+    assert len(calls) == 4
+
+
+@pytest.mark.reference
+def test_light_normalisation_is_prepare_to_the_bit_on_library_stars(miles, jhc1984, jhc_catalog, monkeypatch):
+    from astropy.table import Table
+
+    calls = _checked_light_path(monkeypatch)
+    for row in Table.read(miles / "catalog.csv", format="ascii.csv")[::60]:
+        _classify_inputs(specan.read(miles / str(row["file"]), medium="air"))
+    for row in jhc_catalog[::30]:
+        _classify_inputs(specan.read(jhc1984 / str(row["file"])), fwhm_in=13.0)   # JHC copies' FWHM, measured
+    assert len(calls) >= 10
