@@ -334,6 +334,12 @@ class _PSpline:
     knot_spacing^3. Hand-written because scipy's exact ``make_smoothing_spline``
     spends ~30 ms per call in Python loops (measured) and the continuum fit calls it
     many times per spectrum; this costs about a millisecond.
+
+    The normal equations of each reweighting are summed straight into their bands from the
+    basis's stored entries (``np.bincount``), adding the same products in the same order
+    (anchor by anchor) as the sparse product ``B^T diag(w) B`` does, so the coefficients are
+    the same to the bit (tests/test_prepare.py); scipy.sparse's bookkeeping cost 0.3 ms a
+    reweighting on 300 anchors, this 0.05 (measured).
     """
 
     def __init__(self, x, lam, knot_spacing):
@@ -353,6 +359,38 @@ class _PSpline:
                           shape=(ncoef - 2, ncoef))
         self.penalty = ((lam / h**3) * (d2.T @ d2)).tocsr()
         self.lo, self.hi = lo, hi
+        # upper bands of the penalty (LAPACK's banded storage) and, per pair of stored basis
+        # entries of one anchor (columns j <= l <= j + 3), where their product goes in the bands
+        self.penalty_bands = np.zeros((4, ncoef))
+        for k in range(4):
+            self.penalty_bands[3 - k, k:] = self.penalty.diagonal(k)
+        B = self.basis
+        per_row = np.diff(B.indptr)
+        self.rows = np.repeat(np.arange(B.shape[0]), per_row)
+        self.pairs = None
+        if B.has_sorted_indices and per_row.size and np.all(per_row == per_row[0]):
+            r = int(per_row[0])
+            a = (B.indptr[:-1, None, None] + np.arange(r)[None, :, None]).repeat(r, axis=2).reshape(-1, r * r)
+            b = (B.indptr[:-1, None, None] + np.arange(r)[None, None, :]).repeat(r, axis=1).reshape(-1, r * r)
+            offset = B.indices[b] - B.indices[a]
+            keep = (offset >= 0) & (offset <= 3)
+            # row by row (C order): each band entry gets its anchors' products in anchor order
+            a, b, offset = a[keep], b[keep], offset[keep]
+            self.pairs = (a, b, (3 - offset) * ncoef + B.indices[b])
+
+    def _normal_bands(self, w):
+        """Upper bands of B^T diag(w) B + penalty, as the sparse product gives them (see the class docstring)."""
+        B = self.basis
+        if self.pairs is None:   # rows of unequal length (never seen from design_matrix): the sparse way
+            normal = (B.T @ B.multiply(w[:, None])).tocsr() + self.penalty
+            bands = np.zeros((4, B.shape[1]))
+            for k in range(4):
+                bands[3 - k, k:] = normal.diagonal(k)
+            return bands
+        a, b, target = self.pairs
+        weighted = B.data * w[self.rows]                       # B.multiply(w[:, None])
+        summed = np.bincount(target, weights=B.data[a] * weighted[b], minlength=4 * B.shape[1])
+        return summed.reshape(4, -1) + self.penalty_bands
 
     def fit(self, y, w):
         from scipy.interpolate import BSpline
@@ -360,12 +398,9 @@ class _PSpline:
 
         # The normal equations are banded (bandwidth 3): solve them as such. Dense
         # LAPACK through a busy multi-threaded BLAS was 30x slower here (measured).
-        normal = (self.basis.T @ self.basis.multiply(w[:, None])).tocsr() + self.penalty
-        n = normal.shape[0]
-        bands = np.zeros((4, n))
-        for k in range(4):
-            bands[3 - k, k:] = normal.diagonal(k)
-        coef = solveh_banded(bands, self.basis.T @ (w * y))
+        B = self.basis
+        rhs = np.bincount(B.indices, weights=B.data * (w * y)[self.rows], minlength=B.shape[1])   # B^T (w y)
+        coef = solveh_banded(self._normal_bands(w), rhs)
         spline = BSpline(self.knots, coef, 3, extrapolate=True)
         return lambda xx: spline(np.clip(np.asarray(xx, float), self.lo, self.hi))
 

@@ -328,3 +328,31 @@ def test_light_normalisation_is_prepare_to_the_bit_on_library_stars(miles, jhc19
     for row in jhc_catalog[::30]:
         _classify_inputs(specan.read(jhc1984 / str(row["file"])), fwhm_in=13.0)   # JHC copies' FWHM, measured
     assert len(calls) >= 10
+
+
+def test_continuum_normal_equations_are_the_sparse_product_to_the_bit(kurucz_sun):
+    # The continuum spline sums its normal equations into their bands directly; they must be what
+    # scipy.sparse's B^T diag(w) B + penalty gives, bit for bit, so that prepare()'s output (and
+    # the shipped data made through it) does not move. Anchors: the Kurucz Sun's (rms-solar)
+    # window maxima at several window widths, and random ones.
+    from scipy.interpolate import BSpline
+    from scipy.linalg import solveh_banded
+
+    from specan.prepare import _PSpline, _window_maxima
+
+    w_sun, f_sun, _ = kurucz_sun
+    rng = np.random.default_rng(12)
+    cases = [_window_maxima(w_sun, f_sun, k) for k in (3, 7, 20)]
+    cases += [(np.sort(rng.uniform(3600.0, 9000.0, n)), rng.normal(1.0, 0.1, n)) for n in (40, 300, 900)]
+    for x, y in cases:
+        spline = _PSpline(x, lam=(300.0 / (2 * np.pi)) ** 4, knot_spacing=30.0)
+        assert spline.pairs is not None   # the fast path is the one tested
+        for w in (np.ones(x.size), np.where(rng.random(x.size) < 0.4, 0.005, 1.0)):
+            normal = (spline.basis.T @ spline.basis.multiply(w[:, None])).tocsr() + spline.penalty
+            bands = np.zeros((4, normal.shape[0]))
+            for k in range(4):
+                bands[3 - k, k:] = normal.diagonal(k)
+            assert np.array_equal(spline._normal_bands(w), bands)
+            coef = solveh_banded(bands, spline.basis.T @ (w * y))
+            sparse_way = BSpline(spline.knots, coef, 3)(np.clip(x, spline.lo, spline.hi))
+            assert np.array_equal(spline.fit(y, w)(x), sparse_way)
