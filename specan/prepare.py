@@ -237,9 +237,15 @@ def _lowered_for_noise(ay, e, k):
         return ay, sig
     n = (e.size // k) * k
     e = np.where(np.isfinite(e) & (e > 0), e, np.nan)
+    windows = e[:n].reshape(-1, k)
+    # only the windows with some noise (often few: on noiseless models nanmedian spent most of
+    # its time warning about the all-NaN ones; the others' medians are the same)
+    some = ~np.all(np.isnan(windows), axis=1)
+    sig_w = np.full(windows.shape[0], np.nan)
     with warnings.catch_warnings():
         warnings.simplefilter("ignore", RuntimeWarning)   # all-NaN windows
-        sig_w = np.nanmedian(e[:n].reshape(-1, k), axis=1)
+        if some.any():
+            sig_w[some] = np.nanmedian(windows[some], axis=1)
         if n < e.size:
             sig_w = np.append(sig_w, np.nanmedian(e[n:]))
     sig = np.where(np.isfinite(sig_w), sig_w, 0.0)
