@@ -244,6 +244,37 @@ def test_band_good_fraction_follows_the_mask():
     assert frac[0] == pytest.approx(1.0)
 
 
+def test_one_lattice_pass_gives_the_posterior_and_split_of_separate_passes(sun_spectrum):
+    # classify_criteria takes the whole's posterior and the halves' (composite flag) from one set
+    # of per-criterion terms; they must be the separate calls' to the bit. Inputs: the default
+    # calibration's 553 JHC and MILES standards' criteria (measured from the libraries by
+    # scripts/fit_default_calibration.py), with and without noise and with criteria missing, and
+    # the Kurucz Sun's (rms-solar).
+    from specan.classify import relations
+    from specan.classify.criteria import SIDES
+
+    cal = C.default_calibration()
+    fine, dof, tau = cal.lattice_model(), cal.settings["dof"], cal.tau_
+    sun = C.spectrum_criteria(sun_spectrum, cal.resolution, rv=0 * u.km / u.s)
+    rng = np.random.default_rng(12)
+    cases = [(sun["values"], sun["noise"])]
+    for st in cal.standards_[::4]:
+        x = np.array(st["criteria"], float)
+        cases.append((x, np.zeros(x.size)))
+        cases.append((x, np.abs(rng.normal(0.0, 0.02, x.size))))
+        cases.append((np.where(rng.random(x.size) < 0.3, np.nan, x), np.full(x.size, 0.01)))
+        # one half cut short (the classic blue range): the split is not measured
+        cases.append((np.where((SIDES == 1) & (rng.random(x.size) < 0.7), np.nan, x), np.zeros(x.size)))
+    splits = []
+    for x, noise in cases:
+        p, ll, z2, split = relations.posterior_and_split(x, noise, fine, dof, tau)
+        p0, ll0, z20 = relations.posterior(x, noise, fine, dof, tau, np.isfinite(x))
+        assert np.array_equal(p, p0) and np.array_equal(ll, ll0) and np.array_equal(z2, z20)
+        assert split == relations.split_distance(x, noise, fine, dof, tau)
+        splits.append(split)
+    assert sum(s is None for s in splits) > 50 and sum(s is not None for s in splits) > 100   # both paths seen
+
+
 def test_criteria_track_temperature(jhc_criteria):
     # Published behaviour of the MK criteria (Gray & Corbally 2009, from memory): the Balmer
     # lines peak in the A stars, Ca II K grows from A to K, TiO appears only in M stars.
