@@ -309,10 +309,11 @@ def _residuals(model, k, scaled, y, good, sigma, basis):
     return (y[good] - B @ c) * wts
 
 
-def _design_gradient(scaled):
-    """Derivatives of :func:`_design`'s row with respect to t, g and f: a (3, 10) array."""
-    t, g, f = scaled
-    return np.array([[0.0, 1.0, 0.0, 0.0, 2.0 * t, 0.0, 0.0, g, f, 0.0],
+def _design_and_gradient(scaled):
+    """:func:`_design`'s row at one point and its derivatives with respect to t, g and f: (4, 10)."""
+    t, g, f = (float(v) for v in scaled)
+    return np.array([[1.0, t, g, f, t * t, g * g, f * f, t * g, t * f, g * f],
+                     [0.0, 1.0, 0.0, 0.0, 2.0 * t, 0.0, 0.0, g, f, 0.0],
                      [0.0, 0.0, 1.0, 0.0, 0.0, 2.0 * g, 0.0, t, 0.0, f],
                      [0.0, 0.0, 0.0, 1.0, 0.0, 0.0, 2.0 * f, 0.0, t, g]])
 
@@ -327,7 +328,8 @@ class _ProjectedResiduals:
     analytic (the model is quadratic in the labels). A numerical Jacobian cost three residual
     evaluations per LM step (~40 per fit, about half of a classification's parameter time, measured).
     One (4, 10) x (10, n) product gives the model and its three derivatives; a thin QR of A gives
-    c, P_perp and A^+.
+    c, P_perp and A^+. The Jacobian is only formed when asked for (LM evaluates rejected trial
+    steps' residuals only).
     """
 
     def __init__(self, model, k, y, good, sigma, basis):
@@ -340,18 +342,12 @@ class _ProjectedResiduals:
     def _at(self, scaled):
         if self._x is not None and np.array_equal(scaled, self._x):
             return
-        from scipy.linalg import solve_triangular
-
-        rows = np.vstack([_design(scaled), _design_gradient(scaled)]) @ self.coef   # m, dm/dt, dm/dg, dm/df
-        m, dm = rows[0], rows[1:]
-        A = self.wbasis * m[:, None]
+        rows = _design_and_gradient(scaled) @ self.coef    # m, dm/dt, dm/dg, dm/df
+        A = self.wbasis * rows[0][:, None]
         Q, R = np.linalg.qr(A)
-        c = solve_triangular(R, Q.T @ self.z)
-        r = self.z - A @ c
-        dAc = dm * (self.wbasis @ c)                                 # dA_j c, (3, n)
-        first = dAc - (dAc @ Q) @ Q.T                                # P_perp dA_j c
-        second = Q @ solve_triangular(R, ((dm * r) @ self.wbasis).T, trans="T")    # (A^+)^T dA_j^T r, (n, 3)
-        self._x, self._r, self._jac = np.array(scaled, float), r, -(first.T + second)
+        c = _solve_upper(R, Q.T @ self.z)
+        self._x, self._r, self._jac = np.array(scaled, float), self.z - A @ c, None
+        self._parts = rows[1:], Q, R, c
 
     def residuals(self, scaled):
         self._at(scaled)
@@ -359,7 +355,21 @@ class _ProjectedResiduals:
 
     def jacobian(self, scaled):
         self._at(scaled)
+        if self._jac is None:
+            dm, Q, R, c = self._parts
+            r = self._r
+            dAc = dm * (self.wbasis @ c)                                          # dA_j c, (3, n)
+            first = dAc - (dAc @ Q) @ Q.T                                         # P_perp dA_j c
+            second = Q @ _solve_upper(R, ((dm * r) @ self.wbasis).T, trans="T")   # (A^+)^T dA_j^T r, (n, 3)
+            self._jac = -(first.T + second)
         return self._jac
+
+
+def _solve_upper(R, b, trans="N"):
+    """R^-1 b (or R^-T b) for the QR's small upper-triangular R (finite by construction: no check)."""
+    from scipy.linalg import solve_triangular
+
+    return solve_triangular(R, b, trans=trans, check_finite=False)
 
 
 #: The first guess's coarse grid in scaled labels, beside each node's temperature.

@@ -349,7 +349,6 @@ class _PSpline:
     """
 
     def __init__(self, x, lam, knot_spacing):
-        from scipy import sparse
         from scipy.interpolate import BSpline
 
         lo, hi = float(x[0]), float(x[-1])
@@ -358,18 +357,20 @@ class _PSpline:
         self.knots = lo + h * np.arange(-3, n_int + 4)
         self.basis = BSpline.design_matrix(np.clip(x, lo, hi), self.knots, 3).tocsr()
         ncoef = self.basis.shape[1]
-        # second differences of the coefficients, kept sparse: a dense (ncoef, ncoef) matrix
-        # grows with the square of the wavelength range (a model spectrum from 0.15 to 300
-        # microns asked for 74 GB)
-        d2 = sparse.diags([np.ones(ncoef - 2), -2.0 * np.ones(ncoef - 2), np.ones(ncoef - 2)], [0, 1, 2],
-                          shape=(ncoef - 2, ncoef))
-        self.penalty = ((lam / h**3) * (d2.T @ d2)).tocsr()
         self.lo, self.hi = lo, hi
-        # upper bands of the penalty (LAPACK's banded storage) and, per pair of stored basis
-        # entries of one anchor (columns j <= l <= j + 3), where their product goes in the bands
-        self.penalty_bands = np.zeros((4, ncoef))
-        for k in range(4):
-            self.penalty_bands[3 - k, k:] = self.penalty.diagonal(k)
+        # The penalty D2^T D2 (D2: second differences of the coefficients) straight in LAPACK's
+        # upper banded storage, bands[3 - k, j + k] = (D2^T D2)[j, j + k]: never a dense
+        # (ncoef, ncoef) matrix, which grows with the square of the wavelength range (a model
+        # spectrum from 0.15 to 300 microns asked for 74 GB). Its entries are small integers,
+        # exact in any order, times lam / h^3: what scipy.sparse's product gave, to the bit.
+        second = np.array([1.0, -2.0, 1.0])
+        counts = np.zeros((4, ncoef))
+        for i in range(3):
+            for j in range(i, 3):
+                counts[3 - (j - i), j:j + ncoef - 2] += second[i] * second[j]
+        self.penalty_bands = (lam / h**3) * counts
+        # per pair of stored basis entries of one anchor (columns j <= l <= j + 3), where their
+        # product goes in the bands
         B = self.basis
         per_row = np.diff(B.indptr)
         self.rows = np.repeat(np.arange(B.shape[0]), per_row)
@@ -388,11 +389,11 @@ class _PSpline:
         """Upper bands of B^T diag(w) B + penalty, as the sparse product gives them (see the class docstring)."""
         B = self.basis
         if self.pairs is None:   # rows of unequal length (never seen from design_matrix): the sparse way
-            normal = (B.T @ B.multiply(w[:, None])).tocsr() + self.penalty
+            normal = (B.T @ B.multiply(w[:, None])).tocsr()
             bands = np.zeros((4, B.shape[1]))
             for k in range(4):
                 bands[3 - k, k:] = normal.diagonal(k)
-            return bands
+            return bands + self.penalty_bands
         a, b, target = self.pairs
         weighted = B.data * w[self.rows]                       # B.multiply(w[:, None])
         summed = np.bincount(target, weights=B.data[a] * weighted[b], minlength=4 * B.shape[1])

@@ -335,6 +335,7 @@ def test_continuum_normal_equations_are_the_sparse_product_to_the_bit(kurucz_sun
     # scipy.sparse's B^T diag(w) B + penalty gives, bit for bit, so that prepare()'s output (and
     # the shipped data made through it) does not move. Anchors: the Kurucz Sun's (rms-solar)
     # window maxima at several window widths, and random ones.
+    from scipy import sparse
     from scipy.interpolate import BSpline
     from scipy.linalg import solveh_banded
 
@@ -345,10 +346,16 @@ def test_continuum_normal_equations_are_the_sparse_product_to_the_bit(kurucz_sun
     cases = [_window_maxima(w_sun, f_sun, k) for k in (3, 7, 20)]
     cases += [(np.sort(rng.uniform(3600.0, 9000.0, n)), rng.normal(1.0, 0.1, n)) for n in (40, 300, 900)]
     for x, y in cases:
-        spline = _PSpline(x, lam=(300.0 / (2 * np.pi)) ** 4, knot_spacing=30.0)
+        lam = (300.0 / (2 * np.pi)) ** 4
+        spline = _PSpline(x, lam=lam, knot_spacing=30.0)
         assert spline.pairs is not None   # the fast path is the one tested
+        ncoef = spline.basis.shape[1]
+        h = (float(x[-1]) - float(x[0])) / (ncoef - 3)    # the knot spacing, as the class computes it
+        d2 = sparse.diags([np.ones(ncoef - 2), -2.0 * np.ones(ncoef - 2), np.ones(ncoef - 2)], [0, 1, 2],
+                          shape=(ncoef - 2, ncoef))
+        penalty = ((lam / h**3) * (d2.T @ d2)).tocsr()
         for w in (np.ones(x.size), np.where(rng.random(x.size) < 0.4, 0.005, 1.0)):
-            normal = (spline.basis.T @ spline.basis.multiply(w[:, None])).tocsr() + spline.penalty
+            normal = (spline.basis.T @ spline.basis.multiply(w[:, None])).tocsr() + penalty
             bands = np.zeros((4, normal.shape[0]))
             for k in range(4):
                 bands[3 - k, k:] = normal.diagonal(k)

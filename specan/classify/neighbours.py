@@ -182,8 +182,14 @@ def on_grid(spectrum, rv=None, fwhm_in=None, resolving_power=None, notes=None, t
     return np.where(good, out, 0.0), good
 
 
+@functools.lru_cache(maxsize=1)   # the same for every star: made once (read only)
 def _basis():
-    return np.polynomial.legendre.legvander(np.linspace(-1.0, 1.0, wavelengths().size), POLY_DEGREE)
+    """Legendre basis on the comparison pixels, and its columns' pairwise products (n, K*K)."""
+    P = np.polynomial.legendre.legvander(np.linspace(-1.0, 1.0, wavelengths().size), POLY_DEGREE)
+    K = P.shape[1]
+    PP = (P[:, :, None] * P[:, None, :]).reshape(-1, K * K)
+    P.flags.writeable = PP.flags.writeable = False
+    return P, PP
 
 
 def mean_square_differences(flux, good, reference):
@@ -199,12 +205,11 @@ def mean_square_differences(flux, good, reference):
     msd, n : numpy.ndarray
         Mean squared residual per library star and the number of pixels compared.
     """
-    P = _basis()
+    P, PP = _basis()
     K = P.shape[1]
     w = np.asarray(good, float)
     y = np.where(good, flux, 0.0)
     R, M = reference.flux, reference.good_f
-    PP = (P[:, :, None] * P[:, None, :]).reshape(-1, K * K)
     G = (reference.flux_sq @ (PP * w[:, None])).reshape(-1, K, K)
     b = R @ (P * (w * y)[:, None])
     yy = M @ (w * y * y)
