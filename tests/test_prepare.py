@@ -363,3 +363,14 @@ def test_continuum_normal_equations_are_the_sparse_product_to_the_bit(kurucz_sun
             coef = solveh_banded(bands, spline.basis.T @ (w * y))
             sparse_way = BSpline(spline.knots, coef, 3)(np.clip(x, spline.lo, spline.hi))
             assert np.array_equal(spline.fit(y, w)(x), sparse_way)
+
+
+def test_row_nanmedian_is_numpys():
+    from specan.prepare import _row_nanmedian
+
+    rng = np.random.default_rng(12)
+    for k in (1, 2, 5, 7, 12):
+        a = rng.lognormal(size=(400, k))
+        a[rng.random(a.shape) < 0.5] = np.nan
+        a = a[~np.all(np.isnan(a), axis=1)]
+        assert np.array_equal(_row_nanmedian(a), np.nanmedian(a, axis=1))
