@@ -30,7 +30,7 @@ from typing import NamedTuple
 
 import astropy.units as u
 import numpy as np
-from scipy.optimize import least_squares
+from scipy.optimize import leastsq
 
 from .doppler import doppler_factor
 from .errors import AnalysisError
@@ -433,15 +433,18 @@ def fit_labels(model, flux, good, sigma=None):
     k = model.nearest(x)
     for _ in range(3):   # the node nearest the answer, until it settles
         fit = _ProjectedResiduals(model, k, y, good, np.hypot(sig0, model.scatter[k]), basis)
-        sol = least_squares(fit.residuals, x, jac=fit.jacobian, method="lm")
-        x = sol.x
+        # MINPACK's lmder (Levenberg-Marquardt) with least_squares(method="lm")'s tolerances and
+        # evaluation limit, called through leastsq: the same iterations without least_squares'
+        # wrapping of every call (a third of the fit's time, measured)
+        x = leastsq(fit.residuals, x, Dfun=fit.jacobian, ftol=1e-8, xtol=1e-8, gtol=1e-8, maxfev=300)[0]
         k_new = model.nearest(x)
         if k_new == k:
             break
         k = k_new
+    r, jac = fit.residuals(x), fit.jacobian(x)
     dof = max(int(good.sum()) - 3 - (POLY_DEGREE + 1), 1)
-    chi2 = 2.0 * sol.cost / dof
-    cov = np.linalg.pinv(sol.jac.T @ sol.jac) * max(chi2, 1.0)
+    chi2 = float(np.dot(r, r)) / dof
+    cov = np.linalg.pinv(jac.T @ jac) * max(chi2, 1.0)
     err_scaled = np.sqrt(np.clip(np.diag(cov), 0.0, None)) * SCALE_WIDTH
     labels = _unscale(x)
     errors = np.array([labels[0] * math.log(10.0) * err_scaled[0], err_scaled[1], err_scaled[2]])
