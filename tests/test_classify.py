@@ -244,6 +244,32 @@ def test_band_good_fraction_follows_the_mask():
     assert frac[0] == pytest.approx(1.0)
 
 
+def test_depths_at_once_are_the_loop_over_criteria(kurucz_sun):
+    # _depths works on all criteria at once (padded feature table); it must give what a loop over
+    # the criteria gives, to the bit: band means of the Kurucz Sun (rms-solar) at several tilts,
+    # and random ones with missing, zero and negative bands.
+    from specan.classify import criteria as cr
+
+    def loop(mean):
+        depth = np.empty(len(cr.CRITERIA))
+        for i, feat in enumerate(cr._FEAT):
+            xb, xr = cr._BAND_MID[cr._BLUE[i]], cr._BAND_MID[cr._RED[i]]
+            cont = mean[cr._BLUE[i]] + (mean[cr._RED[i]] - mean[cr._BLUE[i]]) * (cr._BAND_MID[feat] - xb) / (xr - xb)
+            widths = cr._BANDS[feat, 1] - cr._BANDS[feat, 0]
+            depth[i] = 1.0 - np.sum(widths * mean[feat] / cont) / widths.sum() if np.all(cont > 0) else np.nan
+        return depth
+
+    w, f, _ = kurucz_sun
+    means = [cr.band_means(w, f * (w / 5000.0) ** p, np.ones(w.size, bool), cr._BANDS)[0] for p in (-2, 0, 3)]
+    rng = np.random.default_rng(12)
+    for _ in range(500):
+        m = rng.lognormal(0.0, 0.3, cr._BANDS.shape[0])
+        r = rng.random(m.size)
+        means.append(np.where(r < 0.05, np.nan, np.where(r < 0.08, -0.1, np.where(r < 0.1, 0.0, m))))
+    for mean in means:
+        assert np.array_equal(cr._depths(mean), loop(mean), equal_nan=True)
+
+
 def test_one_lattice_pass_gives_the_posterior_and_split_of_separate_passes(sun_spectrum):
     # classify_criteria takes the whole's posterior and the halves' (composite flag) from one set
     # of per-criterion terms; they must be the separate calls' to the bit. Inputs: the default
