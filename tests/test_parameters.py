@@ -63,9 +63,13 @@ def test_batched_first_guess_is_the_grid_point_of_least_chi_square(kurucz_sun):
     # The first guess solves every grid point's polynomial at once (normal equations); it must pick
     # the point the one-at-a-time least-squares residuals pick. Kurucz solar flux (rms-solar) as the
     # input, with a third of its pixels unusable.
-    model = parameters.default_model()
     flux, good, _ = parameters.on_model_grid(_sun(kurucz_sun))
-    good = good & (np.arange(good.size) % 3 != 0)
+    _first_guess_is_the_loops(flux, good & (np.arange(good.size) % 3 != 0))
+    _first_guess_is_the_loops(flux, good)   # all pixels usable: the model's coefficients are not copied
+
+
+def _first_guess_is_the_loops(flux, good):
+    model = parameters.default_model()
     basis = parameters._poly_basis(flux.size)
     sigma = np.nanmedian(model.scatter, axis=0)
     best = None
@@ -78,6 +82,16 @@ def test_batched_first_guess_is_the_grid_point_of_least_chi_square(kurucz_sun):
                 if best is None or c2 < best[0]:
                     best = (c2, x)
     np.testing.assert_array_equal(parameters._first_guess(model, flux, good, sigma, basis), best[1])
+
+
+@pytest.mark.reference
+def test_batched_first_guess_on_miles_stars(miles):
+    import specan
+    from astropy.table import Table
+
+    for row in Table.read(miles / "catalog.csv", format="ascii.csv")[::90]:
+        flux, good, _ = parameters.on_model_grid(specan.read(miles / str(row["file"]), medium="air"))
+        _first_guess_is_the_loops(flux, good)
 
 
 def test_projected_jacobian_is_the_derivative_of_the_residuals(kurucz_sun):
