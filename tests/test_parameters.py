@@ -86,8 +86,9 @@ def _first_guess_is_the_loops(flux, good):
 
 @pytest.mark.reference
 def test_batched_first_guess_on_miles_stars(miles):
-    import specan
     from astropy.table import Table
+
+    import specan
 
     for row in Table.read(miles / "catalog.csv", format="ascii.csv")[::90]:
         flux, good, _ = parameters.on_model_grid(specan.read(miles / str(row["file"]), medium="air"))
@@ -105,7 +106,7 @@ def test_projected_jacobian_is_the_derivative_of_the_residuals(kurucz_sun):
     basis = parameters._poly_basis(flux.size)
     for x in (np.array([0.3, 0.5, -0.2]), np.array([-0.5, -1.0, 0.4]), np.array([1.2, -0.3, 0.9])):
         k = model.nearest(x)
-        plain = lambda p, k=k: parameters._residuals(model, k, p, flux, good, model.scatter[k], basis)  # noqa: E731
+        plain = lambda p, k=k: parameters._residuals(model, k, p, flux, good, model.scatter[k], basis)
         fit = parameters._ProjectedResiduals(model, k, flux, good, model.scatter[k], basis)
         np.testing.assert_allclose(fit.residuals(x), plain(x), rtol=0, atol=1e-10 * np.abs(plain(x)).max())
         numerical = approx_derivative(plain, x, method="3-point")
@@ -157,8 +158,9 @@ def test_fit_is_the_one_a_numerical_jacobian_gives_on_the_kurucz_sun(kurucz_sun)
 
 @pytest.mark.reference
 def test_fit_is_the_one_a_numerical_jacobian_gives_on_miles_stars(miles):
-    import specan
     from astropy.table import Table
+
+    import specan
 
     model = parameters.default_model()
     for row in Table.read(miles / "catalog.csv", format="ascii.csv")[::25]:
