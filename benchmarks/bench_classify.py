@@ -1,23 +1,34 @@
-"""Benchmark: ms per spectrum to MK-classify with the default calibration.
+"""Benchmark: ms per spectrum to MK-classify with the default calibration, whole and by part.
 
 Input: Kurucz's model solar flux carried by ``rms-solar`` (3000-10000 A, vacuum,
-R = 2000, ~4,800 pixels), S/N stated as 500. Three timings, median of repeats:
+R = 2000, ~4,800 pixels), S/N stated as 500. Timings, median of repeats:
 
 - ``classify``: the whole call, velocity measured with specan.velocity and removed;
 - ``classify, rv given``: velocity known (what a pipeline that already measured it pays);
 - ``classify, rv given, no library comparison``: the same without the comparison with the
   library stars (``neighbours=False``), so its cost shows;
-- ``library comparison``: the spectrum put on the comparison's footing and compared with every
-  library star (:func:`specan.classify.neighbours.measure`), and the comparison alone
-  (one set of matrix products over the 459 stars);
-- ``criteria -> type``: the likelihood on the (code, class) lattice alone.
+- the parts of ``classify, rv given``: the criteria measured (``spectrum_criteria``), the
+  criteria -> type posterior and flags (``classify_criteria``), the spectrum on the parameter
+  model's pixels (``parameters.on_model_grid``: rest, smoothed, normalised), the label fit
+  (``parameters.fit_labels``), the spectrum on the library comparison's pixels
+  (``neighbours.on_grid``) and the comparison with the 459 library stars (``neighbours.compare``).
 
 If the reference library is present, also the time to fit a calibration on its
 criteria (94 standards, with the internal 5-fold cross-validation).
+
 Run: ``python benchmarks/bench_classify.py [repeats]``.
+
+Side by side with another checkout (e.g. an older commit, ``git archive <commit> | tar -x -C DIR``):
+``python benchmarks/bench_classify.py [repeats] --before DIR [--rounds N]`` runs this same harness
+on DIR's ``specan`` and on this one's, alternately, ``N`` rounds each (default 3), and prints the
+median over the rounds of each figure, before and after, with their ratio. Set
+``OPENBLAS_NUM_THREADS=1`` for figures comparable with the README's.
 """
 
 import importlib
+import json
+import os
+import subprocess
 import sys
 import time
 from pathlib import Path
@@ -30,6 +41,8 @@ from specan.obsinfo import ObsInfo
 
 C = importlib.import_module("specan.classify")
 ROOT = Path(__file__).resolve().parents[1]
+#: Issue 12's target for the classify stage with the velocity given (ms per spectrum, one core).
+TARGET_MS = 10.0
 
 
 def sun():
@@ -53,25 +66,64 @@ def timed(fn, repeats):
     return 1e3 * float(np.median(t)), 1e3 * float(np.min(t))
 
 
+def rows(spec):
+    """(name, callable) of every timing, in print order."""
+    from specan import parameters
+    from specan.classify import neighbours
+
+    rv = 0 * u.km / u.s
+    cal = C.default_calibration()
+    model = parameters.default_model()
+    meas = C.spectrum_criteria(spec, cal.resolution, rv=rv)
+    flux, good = neighbours.on_grid(spec, rv=rv)
+    on_model = parameters.on_model_grid(spec, rv=rv)
+    return [
+        ("classify (velocity measured)", lambda: C.classify(spec)),
+        ("classify, rv given", lambda: C.classify(spec, rv=rv)),
+        ("  ... no library comparison", lambda: C.classify(spec, rv=rv, neighbours=False)),
+        ("  criteria measured", lambda: C.spectrum_criteria(spec, cal.resolution, rv=rv)),
+        ("  criteria -> type and flags", lambda: cal.classify_criteria(meas["values"], meas["noise"], meas["snr"])),
+        ("  parameters: model pixels", lambda: parameters.on_model_grid(spec, rv=rv)),
+        ("  parameters: label fit", lambda: parameters.fit_labels(model, on_model.flux, on_model.good)),
+        ("  library: comparison pixels", lambda: neighbours.on_grid(spec, rv=rv)),
+        ("  library: comparison", lambda: neighbours.compare(flux, good)),
+    ]
+
+
+def measure_all(repeats):
+    """{name: (median ms, best ms)} of every row."""
+    return {name: timed(fn, repeats) for name, fn in rows(sun())}
+
+
+def side_by_side(repeats, before, rounds):
+    """Run this harness on ``before``'s specan and on this checkout's, alternately; print both."""
+    runs = {"before": [], "after": []}
+    for _ in range(rounds):
+        for label, path in (("before", Path(before).resolve()), ("after", ROOT)):
+            env = dict(os.environ, PYTHONPATH=str(path))
+            out = subprocess.run([sys.executable, __file__, str(repeats), "--json"], env=env, check=True,
+                                 capture_output=True, text=True).stdout
+            runs[label].append(json.loads(out.strip().splitlines()[-1]))
+    print(f"side by side: before = {Path(before).resolve()}, after = {ROOT}; {rounds} rounds of {repeats} repeats, "
+          "median over the rounds of each round's median")
+    print(f"  {'ms per spectrum':32s} {'before':>8s} {'after':>8s} {'ratio':>7s}")
+    for name in runs["after"][0]:
+        b = float(np.median([r[name]["median"] for r in runs["before"] if name in r]))
+        a = float(np.median([r[name]["median"] for r in runs["after"]]))
+        print(f"  {name:32s} {b:8.2f} {a:8.2f} {b / a:6.1f}x")
+    a = float(np.median([r["classify, rv given"]["median"] for r in runs["after"]]))
+    print(f"  target: classify, rv given <= {TARGET_MS:g} ms: {'met' if a <= TARGET_MS else 'not met'} ({a:.1f} ms)")
+
+
 def main(repeats=20):
     spec = sun()
     cal = C.default_calibration()
-    from specan.classify import neighbours
-
-    meas = C.spectrum_criteria(spec, cal.resolution, rv=0 * u.km / u.s)
-    flux, good = neighbours.on_grid(spec, rv=0 * u.km / u.s)
-    rows = [
-        ("classify (velocity measured)", lambda: C.classify(spec)),
-        ("classify, rv given", lambda: C.classify(spec, rv=0 * u.km / u.s)),
-        ("  ... no library comparison", lambda: C.classify(spec, rv=0 * u.km / u.s, neighbours=False)),
-        ("library comparison", lambda: neighbours.measure(spec, rv=0 * u.km / u.s)),
-        ("  ... comparison alone", lambda: neighbours.compare(flux, good)),
-        ("criteria -> type only", lambda: cal.classify_criteria(meas["values"], meas["noise"], meas["snr"])),
-    ]
     print(f"{spec.flux.size} pixels, default calibration ({len(cal.standards_)} standards), {repeats} repeats")
-    for name, fn in rows:
+    for name, fn in rows(spec):
         med, best = timed(fn, repeats)
-        print(f"  {name:32s} {med:8.1f} ms per spectrum (median; best {best:.1f})")
+        print(f"  {name:32s} {med:8.2f} ms per spectrum (median; best {best:.2f})")
+        if name == "classify, rv given":
+            print(f"  {'  target <= %g ms' % TARGET_MS:32s} {'met' if med <= TARGET_MS else 'not met'}")
     lib = ROOT.parent / "shared" / "reference" / "jhc1984" / "catalog.csv"
     if lib.is_file():
         X = np.array([s["criteria"] for s in cal.standards_])
@@ -81,4 +133,12 @@ def main(repeats=20):
 
 
 if __name__ == "__main__":
-    main(int(sys.argv[1]) if len(sys.argv) > 1 else 20)
+    args = sys.argv[1:]
+    n = int(args[0]) if args and args[0].isdigit() else 20
+    if "--json" in args:
+        print(json.dumps({k: {"median": m, "best": b} for k, (m, b) in measure_all(n).items()}))
+    elif "--before" in args:
+        rounds = int(args[args.index("--rounds") + 1]) if "--rounds" in args else 3
+        side_by_side(n, args[args.index("--before") + 1], rounds)
+    else:
+        main(n)

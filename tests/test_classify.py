@@ -244,6 +244,63 @@ def test_band_good_fraction_follows_the_mask():
     assert frac[0] == pytest.approx(1.0)
 
 
+def test_depths_at_once_are_the_loop_over_criteria(kurucz_sun):
+    # _depths works on all criteria at once (padded feature table); it must give what a loop over
+    # the criteria gives, to the bit: band means of the Kurucz Sun (rms-solar) at several tilts,
+    # and random ones with missing, zero and negative bands.
+    from specan.classify import criteria as cr
+
+    def loop(mean):
+        depth = np.empty(len(cr.CRITERIA))
+        for i, feat in enumerate(cr._FEAT):
+            xb, xr = cr._BAND_MID[cr._BLUE[i]], cr._BAND_MID[cr._RED[i]]
+            cont = mean[cr._BLUE[i]] + (mean[cr._RED[i]] - mean[cr._BLUE[i]]) * (cr._BAND_MID[feat] - xb) / (xr - xb)
+            widths = cr._BANDS[feat, 1] - cr._BANDS[feat, 0]
+            depth[i] = 1.0 - np.sum(widths * mean[feat] / cont) / widths.sum() if np.all(cont > 0) else np.nan
+        return depth
+
+    w, f, _ = kurucz_sun
+    means = [cr.band_means(w, f * (w / 5000.0) ** p, np.ones(w.size, bool), cr._BANDS)[0] for p in (-2, 0, 3)]
+    rng = np.random.default_rng(12)
+    for _ in range(500):
+        m = rng.lognormal(0.0, 0.3, cr._BANDS.shape[0])
+        r = rng.random(m.size)
+        means.append(np.where(r < 0.05, np.nan, np.where(r < 0.08, -0.1, np.where(r < 0.1, 0.0, m))))
+    for mean in means:
+        assert np.array_equal(cr._depths(mean), loop(mean), equal_nan=True)
+
+
+def test_one_lattice_pass_gives_the_posterior_and_split_of_separate_passes(sun_spectrum):
+    # classify_criteria takes the whole's posterior and the halves' (composite flag) from one set
+    # of per-criterion terms; they must be the separate calls' to the bit. Inputs: the default
+    # calibration's 553 JHC and MILES standards' criteria (measured from the libraries by
+    # scripts/fit_default_calibration.py), with and without noise and with criteria missing, and
+    # the Kurucz Sun's (rms-solar).
+    from specan.classify import relations
+    from specan.classify.criteria import SIDES
+
+    cal = C.default_calibration()
+    fine, dof, tau = cal.lattice_model(), cal.settings["dof"], cal.tau_
+    sun = C.spectrum_criteria(sun_spectrum, cal.resolution, rv=0 * u.km / u.s)
+    rng = np.random.default_rng(12)
+    cases = [(sun["values"], sun["noise"])]
+    for st in cal.standards_[::4]:
+        x = np.array(st["criteria"], float)
+        cases.append((x, np.zeros(x.size)))
+        cases.append((x, np.abs(rng.normal(0.0, 0.02, x.size))))
+        cases.append((np.where(rng.random(x.size) < 0.3, np.nan, x), np.full(x.size, 0.01)))
+        # one half cut short (the classic blue range): the split is not measured
+        cases.append((np.where((SIDES == 1) & (rng.random(x.size) < 0.7), np.nan, x), np.zeros(x.size)))
+    splits = []
+    for x, noise in cases:
+        p, ll, z2, split = relations.posterior_and_split(x, noise, fine, dof, tau)
+        p0, ll0, z20 = relations.posterior(x, noise, fine, dof, tau, np.isfinite(x))
+        assert np.array_equal(p, p0) and np.array_equal(ll, ll0) and np.array_equal(z2, z20)
+        assert split == relations.split_distance(x, noise, fine, dof, tau)
+        splits.append(split)
+    assert sum(s is None for s in splits) > 50 and sum(s is not None for s in splits) > 100   # both paths seen
+
+
 def test_criteria_track_temperature(jhc_criteria):
     # Published behaviour of the MK criteria (Gray & Corbally 2009, from memory): the Balmer
     # lines peak in the A stars, Ca II K grows from A to K, TiO appears only in M stars.

@@ -271,3 +271,106 @@ def test_resampled_noise_falls_back_to_dersnr():
     est = flux_noise(np.interp(x[:-1] + 0.5, x, y))
     assert "DER_SNR" in est.method
     assert est.snr == pytest.approx(100.0 * np.sqrt(2.0), rel=0.15)   # per-pixel: 0.01 / sqrt(2)
+
+
+# ---------------------------------------------------------------------------
+# The light path of the package's own resampled copies (parameters, library comparison)
+# ---------------------------------------------------------------------------
+def _checked_light_path(monkeypatch):
+    """Make every normalise_arrays call also run prepare() on a Spectrum of the same arrays and compare.
+
+    Returns the list of the calls' pixel counts (so a test can see the callers went through it).
+    """
+    import specan.prepare as prep
+
+    light = prep.normalise_arrays
+    calls = []
+
+    def checked(wave, flux, mask=None, telluric=True, medium="air"):
+        out, bad = light(wave, flux, mask, telluric, medium)
+        carrier = Spectrum(flux=np.asarray(flux) * u.dimensionless_unscaled, spectral_axis=np.asarray(wave) * u.AA,
+                           mask=mask, meta={"specan": ObsInfo(medium=medium, medium_assumed=False)})
+        full = prep.prepare(carrier, telluric=telluric)
+        # bit for bit: the shipped parameter model and library set were made through prepare()
+        assert np.array_equal(out, full.flux.value, equal_nan=True)
+        assert np.array_equal(bad, full.mask)
+        calls.append(out.size)
+        return out, bad
+
+    monkeypatch.setattr(prep, "normalise_arrays", checked)
+    return calls
+
+
+def _classify_inputs(spectrum, **kw):
+    from specan import parameters
+    from specan.classify import neighbours
+
+    parameters.on_model_grid(spectrum, rv=0 * u.km / u.s, **kw)
+    neighbours.on_grid(spectrum, rv=0 * u.km / u.s, **kw)
+
+
+def test_light_normalisation_is_prepare_to_the_bit_on_the_kurucz_sun(kurucz_sun, monkeypatch):
+    w, f, _ = kurucz_sun
+    calls = _checked_light_path(monkeypatch)
+    for r in (2000.0, 800.0):
+        info = ObsInfo(medium="vacuum", medium_assumed=False, resolving_power=r)
+        _classify_inputs(Spectrum(flux=f * u.dimensionless_unscaled, spectral_axis=w * u.AA, meta={"specan": info}))
+    assert len(calls) == 4
+
+
+@pytest.mark.reference
+def test_light_normalisation_is_prepare_to_the_bit_on_library_stars(miles, jhc1984, jhc_catalog, monkeypatch):
+    from astropy.table import Table
+
+    calls = _checked_light_path(monkeypatch)
+    for row in Table.read(miles / "catalog.csv", format="ascii.csv")[::60]:
+        _classify_inputs(specan.read(miles / str(row["file"]), medium="air"))
+    for row in jhc_catalog[::30]:
+        _classify_inputs(specan.read(jhc1984 / str(row["file"])), fwhm_in=13.0)   # JHC copies' FWHM, measured
+    assert len(calls) >= 10
+
+
+def test_continuum_normal_equations_are_the_sparse_product_to_the_bit(kurucz_sun):
+    # The continuum spline sums its normal equations into their bands directly; they must be what
+    # scipy.sparse's B^T diag(w) B + penalty gives, bit for bit, so that prepare()'s output (and
+    # the shipped data made through it) does not move. Anchors: the Kurucz Sun's (rms-solar)
+    # window maxima at several window widths, and random ones.
+    from scipy import sparse
+    from scipy.interpolate import BSpline
+    from scipy.linalg import solveh_banded
+
+    from specan.prepare import _PSpline, _window_maxima
+
+    w_sun, f_sun, _ = kurucz_sun
+    rng = np.random.default_rng(12)
+    cases = [_window_maxima(w_sun, f_sun, k) for k in (3, 7, 20)]
+    cases += [(np.sort(rng.uniform(3600.0, 9000.0, n)), rng.normal(1.0, 0.1, n)) for n in (40, 300, 900)]
+    for x, y in cases:
+        lam = (300.0 / (2 * np.pi)) ** 4
+        spline = _PSpline(x, lam=lam, knot_spacing=30.0)
+        assert spline.pairs is not None   # the fast path is the one tested
+        ncoef = spline.basis.shape[1]
+        h = (float(x[-1]) - float(x[0])) / (ncoef - 3)    # the knot spacing, as the class computes it
+        d2 = sparse.diags([np.ones(ncoef - 2), -2.0 * np.ones(ncoef - 2), np.ones(ncoef - 2)], [0, 1, 2],
+                          shape=(ncoef - 2, ncoef))
+        penalty = ((lam / h**3) * (d2.T @ d2)).tocsr()
+        for w in (np.ones(x.size), np.where(rng.random(x.size) < 0.4, 0.005, 1.0)):
+            normal = (spline.basis.T @ spline.basis.multiply(w[:, None])).tocsr() + penalty
+            bands = np.zeros((4, normal.shape[0]))
+            for k in range(4):
+                bands[3 - k, k:] = normal.diagonal(k)
+            assert np.array_equal(spline._normal_bands(w), bands)
+            coef = solveh_banded(bands, spline.basis.T @ (w * y))
+            sparse_way = BSpline(spline.knots, coef, 3)(np.clip(x, spline.lo, spline.hi))
+            assert np.array_equal(spline.fit(y, w)(x), sparse_way)
+
+
+def test_row_nanmedian_is_numpys():
+    from specan.prepare import _row_nanmedian
+
+    rng = np.random.default_rng(12)
+    for k in (1, 2, 5, 7, 12):
+        a = rng.lognormal(size=(400, k))
+        a[rng.random(a.shape) < 0.5] = np.nan
+        a = a[~np.all(np.isnan(a), axis=1)]
+        assert np.array_equal(_row_nanmedian(a), np.nanmedian(a, axis=1))

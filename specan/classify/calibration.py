@@ -25,7 +25,7 @@ from .atmosphere import atmosphere_columns, gravity_agreement, measure_atmospher
 from .criteria import CRITERIA, EMISSION_SENSITIVE, criteria_names, definitions
 from .crossval import cross_validate
 from .measure import spectrum_criteria
-from .relations import LUMS, class_means, code_grid, fine_model, fit_model, fit_quality, posterior, split_distance
+from .relations import LUMS, code_grid, fine_model, fit_model, fit_quality, posterior_and_split
 from .verdict import criteria_table, nearest_standards, read_posterior, teff_estimate
 
 __all__ = ["Calibration", "FORMAT_NAME", "FORMAT_VERSION", "parse_labels"]
@@ -240,12 +240,13 @@ class Calibration:
         """
         fine = self.lattice_model()
         x, noise, ok = _usable_criteria(values, noise)
-        p, ll, z2 = posterior(x, noise, fine, self.settings["dof"], self.tau_, ok)
+        # ok is np.isfinite(x): the whole's posterior and the halves' (the composite flag's) in one pass
+        p, ll, z2, split = posterior_and_split(x, noise, fine, self.settings["dof"], self.tau_)
         type_weight = None if neighbours is None else neighbours.type_likelihood(fine["grid"])
         est = read_posterior(p, ll, fine["grid"], self.tau_class_, class_weight, type_weight)
         quality = fit_quality(z2, fine["weights"], ok, est.code_index, est.class_index)
-        model = class_means(fine["mean"], fine["offsets"], np.ones(len(x), bool))[est.code_index, est.class_index]
-        raised = self._flags(x, noise, ok, snr, est, quality, model)
+        model = fine["class_means"][est.code_index, est.class_index].copy()
+        raised = self._flags(x, noise, ok, snr, est, quality, model, split)
         teff, teff_err = teff_estimate(est.code, est.code_err, est.class_prob)
         return {
             "sptype": est.sptype, "lumclass": est.lumclass, "mk": f"{est.sptype} {est.lumclass}",
@@ -260,10 +261,12 @@ class Calibration:
             "library_neighbours": [] if neighbours is None else neighbours.named(),
         }
 
-    def _flags(self, x, noise, ok, snr, est, quality, model):
-        """The (flag, note) pairs raised for criteria ``x`` read as ``est``, in :data:`FLAGS` order."""
+    def _flags(self, x, noise, ok, snr, est, quality, model, split):
+        """The (flag, note) pairs raised for criteria ``x`` read as ``est``, in :data:`FLAGS` order.
+
+        ``split``: the blue and red halves' code difference (:func:`specan.classify.relations.split_distance`).
+        """
         fine, limits = self.lattice_model(), self.limits_
-        split = split_distance(x, noise, fine, self.settings["dof"], self.tau_)
         return (flags.low_snr(snr)
                 + flags.out_of_range(int(ok.sum()), len(x), est.code, fine["grid"], quality, limits["quality_p90"])
                 + flags.poor_fit(quality, limits["quality_p975"], est.sptype, est.lumclass)

@@ -332,21 +332,38 @@ def band_means(wave, flux, good, bands):
     return mean, frac
 
 
+def _feature_table():
+    """Feature bands of every depth criterion as a padded (criteria, most bands) table.
+
+    Returns the band indices (padding: the criterion's first band again), which entries are
+    real, and the widths (0 for padding), so that :func:`_depths` works on all criteria at once.
+    """
+    most = max(len(f) for f in _FEAT)
+    idx = np.array([list(f) + [f[0]] * (most - len(f)) for f in _FEAT], int)
+    real = np.array([[True] * len(f) + [False] * (most - len(f)) for f in _FEAT])
+    widths = np.where(real, _BANDS[idx, 1] - _BANDS[idx, 0], 0.0)
+    return idx, real, widths
+
+
+_FEAT_IDX, _FEAT_REAL, _FEAT_WIDTHS = _feature_table()
+
+
 def _depths(mean):
-    """Depth of every depth criterion from the mean flux of every band (NaN where undefined)."""
-    fb, fr = mean[_BLUE], mean[_RED]
-    xb, xr = _BAND_MID[_BLUE], _BAND_MID[_RED]
-    depth = np.empty(len(CRITERIA))
-    for i, feat in enumerate(_FEAT):
-        # pseudo-continuum at each feature band's centre, then the band-width-weighted mean
-        xm = _BAND_MID[feat]
-        cont = fb[i] + (fr[i] - fb[i]) * (xm - xb[i]) / (xr[i] - xb[i])
-        widths = _BANDS[feat, 1] - _BANDS[feat, 0]
-        if np.all(cont > 0):
-            depth[i] = 1.0 - np.sum(widths * mean[feat] / cont) / widths.sum()
-        else:   # no positive flux beside the feature (a zero or sky-subtracted spectrum): undefined
-            depth[i] = np.nan
-    return depth
+    """Depth of every depth criterion from the mean flux of every band (NaN where undefined).
+
+    All criteria at once on the padded feature table; padding adds exact zeros after the
+    real bands, so each sum is the one a loop over the criteria made, to the bit (a loop took
+    a third of the criteria's measuring time, measured).
+    """
+    fb, fr = mean[_BLUE][:, None], mean[_RED][:, None]
+    xb, xr = _BAND_MID[_BLUE][:, None], _BAND_MID[_RED][:, None]
+    # pseudo-continuum at each feature band's centre, then the band-width-weighted mean
+    cont = fb + (fr - fb) * (_BAND_MID[_FEAT_IDX] - xb) / (xr - xb)
+    with np.errstate(divide="ignore", invalid="ignore"):
+        ratio = np.where(_FEAT_REAL, _FEAT_WIDTHS * mean[_FEAT_IDX] / cont, 0.0)
+    depth = 1.0 - np.sum(ratio, axis=1) / np.sum(_FEAT_WIDTHS, axis=1)
+    # no positive flux beside the feature (a zero or sky-subtracted spectrum): undefined
+    return np.where(np.all(cont > 0, axis=1), depth, np.nan)
 
 
 def _noise(resid, snr, pixel):

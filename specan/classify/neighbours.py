@@ -35,7 +35,7 @@ import numpy as np
 
 from ..doppler import doppler_factor
 from ..errors import AnalysisError
-from ..obsinfo import META_KEY, ObsInfo, get_info, wavelength_in
+from ..obsinfo import get_info, wavelength_in
 from ..resolution import smooth_to_fwhm
 
 __all__ = ["REFERENCE_FILE", "FWHM", "POLY_DEGREE", "NEIGHBOURS", "WIDTH", "CODE_SIGMA", "SHOWN",
@@ -145,9 +145,7 @@ def on_grid(spectrum, rv=None, fwhm_in=None, resolving_power=None, notes=None, t
     flux, good : numpy.ndarray
         Normalised flux and usable pixels on :func:`wavelengths`.
     """
-    from specutils import Spectrum
-
-    from ..prepare import prepare
+    from ..prepare import normalise_arrays
 
     notes = notes if notes is not None else []
     info = get_info(spectrum)
@@ -177,17 +175,21 @@ def on_grid(spectrum, rv=None, fwhm_in=None, resolving_power=None, notes=None, t
     ok = inside & (np.interp(grid, fine, fine_good.astype(float)) > 0.99) & (on > 0)
     if ok.sum() < 20:
         raise AnalysisError("too few usable pixels on the library comparison's wavelengths", info.path)
-    carrier = Spectrum(flux=np.where(ok, on, 1.0) * u.dimensionless_unscaled, spectral_axis=grid * u.AA, mask=~ok,
-                       meta={META_KEY: ObsInfo(medium="air", medium_assumed=False,
-                                               resolving_power=float(np.mean(WAVE_RANGE)) / FWHM)})
-    normed = prepare(carrier, telluric=telluric)
-    out = np.asarray(normed.flux.value, float)
-    good = ok & np.isfinite(out) & ~np.asarray(normed.mask, bool)
+    # prepare()'s normalisation without its S/N and Spectrum objects: the same flux to the bit
+    # (tests/test_classify_neighbours.py), as the shipped library stars were normalised
+    out, bad = normalise_arrays(grid, np.where(ok, on, 1.0), ~ok, telluric=telluric)
+    good = ok & np.isfinite(out) & ~bad
     return np.where(good, out, 0.0), good
 
 
+@functools.lru_cache(maxsize=1)   # the same for every star: made once (read only)
 def _basis():
-    return np.polynomial.legendre.legvander(np.linspace(-1.0, 1.0, wavelengths().size), POLY_DEGREE)
+    """Legendre basis on the comparison pixels, and its columns' pairwise products (n, K*K)."""
+    P = np.polynomial.legendre.legvander(np.linspace(-1.0, 1.0, wavelengths().size), POLY_DEGREE)
+    K = P.shape[1]
+    PP = (P[:, :, None] * P[:, None, :]).reshape(-1, K * K)
+    P.flags.writeable = PP.flags.writeable = False
+    return P, PP
 
 
 def mean_square_differences(flux, good, reference):
@@ -203,12 +205,11 @@ def mean_square_differences(flux, good, reference):
     msd, n : numpy.ndarray
         Mean squared residual per library star and the number of pixels compared.
     """
-    P = _basis()
+    P, PP = _basis()
     K = P.shape[1]
     w = np.asarray(good, float)
     y = np.where(good, flux, 0.0)
     R, M = reference.flux, reference.good_f
-    PP = (P[:, :, None] * P[:, None, :]).reshape(-1, K * K)
     G = (reference.flux_sq @ (PP * w[:, None])).reshape(-1, K, K)
     b = R @ (P * (w * y)[:, None])
     yy = M @ (w * y * y)

@@ -30,6 +30,7 @@ __all__ = [
     "class_means",
     "loglike",
     "posterior",
+    "posterior_and_split",
     "summarise",
     "fit_quality",
     "split_distance",
@@ -183,9 +184,13 @@ def fine_model(model, scale_sigma=0.0):
     """The model interpolated onto a finer grid of codes (the classification lattice)."""
     g = model["grid"]
     fg = np.arange(g[0], g[-1] + 1e-9, _FINE_STEP)
-    return {"grid": fg, "mean": _interp_rows(fg, g, model["mean"]),
+    fine = {"grid": fg, "mean": _interp_rows(fg, g, model["mean"]),
             "offsets": _interp_rows(fg, g, model["offsets"]), "scatter": _interp_rows(fg, g, model["scatter"]),
             "weights": model["weights"], "scale_sigma": scale_sigma}
+    # every criterion's mean at every (code, class), once: class_means of a subset of the criteria
+    # is this array's columns, to the bit (the einsum is elementwise in the criteria)
+    fine["class_means"] = class_means(fine["mean"], fine["offsets"], np.ones(fine["mean"].shape[1], bool))
+    return fine
 
 
 # ---------------------------------------------------------------------------
@@ -197,13 +202,13 @@ def class_means(mean, offsets, ok):
     return mean[:, None, ok] + np.einsum("gjk,lk->glj", offsets[:, ok], lum_basis(LUMS))
 
 
-def _scale_line_strengths(xo, m, s, weights, side, scale_sigma):
-    """Multiply the model ``m`` in place by the best line-strength scale per half; the prior penalty.
+def _scale_line_strengths_per_side(xo, m, s, weights, side, scale_sigma):
+    """Multiply the model ``m`` in place by the best line-strength scale per half; each half's prior penalty.
 
     ``k`` is the weighted least-squares value at each lattice point, with a Gaussian
-    prior ``k ~ 1 +- scale_sigma``, clipped to 0.25-4.
+    prior ``k ~ 1 +- scale_sigma``, clipped to 0.25-4. Returns {side: penalty (G, 5)}.
     """
-    penalty = 0.0
+    penalties = {}
     a = weights / s ** 2
     prior = 1.0 / scale_sigma ** 2
     for sd in (-1, 0, 1):
@@ -214,8 +219,34 @@ def _scale_line_strengths(xo, m, s, weights, side, scale_sigma):
         den = np.sum(a[..., sel] * m[..., sel] ** 2, axis=-1) + prior
         k = np.clip(num / den, 0.25, 4.0)
         m[..., sel] *= k[..., None]
-        penalty = penalty + 0.5 * (k - 1.0) ** 2 * prior
-    return penalty
+        penalties[sd] = 0.5 * (k - 1.0) ** 2 * prior
+    return penalties
+
+
+def _lattice_terms(x, noise, mean, offsets, scatter, weights, dof, ok, scale_sigma, means=None):
+    """Each criterion's weighted term of :func:`loglike`, the z^2, and each half's scale penalty.
+
+    Returns ``(wterm (G, 5, J_ok), z2 (G, 5, J_ok), penalties {side: (G, 5)})``; ``means`` is
+    :func:`class_means` of all the criteria when already at hand.
+    """
+    m = class_means(mean, offsets, ok) if means is None else means[..., ok]
+    s = np.sqrt(scatter[:, None, ok] ** 2 + noise[ok] ** 2)
+    xo = x[ok]
+    penalties = {}
+    if scale_sigma > 0:
+        penalties = _scale_line_strengths_per_side(xo, m, s, weights[ok], SIDES[ok], scale_sigma)
+    z2 = ((xo - m) / s) ** 2
+    term = 0.5 * (dof + 1.0) * np.log1p(z2 / dof) + np.log(s)
+    return weights[ok] * term, z2, penalties
+
+
+def _summed(wterm, penalties):
+    """Log-likelihood from :func:`_lattice_terms` (penalties added in the order loglike adds them)."""
+    penalty = 0.0
+    for sd in (-1, 0, 1):
+        if sd in penalties:
+            penalty = penalty + penalties[sd]
+    return -np.sum(wterm, axis=-1) - penalty
 
 
 def loglike(x, noise, mean, offsets, scatter, weights, dof, ok=None, scale_sigma=0.0):
@@ -242,15 +273,14 @@ def loglike(x, noise, mean, offsets, scatter, weights, dof, ok=None, scale_sigma
     """
     if ok is None:
         ok = np.isfinite(x)
-    m = class_means(mean, offsets, ok)
-    s = np.sqrt(scatter[:, None, ok] ** 2 + noise[ok] ** 2)
-    xo = x[ok]
-    penalty = 0.0
-    if scale_sigma > 0:
-        penalty = _scale_line_strengths(xo, m, s, weights[ok], SIDES[ok], scale_sigma)
-    z2 = ((xo - m) / s) ** 2
-    term = 0.5 * (dof + 1.0) * np.log1p(z2 / dof) + np.log(s)
-    return -np.sum(weights[ok] * term, axis=-1) - penalty, z2
+    wterm, z2, penalties = _lattice_terms(x, noise, mean, offsets, scatter, weights, dof, ok, scale_sigma)
+    return _summed(wterm, penalties), z2
+
+
+def _normalised(ll, tau):
+    p = np.exp((ll - ll.max()) / tau)
+    p /= p.sum()
+    return p
 
 
 def posterior(x, noise, fine, dof, tau, ok=None):
@@ -274,11 +304,46 @@ def posterior(x, noise, fine, dof, tau, ok=None):
     p, ll, z2 : ndarray
         Posterior (G, 5), log-likelihood (G, 5), squared standardised residuals.
     """
-    ll, z2 = loglike(x, noise, fine["mean"], fine["offsets"], fine["scatter"], fine["weights"], dof, ok,
-                     fine.get("scale_sigma", 0.0))
-    p = np.exp((ll - ll.max()) / tau)
-    p /= p.sum()
-    return p, ll, z2
+    if ok is None:
+        ok = np.isfinite(x)
+    wterm, z2, penalties = _lattice_terms(x, noise, fine["mean"], fine["offsets"], fine["scatter"], fine["weights"],
+                                          dof, ok, fine.get("scale_sigma", 0.0), fine.get("class_means"))
+    ll = _summed(wterm, penalties)
+    return _normalised(ll, tau), ll, z2
+
+
+def posterior_and_split(x, noise, fine, dof, tau):
+    """:func:`posterior` of all the finite criteria and :func:`split_distance`, from one lattice pass.
+
+    Each half's likelihood is made of the same per-criterion terms as the whole's (the
+    line-strength scale is fitted per half in both), so it is taken from them: the same
+    numbers as the separate calls give, to the bit (tests/test_classify.py), for a third of
+    the work.
+
+    Returns
+    -------
+    p, ll, z2, split
+    """
+    ok = np.isfinite(x)
+    wterm, z2, penalties = _lattice_terms(x, noise, fine["mean"], fine["offsets"], fine["scatter"], fine["weights"],
+                                          dof, ok, fine.get("scale_sigma", 0.0), fine.get("class_means"))
+    ll = _summed(wterm, penalties)
+    sides = SIDES[ok]
+    codes = []
+    for side in (-1, 1):
+        if not _half_is_whole_enough(x, side):
+            codes.append(None)
+            continue
+        half = sides == side
+        ll_half = _summed(wterm[..., half], {side: penalties[side]} if side in penalties else {})
+        codes.append(summarise(_normalised(ll_half, tau), fine["grid"])[0])
+    split = None if None in codes else abs(codes[0] - codes[1])
+    return _normalised(ll, tau), ll, z2, split
+
+
+def _half_is_whole_enough(x, side):
+    ok = np.isfinite(x) & (SIDES == side)
+    return ok.sum() >= max(5, 0.5 * np.sum(SIDES == side))
 
 
 def summarise(p, grid):
@@ -312,9 +377,8 @@ def split_distance(x, noise, fine, dof, tau):
     """
     codes = []
     for side in (-1, 1):
-        ok = np.isfinite(x) & (SIDES == side)
-        if ok.sum() < max(5, 0.5 * np.sum(SIDES == side)):
+        if not _half_is_whole_enough(x, side):
             return None
-        p, _, _ = posterior(x, noise, fine, dof, tau, ok)
+        p, _, _ = posterior(x, noise, fine, dof, tau, np.isfinite(x) & (SIDES == side))
         codes.append(summarise(p, fine["grid"])[0])
     return abs(codes[0] - codes[1])
