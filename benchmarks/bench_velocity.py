@@ -229,6 +229,16 @@ def _pull_line(label, dv, err, resel, crb_kms, ms):
           f"mean err {err.mean():6.2f} {ms:5.0f} ms")
 
 
+def _measured(spectrum, v_true, dv, err):
+    """Measure one spectrum with no template; append (measured - true) and rv_err; return the seconds."""
+    t0 = time.perf_counter()
+    res = velocity.measure(spectrum, barycentric=False)
+    dt = time.perf_counter() - t0
+    dv.append(res["rv"].value - v_true)
+    err.append(res["rv_err"].value)
+    return dt
+
+
 def user_path(model, n):
     """The Kurucz Sun as a user's file (smooth response, no template), R 1000-5000, S/N 10-200."""
     print("\n== user path: Kurucz Sun x smooth response, no template, +-900 km/s ==")
@@ -250,11 +260,7 @@ def user_path(model, n):
                 info = ObsInfo(object="sun", medium="vacuum", medium_assumed=False, resolving_power=r)
                 s = Spectrum(flux=obs * u.dimensionless_unscaled, spectral_axis=pix * u.AA,
                              uncertainty=StdDevUncertainty(sig * resp) if i % 2 == 0 else None, meta={META_KEY: info})
-                t0 = time.perf_counter()
-                res = velocity.measure(s, barycentric=False)
-                t += time.perf_counter() - t0
-                dv.append(res["rv"].value - v)
-                err.append(res["rv_err"].value)
+                t += _measured(s, v, dv, err)
             _pull_line(f"R {r:5.0f} S/N {snr:4.0f}", dv, err, C_KMS / r, crb_kms, 1e3 * t / n)
 
 
@@ -275,11 +281,7 @@ def other_types(n):
                 v = rng.uniform(-900, 900)
                 s = synth.spectrum(st, lc, resolving_power=r, rv=v * KMS, snr=snr, seed=300 + i,
                                    wave_range=(3850, 7300) * u.AA)
-                t0 = time.perf_counter()
-                res = velocity.measure(s, barycentric=False)
-                t += time.perf_counter() - t0
-                dv.append(res["rv"].value - v)
-                err.append(res["rv_err"].value)
+                t += _measured(s, v, dv, err)
             _pull_line(f"R {r:5.0f} S/N {snr:4.0f}", dv, err, C_KMS / r, None, 1e3 * t / n)
 
 

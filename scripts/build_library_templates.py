@@ -37,6 +37,8 @@ import numpy as np
 
 ROOT = Path(__file__).resolve().parents[1]
 sys.path.insert(0, str(ROOT))
+sys.path.insert(0, str(ROOT / "scripts"))
+from miles_catalog import WAVE_AA as MILES_WAVE_AA, read_catalog, text, value  # noqa: E402
 
 CITATION = ("MILES stellar library v9.1, development part: Sanchez-Blazquez et al. (2006, MNRAS 371, 703); "
             "Cenarro et al. (2007, MNRAS 374, 664); resolution 2.50 A FWHM: Falcon-Barroso et al. "
@@ -59,14 +61,6 @@ METAL_POOR_FEH = -1.0
 GROUP_NAMES = {"I": "I", "II-III": "III", "IV-V": "V"}
 
 
-def _text(x):
-    return "" if np.ma.is_masked(x) else str(x).strip()
-
-
-def _value(x):
-    return np.nan if np.ma.is_masked(x) else float(x)
-
-
 def doubtful(published, sptype):
     """True when a published type carries an uncertain, peculiar, weak-lined, variable or emission mark."""
     tail = published.split(sptype, 1)[-1] if sptype and sptype in published else published
@@ -78,12 +72,12 @@ def groups(catalog):
     from specan.mktypes import code_to_sptype, luminosity_group, sptype_to_code
 
     out = []
-    feh = np.array([_value(x) for x in catalog["feh"]])
-    teff = np.array([_value(x) for x in catalog["teff_k"]])
-    logg = np.array([_value(x) for x in catalog["logg"]])
+    feh = np.array([value(x) for x in catalog["feh"]])
+    teff = np.array([value(x) for x in catalog["teff_k"]])
+    logg = np.array([value(x) for x in catalog["logg"]])
     normal = {}
     for i, row in enumerate(catalog):
-        sp, lc, pub = _text(row["sptype"]), _text(row["lumclass"]), _text(row["sptype_published"])
+        sp, lc, pub = text(row["sptype"]), text(row["lumclass"]), text(row["sptype_published"])
         if not (sp and lc) or doubtful(pub, sp) or feh[i] < METAL_POOR_FEH:
             continue
         code = sptype_to_code(sp)
@@ -92,12 +86,12 @@ def groups(catalog):
                 normal.setdefault(((lo, hi), luminosity_group(lc)), []).append(i)
     for ((lo, hi), group), members in sorted(normal.items()):
         if len(members) >= MIN_MEMBERS:
-            codes = [sptype_to_code(_text(catalog["sptype"][i])) for i in members]
+            codes = [sptype_to_code(text(catalog["sptype"][i])) for i in members]
             sp = code_to_sptype(round(float(np.median(codes)) * 2) / 2, 1)
             out.append((f"{sp} {GROUP_NAMES[group]}", sp, GROUP_NAMES[group], members))
     for name, sp, lc, (t0, t1), (g0, g1) in METAL_POOR:
         members = [i for i in range(len(catalog)) if feh[i] < METAL_POOR_FEH and t0 <= teff[i] < t1
-                   and g0 <= logg[i] < g1 and not doubtful(_text(catalog["sptype_published"][i]), "")]
+                   and g0 <= logg[i] < g1 and not doubtful(text(catalog["sptype_published"][i]), "")]
         if len(members) >= MIN_MEMBERS:
             out.append((name, sp, lc, members))
     return out
@@ -173,21 +167,20 @@ def main(argv=None):
     from astropy.table import Table
 
     library = Path(args.library)
-    if not (library / "catalog.csv").is_file():
-        print(f"build_library_templates: no catalog.csv in {library}", file=sys.stderr)
+    catalog = read_catalog(library, "build_library_templates")
+    if catalog is None:
         return 1
-    catalog = Table.read(library / "catalog.csv", format="ascii.csv")
-    wave = 3540.5 + 0.9 * np.arange(4300)   # the library's own pixels (its README)
+    wave = MILES_WAVE_AA
     fluxes, rows = [], []
     for name, sptype, lumclass, members in groups(catalog):
-        paths = [library / _text(catalog["file"][i]) for i in members]
+        paths = [library / text(catalog["file"][i]) for i in members]
         flux, shifts = build_group(paths, wave)
         # standard error of a median, 1.2533 sd / sqrt(n) (common practice)
         zero_err = 1.2533 * float(np.std(shifts, ddof=1)) / np.sqrt(len(shifts))
         fluxes.append(flux.astype(np.float32))
-        params = [np.nanmedian([_value(catalog[c][i]) for i in members]) for c in ("teff_k", "logg", "feh")]
+        params = [np.nanmedian([value(catalog[c][i]) for i in members]) for c in ("teff_k", "logg", "feh")]
         rows.append((name, sptype, lumclass, len(members), *params, zero_err,
-                     " ".join(_text(catalog["id"][i]) for i in members)))
+                     " ".join(text(catalog["id"][i]) for i in members)))
         print(f"  {name:24s} {len(members):3d} stars, zero point uncertain by {zero_err:5.2f} km/s",
               file=sys.stderr)
     table = Table(rows=rows, names=("name", "sptype", "lumclass", "n_stars", "teff_k", "logg", "feh",

@@ -28,6 +28,8 @@ import numpy as np
 
 ROOT = Path(__file__).resolve().parents[1]
 sys.path.insert(0, str(ROOT))
+sys.path.insert(0, str(ROOT / "scripts"))
+from miles_catalog import read_catalog  # noqa: E402
 REFERENCE = ROOT.parent / "shared" / "reference"
 
 CITATION = ("MILES stellar library v9.1, development part: Sanchez-Blazquez et al. (2006, MNRAS 371, 703); "
@@ -54,7 +56,7 @@ def library_rows(folder):
     from specan.mktypes import sptype_to_code
 
     fit = _recipe()
-    cat = Table.read(folder / "catalog.csv", format="ascii.csv")
+    cat = read_catalog(folder, "build_neighbour_set")
     F, G, rows = [], [], []
     for row in cat:
         ok, _ = fit.miles_usable(row)
@@ -77,8 +79,7 @@ def main(argv=None):
     parser.add_argument("--out", default=str(ROOT / "specan" / "data" / "neighbours_miles.fits"))
     args = parser.parse_args(argv)
     folder = Path(args.miles)
-    if not (folder / "catalog.csv").is_file():
-        print(f"build_neighbour_set: no catalog.csv in {folder}", file=sys.stderr)
+    if read_catalog(folder, "build_neighbour_set") is None:
         return 1
     from astropy.io import fits
 

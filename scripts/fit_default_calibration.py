@@ -36,6 +36,8 @@ import numpy as np
 
 ROOT = Path(__file__).resolve().parents[1]
 sys.path.insert(0, str(ROOT))
+sys.path.insert(0, str(ROOT / "scripts"))
+from miles_catalog import text  # noqa: E402
 REFERENCE = ROOT.parent / "shared" / "reference"
 
 #: The calibration's resolution (FWHM, Angstrom): the JHC copies' own (see the module docstring).
@@ -49,13 +51,9 @@ SOURCE = ("Jacoby, Hunter & Christian (1984, ApJS 56, 257) library, development 
           "each catalogue; criteria measured by specan, no spectra copied")
 
 
-def _text(x):
-    return "" if np.ma.is_masked(x) else str(x).strip()
-
-
 def miles_usable(row):
     """(usable, reason): a MILES row fit to be a standard (see the module docstring)."""
-    sp, lc, pub = _text(row["sptype"]), _text(row["lumclass"]), _text(row["sptype_published"])
+    sp, lc, pub = text(row["sptype"]), text(row["lumclass"]), text(row["sptype_published"])
     if not (sp and lc):
         return False, "no full MK type"
     tail = pub.split(sp, 1)[-1] if sp in pub else pub
@@ -71,8 +69,8 @@ def miles_label(row):
     """(sptype, lumclass) with the published emission mark kept, so the fit leaves its lines out."""
     from specan.mktypes import marks_emission
 
-    sp, lc = _text(row["sptype"]), _text(row["lumclass"])
-    return sp, lc + ("e" if marks_emission(_text(row["sptype_published"])) else "")
+    sp, lc = text(row["sptype"]), text(row["lumclass"])
+    return sp, lc + ("e" if marks_emission(text(row["sptype_published"])) else "")
 
 
 def measure_jhc(folder, classify, velocities=None):

@@ -31,6 +31,8 @@ import numpy as np
 
 ROOT = Path(__file__).resolve().parents[1]
 sys.path.insert(0, str(ROOT))
+sys.path.insert(0, str(ROOT / "scripts"))
+from miles_catalog import read_catalog, text, value  # noqa: E402
 
 SOURCE = ("MILES stellar library v9.1, development part ({n} training stars): Sanchez-Blazquez et al. 2006; "
           "Falcon-Barroso et al. 2011 (2.50 A); parameters Cenarro et al. 2007, Prugniel et al. 2011; "
@@ -41,20 +43,12 @@ FOLDS = 10
 SEED = 1
 
 
-def _text(x):
-    return "" if np.ma.is_masked(x) else str(x).strip()
-
-
-def _value(x):
-    return np.nan if np.ma.is_masked(x) else float(x)
-
-
 def contradicted(row, teff, logg):
     """True when a star's parameters contradict its published MK type (see the module docstring)."""
     from specan.mkscales import teff_from_type
     from specan.mktypes import lumclass_to_number, sptype_to_code
 
-    sp, lc = _text(row["sptype"]), _text(row["lumclass"])
+    sp, lc = text(row["sptype"]), text(row["lumclass"])
     if sp:
         t_type = teff_from_type(sptype_to_code(sp), lc or "V")[0].value
         if abs(np.log10(teff / t_type)) > 0.1:
@@ -73,14 +67,14 @@ def library_fluxes(library, catalog):
 
     rows, labels, trainable = [], [], []
     for row in catalog:
-        lab = [_value(row[c]) for c in ("teff_k", "logg", "feh")]
-        s = specan.read(library / _text(row["file"]), medium="air")
+        lab = [value(row[c]) for c in ("teff_k", "logg", "feh")]
+        s = specan.read(library / text(row["file"]), medium="air")
         with warnings.catch_warnings():
             warnings.simplefilter("ignore")
             flux, good, _ = on_model_grid(s, rv=None, fwhm_in=2.5)   # the library: 2.5 A, at rest (its README)
         rows.append(np.where(good, flux, np.nan))
         labels.append(lab)
-        pub = _text(row["sptype_published"])
+        pub = text(row["sptype_published"])
         odd = any(c in pub for c in "+:p")
         ok = np.all(np.isfinite(lab)) and not odd and not contradicted(row, lab[0], lab[1])
         trainable.append(bool(ok))
@@ -127,7 +121,7 @@ def class_gravity(catalog, labels, trainable):
 
     from specan.mktypes import lumclass_to_number, number_to_lumclass
 
-    lum = np.array([lumclass_to_number(_text(r["lumclass"])) if _text(r["lumclass"]) else 0 for r in catalog])
+    lum = np.array([lumclass_to_number(text(r["lumclass"])) if text(r["lumclass"]) else 0 for r in catalog])
     rows = []
     for n in range(1, 6):
         sel = trainable & (lum == n)
@@ -167,15 +161,13 @@ def main(argv=None):
     parser.add_argument("--cv-only", action="store_true", help="print the cross-validation, write nothing")
     parser.add_argument("--save-cv", help="also write the held-out predictions (id, Teff, log g, [Fe/H]) to this CSV")
     args = parser.parse_args(argv)
-    from astropy.table import Table
 
     from specan.parameters import ParameterModel
 
     library = Path(args.library)
-    if not (library / "catalog.csv").is_file():
-        print(f"fit_parameter_model: no catalog.csv in {library}", file=sys.stderr)
+    catalog = read_catalog(library, "fit_parameter_model")
+    if catalog is None:
         return 1
-    catalog = Table.read(library / "catalog.csv", format="ascii.csv")
     nodes = np.log10(np.array(NODES_K, float))
     flux, labels, trainable = library_fluxes(library, catalog)
     pred = cross_validate(flux, labels, trainable, nodes)
@@ -187,9 +179,9 @@ def main(argv=None):
                       ("hotter than 7000 K", (teff > 7000) & trainable)):
         print(summary(pred, labels, sel, name))
     if args.save_cv:
-        from astropy.table import Table as _Table
+        from astropy.table import Table
 
-        _Table({"id": [str(i) for i in catalog["id"]], "teff_k": pred[:, 0], "logg": pred[:, 1], "feh": pred[:, 2],
+        Table({"id": [str(i) for i in catalog["id"]], "teff_k": pred[:, 0], "logg": pred[:, 1], "feh": pred[:, 2],
                 "trainable": trainable}).write(args.save_cv, format="ascii.csv", overwrite=True)
     if args.cv_only:
         return 0
