@@ -32,10 +32,9 @@ import astropy.units as u
 import numpy as np
 from scipy.optimize import leastsq
 
-from .doppler import doppler_factor
 from .errors import AnalysisError
-from .obsinfo import get_info, wavelength_in
-from .resolution import smooth_to_fwhm
+from .obsinfo import get_info
+from .resolution import on_rest_grid
 
 __all__ = ["MODEL_FILE", "MODEL_FWHM", "LABELS", "model_wavelengths", "scale_labels", "broader_than_model",
            "ModelInput", "on_model_grid", "ParameterModel",
@@ -128,37 +127,18 @@ def on_model_grid(spectrum, rv=None, fwhm_in=None, notes=None, resolving_power=N
     from .prepare import normalise_arrays
 
     notes = notes if notes is not None else []
-    info = get_info(spectrum)
-    wave = wavelength_in(spectrum, "air")
-    flux = np.asarray(spectrum.flux.value, float)
-    good = np.isfinite(flux) & np.isfinite(wave)
-    if spectrum.mask is not None:
-        good &= ~np.asarray(spectrum.mask, bool)
-    order = np.argsort(wave)
-    wave, flux, good = wave[order], flux[order], good[order]
-    if rv is not None:
-        wave = wave / float(doppler_factor(u.Quantity(rv, u.km / u.s)))
     grid = model_wavelengths()
-    near = (wave >= grid[0] - 5 * MODEL_FWHM) & (wave <= grid[-1] + 5 * MODEL_FWHM)
-    if (good & near).sum() < 50:
-        raise AnalysisError("the spectrum does not overlap the parameter model's 3700-7350 A", info.path)
-    wave, flux, good = wave[near], flux[near], good[near]
-    if fwhm_in is None:
-        if info.resolving_power or resolving_power:
-            fwhm_in = wave / float(info.resolving_power or resolving_power)
-        else:
-            fwhm_in = 2.5 * float(np.median(np.diff(wave)))
-            notes.append("resolving power unknown: taken as 2.5 pixels per FWHM for the parameters")
-    broader = broader_than_model(wave, fwhm_in)
+    rest = on_rest_grid(spectrum, grid, MODEL_FWHM, rv=rv, fwhm_in=fwhm_in, resolving_power=resolving_power,
+                        what="the parameter model's 3700-7350 A")
+    if rest.fwhm_assumed:
+        notes.append("resolving power unknown: taken as 2.5 pixels per FWHM for the parameters")
+    broader = broader_than_model(rest.wave, rest.fwhm_in)
     if broader:
         notes.append(f"spectrum broader than the parameter model's {MODEL_FWHM:g} A FWHM: parameters less certain "
                      "than their errors say")
-    fine, smooth, fine_good = smooth_to_fwhm(wave, np.where(good, flux, 0.0), good, fwhm_in, MODEL_FWHM)
-    inside = (grid >= fine[0]) & (grid <= fine[-1])
-    on = np.interp(grid, fine, smooth)
-    ok = inside & (np.interp(grid, fine, fine_good.astype(float)) > 0.99)
+    on, ok = rest.flux, rest.ok
     if ok.sum() < 50:
-        raise AnalysisError("too few usable pixels on the parameter model's wavelengths", info.path)
+        raise AnalysisError("too few usable pixels on the parameter model's wavelengths", get_info(spectrum).path)
     positive = np.where(ok & (on > 0), on, np.nan)
     # prepare()'s normalisation without its S/N and Spectrum objects: the same flux to the bit
     # (tests/test_parameters.py), which the shipped model was trained on

@@ -15,11 +15,12 @@ import numpy as np
 from scipy.ndimage import gaussian_filter1d
 from scipy.signal import find_peaks
 
-from .doppler import C_KMS
+from .doppler import C_KMS, doppler_factor
 from .errors import AnalysisError
-from .obsinfo import META_KEY, get_info, replace_parts, spectrum_arrays
+from .obsinfo import META_KEY, get_info, replace_parts, spectrum_arrays, wavelength_in
 
 __all__ = [
+    "on_rest_grid",
     "GAUSS_FWHM",
     "FWHM_TO_SIGMA",
     "DEFAULT_PIXELS_PER_FWHM",
@@ -291,3 +292,80 @@ def smooth_to_fwhm(wave, flux, good, fwhm_in, fwhm_out):
     idx = np.arange(grid.size)
     out = smooth[j, idx] * (1.0 - t) + smooth[j + 1, idx] * t
     return grid, out, gsm > 0.5
+
+
+class RestGrid(NamedTuple):
+    """A spectrum at rest, smoothed and on a grid (see :func:`on_rest_grid`)."""
+
+    flux: np.ndarray       # smoothed flux on the grid
+    ok: np.ndarray         # grid pixels inside the spectrum, made of usable pixels only
+    fwhm_in: object        # the input FWHM used (Angstrom, scalar or per input pixel)
+    fwhm_assumed: bool     # neither fwhm_in nor an R was given: 2.5 pixels were taken
+    wave: np.ndarray       # the input wavelengths kept (air, rest), for the callers' notes
+
+
+def on_rest_grid(spectrum, grid, fwhm_out, rv=None, fwhm_in=None, resolving_power=None, positive=False,
+                 min_pixels=50, what="the grid"):
+    """A spectrum at rest in air wavelengths, smoothed to ``fwhm_out`` and interpolated onto ``grid``.
+
+    The path the parameter model and the library comparison share (their shipped numbers were
+    made through it): air wavelengths, sorted, the velocity removed, the pixels within five
+    output FWHM of the grid kept, smoothed from ``fwhm_in`` (default lambda / R from
+    ``resolving_power`` or the metadata, else 2.5 pixels) to ``fwhm_out``, then interpolated.
+
+    Parameters
+    ----------
+    spectrum : specutils.Spectrum
+    grid : numpy.ndarray
+        Output wavelengths (Angstrom, air, increasing).
+    fwhm_out : float
+        Output FWHM (Angstrom).
+    rv : astropy.units.Quantity, optional
+        Velocity seen in the data (removed when finite); None: at rest.
+    fwhm_in : float or numpy.ndarray, optional
+    resolving_power : float, optional
+        R when the metadata give none.
+    positive : bool
+        Count non-positive flux as unusable.
+    min_pixels : int
+        Fewest usable input pixels near the grid.
+    what : str
+        The grid's name, for the error message.
+
+    Returns
+    -------
+    RestGrid
+
+    Raises
+    ------
+    specan.errors.AnalysisError
+        When fewer than ``min_pixels`` usable pixels lie near the grid.
+    """
+    import astropy.units as u
+
+    info = get_info(spectrum)
+    wave = wavelength_in(spectrum, "air")
+    flux = np.asarray(spectrum.flux.value, float)
+    good = np.isfinite(flux) & np.isfinite(wave)
+    if positive:
+        good &= flux > 0
+    if spectrum.mask is not None:
+        good &= ~np.asarray(spectrum.mask, bool)
+    order = np.argsort(wave)
+    wave, flux, good = wave[order], flux[order], good[order]
+    if rv is not None and np.isfinite(u.Quantity(rv, u.km / u.s).value):
+        wave = wave / float(doppler_factor(u.Quantity(rv, u.km / u.s)))
+    near = (wave >= grid[0] - 5 * fwhm_out) & (wave <= grid[-1] + 5 * fwhm_out)
+    if (good & near).sum() < min_pixels:
+        raise AnalysisError(f"the spectrum does not overlap {what}", info.path)
+    wave, flux, good = wave[near], flux[near], good[near]
+    assumed = False
+    if fwhm_in is None:
+        r = info.resolving_power or resolving_power
+        assumed = not r
+        fwhm_in = wave / float(r) if r else 2.5 * float(np.median(np.diff(wave)))
+    fine, smooth, fine_good = smooth_to_fwhm(wave, np.where(good, flux, 0.0), good, fwhm_in, fwhm_out)
+    inside = (grid >= fine[0]) & (grid <= fine[-1])
+    on = np.interp(grid, fine, smooth)
+    ok = inside & (np.interp(grid, fine, fine_good.astype(float)) > 0.99)
+    return RestGrid(on, ok, fwhm_in, assumed, wave)

@@ -30,13 +30,11 @@ from importlib import resources
 from pathlib import Path
 from typing import NamedTuple
 
-import astropy.units as u
 import numpy as np
 
-from ..doppler import doppler_factor
 from ..errors import AnalysisError
-from ..obsinfo import get_info, wavelength_in
-from ..resolution import smooth_to_fwhm
+from ..obsinfo import get_info
+from ..resolution import on_rest_grid
 
 __all__ = ["REFERENCE_FILE", "FWHM", "POLY_DEGREE", "NEIGHBOURS", "WIDTH", "CODE_SIGMA", "SHOWN",
            "wavelengths", "ReferenceSet", "default_reference", "on_grid", "mean_square_differences",
@@ -148,33 +146,16 @@ def on_grid(spectrum, rv=None, fwhm_in=None, resolving_power=None, notes=None, t
     from ..prepare import normalise_arrays
 
     notes = notes if notes is not None else []
-    info = get_info(spectrum)
     grid = wavelengths()
-    wave = wavelength_in(spectrum, "air")
-    flux = np.asarray(spectrum.flux.value, float)
-    good = np.isfinite(flux) & np.isfinite(wave) & (flux > 0)
-    if spectrum.mask is not None:
-        good &= ~np.asarray(spectrum.mask, bool)
-    order = np.argsort(wave)
-    wave, flux, good = wave[order], flux[order], good[order]
-    if rv is not None and np.isfinite(u.Quantity(rv, u.km / u.s).value):
-        wave = wave / float(doppler_factor(u.Quantity(rv, u.km / u.s)))
-    near = (wave >= grid[0] - 5 * FWHM) & (wave <= grid[-1] + 5 * FWHM)
-    if (good & near).sum() < 50:
-        raise AnalysisError("the spectrum does not overlap the library comparison's 3650-7350 A", info.path)
-    wave, flux, good = wave[near], flux[near], good[near]
-    if fwhm_in is None:
-        r = info.resolving_power or resolving_power
-        fwhm_in = wave / float(r) if r else 2.5 * float(np.median(np.diff(wave)))
-    if float(np.median(np.broadcast_to(fwhm_in, wave.shape))) > FWHM * 1.1:
+    rest = on_rest_grid(spectrum, grid, FWHM, rv=rv, fwhm_in=fwhm_in, resolving_power=resolving_power,
+                        positive=True, what="the library comparison's 3650-7350 A")
+    if float(np.median(np.broadcast_to(rest.fwhm_in, rest.wave.shape))) > FWHM * 1.1:
         notes.append(f"spectrum broader than the library comparison's {FWHM:g} A FWHM: its neighbours are less "
                      "alike than they look")
-    fine, smooth, fine_good = smooth_to_fwhm(wave, np.where(good, flux, 0.0), good, fwhm_in, FWHM)
-    inside = (grid >= fine[0]) & (grid <= fine[-1])
-    on = np.interp(grid, fine, smooth)
-    ok = inside & (np.interp(grid, fine, fine_good.astype(float)) > 0.99) & (on > 0)
+    on = rest.flux
+    ok = rest.ok & (on > 0)
     if ok.sum() < 20:
-        raise AnalysisError("too few usable pixels on the library comparison's wavelengths", info.path)
+        raise AnalysisError("too few usable pixels on the library comparison's wavelengths", get_info(spectrum).path)
     # prepare()'s normalisation without its S/N and Spectrum objects: the same flux to the bit
     # (tests/test_classify_neighbours.py), as the shipped library stars were normalised
     out, bad = normalise_arrays(grid, np.where(ok, on, 1.0), ~ok, telluric=telluric)
