@@ -24,6 +24,13 @@ these synthetic spectra come out ``peculiar`` or ``composite``), and:
   the share of spectra drawn, and the same command again on the finished
   folder (everything current, nothing recomputed). Cases run side by side,
   so their ratios come from one run of this script.
+* ``--overhead N``: runs ``specan run`` on N of them (one job, no figures)
+  in a fresh process with every stage call timed, and prints the run's own
+  cost outside the stages per spectrum: start-up (interpreter, imports, the
+  settings' hashes, until the first input is read), per input between stages
+  (hashing the input, the row, storing the record) and the end (catalogue,
+  diagram, report), each also with this code's and another checkout's specan
+  when ``--compare-with`` names one;
 * ``--compare-with DIR``: runs the demo night (``sample_spectra``) with this
   code and with the specan of another checkout (e.g. the slow path before the
   night run was made fast) and compares every catalogue column both have.
@@ -33,6 +40,7 @@ Usage::
     python benchmarks/bench_pipeline.py --profile 40
     python benchmarks/bench_pipeline.py --counts 1000 --jobs 1,2 --plots none,flagged
     python benchmarks/bench_pipeline.py --counts 1000,100000 --jobs 1 --plots none --stages read,prepare
+    python benchmarks/bench_pipeline.py --overhead 300 [--compare-with /tmp/before]
     git archive 1a733f4 | tar -x -C /tmp/slow && python benchmarks/bench_pipeline.py --compare-with /tmp/slow
 """
 
@@ -187,6 +195,74 @@ def profile(paths, out):
         print(f"  {package:24s} {1e3 * sum(r[0] for r in rows) / n:7.1f}  {hot}")
 
 
+# --------------------------------------------------------------------------- the run's own overhead
+
+#: Run in the timed process: ``specan run`` with each stage call timed; the stage times and the
+#: moments the first input started and the last one ended go to the file named by argv[1].
+_TIMED_RUN = r"""
+import json, sys, time
+record = {"stages": 0.0, "figures": 0.0, "first": None, "last": None, "count": 0}
+from specan import pipeline
+real_stage, real_plots, real_analyse = pipeline._stage_function, pipeline._plots, pipeline.analyse_file
+
+def timed_stage(name):
+    func = real_stage(name)
+    def stage(*args, **kwargs):
+        t = time.perf_counter()
+        try:
+            return func(*args, **kwargs)
+        finally:
+            record["stages"] += time.perf_counter() - t
+    return stage
+
+def analyse(*args, **kwargs):
+    if record["first"] is None:
+        record["first"] = time.time()
+    try:
+        return real_analyse(*args, **kwargs)
+    finally:
+        record["last"], record["count"] = time.time(), record["count"] + 1
+
+pipeline._stage_function, pipeline.analyse_file = timed_stage, analyse
+from specan.cli import main
+try:
+    status = main(sys.argv[2:])
+finally:
+    record["end"] = time.time()
+    open(sys.argv[1], "w").write(json.dumps(record))
+sys.exit(status)
+"""
+
+
+def overhead(paths_folder, count, work, checkouts):
+    """The run's own cost outside the stages, ms per spectrum, for each checkout's specan."""
+    import json
+
+    print(f"# specan run on {count} spectra, --jobs 1 --plots none; ms per spectrum (start-up and end: "
+          f"ms per run / {count}); load average before: {os.getloadavg()[0]:.1f}")
+    print(f"{'checkout':>28} {'wall':>7} {'stages':>7} {'outside':>8} {'start-up':>9} {'between':>8} "
+          f"{'end':>6}   start-up s  end s")
+    for _ in range(2):   # twice, alternating: the machine's load moves both alike
+        for path in checkouts:
+            out = work / "out_overhead"
+            shutil.rmtree(out, ignore_errors=True)
+            report = work / "overhead.json"
+            cmd = [sys.executable, "-c", _TIMED_RUN, str(report), "run", str(paths_folder), "--out", str(out),
+                   "--jobs", "1", "--plots", "none", "--calibration", str(CALIBRATION)]
+            env = dict(os.environ, PYTHONPATH=str(path))
+            t0 = time.time()
+            subprocess.run(cmd, env=env, cwd=str(path), stdout=subprocess.DEVNULL, stderr=subprocess.DEVNULL)
+            wall = time.time() - t0
+            r = json.loads(report.read_text())
+            n = r["count"]
+            start, end = r["first"] - t0, wall - (r["last"] - t0)
+            between = (r["last"] - r["first"]) - r["stages"]
+            outside = wall - r["stages"]
+            print(f"{str(path)[-28:]:>28} {1e3 * wall / n:7.1f} {1e3 * r['stages'] / n:7.1f} "
+                  f"{1e3 * outside / n:8.1f} {1e3 * start / n:9.2f} {1e3 * between / n:8.2f} "
+                  f"{1e3 * end / n:6.2f}   {start:9.2f} {end:6.2f}   load {os.getloadavg()[0]:.1f}", flush=True)
+
+
 # --------------------------------------------------------------------------- whole runs
 
 
@@ -311,12 +387,23 @@ def main(argv=None):
     parser.add_argument("--keep", action="store_true", help="keep the output folders")
     parser.add_argument("--profile", type=int, default=0, metavar="K", help="per-stage profile of K spectra")
     parser.add_argument("--compare-with", default=None, metavar="DIR",
-                        help="another checkout whose specan runs the demo night for comparison")
+                        help="another checkout whose specan runs the demo night (or --overhead) for comparison")
+    parser.add_argument("--overhead", type=int, default=0, metavar="N",
+                        help="the run's own cost outside the stages on N spectra")
     parser.add_argument("--workdir", type=Path, default=None, help="where to write spectra and outputs")
     args = parser.parse_args(argv)
     work = args.workdir or Path(tempfile.mkdtemp(prefix="specan-bench-"))
     work.mkdir(parents=True, exist_ok=True)
-    if args.compare_with:
+    if args.overhead:
+        make_spectra(work / "spectra_all", args.overhead)
+        folder = work / f"spectra_{args.overhead}"
+        if not folder.exists():
+            folder.mkdir()
+            for i in range(args.overhead):
+                name = f"bench_{i:06d}.fits"
+                os.link(work / "spectra_all" / name, folder / name)
+        overhead(folder, args.overhead, work, [ROOT] + ([Path(args.compare_with)] if args.compare_with else []))
+    elif args.compare_with:
         compare(args.compare_with, work)
     elif args.profile:
         paths = make_spectra(work / "spectra_all", args.profile)

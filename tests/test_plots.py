@@ -25,3 +25,48 @@ def test_line_names_do_not_cover_each_other_and_the_deepest_is_named():
     detected = table[np.asarray(table["detected"], bool)]
     deepest = detected[int(np.nanargmax(np.abs(np.asarray(detected["depth"], float))))]
     assert str(deepest["id"]) in {t.get_text() for t in texts}
+
+
+def _drawn(spec, table, kept_text):
+    fig = plots._canvas(10, 7, cached_text=kept_text)
+    fig.set_dpi(plots.FIGURE_DPI)
+    ax = fig.add_subplot()
+    plots._draw_spectrum(ax, spec, table, normalized=True)
+    ax.set_title("K3 III, S/N 100", y=1.0)
+    fig.canvas.draw()
+    fig.canvas.draw()   # the second time from the kept pixels
+    return fig, np.asarray(fig.canvas.buffer_rgba())[:, :, :3].astype(int)
+
+
+def test_kept_text_pixels_change_nothing_but_the_texts_by_a_subpixel():
+    # The figure's renderer draws each string once with Agg and keeps its pixels; a text then
+    # starts on a whole pixel. Everything else must be Agg's own drawing to the bit, and each
+    # text must stay within a pixel of where Agg writes it.
+    spec = prepare.prepare(synth.spectrum("K3", "III", resolving_power=2000, snr=100, seed=4))
+    table = lines.measure(spec)
+    fig, kept = _drawn(spec, table, kept_text=True)
+    _, agg = _drawn(spec, table, kept_text=False)
+    renderer = fig.canvas.get_renderer()
+    texts = [t for ax in fig.axes for t in [*ax.texts, ax.title, ax.xaxis.label, ax.yaxis.label,
+                                               *ax.get_xticklabels(), *ax.get_yticklabels()] if t.get_text()]
+    assert len(texts) > 30
+    inside_text = np.zeros(agg.shape[:2], bool)
+    height = agg.shape[0]
+    for t in texts:
+        box = t.get_window_extent(renderer)
+        rows = slice(max(int(height - box.y1) - 2, 0), int(height - box.y0) + 3)
+        inside_text[rows, max(int(box.x0) - 2, 0):int(box.x1) + 3] = True
+    differ = np.abs(kept - agg).max(axis=2) > 0
+    assert differ.any()                       # texts moved to whole pixels
+    assert not (differ & ~inside_text).any()  # and nothing else changed
+    # each text's ink where Agg's is: the dark pixels' centre within a pixel in x and in y
+    for t in texts:
+        box = t.get_window_extent(renderer)
+        rows = slice(max(int(height - box.y1) - 2, 0), int(height - box.y0) + 3)
+        cols = slice(max(int(box.x0) - 2, 0), int(box.x1) + 3)
+        ink = [255 - img[rows, cols].min(axis=2) for img in (kept, agg)]
+        if ink[1].sum() == 0:
+            continue
+        rows_at, cols_at = np.indices(ink[1].shape)
+        centres = [np.array([(w * rows_at).sum(), (w * cols_at).sum()]) / w.sum() for w in ink]
+        assert np.all(np.abs(centres[0] - centres[1]) <= 1.0), t.get_text()

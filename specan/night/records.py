@@ -71,9 +71,15 @@ class RecordStore:
 
     def __init__(self, out_dir):
         self.out = Path(out_dir)
+        # resolved once: a record's path is asked for several times per input (stored? current?
+        # load, put), and resolving the folder each time was most of a night's end-of-run reading
+        self._records = inside(self.out, Path("records"))
 
     def _record_path(self, pid) -> Path:
-        return inside(self.out, Path("records") / f"{pid}.json")
+        # a path id is hexadecimal (see specan.night.inputs.path_id): a name inside the folder
+        if not pid.isalnum():
+            raise ValueError(f"record id {pid!r} is not a path id")
+        return self._records / f"{pid}.json"
 
     def put(self, path, key, result) -> dict:
         """Write one input's plots, then its record (so a record always has its plots).
@@ -129,9 +135,7 @@ class RecordStore:
         ``plot_wanted(values)`` asks for one and the input could be drawn (the figures
         asked for are not part of the settings: asking for more redraws only those).
         """
-        if not self.exists(path):  # a first run reads no file
-            return None
-        record = self.load(path)
+        record = self.load(path)   # None too when there is no record (a first run reads no file)
         if record is None or record.get("version") != RECORD_VERSION or record.get("key") != key:
             return None
         values = record["values"]
