@@ -24,9 +24,14 @@ these synthetic spectra come out ``peculiar`` or ``composite``), and:
   the share of spectra drawn, and the same command again on the finished
   folder (everything current, nothing recomputed). Cases run side by side,
   so their ratios come from one run of this script.
+* ``--figures K``: analyses K of them in this process, keeps what their
+  figures are drawn from, then draws every figure again and prints the CPU ms
+  of one figure and its parts (the artists, the rendering, the PNG, the
+  thumbnail); run it with ``PYTHONPATH`` set to another checkout to time that
+  checkout's figure on the same spectra;
 * ``--overhead N``: runs ``specan run`` on N of them (one job, no figures)
   in a fresh process with every stage call timed, and prints the run's own
-  cost outside the stages per spectrum: start-up (interpreter, imports, the
+  CPU time outside the stages per spectrum: start-up (interpreter, imports, the
   settings' hashes, until the first input is read), per input between stages
   (hashing the input, the row, storing the record) and the end (catalogue,
   diagram, report), each also with this code's and another checkout's specan
@@ -41,6 +46,7 @@ Usage::
     python benchmarks/bench_pipeline.py --counts 1000 --jobs 1,2 --plots none,flagged
     python benchmarks/bench_pipeline.py --counts 1000,100000 --jobs 1 --plots none --stages read,prepare
     python benchmarks/bench_pipeline.py --overhead 300 [--compare-with /tmp/before]
+    python benchmarks/bench_pipeline.py --figures 30
     git archive 1a733f4 | tar -x -C /tmp/slow && python benchmarks/bench_pipeline.py --compare-with /tmp/slow
 """
 
@@ -201,52 +207,117 @@ def profile(paths, out):
         print(f"  {package:24s} {1e3 * sum(r[0] for r in rows) / n:7.1f}  {hot}")
 
 
+# --------------------------------------------------------------------------- one figure
+
+
+def figures(paths, rounds=3):
+    """CPU ms of one per-spectrum figure and of its parts, on the figures of these spectra."""
+    from matplotlib.backends.backend_agg import FigureCanvasAgg
+
+    from specan import pipeline, plots
+
+    kept = []
+
+    def keep(rec, path, spectrum, lines, velocity, classification):
+        kept.append((spectrum, lines, velocity, classification, f"{rec.values.get('object')}  ({Path(path).name})"))
+        return {}
+
+    real_plots, pipeline._plots = pipeline._plots, keep
+    settings = {"plots": "all", "calibration": str(CALIBRATION)}
+    for p in paths:
+        pipeline.analyse_file(str(p), settings)
+    pipeline._plots = real_plots
+    parts = collections.defaultdict(float)
+
+    def timed(name, func):
+        def part(*args, **kwargs):
+            c = time.process_time()
+            try:
+                return func(*args, **kwargs)
+            finally:
+                parts[name] += time.process_time() - c
+        return part
+
+    # the parts by name where this checkout has them (an older one may lack some)
+    originals = {name: getattr(plots, name) for name in ("_encode_png", "_thumbnail") if hasattr(plots, name)}
+    render = FigureCanvasAgg.draw
+    for name, func in originals.items():
+        setattr(plots, name, timed(name, func))
+    FigureCanvasAgg.draw = timed("render", render)   # the figure's canvas may be a subclass: it calls this
+
+    def draw(item):
+        spectrum, lines, velocity, classification, title = item
+        return plots.spectrum_figures(spectrum, lines=lines, velocity=velocity, classification=classification,
+                                      title=title)
+
+    draw(kept[0])   # the figure made, matplotlib's fonts loaded: once per process
+    try:
+        for _ in range(rounds):
+            parts.clear()
+            c = time.process_time()
+            sizes = sum(len(out["full"]) for out in map(draw, kept))
+            n = len(kept)
+            total = 1e3 * (time.process_time() - c) / n
+            shown = ", ".join(f"{name.strip('_')} {1e3 * t / n:.1f}" for name, t in parts.items())
+            print(f"# one figure: {total:.1f} CPU ms ({shown}; the artists: the rest); {sizes / n / 1024:.0f} kB; "
+                  f"{n} figures, specan from {Path(plots.__file__).parents[1]}, load average {os.getloadavg()[0]:.1f}",
+                  flush=True)
+    finally:
+        FigureCanvasAgg.draw = render
+        for name, func in originals.items():
+            setattr(plots, name, func)
+
+
 # --------------------------------------------------------------------------- the run's own overhead
 
 #: Run in the timed process: ``specan run`` with each stage call timed; the stage times and the
 #: moments the first input started and the last one ended go to the file named by argv[1].
 _TIMED_RUN = r"""
 import json, sys, time
-record = {"stages": 0.0, "figures": 0.0, "first": None, "last": None, "count": 0}
+record = {"stages": 0.0, "first": None, "last": None, "count": 0}
 from specan import pipeline
-real_stage, real_plots, real_analyse = pipeline._stage_function, pipeline._plots, pipeline.analyse_file
+real_stage, real_analyse = pipeline._stage_function, pipeline.analyse_file
 
 def timed_stage(name):
     func = real_stage(name)
     def stage(*args, **kwargs):
-        t = time.perf_counter()
+        t = time.process_time()
         try:
             return func(*args, **kwargs)
         finally:
-            record["stages"] += time.perf_counter() - t
+            record["stages"] += time.process_time() - t
     return stage
 
 def analyse(*args, **kwargs):
     if record["first"] is None:
-        record["first"] = time.time()
+        record["first"] = time.process_time()
     try:
         return real_analyse(*args, **kwargs)
     finally:
-        record["last"], record["count"] = time.time(), record["count"] + 1
+        record["last"], record["count"] = time.process_time(), record["count"] + 1
 
 pipeline._stage_function, pipeline.analyse_file = timed_stage, analyse
 from specan.cli import main
 try:
     status = main(sys.argv[2:])
 finally:
-    record["end"] = time.time()
+    record["end"] = time.process_time()
     open(sys.argv[1], "w").write(json.dumps(record))
 sys.exit(status)
 """
 
 
 def overhead(paths_folder, count, work, checkouts):
-    """The run's own cost outside the stages, ms per spectrum, for each checkout's specan."""
+    """The run's own CPU time outside the stages, ms per spectrum, for each checkout's specan.
+
+    CPU time of the run's process (its stages timed inside it): on a machine others load, the
+    wall clock of the same run moved by a factor of two, its CPU time far less.
+    """
     import json
 
-    print(f"# specan run on {count} spectra, --jobs 1 --plots none; ms per spectrum (start-up and end: "
-          f"ms per run / {count}); load average before: {os.getloadavg()[0]:.1f}")
-    print(f"{'checkout':>28} {'wall':>7} {'stages':>7} {'outside':>8} {'start-up':>9} {'between':>8} "
+    print(f"# specan run on {count} spectra, --jobs 1 --plots none; CPU ms per spectrum (start-up and end: "
+          f"CPU ms per run / {count}); load average before: {os.getloadavg()[0]:.1f}")
+    print(f"{'checkout':>28} {'wall':>7} {'CPU':>7} {'stages':>7} {'outside':>8} {'start-up':>9} {'between':>8} "
           f"{'end':>6}   start-up s  end s")
     for _ in range(2):   # twice, alternating: the machine's load moves both alike
         for path in checkouts:
@@ -256,15 +327,15 @@ def overhead(paths_folder, count, work, checkouts):
             cmd = [sys.executable, "-c", _TIMED_RUN, str(report), "run", str(paths_folder), "--out", str(out),
                    "--jobs", "1", "--plots", "none", "--calibration", str(CALIBRATION)]
             env = dict(os.environ, PYTHONPATH=str(path))
-            t0 = time.time()
+            t0 = time.perf_counter()
             subprocess.run(cmd, env=env, cwd=str(path), stdout=subprocess.DEVNULL, stderr=subprocess.DEVNULL)
-            wall = time.time() - t0
+            wall = time.perf_counter() - t0
             r = json.loads(report.read_text())
             n = r["count"]
-            start, end = r["first"] - t0, wall - (r["last"] - t0)
+            start, end = r["first"], r["end"] - r["last"]
             between = (r["last"] - r["first"]) - r["stages"]
-            outside = wall - r["stages"]
-            print(f"{str(path)[-28:]:>28} {1e3 * wall / n:7.1f} {1e3 * r['stages'] / n:7.1f} "
+            outside = r["end"] - r["stages"]
+            print(f"{str(path)[-28:]:>28} {1e3 * wall / n:7.1f} {1e3 * r['end'] / n:7.1f} {1e3 * r['stages'] / n:7.1f} "
                   f"{1e3 * outside / n:8.1f} {1e3 * start / n:9.2f} {1e3 * between / n:8.2f} "
                   f"{1e3 * end / n:6.2f}   {start:9.2f} {end:6.2f}   load {os.getloadavg()[0]:.1f}", flush=True)
 
@@ -394,13 +465,16 @@ def main(argv=None):
     parser.add_argument("--profile", type=int, default=0, metavar="K", help="per-stage profile of K spectra")
     parser.add_argument("--compare-with", default=None, metavar="DIR",
                         help="another checkout whose specan runs the demo night (or --overhead) for comparison")
+    parser.add_argument("--figures", type=int, default=0, metavar="K", help="CPU time of the figures of K spectra")
     parser.add_argument("--overhead", type=int, default=0, metavar="N",
                         help="the run's own cost outside the stages on N spectra")
     parser.add_argument("--workdir", type=Path, default=None, help="where to write spectra and outputs")
     args = parser.parse_args(argv)
     work = args.workdir or Path(tempfile.mkdtemp(prefix="specan-bench-"))
     work.mkdir(parents=True, exist_ok=True)
-    if args.overhead:
+    if args.figures:
+        figures(make_spectra(work / "spectra_all", args.figures))
+    elif args.overhead:
         make_spectra(work / "spectra_all", args.overhead)
         folder = work / f"spectra_{args.overhead}"
         if not folder.exists():
