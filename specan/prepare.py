@@ -447,13 +447,17 @@ def normalize(spectrum, continuum=None, **fit_options):
     if continuum is None:
         continuum = fit_continuum(spectrum, **fit_options)
     wave, flux, err, mask = spectrum_arrays(spectrum)
+    meta = dict(spectrum.meta)
+    return _divided(spectrum, flux, err, mask, continuum, meta, get_info(spectrum).copy())
+
+
+def _divided(spectrum, flux, err, mask, continuum, meta, info):
+    """:func:`normalize`'s result: the arrays divided by ``continuum``, ``info`` (a copy) marked normalised."""
     c = np.asarray(u.Quantity(continuum).to_value(spectrum.flux.unit), float)
     bad = ~np.isfinite(c) | (c <= 0)
     with np.errstate(divide="ignore", invalid="ignore"):
         nflux = np.where(bad, 1.0, flux / c)
         nerr = None if err is None else np.where(bad, np.inf, err / c)
-    meta = dict(spectrum.meta)
-    info = get_info(spectrum).copy()
     info.normalized = True
     meta[META_KEY] = info
     meta["continuum"] = u.Quantity(continuum)
@@ -538,10 +542,12 @@ def prepare(spectrum, telluric=True, continuum=True, **fit_options):
         info.warn(f"low S/N ({info.snr:.1f} per pixel, from the {info.snr_source})")
     meta = dict(spectrum.meta)
     meta[META_KEY] = info
-    spec = replace_parts(spectrum, mask=mask, meta=meta)
-    if continuum:
-        spec = normalize(spec, **fit_options)
-    return spec
+    if not continuum:
+        return replace_parts(spectrum, mask=mask, meta=meta)
+    # normalize(replace_parts(spectrum, mask=mask, meta=meta)) on the arrays, one Spectrum built instead
+    # of two (specutils makes a WCS for each: a seventh of read + prepare, measured); the same numbers
+    full = _continuum_arrays(wave, flux, err, mask, path=info.path, **fit_options)
+    return _divided(spectrum, flux, err, mask, full * spectrum.flux.unit, meta, info)
 
 
 from ._callable import make_callable as _make_callable  # noqa: E402
