@@ -373,44 +373,89 @@ def _node_terms(t):
                      [0, 0, 0, 0, 0, 0, 0, 0, 0, 1.0]])       # gf
 
 
+def _guess_points():
+    """The first guess's (g, f) grid points, E = (1, g, f, g^2, f^2, gf) at each, and E's pair products."""
+    gg, ff = np.meshgrid(_GUESS_G, _GUESS_F, indexing="ij")
+    g, f = gg.ravel(), ff.ravel()
+    E = np.column_stack([np.ones_like(g), g, f, g * g, f * f, g * f])                 # (40, 6)
+    EE = E[:, _PAIRS[0]] * E[:, _PAIRS[1]] * _PAIR_MULT                                 # (40, 21)
+    return g, f, E, EE
+
+
+def _node_products(model):
+    """Every node's F = _node_terms(t) . coef (k, 6, n) and F's pair products F_i F_j, i <= j (k, 21, n).
+
+    They depend on the model only: made once per model (4.8 MB for the packaged one) instead of
+    once per spectrum, which was half of the first guess's time (measured).
+    """
+    cached = model.__dict__.get("_guess_products")
+    if cached is None:
+        t = (model.nodes - SCALE_CENTRE[0]) / SCALE_WIDTH[0]
+        F = np.ascontiguousarray(np.array([_node_terms(tk) for tk in t]) @ model.coef)
+        FF = np.ascontiguousarray(F[:, _PAIRS[0]] * F[:, _PAIRS[1]])
+        F.flags.writeable = FF.flags.writeable = False
+        cached = model.__dict__["_guess_products"] = (F, FF)
+    return cached
+
+
+#: The grid points' inverted normal matrices of the last pixel weights seen (the same for every
+#: spectrum whose usable pixels are the same: the weights are the model's, not the spectrum's).
+_GUESS_INVERSES = {}
+
+
+def _guess_inverses(model, w2, basis):
+    """Inverses of the polynomial's normal matrices G = B^T W B (B = basis * m) of every grid point.
+
+    ``w2``: the pixels' weights (0 where unusable). At a node (t fixed) the model is m = E(g, f) . F
+    with six terms, so G = sum_ij E_i E_j T_ij with T_ij = sum_pixels F_i F_j (basis_k basis_l w):
+    one matrix product over the pixels for every node and pair (no (points, pixels) arrays).
+    """
+    key = (id(model), basis.shape, hash(w2.tobytes()))
+    hit = _GUESS_INVERSES.get(key)
+    if hit is not None and np.array_equal(hit[0], w2):
+        return hit[1]
+    F, FF = _node_products(model)
+    _, _, _, EE = _guess_points()
+    P = basis.shape[1]
+    upper = np.triu_indices(P)
+    PPw = (basis[:, upper[0]] * basis[:, upper[1]]) * w2[:, None]                       # G's 10 distinct entries
+    k = FF.shape[0]
+    T = (FF.reshape(k * FF.shape[1], -1) @ PPw).reshape(k, FF.shape[1], -1)              # (k, 21, 10)
+    Gu = (EE @ T).reshape(-1, PPw.shape[1])                                              # (k * 40, 10)
+    G = np.empty((Gu.shape[0], P, P))
+    G[:, upper[0], upper[1]] = Gu
+    G[:, upper[1], upper[0]] = Gu
+    inverse = np.linalg.inv(G)
+    inverse.flags.writeable = False
+    _GUESS_INVERSES.clear()
+    _GUESS_INVERSES[key] = (w2.copy(), inverse)
+    return inverse
+
+
 def _first_guess(model, y, good, sigma, basis):
     """Scaled labels of the best chi-square on a coarse grid of each node's model.
 
     Every grid point's multiplicative polynomial is solved at once through its normal equations
     (the points' chi-squares are what :func:`_residuals` gives, to rounding; a Python loop of
     560 least-squares solves was most of a classification's time, measured): G = B^T W B and
-    b = B^T W y with B = basis * m. At a node (t fixed) the model is m = E(g, f) . F with six
-    terms, so G = sum_ij E_i E_j T_ij with T_ij = sum_pixels F_i F_j (basis_k basis_l w): 21
-    pixel sums per node instead of one per grid point and polynomial term (3x fewer operations
-    and no (points, pixels) arrays; first guess 3.4 -> 1.4-2.0 ms, measured). The chi-squares
-    agree with the direct sums to 4e-11 (relative) on the Kurucz Sun and 86 MILES and JHC stars,
-    whose best and second-best grid points are at least 3e-5 apart (measured): the same choice.
+    b = B^T W y with B = basis * m, unusable pixels weighted 0. G does not depend on the flux:
+    its inverses are kept for the next spectrum with the same usable pixels
+    (:func:`_guess_inverses`); b = E . (F B^T W y) is one product over the pixels for all nodes.
+    The chi-squares agree with the direct sums to 4e-11 (relative) on the Kurucz Sun and 86 MILES
+    and JHC stars, whose best and second-best grid points are at least 3e-5 apart (measured): the
+    same choice (tests/test_parameters.py compares it with the one-at-a-time solves).
     """
-    w2 = 1.0 / sigma[good] ** 2
-    yg, Bg = y[good], basis[good]
-    gg, ff = np.meshgrid(_GUESS_G, _GUESS_F, indexing="ij")
-    g, f = gg.ravel(), ff.ravel()
-    E = np.column_stack([np.ones_like(g), g, f, g * g, f * f, g * f])                 # (40, 6)
-    EE = E[:, _PAIRS[0]] * E[:, _PAIRS[1]] * _PAIR_MULT                                 # (40, 21)
+    w2 = np.where(good, 1.0 / sigma ** 2, 0.0)
+    yw = np.where(good, y, 0.0)
+    F, _ = _node_products(model)
+    g, f, E, _ = _guess_points()
+    k = F.shape[0]
+    inverse = _guess_inverses(model, w2, basis)
+    Fb = (F.reshape(k * F.shape[1], -1) @ (basis * (w2 * yw)[:, None])).reshape(k, F.shape[1], -1)   # (k, 6, 4)
+    b = (E @ Fb).reshape(-1, basis.shape[1])                                                     # (k * 40, 4)
+    c = (inverse @ b[:, :, None])[:, :, 0]
+    chi2 = np.sum(w2 * yw * yw) - np.einsum("gi,gi->g", b, c)
     t = (model.nodes - SCALE_CENTRE[0]) / SCALE_WIDTH[0]
-    coef = model.coef if good.all() else model.coef[:, :, good]
-    P = Bg.shape[1]
-    upper = np.triu_indices(P)
-    PPw = (Bg[:, upper[0]] * Bg[:, upper[1]]) * w2[:, None]                             # G's 10 distinct entries
-    Bw = Bg * (w2 * yg)[:, None]
-    Gu = np.empty((t.size, g.size, PPw.shape[1]))
-    b = np.empty((t.size, g.size, P))
-    for k, tk in enumerate(t):
-        F = _node_terms(tk) @ coef[k]                                                   # (6, n)
-        Gu[k] = EE @ ((F[_PAIRS[0]] * F[_PAIRS[1]]) @ PPw)
-        b[k] = E @ (F @ Bw)
-    n_points = t.size * g.size
-    G = np.empty((n_points, P, P))
-    G[:, upper[0], upper[1]] = Gu.reshape(n_points, -1)
-    G[:, upper[1], upper[0]] = Gu.reshape(n_points, -1)
-    b = b.reshape(n_points, P)
-    c = np.linalg.solve(G, b[..., None])[..., 0]
-    chi2 = np.sum(w2 * yg * yg) - np.einsum("gi,gi->g", b, c)
     x = np.column_stack([np.repeat(t, g.size), np.tile(g, t.size), np.tile(f, t.size)])
     return x[int(np.argmin(chi2))]
 
