@@ -307,9 +307,12 @@ class _ProjectedResiduals:
     dr/dp_j = -P_perp dA_j c - (A^+)^T dA_j^T r, with dA_j from the model's derivative, which is
     analytic (the model is quadratic in the labels). A numerical Jacobian cost three residual
     evaluations per LM step (~40 per fit, about half of a classification's parameter time, measured).
-    One (4, 10) x (10, n) product gives the model and its three derivatives; a thin QR of A gives
-    c, P_perp and A^+. The Jacobian is only formed when asked for (LM evaluates rejected trial
-    steps' residuals only).
+    One (4, 10) x (10, n) product gives the model and its three derivatives; the polynomial's
+    4 x 4 normal matrix G = A^T A gives c = G^-1 A^T z, P_perp u = u - A G^-1 A^T u and
+    (A^+)^T v = A G^-1 v (a thin QR of A did the same at twice the cost per LM step; squaring the
+    conditioning costs nothing here: cond(A) is 6-7.5 at every step of the fits of the Kurucz Sun and
+    75 MILES stars, and the labels are the QR's to 3e-13 of their errors, measured). The
+    Jacobian is only formed when asked for (LM evaluates rejected trial steps' residuals only).
     """
 
     def __init__(self, model, k, y, good, sigma, basis):
@@ -324,10 +327,10 @@ class _ProjectedResiduals:
             return
         rows = _design_and_gradient(scaled) @ self.coef    # m, dm/dt, dm/dg, dm/df
         A = self.wbasis * rows[0][:, None]
-        Q, R = np.linalg.qr(A)
-        c = _solve_upper(R, Q.T @ self.z)
+        G_inv = np.linalg.inv(A.T @ A)
+        c = G_inv @ (self.z @ A)
         self._x, self._r, self._jac = np.array(scaled, float), self.z - A @ c, None
-        self._parts = rows[1:], Q, R, c
+        self._parts = rows[1:], A, G_inv, c
 
     def residuals(self, scaled):
         self._at(scaled)
@@ -336,20 +339,13 @@ class _ProjectedResiduals:
     def jacobian(self, scaled):
         self._at(scaled)
         if self._jac is None:
-            dm, Q, R, c = self._parts
+            dm, A, G_inv, c = self._parts
             r = self._r
             dAc = dm * (self.wbasis @ c)                                          # dA_j c, (3, n)
-            first = dAc - (dAc @ Q) @ Q.T                                         # P_perp dA_j c
-            second = Q @ _solve_upper(R, ((dm * r) @ self.wbasis).T, trans="T")   # (A^+)^T dA_j^T r, (n, 3)
+            first = dAc - ((dAc @ A) @ G_inv) @ A.T                               # P_perp dA_j c
+            second = A @ (G_inv @ ((dm * r) @ self.wbasis).T)                     # (A^+)^T dA_j^T r, (n, 3)
             self._jac = -(first.T + second)
         return self._jac
-
-
-def _solve_upper(R, b, trans="N"):
-    """R^-1 b (or R^-T b) for the QR's small upper-triangular R (finite by construction: no check)."""
-    from scipy.linalg import solve_triangular
-
-    return solve_triangular(R, b, trans=trans, check_finite=False)
 
 
 #: The first guess's coarse grid in scaled labels, beside each node's temperature.
