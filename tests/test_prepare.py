@@ -363,6 +363,10 @@ def test_continuum_normal_equations_are_the_sparse_product_to_the_bit(kurucz_sun
             coef = solveh_banded(bands, spline.basis.T @ (w * y))
             sparse_way = BSpline(spline.knots, coef, 3)(np.clip(x, spline.lo, spline.hi))
             assert np.array_equal(spline.fit(y, w)(x), sparse_way)
+            # the reweighting's own path: LAPACK's banded solve called directly, and the curve at the
+            # anchors as the basis matrix's product, the same numbers as solveh_banded and the spline
+            assert np.array_equal(spline.coefficients(y, w), coef)
+            assert np.array_equal(spline.basis @ coef, sparse_way)
 
 
 def test_row_nanmedian_is_numpys():
