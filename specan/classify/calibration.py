@@ -101,6 +101,7 @@ class Calibration:
         self.code_version_ = None
         self._fine = None
         self._weakest = None
+        self._criteria = None
 
     # -- fitting ---------------------------------------------------------------------------
     def fit(self, spectra, labels, ids=None):
@@ -165,6 +166,7 @@ class Calibration:
                            for i, s, lc, c, x in zip(ids, sptypes, lumclasses, code, X)]
         self._fine = None
         self._weakest = None
+        self._criteria = None
         cv = cross_validate(X_fit, code, lum, self.settings)
         self.tau_, self.tau_class_, self.limits_, self.cv_ = cv["tau"], cv["tau_class"], cv["limits"], cv["summary"]
         from .. import __version__
@@ -254,7 +256,7 @@ class Calibration:
             "lumclass_prob": {number_to_lumclass(n): float(v) for n, v in zip(LUMS, est.class_prob)},
             "teff": teff, "teff_err": teff_err,
             "nearest_standards": nearest_standards(self.standards_, x, noise, ok, fine["scatter"][est.code_index],
-                                                   fine["weights"]),
+                                                   fine["weights"], criteria=self._standard_criteria()),
             "flags": [f for f, _ in raised], "notes": [n for _, n in raised], "fit_quality": quality,
             "criteria": criteria_table(x, ok, model), "calibration": self.source,
             "type_evidence": "criteria" if neighbours is None else "criteria and library neighbours",
@@ -273,6 +275,12 @@ class Calibration:
                 + flags.featureless(x, len(CRITERIA), self._weakest_standard())
                 + flags.emission(x, noise, ok, model, fine["scatter"][est.code_index], est.code)
                 + flags.composite(split, limits["split_p975"]))
+
+    def _standard_criteria(self):
+        """The standards' criteria as one (standards, criteria) array, made once per fitted calibration."""
+        if self._criteria is None:
+            self._criteria = np.array([st["criteria"] for st in self.standards_])
+        return self._criteria
 
     def _weakest_standard(self):
         """Smallest summed absolute depth of the depth criteria among the standards."""
