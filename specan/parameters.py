@@ -311,7 +311,7 @@ class _ProjectedResiduals:
     4 x 4 normal matrix G = A^T A gives c = G^-1 A^T z, P_perp u = u - A G^-1 A^T u and
     (A^+)^T v = A G^-1 v (a thin QR of A did the same at twice the cost per LM step; squaring the
     conditioning costs nothing here: cond(A) is 6-7.5 at every step of the fits of the Kurucz Sun and
-    75 MILES stars, and the labels are the QR's to 3e-13 of their errors, measured). The
+    75 MILES stars, and the labels are the QR's to 7e-13 of their errors, measured). The
     Jacobian is only formed when asked for (LM evaluates rejected trial steps' residuals only).
     """
 
@@ -319,33 +319,39 @@ class _ProjectedResiduals:
         self.coef = model.coef[k][:, good]
         w = 1.0 / sigma[good]
         self.z = y[good] * w
-        self.wbasis = basis[good] * w[:, None]
+        # pixels along rows: every product below runs along contiguous rows of length n
+        self.wbasis_t = np.ascontiguousarray((basis[good] * w[:, None]).T)    # (4, n)
         self._x = None
 
     def _at(self, scaled):
         if self._x is not None and np.array_equal(scaled, self._x):
             return
         rows = _design_and_gradient(scaled) @ self.coef    # m, dm/dt, dm/dg, dm/df
-        A = self.wbasis * rows[0][:, None]
-        G_inv = np.linalg.inv(A.T @ A)
-        c = G_inv @ (self.z @ A)
-        self._x, self._r, self._jac = np.array(scaled, float), self.z - A @ c, None
-        self._parts = rows[1:], A, G_inv, c
+        A_t = self.wbasis_t * rows[0]                       # A^T, (4, n)
+        G_inv = np.linalg.inv(A_t @ A_t.T)
+        c = G_inv @ (A_t @ self.z)
+        self._x, self._r, self._jac = np.array(scaled, float), self.z - c @ A_t, None
+        self._parts = rows[1:], A_t, G_inv, c
 
     def residuals(self, scaled):
         self._at(scaled)
         return self._r
 
-    def jacobian(self, scaled):
+    def jacobian_rows(self, scaled):
+        """The Jacobian transposed, (3, n): one row per label (what LM takes with ``col_deriv``)."""
         self._at(scaled)
         if self._jac is None:
-            dm, A, G_inv, c = self._parts
+            dm, A_t, G_inv, c = self._parts
             r = self._r
-            dAc = dm * (self.wbasis @ c)                                          # dA_j c, (3, n)
-            first = dAc - ((dAc @ A) @ G_inv) @ A.T                               # P_perp dA_j c
-            second = A @ (G_inv @ ((dm * r) @ self.wbasis).T)                     # (A^+)^T dA_j^T r, (n, 3)
-            self._jac = -(first.T + second)
+            dAc = dm * (c @ self.wbasis_t)                                        # dA_j c, (3, n)
+            first = dAc - ((dAc @ A_t.T) @ G_inv) @ A_t                           # P_perp dA_j c
+            second = (G_inv @ (self.wbasis_t @ (dm * r).T)).T @ A_t               # (A^+)^T dA_j^T r, (3, n)
+            self._jac = -(first + second)
         return self._jac
+
+    def jacobian(self, scaled):
+        """The Jacobian of :meth:`residuals`, (n, 3)."""
+        return self.jacobian_rows(scaled).T
 
 
 #: The first guess's coarse grid in scaled labels, beside each node's temperature.
@@ -478,7 +484,8 @@ def fit_labels(model, flux, good, sigma=None):
         # MINPACK's lmder (Levenberg-Marquardt) with least_squares(method="lm")'s tolerances and
         # evaluation limit, called through leastsq: the same iterations without least_squares'
         # wrapping of every call (a third of the fit's time, measured)
-        x = leastsq(fit.residuals, x, Dfun=fit.jacobian, ftol=1e-8, xtol=1e-8, gtol=1e-8, maxfev=300)[0]
+        x = leastsq(fit.residuals, x, Dfun=fit.jacobian_rows, col_deriv=True, ftol=1e-8, xtol=1e-8, gtol=1e-8,
+                    maxfev=300)[0]
         k_new = model.nearest(x)
         if k_new == k:
             break
