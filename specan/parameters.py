@@ -101,7 +101,7 @@ def broader_than_model(wave, fwhm_in):
     return float(np.median(np.broadcast_to(fwhm_in, np.shape(wave)))) > MODEL_FWHM * 1.1
 
 
-def on_model_grid(spectrum, rv=None, fwhm_in=None, notes=None, resolving_power=None):
+def on_model_grid(spectrum, rv=None, fwhm_in=None, notes=None, resolving_power=None, pixels=None):
     """Rest-frame, air, model-resolution, continuum-normalised flux on the model pixels.
 
     Parameters
@@ -117,6 +117,8 @@ def on_model_grid(spectrum, rv=None, fwhm_in=None, notes=None, resolving_power=N
         Receives a sentence per assumption.
     resolving_power : float, optional
         The spectrum's R when its metadata do not state it (e.g. estimated by another stage).
+    pixels : specan.resolution.RestPixels, optional
+        ``rest_pixels(spectrum, rv)`` when the caller has made it already.
 
     Returns
     -------
@@ -129,7 +131,7 @@ def on_model_grid(spectrum, rv=None, fwhm_in=None, notes=None, resolving_power=N
     notes = notes if notes is not None else []
     grid = model_wavelengths()
     rest = on_rest_grid(spectrum, grid, MODEL_FWHM, rv=rv, fwhm_in=fwhm_in, resolving_power=resolving_power,
-                        what="the parameter model's 3700-7350 A")
+                        what="the parameter model's 3700-7350 A", pixels=pixels)
     if rest.fwhm_assumed:
         notes.append("resolving power unknown: taken as 2.5 pixels per FWHM for the parameters")
     broader = broader_than_model(rest.wave, rest.fwhm_in)
@@ -500,7 +502,7 @@ def fit_labels(model, flux, good, sigma=None):
     return {"labels": labels, "errors": errors, "node": k, "chi2_reduced": float(chi2)}
 
 
-def measure(spectrum, rv=None, model=None, fwhm_in=None, resolving_power=None):
+def measure(spectrum, rv=None, model=None, fwhm_in=None, resolving_power=None, pixels=None):
     """Teff, log g and [Fe/H] of a spectrum, with uncertainties (see the module docstring).
 
     Parameters
@@ -514,6 +516,8 @@ def measure(spectrum, rv=None, model=None, fwhm_in=None, resolving_power=None):
         FWHM of the spectrum (Angstrom) when its metadata give no resolving power.
     resolving_power : float, optional
         R of the spectrum when its metadata give none (e.g. estimated from its lines).
+    pixels : specan.resolution.RestPixels, optional
+        ``rest_pixels(spectrum, rv)`` when the caller has made it already.
 
     Returns
     -------
@@ -526,7 +530,7 @@ def measure(spectrum, rv=None, model=None, fwhm_in=None, resolving_power=None):
     notes = []
     model = model or default_model()
     flux, good, broader = on_model_grid(spectrum, rv=rv, fwhm_in=fwhm_in, notes=notes,
-                                        resolving_power=resolving_power)
+                                        resolving_power=resolving_power, pixels=pixels)
     res = fit_labels(model, flux, good)
     k = res["node"]
     teff, logg, feh = res["labels"]

@@ -20,6 +20,7 @@ import numpy as np
 from ..errors import AnalysisError, ReadError
 from ..mktypes import lumclass_to_number, marks_emission, number_to_lumclass, sptype_to_code
 from ..obsinfo import get_info
+from ..resolution import rest_pixels
 from . import flags, gravity, neighbours as library
 from .atmosphere import atmosphere_columns, gravity_agreement, measure_atmosphere
 from .criteria import CRITERIA, EMISSION_SENSITIVE, criteria_names, definitions
@@ -200,10 +201,12 @@ class Calibration:
         (:func:`specan.classify.classify` asks for it with the shipped calibration).
         """
         meas = spectrum_criteria(spectrum, self.resolution, rv=rv, resolving_power=resolving_power)
+        # the pixels at rest in air, sorted, made once for both grids
+        pixels = rest_pixels(spectrum, meas["rv"]) if (neighbours or parameters) else None
         evidence = (_library_evidence(spectrum, meas["rv"], meas["notes"], meas["input_fwhm"],
-                                      meas["input_resolving_power"]) if neighbours else None)
+                                      meas["input_resolving_power"], pixels) if neighbours else None)
         atmosphere = (measure_atmosphere(spectrum, meas["rv"], meas["notes"], meas["input_fwhm"],
-                                         meas["input_resolving_power"]) if parameters else None)
+                                         meas["input_resolving_power"], pixels) if parameters else None)
         weights = None
         if atmosphere is not None and atmosphere["broader_than_model"]:
             meas["notes"].append("log g not used for the luminosity class: the spectrum is broader than the "
@@ -360,13 +363,15 @@ class Calibration:
         return cls.from_dict(data, path)
 
 
-def _library_evidence(spectrum, rv, notes, fwhm=None, resolving_power=None):
+def _library_evidence(spectrum, rv, notes, fwhm=None, resolving_power=None, pixels=None):
     """The spectrum's comparison with the library stars, or None (with a note) where it cannot be made.
 
-    ``fwhm`` (A) or ``resolving_power``: the resolution the criteria took the spectrum to have.
+    ``fwhm`` (A) or ``resolving_power``: the resolution the criteria took the spectrum to have;
+    ``pixels``: its :func:`specan.resolution.rest_pixels` at ``rv`` when made already.
     """
     try:
-        return library.measure(spectrum, rv=rv, fwhm_in=fwhm, resolving_power=resolving_power, notes=notes)
+        return library.measure(spectrum, rv=rv, fwhm_in=fwhm, resolving_power=resolving_power, notes=notes,
+                               pixels=pixels)
     except AnalysisError as exc:
         notes.append(f"type from the criteria alone, no library comparison: {getattr(exc, 'reason', exc)}")
         return None

@@ -119,7 +119,7 @@ def default_reference():
     return ReferenceSet.load()
 
 
-def on_grid(spectrum, rv=None, fwhm_in=None, resolving_power=None, notes=None, telluric=True):
+def on_grid(spectrum, rv=None, fwhm_in=None, resolving_power=None, notes=None, telluric=True, pixels=None):
     """A spectrum at rest, smoothed to :data:`FWHM`, normalised by specan's ``prepare``, on :func:`wavelengths`.
 
     Parameters
@@ -137,6 +137,8 @@ def on_grid(spectrum, rv=None, fwhm_in=None, resolving_power=None, notes=None, t
         Receives a sentence per assumption.
     telluric : bool
         Mask the telluric bands (:func:`specan.prepare.prepare`).
+    pixels : specan.resolution.RestPixels, optional
+        ``rest_pixels(spectrum, rv)`` when the caller has made it already.
 
     Returns
     -------
@@ -148,7 +150,7 @@ def on_grid(spectrum, rv=None, fwhm_in=None, resolving_power=None, notes=None, t
     notes = notes if notes is not None else []
     grid = wavelengths()
     rest = on_rest_grid(spectrum, grid, FWHM, rv=rv, fwhm_in=fwhm_in, resolving_power=resolving_power,
-                        positive=True, what="the library comparison's 3650-7350 A")
+                        positive=True, what="the library comparison's 3650-7350 A", pixels=pixels)
     if float(np.median(np.broadcast_to(rest.fwhm_in, rest.wave.shape))) > FWHM * 1.1:
         notes.append(f"spectrum broader than the library comparison's {FWHM:g} A FWHM: its neighbours are less "
                      "alike than they look")
@@ -278,7 +280,8 @@ def compare(flux, good, reference=None, exclude=()):
     return Evidence(msd, int(good.sum()), reference)
 
 
-def measure(spectrum, rv=None, fwhm_in=None, resolving_power=None, notes=None, reference=None):
+def measure(spectrum, rv=None, fwhm_in=None, resolving_power=None, notes=None, reference=None, pixels=None):
     """:class:`Evidence` of a spectrum (see :func:`on_grid` for the arguments)."""
-    flux, good = on_grid(spectrum, rv=rv, fwhm_in=fwhm_in, resolving_power=resolving_power, notes=notes)
+    flux, good = on_grid(spectrum, rv=rv, fwhm_in=fwhm_in, resolving_power=resolving_power, notes=notes,
+                         pixels=pixels)
     return compare(flux, good, reference)
