@@ -402,38 +402,62 @@ def _node_products(model):
     return cached
 
 
-#: The grid points' inverted normal matrices of the last pixel weights seen (the same for every
-#: spectrum whose usable pixels are the same: the weights are the model's, not the spectrum's).
-_GUESS_INVERSES = {}
+#: Every grid point's normal-matrix entries summed over all the pixels, for the last pixel weights seen
+#: (the model's own scatter, the same for every spectrum classified: the weights are the model's).
+_GUESS_SUMS = {}
 
 
-def _guess_inverses(model, w2, basis):
-    """Inverses of the polynomial's normal matrices G = B^T W B (B = basis * m) of every grid point.
+def _guess_normal_entries(model, w2, basis, pixels=None):
+    """G's 10 distinct entries (k * 40, 10) of every grid point, summed over ``pixels`` (default: all).
 
-    ``w2``: the pixels' weights (0 where unusable). At a node (t fixed) the model is m = E(g, f) . F
-    with six terms, so G = sum_ij E_i E_j T_ij with T_ij = sum_pixels F_i F_j (basis_k basis_l w):
-    one matrix product over the pixels for every node and pair (no (points, pixels) arrays).
+    At a node (t fixed) the model is m = E(g, f) . F with six terms, so G = B^T W B (B = basis * m)
+    is sum_ij E_i E_j T_ij with T_ij = sum_pixels F_i F_j (basis_k basis_l w): one matrix product over
+    the pixels for every node and pair (no (points, pixels) arrays).
     """
-    key = (id(model), basis.shape, hash(w2.tobytes()))
-    hit = _GUESS_INVERSES.get(key)
-    if hit is not None and np.array_equal(hit[0], w2):
-        return hit[1]
-    F, FF = _node_products(model)
+    _, FF = _node_products(model)
     _, _, _, EE = _guess_points()
     P = basis.shape[1]
     upper = np.triu_indices(P)
-    PPw = (basis[:, upper[0]] * basis[:, upper[1]]) * w2[:, None]                       # G's 10 distinct entries
     k = FF.shape[0]
-    T = (FF.reshape(k * FF.shape[1], -1) @ PPw).reshape(k, FF.shape[1], -1)              # (k, 21, 10)
-    Gu = (EE @ T).reshape(-1, PPw.shape[1])                                              # (k * 40, 10)
+    if pixels is None:
+        PPw = (basis[:, upper[0]] * basis[:, upper[1]]) * w2[:, None]
+        T = FF.reshape(k * FF.shape[1], -1) @ PPw
+    else:
+        PPw = (basis[pixels][:, upper[0]] * basis[pixels][:, upper[1]]) * w2[pixels, None]
+        T = FF[:, :, pixels].reshape(k * FF.shape[1], -1) @ PPw
+    return (EE @ T.reshape(k, FF.shape[1], -1)).reshape(-1, PPw.shape[1])
+
+
+def _guess_normal_matrices(model, w2, good, basis):
+    """The polynomial's normal matrices G = B^T W B (B = basis * m) of every grid point, over the ``good`` pixels.
+
+    The sums over all pixels depend on the model and its weights only: kept (:data:`_GUESS_SUMS`),
+    and a spectrum's unusable pixels (the grid's ends beyond its coverage, which move with its
+    velocity; masked pixels) are taken off them, or, where most are unusable, its usable pixels
+    summed afresh. Taking off changes the sums in rounding only (tests/test_parameters.py: the
+    same grid point as the one-at-a-time solves).
+    """
+    key = (id(model), basis.shape, hash(w2.tobytes()))
+    hit = _GUESS_SUMS.get(key)
+    if hit is None or not np.array_equal(hit[0], w2):
+        hit = (w2.copy(), _guess_normal_entries(model, w2, basis))
+        hit[1].flags.writeable = False
+        _GUESS_SUMS.clear()
+        _GUESS_SUMS[key] = hit
+    bad = ~good
+    n_bad = int(bad.sum())
+    if n_bad == 0:
+        Gu = hit[1]
+    elif n_bad <= good.size // 2:
+        Gu = hit[1] - _guess_normal_entries(model, w2, basis, np.flatnonzero(bad))
+    else:
+        Gu = _guess_normal_entries(model, w2, basis, np.flatnonzero(good))
+    P = basis.shape[1]
+    upper = np.triu_indices(P)
     G = np.empty((Gu.shape[0], P, P))
     G[:, upper[0], upper[1]] = Gu
     G[:, upper[1], upper[0]] = Gu
-    inverse = np.linalg.inv(G)
-    inverse.flags.writeable = False
-    _GUESS_INVERSES.clear()
-    _GUESS_INVERSES[key] = (w2.copy(), inverse)
-    return inverse
+    return G
 
 
 def _first_guess(model, y, good, sigma, basis):
@@ -442,22 +466,23 @@ def _first_guess(model, y, good, sigma, basis):
     Every grid point's multiplicative polynomial is solved at once through its normal equations
     (the points' chi-squares are what :func:`_residuals` gives, to rounding; a Python loop of
     560 least-squares solves was most of a classification's time, measured): G = B^T W B and
-    b = B^T W y with B = basis * m, unusable pixels weighted 0. G does not depend on the flux:
-    its inverses are kept for the next spectrum with the same usable pixels
-    (:func:`_guess_inverses`); b = E . (F B^T W y) is one product over the pixels for all nodes.
-    The chi-squares agree with the direct sums to 4e-11 (relative) on the Kurucz Sun and 86 MILES
-    and JHC stars, whose best and second-best grid points are at least 3e-5 apart (measured): the
-    same choice (tests/test_parameters.py compares it with the one-at-a-time solves).
+    b = B^T W y with B = basis * m. G does not depend on the flux: its sums over all pixels are
+    kept, less the spectrum's unusable pixels (:func:`_guess_normal_matrices`); b = E . (F B^T W y)
+    is one product over the pixels for all nodes. The chi-squares agree with the direct sums to
+    4e-11 (relative) on the Kurucz Sun and 86 MILES and JHC stars, whose best and second-best grid
+    points are at least 3e-5 apart (measured): the same choice (tests/test_parameters.py compares
+    it with the one-at-a-time solves).
     """
-    w2 = np.where(good, 1.0 / sigma ** 2, 0.0)
+    w2_all = 1.0 / sigma ** 2
+    w2 = np.where(good, w2_all, 0.0)
     yw = np.where(good, y, 0.0)
     F, _ = _node_products(model)
     g, f, E, _ = _guess_points()
     k = F.shape[0]
-    inverse = _guess_inverses(model, w2, basis)
+    G = _guess_normal_matrices(model, w2_all, good, basis)
     Fb = (F.reshape(k * F.shape[1], -1) @ (basis * (w2 * yw)[:, None])).reshape(k, F.shape[1], -1)   # (k, 6, 4)
     b = (E @ Fb).reshape(-1, basis.shape[1])                                                     # (k * 40, 4)
-    c = (inverse @ b[:, :, None])[:, :, 0]
+    c = np.linalg.solve(G, b[:, :, None])[:, :, 0]
     chi2 = np.sum(w2 * yw * yw) - np.einsum("gi,gi->g", b, c)
     t = (model.nodes - SCALE_CENTRE[0]) / SCALE_WIDTH[0]
     x = np.column_stack([np.repeat(t, g.size), np.tile(g, t.size), np.tile(f, t.size)])

@@ -175,31 +175,38 @@ def _basis():
     return P, PP
 
 
-#: The normal matrices' inverses and pixel counts of the last comparison pixels seen: they depend on
-#: the usable pixels only, the same for every spectrum of a set-up that covers the grid alike.
-_LAST_PIXELS = {}
+#: Every library star's normal matrix and pixel count summed over all the comparison pixels, for the
+#: last reference set seen (set-up work: the same for every star compared).
+_ALL_PIXELS = {}
 
 
 def _pixel_terms(good, reference):
-    """Inverses of every library star's normal matrix (n_stars, K, K) and the pixels compared, for ``good``.
+    """Every library star's normal matrix (n_stars, K, K) and the pixels compared, over the ``good`` pixels.
 
-    Kept for the next star with the same usable pixels: the normal matrices (one product with the
-    stars' squared fluxes, a third of the reference set's memory) are then not formed again.
+    The sums over all pixels depend on the reference set only: kept, and a star's unusable pixels
+    (the grid's ends beyond its coverage, which move with its velocity; masked pixels) are taken
+    off them, or, where most are unusable, its usable pixels summed afresh. Either way the stars'
+    squared fluxes (a third of the set's memory) are not read whole again; taking off changes the
+    sums in rounding only (tests/test_classify.py: the per-star fits).
     """
-    key = (id(reference), hash(good.tobytes()))
-    hit = _LAST_PIXELS.get(key)
-    if hit is not None and hit[0] is reference and np.array_equal(hit[1], good):
-        return hit[2], hit[3]
     _, PP = _basis()
     K = int(round(np.sqrt(PP.shape[1])))
-    w = good.astype(float)
-    G = (reference.flux_sq @ (PP * w[:, None])).reshape(-1, K, K)
-    inverse = np.linalg.inv(G + 1e-9 * np.eye(K))
-    n = reference.good_f @ w
-    inverse.flags.writeable = n.flags.writeable = False
-    _LAST_PIXELS.clear()
-    _LAST_PIXELS[key] = (reference, good.copy(), inverse, n)
-    return inverse, n
+    hit = _ALL_PIXELS.get(id(reference))
+    if hit is None or hit[0] is not reference:
+        hit = (reference, reference.flux_sq @ PP, reference.good_f.sum(axis=1))
+        _ALL_PIXELS.clear()
+        _ALL_PIXELS[id(reference)] = hit
+    bad = np.flatnonzero(~good)
+    if bad.size == 0:
+        G, n = hit[1], hit[2]
+    elif bad.size <= good.size // 2:
+        G = hit[1] - reference.flux_sq[:, bad] @ PP[bad]
+        n = hit[2] - reference.good_f[:, bad].sum(axis=1)
+    else:
+        use = np.flatnonzero(good)
+        G = reference.flux_sq[:, use] @ PP[use]
+        n = reference.good_f[:, use].sum(axis=1)
+    return G.reshape(-1, K, K), n
 
 
 def mean_square_differences(flux, good, reference):
@@ -209,8 +216,8 @@ def mean_square_differences(flux, good, reference):
     :data:`POLY_DEGREE`) over the pixels both have. All the normal equations come from matrix
     products over the pixels (the (P_k P_l) outer products weighted by R_s^2), then one batched
     solve: no loop over the stars (459 stars x 926 pixels: 0.6 ms, measured). The normal
-    matrices depend on the usable pixels only, and are kept for the next star that has the same
-    (:func:`_pixel_terms`); the star's own flux costs two products.
+    matrices do not depend on the star's flux: their sums over all pixels are kept, less the star's
+    unusable pixels (:func:`_pixel_terms`); the star's own flux costs two products.
 
     Returns
     -------
@@ -221,10 +228,10 @@ def mean_square_differences(flux, good, reference):
     good = np.asarray(good, bool)
     w = good.astype(float)
     y = np.where(good, flux, 0.0)
-    inverse, n = _pixel_terms(good, reference)
+    G, n = _pixel_terms(good, reference)
     b = reference.flux @ (P * (w * y)[:, None])
     yy = reference.good_f @ (w * y * y)
-    c = (inverse @ b[:, :, None])[:, :, 0]
+    c = np.linalg.solve(G + 1e-9 * np.eye(G.shape[-1]), b[..., None])[..., 0]
     chi2 = np.clip(yy - np.einsum("sk,sk->s", b, c), 0.0, None)
     return chi2 / np.maximum(n, 1.0), n
 
