@@ -390,7 +390,9 @@ def _node_products(model):
     """Every node's F = _node_terms(t) . coef (k, 6, n) and F's pair products F_i F_j, i <= j (k, 21, n).
 
     They depend on the model only: made once per model (4.8 MB for the packaged one) instead of
-    once per spectrum, which was half of the first guess's time (measured).
+    once per spectrum. With them and the kept sums of :func:`_guess_normal_matrices` the first
+    guess took 0.40 ms per spectrum against 2.3 ms before, a new pixel mask every call (measured
+    side by side on a loaded machine).
     """
     cached = model.__dict__.get("_guess_products")
     if cached is None:
