@@ -3,9 +3,19 @@
 Run:  python benchmarks/bench_read.py [--n 1000] [--pixels 4000]
 Prints ms per spectrum for specan.read, for specan.read + prepare, for fits.getdata
 alone, and the ratios.
+
+Side by side with another checkout (e.g. an older commit, ``git archive <commit> | tar -x -C DIR``):
+``python benchmarks/bench_read.py --before DIR [--rounds 3]`` times this same harness on DIR's
+``specan`` and on this one's, alternately (the same files), and prints the median over the rounds
+of each figure, before and after, with their ratio. Set ``OPENBLAS_NUM_THREADS=1`` for figures
+comparable with the README's.
 """
 
 import argparse
+import json
+import os
+import subprocess
+import sys
 import tempfile
 import time
 from pathlib import Path
@@ -13,7 +23,9 @@ from pathlib import Path
 import numpy as np
 from astropy.io import fits
 
-import specan
+ROOT = Path(__file__).resolve().parents[1]
+#: Issue 12's target for read + prepare (ms per 4,000-pixel spectrum, one core).
+TARGET_MS = 8.0
 
 
 def make_files(folder: Path, n: int, pixels: int):
@@ -34,31 +46,68 @@ def make_files(folder: Path, n: int, pixels: int):
     return paths
 
 
+def timings(paths):
+    """{figure: ms per spectrum} of the bare read, specan.read and specan.read + prepare of ``paths``."""
+    import specan
+
+    specan.prepare(specan.read(paths[0]))  # warm imports
+    out = {}
+    for name, fn in (("astropy fits.getdata", lambda p: fits.getdata(p, header=True)),
+                     ("specan.read", specan.read),
+                     ("specan.read + prepare", lambda p: specan.prepare(specan.read(p)))):
+        t0 = time.perf_counter()
+        for p in paths:
+            fn(p)
+        out[name] = 1e3 * (time.perf_counter() - t0) / len(paths)
+    return out
+
+
+def side_by_side(args, folder):
+    """This harness on ``args.before``'s specan and on this checkout's, alternately, on the same files."""
+    runs = {"before": [], "after": []}
+    for _ in range(args.rounds):
+        for label, path in (("before", Path(args.before).resolve()), ("after", ROOT)):
+            env = dict(os.environ, PYTHONPATH=str(path))
+            out = subprocess.run([sys.executable, __file__, "--files", str(folder), "--json"], env=env, check=True,
+                                 capture_output=True, text=True).stdout
+            runs[label].append(json.loads(out.strip().splitlines()[-1]))
+    print(f"side by side: before = {Path(args.before).resolve()}, after = {ROOT}; {args.rounds} rounds of "
+          f"{args.n} spectra of {args.pixels} pixels, median over the rounds")
+    print(f"  {'ms per spectrum':24s} {'before':>8s} {'after':>8s} {'ratio':>7s}")
+    for name in runs["after"][0]:
+        b = float(np.median([r[name] for r in runs["before"]]))
+        a = float(np.median([r[name] for r in runs["after"]]))
+        print(f"  {name:24s} {b:8.2f} {a:8.2f} {b / a:6.2f}x")
+    a = float(np.median([r["specan.read + prepare"] for r in runs["after"]]))
+    print(f"  target: read + prepare <= {TARGET_MS:g} ms: {'met' if a <= TARGET_MS else 'not met'} ({a:.2f} ms)")
+
+
 def main():
     ap = argparse.ArgumentParser()
     ap.add_argument("--n", type=int, default=1000)
     ap.add_argument("--pixels", type=int, default=4000)
+    ap.add_argument("--before", help="another checkout to time side by side with this one")
+    ap.add_argument("--rounds", type=int, default=3)
+    ap.add_argument("--files", help=argparse.SUPPRESS)     # the side-by-side runs' shared files
+    ap.add_argument("--json", action="store_true", help=argparse.SUPPRESS)
     args = ap.parse_args()
+    if args.files:
+        t = timings(sorted(Path(args.files).glob("s*.fits")))
+        print(json.dumps(t) if args.json else t)
+        return
     with tempfile.TemporaryDirectory() as tmp:
         paths = make_files(Path(tmp), args.n, args.pixels)
-        specan.prepare(specan.read(paths[0]))  # warm imports
-        t0 = time.perf_counter()
-        for p in paths:
-            fits.getdata(p, header=True)
-        t_fits = time.perf_counter() - t0
-        t0 = time.perf_counter()
-        for p in paths:
-            specan.read(p)
-        t_read = time.perf_counter() - t0
-        t0 = time.perf_counter()
-        for p in paths:
-            specan.prepare(specan.read(p))
-        t_prep = time.perf_counter() - t0
-    n = args.n
+        if args.before:
+            side_by_side(args, Path(tmp))
+            return
+        t = timings(paths)
+    n, bare = args.n, t["astropy fits.getdata"]
     print(f"spectra: {n}, pixels each: {args.pixels}")
-    print(f"astropy fits.getdata:      {1e3 * t_fits / n:8.2f} ms/spectrum")
-    print(f"specan.read:               {1e3 * t_read / n:8.2f} ms/spectrum  (x{t_read / t_fits:.1f} of bare read)")
-    print(f"specan.read + prepare:     {1e3 * t_prep / n:8.2f} ms/spectrum  (x{t_prep / t_fits:.1f} of bare read)")
+    print(f"astropy fits.getdata:      {bare:8.2f} ms/spectrum")
+    print(f"specan.read:               {t['specan.read']:8.2f} ms/spectrum  (x{t['specan.read'] / bare:.1f} of bare read)")
+    print(f"specan.read + prepare:     {t['specan.read + prepare']:8.2f} ms/spectrum  "
+          f"(x{t['specan.read + prepare'] / bare:.1f} of bare read)")
+    print(f"target: read + prepare <= {TARGET_MS:g} ms: {'met' if t['specan.read + prepare'] <= TARGET_MS else 'not met'}")
 
 
 if __name__ == "__main__":

@@ -101,7 +101,7 @@ def broader_than_model(wave, fwhm_in):
     return float(np.median(np.broadcast_to(fwhm_in, np.shape(wave)))) > MODEL_FWHM * 1.1
 
 
-def on_model_grid(spectrum, rv=None, fwhm_in=None, notes=None, resolving_power=None):
+def on_model_grid(spectrum, rv=None, fwhm_in=None, notes=None, resolving_power=None, pixels=None):
     """Rest-frame, air, model-resolution, continuum-normalised flux on the model pixels.
 
     Parameters
@@ -117,6 +117,8 @@ def on_model_grid(spectrum, rv=None, fwhm_in=None, notes=None, resolving_power=N
         Receives a sentence per assumption.
     resolving_power : float, optional
         The spectrum's R when its metadata do not state it (e.g. estimated by another stage).
+    pixels : specan.resolution.RestPixels, optional
+        ``rest_pixels(spectrum, rv)`` when the caller has made it already.
 
     Returns
     -------
@@ -129,7 +131,7 @@ def on_model_grid(spectrum, rv=None, fwhm_in=None, notes=None, resolving_power=N
     notes = notes if notes is not None else []
     grid = model_wavelengths()
     rest = on_rest_grid(spectrum, grid, MODEL_FWHM, rv=rv, fwhm_in=fwhm_in, resolving_power=resolving_power,
-                        what="the parameter model's 3700-7350 A")
+                        what="the parameter model's 3700-7350 A", pixels=pixels)
     if rest.fwhm_assumed:
         notes.append("resolving power unknown: taken as 2.5 pixels per FWHM for the parameters")
     broader = broader_than_model(rest.wave, rest.fwhm_in)
@@ -307,49 +309,51 @@ class _ProjectedResiduals:
     dr/dp_j = -P_perp dA_j c - (A^+)^T dA_j^T r, with dA_j from the model's derivative, which is
     analytic (the model is quadratic in the labels). A numerical Jacobian cost three residual
     evaluations per LM step (~40 per fit, about half of a classification's parameter time, measured).
-    One (4, 10) x (10, n) product gives the model and its three derivatives; a thin QR of A gives
-    c, P_perp and A^+. The Jacobian is only formed when asked for (LM evaluates rejected trial
-    steps' residuals only).
+    One (4, 10) x (10, n) product gives the model and its three derivatives; the polynomial's
+    4 x 4 normal matrix G = A^T A gives c = G^-1 A^T z, P_perp u = u - A G^-1 A^T u and
+    (A^+)^T v = A G^-1 v (a thin QR of A did the same at twice the cost per LM step; squaring the
+    conditioning costs nothing here: cond(A) is 6-7.5 at every step of the fits of the Kurucz Sun and
+    75 MILES stars, and the labels are the QR's to 7e-13 of their errors, measured). The
+    Jacobian is only formed when asked for (LM evaluates rejected trial steps' residuals only).
     """
 
     def __init__(self, model, k, y, good, sigma, basis):
         self.coef = model.coef[k][:, good]
         w = 1.0 / sigma[good]
         self.z = y[good] * w
-        self.wbasis = basis[good] * w[:, None]
+        # pixels along rows: every product below runs along contiguous rows of length n
+        self.wbasis_t = np.ascontiguousarray((basis[good] * w[:, None]).T)    # (4, n)
         self._x = None
 
     def _at(self, scaled):
         if self._x is not None and np.array_equal(scaled, self._x):
             return
         rows = _design_and_gradient(scaled) @ self.coef    # m, dm/dt, dm/dg, dm/df
-        A = self.wbasis * rows[0][:, None]
-        Q, R = np.linalg.qr(A)
-        c = _solve_upper(R, Q.T @ self.z)
-        self._x, self._r, self._jac = np.array(scaled, float), self.z - A @ c, None
-        self._parts = rows[1:], Q, R, c
+        A_t = self.wbasis_t * rows[0]                       # A^T, (4, n)
+        G_inv = np.linalg.inv(A_t @ A_t.T)
+        c = G_inv @ (A_t @ self.z)
+        self._x, self._r, self._jac = np.array(scaled, float), self.z - c @ A_t, None
+        self._parts = rows[1:], A_t, G_inv, c
 
     def residuals(self, scaled):
         self._at(scaled)
         return self._r
 
-    def jacobian(self, scaled):
+    def jacobian_rows(self, scaled):
+        """The Jacobian transposed, (3, n): one row per label (what LM takes with ``col_deriv``)."""
         self._at(scaled)
         if self._jac is None:
-            dm, Q, R, c = self._parts
+            dm, A_t, G_inv, c = self._parts
             r = self._r
-            dAc = dm * (self.wbasis @ c)                                          # dA_j c, (3, n)
-            first = dAc - (dAc @ Q) @ Q.T                                         # P_perp dA_j c
-            second = Q @ _solve_upper(R, ((dm * r) @ self.wbasis).T, trans="T")   # (A^+)^T dA_j^T r, (n, 3)
-            self._jac = -(first.T + second)
+            dAc = dm * (c @ self.wbasis_t)                                        # dA_j c, (3, n)
+            first = dAc - ((dAc @ A_t.T) @ G_inv) @ A_t                           # P_perp dA_j c
+            second = (G_inv @ (self.wbasis_t @ (dm * r).T)).T @ A_t               # (A^+)^T dA_j^T r, (3, n)
+            self._jac = -(first + second)
         return self._jac
 
-
-def _solve_upper(R, b, trans="N"):
-    """R^-1 b (or R^-T b) for the QR's small upper-triangular R (finite by construction: no check)."""
-    from scipy.linalg import solve_triangular
-
-    return solve_triangular(R, b, trans=trans, check_finite=False)
+    def jacobian(self, scaled):
+        """The Jacobian of :meth:`residuals`, (n, 3)."""
+        return self.jacobian_rows(scaled).T
 
 
 #: The first guess's coarse grid in scaled labels, beside each node's temperature.
@@ -373,44 +377,116 @@ def _node_terms(t):
                      [0, 0, 0, 0, 0, 0, 0, 0, 0, 1.0]])       # gf
 
 
+def _guess_points():
+    """The first guess's (g, f) grid points, E = (1, g, f, g^2, f^2, gf) at each, and E's pair products."""
+    gg, ff = np.meshgrid(_GUESS_G, _GUESS_F, indexing="ij")
+    g, f = gg.ravel(), ff.ravel()
+    E = np.column_stack([np.ones_like(g), g, f, g * g, f * f, g * f])                 # (40, 6)
+    EE = E[:, _PAIRS[0]] * E[:, _PAIRS[1]] * _PAIR_MULT                                 # (40, 21)
+    return g, f, E, EE
+
+
+def _node_products(model):
+    """Every node's F = _node_terms(t) . coef (k, 6, n) and F's pair products F_i F_j, i <= j (k, 21, n).
+
+    They depend on the model only: made once per model (4.8 MB for the packaged one) instead of
+    once per spectrum. With them and the kept sums of :func:`_guess_normal_matrices` the first
+    guess took 0.40 ms per spectrum against 2.3 ms before, a new pixel mask every call (measured
+    side by side on a loaded machine).
+    """
+    cached = model.__dict__.get("_guess_products")
+    if cached is None:
+        t = (model.nodes - SCALE_CENTRE[0]) / SCALE_WIDTH[0]
+        F = np.ascontiguousarray(np.array([_node_terms(tk) for tk in t]) @ model.coef)
+        FF = np.ascontiguousarray(F[:, _PAIRS[0]] * F[:, _PAIRS[1]])
+        F.flags.writeable = FF.flags.writeable = False
+        cached = model.__dict__["_guess_products"] = (F, FF)
+    return cached
+
+
+#: Every grid point's normal-matrix entries summed over all the pixels, for the last pixel weights seen
+#: (the model's own scatter, the same for every spectrum classified: the weights are the model's).
+_GUESS_SUMS = {}
+
+
+def _guess_normal_entries(model, w2, basis, pixels=None):
+    """G's 10 distinct entries (k * 40, 10) of every grid point, summed over ``pixels`` (default: all).
+
+    At a node (t fixed) the model is m = E(g, f) . F with six terms, so G = B^T W B (B = basis * m)
+    is sum_ij E_i E_j T_ij with T_ij = sum_pixels F_i F_j (basis_k basis_l w): one matrix product over
+    the pixels for every node and pair (no (points, pixels) arrays).
+    """
+    _, FF = _node_products(model)
+    _, _, _, EE = _guess_points()
+    P = basis.shape[1]
+    upper = np.triu_indices(P)
+    k = FF.shape[0]
+    if pixels is None:
+        PPw = (basis[:, upper[0]] * basis[:, upper[1]]) * w2[:, None]
+        T = FF.reshape(k * FF.shape[1], -1) @ PPw
+    else:
+        PPw = (basis[pixels][:, upper[0]] * basis[pixels][:, upper[1]]) * w2[pixels, None]
+        T = FF[:, :, pixels].reshape(k * FF.shape[1], -1) @ PPw
+    return (EE @ T.reshape(k, FF.shape[1], -1)).reshape(-1, PPw.shape[1])
+
+
+def _guess_normal_matrices(model, w2, good, basis):
+    """The polynomial's normal matrices G = B^T W B (B = basis * m) of every grid point, over the ``good`` pixels.
+
+    The sums over all pixels depend on the model and its weights only: kept (:data:`_GUESS_SUMS`),
+    and a spectrum's unusable pixels (the grid's ends beyond its coverage, which move with its
+    velocity; masked pixels) are taken off them, or, where most are unusable, its usable pixels
+    summed afresh. Taking off changes the sums in rounding only (tests/test_parameters.py: the
+    same grid point as the one-at-a-time solves).
+    """
+    key = (id(model), basis.shape, hash(w2.tobytes()))
+    hit = _GUESS_SUMS.get(key)
+    if hit is None or not np.array_equal(hit[0], w2):
+        hit = (w2.copy(), _guess_normal_entries(model, w2, basis))
+        hit[1].flags.writeable = False
+        _GUESS_SUMS.clear()
+        _GUESS_SUMS[key] = hit
+    bad = ~good
+    n_bad = int(bad.sum())
+    if n_bad == 0:
+        Gu = hit[1]
+    elif n_bad <= good.size // 2:
+        Gu = hit[1] - _guess_normal_entries(model, w2, basis, np.flatnonzero(bad))
+    else:
+        Gu = _guess_normal_entries(model, w2, basis, np.flatnonzero(good))
+    P = basis.shape[1]
+    upper = np.triu_indices(P)
+    G = np.empty((Gu.shape[0], P, P))
+    G[:, upper[0], upper[1]] = Gu
+    G[:, upper[1], upper[0]] = Gu
+    return G
+
+
 def _first_guess(model, y, good, sigma, basis):
     """Scaled labels of the best chi-square on a coarse grid of each node's model.
 
     Every grid point's multiplicative polynomial is solved at once through its normal equations
     (the points' chi-squares are what :func:`_residuals` gives, to rounding; a Python loop of
     560 least-squares solves was most of a classification's time, measured): G = B^T W B and
-    b = B^T W y with B = basis * m. At a node (t fixed) the model is m = E(g, f) . F with six
-    terms, so G = sum_ij E_i E_j T_ij with T_ij = sum_pixels F_i F_j (basis_k basis_l w): 21
-    pixel sums per node instead of one per grid point and polynomial term (3x fewer operations
-    and no (points, pixels) arrays; first guess 3.4 -> 1.4-2.0 ms, measured). The chi-squares
-    agree with the direct sums to 4e-11 (relative) on the Kurucz Sun and 86 MILES and JHC stars,
-    whose best and second-best grid points are at least 3e-5 apart (measured): the same choice.
+    b = B^T W y with B = basis * m. G does not depend on the flux: its sums over all pixels are
+    kept, less the spectrum's unusable pixels (:func:`_guess_normal_matrices`); b = E . (F B^T W y)
+    is one product over the pixels for all nodes. The chi-squares agree with the direct sums to
+    4e-11 (relative) on the Kurucz Sun and 86 MILES and JHC stars, whose best and second-best grid
+    points are at least 3e-5 apart (measured): the same choice (tests/test_parameters.py compares
+    it with the one-at-a-time solves).
     """
-    w2 = 1.0 / sigma[good] ** 2
-    yg, Bg = y[good], basis[good]
-    gg, ff = np.meshgrid(_GUESS_G, _GUESS_F, indexing="ij")
-    g, f = gg.ravel(), ff.ravel()
-    E = np.column_stack([np.ones_like(g), g, f, g * g, f * f, g * f])                 # (40, 6)
-    EE = E[:, _PAIRS[0]] * E[:, _PAIRS[1]] * _PAIR_MULT                                 # (40, 21)
+    w2_all = 1.0 / sigma ** 2
+    w2 = np.where(good, w2_all, 0.0)
+    yw = np.where(good, y, 0.0)
+    F, _ = _node_products(model)
+    g, f, E, _ = _guess_points()
+    k = F.shape[0]
+    G = _guess_normal_matrices(model, w2_all, good, basis)
+    Fb = (F.reshape(k * F.shape[1], -1) @ (basis * (w2 * yw)[:, None])).reshape(k, F.shape[1], -1)   # (k, 6, 4)
+    b = (E @ Fb).reshape(-1, basis.shape[1])                                                     # (k * 40, 4)
+    c = np.linalg.solve(G, b[:, :, None])[:, :, 0]
+    chi2 = np.sum(w2 * yw * yw) - np.einsum("gi,gi->g", b, c)
     t = (model.nodes - SCALE_CENTRE[0]) / SCALE_WIDTH[0]
-    coef = model.coef if good.all() else model.coef[:, :, good]
-    P = Bg.shape[1]
-    upper = np.triu_indices(P)
-    PPw = (Bg[:, upper[0]] * Bg[:, upper[1]]) * w2[:, None]                             # G's 10 distinct entries
-    Bw = Bg * (w2 * yg)[:, None]
-    Gu = np.empty((t.size, g.size, PPw.shape[1]))
-    b = np.empty((t.size, g.size, P))
-    for k, tk in enumerate(t):
-        F = _node_terms(tk) @ coef[k]                                                   # (6, n)
-        Gu[k] = EE @ ((F[_PAIRS[0]] * F[_PAIRS[1]]) @ PPw)
-        b[k] = E @ (F @ Bw)
-    n_points = t.size * g.size
-    G = np.empty((n_points, P, P))
-    G[:, upper[0], upper[1]] = Gu.reshape(n_points, -1)
-    G[:, upper[1], upper[0]] = Gu.reshape(n_points, -1)
-    b = b.reshape(n_points, P)
-    c = np.linalg.solve(G, b[..., None])[..., 0]
-    chi2 = np.sum(w2 * yg * yg) - np.einsum("gi,gi->g", b, c)
     x = np.column_stack([np.repeat(t, g.size), np.tile(g, t.size), np.tile(f, t.size)])
     return x[int(np.argmin(chi2))]
 
@@ -437,7 +513,8 @@ def fit_labels(model, flux, good, sigma=None):
         # MINPACK's lmder (Levenberg-Marquardt) with least_squares(method="lm")'s tolerances and
         # evaluation limit, called through leastsq: the same iterations without least_squares'
         # wrapping of every call (a third of the fit's time, measured)
-        x = leastsq(fit.residuals, x, Dfun=fit.jacobian, ftol=1e-8, xtol=1e-8, gtol=1e-8, maxfev=300)[0]
+        x = leastsq(fit.residuals, x, Dfun=fit.jacobian_rows, col_deriv=True, ftol=1e-8, xtol=1e-8, gtol=1e-8,
+                    maxfev=300)[0]
         k_new = model.nearest(x)
         if k_new == k:
             break
@@ -452,7 +529,7 @@ def fit_labels(model, flux, good, sigma=None):
     return {"labels": labels, "errors": errors, "node": k, "chi2_reduced": float(chi2)}
 
 
-def measure(spectrum, rv=None, model=None, fwhm_in=None, resolving_power=None):
+def measure(spectrum, rv=None, model=None, fwhm_in=None, resolving_power=None, pixels=None):
     """Teff, log g and [Fe/H] of a spectrum, with uncertainties (see the module docstring).
 
     Parameters
@@ -466,6 +543,8 @@ def measure(spectrum, rv=None, model=None, fwhm_in=None, resolving_power=None):
         FWHM of the spectrum (Angstrom) when its metadata give no resolving power.
     resolving_power : float, optional
         R of the spectrum when its metadata give none (e.g. estimated from its lines).
+    pixels : specan.resolution.RestPixels, optional
+        ``rest_pixels(spectrum, rv)`` when the caller has made it already.
 
     Returns
     -------
@@ -478,7 +557,7 @@ def measure(spectrum, rv=None, model=None, fwhm_in=None, resolving_power=None):
     notes = []
     model = model or default_model()
     flux, good, broader = on_model_grid(spectrum, rv=rv, fwhm_in=fwhm_in, notes=notes,
-                                        resolving_power=resolving_power)
+                                        resolving_power=resolving_power, pixels=pixels)
     res = fit_labels(model, flux, good)
     k = res["node"]
     teff, logg, feh = res["labels"]

@@ -292,12 +292,14 @@ def _upper_envelope(ax, ay, sig, smoothing, below_weight, max_iter):
     smoother = _PSpline(ax, lam=(scale / (2 * np.pi)) ** 4, knot_spacing=scale / 10.0)
     weights = np.ones(ax.size)
     for _ in range(max_iter):
-        fit = smoother.fit(ay, weights)
-        new = np.where(ay >= fit(ax) - ANCHOR_TOLERANCE * sig, 1.0, below_weight)
+        coef = smoother.coefficients(ay, weights)
+        # the curve at the anchors as the basis matrix's product: what the spline gives there, to the bit
+        # (tests/test_prepare.py), without building and calling a spline each reweighting
+        new = np.where(ay >= smoother.basis @ coef - ANCHOR_TOLERANCE * sig, 1.0, below_weight)
         if np.array_equal(new, weights):
             break
         weights = new
-    return fit
+    return smoother.curve(coef)
 
 
 def _noise_without_errors(flux, half_width=100):
@@ -413,18 +415,40 @@ class _PSpline:
         summed = np.bincount(target, weights=B.data[a] * weighted[b], minlength=4 * B.shape[1])
         return summed.reshape(4, -1) + self.penalty_bands
 
-    def fit(self, y, w):
-        from scipy.interpolate import BSpline
-        from scipy.linalg import solveh_banded
-
+    def coefficients(self, y, w):
+        """The spline's coefficients for data ``y`` with weights ``w`` at the anchors."""
         # The normal equations are banded (bandwidth 3): solve them as such. Dense
-        # LAPACK through a busy multi-threaded BLAS was 30x slower here (measured).
+        # LAPACK through a busy multi-threaded BLAS was 30x slower here (measured). LAPACK's pbsv
+        # called as scipy's solveh_banded calls it (upper bands; finite, since weights and anchors
+        # are), without its argument checks, half of the call's time (measured)
         B = self.basis
         rhs = np.bincount(B.indices, weights=B.data * (w * y)[self.rows], minlength=B.shape[1])   # B^T (w y)
-        coef = solveh_banded(self._normal_bands(w), rhs, check_finite=False)   # finite: weights and anchors are
+        _, coef, info = _banded_solver()(self._normal_bands(w), rhs, lower=0, overwrite_ab=1, overwrite_b=1)
+        if info != 0:
+            from numpy.linalg import LinAlgError
+
+            raise LinAlgError(f"continuum spline: banded solve failed (LAPACK pbsv info {info})")
+        return coef
+
+    def curve(self, coef):
+        """The spline of coefficients ``coef`` as a function of wavelength (held constant outside the anchors)."""
+        from scipy.interpolate import BSpline
+
         # knots and coefficients are contiguous float64 already: skip BSpline's checks (a third of a reweighting)
         spline = BSpline.construct_fast(self.knots, coef, 3, extrapolate=True)
         return lambda xx: spline(np.clip(np.asarray(xx, float), self.lo, self.hi))
+
+    def fit(self, y, w):
+        """:meth:`curve` of :meth:`coefficients`."""
+        return self.curve(self.coefficients(y, w))
+
+
+@functools.lru_cache(maxsize=1)
+def _banded_solver():
+    """LAPACK's dpbsv (symmetric positive-definite banded solve), as scipy.linalg.solveh_banded uses it."""
+    from scipy.linalg import get_lapack_funcs
+
+    return get_lapack_funcs("pbsv", (np.zeros(1),))
 
 
 def normalize(spectrum, continuum=None, **fit_options):
@@ -447,13 +471,17 @@ def normalize(spectrum, continuum=None, **fit_options):
     if continuum is None:
         continuum = fit_continuum(spectrum, **fit_options)
     wave, flux, err, mask = spectrum_arrays(spectrum)
+    meta = dict(spectrum.meta)
+    return _divided(spectrum, flux, err, mask, continuum, meta, get_info(spectrum).copy())
+
+
+def _divided(spectrum, flux, err, mask, continuum, meta, info):
+    """:func:`normalize`'s result: the arrays divided by ``continuum``, ``info`` (a copy) marked normalised."""
     c = np.asarray(u.Quantity(continuum).to_value(spectrum.flux.unit), float)
     bad = ~np.isfinite(c) | (c <= 0)
     with np.errstate(divide="ignore", invalid="ignore"):
         nflux = np.where(bad, 1.0, flux / c)
         nerr = None if err is None else np.where(bad, np.inf, err / c)
-    meta = dict(spectrum.meta)
-    info = get_info(spectrum).copy()
     info.normalized = True
     meta[META_KEY] = info
     meta["continuum"] = u.Quantity(continuum)
@@ -538,10 +566,12 @@ def prepare(spectrum, telluric=True, continuum=True, **fit_options):
         info.warn(f"low S/N ({info.snr:.1f} per pixel, from the {info.snr_source})")
     meta = dict(spectrum.meta)
     meta[META_KEY] = info
-    spec = replace_parts(spectrum, mask=mask, meta=meta)
-    if continuum:
-        spec = normalize(spec, **fit_options)
-    return spec
+    if not continuum:
+        return replace_parts(spectrum, mask=mask, meta=meta)
+    # normalize(replace_parts(spectrum, mask=mask, meta=meta)) on the arrays, one Spectrum built instead
+    # of two (specutils makes a WCS for each: a seventh of read + prepare, measured); the same numbers
+    full = _continuum_arrays(wave, flux, err, mask, path=info.path, **fit_options)
+    return _divided(spectrum, flux, err, mask, full * spectrum.flux.unit, meta, info)
 
 
 from ._callable import make_callable as _make_callable  # noqa: E402

@@ -21,6 +21,8 @@ from .obsinfo import META_KEY, get_info, replace_parts, spectrum_arrays, wavelen
 
 __all__ = [
     "on_rest_grid",
+    "rest_pixels",
+    "RestPixels",
     "GAUSS_FWHM",
     "FWHM_TO_SIGMA",
     "DEFAULT_PIXELS_PER_FWHM",
@@ -304,8 +306,36 @@ class RestGrid(NamedTuple):
     wave: np.ndarray       # the input wavelengths kept (air, rest), for the callers' notes
 
 
+class RestPixels(NamedTuple):
+    """A spectrum's pixels at rest in air wavelengths, sorted (see :func:`rest_pixels`)."""
+
+    wave: np.ndarray       # Angstrom, air, velocity removed, increasing
+    flux: np.ndarray
+    good: np.ndarray       # finite flux and wavelength, not masked
+
+
+def rest_pixels(spectrum, rv=None):
+    """The pixels :func:`on_rest_grid` starts from: air wavelengths, sorted, the velocity ``rv`` removed.
+
+    Made once and handed to several :func:`on_rest_grid` calls (the parameter model's and the
+    library comparison's grids) they give the same numbers as each making its own.
+    """
+    import astropy.units as u
+
+    wave = wavelength_in(spectrum, "air")
+    flux = np.asarray(spectrum.flux.value, float)
+    good = np.isfinite(flux) & np.isfinite(wave)
+    if spectrum.mask is not None:
+        good &= ~np.asarray(spectrum.mask, bool)
+    order = np.argsort(wave)
+    wave, flux, good = wave[order], flux[order], good[order]
+    if rv is not None and np.isfinite(u.Quantity(rv, u.km / u.s).value):
+        wave = wave / float(doppler_factor(u.Quantity(rv, u.km / u.s)))
+    return RestPixels(wave, flux, good)
+
+
 def on_rest_grid(spectrum, grid, fwhm_out, rv=None, fwhm_in=None, resolving_power=None, positive=False,
-                 min_pixels=50, what="the grid"):
+                 min_pixels=50, what="the grid", pixels=None):
     """A spectrum at rest in air wavelengths, smoothed to ``fwhm_out`` and interpolated onto ``grid``.
 
     The path the parameter model and the library comparison share (their shipped numbers were
@@ -331,6 +361,8 @@ def on_rest_grid(spectrum, grid, fwhm_out, rv=None, fwhm_in=None, resolving_powe
         Fewest usable input pixels near the grid.
     what : str
         The grid's name, for the error message.
+    pixels : RestPixels, optional
+        ``rest_pixels(spectrum, rv)`` made already (``rv`` is then not used again).
 
     Returns
     -------
@@ -341,20 +373,10 @@ def on_rest_grid(spectrum, grid, fwhm_out, rv=None, fwhm_in=None, resolving_powe
     specan.errors.AnalysisError
         When fewer than ``min_pixels`` usable pixels lie near the grid.
     """
-    import astropy.units as u
-
     info = get_info(spectrum)
-    wave = wavelength_in(spectrum, "air")
-    flux = np.asarray(spectrum.flux.value, float)
-    good = np.isfinite(flux) & np.isfinite(wave)
+    wave, flux, good = rest_pixels(spectrum, rv) if pixels is None else pixels
     if positive:
-        good &= flux > 0
-    if spectrum.mask is not None:
-        good &= ~np.asarray(spectrum.mask, bool)
-    order = np.argsort(wave)
-    wave, flux, good = wave[order], flux[order], good[order]
-    if rv is not None and np.isfinite(u.Quantity(rv, u.km / u.s).value):
-        wave = wave / float(doppler_factor(u.Quantity(rv, u.km / u.s)))
+        good = good & (flux > 0)
     near = (wave >= grid[0] - 5 * fwhm_out) & (wave <= grid[-1] + 5 * fwhm_out)
     if (good & near).sum() < min_pixels:
         raise AnalysisError(f"the spectrum does not overlap {what}", info.path)

@@ -687,6 +687,29 @@ def test_library_comparison_matches_a_fit_per_star():
         assert msd[s] == pytest.approx(np.mean((flux[both] - A @ c) ** 2), rel=1e-6, abs=1e-12)
 
 
+def test_library_comparison_with_unusable_pixels_taken_off_the_kept_sums():
+    # The library stars' normal matrices are kept summed over all pixels and a star's unusable pixels
+    # taken off (or, where most are unusable, its usable ones summed afresh): whatever the pixels,
+    # in any order, a comparison gives what a per-star least-squares fit gives, as above
+    from specan.classify import neighbours
+
+    ref = neighbours.default_reference()
+    rng = np.random.default_rng(8)
+    flux = ref.flux[30] * (1.0 + 0.01 * rng.standard_normal(ref.flux.shape[1]))
+    cols = np.arange(ref.flux.shape[1])
+    goods = [ref.good[30] & (rng.random(cols.size) > 0.1), ref.good[30] & (cols > 40) & (cols < 900),
+             ref.good[30] & (cols > 300) & (cols < 600), np.ones(cols.size, bool)]
+    P = np.polynomial.legendre.legvander(np.linspace(-1, 1, flux.size), neighbours.POLY_DEGREE)
+    for good in goods + goods[::-1]:
+        msd, n = neighbours.mean_square_differences(flux, good, ref)
+        for s in (0, 30, 300):
+            both = good & ref.good[s]
+            A = P[both] * ref.flux[s][both, None]
+            c, *_ = np.linalg.lstsq(A, flux[both], rcond=None)
+            assert n[s] == both.sum()
+            assert msd[s] == pytest.approx(np.mean((flux[both] - A @ c) ** 2), rel=1e-6, abs=1e-12)
+
+
 def test_library_comparison_absorbs_a_tilt_and_leaves_out_what_it_is_told():
     # A library star tilted by a straight line in wavelength (what a response or reddening residue
     # leaves after normalisation) still matches itself exactly; left out, it is not among its neighbours.

@@ -437,3 +437,21 @@ def test_image_of_several_apertures_is_refused_with_the_fix(tmp_path):
     fits.PrimaryHDU(np.stack([_flux(), _flux(), _flux()]), header=h).writeto(path)
     with pytest.raises(ReadError, match="3 apertures"):
         specan.read(path)
+
+
+def test_vacuum_spectrum_in_air_is_vacuum_to_air_to_the_bit(kurucz_sun):
+    # wavelength_in converts plain arrays without Quantities: the same numbers as vacuum_to_air
+    # (specutils' Morton 2000), on the Kurucz Sun's wavelengths (rms-solar) and into the ultraviolet
+    from specutils import Spectrum
+
+    from specan.obsinfo import ObsInfo, wavelength_in
+
+    w_sun, f_sun, _ = kurucz_sun
+    rng = np.random.default_rng(3)
+    for w in (w_sun, np.sort(rng.uniform(1500.0, 30000.0, 5000)), np.linspace(2000.0, 3000.0, 777)):
+        spec = Spectrum(flux=np.ones(w.size) * u.dimensionless_unscaled, spectral_axis=w * u.AA,
+                        meta={"specan": ObsInfo(medium="vacuum", medium_assumed=False)})
+        assert np.array_equal(wavelength_in(spec, "air"), vacuum_to_air(w * u.AA).to_value(u.AA))
+    nm = Spectrum(flux=np.ones(50) * u.dimensionless_unscaled, spectral_axis=np.linspace(400.0, 700.0, 50) * u.nm,
+                  meta={"specan": ObsInfo(medium="vacuum", medium_assumed=False)})
+    assert np.array_equal(wavelength_in(nm, "air"), vacuum_to_air(nm.spectral_axis.to(u.AA)).to_value(u.AA))

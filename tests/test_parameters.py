@@ -66,6 +66,11 @@ def test_batched_first_guess_is_the_grid_point_of_least_chi_square(kurucz_sun):
     flux, good, _ = parameters.on_model_grid(_sun(kurucz_sun))
     _first_guess_is_the_loops(flux, good & (np.arange(good.size) % 3 != 0))
     _first_guess_is_the_loops(flux, good)   # all pixels usable: the model's coefficients are not copied
+    # the grid's ends beyond a spectrum's coverage (unusable pixels taken off the kept sums), and a
+    # spectrum covering a third of the grid (its usable pixels summed afresh)
+    wave = parameters.model_wavelengths()
+    _first_guess_is_the_loops(flux, good & (wave > 3760.0) & (wave < 7200.0))
+    _first_guess_is_the_loops(flux, good & (wave > 4200.0) & (wave < 5400.0))
 
 
 def _first_guess_is_the_loops(flux, good):

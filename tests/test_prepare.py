@@ -363,6 +363,10 @@ def test_continuum_normal_equations_are_the_sparse_product_to_the_bit(kurucz_sun
             coef = solveh_banded(bands, spline.basis.T @ (w * y))
             sparse_way = BSpline(spline.knots, coef, 3)(np.clip(x, spline.lo, spline.hi))
             assert np.array_equal(spline.fit(y, w)(x), sparse_way)
+            # the reweighting's own path: LAPACK's banded solve called directly, and the curve at the
+            # anchors as the basis matrix's product, the same numbers as solveh_banded and the spline
+            assert np.array_equal(spline.coefficients(y, w), coef)
+            assert np.array_equal(spline.basis @ coef, sparse_way)
 
 
 def test_row_nanmedian_is_numpys():
@@ -374,3 +378,33 @@ def test_row_nanmedian_is_numpys():
         a[rng.random(a.shape) < 0.5] = np.nan
         a = a[~np.all(np.isnan(a), axis=1)]
         assert np.array_equal(_row_nanmedian(a), np.nanmedian(a, axis=1))
+
+
+@pytest.mark.parametrize("with_errors", [False, True])
+def test_prepare_is_masking_then_normalize_to_the_bit(kurucz_sun, with_errors):
+    # prepare() divides by the continuum on the arrays and builds one Spectrum; the result must be
+    # what masking, then normalize() of the masked Spectrum, gives (the Kurucz Sun of rms-solar,
+    # with a few bad pixels and, once, an error array), bit for bit
+    from specan.obsinfo import get_info, replace_parts
+    from specan.prepare import _bad_pixels, normalize, telluric_mask
+
+    w, f, _ = kurucz_sun
+    keep = (w > 3500) & (w < 9000)
+    w, f = w[keep], f[keep].copy()
+    f[[40, 41, 900]] = [np.nan, -1.0, np.inf]
+    err = 0.01 * np.abs(np.nan_to_num(f, posinf=1.0)) + 1e-3 if with_errors else None
+    spec = _spectrum(w, f, err)
+    out = prepare(spec)
+    mask = _bad_pixels(f, err, False) | telluric_mask(w, "vacuum")
+    masked = replace_parts(spec, mask=mask, meta=dict(spec.meta, specan=get_info(out).copy()))
+    get_info(masked).normalized = False
+    slow = normalize(masked)
+    assert np.array_equal(out.flux.value, slow.flux.value, equal_nan=True)
+    assert np.array_equal(out.mask, slow.mask)
+    assert np.array_equal(out.meta["continuum"].value, slow.meta["continuum"].value, equal_nan=True)
+    assert out.meta["continuum"].unit == slow.meta["continuum"].unit
+    if with_errors:
+        assert np.array_equal(out.uncertainty.array, slow.uncertainty.array)
+    else:
+        assert out.uncertainty is None and slow.uncertainty is None
+    assert get_info(out).normalized and get_info(out).snr == get_info(slow).snr

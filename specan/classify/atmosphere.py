@@ -18,14 +18,16 @@ __all__ = ["ATMOSPHERE_KEYS", "measure_atmosphere", "atmosphere_columns", "gravi
 ATMOSPHERE_KEYS = ("teff_spec", "teff_spec_err", "logg", "logg_err", "feh", "feh_err", "parameters_chi2")
 
 
-def measure_atmosphere(spectrum, rv, notes, fwhm=None, resolving_power=None):
+def measure_atmosphere(spectrum, rv, notes, fwhm=None, resolving_power=None, pixels=None):
     """:func:`specan.parameters.measure` of the spectrum at velocity ``rv``, or None (with a note).
 
     ``fwhm`` (A) or ``resolving_power``: the resolution the criteria took the spectrum to have,
-    so that both measurements make the same assumption.
+    so that both measurements make the same assumption. ``pixels``: the spectrum's
+    :func:`specan.resolution.rest_pixels` at ``rv`` when made already.
     """
     try:
-        atmosphere = parameters.measure(spectrum, rv=rv, fwhm_in=fwhm, resolving_power=resolving_power)
+        atmosphere = parameters.measure(spectrum, rv=rv, fwhm_in=fwhm, resolving_power=resolving_power,
+                                        pixels=pixels)
     except SpecanError as exc:
         notes.append(f"atmospheric parameters not measured: {getattr(exc, 'reason', exc)}")
         return None

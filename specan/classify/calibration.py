@@ -20,6 +20,7 @@ import numpy as np
 from ..errors import AnalysisError, ReadError
 from ..mktypes import lumclass_to_number, marks_emission, number_to_lumclass, sptype_to_code
 from ..obsinfo import get_info
+from ..resolution import rest_pixels
 from . import flags, gravity, neighbours as library
 from .atmosphere import atmosphere_columns, gravity_agreement, measure_atmosphere
 from .criteria import CRITERIA, EMISSION_SENSITIVE, criteria_names, definitions
@@ -101,6 +102,7 @@ class Calibration:
         self.code_version_ = None
         self._fine = None
         self._weakest = None
+        self._criteria = None
 
     # -- fitting ---------------------------------------------------------------------------
     def fit(self, spectra, labels, ids=None):
@@ -165,6 +167,7 @@ class Calibration:
                            for i, s, lc, c, x in zip(ids, sptypes, lumclasses, code, X)]
         self._fine = None
         self._weakest = None
+        self._criteria = None
         cv = cross_validate(X_fit, code, lum, self.settings)
         self.tau_, self.tau_class_, self.limits_, self.cv_ = cv["tau"], cv["tau_class"], cv["limits"], cv["summary"]
         from .. import __version__
@@ -198,10 +201,12 @@ class Calibration:
         (:func:`specan.classify.classify` asks for it with the shipped calibration).
         """
         meas = spectrum_criteria(spectrum, self.resolution, rv=rv, resolving_power=resolving_power)
+        # the pixels at rest in air, sorted, made once for both grids
+        pixels = rest_pixels(spectrum, meas["rv"]) if (neighbours or parameters) else None
         evidence = (_library_evidence(spectrum, meas["rv"], meas["notes"], meas["input_fwhm"],
-                                      meas["input_resolving_power"]) if neighbours else None)
+                                      meas["input_resolving_power"], pixels) if neighbours else None)
         atmosphere = (measure_atmosphere(spectrum, meas["rv"], meas["notes"], meas["input_fwhm"],
-                                         meas["input_resolving_power"]) if parameters else None)
+                                         meas["input_resolving_power"], pixels) if parameters else None)
         weights = None
         if atmosphere is not None and atmosphere["broader_than_model"]:
             meas["notes"].append("log g not used for the luminosity class: the spectrum is broader than the "
@@ -254,7 +259,7 @@ class Calibration:
             "lumclass_prob": {number_to_lumclass(n): float(v) for n, v in zip(LUMS, est.class_prob)},
             "teff": teff, "teff_err": teff_err,
             "nearest_standards": nearest_standards(self.standards_, x, noise, ok, fine["scatter"][est.code_index],
-                                                   fine["weights"]),
+                                                   fine["weights"], criteria=self._standard_criteria()),
             "flags": [f for f, _ in raised], "notes": [n for _, n in raised], "fit_quality": quality,
             "criteria": criteria_table(x, ok, model), "calibration": self.source,
             "type_evidence": "criteria" if neighbours is None else "criteria and library neighbours",
@@ -273,6 +278,12 @@ class Calibration:
                 + flags.featureless(x, len(CRITERIA), self._weakest_standard())
                 + flags.emission(x, noise, ok, model, fine["scatter"][est.code_index], est.code)
                 + flags.composite(split, limits["split_p975"]))
+
+    def _standard_criteria(self):
+        """The standards' criteria as one (standards, criteria) array, made once per fitted calibration."""
+        if self._criteria is None:
+            self._criteria = np.array([st["criteria"] for st in self.standards_])
+        return self._criteria
 
     def _weakest_standard(self):
         """Smallest summed absolute depth of the depth criteria among the standards."""
@@ -352,13 +363,15 @@ class Calibration:
         return cls.from_dict(data, path)
 
 
-def _library_evidence(spectrum, rv, notes, fwhm=None, resolving_power=None):
+def _library_evidence(spectrum, rv, notes, fwhm=None, resolving_power=None, pixels=None):
     """The spectrum's comparison with the library stars, or None (with a note) where it cannot be made.
 
-    ``fwhm`` (A) or ``resolving_power``: the resolution the criteria took the spectrum to have.
+    ``fwhm`` (A) or ``resolving_power``: the resolution the criteria took the spectrum to have;
+    ``pixels``: its :func:`specan.resolution.rest_pixels` at ``rv`` when made already.
     """
     try:
-        return library.measure(spectrum, rv=rv, fwhm_in=fwhm, resolving_power=resolving_power, notes=notes)
+        return library.measure(spectrum, rv=rv, fwhm_in=fwhm, resolving_power=resolving_power, notes=notes,
+                               pixels=pixels)
     except AnalysisError as exc:
         notes.append(f"type from the criteria alone, no library comparison: {getattr(exc, 'reason', exc)}")
         return None

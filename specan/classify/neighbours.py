@@ -119,7 +119,7 @@ def default_reference():
     return ReferenceSet.load()
 
 
-def on_grid(spectrum, rv=None, fwhm_in=None, resolving_power=None, notes=None, telluric=True):
+def on_grid(spectrum, rv=None, fwhm_in=None, resolving_power=None, notes=None, telluric=True, pixels=None):
     """A spectrum at rest, smoothed to :data:`FWHM`, normalised by specan's ``prepare``, on :func:`wavelengths`.
 
     Parameters
@@ -137,6 +137,8 @@ def on_grid(spectrum, rv=None, fwhm_in=None, resolving_power=None, notes=None, t
         Receives a sentence per assumption.
     telluric : bool
         Mask the telluric bands (:func:`specan.prepare.prepare`).
+    pixels : specan.resolution.RestPixels, optional
+        ``rest_pixels(spectrum, rv)`` when the caller has made it already.
 
     Returns
     -------
@@ -148,7 +150,7 @@ def on_grid(spectrum, rv=None, fwhm_in=None, resolving_power=None, notes=None, t
     notes = notes if notes is not None else []
     grid = wavelengths()
     rest = on_rest_grid(spectrum, grid, FWHM, rv=rv, fwhm_in=fwhm_in, resolving_power=resolving_power,
-                        positive=True, what="the library comparison's 3650-7350 A")
+                        positive=True, what="the library comparison's 3650-7350 A", pixels=pixels)
     if float(np.median(np.broadcast_to(rest.fwhm_in, rest.wave.shape))) > FWHM * 1.1:
         notes.append(f"spectrum broader than the library comparison's {FWHM:g} A FWHM: its neighbours are less "
                      "alike than they look")
@@ -173,29 +175,63 @@ def _basis():
     return P, PP
 
 
+#: Every library star's normal matrix and pixel count summed over all the comparison pixels, for the
+#: last reference set seen (set-up work: the same for every star compared).
+_ALL_PIXELS = {}
+
+
+def _pixel_terms(good, reference):
+    """Every library star's normal matrix (n_stars, K, K) and the pixels compared, over the ``good`` pixels.
+
+    The sums over all pixels depend on the reference set only: kept, and a star's unusable pixels
+    (the grid's ends beyond its coverage, which move with its velocity; masked pixels) are taken
+    off them, or, where most are unusable, its usable pixels summed afresh. Either way the stars'
+    squared fluxes (a third of the set's memory) are not read whole again; taking off changes the
+    sums in rounding only (tests/test_classify.py: the per-star fits).
+    """
+    _, PP = _basis()
+    K = int(round(np.sqrt(PP.shape[1])))
+    hit = _ALL_PIXELS.get(id(reference))
+    if hit is None or hit[0] is not reference:
+        hit = (reference, reference.flux_sq @ PP, reference.good_f.sum(axis=1))
+        _ALL_PIXELS.clear()
+        _ALL_PIXELS[id(reference)] = hit
+    bad = np.flatnonzero(~good)
+    if bad.size == 0:
+        G, n = hit[1], hit[2]
+    elif bad.size <= good.size // 2:
+        G = hit[1] - reference.flux_sq[:, bad] @ PP[bad]
+        n = hit[2] - reference.good_f[:, bad].sum(axis=1)
+    else:
+        use = np.flatnonzero(good)
+        G = reference.flux_sq[:, use] @ PP[use]
+        n = reference.good_f[:, use].sum(axis=1)
+    return G.reshape(-1, K, K), n
+
+
 def mean_square_differences(flux, good, reference):
     """Mean squared difference between a star and every library star, after the best polynomial.
 
     For each library star s the model is ``P c_s * R_s`` (P: Legendre basis of degree
-    :data:`POLY_DEGREE`) over the pixels both have. All the normal equations come from three
-    matrix products over the pixels (the (P_k P_l) outer products weighted by R_s^2), then one
-    batched solve: no loop over the stars (459 stars x 926 pixels: 0.6 ms, measured).
+    :data:`POLY_DEGREE`) over the pixels both have. All the normal equations come from matrix
+    products over the pixels (the (P_k P_l) outer products weighted by R_s^2), then one batched
+    solve: no loop over the stars (459 stars x 926 pixels: 0.6 ms, measured). The normal
+    matrices do not depend on the star's flux: their sums over all pixels are kept, less the star's
+    unusable pixels (:func:`_pixel_terms`); the star's own flux costs two products.
 
     Returns
     -------
     msd, n : numpy.ndarray
         Mean squared residual per library star and the number of pixels compared.
     """
-    P, PP = _basis()
-    K = P.shape[1]
-    w = np.asarray(good, float)
+    P, _ = _basis()
+    good = np.asarray(good, bool)
+    w = good.astype(float)
     y = np.where(good, flux, 0.0)
-    R, M = reference.flux, reference.good_f
-    G = (reference.flux_sq @ (PP * w[:, None])).reshape(-1, K, K)
-    b = R @ (P * (w * y)[:, None])
-    yy = M @ (w * y * y)
-    n = M @ w
-    c = np.linalg.solve(G + 1e-9 * np.eye(K), b[..., None])[..., 0]
+    G, n = _pixel_terms(good, reference)
+    b = reference.flux @ (P * (w * y)[:, None])
+    yy = reference.good_f @ (w * y * y)
+    c = np.linalg.solve(G + 1e-9 * np.eye(G.shape[-1]), b[..., None])[..., 0]
     chi2 = np.clip(yy - np.einsum("sk,sk->s", b, c), 0.0, None)
     return chi2 / np.maximum(n, 1.0), n
 
@@ -251,7 +287,8 @@ def compare(flux, good, reference=None, exclude=()):
     return Evidence(msd, int(good.sum()), reference)
 
 
-def measure(spectrum, rv=None, fwhm_in=None, resolving_power=None, notes=None, reference=None):
+def measure(spectrum, rv=None, fwhm_in=None, resolving_power=None, notes=None, reference=None, pixels=None):
     """:class:`Evidence` of a spectrum (see :func:`on_grid` for the arguments)."""
-    flux, good = on_grid(spectrum, rv=rv, fwhm_in=fwhm_in, resolving_power=resolving_power, notes=notes)
+    flux, good = on_grid(spectrum, rv=rv, fwhm_in=fwhm_in, resolving_power=resolving_power, notes=notes,
+                         pixels=pixels)
     return compare(flux, good, reference)

@@ -93,18 +93,19 @@ def teff_estimate(code, code_err, class_prob):
     return teff_value * u.K, teff_err * u.K
 
 
-def nearest_standards(standards, x, noise, ok, scatter, weights, k=3):
+def nearest_standards(standards, x, noise, ok, scatter, weights, k=3, criteria=None):
     """The ``k`` standards whose criteria are nearest to ``x``.
 
     Distance: weighted RMS difference in units of the relations' ``scatter`` at the
-    star's type (noise added in quadrature), over the criteria both have.
+    star's type (noise added in quadrature), over the criteria both have. ``criteria``: the
+    standards' criteria as one (standards, criteria) array when the caller keeps it.
 
     Returns
     -------
     list of dict
         ``id``, ``mk`` and ``distance`` of each, nearest first.
     """
-    S = np.array([s["criteria"] for s in standards])
+    S = np.array([s["criteria"] for s in standards]) if criteria is None else criteria
     scale = np.sqrt(scatter ** 2 + noise ** 2)
     d2 = (S - x) ** 2 / scale ** 2
     both = np.isfinite(d2) & ok
