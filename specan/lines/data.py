@@ -15,7 +15,8 @@ from scipy.signal import find_peaks, peak_prominences
 
 from ..obsinfo import get_info
 from .. import resolution
-from ..resolution import DEFAULT_PIXELS_PER_FWHM, GAUSS_FWHM, narrowest_line_width, normalised_arrays
+from ..resolution import (DEFAULT_PIXELS_PER_FWHM, GAUSS_FWHM, dersnr_sigma, narrowest_line_width,
+                          normalised_arrays)
 
 __all__ = ["DETECT_SIGMA", "MIN_DEPTH", "LineData", "Features", "find_features", "normalised",
            "estimate_resolving_power", "pixel_edges"]
@@ -162,8 +163,8 @@ class LineData:
             spectrum, resolving_power=resolving_power)
         self.dx = np.diff(pixel_edges(self.wave))  # pixel widths, Angstrom
         # the narrowest-line search keeps the one-value DER_SNR noise its thresholds were set with
-        narrow_sigma = (self.sigma if self.noise_source == "error array"
-                        else normalised_arrays(spectrum, dersnr=True).sigma)
+        # (what normalised_arrays(spectrum, dersnr=True) gives, from the arrays at hand)
+        narrow_sigma = self.sigma if self.noise_source == "error array" else dersnr_sigma(self.flux, self.good)
         self.narrow = narrowest_line_width(self.wave, self.flux, narrow_sigma, self.good)
         r, self.r_source = _resolving_power(resolving_power, info.resolving_power, self.narrow, self.wave)
         self.resolving_power = float(r)
