@@ -244,3 +244,46 @@ def test_dersnr_from_arrays_equals_specutils():
         expected = max(float(np.median(a.flux[a.good])) / snr, 1e-5)
         sigma = resolution.dersnr_sigma(a.flux, a.good)
         assert np.all(sigma[a.good] == expected) and np.all(np.isinf(sigma[~a.good]))
+
+
+def test_vectorised_plans_equal_one_by_one():
+    # plan_lines (continua, integrals, depths of all lines as array operations) against plan_line
+    from specan.lines.data import DETECT_SIGMA, MIN_DEPTH, LineData, find_features
+    from specan.lines.listed import lines_in_range
+    from specan.lines.measurement import line_starts, line_targets, plan_line, plan_lines
+    from specan.lines.windows import line_windows
+
+    truth = Table.read(DEMO / "truth.ecsv", format="ascii.ecsv")
+    compared = 0
+    for row in truth[~truth["broken"]][:6]:
+        data = LineData(prepare(read(DEMO / row["file"])))
+        listed = lines_in_range(data, None, ("atomic",), row["rv_topo"] * u.km / u.s)
+        targets = line_targets(data, listed, None)
+        features = find_features(data, DETECT_SIGMA, MIN_DEPTH)
+        which = list(range(targets.pred.size))
+        starts = dict(zip(which, line_starts(data, features, targets, np.array(which), DETECT_SIGMA)))
+        found = [i for i in which if starts[i] is not None]
+        windows = dict(zip(found, line_windows(data, [starts[i] for i in found], targets.fwhm[found],
+                                               targets.hydrogen[found])))
+        many = plan_lines(data, features, targets, which, "auto", starts, windows)
+        for i in which:
+            one = plan_line(data, features, targets, i, "auto", DETECT_SIGMA, starts[i], windows.get(i))
+            two = many[i]
+            assert (one.window is None) == (two.window is None)
+            if one.window is None:
+                assert two.result.method == "masked"
+                continue
+            for name in ("fw", "hydrogen", "ic", "sign", "detected", "max_shift", "voigt", "wants_fit"):
+                assert getattr(one, name) == getattr(two, name), name
+            assert tuple(one.window) == tuple(two.window)
+            np.testing.assert_array_equal(one.centres, two.centres)
+            assert (one.skip is None) == (two.skip is None)
+            if one.skip is not None:
+                np.testing.assert_array_equal(one.skip, two.skip)
+            np.testing.assert_allclose(two.cont, one.cont, rtol=1e-14, atol=1e-15)
+            for name in ("wave_obs", "significance", "window_min", "window_max", "emission", "method"):
+                assert getattr(one.result, name) == getattr(two.result, name), name
+            for name in ("ew_int", "ew_int_err", "depth"):
+                assert getattr(two.result, name) == pytest.approx(getattr(one.result, name), rel=1e-12, abs=1e-14)
+            compared += 1
+    assert compared > 500

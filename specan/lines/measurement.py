@@ -32,7 +32,8 @@ from .profiles import fit_gauss, fit_profile
 from .windows import line_window, line_windows, local_continuum, profile_window, wing_reach
 
 __all__ = ["measure", "cayrel_error", "Targets", "LineResult", "line_targets", "measure_lines",
-           "measure_line", "LinePlan", "LineStart", "line_start", "line_starts", "plan_line", "finish_line",
+           "measure_line", "LinePlan", "LineStart", "line_start", "line_starts", "plan_line", "plan_lines",
+           "finish_line",
            "match_feature", "integrated_ew", "central_depth", "use_voigt", "fit_line", "chosen_ew",
            "window_noise", "half_width", "line_table", "wing_fit"]
 
@@ -203,8 +204,7 @@ def measure_lines(data, features, targets, which, profile, detect_sigma, batched
     found = [i for i, st in starts.items() if st is not None]
     windows = dict(zip(found, line_windows(data, [starts[i] for i in found], targets.fwhm[found],
                                            targets.hydrogen[found])))
-    plans = {i: plan_line(data, features, targets, i, profile, detect_sigma, starts[i], windows.get(i))
-             for i in starts}
+    plans = plan_lines(data, features, targets, list(starts), profile, starts, windows)
     wanted = [p for p in plans.values() if p.wants_fit]
     fits = fit_planned(data, wanted)
     for plan, fit in zip(wanted, fits):
@@ -346,6 +346,95 @@ def plan_line(data, features, targets, i, profile, detect_sigma, start=None, win
     voigt = use_voigt(profile, hydrogen, result.depth, data, window, fw)
     return LinePlan(result, fw, hydrogen, ic, sign, detected, max_shift, window, cont, centres, skip, voigt,
                     wants_fit=detected)
+
+
+def plan_lines(data, features, targets, which, profile, starts, windows):
+    """:func:`plan_line` of every line index in ``which`` at once, as ``{index: LinePlan}``.
+
+    ``starts`` and ``windows`` map each index to its :class:`LineStart` (None: masked) and
+    window. The local continua, direct integrals and central depths of all lines are array
+    operations over their windows padded to one length (the pixels past a window's end add
+    nothing); the sums may differ from :func:`plan_line`'s by rounding. Only the choice of
+    blend components stays a loop per line (each choice depends on the ones before it).
+    """
+    plans = {int(i): LinePlan(LineResult(method="masked")) for i in which if starts[i] is None}
+    found = [int(i) for i in which if starts[i] is not None]
+    if not found:
+        return plans
+    wave, n = data.wave, data.wave.size
+    wins = [windows[i] for i in found]
+    lo = np.array([w.lo for w in wins])
+    hi = np.array([w.hi for w in wins])
+    lv = np.array([w.levels for w in wins], float).reshape(len(found), 2)
+    centre = np.array([starts[i].centre for i in found])
+    ic = np.array([starts[i].ic for i in found])
+    sign = np.array([starts[i].sign for i in found])
+    length = hi - lo + 1
+    k = np.arange(int(length.max()))
+    inside = k[None, :] < length[:, None]
+    pix = np.minimum(lo[:, None] + k[None, :], n - 1)
+    x = wave[pix]
+    x0, x1 = wave[lo], wave[hi]
+    # local_continuum: the straight line between the edge levels
+    with np.errstate(divide="ignore", invalid="ignore"):
+        t = (x - x0[:, None]) / (x1 - x0)[:, None]
+    cont = lv[:, :1] * (1.0 - t) + lv[:, 1:] * t
+    cont[hi == lo] = lv[hi == lo, :1]
+    cont = np.where(inside, cont, 1.0)
+    # integrated_ew
+    dx = data.dx[pix]
+    ew_int = np.sum(np.where(inside, (1.0 - data.flux[pix] / cont) * dx, 0.0), axis=1)
+    sig = data.sigma[pix]
+    ok = inside & np.isfinite(sig)
+    ew_int_err = np.sqrt(np.sum(np.where(ok, sig / cont * dx, 0.0) ** 2, axis=1))
+    # central_depth: the continuum at the centre as np.interp gives it from the window's pixels
+    c_mid = _interp_rows(centre, x, cont, length)
+    near = ic[:, None] + np.arange(-1, 2)[None, :]
+    in_near = (near >= 0) & (near < n)
+    fl = data.flux[np.clip(near, 0, n - 1)]
+    extreme = np.where(sign > 0, np.where(in_near, fl, np.inf).min(axis=1), np.where(in_near, fl, -np.inf).max(axis=1))
+    depth = 1.0 - extreme / c_mid
+    # window_features: the features of each line's kind between its window's edges (positions sorted)
+    pos, femis = features.position, features.emission
+    kinds = {1.0: pos[~femis], -1.0: pos[femis]} if pos.size else {}
+    for m, i in enumerate(found):
+        fw, hydrogen = targets.fwhm[i], bool(targets.hydrogen[i])
+        window = wins[m]
+        st = starts[i]
+        result = LineResult(wave_obs=st.centre, ew_int=float(ew_int[m]), ew_int_err=float(ew_int_err[m]),
+                            significance=float(data.signif[st.ic]), depth=float(depth[m]),
+                            window_min=x0[m], window_max=x1[m], emission=st.sign < 0)
+        if kinds:
+            mine = kinds[1.0 if st.sign > 0 else -1.0]
+            in_win = mine[np.searchsorted(mine, x0[m], "left"):np.searchsorted(mine, x1[m], "right")]
+        else:
+            in_win = np.zeros(0)
+        centres = component_centres(data, targets, i, st.centre, window, in_win)
+        skip = wing_mask(data, targets, i, st.centre, window, in_win, centres) if hydrogen else None
+        voigt = use_voigt(profile, hydrogen, result.depth, data, window, fw)
+        plans[i] = LinePlan(result, fw, hydrogen, st.ic, st.sign, st.detected, st.max_shift, window,
+                            cont[m, :length[m]], centres, skip, voigt, wants_fit=st.detected)
+    return plans
+
+
+def _interp_rows(xv, xp, fp, length):
+    """``np.interp(xv[m], xp[m, :length[m]], fp[m, :length[m]])`` for every row m, with np.interp's rules."""
+    rows = np.arange(xv.size)
+    inside = np.arange(xp.shape[1])[None, :] < length[:, None]
+    j = np.sum(inside & (xp <= xv[:, None]), axis=1) - 1      # xp[j] <= x < xp[j + 1]
+    last = length - 1
+    jc = np.clip(j, 0, np.maximum(last - 1, 0))
+    jn = np.minimum(jc + 1, last)
+    xa, xb, fa, fb = xp[rows, jc], xp[rows, jn], fp[rows, jc], fp[rows, jn]
+    with np.errstate(divide="ignore", invalid="ignore"):
+        slope = (fb - fa) / (xb - xa)
+        val = slope * (xv - xa) + fa
+        # np.interp's fallback where the first form is NaN
+        val = np.where(np.isnan(val), np.where(fa == fb, fa, slope * (xv - xb) + fb), val)
+    val = np.where(xa == xv, fa, val)
+    val = np.where(j >= last, fp[rows, last], val)
+    val = np.where(xv > xp[rows, last], fp[rows, last], val)
+    return np.where(xv < xp[:, 0], fp[:, 0], val)
 
 
 def finish_line(data, features, targets, i, plan, fitter):
