@@ -376,9 +376,9 @@ def plan_lines(data, features, targets, which, profile, starts, windows):
     x = wave[pix]
     x0, x1 = wave[lo], wave[hi]
     # local_continuum: the straight line between the edge levels
-    with np.errstate(divide="ignore", invalid="ignore"):
+    with np.errstate(divide="ignore", invalid="ignore"):   # one-pixel windows: their level, below
         t = (x - x0[:, None]) / (x1 - x0)[:, None]
-    cont = lv[:, :1] * (1.0 - t) + lv[:, 1:] * t
+        cont = lv[:, :1] * (1.0 - t) + lv[:, 1:] * t
     cont[hi == lo] = lv[hi == lo, :1]
     cont = np.where(inside, cont, 1.0)
     # integrated_ew
