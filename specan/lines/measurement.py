@@ -27,13 +27,13 @@ from .components import component_centres, window_features, wing_mask
 from .data import DETECT_SIGMA, MIN_DEPTH, LineData, find_features, normalised
 from .hydrogen import without_hydrogen
 from .listed import blends, line_widths, lines_in_range, match_windows, velocities
-from .batchfit import fit_batched_voigt, fit_planned
+from .batchfit import fit_planned, voigt_batch
 from .profiles import fit_gauss, fit_profile
 from .windows import line_window, line_windows, local_continuum, profile_window, wing_reach
 
 __all__ = ["measure", "cayrel_error", "Targets", "LineResult", "line_targets", "measure_lines",
            "measure_line", "LinePlan", "LineStart", "line_start", "line_starts", "plan_line", "plan_lines",
-           "finish_line",
+           "finish_line", "finish_lines", "wing_fits",
            "match_feature", "integrated_ew", "central_depth", "use_voigt", "fit_line", "chosen_ew",
            "window_noise", "half_width", "line_table", "wing_fit"]
 
@@ -209,7 +209,7 @@ def measure_lines(data, features, targets, which, profile, detect_sigma, batched
     fits = fit_planned(data, wanted)
     for plan, fit in zip(wanted, fits):
         plan.fit = fit
-    return {i: finish_line(data, features, targets, i, plan, fit_batched_voigt) for i, plan in plans.items()}
+    return finish_lines(data, features, targets, plans)
 
 
 def measure_line(data, features, targets, i, profile, detect_sigma):
@@ -442,33 +442,61 @@ def finish_line(data, features, targets, i, plan, fitter):
 
     ``fitter`` makes the wing fits of strong lines (:func:`wing_fit`).
     """
-    result = plan.result
     if plan.window is None:   # masked
-        return result
-    fit, window, fw, sign, hydrogen, voigt = plan.fit, plan.window, plan.fw, plan.sign, plan.hydrogen, plan.voigt
-    ew_int, ew_int_err = result.ew_int, result.ew_int_err
+        return plan.result
+    _fitted(data, plan)
+    wing = None
+    if _wants_wings(plan):
+        wing = wing_fit(data, features, targets, i, plan.result.wave_obs, plan.fit, plan.fw, fitter=fitter)
+    return _finished(data, plan, wing)
+
+
+def finish_lines(data, features, targets, plans):
+    """:func:`finish_line` of every plan (``{index: LinePlan}``), the wing fits batched (:func:`wing_fits`)."""
+    for plan in plans.values():
+        if plan.window is not None:
+            _fitted(data, plan)
+    strong = [i for i, plan in plans.items() if plan.window is not None and _wants_wings(plan)]
+    wings = wing_fits(data, features, targets, strong, [plans[i].result.wave_obs for i in strong],
+                      [plans[i].fit for i in strong], [plans[i].fw for i in strong])
+    wing_of = dict(zip(strong, wings))
+    return {i: plan.result if plan.window is None else _finished(data, plan, wing_of.get(i))
+            for i, plan in plans.items()}
+
+
+def _fitted(data, plan):
+    """The result's fitted (or, without a fit, half-depth) quantities and its chosen equivalent width."""
+    result, fit, window = plan.result, plan.fit, plan.window
     if fit is not None:
-        result.profile = "voigt" if voigt else "gauss"
-        result.fit = dict(fit, profile=result.profile, sign=sign, ew_int=ew_int)
+        result.profile = "voigt" if plan.voigt else "gauss"
+        result.fit = dict(fit, profile=result.profile, sign=plan.sign, ew_int=result.ew_int)
         result.ew_fit, result.ew_fit_err, result.fit_chi2 = fit["ew"], fit["ew_err"], fit["chi2"]
         result.fwhm, result.wave_obs = fit["fwhm"], fit["centre"]
     else:
-        result.fwhm = half_width(data, plan.ic, window.lo, window.hi, sign)
+        result.fwhm = half_width(data, plan.ic, window.lo, window.hi, plan.sign)
     result.method, result.ew, result.ew_err = chosen_ew(fit, result.profile, window.cut, len(plan.centres) - 1,
-                                                        hydrogen, ew_int, ew_int_err)
-    if fit is not None and voigt and not hydrogen and sign > 0:
-        wing = wing_fit(data, features, targets, i, result.wave_obs, fit, fw, fitter=fitter)
-        if wing is not None:
-            fit, wwin = wing
-            result.fit = dict(fit, profile="voigt", sign=sign, ew_int=ew_int)
-            result.ew_fit, result.ew_fit_err, result.fit_chi2 = fit["ew"], fit["ew_err"], fit["chi2"]
-            result.fwhm, result.wave_obs = fit["fwhm"], fit["centre"]
-            result.method, result.ew, result.ew_err = "wing_voigt_fit", fit["ew"], fit["ew_err"]
-            result.window_min, result.window_max = data.wave[wwin.lo], data.wave[wwin.hi]
-            window = wwin
+                                                        plan.hydrogen, result.ew_int, result.ew_int_err)
+
+
+def _wants_wings(plan):
+    """Whether the line's wings are fitted (:func:`wing_fit`): a fitted Voigt absorption line, not hydrogen."""
+    return plan.fit is not None and plan.voigt and not plan.hydrogen and plan.sign > 0
+
+
+def _finished(data, plan, wing):
+    """The result with the wing fit ``(fit, window)`` (or None), detection and Cayrel error."""
+    result, window = plan.result, plan.window
+    if wing is not None:
+        fit, wwin = wing
+        result.fit = dict(fit, profile="voigt", sign=plan.sign, ew_int=result.ew_int)
+        result.ew_fit, result.ew_fit_err, result.fit_chi2 = fit["ew"], fit["ew_err"], fit["chi2"]
+        result.fwhm, result.wave_obs = fit["fwhm"], fit["centre"]
+        result.method, result.ew, result.ew_err = "wing_voigt_fit", fit["ew"], fit["ew_err"]
+        result.window_min, result.window_max = data.wave[wwin.lo], data.wave[wwin.hi]
+        window = wwin
     # significant in the matched filter AND an equivalent width clear of its error
     result.detected = plan.detected and abs(result.ew) > 2.0 * result.ew_err
-    fwhm_c = result.fwhm if np.isfinite(result.fwhm) else fw
+    fwhm_c = result.fwhm if np.isfinite(result.fwhm) else plan.fw
     result.ew_err_cayrel = cayrel_error(fwhm_c, data.dx[plan.ic], 1.0 / window_noise(data, window))
     return result
 
@@ -495,43 +523,84 @@ def wing_fit(data, features, targets, i, centre, fit, fwhm, max_iter=3, fitter=f
     (dict, Window) or None
         None when the wings reach no farther than the first window or the fit fails.
     """
-    from .components import MIN_SEPARATION
-
-    pred = targets.pred
-    shift = centre - pred[i]
     best = None
     reach0 = 0.0
-    noise = float(np.nanmedian(data.sigma[data.good])) if data.good.any() else 1e-3
+    noise = _typical_noise(data)
     for _ in range(max_iter):
-        # where the wing's depth is down to the noise of a few pixels, or 0.2%
-        # (a continuum placed better than that is rare; common practice)
-        threshold = max(noise / np.sqrt(5.0), 2e-3)
-        reach = wing_reach(fit["ew"], fit["sigma"], fit["gamma"], threshold)
-        if reach <= 1.05 * reach0 or reach <= 3.0 * fwhm:
+        problem = _wing_problem(data, features, targets, i, centre, fit, fwhm, noise, reach0)
+        if problem is None:
             break
-        reach0 = reach
-        win = profile_window(data, centre, reach)
-        lo, hi = data.wave[win.lo], data.wave[win.hi]
-        others = np.flatnonzero((pred >= lo) & (pred <= hi) & ~targets.hydrogen)
-        others = others[others != i]
-        depth_at = 1.0 - np.interp(pred[others] + shift, data.wave, data.smooth)
-        strong = others[depth_at > 0.5]
-        centres = [centre]
-        for c in pred[strong] + shift:
-            if min(abs(c - x) for x in centres) > MIN_SEPARATION * fwhm:
-                centres.append(c)
-        centres = np.array(centres)
-        weak_pos = np.concatenate([pred[np.setdiff1d(others, strong)] + shift, features.position[
-            (features.position >= lo) & (features.position <= hi)]])
-        x = data.wave[win.lo:win.hi + 1]
-        far = np.abs(weak_pos[:, None] - centres[None, :]).min(axis=1) > MIN_SEPARATION * fwhm
-        skip = (np.abs(x[None, :] - weak_pos[far][:, None]) < 1.2 * fwhm).any(axis=0) if far.any() else None
-        cont = np.ones(x.size)
-        new = fitter(data, win.lo, win.hi, cont, centres, "voigt", 0.5 * fwhm, fwhm / GAUSS_FWHM, 1.0, skip)
-        if not _determined(new, hi - lo):
+        win, centres, skip, reach0 = problem
+        new = fitter(data, win.lo, win.hi, np.ones(win.hi - win.lo + 1), centres, "voigt", 0.5 * fwhm,
+                     fwhm / GAUSS_FWHM, 1.0, skip)
+        if not _determined(new, data.wave[win.hi] - data.wave[win.lo]):
             break
         fit, best = new, (new, win)
     return best
+
+
+def wing_fits(data, features, targets, which, centres, fits, fwhm, max_iter=3):
+    """:func:`wing_fit` of the lines ``which`` (their centres, first fits and widths), the fits of each
+    round made together (:func:`specan.lines.batchfit.voigt_batch`): a list of ``(dict, Window)`` or None."""
+    best = [None] * len(which)
+    if not which:
+        return best
+    noise = _typical_noise(data)
+    fit, reach0 = list(fits), [0.0] * len(which)
+    live = list(range(len(which)))
+    for _ in range(max_iter):
+        asked = []
+        for m in live:
+            problem = _wing_problem(data, features, targets, which[m], centres[m], fit[m], fwhm[m], noise, reach0[m])
+            if problem is not None:
+                asked.append((m, problem))
+                reach0[m] = problem[3]
+        if not asked:
+            break
+        made = voigt_batch(data, [(win.lo, win.hi, np.ones(win.hi - win.lo + 1), cen, 0.5 * fwhm[m],
+                                   fwhm[m] / GAUSS_FWHM, 1.0, skip, False) for m, (win, cen, skip, _) in asked])
+        live = []
+        for (m, (win, _, _, _)), new in zip(asked, made):
+            if _determined(new, data.wave[win.hi] - data.wave[win.lo]):
+                fit[m], best[m] = new, (new, win)
+                live.append(m)
+    return best
+
+
+def _typical_noise(data):
+    """Median noise of the good pixels (1e-3 without any)."""
+    return float(np.nanmedian(data.sigma[data.good])) if data.good.any() else 1e-3
+
+
+def _wing_problem(data, features, targets, i, centre, fit, fwhm, noise, reach0):
+    """One round of :func:`wing_fit`: ``(window, centres, skip, reach)`` of the next fit, or None to stop."""
+    from .components import MIN_SEPARATION
+
+    # where the wing's depth is down to the noise of a few pixels, or 0.2%
+    # (a continuum placed better than that is rare; common practice)
+    threshold = max(noise / np.sqrt(5.0), 2e-3)
+    reach = wing_reach(fit["ew"], fit["sigma"], fit["gamma"], threshold)
+    if reach <= 1.05 * reach0 or reach <= 3.0 * fwhm:
+        return None
+    pred = targets.pred
+    shift = centre - pred[i]
+    win = profile_window(data, centre, reach)
+    lo, hi = data.wave[win.lo], data.wave[win.hi]
+    others = np.flatnonzero((pred >= lo) & (pred <= hi) & ~targets.hydrogen)
+    others = others[others != i]
+    depth_at = 1.0 - np.interp(pred[others] + shift, data.wave, data.smooth)
+    strong = others[depth_at > 0.5]
+    centres = [centre]
+    for c in pred[strong] + shift:
+        if min(abs(c - x) for x in centres) > MIN_SEPARATION * fwhm:
+            centres.append(c)
+    centres = np.array(centres)
+    weak_pos = np.concatenate([pred[np.setdiff1d(others, strong)] + shift, features.position[
+        (features.position >= lo) & (features.position <= hi)]])
+    x = data.wave[win.lo:win.hi + 1]
+    far = np.abs(weak_pos[:, None] - centres[None, :]).min(axis=1) > MIN_SEPARATION * fwhm
+    skip = (np.abs(x[None, :] - weak_pos[far][:, None]) < 1.2 * fwhm).any(axis=0) if far.any() else None
+    return win, centres, skip, reach
 
 
 def _determined(fit, span):
@@ -655,24 +724,29 @@ def line_table(data, listed, targets, results):
     t = listed.rows
     ids = [str(i) for i in t["id"]]
     cols = {name: np.array([getattr(r, name) for r in results], float) for name in _FLOAT_COLUMNS}
-    out = QTable()
-    out["id"] = ids
-    out["species"] = [str(s) for s in t["species"]]
-    out["wave_air"] = t["wave_air"].to(u.AA)
-    out["wave_vac"] = t["wave_vac"].to(u.AA)
-    out["wave_obs"] = cols["wave_obs"] * u.AA
-    out["velocity"] = velocities(cols["wave_obs"], listed.lab) * u.km / u.s
+    aa, kms = u.AA, u.km / u.s
+    # the columns built once and the table made from them in one call, text columns as arrays:
+    # column by column from lists, astropy's conversions were ~2 ms a spectrum (bench_lines.py)
+    columns = {
+        "id": np.array(ids, str),
+        "species": np.array([str(s) for s in t["species"]], str),
+        "wave_air": t["wave_air"].to(aa),
+        "wave_vac": t["wave_vac"].to(aa),
+        "wave_obs": cols["wave_obs"] * aa,
+        "velocity": velocities(cols["wave_obs"], listed.lab) * kms,
+    }
     for name in ("ew", "ew_err", "ew_err_cayrel", "ew_int", "ew_int_err", "ew_fit", "ew_fit_err", "fwhm"):
-        out[name] = cols[name] * u.AA
-    out["depth"] = cols["depth"]
-    out["significance"] = cols["significance"]
-    out["fit_chi2"] = cols["fit_chi2"]
-    out["window_min"] = cols["window_min"] * u.AA
-    out["window_max"] = cols["window_max"] * u.AA
-    out["method"] = [str(r.method) for r in results]
-    out["profile"] = [str(r.profile) for r in results]
-    out["blend"] = [str(b) for b in blends(listed.pred, ids, targets.fwhm)]
-    out["detected"] = np.array([r.detected for r in results], bool)
-    out["emission"] = np.array([r.emission for r in results], bool)
+        columns[name] = cols[name] * aa
+    columns["depth"] = cols["depth"]
+    columns["significance"] = cols["significance"]
+    columns["fit_chi2"] = cols["fit_chi2"]
+    columns["window_min"] = cols["window_min"] * aa
+    columns["window_max"] = cols["window_max"] * aa
+    columns["method"] = np.array([str(r.method) for r in results], str)
+    columns["profile"] = np.array([str(r.profile) for r in results], str)
+    columns["blend"] = np.array([str(b) for b in blends(listed.pred, ids, targets.fwhm)], str)
+    columns["detected"] = np.array([r.detected for r in results], bool)
+    columns["emission"] = np.array([r.emission for r in results], bool)
+    out = QTable(list(columns.values()), names=list(columns), copy=False)
     out.meta.update(data.meta(listed.rv))
     return out
