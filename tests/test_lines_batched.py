@@ -287,3 +287,24 @@ def test_vectorised_plans_equal_one_by_one():
                 assert getattr(two.result, name) == pytest.approx(getattr(one.result, name), rel=1e-12, abs=1e-14)
             compared += 1
     assert compared > 500
+
+
+def test_block_medians_equal_one_median_per_block():
+    # specan.noise._block_power reads every block's median off one sorted array: np.median's values
+    from specan import noise
+
+    rng = np.random.default_rng(1)
+    for trial in range(300):
+        n = int(rng.integers(50, 5000))
+        y = rng.normal(size=n) * rng.uniform(0.1, 10)
+        valid = rng.uniform(size=n) > rng.uniform(0, 0.9)
+        if trial % 5 == 0:
+            valid[: n // 2] = False
+        block = int(rng.choice([16, 64, 256]))
+        centres, power = noise._block_power(y, valid, block)
+        edges = np.linspace(0, n, max(n // block, 1) + 1).astype(int)
+        for b in range(edges.size - 1):
+            v = y[edges[b]:edges[b + 1]][valid[edges[b]:edges[b + 1]]]
+            expected = np.median(v * v) / noise._CHI2_1_MEDIAN if v.size >= block // 4 else np.nan
+            assert power[b] == expected or (np.isnan(power[b]) and np.isnan(expected))
+        np.testing.assert_array_equal(centres, 0.5 * (edges[:-1] + edges[1:]) - 0.5)
