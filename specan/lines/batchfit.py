@@ -29,7 +29,7 @@ from __future__ import annotations
 import numpy as np
 
 from ..resolution import GAUSS_FWHM
-from .profiles import (best_grid_point, fit_profile, fit_summary, refined_shift, start_and_bounds,
+from .profiles import (best_grid_point, fit_profile, fit_summary, start_and_bounds,
                        voigt_and_derivatives, window_arrays)
 
 __all__ = ["fit_planned", "fit_batched_voigt", "gauss_batch", "voigt_batch"]
@@ -122,7 +122,9 @@ def _padded(data, problems, ks, skip_index=None):
 
 def _gauss_group(data, problems, ks, ncomp, nsh, out):
     """The problems ``ks`` (``ncomp`` components, shift grid of ``2 nsh + 1`` steps) into ``out``."""
-    ks = [k for k in ks if (np.sqrt(data.weight[problems[k][0]:problems[k][1] + 1]) > 0).sum() >= 3 + ncomp]
+    # enough pixels of non-zero weight (counted from one running count of them, not per window)
+    count = _positive_counts(data)
+    ks = [k for k in ks if count[problems[k][1] + 1] - count[problems[k][0]] >= 3 + ncomp]
     if not ks:
         return
     x, y, cont, wts, ngood = _padded(data, problems, ks)
@@ -170,6 +172,7 @@ def _gauss_group(data, problems, ks, ncomp, nsh, out):
         cov = np.linalg.inv(ata[rows[ok], best[ok]])
     except np.linalg.LinAlgError:
         cov = None
+    shifts = _refined_shifts(chi2, sh, np.maximum(best, 0), step, nsh)
     j = 0
     for row, k in enumerate(ks):
         if not ok[row]:
@@ -183,12 +186,36 @@ def _gauss_group(data, problems, ks, ncomp, nsh, out):
             c00 = cov[j, 0, 0]
             j += 1
         sig = sg[row, best[row]]
-        shift = refined_shift(chi2[row], sh[row], sg[row], best[row], step[row])
+        shift = shifts[row]
         dof = max(int(ngood[row]) - ncomp - 2, 1)
         peak = wbest[row, 0] / (sig * np.sqrt(2 * np.pi))
         out[k] = {"ew": float(wbest[row, 0]), "ew_err": float(np.sqrt(max(c00, 0.0))),
                   "centre": float(centres[row, 0] + shift), "fwhm": float(GAUSS_FWHM * sig),
                   "depth": float(peak), "chi2": float(cbest[row]) / dof, "sigma": float(sig), "gamma": 0.0}
+
+
+def _positive_counts(data):
+    """Running count of the pixels of non-zero weight: pixels lo..hi hold ``c[hi + 1] - c[lo]``."""
+    return np.concatenate([[0], np.cumsum(np.sqrt(data.weight) > 0)])
+
+
+def _refined_shifts(chi2, sh, best, step, nsh):
+    """:func:`specan.lines.profiles.refined_shift` of every row (grid: shifts repeated over three widths).
+
+    On that grid the points of the best width are every third one, so the neighbours in shift
+    are ``best -+ 3``; the same parabola, the same arithmetic, for all rows at once.
+    """
+    rows = np.arange(best.size)
+    k = best // 3
+    inner = (k > 0) & (k < 2 * nsh)
+    c0 = chi2[rows, np.where(inner, best - 3, best)]
+    c1 = chi2[rows, best]
+    c2 = chi2[rows, np.where(inner, best + 3, best)]
+    den = c0 - 2 * c1 + c2
+    with np.errstate(divide="ignore", invalid="ignore"):
+        frac = np.clip(0.5 * (c0 - c2) / den, -0.5, 0.5)
+    shift = sh[rows, best]
+    return np.where(inner & (den > 0), shift + step * frac, shift)
 
 
 # ----------------------------------------------------------------------------- Voigt
