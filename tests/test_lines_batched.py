@@ -308,3 +308,23 @@ def test_block_medians_equal_one_median_per_block():
             expected = np.median(v * v) / noise._CHI2_1_MEDIAN if v.size >= block // 4 else np.nan
             assert power[b] == expected or (np.isnan(power[b]) and np.isnan(expected))
         np.testing.assert_array_equal(centres, 0.5 * (edges[:-1] + edges[1:]) - 0.5)
+
+
+def test_window_noises_equal_one_median_per_window():
+    # window_noises (one sort of every window's noise) against window_noise: the same values
+    from specan.lines.data import LineData
+    from specan.lines.measurement import window_noise, window_noises
+    from specan.lines.windows import Window
+
+    truth = Table.read(DEMO / "truth.ecsv", format="ascii.ecsv")
+    data = LineData(prepare(read(DEMO / truth[~truth["broken"]]["file"][0])))
+    rng = np.random.default_rng(3)
+    lo = rng.integers(0, data.wave.size - 2, 500)
+    hi = np.minimum(lo + rng.integers(0, 120, 500), data.wave.size - 1)
+    holed = data.sigma.copy()
+    holed[rng.uniform(size=holed.size) < 0.2] = np.inf   # masked pixels: no noise known there
+    data.sigma = holed
+    windows = [Window(int(a), int(b), (1.0, 1.0), False) for a, b in zip(lo, hi)]
+    many = window_noises(data, windows)
+    one = np.array([window_noise(data, w) for w in windows])
+    assert np.array_equal(one, many, equal_nan=True)

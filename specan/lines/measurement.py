@@ -23,7 +23,7 @@ import numpy as np
 from astropy.table import QTable
 
 from ..resolution import GAUSS_FWHM
-from .components import component_centres, window_features, wing_mask
+from .components import MIN_SEPARATION, component_centres, window_features, wing_mask
 from .data import DETECT_SIGMA, MIN_DEPTH, LineData, find_features, normalised
 from .hydrogen import without_hydrogen
 from .listed import blends, line_widths, lines_in_range, match_windows, velocities
@@ -33,7 +33,7 @@ from .windows import line_window, line_windows, local_continuum, profile_window,
 
 __all__ = ["measure", "cayrel_error", "Targets", "LineResult", "line_targets", "measure_lines",
            "measure_line", "LinePlan", "LineStart", "line_start", "line_starts", "plan_line", "plan_lines",
-           "finish_line", "finish_lines", "wing_fits",
+           "finish_line", "finish_lines", "wing_fits", "window_noises",
            "match_feature", "integrated_ew", "central_depth", "use_voigt", "fit_line", "chosen_ew",
            "window_noise", "half_width", "line_table", "wing_fit"]
 
@@ -397,6 +397,12 @@ def plan_lines(data, features, targets, which, profile, starts, windows):
     # window_features: the features of each line's kind between its window's edges (positions sorted)
     pos, femis = features.position, features.emission
     kinds = {1.0: pos[~femis], -1.0: pos[femis]} if pos.size else {}
+    # component_centres' listed companions of every line at once: the other listed lines of the
+    # same class (hydrogen or not) inside its window, in list order
+    pred, is_h = targets.pred, targets.hydrogen
+    idx = np.asarray(found)
+    companion = ((pred[None, :] >= x0[:, None]) & (pred[None, :] <= x1[:, None])
+                 & (is_h[None, :] == is_h[idx][:, None]) & (np.arange(pred.size)[None, :] != idx[:, None]))
     for m, i in enumerate(found):
         fw, hydrogen = targets.fwhm[i], bool(targets.hydrogen[i])
         window = wins[m]
@@ -409,12 +415,24 @@ def plan_lines(data, features, targets, which, profile, starts, windows):
             in_win = mine[np.searchsorted(mine, x0[m], "left"):np.searchsorted(mine, x1[m], "right")]
         else:
             in_win = np.zeros(0)
-        centres = component_centres(data, targets, i, st.centre, window, in_win)
+        centres = _centres(pred[companion[m]] + (st.centre - pred[i]), in_win, bool(is_h[i]), st.centre, fw)
         skip = wing_mask(data, targets, i, st.centre, window, in_win, centres) if hydrogen else None
         voigt = use_voigt(profile, hydrogen, result.depth, data, window, fw)
         plans[i] = LinePlan(result, fw, hydrogen, st.ic, st.sign, st.detected, st.max_shift, window,
                             cont[m, :length[m]], centres, skip, voigt, wants_fit=st.detected)
     return plans
+
+
+def _centres(listed, in_win, hydrogen, centre, fw):
+    """:func:`~specan.lines.components.component_centres` from the line's shifted listed companions."""
+    candidates = list(listed) if hydrogen else list(listed) + list(in_win)
+    if not candidates:
+        return np.array([centre])
+    centres = [centre]
+    for c in candidates:
+        if min(abs(c - x) for x in centres) > MIN_SEPARATION * fw:
+            centres.append(c)
+    return np.array(centres)
 
 
 def _interp_rows(xv, xp, fp, length):
@@ -460,7 +478,10 @@ def finish_lines(data, features, targets, plans):
     wings = wing_fits(data, features, targets, strong, [plans[i].result.wave_obs for i in strong],
                       [plans[i].fit for i in strong], [plans[i].fw for i in strong])
     wing_of = dict(zip(strong, wings))
-    return {i: plan.result if plan.window is None else _finished(data, plan, wing_of.get(i))
+    done = [i for i, plan in plans.items() if plan.window is not None]
+    final = [plans[i].window if wing_of.get(i) is None else wing_of[i][1] for i in done]
+    noise = dict(zip(done, window_noises(data, final)))
+    return {i: plan.result if plan.window is None else _finished(data, plan, wing_of.get(i), noise[i])
             for i, plan in plans.items()}
 
 
@@ -483,8 +504,11 @@ def _wants_wings(plan):
     return plan.fit is not None and plan.voigt and not plan.hydrogen and plan.sign > 0
 
 
-def _finished(data, plan, wing):
-    """The result with the wing fit ``(fit, window)`` (or None), detection and Cayrel error."""
+def _finished(data, plan, wing, noise=None):
+    """The result with the wing fit ``(fit, window)`` (or None), detection and Cayrel error.
+
+    ``noise``: :func:`window_noise` of the final window, when already known.
+    """
     result, window = plan.result, plan.window
     if wing is not None:
         fit, wwin = wing
@@ -497,7 +521,9 @@ def _finished(data, plan, wing):
     # significant in the matched filter AND an equivalent width clear of its error
     result.detected = plan.detected and abs(result.ew) > 2.0 * result.ew_err
     fwhm_c = result.fwhm if np.isfinite(result.fwhm) else plan.fw
-    result.ew_err_cayrel = cayrel_error(fwhm_c, data.dx[plan.ic], 1.0 / window_noise(data, window))
+    if noise is None:
+        noise = window_noise(data, window)
+    result.ew_err_cayrel = cayrel_error(fwhm_c, data.dx[plan.ic], 1.0 / noise)
     return result
 
 
@@ -694,6 +720,31 @@ def window_noise(data, window):
     # which was a tenth of the lines stage once the fits were batched (bench_lines.py)
     part = np.partition(sig_sel, [(n - 1) // 2, n // 2])
     return part[n // 2] if n % 2 else 0.5 * (part[n // 2 - 1] + part[n // 2])
+
+
+def window_noises(data, windows):
+    """:func:`window_noise` of every window at once (one sort of all windows' noise, padded).
+
+    Each window's finite noise values sorted in one row (the rest +inf, past them); the middle
+    one, or the mean of the middle two, read off: the same values as one median per window.
+    """
+    out = np.full(len(windows), np.nan)
+    if not windows:
+        return out
+    lo = np.array([w.lo for w in windows])
+    length = np.array([w.hi for w in windows]) - lo + 1
+    k = np.arange(int(length.max()))
+    inside = k[None, :] < length[:, None]
+    sig = data.sigma[np.minimum(lo[:, None] + k[None, :], data.wave.size - 1)]
+    ok = inside & np.isfinite(sig)
+    srt = np.sort(np.where(ok, sig, np.inf), axis=1)
+    n = ok.sum(axis=1)
+    rows = np.arange(lo.size)
+    mid = srt[rows, n // 2 * (n > 0)]
+    below = srt[rows, np.maximum(n // 2 - 1, 0)]
+    with np.errstate(invalid="ignore"):
+        value = np.where(n % 2 == 1, mid, 0.5 * (below + mid))
+    return np.where(n > 0, value, out)
 
 
 def half_width(data, ic, lo, hi, sign):
