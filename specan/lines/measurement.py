@@ -403,23 +403,30 @@ def plan_lines(data, features, targets, which, profile, starts, windows):
     idx = np.asarray(found)
     companion = ((pred[None, :] >= x0[:, None]) & (pred[None, :] <= x1[:, None])
                  & (is_h[None, :] == is_h[idx][:, None]) & (np.arange(pred.size)[None, :] != idx[:, None]))
+    signif = data.signif[ic]
+    fws = targets.fwhm[idx]
+    hyd = is_h[idx]
+    # use_voigt of every line: strong lines (deep core, window over four widths) or hydrogen
+    voigt = (profile == "voigt") | ((profile == "auto") & (hyd | ((depth > 0.7) & ((x1 - x0) > 4.0 * fws))))
+    # window_features: each line's features of its own kind between its window's edges
+    bounds = {key: (np.searchsorted(mine, x0, "left"), np.searchsorted(mine, x1, "right"))
+              for key, mine in kinds.items()}
     for m, i in enumerate(found):
-        fw, hydrogen = targets.fwhm[i], bool(targets.hydrogen[i])
+        fw, hydrogen = fws[m], bool(hyd[m])
         window = wins[m]
         st = starts[i]
         result = LineResult(wave_obs=st.centre, ew_int=float(ew_int[m]), ew_int_err=float(ew_int_err[m]),
-                            significance=float(data.signif[st.ic]), depth=float(depth[m]),
+                            significance=float(signif[m]), depth=float(depth[m]),
                             window_min=x0[m], window_max=x1[m], emission=st.sign < 0)
         if kinds:
-            mine = kinds[1.0 if st.sign > 0 else -1.0]
-            in_win = mine[np.searchsorted(mine, x0[m], "left"):np.searchsorted(mine, x1[m], "right")]
+            key = 1.0 if st.sign > 0 else -1.0
+            in_win = kinds[key][bounds[key][0][m]:bounds[key][1][m]]
         else:
             in_win = np.zeros(0)
-        centres = _centres(pred[companion[m]] + (st.centre - pred[i]), in_win, bool(is_h[i]), st.centre, fw)
+        centres = _centres(pred[companion[m]] + (st.centre - pred[i]), in_win, hydrogen, st.centre, fw)
         skip = wing_mask(data, targets, i, st.centre, window, in_win, centres) if hydrogen else None
-        voigt = use_voigt(profile, hydrogen, result.depth, data, window, fw)
         plans[i] = LinePlan(result, fw, hydrogen, st.ic, st.sign, st.detected, st.max_shift, window,
-                            cont[m, :length[m]], centres, skip, voigt, wants_fit=st.detected)
+                            cont[m, :length[m]], centres, skip, bool(voigt[m]), wants_fit=st.detected)
     return plans
 
 
