@@ -382,6 +382,9 @@ class _VoigtModel:
         self.x, self.y, self.cont, self.wts, self.centres = x, y, cont, wts, centres
         self.components = components
         self.where = components[:, :, None] & (wts > 0)[:, None, :]     # (b, C, P)
+        # points evaluated per problem: each problem's sigma and gamma repeated that often are
+        # the values at the evaluated points, in their order (np.broadcast_to cost more)
+        self.count = self.where.sum(axis=(1, 2))
 
     def rows(self, rows):
         """The model of the problems ``rows`` only."""
@@ -391,8 +394,8 @@ class _VoigtModel:
     def __call__(self, p):
         x, cont, wts, where = self.x, self.cont, self.wts, self.where
         dx = x[:, None, :] - (self.centres[:, :, None] + p[:, 0, None, None])   # (b, C, P)
-        sig = np.broadcast_to(p[:, 1, None, None], dx.shape)[where]
-        gam = np.broadcast_to(p[:, 2, None, None], dx.shape)[where]
+        sig = np.repeat(p[:, 1], self.count)
+        gam = np.repeat(p[:, 2], self.count)
         parts = voigt_and_derivatives(dx[where], sig, gam)
         v, d_x, d_s, d_g = (np.zeros(dx.shape) for _ in range(4))
         for full, part in zip((v, d_x, d_s, d_g), parts):
