@@ -12,9 +12,11 @@ Two sets of spectra:
 For each it prints ms per spectrum of ``measure`` (median of ``--repeats`` passes), the
 one-by-one fits (``measure(_batched=False)``, when the specan being run has that switch)
 side by side, and with ``--profile`` the functions with the most time of their own under
-cProfile. Run the same script against another checkout for a before/after figure::
+cProfile, and with ``--steps`` the CPU time of each step of ``measure`` (the arrays and filters,
+the listed lines, the features, the hydrogen lines, their division, the other lines, the table).
+Run the same script against another checkout for a before/after figure::
 
-    OPENBLAS_NUM_THREADS=1 python benchmarks/bench_lines.py --profile
+    OPENBLAS_NUM_THREADS=1 python benchmarks/bench_lines.py --profile --steps
     OPENBLAS_NUM_THREADS=1 PYTHONPATH=/path/to/old/checkout python benchmarks/bench_lines.py
 """
 
@@ -89,6 +91,44 @@ def timed(cases, repeats, **options):
     return 1e3 * float(np.median(wall)), 1e3 * float(np.median(cpu))
 
 
+def steps(cases, repeats):
+    """CPU ms per spectrum of each step of ``measure`` (its recipe, step by step; median of ``repeats``)."""
+    from specan.lines import measurement as m
+    from specan.lines.data import DETECT_SIGMA, MIN_DEPTH, LineData, find_features, normalised
+    from specan.lines.hydrogen import without_hydrogen
+    from specan.lines.listed import lines_in_range
+
+    names = ("arrays and filters (LineData)", "listed lines and targets", "features", "hydrogen lines",
+             "hydrogen divided out", "other lines", "result table")
+    runs = []
+    for _ in range(repeats):
+        spent = dict.fromkeys(names, 0.0)
+
+        def step(name, func, *args):
+            t = time.process_time()
+            out = func(*args)
+            spent[name] += time.process_time() - t
+            return out
+
+        for spec, known in cases:
+            data = step(names[0], LineData, normalised(spec), known.get("resolving_power"))
+            listed = step(names[1], lines_in_range, data, None, ("atomic",), known.get("rv", 0 * u.km / u.s))
+            targets = step(names[1], m.line_targets, data, listed, None)
+            features = step(names[2], find_features, data, DETECT_SIGMA, MIN_DEPTH)
+            results = step(names[3], m.measure_lines, data, features, targets, np.flatnonzero(targets.hydrogen),
+                           "auto", DETECT_SIGMA)
+            data_m, features_m = step(names[4], without_hydrogen, data, features, results, targets,
+                                      listed.rows["ep_low"], DETECT_SIGMA, MIN_DEPTH)
+            results.update(step(names[5], m.measure_lines, data_m, features_m, targets,
+                                np.flatnonzero(~targets.hydrogen), "auto", DETECT_SIGMA))
+            step(names[6], m.line_table, data, listed, targets, [results[i] for i in range(targets.pred.size)])
+        runs.append(spent)
+    n = len(cases)
+    print("  CPU ms per spectrum, step by step:")
+    for name in names:
+        print(f"    {1e3 * float(np.median([r[name] for r in runs])) / n:6.2f}  {name}")
+
+
 def hot_spots(cases, top):
     """The ``top`` functions with the most own time under cProfile, ms per spectrum."""
     prof = cProfile.Profile()
@@ -116,6 +156,7 @@ def main(argv=None):
     parser.add_argument("--repeats", type=int, default=3)
     parser.add_argument("--profile", action="store_true", help="print the cProfile hot spots")
     parser.add_argument("--top", type=int, default=15)
+    parser.add_argument("--steps", action="store_true", help="CPU ms per spectrum of each step of measure")
     parser.add_argument("--workdir", type=Path, default=None)
     args = parser.parse_args(argv)
     work = args.workdir or Path(tempfile.mkdtemp(prefix="specan-bench-lines-"))
@@ -136,6 +177,8 @@ def main(argv=None):
         if name == "pipeline":
             # issue 12's target for the lines stage of a night run
             print(f"# lines stage {fast:.1f} ms per spectrum against <= 15 ms: {'met' if fast <= 15.0 else 'not met'}")
+        if args.steps:
+            steps(cases, args.repeats)
         if args.profile:
             hot_spots(cases, args.top)
 

@@ -95,13 +95,23 @@ def _block_power(y, valid, block):
     n = y.size
     nb = max(n // block, 1)
     edges = np.linspace(0, n, nb + 1).astype(int)
-    out = np.full(nb, np.nan)
-    for b in range(nb):
-        sel = slice(edges[b], edges[b + 1])
-        v = y[sel][valid[sel]]
-        if v.size >= block // 4:
-            out[b] = np.median(v * v) / _CHI2_1_MEDIAN
     centres = 0.5 * (edges[:-1] + edges[1:]) - 0.5
+    # every block's median at once: the valid squares of each block sorted in one row (the rest
+    # +inf, past them), the middle one or the mean of the middle two read off; np.median's
+    # values exactly, without a call per block (half of this function's cost)
+    size = np.diff(edges)
+    k = np.arange(int(size.max()))
+    inside = k[None, :] < size[:, None]
+    pix = np.minimum(edges[:-1, None] + k[None, :], n - 1)
+    ok = inside & valid[pix]
+    sq = np.sort(np.where(ok, y[pix] * y[pix], np.inf), axis=1)
+    count = ok.sum(axis=1)
+    rows = np.arange(nb)
+    lo = sq[rows, np.maximum((count - 1) // 2, 0)]
+    hi = sq[rows, np.maximum(count // 2, 0)]
+    with np.errstate(invalid="ignore"):
+        med = np.where(count % 2 == 1, hi, (lo + hi) / 2.0)
+    out = np.where(count >= block // 4, med / _CHI2_1_MEDIAN, np.nan)
     return centres, out
 
 

@@ -29,6 +29,8 @@ __all__ = [
     "NormalisedArrays",
     "normalised_arrays",
     "narrowest_line_width",
+    "dersnr_sigma",
+    "caruana_fwhms",
     "estimate_resolving_power",
     "degrade",
     "smooth_to_fwhm",
@@ -54,21 +56,34 @@ class NormalisedArrays(NamedTuple):
 
 
 def _dersnr_noise(wave, flux, good):
-    """Noise per pixel of the normalised flux by DER_SNR (Stoehr et al. 2008, via specutils)."""
-    import warnings
+    """Noise per pixel of the normalised flux by DER_SNR (Stoehr et al. 2008).
 
-    import astropy.units as u
-    from specutils import Spectrum
-    from specutils.analysis import snr_derived
-
-    packed = Spectrum(spectral_axis=wave[good] * u.AA, flux=flux[good] * u.dimensionless_unscaled)
-    with warnings.catch_warnings():
-        warnings.simplefilter("ignore")
-        snr = float(snr_derived(packed).value)
-    med = float(np.median(flux[good]))
+    The arithmetic of specutils' ``snr_derived`` on the good pixels, to the bit, on plain
+    arrays: packing them into a ``Spectrum`` for it cost ~2 ms a spectrum (its WCS), a tenth
+    of the lines stage (benchmarks/bench_lines.py).
+    """
+    f = flux[good]
+    n = f.size
+    if n <= 4:
+        return 1e-5
+    signal = np.median(f)
+    # 0.6052697 = 1.482602 / sqrt(6) (Stoehr et al. 2008)
+    noise = 0.6052697 * np.median(np.abs(2.0 * f[2:n - 2] - f[0:n - 4] - f[4:n]))
+    with np.errstate(divide="ignore", invalid="ignore"):
+        snr = float(signal / noise)
+    med = float(signal)
     if not np.isfinite(snr) or snr <= 0:
         return 1e-5
     return max(med / snr, 1e-5)
+
+
+def dersnr_sigma(flux, good):
+    """The per-pixel noise ``normalised_arrays(..., dersnr=True)`` gives, from its own ``flux`` and ``good``.
+
+    For a caller that has the arrays already (no error array): one DER_SNR value for every
+    good pixel, infinite on the others.
+    """
+    return np.where(good, max(_dersnr_noise(None, flux, good), 1e-5), np.inf)
 
 
 def normalised_arrays(spectrum, min_good=10, resolving_power=None, dersnr=False):
@@ -147,8 +162,9 @@ def narrowest_line_width(wave, flux, sigma, good):
         return None
     order = np.argsort(sig[peaks])[::-1]
     peaks = peaks[order[peaks.size // 10:][:40]]
-    fwhms = [f for f in (_caruana_fwhm(wave, flux, p) for p in peaks) if f is not None]
-    if len(fwhms) < 5:
+    fwhms = caruana_fwhms(wave, flux, peaks)
+    fwhms = fwhms[np.isfinite(fwhms)]
+    if fwhms.size < 5:
         return None
     return float(max(np.percentile(fwhms, 10), 1.5 * dx / np.median(wave)))
 
@@ -178,6 +194,57 @@ def _caruana_fwhm(wave, flux, p):
     if a2 >= 0:
         return None
     return GAUSS_FWHM * np.sqrt(-0.5 / a2) / wave[p]
+
+
+def caruana_fwhms(wave, flux, peaks):
+    """:func:`_caruana_fwhm` of every pixel of ``peaks`` at once (NaN where it gives None).
+
+    The same windows, cores and rules; the parabolas by their 3x3 normal equations in pixel
+    offsets, all solved together, instead of one ``np.polyfit`` each (a tenth of the lines
+    stage, benchmarks/bench_lines.py); the two differ by rounding only
+    (``tests/test_lines.py``).
+    """
+    peaks = np.asarray(peaks, int)
+    n = wave.size
+    out = np.full(peaks.size, np.nan)
+    if not peaks.size:
+        return out
+    k = np.arange(-5, 6)
+    idx = peaks[:, None] + k[None, :]                       # (peaks, 11): offsets -5..5
+    inside = (idx >= 0) & (idx < n)
+    idc = np.clip(idx, 0, n - 1)
+    seg = np.where(inside, flux[idc], -np.inf)
+    # the window lo..hi-1 of _caruana_fwhm needs 7 pixels at least
+    enough = inside.sum(axis=1) >= 7
+    left = np.where(k[None, :] <= 0, seg, -np.inf).max(axis=1)
+    right = np.where(k[None, :] >= 0, seg, -np.inf).max(axis=1)
+    depth = np.minimum(left, right)[:, None] - seg
+    d0 = depth[:, 5]
+    ok = enough & (d0 > 0)
+    # the core: pixels within 3 of the minimum at half its depth or more (the minimum itself
+    # always is, so _caruana_fwhm's "nearest core pixel + 3" is 3), else the three around it
+    core = inside & (np.abs(k)[None, :] <= 3) & (depth >= 0.5 * d0[:, None])
+    few = core.sum(axis=1) < 3
+    three = np.abs(k)[None, :] <= 1
+    core = np.where(few[:, None], three, core)
+    ok &= ~(few & ((~inside) & three).any(axis=1))
+    with np.errstate(invalid="ignore", divide="ignore"):
+        ok &= ~np.any(core & ~(depth > 0), axis=1)
+        logd = np.where(core & ok[:, None], np.log(np.where(depth > 0, depth, 1.0)), 0.0)
+    # least squares ln d = c2 t^2 + c1 t + c0 in pixel offsets t = x / step (well conditioned)
+    step = np.median(np.diff(wave))
+    t = np.where(core, (wave[idc] - wave[peaks][:, None]) / step, 0.0)
+    wgt = core.astype(float)
+    m = np.stack([np.stack([(wgt * t ** (a + b)).sum(axis=1) for b in (2, 1, 0)], axis=-1)
+                  for a in (2, 1, 0)], axis=-2)
+    rhs = np.stack([(wgt * t ** a * logd).sum(axis=1) for a in (2, 1, 0)], axis=-1)
+    m[~ok] = np.eye(3)
+    rhs[~ok] = 0.0
+    a2 = np.linalg.solve(m, rhs[..., None])[:, 0, 0] / step**2
+    ok &= a2 < 0
+    with np.errstate(invalid="ignore", divide="ignore"):
+        out[ok] = GAUSS_FWHM * np.sqrt(-0.5 / a2[ok]) / wave[peaks[ok]]
+    return out
 
 
 def estimate_resolving_power(spectrum):

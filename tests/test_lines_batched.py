@@ -203,3 +203,128 @@ def test_vectorised_line_starts_equal_one_by_one():
                     assert tuple(one) == tuple(st)
                 compared += 1
     assert masked > 10 and compared > 1000
+
+
+def test_vectorised_narrowest_line_fits_equal_one_by_one():
+    # resolution.caruana_fwhms (every parabola at once) against _caruana_fwhm (one np.polyfit each),
+    # at every pixel of demo spectra: the same lines kept, the widths to rounding (measured 4.7e-11)
+    from specan import resolution
+
+    truth = Table.read(DEMO / "truth.ecsv", format="ascii.ecsv")
+    compared = 0
+    for row in truth[~truth["broken"]][:4]:
+        a = resolution.normalised_arrays(prepare(read(DEMO / row["file"])), dersnr=True)
+        peaks = np.arange(a.wave.size)
+        one = np.array([np.nan if f is None else f for f in (resolution._caruana_fwhm(a.wave, a.flux, p)
+                                                            for p in peaks)])
+        many = resolution.caruana_fwhms(a.wave, a.flux, peaks)
+        assert np.array_equal(np.isfinite(one), np.isfinite(many))
+        both = np.isfinite(one)
+        assert np.all(np.abs(one[both] - many[both]) <= 1e-9 * one[both])
+        compared += int(both.sum())
+    assert compared > 1000
+
+
+def test_dersnr_from_arrays_equals_specutils():
+    # resolution.dersnr_sigma on plain arrays: specutils' snr_derived (Stoehr et al. 2008) to the bit
+    import warnings
+
+    from specutils import Spectrum
+    from specutils.analysis import snr_derived
+
+    from specan import resolution
+
+    truth = Table.read(DEMO / "truth.ecsv", format="ascii.ecsv")
+    for row in truth[~truth["broken"]][:4]:
+        a = resolution.normalised_arrays(prepare(read(DEMO / row["file"])))
+        packed = Spectrum(spectral_axis=a.wave[a.good] * u.AA, flux=a.flux[a.good] * u.dimensionless_unscaled)
+        with warnings.catch_warnings():
+            warnings.simplefilter("ignore")
+            snr = float(snr_derived(packed).value)
+        expected = max(float(np.median(a.flux[a.good])) / snr, 1e-5)
+        sigma = resolution.dersnr_sigma(a.flux, a.good)
+        assert np.all(sigma[a.good] == expected) and np.all(np.isinf(sigma[~a.good]))
+
+
+def test_vectorised_plans_equal_one_by_one():
+    # plan_lines (continua, integrals, depths of all lines as array operations) against plan_line
+    from specan.lines.data import DETECT_SIGMA, MIN_DEPTH, LineData, find_features
+    from specan.lines.listed import lines_in_range
+    from specan.lines.measurement import line_starts, line_targets, plan_line, plan_lines
+    from specan.lines.windows import line_windows
+
+    truth = Table.read(DEMO / "truth.ecsv", format="ascii.ecsv")
+    compared = 0
+    for row in truth[~truth["broken"]][:6]:
+        data = LineData(prepare(read(DEMO / row["file"])))
+        listed = lines_in_range(data, None, ("atomic",), row["rv_topo"] * u.km / u.s)
+        targets = line_targets(data, listed, None)
+        features = find_features(data, DETECT_SIGMA, MIN_DEPTH)
+        which = list(range(targets.pred.size))
+        starts = dict(zip(which, line_starts(data, features, targets, np.array(which), DETECT_SIGMA)))
+        found = [i for i in which if starts[i] is not None]
+        windows = dict(zip(found, line_windows(data, [starts[i] for i in found], targets.fwhm[found],
+                                               targets.hydrogen[found])))
+        many = plan_lines(data, features, targets, which, "auto", starts, windows)
+        for i in which:
+            one = plan_line(data, features, targets, i, "auto", DETECT_SIGMA, starts[i], windows.get(i))
+            two = many[i]
+            assert (one.window is None) == (two.window is None)
+            if one.window is None:
+                assert two.result.method == "masked"
+                continue
+            for name in ("fw", "hydrogen", "ic", "sign", "detected", "max_shift", "voigt", "wants_fit"):
+                assert getattr(one, name) == getattr(two, name), name
+            assert tuple(one.window) == tuple(two.window)
+            np.testing.assert_array_equal(one.centres, two.centres)
+            assert (one.skip is None) == (two.skip is None)
+            if one.skip is not None:
+                np.testing.assert_array_equal(one.skip, two.skip)
+            np.testing.assert_allclose(two.cont, one.cont, rtol=1e-14, atol=1e-15)
+            for name in ("wave_obs", "significance", "window_min", "window_max", "emission", "method"):
+                assert getattr(one.result, name) == getattr(two.result, name), name
+            for name in ("ew_int", "ew_int_err", "depth"):
+                assert getattr(two.result, name) == pytest.approx(getattr(one.result, name), rel=1e-12, abs=1e-14)
+            compared += 1
+    assert compared > 500
+
+
+def test_block_medians_equal_one_median_per_block():
+    # specan.noise._block_power reads every block's median off one sorted array: np.median's values
+    from specan import noise
+
+    rng = np.random.default_rng(1)
+    for trial in range(300):
+        n = int(rng.integers(50, 5000))
+        y = rng.normal(size=n) * rng.uniform(0.1, 10)
+        valid = rng.uniform(size=n) > rng.uniform(0, 0.9)
+        if trial % 5 == 0:
+            valid[: n // 2] = False
+        block = int(rng.choice([16, 64, 256]))
+        centres, power = noise._block_power(y, valid, block)
+        edges = np.linspace(0, n, max(n // block, 1) + 1).astype(int)
+        for b in range(edges.size - 1):
+            v = y[edges[b]:edges[b + 1]][valid[edges[b]:edges[b + 1]]]
+            expected = np.median(v * v) / noise._CHI2_1_MEDIAN if v.size >= block // 4 else np.nan
+            assert power[b] == expected or (np.isnan(power[b]) and np.isnan(expected))
+        np.testing.assert_array_equal(centres, 0.5 * (edges[:-1] + edges[1:]) - 0.5)
+
+
+def test_window_noises_equal_one_median_per_window():
+    # window_noises (one sort of every window's noise) against window_noise: the same values
+    from specan.lines.data import LineData
+    from specan.lines.measurement import window_noise, window_noises
+    from specan.lines.windows import Window
+
+    truth = Table.read(DEMO / "truth.ecsv", format="ascii.ecsv")
+    data = LineData(prepare(read(DEMO / truth[~truth["broken"]]["file"][0])))
+    rng = np.random.default_rng(3)
+    lo = rng.integers(0, data.wave.size - 2, 500)
+    hi = np.minimum(lo + rng.integers(0, 120, 500), data.wave.size - 1)
+    holed = data.sigma.copy()
+    holed[rng.uniform(size=holed.size) < 0.2] = np.inf   # masked pixels: no noise known there
+    data.sigma = holed
+    windows = [Window(int(a), int(b), (1.0, 1.0), False) for a, b in zip(lo, hi)]
+    many = window_noises(data, windows)
+    one = np.array([window_noise(data, w) for w in windows])
+    assert np.array_equal(one, many, equal_nan=True)

@@ -29,7 +29,7 @@ from __future__ import annotations
 import numpy as np
 
 from ..resolution import GAUSS_FWHM
-from .profiles import (best_grid_point, fit_profile, fit_summary, refined_shift, start_and_bounds,
+from .profiles import (best_grid_point, fit_profile, fit_summary, start_and_bounds,
                        voigt_and_derivatives, window_arrays)
 
 __all__ = ["fit_planned", "fit_batched_voigt", "gauss_batch", "voigt_batch"]
@@ -122,7 +122,9 @@ def _padded(data, problems, ks, skip_index=None):
 
 def _gauss_group(data, problems, ks, ncomp, nsh, out):
     """The problems ``ks`` (``ncomp`` components, shift grid of ``2 nsh + 1`` steps) into ``out``."""
-    ks = [k for k in ks if (np.sqrt(data.weight[problems[k][0]:problems[k][1] + 1]) > 0).sum() >= 3 + ncomp]
+    # enough pixels of non-zero weight (counted from one running count of them, not per window)
+    count = _positive_counts(data)
+    ks = [k for k in ks if count[problems[k][1] + 1] - count[problems[k][0]] >= 3 + ncomp]
     if not ks:
         return
     x, y, cont, wts, ngood = _padded(data, problems, ks)
@@ -170,6 +172,7 @@ def _gauss_group(data, problems, ks, ncomp, nsh, out):
         cov = np.linalg.inv(ata[rows[ok], best[ok]])
     except np.linalg.LinAlgError:
         cov = None
+    shifts = _refined_shifts(chi2, sh, np.maximum(best, 0), step, nsh)
     j = 0
     for row, k in enumerate(ks):
         if not ok[row]:
@@ -183,12 +186,36 @@ def _gauss_group(data, problems, ks, ncomp, nsh, out):
             c00 = cov[j, 0, 0]
             j += 1
         sig = sg[row, best[row]]
-        shift = refined_shift(chi2[row], sh[row], sg[row], best[row], step[row])
+        shift = shifts[row]
         dof = max(int(ngood[row]) - ncomp - 2, 1)
         peak = wbest[row, 0] / (sig * np.sqrt(2 * np.pi))
         out[k] = {"ew": float(wbest[row, 0]), "ew_err": float(np.sqrt(max(c00, 0.0))),
                   "centre": float(centres[row, 0] + shift), "fwhm": float(GAUSS_FWHM * sig),
                   "depth": float(peak), "chi2": float(cbest[row]) / dof, "sigma": float(sig), "gamma": 0.0}
+
+
+def _positive_counts(data):
+    """Running count of the pixels of non-zero weight: pixels lo..hi hold ``c[hi + 1] - c[lo]``."""
+    return np.concatenate([[0], np.cumsum(np.sqrt(data.weight) > 0)])
+
+
+def _refined_shifts(chi2, sh, best, step, nsh):
+    """:func:`specan.lines.profiles.refined_shift` of every row (grid: shifts repeated over three widths).
+
+    On that grid the points of the best width are every third one, so the neighbours in shift
+    are ``best -+ 3``; the same parabola, the same arithmetic, for all rows at once.
+    """
+    rows = np.arange(best.size)
+    k = best // 3
+    inner = (k > 0) & (k < 2 * nsh)
+    c0 = chi2[rows, np.where(inner, best - 3, best)]
+    c1 = chi2[rows, best]
+    c2 = chi2[rows, np.where(inner, best + 3, best)]
+    den = c0 - 2 * c1 + c2
+    with np.errstate(divide="ignore", invalid="ignore"):
+        frac = np.clip(0.5 * (c0 - c2) / den, -0.5, 0.5)
+    shift = sh[rows, best]
+    return np.where(inner & (den > 0), shift + step * frac, shift)
 
 
 # ----------------------------------------------------------------------------- Voigt
@@ -239,7 +266,7 @@ def voigt_batch(data, problems, max_iter=MAX_ITER, decrement=DECREMENT, cost_tol
         centres[row, :ncomp[row]] = problems[k][3]
         p[row, :n], lb[row, :n], ub[row, :n] = starts[row]
         real[row, :n] = True
-    model = _VoigtModel(x, y, cont, wts, centres)
+    model = _VoigtModel(x, y, cont, wts, centres, real[:, 3:])
     r, jac = model(p)
     cost = 0.5 * np.einsum("bp,bp->b", r, r)
     finite = np.isfinite(cost)   # least_squares: "residuals are not finite in the initial point"
@@ -342,19 +369,37 @@ class _VoigtModel:
     Model (as :func:`specan.lines.profiles.fit_profile`): ``cont (1 - sum_k W_k V(x - c_k - shift;
     sigma, gamma))``; parameters ``(shift, sigma, gamma, W_1..W_n)``; profile and derivatives
     from one Faddeeva evaluation (:func:`specan.lines.profiles.voigt_and_derivatives`).
+
+    The Faddeeva function is most of a fit's cost (~0.12 us a point, against a few ns for the
+    rest), so it is evaluated only where it counts: at the real components (not the padding of
+    problems with fewer) and the pixels of non-zero weight (not the padding of shorter windows,
+    nor masked pixels). Elsewhere profile and derivatives are set to zero: there they are
+    multiplied by a zero weight or a zero equivalent width, so residuals and Jacobian are the
+    same, bit for bit.
     """
 
-    def __init__(self, x, y, cont, wts, centres):
+    def __init__(self, x, y, cont, wts, centres, components):
         self.x, self.y, self.cont, self.wts, self.centres = x, y, cont, wts, centres
+        self.components = components
+        self.where = components[:, :, None] & (wts > 0)[:, None, :]     # (b, C, P)
+        # points evaluated per problem: each problem's sigma and gamma repeated that often are
+        # the values at the evaluated points, in their order (np.broadcast_to cost more)
+        self.count = self.where.sum(axis=(1, 2))
 
     def rows(self, rows):
         """The model of the problems ``rows`` only."""
-        return _VoigtModel(self.x[rows], self.y[rows], self.cont[rows], self.wts[rows], self.centres[rows])
+        return _VoigtModel(self.x[rows], self.y[rows], self.cont[rows], self.wts[rows], self.centres[rows],
+                           self.components[rows])
 
     def __call__(self, p):
-        x, cont, wts = self.x, self.cont, self.wts
+        x, cont, wts, where = self.x, self.cont, self.wts, self.where
         dx = x[:, None, :] - (self.centres[:, :, None] + p[:, 0, None, None])   # (b, C, P)
-        v, d_x, d_s, d_g = voigt_and_derivatives(dx, p[:, 1, None, None], p[:, 2, None, None])
+        sig = np.repeat(p[:, 1], self.count)
+        gam = np.repeat(p[:, 2], self.count)
+        parts = voigt_and_derivatives(dx[where], sig, gam)
+        v, d_x, d_s, d_g = (np.zeros(dx.shape) for _ in range(4))
+        for full, part in zip((v, d_x, d_s, d_g), parts):
+            full[where] = part
         ws = p[:, 3:, None]
         r = (cont * (1.0 - np.sum(ws * v, axis=1)) - self.y) * wts
         jac = np.empty((p.shape[0], x.shape[1], p.shape[1]))

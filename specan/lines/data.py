@@ -15,7 +15,8 @@ from scipy.signal import find_peaks, peak_prominences
 
 from ..obsinfo import get_info
 from .. import resolution
-from ..resolution import DEFAULT_PIXELS_PER_FWHM, GAUSS_FWHM, narrowest_line_width, normalised_arrays
+from ..resolution import (DEFAULT_PIXELS_PER_FWHM, GAUSS_FWHM, dersnr_sigma, narrowest_line_width,
+                          normalised_arrays)
 
 __all__ = ["DETECT_SIGMA", "MIN_DEPTH", "LineData", "Features", "find_features", "normalised",
            "estimate_resolving_power", "pixel_edges"]
@@ -109,6 +110,7 @@ def matched_filter(flux, weight, sig_pix):
     step = np.log(1.05)
     q = np.round(np.log(np.maximum(sig_pix, 0.3)) / step).astype(int)
     signif, smooth, smooth_err = np.empty(n), np.empty(n), np.empty(n)
+    stacked = np.stack([wd, wf, w])
     for level in np.unique(q):
         s = float(np.exp(level * step))
         sel = q == level
@@ -119,9 +121,8 @@ def matched_filter(flux, weight, sig_pix):
         reach = int(4.0 * s + 0.5) + 1
         part = slice(max(idx[0] - reach, 0), min(idx[-1] + reach + 1, n))
         sub = sel[part]
-        f_wd = gaussian_filter1d(wd[part], s, mode="nearest")[sub]
-        f_wf = gaussian_filter1d(wf[part], s, mode="nearest")[sub]
-        f_w = gaussian_filter1d(w[part], s, mode="nearest")[sub]
+        # the three arrays at width s in one call (row by row: the same sums as one call each)
+        f_wd, f_wf, f_w = gaussian_filter1d(stacked[:, part], s, mode="nearest", axis=1)[:, sub]
         f_w2 = gaussian_filter1d(w[part], s / np.sqrt(2.0), mode="nearest")[sub]
         # S = sum(w g d) / sqrt(sum(w g^2)): amplitude over its error for a Gaussian at each pixel
         signif[sel] = k1 * f_wd / np.sqrt(np.maximum(k2 * f_w2, 1e-300))
@@ -136,8 +137,9 @@ def matched_filter(flux, weight, sig_pix):
 def wide_smooth(flux, weight, s):
     """Weighted flux smoothed by a Gaussian of ``s`` pixels, and its noise."""
     wf, w = weight * flux, weight
-    f_w = np.maximum(gaussian_filter1d(w, s, mode="nearest"), 1e-300)
-    smooth = gaussian_filter1d(wf, s, mode="nearest") / f_w
+    f_wf, f_w = gaussian_filter1d(np.stack([wf, w]), s, mode="nearest", axis=1)
+    f_w = np.maximum(f_w, 1e-300)
+    smooth = f_wf / f_w
     smooth = np.where(np.isfinite(smooth), smooth, 1.0)
     k1, k2 = _kernel_sums(s)
     f_w2 = gaussian_filter1d(w, s / np.sqrt(2.0), mode="nearest")
@@ -162,8 +164,8 @@ class LineData:
             spectrum, resolving_power=resolving_power)
         self.dx = np.diff(pixel_edges(self.wave))  # pixel widths, Angstrom
         # the narrowest-line search keeps the one-value DER_SNR noise its thresholds were set with
-        narrow_sigma = (self.sigma if self.noise_source == "error array"
-                        else normalised_arrays(spectrum, dersnr=True).sigma)
+        # (what normalised_arrays(spectrum, dersnr=True) gives, from the arrays at hand)
+        narrow_sigma = self.sigma if self.noise_source == "error array" else dersnr_sigma(self.flux, self.good)
         self.narrow = narrowest_line_width(self.wave, self.flux, narrow_sigma, self.good)
         r, self.r_source = _resolving_power(resolving_power, info.resolving_power, self.narrow, self.wave)
         self.resolving_power = float(r)

@@ -113,13 +113,15 @@ def match_windows(pred, fwhm_at, window):
 
 def blends(waves, ids, fwhm):
     """For each line, the ids of the other listed lines within one resolution element."""
+    waves = np.asarray(waves, float)
     order = np.argsort(waves)
     ws = waves[order]
+    lo = np.searchsorted(ws, waves - fwhm)
+    hi = np.searchsorted(ws, waves + fwhm, side="right")
     out = [""] * len(waves)
-    for i in order:
-        lo = np.searchsorted(ws, waves[i] - fwhm[i])
-        hi = np.searchsorted(ws, waves[i] + fwhm[i], side="right")
-        others = [ids[order[j]] for j in range(lo, hi) if order[j] != i]
+    # a line alone in its element (hi - lo == 1: itself) has no partners: only the others loop
+    for i in np.flatnonzero(hi - lo > 1):
+        others = [ids[order[j]] for j in range(lo[i], hi[i]) if order[j] != i]
         out[i] = ",".join(others)
     return out
 

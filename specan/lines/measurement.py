@@ -23,16 +23,17 @@ import numpy as np
 from astropy.table import QTable
 
 from ..resolution import GAUSS_FWHM
-from .components import component_centres, window_features, wing_mask
+from .components import MIN_SEPARATION, component_centres, window_features, wing_mask
 from .data import DETECT_SIGMA, MIN_DEPTH, LineData, find_features, normalised
 from .hydrogen import without_hydrogen
 from .listed import blends, line_widths, lines_in_range, match_windows, velocities
-from .batchfit import fit_batched_voigt, fit_planned
+from .batchfit import fit_planned, voigt_batch
 from .profiles import fit_gauss, fit_profile
 from .windows import line_window, line_windows, local_continuum, profile_window, wing_reach
 
 __all__ = ["measure", "cayrel_error", "Targets", "LineResult", "line_targets", "measure_lines",
-           "measure_line", "LinePlan", "LineStart", "line_start", "line_starts", "plan_line", "finish_line",
+           "measure_line", "LinePlan", "LineStart", "line_start", "line_starts", "plan_line", "plan_lines",
+           "finish_line", "finish_lines", "wing_fits", "window_noises",
            "match_feature", "integrated_ew", "central_depth", "use_voigt", "fit_line", "chosen_ew",
            "window_noise", "half_width", "line_table", "wing_fit"]
 
@@ -203,13 +204,12 @@ def measure_lines(data, features, targets, which, profile, detect_sigma, batched
     found = [i for i, st in starts.items() if st is not None]
     windows = dict(zip(found, line_windows(data, [starts[i] for i in found], targets.fwhm[found],
                                            targets.hydrogen[found])))
-    plans = {i: plan_line(data, features, targets, i, profile, detect_sigma, starts[i], windows.get(i))
-             for i in starts}
+    plans = plan_lines(data, features, targets, list(starts), profile, starts, windows)
     wanted = [p for p in plans.values() if p.wants_fit]
     fits = fit_planned(data, wanted)
     for plan, fit in zip(wanted, fits):
         plan.fit = fit
-    return {i: finish_line(data, features, targets, i, plan, fit_batched_voigt) for i, plan in plans.items()}
+    return finish_lines(data, features, targets, plans)
 
 
 def measure_line(data, features, targets, i, profile, detect_sigma):
@@ -348,39 +348,189 @@ def plan_line(data, features, targets, i, profile, detect_sigma, start=None, win
                     wants_fit=detected)
 
 
+def plan_lines(data, features, targets, which, profile, starts, windows):
+    """:func:`plan_line` of every line index in ``which`` at once, as ``{index: LinePlan}``.
+
+    ``starts`` and ``windows`` map each index to its :class:`LineStart` (None: masked) and
+    window. The local continua, direct integrals and central depths of all lines are array
+    operations over their windows padded to one length (the pixels past a window's end add
+    nothing); the sums may differ from :func:`plan_line`'s by rounding. Only the choice of
+    blend components stays a loop per line (each choice depends on the ones before it).
+    """
+    plans = {int(i): LinePlan(LineResult(method="masked")) for i in which if starts[i] is None}
+    found = [int(i) for i in which if starts[i] is not None]
+    if not found:
+        return plans
+    wave, n = data.wave, data.wave.size
+    wins = [windows[i] for i in found]
+    lo = np.array([w.lo for w in wins])
+    hi = np.array([w.hi for w in wins])
+    lv = np.array([w.levels for w in wins], float).reshape(len(found), 2)
+    centre = np.array([starts[i].centre for i in found])
+    ic = np.array([starts[i].ic for i in found])
+    sign = np.array([starts[i].sign for i in found])
+    length = hi - lo + 1
+    k = np.arange(int(length.max()))
+    inside = k[None, :] < length[:, None]
+    pix = np.minimum(lo[:, None] + k[None, :], n - 1)
+    x = wave[pix]
+    x0, x1 = wave[lo], wave[hi]
+    # local_continuum: the straight line between the edge levels
+    with np.errstate(divide="ignore", invalid="ignore"):   # one-pixel windows: their level, below
+        t = (x - x0[:, None]) / (x1 - x0)[:, None]
+        cont = lv[:, :1] * (1.0 - t) + lv[:, 1:] * t
+    cont[hi == lo] = lv[hi == lo, :1]
+    cont = np.where(inside, cont, 1.0)
+    # integrated_ew
+    dx = data.dx[pix]
+    ew_int = np.sum(np.where(inside, (1.0 - data.flux[pix] / cont) * dx, 0.0), axis=1)
+    sig = data.sigma[pix]
+    ok = inside & np.isfinite(sig)
+    ew_int_err = np.sqrt(np.sum(np.where(ok, sig / cont * dx, 0.0) ** 2, axis=1))
+    # central_depth: the continuum at the centre as np.interp gives it from the window's pixels
+    c_mid = _interp_rows(centre, x, cont, length)
+    near = ic[:, None] + np.arange(-1, 2)[None, :]
+    in_near = (near >= 0) & (near < n)
+    fl = data.flux[np.clip(near, 0, n - 1)]
+    extreme = np.where(sign > 0, np.where(in_near, fl, np.inf).min(axis=1), np.where(in_near, fl, -np.inf).max(axis=1))
+    depth = 1.0 - extreme / c_mid
+    # window_features: the features of each line's kind between its window's edges (positions sorted)
+    pos, femis = features.position, features.emission
+    kinds = {1.0: pos[~femis], -1.0: pos[femis]} if pos.size else {}
+    # component_centres' listed companions of every line at once: the other listed lines of the
+    # same class (hydrogen or not) inside its window, in list order
+    pred, is_h = targets.pred, targets.hydrogen
+    idx = np.asarray(found)
+    companion = ((pred[None, :] >= x0[:, None]) & (pred[None, :] <= x1[:, None])
+                 & (is_h[None, :] == is_h[idx][:, None]) & (np.arange(pred.size)[None, :] != idx[:, None]))
+    signif = data.signif[ic]
+    fws = targets.fwhm[idx]
+    hyd = is_h[idx]
+    # use_voigt of every line: strong lines (deep core, window over four widths) or hydrogen
+    voigt = (profile == "voigt") | ((profile == "auto") & (hyd | ((depth > 0.7) & ((x1 - x0) > 4.0 * fws))))
+    # window_features: each line's features of its own kind between its window's edges
+    bounds = {key: (np.searchsorted(mine, x0, "left"), np.searchsorted(mine, x1, "right"))
+              for key, mine in kinds.items()}
+    for m, i in enumerate(found):
+        fw, hydrogen = fws[m], bool(hyd[m])
+        window = wins[m]
+        st = starts[i]
+        result = LineResult(wave_obs=st.centre, ew_int=float(ew_int[m]), ew_int_err=float(ew_int_err[m]),
+                            significance=float(signif[m]), depth=float(depth[m]),
+                            window_min=x0[m], window_max=x1[m], emission=st.sign < 0)
+        if kinds:
+            key = 1.0 if st.sign > 0 else -1.0
+            in_win = kinds[key][bounds[key][0][m]:bounds[key][1][m]]
+        else:
+            in_win = np.zeros(0)
+        centres = _centres(pred[companion[m]] + (st.centre - pred[i]), in_win, hydrogen, st.centre, fw)
+        skip = wing_mask(data, targets, i, st.centre, window, in_win, centres) if hydrogen else None
+        plans[i] = LinePlan(result, fw, hydrogen, st.ic, st.sign, st.detected, st.max_shift, window,
+                            cont[m, :length[m]], centres, skip, bool(voigt[m]), wants_fit=st.detected)
+    return plans
+
+
+def _centres(listed, in_win, hydrogen, centre, fw):
+    """:func:`~specan.lines.components.component_centres` from the line's shifted listed companions."""
+    candidates = list(listed) if hydrogen else list(listed) + list(in_win)
+    if not candidates:
+        return np.array([centre])
+    centres = [centre]
+    for c in candidates:
+        if min(abs(c - x) for x in centres) > MIN_SEPARATION * fw:
+            centres.append(c)
+    return np.array(centres)
+
+
+def _interp_rows(xv, xp, fp, length):
+    """``np.interp(xv[m], xp[m, :length[m]], fp[m, :length[m]])`` for every row m, with np.interp's rules."""
+    rows = np.arange(xv.size)
+    inside = np.arange(xp.shape[1])[None, :] < length[:, None]
+    j = np.sum(inside & (xp <= xv[:, None]), axis=1) - 1      # xp[j] <= x < xp[j + 1]
+    last = length - 1
+    jc = np.clip(j, 0, np.maximum(last - 1, 0))
+    jn = np.minimum(jc + 1, last)
+    xa, xb, fa, fb = xp[rows, jc], xp[rows, jn], fp[rows, jc], fp[rows, jn]
+    with np.errstate(divide="ignore", invalid="ignore"):
+        slope = (fb - fa) / (xb - xa)
+        val = slope * (xv - xa) + fa
+        # np.interp's fallback where the first form is NaN
+        val = np.where(np.isnan(val), np.where(fa == fb, fa, slope * (xv - xb) + fb), val)
+    val = np.where(xa == xv, fa, val)
+    val = np.where(j >= last, fp[rows, last], val)
+    val = np.where(xv > xp[rows, last], fp[rows, last], val)
+    return np.where(xv < xp[:, 0], fp[:, 0], val)
+
+
 def finish_line(data, features, targets, i, plan, fitter):
     """The :class:`LineResult` of a planned line whose fit (``plan.fit``) is made.
 
     ``fitter`` makes the wing fits of strong lines (:func:`wing_fit`).
     """
-    result = plan.result
     if plan.window is None:   # masked
-        return result
-    fit, window, fw, sign, hydrogen, voigt = plan.fit, plan.window, plan.fw, plan.sign, plan.hydrogen, plan.voigt
-    ew_int, ew_int_err = result.ew_int, result.ew_int_err
+        return plan.result
+    _fitted(data, plan)
+    wing = None
+    if _wants_wings(plan):
+        wing = wing_fit(data, features, targets, i, plan.result.wave_obs, plan.fit, plan.fw, fitter=fitter)
+    return _finished(data, plan, wing)
+
+
+def finish_lines(data, features, targets, plans):
+    """:func:`finish_line` of every plan (``{index: LinePlan}``), the wing fits batched (:func:`wing_fits`)."""
+    for plan in plans.values():
+        if plan.window is not None:
+            _fitted(data, plan)
+    strong = [i for i, plan in plans.items() if plan.window is not None and _wants_wings(plan)]
+    wings = wing_fits(data, features, targets, strong, [plans[i].result.wave_obs for i in strong],
+                      [plans[i].fit for i in strong], [plans[i].fw for i in strong])
+    wing_of = dict(zip(strong, wings))
+    done = [i for i, plan in plans.items() if plan.window is not None]
+    final = [plans[i].window if wing_of.get(i) is None else wing_of[i][1] for i in done]
+    noise = dict(zip(done, window_noises(data, final)))
+    return {i: plan.result if plan.window is None else _finished(data, plan, wing_of.get(i), noise[i])
+            for i, plan in plans.items()}
+
+
+def _fitted(data, plan):
+    """The result's fitted (or, without a fit, half-depth) quantities and its chosen equivalent width."""
+    result, fit, window = plan.result, plan.fit, plan.window
     if fit is not None:
-        result.profile = "voigt" if voigt else "gauss"
-        result.fit = dict(fit, profile=result.profile, sign=sign, ew_int=ew_int)
+        result.profile = "voigt" if plan.voigt else "gauss"
+        result.fit = dict(fit, profile=result.profile, sign=plan.sign, ew_int=result.ew_int)
         result.ew_fit, result.ew_fit_err, result.fit_chi2 = fit["ew"], fit["ew_err"], fit["chi2"]
         result.fwhm, result.wave_obs = fit["fwhm"], fit["centre"]
     else:
-        result.fwhm = half_width(data, plan.ic, window.lo, window.hi, sign)
+        result.fwhm = half_width(data, plan.ic, window.lo, window.hi, plan.sign)
     result.method, result.ew, result.ew_err = chosen_ew(fit, result.profile, window.cut, len(plan.centres) - 1,
-                                                        hydrogen, ew_int, ew_int_err)
-    if fit is not None and voigt and not hydrogen and sign > 0:
-        wing = wing_fit(data, features, targets, i, result.wave_obs, fit, fw, fitter=fitter)
-        if wing is not None:
-            fit, wwin = wing
-            result.fit = dict(fit, profile="voigt", sign=sign, ew_int=ew_int)
-            result.ew_fit, result.ew_fit_err, result.fit_chi2 = fit["ew"], fit["ew_err"], fit["chi2"]
-            result.fwhm, result.wave_obs = fit["fwhm"], fit["centre"]
-            result.method, result.ew, result.ew_err = "wing_voigt_fit", fit["ew"], fit["ew_err"]
-            result.window_min, result.window_max = data.wave[wwin.lo], data.wave[wwin.hi]
-            window = wwin
+                                                        plan.hydrogen, result.ew_int, result.ew_int_err)
+
+
+def _wants_wings(plan):
+    """Whether the line's wings are fitted (:func:`wing_fit`): a fitted Voigt absorption line, not hydrogen."""
+    return plan.fit is not None and plan.voigt and not plan.hydrogen and plan.sign > 0
+
+
+def _finished(data, plan, wing, noise=None):
+    """The result with the wing fit ``(fit, window)`` (or None), detection and Cayrel error.
+
+    ``noise``: :func:`window_noise` of the final window, when already known.
+    """
+    result, window = plan.result, plan.window
+    if wing is not None:
+        fit, wwin = wing
+        result.fit = dict(fit, profile="voigt", sign=plan.sign, ew_int=result.ew_int)
+        result.ew_fit, result.ew_fit_err, result.fit_chi2 = fit["ew"], fit["ew_err"], fit["chi2"]
+        result.fwhm, result.wave_obs = fit["fwhm"], fit["centre"]
+        result.method, result.ew, result.ew_err = "wing_voigt_fit", fit["ew"], fit["ew_err"]
+        result.window_min, result.window_max = data.wave[wwin.lo], data.wave[wwin.hi]
+        window = wwin
     # significant in the matched filter AND an equivalent width clear of its error
     result.detected = plan.detected and abs(result.ew) > 2.0 * result.ew_err
-    fwhm_c = result.fwhm if np.isfinite(result.fwhm) else fw
-    result.ew_err_cayrel = cayrel_error(fwhm_c, data.dx[plan.ic], 1.0 / window_noise(data, window))
+    fwhm_c = result.fwhm if np.isfinite(result.fwhm) else plan.fw
+    if noise is None:
+        noise = window_noise(data, window)
+    result.ew_err_cayrel = cayrel_error(fwhm_c, data.dx[plan.ic], 1.0 / noise)
     return result
 
 
@@ -406,43 +556,84 @@ def wing_fit(data, features, targets, i, centre, fit, fwhm, max_iter=3, fitter=f
     (dict, Window) or None
         None when the wings reach no farther than the first window or the fit fails.
     """
-    from .components import MIN_SEPARATION
-
-    pred = targets.pred
-    shift = centre - pred[i]
     best = None
     reach0 = 0.0
-    noise = float(np.nanmedian(data.sigma[data.good])) if data.good.any() else 1e-3
+    noise = _typical_noise(data)
     for _ in range(max_iter):
-        # where the wing's depth is down to the noise of a few pixels, or 0.2%
-        # (a continuum placed better than that is rare; common practice)
-        threshold = max(noise / np.sqrt(5.0), 2e-3)
-        reach = wing_reach(fit["ew"], fit["sigma"], fit["gamma"], threshold)
-        if reach <= 1.05 * reach0 or reach <= 3.0 * fwhm:
+        problem = _wing_problem(data, features, targets, i, centre, fit, fwhm, noise, reach0)
+        if problem is None:
             break
-        reach0 = reach
-        win = profile_window(data, centre, reach)
-        lo, hi = data.wave[win.lo], data.wave[win.hi]
-        others = np.flatnonzero((pred >= lo) & (pred <= hi) & ~targets.hydrogen)
-        others = others[others != i]
-        depth_at = 1.0 - np.interp(pred[others] + shift, data.wave, data.smooth)
-        strong = others[depth_at > 0.5]
-        centres = [centre]
-        for c in pred[strong] + shift:
-            if min(abs(c - x) for x in centres) > MIN_SEPARATION * fwhm:
-                centres.append(c)
-        centres = np.array(centres)
-        weak_pos = np.concatenate([pred[np.setdiff1d(others, strong)] + shift, features.position[
-            (features.position >= lo) & (features.position <= hi)]])
-        x = data.wave[win.lo:win.hi + 1]
-        far = np.abs(weak_pos[:, None] - centres[None, :]).min(axis=1) > MIN_SEPARATION * fwhm
-        skip = (np.abs(x[None, :] - weak_pos[far][:, None]) < 1.2 * fwhm).any(axis=0) if far.any() else None
-        cont = np.ones(x.size)
-        new = fitter(data, win.lo, win.hi, cont, centres, "voigt", 0.5 * fwhm, fwhm / GAUSS_FWHM, 1.0, skip)
-        if not _determined(new, hi - lo):
+        win, centres, skip, reach0 = problem
+        new = fitter(data, win.lo, win.hi, np.ones(win.hi - win.lo + 1), centres, "voigt", 0.5 * fwhm,
+                     fwhm / GAUSS_FWHM, 1.0, skip)
+        if not _determined(new, data.wave[win.hi] - data.wave[win.lo]):
             break
         fit, best = new, (new, win)
     return best
+
+
+def wing_fits(data, features, targets, which, centres, fits, fwhm, max_iter=3):
+    """:func:`wing_fit` of the lines ``which`` (their centres, first fits and widths), the fits of each
+    round made together (:func:`specan.lines.batchfit.voigt_batch`): a list of ``(dict, Window)`` or None."""
+    best = [None] * len(which)
+    if not which:
+        return best
+    noise = _typical_noise(data)
+    fit, reach0 = list(fits), [0.0] * len(which)
+    live = list(range(len(which)))
+    for _ in range(max_iter):
+        asked = []
+        for m in live:
+            problem = _wing_problem(data, features, targets, which[m], centres[m], fit[m], fwhm[m], noise, reach0[m])
+            if problem is not None:
+                asked.append((m, problem))
+                reach0[m] = problem[3]
+        if not asked:
+            break
+        made = voigt_batch(data, [(win.lo, win.hi, np.ones(win.hi - win.lo + 1), cen, 0.5 * fwhm[m],
+                                   fwhm[m] / GAUSS_FWHM, 1.0, skip, False) for m, (win, cen, skip, _) in asked])
+        live = []
+        for (m, (win, _, _, _)), new in zip(asked, made):
+            if _determined(new, data.wave[win.hi] - data.wave[win.lo]):
+                fit[m], best[m] = new, (new, win)
+                live.append(m)
+    return best
+
+
+def _typical_noise(data):
+    """Median noise of the good pixels (1e-3 without any)."""
+    return float(np.nanmedian(data.sigma[data.good])) if data.good.any() else 1e-3
+
+
+def _wing_problem(data, features, targets, i, centre, fit, fwhm, noise, reach0):
+    """One round of :func:`wing_fit`: ``(window, centres, skip, reach)`` of the next fit, or None to stop."""
+    from .components import MIN_SEPARATION
+
+    # where the wing's depth is down to the noise of a few pixels, or 0.2%
+    # (a continuum placed better than that is rare; common practice)
+    threshold = max(noise / np.sqrt(5.0), 2e-3)
+    reach = wing_reach(fit["ew"], fit["sigma"], fit["gamma"], threshold)
+    if reach <= 1.05 * reach0 or reach <= 3.0 * fwhm:
+        return None
+    pred = targets.pred
+    shift = centre - pred[i]
+    win = profile_window(data, centre, reach)
+    lo, hi = data.wave[win.lo], data.wave[win.hi]
+    others = np.flatnonzero((pred >= lo) & (pred <= hi) & ~targets.hydrogen)
+    others = others[others != i]
+    depth_at = 1.0 - np.interp(pred[others] + shift, data.wave, data.smooth)
+    strong = others[depth_at > 0.5]
+    centres = [centre]
+    for c in pred[strong] + shift:
+        if min(abs(c - x) for x in centres) > MIN_SEPARATION * fwhm:
+            centres.append(c)
+    centres = np.array(centres)
+    weak_pos = np.concatenate([pred[np.setdiff1d(others, strong)] + shift, features.position[
+        (features.position >= lo) & (features.position <= hi)]])
+    x = data.wave[win.lo:win.hi + 1]
+    far = np.abs(weak_pos[:, None] - centres[None, :]).min(axis=1) > MIN_SEPARATION * fwhm
+    skip = (np.abs(x[None, :] - weak_pos[far][:, None]) < 1.2 * fwhm).any(axis=0) if far.any() else None
+    return win, centres, skip, reach
 
 
 def _determined(fit, span):
@@ -538,6 +729,31 @@ def window_noise(data, window):
     return part[n // 2] if n % 2 else 0.5 * (part[n // 2 - 1] + part[n // 2])
 
 
+def window_noises(data, windows):
+    """:func:`window_noise` of every window at once (one sort of all windows' noise, padded).
+
+    Each window's finite noise values sorted in one row (the rest +inf, past them); the middle
+    one, or the mean of the middle two, read off: the same values as one median per window.
+    """
+    out = np.full(len(windows), np.nan)
+    if not windows:
+        return out
+    lo = np.array([w.lo for w in windows])
+    length = np.array([w.hi for w in windows]) - lo + 1
+    k = np.arange(int(length.max()))
+    inside = k[None, :] < length[:, None]
+    sig = data.sigma[np.minimum(lo[:, None] + k[None, :], data.wave.size - 1)]
+    ok = inside & np.isfinite(sig)
+    srt = np.sort(np.where(ok, sig, np.inf), axis=1)
+    n = ok.sum(axis=1)
+    rows = np.arange(lo.size)
+    mid = srt[rows, n // 2 * (n > 0)]
+    below = srt[rows, np.maximum(n // 2 - 1, 0)]
+    with np.errstate(invalid="ignore"):
+        value = np.where(n % 2 == 1, mid, 0.5 * (below + mid))
+    return np.where(n > 0, value, out)
+
+
 def half_width(data, ic, lo, hi, sign):
     """FWHM from the half-depth crossings of the data (no fit available)."""
     d = sign * (1.0 - data.flux[lo:hi + 1])
@@ -566,24 +782,29 @@ def line_table(data, listed, targets, results):
     t = listed.rows
     ids = [str(i) for i in t["id"]]
     cols = {name: np.array([getattr(r, name) for r in results], float) for name in _FLOAT_COLUMNS}
-    out = QTable()
-    out["id"] = ids
-    out["species"] = [str(s) for s in t["species"]]
-    out["wave_air"] = t["wave_air"].to(u.AA)
-    out["wave_vac"] = t["wave_vac"].to(u.AA)
-    out["wave_obs"] = cols["wave_obs"] * u.AA
-    out["velocity"] = velocities(cols["wave_obs"], listed.lab) * u.km / u.s
+    aa, kms = u.AA, u.km / u.s
+    # the columns built once and the table made from them in one call, text columns as arrays:
+    # column by column from lists, astropy's conversions were ~2 ms a spectrum (bench_lines.py)
+    columns = {
+        "id": np.array(ids, str),
+        "species": np.array([str(s) for s in t["species"]], str),
+        "wave_air": t["wave_air"].to(aa),
+        "wave_vac": t["wave_vac"].to(aa),
+        "wave_obs": cols["wave_obs"] * aa,
+        "velocity": velocities(cols["wave_obs"], listed.lab) * kms,
+    }
     for name in ("ew", "ew_err", "ew_err_cayrel", "ew_int", "ew_int_err", "ew_fit", "ew_fit_err", "fwhm"):
-        out[name] = cols[name] * u.AA
-    out["depth"] = cols["depth"]
-    out["significance"] = cols["significance"]
-    out["fit_chi2"] = cols["fit_chi2"]
-    out["window_min"] = cols["window_min"] * u.AA
-    out["window_max"] = cols["window_max"] * u.AA
-    out["method"] = [str(r.method) for r in results]
-    out["profile"] = [str(r.profile) for r in results]
-    out["blend"] = [str(b) for b in blends(listed.pred, ids, targets.fwhm)]
-    out["detected"] = np.array([r.detected for r in results], bool)
-    out["emission"] = np.array([r.emission for r in results], bool)
+        columns[name] = cols[name] * aa
+    columns["depth"] = cols["depth"]
+    columns["significance"] = cols["significance"]
+    columns["fit_chi2"] = cols["fit_chi2"]
+    columns["window_min"] = cols["window_min"] * aa
+    columns["window_max"] = cols["window_max"] * aa
+    columns["method"] = np.array([str(r.method) for r in results], str)
+    columns["profile"] = np.array([str(r.profile) for r in results], str)
+    columns["blend"] = np.array([str(b) for b in blends(listed.pred, ids, targets.fwhm)], str)
+    columns["detected"] = np.array([r.detected for r in results], bool)
+    columns["emission"] = np.array([r.emission for r in results], bool)
+    out = QTable(list(columns.values()), names=list(columns), copy=False)
     out.meta.update(data.meta(listed.rv))
     return out

@@ -7,6 +7,7 @@ from typing import NamedTuple
 import numpy as np
 
 __all__ = ["Window", "line_window", "line_windows", "adaptive_window", "adaptive_windows", "fixed_window",
+           "fixed_windows",
            "profile_window", "wing_reach", "local_continuum", "MAX_WING"]
 
 #: Farthest a strong line's window reaches from its centre, Angstrom: the solar Ca II K
@@ -54,12 +55,12 @@ def line_windows(data, starts, fwhm, hydrogen):
     list of Window
     """
     out = [None] * len(starts)
-    walk = []
-    for k, st in enumerate(starts):
-        if st[2]:
-            walk.append(k)
-        else:
-            out[k] = fixed_window(data, st[0], fwhm[k])
+    walk = [k for k, st in enumerate(starts) if st[2]]
+    fixed = [k for k, st in enumerate(starts) if not st[2]]
+    if fixed:
+        for k, window in zip(fixed, fixed_windows(data, np.array([starts[k][0] for k in fixed]),
+                                                  np.asarray(fwhm, float)[fixed])):
+            out[k] = window
     if walk:
         k = np.array(walk)
         fw = np.asarray(fwhm, float)[k]
@@ -176,6 +177,16 @@ def fixed_window(data, centre, fwhm):
     hi = int(np.clip(np.searchsorted(data.wave, centre + fwhm), lo + 1, data.wave.size - 1))
     lo = min(lo, hi - 1)
     return Window(lo, hi, (float(data.smooth[lo]), float(data.smooth[hi])), False)
+
+
+def fixed_windows(data, centre, fwhm):
+    """:func:`fixed_window` of many lines (arrays of centres and widths): the same windows."""
+    n = data.wave.size
+    lo = np.searchsorted(data.wave, centre - fwhm)
+    hi = np.clip(np.searchsorted(data.wave, centre + fwhm), lo + 1, n - 1)
+    lo = np.minimum(lo, hi - 1)
+    left, right = data.smooth[lo], data.smooth[hi]
+    return [Window(int(a), int(b), (float(c), float(d)), False) for a, b, c, d in zip(lo, hi, left, right)]
 
 
 def adaptive_window(data, ic, sign, min_half, max_half, wide=False):
