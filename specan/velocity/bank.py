@@ -129,18 +129,17 @@ def score_bank(search, bank, data_short):
     inner = (j > 0) & (j < s.size - 1) & (den < 0)
     vertex = np.where(inner, y1 - 0.125 * (y0 - y2) ** 2 / np.where(inner, den, -1.0), y1)
     a1, a2, a3 = side.arrays
-    # sums over the data window at each template's peak lag: contiguous slices, one per distinct lag
-    c2v, c1v, c3v, c2t, c2t2 = (np.empty(len(bank)) for _ in range(5))
+    # sums over the data window at each template's peak lag: every template's window gathered at
+    # once (a view, then one copy), the coverage sums once per distinct (coverage, lag)
     peak_lag = s[j]
-    for lag in np.unique(peak_lag):
-        sel = np.flatnonzero(peak_lag == lag)
-        start = pad - int(lag)          # lag s uses template pixels x + pad - s
-        for g in np.unique(bank.groups[sel]):   # coverage sums once per coverage, not per template
-            cov = bank.V_unique[g, start:start + n]
-            into = sel[bank.groups[sel] == g]
-            c2v[into], c1v[into], c3v[into] = np.sum(cov * a2), np.sum(cov * a1), np.sum(cov * a3)
-        c2t[sel] = np.sum(bank.T[sel, start:start + n] * a2, axis=1)
-        c2t2[sel] = np.sum(bank.T2[sel, start:start + n] * a2, axis=1)
+    start = pad - peak_lag              # lag s uses template pixels x + pad - s
+    c2t = np.sum(_windows(bank.T, n)[rows, start] * a2, axis=1)
+    c2t2 = np.sum(_windows(bank.T2, n)[rows, start] * a2, axis=1)
+    c2v, c1v, c3v = (np.empty(len(bank)) for _ in range(3))
+    pairs, which = np.unique(np.stack([bank.groups, start]), axis=1, return_inverse=True)
+    cov = _windows(bank.V_unique, n)[pairs[0], pairs[1]]                       # (P, n)
+    for out, a in ((c2v, a2), (c1v, a1), (c3v, a3)):
+        out[:] = np.sum(cov * a, axis=1)[np.asarray(which).ravel()]
     c2v = np.maximum(c2v, 1e-300)
     e = c2t2 - c2t ** 2 / c2v
     d = c3v - c1v ** 2 / c2v
@@ -148,6 +147,11 @@ def score_bank(search, bank, data_short):
         h = (vertex - c1v * c2t / c2v) / np.sqrt(np.clip(e, 1e-300, None) * np.clip(d, 1e-300, None))
     h = np.where(found & np.isfinite(h), h, -np.inf)
     return BankScores([int(s[j[i]]) if np.isfinite(h[i]) else None for i in rows], h)
+
+
+def _windows(x, n):
+    """(rows, positions, n) view of every length-``n`` window of the rows of ``x`` (no copy)."""
+    return np.lib.stride_tricks.sliding_window_view(x, n, axis=1)
 
 
 def mixture_weights(heights):
@@ -282,21 +286,24 @@ def refine_peaks(templates, lags, data_ffts, m, pad):
     A = [a[:nf] for a in data_ffts]
     x0 = np.asarray(lags, float)
     f = np.arange(nf)
+    # the six correlation rows of every template, (6, T, nf), the same in both passes: made once,
+    # as interleaved (re, im) reals so that Re(X ph) = X.re ph.re - X.im ph.im is one real sum
+    X = np.zeros((6, x0.size, nf), complex)
+    for r, (a, B) in enumerate(((A[0], FT), (A[1], FT), (A[1], FT2), (A[0], FV), (A[2], FV), (A[1], FV))):
+        X[r, :, :B.shape[1]] = np.conj(a[:B.shape[1]])[None, :] * B
+    Xi = X.view(np.float64)                                                  # (6, T, 2 nf)
     height = curv = np.full(x0.size, np.nan)
     for offs in REFINE_OFFSETS:
-        # phases of lag s = x0 + o at index k = pad - s: one exponential per frequency and template
-        base = np.exp(2j * np.pi * np.outer(pad - x0, f) / m)                 # (T, nf)
-        ph = base[:, None, :] * np.conj(_offset_phases(m, nf, tuple(offs)))[None, :, :]  # (T, L, nf)
-
-        # the six correlation rows of every template, (6, T, nf), against the same phases
-        X = np.zeros((6, x0.size, nf), complex)
-        for r, (a, B) in enumerate(((A[0], FT), (A[1], FT), (A[1], FT2), (A[0], FV), (A[2], FV), (A[1], FV))):
-            X[r, :, :B.shape[1]] = np.conj(a[:B.shape[1]])[None, :] * B
-        # Re(X ph) = X.re ph.re - X.im ph.im, summed over frequencies on contiguous real copies
-        # (numpy's einsum is far slower on the strided real and imaginary views)
-        re = np.einsum("rtf,tlf->rtl", np.ascontiguousarray(X.real), np.ascontiguousarray(ph.real))
-        c, _ = Correlation.combine(re - np.einsum("rtf,tlf->rtl", np.ascontiguousarray(X.imag),
-                                                  np.ascontiguousarray(ph.imag)))
+        # phases of lag s = x0 + o at index k = pad - s: one angle per frequency and template,
+        # times the cached offset phases, in real arithmetic straight into the interleaved layout
+        theta = (2.0 * np.pi / m) * np.outer(pad - x0, f)                    # (T, nf)
+        br, bi = np.cos(theta)[:, None, :], np.sin(theta)[:, None, :]
+        off = np.conj(_offset_phases(m, nf, tuple(offs)))[None, :, :]         # (1, L, nf)
+        ph = np.empty((x0.size, len(offs), 2 * nf))                          # (T, L, 2 nf): (re, -im)
+        ph[..., 0::2] = br * off.real - bi * off.imag
+        ph[..., 1::2] = -(br * off.imag + bi * off.real)
+        # numpy's einsum, not BLAS: bit-identical whatever the thread count
+        c, _ = Correlation.combine(np.einsum("rtf,tlf->rtl", Xi, ph))
         ok = np.all(np.isfinite(c), axis=1)
         dx, h, cv = poly_peaks(offs, np.where(ok[:, None], c, 0.0))
         x0 = np.where(ok, x0 + dx, x0)
