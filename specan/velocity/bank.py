@@ -286,24 +286,20 @@ def refine_peaks(templates, lags, data_ffts, m, pad):
     A = [a[:nf] for a in data_ffts]
     x0 = np.asarray(lags, float)
     f = np.arange(nf)
-    # the six correlation rows of every template, (6, T, nf), the same in both passes: made once,
-    # as interleaved (re, im) reals so that Re(X ph) = X.re ph.re - X.im ph.im is one real sum
+    # the six correlation rows of every template, (6, T, nf), the same in both passes: made once
     X = np.zeros((6, x0.size, nf), complex)
     for r, (a, B) in enumerate(((A[0], FT), (A[1], FT), (A[1], FT2), (A[0], FV), (A[2], FV), (A[1], FV))):
         X[r, :, :B.shape[1]] = np.conj(a[:B.shape[1]])[None, :] * B
-    Xi = X.view(np.float64)                                                  # (6, T, 2 nf)
     height = curv = np.full(x0.size, np.nan)
     for offs in REFINE_OFFSETS:
-        # phases of lag s = x0 + o at index k = pad - s: one angle per frequency and template,
-        # times the cached offset phases, in real arithmetic straight into the interleaved layout
+        # the phase of lag s = x0 + o at index k = pad - s is a per-template part (one angle per
+        # frequency) times a cached per-offset part: the first goes into the rows, and
+        # Re(Y conj(p)) = Y.re p.re + Y.im p.im is one real sum over the interleaved (re, im)
+        # layout of both (numpy's einsum, not BLAS: bit-identical whatever the thread count)
         theta = (2.0 * np.pi / m) * np.outer(pad - x0, f)                    # (T, nf)
-        br, bi = np.cos(theta)[:, None, :], np.sin(theta)[:, None, :]
-        off = np.conj(_offset_phases(m, nf, tuple(offs)))[None, :, :]         # (1, L, nf)
-        ph = np.empty((x0.size, len(offs), 2 * nf))                          # (T, L, 2 nf): (re, -im)
-        ph[..., 0::2] = br * off.real - bi * off.imag
-        ph[..., 1::2] = -(br * off.imag + bi * off.real)
-        # numpy's einsum, not BLAS: bit-identical whatever the thread count
-        c, _ = Correlation.combine(np.einsum("rtf,tlf->rtl", Xi, ph))
+        Y = X * (np.cos(theta) + 1j * np.sin(theta))[None, :, :]
+        p = _offset_phases(m, nf, tuple(offs))                                # (L, nf), cached
+        c, _ = Correlation.combine(np.einsum("rtf,lf->rtl", Y.view(np.float64), p.view(np.float64)))
         ok = np.all(np.isfinite(c), axis=1)
         dx, h, cv = poly_peaks(offs, np.where(ok[:, None], c, 0.0))
         x0 = np.where(ok, x0 + dx, x0)

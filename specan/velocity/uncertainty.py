@@ -10,6 +10,7 @@ error is the larger (:func:`reported_error`).
 
 from __future__ import annotations
 
+import functools
 import math
 from typing import NamedTuple
 
@@ -257,6 +258,18 @@ def _segments(info, n_seg, fwhm_px):
     return np.unique(np.asarray(starts))
 
 
+@functools.lru_cache(maxsize=32)
+def _offset_phases(offsets, m, nf):
+    """(L, nf) exp(2 pi i f o / m) for fixed offsets o (cached: the same few for every spectrum)."""
+    return np.exp(2j * np.pi * np.outer(np.asarray(offsets, float), np.arange(nf)) / m)
+
+
+def _shift_phases(k0, offsets, m, nf):
+    """(L, nf) exp(2 pi i f (k0 + o) / m): one angle per frequency, times the cached offset phases."""
+    theta = (2.0 * np.pi / m) * k0 * np.arange(nf)
+    return (np.cos(theta) + 1j * np.sin(theta))[None, :] * _offset_phases(tuple(offsets), m, nf)
+
+
 def _template_segments(search, template, s0, m, starts, h):
     """(offsets, good, gradients) of one template's segment velocities about its peak ``s0``.
 
@@ -268,8 +281,7 @@ def _template_segments(search, template, s0, m, starts, h):
     a1, a2, a3 = search.side.arrays
     w = search.side.weight
     F = np.stack(template.ffts(m))                                   # (3, nf): T, T2, V
-    tau = pad - (s0 + np.array([-h, 0.0, h]))  # lag s uses template pixels x + pad - s
-    ph = np.exp(2j * np.pi * np.outer(tau, np.arange(F.shape[1])) / m)
+    ph = _shift_phases(pad - s0, (h, 0.0, -h), m, F.shape[1])  # lag s uses template pixels x + pad - s
     bT, bT2, bV = sfft.irfft(F[:, None, :] * ph[None, :, :], m, axis=-1)[..., :n]  # each (3 lags, n)
 
     def sums(x):  # (3 lags, n) -> (3 lags, segments + whole)
@@ -321,7 +333,7 @@ def segment_errors(observed, search, members, m, resels):
     h = 0.5
     best, s_best, _ = members[0]
     F = np.stack(best.ffts(m)[:1])
-    ph = np.exp(2j * np.pi * np.outer(lags.pad - (s_best + np.array([-h, h])), np.arange(F.shape[1])) / m)
+    ph = _shift_phases(lags.pad - s_best, (h, -h), m, F.shape[1])
     slope = sfft.irfft(F * ph, m, axis=-1)[:, :n]
     starts = _segments(search.side.weight * (slope[1] - slope[0]) ** 2, int(np.clip(resels // 25, 2, 10)),
                        n / max(resels, 1.0))
