@@ -247,7 +247,12 @@ def poly_peaks(offsets, values, degree=4, bound=None):
 
     for _ in range(12):
         g1, g2 = pv(d1, x), pv(d2, x)
-        x = np.clip(x - g1 / np.where(g2 < 0, g2, -1e-9), -bound, bound)
+        step = np.clip(x - g1 / np.where(g2 < 0, g2, -1e-9), -bound, bound) - x
+        x = x + step
+        # converged (Newton's steps shrink quadratically): the next step would move no row
+        # by more than 1e-12 pixel; the same rows always take the same number of steps
+        if np.all(np.abs(step) < 1e-12):
+            break
     return x, pv(coef, x), pv(d2, x)
 
 
