@@ -16,10 +16,9 @@ from typing import NamedTuple
 
 import numpy as np
 from scipy import fft as sfft
-from scipy.interpolate import make_interp_spline
 
 from .correlation import Correlation
-from .grid import SPLINE_K, gauss_smooth, highpass, kms_per_pixel
+from .grid import gauss_smooth, highpass, kms_per_pixel, spline_operators
 
 __all__ = ["TonryDavis", "VelocityErrors", "SegmentErrors", "tonry_davis", "resample_error", "estimate_errors",
            "reported_error", "segment_errors", "zero_point_error", "content_seed", "spline_adjoint", "ErrorBudget", "error_budget"]
@@ -67,8 +66,7 @@ def _noisy_data_ffts(observed, weight, hp, m, k, seed):
     rng = np.random.default_rng(content_seed(observed, seed))
     noise = rng.normal(size=(observed.native_flux.size, k)) * observed.native_sigma[:, None]
     # the same cubic interpolation the data went through, applied to each realisation
-    f = make_interp_spline(observed.spline_x, observed.native_flux[:, None] + noise, k=SPLINE_K,
-                           axis=0)(observed.grid)  # (n, k)
+    f = spline_operators(observed.spline_x, observed.grid).forward(observed.native_flux[:, None] + noise)  # (n, k)
     d = np.ascontiguousarray(highpass(f - 1.0, hp, observed.valid).T)  # (k, n): rows are realisations
     d -= (d @ weight)[:, None] / weight.sum()
     a1 = d * weight
@@ -185,31 +183,14 @@ def reported_error(errors, notes):
 # ---------------------------------------------------------------------------
 # The noise error by propagation, and the segments' scatter (template mismatch)
 # ---------------------------------------------------------------------------
-_ADJOINTS = {}
-
-
 def spline_adjoint(x, grid):
     """A function u -> S^T u, S the cubic interpolation (not-a-knot) from samples at ``x`` to ``grid``.
 
     The interpolant is B A^-1 y (A, B the B-spline design matrices at the samples and on the
-    grid), so its transpose is A^-T B^T: a sparse LU of A^T, made once per set-up (cached by the
-    sample positions and the grid).
+    grid), so its transpose is A^-T B^T: a sparse LU of A^T, made once per set-up (shared with
+    the forward interpolation, :func:`~.grid.spline_operators`).
     """
-    import hashlib
-
-    from scipy.interpolate import BSpline
-    from scipy.sparse.linalg import splu
-
-    key = (hashlib.sha1(np.ascontiguousarray(x).tobytes()).hexdigest(), float(grid[0]), float(grid[-1]), grid.size)
-    if key not in _ADJOINTS:
-        if len(_ADJOINTS) > 8:
-            _ADJOINTS.pop(next(iter(_ADJOINTS)))
-        t = make_interp_spline(x, np.zeros_like(x), k=SPLINE_K).t
-        b_grid = BSpline.design_matrix(np.clip(grid, x[0], x[-1]), t, SPLINE_K).tocsr()
-        lu = splu(BSpline.design_matrix(x, t, SPLINE_K).T.tocsc())
-        _ADJOINTS[key] = (b_grid.T.tocsr(), lu)
-    bt, lu = _ADJOINTS[key]
-    return lambda u: lu.solve(np.asarray(bt @ u))
+    return spline_operators(x, grid).adjoint
 
 
 def _highpass_adjoint(y, sigma, valid):
