@@ -82,8 +82,47 @@ def barycentric_correction(info):
     missing = missing_for_barycentric(info)
     if missing:
         raise MetadataError("no barycentric correction: missing " + "; ".join(missing), info.path)
-    corr = info.coord.radial_velocity_correction(kind="barycentric", obstime=info.time_mid, location=info.site)
-    return corr.to(u.km / u.s)
+    return _correction_kms(info.coord, info.time_mid, info.site) * (u.km / u.s)
+
+
+def _correction_kms(coord, obstime, site):
+    """``coord.radial_velocity_correction(kind="barycentric", obstime, location=site)`` in km/s.
+
+    For a direction without distance or motion (what headers give) this is astropy's own
+    formula on astropy's own Earth and observer velocities, with one difference: the
+    gravitational redshift at the site (the Sun's, Jupiter's, the Moon's and the Earth's
+    potential, about 3 m/s, astropy's ``EarthLocation.gravitational_redshift``) is taken once
+    per site and UTC day, not per call (it cost half of each call, and changes by less than
+    1e-3 m/s within a day: the Sun's distance changes by < 2e-4 of itself). Anything else
+    (a distance, a space motion) goes to astropy whole.
+    """
+    from astropy.coordinates import UnitSphericalRepresentation, get_body_barycentric_posvel
+
+    if coord.data.__class__ is not UnitSphericalRepresentation or coord.data.differentials:
+        return coord.radial_velocity_correction(kind="barycentric", obstime=obstime,
+                                                location=site).to_value(u.km / u.s)
+    c = _C_MS
+    _, v_earth = get_body_barycentric_posvel("earth", obstime)
+    _, v_site = site.get_gcrs_posvel(obstime)
+    beta = (v_earth.xyz.to_value(u.m / u.s) + v_site.xyz.to_value(u.m / u.s)) / c
+    toward = coord.icrs.cartesian.xyz.value
+    gamma = 1.0 / np.sqrt(1.0 - np.sum(beta * beta))
+    geocentric = tuple(float(q.to_value(u.m)) for q in site.geocentric)
+    zb = gamma * (1.0 + np.sum(beta * toward)) / (1.0 + _redshift_ms(geocentric, int(np.floor(obstime.utc.mjd))) / c)
+    return float((zb - 1.0) * c) / 1000.0
+
+
+_C_MS = 299792458.0  # m/s, exact (SI definition of the metre)
+
+
+@functools.lru_cache(maxsize=64)
+def _redshift_ms(geocentric, mjd_day):
+    """astropy's gravitational redshift (m/s) at a site (geocentric x, y, z in m) at noon UTC of a day."""
+    from astropy.coordinates import EarthLocation
+    from astropy.time import Time
+
+    site = EarthLocation.from_geocentric(*geocentric, unit=u.m)
+    return float(site.gravitational_redshift(Time(mjd_day + 0.5, format="mjd", scale="utc")).to_value(u.m / u.s))
 
 
 def galactocentric_parameters():
