@@ -7,7 +7,7 @@ model Sun (``rms-solar``, an outside model; skipped where absent) shifted and sa
 survey's 4,000-pixel spectra, specan's own synthetic stars, and the demo night
 (``sample_spectra/``). The tolerance is ours (the issue's): the same template chosen,
 velocities within 0.05 of their error, errors (the budget's total and the resampled one)
-within 2%. Measured at the last change: |delta rv| / rv_err <= 3e-8, errors within 2e-11.
+within 2%. Measured at the last change: |delta rv| / rv_err <= 2e-6, errors within 3e-7.
 """
 
 from pathlib import Path
@@ -146,3 +146,25 @@ def test_spline_operators_match_scipy():
     # adjoint: <S y, u> = <y, S^T u>
     uu = rng.normal(size=(451, 3))
     assert np.allclose(np.sum(ops.forward(y) * uu), np.sum(y * ops.adjoint(uu)), rtol=1e-11)
+
+
+def test_refinement_from_a_start_finds_the_two_pass_maximum(monkeypatch):
+    """Started near the maximum the fine pass alone finds it; started too far off it falls back to both passes."""
+    import specan.velocity as vel
+    from specan.velocity import bank
+
+    seen = {}
+
+    def spy(templates, lags, data_ffts, m, pad, starts=None):
+        seen["args"] = (templates, lags, data_ffts, m, pad)
+        return bank.refine_peaks(templates, lags, data_ffts, m, pad, starts)
+
+    monkeypatch.setattr(vel, "refine_peaks", spy)
+    velocity.measure(synth.spectrum("G8", "III", rv=77.0 * KMS, snr=60.0, seed=9), barycentric=False)
+    templates, lags, data_ffts, m, pad = seen["args"]
+    x, h, c = bank.refine_peaks(templates, lags, data_ffts, m, pad)            # both passes
+    assert np.all(np.isfinite(h)) and np.all(np.abs(x - np.asarray(lags)) <= 1.0)
+    near = bank.refine_peaks(templates, lags, data_ffts, m, pad, starts=x + 0.08)
+    assert np.max(np.abs(near[0] - x)) < 1e-5 and np.max(np.abs(near[1] - h)) < 1e-9
+    far = bank.refine_peaks(templates, lags, data_ffts, m, pad, starts=x + 0.7)   # outside the fine window
+    assert np.array_equal(far[0], x) and np.array_equal(far[1], h)

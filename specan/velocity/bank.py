@@ -93,10 +93,12 @@ def template_bank(candidates, lags):
 
 class BankScores(NamedTuple):
     """Per template: integer-lag peak ``lag`` (None where no peak), ``height`` (parabola vertex of
-    the normalised CCF about it)."""
+    the normalised CCF about it) and ``start``, the fractional lag of the cross term's parabola
+    vertex (where :func:`refine_peaks` may start)."""
 
     lag: list
     height: np.ndarray
+    start: np.ndarray
 
 
 def score_bank(search, bank, data_short):
@@ -128,6 +130,7 @@ def score_bank(search, bank, data_short):
     den = y0 - 2.0 * y1 + y2
     inner = (j > 0) & (j < s.size - 1) & (den < 0)
     vertex = np.where(inner, y1 - 0.125 * (y0 - y2) ** 2 / np.where(inner, den, -1.0), y1)
+    vertex_lag = s[j] + np.where(inner, 0.5 * (y0 - y2) / np.where(inner, den, -1.0), 0.0)
     a1, a2, a3 = side.arrays
     # sums over the data window at each template's peak lag: every template's window gathered at
     # once (a view, then one copy), the coverage sums once per distinct (coverage, lag)
@@ -146,7 +149,7 @@ def score_bank(search, bank, data_short):
     with np.errstate(invalid="ignore", divide="ignore"):
         h = (vertex - c1v * c2t / c2v) / np.sqrt(np.clip(e, 1e-300, None) * np.clip(d, 1e-300, None))
     h = np.where(found & np.isfinite(h), h, -np.inf)
-    return BankScores([int(s[j[i]]) if np.isfinite(h[i]) else None for i in rows], h)
+    return BankScores([int(s[j[i]]) if np.isfinite(h[i]) else None for i in rows], h, vertex_lag)
 
 
 def _windows(x, n):
@@ -275,14 +278,35 @@ def _stacked(arrays):
     return out
 
 
-def refine_peaks(templates, lags, data_ffts, m, pad):
+def refine_peaks(templates, lags, data_ffts, m, pad, starts=None):
     """(lag, height, curvature) arrays of each template's normalised-CCF maximum near its integer ``lags``.
 
     The correlations are evaluated as Fourier series at fractional lags (band-limited
     interpolation: no parabola "peak locking"), all templates at once, and each maximum found
     by Newton's method on a quartic through five lags, twice (:data:`REFINE_OFFSETS`). Sums
     are numpy's own (``einsum`` without BLAS): bit-identical whatever the thread count.
+
+    ``starts`` (fractional lags, e.g. :class:`BankScores` ``start``) skip the first, coarse pass:
+    the fine one runs about them, and the templates whose maximum it does not find inside its
+    window (the start was more than a fifth of a pixel off) go through both passes after all.
     """
+    if starts is None:
+        return _refine(templates, lags, data_ffts, m, pad, REFINE_OFFSETS)
+    fine = REFINE_OFFSETS[-1]
+    x, h, c = _refine(templates, starts, data_ffts, m, pad, (fine,))
+    bound = float(np.max(np.abs(fine)))
+    # a maximum on the window's edge (or none) is not the maximum: both passes for those
+    redo = ~np.isfinite(h) | (np.abs(x - np.asarray(starts, float)) >= bound * (1 - 1e-9))
+    if redo.any():
+        idx = np.flatnonzero(redo)
+        xr, hr, cr = _refine([templates[i] for i in idx], [lags[i] for i in idx], data_ffts, m, pad, REFINE_OFFSETS)
+        x, h, c = x.copy(), h.copy(), c.copy()
+        x[idx], h[idx], c[idx] = xr, hr, cr
+    return x, h, c
+
+
+def _refine(templates, lags, data_ffts, m, pad, passes):
+    """:func:`refine_peaks` from ``lags`` through the offset stencils ``passes``."""
     from .correlation import Correlation
 
     bands = [t.band_ffts(m) for t in templates]
@@ -296,7 +320,7 @@ def refine_peaks(templates, lags, data_ffts, m, pad):
     for r, (a, B) in enumerate(((A[0], FT), (A[1], FT), (A[1], FT2), (A[0], FV), (A[2], FV), (A[1], FV))):
         X[r, :, :B.shape[1]] = np.conj(a[:B.shape[1]])[None, :] * B
     height = curv = np.full(x0.size, np.nan)
-    for offs in REFINE_OFFSETS:
+    for offs in passes:
         # the phase of lag s = x0 + o at index k = pad - s is a per-template part (one angle per
         # frequency) times a cached per-offset part: the first goes into the rows, and
         # Re(Y conj(p)) = Y.re p.re + Y.im p.im is one real sum over the interleaved (re, im)
