@@ -59,10 +59,13 @@ class TemplateBank:
         self.m = m
         self.T = np.stack([t.T for t in prepared])
         self.T2 = np.stack([t.T2 for t in prepared])
-        cov = np.stack([t.V for t in prepared])
-        unique, groups = np.unique(cov, axis=0, return_inverse=True)
+        # templates sharing a coverage share its sums: group identical coverages (by their bytes:
+        # numpy's unique over rows sorts them as structured records, tens of ms a bank)
+        first = {}
+        groups = [first.setdefault(t.V.tobytes(), len(first)) for t in prepared]
+        unique = np.stack([prepared[groups.index(g)].V for g in range(len(first))])
         self.V_unique = unique
-        self.groups = np.asarray(groups).ravel()
+        self.groups = np.asarray(groups, dtype=np.intp)
         FT = sfft.rfft(self.T, m, axis=1)
         # the templates are band-limited by the resolution: frequencies where no template has
         # power above 1e-14 of its peak add nothing to any correlation (and cost time)
