@@ -198,16 +198,20 @@ def spline_operators(x, grid):
     from scipy.sparse.linalg import splu
 
     key = (hashlib.sha1(np.ascontiguousarray(x).tobytes()).hexdigest(), float(grid[0]), float(grid[-1]), grid.size)
-    if key not in _SPLINES:
-        if len(_SPLINES) > 8:
-            _SPLINES.pop(next(iter(_SPLINES)))
+    found = _SPLINES.get(key)
+    if found is None:
         t = make_interp_spline(x, np.zeros_like(x), k=SPLINE_K).t
         b_grid = BSpline.design_matrix(np.clip(grid, x[0], x[-1]), t, SPLINE_K).tocsr()
         lu = splu(BSpline.design_matrix(x, t, SPLINE_K).T.tocsc())
         bt = b_grid.T.tocsr()
-        _SPLINES[key] = SplineOperators(lambda y: np.asarray(b_grid @ lu.solve(np.asarray(y, float), trans="T")),
-                                        lambda u: lu.solve(np.asarray(bt @ u)))
-    return _SPLINES[key]
+        found = SplineOperators(lambda y: np.asarray(b_grid @ lu.solve(np.asarray(y, float), trans="T")),
+                                lambda u: lu.solve(np.asarray(bt @ u)))
+        # a few set-ups at a time (oldest out first); the operators are returned, not looked up
+        # again, so that another thread's eviction cannot take them away in between
+        while len(_SPLINES) > 8:
+            _SPLINES.pop(next(iter(_SPLINES)), None)
+        _SPLINES[key] = found
+    return found
 
 
 def observe_on_grid(spectrum, *, step=None, telluric=True, clip_emission=True, notes=None):
