@@ -62,7 +62,9 @@ def velocity_from_factor(factor, convention="relativistic"):
 
 def velocity_kms(factor):
     """Relativistic velocity of one wavelength ratio as a plain float in km/s (for inner loops)."""
-    return float(velocity_from_factor(factor).value)
+    # velocity_from_factor's arithmetic on a float, without building a Quantity (same bits)
+    f = float(factor)
+    return float((f * f - 1.0) / (f * f + 1.0) * C_KMS)
 
 
 def shift_to_rest(spectrum, rv):

@@ -210,7 +210,10 @@ def _refined_peaks(search, mixture, data_short, where):
                 raise AnalysisError(f"no correlation peak with template {member.template.name}", where)
             lag = pk[0]
         found.append(lag)
-    x, h, c = refine_peaks([m.template for m in mixture], found, data_short, short_length(lags), lags.pad)
+    # where the scoring gave every template's fractional peak, the refinement starts there
+    starts = [m.start for m in mixture]
+    starts = None if any(st is None for st in starts) else starts
+    x, h, c = refine_peaks([m.template for m in mixture], found, data_short, short_length(lags), lags.pad, starts)
     out = [Peak(float(a), float(b), float(d)) for a, b, d in zip(x, h, c)]
     if not (np.isfinite(out[0].height) and out[0].height > 0):
         raise AnalysisError(f"no correlation peak with template {mixture[0].template.name}", where)

@@ -59,10 +59,13 @@ class TemplateBank:
         self.m = m
         self.T = np.stack([t.T for t in prepared])
         self.T2 = np.stack([t.T2 for t in prepared])
-        cov = np.stack([t.V for t in prepared])
-        unique, groups = np.unique(cov, axis=0, return_inverse=True)
+        # templates sharing a coverage share its sums: group identical coverages (by their bytes:
+        # numpy's unique over rows sorts them as structured records, tens of ms a bank)
+        first = {}
+        groups = [first.setdefault(t.V.tobytes(), len(first)) for t in prepared]
+        unique = np.stack([prepared[groups.index(g)].V for g in range(len(first))])
         self.V_unique = unique
-        self.groups = np.asarray(groups).ravel()
+        self.groups = np.asarray(groups, dtype=np.intp)
         FT = sfft.rfft(self.T, m, axis=1)
         # the templates are band-limited by the resolution: frequencies where no template has
         # power above 1e-14 of its peak add nothing to any correlation (and cost time)
@@ -93,10 +96,12 @@ def template_bank(candidates, lags):
 
 class BankScores(NamedTuple):
     """Per template: integer-lag peak ``lag`` (None where no peak), ``height`` (parabola vertex of
-    the normalised CCF about it)."""
+    the normalised CCF about it) and ``start``, the fractional lag of the cross term's parabola
+    vertex (where :func:`refine_peaks` may start)."""
 
     lag: list
     height: np.ndarray
+    start: np.ndarray
 
 
 def score_bank(search, bank, data_short):
@@ -128,26 +133,31 @@ def score_bank(search, bank, data_short):
     den = y0 - 2.0 * y1 + y2
     inner = (j > 0) & (j < s.size - 1) & (den < 0)
     vertex = np.where(inner, y1 - 0.125 * (y0 - y2) ** 2 / np.where(inner, den, -1.0), y1)
+    vertex_lag = s[j] + np.where(inner, 0.5 * (y0 - y2) / np.where(inner, den, -1.0), 0.0)
     a1, a2, a3 = side.arrays
-    # sums over the data window at each template's peak lag: contiguous slices, one per distinct lag
-    c2v, c1v, c3v, c2t, c2t2 = (np.empty(len(bank)) for _ in range(5))
+    # sums over the data window at each template's peak lag: every template's window gathered at
+    # once (a view, then one copy), the coverage sums once per distinct (coverage, lag)
     peak_lag = s[j]
-    for lag in np.unique(peak_lag):
-        sel = np.flatnonzero(peak_lag == lag)
-        start = pad - int(lag)          # lag s uses template pixels x + pad - s
-        for g in np.unique(bank.groups[sel]):   # coverage sums once per coverage, not per template
-            cov = bank.V_unique[g, start:start + n]
-            into = sel[bank.groups[sel] == g]
-            c2v[into], c1v[into], c3v[into] = np.sum(cov * a2), np.sum(cov * a1), np.sum(cov * a3)
-        c2t[sel] = np.sum(bank.T[sel, start:start + n] * a2, axis=1)
-        c2t2[sel] = np.sum(bank.T2[sel, start:start + n] * a2, axis=1)
+    start = pad - peak_lag              # lag s uses template pixels x + pad - s
+    c2t = np.sum(_windows(bank.T, n)[rows, start] * a2, axis=1)
+    c2t2 = np.sum(_windows(bank.T2, n)[rows, start] * a2, axis=1)
+    c2v, c1v, c3v = (np.empty(len(bank)) for _ in range(3))
+    pairs, which = np.unique(np.stack([bank.groups, start]), axis=1, return_inverse=True)
+    cov = _windows(bank.V_unique, n)[pairs[0], pairs[1]]                       # (P, n)
+    for out, a in ((c2v, a2), (c1v, a1), (c3v, a3)):
+        out[:] = np.sum(cov * a, axis=1)[np.asarray(which).ravel()]
     c2v = np.maximum(c2v, 1e-300)
     e = c2t2 - c2t ** 2 / c2v
     d = c3v - c1v ** 2 / c2v
     with np.errstate(invalid="ignore", divide="ignore"):
         h = (vertex - c1v * c2t / c2v) / np.sqrt(np.clip(e, 1e-300, None) * np.clip(d, 1e-300, None))
     h = np.where(found & np.isfinite(h), h, -np.inf)
-    return BankScores([int(s[j[i]]) if np.isfinite(h[i]) else None for i in rows], h)
+    return BankScores([int(s[j[i]]) if np.isfinite(h[i]) else None for i in rows], h, vertex_lag)
+
+
+def _windows(x, n):
+    """(rows, positions, n) view of every length-``n`` window of the rows of ``x`` (no copy)."""
+    return np.lib.stride_tricks.sliding_window_view(x, n, axis=1)
 
 
 def mixture_weights(heights):
@@ -243,7 +253,12 @@ def poly_peaks(offsets, values, degree=4, bound=None):
 
     for _ in range(12):
         g1, g2 = pv(d1, x), pv(d2, x)
-        x = np.clip(x - g1 / np.where(g2 < 0, g2, -1e-9), -bound, bound)
+        step = np.clip(x - g1 / np.where(g2 < 0, g2, -1e-9), -bound, bound) - x
+        x = x + step
+        # converged (Newton's steps shrink quadratically): the next step would move no row
+        # by more than 1e-12 pixel; the same rows always take the same number of steps
+        if np.all(np.abs(step) < 1e-12):
+            break
     return x, pv(coef, x), pv(d2, x)
 
 
@@ -266,14 +281,35 @@ def _stacked(arrays):
     return out
 
 
-def refine_peaks(templates, lags, data_ffts, m, pad):
+def refine_peaks(templates, lags, data_ffts, m, pad, starts=None):
     """(lag, height, curvature) arrays of each template's normalised-CCF maximum near its integer ``lags``.
 
     The correlations are evaluated as Fourier series at fractional lags (band-limited
     interpolation: no parabola "peak locking"), all templates at once, and each maximum found
     by Newton's method on a quartic through five lags, twice (:data:`REFINE_OFFSETS`). Sums
     are numpy's own (``einsum`` without BLAS): bit-identical whatever the thread count.
+
+    ``starts`` (fractional lags, e.g. :class:`BankScores` ``start``) skip the first, coarse pass:
+    the fine one runs about them, and the templates whose maximum it does not find inside its
+    window (the start was more than a fifth of a pixel off) go through both passes after all.
     """
+    if starts is None:
+        return _refine(templates, lags, data_ffts, m, pad, REFINE_OFFSETS)
+    fine = REFINE_OFFSETS[-1]
+    x, h, c = _refine(templates, starts, data_ffts, m, pad, (fine,))
+    bound = float(np.max(np.abs(fine)))
+    # a maximum on the window's edge (or none) is not the maximum: both passes for those
+    redo = ~np.isfinite(h) | (np.abs(x - np.asarray(starts, float)) >= bound * (1 - 1e-9))
+    if redo.any():
+        idx = np.flatnonzero(redo)
+        xr, hr, cr = _refine([templates[i] for i in idx], [lags[i] for i in idx], data_ffts, m, pad, REFINE_OFFSETS)
+        x, h, c = x.copy(), h.copy(), c.copy()
+        x[idx], h[idx], c[idx] = xr, hr, cr
+    return x, h, c
+
+
+def _refine(templates, lags, data_ffts, m, pad, passes):
+    """:func:`refine_peaks` from ``lags`` through the offset stencils ``passes``."""
     from .correlation import Correlation
 
     bands = [t.band_ffts(m) for t in templates]
@@ -282,21 +318,20 @@ def refine_peaks(templates, lags, data_ffts, m, pad):
     A = [a[:nf] for a in data_ffts]
     x0 = np.asarray(lags, float)
     f = np.arange(nf)
+    # the six correlation rows of every template, (6, T, nf), the same in both passes: made once
+    X = np.zeros((6, x0.size, nf), complex)
+    for r, (a, B) in enumerate(((A[0], FT), (A[1], FT), (A[1], FT2), (A[0], FV), (A[2], FV), (A[1], FV))):
+        X[r, :, :B.shape[1]] = np.conj(a[:B.shape[1]])[None, :] * B
     height = curv = np.full(x0.size, np.nan)
-    for offs in REFINE_OFFSETS:
-        # phases of lag s = x0 + o at index k = pad - s: one exponential per frequency and template
-        base = np.exp(2j * np.pi * np.outer(pad - x0, f) / m)                 # (T, nf)
-        ph = base[:, None, :] * np.conj(_offset_phases(m, nf, tuple(offs)))[None, :, :]  # (T, L, nf)
-
-        # the six correlation rows of every template, (6, T, nf), against the same phases
-        X = np.zeros((6, x0.size, nf), complex)
-        for r, (a, B) in enumerate(((A[0], FT), (A[1], FT), (A[1], FT2), (A[0], FV), (A[2], FV), (A[1], FV))):
-            X[r, :, :B.shape[1]] = np.conj(a[:B.shape[1]])[None, :] * B
-        # Re(X ph) = X.re ph.re - X.im ph.im, summed over frequencies on contiguous real copies
-        # (numpy's einsum is far slower on the strided real and imaginary views)
-        re = np.einsum("rtf,tlf->rtl", np.ascontiguousarray(X.real), np.ascontiguousarray(ph.real))
-        c, _ = Correlation.combine(re - np.einsum("rtf,tlf->rtl", np.ascontiguousarray(X.imag),
-                                                  np.ascontiguousarray(ph.imag)))
+    for offs in passes:
+        # the phase of lag s = x0 + o at index k = pad - s is a per-template part (one angle per
+        # frequency) times a cached per-offset part: the first goes into the rows, and
+        # Re(Y conj(p)) = Y.re p.re + Y.im p.im is one real sum over the interleaved (re, im)
+        # layout of both (numpy's einsum, not BLAS: bit-identical whatever the thread count)
+        theta = (2.0 * np.pi / m) * np.outer(pad - x0, f)                    # (T, nf)
+        Y = X * (np.cos(theta) + 1j * np.sin(theta))[None, :, :]
+        p = _offset_phases(m, nf, tuple(offs))                                # (L, nf), cached
+        c, _ = Correlation.combine(np.einsum("rtf,lf->rtl", Y.view(np.float64), p.view(np.float64)))
         ok = np.all(np.isfinite(c), axis=1)
         dx, h, cv = poly_peaks(offs, np.where(ok[:, None], c, 0.0))
         x0 = np.where(ok, x0 + dx, x0)

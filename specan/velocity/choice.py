@@ -138,13 +138,15 @@ def parse_template(template):
 # ---------------------------------------------------------------------------
 class MixtureMember(NamedTuple):
     """One template of the velocity: prepared template, weight, integer peak lag (None: to be
-    found), the candidate it was made from (None for user templates) and its score."""
+    found), the candidate it was made from (None for user templates), its score and, from the
+    scoring, a fractional lag the refinement may start from (None: none)."""
 
     template: PreparedTemplate
     weight: float
     lag: int | None
     candidate: BuiltinCandidate | None
     score: float | None
+    start: float | None = None
 
 
 class TemplateChoice(NamedTuple):
@@ -243,7 +245,7 @@ def automatic_mixture(search, resolving_power, template_grid, notes, where=None,
     grid_types = tuple(template_grid or templates.automatic_types())
     synthetic = [BuiltinCandidate(st, lc, resolving_power) for st, lc in grid_types]
     bank, sc = _scored(search, candidates + synthetic, data_short)
-    members = list(zip(bank.templates, sc.lag, bank.candidates, sc.height))
+    members = list(zip(bank.templates, sc.lag, bank.candidates, sc.height, sc.start))
     syn = [x for x in members if x[2].kind == "synth"]
     best_syn = max(range(len(syn)), key=lambda i: syn[i][3]) if syn else None
     if best_syn is not None and np.isfinite(syn[best_syn][3]):
@@ -252,13 +254,14 @@ def automatic_mixture(search, resolving_power, template_grid, notes, where=None,
                 for st, lc in neighbour_types((c.sptype, c.lumclass), grid_types)]
         if more:
             bank2, sc2 = _scored(search, more, data_short)
-            members += list(zip(bank2.templates, sc2.lag, bank2.candidates, sc2.height))
+            members += list(zip(bank2.templates, sc2.lag, bank2.candidates, sc2.height, sc2.start))
     heights = np.array([x[3] for x in members])
     if not np.isfinite(heights).any():
         raise AnalysisError("no template correlates with the spectrum", where)
     scores = {x[0].name: float(x[3]) for x in members if np.isfinite(x[3])}
     index, weights = mixture_weights(heights)
-    chosen = [MixtureMember(members[i][0], float(wt), members[i][1], members[i][2], float(members[i][3]))
+    chosen = [MixtureMember(members[i][0], float(wt), members[i][1], members[i][2], float(members[i][3]),
+                            float(members[i][4]))
               for i, wt in zip(index, weights)]
     n_lib = sum(1 for x in members if x[2].kind == "library" and np.isfinite(x[3]))
     kinds = f"{n_lib} library and {len(scores) - n_lib} synthetic" if n_lib else f"{len(scores)} synthetic"

@@ -260,11 +260,12 @@ def single_star_ccf(template, valid, weight, pad, m, s0, half):
     so edge and gap effects of those steps are in the model, not mistaken for noise.
     """
     n = valid.size
-    phase = np.exp(-2j * np.pi * np.arange(m // 2 + 1) * (s0 - pad) / m)
-    model = sfft.irfft(sfft.rfft(template.T0, m) * phase, m)[:n]  # template(x - s0) on the data window
-    # where the template has gaps (its own tellurics, its ends) the model star is unknown: leave
-    # those pixels out rather than treat them as continuum
-    known = sfft.irfft(sfft.rfft((template.V > 0).astype(float), m) * phase, m)[:n] > 0.5
+    theta = (-2.0 * np.pi * (s0 - pad) / m) * np.arange(m // 2 + 1)
+    # template(x - s0) on the data window, and where the template has gaps (its own tellurics,
+    # its ends) the model star is unknown: those pixels are left out rather than treated as
+    # continuum (both shifted in one inverse transform of the template's cached spectra)
+    model, known = sfft.irfft(template.model_ffts(m) * (np.cos(theta) + 1j * np.sin(theta)), m, axis=1)[:, :n]
+    known = known > 0.5
     ok = valid & known
     model = highpass(model, template.hp_sigma, ok)
     mcorr = Correlation(correlation_arrays(model, weight * ok), template, pad, m)

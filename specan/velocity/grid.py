@@ -27,7 +27,7 @@ from ..obsinfo import ObsInfo, get_info, wavelength_in
 
 __all__ = ["SPLINE_K", "COVER_TAPER", "ObservedGrid", "TemplateGrid", "LagWindow", "normalised",
            "observe_on_grid", "lag_window", "kms_per_pixel", "sigma_array", "hot_pixels", "noise_from_flux",
-           "dersnr_sigma", "gauss_smooth", "highpass", "cover_taper"]
+           "dersnr_sigma", "gauss_smooth", "highpass", "cover_taper", "SplineOperators", "spline_operators"]
 
 #: Order of the spline that resamples spectra onto the ln-lambda grid.
 SPLINE_K = 3
@@ -172,6 +172,48 @@ def _edge_taper(valid):
     return np.where(valid, 0.5 - 0.5 * np.cos(np.pi * taper), 0.0)
 
 
+class SplineOperators(NamedTuple):
+    """The cubic interpolation (not-a-knot) from fixed sample positions to a fixed grid, as
+    operators: ``forward(y)`` = S y (what ``make_interp_spline(x, y, k=3)(grid)`` gives, to
+    rounding), ``adjoint(u)`` = S^T u (y and u may have columns)."""
+
+    forward: object
+    adjoint: object
+
+
+_SPLINES = {}
+
+
+def spline_operators(x, grid):
+    """The (cached) :class:`SplineOperators` from samples at ``x`` to ``grid``.
+
+    The interpolant is B A^-1 y (A, B the B-spline design matrices at the samples and on the
+    grid): one sparse LU of A^T serves both directions (A c = y by its transposed solve). Made
+    once per set-up, keyed by the sample positions and the grid: spectra of a survey share
+    their pixels, and a factorised solve costs a fraction of building the spline anew.
+    """
+    import hashlib
+
+    from scipy.interpolate import BSpline
+    from scipy.sparse.linalg import splu
+
+    key = (hashlib.sha1(np.ascontiguousarray(x).tobytes()).hexdigest(), float(grid[0]), float(grid[-1]), grid.size)
+    found = _SPLINES.get(key)
+    if found is None:
+        t = make_interp_spline(x, np.zeros_like(x), k=SPLINE_K).t
+        b_grid = BSpline.design_matrix(np.clip(grid, x[0], x[-1]), t, SPLINE_K).tocsr()
+        lu = splu(BSpline.design_matrix(x, t, SPLINE_K).T.tocsc())
+        bt = b_grid.T.tocsr()
+        found = SplineOperators(lambda y: np.asarray(b_grid @ lu.solve(np.asarray(y, float), trans="T")),
+                                lambda u: lu.solve(np.asarray(bt @ u)))
+        # a few set-ups at a time (oldest out first); the operators are returned, not looked up
+        # again, so that another thread's eviction cannot take them away in between
+        while len(_SPLINES) > 8:
+            _SPLINES.pop(next(iter(_SPLINES)), None)
+        _SPLINES[key] = found
+    return found
+
+
 def observe_on_grid(spectrum, *, step=None, telluric=True, clip_emission=True, notes=None):
     """The normalised ``spectrum`` on a ln-lambda grid of ``step`` (default: its finest sampling).
 
@@ -202,7 +244,7 @@ def observe_on_grid(spectrum, *, step=None, telluric=True, clip_emission=True, n
     valid = ~(np.interp(grid, lnw, bad.astype(float)) > 1e-6)
     return ObservedGrid(
         info=info, noise_source=noise_source, spline_x=lnw, grid=grid, step=step, n=n,
-        flux=make_interp_spline(lnw, f_fill, k=SPLINE_K)(grid),
+        flux=spline_operators(lnw, grid).forward(f_fill),
         sigma=np.interp(grid, lnw, np.where(np.isfinite(sig), sig, np.nanmedian(sig))),
         native_flux=f_fill, native_sigma=np.where(bad, 0.0, np.nan_to_num(sig)),
         valid=valid, taper=_edge_taper(valid))

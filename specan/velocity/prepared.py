@@ -53,6 +53,14 @@ class PreparedTemplate:
             self._fft[m] = (sfft.rfft(self.T, m), sfft.rfft(self.T2, m), sfft.rfft(self.V, m))
         return self._fft[m]
 
+    def model_ffts(self, m):
+        """(2, nf) real FFTs of length ``m`` of the unfiltered template T0 and of its coverage
+        (V > 0): what the single-star model is shifted from, computed once per length."""
+        key = ("model", m)
+        if key not in self._fft:
+            self._fft[key] = sfft.rfft(np.stack([self.T0, (self.V > 0).astype(float)]), m, axis=1)
+        return self._fft[key]
+
     def band_ffts(self, m):
         """:meth:`ffts` each cut where its power has fallen below 1e-14 of its peak for good
         (resolution and smooth coverage band-limit them: the rest adds nothing to a correlation)."""

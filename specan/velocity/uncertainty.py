@@ -10,15 +10,15 @@ error is the larger (:func:`reported_error`).
 
 from __future__ import annotations
 
+import functools
 import math
 from typing import NamedTuple
 
 import numpy as np
 from scipy import fft as sfft
-from scipy.interpolate import make_interp_spline
 
 from .correlation import Correlation
-from .grid import SPLINE_K, gauss_smooth, highpass, kms_per_pixel
+from .grid import gauss_smooth, highpass, kms_per_pixel, spline_operators
 
 __all__ = ["TonryDavis", "VelocityErrors", "SegmentErrors", "tonry_davis", "resample_error", "estimate_errors",
            "reported_error", "segment_errors", "zero_point_error", "content_seed", "spline_adjoint", "ErrorBudget", "error_budget"]
@@ -66,8 +66,7 @@ def _noisy_data_ffts(observed, weight, hp, m, k, seed):
     rng = np.random.default_rng(content_seed(observed, seed))
     noise = rng.normal(size=(observed.native_flux.size, k)) * observed.native_sigma[:, None]
     # the same cubic interpolation the data went through, applied to each realisation
-    f = make_interp_spline(observed.spline_x, observed.native_flux[:, None] + noise, k=SPLINE_K,
-                           axis=0)(observed.grid)  # (n, k)
+    f = spline_operators(observed.spline_x, observed.grid).forward(observed.native_flux[:, None] + noise)  # (n, k)
     d = np.ascontiguousarray(highpass(f - 1.0, hp, observed.valid).T)  # (k, n): rows are realisations
     d -= (d @ weight)[:, None] / weight.sum()
     a1 = d * weight
@@ -184,31 +183,14 @@ def reported_error(errors, notes):
 # ---------------------------------------------------------------------------
 # The noise error by propagation, and the segments' scatter (template mismatch)
 # ---------------------------------------------------------------------------
-_ADJOINTS = {}
-
-
 def spline_adjoint(x, grid):
     """A function u -> S^T u, S the cubic interpolation (not-a-knot) from samples at ``x`` to ``grid``.
 
     The interpolant is B A^-1 y (A, B the B-spline design matrices at the samples and on the
-    grid), so its transpose is A^-T B^T: a sparse LU of A^T, made once per set-up (cached by the
-    sample positions and the grid).
+    grid), so its transpose is A^-T B^T: a sparse LU of A^T, made once per set-up (shared with
+    the forward interpolation, :func:`~.grid.spline_operators`).
     """
-    import hashlib
-
-    from scipy.interpolate import BSpline
-    from scipy.sparse.linalg import splu
-
-    key = (hashlib.sha1(np.ascontiguousarray(x).tobytes()).hexdigest(), float(grid[0]), float(grid[-1]), grid.size)
-    if key not in _ADJOINTS:
-        if len(_ADJOINTS) > 8:
-            _ADJOINTS.pop(next(iter(_ADJOINTS)))
-        t = make_interp_spline(x, np.zeros_like(x), k=SPLINE_K).t
-        b_grid = BSpline.design_matrix(np.clip(grid, x[0], x[-1]), t, SPLINE_K).tocsr()
-        lu = splu(BSpline.design_matrix(x, t, SPLINE_K).T.tocsc())
-        _ADJOINTS[key] = (b_grid.T.tocsr(), lu)
-    bt, lu = _ADJOINTS[key]
-    return lambda u: lu.solve(np.asarray(bt @ u))
+    return spline_operators(x, grid).adjoint
 
 
 def _highpass_adjoint(y, sigma, valid):
@@ -257,6 +239,18 @@ def _segments(info, n_seg, fwhm_px):
     return np.unique(np.asarray(starts))
 
 
+@functools.lru_cache(maxsize=32)
+def _offset_phases(offsets, m, nf):
+    """(L, nf) exp(2 pi i f o / m) for fixed offsets o (cached: the same few for every spectrum)."""
+    return np.exp(2j * np.pi * np.outer(np.asarray(offsets, float), np.arange(nf)) / m)
+
+
+def _shift_phases(k0, offsets, m, nf):
+    """(L, nf) exp(2 pi i f (k0 + o) / m): one angle per frequency, times the cached offset phases."""
+    theta = (2.0 * np.pi / m) * k0 * np.arange(nf)
+    return (np.cos(theta) + 1j * np.sin(theta))[None, :] * _offset_phases(tuple(offsets), m, nf)
+
+
 def _template_segments(search, template, s0, m, starts, h):
     """(offsets, good, gradients) of one template's segment velocities about its peak ``s0``.
 
@@ -268,8 +262,7 @@ def _template_segments(search, template, s0, m, starts, h):
     a1, a2, a3 = search.side.arrays
     w = search.side.weight
     F = np.stack(template.ffts(m))                                   # (3, nf): T, T2, V
-    tau = pad - (s0 + np.array([-h, 0.0, h]))  # lag s uses template pixels x + pad - s
-    ph = np.exp(2j * np.pi * np.outer(tau, np.arange(F.shape[1])) / m)
+    ph = _shift_phases(pad - s0, (h, 0.0, -h), m, F.shape[1])  # lag s uses template pixels x + pad - s
     bT, bT2, bV = sfft.irfft(F[:, None, :] * ph[None, :, :], m, axis=-1)[..., :n]  # each (3 lags, n)
 
     def sums(x):  # (3 lags, n) -> (3 lags, segments + whole)
@@ -321,7 +314,7 @@ def segment_errors(observed, search, members, m, resels):
     h = 0.5
     best, s_best, _ = members[0]
     F = np.stack(best.ffts(m)[:1])
-    ph = np.exp(2j * np.pi * np.outer(lags.pad - (s_best + np.array([-h, h])), np.arange(F.shape[1])) / m)
+    ph = _shift_phases(lags.pad - s_best, (h, -h), m, F.shape[1])
     slope = sfft.irfft(F * ph, m, axis=-1)[:, :n]
     starts = _segments(search.side.weight * (slope[1] - slope[0]) ** 2, int(np.clip(resels // 25, 2, 10)),
                        n / max(resels, 1.0))
