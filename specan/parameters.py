@@ -35,6 +35,7 @@ from scipy.optimize import leastsq
 from .errors import AnalysisError
 from .obsinfo import get_info
 from .resolution import on_rest_grid
+from .threads import single_threaded
 
 __all__ = ["MODEL_FILE", "MODEL_FWHM", "LABELS", "model_wavelengths", "scale_labels", "broader_than_model",
            "ModelInput", "on_model_grid", "ParameterModel",
@@ -397,7 +398,8 @@ def _node_products(model):
     cached = model.__dict__.get("_guess_products")
     if cached is None:
         t = (model.nodes - SCALE_CENTRE[0]) / SCALE_WIDTH[0]
-        F = np.ascontiguousarray(np.array([_node_terms(tk) for tk in t]) @ model.coef)
+        with single_threaded():   # the same bits whoever builds them (specan.threads)
+            F = np.ascontiguousarray(np.array([_node_terms(tk) for tk in t]) @ model.coef)
         FF = np.ascontiguousarray(F[:, _PAIRS[0]] * F[:, _PAIRS[1]])
         F.flags.writeable = FF.flags.writeable = False
         cached = model.__dict__["_guess_products"] = (F, FF)
@@ -442,7 +444,8 @@ def _guess_normal_matrices(model, w2, good, basis):
     key = (id(model), basis.shape, hash(w2.tobytes()))
     hit = _GUESS_SUMS.get(key)
     if hit is None or not np.array_equal(hit[0], w2):
-        hit = (w2.copy(), _guess_normal_entries(model, w2, basis))
+        with single_threaded():   # the same bits whoever builds them (specan.threads)
+            hit = (w2.copy(), _guess_normal_entries(model, w2, basis))
         hit[1].flags.writeable = False
         _GUESS_SUMS.clear()
         _GUESS_SUMS[key] = hit

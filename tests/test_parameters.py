@@ -234,3 +234,35 @@ def test_held_out_miles_stars(miles):
     assert len(pulls) >= 40
     assert np.mean(np.all(np.abs(pulls) < 3, axis=1)) >= 0.85, np.round(pulls, 1)
     assert np.all(np.median(np.abs(pulls), axis=0) < 1.0)   # 0.67 for a unit Gaussian
+
+
+def test_kept_sums_are_the_same_bits_whatever_thread_count_built_them():
+    # The first guess's and the library comparison's sums over all pixels are kept from one
+    # spectrum to the next. A matrix product through BLAS sums in another order with another
+    # number of threads (last-bit differences, measured: 3.7e-9 in the first guess's entries),
+    # so sums kept from a call made outside the night run's one-thread workers once made a
+    # --jobs 1 catalogue differ from a --jobs 2 one in the 14th digit. They are made with one
+    # thread, whoever makes them.
+    from threadpoolctl import threadpool_limits
+
+    from specan.classify import neighbours
+
+    model = parameters.default_model()
+    basis = parameters._poly_basis(parameters.model_wavelengths().size)
+    w2 = np.full(basis.shape[0], 2.0)
+    good = np.ones(basis.shape[0], bool)
+    good[:40] = False
+    ref = neighbours.default_reference()
+    usable = np.ones(ref.flux.shape[1], bool)
+    usable[-25:] = False
+    results = []
+    for threads in (2, 1):
+        parameters._GUESS_SUMS.clear()
+        model.__dict__.pop("_guess_products", None)
+        neighbours._ALL_PIXELS.clear()
+        with threadpool_limits(limits=threads):
+            results.append((parameters._guess_normal_matrices(model, w2, good, basis),
+                            neighbours._pixel_terms(usable, ref)))
+    (g2, (m2, n2)), (g1, (m1, n1)) = results
+    assert np.array_equal(g2, g1)
+    assert np.array_equal(m2, m1) and np.array_equal(n2, n1)

@@ -35,6 +35,7 @@ import numpy as np
 from ..errors import AnalysisError
 from ..obsinfo import get_info
 from ..resolution import on_rest_grid
+from ..threads import single_threaded
 
 __all__ = ["REFERENCE_FILE", "FWHM", "POLY_DEGREE", "NEIGHBOURS", "WIDTH", "CODE_SIGMA", "SHOWN",
            "wavelengths", "ReferenceSet", "default_reference", "on_grid", "mean_square_differences",
@@ -193,7 +194,8 @@ def _pixel_terms(good, reference):
     K = int(round(np.sqrt(PP.shape[1])))
     hit = _ALL_PIXELS.get(id(reference))
     if hit is None or hit[0] is not reference:
-        hit = (reference, reference.flux_sq @ PP, reference.good_f.sum(axis=1))
+        with single_threaded():   # the same bits whoever builds them (specan.threads)
+            hit = (reference, reference.flux_sq @ PP, reference.good_f.sum(axis=1))
         _ALL_PIXELS.clear()
         _ALL_PIXELS[id(reference)] = hit
     bad = np.flatnonzero(~good)

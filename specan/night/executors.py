@@ -25,6 +25,7 @@ import os
 import signal
 
 from ..errors import SpecanError
+from ..threads import single_threaded
 
 __all__ = ["results", "results_local", "results_dask", "sigterm_as_interrupt", "chunk_size", "run_chunk",
            "THREAD_VARIABLES", "single_threaded"]
@@ -53,23 +54,6 @@ def chunk_size(count, workers) -> int:
 def _chunks(todo, size):
     for i in range(0, len(todo), size):
         yield todo[i:i + size]
-
-
-@contextlib.contextmanager
-def single_threaded():
-    """Numerical libraries limited to one thread within the block (where threadpoolctl is installed).
-
-    The environment variables (:data:`THREAD_VARIABLES`) only act on libraries not yet loaded;
-    in a process that has loaded them already (this one, a dask worker started elsewhere) the
-    limit is set through the libraries themselves.
-    """
-    try:
-        from threadpoolctl import threadpool_limits
-    except ImportError:  # pragma: no cover - a dependency; without it the environment must say 1
-        yield
-        return
-    with threadpool_limits(limits=1):
-        yield
 
 
 def run_chunk(func, paths, settings):
