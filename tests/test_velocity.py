@@ -837,3 +837,22 @@ def test_off_grid_types_pulls():
     for r, snr in ((2000.0, 30.0), (2000.0, 100.0), (5000.0, 100.0)):
         dv, err = _off_grid_runs(r, snr)
         assert 0.8 <= np.std(dv / err, ddof=1) <= 1.25, (r, snr, dv / err)
+
+
+def test_spectra_of_one_setup_with_their_own_wavelength_solutions_share_one_grid():
+    # A night's exposures each carry their own wavelength solution: pixels a fraction of a pixel
+    # (or a few pixels) apart, dispersions a little different. Their ln-lambda grids must be the
+    # same, or every exposure rebuilds every template (225 CPU ms against 18 ms a spectrum,
+    # benchmarks/bench_velocity.py --speed). The grid still covers each spectrum's data.
+    from specan.velocity.grid import GRID_BLOCK, observe_on_grid
+
+    grids = []
+    for start, disp in ((4000.0, 0.625), (4000.3, 0.625), (4001.9, 0.6252), (3999.4, 0.6249)):
+        s = synth.spectrum("G2", "V", snr=80, seed=3, wave=(start + disp * np.arange(4000)) * u.AA,
+                           resolving_power=2000)
+        obs = observe_on_grid(velocity.normalised(s, []))
+        lnw = np.log(s.spectral_axis.to_value(u.AA))
+        assert obs.grid[0] <= lnw[0] + 1e-9 and obs.grid[-1] >= lnw[-1] - 1e-9
+        assert obs.n_data >= obs.n - 2 * GRID_BLOCK and obs.valid.sum() <= obs.n_data
+        grids.append((obs.grid[0], obs.step, obs.n))
+    assert len(set(grids)) == 1, grids

@@ -165,7 +165,7 @@ def measure(spectrum, template=None, *, reference=None, template_rv=0 * u.km / u
     about = ccf_about_peak(corr, best, observed.valid, search.side.weight, lags, peak)
     td = tonry_davis(about, peak)
     errs = estimate_errors(errors, td, peak, observed, search, best, n_resample, seed, notes)
-    resels = lags.n * lags.step * choice.power.value
+    resels = observed.n_data * lags.step * choice.power.value   # the data's span, not the grid's padding
     # the segments of the average over the templates that carry most of its weight (the best always)
     heavy = [(m.template, p.lag, m.weight) for i, (m, p) in enumerate(zip(choice.mixture, peaks))
              if i == 0 or m.weight >= 0.2]
