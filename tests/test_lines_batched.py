@@ -34,6 +34,20 @@ from specan import lines, prepare, read
 from test_lines import make_spectrum
 
 DEMO = Path(__file__).resolve().parents[1] / "sample_spectra"
+
+
+def demo_line_setups(count):
+    """(file, data, listed, targets, features) of the first ``count`` readable demo-night spectra, as
+    measure() makes them."""
+    from specan.lines.data import DETECT_SIGMA, MIN_DEPTH, LineData, find_features
+    from specan.lines.listed import lines_in_range
+    from specan.lines.measurement import line_targets
+
+    truth = Table.read(DEMO / "truth.ecsv", format="ascii.ecsv")
+    for row in truth[~truth["broken"]][:count]:
+        data = LineData(prepare(read(DEMO / row["file"])))
+        listed = lines_in_range(data, None, ("atomic",), row["rv_topo"] * u.km / u.s)
+        yield row["file"], data, listed, line_targets(data, listed, None), find_features(data, DETECT_SIGMA, MIN_DEPTH)
 EW_TOL = 0.05      # of the line's own error
 ERR_TOL = 0.01     # relative, between the two paths' errors
 PLACE_TOL = 0.01   # of the FWHM, for the centre and the FWHM
@@ -146,18 +160,12 @@ def test_batched_voigt_converges_where_it_stops():
 
 def test_vectorised_windows_equal_the_walks():
     # line_windows walks every line at once; each window must be the one line_window walks
-    from specan.lines.data import DETECT_SIGMA, MIN_DEPTH, LineData, find_features
-    from specan.lines.listed import lines_in_range
-    from specan.lines.measurement import line_start, line_targets
+    from specan.lines.data import DETECT_SIGMA
+    from specan.lines.measurement import line_start
     from specan.lines.windows import line_window, line_windows
 
-    truth = Table.read(DEMO / "truth.ecsv", format="ascii.ecsv")
     compared = 0
-    for row in truth[~truth["broken"]][:8]:
-        data = LineData(prepare(read(DEMO / row["file"])))
-        listed = lines_in_range(data, None, ("atomic",), row["rv_topo"] * u.km / u.s)
-        targets = line_targets(data, listed, None)
-        features = find_features(data, DETECT_SIGMA, MIN_DEPTH)
+    for name, data, listed, targets, features in demo_line_setups(8):
         # on the spectrum and on a copy with a ripple (other plateaus, other cuts)
         for d in (data, data.divided(0.97 + 0.03 * np.cos(data.wave / 50.0))):
             starts = [line_start(d, features, targets, i, DETECT_SIGMA) for i in range(targets.pred.size)]
@@ -167,7 +175,7 @@ def test_vectorised_windows_equal_the_walks():
                 st = starts[i]
                 one = line_window(d, st.ic, st.centre, st.sign, targets.fwhm[i], bool(targets.hydrogen[i]),
                                   st.matched)
-                assert tuple(one) == tuple(window), (row["file"], listed.rows["id"][i])
+                assert tuple(one) == tuple(window), (name, listed.rows["id"][i])
                 compared += 1
     assert compared > 1000
 
@@ -176,17 +184,11 @@ def test_vectorised_line_starts_equal_one_by_one():
     # line_starts: matching, nearest pixel, saturated cores, masked cores, sign and detection
     import copy
 
-    from specan.lines.data import DETECT_SIGMA, MIN_DEPTH, LineData, find_features
-    from specan.lines.listed import lines_in_range
-    from specan.lines.measurement import line_start, line_starts, line_targets
+    from specan.lines.data import DETECT_SIGMA
+    from specan.lines.measurement import line_start, line_starts
 
-    truth = Table.read(DEMO / "truth.ecsv", format="ascii.ecsv")
     masked = compared = 0
-    for row in truth[~truth["broken"]][:6]:
-        data = LineData(prepare(read(DEMO / row["file"])))
-        listed = lines_in_range(data, None, ("atomic",), row["rv_topo"] * u.km / u.s)
-        targets = line_targets(data, listed, None)
-        features = find_features(data, DETECT_SIGMA, MIN_DEPTH)
+    for name, data, listed, targets, features in demo_line_setups(6):
         holed = copy.copy(data)
         holed.good = data.good.copy()
         for c in targets.pred[::7]:   # holes over the cores of some lines
@@ -248,18 +250,12 @@ def test_dersnr_from_arrays_equals_specutils():
 
 def test_vectorised_plans_equal_one_by_one():
     # plan_lines (continua, integrals, depths of all lines as array operations) against plan_line
-    from specan.lines.data import DETECT_SIGMA, MIN_DEPTH, LineData, find_features
-    from specan.lines.listed import lines_in_range
-    from specan.lines.measurement import line_starts, line_targets, plan_line, plan_lines
+    from specan.lines.data import DETECT_SIGMA
+    from specan.lines.measurement import line_starts, plan_line, plan_lines
     from specan.lines.windows import line_windows
 
-    truth = Table.read(DEMO / "truth.ecsv", format="ascii.ecsv")
     compared = 0
-    for row in truth[~truth["broken"]][:6]:
-        data = LineData(prepare(read(DEMO / row["file"])))
-        listed = lines_in_range(data, None, ("atomic",), row["rv_topo"] * u.km / u.s)
-        targets = line_targets(data, listed, None)
-        features = find_features(data, DETECT_SIGMA, MIN_DEPTH)
+    for name, data, listed, targets, features in demo_line_setups(6):
         which = list(range(targets.pred.size))
         starts = dict(zip(which, line_starts(data, features, targets, np.array(which), DETECT_SIGMA)))
         found = [i for i in which if starts[i] is not None]
