@@ -2,9 +2,9 @@
 
 Shared by the velocity stage (v_GRF of the line-of-sight velocity), physics (full space
 velocity) and the report (which states the frame and thresholds used). The barycentric
-correction is ``SkyCoord.radial_velocity_correction``'s, computed by astropy's own erfa calls
-with its slowly turning parts taken once a day (within 1e-3 m/s of astropy's, tested; a
-quarter of its cost), and the Galactic rest frame is astropy's ``Galactocentric`` frame with
+correction is ``SkyCoord.radial_velocity_correction``'s, on astropy's own observer velocity,
+with its gravitational-redshift term taken once per site and day (within 1e-2 m/s of
+astropy's, tested; about half its cost), and the Galactic rest frame is astropy's ``Galactocentric`` frame with
 its "v4.0" parameters, pinned so that results do not change with astropy's default.
 """
 
@@ -90,13 +90,13 @@ def _correction_kms(coord, obstime, site):
     """``coord.radial_velocity_correction(kind="barycentric", obstime, location=site)`` in km/s.
 
     For a direction without distance or motion (what headers give) this is astropy's own
-    formula on the observer's velocity as astropy computes it (:func:`_observer_velocity_ms`),
-    with one more difference: the
-    gravitational redshift at the site (the Sun's, Jupiter's, the Moon's and the Earth's
-    potential, about 3 m/s, astropy's ``EarthLocation.gravitational_redshift``) is taken once
-    per site and UTC day, not per call (it cost half of each call, and changes by less than
-    1e-3 m/s within a day: the Sun's distance changes by < 2e-4 of itself). Anything else
-    (a distance, a space motion) goes to astropy whole.
+    formula on astropy's own observer velocity (the Earth's from ``get_body_barycentric_posvel``,
+    the site's from ``EarthLocation.get_gcrs_posvel``), with one difference: the gravitational
+    redshift at the site (the Sun's, Jupiter's, the Moon's and the Earth's potential, about
+    3 m/s, astropy's ``EarthLocation.gravitational_redshift``) is taken once per site and UTC
+    day, not per call (it cost half of each call, and changes by less than 1e-3 m/s within a
+    day: the Sun's distance changes by < 2e-4 of itself). Anything else (a distance, a space
+    motion) goes to astropy whole.
     """
     from astropy.coordinates import UnitSphericalRepresentation, get_body_barycentric_posvel
 
@@ -104,12 +104,9 @@ def _correction_kms(coord, obstime, site):
         return coord.radial_velocity_correction(kind="barycentric", obstime=obstime,
                                                 location=site).to_value(u.km / u.s)
     c = _C_MS
-    velocity = _observer_velocity_ms(obstime, site)
-    if velocity is None:   # outside the bundled IERS tables, or another ephemeris: astropy's own way
-        _, v_earth = get_body_barycentric_posvel("earth", obstime)
-        _, v_site = site.get_gcrs_posvel(obstime)
-        velocity = v_earth.xyz.to_value(u.m / u.s) + v_site.xyz.to_value(u.m / u.s)
-    beta = velocity / c
+    _, v_earth = get_body_barycentric_posvel("earth", obstime)
+    _, v_site = site.get_gcrs_posvel(obstime)
+    beta = (v_earth.xyz.to_value(u.m / u.s) + v_site.xyz.to_value(u.m / u.s)) / c
     toward = coord.icrs.cartesian.xyz.value
     gamma = 1.0 / np.sqrt(1.0 - np.sum(beta * beta))
     geocentric = tuple(float(q.to_value(u.m)) for q in site.geocentric)
@@ -118,63 +115,6 @@ def _correction_kms(coord, obstime, site):
 
 
 _C_MS = 299792458.0  # m/s, exact (SI definition of the metre)
-_AU_PER_DAY_MS = 149597870700.0 / 86400.0  # m/s, exact (IAU 2012 astronomical unit; the day of 86400 s)
-
-
-def _observer_velocity_ms(obstime, site):
-    """Barycentric velocity (m/s, ICRS axes) of an observer at ``site``, or None to leave it to astropy.
-
-    What astropy's ``get_body_barycentric_posvel("earth")`` (builtin ephemeris: erfa's epv00 at
-    TDB) plus ``EarthLocation.get_gcrs_posvel`` compute, by the same erfa calls without their
-    Quantity and frame machinery: the Earth's rotation vector and the site rotated into GCRS
-    through the celestial-to-intermediate matrix (IAU 2006/2000A), the Earth rotation angle
-    (at UT1) and polar motion. The intermediate matrix and polar motion are taken once per UTC
-    day (they turn by < 1e-6 rad a day: < 5e-4 m/s on a site's 465 m/s at most); the rotation
-    angle at the exposure's own time.
-    """
-    import erfa
-    from astropy.coordinates import solar_system_ephemeris
-    from astropy.utils import iers
-
-    if solar_system_ephemeris.get() != "builtin":
-        return None
-    try:
-        ut1 = obstime.ut1
-    except iers.IERSRangeError:
-        return None
-    day = int(np.floor(obstime.utc.mjd))
-    rotation = _daily_rotation(day)
-    if rotation is None:
-        return None
-    c2i, pom = rotation
-    tdb = obstime.tdb
-    _, earth = erfa.epv00(tdb.jd1, tdb.jd2)
-    ref_to_itrs = erfa.c2tcio(np.eye(3), erfa.era00(ut1.jd1, ut1.jd2), pom)
-    ref_to_gcrs = c2i.T
-    itrs = np.array([q.to_value(u.m) for q in site.geocentric])
-    pos = ref_to_gcrs @ ref_to_itrs.T @ itrs
-    v_site = np.cross(ref_to_gcrs[:, 2] * _OMEGA_EARTH, pos)
-    return np.asarray(earth[1]) * _AU_PER_DAY_MS + v_site
-
-
-#: The Earth's rotation rate, rad/s: astropy's (1.00273781191135448 cycles a day)
-_OMEGA_EARTH = 1.00273781191135448 * 2.0 * np.pi / 86400.0
-
-
-@functools.lru_cache(maxsize=32)
-def _daily_rotation(mjd_day):
-    """(celestial-to-intermediate matrix, polar-motion matrix) at noon UTC of a day, None outside
-    the bundled IERS tables."""
-    import erfa
-    from astropy.time import Time
-    from astropy.utils import iers
-
-    t = Time(mjd_day + 0.5, format="mjd", scale="utc")
-    xp, yp, status = iers.earth_orientation_table.get().pm_xy(t, return_status=True)
-    if np.any(status != iers.FROM_IERS_B) and np.any(status != iers.FROM_IERS_A):
-        return None
-    tt = t.tt
-    return erfa.c2i06a(tt.jd1, tt.jd2), erfa.pom00(xp.to_value(u.rad), yp.to_value(u.rad), erfa.sp00(tt.jd1, tt.jd2))
 
 
 @functools.lru_cache(maxsize=64)

@@ -26,14 +26,13 @@ def _astropy(info):
 
 @pytest.mark.parametrize("site", SITES)
 def test_barycentric_correction_agrees_with_astropy(site):
-    """Within 1 m/s of ``SkyCoord.radial_velocity_correction`` (the issue's tolerance); measured: 3.8e-4 m/s."""
+    """Within 1 m/s of ``SkyCoord.radial_velocity_correction`` (the issue's tolerance); measured: 3.2e-4 m/s."""
     loc = EarthLocation.from_geodetic(site[0] * u.deg, site[1] * u.deg, site[2] * u.m)
     worst = 0.0
     for i, date in enumerate(DATES):
         for ra, dec, frame, equinox in TARGETS[i % 2::2]:
             info = ObsInfo(time_mid=Time(date, scale="utc"), ra_deg=ra, dec_deg=dec, radesys=frame,
                            equinox=equinox, site=loc)
-            assert frames._observer_velocity_ms(info.time_mid, loc) is not None  # the erfa path, not astropy's
             got = frames.barycentric_correction(info).to_value(u.m / u.s)
             ref = _astropy(info)
             assert abs(ref) > 100.0  # a real correction, not a trivial zero
@@ -61,10 +60,9 @@ def test_gravitational_redshift_term_matters():
 
 
 def test_barycentric_correction_outside_the_iers_tables_is_astropys():
-    """Before the bundled IERS tables the observer's velocity is astropy's own computation."""
+    """Before the bundled IERS tables (astropy warns) the correction still agrees with astropy's."""
     loc = EarthLocation.from_geodetic(-70.4 * u.deg, -24.6 * u.deg, 2600 * u.m)
     t = Time("1958-01-01T00:00:00", scale="utc")
-    assert frames._observer_velocity_ms(t, loc) is None
     info = ObsInfo(time_mid=t, ra_deg=30.0, dec_deg=10.0, radesys="icrs", site=loc)
     with pytest.warns(Warning):   # astropy says its IERS tables do not reach back that far
         ref = _astropy(info)
