@@ -31,6 +31,7 @@ __all__ = [
     "galactocentric_frame",
     "galactic_frame_note",
     "galactic_rest_frame_velocity",
+    "sun_motion_toward_kms",
 ]
 
 #: Default |v_GRF| above which a star is flagged ``high_velocity`` (common practice).
@@ -278,4 +279,10 @@ def galactic_rest_frame_velocity(rv, coord):
         icrs = coord.icrs
         ra, dec = icrs.ra.rad, icrs.dec.rad
         toward = np.array([np.cos(dec) * np.cos(ra), np.cos(dec) * np.sin(ra), np.sin(dec)])
-    return (u.Quantity(rv, u.km / u.s).value + float(_sun_velocity_icrs() @ toward)) * (u.km / u.s)
+    return (u.Quantity(rv, u.km / u.s).value + sun_motion_toward_kms(toward)) * (u.km / u.s)
+
+
+def sun_motion_toward_kms(toward):
+    """The Sun's velocity in the Galactic rest frame projected on the ICRS unit vector ``toward``
+    (km/s, a float: what :func:`galactic_rest_frame_velocity` adds to a barycentric velocity)."""
+    return float(_sun_velocity_icrs() @ toward)
