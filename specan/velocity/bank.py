@@ -272,9 +272,9 @@ def short_side(search):
 REFINE_OFFSETS = ((-1.0, -0.5, 0.0, 0.5, 1.0), (-0.2, -0.1, 0.0, 0.1, 0.2))
 
 
-def _stacked(arrays):
-    """(T, nf) array of 1-D FFTs of different band limits, zero-padded to the longest."""
-    nf = max(x.size for x in arrays)
+def _stacked(arrays, nf=None):
+    """(T, nf) array of 1-D FFTs of different band limits, zero-padded to ``nf`` (default: the longest)."""
+    nf = max(x.size for x in arrays) if nf is None else nf
     out = np.zeros((len(arrays), nf), complex)
     for i, x in enumerate(arrays):
         out[i, :x.size] = x
@@ -313,25 +313,29 @@ def _refine(templates, lags, data_ffts, m, pad, passes):
     from .correlation import Correlation
 
     bands = [t.band_ffts(m) for t in templates]
-    FT, FT2, FV = (_stacked([b[i] for b in bands]) for i in range(3))
-    nf = max(FT.shape[1], FT2.shape[1], FV.shape[1])
+    nf = max(x.size for b in bands for x in b)
+    FT, FT2, FV = (_stacked([b[i] for b in bands], nf) for i in range(3))
     A = [a[:nf] for a in data_ffts]
     x0 = np.asarray(lags, float)
     f = np.arange(nf)
-    # the six correlation rows of every template, (6, T, nf), the same in both passes: made once
-    X = np.zeros((6, x0.size, nf), complex)
-    for r, (a, B) in enumerate(((A[0], FT), (A[1], FT), (A[1], FT2), (A[0], FV), (A[2], FV), (A[1], FV))):
-        X[r, :, :B.shape[1]] = np.conj(a[:B.shape[1]])[None, :] * B
     height = curv = np.full(x0.size, np.nan)
+    pairs = ((0, 0), (1, 0), (1, 1), (0, 2), (2, 2), (1, 2))   # (data, template) arrays of the six rows
     for offs in passes:
-        # the phase of lag s = x0 + o at index k = pad - s is a per-template part (one angle per
-        # frequency) times a cached per-offset part: the first goes into the rows, and
-        # Re(Y conj(p)) = Y.re p.re + Y.im p.im is one real sum over the interleaved (re, im)
-        # layout of both (numpy's einsum, not BLAS: bit-identical whatever the thread count)
+        # row (a, b) at lag s = x0 + o (index k = pad - s) is Re sum_f conj(A_a) B_b e^{i theta_t f} conj(p_o):
+        # the per-template phase e^{i theta_t f} goes into the three template arrays, the cached
+        # per-offset phase p_o (inverse-DFT weights included) into the three data arrays, and
+        # Re(x conj(y)) = x.re y.re + x.im y.im is one real sum over the interleaved (re, im)
+        # layout of x = B_b e^{i theta} and y = A_a p_o (numpy's einsum, not BLAS: bit-identical
+        # whatever the thread count). Six (T, nf) products instead of six (6, T, nf) arrays.
         theta = (2.0 * np.pi / m) * np.outer(pad - x0, f)                    # (T, nf)
-        Y = X * (np.cos(theta) + 1j * np.sin(theta))[None, :, :]
+        turn = np.empty(theta.shape, complex)
+        np.cos(theta, out=turn.real)
+        np.sin(theta, out=turn.imag)
         p = _offset_phases(m, nf, tuple(offs))                                # (L, nf), cached
-        c, _ = Correlation.combine(np.einsum("rtf,lf->rtl", Y.view(np.float64), p.view(np.float64)))
+        tv = [(B * turn).view(np.float64) for B in (FT, FT2, FV)]
+        dv = [(a[None, :] * p).view(np.float64) for a in A]
+        rows = np.stack([np.einsum("tf,lf->tl", tv[j], dv[i]) for i, j in pairs])
+        c, _ = Correlation.combine(rows)
         ok = np.all(np.isfinite(c), axis=1)
         dx, h, cv = poly_peaks(offs, np.where(ok[:, None], c, 0.0))
         x0 = np.where(ok, x0 + dx, x0)
