@@ -29,7 +29,7 @@ from ..obsinfo import ObsInfo, get_info, wavelength_in
 __all__ = ["SPLINE_K", "COVER_TAPER", "ObservedGrid", "TemplateGrid", "LagWindow", "normalised",
            "observe_on_grid", "lattice_step", "lag_window", "kms_per_pixel", "sigma_array", "hot_pixels",
            "noise_from_flux", "fast_length",
-           "dersnr_sigma", "gauss_smooth", "highpass", "cover_taper", "SplineOperators", "spline_operators"]
+           "dersnr_sigma", "gauss_smooth", "smoothed_coverage", "highpass", "cover_taper", "SplineOperators", "spline_operators"]
 
 #: Order of the spline that resamples spectra onto the ln-lambda grid.
 SPLINE_K = 3
@@ -380,11 +380,39 @@ def gauss_smooth(x, sigma):
     """
     n = x.shape[0]
     size = fast_length(n + int(math.ceil(8 * sigma)))  # zero padding: no wrap-around
-    k = np.arange(size // 2 + 1) / size
-    kern = np.exp(-2.0 * (np.pi * sigma * k) ** 2)  # Fourier transform of the Gaussian
+    kern = _gauss_kernel(size, float(sigma))
     if x.ndim == 2:
         kern = kern[:, None]
     return sfft.irfft(sfft.rfft(x, size, axis=0) * kern, size, axis=0)[:n]
+
+
+@functools.lru_cache(maxsize=32)
+def _gauss_kernel(size, sigma):
+    """Fourier transform of a Gaussian of ``sigma`` pixels at the ``size // 2 + 1`` frequencies of a real
+    transform of length ``size`` (read-only: one per set-up, shared)."""
+    k = np.arange(size // 2 + 1) / size
+    kern = np.exp(-2.0 * (np.pi * sigma * k) ** 2)
+    kern.flags.writeable = False
+    return kern
+
+
+_COVERAGE = {}
+
+
+def smoothed_coverage(valid, sigma):
+    """``gauss_smooth(valid, sigma)`` floored at 1e-3: the high-pass filter's local weight, the
+    same for a spectrum's data and its error propagation (kept for the last few coverages)."""
+    import hashlib
+
+    key = (hashlib.sha1(np.ascontiguousarray(valid).tobytes()).hexdigest(), valid.size, float(sigma))
+    found = _COVERAGE.get(key)
+    if found is None:
+        found = np.maximum(gauss_smooth(valid.astype(float), sigma), 1e-3)
+        found.flags.writeable = False
+        while len(_COVERAGE) >= 8:   # oldest out first; the array is returned, not looked up again
+            _COVERAGE.pop(next(iter(_COVERAGE)), None)
+        _COVERAGE[key] = found
+    return found
 
 
 def highpass(x, sigma, valid):
@@ -401,9 +429,9 @@ def highpass(x, sigma, valid):
     v = valid.astype(float)
     vv = v if x.ndim == 1 else v[:, None]
     num = gauss_smooth(x * vv, sigma)
-    den = gauss_smooth(v, sigma)
+    den = smoothed_coverage(valid, sigma)
     den = den if x.ndim == 1 else den[:, None]
-    low = num / np.maximum(den, 1e-3)
+    low = num / den
     return (x - low) * vv
 
 

@@ -18,7 +18,7 @@ import numpy as np
 from scipy import fft as sfft
 
 from .correlation import Correlation
-from .grid import gauss_smooth, highpass, kms_per_pixel, spline_operators
+from .grid import gauss_smooth, highpass, kms_per_pixel, smoothed_coverage, spline_operators
 
 __all__ = ["TonryDavis", "VelocityErrors", "SegmentErrors", "tonry_davis", "resample_error", "estimate_errors",
            "reported_error", "segment_errors", "zero_point_error", "content_seed", "spline_adjoint", "ErrorBudget", "error_budget"]
@@ -198,7 +198,7 @@ def _highpass_adjoint(y, sigma, valid):
     v = valid.astype(float)[:, None]
     if not sigma:
         return v * y
-    den = np.maximum(gauss_smooth(valid.astype(float), sigma), 1e-3)[:, None]
+    den = smoothed_coverage(valid, sigma)[:, None]
     return v * y - v * gauss_smooth(v * y / den, sigma)
 
 
@@ -248,14 +248,19 @@ def _offset_phases(offsets, m, nf):
 def _shift_phases(k0, offsets, m, nf):
     """(L, nf) exp(2 pi i f (k0 + o) / m): one angle per frequency, times the cached offset phases."""
     theta = (2.0 * np.pi / m) * k0 * np.arange(nf)
-    return (np.cos(theta) + 1j * np.sin(theta))[None, :] * _offset_phases(tuple(offsets), m, nf)
+    turn = np.empty(nf, complex)
+    np.cos(theta, out=turn.real)
+    np.sin(theta, out=turn.imag)
+    return turn[None, :] * _offset_phases(tuple(offsets), m, nf)
 
 
 def _template_segments(search, template, s0, m, starts, h):
-    """(offsets, good, gradients) of one template's segment velocities about its peak ``s0``.
+    """(offsets, good, segment gradient, whole gradient) of one template's segment velocities about
+    its peak ``s0``.
 
-    ``offsets`` (K + 1: the segments, then the whole) are vertex offsets in pixels; ``gradients``
-    (n, K + 1) their derivatives with respect to the data on the grid (zero outside each segment).
+    ``offsets`` (K + 1: the segments, then the whole) are vertex offsets in pixels; the gradients
+    (n,) are their derivatives with respect to the data on the grid: at each pixel, that of its own
+    segment's vertex (the others' are zero there), and that of the whole's.
     """
     lags = search.lags
     n, pad = lags.n, lags.pad
@@ -284,14 +289,14 @@ def _template_segments(search, template, s0, m, starts, h):
     data_energy = np.clip(rows[4][1] - rows[3][1] ** 2 / c2v[1], 1e-300, None)
     k = starts.size
     ends = np.append(starts[1:], n)
-    grads = np.zeros((n, k + 1))
+    grads = []
     for col in (np.repeat(np.arange(k), ends - starts), np.full(n, k)):
         plus = (bT[2] - mu[2][col] * bV[2]) / np.sqrt(energy[2][col])
         minus = (bT[0] - mu[0][col] * bV[0]) / np.sqrt(energy[0][col])
         scale = np.where(good[col], -1.0 / (2.0 * h * np.where(good[col], curv[col], -1.0)
                                             * np.sqrt(data_energy[col])), 0.0)
-        grads[np.arange(n), col] = w * (plus - minus) * scale
-    return offsets, good, grads
+        grads.append(w * (plus - minus) * scale)
+    return offsets, good, grads[0], grads[1]
 
 
 def segment_errors(observed, search, members, m, resels):
@@ -322,12 +327,17 @@ def segment_errors(observed, search, members, m, resels):
     mean_lag = sum(wt * s0 for _, s0, wt in members) / total_w
     offsets = np.zeros(starts.size + 1)
     good = np.ones(starts.size + 1, bool)
-    grads = np.zeros((n, starts.size + 1))
+    g_seg, g_whole = np.zeros(n), np.zeros(n)
     for template, s0, wt in members:
-        off, ok, g = _template_segments(search, template, s0, m, starts, h)
+        off, ok, gs, gw = _template_segments(search, template, s0, m, starts, h)
         offsets += wt / total_w * (s0 + np.where(ok, off, 0.0) - mean_lag)
         good &= ok
-        grads += wt / total_w * g
+        g_seg += wt / total_w * gs
+        g_whole += wt / total_w * gw
+    # (n, K + 1): each segment's vertex depends on its own pixels only, the whole's on all
+    grads = np.zeros((n, starts.size + 1))
+    grads[np.arange(n), np.repeat(np.arange(starts.size), np.diff(np.append(starts, n)))] = g_seg
+    grads[:, -1] = g_whole
     u = _highpass_adjoint(grads, lags.hp_sigma, observed.valid)
     z = spline_adjoint(observed.spline_x, observed.grid)(u)          # (native pixels, K + 1)
     sig = np.sqrt(np.sum((observed.native_sigma[:, None] * z) ** 2, axis=0))
