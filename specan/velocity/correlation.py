@@ -87,11 +87,19 @@ class Correlation:
         self.X = np.stack([np.conj(A1) * BT, np.conj(A2) * BT, np.conj(A2) * BT2,
                            np.conj(A1) * BV, np.conj(A3) * BV, np.conj(A2) * BV])
         self.freq = np.arange(self.X.shape[1])
-        wts = np.full(self.X.shape[1], 2.0)
-        wts[0] = 1.0
-        if m % 2 == 0:
-            wts[-1] = 1.0
-        self.Xw = self.X * wts
+        self._xw = None
+
+    @property
+    def Xw(self):
+        """The cross-spectra weighted for a real inverse DFT (2, and 1 at zero and Nyquist frequency),
+        made on first use: only :meth:`at` needs them."""
+        if self._xw is None:
+            wts = np.full(self.X.shape[1], 2.0)
+            wts[0] = 1.0
+            if self.m % 2 == 0:
+                wts[-1] = 1.0
+            self._xw = self.X * wts
+        return self._xw
 
     @staticmethod
     def combine(c):
