@@ -294,15 +294,15 @@ def _template_segments(search, shifted, starts, h):
     mu = rows[1] / c2v
     energy = np.clip(rows[2] - rows[1] ** 2 / c2v, 1e-300, None)
     data_energy = np.clip(rows[4][:, 1] - rows[3][:, 1] ** 2 / c2v[:, 1], 1e-300, None)
+    # per template and segment (T, K + 1): gradient = w (a+ T(+h) - b+ V(+h) - a- T(-h) + b- V(-h)),
+    # the coefficients made per segment and only then spread over its pixels
+    scale = np.where(good, -1.0 / (2.0 * h * np.where(good, curv, -1.0) * np.sqrt(data_energy)), 0.0)
+    a_plus, a_minus = scale / np.sqrt(energy[:, 2]), scale / np.sqrt(energy[:, 0])
+    coef = np.stack([a_plus, mu[:, 2] * a_plus, a_minus, mu[:, 0] * a_minus])      # (4, T, K + 1)
     k = starts.size
-    ends = np.append(starts[1:], n)
-    grads = []
-    for col in (np.repeat(np.arange(k), ends - starts), np.full(n, k)):
-        plus = (bT[:, 2] - mu[:, 2][:, col] * bV[:, 2]) / np.sqrt(energy[:, 2][:, col])
-        minus = (bT[:, 0] - mu[:, 0][:, col] * bV[:, 0]) / np.sqrt(energy[:, 0][:, col])
-        scale = np.where(good[:, col], -1.0 / (2.0 * h * np.where(good[:, col], curv[:, col], -1.0)
-                                               * np.sqrt(data_energy[:, col])), 0.0)
-        grads.append(w * (plus - minus) * scale)
+    lengths = np.diff(np.append(starts, n))
+    seg, whole = np.repeat(coef[..., :k], lengths, axis=-1), coef[..., k:]         # (4, T, n), (4, T, 1)
+    grads = [w * (bT[:, 2] * c[0] - bV[:, 2] * c[1] - bT[:, 0] * c[2] + bV[:, 0] * c[3]) for c in (seg, whole)]
     return offsets, good, grads[0], grads[1]
 
 
