@@ -34,6 +34,8 @@ __all__ = [
     "sun_motion_toward_kms",
 ]
 
+_KMS = u.km / u.s   # made once: composing the unit costs as much as the rest of a correction
+
 #: Default |v_GRF| above which a star is flagged ``high_velocity`` (common practice).
 HIGH_VELOCITY = 300.0 * u.km / u.s
 #: Default local escape speed: Piffl et al. (2014, A&A 562, A91), 533 km/s (from memory).
@@ -88,7 +90,7 @@ def barycentric_correction(info):
     missing = missing_for_barycentric(info)
     if missing:
         raise MetadataError("no barycentric correction: missing " + "; ".join(missing), info.path)
-    return _toward_kms(pointing_direction(info), info.time_mid, info.site) * (u.km / u.s)
+    return _toward_kms(pointing_direction(info), info.time_mid, info.site) * _KMS
 
 
 def pointing_direction(info):
@@ -148,7 +150,7 @@ def _toward_kms(toward, obstime, site):
     changes by < 2e-4 of itself). Both were most of the cost of a call (~5 ms).
     """
     c = _C_MS
-    geocentric = tuple(float(q.to_value(u.m)) for q in site.geocentric)
+    geocentric = _geocentric_m(site)
     mjd = float(obstime.utc.mjd)
     day = int(math.floor(mjd))
     beta = _observer_velocity_ms(geocentric, day, mjd - day) / c
@@ -158,6 +160,12 @@ def _toward_kms(toward, obstime, site):
 
 
 _C_MS = 299792458.0  # m/s, exact (SI definition of the metre)
+
+
+def _geocentric_m(site):
+    """(x, y, z) of an EarthLocation in metres, as plain floats (a hashable key for the tables)."""
+    xyz = site.to_value(u.m)
+    return (float(xyz["x"]), float(xyz["y"]), float(xyz["z"]))
 
 #: Spacing (days) of the observer-velocity table and its interpolation order (points): the site
 #: turns with the Earth (465 m/s at the equator, one turn a sidereal day), the Earth's own
@@ -279,7 +287,7 @@ def galactic_rest_frame_velocity(rv, coord):
         icrs = coord.icrs
         ra, dec = icrs.ra.rad, icrs.dec.rad
         toward = np.array([np.cos(dec) * np.cos(ra), np.cos(dec) * np.sin(ra), np.sin(dec)])
-    return (u.Quantity(rv, u.km / u.s).value + sun_motion_toward_kms(toward)) * (u.km / u.s)
+    return (u.Quantity(rv, _KMS).value + sun_motion_toward_kms(toward)) * _KMS
 
 
 def sun_motion_toward_kms(toward):
