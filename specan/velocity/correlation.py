@@ -112,13 +112,14 @@ class Correlation:
         with np.errstate(invalid="ignore", divide="ignore"):
             return num / np.sqrt(np.clip(e, 1e-300, None) * np.clip(d, 1e-300, None)), c2v
 
-    def integer_lags(self, frac=0.0):
-        """Normalised CCF at lags s = pad - k + ... for k = 0..m-1, shifted by ``frac`` pixels of s."""
+    def integer_lags(self, frac=0.0, k=None):
+        """Normalised CCF at lags s = pad - k + ... for k = 0..m-1 (or the indices ``k`` only), shifted
+        by ``frac`` pixels of s."""
         X = self.X
         if frac:
             X = X * np.exp(-2j * np.pi * self.freq * frac / self.m)
         c = sfft.irfft(X, self.m, axis=1)
-        return self.combine(c)
+        return self.combine(c if k is None else c[:, k])
 
     def at(self, s):
         """Normalised CCF at fractional lags ``s`` (array) by Fourier-series evaluation."""
@@ -237,11 +238,11 @@ def correlate(search, template, where=None):
 def ccf_about(corr, s0, half):
     """Normalised CCF at s0 + j for integer j in [-half, half] (exact fractional centring)."""
     frac = s0 - math.floor(s0)
-    ccf, c2v = corr.integer_lags(frac=frac)
     base = math.floor(s0)
     j = np.arange(-half, half + 1)
     k = (corr.pad - (base + j)) % corr.m  # lag s = base + frac + j  <->  index pad - base - j after shift
-    return j, ccf[k], c2v[k]
+    ccf, c2v = corr.integer_lags(frac=frac, k=k)
+    return j, ccf, c2v
 
 
 def fwhm_pixels(j, vals, h):
