@@ -19,6 +19,7 @@ from typing import NamedTuple
 import numpy as np
 from scipy import fft as sfft
 
+from .grid import turns
 from .prepared import prepare_builtin
 
 __all__ = ["TemplateBank", "BankScores", "short_length", "template_bank", "score_bank", "fourier_rows",
@@ -199,7 +200,7 @@ def _phases(m, nf, k):
     (a common part times cached offset phases: one complex exponential per frequency)."""
     k = np.asarray(k, float)
     k0 = float(k[len(k) // 2])
-    base = np.exp(2j * np.pi * np.arange(nf) * k0 / m)
+    base = turns(2.0 * np.pi * k0 / m, nf)
     return base[None, :] * _offset_phases(m, nf, tuple(np.round(k - k0, 12)))
 
 
@@ -322,7 +323,6 @@ def _refine(templates, lags, data_ffts, m, pad, passes):
     FT, FT2, FV = (_stacked([b[i] for b in bands], nf) for i in range(3))
     A = [a[:nf] for a in data_ffts]
     x0 = np.asarray(lags, float)
-    f = np.arange(nf)
     height = curv = np.full(x0.size, np.nan)
     pairs = ((0, 0), (1, 0), (1, 1), (0, 2), (2, 2), (1, 2))   # (data, template) arrays of the six rows
     for offs in passes:
@@ -332,10 +332,7 @@ def _refine(templates, lags, data_ffts, m, pad, passes):
         # Re(x conj(y)) = x.re y.re + x.im y.im is one real sum over the interleaved (re, im)
         # layout of x = B_b e^{i theta} and y = A_a p_o (numpy's einsum, not BLAS: bit-identical
         # whatever the thread count). Six (T, nf) products instead of six (6, T, nf) arrays.
-        theta = (2.0 * np.pi / m) * np.outer(pad - x0, f)                    # (T, nf)
-        turn = np.empty(theta.shape, complex)
-        np.cos(theta, out=turn.real)
-        np.sin(theta, out=turn.imag)
+        turn = turns((2.0 * np.pi / m) * (pad - x0), nf)                     # (T, nf)
         p = _offset_phases(m, nf, tuple(offs))                                # (L, nf), cached
         tv = [(B * turn).view(np.float64) for B in (FT, FT2, FV)]
         dv = [(a[None, :] * p).view(np.float64) for a in A]

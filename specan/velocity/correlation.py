@@ -19,7 +19,7 @@ import numpy as np
 from scipy import fft as sfft
 
 from ..errors import AnalysisError
-from .grid import LagWindow, highpass
+from .grid import LagWindow, highpass, turns
 
 __all__ = ["ObservedSide", "PeakSearch", "Correlation", "Peak", "PeakCCF", "correlation_arrays",
            "observed_side", "best_lag", "integer_peak", "quick_peak", "coverage_rows", "template_peaks",
@@ -117,7 +117,7 @@ class Correlation:
         by ``frac`` pixels of s."""
         X = self.X
         if frac:
-            X = X * np.exp(-2j * np.pi * self.freq * frac / self.m)
+            X = X * turns(-2.0 * np.pi * frac / self.m, X.shape[1])
         c = sfft.irfft(X, self.m, axis=1)
         return self.combine(c if k is None else c[:, k])
 
@@ -269,11 +269,11 @@ def single_star_ccf(template, valid, weight, pad, m, s0, half):
     so edge and gap effects of those steps are in the model, not mistaken for noise.
     """
     n = valid.size
-    theta = (-2.0 * np.pi * (s0 - pad) / m) * np.arange(m // 2 + 1)
+    shift = turns(-2.0 * np.pi * (s0 - pad) / m, m // 2 + 1)
     # template(x - s0) on the data window, and where the template has gaps (its own tellurics,
     # its ends) the model star is unknown: those pixels are left out rather than treated as
     # continuum (both shifted in one inverse transform of the template's cached spectra)
-    model, known = sfft.irfft(template.model_ffts(m) * (np.cos(theta) + 1j * np.sin(theta)), m, axis=1)[:, :n]
+    model, known = sfft.irfft(template.model_ffts(m) * shift, m, axis=1)[:, :n]
     known = known > 0.5
     ok = valid & known
     model = highpass(model, template.hp_sigma, ok)

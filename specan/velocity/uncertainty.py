@@ -18,7 +18,7 @@ import numpy as np
 from scipy import fft as sfft
 
 from .correlation import Correlation
-from .grid import gauss_smooth, highpass, kms_per_pixel, smoothed_coverage, spline_operators
+from .grid import gauss_smooth, highpass, kms_per_pixel, smoothed_coverage, spline_operators, turns
 
 __all__ = ["TonryDavis", "VelocityErrors", "SegmentErrors", "tonry_davis", "resample_error", "estimate_errors",
            "reported_error", "segment_errors", "zero_point_error", "content_seed", "spline_adjoint", "ErrorBudget", "error_budget"]
@@ -247,11 +247,7 @@ def _offset_phases(offsets, m, nf):
 
 def _shift_phases(k0, offsets, m, nf):
     """(L, nf) exp(2 pi i f (k0 + o) / m): one angle per frequency, times the cached offset phases."""
-    theta = (2.0 * np.pi / m) * k0 * np.arange(nf)
-    turn = np.empty(nf, complex)
-    np.cos(theta, out=turn.real)
-    np.sin(theta, out=turn.imag)
-    return turn[None, :] * _offset_phases(tuple(offsets), m, nf)
+    return turns((2.0 * np.pi / m) * k0, nf)[None, :] * _offset_phases(tuple(offsets), m, nf)
 
 
 def _shifted_templates(search, members, m, h):
