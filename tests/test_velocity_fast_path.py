@@ -220,3 +220,16 @@ def test_smoothed_coverage_is_the_high_pass_weight():
     assert np.array_equal(got, np.maximum(gauss_smooth(valid.astype(float), 25.0), 1e-3))
     assert smoothed_coverage(valid.copy(), 25.0) is got
     assert not got.flags.writeable
+
+
+def test_distance_to_invalid_is_scipys_distance_transform():
+    """The one-dimensional distance to the nearest invalid pixel (ends invalid) is scipy's exact transform."""
+    from scipy.ndimage import distance_transform_edt
+
+    from specan.velocity.grid import distance_to_invalid
+
+    rng = np.random.default_rng(4)
+    for _ in range(200):
+        valid = rng.random(int(rng.integers(1, 400))) > rng.random() * 0.6
+        want = distance_transform_edt(np.pad(valid, 1, constant_values=False))[1:-1]
+        assert np.array_equal(distance_to_invalid(valid), want)
