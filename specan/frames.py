@@ -115,6 +115,7 @@ def _frame_direction(info):
     toward = _DIRECTIONS.get(key)
     if toward is None:
         toward = info.coord.icrs.cartesian.xyz.value
+        toward.flags.writeable = False   # shared by every spectrum of the pointing
         if len(_DIRECTIONS) >= 4096:   # a bound on memory over a long night; any entry is recomputable
             _DIRECTIONS.clear()
         _DIRECTIONS[key] = toward
@@ -205,8 +206,9 @@ def _observer_table(geocentric, day):
     site = EarthLocation.from_geocentric(*geocentric, unit=u.m)
     _, v_earth = get_body_barycentric_posvel("earth", times)
     _, v_site = site.get_gcrs_posvel(times)
-    table = (v_earth.xyz.to_value(u.m / u.s) + v_site.xyz.to_value(u.m / u.s)).T   # (nodes, 3)
-    return nodes, np.ascontiguousarray(table)
+    table = np.ascontiguousarray((v_earth.xyz.to_value(u.m / u.s) + v_site.xyz.to_value(u.m / u.s)).T)  # (nodes, 3)
+    nodes.flags.writeable = table.flags.writeable = False   # cached, shared
+    return nodes, table
 
 
 @functools.lru_cache(maxsize=64)
