@@ -17,10 +17,14 @@
    noiseless input; Bouchy, Pepe & Queloz 2001), and the pulls (measured - true) / rv_err:
    their sd about their mean and their rms about zero (which also counts the bias).
 5. ``--other-types``: specan's synthetic stars of types the synthetic grid lacks, same figures.
-6. ``--miles``: MILES library stars (``../shared/reference/miles``, at rest in the library's
+6. ``--floor``: where the time of one velocity goes (the speed test's spectra, steady state): CPU
+   ms of each step of ``velocity.measure``, and of the transforms inside (FFTs, spline solves);
+   ``--night-set``: the same on ``bench_pipeline.py``'s 40 spectra (read and prepared, with the
+   barycentric correction and the Galactic rest frame).
+7. ``--miles``: MILES library stars (``../shared/reference/miles``, at rest in the library's
    frame), each measured without the library templates whose group it belongs to.
 
-Run:  python benchmarks/bench_velocity.py [--quick] [--speed] [--user] [--other-types] [--miles]
+Run:  python benchmarks/bench_velocity.py [--quick] [--speed] [--floor] [--night-set] [--user] [--other-types] [--miles]
 
 Timings depend on the machine's load; on a shared machine OPENBLAS_NUM_THREADS=1 avoids BLAS
 threads fighting other processes (the figures in the issue-4 report were measured that way).
@@ -178,23 +182,31 @@ def auto_speed():
               f"({s.flux.size} pixels), rv {res['rv'].value:.2f} (true -321), {res['template']}")
 
 
+SPEED_PIX = np.arange(4000.0, 4000.0 + 4000 * 0.625, 0.625)  # 4,000 pixels, R 2000 at ~2.5-4 pixels per FWHM
+SPEED_R = 2000.0
+
+
+def speed_spectrum(model, v, snr=None, seed=0, start=None):
+    """The Kurucz Sun at ``v`` km/s on the 4,000 pixels of the speed test (``start``: shifted pixels)."""
+    pix = SPEED_PIX if start is None else start + (SPEED_PIX - SPEED_PIX[0])   # another wavelength solution
+    flux = model(SPEED_R)(np.log(pix) - np.log(velocity.doppler_factor(v * KMS)))
+    unc = None
+    if snr:
+        sig = np.sqrt(np.clip(flux, 1e-3, None)) / snr
+        flux = flux + np.random.default_rng(seed).normal(size=flux.size) * sig
+        unc = StdDevUncertainty(sig)
+    info = ObsInfo(object="Kurucz Sun", medium="vacuum", medium_assumed=False, resolving_power=SPEED_R,
+                   normalized=True)
+    return Spectrum(flux=flux * u.dimensionless_unscaled, spectral_axis=pix * u.AA, uncertainty=unc,
+                    meta={META_KEY: info})
+
+
 def speed(model, n):
     """ms per 4,000-pixel spectrum: specan (no template: all built-in templates) vs specutils (one template)."""
-    PIX = np.arange(4000.0, 4000.0 + 4000 * 0.625, 0.625)  # 4,000 pixels, R 2000 at ~2.5-4 pixels per FWHM
-    r = 2000.0
+    PIX, r = SPEED_PIX, SPEED_R
 
     def obs(v, snr=None, seed=0, start=None):
-        pix = PIX if start is None else start + (PIX - PIX[0])   # another wavelength solution: shifted pixels
-        flux = model(r)(np.log(pix) - np.log(velocity.doppler_factor(v * KMS)))
-        unc = None
-        if snr:
-            sig = np.sqrt(np.clip(flux, 1e-3, None)) / snr
-            flux = flux + np.random.default_rng(seed).normal(size=flux.size) * sig
-            unc = StdDevUncertainty(sig)
-        info = ObsInfo(object="Kurucz Sun", medium="vacuum", medium_assumed=False, resolving_power=r,
-                       normalized=True)
-        return Spectrum(flux=flux * u.dimensionless_unscaled, spectral_axis=pix * u.AA, uncertainty=unc,
-                        meta={META_KEY: info})
+        return speed_spectrum(model, v, snr, seed, start)
 
     tmpl = obs(0.0)
     rng = np.random.default_rng(5)
@@ -241,6 +253,99 @@ def speed(model, n):
         c_own.append(time.process_time() - c)
     print(f"specan, each spectrum on its own wavelength solution (pixels shifted 0-0.6 A), {len(own)} spectra: "
           f"median CPU {1e3 * np.median(c_own):.1f} ms (the same pixels: {cpu_med[next(iter(cpu_med))]:.1f} ms)")
+
+
+#: The steps of ``velocity.measure`` timed by :func:`floor` (names in ``specan.velocity``).
+STEPS = ("observe_on_grid", "settle_resolving_power", "lag_window", "observed_side", "choose_template",
+         "_refined_peaks", "Correlation", "ccf_about_peak", "tonry_davis", "estimate_errors", "segment_errors",
+         "detect_companion", "apply_frames", "velocity_flags", "assumption_flags", "result_dict")
+
+
+def floor(model, n):
+    """Where the time of one velocity goes on the speed test's spectra (:func:`where_time_goes`)."""
+    spectra = [speed_spectrum(model, v, 50.0, 200 + i)
+               for i, v in enumerate(np.random.default_rng(5).uniform(-300, 300, n))]
+    where_time_goes(spectra, "speed-test spectra (Kurucz Sun, 4,000 px, no barycentric correction)",
+                    barycentric=False)
+
+
+def night_set(n):
+    """The same on ``benchmarks/bench_pipeline.py``'s spectra (4,000 px FITS files, types O-M, read and
+    prepared as the night run does; with time, site and pointing: barycentric correction and v_GRF)."""
+    import tempfile
+
+    import specan
+
+    sys.path.insert(0, str(Path(__file__).resolve().parent))
+    from bench_pipeline import make_spectra
+
+    with tempfile.TemporaryDirectory() as tmp:
+        spectra = [specan.prepare(specan.read(str(p))) for p in make_spectra(Path(tmp), n)]
+    where_time_goes(spectra, "bench_pipeline.py spectra (read, prepared; barycentric correction and v_GRF)")
+
+
+def where_time_goes(spectra, label, **options):
+    """Where the time of one velocity goes, and what its transforms alone cost.
+
+    Every spectrum (no template, every built-in template scored, the error budget) is measured
+    once to fill the set-up's caches, then again with every step of ``velocity.measure`` timed
+    (CPU), and the CPU time inside the FFTs (scipy.fft) and the cached spline solves counted
+    apart: what the method costs at the least as it stands (its transforms), against the Python
+    and array work around them.
+    """
+    import collections
+
+    import specan.velocity as vel
+    from scipy import fft as scipy_fft
+
+    from specan.velocity import grid
+
+    n = len(spectra)
+    for s in spectra:
+        velocity.measure(s, **options)
+    spent = collections.defaultdict(float)
+
+    def timed(func, name):
+        def wrapper(*args, **kwargs):
+            c = time.process_time()
+            try:
+                return func(*args, **kwargs)
+            finally:
+                spent[name] += time.process_time() - c
+        return wrapper
+
+    saved = {name: getattr(vel, name) for name in STEPS}
+    saved_fft = {name: getattr(scipy_fft, name) for name in ("rfft", "irfft")}
+    saved_splines = dict(grid._SPLINES)
+    for name, func in saved.items():
+        setattr(vel, name, timed(func, name))
+    for name, func in saved_fft.items():
+        setattr(scipy_fft, name, timed(func, "transforms: FFT"))
+    for key, ops in saved_splines.items():
+        grid._SPLINES[key] = grid.SplineOperators(timed(ops.forward, "transforms: spline solves"),
+                                                  timed(ops.adjoint, "transforms: spline solves"))
+    try:
+        c = time.process_time()
+        for s in spectra:
+            velocity.measure(s, **options)
+        total = time.process_time() - c
+    finally:
+        for name, func in saved.items():
+            setattr(vel, name, func)
+        for name, func in saved_fft.items():
+            setattr(scipy_fft, name, func)
+        grid._SPLINES.update(saved_splines)
+    per = {k: 1e3 * v / n for k, v in spent.items()}
+    print(f"\n== where the time goes: {n} {label}, CPU ms per spectrum (steady state; load average "
+          f"{os.getloadavg()[0]:.2f}) ==")
+    print(f"{'velocity.measure, whole':40s} {1e3 * total / n:7.2f}")
+    for name in sorted((k for k in per if not k.startswith("transforms")), key=lambda k: -per[k]):
+        if per[name] >= 0.05:
+            print(f"  {name:38s} {per[name]:7.2f}")
+    inside = sum(v for k, v in per.items() if k.startswith("transforms"))
+    for name in sorted(k for k in per if k.startswith("transforms")):
+        print(f"{name:40s} {per[name]:7.2f}")
+    print(f"{'transforms together (the floor as built)':40s} {inside:7.2f} ({100 * inside / (1e3 * total / n):.0f}% of the whole)")
 
 
 def _pull_line(label, dv, err, resel, crb_kms, ms):
@@ -354,6 +459,10 @@ if __name__ == "__main__":
         auto_speed()
     if "--speed" in chosen or not chosen:
         speed(model, 10 if quick else 40)
+    if "--floor" in chosen:
+        floor(model, 10 if quick else 40)
+    if "--night-set" in chosen:
+        night_set(10 if quick else 40)
     if "--user" in chosen:
         user_path(model, 8 if quick else 20)
     if "--other-types" in chosen:

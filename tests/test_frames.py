@@ -26,7 +26,7 @@ def _astropy(info):
 
 @pytest.mark.parametrize("site", SITES)
 def test_barycentric_correction_agrees_with_astropy(site):
-    """Within 1 m/s of ``SkyCoord.radial_velocity_correction`` (the issue's tolerance); measured: 3.2e-4 m/s."""
+    """Within 1 m/s of ``SkyCoord.radial_velocity_correction`` (the issue's tolerance); measured: 3.7e-4 m/s."""
     loc = EarthLocation.from_geodetic(site[0] * u.deg, site[1] * u.deg, site[2] * u.m)
     worst = 0.0
     for i, date in enumerate(DATES):
@@ -69,3 +69,56 @@ def test_barycentric_correction_outside_the_iers_tables_is_astropys():
     with pytest.warns(Warning):
         got = frames.barycentric_correction(info).to_value(u.m / u.s)
     assert abs(got - ref) < 0.01
+
+
+def test_barycentric_correction_through_the_day_agrees_with_astropy():
+    """The observer's velocity is interpolated within each UTC day: at times all through the day, and
+    on either side of midnight, within 1e-3 m/s of astropy's (measured: 3.7e-4 m/s on 750 cases, the
+    daily gravitational-redshift term; the interpolation alone 1e-5 m/s)."""
+    worst = 0.0
+    for k, site in enumerate(SITES[:3]):
+        loc = EarthLocation.from_geodetic(site[0] * u.deg, site[1] * u.deg, site[2] * u.m)
+        day = Time(DATES[k], scale="utc")
+        midnight = Time(np.floor(day.mjd), format="mjd", scale="utc")
+        offsets = np.concatenate([np.linspace(0.0, 1.0, 13)[1:-1] + 0.0123, [-1e-5, 1e-5, 0.99999]])
+        for i, dt in enumerate(offsets):
+            ra, dec, frame, equinox = TARGETS[i % len(TARGETS)]
+            info = ObsInfo(time_mid=midnight + dt * u.day, ra_deg=ra, dec_deg=dec, radesys=frame,
+                           equinox=equinox, site=loc)
+            worst = max(worst, abs(frames.barycentric_correction(info).to_value(u.m / u.s) - _astropy(info)))
+    assert worst < 1e-3
+
+
+@pytest.mark.parametrize("frame, equinox", (("icrs", None), ("fk5", 2000.0), ("fk5", 1975.0), ("fk4", 1950.0)))
+def test_pointing_direction_is_astropys(frame, equinox):
+    """The pointing's unit vector (ICRS axes) is ``coord.icrs.cartesian.xyz``, FK5 and FK4 pointings included."""
+    for ra, dec, _, _ in TARGETS:
+        info = ObsInfo(ra_deg=ra, dec_deg=dec, radesys=frame, equinox=equinox)
+        want = info.coord.icrs.cartesian.xyz.value
+        got = frames.pointing_direction(info)
+        assert np.max(np.abs(got - want)) < 1e-14
+        assert frames.pointing_direction(info) is got or frame == "icrs"   # transformed once per pointing
+
+
+def test_galactic_rest_frame_velocity_agrees_with_astropys_galactocentric_frame():
+    """v_GRF = rv + v_sun . n against astropy's own transformation of a star (at 1 pc, no proper motion)
+    into the pinned Galactocentric frame, its velocity projected on the Sun-star line: < 1e-6 km/s
+    (measured: 6e-11 km/s)."""
+    gc = frames.galactocentric_frame()
+    worst = 0.0
+    for ra, dec, frame, equinox in TARGETS:
+        info = ObsInfo(ra_deg=ra, dec_deg=dec, radesys=frame, equinox=equinox)
+        c = info.coord
+        kwargs = {"equinox": c.equinox} if frame != "icrs" else {}
+        for rv in (-420.0, 0.0, 37.5):
+            near, star = (SkyCoord(ra=ra * u.deg, dec=dec * u.deg, distance=d * u.pc, pm_ra_cosdec=0 * u.mas / u.yr,
+                                   pm_dec=0 * u.mas / u.yr, radial_velocity=rv * u.km / u.s, frame=frame, **kwargs)
+                          .transform_to(gc) for d in (1e-6, 1.0))
+            line = (star.cartesian.xyz - near.cartesian.xyz).to_value(u.pc)
+            line /= np.linalg.norm(line)
+            want = float(star.velocity.d_xyz.to_value(u.km / u.s) @ line)
+            got = frames.galactic_rest_frame_velocity(rv * u.km / u.s, frames.pointing_direction(info))
+            worst = max(worst, abs(got.to_value(u.km / u.s) - want))
+            assert got.to_value(u.km / u.s) == pytest.approx(
+                frames.galactic_rest_frame_velocity(rv * u.km / u.s, c).to_value(u.km / u.s), abs=1e-9)
+    assert worst < 1e-6

@@ -172,3 +172,64 @@ def test_refinement_from_a_start_finds_the_two_pass_maximum(monkeypatch):
     assert np.max(np.abs(near[0] - x)) < 1e-5 and np.max(np.abs(near[1] - h)) < 1e-9
     far = bank.refine_peaks(templates, lags, data_ffts, m, pad, starts=x + 0.7)   # outside the fine window
     assert np.array_equal(far[0], x) and np.array_equal(far[1], h)
+
+
+def test_transform_lengths_have_no_prime_factor_above_five():
+    """``fast_length`` gives the smallest length >= n whose prime factors are 2, 3 and 5 only."""
+    from specan.velocity.grid import fast_length
+
+    def smooth(k):
+        for p in (2, 3, 5):
+            while k % p == 0:
+                k //= p
+        return k == 1
+
+    for n in range(1, 7000):
+        got = fast_length(n)
+        assert got >= n and smooth(got), n
+        assert not any(smooth(k) for k in range(n, got)), n
+    assert fast_length(5889) == 6000   # not 5929 = 7^2 11^2, 2.4 times as slow a transform (measured)
+
+
+def test_block_phases_match_the_direct_ones():
+    """``turns`` (phases as products of two short rows) equals exp(i angle f) to rounding: within a few
+    units in the last place of the phase angle itself (|angle| f eps), as the direct values are."""
+    from specan.velocity.grid import turns
+
+    nf = 3001
+    angles = 2.0 * np.pi / 6000.0 * np.array([338.37, -12.5, 0.0, 4000.25, 1e-7])
+    # the exact phases of these (double) angles, in extended precision where the platform has it
+    phase = angles.astype(np.longdouble)[:, None] * np.arange(nf, dtype=np.longdouble)
+    exact = np.cos(phase).astype(float) + 1j * np.sin(phase).astype(float)
+    scale = np.finfo(float).eps * (np.abs(angles)[:, None] * np.arange(nf) + 1.0)
+    got = turns(angles, nf)
+    assert got.shape == (angles.size, nf)
+    assert np.all(np.abs(got - exact) <= 8 * scale)
+    assert np.all(np.abs(turns(angles[0], nf) - exact[0]) <= 8 * scale[0])
+    assert np.all(np.abs(turns(angles[0], 5) - exact[0, :5]) <= 8 * scale[0, :5])
+
+
+def test_smoothed_coverage_is_the_high_pass_weight():
+    """The cached coverage equals the smoothed mask floored at 1e-3, and is not writable (shared)."""
+    from specan.velocity.grid import gauss_smooth, smoothed_coverage
+
+    valid = np.ones(2000, bool)
+    valid[500:520] = False
+    valid[:40] = False
+    got = smoothed_coverage(valid, 25.0)
+    assert np.array_equal(got, np.maximum(gauss_smooth(valid.astype(float), 25.0), 1e-3))
+    assert smoothed_coverage(valid.copy(), 25.0) is got
+    assert not got.flags.writeable
+
+
+def test_distance_to_invalid_is_scipys_distance_transform():
+    """The one-dimensional distance to the nearest invalid pixel (ends invalid) is scipy's exact transform."""
+    from scipy.ndimage import distance_transform_edt
+
+    from specan.velocity.grid import distance_to_invalid
+
+    rng = np.random.default_rng(4)
+    for _ in range(200):
+        valid = rng.random(int(rng.integers(1, 400))) > rng.random() * 0.6
+        want = distance_transform_edt(np.pad(valid, 1, constant_values=False))[1:-1]
+        assert np.array_equal(distance_to_invalid(valid), want)

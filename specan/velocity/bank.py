@@ -19,6 +19,7 @@ from typing import NamedTuple
 import numpy as np
 from scipy import fft as sfft
 
+from .grid import turns
 from .prepared import prepare_builtin
 
 __all__ = ["TemplateBank", "BankScores", "short_length", "template_bank", "score_bank", "fourier_rows",
@@ -139,13 +140,18 @@ def score_bank(search, bank, data_short):
     # once (a view, then one copy), the coverage sums once per distinct (coverage, lag)
     peak_lag = s[j]
     start = pad - peak_lag              # lag s uses template pixels x + pad - s
-    c2t = np.sum(_windows(bank.T, n)[rows, start] * a2, axis=1)
-    c2t2 = np.sum(_windows(bank.T2, n)[rows, start] * a2, axis=1)
+    # (einsum's fused multiply-and-sum, not BLAS: no temporary product, and bit-identical whatever
+    # the thread count; a product then a sum over the gathered windows took 17 times as long)
+    c2t = np.einsum("kn,n->k", _windows(bank.T, n)[rows, start], a2)
+    c2t2 = np.einsum("kn,n->k", _windows(bank.T2, n)[rows, start], a2)
     c2v, c1v, c3v = (np.empty(len(bank)) for _ in range(3))
-    pairs, which = np.unique(np.stack([bank.groups, start]), axis=1, return_inverse=True)
-    cov = _windows(bank.V_unique, n)[pairs[0], pairs[1]]                       # (P, n)
+    # distinct (coverage, start) pairs, as one integer each (numpy's unique over columns goes through
+    # structured records: ten times slower); sorted as the pairs would be
+    span = bank.T.shape[1] + 1
+    keys, which = np.unique(bank.groups * span + start, return_inverse=True)
+    cov = _windows(bank.V_unique, n)[keys // span, keys % span]                # (P, n)
     for out, a in ((c2v, a2), (c1v, a1), (c3v, a3)):
-        out[:] = np.sum(cov * a, axis=1)[np.asarray(which).ravel()]
+        out[:] = np.einsum("pn,n->p", cov, a)[np.asarray(which).ravel()]
     c2v = np.maximum(c2v, 1e-300)
     e = c2t2 - c2t ** 2 / c2v
     d = c3v - c1v ** 2 / c2v
@@ -194,7 +200,7 @@ def _phases(m, nf, k):
     (a common part times cached offset phases: one complex exponential per frequency)."""
     k = np.asarray(k, float)
     k0 = float(k[len(k) // 2])
-    base = np.exp(2j * np.pi * np.arange(nf) * k0 / m)
+    base = turns(2.0 * np.pi * k0 / m, nf)
     return base[None, :] * _offset_phases(m, nf, tuple(np.round(k - k0, 12)))
 
 
@@ -272,9 +278,9 @@ def short_side(search):
 REFINE_OFFSETS = ((-1.0, -0.5, 0.0, 0.5, 1.0), (-0.2, -0.1, 0.0, 0.1, 0.2))
 
 
-def _stacked(arrays):
-    """(T, nf) array of 1-D FFTs of different band limits, zero-padded to the longest."""
-    nf = max(x.size for x in arrays)
+def _stacked(arrays, nf=None):
+    """(T, nf) array of 1-D FFTs of different band limits, zero-padded to ``nf`` (default: the longest)."""
+    nf = max(x.size for x in arrays) if nf is None else nf
     out = np.zeros((len(arrays), nf), complex)
     for i, x in enumerate(arrays):
         out[i, :x.size] = x
@@ -313,25 +319,25 @@ def _refine(templates, lags, data_ffts, m, pad, passes):
     from .correlation import Correlation
 
     bands = [t.band_ffts(m) for t in templates]
-    FT, FT2, FV = (_stacked([b[i] for b in bands]) for i in range(3))
-    nf = max(FT.shape[1], FT2.shape[1], FV.shape[1])
+    nf = max(x.size for b in bands for x in b)
+    FT, FT2, FV = (_stacked([b[i] for b in bands], nf) for i in range(3))
     A = [a[:nf] for a in data_ffts]
     x0 = np.asarray(lags, float)
-    f = np.arange(nf)
-    # the six correlation rows of every template, (6, T, nf), the same in both passes: made once
-    X = np.zeros((6, x0.size, nf), complex)
-    for r, (a, B) in enumerate(((A[0], FT), (A[1], FT), (A[1], FT2), (A[0], FV), (A[2], FV), (A[1], FV))):
-        X[r, :, :B.shape[1]] = np.conj(a[:B.shape[1]])[None, :] * B
     height = curv = np.full(x0.size, np.nan)
+    pairs = ((0, 0), (1, 0), (1, 1), (0, 2), (2, 2), (1, 2))   # (data, template) arrays of the six rows
     for offs in passes:
-        # the phase of lag s = x0 + o at index k = pad - s is a per-template part (one angle per
-        # frequency) times a cached per-offset part: the first goes into the rows, and
-        # Re(Y conj(p)) = Y.re p.re + Y.im p.im is one real sum over the interleaved (re, im)
-        # layout of both (numpy's einsum, not BLAS: bit-identical whatever the thread count)
-        theta = (2.0 * np.pi / m) * np.outer(pad - x0, f)                    # (T, nf)
-        Y = X * (np.cos(theta) + 1j * np.sin(theta))[None, :, :]
+        # row (a, b) at lag s = x0 + o (index k = pad - s) is Re sum_f conj(A_a) B_b e^{i theta_t f} conj(p_o):
+        # the per-template phase e^{i theta_t f} goes into the three template arrays, the cached
+        # per-offset phase p_o (inverse-DFT weights included) into the three data arrays, and
+        # Re(x conj(y)) = x.re y.re + x.im y.im is one real sum over the interleaved (re, im)
+        # layout of x = B_b e^{i theta} and y = A_a p_o (numpy's einsum, not BLAS: bit-identical
+        # whatever the thread count). Six (T, nf) products instead of six (6, T, nf) arrays.
+        turn = turns((2.0 * np.pi / m) * (pad - x0), nf)                     # (T, nf)
         p = _offset_phases(m, nf, tuple(offs))                                # (L, nf), cached
-        c, _ = Correlation.combine(np.einsum("rtf,lf->rtl", Y.view(np.float64), p.view(np.float64)))
+        tv = [(B * turn).view(np.float64) for B in (FT, FT2, FV)]
+        dv = [(a[None, :] * p).view(np.float64) for a in A]
+        rows = np.stack([np.einsum("tf,lf->tl", tv[j], dv[i]) for i, j in pairs])
+        c, _ = Correlation.combine(rows)
         ok = np.all(np.isfinite(c), axis=1)
         dx, h, cv = poly_peaks(offs, np.where(ok[:, None], c, 0.0))
         x0 = np.where(ok, x0 + dx, x0)

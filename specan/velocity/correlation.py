@@ -19,7 +19,7 @@ import numpy as np
 from scipy import fft as sfft
 
 from ..errors import AnalysisError
-from .grid import LagWindow, highpass
+from .grid import LagWindow, highpass, turns
 
 __all__ = ["ObservedSide", "PeakSearch", "Correlation", "Peak", "PeakCCF", "correlation_arrays",
            "observed_side", "best_lag", "integer_peak", "quick_peak", "coverage_rows", "template_peaks",
@@ -87,11 +87,19 @@ class Correlation:
         self.X = np.stack([np.conj(A1) * BT, np.conj(A2) * BT, np.conj(A2) * BT2,
                            np.conj(A1) * BV, np.conj(A3) * BV, np.conj(A2) * BV])
         self.freq = np.arange(self.X.shape[1])
-        wts = np.full(self.X.shape[1], 2.0)
-        wts[0] = 1.0
-        if m % 2 == 0:
-            wts[-1] = 1.0
-        self.Xw = self.X * wts
+        self._xw = None
+
+    @property
+    def Xw(self):
+        """The cross-spectra weighted for a real inverse DFT (2, and 1 at zero and Nyquist frequency),
+        made on first use: only :meth:`at` needs them."""
+        if self._xw is None:
+            wts = np.full(self.X.shape[1], 2.0)
+            wts[0] = 1.0
+            if self.m % 2 == 0:
+                wts[-1] = 1.0
+            self._xw = self.X * wts
+        return self._xw
 
     @staticmethod
     def combine(c):
@@ -104,13 +112,14 @@ class Correlation:
         with np.errstate(invalid="ignore", divide="ignore"):
             return num / np.sqrt(np.clip(e, 1e-300, None) * np.clip(d, 1e-300, None)), c2v
 
-    def integer_lags(self, frac=0.0):
-        """Normalised CCF at lags s = pad - k + ... for k = 0..m-1, shifted by ``frac`` pixels of s."""
+    def integer_lags(self, frac=0.0, k=None):
+        """Normalised CCF at lags s = pad - k + ... for k = 0..m-1 (or the indices ``k`` only), shifted
+        by ``frac`` pixels of s."""
         X = self.X
         if frac:
-            X = X * np.exp(-2j * np.pi * self.freq * frac / self.m)
+            X = X * turns(-2.0 * np.pi * frac / self.m, X.shape[1])
         c = sfft.irfft(X, self.m, axis=1)
-        return self.combine(c)
+        return self.combine(c if k is None else c[:, k])
 
     def at(self, s):
         """Normalised CCF at fractional lags ``s`` (array) by Fourier-series evaluation."""
@@ -229,11 +238,11 @@ def correlate(search, template, where=None):
 def ccf_about(corr, s0, half):
     """Normalised CCF at s0 + j for integer j in [-half, half] (exact fractional centring)."""
     frac = s0 - math.floor(s0)
-    ccf, c2v = corr.integer_lags(frac=frac)
     base = math.floor(s0)
     j = np.arange(-half, half + 1)
     k = (corr.pad - (base + j)) % corr.m  # lag s = base + frac + j  <->  index pad - base - j after shift
-    return j, ccf[k], c2v[k]
+    ccf, c2v = corr.integer_lags(frac=frac, k=k)
+    return j, ccf, c2v
 
 
 def fwhm_pixels(j, vals, h):
@@ -260,11 +269,11 @@ def single_star_ccf(template, valid, weight, pad, m, s0, half):
     so edge and gap effects of those steps are in the model, not mistaken for noise.
     """
     n = valid.size
-    theta = (-2.0 * np.pi * (s0 - pad) / m) * np.arange(m // 2 + 1)
+    shift = turns(-2.0 * np.pi * (s0 - pad) / m, m // 2 + 1)
     # template(x - s0) on the data window, and where the template has gaps (its own tellurics,
     # its ends) the model star is unknown: those pixels are left out rather than treated as
     # continuum (both shifted in one inverse transform of the template's cached spectra)
-    model, known = sfft.irfft(template.model_ffts(m) * (np.cos(theta) + 1j * np.sin(theta)), m, axis=1)[:, :n]
+    model, known = sfft.irfft(template.model_ffts(m) * shift, m, axis=1)[:, :n]
     known = known > 0.5
     ok = valid & known
     model = highpass(model, template.hp_sigma, ok)

@@ -18,7 +18,10 @@ import astropy.units as u
 from .._offline import IERS_NOTE
 from ..doppler import C_KMS, doppler_factor
 from ..doppler import velocity_kms as _kms
-from ..frames import barycentric_correction, galactic_frame_note, galactic_rest_frame_velocity, missing_for_barycentric
+from ..frames import (barycentric_correction, galactic_frame_note, missing_for_barycentric, pointing_direction,
+                      sun_motion_toward_kms)
+
+_KMS = u.km / u.s   # made once (composing a unit costs tens of microseconds)
 
 __all__ = ["FrameVelocities", "template_factor", "barycentric_factor", "galactic_rest_frame", "apply_frames"]
 
@@ -72,13 +75,13 @@ def galactic_rest_frame(rv, info, *, topocentric, high_velocity, escape_speed, n
     if info.ra_deg is None or info.dec_deg is None:
         notes.append("no Galactic rest-frame velocity: pointing unknown (header RA/DEC or --ra/--dec)")
         return None, ()
-    v_grf = galactic_rest_frame_velocity(rv * u.km / u.s, info.coord).value
+    v_grf = rv + sun_motion_toward_kms(pointing_direction(info))   # frames.galactic_rest_frame_velocity, in floats
     notes.append(galactic_frame_note())
     if topocentric:
         notes.append("v_grf from the topocentric velocity: uncertain by up to 30 km/s (Earth's orbit)")
     notes.append("v_grf is the line-of-sight component only: a lower bound on the star's Galactic speed")
-    hv = u.Quantity(high_velocity, u.km / u.s).value
-    vesc = u.Quantity(escape_speed, u.km / u.s).value
+    hv = u.Quantity(high_velocity, _KMS).value
+    vesc = u.Quantity(escape_speed, _KMS).value
     flags = []
     if abs(v_grf) > hv:
         flags.append("high_velocity")

@@ -10,6 +10,7 @@ and to every template.
 
 from __future__ import annotations
 
+import functools
 import math
 from dataclasses import dataclass
 from typing import NamedTuple
@@ -18,7 +19,6 @@ import astropy.units as u
 import numpy as np
 from scipy import fft as sfft
 from scipy.interpolate import make_interp_spline
-from scipy.ndimage import distance_transform_edt
 
 from ..doppler import doppler_factor
 from ..doppler import velocity_kms as _kms
@@ -27,8 +27,8 @@ from ..obsinfo import ObsInfo, get_info, wavelength_in
 
 __all__ = ["SPLINE_K", "COVER_TAPER", "ObservedGrid", "TemplateGrid", "LagWindow", "normalised",
            "observe_on_grid", "lattice_step", "lag_window", "kms_per_pixel", "sigma_array", "hot_pixels",
-           "noise_from_flux",
-           "dersnr_sigma", "gauss_smooth", "highpass", "cover_taper", "SplineOperators", "spline_operators"]
+           "noise_from_flux", "fast_length", "turns", "distance_to_invalid",
+           "dersnr_sigma", "gauss_smooth", "smoothed_coverage", "highpass", "cover_taper", "SplineOperators", "spline_operators"]
 
 #: Order of the spline that resamples spectra onto the ln-lambda grid.
 SPLINE_K = 3
@@ -180,13 +180,27 @@ def lattice_step(step):
     return 2.0 ** (math.floor(math.log2(step) * STEP_LATTICE) / STEP_LATTICE)
 
 
+def distance_to_invalid(valid):
+    """Pixels from each pixel to the nearest invalid one, the ends counting as invalid (0 where invalid).
+
+    What ``scipy.ndimage.distance_transform_edt`` of the mask padded with one invalid pixel at
+    each end gives; in one dimension the nearest invalid pixel on either side is a running
+    maximum of their indices, a tenth of the time of the general transform.
+    """
+    n = valid.size
+    index = np.arange(n)
+    before = np.maximum.accumulate(np.where(valid, -1, index))           # last invalid at or before
+    after = np.minimum.accumulate(np.where(valid, n, index)[::-1])[::-1]   # first invalid at or after
+    return np.minimum(index - before, after - index).astype(float)
+
+
 def _edge_taper(valid, first=0, last=None):
     """Weights rising as a cosine over ~ 2% of the data's range (grid points ``first`` to ``last``)
     at both ends and 5 pixels at gap edges."""
     n = valid.size
     last = n - 1 if last is None else last
     ntap_end = max(5, int(0.02 * (last - first + 1)))
-    dist = distance_transform_edt(np.pad(valid, 1, constant_values=False))[1:-1]
+    dist = distance_to_invalid(valid)
     edge = np.minimum(np.arange(n) - first + 1, last - np.arange(n) + 1)
     taper = np.clip(np.minimum(dist / 5.0, edge / ntap_end), 0.0, 1.0)
     return np.where(valid, 0.5 - 0.5 * np.cos(np.pi * taper), 0.0)
@@ -334,9 +348,55 @@ def lag_window(observed, vmax, resolving_power, highpass):
     # FFT length just above the template's serves every correlation: no lag ever wraps around
     pad = half + smax + COVER_TAPER + 4
     ln0 = observed.grid[0] - pad * step
-    m = sfft.next_fast_len(n + 2 * pad, real=True)
+    m = fast_length(n + 2 * pad)
     return LagWindow(step=step, n=n, vmax_kms=vmax_kms, smax=smax, half=half, pad=pad, m=m,
                      template_grid=TemplateGrid(ln0=ln0, step=step, n=n + 2 * pad, hp_sigma=hp))
+
+
+@functools.lru_cache(maxsize=256)
+def fast_length(n):
+    """The smallest transform length >= ``n`` with no prime factor above 5.
+
+    ``scipy.fft.next_fast_len`` also offers factors 7 and 11, and pocketfft is much slower on
+    those: 5929 = 7^2 11^2 points took 53 us a row against 22 us at 6000 = 2^4 3 5^3 (inverse
+    real transforms on this machine, measured), and such lengths came up for the set-ups of a
+    survey. Written here because scipy has no option to leave 7 and 11 out.
+    """
+    best = None
+    p5 = 1
+    while p5 < 2 * n:
+        p35 = p5
+        while p35 < 2 * n:
+            # the smallest power of two taking p35 to n or beyond
+            m = p35 << max(0, (math.ceil(n / p35) - 1).bit_length())
+            best = m if best is None or m < best else best
+            p35 *= 3
+        p5 *= 5
+    return best
+
+
+#: Frequencies per block of :func:`turns` (our choice: ~sqrt of a spectrum's frequencies).
+TURN_BLOCK = 64
+
+
+def turns(angle, nf):
+    """exp(i angle f) for f = 0 .. nf - 1, a row per angle: (nf,) for a scalar ``angle``, (T, nf) for T.
+
+    As the product of exp(i angle TURN_BLOCK a) and exp(i angle b) over f = TURN_BLOCK a + b: two
+    short rows of cosines and sines instead of one per frequency (the phases of every shift cost
+    more than the products they enter); within a few units in the last place of the direct values.
+    """
+    angle = np.asarray(angle, float)
+    blocks = -(-nf // TURN_BLOCK)
+    outer = angle[..., None] * (TURN_BLOCK * np.arange(blocks))
+    inner = angle[..., None] * np.arange(TURN_BLOCK)
+    hi = np.empty(outer.shape, complex)
+    lo = np.empty(inner.shape, complex)
+    np.cos(outer, out=hi.real)
+    np.sin(outer, out=hi.imag)
+    np.cos(inner, out=lo.real)
+    np.sin(inner, out=lo.imag)
+    return (hi[..., :, None] * lo[..., None, :]).reshape(angle.shape + (blocks * TURN_BLOCK,))[..., :nf]
 
 
 def kms_per_pixel(s, step):
@@ -356,12 +416,40 @@ def gauss_smooth(x, sigma):
     (no truncation at 4 sigma).
     """
     n = x.shape[0]
-    size = sfft.next_fast_len(n + int(math.ceil(8 * sigma)))  # zero padding: no wrap-around
-    k = np.arange(size // 2 + 1) / size
-    kern = np.exp(-2.0 * (np.pi * sigma * k) ** 2)  # Fourier transform of the Gaussian
+    size = fast_length(n + int(math.ceil(8 * sigma)))  # zero padding: no wrap-around
+    kern = _gauss_kernel(size, float(sigma))
     if x.ndim == 2:
         kern = kern[:, None]
     return sfft.irfft(sfft.rfft(x, size, axis=0) * kern, size, axis=0)[:n]
+
+
+@functools.lru_cache(maxsize=32)
+def _gauss_kernel(size, sigma):
+    """Fourier transform of a Gaussian of ``sigma`` pixels at the ``size // 2 + 1`` frequencies of a real
+    transform of length ``size`` (read-only: one per set-up, shared)."""
+    k = np.arange(size // 2 + 1) / size
+    kern = np.exp(-2.0 * (np.pi * sigma * k) ** 2)
+    kern.flags.writeable = False
+    return kern
+
+
+_COVERAGE = {}
+
+
+def smoothed_coverage(valid, sigma):
+    """``gauss_smooth(valid, sigma)`` floored at 1e-3: the high-pass filter's local weight, the
+    same for a spectrum's data and its error propagation (kept for the last few coverages)."""
+    import hashlib
+
+    key = (hashlib.sha1(np.ascontiguousarray(valid).tobytes()).hexdigest(), valid.size, float(sigma))
+    found = _COVERAGE.get(key)
+    if found is None:
+        found = np.maximum(gauss_smooth(valid.astype(float), sigma), 1e-3)
+        found.flags.writeable = False
+        while len(_COVERAGE) >= 8:   # oldest out first; the array is returned, not looked up again
+            _COVERAGE.pop(next(iter(_COVERAGE)), None)
+        _COVERAGE[key] = found
+    return found
 
 
 def highpass(x, sigma, valid):
@@ -378,13 +466,13 @@ def highpass(x, sigma, valid):
     v = valid.astype(float)
     vv = v if x.ndim == 1 else v[:, None]
     num = gauss_smooth(x * vv, sigma)
-    den = gauss_smooth(v, sigma)
+    den = smoothed_coverage(valid, sigma)
     den = den if x.ndim == 1 else den[:, None]
-    low = num / np.maximum(den, 1e-3)
+    low = num / den
     return (x - low) * vv
 
 
 def cover_taper(valid, ntap=COVER_TAPER):
     """Coverage weights of a template: 1 inside, a cosine over ``ntap`` pixels at every edge, 0 outside."""
-    dist = distance_transform_edt(np.pad(valid, 1, constant_values=False))[1:-1]
+    dist = distance_to_invalid(valid)
     return np.where(valid, 0.5 - 0.5 * np.cos(np.pi * np.clip(dist / ntap, 0, 1)), 0.0)

@@ -18,7 +18,7 @@ import numpy as np
 from scipy import fft as sfft
 
 from .correlation import Correlation
-from .grid import gauss_smooth, highpass, kms_per_pixel, spline_operators
+from .grid import gauss_smooth, highpass, kms_per_pixel, smoothed_coverage, spline_operators, turns
 
 __all__ = ["TonryDavis", "VelocityErrors", "SegmentErrors", "tonry_davis", "resample_error", "estimate_errors",
            "reported_error", "segment_errors", "zero_point_error", "content_seed", "spline_adjoint", "ErrorBudget", "error_budget"]
@@ -198,7 +198,7 @@ def _highpass_adjoint(y, sigma, valid):
     v = valid.astype(float)[:, None]
     if not sigma:
         return v * y
-    den = np.maximum(gauss_smooth(valid.astype(float), sigma), 1e-3)[:, None]
+    den = smoothed_coverage(valid, sigma)[:, None]
     return v * y - v * gauss_smooth(v * y / den, sigma)
 
 
@@ -247,33 +247,41 @@ def _offset_phases(offsets, m, nf):
 
 def _shift_phases(k0, offsets, m, nf):
     """(L, nf) exp(2 pi i f (k0 + o) / m): one angle per frequency, times the cached offset phases."""
-    theta = (2.0 * np.pi / m) * k0 * np.arange(nf)
-    return (np.cos(theta) + 1j * np.sin(theta))[None, :] * _offset_phases(tuple(offsets), m, nf)
+    return turns((2.0 * np.pi / m) * k0, nf)[None, :] * _offset_phases(tuple(offsets), m, nf)
 
 
-def _template_segments(search, template, s0, m, starts, h):
-    """(offsets, good, gradients) of one template's segment velocities about its peak ``s0``.
-
-    ``offsets`` (K + 1: the segments, then the whole) are vertex offsets in pixels; ``gradients``
-    (n, K + 1) their derivatives with respect to the data on the grid (zero outside each segment).
-    """
+def _shifted_templates(search, members, m, h):
+    """(T, 3, 3, n): each member template's arrays T, T^2 (weighted) and V on the data window at lags
+    s0 + h, s0 and s0 - h (s0 its peak), all in one inverse transform (lag s uses template pixels
+    x + pad - s)."""
     lags = search.lags
-    n, pad = lags.n, lags.pad
+    F = np.stack([np.stack(template.ffts(m)) for template, _, _ in members])         # (T, 3, nf)
+    ph = np.stack([_shift_phases(lags.pad - s0, (h, 0.0, -h), m, F.shape[-1]) for _, s0, _ in members])
+    return sfft.irfft(F[:, :, None, :] * ph[:, None, :, :], m, axis=-1)[..., :lags.n]
+
+
+def _template_segments(search, shifted, starts, h):
+    """(offsets, good, segment gradients, whole gradients) of the member templates' segment velocities
+    about their peaks, from their :func:`_shifted_templates`.
+
+    ``offsets`` and ``good`` (T, K + 1: the segments, then the whole) are vertex offsets in pixels;
+    the gradients (T, n) are their derivatives with respect to the data on the grid: at each pixel,
+    that of its own segment's vertex (the others' are zero there), and that of the whole's.
+    """
+    n = search.lags.n
     a1, a2, a3 = search.side.arrays
     w = search.side.weight
-    F = np.stack(template.ffts(m))                                   # (3, nf): T, T2, V
-    ph = _shift_phases(pad - s0, (h, 0.0, -h), m, F.shape[1])  # lag s uses template pixels x + pad - s
-    bT, bT2, bV = sfft.irfft(F[:, None, :] * ph[None, :, :], m, axis=-1)[..., :n]  # each (3 lags, n)
+    bT, bT2, bV = shifted[:, 0], shifted[:, 1], shifted[:, 2]                         # each (T, 3 lags, n)
 
-    def sums(x):  # (3 lags, n) -> (3 lags, segments + whole)
+    def sums(x):  # (T, 3 lags, n) -> (T, 3 lags, segments + whole)
         return np.concatenate([np.add.reduceat(x, starts, axis=-1), np.sum(x, axis=-1, keepdims=True)], axis=-1)
 
     rows = (sums(a1 * bT), sums(a2 * bT), sums(a2 * bT2), sums(a1 * bV), sums(a3 * bV), sums(a2 * bV))
-    c, _ = Correlation.combine(rows)                                  # (3 lags, K + 1)
+    c, _ = Correlation.combine(rows)                                  # (T, 3 lags, K + 1)
     with np.errstate(invalid="ignore"):  # a segment with no overlap gives inf - inf: marked not good below
-        den = c[0] - 2.0 * c[1] + c[2]
+        den = c[:, 0] - 2.0 * c[:, 1] + c[:, 2]
     good = np.isfinite(den) & (den < 0)
-    offsets = np.where(good, h * (c[0] - c[2]) / (2.0 * np.where(good, den, -1.0)), np.nan)
+    offsets = np.where(good, h * (c[:, 0] - c[:, 2]) / (2.0 * np.where(good, den, -1.0)), np.nan)
     curv = den / h ** 2
     # derivative of each vertex with respect to the data: -(dc(+h) - dc(-h)) / (2h c''), with
     # dc/dd = w (T - mu V) / sqrt(E D) (mu the template's mean over the overlap, E and D the
@@ -281,17 +289,17 @@ def _template_segments(search, template, s0, m, starts, h):
     c2v = np.maximum(rows[5], 1e-300)
     mu = rows[1] / c2v
     energy = np.clip(rows[2] - rows[1] ** 2 / c2v, 1e-300, None)
-    data_energy = np.clip(rows[4][1] - rows[3][1] ** 2 / c2v[1], 1e-300, None)
+    data_energy = np.clip(rows[4][:, 1] - rows[3][:, 1] ** 2 / c2v[:, 1], 1e-300, None)
+    # per template and segment (T, K + 1): gradient = w (a+ T(+h) - b+ V(+h) - a- T(-h) + b- V(-h)),
+    # the coefficients made per segment and only then spread over its pixels
+    scale = np.where(good, -1.0 / (2.0 * h * np.where(good, curv, -1.0) * np.sqrt(data_energy)), 0.0)
+    a_plus, a_minus = scale / np.sqrt(energy[:, 2]), scale / np.sqrt(energy[:, 0])
+    coef = np.stack([a_plus, mu[:, 2] * a_plus, a_minus, mu[:, 0] * a_minus])      # (4, T, K + 1)
     k = starts.size
-    ends = np.append(starts[1:], n)
-    grads = np.zeros((n, k + 1))
-    for col in (np.repeat(np.arange(k), ends - starts), np.full(n, k)):
-        plus = (bT[2] - mu[2][col] * bV[2]) / np.sqrt(energy[2][col])
-        minus = (bT[0] - mu[0][col] * bV[0]) / np.sqrt(energy[0][col])
-        scale = np.where(good[col], -1.0 / (2.0 * h * np.where(good[col], curv[col], -1.0)
-                                            * np.sqrt(data_energy[col])), 0.0)
-        grads[np.arange(n), col] = w * (plus - minus) * scale
-    return offsets, good, grads
+    lengths = np.diff(np.append(starts, n))
+    seg, whole = np.repeat(coef[..., :k], lengths, axis=-1), coef[..., k:]         # (4, T, n), (4, T, 1)
+    grads = [w * (bT[:, 2] * c[0] - bV[:, 2] * c[1] - bT[:, 0] * c[2] + bV[:, 0] * c[3]) for c in (seg, whole)]
+    return offsets, good, grads[0], grads[1]
 
 
 def segment_errors(observed, search, members, m, resels):
@@ -312,22 +320,24 @@ def segment_errors(observed, search, members, m, resels):
     lags = search.lags
     n = lags.n
     h = 0.5
-    best, s_best, _ = members[0]
-    F = np.stack(best.ffts(m)[:1])
-    ph = _shift_phases(lags.pad - s_best, (h, -h), m, F.shape[1])
-    slope = sfft.irfft(F * ph, m, axis=-1)[:, :n]
-    starts = _segments(search.side.weight * (slope[1] - slope[0]) ** 2, int(np.clip(resels // 25, 2, 10)),
-                       n / max(resels, 1.0))
+    shifted = _shifted_templates(search, members, m, h)
+    slope = shifted[0, 0, 0] - shifted[0, 0, 2]     # the best template at s0 + h minus at s0 - h
+    starts = _segments(search.side.weight * slope ** 2, int(np.clip(resels // 25, 2, 10)), n / max(resels, 1.0))
     total_w = sum(wt for _, _, wt in members)
     mean_lag = sum(wt * s0 for _, s0, wt in members) / total_w
     offsets = np.zeros(starts.size + 1)
     good = np.ones(starts.size + 1, bool)
+    g_seg, g_whole = np.zeros(n), np.zeros(n)
+    off, ok, gs, gw = _template_segments(search, shifted, starts, h)
+    for i, (_, s0, wt) in enumerate(members):
+        offsets += wt / total_w * (s0 + np.where(ok[i], off[i], 0.0) - mean_lag)
+        good &= ok[i]
+        g_seg += wt / total_w * gs[i]
+        g_whole += wt / total_w * gw[i]
+    # (n, K + 1): each segment's vertex depends on its own pixels only, the whole's on all
     grads = np.zeros((n, starts.size + 1))
-    for template, s0, wt in members:
-        off, ok, g = _template_segments(search, template, s0, m, starts, h)
-        offsets += wt / total_w * (s0 + np.where(ok, off, 0.0) - mean_lag)
-        good &= ok
-        grads += wt / total_w * g
+    grads[np.arange(n), np.repeat(np.arange(starts.size), np.diff(np.append(starts, n)))] = g_seg
+    grads[:, -1] = g_whole
     u = _highpass_adjoint(grads, lags.hp_sigma, observed.valid)
     z = spline_adjoint(observed.spline_x, observed.grid)(u)          # (native pixels, K + 1)
     sig = np.sqrt(np.sum((observed.native_sigma[:, None] * z) ** 2, axis=0))
