@@ -22,7 +22,7 @@ from scipy import fft as sfft
 from .grid import turns
 from .prepared import prepare_builtin
 
-__all__ = ["TemplateBank", "BankScores", "short_length", "template_bank", "score_bank", "fourier_rows",
+__all__ = ["TemplateBank", "BankScores", "short_length", "template_bank", "score_bank",
            "WEIGHT_SCALE", "MAX_MIXTURE", "MIN_WEIGHT", "mixture_weights", "fit_matrix", "poly_peaks",
            "short_side", "refine_peaks", "REFINE_OFFSETS"]
 
@@ -48,7 +48,7 @@ class TemplateBank:
     """Prepared built-in templates of one set-up, stacked: names, candidates, arrays and FFTs.
 
     ``T``, ``T2`` and ``V`` are (K, N) arrays (high-passed template times coverage, its square
-    times coverage, coverage); ``FT``, ``FT2`` their real FFTs at length ``m`` truncated to the
+    times coverage, coverage); ``FT`` their real FFTs at length ``m`` truncated to the
     ``nf`` frequencies where any template has power; coverages are grouped (``groups`` maps
     each template to a row of ``V_unique``/``FV``).
     """
@@ -74,7 +74,6 @@ class TemplateBank:
         keep = np.flatnonzero(power > 1e-14 * power.max())
         self.nf = int(keep[-1]) + 1 if keep.size else FT.shape[1]
         self.FT = np.ascontiguousarray(FT[:, :self.nf])
-        self.FT2 = np.ascontiguousarray(sfft.rfft(self.T2, m, axis=1))
         self.FV = np.ascontiguousarray(sfft.rfft(unique, m, axis=1))
 
     def __len__(self):
@@ -111,7 +110,7 @@ def score_bank(search, bank, data_short):
     The cross term of every template comes from one product and one 2-D inverse FFT; the
     normalisation (template energy and data energy over the overlap) varies slowly with lag
     and is taken at each template's integer peak by direct sums. Heights rank and weight the
-    templates; velocities come from :func:`fourier_rows` (exact normalisation at every lag).
+    templates; velocities come from :func:`refine_peaks` (exact normalisation at every lag).
     ``data_short`` holds the rFFTs of the data arrays at the bank's length.
     """
     side, lags = search.side, search.lags
@@ -193,36 +192,6 @@ def _offset_phases(m, nf, offsets):
     if m % 2 == 0 and nf == m // 2 + 1:
         ph[:, -1] *= 0.5
     return ph
-
-
-def _phases(m, nf, k):
-    """(L, nf) weights 2 exp(2 pi i f k / m) / m of a real inverse DFT at fractional indices k
-    (a common part times cached offset phases: one complex exponential per frequency)."""
-    k = np.asarray(k, float)
-    k0 = float(k[len(k) // 2])
-    base = turns(2.0 * np.pi * k0 / m, nf)
-    return base[None, :] * _offset_phases(m, nf, tuple(np.round(k - k0, 12)))
-
-
-def fourier_rows(data_short, FT, FT2, FV, m, pad, lags_s):
-    """The six correlation rows (see :class:`~.correlation.Correlation`) at fractional lags.
-
-    ``FT``, ``FT2``, ``FV``: (T, nf) FFTs of T templates' arrays (any nf up to m//2+1: the
-    templates' band limit); returns (6, T, L). Sums are numpy's own (elementwise product and
-    a pairwise sum), never BLAS: BLAS reductions change their order with the thread count,
-    and the result would not be bit-identical between ways of running.
-    """
-    A1, A2, A3 = data_short
-    ph_full = _phases(m, max(FT.shape[1], FT2.shape[1], FV.shape[1]), pad - np.asarray(lags_s, float))
-
-    def rows(A, B):
-        nb = B.shape[1]
-        x = np.conj(A[:nb])[None, :] * B                  # (T, nf)
-        pr, pi = ph_full.real[:, :nb], ph_full.imag[:, :nb]
-        # Re(x p) summed over frequencies, contiguous sums per lag
-        return np.stack([np.sum(x.real * pr[i] - x.imag * pi[i], axis=1) for i in range(pr.shape[0])], axis=1)
-
-    return np.stack([rows(A1, FT), rows(A2, FT), rows(A2, FT2), rows(A1, FV), rows(A3, FV), rows(A2, FV)])
 
 
 @functools.lru_cache(maxsize=16)
