@@ -294,11 +294,11 @@ def voigt_batch(data, problems, max_iter=MAX_ITER, decrement=DECREMENT, cost_tol
     for _ in range(max_iter):
         if not act.size:
             break
-        grad = np.einsum("bpn,bp->bn", J, R)
+        grad = (R[:, None, :] @ J)[:, 0]
         jtj = J.transpose(0, 2, 1) @ J
         # on a bound with the gradient pushing outward: held there this step
         held = ~REAL | ((P <= near_lo) & (grad > 0)) | ((P >= near_hi) & (grad < 0))
-        diag = np.einsum("bnn->bn", jtj)
+        diag = jtj.diagonal(axis1=1, axis2=2)
         # Marquardt's scaling by the curvature of each parameter (floored: a flat direction)
         diag = np.maximum(diag, 1e-12 * diag.max(axis=1, keepdims=True) + 1e-300)
         free = ~held
@@ -309,7 +309,24 @@ def voigt_batch(data, problems, max_iter=MAX_ITER, decrement=DECREMENT, cost_tol
         # the Gauss-Newton decrement (the cost a full undamped step would remove): ~0 only
         # at an optimum, whatever the damping, so it is what tells convergence
         gn = _solve(np.where(keep, jtj + 1e-12 * diag_eye, 0.0) + held_eye, rhs)
-        small = 0.5 * np.einsum("bn,bn->b", rhs, gn) <= np.maximum(decrement, cost_tol * C)
+        small = 0.5 * (rhs * gn).sum(axis=1) <= np.maximum(decrement, cost_tol * C)
+        # stop: at the optimum (the decrement a negligible fraction of the cost), or the damping
+        # has grown so large that no step lowers the cost; before the step, whose model
+        # evaluation a converged problem does not need
+        stop = small | (lam > 1e12)
+        if stop.any():
+            rows = act[stop]
+            p[rows], jac[rows], cost[rows] = P[stop], J[stop], C[stop]
+            converged[rows] = small[stop]
+            go = ~stop
+            act = act[go]
+            if not act.size:
+                break
+            P, R, J, C, LB, UB, REAL = P[go], R[go], J[go], C[go], LB[go], UB[go], REAL[go]
+            near_lo, near_hi, lam, nu = near_lo[go], near_hi[go], lam[go], nu[go]
+            grad, jtj, held, keep, held_eye, diag_eye, rhs = (grad[go], jtj[go], held[go], keep[go], held_eye[go],
+                                                              diag_eye[go], rhs[go])
+            work = model.rows(act)
         step = _solve(np.where(keep, jtj + lam[:, None, None] * diag_eye, 0.0) + held_eye, rhs)
         # a step that would cross bounds: those parameters go to their bound and the others are
         # solved again with them held there. Clipping the step alone spoils it (its predicted
@@ -318,18 +335,18 @@ def voigt_batch(data, problems, max_iter=MAX_ITER, decrement=DECREMENT, cost_tol
         # instead of 11 (benchmarks/bench_lines.py's spectra, measured)
         cross = (P + step < LB) | (P + step > UB)
         if cross.any():
-            to_bound = np.where(cross, np.clip(P + step, LB, UB) - P, 0.0)
+            to_bound = np.where(cross, np.minimum(np.maximum(P + step, LB), UB) - P, 0.0)
             held2 = held | cross
             free2 = ~held2
-            rhs2 = np.where(held2, 0.0, -grad - np.einsum("bnm,bm->bn", jtj, to_bound))
+            rhs2 = np.where(held2, 0.0, -grad - (jtj @ to_bound[:, :, None])[:, :, 0])
             step2 = _solve(np.where(free2[:, :, None] & free2[:, None, :], jtj + lam[:, None, None] * diag_eye, 0.0)
                            + held2[:, :, None] * eye, rhs2)
             step = np.where(cross.any(axis=1)[:, None], step2 + to_bound, step)
-        pn = np.clip(P + step, LB, UB)
+        pn = np.minimum(np.maximum(P + step, LB), UB)
         st = pn - P
-        predicted = -np.einsum("bn,bn->b", grad, st) - 0.5 * np.einsum("bn,bnm,bm->b", st, jtj, st)
+        predicted = -(grad * st).sum(axis=1) - 0.5 * np.einsum("bn,bnm,bm->b", st, jtj, st)
         rn, jn = work(pn)
-        cn = 0.5 * np.einsum("bp,bp->b", rn, rn)
+        cn = 0.5 * (rn * rn).sum(axis=1)
         better = np.isfinite(cn) & (cn < C)
         # Nielsen's (1999) damping update: by how well the linearised model predicted the
         # decrease (rho), gently; doubling factors after failures (from memory)
@@ -342,18 +359,6 @@ def voigt_batch(data, problems, max_iter=MAX_ITER, decrement=DECREMENT, cost_tol
         R = np.where(better[:, None], rn, R)
         J = np.where(better[:, None, None], jn, J)
         C = np.where(better, cn, C)
-        # stop: at the optimum (the decrement, before this step, a negligible fraction of the
-        # cost), or the damping has grown so large that no step lowers the cost
-        stop = small | (lam > 1e12)
-        if stop.any():
-            rows = act[stop]
-            p[rows], jac[rows], cost[rows] = P[stop], J[stop], C[stop]
-            converged[rows] = small[stop]
-            go = ~stop
-            act = act[go]
-            P, R, J, C, LB, UB, REAL = P[go], R[go], J[go], C[go], LB[go], UB[go], REAL[go]
-            near_lo, near_hi, lam, nu = near_lo[go], near_hi[go], lam[go], nu[go]
-            work = model.rows(act)
     for row, k in enumerate(live):
         if not converged[row]:
             if finite[row]:
