@@ -359,6 +359,14 @@ def voigt_batch(data, problems, max_iter=MAX_ITER, decrement=DECREMENT, cost_tol
         R = np.where(better[:, None], rn, R)
         J = np.where(better[:, None, None], jn, J)
         C = np.where(better, cn, C)
+    # the covariances of all converged problems in one call: a padded parameter's Jacobian column
+    # is zero, so its row and column of the normal matrix are too, and the pseudo-inverse of the
+    # rest is that of the problem's own block (to rounding)
+    done = np.flatnonzero(converged)
+    try:
+        covs = dict(zip(done, np.linalg.pinv(jac[done].transpose(0, 2, 1) @ jac[done]))) if done.size else {}
+    except np.linalg.LinAlgError:
+        covs = {}
     for row, k in enumerate(live):
         if not converged[row]:
             if finite[row]:
@@ -366,11 +374,14 @@ def voigt_batch(data, problems, max_iter=MAX_ITER, decrement=DECREMENT, cost_tol
                 out[k] = fit_profile(data, lo, hi, cnt, cen, "voigt", max_shift, sig_inst, sign, skip, free_width)
             continue
         n = 3 + ncomp[row]
-        jr = jac[row][:, :n]
-        try:
-            cov = np.linalg.pinv(jr.T @ jr)
-        except np.linalg.LinAlgError:
-            continue
+        if row in covs:
+            cov = covs[row][:n, :n]
+        else:
+            jr = jac[row][:, :n]
+            try:
+                cov = np.linalg.pinv(jr.T @ jr)
+            except np.linalg.LinAlgError:
+                continue
         dof = max(int(ngood[row]) - n, 1)
         out[k] = fit_summary(p[row, :n], cov, problems[k][3], True, float(2.0 * cost[row]) / dof)
         if not abs(out[k]["ew"]) > out[k]["ew_err"]:
