@@ -345,3 +345,21 @@ def test_cached_gaussian_kernels_equal_scipys_filter():
                                   gaussian_filter1d(values, w, mode="nearest", axis=1)), w
             assert np.array_equal(line_data._gaussian_filter(values[0], w),
                                   gaussian_filter1d(values[0], w, mode="nearest")), w
+
+
+def test_batched_voigt_parts_equal_the_one_by_one_derivatives():
+    # the Voigt batch's profile and derivatives (specan/lines/batchfit.py) against the one-by-one
+    # fit's (specan/lines/profiles.py): the same formulas, the divisions arranged otherwise
+    from specan.lines import batchfit
+    from specan.lines.profiles import voigt_and_derivatives
+
+    rng = np.random.default_rng(11)
+    dx = rng.uniform(-60.0, 60.0, 2000)
+    sigma = rng.uniform(0.3, 5.0, 2000)
+    gamma = rng.uniform(0.0, 8.0, 2000)
+    at = np.arange(0, 4000, 2)
+    out = np.zeros((4, 4000))
+    batchfit._voigt_parts(dx, sigma, gamma, out, at)
+    for mine, theirs in zip(out[:, at], voigt_and_derivatives(dx, sigma, gamma)):
+        np.testing.assert_allclose(mine, theirs, rtol=1e-12, atol=1e-15 * np.abs(theirs).max())
+    assert not out[:, 1::2].any()
