@@ -12,8 +12,10 @@ Two sets of spectra:
 For each it prints ms per spectrum of ``measure`` (median of ``--repeats`` passes), the
 one-by-one fits (``measure(_batched=False)``, when the specan being run has that switch)
 side by side, and with ``--profile`` the functions with the most time of their own under
-cProfile, and with ``--steps`` the CPU time of each step of ``measure`` (the arrays and filters,
-the listed lines, the features, the hydrogen lines, their division, the other lines, the table).
+cProfile, with ``--work`` the counts of the fitting work (Voigt batch iterations, fits made one
+by one: figures the machine's load does not move), and with ``--steps`` the CPU time of each step
+of ``measure`` (the arrays and filters, the listed lines, the features, the hydrogen lines, their
+division, the other lines, the table).
 Run the same script against another checkout for a before/after figure::
 
     OPENBLAS_NUM_THREADS=1 python benchmarks/bench_lines.py --profile --steps
@@ -129,6 +131,39 @@ def steps(cases, repeats):
         print(f"    {1e3 * float(np.median([r[name] for r in runs])) / n:6.2f}  {name}")
 
 
+def fitting_work(cases):
+    """Counts of the fitting work per spectrum, which the machine's load does not move: Voigt problems
+    and the batch's model evaluations (one per iteration of a batch), the Voigt fits made one by one
+    (scipy's least_squares: a batch problem not converged, or ill-determined), the Gaussian problems."""
+    from specan.lines import batchfit
+
+    counts = dict.fromkeys(("voigt problems", "voigt batch iterations", "voigt fits one by one",
+                            "gauss problems"), 0)
+    real = batchfit.voigt_batch, batchfit._VoigtModel.__call__, batchfit.fit_profile, batchfit.gauss_batch
+
+    def counted(name, func, size=None):
+        def call(*args, **kwargs):
+            counts[name] += 1 if size is None else len(args[size])
+            return func(*args, **kwargs)
+        return call
+
+    batchfit.voigt_batch = counted("voigt problems", real[0], 1)
+    batchfit._VoigtModel.__call__ = counted("voigt batch iterations", real[1])
+    batchfit.fit_profile = counted("voigt fits one by one", real[2])
+    batchfit.gauss_batch = counted("gauss problems", real[3], 1)
+    from specan.lines import measurement
+    held = measurement.voigt_batch
+    measurement.voigt_batch = batchfit.voigt_batch   # the wing fits' rounds
+    try:
+        for spec, known in cases:
+            lines.measure(spec, **known)
+    finally:
+        batchfit.voigt_batch, batchfit._VoigtModel.__call__, batchfit.fit_profile, batchfit.gauss_batch = real
+        measurement.voigt_batch = held
+    n = len(cases)
+    print("  fitting work per spectrum: " + "; ".join(f"{name} {value / n:.1f}" for name, value in counts.items()))
+
+
 def hot_spots(cases, top):
     """The ``top`` functions with the most own time under cProfile, ms per spectrum."""
     prof = cProfile.Profile()
@@ -157,6 +192,7 @@ def main(argv=None):
     parser.add_argument("--profile", action="store_true", help="print the cProfile hot spots")
     parser.add_argument("--top", type=int, default=15)
     parser.add_argument("--steps", action="store_true", help="CPU ms per spectrum of each step of measure")
+    parser.add_argument("--work", action="store_true", help="counts of the fitting work per spectrum")
     parser.add_argument("--workdir", type=Path, default=None)
     args = parser.parse_args(argv)
     work = args.workdir or Path(tempfile.mkdtemp(prefix="specan-bench-lines-"))
@@ -177,6 +213,8 @@ def main(argv=None):
         if name == "pipeline":
             # issue 12's target for the lines stage of a night run
             print(f"# lines stage {fast:.1f} ms per spectrum against <= 15 ms: {'met' if fast <= 15.0 else 'not met'}")
+        if args.work:
+            fitting_work(cases)
         if args.steps:
             steps(cases, args.repeats)
         if args.profile:

@@ -16,21 +16,26 @@ its arithmetic (scipy's ``least_squares`` alone spent ~2.7 ms a Voigt fit, measu
   convergence. scipy has no solver for many small least-squares problems at once
   (``least_squares`` takes one problem; stacking them into one sparse problem would
   couple their damping and stopping), so this one is written here. Bounds are those of
-  :func:`.profiles.start_and_bounds`, kept by projecting each step onto them and by
-  holding a parameter on its bound while the gradient pushes it outward (an active-set
-  projected Levenberg-Marquardt, common practice). Where the optimum is well determined it
-  converges to the one ``least_squares`` finds, more tightly than that one stops (its
-  ``ftol`` of 1e-6); where it is not (flat valleys of some hydrogen fits) the two may stop
-  at different points of the valley. Both are measured in ``tests/test_lines_batched.py``.
+  :func:`.profiles.start_and_bounds`, kept by holding a parameter on its bound while the
+  gradient pushes it outward and by taking a parameter a step would carry past its bound to
+  that bound and solving the step again for the others (an active-set projected
+  Levenberg-Marquardt, common practice); single absorption lines start from their direct
+  integral (:func:`_direct_starts`). Where the optimum is well determined it converges to
+  the one ``least_squares`` finds, more tightly than that one stops (its ``ftol`` of 1e-6);
+  where it is not (flat valleys where the equivalent width is below its own error) the
+  one-by-one fit is made and reported. Both are measured in ``tests/test_lines_batched.py``.
 """
 
 from __future__ import annotations
 
 import numpy as np
+from scipy.special import voigt_profile, wofz
 
 from ..resolution import GAUSS_FWHM
-from .profiles import (best_grid_point, fit_profile, fit_summary, start_and_bounds,
-                       voigt_and_derivatives, window_arrays)
+from .profiles import best_grid_point, fit_profile, fit_summary, start_and_bounds, window_arrays
+
+#: Damping widths (times the Gaussian sigma) a start is chosen from (:func:`_direct_starts`).
+_DAMPING_GRID = np.logspace(-2.0, 2.5, 46)
 
 __all__ = ["fit_planned", "fit_batched_voigt", "gauss_batch", "voigt_batch"]
 
@@ -44,11 +49,15 @@ DECREMENT = 1e-6
 #: ... or by less than this fraction of the cost (fits whose chi-square is huge: the profile
 #: model, not the noise, limits them, and their errors understate the uncertainty).
 COST_TOL = 1e-12
-#: Most iterations of the batch; a problem not converged by then (12 of 502 Voigt fits on the
-#: 40 spectra of ``benchmarks/bench_lines.py``, measured; mostly hydrogen lines whose equivalent
+#: Most iterations of the batch; a problem not converged by then (6 of 502 Voigt fits on the
+#: 40 spectra of ``benchmarks/bench_lines.py``, measured, 11 before the bound-crossing steps were
+#: solved again; mostly hydrogen lines whose equivalent
 #: width and damping width trade along a long curved valley) is fitted on its own by
 #: :func:`specan.lines.profiles.fit_profile`, the one-by-one path.
 MAX_ITER = 40
+#: the signs of the Jacobian's shift, sigma and gamma columns against the weighted sums of the
+#: profile's derivatives (the model is ``cont (1 - sum W V)``: d/dshift = -d/dx)
+_JAC_SIGNS = np.array([1.0, -1.0, -1.0])
 
 
 def fit_planned(data, plans):
@@ -266,6 +275,7 @@ def voigt_batch(data, problems, max_iter=MAX_ITER, decrement=DECREMENT, cost_tol
         centres[row, :ncomp[row]] = problems[k][3]
         p[row, :n], lb[row, :n], ub[row, :n] = starts[row]
         real[row, :n] = True
+    _direct_starts(data, problems, live, x, y, cont, wts, ncomp, p, lb, ub)
     model = _VoigtModel(x, y, cont, wts, centres, real[:, 3:])
     r, jac = model(p)
     cost = 0.5 * np.einsum("bp,bp->b", r, r)
@@ -283,11 +293,11 @@ def voigt_batch(data, problems, max_iter=MAX_ITER, decrement=DECREMENT, cost_tol
     for _ in range(max_iter):
         if not act.size:
             break
-        grad = np.einsum("bpn,bp->bn", J, R)
+        grad = (R[:, None, :] @ J)[:, 0]
         jtj = J.transpose(0, 2, 1) @ J
         # on a bound with the gradient pushing outward: held there this step
         held = ~REAL | ((P <= near_lo) & (grad > 0)) | ((P >= near_hi) & (grad < 0))
-        diag = np.einsum("bnn->bn", jtj)
+        diag = jtj.diagonal(axis1=1, axis2=2)
         # Marquardt's scaling by the curvature of each parameter (floored: a flat direction)
         diag = np.maximum(diag, 1e-12 * diag.max(axis=1, keepdims=True) + 1e-300)
         free = ~held
@@ -298,13 +308,44 @@ def voigt_batch(data, problems, max_iter=MAX_ITER, decrement=DECREMENT, cost_tol
         # the Gauss-Newton decrement (the cost a full undamped step would remove): ~0 only
         # at an optimum, whatever the damping, so it is what tells convergence
         gn = _solve(np.where(keep, jtj + 1e-12 * diag_eye, 0.0) + held_eye, rhs)
-        small = 0.5 * np.einsum("bn,bn->b", rhs, gn) <= np.maximum(decrement, cost_tol * C)
+        small = 0.5 * (rhs * gn).sum(axis=1) <= np.maximum(decrement, cost_tol * C)
+        # stop: at the optimum (the decrement a negligible fraction of the cost), or the damping
+        # has grown so large that no step lowers the cost; before the step, whose model
+        # evaluation a converged problem does not need
+        stop = small | (lam > 1e12)
+        if stop.any():
+            rows = act[stop]
+            p[rows], jac[rows], cost[rows] = P[stop], J[stop], C[stop]
+            converged[rows] = small[stop]
+            go = ~stop
+            act = act[go]
+            if not act.size:
+                break
+            P, R, J, C, LB, UB, REAL = P[go], R[go], J[go], C[go], LB[go], UB[go], REAL[go]
+            near_lo, near_hi, lam, nu = near_lo[go], near_hi[go], lam[go], nu[go]
+            grad, jtj, held, keep, held_eye, diag_eye, rhs = (grad[go], jtj[go], held[go], keep[go], held_eye[go],
+                                                              diag_eye[go], rhs[go])
+            work = model.rows(act)
         step = _solve(np.where(keep, jtj + lam[:, None, None] * diag_eye, 0.0) + held_eye, rhs)
-        pn = np.clip(P + step, LB, UB)
+        # a step that would cross bounds: those parameters go to their bound and the others are
+        # solved again with them held there. Clipping the step alone spoils it (its predicted
+        # decrease can turn negative, and the damping then grows over several failed steps): with
+        # it the batch took ~12 iterations a fit, with this ~8, and left 6 of 502 unconverged
+        # instead of 11 (benchmarks/bench_lines.py's spectra, measured)
+        cross = (P + step < LB) | (P + step > UB)
+        if cross.any():
+            to_bound = np.where(cross, np.minimum(np.maximum(P + step, LB), UB) - P, 0.0)
+            held2 = held | cross
+            free2 = ~held2
+            rhs2 = np.where(held2, 0.0, -grad - (jtj @ to_bound[:, :, None])[:, :, 0])
+            step2 = _solve(np.where(free2[:, :, None] & free2[:, None, :], jtj + lam[:, None, None] * diag_eye, 0.0)
+                           + held2[:, :, None] * eye, rhs2)
+            step = np.where(cross.any(axis=1)[:, None], step2 + to_bound, step)
+        pn = np.minimum(np.maximum(P + step, LB), UB)
         st = pn - P
-        predicted = -np.einsum("bn,bn->b", grad, st) - 0.5 * np.einsum("bn,bnm,bm->b", st, jtj, st)
+        predicted = -(grad * st).sum(axis=1) - 0.5 * np.einsum("bn,bnm,bm->b", st, jtj, st)
         rn, jn = work(pn)
-        cn = 0.5 * np.einsum("bp,bp->b", rn, rn)
+        cn = 0.5 * (rn * rn).sum(axis=1)
         better = np.isfinite(cn) & (cn < C)
         # Nielsen's (1999) damping update: by how well the linearised model predicted the
         # decrease (rho), gently; doubling factors after failures (from memory)
@@ -317,18 +358,14 @@ def voigt_batch(data, problems, max_iter=MAX_ITER, decrement=DECREMENT, cost_tol
         R = np.where(better[:, None], rn, R)
         J = np.where(better[:, None, None], jn, J)
         C = np.where(better, cn, C)
-        # stop: at the optimum (the decrement, before this step, a negligible fraction of the
-        # cost), or the damping has grown so large that no step lowers the cost
-        stop = small | (lam > 1e12)
-        if stop.any():
-            rows = act[stop]
-            p[rows], jac[rows], cost[rows] = P[stop], J[stop], C[stop]
-            converged[rows] = small[stop]
-            go = ~stop
-            act = act[go]
-            P, R, J, C, LB, UB, REAL = P[go], R[go], J[go], C[go], LB[go], UB[go], REAL[go]
-            near_lo, near_hi, lam, nu = near_lo[go], near_hi[go], lam[go], nu[go]
-            work = model.rows(act)
+    # the covariances of all converged problems in one call: a padded parameter's Jacobian column
+    # is zero, so its row and column of the normal matrix are too, and the pseudo-inverse of the
+    # rest is that of the problem's own block (to rounding)
+    done = np.flatnonzero(converged)
+    try:
+        covs = dict(zip(done, np.linalg.pinv(jac[done].transpose(0, 2, 1) @ jac[done]))) if done.size else {}
+    except np.linalg.LinAlgError:
+        covs = {}
     for row, k in enumerate(live):
         if not converged[row]:
             if finite[row]:
@@ -336,23 +373,80 @@ def voigt_batch(data, problems, max_iter=MAX_ITER, decrement=DECREMENT, cost_tol
                 out[k] = fit_profile(data, lo, hi, cnt, cen, "voigt", max_shift, sig_inst, sign, skip, free_width)
             continue
         n = 3 + ncomp[row]
-        jr = jac[row][:, :n]
-        try:
-            cov = np.linalg.pinv(jr.T @ jr)
-        except np.linalg.LinAlgError:
-            continue
+        if row in covs:
+            cov = covs[row][:n, :n]
+        else:
+            jr = jac[row][:, :n]
+            try:
+                cov = np.linalg.pinv(jr.T @ jr)
+            except np.linalg.LinAlgError:
+                continue
         dof = max(int(ngood[row]) - n, 1)
         out[k] = fit_summary(p[row, :n], cov, problems[k][3], True, float(2.0 * cost[row]) / dof)
         if not abs(out[k]["ew"]) > out[k]["ew_err"]:
-            # an ill-determined fit (a flat valley where depth and damping trade): the batch may
-            # settle on a worse point of it than least_squares (Fe I 3820 in a MILES G9.5 III star:
-            # chi2 0.748 against 0.639, measured), so the one-by-one fit is made too and the
-            # better kept
+            # an ill-determined fit (a flat valley where depth and damping trade): where the batch
+            # stops in it depends on its path (Fe I 3820 in a MILES G9.5 III star: chi2 0.748
+            # against least_squares' 0.639; Fe I 3860 in two MILES M dwarfs, equivalent width 0
+            # +- 3e5 A, FWHM 43 against 15 A at about the same chi2: measured), so the one-by-one
+            # fit is made and reported, as the one-by-one path reports it
             lo, hi, cnt, cen, max_shift, sig_inst, sign, skip, free_width = problems[k]
             slow = fit_profile(data, lo, hi, cnt, cen, "voigt", max_shift, sig_inst, sign, skip, free_width)
-            if slow is not None and slow["chi2"] < out[k]["chi2"]:
+            if slow is not None:
                 out[k] = slow
     return out
+
+
+def _direct_starts(data, problems, live, x, y, cont, wts, ncomp, p, lb, ub):
+    """Start the equivalent width and damping width of single absorption lines from the data (in ``p``).
+
+    :func:`~specan.lines.profiles.start_and_bounds` starts every component from its core depth as
+    a Gaussian, far below the equivalent width of a line with wings (hydrogen, mostly): here the
+    equivalent width starts from the direct integral over the window's weighted pixels (scaled to
+    the whole window) and the damping width from the one that gives a profile of that area the
+    line's core depth (on a grid of damping widths). Where the optimum is well determined the
+    fits end where they did (tests/test_lines_batched.py), in fewer iterations (11.8 -> 10.3 a
+    fit on benchmarks/bench_lines.py's 40 pipeline spectra, measured; 7.9 with the bound-crossing
+    steps solved again).
+    """
+    rows = np.flatnonzero((ncomp == 1) & np.array([problems[k][6] > 0 for k in live]))
+    if not rows.size:
+        return
+    lo = np.array([problems[live[r]][0] for r in rows])
+    size = x.shape[1]
+    pix = np.minimum(lo[:, None] + np.arange(size)[None, :], data.wave.size - 1)
+    inside = np.arange(size)[None, :] < np.array([problems[live[r]][1] + 1 for r in rows])[:, None] - lo[:, None]
+    dx = np.where(inside, data.dx[pix], 0.0)
+    good = wts[rows] > 0
+    with np.errstate(divide="ignore", invalid="ignore"):
+        ew = (np.sum(np.where(good, (1.0 - y[rows] / cont[rows]) * dx, 0.0), axis=1)
+              * dx.sum(axis=1) / np.sum(np.where(good, dx, 0.0), axis=1))
+    sig, w0 = p[rows, 1], p[rows, 3]
+    # the core depth start_and_bounds took (its start is that depth as a Gaussian's area, times 1.2)
+    depth = w0 / (1.2 * sig * np.sqrt(2.0 * np.pi))
+    grid = sig[:, None] * _DAMPING_GRID[None, :]
+    peak = ew[:, None] * voigt_profile(0.0, sig[:, None], grid)
+    gamma = grid[np.arange(rows.size), np.argmin(np.abs(peak - depth[:, None]), axis=1)]
+    ok = np.isfinite(ew) & (ew > 0) & (depth > 0)
+    rows, gamma, ew = rows[ok], gamma[ok], ew[ok]
+    span = ub[rows] - lb[rows]
+    for col, value in ((2, gamma), (3, ew)):
+        p[rows, col] = np.clip(value, lb[rows, col] + 1e-6 * span[:, col], ub[rows, col] - 1e-6 * span[:, col])
+
+
+def _voigt_parts(dx, sigma, gamma, out, at):
+    """:func:`specan.lines.profiles.voigt_and_derivatives` written into ``out[:, at]`` (rows: profile, d/dx,
+    d/dsigma, d/dgamma): the same formulas, the divisions by per-point factors made once."""
+    inv_s2 = 1.0 / (sigma * np.sqrt(2.0))
+    inv_norm = 1.0 / (sigma * np.sqrt(2.0 * np.pi))
+    z = (dx + 1j * gamma) * inv_s2
+    w = wofz(z)
+    dw = 2j / np.sqrt(np.pi) - 2.0 * z * w
+    v = w.real * inv_norm
+    scale = inv_s2 * inv_norm
+    out[0, at] = v
+    out[1, at] = dw.real * scale
+    out[2, at] = -((dw * z).real * inv_norm + v) / sigma
+    out[3, at] = -dw.imag * scale
 
 
 def _solve(m, rhs):
@@ -368,14 +462,15 @@ class _VoigtModel:
 
     Model (as :func:`specan.lines.profiles.fit_profile`): ``cont (1 - sum_k W_k V(x - c_k - shift;
     sigma, gamma))``; parameters ``(shift, sigma, gamma, W_1..W_n)``; profile and derivatives
-    from one Faddeeva evaluation (:func:`specan.lines.profiles.voigt_and_derivatives`).
+    from one Faddeeva evaluation (:func:`_voigt_parts`, the formulas of
+    :func:`specan.lines.profiles.voigt_and_derivatives`).
 
     The Faddeeva function is most of a fit's cost (~0.12 us a point, against a few ns for the
     rest), so it is evaluated only where it counts: at the real components (not the padding of
     problems with fewer) and the pixels of non-zero weight (not the padding of shorter windows,
     nor masked pixels). Elsewhere profile and derivatives are set to zero: there they are
     multiplied by a zero weight or a zero equivalent width, so residuals and Jacobian are the
-    same, bit for bit.
+    same as with every point evaluated (to rounding: the weighted sums are made in another order).
     """
 
     def __init__(self, x, y, cont, wts, centres, components):
@@ -385,6 +480,8 @@ class _VoigtModel:
         # points evaluated per problem: each problem's sigma and gamma repeated that often are
         # the values at the evaluated points, in their order (np.broadcast_to cost more)
         self.count = self.where.sum(axis=(1, 2))
+        self.cw = cont * wts
+        self.at = np.flatnonzero(self.where)   # the evaluated points, as flat indices
 
     def rows(self, rows):
         """The model of the problems ``rows`` only."""
@@ -392,19 +489,19 @@ class _VoigtModel:
                            self.components[rows])
 
     def __call__(self, p):
-        x, cont, wts, where = self.x, self.cont, self.wts, self.where
-        dx = x[:, None, :] - (self.centres[:, :, None] + p[:, 0, None, None])   # (b, C, P)
+        dx = self.x[:, None, :] - (self.centres[:, :, None] + p[:, 0, None, None])   # (b, C, P)
         sig = np.repeat(p[:, 1], self.count)
         gam = np.repeat(p[:, 2], self.count)
-        parts = voigt_and_derivatives(dx[where], sig, gam)
-        v, d_x, d_s, d_g = (np.zeros(dx.shape) for _ in range(4))
-        for full, part in zip((v, d_x, d_s, d_g), parts):
-            full[where] = part
-        ws = p[:, 3:, None]
-        r = (cont * (1.0 - np.sum(ws * v, axis=1)) - self.y) * wts
-        jac = np.empty((p.shape[0], x.shape[1], p.shape[1]))
-        jac[:, :, 0] = cont * np.sum(ws * d_x, axis=1)
-        jac[:, :, 1] = -cont * np.sum(ws * d_s, axis=1)
-        jac[:, :, 2] = -cont * np.sum(ws * d_g, axis=1)
-        jac[:, :, 3:] = -(cont[:, None, :] * v).transpose(0, 2, 1)
-        return r, jac * wts[:, :, None]
+        # profile and its three derivatives in one array (4, b, C, P) and their sums over the
+        # components weighted by the equivalent widths in one call: a model evaluation is a
+        # dozen numpy calls on small arrays, their count (not the arithmetic) its cost
+        parts = np.zeros((4, dx.size))
+        _voigt_parts(dx.take(self.at), sig, gam, parts, self.at)
+        parts = parts.reshape((4,) + dx.shape)
+        sums = np.einsum("bc,kbcp->bpk", p[:, 3:], parts)
+        cw = self.cw
+        r = (self.cont * (1.0 - sums[:, :, 0]) - self.y) * self.wts
+        jac = np.empty((p.shape[0], dx.shape[2], p.shape[1]))
+        jac[:, :, :3] = sums[:, :, 1:] * (cw[:, :, None] * _JAC_SIGNS)
+        jac[:, :, 3:] = (parts[0] * -cw[:, None, :]).transpose(0, 2, 1)
+        return r, jac

@@ -7,10 +7,11 @@ Everything here is derived once per spectrum and shared by identification and me
 from __future__ import annotations
 
 import copy
+import functools
 from typing import NamedTuple
 
 import numpy as np
-from scipy.ndimage import gaussian_filter1d
+from scipy.ndimage import correlate1d
 from scipy.signal import find_peaks, peak_prominences
 
 from ..obsinfo import get_info
@@ -97,39 +98,78 @@ def _kernel_sums(s):
     return np.exp(-0.5 * (j / s) ** 2).sum(), np.exp(-((j / s) ** 2)).sum()
 
 
-def matched_filter(flux, weight, sig_pix):
+@functools.lru_cache(maxsize=256)
+def _gauss_weights(s):
+    """The weights ``scipy.ndimage.gaussian_filter1d(x, s)`` correlates with, made as it makes them.
+
+    Its kernel (truncated at 4 sigma, normalised) computed once per width instead of at every
+    call: ``correlate1d`` with these weights gives the filter's values to the bit (the matched
+    filter calls it at the same few dozen widths for every spectrum of a set-up).
+    """
+    radius = int(4.0 * float(s) + 0.5)
+    x = np.arange(-radius, radius + 1)
+    phi = np.exp(-0.5 / (s * s) * x ** 2)
+    weights = (phi / phi.sum())[::-1]
+    weights.flags.writeable = False
+    return weights
+
+
+def _gaussian_filter(values, s, axis=-1):
+    """``scipy.ndimage.gaussian_filter1d(values, s, mode="nearest", axis=axis)`` with a cached kernel."""
+    return correlate1d(values, _gauss_weights(s), axis, mode="nearest")
+
+
+class _Ladder(NamedTuple):
+    """The widths the matched filter is made at and the pixels each serves (see :func:`matched_filter`)."""
+
+    rungs: tuple   #: per width: (s, pixels it serves, stretch filtered, its pixels in that stretch, k1, k2)
+
+
+def _ladder(sig_pix):
+    """The :class:`_Ladder` of an instrument width (pixels) along the spectrum: depends on it alone."""
+    n = sig_pix.size
+    step = np.log(1.05)
+    q = np.round(np.log(np.maximum(sig_pix, 0.3)) / step).astype(int)
+    rungs = []
+    for level in np.unique(q):
+        s = float(np.exp(level * step))
+        sel = q == level
+        idx = np.flatnonzero(sel)
+        # filter only the stretch this width serves, plus the kernel's reach (gaussian_filter1d
+        # truncates at 4 sigma): the same sums at those pixels, for a fraction of the work
+        reach = int(4.0 * s + 0.5) + 1
+        part = slice(max(idx[0] - reach, 0), min(idx[-1] + reach + 1, n))
+        k1, k2 = _kernel_sums(s)  # sums of the kernel g and of g**2
+        rungs.append((s, idx, part, sel[part], k1, k2))
+    return _Ladder(tuple(rungs))
+
+
+def matched_filter(flux, weight, sig_pix, ladder=None):
     """Matched-filter significance, weighted smoothed flux and its noise, at each pixel's width.
 
     The instrument width in pixels (``sig_pix``, a Gaussian sigma) changes along the
     spectrum (constant R on a linear grid), so the arrays are filtered at a ladder of
-    widths 5% apart and each pixel takes the result at its own width.
+    widths 5% apart and each pixel takes the result at its own width. ``ladder``: the
+    :func:`_ladder` of ``sig_pix`` when already made (the arrays divided by the hydrogen
+    lines keep their widths).
     """
     n = flux.size
     d = 1.0 - flux
     wd, wf, w = weight * d, weight * flux, weight
-    step = np.log(1.05)
-    q = np.round(np.log(np.maximum(sig_pix, 0.3)) / step).astype(int)
+    if ladder is None:
+        ladder = _ladder(sig_pix)
     signif, smooth, smooth_err = np.empty(n), np.empty(n), np.empty(n)
     stacked = np.stack([wd, wf, w])
-    for level in np.unique(q):
-        s = float(np.exp(level * step))
-        sel = q == level
-        k1, k2 = _kernel_sums(s)  # sums of the kernel g and of g**2
-        # filter only the stretch this width serves, plus the kernel's reach (gaussian_filter1d
-        # truncates at 4 sigma): the same sums at those pixels, for a fraction of the work
-        idx = np.flatnonzero(sel)
-        reach = int(4.0 * s + 0.5) + 1
-        part = slice(max(idx[0] - reach, 0), min(idx[-1] + reach + 1, n))
-        sub = sel[part]
+    for s, idx, part, sub, k1, k2 in ladder.rungs:
         # the three arrays at width s in one call (row by row: the same sums as one call each)
-        f_wd, f_wf, f_w = gaussian_filter1d(stacked[:, part], s, mode="nearest", axis=1)[:, sub]
-        f_w2 = gaussian_filter1d(w[part], s / np.sqrt(2.0), mode="nearest")[sub]
+        f_wd, f_wf, f_w = _gaussian_filter(stacked[:, part], s, axis=1)[:, sub]
+        f_w2 = _gaussian_filter(w[part], s / np.sqrt(2.0))[sub]
         # S = sum(w g d) / sqrt(sum(w g^2)): amplitude over its error for a Gaussian at each pixel
-        signif[sel] = k1 * f_wd / np.sqrt(np.maximum(k2 * f_w2, 1e-300))
+        signif[idx] = k1 * f_wd / np.sqrt(np.maximum(k2 * f_w2, 1e-300))
         safe = np.maximum(f_w, 1e-300)
-        smooth[sel] = f_wf / safe
+        smooth[idx] = f_wf / safe
         # variance of a weighted mean with kernel weights g: sum(g^2 w) / sum(g w)^2
-        smooth_err[sel] = np.sqrt(k2 * f_w2 / np.maximum((k1 * f_w) ** 2, 1e-300))
+        smooth_err[idx] = np.sqrt(k2 * f_w2 / np.maximum((k1 * f_w) ** 2, 1e-300))
     smooth = np.where(np.isfinite(smooth), smooth, 1.0)
     return signif, smooth, smooth_err
 
@@ -137,12 +177,12 @@ def matched_filter(flux, weight, sig_pix):
 def wide_smooth(flux, weight, s):
     """Weighted flux smoothed by a Gaussian of ``s`` pixels, and its noise."""
     wf, w = weight * flux, weight
-    f_wf, f_w = gaussian_filter1d(np.stack([wf, w]), s, mode="nearest", axis=1)
+    f_wf, f_w = _gaussian_filter(np.stack([wf, w]), s, axis=1)
     f_w = np.maximum(f_w, 1e-300)
     smooth = f_wf / f_w
     smooth = np.where(np.isfinite(smooth), smooth, 1.0)
     k1, k2 = _kernel_sums(s)
-    f_w2 = gaussian_filter1d(w, s / np.sqrt(2.0), mode="nearest")
+    f_w2 = _gaussian_filter(w, s / np.sqrt(2.0))
     return smooth, np.sqrt(k2 * f_w2 / np.maximum((k1 * f_w) ** 2, 1e-300))
 
 
@@ -182,7 +222,11 @@ class LineData:
         self._filter()
 
     def _filter(self):
-        self.signif, self.smooth, self.smooth_err = matched_filter(self.flux, self.weight, self.sig_pix)
+        # the widths and the pixels each serves, made once (a copy divided by the hydrogen lines keeps them)
+        if getattr(self, "_rungs", None) is None:
+            self._rungs = _ladder(self.sig_pix)
+        self.signif, self.smooth, self.smooth_err = matched_filter(self.flux, self.weight, self.sig_pix,
+                                                                   self._rungs)
         s3 = 3.0 * float(np.median(self.sig_pix))
         self.smooth_wide, self.smooth_wide_err = wide_smooth(self.flux, self.weight, s3)
 
