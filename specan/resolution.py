@@ -352,15 +352,38 @@ def smooth_to_fwhm(wave, flux, good, fwhm_in, fwhm_out):
     if np.all(sig < 0.3):
         return grid, fg, gg > 0.5
     levels = np.unique(np.round(np.linspace(sig.min(), sig.max(), 5), 3))
-    smooth = np.array([gaussian_filter1d(fg, lv, mode="nearest") if lv > 0.3 else fg for lv in levels])
-    gsm = gaussian_filter1d(gg, float(levels.max()), mode="nearest")
+    # every grid pixel of a good pixel's flux counts fully: the smoothed mask is 1 (to rounding) everywhere
+    ok = np.ones(grid.size, bool) if good.all() else gaussian_filter1d(gg, float(levels.max()), mode="nearest") > 0.5
     if len(levels) == 1:
-        return grid, smooth[0], gsm > 0.5
+        return grid, _smoothed_where(fg, levels[0], 0, grid.size), ok
     j = np.clip(np.searchsorted(levels, sig) - 1, 0, len(levels) - 2)
     t = np.clip((sig - levels[j]) / (levels[j + 1] - levels[j]), 0.0, 1.0)
+    # each level is needed only where it brackets sig, about two fifths of the grid: smoothed there
+    # alone (with its kernel's reach beside), the same numbers as smoothing the whole grid
+    smooth = np.empty((len(levels), grid.size))
+    for i, lv in enumerate(levels):
+        used = np.flatnonzero((j == i) | (j == i - 1))
+        if used.size:
+            first, last = int(used[0]), int(used[-1]) + 1
+            smooth[i, first:last] = _smoothed_where(fg, lv, first, last)
     idx = np.arange(grid.size)
     out = smooth[j, idx] * (1.0 - t) + smooth[j + 1, idx] * t
-    return grid, out, gsm > 0.5
+    return grid, out, ok
+
+
+def _smoothed_where(flux, sigma, first, last):
+    """``gaussian_filter1d(flux, sigma, mode="nearest")[first:last]`` (``flux`` itself for sigma <= 0.3).
+
+    Filtered over ``first:last`` and the kernel's reach on either side only: every output pixel
+    sees the same input pixels (the same edge pixels repeated at the spectrum's ends) and the
+    same weights as in the whole array's filtering, so the numbers are the same to the bit
+    (tests/test_smoothing.py).
+    """
+    if sigma <= 0.3:
+        return flux[first:last]
+    reach = int(4.0 * float(sigma) + 0.5)    # gaussian_filter1d's kernel radius at its default truncate=4
+    lo, hi = max(first - reach, 0), min(last + reach, flux.size)
+    return gaussian_filter1d(flux[lo:hi], sigma, mode="nearest")[first - lo:last - lo]
 
 
 class RestGrid(NamedTuple):
