@@ -455,3 +455,47 @@ def test_vacuum_spectrum_in_air_is_vacuum_to_air_to_the_bit(kurucz_sun):
     nm = Spectrum(flux=np.ones(50) * u.dimensionless_unscaled, spectral_axis=np.linspace(400.0, 700.0, 50) * u.nm,
                   meta={"specan": ObsInfo(medium="vacuum", medium_assumed=False)})
     assert np.array_equal(wavelength_in(nm, "air"), vacuum_to_air(nm.spectral_axis.to(u.AA)).to_value(u.AA))
+
+
+@pytest.mark.parametrize("ctype,cunit,crval,step,key,crpix", [
+    ("WAVE", "Angstrom", 4000.0, 1.25, "CDELT1", 1.0),
+    ("AWAV", "nm", 400.0, 0.125, "CD1_1", 11.5),
+    ("AWAV", "Angstrom", 9000.0, -0.75, "CDELT1", 1.0),   # decreasing: read reversed
+    ("WAVE-LOG", "m", 4.0e-7, 1.0e-11, "CDELT1", 1.0),
+])
+def test_spectrum_wcs_describes_the_wavelengths_read(tmp_path, ctype, cunit, crval, step, key, crpix):
+    # a linear axis gets a 1-D FITS WCS (cheaper than specutils' lookup table), a log-linear one
+    # specutils' own; either gives the wavelengths read (astropy.wcs's implementation of Greisen et
+    # al. 2006 is the outside reference) to 1e-12, and prepare() hands the WCS on with the axis
+    from specutils.utils.wcs_utils import SpectralGWCS
+
+    from specan.io import LINEAR_TOLERANCE
+
+    h = fits.Header()
+    h["CTYPE1"], h["CUNIT1"], h["CRVAL1"], h[key], h["CRPIX1"] = ctype, cunit, crval, step, crpix
+    path = tmp_path / "s.fits"
+    fits.PrimaryHDU(_flux().astype(np.float32), header=h).writeto(path)
+    s = specan.read(path)
+    got = s.spectral_axis.to_value(u.AA)
+    expected = _expected_from_wcs(h, N)
+    assert np.allclose(got, expected[::-1] if step < 0 else expected, rtol=1e-12, atol=0)
+    described = s.wcs.pixel_to_world(np.arange(N)).to_value(u.AA)
+    assert np.max(np.abs(described / got - 1.0)) <= 2 * LINEAR_TOLERANCE
+    if ctype.endswith("-LOG"):
+        assert isinstance(s.wcs, SpectralGWCS)
+    else:
+        assert isinstance(s.wcs, WCS) and s.wcs.wcs.ctype[0] == ctype
+    p = specan.prepare(s)
+    assert p.wcs is s.wcs and p.spectral_axis is s.spectral_axis
+
+
+def test_linear_wcs_only_for_a_linear_axis():
+    from specan.io import linear_wcs
+
+    w = 4000.0 + 0.5 * np.arange(3000)
+    assert linear_wcs(w) is not None and linear_wcs(w, "vacuum").wcs.ctype[0] == "WAVE"
+    bent = w.copy()
+    bent[1500] += 1e-6            # 2e-10 relative: not linear
+    assert linear_wcs(bent) is None
+    assert linear_wcs(np.exp(np.linspace(8.3, 8.6, 3000))) is None
+    assert linear_wcs(w[:1]) is None
