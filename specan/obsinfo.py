@@ -78,8 +78,8 @@ class ObsInfo:
         True once the flux has been divided by a fitted continuum.
     warnings : list of str
         Everything assumed or doubtful about this spectrum.
-    header : dict
-        Original header cards (name -> value), for reference.
+    header : mapping
+        Original header cards (name -> value), for reference (read-only when a reader filled it).
     """
 
     path: str | None = None
@@ -135,7 +135,8 @@ class ObsInfo:
         """A copy whose lists and dicts are not shared."""
         new = dataclasses.replace(self)
         new.warnings = list(self.warnings)
-        new.header = dict(self.header)
+        # a dict is copied; a read-only mapping (the reader's cards, parsed when read) is shared as it is
+        new.header = dict(self.header) if isinstance(self.header, dict) else self.header
         return new
 
     def to_dict(self) -> dict:

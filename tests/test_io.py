@@ -499,3 +499,33 @@ def test_linear_wcs_only_for_a_linear_axis():
     assert linear_wcs(bent) is None
     assert linear_wcs(np.exp(np.linspace(8.3, 8.6, 3000))) is None
     assert linear_wcs(w[:1]) is None
+
+
+def test_header_cards_are_the_cards_astropy_parses(tmp_path):
+    # ObsInfo.header parses a card when it is read; its names and values are what astropy's own
+    # Header gives card by card (repeated names: the first card's value), COMMENT/HISTORY/blank left out
+    from specan.io._common import HeaderCards
+
+    h = fits.Header()
+    h.update({"CTYPE1": "AWAV", "CUNIT1": "Angstrom", "CRPIX1": 1.0, "CRVAL1": 4000.0, "CDELT1": 1.25,
+              "OBJECT": "HD 1 ", "EXPTIME": 300, "FLAG": True, "BIG": 1.5e300})
+    h["COMMENT"] = "a comment"
+    h["HISTORY"] = "a history"
+    h.append(("", "blank card"))
+    h.append(("NOTE", "first"))
+    h.append(("NOTE", "second"))
+    path = tmp_path / "s.fits"
+    fits.PrimaryHDU(_flux().astype(np.float32), header=h).writeto(path)
+    info = get_info(specan.read(path))
+    on_disk = fits.getheader(path)
+    expected = {k: on_disk[k] for k in on_disk.keys() if k not in ("COMMENT", "HISTORY", "")}
+    assert isinstance(info.header, HeaderCards)
+    assert list(info.header) == list(expected) and dict(info.header) == expected
+    assert info.header["NOTE"] == "first" and info.header["OBJECT"] == "HD 1" and info.header["FLAG"] is True
+    assert "COMMENT" not in info.header and len(info.header) == len(expected)
+    with pytest.raises(KeyError):
+        info.header["HISTORY"]
+    copied = info.copy()
+    assert dict(copied.header) == expected
+    prepared = get_info(specan.prepare(specan.read(path)))
+    assert dict(prepared.header) == expected
