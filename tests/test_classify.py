@@ -953,3 +953,22 @@ def test_sun_gravity_makes_it_a_dwarf(sun_spectrum):
     assert "gravity_conflict" not in res["flags"]
     without = C.classify(sun_spectrum, parameters=False)
     assert without["logg"] is None and without["lumclass_prob"]["V"] < res["lumclass_prob"]["V"]
+
+
+def test_teff_estimate_kept_per_code_is_the_scales_average():
+    # the classes' Teffs at a code are kept per (code, error): the same Teff and error as asking
+    # the scales (specan.mkscales: Pecaut & Mamajek 2013 for dwarfs and the others named there) each time
+    from specan.classify.relations import LUMS
+    from specan.classify.verdict import teff_estimate
+    from specan.mkscales import teff_from_type
+    from specan.mktypes import number_to_lumclass
+
+    rng = np.random.default_rng(3)
+    for code, err in ((42.0, 0.5), (42.0, 0.5), (10.25, 1.7), (63.5, 0.5), (0.0, 3.0), (42.0, 0.9)):
+        prob = rng.dirichlet(np.ones(5))
+        tk = np.array([teff_from_type(code, number_to_lumclass(n), err)[0].to_value(u.K) for n in LUMS])
+        te = np.array([teff_from_type(code, number_to_lumclass(n), err)[1].to_value(u.K) for n in LUMS])
+        mean = float(np.sum(prob * tk))
+        spread = float(np.sqrt(np.sum(prob * (te ** 2 + (tk - mean) ** 2))))
+        teff, teff_err = teff_estimate(code, err, prob)
+        assert teff.to_value(u.K) == mean and teff_err.to_value(u.K) == spread
