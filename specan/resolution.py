@@ -417,8 +417,9 @@ def rest_pixels(spectrum, rv=None):
     good = np.isfinite(flux) & np.isfinite(wave)
     if spectrum.mask is not None:
         good &= ~np.asarray(spectrum.mask, bool)
-    order = np.argsort(wave)
-    wave, flux, good = wave[order], flux[order], good[order]
+    if not np.all(wave[1:] > wave[:-1]):   # as read, the axis increases already: nothing to reorder
+        order = np.argsort(wave)
+        wave, flux, good = wave[order], flux[order], good[order]
     if rv is not None and np.isfinite(u.Quantity(rv, u.km / u.s).value):
         wave = wave / float(doppler_factor(u.Quantity(rv, u.km / u.s)))
     return RestPixels(wave, flux, good)
