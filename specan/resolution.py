@@ -343,17 +343,18 @@ def smooth_to_fwhm(wave, flux, good, fwhm_in, fwhm_out):
     """
     step = float(np.median(np.diff(wave)))
     grid = np.arange(wave[0], wave[-1] + step / 2, step)
-    fg = np.interp(grid, wave[good], flux[good])
-    gg = np.interp(grid, wave, good.astype(float))
+    # with every pixel good the mask is 1 everywhere, and stays so smoothed (to rounding): not made
+    all_good = bool(good.all())
+    fg = np.interp(grid, wave, flux) if all_good else np.interp(grid, wave[good], flux[good])
+    gg = None if all_good else np.interp(grid, wave, good.astype(float))
     fin = np.broadcast_to(np.interp(grid, wave, np.broadcast_to(fwhm_in, wave.shape)), grid.shape)
     fout = fwhm_out if np.ndim(fwhm_out) == 0 else np.interp(grid, wave, fwhm_out)
     # FWHM = 2 sqrt(2 ln 2) sigma = 2.3548 sigma for a Gaussian (common practice)
     sig = np.sqrt(np.clip(fout ** 2 - fin ** 2, 0.0, None)) / 2.3548 / step   # pixels
     if np.all(sig < 0.3):
-        return grid, fg, gg > 0.5
+        return grid, fg, np.ones(grid.size, bool) if all_good else gg > 0.5
     levels = np.unique(np.round(np.linspace(sig.min(), sig.max(), 5), 3))
-    # every grid pixel of a good pixel's flux counts fully: the smoothed mask is 1 (to rounding) everywhere
-    ok = np.ones(grid.size, bool) if good.all() else gaussian_filter1d(gg, float(levels.max()), mode="nearest") > 0.5
+    ok = np.ones(grid.size, bool) if all_good else gaussian_filter1d(gg, float(levels.max()), mode="nearest") > 0.5
     if len(levels) == 1:
         return grid, _smoothed_where(fg, levels[0], 0, grid.size), ok
     j = np.clip(np.searchsorted(levels, sig) - 1, 0, len(levels) - 2)
@@ -480,5 +481,5 @@ def on_rest_grid(spectrum, grid, fwhm_out, rv=None, fwhm_in=None, resolving_powe
     fine, smooth, fine_good = smooth_to_fwhm(wave, np.where(good, flux, 0.0), good, fwhm_in, fwhm_out)
     inside = (grid >= fine[0]) & (grid <= fine[-1])
     on = np.interp(grid, fine, smooth)
-    ok = inside & (np.interp(grid, fine, fine_good.astype(float)) > 0.99)
+    ok = inside if fine_good.all() else inside & (np.interp(grid, fine, fine_good.astype(float)) > 0.99)
     return RestGrid(on, ok, fwhm_in, assumed, wave)
