@@ -529,3 +529,19 @@ def test_header_cards_are_the_cards_astropy_parses(tmp_path):
     assert dict(copied.header) == expected
     prepared = get_info(specan.prepare(specan.read(path)))
     assert dict(prepared.header) == expected
+
+
+@pytest.mark.parametrize("unit", [u.AA, u.nm, u.um])
+def test_wavelengths_in_angstrom_are_astropys_conversion(unit):
+    # wavelength_in and spectrum_arrays copy an axis already in Angstrom and convert any other as
+    # astropy does: the same numbers, and never a view the caller could write into the spectrum through
+    from specutils import Spectrum
+
+    from specan.obsinfo import ObsInfo, spectrum_arrays, wavelength_in
+
+    axis = (np.linspace(4000.0, 5000.0, 700) * u.AA).to(unit)
+    s = Spectrum(spectral_axis=axis, flux=np.ones(700) * u.one, meta={"specan": ObsInfo(medium="air")})
+    for w in (wavelength_in(s, "air"), spectrum_arrays(s)[0]):
+        assert np.array_equal(w, s.spectral_axis.to_value(u.AA))
+        w[0] = -1.0
+        assert s.spectral_axis[0].to_value(u.AA) > 0
