@@ -112,8 +112,7 @@ def side_by_side(repeats, before, rounds):
           "median over the rounds of each round's median; best: the least of every round's best "
           f"(less moved by other load; load average {os.getloadavg()[0]:.1f} at the end)")
     print(f"  {'ms per spectrum':32s} {'before':>8s} {'after':>8s} {'ratio':>7s}   {'best: before':>12s} {'after':>8s} "
-          f"{'ratio':>7s}")
-    print(f"  {'':32s} {'':8s} {'':8s} {'':7s}   {'':12s} {'':8s} {'':7s}   {'CPU: before':>11s} {'after':>8s} {'ratio':>7s}")
+          f"{'ratio':>7s}   {'CPU: before':>11s} {'after':>8s} {'ratio':>7s}")
     for name in runs["after"][0]:
         b = float(np.median([r[name]["median"] for r in runs["before"] if name in r]))
         a = float(np.median([r[name]["median"] for r in runs["after"]]))
