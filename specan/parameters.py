@@ -319,11 +319,14 @@ class _ProjectedResiduals:
     """
 
     def __init__(self, model, k, y, good, sigma, basis):
-        self.coef = model.coef[k][:, good]
-        w = 1.0 / sigma[good]
-        self.z = y[good] * w
+        if good.all():   # every pixel: the arrays themselves, not copies of them (the same numbers)
+            self.coef, sigma, y, b = model.coef[k], sigma, y, basis
+        else:
+            self.coef, sigma, y, b = model.coef[k][:, good], sigma[good], y[good], basis[good]
+        w = 1.0 / sigma
+        self.z = y * w
         # pixels along rows: every product below runs along contiguous rows of length n
-        self.wbasis_t = np.ascontiguousarray((basis[good] * w[:, None]).T)    # (4, n)
+        self.wbasis_t = np.ascontiguousarray((b * w[:, None]).T)    # (4, n)
         self._x = None
 
     def _at(self, scaled):
