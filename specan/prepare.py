@@ -400,6 +400,8 @@ class _PSpline:
                 # row by row (C order): each band entry gets its anchors' products in anchor order
                 a, b, offset = a[keep], b[keep], offset[keep]
             self.pairs = (a, b, (3 - offset) * ncoef + B.indices[b])
+            # what every reweighting gathers of the basis: gathered once (the same products, elementwise)
+            self._pair_data = (B.data[a], B.data[b], self.rows[b])
 
     def _normal_bands(self, w):
         """Upper bands of B^T diag(w) B + penalty, as the sparse product gives them (see the class docstring)."""
@@ -410,9 +412,10 @@ class _PSpline:
             for k in range(4):
                 bands[3 - k, k:] = normal.diagonal(k)
             return bands + self.penalty_bands
-        a, b, target = self.pairs
-        weighted = B.data * w[self.rows]                       # B.multiply(w[:, None])
-        summed = np.bincount(target, weights=B.data[a] * weighted[b], minlength=4 * B.shape[1])
+        _, _, target = self.pairs
+        data_a, data_b, rows_b = self._pair_data
+        # B.data[a] * (B.data * w[rows])[b]: B.multiply(w[:, None]) at the pairs' second entries
+        summed = np.bincount(target, weights=data_a * (data_b * w[rows_b]), minlength=4 * B.shape[1])
         return summed.reshape(4, -1) + self.penalty_bands
 
     def coefficients(self, y, w):
