@@ -972,3 +972,19 @@ def test_teff_estimate_kept_per_code_is_the_scales_average():
         spread = float(np.sqrt(np.sum(prob * (te ** 2 + (tk - mean) ** 2))))
         teff, teff_err = teff_estimate(code, err, prob)
         assert teff.to_value(u.K) == mean and teff_err.to_value(u.K) == spread
+
+
+def test_band_integrals_are_scipys_cumulative_trapezoid(sun_spectrum):
+    # the criteria's band integrals are scipy's cumulative trapezoid, summed in its order: the same
+    # numbers (Kurucz Sun from rms-solar, its wavelengths and a mask)
+    from scipy.integrate import cumulative_trapezoid
+
+    from specan.classify.criteria import _cumulative_trapezoid
+
+    w = sun_spectrum.spectral_axis.to_value(u.AA)
+    f = sun_spectrum.flux.value
+    good = np.ones(w.size, bool)
+    good[::13] = False
+    for y in (f, good.astype(float), f[:2]):
+        x = w[:y.size]
+        assert np.array_equal(_cumulative_trapezoid(y, np.diff(x)), cumulative_trapezoid(y, x, initial=0.0))
