@@ -301,6 +301,52 @@ def test_one_lattice_pass_gives_the_posterior_and_split_of_separate_passes(sun_s
     assert sum(s is None for s in splits) > 50 and sum(s is not None for s in splits) > 100   # both paths seen
 
 
+def _scaled_per_side_by_selection(xo, m, s, weights, side, scale_sigma):
+    """The line-strength scale per half as first written, three selections per side (the reference)."""
+    penalties = {}
+    a = weights / s ** 2
+    prior = 1.0 / scale_sigma ** 2
+    for sd in (-1, 0, 1):
+        sel = side == sd
+        if not sel.any():
+            continue
+        num = np.sum(a[..., sel] * xo[sel] * m[..., sel], axis=-1) + prior
+        den = np.sum(a[..., sel] * m[..., sel] ** 2, axis=-1) + prior
+        k = np.clip(num / den, 0.25, 4.0)
+        m[..., sel] *= k[..., None]
+        penalties[sd] = 0.5 * (k - 1.0) ** 2 * prior
+    return penalties
+
+
+def test_line_strength_scales_from_one_copy_per_side_are_the_selections(sun_spectrum):
+    # the per-side scale copies each side's part of the lattice once: the same model and penalties to
+    # the bit as selecting it for each use. Inputs: the default calibration's standards' criteria (JHC
+    # and MILES, scripts/fit_default_calibration.py), some with criteria or a whole side missing, and the
+    # Kurucz Sun's (rms-solar)
+    from specan.classify import relations
+    from specan.classify.criteria import SIDES
+
+    cal = C.default_calibration()
+    fine = cal.lattice_model()
+    sun = C.spectrum_criteria(sun_spectrum, cal.resolution, rv=0 * u.km / u.s)
+    rng = np.random.default_rng(7)
+    cases = [(sun["values"], sun["noise"])]
+    for st in cal.standards_[::25]:
+        x = np.array(st["criteria"], float)
+        cases.append((x, np.abs(rng.normal(0.0, 0.02, x.size))))
+        cases.append((np.where(rng.random(x.size) < 0.3, np.nan, x), np.full(x.size, 0.01)))
+        cases.append((np.where(SIDES == -1, np.nan, x), np.zeros(x.size)))
+    for x, noise in cases:
+        ok = np.isfinite(x)
+        s = np.sqrt(fine["scatter"][:, None, ok] ** 2 + noise[ok] ** 2)
+        m_new, m_ref = fine["class_means"][..., ok], fine["class_means"][..., ok]
+        args = (s, fine["weights"][ok], SIDES[ok], fine["scale_sigma"])
+        new = relations._scale_line_strengths_per_side(x[ok], m_new, *args)
+        ref = _scaled_per_side_by_selection(x[ok], m_ref, *args)
+        assert np.array_equal(m_new, m_ref) and new.keys() == ref.keys()
+        assert all(np.array_equal(new[k], ref[k]) for k in ref)
+
+
 def test_criteria_track_temperature(jhc_criteria):
     # Published behaviour of the MK criteria (Gray & Corbally 2009, from memory): the Balmer
     # lines peak in the A stars, Ca II K grows from A to K, TiO appears only in M stars.
