@@ -201,9 +201,11 @@ def _continuum_arrays(wave, flux, err, mask, smoothing=300.0 * u.AA, window=12.0
     ax, ay, sig = _without_spikes(ax, ay, sig)
     fit = _upper_envelope(ax, ay, sig, smoothing, below_weight, max_iter)
     full = fit(wave)
-    # Outside the anchors hold the end values rather than extrapolating a cubic.
-    full[wave < ax[0]] = fit(ax[:1])[0]
-    full[wave > ax[-1]] = fit(ax[-1:])[0]
+    # Outside the anchors hold the end values rather than extrapolating a cubic (both ends in one
+    # call: the spline's value at a point does not depend on the other points asked for)
+    first, last = fit(ax[[0, -1]])
+    full[wave < ax[0]] = first
+    full[wave > ax[-1]] = last
     return full
 
 
