@@ -201,9 +201,11 @@ def _continuum_arrays(wave, flux, err, mask, smoothing=300.0 * u.AA, window=12.0
     ax, ay, sig = _without_spikes(ax, ay, sig)
     fit = _upper_envelope(ax, ay, sig, smoothing, below_weight, max_iter)
     full = fit(wave)
-    # Outside the anchors hold the end values rather than extrapolating a cubic.
-    full[wave < ax[0]] = fit(ax[:1])[0]
-    full[wave > ax[-1]] = fit(ax[-1:])[0]
+    # Outside the anchors hold the end values rather than extrapolating a cubic (both ends in one
+    # call: the spline's value at a point does not depend on the other points asked for)
+    first, last = fit(ax[[0, -1]])
+    full[wave < ax[0]] = first
+    full[wave > ax[-1]] = last
     return full
 
 
@@ -379,12 +381,7 @@ class _PSpline:
         # (ncoef, ncoef) matrix, which grows with the square of the wavelength range (a model
         # spectrum from 0.15 to 300 microns asked for 74 GB). Its entries are small integers,
         # exact in any order, times lam / h^3: what scipy.sparse's product gave, to the bit.
-        second = np.array([1.0, -2.0, 1.0])
-        counts = np.zeros((4, ncoef))
-        for i in range(3):
-            for j in range(i, 3):
-                counts[3 - (j - i), j:j + ncoef - 2] += second[i] * second[j]
-        self.penalty_bands = (lam / h**3) * counts
+        self.penalty_bands = (lam / h**3) * _penalty_counts(ncoef)
         # per pair of stored basis entries of one anchor (columns j <= l <= j + 3), where their
         # product goes in the bands
         B = self.basis
@@ -393,13 +390,20 @@ class _PSpline:
         self.pairs = None
         if B.has_sorted_indices and per_row.size and np.all(per_row == per_row[0]):
             r = int(per_row[0])
-            a = (B.indptr[:-1, None, None] + np.arange(r)[None, :, None]).repeat(r, axis=2).reshape(-1, r * r)
-            b = (B.indptr[:-1, None, None] + np.arange(r)[None, None, :]).repeat(r, axis=1).reshape(-1, r * r)
-            offset = B.indices[b] - B.indices[a]
-            keep = (offset >= 0) & (offset <= 3)
-            # row by row (C order): each band entry gets its anchors' products in anchor order
-            a, b, offset = a[keep], b[keep], offset[keep]
+            if r == 4 and np.all(np.diff(B.indices.reshape(-1, r), axis=1) == 1):
+                # each anchor's four consecutive columns (what design_matrix gives): the pairs are the
+                # same for every anchor, made once per anchor count (the general way's numbers)
+                a, b, offset = _consecutive_pairs(B.shape[0])
+            else:
+                a = (B.indptr[:-1, None, None] + np.arange(r)[None, :, None]).repeat(r, axis=2).reshape(-1, r * r)
+                b = (B.indptr[:-1, None, None] + np.arange(r)[None, None, :]).repeat(r, axis=1).reshape(-1, r * r)
+                offset = B.indices[b] - B.indices[a]
+                keep = (offset >= 0) & (offset <= 3)
+                # row by row (C order): each band entry gets its anchors' products in anchor order
+                a, b, offset = a[keep], b[keep], offset[keep]
             self.pairs = (a, b, (3 - offset) * ncoef + B.indices[b])
+            # what every reweighting gathers of the basis: gathered once (the same products, elementwise)
+            self._pair_data = (B.data[a], B.data[b], self.rows[b])
 
     def _normal_bands(self, w):
         """Upper bands of B^T diag(w) B + penalty, as the sparse product gives them (see the class docstring)."""
@@ -410,9 +414,10 @@ class _PSpline:
             for k in range(4):
                 bands[3 - k, k:] = normal.diagonal(k)
             return bands + self.penalty_bands
-        a, b, target = self.pairs
-        weighted = B.data * w[self.rows]                       # B.multiply(w[:, None])
-        summed = np.bincount(target, weights=B.data[a] * weighted[b], minlength=4 * B.shape[1])
+        _, _, target = self.pairs
+        data_a, data_b, rows_b = self._pair_data
+        # B.data[a] * (B.data * w[rows])[b]: B.multiply(w[:, None]) at the pairs' second entries
+        summed = np.bincount(target, weights=data_a * (data_b * w[rows_b]), minlength=4 * B.shape[1])
         return summed.reshape(4, -1) + self.penalty_bands
 
     def coefficients(self, y, w):
@@ -441,6 +446,37 @@ class _PSpline:
     def fit(self, y, w):
         """:meth:`curve` of :meth:`coefficients`."""
         return self.curve(self.coefficients(y, w))
+
+
+@functools.lru_cache(maxsize=16)
+def _penalty_counts(ncoef):
+    """D2^T D2 (second differences of ``ncoef`` coefficients) in LAPACK's upper banded storage (read only)."""
+    second = np.array([1.0, -2.0, 1.0])
+    counts = np.zeros((4, ncoef))
+    for i in range(3):
+        for j in range(i, 3):
+            counts[3 - (j - i), j:j + ncoef - 2] += second[i] * second[j]
+    counts.flags.writeable = False
+    return counts
+
+
+@functools.lru_cache(maxsize=16)
+def _consecutive_pairs(rows):
+    """(a, b, column offset) of the stored-entry pairs of ``rows`` anchors of four consecutive columns each.
+
+    What :class:`_PSpline`'s general construction gives for such a basis, in its order (anchor by
+    anchor, then a, then b): made once per anchor count (read only).
+    """
+    r = 4
+    start = r * np.arange(rows)
+    a = (start[:, None, None] + np.arange(r)[None, :, None]).repeat(r, axis=2).reshape(-1, r * r)
+    b = (start[:, None, None] + np.arange(r)[None, None, :]).repeat(r, axis=1).reshape(-1, r * r)
+    offset = b - a
+    keep = (offset >= 0) & (offset <= 3)
+    out = a[keep], b[keep], offset[keep]
+    for x in out:
+        x.flags.writeable = False
+    return out
 
 
 @functools.lru_cache(maxsize=1)

@@ -343,24 +343,48 @@ def smooth_to_fwhm(wave, flux, good, fwhm_in, fwhm_out):
     """
     step = float(np.median(np.diff(wave)))
     grid = np.arange(wave[0], wave[-1] + step / 2, step)
-    fg = np.interp(grid, wave[good], flux[good])
-    gg = np.interp(grid, wave, good.astype(float))
+    # with every pixel good the mask is 1 everywhere, and stays so smoothed (to rounding): not made
+    all_good = bool(good.all())
+    fg = np.interp(grid, wave, flux) if all_good else np.interp(grid, wave[good], flux[good])
+    gg = None if all_good else np.interp(grid, wave, good.astype(float))
     fin = np.broadcast_to(np.interp(grid, wave, np.broadcast_to(fwhm_in, wave.shape)), grid.shape)
     fout = fwhm_out if np.ndim(fwhm_out) == 0 else np.interp(grid, wave, fwhm_out)
     # FWHM = 2 sqrt(2 ln 2) sigma = 2.3548 sigma for a Gaussian (common practice)
     sig = np.sqrt(np.clip(fout ** 2 - fin ** 2, 0.0, None)) / 2.3548 / step   # pixels
     if np.all(sig < 0.3):
-        return grid, fg, gg > 0.5
+        return grid, fg, np.ones(grid.size, bool) if all_good else gg > 0.5
     levels = np.unique(np.round(np.linspace(sig.min(), sig.max(), 5), 3))
-    smooth = np.array([gaussian_filter1d(fg, lv, mode="nearest") if lv > 0.3 else fg for lv in levels])
-    gsm = gaussian_filter1d(gg, float(levels.max()), mode="nearest")
+    ok = np.ones(grid.size, bool) if all_good else gaussian_filter1d(gg, float(levels.max()), mode="nearest") > 0.5
     if len(levels) == 1:
-        return grid, smooth[0], gsm > 0.5
+        return grid, _smoothed_where(fg, levels[0], 0, grid.size), ok
     j = np.clip(np.searchsorted(levels, sig) - 1, 0, len(levels) - 2)
     t = np.clip((sig - levels[j]) / (levels[j + 1] - levels[j]), 0.0, 1.0)
+    # each level is needed only where it brackets sig, about two fifths of the grid: smoothed there
+    # alone (with its kernel's reach beside), the same numbers as smoothing the whole grid
+    smooth = np.empty((len(levels), grid.size))
+    for i, lv in enumerate(levels):
+        used = np.flatnonzero((j == i) | (j == i - 1))
+        if used.size:
+            first, last = int(used[0]), int(used[-1]) + 1
+            smooth[i, first:last] = _smoothed_where(fg, lv, first, last)
     idx = np.arange(grid.size)
     out = smooth[j, idx] * (1.0 - t) + smooth[j + 1, idx] * t
-    return grid, out, gsm > 0.5
+    return grid, out, ok
+
+
+def _smoothed_where(flux, sigma, first, last):
+    """``gaussian_filter1d(flux, sigma, mode="nearest")[first:last]`` (``flux`` itself for sigma <= 0.3).
+
+    Filtered over ``first:last`` and the kernel's reach on either side only: every output pixel
+    sees the same input pixels (the same edge pixels repeated at the spectrum's ends) and the
+    same weights as in the whole array's filtering, so the numbers are the same to the bit
+    (tests/test_smoothing.py).
+    """
+    if sigma <= 0.3:
+        return flux[first:last]
+    reach = int(4.0 * float(sigma) + 0.5)    # gaussian_filter1d's kernel radius at its default truncate=4
+    lo, hi = max(first - reach, 0), min(last + reach, flux.size)
+    return gaussian_filter1d(flux[lo:hi], sigma, mode="nearest")[first - lo:last - lo]
 
 
 class RestGrid(NamedTuple):
@@ -394,8 +418,9 @@ def rest_pixels(spectrum, rv=None):
     good = np.isfinite(flux) & np.isfinite(wave)
     if spectrum.mask is not None:
         good &= ~np.asarray(spectrum.mask, bool)
-    order = np.argsort(wave)
-    wave, flux, good = wave[order], flux[order], good[order]
+    if not np.all(wave[1:] > wave[:-1]):   # as read, the axis increases already: nothing to reorder
+        order = np.argsort(wave)
+        wave, flux, good = wave[order], flux[order], good[order]
     if rv is not None and np.isfinite(u.Quantity(rv, u.km / u.s).value):
         wave = wave / float(doppler_factor(u.Quantity(rv, u.km / u.s)))
     return RestPixels(wave, flux, good)
@@ -456,5 +481,5 @@ def on_rest_grid(spectrum, grid, fwhm_out, rv=None, fwhm_in=None, resolving_powe
     fine, smooth, fine_good = smooth_to_fwhm(wave, np.where(good, flux, 0.0), good, fwhm_in, fwhm_out)
     inside = (grid >= fine[0]) & (grid <= fine[-1])
     on = np.interp(grid, fine, smooth)
-    ok = inside & (np.interp(grid, fine, fine_good.astype(float)) > 0.99)
+    ok = inside if fine_good.all() else inside & (np.interp(grid, fine, fine_good.astype(float)) > 0.99)
     return RestGrid(on, ok, fwhm_in, assumed, wave)

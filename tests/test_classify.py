@@ -301,6 +301,52 @@ def test_one_lattice_pass_gives_the_posterior_and_split_of_separate_passes(sun_s
     assert sum(s is None for s in splits) > 50 and sum(s is not None for s in splits) > 100   # both paths seen
 
 
+def _scaled_per_side_by_selection(xo, m, s, weights, side, scale_sigma):
+    """The line-strength scale per half as first written, three selections per side (the reference)."""
+    penalties = {}
+    a = weights / s ** 2
+    prior = 1.0 / scale_sigma ** 2
+    for sd in (-1, 0, 1):
+        sel = side == sd
+        if not sel.any():
+            continue
+        num = np.sum(a[..., sel] * xo[sel] * m[..., sel], axis=-1) + prior
+        den = np.sum(a[..., sel] * m[..., sel] ** 2, axis=-1) + prior
+        k = np.clip(num / den, 0.25, 4.0)
+        m[..., sel] *= k[..., None]
+        penalties[sd] = 0.5 * (k - 1.0) ** 2 * prior
+    return penalties
+
+
+def test_line_strength_scales_from_one_copy_per_side_are_the_selections(sun_spectrum):
+    # the per-side scale copies each side's part of the lattice once: the same model and penalties to
+    # the bit as selecting it for each use. Inputs: the default calibration's standards' criteria (JHC
+    # and MILES, scripts/fit_default_calibration.py), some with criteria or a whole side missing, and the
+    # Kurucz Sun's (rms-solar)
+    from specan.classify import relations
+    from specan.classify.criteria import SIDES
+
+    cal = C.default_calibration()
+    fine = cal.lattice_model()
+    sun = C.spectrum_criteria(sun_spectrum, cal.resolution, rv=0 * u.km / u.s)
+    rng = np.random.default_rng(7)
+    cases = [(sun["values"], sun["noise"])]
+    for st in cal.standards_[::25]:
+        x = np.array(st["criteria"], float)
+        cases.append((x, np.abs(rng.normal(0.0, 0.02, x.size))))
+        cases.append((np.where(rng.random(x.size) < 0.3, np.nan, x), np.full(x.size, 0.01)))
+        cases.append((np.where(SIDES == -1, np.nan, x), np.zeros(x.size)))
+    for x, noise in cases:
+        ok = np.isfinite(x)
+        s = np.sqrt(fine["scatter"][:, None, ok] ** 2 + noise[ok] ** 2)
+        m_new, m_ref = fine["class_means"][..., ok], fine["class_means"][..., ok]
+        args = (s, fine["weights"][ok], SIDES[ok], fine["scale_sigma"])
+        new = relations._scale_line_strengths_per_side(x[ok], m_new, *args)
+        ref = _scaled_per_side_by_selection(x[ok], m_ref, *args)
+        assert np.array_equal(m_new, m_ref) and new.keys() == ref.keys()
+        assert all(np.array_equal(new[k], ref[k]) for k in ref)
+
+
 def test_criteria_track_temperature(jhc_criteria):
     # Published behaviour of the MK criteria (Gray & Corbally 2009, from memory): the Balmer
     # lines peak in the A stars, Ca II K grows from A to K, TiO appears only in M stars.
@@ -953,3 +999,38 @@ def test_sun_gravity_makes_it_a_dwarf(sun_spectrum):
     assert "gravity_conflict" not in res["flags"]
     without = C.classify(sun_spectrum, parameters=False)
     assert without["logg"] is None and without["lumclass_prob"]["V"] < res["lumclass_prob"]["V"]
+
+
+def test_teff_estimate_kept_per_code_is_the_scales_average():
+    # the classes' Teffs at a code are kept per (code, error): the same Teff and error as asking
+    # the scales (specan.mkscales: Pecaut & Mamajek 2013 for dwarfs and the others named there) each time
+    from specan.classify.relations import LUMS
+    from specan.classify.verdict import teff_estimate
+    from specan.mkscales import teff_from_type
+    from specan.mktypes import number_to_lumclass
+
+    rng = np.random.default_rng(3)
+    for code, err in ((42.0, 0.5), (42.0, 0.5), (10.25, 1.7), (63.5, 0.5), (0.0, 3.0), (42.0, 0.9)):
+        prob = rng.dirichlet(np.ones(5))
+        tk = np.array([teff_from_type(code, number_to_lumclass(n), err)[0].to_value(u.K) for n in LUMS])
+        te = np.array([teff_from_type(code, number_to_lumclass(n), err)[1].to_value(u.K) for n in LUMS])
+        mean = float(np.sum(prob * tk))
+        spread = float(np.sqrt(np.sum(prob * (te ** 2 + (tk - mean) ** 2))))
+        teff, teff_err = teff_estimate(code, err, prob)
+        assert teff.to_value(u.K) == mean and teff_err.to_value(u.K) == spread
+
+
+def test_band_integrals_are_scipys_cumulative_trapezoid(sun_spectrum):
+    # the criteria's band integrals are scipy's cumulative trapezoid, summed in its order: the same
+    # numbers (Kurucz Sun from rms-solar, its wavelengths and a mask)
+    from scipy.integrate import cumulative_trapezoid
+
+    from specan.classify.criteria import _cumulative_trapezoid
+
+    w = sun_spectrum.spectral_axis.to_value(u.AA)
+    f = sun_spectrum.flux.value
+    good = np.ones(w.size, bool)
+    good[::13] = False
+    for y in (f, good.astype(float), f[:2]):
+        x = w[:y.size]
+        assert np.array_equal(_cumulative_trapezoid(y, np.diff(x)), cumulative_trapezoid(y, x, initial=0.0))

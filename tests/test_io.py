@@ -455,3 +455,93 @@ def test_vacuum_spectrum_in_air_is_vacuum_to_air_to_the_bit(kurucz_sun):
     nm = Spectrum(flux=np.ones(50) * u.dimensionless_unscaled, spectral_axis=np.linspace(400.0, 700.0, 50) * u.nm,
                   meta={"specan": ObsInfo(medium="vacuum", medium_assumed=False)})
     assert np.array_equal(wavelength_in(nm, "air"), vacuum_to_air(nm.spectral_axis.to(u.AA)).to_value(u.AA))
+
+
+@pytest.mark.parametrize("ctype,cunit,crval,step,key,crpix", [
+    ("WAVE", "Angstrom", 4000.0, 1.25, "CDELT1", 1.0),
+    ("AWAV", "nm", 400.0, 0.125, "CD1_1", 11.5),
+    ("AWAV", "Angstrom", 9000.0, -0.75, "CDELT1", 1.0),   # decreasing: read reversed
+    ("WAVE-LOG", "m", 4.0e-7, 1.0e-11, "CDELT1", 1.0),
+])
+def test_spectrum_wcs_describes_the_wavelengths_read(tmp_path, ctype, cunit, crval, step, key, crpix):
+    # a linear axis gets a 1-D FITS WCS (cheaper than specutils' lookup table), a log-linear one
+    # specutils' own; either gives the wavelengths read (astropy.wcs's implementation of Greisen et
+    # al. 2006 is the outside reference) to 1e-12, and prepare() hands the WCS on with the axis
+    from specutils.utils.wcs_utils import SpectralGWCS
+
+    from specan.io import LINEAR_TOLERANCE
+
+    h = fits.Header()
+    h["CTYPE1"], h["CUNIT1"], h["CRVAL1"], h[key], h["CRPIX1"] = ctype, cunit, crval, step, crpix
+    path = tmp_path / "s.fits"
+    fits.PrimaryHDU(_flux().astype(np.float32), header=h).writeto(path)
+    s = specan.read(path)
+    got = s.spectral_axis.to_value(u.AA)
+    expected = _expected_from_wcs(h, N)
+    assert np.allclose(got, expected[::-1] if step < 0 else expected, rtol=1e-12, atol=0)
+    described = s.wcs.pixel_to_world(np.arange(N)).to_value(u.AA)
+    assert np.max(np.abs(described / got - 1.0)) <= 2 * LINEAR_TOLERANCE
+    if ctype.endswith("-LOG"):
+        assert isinstance(s.wcs, SpectralGWCS)
+    else:
+        assert isinstance(s.wcs, WCS) and s.wcs.wcs.ctype[0] == ctype
+    p = specan.prepare(s)
+    assert p.wcs is s.wcs and p.spectral_axis is s.spectral_axis
+
+
+def test_linear_wcs_only_for_a_linear_axis():
+    from specan.io import linear_wcs
+
+    w = 4000.0 + 0.5 * np.arange(3000)
+    assert linear_wcs(w) is not None and linear_wcs(w, "vacuum").wcs.ctype[0] == "WAVE"
+    bent = w.copy()
+    bent[1500] += 1e-6            # 2e-10 relative: not linear
+    assert linear_wcs(bent) is None
+    assert linear_wcs(np.exp(np.linspace(8.3, 8.6, 3000))) is None
+    assert linear_wcs(w[:1]) is None
+
+
+def test_header_cards_are_the_cards_astropy_parses(tmp_path):
+    # ObsInfo.header parses a card when it is read; its names and values are what astropy's own
+    # Header gives card by card (repeated names: the first card's value), COMMENT/HISTORY/blank left out
+    from specan.io._common import HeaderCards
+
+    h = fits.Header()
+    h.update({"CTYPE1": "AWAV", "CUNIT1": "Angstrom", "CRPIX1": 1.0, "CRVAL1": 4000.0, "CDELT1": 1.25,
+              "OBJECT": "HD 1 ", "EXPTIME": 300, "FLAG": True, "BIG": 1.5e300})
+    h["COMMENT"] = "a comment"
+    h["HISTORY"] = "a history"
+    h.append(("", "blank card"))
+    h.append(("NOTE", "first"))
+    h.append(("NOTE", "second"))
+    path = tmp_path / "s.fits"
+    fits.PrimaryHDU(_flux().astype(np.float32), header=h).writeto(path)
+    info = get_info(specan.read(path))
+    on_disk = fits.getheader(path)
+    expected = {k: on_disk[k] for k in on_disk.keys() if k not in ("COMMENT", "HISTORY", "")}
+    assert isinstance(info.header, HeaderCards)
+    assert list(info.header) == list(expected) and dict(info.header) == expected
+    assert info.header["NOTE"] == "first" and info.header["OBJECT"] == "HD 1" and info.header["FLAG"] is True
+    assert "COMMENT" not in info.header and len(info.header) == len(expected)
+    with pytest.raises(KeyError):
+        info.header["HISTORY"]
+    copied = info.copy()
+    assert dict(copied.header) == expected
+    prepared = get_info(specan.prepare(specan.read(path)))
+    assert dict(prepared.header) == expected
+
+
+@pytest.mark.parametrize("unit", [u.AA, u.nm, u.um])
+def test_wavelengths_in_angstrom_are_astropys_conversion(unit):
+    # wavelength_in and spectrum_arrays copy an axis already in Angstrom and convert any other as
+    # astropy does: the same numbers, and never a view the caller could write into the spectrum through
+    from specutils import Spectrum
+
+    from specan.obsinfo import ObsInfo, spectrum_arrays, wavelength_in
+
+    axis = (np.linspace(4000.0, 5000.0, 700) * u.AA).to(unit)
+    s = Spectrum(spectral_axis=axis, flux=np.ones(700) * u.one, meta={"specan": ObsInfo(medium="air")})
+    for w in (wavelength_in(s, "air"), spectrum_arrays(s)[0]):
+        assert np.array_equal(w, s.spectral_axis.to_value(u.AA))
+        w[0] = -1.0
+        assert s.spectral_axis[0].to_value(u.AA) > 0

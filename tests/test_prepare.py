@@ -369,6 +369,25 @@ def test_continuum_normal_equations_are_the_sparse_product_to_the_bit(kurucz_sun
             assert np.array_equal(spline.basis @ coef, sparse_way)
 
 
+def test_continuum_pairs_made_once_per_anchor_count_are_the_general_ones(kurucz_sun):
+    # design_matrix gives every anchor four consecutive columns, so the spline's pairs of stored
+    # entries are made once per anchor count: the same (a, b, band position), in the same order, as
+    # the construction from the basis's own indices (anchors: the Kurucz Sun's window maxima, rms-solar)
+    from specan.prepare import _PSpline, _window_maxima
+
+    w_sun, f_sun, _ = kurucz_sun
+    for k in (3, 7, 20):
+        x, _ = _window_maxima(w_sun, f_sun, k)
+        spline = _PSpline(x, lam=(300.0 / (2 * np.pi)) ** 4, knot_spacing=30.0)
+        B, ncoef, r = spline.basis, spline.basis.shape[1], 4
+        a = (B.indptr[:-1, None, None] + np.arange(r)[None, :, None]).repeat(r, axis=2).reshape(-1, r * r)
+        b = (B.indptr[:-1, None, None] + np.arange(r)[None, None, :]).repeat(r, axis=1).reshape(-1, r * r)
+        offset = B.indices[b] - B.indices[a]
+        keep = (offset >= 0) & (offset <= 3)
+        general = (a[keep], b[keep], (3 - offset[keep]) * ncoef + B.indices[b[keep]])
+        assert all(np.array_equal(p, q) for p, q in zip(spline.pairs, general))
+
+
 def test_row_nanmedian_is_numpys():
     from specan.prepare import _row_nanmedian
 

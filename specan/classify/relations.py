@@ -215,10 +215,14 @@ def _scale_line_strengths_per_side(xo, m, s, weights, side, scale_sigma):
         sel = side == sd
         if not sel.any():
             continue
-        num = np.sum(a[..., sel] * xo[sel] * m[..., sel], axis=-1) + prior
-        den = np.sum(a[..., sel] * m[..., sel] ** 2, axis=-1) + prior
+        # the side's part of the lattice copied out once for both sums and the scaling, then put back:
+        # the values three selections per side gave, to the bit (tests/test_classify.py)
+        ms, asel = m[..., sel], a[..., sel]
+        num = np.sum(asel * xo[sel] * ms, axis=-1) + prior
+        den = np.sum(asel * ms ** 2, axis=-1) + prior
         k = np.clip(num / den, 0.25, 4.0)
-        m[..., sel] *= k[..., None]
+        ms *= k[..., None]
+        m[..., sel] = ms
         penalties[sd] = 0.5 * (k - 1.0) ** 2 * prior
     return penalties
 

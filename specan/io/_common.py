@@ -4,6 +4,7 @@ from __future__ import annotations
 
 import functools
 import re
+from collections.abc import Mapping
 from dataclasses import dataclass, field
 
 import astropy.units as u
@@ -174,6 +175,38 @@ def _time(value, fmt, scale):
         raise MetadataError(f"cannot read observation time {value!r}") from exc
 
 
+class HeaderCards(Mapping):
+    """A header's cards as name -> value (no COMMENT, HISTORY or blank cards), each parsed when first read.
+
+    What ``{k: header[k] for k in header.keys()}`` gives, without parsing every card of every
+    file: astropy parses a card's value on first access, ~20 us a card (measured), and most
+    cards are never read again (a night's 300-card headers would cost 6 ms a file). The values
+    are astropy's own (``header[k]``: the first card of a repeated name), the names in the
+    order of their first card. Works on any mapping with ``keys()`` (a FITS ``Header``, a dict).
+    """
+
+    _SKIPPED = ("COMMENT", "HISTORY", "")
+
+    def __init__(self, header):
+        self._header = header
+        self._names = list(dict.fromkeys(k for k in header.keys() if k not in self._SKIPPED))
+        self._known = set(self._names)
+
+    def __getitem__(self, name):
+        if name not in self._known:
+            raise KeyError(name)
+        return self._header[name]
+
+    def __iter__(self):
+        return iter(self._names)
+
+    def __len__(self):
+        return len(self._names)
+
+    def __repr__(self):
+        return f"HeaderCards({dict(self)!r})"
+
+
 def header_metadata(header, info: ObsInfo) -> ObsInfo:
     """Fill ``info`` from FITS-style header cards (FITS standard 4.0 keywords).
 
@@ -183,7 +216,7 @@ def header_metadata(header, info: ObsInfo) -> ObsInfo:
     EQUINOX. Site: OBSGEO-X/Y/Z (m, geocentric) or OBSGEO-B/L/H (deg, deg, m).
     Medium from CTYPE1 (AWAV air, WAVE vacuum).
     """
-    info.header = {k: header[k] for k in header.keys() if k not in ("COMMENT", "HISTORY", "")}
+    info.header = HeaderCards(header)
     obj = _card(header, "OBJECT", "OBJNAME", "TARGNAME")
     if obj is not None:
         info.object = str(obj).strip()
