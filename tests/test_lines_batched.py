@@ -347,19 +347,28 @@ def test_cached_gaussian_kernels_equal_scipys_filter():
                                   gaussian_filter1d(values[0], w, mode="nearest")), w
 
 
-def test_batched_voigt_parts_equal_the_one_by_one_derivatives():
-    # the Voigt batch's profile and derivatives (specan/lines/batchfit.py) against the one-by-one
-    # fit's (specan/lines/profiles.py): the same formulas, the divisions arranged otherwise
-    from specan.lines import batchfit
+def test_voigt_and_derivatives_against_scipy_and_finite_differences():
+    # the profile and analytic Jacobian both fit paths use (specan/lines/profiles.py): the profile
+    # against scipy.special.voigt_profile, the derivatives against central differences of it;
+    # the batched layout (out=, at=) writes the same numbers at the given points and nothing else
+    from scipy.special import voigt_profile
+
     from specan.lines.profiles import voigt_and_derivatives
 
     rng = np.random.default_rng(11)
     dx = rng.uniform(-60.0, 60.0, 2000)
     sigma = rng.uniform(0.3, 5.0, 2000)
-    gamma = rng.uniform(0.0, 8.0, 2000)
+    gamma = rng.uniform(0.01, 8.0, 2000)
+    v, d_x, d_s, d_g = voigt_and_derivatives(dx, sigma, gamma)
+    np.testing.assert_allclose(v, voigt_profile(dx, sigma, gamma), rtol=1e-12, atol=1e-15)
+    h = 1e-5
+    for analytic, (a, b) in ((d_x, ((dx + h, sigma, gamma), (dx - h, sigma, gamma))),
+                             (d_s, ((dx, sigma + h, gamma), (dx, sigma - h, gamma))),
+                             (d_g, ((dx, sigma, gamma + h), (dx, sigma, gamma - h)))):
+        numerical = (voigt_profile(*a) - voigt_profile(*b)) / (2 * h)
+        np.testing.assert_allclose(analytic, numerical, rtol=1e-5, atol=1e-9 * np.abs(numerical).max())
     at = np.arange(0, 4000, 2)
-    out = np.zeros((4, 4000))
-    batchfit._voigt_parts(dx, sigma, gamma, out, at)
-    for mine, theirs in zip(out[:, at], voigt_and_derivatives(dx, sigma, gamma)):
-        np.testing.assert_allclose(mine, theirs, rtol=1e-12, atol=1e-15 * np.abs(theirs).max())
+    out = voigt_and_derivatives(dx, sigma, gamma, out=np.zeros((4, 4000)), at=at)
+    for mine, plain in zip(out[:, at], (v, d_x, d_s, d_g)):
+        assert np.array_equal(mine, plain)
     assert not out[:, 1::2].any()

@@ -29,10 +29,17 @@ its arithmetic (scipy's ``least_squares`` alone spent ~2.7 ms a Voigt fit, measu
 from __future__ import annotations
 
 import numpy as np
-from scipy.special import voigt_profile, wofz
+from scipy.special import voigt_profile
 
 from ..resolution import GAUSS_FWHM
-from .profiles import best_grid_point, fit_profile, fit_summary, start_and_bounds, window_arrays
+from .profiles import (
+    best_grid_point,
+    fit_profile,
+    fit_summary,
+    start_and_bounds,
+    voigt_and_derivatives,
+    window_arrays,
+)
 
 #: Damping widths (times the Gaussian sigma) a start is chosen from (:func:`_direct_starts`).
 _DAMPING_GRID = np.logspace(-2.0, 2.5, 46)
@@ -433,22 +440,6 @@ def _direct_starts(data, problems, live, x, y, cont, wts, ncomp, p, lb, ub):
         p[rows, col] = np.clip(value, lb[rows, col] + 1e-6 * span[:, col], ub[rows, col] - 1e-6 * span[:, col])
 
 
-def _voigt_parts(dx, sigma, gamma, out, at):
-    """:func:`specan.lines.profiles.voigt_and_derivatives` written into ``out[:, at]`` (rows: profile, d/dx,
-    d/dsigma, d/dgamma): the same formulas, the divisions by per-point factors made once."""
-    inv_s2 = 1.0 / (sigma * np.sqrt(2.0))
-    inv_norm = 1.0 / (sigma * np.sqrt(2.0 * np.pi))
-    z = (dx + 1j * gamma) * inv_s2
-    w = wofz(z)
-    dw = 2j / np.sqrt(np.pi) - 2.0 * z * w
-    v = w.real * inv_norm
-    scale = inv_s2 * inv_norm
-    out[0, at] = v
-    out[1, at] = dw.real * scale
-    out[2, at] = -((dw * z).real * inv_norm + v) / sigma
-    out[3, at] = -dw.imag * scale
-
-
 def _solve(m, rhs):
     """Solutions of the stacked systems ``m x = rhs`` (least squares where one is singular)."""
     try:
@@ -462,8 +453,7 @@ class _VoigtModel:
 
     Model (as :func:`specan.lines.profiles.fit_profile`): ``cont (1 - sum_k W_k V(x - c_k - shift;
     sigma, gamma))``; parameters ``(shift, sigma, gamma, W_1..W_n)``; profile and derivatives
-    from one Faddeeva evaluation (:func:`_voigt_parts`, the formulas of
-    :func:`specan.lines.profiles.voigt_and_derivatives`).
+    from one Faddeeva evaluation (:func:`specan.lines.profiles.voigt_and_derivatives`).
 
     The Faddeeva function is most of a fit's cost (~0.12 us a point, against a few ns for the
     rest), so it is evaluated only where it counts: at the real components (not the padding of
@@ -496,7 +486,7 @@ class _VoigtModel:
         # components weighted by the equivalent widths in one call: a model evaluation is a
         # dozen numpy calls on small arrays, their count (not the arithmetic) its cost
         parts = np.zeros((4, dx.size))
-        _voigt_parts(dx.take(self.at), sig, gam, parts, self.at)
+        voigt_and_derivatives(dx.take(self.at), sig, gam, out=parts, at=self.at)
         parts = parts.reshape((4,) + dx.shape)
         sums = np.einsum("bc,kbcp->bpk", p[:, 3:], parts)
         cw = self.cw
