@@ -179,17 +179,15 @@ TABLE_ORDER = 6
 
 def _observer_velocity_ms(geocentric, day, frac):
     """The observer's barycentric velocity (m/s, ICRS axes) at a site at MJD ``day + frac`` (UTC),
-    by Lagrange interpolation of :func:`_observer_table` over the :data:`TABLE_ORDER` nodes about it."""
+    by polynomial (Lagrange) interpolation of :func:`_observer_table` over the :data:`TABLE_ORDER`
+    nodes about it (scipy's barycentric form)."""
+    from scipy.interpolate import barycentric_interpolate
+
     nodes, table = _observer_table(geocentric, day)
     first = int(math.floor((frac - nodes[0]) / TABLE_STEP)) - (TABLE_ORDER // 2 - 1)
     first = min(max(first, 0), nodes.size - TABLE_ORDER)
-    x = nodes[first:first + TABLE_ORDER]
-    weights = np.ones(TABLE_ORDER)
-    for j in range(TABLE_ORDER):
-        for k in range(TABLE_ORDER):
-            if k != j:
-                weights[j] *= (frac - x[k]) / (x[j] - x[k])
-    return np.sum(table[first:first + TABLE_ORDER] * weights[:, None], axis=0)
+    near = slice(first, first + TABLE_ORDER)
+    return barycentric_interpolate(nodes[near], table[near], frac, axis=0)
 
 
 @functools.lru_cache(maxsize=64)
@@ -284,12 +282,8 @@ def galactic_rest_frame_velocity(rv, coord):
         v_GRF in km/s, with astropy's Galactocentric "v4.0" defaults (solar motion
         Drimmel & Poggio 2018 / Reid & Brunthaler 2004, R0 GRAVITY 2018).
     """
-    if isinstance(coord, np.ndarray):
-        toward = coord
-    else:
-        icrs = coord.icrs
-        ra, dec = icrs.ra.rad, icrs.dec.rad
-        toward = np.array([np.cos(dec) * np.cos(ra), np.cos(dec) * np.sin(ra), np.sin(dec)])
+    # astropy's unit vector (a coordinate with a distance too: only its direction counts)
+    toward = coord if isinstance(coord, np.ndarray) else coord.icrs.represent_as("unitspherical").to_cartesian().xyz.value
     return (u.Quantity(rv, _KMS).value + sun_motion_toward_kms(toward)) * _KMS
 
 
