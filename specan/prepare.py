@@ -395,12 +395,7 @@ class _PSpline:
                 # same for every anchor, made once per anchor count (the general way's numbers)
                 a, b, offset = _consecutive_pairs(B.shape[0])
             else:
-                a = (B.indptr[:-1, None, None] + np.arange(r)[None, :, None]).repeat(r, axis=2).reshape(-1, r * r)
-                b = (B.indptr[:-1, None, None] + np.arange(r)[None, None, :]).repeat(r, axis=1).reshape(-1, r * r)
-                offset = B.indices[b] - B.indices[a]
-                keep = (offset >= 0) & (offset <= 3)
-                # row by row (C order): each band entry gets its anchors' products in anchor order
-                a, b, offset = a[keep], b[keep], offset[keep]
+                a, b, offset = _stored_pairs(B.indptr[:-1], B.indices, r)
             self.pairs = (a, b, (3 - offset) * ncoef + B.indices[b])
             # what every reweighting gathers of the basis: gathered once (the same products, elementwise)
             self._pair_data = (B.data[a], B.data[b], self.rows[b])
@@ -460,6 +455,17 @@ def _penalty_counts(ncoef):
     return counts
 
 
+def _stored_pairs(starts, indices, r):
+    """(a, b, column offset) of the pairs of stored basis entries of one anchor (row) whose columns
+    differ by 0-3, ``starts`` each row's first stored entry, ``r`` entries a row, ``indices`` their
+    columns; row by row (C order): each band entry gets its anchors' products in anchor order."""
+    a = (starts[:, None, None] + np.arange(r)[None, :, None]).repeat(r, axis=2).reshape(-1, r * r)
+    b = (starts[:, None, None] + np.arange(r)[None, None, :]).repeat(r, axis=1).reshape(-1, r * r)
+    offset = indices[b] - indices[a]
+    keep = (offset >= 0) & (offset <= 3)
+    return a[keep], b[keep], offset[keep]
+
+
 @functools.lru_cache(maxsize=16)
 def _consecutive_pairs(rows):
     """(a, b, column offset) of the stored-entry pairs of ``rows`` anchors of four consecutive columns each.
@@ -467,13 +473,8 @@ def _consecutive_pairs(rows):
     What :class:`_PSpline`'s general construction gives for such a basis, in its order (anchor by
     anchor, then a, then b): made once per anchor count (read only).
     """
-    r = 4
-    start = r * np.arange(rows)
-    a = (start[:, None, None] + np.arange(r)[None, :, None]).repeat(r, axis=2).reshape(-1, r * r)
-    b = (start[:, None, None] + np.arange(r)[None, None, :]).repeat(r, axis=1).reshape(-1, r * r)
-    offset = b - a
-    keep = (offset >= 0) & (offset <= 3)
-    out = a[keep], b[keep], offset[keep]
+    # stored entries numbered 0 .. 4 rows - 1 stand for their columns: within an anchor they differ as those do
+    out = _stored_pairs(4 * np.arange(rows), np.arange(4 * rows), 4)
     for x in out:
         x.flags.writeable = False
     return out
