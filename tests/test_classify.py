@@ -1001,6 +1001,19 @@ def test_sun_gravity_makes_it_a_dwarf(sun_spectrum):
     assert without["logg"] is None and without["lumclass_prob"]["V"] < res["lumclass_prob"]["V"]
 
 
+def test_gravity_weighs_the_classes_only_when_asked(sun_spectrum):
+    # With the shipped calibration the log g weighs the classes by default; gravity_weighs=False (the
+    # default with one's own calibration) keeps the criteria's classes and still reports the log g.
+    # Kurucz solar model (rms-solar), a G2 V star.
+    weighed = C.classify(sun_spectrum)
+    kept = C.classify(sun_spectrum, gravity_weighs=False)
+    criteria_only = C.classify(sun_spectrum, parameters=False)
+    assert kept["lumclass_prob"] == criteria_only["lumclass_prob"]
+    assert kept["lumclass_prob"] != weighed["lumclass_prob"]
+    assert kept["logg"] == weighed["logg"]
+    assert any("calibration's own standards define the classes" in n for n in kept["notes"])
+
+
 def test_teff_estimate_kept_per_code_is_the_scales_average():
     # the classes' Teffs at a code are kept per (code, error): the same Teff and error as asking
     # the scales (specan.mkscales: Pecaut & Mamajek 2013 for dwarfs and the others named there) each time

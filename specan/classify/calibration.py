@@ -191,12 +191,12 @@ class Calibration:
             self._fine = fine_model(self.model_, self.settings["depth_scale_sigma"])
         return self._fine
 
-    def classify(self, spectrum, rv=None, resolving_power=None, parameters=True, neighbours=False):
+    def classify(self, spectrum, rv=None, resolving_power=None, parameters=True, neighbours=False, gravity_weighs=True):
         """MK type of a spectrum; see :func:`specan.classify.classify` for the result.
 
         With ``parameters`` the atmospheric parameters are measured too
-        (:func:`specan.parameters.measure`) and the surface gravity weighs the luminosity classes
-        (:mod:`specan.classify.gravity`). With ``neighbours`` the whole spectrum is compared with
+        (:func:`specan.parameters.measure`) and, with ``gravity_weighs``, the surface gravity weighs the
+        luminosity classes (:mod:`specan.classify.gravity`). With ``neighbours`` the whole spectrum is compared with
         the library stars (:mod:`specan.classify.neighbours`) and their types weigh the type
         (:func:`specan.classify.classify` asks for it with the shipped calibration).
         """
@@ -208,7 +208,10 @@ class Calibration:
         atmosphere = (measure_atmosphere(spectrum, meas["rv"], meas["notes"], meas["input_fwhm"],
                                          meas["input_resolving_power"], pixels) if parameters else None)
         weights = None
-        if atmosphere is not None and atmosphere["broader_than_model"]:
+        if atmosphere is not None and not gravity_weighs:
+            meas["notes"].append("log g not used for the luminosity class: the calibration's own standards "
+                                 "define the classes")
+        elif atmosphere is not None and atmosphere["broader_than_model"]:
             meas["notes"].append("log g not used for the luminosity class: the spectrum is broader than the "
                                  "parameter model")
         elif atmosphere is not None:

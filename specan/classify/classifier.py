@@ -26,7 +26,8 @@ def default_calibration():
     return Calibration.from_dict(json.loads(text), DEFAULT_FILE)
 
 
-def classify(spectrum, calibration=None, rv=None, resolving_power=None, parameters=True, neighbours=None):
+def classify(spectrum, calibration=None, rv=None, resolving_power=None, parameters=True, neighbours=None,
+             gravity_weighs=None):
     """MK spectral type, luminosity class, Teff and flags of a spectrum.
 
     Parameters
@@ -43,7 +44,7 @@ def classify(spectrum, calibration=None, rv=None, resolving_power=None, paramete
         metadata give none (see :func:`specan.classify.spectrum_criteria`).
     parameters : bool
         Also measure Teff, log g and [Fe/H] (:func:`specan.parameters.measure`) and let the
-        surface gravity weigh the luminosity classes (:mod:`specan.classify.gravity`).
+        surface gravity weigh the luminosity classes (see ``gravity_weighs``).
     neighbours : bool, optional
         Also compare the whole spectrum with the MILES library stars (at rest, 13 A FWHM,
         normalised alike; :mod:`specan.classify.neighbours`) and let the types of the nearest
@@ -51,6 +52,13 @@ def classify(spectrum, calibration=None, rv=None, resolving_power=None, paramete
         with the shipped calibration, whose standards include those stars, yes; with a
         calibration of one's own standards, no (their system, not the library's, defines the
         types: the synthetic demo standards' A3 V star, for one, is most like MILES B6-B8 stars).
+    gravity_weighs : bool, optional
+        Let the measured surface gravity weigh the luminosity classes (with ``parameters``).
+        Default: with the shipped calibration yes, with a calibration of one's own standards no,
+        for the same reason as ``neighbours``: the parameter model learnt from MILES stars, and
+        one's own standards define the classes (on the demo night's synthetic stars its log g
+        turned 7 of 17 classes, e.g. G2 V into G2.5 IV and M3 III into M3 IV; measured). The log g
+        is reported either way; ``gravity_conflict`` is raised only where it weighs.
 
     Returns
     -------
@@ -72,9 +80,11 @@ def classify(spectrum, calibration=None, rv=None, resolving_power=None, paramete
     """
     if neighbours is None:
         neighbours = calibration is None
+    if gravity_weighs is None:
+        gravity_weighs = calibration is None
     if calibration is None:
         calibration = default_calibration()
     elif not isinstance(calibration, Calibration):
         calibration = Calibration.load(calibration)
     return calibration.classify(spectrum, rv=rv, resolving_power=resolving_power, parameters=parameters,
-                                neighbours=neighbours)
+                                neighbours=neighbours, gravity_weighs=gravity_weighs)
