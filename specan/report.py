@@ -226,8 +226,9 @@ def _assumptions_html(distinct) -> str:
 
         items.append(f"Teff from the spectrum, log g and [Fe/H]: a quadratic spectral model learnt from the MILES "
                      f"library at {MODEL_FWHM:g} A FWHM (Cenarro et al. 2007; Prugniel et al. 2011 parameters); its "
-                     "errors include its cross-validated scatter; spectra broader than the model do not let log g "
-                     "weigh the luminosity class.")
+                     "errors include its cross-validated scatter; log g weighs the luminosity class only with the "
+                     "built-in calibration and for spectra no broader than the model (a calibration of one's own "
+                     "standards sets the classes).")
     items.append(f"Air/vacuum wavelengths converted with {_esc(AIR_VACUUM_FORMULA)} (Morton 2000); files that do "
                  "not state their medium are taken as air (see each row's warnings).")
     items.append(_esc(IERS_NOTE) + ". Velocities are barycentric where time, pointing and site are known, "
