@@ -83,6 +83,9 @@ class Calibration:
                  redundancy_power=0.5, depth_scale_sigma=0.3, grid_step=1.0, cv_folds=5, measure_velocity=True):
         self.resolution = u.Quantity(resolution, u.AA)
         self.source = str(source)
+        #: True only for the calibration shipped with specan (set by ``default_calibration``):
+        #: it decides what :func:`specan.classify.classify` weighs by default.
+        self.builtin = False
         self.settings = {"bandwidth": float(bandwidth), "neighbours": int(neighbours),
                          "ridge": [float(r) for r in ridge], "class_bandwidth": float(class_bandwidth),
                          "class_neighbours": int(class_neighbours), "class_ridge": float(class_ridge),

@@ -23,7 +23,9 @@ def default_calibration():
     except FileNotFoundError:
         raise AnalysisError(f"default calibration {DEFAULT_FILE} missing from specan/data: regenerate it "
                             "with scripts/fit_default_calibration.py") from None
-    return Calibration.from_dict(json.loads(text), DEFAULT_FILE)
+    cal = Calibration.from_dict(json.loads(text), DEFAULT_FILE)
+    cal.builtin = True
+    return cal
 
 
 def classify(spectrum, calibration=None, rv=None, resolving_power=None, parameters=True, neighbours=None,
@@ -78,10 +80,12 @@ def classify(spectrum, calibration=None, rv=None, resolving_power=None, paramete
         ``library_neighbours`` (list of {id, name, mk, rms, weight}: the nearest library stars,
         nearest first, ``rms`` their normalised-flux difference, ``weight`` their share of the vote).
     """
+    # the shipped calibration, whether asked for by None or passed in (the CLI loads it once)
+    builtin = calibration is None or getattr(calibration, "builtin", False)
     if neighbours is None:
-        neighbours = calibration is None
+        neighbours = builtin
     if gravity_weighs is None:
-        gravity_weighs = calibration is None
+        gravity_weighs = builtin
     if calibration is None:
         calibration = default_calibration()
     elif not isinstance(calibration, Calibration):
