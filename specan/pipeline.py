@@ -1,8 +1,8 @@
 """A night's run: every input file through every stage, one catalogue row each.
 
 ``run(paths, out_dir)`` sends each spectrum through read -> prepare -> velocity ->
-lines -> classify -> physics (each stage only if it exists in this
-installation; the catalogue says which ran), draws its plots and writes:
+classify -> lines -> physics (each stage only if it exists in this
+installation; the catalogue says which ran; the lines stage is told the star's type), draws its plots and writes:
 
 ``out_dir/``
     ``catalogue.ecsv`` (and on request ``.csv``, ``.fits``, ``.vot``)
@@ -192,8 +192,11 @@ def analyse_file(path, settings=None) -> dict:
     # lines of the 560 km/s demo star, and of any star faster than c/R at high resolution).
     velocity = _velocity(rec, spectrum) if "velocity" in runs else None
     known = _known_from_velocity(velocity)
-    lines = _lines(rec, spectrum, known) if "lines" in runs else None
+    # The type before the lines: lines of species too hot for the star (He I in a G star) are
+    # then measured but not counted as found.
     classification = _classify(rec, spectrum, known, settings.get("calibration")) if "classify" in runs else None
+    lines = _lines(rec, spectrum, {**known, "star_type": _star_type(classification, velocity)}) \
+        if "lines" in runs else None
     if "physics" in runs and isinstance(classification, dict):
         _physics(rec, raw, velocity, classification, settings.get("photometry"))
     final_info(rec, spectrum)
@@ -269,6 +272,14 @@ def _known_from_velocity(velocity) -> dict:
         # (in the spectrum's frame).
         known["rv"] = velocity["rv_topo"]
     return known
+
+
+def _star_type(classification, velocity):
+    """The star's MK type for the lines stage: the classification's, else the velocity template's."""
+    for result, key in ((classification, "mk"), (velocity, "template_type")):
+        if isinstance(result, dict) and result.get(key):
+            return str(result[key])
+    return None
 
 
 def _lines(rec, spectrum, known):

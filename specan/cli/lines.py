@@ -18,14 +18,20 @@ def lines_file(path, overrides, options):
     spectrum = read(path, **overrides)
     options = dict(options)
     rv_source = "given"
+    type_source = "given" if options.get("star_type") else None
     if options["rv"] == "measure":
         # each line is looked for within one resolution element of its shifted place, so the
         # star's velocity matters (at rest a 560 km/s star at R~2000 lost most of its lines)
         from ..velocity import measure
 
         try:
-            options["rv"] = measure(spectrum, errors="td", barycentric=False)["rv_topo"]
+            vel = measure(spectrum, errors="td", barycentric=False)
+            options["rv"] = vel["rv_topo"]
             rv_source = "velocity stage (cross-correlation)"
+            if not options.get("star_type") and vel.get("template_type"):
+                # the best template's type is close enough to rule out He I in a G star
+                options["star_type"] = vel["template_type"]
+                type_source = "velocity template"
         except SpecanError:
             options["rv"] = None
     if options["rv"] is None:
@@ -44,6 +50,7 @@ def lines_file(path, overrides, options):
             "method": str(r["method"]),
             "blend": [b for b in str(r["blend"]).split(",") if b],
             "detected": bool(r["detected"]), "emission": bool(r["emission"]),
+            "expected": bool(r["expected"]),
         })
     idx = {str(r["name"]): {"value": float(r["value"]), "err": float(r["err"]), "unit": str(r["unit"])}
            for r in indices}
@@ -54,6 +61,7 @@ def lines_file(path, overrides, options):
     return {"file": str(path), "rv_kms": float(meta["rv"].to_value("km/s")), "rv_source": rv_source,
             "resolving_power": meta["resolving_power"],
             "resolving_power_source": meta["resolving_power_source"], "medium": meta["medium"],
+            "star_type": meta.get("star_type"), "star_type_source": type_source if meta.get("star_type") else None,
             "lines": rows, "indices": idx, "unidentified": unknown}
 
 
@@ -72,10 +80,13 @@ def _fmt(v, spec):
                    "stage's (cross-correlation), 'auto' estimates it from the strongest features.")
 @click.option("--profile", type=click.Choice(["auto", "gauss", "voigt"]), default="auto", show_default=True,
               help="Profile fitted to lines (auto: Voigt for hydrogen and very strong lines).")
+@click.option("--star-type", default=None,
+              help="MK type of the star (e.g. 'G2 V'): absorption lines of species too hot for it (He I in a "
+                   "G star) are not counted as found. Default: the velocity template's type with --rv measure.")
 @click.option("--all", "show_all", is_flag=True, help="Also list lines that were not detected.")
 @click.option("--json", "as_json", is_flag=True, help="One JSON object per line per file.")
 @click.pass_context
-def command(ctx, files, linelist, bands, rv, profile, show_all, as_json, **kwargs):
+def command(ctx, files, linelist, bands, rv, profile, star_type, show_all, as_json, **kwargs):
     """Equivalent widths, widths and band indices of each spectrum FILE."""
     import astropy.units as u
 
@@ -90,14 +101,15 @@ def command(ctx, files, linelist, bands, rv, profile, show_all, as_json, **kwarg
             raise click.BadParameter(f"{rv!r} is neither a number (km/s) nor 'measure' or 'auto'",
                                      param_hint="--rv") from None
     overrides = overrides_from(kwargs)
-    options = {"linelist": linelist, "bands": bands, "rv": rv_q, "profile": profile}
+    options = {"linelist": linelist, "bands": bands, "rv": rv_q, "profile": profile, "star_type": star_type}
 
     def show(path, d):
         if as_json:
             echo_json(d)
             return
+        typed = f", lines expected at {d['star_type']} ({d['star_type_source']})" if d["star_type"] else ""
         click.echo(f"{d['file']}: rv {d['rv_kms']:+.1f} km/s ({d['rv_source']}), R {d['resolving_power']:.0f} "
-                   f"({d['resolving_power_source']}), {d['medium']} wavelengths")
+                   f"({d['resolving_power_source']}), {d['medium']} wavelengths{typed}")
         click.echo(f"  {'line':<12} {'lab':>9} {'obs':>9} {'EW/A':>8} {'err':>7} {'FWHM':>6} "
                    f"{'depth':>6}  method / notes")
         for r in d["lines"]:
@@ -107,7 +119,9 @@ def command(ctx, files, linelist, bands, rv, profile, show_all, as_json, **kwarg
             notes = [r["method"]]
             if r["emission"]:
                 notes.append("EMISSION")
-            if not r["detected"]:
+            if not r["expected"]:
+                notes.append(f"not expected at {d['star_type']}")
+            elif not r["detected"]:
                 notes.append("not detected")
             if r["blend"]:
                 notes.append("blend: " + ",".join(r["blend"]))

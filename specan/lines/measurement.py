@@ -26,6 +26,7 @@ from ..resolution import GAUSS_FWHM
 from .components import MIN_SEPARATION, component_centres, window_features, wing_mask
 from .data import DETECT_SIGMA, MIN_DEPTH, LineData, find_features, normalised
 from .hydrogen import without_hydrogen
+from .expected import expected_lines, star_code
 from .listed import blends, line_widths, lines_in_range, match_windows, velocities
 from .batchfit import fit_planned, voigt_batch
 from .profiles import fit_gauss, fit_profile
@@ -64,7 +65,7 @@ def cayrel_error(fwhm, pixel, snr):
 
 def measure(spectrum, linelist=None, rv=0 * u.km / u.s, resolving_power=None, profile="auto",
             window=None, detect_sigma=DETECT_SIGMA, kinds=("atomic",), min_depth=MIN_DEPTH,
-            divide_hydrogen=True, _data=None, _batched=True):
+            divide_hydrogen=True, star_type=None, _data=None, _batched=True):
     """Measure every listed line the spectrum covers.
 
     Per line: the centre is the matched feature (see :func:`identify`) or the
@@ -111,6 +112,11 @@ def measure(spectrum, linelist=None, rv=0 * u.km / u.s, resolving_power=None, pr
         Measure the other lines on the spectrum divided by the fitted hydrogen
         profiles (hydrogen lines with a listed low-excitation line closer than 0.6
         line widths, such as H epsilon and Ca II H, are left in).
+    star_type : str or float, optional
+        The star's MK type (e.g. "G2 V", or its code) when known: lines of species too hot
+        for it (He I absorption in a G star, :mod:`specan.lines.expected`) are measured but
+        not ``detected``, and ``expected`` says so; emission is never ruled out. None: nothing
+        is ruled out.
 
     Returns
     -------
@@ -119,8 +125,8 @@ def measure(spectrum, linelist=None, rv=0 * u.km / u.s, resolving_power=None, pr
         ``velocity``, ``ew``, ``ew_err``, ``ew_err_cayrel``, ``ew_int``,
         ``ew_int_err``, ``ew_fit``, ``ew_fit_err``, ``fwhm``, ``depth``,
         ``significance``, ``fit_chi2``, ``window_min``, ``window_max``, ``method``,
-        ``profile``, ``blend``, ``detected``, ``emission``; ``meta`` holds rv, R and
-        medium. ``fit_chi2`` is the reduced chi-square of the profile fit (NaN when
+        ``profile``, ``blend``, ``detected``, ``emission``, ``expected``; ``meta`` holds rv, R,
+        medium and ``star_type``. ``fit_chi2`` is the reduced chi-square of the profile fit (NaN when
         none was fitted): near 1 when noise limits the line; far above 1 when the
         profile model does (unresolved blends), and the errors, which count noise
         only, then understate the equivalent width's true uncertainty.
@@ -145,7 +151,7 @@ def measure(spectrum, linelist=None, rv=0 * u.km / u.s, resolving_power=None, pr
                                               detect_sigma, min_depth)
     results.update(measure_lines(data_m, features_m, targets, np.flatnonzero(~targets.hydrogen), profile,
                                  detect_sigma, _batched))
-    return line_table(data, listed, targets, [results[i] for i in range(targets.pred.size)])
+    return line_table(data, listed, targets, [results[i] for i in range(targets.pred.size)], star_type)
 
 
 class Targets(NamedTuple):
@@ -777,8 +783,9 @@ _FLOAT_COLUMNS = ("wave_obs", "ew", "ew_err", "ew_err_cayrel", "ew_int", "ew_int
                   "fwhm", "depth", "significance", "window_min", "window_max", "fit_chi2")
 
 
-def line_table(data, listed, targets, results):
-    """The table :func:`measure` returns, from one :class:`LineResult` per listed line."""
+def line_table(data, listed, targets, results, star_type=None):
+    """The table :func:`measure` returns, from one :class:`LineResult` per listed line
+    (``star_type``: see :func:`measure`)."""
     t = listed.rows
     ids = [str(i) for i in t["id"]]
     cols = {name: np.array([getattr(r, name) for r in results], float) for name in _FLOAT_COLUMNS}
@@ -803,8 +810,22 @@ def line_table(data, listed, targets, results):
     columns["method"] = np.array([str(r.method) for r in results], str)
     columns["profile"] = np.array([str(r.profile) for r in results], str)
     columns["blend"] = np.array([str(b) for b in blends(listed.pred, ids, targets.fwhm)], str)
-    columns["detected"] = np.array([r.detected for r in results], bool)
-    columns["emission"] = np.array([r.emission for r in results], bool)
+    emission = np.array([r.emission for r in results], bool)
+    detected = np.array([r.detected for r in results], bool)
+    expected = expected_lines(columns["species"], star_type)
+    # Emission is not ruled out: a cool star's chromosphere or a hot companion can show He I /
+    # He II in emission (flare M dwarfs, symbiotics; common practice), unless the "emission"
+    # sits inside a line it blends with that is found in absorption: then it is what dividing
+    # out that line's fitted profile left (He II 6560 inside H alpha was a detected emission
+    # line in 13 of 21 MILES A5-K3 stars, significance up to 71; measured).
+    row_of = {name: k for k, name in enumerate(ids)}
+    for k in np.flatnonzero(emission & ~expected):
+        partners = [row_of[b] for b in str(columns["blend"][k]).split(",") if b in row_of]
+        expected[k] = not any(detected[j] and not emission[j] for j in partners)
+    columns["detected"] = detected & expected
+    columns["emission"] = emission
+    columns["expected"] = expected
     out = QTable(list(columns.values()), names=list(columns), copy=False)
     out.meta.update(data.meta(listed.rv))
+    out.meta["star_type"] = None if star_code(star_type) is None else str(star_type)
     return out

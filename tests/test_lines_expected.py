@@ -1,0 +1,71 @@
+"""Lines a star of its type cannot show are measured but not counted as found (issue 13's
+"K giants show He I lines that are metal blends")."""
+
+import numpy as np
+import pytest
+from astropy.table import Table
+
+import specan
+from specan import lines, synth
+from specan.lines.expected import LATEST_CODE, expected_lines, star_code
+
+
+def test_limits_follow_where_the_hot_species_fade():
+    # Gray & Corbally (2009), "Stellar Spectral Classification" (from memory): He II fades by
+    # B0.5, He I by B9.5-A0; C II 4267 lasts into early A.
+    assert list(expected_lines(["He II", "He I", "Fe I"], "O8 V")) == [True, True, True]
+    assert list(expected_lines(["He II", "He I", "Fe I"], "B5 V")) == [False, True, True]
+    assert list(expected_lines(["He II", "He I", "C II", "Fe I"], "G2 V")) == [False, False, False, True]
+    assert list(expected_lines(["He I"], None)) == [True]          # no type: nothing ruled out
+    assert list(expected_lines(["He I"], "not a type")) == [True]
+    assert star_code("K3 III") == 53.0 and star_code(22.5) == 22.5
+    assert LATEST_CODE["He II"] < LATEST_CODE["He I"]
+
+
+def _miles(miles, mk_types, n):
+    cat = Table.read(miles / "catalog.csv", format="ascii.csv")
+    return [r for r in cat if str(r["mk"]) in mk_types][:n]
+
+
+@pytest.mark.reference
+def test_cool_miles_stars_show_no_helium_absorption(miles):
+    # MILES stars of published A5-K3 types (Cenarro et al. 2007 catalogue): He I / He II lines
+    # cannot form there (Gray & Corbally 2009, from memory). Without the type 21 such stars had
+    # 299 He lines "detected" (metal blends) and 13 a He II 6560 "emission" left by dividing out
+    # H alpha; with it none (measured).
+    rows = _miles(miles, ("G2 V", "K0 III", "K3 III", "G8 III", "F5 V", "A5 V"), 8)
+    assert len(rows) == 8
+    for r in rows:
+        s = specan.prepare(specan.read(miles / r["file"], resolving_power=2000.0, medium="air"))
+        untyped = lines.measure(s, rv=None)
+        typed = lines.measure(s, rv=None, star_type=str(r["mk"]))
+        he = np.isin([str(x) for x in typed["species"]], ["He I", "He II"])
+        assert not np.any(typed["detected"] & he), (r["id"], list(typed["id"][typed["detected"] & he]))
+        assert not np.any(typed["expected"][he & ~typed["emission"]])
+        # the other lines are untouched: same measurements, same detections
+        other = ~np.isin([str(x) for x in typed["species"]], list(LATEST_CODE))
+        assert np.array_equal(typed["detected"][other], untyped["detected"][other])
+        assert np.array_equal(np.asarray(typed["ew"])[other], np.asarray(untyped["ew"])[other], equal_nan=True)
+        assert typed.meta["star_type"] == str(r["mk"])
+
+
+@pytest.mark.reference
+def test_hot_miles_stars_keep_their_helium(miles):
+    # MILES B2-B5 stars: He I 4471 and 4026 are their classification lines (Gray & Corbally 2009,
+    # from memory); the type must not take them away.
+    rows = _miles(miles, ("B2 IV", "B3 V", "B5 V"), 3)
+    assert rows
+    for r in rows:
+        s = specan.prepare(specan.read(miles / r["file"], resolving_power=2000.0, medium="air"))
+        t = lines.measure(s, rv=None, star_type=str(r["mk"]))
+        found = {str(i) for i in t["id"][t["detected"]]}
+        assert {"HeI_4471", "HeI_4026"} <= found, (r["id"], sorted(found))
+
+
+def test_emission_of_a_hot_species_stays_in_a_cool_star():
+    # He I 5876 in emission in a cool dwarf (active and flare stars show it; common practice):
+    # kept as found. (Specan's synthetic model; a K5 V, where the line reads -1.51 A for 1.5 A.)
+    s = synth.spectrum("K5", "V", resolving_power=2000, snr=100, seed=3, emission={"HeI_5876": 1.5})
+    t = lines.measure(s, star_type="K5 V")
+    row = t[list(t["id"]).index("HeI_5876")]
+    assert row["emission"] and row["detected"] and row["expected"]
