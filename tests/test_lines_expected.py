@@ -7,15 +7,18 @@ from astropy.table import Table
 
 import specan
 from specan import lines, synth
-from specan.lines.expected import LATEST_CODE, expected_lines, star_code
+from specan.lines.expected import EARLIEST_CODE, LATEST_CODE, expected_lines, star_code
 
 
 def test_limits_follow_where_the_hot_species_fade():
     # Gray & Corbally (2009), "Stellar Spectral Classification" (from memory): He II fades by
     # B0.5, He I by B9.5-A0; C II 4267 lasts into early A.
-    assert list(expected_lines(["He II", "He I", "Fe I"], "O8 V")) == [True, True, True]
+    assert list(expected_lines(["He II", "He I", "Fe I"], "O8 V")) == [True, True, False]
     assert list(expected_lines(["He II", "He I", "Fe I"], "B5 V")) == [False, True, True]
     assert list(expected_lines(["He II", "He I", "C II", "Fe I"], "G2 V")) == [False, False, False, True]
+    # neutral metals appear in the early A stars (same source); interstellar Na D stays on hot stars
+    assert list(expected_lines(["Fe I", "Mg I", "Na I", "Ca II"], "B3 V")) == [False, False, True, True]
+    assert list(expected_lines(["Fe I", "Mg I"], "A1 V")) == [True, True]
     assert list(expected_lines(["He I"], None)) == [True]          # no type: nothing ruled out
     assert list(expected_lines(["He I"], "not a type")) == [True]
     assert star_code("K3 III") == 53.0 and star_code(22.5) == 22.5
@@ -43,7 +46,7 @@ def test_cool_miles_stars_show_no_helium_absorption(miles):
         assert not np.any(typed["detected"] & he), (r["id"], list(typed["id"][typed["detected"] & he]))
         assert not np.any(typed["expected"][he & ~typed["emission"]])
         # the other lines are untouched: same measurements, same detections
-        other = ~np.isin([str(x) for x in typed["species"]], list(LATEST_CODE))
+        other = np.asarray(typed["expected"], bool)
         assert np.array_equal(typed["detected"][other], untyped["detected"][other])
         assert np.array_equal(np.asarray(typed["ew"])[other], np.asarray(untyped["ew"])[other], equal_nan=True)
         assert typed.meta["star_type"] == str(r["mk"])
@@ -69,3 +72,21 @@ def test_emission_of_a_hot_species_stays_in_a_cool_star():
     t = lines.measure(s, star_type="K5 V")
     row = t[list(t["id"]).index("HeI_5876")]
     assert row["emission"] and row["detected"] and row["expected"]
+
+
+def test_emission_shared_with_an_allowed_line_is_that_lines():
+    # The demo's B3 V star with H alpha and H beta planted in emission (sample_spectra/truth.ecsv,
+    # specan's synthetic model): at R 2000 He II 6560 and 4859 blend with them; He II is too hot
+    # for a B3 star, so the emission is H alpha's and H beta's alone.
+    from pathlib import Path
+
+    path = Path(__file__).resolve().parents[1] / "sample_spectra" / "trf3_15.fits"
+    s = specan.prepare(specan.read(path))
+    t = lines.measure(s, rv=None, star_type="B3 V")
+    row = {str(r["id"]): r for r in t}
+    assert row["H_alpha"]["emission"] and row["H_alpha"]["detected"]
+    assert row["H_beta"]["emission"] and row["H_beta"]["detected"]
+    for he in ("HeII_6560", "HeII_4859"):
+        assert not row[he]["detected"] and not row[he]["expected"], he
+    untyped = lines.measure(s, rv=None)
+    assert list(untyped["id"][untyped["detected"]]).count("HeII_6560") == 1   # before: both claimed it

@@ -6,9 +6,9 @@ all Fe I blends; measured). Given the star's MK type, lines of species that need
 photosphere are kept in the table but not counted as detected (``expected`` False); the feature
 stays with whatever other line shares it.
 
-Only the hot species are ruled out, in stars clearly cooler than where their lines fade; the
-limits sit about two subclasses later than the handbook's last appearance, so a type off by that
-much still keeps a real line.
+Hot species are ruled out in stars clearly cooler than where their lines fade, neutral metals in
+stars clearly hotter than where theirs appear; the limits sit about two subclasses beyond the
+handbook's, so a type off by that much still keeps a real line.
 """
 
 from __future__ import annotations
@@ -17,7 +17,7 @@ import numpy as np
 
 from ..mktypes import parse_mk
 
-__all__ = ["LATEST_CODE", "star_code", "expected_lines"]
+__all__ = ["LATEST_CODE", "EARLIEST_CODE", "star_code", "expected_lines"]
 
 #: Latest MK code (O0 = 0, B0 = 10, A0 = 20 ...) at which each species' lines are still
 #: expected. Where they fade (Gray & Corbally 2009, "Stellar Spectral Classification", chapters
@@ -34,6 +34,12 @@ LATEST_CODE = {
     "He I": 22.0,
     "C II": 22.0,
 }
+
+
+#: Earliest MK code at which each neutral metal's lines are expected: they appear in the early A
+#: stars (Fe I 4046, 4271, Ca I 4227, Mg I; Gray & Corbally 2009, from memory), two subclasses
+#: allowed. Na I and K I are left out: interstellar Na D and K I 7699 lie on hot stars too.
+EARLIEST_CODE = {s: 18.0 for s in ("Fe I", "Mg I", "Ca I", "Cr I", "Mn I", "Ti I", "V I", "Al I", "Li I")}
 
 
 def star_code(star_type):
@@ -58,4 +64,4 @@ def expected_lines(species, star_type):
     code = star_code(star_type)
     if code is None:
         return np.ones(len(species), bool)
-    return np.array([code <= LATEST_CODE.get(s, np.inf) for s in species], bool)
+    return np.array([EARLIEST_CODE.get(s, -np.inf) <= code <= LATEST_CODE.get(s, np.inf) for s in species], bool)

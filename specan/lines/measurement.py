@@ -815,13 +815,20 @@ def line_table(data, listed, targets, results, star_type=None):
     expected = expected_lines(columns["species"], star_type)
     # Emission is not ruled out: a cool star's chromosphere or a hot companion can show He I /
     # He II in emission (flare M dwarfs, symbiotics; common practice), unless the "emission"
-    # sits inside a line it blends with that is found in absorption: then it is what dividing
-    # out that line's fitted profile left (He II 6560 inside H alpha was a detected emission
-    # line in 13 of 21 MILES A5-K3 stars, significance up to 71; measured).
+    # sits inside a line it blends with that the type allows and that is found: in absorption
+    # it is what dividing out that line's fitted profile left (He II 6560 inside H alpha was a
+    # detected emission line in 13 of 21 MILES A5-K3 stars, significance up to 71; measured),
+    # in emission the feature is that line's (H alpha, not He II 6560, in a Be star).
+    # The same holds inside the window of any allowed line found in absorption (He II 4859 read
+    # as emission in the demo's F8 V star, two line widths from H beta; measured).
+    allowed = expected.copy()
     row_of = {name: k for k, name in enumerate(ids)}
-    for k in np.flatnonzero(emission & ~expected):
+    absorbing = np.flatnonzero(detected & allowed & ~emission)
+    for k in np.flatnonzero(emission & ~allowed):
         partners = [row_of[b] for b in str(columns["blend"][k]).split(",") if b in row_of]
-        expected[k] = not any(detected[j] and not emission[j] for j in partners)
+        inside = np.any((cols["window_min"][absorbing] <= cols["wave_obs"][k])
+                        & (cols["wave_obs"][k] <= cols["window_max"][absorbing]))
+        expected[k] = not (inside or any(detected[j] and allowed[j] for j in partners))
     columns["detected"] = detected & expected
     columns["emission"] = emission
     columns["expected"] = expected
