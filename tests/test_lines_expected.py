@@ -14,7 +14,7 @@ def test_limits_follow_where_the_hot_species_fade():
     # Gray & Corbally (2009), "Stellar Spectral Classification" (from memory): He II fades by
     # B0.5, He I by B9.5-A0; C II 4267 lasts into early A.
     assert list(expected_lines(["He II", "He I", "Fe I"], "O8 V")) == [True, True, False]
-    assert list(expected_lines(["He II", "He I", "Fe I"], "B5 V")) == [False, True, True]
+    assert list(expected_lines(["He II", "He I", "Fe I"], "B5 V")) == [False, True, False]
     assert list(expected_lines(["He II", "He I", "C II", "Fe I"], "G2 V")) == [False, False, False, True]
     # neutral metals appear in the early A stars (same source); interstellar Na D stays on hot stars
     assert list(expected_lines(["Fe I", "Mg I", "Na I", "Ca II"], "B3 V")) == [False, False, True, True]
