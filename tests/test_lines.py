@@ -621,10 +621,13 @@ SOLAR_STRONG_EW_AA = {
 # Measured at R 2000 against the continuum prepare() fits (a pseudo-continuum, ~11% low in
 # the blue, see tests/test_prepare.py) and against the model's own continuum:
 #   K 17.70 / 23.50, H 17.10 / 25.38, D2 0.858 / 0.888, D1 0.653 / 0.694, b4 0.730 / 0.797,
-#   b2 1.453 / 1.538, b1 1.539 / 1.619, Halpha 3.502 / 4.048, Hbeta 5.464 / 6.863 A.
-_HBETA_GAP = ("H beta at R 2000 holds the metal lines inside its window (4847-4882 A): measured 5.46 A "
-              "against the fitted continuum (+48%) and 6.86 A against the true one (+87%); its Voigt fit "
-              "reads 5.50 / 7.24 A (chi2 552)")
+#   b2 1.453 / 1.538, b1 1.539 / 1.619, Halpha 3.281 / 3.754, Hbeta 4.422 / 5.708 A.
+# The Balmer lines are integrated with the metal lines inside their windows taken out
+# (specan.lines.hydrogen_blends): before, Hbeta read 5.464 / 6.863 A and Halpha 3.502 / 4.048 A.
+_HBETA_GAP = ("against the true continuum H beta at R 2000 reads 5.71 A (+55%): of the 6.86 A its window "
+              "(4848-4882 A) holds, the metal lines found there carry 1.16 A; the rest of the excess is the "
+              "blanketing of weak lines no feature stands for (the crests between the lines, 8-17 A from the "
+              "centre, lie at 0.85-0.91 of the true continuum, 0.89-0.95 of the fitted one)")
 _TRUE_CONTINUUM_GAPS = {
     "H_beta": _HBETA_GAP,
     "CaII_H": ("against the true continuum Ca II H at R 2000 reads 25.4 A (+64%): its wings, fitted out to "
@@ -647,7 +650,7 @@ def _strong_param(gaps):
             for k in sorted(SOLAR_STRONG_EW_AA)]
 
 
-@pytest.mark.parametrize("line_id", _strong_param({"H_beta": _HBETA_GAP}))
+@pytest.mark.parametrize("line_id", _strong_param({}))
 def test_solar_strong_lines_within_25_percent(sun_lines, line_id):
     # against the continuum specan fits (what a user gets)
     row = sun_lines[list(sun_lines["id"]).index(line_id)]

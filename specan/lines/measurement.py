@@ -26,6 +26,7 @@ from ..resolution import GAUSS_FWHM
 from .components import MIN_SEPARATION, component_centres, window_features, wing_mask
 from .data import DETECT_SIGMA, MIN_DEPTH, LineData, find_features, normalised
 from .hydrogen import without_hydrogen
+from .hydrogen_blends import less_blends
 from .listed import blends, line_widths, lines_in_range, match_windows, velocities
 from .batchfit import fit_planned, voigt_batch
 from .profiles import fit_gauss, fit_profile
@@ -470,6 +471,8 @@ def finish_line(data, features, targets, i, plan, fitter):
     if plan.window is None:   # masked
         return plan.result
     _fitted(data, plan)
+    if plan.hydrogen:
+        less_blends(data, features, targets, i, plan)
     wing = None
     if _wants_wings(plan):
         wing = wing_fit(data, features, targets, i, plan.result.wave_obs, plan.fit, plan.fw, fitter=fitter)
@@ -478,9 +481,11 @@ def finish_line(data, features, targets, i, plan, fitter):
 
 def finish_lines(data, features, targets, plans):
     """:func:`finish_line` of every plan (``{index: LinePlan}``), the wing fits batched (:func:`wing_fits`)."""
-    for plan in plans.values():
+    for i, plan in plans.items():
         if plan.window is not None:
             _fitted(data, plan)
+            if plan.hydrogen:
+                less_blends(data, features, targets, i, plan)
     strong = [i for i, plan in plans.items() if plan.window is not None and _wants_wings(plan)]
     wings = wing_fits(data, features, targets, strong, [plans[i].result.wave_obs for i in strong],
                       [plans[i].fit for i in strong], [plans[i].fw for i in strong])
