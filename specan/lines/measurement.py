@@ -77,7 +77,9 @@ def measure(spectrum, linelist=None, rv=0 * u.km / u.s, resolving_power=None, pr
     window; shared shift and width, the width held near the spectrum's line
     width). ``ew`` is the direct integral for isolated lines and the fit when the
     window was cut by a neighbour or holds other components (``method`` says
-    which); hydrogen lines are always integrated (their fit is in ``ew_fit``).
+    which); hydrogen lines are always integrated (their fit is in ``ew_fit``), the
+    metal lines found inside their windows modelled and taken out of the integral
+    (``integration_less_blends``, :mod:`specan.lines.hydrogen_blends`).
     Hydrogen is measured first and its fitted profiles divided out before the
     other lines are measured, so lines in Balmer wings are measured against the
     wing. Lines with no feature found are not ``detected``; their EW is
