@@ -6,7 +6,7 @@ from __future__ import annotations
 
 import numpy as np
 
-__all__ = ["window_features", "component_centres", "wing_mask", "wing_blends"]
+__all__ = ["window_features", "component_centres", "wing_mask"]
 
 # Lines closer than this many line widths cannot be told apart: they stay one component
 # (the target's EW is then theirs together, and ``blend`` names them).
@@ -44,32 +44,23 @@ def component_centres(data, targets, i, centre, window, in_win):
     return np.array(centres)
 
 
-def wing_blends(data, targets, i, centre, window, in_win, centres):
-    """Positions (Angstrom) of the metal lines inside a hydrogen line's window.
+def wing_mask(data, targets, i, centre, window, in_win, centres):
+    """Pixels of a hydrogen line's window that its fit gives no weight, or None.
 
-    The features found there and the listed lines other than hydrogen (which on a steep
-    wing may make no local minimum of their own), moved with the line's own offset,
-    farther than :data:`MIN_SEPARATION` line widths from every fitted component.
+    Hydrogen profiles are fitted around the metal lines in their wings: those pixels
+    get no weight (a shared Voigt width would give each metal line Stark wings). The
+    metal lines are the features found there and the listed lines, which on a steep
+    wing may make no local minimum of their own.
     """
-    pred, is_h = targets.pred, targets.hydrogen
+    pred, is_h, fw = targets.pred, targets.hydrogen, targets.fwhm[i]
     lo, hi = window.lo, window.hi
     shift = centre - pred[i]
     listed = pred[(~is_h) & (pred >= data.wave[lo]) & (pred <= data.wave[hi])] + shift
     others = np.concatenate([in_win, listed])
     if not others.size:
-        return others
-    far = np.abs(others[:, None] - np.asarray(centres)[None, :]).min(axis=1) > MIN_SEPARATION * targets.fwhm[i]
-    return others[far]
-
-
-def wing_mask(data, targets, i, centre, window, in_win, centres):
-    """Pixels of a hydrogen line's window that its fit gives no weight, or None.
-
-    Hydrogen profiles are fitted around the metal lines in their wings (:func:`wing_blends`):
-    those pixels get no weight (a shared Voigt width would give each metal line Stark wings).
-    """
-    others = wing_blends(data, targets, i, centre, window, in_win, centres)
-    if not others.size:
         return None
-    xw = data.wave[window.lo:window.hi + 1]
-    return (np.abs(xw[None, :] - others[:, None]) < 1.2 * targets.fwhm[i]).any(axis=0)
+    xw = data.wave[lo:hi + 1]
+    far = np.abs(others[:, None] - np.asarray(centres)[None, :]).min(axis=1) > MIN_SEPARATION * fw
+    if not far.any():
+        return None
+    return (np.abs(xw[None, :] - others[far][:, None]) < 1.2 * fw).any(axis=0)

@@ -5,14 +5,14 @@ in a G or K star that window holds metal lines, whose absorption the plain integ
 hydrogen (the solar H beta at R 2000 read 5.46 A against 3.68 A published, measured). Here
 they are modelled: the window's depth below its local continuum is fitted as the line's own
 fitted profile (its shape held, its strength free) plus one Gaussian of the spectrum's line
-width at each metal line (:func:`~specan.lines.components.wing_blends`), every strength at
-least zero; their area inside the window is taken off the integral.
+width at each absorption feature found in the window away from the line's core, every strength
+at least zero; the Gaussians' area inside the window is taken off the integral.
 
 The profile's shape is held because its fit was made on the pixels the metal lines leave
 (:func:`~specan.lines.components.wing_mask`), and a free shape in this fit would trade its
-wings for the metal lines (measured: a Gauss-Newton step of the full problem from that fit
-doubled the solar H beta's damping width); with the shape held the problem is linear, one
-small non-negative least-squares solve per line.
+wings for the metal lines (measured: one Gauss-Newton step of the full problem from that fit
+took the solar H beta's damping width from 3.9 to 7.6 A); with the shape held the problem is
+linear, one small non-negative least-squares solve per line.
 """
 
 from __future__ import annotations
@@ -28,8 +28,9 @@ __all__ = ["CORE_CLEARANCE", "metal_absorption", "less_blends"]
 
 #: Metal lines closer than this many line widths to the hydrogen line's fitted centre are left
 #: in it: inside its core the profile's shape is least certain, and a Gaussian there takes up
-#: the mismatch between a Voigt and the line's core (measured on synthetic G2 V spectra: the
-#: He II 6560 line, absent at G2, took 0.22 A from H alpha at 0.8 line widths).
+#: the mismatch between a Voigt and the line's core (measured on a synthetic G2 V spectrum at
+#: S/N 100: a Gaussian at the listed He II 6560 line, absent at G2, 0.8 line widths from H alpha,
+#: took 0.22 A from it).
 CORE_CLEARANCE = 1.0
 
 
