@@ -621,7 +621,7 @@ SOLAR_STRONG_EW_AA = {
 # Measured at R 2000 against the continuum prepare() fits (a pseudo-continuum, ~11% low in
 # the blue, see tests/test_prepare.py) and against the model's own continuum:
 #   K 17.70 / 23.50, H 17.10 / 25.38, D2 0.858 / 0.888, D1 0.653 / 0.694, b4 0.730 / 0.797,
-#   b2 1.453 / 1.538, b1 1.539 / 1.619, Halpha 3.281 / 3.754, Hbeta 4.422 / 5.708 A.
+#   b2 1.453 / 1.538, b1 1.539 / 1.619, Halpha 3.281 / 3.823, Hbeta 4.422 / 5.708 A.
 # The Balmer lines are integrated with the metal lines inside their windows taken out
 # (specan.lines.hydrogen_blends): before, Hbeta read 5.464 / 6.863 A and Halpha 3.502 / 4.048 A.
 _HBETA_GAP = ("against the true continuum H beta at R 2000 reads 5.71 A (+55%): of the 6.86 A its window "

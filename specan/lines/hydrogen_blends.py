@@ -60,35 +60,36 @@ def metal_absorption(data, window, cont, fit, fwhm, positions):
     if not positions.size:
         return 0.0, 0.0, 0
     sel = slice(window.lo, window.hi + 1)
-    x, dx = data.wave[sel], data.dx[sel]
+    x = data.wave[sel]
     # depth below the local continuum; the flux's weights carry over times the continuum
-    depth = 1.0 - data.flux[sel] / cont
+    # (pixels of no weight are rows of zeros: they change nothing)
     wts = np.sqrt(data.weight[sel]) * cont
-    ok = wts > 0
-    if ok.sum() < positions.size + 2:
+    if np.count_nonzero(wts) < positions.size + 2:
         return 0.0, 0.0, 0
     sig = fwhm / GAUSS_FWHM
-    gauss = np.exp(-0.5 * ((x[None, :] - positions[:, None]) / sig) ** 2) / (sig * np.sqrt(2.0 * np.pi))
-    cols = np.vstack([voigt_profile(x - fit["centre"], fit["sigma"], fit["gamma"])[None, :], gauss])
-    a = (cols * wts).T[ok]
+    cols = np.empty((positions.size + 1, x.size))
+    cols[0] = voigt_profile(x - fit["centre"], fit["sigma"], fit["gamma"])
+    cols[1:] = np.exp(-0.5 * ((x[None, :] - positions[:, None]) / sig) ** 2) / (sig * np.sqrt(2.0 * np.pi))
+    a = (cols * wts).T
     # scaled columns: nnls is not scale-invariant in its tolerance
-    scale = np.sqrt(np.sum(a * a, axis=0))
+    scale = np.sqrt(np.einsum("ij,ij->j", a, a))
     scale[scale == 0] = 1.0
     try:
-        sol, _ = nnls(a / scale, (depth * wts)[ok])
+        sol, _ = nnls(a / scale, np.where(wts > 0, (1.0 - data.flux[sel] / cont) * wts, 0.0))
     except RuntimeError:   # no convergence
         return 0.0, 0.0, 0
     sol = sol / scale
-    area = np.sum(gauss * dx, axis=1)                  # each unit-area Gaussian inside the window
-    metal = float(np.sum(sol[1:] * area))
+    area = cols[1:] @ data.dx[sel]                     # each unit-area Gaussian inside the window
+    metal = float(sol[1:] @ area)
     # error from the covariance of the strengths left free (those at zero are held there)
     free = sol > 0
     free[0] = True
     g = np.concatenate([[0.0], area])[free]
+    normal = a[:, free].T @ a[:, free]
     try:
-        var = float(g @ np.linalg.solve(a[:, free].T @ a[:, free], g))
-    except np.linalg.LinAlgError:
-        var = np.nan
+        var = float(g @ np.linalg.solve(normal, g))
+    except np.linalg.LinAlgError:   # two features on one pixel: their sum is still known
+        var = float(g @ np.linalg.pinv(normal) @ g)
     return metal, float(np.sqrt(max(var, 0.0))), int(np.count_nonzero(sol[1:]))
 
 
