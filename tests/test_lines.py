@@ -767,3 +767,44 @@ def test_hydrogen_alone_keeps_its_integral():
                 errors.append(row["ew_err"].to_value(u.AA))
     # measured: 0.014 A in all over 42 lines of errors 0.05-0.15 A
     assert np.sum(np.abs(shift)) < 0.1 * np.sum(errors), (np.sum(shift), np.sum(errors))
+
+
+def _balmer_among_metal_lines(seeds, snr=100.0, resolving_power=2000.0):
+    """A Voigt H beta (6 A) with four Gaussian metal lines (0.62 A) in its wings, noisy draws:
+    per draw (ew, ew_err, ew_int, the H line alone integrated over the reported window)."""
+    from specan.lines.data import pixel_edges
+
+    wave = np.arange(4700.0, 5000.0, 4861.3 / resolving_power / 2.5)
+    sig = 4861.3 / resolving_power / GAUSS_FWHM
+    alone = 1.0 - 6.0 * voigt_profile(wave - 4861.3, 1.2, 2.0)
+    metal = sum(ew * np.exp(-0.5 * ((wave - c) / sig) ** 2) / (sig * np.sqrt(2 * np.pi))
+                for c, ew in ((4849.0, 0.15), (4855.5, 0.10), (4871.5, 0.25), (4877.0, 0.12)))
+    dx = np.diff(pixel_edges(wave))
+    out = []
+    for seed in seeds:
+        flux = alone * (1.0 - metal) + np.random.default_rng(seed).normal(0.0, 1.0 / snr, wave.size)
+        t = lines.measure(make_spectrum(wave, flux, sigma=np.full(wave.size, 1.0 / snr),
+                                        resolving_power=resolving_power))
+        row = t[list(t["id"]).index("H_beta")]
+        sel = (wave >= row["window_min"].to_value(u.AA)) & (wave <= row["window_max"].to_value(u.AA))
+        out.append((row["ew"].to_value(u.AA), row["ew_err"].to_value(u.AA), row["ew_int"].to_value(u.AA),
+                    float(np.sum((1.0 - alone[sel]) * dx[sel]))))
+    return np.array(out).T
+
+
+def test_balmer_line_among_metal_lines_nearer_its_own_width():
+    ew, _, ew_int, alone = _balmer_among_metal_lines(range(12))
+    # measured (40 draws): 0.17 A above the H line alone against 0.57 A for the plain integral
+    # (in some draws a metal line on the steep wing is not found as a feature, and stays in)
+    assert np.mean(np.abs(ew - alone)) < 0.5 * np.mean(np.abs(ew_int - alone))
+
+
+@pytest.mark.xfail(strict=True, reason=(
+    "measured over 40 draws at S/N 100: (ew - the H line alone) / ew_err has mean 2.07 and sd 2.15; "
+    "ew scatters by 0.18 A against a median error of 0.083 A (the plain integral already by 0.12 A): "
+    "whether a weak metal line on the wing is found as a feature changes from draw to draw, and "
+    "the error counts the noise of the fit only"))
+def test_balmer_line_among_metal_lines_error_covers_its_scatter():
+    ew, err, _, alone = _balmer_among_metal_lines(range(40))
+    pull = (ew - alone) / err
+    assert abs(np.mean(pull)) < 0.5 and 0.7 < np.std(pull, ddof=1) < 1.4
