@@ -316,9 +316,14 @@ def _exp_gauss(x, sigma, length):
     return out
 
 
-def _optical_depth(wvac_rest, code, lumnum, resolving_power, vbroad_kms, emission_ids=()):
-    """Summed line and band 'optical depth' on rest-frame vacuum wavelengths (Angstrom)."""
+def _optical_depth(wvac_rest, code, lumnum, resolving_power, vbroad_kms, emission_ids=(), only=None):
+    """Summed line and band 'optical depth' on rest-frame vacuum wavelengths (Angstrom).
+
+    ``only``: a tuple of species ("H I", ...) whose lines alone are put in; None, all.
+    """
     ids, species, wline, _, kind, strength, lorentz, groups = _strengths(float(code), int(lumnum))
+    if only is not None:
+        strength = np.where(np.isin(species, list(only)) & (kind != "molecular_head"), strength, 0.0)
     tau = np.zeros_like(wvac_rest)
     sig_v = np.hypot(C_KMS / float(resolving_power), vbroad_kms) * FWHM_TO_SIGMA  # km/s
     lo, hi = wvac_rest[0], wvac_rest[-1]
@@ -354,11 +359,11 @@ def _optical_depth(wvac_rest, code, lumnum, resolving_power, vbroad_kms, emissio
 _CORE_LIMIT = 0.9
 
 
-def _model_flux(wvac_obs, code, lumnum, resolving_power, rv_kms, vbroad_kms, emission):
+def _model_flux(wvac_obs, code, lumnum, resolving_power, rv_kms, vbroad_kms, emission, only=None):
     """Continuum-normalised model flux at observed vacuum wavelengths (Angstrom)."""
     rest = wvac_obs / doppler_factor(rv_kms * u.km / u.s)
     emission = dict(emission or {})
-    tau = _optical_depth(rest, code, lumnum, resolving_power, vbroad_kms, tuple(emission))
+    tau = _optical_depth(rest, code, lumnum, resolving_power, vbroad_kms, tuple(emission), only)
     flux = 1.0 - _CORE_LIMIT * (1.0 - np.exp(-tau / _CORE_LIMIT))
     if emission:
         ids, _, wline, *_ = _strengths(float(code), int(lumnum))
@@ -429,7 +434,7 @@ def _with_continuum(flux, continuum, w_aa, code, lumclass):
 
 def spectrum(sptype="G2", lumclass="V", *, resolving_power=2000, wave=None, wave_range=(3700, 8800) * u.AA,
              pixels_per_fwhm=2.5, rv=0 * u.km / u.s, medium="air", continuum=None, snr=None, seed=None,
-             vbroad=0 * u.km / u.s, emission=None):
+             vbroad=0 * u.km / u.s, emission=None, species=None):
     """A synthetic spectrum of an MK type.
 
     Parameters
@@ -464,6 +469,9 @@ def spectrum(sptype="G2", lumclass="V", *, resolving_power=2000, wave=None, wave
     emission : dict, optional
         Line id -> emission equivalent width in Angstrom (positive); the line's absorption
         is replaced by a Gaussian emission line (FWHM at least 100 km/s), e.g. ``{"H_alpha": 20}``.
+    species : sequence of str, optional
+        Only the lines of these species (e.g. ``("H I",)``: the hydrogen lines without the
+        metal lines around them), no molecular bands; default every line and band.
 
     Returns
     -------
@@ -476,10 +484,13 @@ def spectrum(sptype="G2", lumclass="V", *, resolving_power=2000, wave=None, wave
     wave, w_aa, wvac = _axis(wave, wave_range, resolving_power, pixels_per_fwhm, medium)
     rv_kms = u.Quantity(rv, u.km / u.s).value
     vb = u.Quantity(vbroad, u.km / u.s).value
-    flux, cont = _with_continuum(_model_flux(wvac, code, lumnum, resolving_power, rv_kms, vb, emission),
+    only = None if species is None else tuple(str(sp) for sp in species)
+    flux, cont = _with_continuum(_model_flux(wvac, code, lumnum, resolving_power, rv_kms, vb, emission, only),
                                  continuum, w_aa, code, lumclass)
     params = {"sptype": sptype, "lumclass": lumclass, "resolving_power": float(resolving_power),
               "rv_kms": rv_kms, "vbroad_kms": vb, "snr": snr, "seed": seed, "emission": dict(emission or {})}
+    if only is not None:
+        params["species"] = list(only)
     return _make(wave, flux, medium=medium, resolving_power=resolving_power, snr=snr, seed=seed,
                  continuum_array=cont, name=f"synthetic {sptype} {lumclass}", params=params)
 

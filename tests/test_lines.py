@@ -621,10 +621,13 @@ SOLAR_STRONG_EW_AA = {
 # Measured at R 2000 against the continuum prepare() fits (a pseudo-continuum, ~11% low in
 # the blue, see tests/test_prepare.py) and against the model's own continuum:
 #   K 17.70 / 23.50, H 17.10 / 25.38, D2 0.858 / 0.888, D1 0.653 / 0.694, b4 0.730 / 0.797,
-#   b2 1.453 / 1.538, b1 1.539 / 1.619, Halpha 3.502 / 4.048, Hbeta 5.464 / 6.863 A.
-_HBETA_GAP = ("H beta at R 2000 holds the metal lines inside its window (4847-4882 A): measured 5.46 A "
-              "against the fitted continuum (+48%) and 6.86 A against the true one (+87%); its Voigt fit "
-              "reads 5.50 / 7.24 A (chi2 552)")
+#   b2 1.453 / 1.538, b1 1.539 / 1.619, Halpha 3.281 / 3.823, Hbeta 4.422 / 5.708 A.
+# The Balmer lines are integrated with the metal lines inside their windows taken out
+# (specan.lines.hydrogen_blends): before, Hbeta read 5.464 / 6.863 A and Halpha 3.502 / 4.048 A.
+_HBETA_GAP = ("against the true continuum H beta at R 2000 reads 5.71 A (+55%): of the 6.86 A its window "
+              "(4848-4882 A) holds, the metal lines found there carry 1.16 A; the rest of the excess is the "
+              "blanketing of weak lines no feature stands for (the crests between the lines, 8-17 A from the "
+              "centre, lie at 0.85-0.91 of the true continuum, 0.89-0.95 of the fitted one)")
 _TRUE_CONTINUUM_GAPS = {
     "H_beta": _HBETA_GAP,
     "CaII_H": ("against the true continuum Ca II H at R 2000 reads 25.4 A (+64%): its wings, fitted out to "
@@ -647,7 +650,7 @@ def _strong_param(gaps):
             for k in sorted(SOLAR_STRONG_EW_AA)]
 
 
-@pytest.mark.parametrize("line_id", _strong_param({"H_beta": _HBETA_GAP}))
+@pytest.mark.parametrize("line_id", _strong_param({}))
 def test_solar_strong_lines_within_25_percent(sun_lines, line_id):
     # against the continuum specan fits (what a user gets)
     row = sun_lines[list(sun_lines["id"]).index(line_id)]
@@ -702,3 +705,106 @@ def test_damped_line_equivalent_width_from_its_wings(resolving_power, weak_lines
     assert row["method"] == "wing_voigt_fit"
     assert row["ew"].to_value(u.AA) == pytest.approx(ew_true, rel=0.15)
     assert row["window_min"].to_value(u.AA) < 3933.66 - 40 and row["window_max"].to_value(u.AA) > 3933.66 + 40
+
+
+def test_solar_h_beta_metal_lines_taken_out(sun_lines):
+    # the metal lines inside H beta's window are modelled and taken out of its integral, and the
+    # row says so; the window stays the one reported
+    row = sun_lines[list(sun_lines["id"]).index("H_beta")]
+    assert row["method"] == "integration_less_blends"
+    assert row["ew"] < row["ew_int"] - 0.5 * u.AA     # measured: 4.42 of 5.46 A
+    assert row["window_min"].to_value(u.AA) < 4855 and row["window_max"].to_value(u.AA) > 4870
+
+
+_BLEND_TYPES = (("A2", "V"), ("F0", "V"), ("F5", "V"), ("G2", "V"), ("G8", "III"), ("K2", "III"), ("K5", "V"))
+
+
+def test_hydrogen_lines_leave_out_the_metal_lines_in_their_windows():
+    # Noiseless synthetic stars (specan.synth), R 2000: the metal lines' absorption inside each
+    # Balmer line's reported window is the flux of the hydrogen lines alone (synth's species=)
+    # less the full flux, summed over the window. The plain integral counts all of it as hydrogen;
+    # what is taken out must match it. (H delta is left out: the metal lines within one line
+    # width of its core stay in it, 0.45-0.60 A in G8-K5 stars, measured.)
+    from specan import synth
+    from specan.lines.data import pixel_edges
+
+    left_plain = left_now = 0.0
+    for sptype, lumclass in _BLEND_TYPES:
+        full = synth.spectrum(sptype, lumclass, resolving_power=2000)
+        alone = synth.spectrum(sptype, lumclass, resolving_power=2000, species=("H I",))
+        t = lines.measure(full)
+        w = full.spectral_axis.to_value(u.AA)
+        dx = np.diff(pixel_edges(w))
+        for line_id in ("H_beta", "H_alpha", "H_gamma"):
+            row = t[list(t["id"]).index(line_id)]
+            sel = (w >= row["window_min"].to_value(u.AA)) & (w <= row["window_max"].to_value(u.AA))
+            metal = float(np.sum((alone.flux.value - full.flux.value)[sel] * dx[sel]))
+            taken = (row["ew_int"] - row["ew"]).to_value(u.AA)
+            # never more than the metal lines hold (measured: at most 0.04 A more, A2 V H alpha)
+            assert taken <= metal + 0.05, (sptype, line_id, metal, taken)
+            left_plain += abs(metal)
+            left_now += abs(metal - taken)
+    # measured: 2.22 A left in by the plain integral, 0.64 A now
+    assert left_now < 0.4 * left_plain, (left_plain, left_now)
+
+
+def test_hydrogen_alone_keeps_its_integral():
+    # Without metal lines nothing may be taken out: noise dips are no metal lines (only the
+    # features found are modelled, and a strength is never below zero, so a line put where the
+    # spectrum shows none would always take something)
+    from specan import synth
+    from specan.prepare import prepare
+
+    shift, errors = [], []
+    for sptype, lumclass in _BLEND_TYPES:
+        for seed in (3, 4):
+            spec = synth.spectrum(sptype, lumclass, resolving_power=2000, continuum="blackbody", snr=100,
+                                  seed=seed, species=("H I",))
+            t = lines.measure(prepare(spec))
+            for line_id in ("H_beta", "H_alpha", "H_gamma"):
+                row = t[list(t["id"]).index(line_id)]
+                shift.append((row["ew_int"] - row["ew"]).to_value(u.AA))
+                errors.append(row["ew_err"].to_value(u.AA))
+    # measured: 0.014 A in all over 42 lines of errors 0.05-0.15 A
+    assert np.sum(np.abs(shift)) < 0.1 * np.sum(errors), (np.sum(shift), np.sum(errors))
+
+
+def _balmer_among_metal_lines(seeds, snr=100.0, resolving_power=2000.0):
+    """A Voigt H beta (6 A) with four Gaussian metal lines (0.62 A) in its wings, noisy draws:
+    per draw (ew, ew_err, ew_int, the H line alone integrated over the reported window)."""
+    from specan.lines.data import pixel_edges
+
+    wave = np.arange(4700.0, 5000.0, 4861.3 / resolving_power / 2.5)
+    sig = 4861.3 / resolving_power / GAUSS_FWHM
+    alone = 1.0 - 6.0 * voigt_profile(wave - 4861.3, 1.2, 2.0)
+    metal = sum(ew * np.exp(-0.5 * ((wave - c) / sig) ** 2) / (sig * np.sqrt(2 * np.pi))
+                for c, ew in ((4849.0, 0.15), (4855.5, 0.10), (4871.5, 0.25), (4877.0, 0.12)))
+    dx = np.diff(pixel_edges(wave))
+    out = []
+    for seed in seeds:
+        flux = alone * (1.0 - metal) + np.random.default_rng(seed).normal(0.0, 1.0 / snr, wave.size)
+        t = lines.measure(make_spectrum(wave, flux, sigma=np.full(wave.size, 1.0 / snr),
+                                        resolving_power=resolving_power))
+        row = t[list(t["id"]).index("H_beta")]
+        sel = (wave >= row["window_min"].to_value(u.AA)) & (wave <= row["window_max"].to_value(u.AA))
+        out.append((row["ew"].to_value(u.AA), row["ew_err"].to_value(u.AA), row["ew_int"].to_value(u.AA),
+                    float(np.sum((1.0 - alone[sel]) * dx[sel]))))
+    return np.array(out).T
+
+
+def test_balmer_line_among_metal_lines_nearer_its_own_width():
+    ew, _, ew_int, alone = _balmer_among_metal_lines(range(12))
+    # measured (40 draws): 0.17 A above the H line alone against 0.57 A for the plain integral
+    # (in some draws a metal line on the steep wing is not found as a feature, and stays in)
+    assert np.mean(np.abs(ew - alone)) < 0.5 * np.mean(np.abs(ew_int - alone))
+
+
+@pytest.mark.xfail(strict=True, reason=(
+    "measured over 40 draws at S/N 100: (ew - the H line alone) / ew_err has mean 2.07 and sd 2.15; "
+    "ew scatters by 0.18 A against a median error of 0.083 A (the plain integral already by 0.12 A): "
+    "whether a weak metal line on the wing is found as a feature changes from draw to draw, and "
+    "the error counts the noise of the fit only"))
+def test_balmer_line_among_metal_lines_error_covers_its_scatter():
+    ew, err, _, alone = _balmer_among_metal_lines(range(40))
+    pull = (ew - alone) / err
+    assert abs(np.mean(pull)) < 0.5 and 0.7 < np.std(pull, ddof=1) < 1.4

@@ -27,6 +27,7 @@ from .components import MIN_SEPARATION, component_centres, window_features, wing
 from .data import DETECT_SIGMA, MIN_DEPTH, LineData, find_features, normalised
 from .hydrogen import without_hydrogen
 from .expected import expected_lines, star_code
+from .hydrogen_blends import less_blends
 from .listed import blends, line_widths, lines_in_range, match_windows, velocities
 from .batchfit import fit_planned, voigt_batch
 from .profiles import fit_gauss, fit_profile
@@ -77,7 +78,9 @@ def measure(spectrum, linelist=None, rv=0 * u.km / u.s, resolving_power=None, pr
     window; shared shift and width, the width held near the spectrum's line
     width). ``ew`` is the direct integral for isolated lines and the fit when the
     window was cut by a neighbour or holds other components (``method`` says
-    which); hydrogen lines are always integrated (their fit is in ``ew_fit``).
+    which); hydrogen lines are always integrated (their fit is in ``ew_fit``), the
+    metal lines found inside their windows modelled and taken out of the integral
+    (``integration_less_blends``, :mod:`specan.lines.hydrogen_blends`).
     Hydrogen is measured first and its fitted profiles divided out before the
     other lines are measured, so lines in Balmer wings are measured against the
     wing. Lines with no feature found are not ``detected``; their EW is
@@ -476,6 +479,8 @@ def finish_line(data, features, targets, i, plan, fitter):
     if plan.window is None:   # masked
         return plan.result
     _fitted(data, plan)
+    if plan.hydrogen:
+        less_blends(data, features, targets, i, plan)
     wing = None
     if _wants_wings(plan):
         wing = wing_fit(data, features, targets, i, plan.result.wave_obs, plan.fit, plan.fw, fitter=fitter)
@@ -484,9 +489,11 @@ def finish_line(data, features, targets, i, plan, fitter):
 
 def finish_lines(data, features, targets, plans):
     """:func:`finish_line` of every plan (``{index: LinePlan}``), the wing fits batched (:func:`wing_fits`)."""
-    for plan in plans.values():
+    for i, plan in plans.items():
         if plan.window is not None:
             _fitted(data, plan)
+            if plan.hydrogen:
+                less_blends(data, features, targets, i, plan)
     strong = [i for i, plan in plans.items() if plan.window is not None and _wants_wings(plan)]
     wings = wing_fits(data, features, targets, strong, [plans[i].result.wave_obs for i in strong],
                       [plans[i].fit for i in strong], [plans[i].fw for i in strong])
