@@ -25,17 +25,22 @@ from .. import resolution, templates
 from ..errors import AnalysisError, SpecanError
 from ..mktypes import code_to_sptype, parse_mk, sptype_to_code
 from ..obsinfo import get_info, vacuum_to_air
-from .bank import mixture_weights, score_bank, short_side, template_bank
+from .bank import (PRECUT_MARGIN, mixture_threshold, mixture_weights, precut_scores, score_bank, short_side,
+                   template_bank)
 from .correlation import best_index, template_peaks
 from .prepared import BuiltinCandidate, PreparedTemplate, prepare_builtin, spectrum_template
 
-__all__ = ["R_SCAN", "LIBRARY_MIN_COVER", "ResolvingPower", "TemplateRequest", "TemplateChoice",
+__all__ = ["R_SCAN", "LIBRARY_MIN_COVER", "NEIGHBOUR_GAIN", "ResolvingPower", "TemplateRequest", "TemplateChoice",
            "settle_resolving_power", "parse_template", "choose_template", "user_template", "reference_template",
            "automatic_type", "automatic_mixture", "MixtureMember", "library_cover", "neighbour_types", "scan_resolving_power"]
 
 # Multipliers of the first guess tried when the resolving power is unknown (sampling of 1.7-5
 # pixels per FWHM, the range of real spectrographs; common practice).
 R_SCAN = (0.5, 0.6, 0.7, 0.85, 1.0, 1.2, 1.45)
+#: Most a neighbouring synthetic type (:func:`neighbour_types`) was seen to correlate above the best
+#: type of the grid, with a margin (our choice, from measurements: benchmarks/bench_velocity.py
+#: --precut): below the mixture's threshold by more, the best type's neighbours are not tried.
+NEIGHBOUR_GAIN = 0.1
 #: Smallest share of the spectrum's correlation weight inside the library's wavelength range for
 #: the automatic choice to use library templates (our choice: a template must see most of the star).
 LIBRARY_MIN_COVER = 0.5
@@ -244,17 +249,38 @@ def automatic_mixture(search, resolving_power, template_grid, notes, where=None,
                          "used")
     grid_types = tuple(template_grid or templates.automatic_types())
     synthetic = [BuiltinCandidate(st, lc, resolving_power) for st, lc in grid_types]
-    bank, sc = _scored(search, candidates + synthetic, data_short)
+    data_short = data_short if data_short is not None else short_side(search)
+    bank = template_bank(candidates + synthetic, search.lags)
+    pre = precut_scores(search, bank, data_short)
+    sc, exact = pre.scores, pre.exact
     members = list(zip(bank.templates, sc.lag, bank.candidates, sc.height, sc.start))
-    syn = [x for x in members if x[2].kind == "synth"]
-    best_syn = max(range(len(syn)), key=lambda i: syn[i][3]) if syn else None
-    if best_syn is not None and np.isfinite(syn[best_syn][3]):
-        c = syn[best_syn][2]
+    syn = np.array([c.kind == "synth" for c in bank.candidates])
+    heights = np.asarray(sc.height, float)
+    # the neighbours of the best synthetic type can enter the mixture only if that type comes within
+    # NEIGHBOUR_GAIN of the mixture's threshold (a pre-cut height counts with its margin)
+    reach = np.where(exact, heights, heights + PRECUT_MARGIN)
+    if syn.any() and np.isfinite(heights[syn]).any() and \
+            np.max(reach[syn]) + NEIGHBOUR_GAIN < mixture_threshold(heights[exact]):
+        notes.append(f"neighbouring synthetic types not tried: the best synthetic template is more than "
+                     f"{NEIGHBOUR_GAIN} below the mixture's threshold")
+        syn = np.zeros_like(syn)
+    # the best synthetic type exactly: every synthetic template its pre-cut height leaves in doubt
+    best_exact = np.max(heights[syn & exact], initial=-np.inf)
+    doubt = np.flatnonzero(syn & ~exact & (heights + PRECUT_MARGIN >= best_exact))
+    if doubt.size:
+        more_sc = score_bank(search, bank, data_short, doubt)
+        for i, k in enumerate(doubt):
+            members[k] = (bank.templates[k], more_sc.lag[i], bank.candidates[k], more_sc.height[i], more_sc.start[i])
+        exact[doubt] = True
+    best_syn = max(np.flatnonzero(syn & exact), key=lambda i: members[i][3], default=None)
+    if best_syn is not None and np.isfinite(members[best_syn][3]):
+        c = members[best_syn][2]
         more = [BuiltinCandidate(st, lc, resolving_power)
                 for st, lc in neighbour_types((c.sptype, c.lumclass), grid_types)]
         if more:
             bank2, sc2 = _scored(search, more, data_short)
             members += list(zip(bank2.templates, sc2.lag, bank2.candidates, sc2.height, sc2.start))
+            exact = np.append(exact, np.ones(len(bank2), bool))
     heights = np.array([x[3] for x in members])
     if not np.isfinite(heights).any():
         raise AnalysisError("no template correlates with the spectrum", where)
@@ -265,6 +291,8 @@ def automatic_mixture(search, resolving_power, template_grid, notes, where=None,
               for i, wt in zip(index, weights)]
     n_lib = sum(1 for x in members if x[2].kind == "library" and np.isfinite(x[3]))
     kinds = f"{n_lib} library and {len(scores) - n_lib} synthetic" if n_lib else f"{len(scores)} synthetic"
+    if not exact.all():
+        kinds += f" ({int(exact.sum())} scored in full, the others by the pre-cut)"
     used = ", ".join(f"{m.template.name} {m.weight:.2f}" for m in chosen)
     notes.append(f"template chosen automatically: best normalised correlation of {kinds} templates "
                  f"({chosen[0].template.name}, {chosen[0].score:.3f}); velocity averaged over {used} "
