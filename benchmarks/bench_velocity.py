@@ -21,10 +21,17 @@
    ms of each step of ``velocity.measure``, and of the transforms inside (FFTs, spline solves);
    ``--night-set``: the same on ``bench_pipeline.py``'s 40 spectra (read and prepared, with the
    barycentric correction and the Galactic rest frame).
-7. ``--miles``: MILES library stars (``../shared/reference/miles``, at rest in the library's
+7. ``--precut``: how well the automatic choice's pre-cut holds (see ``specan.velocity.bank.precut_scores``):
+   on the speed test's spectra, ``bench_pipeline.py``'s 40, the demo night, synthetic stars off the grid,
+   the JHC (1984) library and MILES stars without their own groups' templates (where present), the largest difference between a template's pre-cut height and its
+   full one, how many of the bank's templates were scored in full, how far the best synthetic type's
+   neighbours came above it (every template scored and every neighbour tried), and whether the
+   pre-cut's choice (templates, weights, velocity) is the full scoring's.
+8. ``--miles``: MILES library stars (``../shared/reference/miles``, at rest in the library's
    frame), each measured without the library templates whose group it belongs to.
 
-Run:  python benchmarks/bench_velocity.py [--quick] [--speed] [--floor] [--night-set] [--user] [--other-types] [--miles]
+Run:  python benchmarks/bench_velocity.py [--quick] [--speed] [--floor] [--night-set] [--user] [--other-types] [--precut]
+      [--miles]
 
 Timings depend on the machine's load; on a shared machine OPENBLAS_NUM_THREADS=1 avoids BLAS
 threads fighting other processes (the figures in the issue-4 report were measured that way).
@@ -413,8 +420,106 @@ def other_types(n):
             _pull_line(f"R {r:5.0f} S/N {snr:4.0f}", dv, err, C_KMS / r, None, 1e3 * t / n)
 
 
-def miles_stars(n):
-    """MILES stars (at rest in the library's frame) without their own groups' templates."""
+def precut(model, n):
+    """The pre-cut's estimates against full scoring, and the neighbours' gain over the best grid type."""
+    import tempfile
+
+    import specan
+    from specan import synth
+    from specan.velocity import bank, choice
+
+    sys.path.insert(0, str(Path(__file__).resolve().parent))
+    from bench_pipeline import make_spectra
+
+    sets = {"speed test (Kurucz Sun)": [speed_spectrum(model, v, 50.0, 200 + i)
+                                        for i, v in enumerate(np.random.default_rng(5).uniform(-300, 300, n))]}
+    with tempfile.TemporaryDirectory() as tmp:
+        sets["bench_pipeline spectra"] = [specan.prepare(specan.read(str(p))) for p in make_spectra(Path(tmp), n)]
+    demo = sorted((Path(__file__).resolve().parents[1] / "sample_spectra").glob("trf3_*"))
+    sets["demo night"] = []
+    for p in demo:
+        try:
+            sets["demo night"].append(specan.prepare(specan.read(p)))
+        except specan.errors.SpecanError:
+            pass     # the demo night's damaged files
+    rng = np.random.default_rng(11)
+    sets["synthetic, off the grid"] = [
+        synth.spectrum(*OTHER_TYPES[i % len(OTHER_TYPES)], resolving_power=float(rng.choice([1000.0, 2000.0, 5000.0])),
+                       rv=rng.uniform(-900, 900) * KMS, snr=float(rng.choice([10.0, 30.0, 100.0])), seed=300 + i,
+                       wave_range=(3850, 7300) * u.AA) for i in range(n)]
+    excluded = [()] * sum(len(v) for v in sets.values())
+    reference = Path(__file__).resolve().parents[2] / "shared" / "reference"
+    if (reference / "jhc1984" / "catalog.csv").is_file():
+        from astropy.table import Table
+
+        rows = Table.read(reference / "jhc1984" / "catalog.csv", format="ascii.csv")
+        sets["JHC (1984) library"] = [specan.prepare(specan.read(reference / "jhc1984" / r["file"])) for r in rows]
+        excluded += [()] * len(rows)
+    miles = _miles_inputs(n)
+    if miles:
+        sets["MILES stars, own groups out"] = [s for s, _, _ in miles]
+        excluded += [ex for _, ex, _ in miles]
+    original = bank.precut_scores
+    seen = {}
+
+    def watched(search, bk, data_short, margin=bank.PRECUT_MARGIN):
+        out = original(search, bk, data_short, margin)
+        if out.rough is not None:
+            full = bank.score_bank(search, bk, data_short)
+            ok = np.isfinite(full.height) & np.isfinite(out.rough)
+            seen["worst"] = float(np.max(np.abs(out.rough - full.height)[ok]))
+            seen["full"] = int(out.exact.sum())
+            seen["size"] = len(bk)
+            seen["left out above threshold"] = int(np.sum(~out.exact & (full.height >= bank.mixture_threshold(full.height))))
+        return out
+
+    grid = {f"synthetic {a} {b}" for a, b in __import__("specan").templates.automatic_types()}
+    print("\n== pre-cut of the automatic choice against full scoring ==")
+    print(f"{'set':28s} {'n':>3s} {'max |h~-h|':>10s} {'scored in full':>15s} {'neighbour gain':>15s} "
+          f"{'choice changed':>14s} {'max |drv|/err':>13s}")
+    exclusions = iter(excluded)
+    for label, spectra in sets.items():
+        worst, full, gain, changed, drv, missed = [], [], [], 0, 0.0, 0
+        for s in spectra:
+            seen.clear()
+            ex = next(exclusions)
+            choice.precut_scores = watched
+            try:
+                fast = velocity.measure(s, barycentric=False, exclude_templates=ex)
+            finally:
+                choice.precut_scores = original
+            saved = bank.PRECUT_MIN_BANK, choice.NEIGHBOUR_GAIN
+            bank.PRECUT_MIN_BANK, choice.NEIGHBOUR_GAIN = 10 ** 9, np.inf
+            try:
+                slow = velocity.measure(s, barycentric=False, exclude_templates=ex)
+            finally:
+                bank.PRECUT_MIN_BANK, choice.NEIGHBOUR_GAIN = saved
+            if seen:
+                worst.append(seen["worst"])
+                full.append(f"{seen['full']}/{seen['size']}")
+                missed += seen["left out above threshold"]
+            sc = slow["template_scores"]
+            syn = [v for k, v in sc.items() if k in grid]
+            near = [v for k, v in sc.items() if k.startswith("synthetic") and k not in grid]
+            if syn and near:
+                gain.append(max(near) - max(syn))
+            if [m["name"] for m in fast["templates"]] != [m["name"] for m in slow["templates"]] or \
+                    not np.allclose([m["weight"] for m in fast["templates"]], [m["weight"] for m in slow["templates"]],
+                                    rtol=1e-12, atol=0):
+                changed += 1
+            drv = max(drv, abs((fast["rv"] - slow["rv"]) / slow["rv_err"]).value)
+        counts = sorted(full, key=lambda x: int(x.split("/")[0]))
+        print(f"{label:28s} {len(spectra):3d} {max(worst, default=float('nan')):10.4f} "
+              f"{(counts[len(counts) // 2] + ' (median)') if counts else '-':>15s} "
+              f"{max(gain, default=float('nan')):15.4f} {changed:14d} {drv:13.1e}"
+              + (f"  LEFT OUT ABOVE THRESHOLD: {missed}" if missed else ""))
+    print(f"(margin {bank.PRECUT_MARGIN}: estimates may be off by up to half of it; neighbour allowance "
+          f"{choice.NEIGHBOUR_GAIN})")
+
+
+def _miles_inputs(n):
+    """[(spectrum, names of its own groups' library templates)] of ``n`` MILES stars spread over the
+    catalogue (read at R 2000, air), or [] where the library is absent."""
     from astropy.io import fits
     from astropy.table import Table
 
@@ -423,8 +528,7 @@ def miles_stars(n):
 
     folder = Path(__file__).resolve().parents[2] / "shared" / "reference" / "miles"
     if not (folder / "catalog.csv").is_file():
-        print("\n(MILES reference library not present: skipped)")
-        return
+        return []
     cat = Table.read(folder / "catalog.csv", format="ascii.csv")
     with fits.open(Path(specan.__file__).parent / "data" / templates.LIBRARY_FILE) as hdus:
         groups = Table(hdus["GROUPS"].data)
@@ -434,11 +538,21 @@ def miles_stars(n):
             member_of.setdefault(star, []).append(str(g["name"]))
     rows = [r for r in cat if str(r["mk"]).strip() not in ("", "--")]
     pick = rows[:: max(1, len(rows) // n)][:n]
+    # R 2000: the library's 2.5 A FWHM at 5000 A
+    return [(specan.read(folder / r["file"], resolving_power=2000.0, medium="air"), tuple(member_of.get(str(r["id"]), ())),
+             r) for r in pick]
+
+
+def miles_stars(n):
+    """MILES stars (at rest in the library's frame) without their own groups' templates."""
+    pick = _miles_inputs(n)
+    if not pick:
+        print("\n(MILES reference library not present: skipped)")
+        return
     print(f"\n== MILES stars ({len(pick)}), each without its own groups' templates; truth 0 (library frame) ==")
     dv, err, names = [], [], []
-    for r in pick:
-        s = specan.read(folder / r["file"], resolving_power=2000.0, medium="air")  # 2.5 A FWHM at 5000 A
-        res = velocity.measure(s, barycentric=False, exclude_templates=member_of.get(str(r["id"]), ()))
+    for s, exclude, r in pick:
+        res = velocity.measure(s, barycentric=False, exclude_templates=exclude)
         dv.append(res["rv"].value)
         err.append(res["rv_err"].value)
         names.append(f"{r['mk']}->{res['template_type']}")
@@ -467,5 +581,7 @@ if __name__ == "__main__":
         user_path(model, 8 if quick else 20)
     if "--other-types" in chosen:
         other_types(6 if quick else 18)
+    if "--precut" in chosen:
+        precut(model, 10 if quick else 40)
     if "--miles" in chosen:
         miles_stars(20 if quick else 60)

@@ -37,8 +37,8 @@ __all__ = ["R_SCAN", "LIBRARY_MIN_COVER", "NEIGHBOUR_GAIN", "ResolvingPower", "T
 # Multipliers of the first guess tried when the resolving power is unknown (sampling of 1.7-5
 # pixels per FWHM, the range of real spectrographs; common practice).
 R_SCAN = (0.5, 0.6, 0.7, 0.85, 1.0, 1.2, 1.45)
-#: Most a neighbouring synthetic type (:func:`neighbour_types`) was seen to correlate above the best
-#: type of the grid, with a margin (our choice, from measurements: benchmarks/bench_velocity.py
+#: Most a neighbouring synthetic type (:func:`neighbour_types`) may correlate above the best type of
+#: the grid (our choice: at most 0.049 above on the 272 spectra of benchmarks/bench_velocity.py
 #: --precut): below the mixture's threshold by more, the best type's neighbours are not tried.
 NEIGHBOUR_GAIN = 0.1
 #: Smallest share of the spectrum's correlation weight inside the library's wavelength range for
