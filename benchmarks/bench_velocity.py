@@ -21,16 +21,16 @@
    ms of each step of ``velocity.measure``, and of the transforms inside (FFTs, spline solves);
    ``--night-set``: the same on ``bench_pipeline.py``'s 40 spectra (read and prepared, with the
    barycentric correction and the Galactic rest frame).
-7. ``--precut``: how well the automatic choice's pre-cut holds (see ``specan.velocity.bank.precut_scores``):
-   on the speed test's spectra, ``bench_pipeline.py``'s 40, the demo night, synthetic stars off the grid,
-   the JHC (1984) library and MILES stars without their own groups' templates (where present), the largest difference between a template's pre-cut height and its
-   full one, how many of the bank's templates were scored in full, how far the best synthetic type's
-   neighbours came above it (every template scored and every neighbour tried), and whether the
-   pre-cut's choice (templates, weights, velocity) is the full scoring's.
+7. ``--neighbours``: the automatic choice tries the neighbouring synthetic types of the best grid
+   type only where they can enter the mixture (``specan.velocity.choice.NEIGHBOUR_GAIN``): on the
+   speed test's spectra, ``bench_pipeline.py``'s 40, the demo night, synthetic stars off the grid, the
+   JHC (1984) library and MILES stars without their own groups' templates (where present), how far the
+   neighbours came above the best grid type (all tried), how often they were skipped, whether any
+   choice (templates, weights) or velocity changed, and the CPU time with and without the skip.
 8. ``--miles``: MILES library stars (``../shared/reference/miles``, at rest in the library's
    frame), each measured without the library templates whose group it belongs to.
 
-Run:  python benchmarks/bench_velocity.py [--quick] [--speed] [--floor] [--night-set] [--user] [--other-types] [--precut]
+Run:  python benchmarks/bench_velocity.py [--quick] [--speed] [--floor] [--night-set] [--user] [--other-types] [--neighbours]
       [--miles]
 
 Timings depend on the machine's load; on a shared machine OPENBLAS_NUM_THREADS=1 avoids BLAS
@@ -420,13 +420,14 @@ def other_types(n):
             _pull_line(f"R {r:5.0f} S/N {snr:4.0f}", dv, err, C_KMS / r, None, 1e3 * t / n)
 
 
-def precut(model, n):
-    """The pre-cut's estimates against full scoring, and the neighbours' gain over the best grid type."""
+def neighbours(model, n):
+    """How far the best synthetic type's neighbours come above it, and whether trying them only where
+    they can enter the mixture changes any choice (against trying them always)."""
     import tempfile
 
     import specan
-    from specan import synth
-    from specan.velocity import bank, choice
+    from specan import synth, templates
+    from specan.velocity import choice
 
     sys.path.insert(0, str(Path(__file__).resolve().parent))
     from bench_pipeline import make_spectra
@@ -435,9 +436,8 @@ def precut(model, n):
                                         for i, v in enumerate(np.random.default_rng(5).uniform(-300, 300, n))]}
     with tempfile.TemporaryDirectory() as tmp:
         sets["bench_pipeline spectra"] = [specan.prepare(specan.read(str(p))) for p in make_spectra(Path(tmp), n)]
-    demo = sorted((Path(__file__).resolve().parents[1] / "sample_spectra").glob("trf3_*"))
     sets["demo night"] = []
-    for p in demo:
+    for p in sorted((Path(__file__).resolve().parents[1] / "sample_spectra").glob("trf3_*")):
         try:
             sets["demo night"].append(specan.prepare(specan.read(p)))
         except specan.errors.SpecanError:
@@ -459,62 +459,44 @@ def precut(model, n):
     if miles:
         sets["MILES stars, own groups out"] = [s for s, _, _ in miles]
         excluded += [ex for _, ex, _ in miles]
-    original = bank.precut_scores
-    seen = {}
-
-    def watched(search, bk, data_short, margin=bank.PRECUT_MARGIN):
-        out = original(search, bk, data_short, margin)
-        if out.rough is not None:
-            full = bank.score_bank(search, bk, data_short)
-            ok = np.isfinite(full.height) & np.isfinite(out.rough)
-            seen["worst"] = float(np.max(np.abs(out.rough - full.height)[ok]))
-            seen["full"] = int(out.exact.sum())
-            seen["size"] = len(bk)
-            seen["left out above threshold"] = int(np.sum(~out.exact & (full.height >= bank.mixture_threshold(full.height))))
-        return out
-
-    grid = {f"synthetic {a} {b}" for a, b in __import__("specan").templates.automatic_types()}
-    print("\n== pre-cut of the automatic choice against full scoring ==")
-    print(f"{'set':28s} {'n':>3s} {'max |h~-h|':>10s} {'scored in full':>15s} {'neighbour gain':>15s} "
-          f"{'choice changed':>14s} {'max |drv|/err':>13s}")
+    grid = {f"synthetic {a} {b}" for a, b in templates.automatic_types()}
+    print("\n== neighbouring synthetic types: tried only where they can enter the mixture, against always ==")
+    print(f"{'set':28s} {'n':>3s} {'skipped':>7s} {'most gain':>9s} {'choice changed':>14s} {'max |drv|/err':>13s} "
+          f"{'CPU ms (always -> where they can)':>34s}")
     exclusions = iter(excluded)
     for label, spectra in sets.items():
-        worst, full, gain, changed, drv, missed = [], [], [], 0, 0.0, 0
+        gain, skipped, changed, drv, t_fast, t_slow = [], 0, 0, 0.0, 0.0, 0.0
         for s in spectra:
-            seen.clear()
             ex = next(exclusions)
-            choice.precut_scores = watched
-            try:
-                fast = velocity.measure(s, barycentric=False, exclude_templates=ex)
+            saved, choice.NEIGHBOUR_GAIN = choice.NEIGHBOUR_GAIN, np.inf
+            try:     # a first call builds every template both ways use (timed: steady state)
+                velocity.measure(s, barycentric=False, exclude_templates=ex)
             finally:
-                choice.precut_scores = original
-            saved = bank.PRECUT_MIN_BANK, choice.NEIGHBOUR_GAIN
-            bank.PRECUT_MIN_BANK, choice.NEIGHBOUR_GAIN = 10 ** 9, np.inf
+                choice.NEIGHBOUR_GAIN = saved
+            c = time.process_time()
+            fast = velocity.measure(s, barycentric=False, exclude_templates=ex)
+            t_fast += time.process_time() - c
+            saved, choice.NEIGHBOUR_GAIN = choice.NEIGHBOUR_GAIN, np.inf
             try:
+                c = time.process_time()
                 slow = velocity.measure(s, barycentric=False, exclude_templates=ex)
+                t_slow += time.process_time() - c
             finally:
-                bank.PRECUT_MIN_BANK, choice.NEIGHBOUR_GAIN = saved
-            if seen:
-                worst.append(seen["worst"])
-                full.append(f"{seen['full']}/{seen['size']}")
-                missed += seen["left out above threshold"]
+                choice.NEIGHBOUR_GAIN = saved
             sc = slow["template_scores"]
             syn = [v for k, v in sc.items() if k in grid]
             near = [v for k, v in sc.items() if k.startswith("synthetic") and k not in grid]
             if syn and near:
                 gain.append(max(near) - max(syn))
-            if [m["name"] for m in fast["templates"]] != [m["name"] for m in slow["templates"]] or \
-                    not np.allclose([m["weight"] for m in fast["templates"]], [m["weight"] for m in slow["templates"]],
-                                    rtol=1e-12, atol=0):
+            skipped += any("neighbouring synthetic types not tried" in x for x in fast["notes"])
+            if [(m["name"], m["weight"]) for m in fast["templates"]] != [(m["name"], m["weight"]) for m in slow["templates"]]:
                 changed += 1
             drv = max(drv, abs((fast["rv"] - slow["rv"]) / slow["rv_err"]).value)
-        counts = sorted(full, key=lambda x: int(x.split("/")[0]))
-        print(f"{label:28s} {len(spectra):3d} {max(worst, default=float('nan')):10.4f} "
-              f"{(counts[len(counts) // 2] + ' (median)') if counts else '-':>15s} "
-              f"{max(gain, default=float('nan')):15.4f} {changed:14d} {drv:13.1e}"
-              + (f"  LEFT OUT ABOVE THRESHOLD: {missed}" if missed else ""))
-    print(f"(margin {bank.PRECUT_MARGIN}: estimates may be off by up to half of it; neighbour allowance "
-          f"{choice.NEIGHBOUR_GAIN})")
+        k = len(spectra)
+        print(f"{label:28s} {k:3d} {skipped:7d} {max(gain, default=float('nan')):9.4f} {changed:14d} {drv:13.1e} "
+              f"{1e3 * t_slow / k:20.2f} -> {1e3 * t_fast / k:5.2f}")
+    print(f"(allowance NEIGHBOUR_GAIN {choice.NEIGHBOUR_GAIN}; CPU ms per spectrum in steady state, load average "
+          f"{os.getloadavg()[0]:.2f})")
 
 
 def _miles_inputs(n):
@@ -581,7 +563,7 @@ if __name__ == "__main__":
         user_path(model, 8 if quick else 20)
     if "--other-types" in chosen:
         other_types(6 if quick else 18)
-    if "--precut" in chosen:
-        precut(model, 10 if quick else 40)
+    if "--neighbours" in chosen:
+        neighbours(model, 10 if quick else 40)
     if "--miles" in chosen:
         miles_stars(20 if quick else 60)

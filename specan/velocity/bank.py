@@ -23,9 +23,8 @@ from .grid import turns
 from .prepared import prepare_builtin
 
 __all__ = ["TemplateBank", "BankScores", "short_length", "template_bank", "score_bank",
-           "WEIGHT_SCALE", "MAX_MIXTURE", "MIN_WEIGHT", "mixture_weights", "fit_matrix", "poly_peaks",
-           "short_side", "refine_peaks", "REFINE_OFFSETS", "PRECUT_COMPONENTS", "PRECUT_MIN_BANK", "PRECUT_MARGIN",
-           "PrecutScores", "mixture_threshold", "precut_scores"]
+           "WEIGHT_SCALE", "MAX_MIXTURE", "MIN_WEIGHT", "mixture_weights", "mixture_threshold", "fit_matrix", "poly_peaks",
+           "short_side", "refine_peaks", "REFINE_OFFSETS"]
 
 #: Scale of the template weights, as a fraction of the best template's unexplained variance
 #: 1 - h: a template whose peak is lower by 0.5 (1 - h_best) weighs 1/e of the best (our choice,
@@ -77,26 +76,8 @@ class TemplateBank:
         self.FT = np.ascontiguousarray(FT[:, :self.nf])
         self.FV = np.ascontiguousarray(sfft.rfft(unique, m, axis=1))
 
-        self._basis = None
-
     def __len__(self):
         return len(self.templates)
-
-    def basis(self):
-        """(coefficients (K, P), rFFTs (P, nf)) of the bank's first :data:`PRECUT_COMPONENTS` principal
-        components: T ~ coefficients @ components, what :func:`precut_scores` correlates instead of
-        every template. Made on first use, with one thread (the same bits whoever makes it)."""
-        if self._basis is None:
-            from ..threads import single_threaded
-
-            p = min(PRECUT_COMPONENTS, len(self))
-            with single_threaded():
-                # numpy's SVD (LAPACK): the best rank-p fit of the rows in the least-squares sense
-                u, sv, vt = np.linalg.svd(self.T, full_matrices=False)
-            coef = np.ascontiguousarray(u[:, :p] * sv[:p])
-            comp = sfft.rfft(vt[:p], self.m, axis=1)[:, :self.nf]
-            self._basis = (coef, np.ascontiguousarray(comp))
-        return self._basis
 
 
 @functools.lru_cache(maxsize=16)
@@ -123,143 +104,36 @@ class BankScores(NamedTuple):
     start: np.ndarray
 
 
-def score_bank(search, bank, data_short, rows=None):
-    """:class:`BankScores` of every template of ``bank`` (or of its ``rows``) against one spectrum.
+def score_bank(search, bank, data_short):
+    """:class:`BankScores` of every template of ``bank`` against one spectrum.
 
     The cross term of every template comes from one product and one 2-D inverse FFT; the
     normalisation (template energy and data energy over the overlap) varies slowly with lag
     and is taken at each template's integer peak by direct sums. Heights rank and weight the
     templates; velocities come from :func:`refine_peaks` (exact normalisation at every lag).
-    ``data_short`` holds the rFFTs of the data arrays at the bank's length. Each row's numbers
-    are its own: scoring some rows gives them the values scoring all would.
+    ``data_short`` holds the rFFTs of the data arrays at the bank's length.
     """
-    rows = np.arange(len(bank)) if rows is None else np.asarray(rows, dtype=np.intp)
-    return _exact(search, bank, data_short, rows, _usable_lags(search, bank, data_short))
-
-
-def _exact(search, bank, data_short, rows, usable):
-    """:func:`score_bank` of ``rows`` with the usable lags (:func:`_usable_lags`) given."""
-    lags = search.lags
-    FT = bank.FT if rows.size == len(bank) else bank.FT[rows]
-    cross = sfft.irfft(np.conj(data_short[0][:bank.nf]) * FT, bank.m, axis=1)  # C(a1, T)[k], lag s = pad - k
+    side, lags = search.side, search.lags
+    pad, n, m = lags.pad, lags.n, bank.m
+    cross = sfft.irfft(np.conj(data_short[0][:bank.nf]) * bank.FT, m, axis=1)  # C(a1, T)[k], lag s = pad - k
     s = np.arange(-lags.smax, lags.smax + 1)
-    return _heights(search, bank, rows, cross[:, lags.pad - s], usable)
-
-
-def _usable_lags(search, bank, data_short):
-    """(coverages, lags) mask of the lags -smax ... smax at which each coverage of ``bank`` overlaps
-    enough of the spectrum's weight to count."""
-    lags = search.lags
-    s = np.arange(-lags.smax, lags.smax + 1)
-    over = sfft.irfft(np.conj(data_short[1])[None, :] * bank.FV, bank.m, axis=1)[:, lags.pad - s]
-    return over >= search.min_overlap * search.side.total_weight
-
-
-def _vertices(c1, ok):
-    """(integer peak index, found, parabola vertex value, vertex lag offset) of each row of the cross
-    terms ``c1`` over the lags where ``ok``."""
+    c1 = cross[:, pad - s]                                                      # (K, L)
+    # overlap of each coverage at each lag: only lags using enough of the spectrum's weight count
+    over = sfft.irfft(np.conj(data_short[1])[None, :] * bank.FV, m, axis=1)[:, pad - s]
+    ok = over[bank.groups] >= search.min_overlap * side.total_weight
     masked = np.where(ok, c1, -np.inf)
     j = np.argmax(masked, axis=1)
-    at = np.arange(c1.shape[0])
-    found = np.isfinite(masked[at, j])
-    last = c1.shape[1] - 1
+    rows = np.arange(len(bank))
+    found = np.isfinite(masked[rows, j])
     # parabola vertex of the cross term about the integer peak (a smooth score: ranks must not
     # jump with the sub-pixel phase of the star)
-    y1 = c1[at, j]
-    y0 = c1[at, np.clip(j - 1, 0, last)]
-    y2 = c1[at, np.clip(j + 1, 0, last)]
+    y1 = c1[rows, j]
+    y0 = c1[rows, np.clip(j - 1, 0, s.size - 1)]
+    y2 = c1[rows, np.clip(j + 1, 0, s.size - 1)]
     den = y0 - 2.0 * y1 + y2
-    inner = (j > 0) & (j < last) & (den < 0)
+    inner = (j > 0) & (j < s.size - 1) & (den < 0)
     vertex = np.where(inner, y1 - 0.125 * (y0 - y2) ** 2 / np.where(inner, den, -1.0), y1)
-    return j, found, vertex, np.where(inner, 0.5 * (y0 - y2) / np.where(inner, den, -1.0), 0.0)
-
-
-#: Principal components the pre-cut correlates instead of every template of a bank (our choice:
-#: with 16 the estimates were up to 0.04 off, with 24 0.025-0.030, on the sets of :data:`PRECUT_MARGIN`).
-PRECUT_COMPONENTS = 24
-#: Banks of fewer templates than this are scored in full (the pre-cut would not save transforms).
-PRECUT_MIN_BANK = 2 * PRECUT_COMPONENTS
-#: Largest error of a pre-cut height allowed for (our choice: the estimates were at most 0.030 off
-#: on the 272 spectra of benchmarks/bench_velocity.py --precut, Kurucz Sun, synthetic stars, the
-#: demo night, JHC (1984) and MILES stars). A template whose pre-cut height plus this stays below
-#: the least height that enters the mixture cannot enter it; every other is scored in full.
-PRECUT_MARGIN = 0.08
-
-
-class PrecutScores(NamedTuple):
-    """:class:`BankScores` of a bank with, per template, whether its height is exact (``exact``) or
-    the pre-cut's estimate, the largest difference between the two seen on the exact ones, and
-    every template's estimate (``rough``; None where the bank was scored in full at once)."""
-
-    scores: BankScores
-    exact: np.ndarray
-    worst: float
-    rough: np.ndarray | None = None
-
-
-def mixture_threshold(heights):
-    """The least height a template needs to enter the mixture of :func:`mixture_weights` beside
-    ``heights`` (the :data:`MAX_MIXTURE`-th best, or the weight :data:`MIN_WEIGHT`); -inf if none."""
-    h = np.sort(np.asarray(heights, float)[np.isfinite(heights)])[::-1]
-    if not h.size:
-        return -np.inf
-    cut = h[0] + WEIGHT_SCALE * max(1.0 - h[0], 1e-4) * np.log(MIN_WEIGHT)
-    return max(cut, h[MAX_MIXTURE - 1]) if h.size >= MAX_MIXTURE else cut
-
-
-def precut_scores(search, bank, data_short, margin=PRECUT_MARGIN):
-    """:class:`PrecutScores` of ``bank``: every template scored at once on the bank's principal
-    components (:meth:`TemplateBank.basis`; :data:`PRECUT_COMPONENTS` inverse transforms instead of
-    one per template), then in full (:func:`score_bank`, the same numbers) those that might enter
-    the mixture: whose estimate comes within ``margin`` of the least height that does.
-
-    The estimate's error is checked on every template scored in full: where it exceeds half the
-    margin the spectrum is one the components describe less well than those the margin was
-    measured on, and every template is scored in full. Small banks are scored in full.
-    """
-    full = np.ones(len(bank), bool)
-    if len(bank) < PRECUT_MIN_BANK:
-        return PrecutScores(score_bank(search, bank, data_short), full, 0.0)
-    lags = search.lags
-    coef, comp = bank.basis()
-    s = np.arange(-lags.smax, lags.smax + 1)
-    cross = sfft.irfft(np.conj(data_short[0][:bank.nf]) * comp, bank.m, axis=1)[:, lags.pad - s]   # (P, lags)
-    usable = _usable_lags(search, bank, data_short)
-    # every template's height from the components' cross terms, normalised by direct sums at its
-    # peak as in scoring (einsum, not a BLAS product: the same bits whatever the thread count)
-    every = np.arange(len(bank))
-    rough = _heights(search, bank, every, np.einsum("kp,pl->kl", coef, cross), usable)
-    h = rough.height
-    lag, height, start = list(rough.lag), h.copy(), rough.start.copy()
-    exact = np.zeros(len(bank), bool)
-    worst = 0.0
-    todo = np.flatnonzero(h + margin >= mixture_threshold(h))
-    while todo.size:
-        sc = _exact(search, bank, data_short, todo, usable)
-        both = np.isfinite(sc.height) & np.isfinite(h[todo])
-        worst = max(worst, float(np.max(np.abs(sc.height - h[todo])[both], initial=0.0)))
-        if worst > 0.5 * margin:
-            return PrecutScores(score_bank(search, bank, data_short), full, worst, h)
-        for i, k in enumerate(todo):
-            lag[k], height[k], start[k] = sc.lag[i], sc.height[i], sc.start[i]
-        exact[todo] = True
-        # those left out must stay below the threshold of those scored in full (which only rises
-        # as more are scored)
-        todo = np.flatnonzero(~exact & (h + margin >= mixture_threshold(height[exact])))
-    return PrecutScores(BankScores(lag, height, start), exact, worst, h)
-
-
-def _heights(search, bank, rows, c1, usable):
-    """:class:`BankScores` of the templates ``rows`` of ``bank`` from their cross terms ``c1``
-    ((rows, lags) at lags -smax ... smax; ``usable`` from :func:`_usable_lags`), the normalisation
-    by direct sums at each peak."""
-    side, lags = search.side, search.lags
-    pad, n = lags.pad, lags.n
-    s = np.arange(-lags.smax, lags.smax + 1)
-    groups = bank.groups[rows]
-    j, found, vertex, frac = _vertices(c1, usable[groups])
-    at = np.arange(rows.size)
-    vertex_lag = s[j] + frac
+    vertex_lag = s[j] + np.where(inner, 0.5 * (y0 - y2) / np.where(inner, den, -1.0), 0.0)
     a1, a2, a3 = side.arrays
     # sums over the data window at each template's peak lag: every template's window gathered at
     # once (a view, then one copy), the coverage sums once per distinct (coverage, lag)
@@ -269,11 +143,11 @@ def _heights(search, bank, rows, c1, usable):
     # the thread count; a product then a sum over the gathered windows took 17 times as long)
     c2t = np.einsum("kn,n->k", _windows(bank.T, n)[rows, start], a2)
     c2t2 = np.einsum("kn,n->k", _windows(bank.T2, n)[rows, start], a2)
-    c2v, c1v, c3v = (np.empty(rows.size) for _ in range(3))
+    c2v, c1v, c3v = (np.empty(len(bank)) for _ in range(3))
     # distinct (coverage, start) pairs, as one integer each (numpy's unique over columns goes through
     # structured records: ten times slower); sorted as the pairs would be
     span = bank.T.shape[1] + 1
-    keys, which = np.unique(groups * span + start, return_inverse=True)
+    keys, which = np.unique(bank.groups * span + start, return_inverse=True)
     cov = _windows(bank.V_unique, n)[keys // span, keys % span]                # (P, n)
     for out, a in ((c2v, a2), (c1v, a1), (c3v, a3)):
         out[:] = np.einsum("pn,n->p", cov, a)[np.asarray(which).ravel()]
@@ -283,7 +157,7 @@ def _heights(search, bank, rows, c1, usable):
     with np.errstate(invalid="ignore", divide="ignore"):
         h = (vertex - c1v * c2t / c2v) / np.sqrt(np.clip(e, 1e-300, None) * np.clip(d, 1e-300, None))
     h = np.where(found & np.isfinite(h), h, -np.inf)
-    return BankScores([int(s[j[i]]) if np.isfinite(h[i]) else None for i in at], h, vertex_lag)
+    return BankScores([int(s[j[i]]) if np.isfinite(h[i]) else None for i in rows], h, vertex_lag)
 
 
 def _windows(x, n):
@@ -304,6 +178,16 @@ def mixture_weights(heights):
     order = np.argsort(-w, kind="stable")[:MAX_MIXTURE]
     order = order[w[order] >= MIN_WEIGHT]
     return order, w[order] / np.sum(w[order])
+
+
+def mixture_threshold(heights):
+    """The least height a template needs to enter the mixture of :func:`mixture_weights` beside
+    ``heights`` (the :data:`MAX_MIXTURE`-th best, or the weight :data:`MIN_WEIGHT`); -inf if none."""
+    h = np.sort(np.asarray(heights, float)[np.isfinite(heights)])[::-1]
+    if not h.size:
+        return -np.inf
+    cut = h[0] + WEIGHT_SCALE * max(1.0 - h[0], 1e-4) * np.log(MIN_WEIGHT)
+    return max(cut, h[MAX_MIXTURE - 1]) if h.size >= MAX_MIXTURE else cut
 
 
 # ---------------------------------------------------------------------------

@@ -5,7 +5,8 @@ exposure of the same star (the velocity is then relative to it), one built-in te
 automatic choice. The automatic choice (:func:`automatic_mixture`) scores, in one batch
 (:mod:`.bank`), the empirical library templates (:func:`specan.templates.library_templates`,
 where the library covers at least :data:`LIBRARY_MIN_COVER` of the spectrum's weight) and the
-synthetic grid, then the synthetic grid's neighbours of its best type; the templates whose
+synthetic grid, then the synthetic grid's neighbours of its best type (where they can enter the
+mixture, :data:`NEIGHBOUR_GAIN`); the templates whose
 peaks come close to the best are kept with weights (:func:`~.bank.mixture_weights`) and the
 velocity is their weighted mean. When the spectrum's resolving power is unknown and the
 narrowest lines do not tell it, the width of a synthetic template of the best type is scanned
@@ -25,8 +26,7 @@ from .. import resolution, templates
 from ..errors import AnalysisError, SpecanError
 from ..mktypes import code_to_sptype, parse_mk, sptype_to_code
 from ..obsinfo import get_info, vacuum_to_air
-from .bank import (PRECUT_MARGIN, mixture_threshold, mixture_weights, precut_scores, score_bank, short_side,
-                   template_bank)
+from .bank import mixture_threshold, mixture_weights, score_bank, short_side, template_bank
 from .correlation import best_index, template_peaks
 from .prepared import BuiltinCandidate, PreparedTemplate, prepare_builtin, spectrum_template
 
@@ -38,8 +38,8 @@ __all__ = ["R_SCAN", "LIBRARY_MIN_COVER", "NEIGHBOUR_GAIN", "ResolvingPower", "T
 # pixels per FWHM, the range of real spectrographs; common practice).
 R_SCAN = (0.5, 0.6, 0.7, 0.85, 1.0, 1.2, 1.45)
 #: Most a neighbouring synthetic type (:func:`neighbour_types`) may correlate above the best type of
-#: the grid (our choice: at most 0.049 above on the 272 spectra of benchmarks/bench_velocity.py
-#: --precut): below the mixture's threshold by more, the best type's neighbours are not tried.
+#: the grid (our choice: twice the most seen, 0.049 on the 272 spectra of benchmarks/bench_velocity.py
+#: --neighbours): below the mixture's threshold by more, the best type's neighbours are not tried.
 NEIGHBOUR_GAIN = 0.1
 #: Smallest share of the spectrum's correlation weight inside the library's wavelength range for
 #: the automatic choice to use library templates (our choice: a template must see most of the star).
@@ -233,7 +233,9 @@ def automatic_mixture(search, resolving_power, template_grid, notes, where=None,
     Every built-in template is scored in one batch (:func:`~.bank.score_bank`): the library
     templates (observed stars; where they cover at least :data:`LIBRARY_MIN_COVER` of the
     spectrum's weight and unless ``template_grid`` restricts the choice to synthetic types), the
-    synthetic grid, then the synthetic neighbours of the best synthetic type. Templates are
+    synthetic grid, then the synthetic neighbours of the best synthetic type (where that type comes
+    within :data:`NEIGHBOUR_GAIN` of the least height that enters the mixture: else none of its
+    neighbours could enter it, and they are not scored). Templates are
     weighted by how close their peak comes to the best (:func:`~.bank.mixture_weights`): a star
     between two templates gets both, so the velocity moves smoothly from one to the other
     instead of jumping when noise reorders them, and their disagreement enters the error.
@@ -249,38 +251,24 @@ def automatic_mixture(search, resolving_power, template_grid, notes, where=None,
                          "used")
     grid_types = tuple(template_grid or templates.automatic_types())
     synthetic = [BuiltinCandidate(st, lc, resolving_power) for st, lc in grid_types]
-    data_short = data_short if data_short is not None else short_side(search)
-    bank = template_bank(candidates + synthetic, search.lags)
-    pre = precut_scores(search, bank, data_short)
-    sc, exact = pre.scores, pre.exact
+    bank, sc = _scored(search, candidates + synthetic, data_short)
     members = list(zip(bank.templates, sc.lag, bank.candidates, sc.height, sc.start))
-    syn = np.array([c.kind == "synth" for c in bank.candidates])
-    heights = np.asarray(sc.height, float)
-    # the neighbours of the best synthetic type can enter the mixture only if that type comes within
-    # NEIGHBOUR_GAIN of the mixture's threshold (a pre-cut height counts with its margin)
-    reach = np.where(exact, heights, heights + PRECUT_MARGIN)
-    if syn.any() and np.isfinite(heights[syn]).any() and \
-            np.max(reach[syn]) + NEIGHBOUR_GAIN < mixture_threshold(heights[exact]):
-        notes.append(f"neighbouring synthetic types not tried: the best synthetic template is more than "
-                     f"{NEIGHBOUR_GAIN} below the mixture's threshold")
-        syn = np.zeros_like(syn)
-    # the best synthetic type exactly: every synthetic template its pre-cut height leaves in doubt
-    best_exact = np.max(heights[syn & exact], initial=-np.inf)
-    doubt = np.flatnonzero(syn & ~exact & (heights + PRECUT_MARGIN >= best_exact))
-    if doubt.size:
-        more_sc = score_bank(search, bank, data_short, doubt)
-        for i, k in enumerate(doubt):
-            members[k] = (bank.templates[k], more_sc.lag[i], bank.candidates[k], more_sc.height[i], more_sc.start[i])
-        exact[doubt] = True
-    best_syn = max(np.flatnonzero(syn & exact), key=lambda i: members[i][3], default=None)
-    if best_syn is not None and np.isfinite(members[best_syn][3]):
-        c = members[best_syn][2]
-        more = [BuiltinCandidate(st, lc, resolving_power)
-                for st, lc in neighbour_types((c.sptype, c.lumclass), grid_types)]
+    syn = [x for x in members if x[2].kind == "synth"]
+    best_syn = max(range(len(syn)), key=lambda i: syn[i][3]) if syn else None
+    if best_syn is not None and np.isfinite(syn[best_syn][3]):
+        c = syn[best_syn][2]
+        # the neighbours of the best synthetic type can enter the mixture only if that type comes
+        # within NEIGHBOUR_GAIN of the least height that does
+        if syn[best_syn][3] + NEIGHBOUR_GAIN < mixture_threshold(sc.height):
+            notes.append(f"neighbouring synthetic types not tried: the best synthetic template ({c.sptype} "
+                         f"{c.lumclass}) is more than {NEIGHBOUR_GAIN} below the least height that enters the mixture")
+            more = []
+        else:
+            more = [BuiltinCandidate(st, lc, resolving_power)
+                    for st, lc in neighbour_types((c.sptype, c.lumclass), grid_types)]
         if more:
             bank2, sc2 = _scored(search, more, data_short)
             members += list(zip(bank2.templates, sc2.lag, bank2.candidates, sc2.height, sc2.start))
-            exact = np.append(exact, np.ones(len(bank2), bool))
     heights = np.array([x[3] for x in members])
     if not np.isfinite(heights).any():
         raise AnalysisError("no template correlates with the spectrum", where)
@@ -291,8 +279,6 @@ def automatic_mixture(search, resolving_power, template_grid, notes, where=None,
               for i, wt in zip(index, weights)]
     n_lib = sum(1 for x in members if x[2].kind == "library" and np.isfinite(x[3]))
     kinds = f"{n_lib} library and {len(scores) - n_lib} synthetic" if n_lib else f"{len(scores)} synthetic"
-    if not exact.all():
-        kinds += f" ({int(exact.sum())} scored in full, the others by the pre-cut)"
     used = ", ".join(f"{m.template.name} {m.weight:.2f}" for m in chosen)
     notes.append(f"template chosen automatically: best normalised correlation of {kinds} templates "
                  f"({chosen[0].template.name}, {chosen[0].score:.3f}); velocity averaged over {used} "
