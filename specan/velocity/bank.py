@@ -48,9 +48,9 @@ class TemplateBank:
     """Prepared built-in templates of one set-up, stacked: names, candidates, arrays and FFTs.
 
     ``T``, ``T2`` and ``V`` are (K, N) arrays (high-passed template times coverage, its square
-    times coverage, coverage); ``FT`` their real FFTs at length ``m`` truncated to the
-    ``nf`` frequencies where any template has power; coverages are grouped (``groups`` maps
-    each template to a row of ``V_unique``/``FV``).
+    times coverage, coverage); ``FT`` the real FFTs of ``T`` at length ``m`` truncated to the
+    ``nf`` frequencies where any template has power, in single precision (:func:`score_bank`);
+    coverages are grouped (``groups`` maps each template to a row of ``V_unique``/``FV``).
     """
 
     def __init__(self, candidates, prepared, m):
@@ -73,7 +73,8 @@ class TemplateBank:
         power = np.max(np.abs(FT) ** 2, axis=0)
         keep = np.flatnonzero(power > 1e-14 * power.max())
         self.nf = int(keep[-1]) + 1 if keep.size else FT.shape[1]
-        self.FT = np.ascontiguousarray(FT[:, :self.nf])
+        # single precision: the scores only rank and weigh the templates (see score_bank)
+        self.FT = np.ascontiguousarray(FT[:, :self.nf], dtype=np.complex64)
         self.FV = np.ascontiguousarray(sfft.rfft(unique, m, axis=1))
 
     def __len__(self):
@@ -115,9 +116,14 @@ def score_bank(search, bank, data_short):
     """
     side, lags = search.side, search.lags
     pad, n, m = lags.pad, lags.n, bank.m
-    cross = sfft.irfft(np.conj(data_short[0][:bank.nf]) * bank.FT, m, axis=1)  # C(a1, T)[k], lag s = pad - k
+    # The cross terms in single precision: half the time of the product and the inverse transforms
+    # (0.7-1.0 against 1.9-2.3 ms for 49 templates of 6,000 points, measured), within 2e-7 of the
+    # peak (measured); the heights rank and weigh the templates and that moves a weight by ~1e-5
+    # of itself, while every velocity is refined at double precision (refine_peaks).
+    a1_short = np.conj(data_short[0][:bank.nf]).astype(np.complex64)
+    cross = sfft.irfft(a1_short * bank.FT, m, axis=1)               # C(a1, T)[k], lag s = pad - k
     s = np.arange(-lags.smax, lags.smax + 1)
-    c1 = cross[:, pad - s]                                                      # (K, L)
+    c1 = cross[:, pad - s].astype(np.float64)                       # (K, L)
     # overlap of each coverage at each lag: only lags using enough of the spectrum's weight count
     over = sfft.irfft(np.conj(data_short[1])[None, :] * bank.FV, m, axis=1)[:, pad - s]
     ok = over[bank.groups] >= search.min_overlap * side.total_weight
