@@ -21,10 +21,17 @@
    ms of each step of ``velocity.measure``, and of the transforms inside (FFTs, spline solves);
    ``--night-set``: the same on ``bench_pipeline.py``'s 40 spectra (read and prepared, with the
    barycentric correction and the Galactic rest frame).
-7. ``--miles``: MILES library stars (``../shared/reference/miles``, at rest in the library's
+7. ``--neighbours``: the automatic choice tries the neighbouring synthetic types of the best grid
+   type only where they can enter the mixture (``specan.velocity.choice.NEIGHBOUR_GAIN``): on the
+   speed test's spectra, ``bench_pipeline.py``'s 40, the demo night, synthetic stars off the grid, the
+   JHC (1984) library and MILES stars without their own groups' templates (where present), how far the
+   neighbours came above the best grid type (all tried), how often they were skipped, whether any
+   choice (templates, weights) or velocity changed, and the CPU time with and without the skip.
+8. ``--miles``: MILES library stars (``../shared/reference/miles``, at rest in the library's
    frame), each measured without the library templates whose group it belongs to.
 
-Run:  python benchmarks/bench_velocity.py [--quick] [--speed] [--floor] [--night-set] [--user] [--other-types] [--miles]
+Run:  python benchmarks/bench_velocity.py [--quick] [--speed] [--floor] [--night-set] [--user] [--other-types] [--neighbours]
+      [--miles]
 
 Timings depend on the machine's load; on a shared machine OPENBLAS_NUM_THREADS=1 avoids BLAS
 threads fighting other processes (the figures in the issue-4 report were measured that way).
@@ -413,8 +420,88 @@ def other_types(n):
             _pull_line(f"R {r:5.0f} S/N {snr:4.0f}", dv, err, C_KMS / r, None, 1e3 * t / n)
 
 
-def miles_stars(n):
-    """MILES stars (at rest in the library's frame) without their own groups' templates."""
+def neighbours(model, n):
+    """How far the best synthetic type's neighbours come above it, and whether trying them only where
+    they can enter the mixture changes any choice (against trying them always)."""
+    import tempfile
+
+    import specan
+    from specan import synth, templates
+    from specan.velocity import choice
+
+    sys.path.insert(0, str(Path(__file__).resolve().parent))
+    from bench_pipeline import make_spectra
+
+    sets = {"speed test (Kurucz Sun)": [speed_spectrum(model, v, 50.0, 200 + i)
+                                        for i, v in enumerate(np.random.default_rng(5).uniform(-300, 300, n))]}
+    with tempfile.TemporaryDirectory() as tmp:
+        sets["bench_pipeline spectra"] = [specan.prepare(specan.read(str(p))) for p in make_spectra(Path(tmp), n)]
+    sets["demo night"] = []
+    for p in sorted((Path(__file__).resolve().parents[1] / "sample_spectra").glob("trf3_*")):
+        try:
+            sets["demo night"].append(specan.prepare(specan.read(p)))
+        except specan.errors.SpecanError:
+            pass     # the demo night's damaged files
+    rng = np.random.default_rng(11)
+    sets["synthetic, off the grid"] = [
+        synth.spectrum(*OTHER_TYPES[i % len(OTHER_TYPES)], resolving_power=float(rng.choice([1000.0, 2000.0, 5000.0])),
+                       rv=rng.uniform(-900, 900) * KMS, snr=float(rng.choice([10.0, 30.0, 100.0])), seed=300 + i,
+                       wave_range=(3850, 7300) * u.AA) for i in range(n)]
+    excluded = [()] * sum(len(v) for v in sets.values())
+    reference = Path(__file__).resolve().parents[2] / "shared" / "reference"
+    if (reference / "jhc1984" / "catalog.csv").is_file():
+        from astropy.table import Table
+
+        rows = Table.read(reference / "jhc1984" / "catalog.csv", format="ascii.csv")
+        sets["JHC (1984) library"] = [specan.prepare(specan.read(reference / "jhc1984" / r["file"])) for r in rows]
+        excluded += [()] * len(rows)
+    miles = _miles_inputs(n)
+    if miles:
+        sets["MILES stars, own groups out"] = [s for s, _, _ in miles]
+        excluded += [ex for _, ex, _ in miles]
+    grid = {f"synthetic {a} {b}" for a, b in templates.automatic_types()}
+    print("\n== neighbouring synthetic types: tried only where they can enter the mixture, against always ==")
+    print(f"{'set':28s} {'n':>3s} {'skipped':>7s} {'most gain':>9s} {'choice changed':>14s} {'max |drv|/err':>13s} "
+          f"{'CPU ms (always -> where they can)':>34s}")
+    exclusions = iter(excluded)
+    for label, spectra in sets.items():
+        gain, skipped, changed, drv, t_fast, t_slow = [], 0, 0, 0.0, 0.0, 0.0
+        for s in spectra:
+            ex = next(exclusions)
+            saved, choice.NEIGHBOUR_GAIN = choice.NEIGHBOUR_GAIN, np.inf
+            try:     # a first call builds every template both ways use (timed: steady state)
+                velocity.measure(s, barycentric=False, exclude_templates=ex)
+            finally:
+                choice.NEIGHBOUR_GAIN = saved
+            c = time.process_time()
+            fast = velocity.measure(s, barycentric=False, exclude_templates=ex)
+            t_fast += time.process_time() - c
+            saved, choice.NEIGHBOUR_GAIN = choice.NEIGHBOUR_GAIN, np.inf
+            try:
+                c = time.process_time()
+                slow = velocity.measure(s, barycentric=False, exclude_templates=ex)
+                t_slow += time.process_time() - c
+            finally:
+                choice.NEIGHBOUR_GAIN = saved
+            sc = slow["template_scores"]
+            syn = [v for k, v in sc.items() if k in grid]
+            near = [v for k, v in sc.items() if k.startswith("synthetic") and k not in grid]
+            if syn and near:
+                gain.append(max(near) - max(syn))
+            skipped += any("neighbouring synthetic types not tried" in x for x in fast["notes"])
+            if [(m["name"], m["weight"]) for m in fast["templates"]] != [(m["name"], m["weight"]) for m in slow["templates"]]:
+                changed += 1
+            drv = max(drv, abs((fast["rv"] - slow["rv"]) / slow["rv_err"]).value)
+        k = len(spectra)
+        print(f"{label:28s} {k:3d} {skipped:7d} {max(gain, default=float('nan')):9.4f} {changed:14d} {drv:13.1e} "
+              f"{1e3 * t_slow / k:20.2f} -> {1e3 * t_fast / k:5.2f}")
+    print(f"(allowance NEIGHBOUR_GAIN {choice.NEIGHBOUR_GAIN}; CPU ms per spectrum in steady state, load average "
+          f"{os.getloadavg()[0]:.2f})")
+
+
+def _miles_inputs(n):
+    """[(spectrum, names of its own groups' library templates)] of ``n`` MILES stars spread over the
+    catalogue (read at R 2000, air), or [] where the library is absent."""
     from astropy.io import fits
     from astropy.table import Table
 
@@ -423,33 +510,55 @@ def miles_stars(n):
 
     folder = Path(__file__).resolve().parents[2] / "shared" / "reference" / "miles"
     if not (folder / "catalog.csv").is_file():
-        print("\n(MILES reference library not present: skipped)")
-        return
+        return []
     cat = Table.read(folder / "catalog.csv", format="ascii.csv")
     with fits.open(Path(specan.__file__).parent / "data" / templates.LIBRARY_FILE) as hdus:
         groups = Table(hdus["GROUPS"].data)
     member_of = {}
-    # How far a group's members sat from each other's rest frames when the templates were built
-    # (scripts/build_library_templates.py aligns them by cross-correlation and writes the median
-    # member's standard error, 1.2533 sd / sqrt(n)): the sd of one star's own rest frame about its
-    # group's, i.e. how uncertain "truth 0" is for that star (it also holds the members' mismatch).
-    member_sd = {str(g["name"]): float(g["zero_point_err_kms"]) * np.sqrt(int(g["n_stars"])) / 1.2533
-                 for g in groups}
     for g in groups:
         for star in str(g["members"]).split():
             member_of.setdefault(star, []).append(str(g["name"]))
     rows = [r for r in cat if str(r["mk"]).strip() not in ("", "--")]
     pick = rows[:: max(1, len(rows) // n)][:n]
+    # R 2000: the library's 2.5 A FWHM at 5000 A
+    return [(specan.read(folder / r["file"], resolving_power=2000.0, medium="air"), tuple(member_of.get(str(r["id"]), ())),
+             r) for r in pick]
+
+
+def _member_sd():
+    """{library template name: sd of its members' rest frames about the group's, km/s}.
+
+    How far a group's members sat from each other's rest frames when the templates were built
+    (scripts/build_library_templates.py aligns them by cross-correlation and writes the median
+    member's standard error, 1.2533 sd / sqrt(n)): how uncertain "truth 0" is for one of its
+    stars (it also holds the members' mismatch).
+    """
+    from astropy.io import fits
+    from astropy.table import Table
+
+    import specan
+    from specan import templates
+
+    with fits.open(Path(specan.__file__).parent / "data" / templates.LIBRARY_FILE) as hdus:
+        groups = Table(hdus["GROUPS"].data)
+    return {str(g["name"]): float(g["zero_point_err_kms"]) * np.sqrt(int(g["n_stars"])) / 1.2533 for g in groups}
+
+
+def miles_stars(n):
+    """MILES stars (at rest in the library's frame) without their own groups' templates."""
+    pick = _miles_inputs(n)
+    if not pick:
+        print("\n(MILES reference library not present: skipped)")
+        return
     print(f"\n== MILES stars ({len(pick)}), each without its own groups' templates; truth 0 (library frame) ==")
-    dv, err, truth_sd, names = [], [], [], []
+    member_sd = _member_sd()
     typical_sd = float(np.median(list(member_sd.values())))
-    for r in pick:
-        s = specan.read(folder / r["file"], resolving_power=2000.0, medium="air")  # 2.5 A FWHM at 5000 A
-        own = member_of.get(str(r["id"]), ())
-        res = velocity.measure(s, barycentric=False, exclude_templates=own)
+    dv, err, truth_sd, names = [], [], [], []
+    for s, exclude, r in pick:
+        res = velocity.measure(s, barycentric=False, exclude_templates=exclude)
         dv.append(res["rv"].value)
         err.append(res["rv_err"].value)
-        truth_sd.append(np.mean([member_sd[g] for g in own]) if own else typical_sd)
+        truth_sd.append(np.mean([member_sd[g] for g in exclude]) if exclude else typical_sd)
         names.append(f"{r['mk']}->{res['template_type']}")
     _pull_line("MILES", dv, err, C_KMS / 2000.0, None, float("nan"))
     # The library's rest frame is not a truth to the km/s: each star's own rest frame scatters about
@@ -483,5 +592,7 @@ if __name__ == "__main__":
         user_path(model, 8 if quick else 20)
     if "--other-types" in chosen:
         other_types(6 if quick else 18)
+    if "--neighbours" in chosen:
+        neighbours(model, 10 if quick else 40)
     if "--miles" in chosen:
         miles_stars(20 if quick else 60)

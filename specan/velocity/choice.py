@@ -5,7 +5,8 @@ exposure of the same star (the velocity is then relative to it), one built-in te
 automatic choice. The automatic choice (:func:`automatic_mixture`) scores, in one batch
 (:mod:`.bank`), the empirical library templates (:func:`specan.templates.library_templates`,
 where the library covers at least :data:`LIBRARY_MIN_COVER` of the spectrum's weight) and the
-synthetic grid, then the synthetic grid's neighbours of its best type; the templates whose
+synthetic grid, then the synthetic grid's neighbours of its best type (where they can enter the
+mixture, :data:`NEIGHBOUR_GAIN`); the templates whose
 peaks come close to the best are kept with weights (:func:`~.bank.mixture_weights`) and the
 velocity is their weighted mean. When the spectrum's resolving power is unknown and the
 narrowest lines do not tell it, the width of a synthetic template of the best type is scanned
@@ -25,17 +26,21 @@ from .. import resolution, templates
 from ..errors import AnalysisError, SpecanError
 from ..mktypes import code_to_sptype, parse_mk, sptype_to_code
 from ..obsinfo import get_info, vacuum_to_air
-from .bank import mixture_weights, score_bank, short_side, template_bank
+from .bank import mixture_threshold, mixture_weights, score_bank, short_side, template_bank
 from .correlation import best_index, template_peaks
 from .prepared import BuiltinCandidate, PreparedTemplate, prepare_builtin, spectrum_template
 
-__all__ = ["R_SCAN", "LIBRARY_MIN_COVER", "ResolvingPower", "TemplateRequest", "TemplateChoice",
+__all__ = ["R_SCAN", "LIBRARY_MIN_COVER", "NEIGHBOUR_GAIN", "ResolvingPower", "TemplateRequest", "TemplateChoice",
            "settle_resolving_power", "parse_template", "choose_template", "user_template", "reference_template",
            "automatic_type", "automatic_mixture", "MixtureMember", "library_cover", "neighbour_types", "scan_resolving_power"]
 
 # Multipliers of the first guess tried when the resolving power is unknown (sampling of 1.7-5
 # pixels per FWHM, the range of real spectrographs; common practice).
 R_SCAN = (0.5, 0.6, 0.7, 0.85, 1.0, 1.2, 1.45)
+#: Most a neighbouring synthetic type (:func:`neighbour_types`) may correlate above the best type of
+#: the grid (our choice: twice the most seen, 0.049 on the 272 spectra of benchmarks/bench_velocity.py
+#: --neighbours): below the mixture's threshold by more, the best type's neighbours are not tried.
+NEIGHBOUR_GAIN = 0.1
 #: Smallest share of the spectrum's correlation weight inside the library's wavelength range for
 #: the automatic choice to use library templates (our choice: a template must see most of the star).
 LIBRARY_MIN_COVER = 0.5
@@ -228,7 +233,9 @@ def automatic_mixture(search, resolving_power, template_grid, notes, where=None,
     Every built-in template is scored in one batch (:func:`~.bank.score_bank`): the library
     templates (observed stars; where they cover at least :data:`LIBRARY_MIN_COVER` of the
     spectrum's weight and unless ``template_grid`` restricts the choice to synthetic types), the
-    synthetic grid, then the synthetic neighbours of the best synthetic type. Templates are
+    synthetic grid, then the synthetic neighbours of the best synthetic type (where that type comes
+    within :data:`NEIGHBOUR_GAIN` of the least height that enters the mixture: else none of its
+    neighbours could enter it, and they are not scored). Templates are
     weighted by how close their peak comes to the best (:func:`~.bank.mixture_weights`): a star
     between two templates gets both, so the velocity moves smoothly from one to the other
     instead of jumping when noise reorders them, and their disagreement enters the error.
@@ -250,8 +257,15 @@ def automatic_mixture(search, resolving_power, template_grid, notes, where=None,
     best_syn = max(range(len(syn)), key=lambda i: syn[i][3]) if syn else None
     if best_syn is not None and np.isfinite(syn[best_syn][3]):
         c = syn[best_syn][2]
-        more = [BuiltinCandidate(st, lc, resolving_power)
-                for st, lc in neighbour_types((c.sptype, c.lumclass), grid_types)]
+        # the neighbours of the best synthetic type can enter the mixture only if that type comes
+        # within NEIGHBOUR_GAIN of the least height that does
+        if syn[best_syn][3] + NEIGHBOUR_GAIN < mixture_threshold(sc.height):
+            notes.append(f"neighbouring synthetic types not tried: the best synthetic template ({c.sptype} "
+                         f"{c.lumclass}) is more than {NEIGHBOUR_GAIN} below the least height that enters the mixture")
+            more = []
+        else:
+            more = [BuiltinCandidate(st, lc, resolving_power)
+                    for st, lc in neighbour_types((c.sptype, c.lumclass), grid_types)]
         if more:
             bank2, sc2 = _scored(search, more, data_short)
             members += list(zip(bank2.templates, sc2.lag, bank2.candidates, sc2.height, sc2.start))

@@ -112,14 +112,16 @@ class Correlation:
         with np.errstate(invalid="ignore", divide="ignore"):
             return num / np.sqrt(np.clip(e, 1e-300, None) * np.clip(d, 1e-300, None)), c2v
 
-    def integer_lags(self, frac=0.0, k=None):
+    def integer_lags(self, frac=0.0, k=None, single=False):
         """Normalised CCF at lags s = pad - k + ... for k = 0..m-1 (or the indices ``k`` only), shifted
-        by ``frac`` pixels of s."""
+        by ``frac`` pixels of s; ``single``: the inverse transforms in single precision (half the
+        time, ~1e-7 of the peak), the normalisation in double."""
         X = self.X
         if frac:
             X = X * turns(-2.0 * np.pi * frac / self.m, X.shape[1])
-        c = sfft.irfft(X, self.m, axis=1)
-        return self.combine(c if k is None else c[:, k])
+        c = sfft.irfft(X.astype(np.complex64) if single else X, self.m, axis=1)
+        c = c if k is None else c[:, k]
+        return self.combine(np.asarray(c, np.float64))
 
     def at(self, s):
         """Normalised CCF at fractional lags ``s`` (array) by Fourier-series evaluation."""
@@ -235,13 +237,14 @@ def correlate(search, template, where=None):
     return corr, refine(corr, pk[0])
 
 
-def ccf_about(corr, s0, half):
-    """Normalised CCF at s0 + j for integer j in [-half, half] (exact fractional centring)."""
+def ccf_about(corr, s0, half, single=False):
+    """Normalised CCF at s0 + j for integer j in [-half, half] (exact fractional centring; ``single``:
+    see :meth:`Correlation.integer_lags`)."""
     frac = s0 - math.floor(s0)
     base = math.floor(s0)
     j = np.arange(-half, half + 1)
     k = (corr.pad - (base + j)) % corr.m  # lag s = base + frac + j  <->  index pad - base - j after shift
-    ccf, c2v = corr.integer_lags(frac=frac, k=k)
+    ccf, c2v = corr.integer_lags(frac=frac, k=k, single=single)
     return j, ccf, c2v
 
 
@@ -273,12 +276,15 @@ def single_star_ccf(template, valid, weight, pad, m, s0, half):
     # template(x - s0) on the data window, and where the template has gaps (its own tellurics,
     # its ends) the model star is unknown: those pixels are left out rather than treated as
     # continuum (both shifted in one inverse transform of the template's cached spectra)
-    model, known = sfft.irfft(template.model_ffts(m) * shift, m, axis=1)[:, :n]
+    # (single precision in the transforms: the model is compared with a CCF whose noise is far above
+    # 1e-7 of its peak; it sets error estimates and flags, not the velocity)
+    model, known = np.asarray(sfft.irfft((template.model_ffts(m) * shift).astype(np.complex64), m, axis=1)[:, :n],
+                              np.float64)
     known = known > 0.5
     ok = valid & known
-    model = highpass(model, template.hp_sigma, ok)
+    model = highpass(model, template.hp_sigma, ok, single=True)
     mcorr = Correlation(correlation_arrays(model, weight * ok), template, pad, m)
-    _, mvals, _ = ccf_about(mcorr, s0, half)
+    _, mvals, _ = ccf_about(mcorr, s0, half, single=True)
     if not np.isfinite(mvals[half]) or mvals[half] <= 0:
         return None
     return mvals / mvals[half]
@@ -299,8 +305,9 @@ class PeakCCF(NamedTuple):
 def ccf_about_peak(corr, template, valid, weight, lags, peak):
     """The :class:`PeakCCF` for ``|j| <= lags.half`` about ``peak`` (data ``valid`` and ``weight``)."""
     s0, h = peak.lag, peak.height
-    # CCF about the peak, and the single-star shape (the template seen through the same window)
-    j, vals, _ = ccf_about(corr, s0, lags.half)
+    # CCF about the peak, and the single-star shape (the template seen through the same window), in
+    # single precision: they give the Tonry & Davis error, the second peak and the CCF reported
+    j, vals, _ = ccf_about(corr, s0, lags.half, single=True)
     model = single_star_ccf(template, valid, weight, lags.pad, lags.m, s0, lags.half)
     resid = vals - h * model if model is not None else vals
     return PeakCCF(j, vals, model, resid, fwhm_pixels(j, vals, h))

@@ -20,10 +20,12 @@ import numpy as np
 from scipy import fft as sfft
 from scipy.interpolate import make_interp_spline
 
-from ..doppler import doppler_factor
+from ..doppler import C_KMS
 from ..doppler import velocity_kms as _kms
 from ..errors import AnalysisError
 from ..obsinfo import ObsInfo, get_info, wavelength_in
+
+_KMS = u.km / u.s   # made once (composing a unit costs ~10 us)
 
 __all__ = ["SPLINE_K", "COVER_TAPER", "ObservedGrid", "TemplateGrid", "LagWindow", "normalised",
            "observe_on_grid", "lattice_step", "lag_window", "kms_per_pixel", "sigma_array", "hot_pixels",
@@ -55,7 +57,12 @@ def sigma_array(spectrum):
         return None
     from astropy.nddata import StdDevUncertainty
 
-    return np.asarray(spectrum.uncertainty.represent_as(StdDevUncertainty).array, dtype=float)
+    unc = spectrum.uncertainty
+    # standard deviations already (what the readers make): their array as it is (a conversion to
+    # the same kind costs a copy and the conversion machinery, ~0.1 ms a spectrum)
+    if type(unc) is StdDevUncertainty:
+        return np.asarray(unc.array, dtype=float)
+    return np.asarray(unc.represent_as(StdDevUncertainty).array, dtype=float)
 
 
 def hot_pixels(f, sig, bad):
@@ -160,10 +167,37 @@ def _usable_pixels(spectrum, info, telluric):
     if (~bad).sum() < 50:
         raise AnalysisError("fewer than 50 usable pixels: no velocity", info.path)
     if telluric:
-        from ..prepare import telluric_mask
-
-        bad |= telluric_mask(w, "vacuum")
+        bad |= _pixel_setup(w).telluric
     return _Pixels(w, f, sig, bad)
+
+
+class _PixelSetup(NamedTuple):
+    telluric: np.ndarray   # the telluric bands' pixels (read-only)
+    native_step: float     # :func:`_native_step` of the pixels
+
+
+_PIXEL_SETUPS = {}
+
+
+def _pixel_setup(w):
+    """What depends on a spectrum's sorted vacuum wavelengths ``w`` alone, made once per set of pixels:
+    the telluric mask (:func:`specan.prepare.telluric_mask`: air wavelengths, band look-ups) and the
+    native step (a percentile and a median), 0.6 ms a spectrum between them (measured) for the same
+    pixels spectrum after spectrum in a survey. Keyed by the wavelengths' bytes, a few at a time."""
+    import hashlib
+
+    from ..prepare import telluric_mask
+
+    key = (hashlib.sha1(np.ascontiguousarray(w).tobytes()).hexdigest(), w.size)
+    found = _PIXEL_SETUPS.get(key)
+    if found is None:
+        mask = np.asarray(telluric_mask(w, "vacuum"), bool)
+        mask.flags.writeable = False
+        found = _PixelSetup(mask, _native_step(np.log(w)))
+        while len(_PIXEL_SETUPS) >= 8:   # oldest out first; the tuple is returned, not looked up again
+            _PIXEL_SETUPS.pop(next(iter(_PIXEL_SETUPS)), None)
+        _PIXEL_SETUPS[key] = found
+    return found
 
 
 def _native_step(lnw):
@@ -269,7 +303,7 @@ def observe_on_grid(spectrum, *, step=None, telluric=True, clip_emission=True, n
             notes.append(f"{int(hot.sum())} pixels above the continuum (emission/cosmic rays) excluded")
             bad |= hot
     lnw = np.log(w)
-    step = lattice_step(_native_step(lnw)) if step is None else step
+    step = lattice_step(_pixel_setup(w).native_step) if step is None else step
     good = ~bad
     lo, hi = lnw[good][0], lnw[good][-1]
     # whole blocks of the lattice of steps from ln lambda = 0 (GRID_BLOCK), covering the data
@@ -337,8 +371,10 @@ def lag_window(observed, vmax, resolving_power, highpass):
     ``highpass`` is the high-pass sigma in resolution elements (None or 0: no filter).
     """
     step, n = observed.step, observed.n
-    vmax_kms = u.Quantity(vmax, u.km / u.s).value
-    smax = int(math.ceil(math.log(float(doppler_factor(vmax_kms * u.km / u.s))) / step))
+    vmax_kms = u.Quantity(vmax, _KMS).value
+    # doppler_factor's relativistic arithmetic on the float (the same bits, without two Quantities)
+    beta = vmax_kms / C_KMS
+    smax = int(math.ceil(math.log(float(np.sqrt((1.0 + beta) / (1.0 - beta)))) / step))
     fwhm_grid = 1.0 / (resolving_power * step)  # resolution element in grid pixels
     hp = float(highpass) * fwhm_grid if highpass else None
     # lags examined for the error and second-peak statistics: the search range, and several
@@ -407,20 +443,23 @@ def kms_per_pixel(s, step):
 # ---------------------------------------------------------------------------
 # Filters shared by both sides
 # ---------------------------------------------------------------------------
-def gauss_smooth(x, sigma):
+def gauss_smooth(x, sigma, single=False):
     """Gaussian smoothing along axis 0 with zero boundaries, by FFT.
 
     Hand-written rather than ``scipy.ndimage.gaussian_filter1d(mode="constant")`` because the
     high-pass sigma is tens of pixels and the noise realisations arrive as an (n, k) block: one
     FFT per column costs the same at any sigma, and the kernel is the exact Gaussian transform
-    (no truncation at 4 sigma).
+    (no truncation at 4 sigma). ``single``: the transforms in single precision (half the time;
+    ~1e-7 of the largest value), returned as double.
     """
     n = x.shape[0]
     size = fast_length(n + int(math.ceil(8 * sigma)))  # zero padding: no wrap-around
     kern = _gauss_kernel(size, float(sigma))
+    if single:
+        x, kern = np.asarray(x, np.float32), kern.astype(np.float32)
     if x.ndim == 2:
         kern = kern[:, None]
-    return sfft.irfft(sfft.rfft(x, size, axis=0) * kern, size, axis=0)[:n]
+    return np.asarray(sfft.irfft(sfft.rfft(x, size, axis=0) * kern, size, axis=0)[:n], np.float64)
 
 
 @functools.lru_cache(maxsize=32)
@@ -452,20 +491,21 @@ def smoothed_coverage(valid, sigma):
     return found
 
 
-def highpass(x, sigma, valid):
+def highpass(x, sigma, valid, single=False):
     """Subtract the local mean: a Gaussian-smoothed copy over the valid pixels only.
 
     Tonry & Davis' low-frequency cut, done in pixel space so that spectrum and template get the
     same filter before the normalisation sums. The mean is a normalised convolution (smoothed
     values over smoothed coverage), so masked gaps and the ends of the data do not pull it
     towards zero: otherwise lines next to a gap would be filtered differently in a star and in
-    its shifted template, a bias growing with the velocity.
+    its shifted template, a bias growing with the velocity. ``single``: the smoothing's transforms
+    in single precision (:func:`gauss_smooth`).
     """
     if not sigma:
         return np.where(valid if x.ndim == 1 else valid[:, None], x, 0.0)
     v = valid.astype(float)
     vv = v if x.ndim == 1 else v[:, None]
-    num = gauss_smooth(x * vv, sigma)
+    num = gauss_smooth(x * vv, sigma, single)
     den = smoothed_coverage(valid, sigma)
     den = den if x.ndim == 1 else den[:, None]
     low = num / den

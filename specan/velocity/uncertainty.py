@@ -199,7 +199,8 @@ def _highpass_adjoint(y, sigma, valid):
     if not sigma:
         return v * y
     den = smoothed_coverage(valid, sigma)[:, None]
-    return v * y - v * gauss_smooth(v * y / den, sigma)
+    # (single precision: an error estimate, to ~1e-6 of itself)
+    return v * y - v * gauss_smooth(v * y / den, sigma, single=True)
 
 
 class SegmentErrors(NamedTuple):
@@ -257,7 +258,10 @@ def _shifted_templates(search, members, m, h):
     lags = search.lags
     F = np.stack([np.stack(template.ffts(m)) for template, _, _ in members])         # (T, 3, nf)
     ph = np.stack([_shift_phases(lags.pad - s0, (h, 0.0, -h), m, F.shape[-1]) for _, s0, _ in members])
-    return sfft.irfft(F[:, :, None, :] * ph[:, None, :, :], m, axis=-1)[..., :lags.n]
+    # in single precision (half the time of the transforms): what these give is an error estimate,
+    # the segments' vertices and their noise, not the velocity (refined at double precision)
+    shifted = F.astype(np.complex64)[:, :, None, :] * ph.astype(np.complex64)[:, None, :, :]
+    return sfft.irfft(shifted, m, axis=-1)[..., :lags.n]
 
 
 def _template_segments(search, shifted, starts, h):
@@ -278,10 +282,10 @@ def _template_segments(search, shifted, starts, h):
 
     rows = (sums(a1 * bT), sums(a2 * bT), sums(a2 * bT2), sums(a1 * bV), sums(a3 * bV), sums(a2 * bV))
     c, _ = Correlation.combine(rows)                                  # (T, 3 lags, K + 1)
-    with np.errstate(invalid="ignore"):  # a segment with no overlap gives inf - inf: marked not good below
+    with np.errstate(invalid="ignore"):  # a segment with no overlap gives inf - inf: marked not good
         den = c[:, 0] - 2.0 * c[:, 1] + c[:, 2]
-    good = np.isfinite(den) & (den < 0)
-    offsets = np.where(good, h * (c[:, 0] - c[:, 2]) / (2.0 * np.where(good, den, -1.0)), np.nan)
+        good = np.isfinite(den) & (den < 0)
+        offsets = np.where(good, h * (c[:, 0] - c[:, 2]) / (2.0 * np.where(good, den, -1.0)), np.nan)
     curv = den / h ** 2
     # derivative of each vertex with respect to the data: -(dc(+h) - dc(-h)) / (2h c''), with
     # dc/dd = w (T - mu V) / sqrt(E D) (mu the template's mean over the overlap, E and D the
