@@ -323,11 +323,17 @@ def _noise_without_errors(flux, half_width=100):
     if y.size < 4 * half_width:
         return np.zeros(y.size)
     # each difference divided by the root of its summed squared coefficients: sd 1 on unit noise
-    d6 = np.pad(np.abs(np.diff(y, 6)) / np.sqrt(924.0), 3, mode="edge")   # 924 = C(12, 6)
-    d2 = np.pad(np.abs(2.0 * y[2:-2] - y[:-4] - y[4:]) / np.sqrt(6.0), 2, mode="edge")  # DER_SNR's
+    d6 = np.abs(np.diff(y, 6)) / np.sqrt(924.0)                    # 924 = C(12, 6)
+    d2 = np.abs(2.0 * y[2:-2] - y[:-4] - y[4:]) / np.sqrt(6.0)      # DER_SNR's
     size = 2 * half_width + 1
-    s6 = 1.4826 * median_filter(d6, size, mode="nearest")     # MAD -> sigma, normal noise
-    s2 = 1.4826 * median_filter(d2, size, mode="nearest")
+    # both running medians in one call: each difference with its edge values repeated (to the length of
+    # the flux, then half a window more on either side: what mode="nearest" does), one after the other;
+    # no window reaches the other difference, so each median is of the same values (tests/test_prepare.py)
+    n, h = y.size, half_width
+    both = median_filter(np.concatenate([np.full(h + 3, d6[0]), d6, np.full(h + 3, d6[-1]),
+                                         np.full(h + 2, d2[0]), d2, np.full(h + 2, d2[-1])]), size, mode="nearest")
+    s6 = 1.4826 * both[h:h + n]     # MAD -> sigma, normal noise
+    s2 = 1.4826 * both[3 * h + n:3 * h + 2 * n]
     with np.errstate(divide="ignore", invalid="ignore"):
         weight = np.clip((s6 / s2 - 0.3) / 0.3, 0.0, 1.0)
     return np.where(np.isfinite(weight), weight * s6, 0.0)
@@ -373,7 +379,10 @@ class _PSpline:
         n_int = max(int(np.ceil((hi - lo) / knot_spacing)), 1)
         h = (hi - lo) / n_int if hi > lo else 1.0
         self.knots = lo + h * np.arange(-3, n_int + 4)
-        self.basis = BSpline.design_matrix(np.clip(x, lo, hi), self.knots, 3).tocsr()
+        # extrapolate=True: the same basis inside the knots (tests/test_prepare.py) without scipy's check of
+        # the anchors against them (Python's min and max over the array, a fifth of the call) and without its
+        # error where lo + h n_int rounds below hi (the last anchor then lies an ulp past the last knot)
+        self.basis = BSpline.design_matrix(np.clip(x, lo, hi), self.knots, 3, extrapolate=True).tocsr()
         ncoef = self.basis.shape[1]
         self.lo, self.hi = lo, hi
         # The penalty D2^T D2 (D2: second differences of the coefficients) straight in LAPACK's
