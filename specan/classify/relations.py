@@ -211,22 +211,18 @@ def _scale_line_strengths_per_side(xo, m, s, weights, side, scale_sigma):
     penalties = {}
     a = weights / s ** 2
     prior = 1.0 / scale_sigma ** 2
-    # Both sums' terms for the whole lattice at once, laid out as m is (the order np.sum adds them in
-    # follows the layout), each side's summed with where=: the same products added in the same order as
-    # summing each side's selection, without copying the side out and back (at 253 x 5 x 62 each copy
-    # was fresh memory: page faults were most of the classification's likelihood time, measured). The
-    # values the selections gave, to the bit (tests/test_classify.py)
-    num_terms = m * (a * xo)                  # (a x) m, as a[..., sel] * xo[sel] * m[..., sel] multiplies
-    den_terms = np.square(m)
-    den_terms *= a                            # a m^2
     for sd in (-1, 0, 1):
         sel = side == sd
         if not sel.any():
             continue
-        num = np.sum(num_terms, axis=-1, where=sel) + prior
-        den = np.sum(den_terms, axis=-1, where=sel) + prior
+        # the side's part of the lattice copied out once for both sums and the scaling, then put back:
+        # the values three selections per side gave, to the bit (tests/test_classify.py)
+        ms, asel = m[..., sel], a[..., sel]
+        num = np.sum(asel * xo[sel] * ms, axis=-1) + prior
+        den = np.sum(asel * ms ** 2, axis=-1) + prior
         k = np.clip(num / den, 0.25, 4.0)
-        np.multiply(m, k[..., None], out=m, where=sel)
+        ms *= k[..., None]
+        m[..., sel] = ms
         penalties[sd] = 0.5 * (k - 1.0) ** 2 * prior
     return penalties
 
