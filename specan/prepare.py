@@ -293,12 +293,13 @@ def _upper_envelope(ax, ay, sig, smoothing, below_weight, max_iter):
     scale = smoothing.to_value(u.AA)
     smoother = _PSpline(ax, lam=(scale / (2 * np.pi)) ** 4, knot_spacing=scale / 10.0)
     weights = np.ones(ax.size)
+    tolerance = ANCHOR_TOLERANCE * sig
     for _ in range(max_iter):
         coef = smoother.coefficients(ay, weights)
         # the curve at the anchors as the basis matrix's product: what the spline gives there, to the bit
         # (tests/test_prepare.py), without building and calling a spline each reweighting
-        new = np.where(ay >= smoother.basis @ coef - ANCHOR_TOLERANCE * sig, 1.0, below_weight)
-        if np.array_equal(new, weights):
+        new = np.where(ay >= smoother.basis @ coef - tolerance, 1.0, below_weight)
+        if not (new != weights).any():     # np.array_equal's answer (no NaN here), without its checks
             break
         weights = new
     return smoother.curve(coef)
@@ -391,6 +392,9 @@ class _PSpline:
         # spectrum from 0.15 to 300 microns asked for 74 GB). Its entries are small integers,
         # exact in any order, times lam / h^3: what scipy.sparse's product gave, to the bit.
         self.penalty_bands = (lam / h**3) * _penalty_counts(ncoef)
+        # what every reweighting reads of the basis, looked up once (scipy.sparse's attributes are properties)
+        self._stored = (self.basis.indices, self.basis.data, ncoef)
+        self._solve = _banded_solver()
         # per pair of stored basis entries of one anchor (columns j <= l <= j + 3), where their
         # product goes in the bands
         B = self.basis
@@ -421,7 +425,7 @@ class _PSpline:
         _, _, target = self.pairs
         data_a, data_b, rows_b = self._pair_data
         # B.data[a] * (B.data * w[rows])[b]: B.multiply(w[:, None]) at the pairs' second entries
-        summed = np.bincount(target, weights=data_a * (data_b * w[rows_b]), minlength=4 * B.shape[1])
+        summed = np.bincount(target, weights=data_a * (data_b * w[rows_b]), minlength=4 * self._stored[2])
         return summed.reshape(4, -1) + self.penalty_bands
 
     def coefficients(self, y, w):
@@ -430,9 +434,9 @@ class _PSpline:
         # LAPACK through a busy multi-threaded BLAS was 30x slower here (measured). LAPACK's pbsv
         # called as scipy's solveh_banded calls it (upper bands; finite, since weights and anchors
         # are), without its argument checks, half of the call's time (measured)
-        B = self.basis
-        rhs = np.bincount(B.indices, weights=B.data * (w * y)[self.rows], minlength=B.shape[1])   # B^T (w y)
-        _, coef, info = _banded_solver()(self._normal_bands(w), rhs, lower=0, overwrite_ab=1, overwrite_b=1)
+        indices, data, ncoef = self._stored
+        rhs = np.bincount(indices, weights=data * (w * y)[self.rows], minlength=ncoef)   # B^T (w y)
+        _, coef, info = self._solve(self._normal_bands(w), rhs, lower=0, overwrite_ab=1, overwrite_b=1)
         if info != 0:
             from numpy.linalg import LinAlgError
 
