@@ -293,12 +293,13 @@ def _upper_envelope(ax, ay, sig, smoothing, below_weight, max_iter):
     scale = smoothing.to_value(u.AA)
     smoother = _PSpline(ax, lam=(scale / (2 * np.pi)) ** 4, knot_spacing=scale / 10.0)
     weights = np.ones(ax.size)
+    tolerance = ANCHOR_TOLERANCE * sig
     for _ in range(max_iter):
         coef = smoother.coefficients(ay, weights)
         # the curve at the anchors as the basis matrix's product: what the spline gives there, to the bit
         # (tests/test_prepare.py), without building and calling a spline each reweighting
-        new = np.where(ay >= smoother.basis @ coef - ANCHOR_TOLERANCE * sig, 1.0, below_weight)
-        if np.array_equal(new, weights):
+        new = np.where(ay >= smoother.basis @ coef - tolerance, 1.0, below_weight)
+        if not (new != weights).any():     # np.array_equal's answer (no NaN here), without its checks
             break
         weights = new
     return smoother.curve(coef)
@@ -323,11 +324,17 @@ def _noise_without_errors(flux, half_width=100):
     if y.size < 4 * half_width:
         return np.zeros(y.size)
     # each difference divided by the root of its summed squared coefficients: sd 1 on unit noise
-    d6 = np.pad(np.abs(np.diff(y, 6)) / np.sqrt(924.0), 3, mode="edge")   # 924 = C(12, 6)
-    d2 = np.pad(np.abs(2.0 * y[2:-2] - y[:-4] - y[4:]) / np.sqrt(6.0), 2, mode="edge")  # DER_SNR's
+    d6 = np.abs(np.diff(y, 6)) / np.sqrt(924.0)                    # 924 = C(12, 6)
+    d2 = np.abs(2.0 * y[2:-2] - y[:-4] - y[4:]) / np.sqrt(6.0)      # DER_SNR's
     size = 2 * half_width + 1
-    s6 = 1.4826 * median_filter(d6, size, mode="nearest")     # MAD -> sigma, normal noise
-    s2 = 1.4826 * median_filter(d2, size, mode="nearest")
+    # both running medians in one call: each difference with its edge values repeated (to the length of
+    # the flux, then half a window more on either side: what mode="nearest" does), one after the other;
+    # no window reaches the other difference, so each median is of the same values (tests/test_prepare.py)
+    n, h = y.size, half_width
+    both = median_filter(np.concatenate([np.full(h + 3, d6[0]), d6, np.full(h + 3, d6[-1]),
+                                         np.full(h + 2, d2[0]), d2, np.full(h + 2, d2[-1])]), size, mode="nearest")
+    s6 = 1.4826 * both[h:h + n]     # MAD -> sigma, normal noise
+    s2 = 1.4826 * both[3 * h + n:3 * h + 2 * n]
     with np.errstate(divide="ignore", invalid="ignore"):
         weight = np.clip((s6 / s2 - 0.3) / 0.3, 0.0, 1.0)
     return np.where(np.isfinite(weight), weight * s6, 0.0)
@@ -373,7 +380,10 @@ class _PSpline:
         n_int = max(int(np.ceil((hi - lo) / knot_spacing)), 1)
         h = (hi - lo) / n_int if hi > lo else 1.0
         self.knots = lo + h * np.arange(-3, n_int + 4)
-        self.basis = BSpline.design_matrix(np.clip(x, lo, hi), self.knots, 3).tocsr()
+        # extrapolate=True: the same basis inside the knots (tests/test_prepare.py) without scipy's check of
+        # the anchors against them (Python's min and max over the array, a fifth of the call) and without its
+        # error where lo + h n_int rounds below hi (the last anchor then lies an ulp past the last knot)
+        self.basis = BSpline.design_matrix(np.clip(x, lo, hi), self.knots, 3, extrapolate=True).tocsr()
         ncoef = self.basis.shape[1]
         self.lo, self.hi = lo, hi
         # The penalty D2^T D2 (D2: second differences of the coefficients) straight in LAPACK's
@@ -382,6 +392,9 @@ class _PSpline:
         # spectrum from 0.15 to 300 microns asked for 74 GB). Its entries are small integers,
         # exact in any order, times lam / h^3: what scipy.sparse's product gave, to the bit.
         self.penalty_bands = (lam / h**3) * _penalty_counts(ncoef)
+        # what every reweighting reads of the basis, looked up once (scipy.sparse's attributes are properties)
+        self._stored = (self.basis.indices, self.basis.data, ncoef)
+        self._solve = _banded_solver()
         # per pair of stored basis entries of one anchor (columns j <= l <= j + 3), where their
         # product goes in the bands
         B = self.basis
@@ -412,7 +425,7 @@ class _PSpline:
         _, _, target = self.pairs
         data_a, data_b, rows_b = self._pair_data
         # B.data[a] * (B.data * w[rows])[b]: B.multiply(w[:, None]) at the pairs' second entries
-        summed = np.bincount(target, weights=data_a * (data_b * w[rows_b]), minlength=4 * B.shape[1])
+        summed = np.bincount(target, weights=data_a * (data_b * w[rows_b]), minlength=4 * self._stored[2])
         return summed.reshape(4, -1) + self.penalty_bands
 
     def coefficients(self, y, w):
@@ -421,9 +434,9 @@ class _PSpline:
         # LAPACK through a busy multi-threaded BLAS was 30x slower here (measured). LAPACK's pbsv
         # called as scipy's solveh_banded calls it (upper bands; finite, since weights and anchors
         # are), without its argument checks, half of the call's time (measured)
-        B = self.basis
-        rhs = np.bincount(B.indices, weights=B.data * (w * y)[self.rows], minlength=B.shape[1])   # B^T (w y)
-        _, coef, info = _banded_solver()(self._normal_bands(w), rhs, lower=0, overwrite_ab=1, overwrite_b=1)
+        indices, data, ncoef = self._stored
+        rhs = np.bincount(indices, weights=data * (w * y)[self.rows], minlength=ncoef)   # B^T (w y)
+        _, coef, info = self._solve(self._normal_bands(w), rhs, lower=0, overwrite_ab=1, overwrite_b=1)
         if info != 0:
             from numpy.linalg import LinAlgError
 

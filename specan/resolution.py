@@ -421,8 +421,10 @@ def rest_pixels(spectrum, rv=None):
     if not np.all(wave[1:] > wave[:-1]):   # as read, the axis increases already: nothing to reorder
         order = np.argsort(wave)
         wave, flux, good = wave[order], flux[order], good[order]
-    if rv is not None and np.isfinite(u.Quantity(rv, u.km / u.s).value):
-        wave = wave / float(doppler_factor(u.Quantity(rv, u.km / u.s)))
+    if rv is not None:
+        rv = u.Quantity(rv, u.km / u.s)
+        if np.isfinite(rv.value):
+            wave = wave / float(doppler_factor(rv))
     return RestPixels(wave, flux, good)
 
 

@@ -237,7 +237,8 @@ def test_held_out_miles_stars(miles):
 
 
 def test_kept_sums_are_the_same_bits_whatever_thread_count_built_them():
-    # The first guess's and the library comparison's sums over all pixels are kept from one
+    # The first guess's and the library comparison's sums over all pixels (and the reduced fit's span
+    # of each node's model) are kept from one
     # spectrum to the next. A matrix product through BLAS sums in another order with another
     # number of threads (last-bit differences, measured: 3.7e-9 in the first guess's entries),
     # so sums kept from a call made outside the night run's one-thread workers once made a
@@ -259,10 +260,70 @@ def test_kept_sums_are_the_same_bits_whatever_thread_count_built_them():
     for threads in (2, 1):
         parameters._GUESS_SUMS.clear()
         model.__dict__.pop("_guess_products", None)
+        model.__dict__.pop("_node_spans", None)
         neighbours._ALL_PIXELS.clear()
         with threadpool_limits(limits=threads):
             results.append((parameters._guess_normal_matrices(model, w2, good, basis),
-                            neighbours._pixel_terms(usable, ref)))
-    (g2, (m2, n2)), (g1, (m1, n1)) = results
+                            neighbours._pixel_terms(usable, ref), parameters._node_span(model, 5, basis)))
+    (g2, (m2, n2), (q2, r2)), (g1, (m1, n1), (q1, r1)) = results
     assert np.array_equal(g2, g1)
+    assert np.array_equal(q2, q1) and np.array_equal(r2, r1)   # the reduced fit's span (_node_span)
     assert np.array_equal(m2, m1) and np.array_equal(n2, n1)
+
+
+# ---------------------------------------------------------------------------
+# The fit in the model's 41-dimensional span against the fit over every pixel
+# ---------------------------------------------------------------------------
+def _fit_over_every_pixel(model, flux, good, monkeypatch):
+    """fit_labels with the residuals over every usable pixel (_ProjectedResiduals), as it was before the
+    reduced residuals: the reference."""
+    with monkeypatch.context() as m:
+        m.setattr(parameters, "_residual_function",
+                  lambda model, k, y, good, sigma, sig0, basis:
+                  parameters._ProjectedResiduals(model, k, y, good, np.hypot(sig0, model.scatter[k]), basis))
+        return parameters.fit_labels(model, flux, good)
+
+
+def _same_fit_over_every_pixel(model, flux, good, monkeypatch, used):
+    # tolerance (our choice): labels within 1e-6 of their errors, errors and chi-square within 1e-6 of
+    # themselves; measured on the Kurucz Sun (whole and its first 150 pixels out), 11 MILES and 16 JHC
+    # stars: labels at most 4.4e-13 of their errors apart, errors 7.8e-15, chi-square 1.1e-14 (relative)
+    reduced = parameters.fit_labels(model, flux, good)
+    full = _fit_over_every_pixel(model, flux, good, monkeypatch)
+    assert reduced["node"] == full["node"]
+    assert np.all(np.abs(reduced["labels"] - full["labels"]) <= 1e-6 * full["errors"]), (reduced, full)
+    np.testing.assert_allclose(reduced["errors"], full["errors"], rtol=1e-6)
+    assert reduced["chi2_reduced"] == pytest.approx(full["chi2_reduced"], rel=1e-6)
+    kind = type(parameters._residual_function(model, reduced["node"], np.asarray(flux, float), good & np.isfinite(flux),
+                                              None, None, parameters._poly_basis(len(flux))))
+    used.append(kind is parameters._ReducedResiduals)
+
+
+def test_reduced_fit_is_the_fit_over_every_pixel_on_the_kurucz_sun(kurucz_sun, monkeypatch):
+    model = parameters.default_model()
+    used = []
+    for r, rv in ((2000.0, 0.0), (800.0, 0.0), (2000.0, 3000.0)):
+        flux, good, _ = parameters.on_model_grid(_sun(kurucz_sun, r=r, rv=rv), rv=rv * u.km / u.s)
+        _same_fit_over_every_pixel(model, flux, good, monkeypatch, used)
+        # pixels out: the grid's ends beyond a shorter spectrum, a masked stretch, every seventh pixel
+        for cut in (good & (np.arange(good.size) > 150), good & ((np.arange(good.size) // 40) % 9 != 4),
+                    good & (np.arange(good.size) % 7 != 0), good & (np.arange(good.size) < 600)):
+            _same_fit_over_every_pixel(model, flux, cut, monkeypatch, used)
+    assert all(used[:3]) and sum(used) >= 10    # the reduced path did run, with and without pixels out
+
+
+@pytest.mark.reference
+def test_reduced_fit_is_the_fit_over_every_pixel_on_library_stars(miles, jhc1984, jhc_catalog, monkeypatch):
+    from astropy.table import Table
+
+    import specan
+
+    model = parameters.default_model()
+    used = []
+    for row in Table.read(miles / "catalog.csv", format="ascii.csv")[::45]:
+        flux, good, _ = parameters.on_model_grid(specan.read(miles / str(row["file"]), medium="air"))
+        _same_fit_over_every_pixel(model, flux, good, monkeypatch, used)
+    for row in jhc_catalog[::10]:
+        flux, good, _ = parameters.on_model_grid(specan.read(jhc1984 / str(row["file"])), fwhm_in=13.0)
+        _same_fit_over_every_pixel(model, flux, good, monkeypatch, used)
+    assert len(used) >= 25 and sum(used) >= 20

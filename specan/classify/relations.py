@@ -239,9 +239,17 @@ def _lattice_terms(x, noise, mean, offsets, scatter, weights, dof, ok, scale_sig
     penalties = {}
     if scale_sigma > 0:
         penalties = _scale_line_strengths_per_side(xo, m, s, weights[ok], SIDES[ok], scale_sigma)
-    z2 = ((xo - m) / s) ** 2
-    term = 0.5 * (dof + 1.0) * np.log1p(z2 / dof) + np.log(s)
-    return weights[ok] * term, z2, penalties
+    # in place where the values allow it (the same numbers: each step is the one written out before,
+    # ((xo - m) / s) ** 2 and weights * (0.5 (dof + 1) log1p(z2 / dof) + log s)), fewer fresh arrays
+    z2 = np.subtract(xo, m)
+    z2 /= s
+    np.square(z2, out=z2)
+    term = z2 / dof
+    np.log1p(term, out=term)
+    term *= 0.5 * (dof + 1.0)
+    term += np.log(s)
+    term *= weights[ok]
+    return term, z2, penalties
 
 
 def _summed(wterm, penalties):

@@ -1,0 +1,126 @@
+"""The flux-based noise estimate (specan/noise.py) against its direct computation.
+
+The four band-pass filters are applied through one FFT (``_band_passed``), the filters' reach on
+bad pixels is found from running counts (``valid_for``) and both bands' block powers from one
+partition (``_block_power``). The direct computation they replace (``np.convolve`` per filter and for
+the reach, one block power per band) is kept here as the reference: the S/N and the noise must
+agree with it to rounding, and the method chosen must be the same, on the inputs the S/N
+acceptance tests use (tests/test_prepare.py) and on the reference libraries.
+"""
+
+import numpy as np
+import pytest
+import astropy.units as u
+
+from specan import noise
+
+
+def _direct_band_passed(filled):
+    """The four filter outputs as the estimate computed them before: one ``np.convolve`` each."""
+    filters, _ = noise._filters()
+    return np.array([np.convolve(filled, h, mode="same") for h, _ in filters])
+
+
+def _direct_valid_for(good, taps):
+    return np.convolve((~np.asarray(good, bool)).astype(float), np.ones(taps), mode="same") < 0.5
+
+
+def _direct_estimate(monkeypatch, flux, good, ppf):
+    with monkeypatch.context() as m:
+        m.setattr(noise, "_band_passed", _direct_band_passed)
+        m.setattr(noise, "valid_for", _direct_valid_for)
+        return noise.flux_noise(flux, good, ppf)
+
+
+def _agree(monkeypatch, flux, good=None, ppf=None):
+    fast = noise.flux_noise(flux, good, ppf)
+    ref = _direct_estimate(monkeypatch, flux, good, ppf)
+    assert fast.method == ref.method
+    assert (fast.snr is None) == (ref.snr is None)
+    if ref.snr is not None:
+        assert fast.snr == pytest.approx(ref.snr, rel=1e-9)
+    np.testing.assert_allclose(fast.sigma, ref.sigma, rtol=1e-9, equal_nan=True)
+    return fast
+
+
+def test_band_passed_is_the_direct_convolution():
+    rng = np.random.default_rng(4)
+    for n in (300, 1001, 4000, 4815, 12345):
+        flux = 1e4 * (1.0 + rng.normal(0.0, 0.02, n)) * np.linspace(0.5, 1.5, n)
+        got = noise._band_passed(flux)
+        ref = _direct_band_passed(flux)
+        assert got.shape == ref.shape == (4, n)
+        # rounding of the transforms: a few 1e-16 of the flux (the direct sums have their own)
+        assert np.max(np.abs(got - ref)) < 1e-13 * np.max(np.abs(flux))
+
+
+def test_valid_for_is_the_convolution_of_the_bad_pixels():
+    rng = np.random.default_rng(2)
+    for _ in range(2000):
+        n, taps = int(rng.integers(1, 400)), int(rng.integers(1, 130))
+        good = rng.uniform(size=n) > rng.uniform(0.0, 0.3)
+        got = noise.valid_for(good, taps)
+        ref = _direct_valid_for(good, taps)
+        assert got.shape == ref.shape and np.array_equal(got, ref), (n, taps)
+
+
+def test_block_powers_of_two_rows_are_each_rows():
+    rng = np.random.default_rng(6)
+    for trial in range(200):
+        n = int(rng.integers(300, 5000))
+        y = rng.normal(size=(2, n))
+        valid = rng.uniform(size=n) > (0.0 if trial % 3 == 0 else rng.uniform(0, 0.6))
+        block = int(rng.choice([64, 256]))
+        centres, both = noise._block_power(y, valid, block)
+        for row in range(2):
+            c1, one = noise._block_power(y[row], valid, block)
+            np.testing.assert_array_equal(both[row], one)
+            np.testing.assert_array_equal(centres, c1)
+
+
+@pytest.mark.parametrize("snr_in", [10, 30, 100, 300])
+def test_estimate_is_the_direct_one_on_the_noisy_kurucz_sun(kurucz_sun, snr_in, monkeypatch):
+    w, f, _ = kurucz_sun
+    for seed in (10, 11):
+        noisy = f + np.random.default_rng(seed).normal(0.0, 1.0, f.size) * f / snr_in
+        good = np.ones(f.size, bool)
+        good[1000:1040] = False      # a masked stretch: the reach of the filters matters
+        _agree(monkeypatch, noisy, good, noise.pixels_per_fwhm(w, 2000.0))
+    # the noiseless model (its own structure near Nyquist reads as S/N ~400)
+    _agree(monkeypatch, f, None, noise.pixels_per_fwhm(w, 2000.0))
+
+
+@pytest.mark.parametrize("sptype", ["A2", "K2"])
+def test_estimate_is_the_direct_one_on_synthetic_stars(sptype, monkeypatch):
+    from specan import synth
+
+    for snr_in in (10, 100):
+        spec = synth.spectrum(sptype, "V", resolving_power=2000, snr=snr_in, seed=snr_in,
+                              wave_range=(3800, 6800) * u.AA, continuum="blackbody")
+        w = spec.spectral_axis.to_value(u.AA)
+        _agree(monkeypatch, spec.flux.value, None, noise.pixels_per_fwhm(w, 2000.0))
+
+
+def test_estimate_is_the_direct_one_on_resampled_noise(monkeypatch):
+    # the DER_SNR fallback (no white-noise plateau) is chosen either way
+    x = np.arange(20000.0)
+    y = 1.0 + np.random.default_rng(0).normal(0.0, 0.01, x.size)
+    assert "DER_SNR" in _agree(monkeypatch, np.interp(x[:-1] + 0.5, x, y)).method
+
+
+@pytest.mark.reference
+def test_estimate_is_the_direct_one_on_library_stars(miles, jhc1984, jhc_catalog, monkeypatch):
+    from astropy.table import Table
+
+    import specan
+    from specan.obsinfo import spectrum_arrays
+
+    compared = 0
+    for path, kw in [(miles / str(r["file"]), {"medium": "air"})
+                     for r in Table.read(miles / "catalog.csv", format="ascii.csv")[::40]] + \
+                    [(jhc1984 / str(r["file"]), {}) for r in jhc_catalog[::20]]:
+        spec = specan.read(path, **kw)
+        wave, flux, _, mask = spectrum_arrays(spec)
+        _agree(monkeypatch, flux, ~mask & np.isfinite(flux), None)
+        compared += 1
+    assert compared >= 10
