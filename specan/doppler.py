@@ -14,7 +14,7 @@ from astropy.constants import c as _c
 
 from .obsinfo import META_KEY, get_info, vacuum_to_air, wavelength_in
 
-__all__ = ["C_KMS", "doppler_factor", "velocity_from_factor", "velocity_kms", "shift_to_rest"]
+__all__ = ["C_KMS", "doppler_factor", "velocity_from_factor", "factor_kms", "velocity_kms", "shift_to_rest"]
 
 #: Speed of light in km/s (CODATA, via astropy.constants).
 C_KMS = _c.to_value(u.km / u.s)
@@ -58,6 +58,13 @@ def velocity_from_factor(factor, convention="relativistic"):
     else:
         raise ValueError(f"convention must be 'relativistic' or 'optical', not {convention!r}")
     return beta * C_KMS * (u.km / u.s)
+
+
+def factor_kms(rv_kms):
+    """Relativistic 1 + z of one velocity given as a plain float in km/s (for inner loops)."""
+    # doppler_factor's arithmetic on a float, without building a Quantity (same bits)
+    beta = float(rv_kms) / C_KMS
+    return float(np.sqrt((1.0 + beta) / (1.0 - beta)))
 
 
 def velocity_kms(factor):

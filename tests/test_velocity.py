@@ -364,6 +364,11 @@ def test_doppler_matches_astropy_equivalencies(v):
     # synth's public factor against astropy too, not only against specan's own copy
     obs = (v * KMS).to(u.AA, equivalencies=u.doppler_relativistic(rest))  # astropy
     assert synth.doppler_factor(v * KMS) * 5000.0 == pytest.approx(obs.value, rel=1e-13)
+    # the plain-float forms for inner loops: the same bits as the Quantity forms
+    from specan.doppler import factor_kms, velocity_kms
+
+    assert factor_kms(v) == velocity.doppler_factor(v * KMS)
+    assert velocity_kms(factor_kms(v)) == velocity.velocity_from_factor(factor_kms(v)).to_value(KMS)
 
 
 def test_shift_to_rest_in_air_and_vacuum():

@@ -20,7 +20,7 @@ import numpy as np
 from scipy import fft as sfft
 from scipy.interpolate import make_interp_spline
 
-from ..doppler import C_KMS
+from ..doppler import factor_kms
 from ..doppler import velocity_kms as _kms
 from ..errors import AnalysisError
 from ..obsinfo import ObsInfo, get_info, wavelength_in
@@ -372,9 +372,7 @@ def lag_window(observed, vmax, resolving_power, highpass):
     """
     step, n = observed.step, observed.n
     vmax_kms = u.Quantity(vmax, _KMS).value
-    # doppler_factor's relativistic arithmetic on the float (the same bits, without two Quantities)
-    beta = vmax_kms / C_KMS
-    smax = int(math.ceil(math.log(float(np.sqrt((1.0 + beta) / (1.0 - beta)))) / step))
+    smax = int(math.ceil(math.log(factor_kms(vmax_kms)) / step))
     fwhm_grid = 1.0 / (resolving_power * step)  # resolution element in grid pixels
     hp = float(highpass) * fwhm_grid if highpass else None
     # lags examined for the error and second-peak statistics: the search range, and several
