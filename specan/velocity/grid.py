@@ -30,7 +30,7 @@ _KMS = u.km / u.s   # made once (composing a unit costs ~10 us)
 __all__ = ["SPLINE_K", "COVER_TAPER", "ObservedGrid", "TemplateGrid", "LagWindow", "normalised",
            "observe_on_grid", "lattice_step", "lag_window", "kms_per_pixel", "sigma_array", "hot_pixels",
            "noise_from_flux", "fast_length", "turns", "distance_to_invalid",
-           "dersnr_sigma", "gauss_smooth", "smoothed_coverage", "highpass", "cover_taper", "SplineOperators", "spline_operators"]
+           "dersnr_sigma", "gauss_smooth", "gauss_kernel", "smoothed_coverage", "highpass", "cover_taper", "SplineOperators", "spline_operators"]
 
 #: Order of the spline that resamples spectra onto the ln-lambda grid.
 SPLINE_K = 3
@@ -452,7 +452,7 @@ def gauss_smooth(x, sigma, single=False):
     """
     n = x.shape[0]
     size = fast_length(n + int(math.ceil(8 * sigma)))  # zero padding: no wrap-around
-    kern = _gauss_kernel(size, float(sigma))
+    kern = gauss_kernel(size, float(sigma))
     if single:
         x, kern = np.asarray(x, np.float32), kern.astype(np.float32)
     if x.ndim == 2:
@@ -461,7 +461,7 @@ def gauss_smooth(x, sigma, single=False):
 
 
 @functools.lru_cache(maxsize=32)
-def _gauss_kernel(size, sigma):
+def gauss_kernel(size, sigma):
     """Fourier transform of a Gaussian of ``sigma`` pixels at the ``size // 2 + 1`` frequencies of a real
     transform of length ``size`` (read-only: one per set-up, shared)."""
     k = np.arange(size // 2 + 1) / size

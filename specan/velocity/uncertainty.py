@@ -18,7 +18,7 @@ import numpy as np
 from scipy import fft as sfft
 
 from .correlation import Correlation
-from .grid import gauss_smooth, highpass, kms_per_pixel, smoothed_coverage, spline_operators, turns
+from .grid import gauss_kernel, fast_length, gauss_smooth, highpass, kms_per_pixel, smoothed_coverage, spline_operators, turns
 
 __all__ = ["TonryDavis", "VelocityErrors", "SegmentErrors", "tonry_davis", "resample_error", "estimate_errors",
            "reported_error", "segment_errors", "zero_point_error", "content_seed", "spline_adjoint", "ErrorBudget", "error_budget"]
@@ -203,6 +203,70 @@ def _highpass_adjoint(y, sigma, valid):
     return v * y - v * gauss_smooth(v * y / den, sigma, single=True)
 
 
+#: Reach (in high-pass sigmas) of the Gaussian beyond a segment that :func:`_segments_highpass_adjoint`
+#: keeps: the kernel has fallen to exp(-18) = 1.5e-8 of its peak there, below the single precision
+#: the smoothing is done in (our choice).
+SEGMENT_REACH = 6.0
+
+
+def _segments_highpass_adjoint(g, starts, sigma, valid):
+    """(n, K) :func:`_highpass_adjoint` of the columns g 1_k (``g`` restricted to segment k, the
+    segments starting at ``starts``), each column smoothed on its own segment's window only.
+
+    A column is zero outside its segment, so its smoothed copy matters only within
+    :data:`SEGMENT_REACH` sigmas of it: every segment's window goes into one row of a 2-D real
+    transform of the longest window's length (a few times shorter than the spectrum's; the
+    signal sits inside its row with that reach on both sides, so nothing wraps around), instead
+    of one transform of the whole spectrum per segment. The same numbers to ~1e-7 (single
+    precision, as :func:`_highpass_adjoint`).
+    """
+    n = g.size
+    ends = np.append(starts[1:], n)
+    v = valid.astype(float)
+    vg = v * g
+    out = np.zeros((starts.size, n))     # a row per segment (rows: contiguous writes), transposed at the end
+    for j, (a, b) in enumerate(zip(starts, ends)):
+        out[j, a:b] = vg[a:b]
+    if not sigma:
+        return out.T
+    reach = int(math.ceil(SEGMENT_REACH * sigma))
+    lo, hi = np.maximum(starts - reach, 0), np.minimum(ends + reach, n)
+    size = fast_length(int(np.max(ends - starts)) + 2 * reach)
+    q = (vg / smoothed_coverage(valid, sigma)).astype(np.float32)
+    rows = np.zeros((starts.size, size), np.float32)
+    for j, (a, b, l0) in enumerate(zip(starts, ends, lo)):
+        rows[j, a - l0:b - l0] = q[a:b]
+    smooth = sfft.irfft(sfft.rfft(rows, axis=1) * _kernel32(size, float(sigma)), size, axis=1)
+    # back to the spectrum's pixels: each window's span of its row (a few segments' worth of pixels)
+    for j, (l0, l1) in enumerate(zip(lo, hi)):
+        out[j, l0:l1] -= v[l0:l1] * smooth[j, :l1 - l0]
+    return out.T
+
+
+@functools.lru_cache(maxsize=32)
+def _kernel32(size, sigma):
+    """:func:`~.grid.gauss_kernel` in single precision (read-only, one per set-up)."""
+    kern = gauss_kernel(size, sigma).astype(np.float32)
+    kern.flags.writeable = False
+    return kern
+    reach = int(math.ceil(SEGMENT_REACH * sigma))
+    lo, hi = np.maximum(starts - reach, 0), np.minimum(ends + reach, n)
+    size = fast_length(int(np.max(ends - starts)) + 2 * reach)
+    q = (v * g / smoothed_coverage(valid, sigma)).astype(np.float32)
+    rows = np.zeros((k, size), np.float32)
+    # row j holds its segment's values at offsets starts - lo ... ends - lo (one scatter for all)
+    pos = np.arange(n)
+    rows[seg, pos - lo[seg]] = q
+    kern = gauss_kernel(size, float(sigma)).astype(np.float32)
+    smooth = sfft.irfft(sfft.rfft(rows, axis=1) * kern, size, axis=1)
+    # back to the spectrum's pixels: each window's span of its row (a few segments' worth of pixels)
+    span = hi - lo
+    col = np.repeat(np.arange(k), span)
+    at = np.concatenate([np.arange(a, b) for a, b in zip(lo, hi)])
+    out[at, col] -= v[at] * smooth[col, at - np.repeat(lo, span)]
+    return out
+
+
 class SegmentErrors(NamedTuple):
     """Noise error (grid pixels) of the peak, and the velocity segments' scatter about it.
 
@@ -339,10 +403,8 @@ def segment_errors(observed, search, members, m, resels):
         g_seg += wt / total_w * gs[i]
         g_whole += wt / total_w * gw[i]
     # (n, K + 1): each segment's vertex depends on its own pixels only, the whole's on all
-    grads = np.zeros((n, starts.size + 1))
-    grads[np.arange(n), np.repeat(np.arange(starts.size), np.diff(np.append(starts, n)))] = g_seg
-    grads[:, -1] = g_whole
-    u = _highpass_adjoint(grads, lags.hp_sigma, observed.valid)
+    u = np.concatenate([_segments_highpass_adjoint(g_seg, starts, lags.hp_sigma, observed.valid),
+                        _highpass_adjoint(g_whole[:, None], lags.hp_sigma, observed.valid)], axis=1)
     z = spline_adjoint(observed.spline_x, observed.grid)(u)          # (native pixels, K + 1)
     sig = np.sqrt(np.sum((observed.native_sigma[:, None] * z) ** 2, axis=0))
     seg_off, seg_sig = np.where(good, offsets, np.nan)[:-1], sig[:-1]
