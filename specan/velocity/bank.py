@@ -63,6 +63,9 @@ class TemplateBank:
         self.m = m
         self.T = np.stack([t.T for t in prepared])
         self.T2 = np.stack([t.T2 for t in prepared])
+        # single-precision copies for the window sums of the scores (:func:`score_bank`)
+        self.T_single = self.T.astype(np.float32)
+        self.T2_single = self.T2.astype(np.float32)
         # templates sharing a coverage share its sums: group identical coverages (by their bytes:
         # numpy's unique over rows sorts them as structured records, tens of ms a bank)
         first = {}
@@ -148,9 +151,12 @@ def score_bank(search, bank, data_short):
     peak_lag = s[j]
     start = pad - peak_lag              # lag s uses template pixels x + pad - s
     # (einsum's fused multiply-and-sum, not BLAS: no temporary product, and bit-identical whatever
-    # the thread count; a product then a sum over the gathered windows took 17 times as long)
-    c2t = np.einsum("kn,n->k", _windows(bank.T, n)[rows, start], a2)
-    c2t2 = np.einsum("kn,n->k", _windows(bank.T2, n)[rows, start], a2)
+    # the thread count; a product then a sum over the gathered windows took 17 times as long).
+    # In single precision, as the cross terms are: half the memory to gather and sum (0.13 against
+    # 0.24 ms a sum for 49 templates of 5,249 points, measured), ~1e-6 of the energies
+    a2_single = a2.astype(np.float32)
+    c2t = np.einsum("kn,n->k", _windows(bank.T_single, n)[rows, start], a2_single).astype(np.float64)
+    c2t2 = np.einsum("kn,n->k", _windows(bank.T2_single, n)[rows, start], a2_single).astype(np.float64)
     c2v, c1v, c3v = (np.empty(len(bank)) for _ in range(3))
     # distinct (coverage, start) pairs, as one integer each (numpy's unique over columns goes through
     # structured records: ten times slower); sorted as the pairs would be
