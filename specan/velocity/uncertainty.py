@@ -310,22 +310,21 @@ def _offset_phases(offsets, m, nf):
     return np.exp(2j * np.pi * np.outer(np.asarray(offsets, float), np.arange(nf)) / m)
 
 
-def _shift_phases(k0, offsets, m, nf):
-    """(L, nf) exp(2 pi i f (k0 + o) / m): one angle per frequency, times the cached offset phases."""
-    return turns((2.0 * np.pi / m) * k0, nf)[None, :] * _offset_phases(tuple(offsets), m, nf)
-
-
 def _shifted_templates(search, members, m, h):
     """(T, 3, 3, n): each member template's arrays T, T^2 (weighted) and V on the data window at lags
     s0 + h, s0 and s0 - h (s0 its peak), all in one inverse transform (lag s uses template pixels
     x + pad - s)."""
     lags = search.lags
-    F = np.stack([np.stack(template.ffts(m)) for template, _, _ in members])         # (T, 3, nf)
-    ph = np.stack([_shift_phases(lags.pad - s0, (h, 0.0, -h), m, F.shape[-1]) for _, s0, _ in members])
+    F = np.stack([template.ffts_single(m) for template, _, _ in members])            # (T, 3, nf)
+    # the members' shifts in one call: exp(2 pi i f (pad - s0) / m) times the cached offset phases
+    angles = (2.0 * np.pi / m) * (lags.pad - np.array([s0 for _, s0, _ in members], float))
+    ph = turns(angles, F.shape[-1])[:, None, :] * _offset_phases((h, 0.0, -h), m, F.shape[-1])[None]
     # in single precision (half the time of the transforms): what these give is an error estimate,
     # the segments' vertices and their noise, not the velocity (refined at double precision)
-    shifted = F.astype(np.complex64)[:, :, None, :] * ph.astype(np.complex64)[:, None, :, :]
-    return sfft.irfft(shifted, m, axis=-1)[..., :lags.n]
+    shifted = F[:, :, None, :] * ph.astype(np.complex64)[:, None, :, :]
+    # returned as doubles (exact), contiguous: every product with the data's double arrays would
+    # otherwise convert them again (mixed-precision products took twice the time, measured)
+    return np.array(sfft.irfft(shifted, m, axis=-1)[..., :lags.n], dtype=np.float64)
 
 
 def _template_segments(search, shifted, starts, h):
@@ -389,7 +388,9 @@ def segment_errors(observed, search, members, m, resels):
     n = lags.n
     h = 0.5
     shifted = _shifted_templates(search, members, m, h)
-    slope = shifted[0, 0, 0] - shifted[0, 0, 2]     # the best template at s0 + h minus at s0 - h
+    # the best template at s0 + h minus at s0 - h (a difference of the single-precision transforms'
+    # values, in single precision as they came)
+    slope = shifted[0, 0, 0].astype(np.float32) - shifted[0, 0, 2].astype(np.float32)
     starts = _segments(search.side.weight * slope ** 2, int(np.clip(resels // 25, 2, 10)), n / max(resels, 1.0))
     total_w = sum(wt for _, _, wt in members)
     mean_lag = sum(wt * s0 for _, s0, wt in members) / total_w
