@@ -149,6 +149,7 @@ class _Pixels(NamedTuple):
     flux: np.ndarray
     sigma: np.ndarray | None
     bad: np.ndarray
+    setup: object     # the wavelengths' :class:`_PixelSetup` (looked up once)
 
 
 def _usable_pixels(spectrum, info, telluric):
@@ -166,9 +167,10 @@ def _usable_pixels(spectrum, info, telluric):
     sig = None if sig is None else sig[order]
     if (~bad).sum() < 50:
         raise AnalysisError("fewer than 50 usable pixels: no velocity", info.path)
+    setup = _pixel_setup(w)
     if telluric:
-        bad |= _pixel_setup(w).telluric
-    return _Pixels(w, f, sig, bad)
+        bad |= setup.telluric
+    return _Pixels(w, f, sig, bad, setup)
 
 
 class _PixelSetup(NamedTuple):
@@ -228,11 +230,30 @@ def distance_to_invalid(valid):
     return np.minimum(index - before, after - index).astype(float)
 
 
+_TAPERS = {}
+
+
 def _edge_taper(valid, first=0, last=None):
     """Weights rising as a cosine over ~ 2% of the data's range (grid points ``first`` to ``last``)
-    at both ends and 5 pixels at gap edges."""
+    at both ends and 5 pixels at gap edges (read-only; the last few masks' kept: spectra of a
+    survey share their masks, and a hash of the mask costs a tenth of making the taper)."""
+    import hashlib
+
     n = valid.size
     last = n - 1 if last is None else last
+    key = (hashlib.sha1(np.ascontiguousarray(valid).tobytes()).hexdigest(), n, first, last)
+    found = _TAPERS.get(key)
+    if found is None:
+        found = _make_edge_taper(valid, first, last)
+        found.flags.writeable = False
+        while len(_TAPERS) >= 8:   # oldest out first; the array is returned, not looked up again
+            _TAPERS.pop(next(iter(_TAPERS)), None)
+        _TAPERS[key] = found
+    return found
+
+
+def _make_edge_taper(valid, first, last):
+    n = valid.size
     ntap_end = max(5, int(0.02 * (last - first + 1)))
     dist = distance_to_invalid(valid)
     edge = np.minimum(np.arange(n) - first + 1, last - np.arange(n) + 1)
@@ -291,7 +312,7 @@ def observe_on_grid(spectrum, *, step=None, telluric=True, clip_emission=True, n
     """
     notes = notes if notes is not None else []
     info = get_info(spectrum)
-    w, f, sig, bad = _usable_pixels(spectrum, info, telluric)
+    w, f, sig, bad, setup = _usable_pixels(spectrum, info, telluric)
     if sig is None:
         sig = noise_from_flux(f, bad)
         noise_source = "DER_SNR at the continuum, scaled as sqrt(flux)"
@@ -303,7 +324,7 @@ def observe_on_grid(spectrum, *, step=None, telluric=True, clip_emission=True, n
             notes.append(f"{int(hot.sum())} pixels above the continuum (emission/cosmic rays) excluded")
             bad |= hot
     lnw = np.log(w)
-    step = lattice_step(_pixel_setup(w).native_step) if step is None else step
+    step = lattice_step(setup.native_step) if step is None else step
     good = ~bad
     lo, hi = lnw[good][0], lnw[good][-1]
     # whole blocks of the lattice of steps from ln lambda = 0 (GRID_BLOCK), covering the data
