@@ -152,9 +152,35 @@ class _Pixels(NamedTuple):
     setup: object     # the wavelengths' :class:`_PixelSetup` (looked up once)
 
 
+_VACUUM = {}
+
+
+def _vacuum_wavelengths(spectrum, info):
+    """The spectrum's vacuum wavelengths (Angstrom; read-only where converted).
+
+    Air wavelengths are converted once per set of pixels (the last few kept, keyed by their bytes):
+    the conversion (:func:`specan.obsinfo.air_to_vacuum`, an inversion of Morton's formula) costs
+    ~1 ms a spectrum (measured), the same for every exposure of a survey's wavelength solution.
+    """
+    import hashlib
+
+    if info.medium == "vacuum":
+        return wavelength_in(spectrum, "vacuum")
+    own = wavelength_in(spectrum, info.medium)
+    key = (hashlib.sha1(np.ascontiguousarray(own).tobytes()).hexdigest(), own.size, info.medium)
+    found = _VACUUM.get(key)
+    if found is None:
+        found = wavelength_in(spectrum, "vacuum")
+        found.flags.writeable = False
+        while len(_VACUUM) >= 8:   # oldest out first; the array is returned, not looked up again
+            _VACUUM.pop(next(iter(_VACUUM)), None)
+        _VACUUM[key] = found
+    return found
+
+
 def _usable_pixels(spectrum, info, telluric):
     """Sorted vacuum pixels with their bad-pixel mask (non-finite, masked, zero error, tellurics)."""
-    w = wavelength_in(spectrum, "vacuum")
+    w = _vacuum_wavelengths(spectrum, info)
     f = np.asarray(spectrum.flux.value, dtype=float)
     sig = sigma_array(spectrum)
     bad = ~np.isfinite(f) | ~np.isfinite(w)
