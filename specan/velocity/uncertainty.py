@@ -21,7 +21,7 @@ from .correlation import Correlation
 from .grid import gauss_kernel, fast_length, gauss_smooth, highpass, kms_per_pixel, smoothed_coverage, spline_operators, turns
 
 __all__ = ["TonryDavis", "VelocityErrors", "SegmentErrors", "tonry_davis", "resample_error", "estimate_errors",
-           "reported_error", "segment_errors", "zero_point_error", "content_seed", "spline_adjoint", "ErrorBudget", "error_budget"]
+           "reported_error", "segment_errors", "segment_windows", "SEGMENT_REACH", "SPLINE_REACH", "zero_point_error", "content_seed", "spline_adjoint", "ErrorBudget", "error_budget"]
 
 
 # ---------------------------------------------------------------------------
@@ -209,29 +209,39 @@ def _highpass_adjoint(y, sigma, valid):
 SEGMENT_REACH = 6.0
 
 
-def _segments_highpass_adjoint(g, starts, sigma, valid):
+def segment_windows(starts, n, sigma):
+    """(lo, hi): the grid pixels where the high-pass adjoint of a column restricted to each segment
+    (starting at ``starts``; ``n`` pixels in all) is not zero: the segment and :data:`SEGMENT_REACH`
+    high-pass sigmas on both sides."""
+    ends = np.append(starts[1:], n)
+    reach = int(math.ceil(SEGMENT_REACH * sigma)) if sigma else 0
+    return np.maximum(starts - reach, 0), np.minimum(ends + reach, n)
+
+
+def _segments_highpass_adjoint(g, starts, sigma, valid, colour=None):
     """(n, K) :func:`_highpass_adjoint` of the columns g 1_k (``g`` restricted to segment k, the
-    segments starting at ``starts``), each column smoothed on its own segment's window only.
+    segments starting at ``starts``), each column smoothed on its own segment's window only;
+    with ``colour`` (K integers), the columns of one colour added into one, (n, max colour + 1).
 
     A column is zero outside its segment, so its smoothed copy matters only within
-    :data:`SEGMENT_REACH` sigmas of it: every segment's window goes into one row of a 2-D real
-    transform of the longest window's length (a few times shorter than the spectrum's; the
-    signal sits inside its row with that reach on both sides, so nothing wraps around), instead
-    of one transform of the whole spectrum per segment. The same numbers to ~1e-7 (single
-    precision, as :func:`_highpass_adjoint`).
+    :data:`SEGMENT_REACH` sigmas of it (:func:`segment_windows`): every segment's window goes into
+    one row of a 2-D real transform of the longest window's length (a few times shorter than the
+    spectrum's; the signal sits inside its row with that reach on both sides, so nothing wraps
+    around), instead of one transform of the whole spectrum per segment. The same numbers to
+    ~1e-7 (single precision, as :func:`_highpass_adjoint`).
     """
     n = g.size
     ends = np.append(starts[1:], n)
+    colour = np.arange(starts.size) if colour is None else np.asarray(colour)
     v = valid.astype(float)
     vg = v * g
-    out = np.zeros((starts.size, n))     # a row per segment (rows: contiguous writes), transposed at the end
+    out = np.zeros((int(colour.max()) + 1, n))   # a row per colour (rows: contiguous writes), transposed at the end
     for j, (a, b) in enumerate(zip(starts, ends)):
-        out[j, a:b] = vg[a:b]
+        out[colour[j], a:b] = vg[a:b]
     if not sigma:
         return out.T
-    reach = int(math.ceil(SEGMENT_REACH * sigma))
-    lo, hi = np.maximum(starts - reach, 0), np.minimum(ends + reach, n)
-    size = fast_length(int(np.max(ends - starts)) + 2 * reach)
+    lo, hi = segment_windows(starts, n, sigma)
+    size = fast_length(int(np.max(ends - starts)) + 2 * int(math.ceil(SEGMENT_REACH * sigma)))
     q = (vg / smoothed_coverage(valid, sigma)).astype(np.float32)
     rows = np.zeros((starts.size, size), np.float32)
     for j, (a, b, l0) in enumerate(zip(starts, ends, lo)):
@@ -239,8 +249,29 @@ def _segments_highpass_adjoint(g, starts, sigma, valid):
     smooth = sfft.irfft(sfft.rfft(rows, axis=1) * _kernel32(size, float(sigma)), size, axis=1)
     # back to the spectrum's pixels: each window's span of its row (a few segments' worth of pixels)
     for j, (l0, l1) in enumerate(zip(lo, hi)):
-        out[j, l0:l1] -= v[l0:l1] * smooth[j, :l1 - l0]
+        out[colour[j], l0:l1] -= v[l0:l1] * smooth[j, :l1 - l0]
     return out.T
+
+
+#: Native pixels kept on each side of a segment's window when its column shares a transposed spline
+#: solve with others (:func:`segment_errors`): the cubic interpolation's inverse falls by a factor
+#: of ~0.27 a pixel (2 - sqrt 3 for cubic splines, from memory; checked in tests/test_velocity_fast_path.py),
+#: 1e-36 over this many.
+SPLINE_REACH = 64
+
+
+def _colours(lo, hi):
+    """Colours (0, 1, ...) of the windows [lo, hi) in order such that windows of one colour are
+    disjoint: each takes the first colour whose last window ended at or before its start."""
+    last_end, colour = [], []
+    for a, b in zip(lo, hi):
+        c = next((i for i, e in enumerate(last_end) if e <= a), len(last_end))
+        if c == len(last_end):
+            last_end.append(b)
+        else:
+            last_end[c] = b
+        colour.append(c)
+    return np.asarray(colour)
 
 
 @functools.lru_cache(maxsize=32)
@@ -369,6 +400,33 @@ def _template_segments(search, shifted, starts, h):
     return offsets, good, grads[0], grads[1]
 
 
+def _propagated_sigmas(observed, g_seg, g_whole, starts, hp_sigma):
+    """(K + 1) noise sigmas of linear functions of the grid's data: gradient ``g_seg`` restricted to
+    each segment (starting at ``starts``), then ``g_whole``, propagated back through the high-pass
+    filter and the spline to the native pixels' errors.
+
+    Each segment's vertex depends on its own pixels only, the whole's on all. The segments' columns
+    go through the transposed spline solve packed: those whose native windows (the high-pass
+    window and :data:`SPLINE_REACH` pixels) do not overlap share a column (a colour), and each
+    segment's error is summed over its own window (5-6 columns for 10 segments instead of 10,
+    measured; what leaks between segments of one colour is below 1e-36 of them).
+    """
+    lo, hi = segment_windows(starts, g_seg.size, hp_sigma)
+    x = observed.spline_x
+    nlo = np.maximum(np.searchsorted(x, observed.grid[lo]) - SPLINE_REACH, 0)
+    nhi = np.minimum(np.searchsorted(x, observed.grid[hi - 1], side="right") + SPLINE_REACH, x.size)
+    colour = _colours(nlo, nhi)
+    u = np.concatenate([_segments_highpass_adjoint(g_seg, starts, hp_sigma, observed.valid, colour),
+                        _highpass_adjoint(g_whole[:, None], hp_sigma, observed.valid)], axis=1)
+    z = spline_adjoint(x, observed.grid)(u)          # (native pixels, colours + 1)
+    sz = observed.native_sigma[:, None] * z
+    sig = np.empty(starts.size + 1)
+    for j, (a, b, c) in enumerate(zip(nlo, nhi, colour)):
+        sig[j] = math.sqrt(float(np.sum(sz[a:b, c] ** 2)))
+    sig[-1] = math.sqrt(float(np.sum(sz[:, -1] ** 2)))
+    return sig
+
+
 def segment_errors(observed, search, members, m, resels):
     """:class:`SegmentErrors` of a velocity averaged over templates.
 
@@ -403,11 +461,7 @@ def segment_errors(observed, search, members, m, resels):
         good &= ok[i]
         g_seg += wt / total_w * gs[i]
         g_whole += wt / total_w * gw[i]
-    # (n, K + 1): each segment's vertex depends on its own pixels only, the whole's on all
-    u = np.concatenate([_segments_highpass_adjoint(g_seg, starts, lags.hp_sigma, observed.valid),
-                        _highpass_adjoint(g_whole[:, None], lags.hp_sigma, observed.valid)], axis=1)
-    z = spline_adjoint(observed.spline_x, observed.grid)(u)          # (native pixels, K + 1)
-    sig = np.sqrt(np.sum((observed.native_sigma[:, None] * z) ** 2, axis=0))
+    sig = _propagated_sigmas(observed, g_seg, g_whole, starts, lags.hp_sigma)
     seg_off, seg_sig = np.where(good, offsets, np.nan)[:-1], sig[:-1]
     use = good[:-1] & (seg_sig > 0)
     birge = float("nan")
