@@ -194,11 +194,13 @@ def spline_adjoint(x, grid):
 
 
 def _highpass_adjoint(y, sigma, valid):
-    """Transpose of :func:`~.grid.highpass` applied to the columns of ``y``: H = V (I - Gv^-1 G V)."""
-    v = valid.astype(float)[:, None]
+    """Transpose of :func:`~.grid.highpass` applied to ``y`` or its columns: H = V (I - Gv^-1 G V)."""
+    v = valid.astype(float)
+    v = v if y.ndim == 1 else v[:, None]
     if not sigma:
         return v * y
-    den = smoothed_coverage(valid, sigma)[:, None]
+    den = smoothed_coverage(valid, sigma)
+    den = den if y.ndim == 1 else den[:, None]
     # (single precision: an error estimate, to ~1e-6 of itself)
     return v * y - v * gauss_smooth(v * y / den, sigma, single=True)
 
@@ -241,16 +243,36 @@ def _segments_highpass_adjoint(g, starts, sigma, valid, colour=None):
     if not sigma:
         return out.T
     lo, hi = segment_windows(starts, n, sigma)
-    size = fast_length(int(np.max(ends - starts)) + 2 * int(math.ceil(SEGMENT_REACH * sigma)))
     q = (vg / smoothed_coverage(valid, sigma)).astype(np.float32)
-    rows = np.zeros((starts.size, size), np.float32)
-    for j, (a, b, l0) in enumerate(zip(starts, ends, lo)):
-        rows[j, a - l0:b - l0] = q[a:b]
-    smooth = sfft.irfft(sfft.rfft(rows, axis=1) * _kernel32(size, float(sigma)), size, axis=1)
-    # back to the spectrum's pixels: each window's span of its row (a few segments' worth of pixels)
-    for j, (l0, l1) in enumerate(zip(lo, hi)):
-        out[colour[j], l0:l1] -= v[l0:l1] * smooth[j, :l1 - l0]
+    for group, size in _transform_groups(ends - starts, 2 * int(math.ceil(SEGMENT_REACH * sigma))):
+        rows = np.zeros((group.size, size), np.float32)
+        for i, j in enumerate(group):
+            rows[i, starts[j] - lo[j]:ends[j] - lo[j]] = q[starts[j]:ends[j]]
+        smooth = sfft.irfft(sfft.rfft(rows, axis=1) * _kernel32(size, float(sigma)), size, axis=1)
+        # back to the spectrum's pixels: each window's span of its row (a few segments' worth of pixels)
+        for i, j in enumerate(group):
+            out[colour[j], lo[j]:hi[j]] -= v[lo[j]:hi[j]] * smooth[i, :hi[j] - lo[j]]
     return out.T
+
+
+#: What one more transform call costs, in transformed points (our estimate, for :func:`_transform_groups`).
+CALL_POINTS = 2000
+
+
+def _transform_groups(lengths, margin):
+    """[(segment indices, transform length)]: the segments in one or two batches of transforms, the
+    shorter ones apart where that saves more points than a call costs (:data:`CALL_POINTS`): one long
+    segment otherwise sets the length of every row (equal-information segments differ in length by
+    ten times, measured)."""
+    order = np.argsort(lengths, kind="stable")
+    sizes = [fast_length(int(lengths[j]) + margin) for j in order]
+    best, split = len(order) * sizes[-1], len(order)
+    for k in range(1, len(order)):
+        cost = k * sizes[k - 1] + (len(order) - k) * sizes[-1] + CALL_POINTS
+        if cost < best:
+            best, split = cost, k
+    groups = [(order[:split], sizes[split - 1]), (order[split:], sizes[-1])]
+    return [(g, size) for g, size in groups if g.size]
 
 
 #: Native pixels kept on each side of a segment's window when its column shares a transposed spline
@@ -417,7 +439,7 @@ def _propagated_sigmas(observed, g_seg, g_whole, starts, hp_sigma):
     nhi = np.minimum(np.searchsorted(x, observed.grid[hi - 1], side="right") + SPLINE_REACH, x.size)
     colour = _colours(nlo, nhi)
     u = np.concatenate([_segments_highpass_adjoint(g_seg, starts, hp_sigma, observed.valid, colour),
-                        _highpass_adjoint(g_whole[:, None], hp_sigma, observed.valid)], axis=1)
+                        _highpass_adjoint(g_whole, hp_sigma, observed.valid)[:, None]], axis=1)
     z = spline_adjoint(x, observed.grid)(u)          # (native pixels, colours + 1)
     sz = observed.native_sigma[:, None] * z
     sig = np.empty(starts.size + 1)
