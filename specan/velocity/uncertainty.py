@@ -380,21 +380,23 @@ def _shifted_templates(search, members, m, h):
     return np.array(sfft.irfft(shifted, m, axis=-1)[..., :lags.n], dtype=np.float64)
 
 
-def _template_segments(search, shifted, starts, h):
-    """(offsets, good, segment gradients, whole gradients) of the member templates' segment velocities
+def _template_segments(search, shifted, starts, h, weights):
+    """(offsets, good, segment gradient, whole gradient) of the member templates' segment velocities
     about their peaks, from their :func:`_shifted_templates`.
 
     ``offsets`` and ``good`` (T, K + 1: the segments, then the whole) are vertex offsets in pixels;
-    the gradients (T, n) are their derivatives with respect to the data on the grid: at each pixel,
-    that of its own segment's vertex (the others' are zero there), and that of the whole's.
+    the gradients (n) are the derivatives of the ``weights``-weighted mean of the templates'
+    vertices with respect to the data on the grid: at each pixel, that of its own segment's vertex
+    (the others' are zero there), and that of the whole's.
     """
     n = search.lags.n
     a1, a2, a3 = search.side.arrays
     w = search.side.weight
     bT, bT2, bV = shifted[:, 0], shifted[:, 1], shifted[:, 2]                         # each (T, 3 lags, n)
 
-    def sums(x):  # (T, 3 lags, n) -> (T, 3 lags, segments + whole)
-        return np.concatenate([np.add.reduceat(x, starts, axis=-1), np.sum(x, axis=-1, keepdims=True)], axis=-1)
+    def sums(x):  # (T, 3 lags, n) -> (T, 3 lags, segments + whole); the segments cover the spectrum
+        seg = np.add.reduceat(x, starts, axis=-1)
+        return np.concatenate([seg, np.sum(seg, axis=-1, keepdims=True)], axis=-1)
 
     rows = (sums(a1 * bT), sums(a2 * bT), sums(a2 * bT2), sums(a1 * bV), sums(a3 * bV), sums(a2 * bV))
     c, _ = Correlation.combine(rows)                                  # (T, 3 lags, K + 1)
@@ -411,15 +413,18 @@ def _template_segments(search, shifted, starts, h):
     energy = np.clip(rows[2] - rows[1] ** 2 / c2v, 1e-300, None)
     data_energy = np.clip(rows[4][:, 1] - rows[3][:, 1] ** 2 / c2v[:, 1], 1e-300, None)
     # per template and segment (T, K + 1): gradient = w (a+ T(+h) - b+ V(+h) - a- T(-h) + b- V(-h)),
-    # the coefficients made per segment and only then spread over its pixels
+    # the coefficients made per segment (the templates' weights in them) and only then spread over
+    # its pixels, the templates summed in the same product
     scale = np.where(good, -1.0 / (2.0 * h * np.where(good, curv, -1.0) * np.sqrt(data_energy)), 0.0)
+    scale = scale * np.asarray(weights, float)[:, None]
     a_plus, a_minus = scale / np.sqrt(energy[:, 2]), scale / np.sqrt(energy[:, 0])
-    coef = np.stack([a_plus, mu[:, 2] * a_plus, a_minus, mu[:, 0] * a_minus])      # (4, T, K + 1)
+    coef = np.stack([a_plus, -mu[:, 2] * a_plus, -a_minus, mu[:, 0] * a_minus], axis=1)   # (T, 4, K + 1)
+    arrays = shifted[:, (0, 2, 0, 2), (2, 2, 0, 0)]                   # T(+h), V(+h), T(-h), V(-h): (T, 4, n)
     k = starts.size
     lengths = np.diff(np.append(starts, n))
-    seg, whole = np.repeat(coef[..., :k], lengths, axis=-1), coef[..., k:]         # (4, T, n), (4, T, 1)
-    grads = [w * (bT[:, 2] * c[0] - bV[:, 2] * c[1] - bT[:, 0] * c[2] + bV[:, 0] * c[3]) for c in (seg, whole)]
-    return offsets, good, grads[0], grads[1]
+    g_seg = w * np.einsum("tan,tan->n", arrays, np.repeat(coef[..., :k], lengths, axis=-1))
+    g_whole = w * np.einsum("tan,ta->n", arrays, coef[..., k])
+    return offsets, good, g_seg, g_whole
 
 
 def _propagated_sigmas(observed, g_seg, g_whole, starts, hp_sigma):
@@ -476,13 +481,10 @@ def segment_errors(observed, search, members, m, resels):
     mean_lag = sum(wt * s0 for _, s0, wt in members) / total_w
     offsets = np.zeros(starts.size + 1)
     good = np.ones(starts.size + 1, bool)
-    g_seg, g_whole = np.zeros(n), np.zeros(n)
-    off, ok, gs, gw = _template_segments(search, shifted, starts, h)
+    off, ok, g_seg, g_whole = _template_segments(search, shifted, starts, h, [wt / total_w for _, _, wt in members])
     for i, (_, s0, wt) in enumerate(members):
         offsets += wt / total_w * (s0 + np.where(ok[i], off[i], 0.0) - mean_lag)
         good &= ok[i]
-        g_seg += wt / total_w * gs[i]
-        g_whole += wt / total_w * gw[i]
     sig = _propagated_sigmas(observed, g_seg, g_whole, starts, lags.hp_sigma)
     seg_off, seg_sig = np.where(good, offsets, np.nan)[:-1], sig[:-1]
     use = good[:-1] & (seg_sig > 0)
