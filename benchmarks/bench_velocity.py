@@ -29,9 +29,13 @@
    choice (templates, weights) or velocity changed, and the CPU time with and without the skip.
 8. ``--miles``: MILES library stars (``../shared/reference/miles``, at rest in the library's
    frame), each measured without the library templates whose group it belongs to.
+9. ``--against DIR``: the speed test's spectra measured by this checkout's specan and by the specan of
+   another checkout ``DIR`` (e.g. ``git archive <commit> | tar -x -C DIR``) in one process, each
+   spectrum by both in turn (the order alternating): CPU ms per spectrum of each and their ratio, with
+   the load drift of a shared machine cancelled (runs in separate processes differ by +-20% here).
 
 Run:  python benchmarks/bench_velocity.py [--quick] [--speed] [--floor] [--night-set] [--user] [--other-types] [--neighbours]
-      [--miles]
+      [--miles] [--against DIR]
 
 Timings depend on the machine's load; on a shared machine OPENBLAS_NUM_THREADS=1 avoids BLAS
 threads fighting other processes (the figures in the issue-4 report were measured that way).
@@ -260,6 +264,59 @@ def speed(model, n):
         c_own.append(time.process_time() - c)
     print(f"specan, each spectrum on its own wavelength solution (pixels shifted 0-0.6 A), {len(own)} spectra: "
           f"median CPU {1e3 * np.median(c_own):.1f} ms (the same pixels: {cpu_med[next(iter(cpu_med))]:.1f} ms)")
+
+
+def against(model, n, other, rounds=4):
+    """CPU ms per speed-test spectrum of this specan and of ``other``'s (a checkout), interleaved in one process."""
+    import importlib
+    import shutil
+    import tempfile
+
+    folder = Path(tempfile.mkdtemp(prefix="specan-against-"))
+    # the other checkout's package under another name (its imports are relative): both in one process
+    shutil.copytree(Path(other) / "specan", folder / "specan_other", ignore=shutil.ignore_patterns("__pycache__"))
+    sys.path.insert(0, str(folder))
+    try:
+        import specan as this
+
+        packages = {"this checkout": this, f"{other}": importlib.import_module("specan_other")}
+        for pkg in packages.values():
+            for module in (".velocity", ".obsinfo"):
+                importlib.import_module(pkg.__name__ + module)
+        velocities = np.random.default_rng(5).uniform(-300, 300, n)
+
+        def spectrum(pkg, v, seed):
+            flux = model(SPEED_R)(np.log(SPEED_PIX) - np.log(pkg.velocity.doppler_factor(v * KMS)))
+            sig = np.sqrt(np.clip(flux, 1e-3, None)) / 50.0
+            flux = flux + np.random.default_rng(seed).normal(size=flux.size) * sig
+            info = pkg.obsinfo.ObsInfo(object="Kurucz Sun", medium="vacuum", medium_assumed=False,
+                                       resolving_power=SPEED_R, normalized=True)
+            return Spectrum(flux=flux * u.dimensionless_unscaled, spectral_axis=SPEED_PIX * u.AA,
+                            uncertainty=StdDevUncertainty(sig), meta={pkg.obsinfo.META_KEY: info})
+
+        spectra = {name: [spectrum(pkg, v, 200 + i) for i, v in enumerate(velocities)] for name, pkg in packages.items()}
+        for name, pkg in packages.items():   # set-ups built, caches filled
+            for s in spectra[name]:
+                pkg.velocity.measure(s, barycentric=False)
+        cpu = {name: [] for name in packages}
+        names = list(packages)
+        for r in range(rounds):
+            for i in range(len(velocities)):
+                for name in (names if (r + i) % 2 == 0 else names[::-1]):
+                    c = time.process_time()
+                    packages[name].velocity.measure(spectra[name][i], barycentric=False)
+                    cpu[name].append(time.process_time() - c)
+        print(f"\n== side by side in one process: {n} speed-test spectra x {rounds}, each by both in turn "
+              f"(load average {os.getloadavg()[0]:.2f}) ==")
+        for name in names:
+            t = 1e3 * np.asarray(cpu[name])
+            print(f"{name:40s} CPU median {np.median(t):6.2f} ms (quartiles {np.percentile(t, 25):.2f}-"
+                  f"{np.percentile(t, 75):.2f})")
+        ratio = np.asarray(cpu[names[1]]) / np.asarray(cpu[names[0]])
+        print(f"{names[1]} / this checkout, per spectrum: median {np.median(ratio):.3f}")
+    finally:
+        sys.path.remove(str(folder))
+        shutil.rmtree(folder, ignore_errors=True)
 
 
 #: The steps of ``velocity.measure`` timed by :func:`floor` (names in ``specan.velocity``).
@@ -596,3 +653,5 @@ if __name__ == "__main__":
         neighbours(model, 10 if quick else 40)
     if "--miles" in chosen:
         miles_stars(20 if quick else 60)
+    if "--against" in chosen:
+        against(model, 10 if quick else 40, sys.argv[sys.argv.index("--against") + 1])

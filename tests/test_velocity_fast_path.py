@@ -17,7 +17,12 @@ changes since); the scores and the error estimates' transforms in single precisi
 ``specan.velocity.bank.SCORE_PRECISION``) left 1.0118e-3 and 5.391e-4, no template changed, and moved
 the velocities of 401 spectra (the Kurucz Sun as the speed test and the user path see it, the night
 benchmark's, the demo night, synthetic stars, JHC and MILES stars; against the code before it) by at
-most 8.2e-5 of their errors and the errors by 6.4e-5.
+most 8.2e-5 of their errors and the errors by 6.4e-5. The segments' errors on windows and packed
+spline solves, the scores' coverage sums read off transforms, the single-star model's reused rows and
+the kept vacuum wavelengths and tapers (the changes after) left 1.0118e-3 and 5.391e-4, no template or
+mixture changed, and moved the velocities of 253 spectra (the speed test's, the night benchmark's, the
+demo night, JHC and MILES stars; against the code before them) by at most 1.1e-11 of their errors and
+the errors by 1.4e-9.
 """
 
 from pathlib import Path
@@ -273,3 +278,154 @@ def test_scores_in_single_precision_are_the_double_precision_ones(kurucz_sun, mo
         assert single.lag == double.lag
         np.testing.assert_allclose(single.height, double.height, rtol=0, atol=1e-6)
         assert np.max(np.abs(single.height - double.height)) > 0     # the two precisions were compared
+
+
+def _kurucz_search(kurucz_sun, v=35.0, seed=203):
+    """(observed grid, PeakSearch, resolving power) of the Kurucz Sun as the speed test sees it."""
+    from specan.velocity import choice
+    from specan.velocity.correlation import PeakSearch, observed_side
+    from specan.velocity.grid import lag_window, normalised, observe_on_grid
+
+    notes = []
+    spec = normalised(kurucz_spectrum(kurucz_sun, v, seed), notes)
+    observed = observe_on_grid(spec, notes=notes)
+    power = choice.settle_resolving_power(observed, spec, notes)
+    lags = lag_window(observed, 2000 * KMS, power.value, 8.0)
+    return observed, PeakSearch(observed_side(observed, lags), lags, 0.3), power
+
+
+def test_segments_high_pass_adjoint_on_windows_is_the_whole_spectrums():
+    """Each segment's column smoothed on its own window equals the whole spectrum's transform of it
+    (to the single precision both are done in), and packed by colour the columns add up."""
+    from specan.velocity.uncertainty import _highpass_adjoint, _segments_highpass_adjoint
+
+    rng = np.random.default_rng(7)
+    n, sigma = 3000, 30.0
+    valid = np.ones(n, bool)
+    valid[[100, 101, 102, 1700, 2990]] = False
+    valid[1200:1260] = False
+    g = rng.normal(size=n)
+    starts = np.array([0, 140, 900, 1000, 2100, 2150])
+    dense = np.zeros((n, starts.size))
+    seg = np.repeat(np.arange(starts.size), np.diff(np.append(starts, n)))
+    dense[np.arange(n), seg] = g
+    want = _highpass_adjoint(dense, sigma, valid)
+    got = _segments_highpass_adjoint(g, starts, sigma, valid)
+    scale = np.max(np.abs(want))
+    assert got.shape == want.shape
+    assert np.max(np.abs(got - want)) < 1e-6 * scale
+    colour = np.array([0, 1, 0, 1, 2, 0])
+    packed = _segments_highpass_adjoint(g, starts, sigma, valid, colour)
+    for c in range(3):
+        assert np.max(np.abs(packed[:, c] - want[:, colour == c].sum(axis=1))) < 1e-6 * scale
+    assert np.array_equal(_segments_highpass_adjoint(g, starts, None, valid), valid[:, None] * dense)
+
+
+def test_packed_spline_solves_give_each_segments_error(kurucz_sun):
+    """The segments' noise sigmas from packed spline solves equal those of one column per segment
+    smoothed on the whole spectrum and summed over every native pixel (within 1e-6, the single
+    precision of the smoothing; measured 7e-10), and the spline's transposed solve has fallen below
+    1e-30 of its peak SPLINE_REACH native pixels away (the packing's premise)."""
+    from specan.velocity.grid import spline_operators
+    from specan.velocity.uncertainty import (SPLINE_REACH, _colours, _highpass_adjoint, _propagated_sigmas,
+                                             _segments, segment_windows)
+
+    observed, search, _ = _kurucz_search(kurucz_sun)
+    lags = search.lags
+    n = lags.n
+    rng = np.random.default_rng(11)
+    g_seg, g_whole = rng.normal(size=n) * observed.valid, rng.normal(size=n) * observed.valid
+    starts = _segments(search.side.weight, 10, 4.0)
+    assert starts.size == 10
+    got = _propagated_sigmas(observed, g_seg, g_whole, starts, lags.hp_sigma)
+    dense = np.zeros((n, starts.size + 1))
+    dense[np.arange(n), np.repeat(np.arange(starts.size), np.diff(np.append(starts, n)))] = g_seg
+    dense[:, -1] = g_whole
+    z = spline_operators(observed.spline_x, observed.grid).adjoint(_highpass_adjoint(dense, lags.hp_sigma,
+                                                                                       observed.valid))
+    want = np.sqrt(np.sum((observed.native_sigma[:, None] * z) ** 2, axis=0))
+    np.testing.assert_allclose(got, want, rtol=1e-6, atol=0)
+    assert np.max(np.abs(got / want - 1)) > 0   # two computations were compared
+    lo, hi = segment_windows(starts, n, lags.hp_sigma)
+    assert np.all(lo <= starts) and np.all(hi[:-1] >= starts[1:]) and hi[-1] == n
+    x = observed.spline_x
+    colour = _colours(np.searchsorted(x, observed.grid[lo]) - SPLINE_REACH,
+                      np.searchsorted(x, observed.grid[hi - 1], side="right") + SPLINE_REACH)
+    assert colour.max() + 1 < starts.size     # some segments did share a solve
+    # one grid pixel's column through the transposed spline: its reach in native pixels
+    unit = np.zeros((n, 1))
+    mid = n // 2
+    unit[mid] = 1.0
+    col = np.abs(spline_operators(observed.spline_x, observed.grid).adjoint(unit)[:, 0])
+    at = int(np.searchsorted(observed.spline_x, observed.grid[mid]))
+    far = np.r_[col[:max(at - SPLINE_REACH, 0)], col[at + SPLINE_REACH + 1:]]
+    assert np.max(far) < 1e-30 * np.max(col)
+
+
+def test_single_star_model_takes_the_datas_weight_rows(kurucz_sun):
+    """The single-star CCF made with the data's rows of the weights alone is the one made in full, to the bit."""
+    from specan.velocity import choice
+    from specan.velocity.bank import refine_peaks
+    from specan.velocity.correlation import Correlation, ccf_about, single_star_ccf
+
+    observed, search, power = _kurucz_search(kurucz_sun)
+    lags = search.lags
+    members, _ = choice.automatic_mixture(search, power.template_key, None, [], data_short=search.side.ffts)
+    template = members[0].template
+    x, _, _ = refine_peaks([template], [members[0].lag], search.side.ffts, lags.m, lags.pad)
+    s0 = float(x[0])
+    corr = Correlation(search.side.arrays, template, lags.pad, lags.m, search.side.ffts)
+    _, _, _, rows = ccf_about(corr, s0, lags.half, single=True, rows=True)
+    full = single_star_ccf(template, observed.valid, search.side.weight, lags.pad, lags.m, s0, lags.half)
+    reused = single_star_ccf(template, observed.valid, search.side.weight, lags.pad, lags.m, s0, lags.half,
+                             data_rows=rows)
+    assert full is not None and np.array_equal(full, reused)
+
+
+def test_scores_coverage_sums_are_the_direct_sums(kurucz_sun, monkeypatch):
+    """The scores (double precision) from the data's coverage sums read off transforms equal those
+    from direct sums over the data window at each template's peak (within 1e-12)."""
+    from specan import templates
+    from specan.velocity import bank, choice
+    from specan.velocity.prepared import prepare_builtin
+
+    _, search, power = _kurucz_search(kurucz_sun, -120.0, 5)
+    lags = search.lags
+    r = power.template_key
+    cands = [choice.BuiltinCandidate(t.sptype, t.lumclass, r, "library", t.name) for t in templates.library_templates()]
+    cands += [choice.BuiltinCandidate(st, lc, r) for st, lc in templates.automatic_types()][:12]
+    prepared = [prepare_builtin(c, lags.template_grid) for c in cands]
+    monkeypatch.setattr(bank, "SCORE_PRECISION", np.complex128)
+    got = bank.score_bank(search, bank.TemplateBank(cands, prepared, lags.m), search.side.ffts)
+    a1, a2, a3 = search.side.arrays
+    n, pad = lags.n, lags.pad
+    for t, lag, h in zip(prepared, got.lag, got.height):
+        def window(arr, s):   # lag s uses template pixels x + pad - s
+            return arr[pad - s:pad - s + n]
+        y = [np.sum(a1 * window(t.T, s)) for s in (lag - 1, lag, lag + 1)]
+        vertex = y[1] - 0.125 * (y[0] - y[2]) ** 2 / (y[0] - 2 * y[1] + y[2])
+        c2t, c2t2 = np.sum(a2 * window(t.T, lag)), np.sum(a2 * window(t.T2, lag))
+        c2v, c1v, c3v = (np.sum(a * window(t.V, lag)) for a in (a2, a1, a3))
+        want = (vertex - c1v * c2t / c2v) / np.sqrt((c2t2 - c2t ** 2 / c2v) * (c3v - c1v ** 2 / c2v))
+        assert abs(h - want) < 1e-12, (t.name, h, want)
+
+
+def test_air_wavelengths_converted_once_per_set_of_pixels():
+    """An air-wavelength spectrum's grid is the same however often it is observed, its vacuum
+    wavelengths are the conversion's, kept read-only, and another set of pixels gets its own."""
+    from specan.obsinfo import wavelength_in
+    from specan.velocity.grid import _vacuum_wavelengths, observe_on_grid
+
+    wave = np.linspace(4000.0, 6500.0, 3000) * u.AA
+    a = synth.spectrum("G2", "V", resolving_power=2000, wave=wave, rv=12 * KMS, snr=80, seed=1, medium="air")
+    info = specan.obsinfo.get_info(a)
+    assert info.medium == "air"
+    first = _vacuum_wavelengths(a, info)
+    assert np.array_equal(first, wavelength_in(a, "vacuum")) and not first.flags.writeable
+    assert _vacuum_wavelengths(a, info) is first
+    o1, o2 = observe_on_grid(a), observe_on_grid(a)
+    assert np.array_equal(o1.flux, o2.flux) and np.array_equal(o1.taper, o2.taper) and not o1.taper.flags.writeable
+    b = synth.spectrum("G2", "V", resolving_power=2000, wave=wave + 0.3 * u.AA, rv=12 * KMS, snr=80, seed=1,
+                       medium="air")
+    other = _vacuum_wavelengths(b, specan.obsinfo.get_info(b))
+    assert np.array_equal(other, wavelength_in(b, "vacuum")) and not np.array_equal(other, first)

@@ -116,12 +116,16 @@ class Correlation:
         """Normalised CCF at lags s = pad - k + ... for k = 0..m-1 (or the indices ``k`` only), shifted
         by ``frac`` pixels of s; ``single``: the inverse transforms in single precision (half the
         time, ~1e-7 of the peak), the normalisation in double."""
+        return self.combine(self.rows(frac, k, single))
+
+    def rows(self, frac=0.0, k=None, single=False):
+        """The six correlation rows (before :meth:`combine`) of :meth:`integer_lags`, as doubles."""
         X = self.X
         if frac:
             X = X * turns(-2.0 * np.pi * frac / self.m, X.shape[1])
         c = sfft.irfft(X.astype(np.complex64) if single else X, self.m, axis=1)
         c = c if k is None else c[:, k]
-        return self.combine(np.asarray(c, np.float64))
+        return np.asarray(c, np.float64)
 
     def at(self, s):
         """Normalised CCF at fractional lags ``s`` (array) by Fourier-series evaluation."""
@@ -237,15 +241,17 @@ def correlate(search, template, where=None):
     return corr, refine(corr, pk[0])
 
 
-def ccf_about(corr, s0, half, single=False):
+def ccf_about(corr, s0, half, single=False, rows=False):
     """Normalised CCF at s0 + j for integer j in [-half, half] (exact fractional centring; ``single``:
-    see :meth:`Correlation.integer_lags`)."""
+    see :meth:`Correlation.integer_lags`): (j, ccf, overlap weight), and the six correlation rows
+    (:meth:`Correlation.rows`) after them with ``rows``."""
     frac = s0 - math.floor(s0)
     base = math.floor(s0)
     j = np.arange(-half, half + 1)
     k = (corr.pad - (base + j)) % corr.m  # lag s = base + frac + j  <->  index pad - base - j after shift
-    ccf, c2v = corr.integer_lags(frac=frac, k=k, single=single)
-    return j, ccf, c2v
+    c = corr.rows(frac=frac, k=k, single=single)
+    ccf, c2v = corr.combine(c)
+    return (j, ccf, c2v, c) if rows else (j, ccf, c2v)
 
 
 def fwhm_pixels(j, vals, h):
@@ -265,11 +271,14 @@ def fwhm_pixels(j, vals, h):
     return float(xr - xl)
 
 
-def single_star_ccf(template, valid, weight, pad, m, s0, half):
+def single_star_ccf(template, valid, weight, pad, m, s0, half, data_rows=None):
     """CCF a noiseless star identical to the template, shifted by s0, would give (1 at the peak).
 
     The model star goes through the same steps as the data (window, masks, high-pass, weights),
     so edge and gap effects of those steps are in the model, not mistaken for noise.
+    ``data_rows``: the data's six correlation rows about s0 (:func:`ccf_about` with ``rows``);
+    where the template covers every pixel the data weigh, the model has the data's weights, so
+    the three rows of the weights alone are the data's and are not computed again.
     """
     n = valid.size
     shift = turns(-2.0 * np.pi * (s0 - pad) / m, m // 2 + 1)
@@ -283,8 +292,21 @@ def single_star_ccf(template, valid, weight, pad, m, s0, half):
     known = known > 0.5
     ok = valid & known
     model = highpass(model, template.hp_sigma, ok, single=True)
-    mcorr = Correlation(correlation_arrays(model, weight * ok), template, pad, m)
-    _, mvals, _ = ccf_about(mcorr, s0, half, single=True)
+    if data_rows is not None and not np.any((weight > 0) & ~known):
+        # rows (w d, T), (w, T), (w, T2), (w d, V), (w d^2, V), (w, V): those of w alone are the data's
+        a1, _, a3 = correlation_arrays(model, weight)
+        A1, A3 = sfft.rfft(np.stack([a1, a3]), m, axis=1)
+        BT, _, BV = template.ffts(m)
+        frac = s0 - math.floor(s0)
+        X = np.stack([np.conj(A1) * BT, np.conj(A1) * BV, np.conj(A3) * BV])
+        if frac:
+            X = X * turns(-2.0 * np.pi * frac / m, X.shape[1])
+        k = (pad - (math.floor(s0) + np.arange(-half, half + 1))) % m
+        c = np.asarray(sfft.irfft(X.astype(np.complex64), m, axis=1)[:, k], np.float64)
+        mvals, _ = Correlation.combine((c[0], data_rows[1], data_rows[2], c[1], c[2], data_rows[5]))
+    else:
+        mcorr = Correlation(correlation_arrays(model, weight * ok), template, pad, m)
+        _, mvals, _ = ccf_about(mcorr, s0, half, single=True)
     if not np.isfinite(mvals[half]) or mvals[half] <= 0:
         return None
     return mvals / mvals[half]
@@ -307,7 +329,7 @@ def ccf_about_peak(corr, template, valid, weight, lags, peak):
     s0, h = peak.lag, peak.height
     # CCF about the peak, and the single-star shape (the template seen through the same window), in
     # single precision: they give the Tonry & Davis error, the second peak and the CCF reported
-    j, vals, _ = ccf_about(corr, s0, lags.half, single=True)
-    model = single_star_ccf(template, valid, weight, lags.pad, lags.m, s0, lags.half)
+    j, vals, _, rows = ccf_about(corr, s0, lags.half, single=True, rows=True)
+    model = single_star_ccf(template, valid, weight, lags.pad, lags.m, s0, lags.half, data_rows=rows)
     resid = vals - h * model if model is not None else vals
     return PeakCCF(j, vals, model, resid, fwhm_pixels(j, vals, h))

@@ -30,7 +30,7 @@ _KMS = u.km / u.s   # made once (composing a unit costs ~10 us)
 __all__ = ["SPLINE_K", "COVER_TAPER", "ObservedGrid", "TemplateGrid", "LagWindow", "normalised",
            "observe_on_grid", "lattice_step", "lag_window", "kms_per_pixel", "sigma_array", "hot_pixels",
            "noise_from_flux", "fast_length", "turns", "distance_to_invalid",
-           "dersnr_sigma", "gauss_smooth", "smoothed_coverage", "highpass", "cover_taper", "SplineOperators", "spline_operators"]
+           "dersnr_sigma", "gauss_smooth", "gauss_kernel", "smoothed_coverage", "highpass", "cover_taper", "SplineOperators", "spline_operators"]
 
 #: Order of the spline that resamples spectra onto the ln-lambda grid.
 SPLINE_K = 3
@@ -149,11 +149,38 @@ class _Pixels(NamedTuple):
     flux: np.ndarray
     sigma: np.ndarray | None
     bad: np.ndarray
+    setup: object     # the wavelengths' :class:`_PixelSetup` (looked up once)
+
+
+_VACUUM = {}
+
+
+def _vacuum_wavelengths(spectrum, info):
+    """The spectrum's vacuum wavelengths (Angstrom; read-only where converted).
+
+    Air wavelengths are converted once per set of pixels (the last few kept, keyed by their bytes):
+    the conversion (:func:`specan.obsinfo.air_to_vacuum`, an inversion of Morton's formula) costs
+    ~1 ms a spectrum (measured), the same for every exposure of a survey's wavelength solution.
+    """
+    import hashlib
+
+    if info.medium == "vacuum":
+        return wavelength_in(spectrum, "vacuum")
+    own = wavelength_in(spectrum, info.medium)
+    key = (hashlib.sha1(np.ascontiguousarray(own).tobytes()).hexdigest(), own.size, info.medium)
+    found = _VACUUM.get(key)
+    if found is None:
+        found = wavelength_in(spectrum, "vacuum")
+        found.flags.writeable = False
+        while len(_VACUUM) >= 8:   # oldest out first; the array is returned, not looked up again
+            _VACUUM.pop(next(iter(_VACUUM)), None)
+        _VACUUM[key] = found
+    return found
 
 
 def _usable_pixels(spectrum, info, telluric):
     """Sorted vacuum pixels with their bad-pixel mask (non-finite, masked, zero error, tellurics)."""
-    w = wavelength_in(spectrum, "vacuum")
+    w = _vacuum_wavelengths(spectrum, info)
     f = np.asarray(spectrum.flux.value, dtype=float)
     sig = sigma_array(spectrum)
     bad = ~np.isfinite(f) | ~np.isfinite(w)
@@ -166,9 +193,10 @@ def _usable_pixels(spectrum, info, telluric):
     sig = None if sig is None else sig[order]
     if (~bad).sum() < 50:
         raise AnalysisError("fewer than 50 usable pixels: no velocity", info.path)
+    setup = _pixel_setup(w)
     if telluric:
-        bad |= _pixel_setup(w).telluric
-    return _Pixels(w, f, sig, bad)
+        bad |= setup.telluric
+    return _Pixels(w, f, sig, bad, setup)
 
 
 class _PixelSetup(NamedTuple):
@@ -228,11 +256,30 @@ def distance_to_invalid(valid):
     return np.minimum(index - before, after - index).astype(float)
 
 
+_TAPERS = {}
+
+
 def _edge_taper(valid, first=0, last=None):
     """Weights rising as a cosine over ~ 2% of the data's range (grid points ``first`` to ``last``)
-    at both ends and 5 pixels at gap edges."""
+    at both ends and 5 pixels at gap edges (read-only; the last few masks' kept: spectra of a
+    survey share their masks, and a hash of the mask costs a tenth of making the taper)."""
+    import hashlib
+
     n = valid.size
     last = n - 1 if last is None else last
+    key = (hashlib.sha1(np.ascontiguousarray(valid).tobytes()).hexdigest(), n, first, last)
+    found = _TAPERS.get(key)
+    if found is None:
+        found = _make_edge_taper(valid, first, last)
+        found.flags.writeable = False
+        while len(_TAPERS) >= 8:   # oldest out first; the array is returned, not looked up again
+            _TAPERS.pop(next(iter(_TAPERS)), None)
+        _TAPERS[key] = found
+    return found
+
+
+def _make_edge_taper(valid, first, last):
+    n = valid.size
     ntap_end = max(5, int(0.02 * (last - first + 1)))
     dist = distance_to_invalid(valid)
     edge = np.minimum(np.arange(n) - first + 1, last - np.arange(n) + 1)
@@ -291,7 +338,7 @@ def observe_on_grid(spectrum, *, step=None, telluric=True, clip_emission=True, n
     """
     notes = notes if notes is not None else []
     info = get_info(spectrum)
-    w, f, sig, bad = _usable_pixels(spectrum, info, telluric)
+    w, f, sig, bad, setup = _usable_pixels(spectrum, info, telluric)
     if sig is None:
         sig = noise_from_flux(f, bad)
         noise_source = "DER_SNR at the continuum, scaled as sqrt(flux)"
@@ -303,7 +350,7 @@ def observe_on_grid(spectrum, *, step=None, telluric=True, clip_emission=True, n
             notes.append(f"{int(hot.sum())} pixels above the continuum (emission/cosmic rays) excluded")
             bad |= hot
     lnw = np.log(w)
-    step = lattice_step(_pixel_setup(w).native_step) if step is None else step
+    step = lattice_step(setup.native_step) if step is None else step
     good = ~bad
     lo, hi = lnw[good][0], lnw[good][-1]
     # whole blocks of the lattice of steps from ln lambda = 0 (GRID_BLOCK), covering the data
@@ -452,7 +499,7 @@ def gauss_smooth(x, sigma, single=False):
     """
     n = x.shape[0]
     size = fast_length(n + int(math.ceil(8 * sigma)))  # zero padding: no wrap-around
-    kern = _gauss_kernel(size, float(sigma))
+    kern = gauss_kernel(size, float(sigma))
     if single:
         x, kern = np.asarray(x, np.float32), kern.astype(np.float32)
     if x.ndim == 2:
@@ -461,7 +508,7 @@ def gauss_smooth(x, sigma, single=False):
 
 
 @functools.lru_cache(maxsize=32)
-def _gauss_kernel(size, sigma):
+def gauss_kernel(size, sigma):
     """Fourier transform of a Gaussian of ``sigma`` pixels at the ``size // 2 + 1`` frequencies of a real
     transform of length ``size`` (read-only: one per set-up, shared)."""
     k = np.arange(size // 2 + 1) / size

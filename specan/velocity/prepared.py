@@ -53,6 +53,15 @@ class PreparedTemplate:
             self._fft[m] = (sfft.rfft(self.T, m), sfft.rfft(self.T2, m), sfft.rfft(self.V, m))
         return self._fft[m]
 
+    def ffts_single(self, m):
+        """(3, nf) :meth:`ffts` stacked, in single precision (read-only), computed once per length."""
+        key = ("single", m)
+        if key not in self._fft:
+            stacked = np.stack(self.ffts(m)).astype(np.complex64)
+            stacked.flags.writeable = False
+            self._fft[key] = stacked
+        return self._fft[key]
+
     def model_ffts(self, m):
         """(2, nf) real FFTs of length ``m`` of the unfiltered template T0 and of its coverage
         (V > 0): what the single-star model is shifted from, computed once per length."""

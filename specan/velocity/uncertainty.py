@@ -18,10 +18,10 @@ import numpy as np
 from scipy import fft as sfft
 
 from .correlation import Correlation
-from .grid import gauss_smooth, highpass, kms_per_pixel, smoothed_coverage, spline_operators, turns
+from .grid import gauss_kernel, fast_length, gauss_smooth, highpass, kms_per_pixel, smoothed_coverage, spline_operators, turns
 
 __all__ = ["TonryDavis", "VelocityErrors", "SegmentErrors", "tonry_davis", "resample_error", "estimate_errors",
-           "reported_error", "segment_errors", "zero_point_error", "content_seed", "spline_adjoint", "ErrorBudget", "error_budget"]
+           "reported_error", "segment_errors", "segment_windows", "SEGMENT_REACH", "SPLINE_REACH", "zero_point_error", "content_seed", "spline_adjoint", "ErrorBudget", "error_budget"]
 
 
 # ---------------------------------------------------------------------------
@@ -194,13 +194,130 @@ def spline_adjoint(x, grid):
 
 
 def _highpass_adjoint(y, sigma, valid):
-    """Transpose of :func:`~.grid.highpass` applied to the columns of ``y``: H = V (I - Gv^-1 G V)."""
-    v = valid.astype(float)[:, None]
+    """Transpose of :func:`~.grid.highpass` applied to ``y`` or its columns: H = V (I - Gv^-1 G V)."""
+    v = valid.astype(float)
+    v = v if y.ndim == 1 else v[:, None]
     if not sigma:
         return v * y
-    den = smoothed_coverage(valid, sigma)[:, None]
+    den = smoothed_coverage(valid, sigma)
+    den = den if y.ndim == 1 else den[:, None]
     # (single precision: an error estimate, to ~1e-6 of itself)
     return v * y - v * gauss_smooth(v * y / den, sigma, single=True)
+
+
+#: Reach (in high-pass sigmas) of the Gaussian beyond a segment that :func:`_segments_highpass_adjoint`
+#: keeps: the kernel has fallen to exp(-18) = 1.5e-8 of its peak there, below the single precision
+#: the smoothing is done in (our choice).
+SEGMENT_REACH = 6.0
+
+
+def segment_windows(starts, n, sigma):
+    """(lo, hi): the grid pixels where the high-pass adjoint of a column restricted to each segment
+    (starting at ``starts``; ``n`` pixels in all) is not zero: the segment and :data:`SEGMENT_REACH`
+    high-pass sigmas on both sides."""
+    ends = np.append(starts[1:], n)
+    reach = int(math.ceil(SEGMENT_REACH * sigma)) if sigma else 0
+    return np.maximum(starts - reach, 0), np.minimum(ends + reach, n)
+
+
+def _segments_highpass_adjoint(g, starts, sigma, valid, colour=None):
+    """(n, K) :func:`_highpass_adjoint` of the columns g 1_k (``g`` restricted to segment k, the
+    segments starting at ``starts``), each column smoothed on its own segment's window only;
+    with ``colour`` (K integers), the columns of one colour added into one, (n, max colour + 1).
+
+    A column is zero outside its segment, so its smoothed copy matters only within
+    :data:`SEGMENT_REACH` sigmas of it (:func:`segment_windows`): every segment's window goes into
+    one row of a 2-D real transform of the longest window's length (a few times shorter than the
+    spectrum's; the signal sits inside its row with that reach on both sides, so nothing wraps
+    around), instead of one transform of the whole spectrum per segment. The same numbers to
+    ~1e-7 (single precision, as :func:`_highpass_adjoint`).
+    """
+    n = g.size
+    ends = np.append(starts[1:], n)
+    colour = np.arange(starts.size) if colour is None else np.asarray(colour)
+    v = valid.astype(float)
+    vg = v * g
+    out = np.zeros((int(colour.max()) + 1, n))   # a row per colour (rows: contiguous writes), transposed at the end
+    for j, (a, b) in enumerate(zip(starts, ends)):
+        out[colour[j], a:b] = vg[a:b]
+    if not sigma:
+        return out.T
+    lo, hi = segment_windows(starts, n, sigma)
+    q = (vg / smoothed_coverage(valid, sigma)).astype(np.float32)
+    for group, size in _transform_groups(ends - starts, 2 * int(math.ceil(SEGMENT_REACH * sigma))):
+        rows = np.zeros((group.size, size), np.float32)
+        for i, j in enumerate(group):
+            rows[i, starts[j] - lo[j]:ends[j] - lo[j]] = q[starts[j]:ends[j]]
+        smooth = sfft.irfft(sfft.rfft(rows, axis=1) * _kernel32(size, float(sigma)), size, axis=1)
+        # back to the spectrum's pixels: each window's span of its row (a few segments' worth of pixels)
+        for i, j in enumerate(group):
+            out[colour[j], lo[j]:hi[j]] -= v[lo[j]:hi[j]] * smooth[i, :hi[j] - lo[j]]
+    return out.T
+
+
+#: What one more transform call costs, in transformed points (our estimate, for :func:`_transform_groups`).
+CALL_POINTS = 2000
+
+
+def _transform_groups(lengths, margin):
+    """[(segment indices, transform length)]: the segments in one or two batches of transforms, the
+    shorter ones apart where that saves more points than a call costs (:data:`CALL_POINTS`): one long
+    segment otherwise sets the length of every row (equal-information segments differ in length by
+    ten times, measured)."""
+    order = np.argsort(lengths, kind="stable")
+    sizes = [fast_length(int(lengths[j]) + margin) for j in order]
+    best, split = len(order) * sizes[-1], len(order)
+    for k in range(1, len(order)):
+        cost = k * sizes[k - 1] + (len(order) - k) * sizes[-1] + CALL_POINTS
+        if cost < best:
+            best, split = cost, k
+    groups = [(order[:split], sizes[split - 1]), (order[split:], sizes[-1])]
+    return [(g, size) for g, size in groups if g.size]
+
+
+#: Native pixels kept on each side of a segment's window when its column shares a transposed spline
+#: solve with others (:func:`segment_errors`): the cubic interpolation's inverse falls by a factor
+#: of ~0.27 a pixel (2 - sqrt 3 for cubic splines, from memory; checked in tests/test_velocity_fast_path.py),
+#: 1e-36 over this many.
+SPLINE_REACH = 64
+
+
+def _colours(lo, hi):
+    """Colours (0, 1, ...) of the windows [lo, hi) in order such that windows of one colour are
+    disjoint: each takes the first colour whose last window ended at or before its start."""
+    last_end, colour = [], []
+    for a, b in zip(lo, hi):
+        c = next((i for i, e in enumerate(last_end) if e <= a), len(last_end))
+        if c == len(last_end):
+            last_end.append(b)
+        else:
+            last_end[c] = b
+        colour.append(c)
+    return np.asarray(colour)
+
+
+@functools.lru_cache(maxsize=32)
+def _kernel32(size, sigma):
+    """:func:`~.grid.gauss_kernel` in single precision (read-only, one per set-up)."""
+    kern = gauss_kernel(size, sigma).astype(np.float32)
+    kern.flags.writeable = False
+    return kern
+    reach = int(math.ceil(SEGMENT_REACH * sigma))
+    lo, hi = np.maximum(starts - reach, 0), np.minimum(ends + reach, n)
+    size = fast_length(int(np.max(ends - starts)) + 2 * reach)
+    q = (v * g / smoothed_coverage(valid, sigma)).astype(np.float32)
+    rows = np.zeros((k, size), np.float32)
+    # row j holds its segment's values at offsets starts - lo ... ends - lo (one scatter for all)
+    pos = np.arange(n)
+    rows[seg, pos - lo[seg]] = q
+    kern = gauss_kernel(size, float(sigma)).astype(np.float32)
+    smooth = sfft.irfft(sfft.rfft(rows, axis=1) * kern, size, axis=1)
+    # back to the spectrum's pixels: each window's span of its row (a few segments' worth of pixels)
+    span = hi - lo
+    col = np.repeat(np.arange(k), span)
+    at = np.concatenate([np.arange(a, b) for a, b in zip(lo, hi)])
+    out[at, col] -= v[at] * smooth[col, at - np.repeat(lo, span)]
+    return out
 
 
 class SegmentErrors(NamedTuple):
@@ -246,39 +363,40 @@ def _offset_phases(offsets, m, nf):
     return np.exp(2j * np.pi * np.outer(np.asarray(offsets, float), np.arange(nf)) / m)
 
 
-def _shift_phases(k0, offsets, m, nf):
-    """(L, nf) exp(2 pi i f (k0 + o) / m): one angle per frequency, times the cached offset phases."""
-    return turns((2.0 * np.pi / m) * k0, nf)[None, :] * _offset_phases(tuple(offsets), m, nf)
-
-
 def _shifted_templates(search, members, m, h):
     """(T, 3, 3, n): each member template's arrays T, T^2 (weighted) and V on the data window at lags
     s0 + h, s0 and s0 - h (s0 its peak), all in one inverse transform (lag s uses template pixels
     x + pad - s)."""
     lags = search.lags
-    F = np.stack([np.stack(template.ffts(m)) for template, _, _ in members])         # (T, 3, nf)
-    ph = np.stack([_shift_phases(lags.pad - s0, (h, 0.0, -h), m, F.shape[-1]) for _, s0, _ in members])
+    F = np.stack([template.ffts_single(m) for template, _, _ in members])            # (T, 3, nf)
+    # the members' shifts in one call: exp(2 pi i f (pad - s0) / m) times the cached offset phases
+    angles = (2.0 * np.pi / m) * (lags.pad - np.array([s0 for _, s0, _ in members], float))
+    ph = turns(angles, F.shape[-1])[:, None, :] * _offset_phases((h, 0.0, -h), m, F.shape[-1])[None]
     # in single precision (half the time of the transforms): what these give is an error estimate,
     # the segments' vertices and their noise, not the velocity (refined at double precision)
-    shifted = F.astype(np.complex64)[:, :, None, :] * ph.astype(np.complex64)[:, None, :, :]
-    return sfft.irfft(shifted, m, axis=-1)[..., :lags.n]
+    shifted = F[:, :, None, :] * ph.astype(np.complex64)[:, None, :, :]
+    # returned as doubles (exact), contiguous: every product with the data's double arrays would
+    # otherwise convert them again (mixed-precision products took twice the time, measured)
+    return np.array(sfft.irfft(shifted, m, axis=-1)[..., :lags.n], dtype=np.float64)
 
 
-def _template_segments(search, shifted, starts, h):
-    """(offsets, good, segment gradients, whole gradients) of the member templates' segment velocities
+def _template_segments(search, shifted, starts, h, weights):
+    """(offsets, good, segment gradient, whole gradient) of the member templates' segment velocities
     about their peaks, from their :func:`_shifted_templates`.
 
     ``offsets`` and ``good`` (T, K + 1: the segments, then the whole) are vertex offsets in pixels;
-    the gradients (T, n) are their derivatives with respect to the data on the grid: at each pixel,
-    that of its own segment's vertex (the others' are zero there), and that of the whole's.
+    the gradients (n) are the derivatives of the ``weights``-weighted mean of the templates'
+    vertices with respect to the data on the grid: at each pixel, that of its own segment's vertex
+    (the others' are zero there), and that of the whole's.
     """
     n = search.lags.n
     a1, a2, a3 = search.side.arrays
     w = search.side.weight
     bT, bT2, bV = shifted[:, 0], shifted[:, 1], shifted[:, 2]                         # each (T, 3 lags, n)
 
-    def sums(x):  # (T, 3 lags, n) -> (T, 3 lags, segments + whole)
-        return np.concatenate([np.add.reduceat(x, starts, axis=-1), np.sum(x, axis=-1, keepdims=True)], axis=-1)
+    def sums(x):  # (T, 3 lags, n) -> (T, 3 lags, segments + whole); the segments cover the spectrum
+        seg = np.add.reduceat(x, starts, axis=-1)
+        return np.concatenate([seg, np.sum(seg, axis=-1, keepdims=True)], axis=-1)
 
     rows = (sums(a1 * bT), sums(a2 * bT), sums(a2 * bT2), sums(a1 * bV), sums(a3 * bV), sums(a2 * bV))
     c, _ = Correlation.combine(rows)                                  # (T, 3 lags, K + 1)
@@ -295,15 +413,45 @@ def _template_segments(search, shifted, starts, h):
     energy = np.clip(rows[2] - rows[1] ** 2 / c2v, 1e-300, None)
     data_energy = np.clip(rows[4][:, 1] - rows[3][:, 1] ** 2 / c2v[:, 1], 1e-300, None)
     # per template and segment (T, K + 1): gradient = w (a+ T(+h) - b+ V(+h) - a- T(-h) + b- V(-h)),
-    # the coefficients made per segment and only then spread over its pixels
+    # the coefficients made per segment (the templates' weights in them) and only then spread over
+    # its pixels, the templates summed in the same product
     scale = np.where(good, -1.0 / (2.0 * h * np.where(good, curv, -1.0) * np.sqrt(data_energy)), 0.0)
+    scale = scale * np.asarray(weights, float)[:, None]
     a_plus, a_minus = scale / np.sqrt(energy[:, 2]), scale / np.sqrt(energy[:, 0])
-    coef = np.stack([a_plus, mu[:, 2] * a_plus, a_minus, mu[:, 0] * a_minus])      # (4, T, K + 1)
+    coef = np.stack([a_plus, -mu[:, 2] * a_plus, -a_minus, mu[:, 0] * a_minus], axis=1)   # (T, 4, K + 1)
+    arrays = shifted[:, (0, 2, 0, 2), (2, 2, 0, 0)]                   # T(+h), V(+h), T(-h), V(-h): (T, 4, n)
     k = starts.size
     lengths = np.diff(np.append(starts, n))
-    seg, whole = np.repeat(coef[..., :k], lengths, axis=-1), coef[..., k:]         # (4, T, n), (4, T, 1)
-    grads = [w * (bT[:, 2] * c[0] - bV[:, 2] * c[1] - bT[:, 0] * c[2] + bV[:, 0] * c[3]) for c in (seg, whole)]
-    return offsets, good, grads[0], grads[1]
+    g_seg = w * np.einsum("tan,tan->n", arrays, np.repeat(coef[..., :k], lengths, axis=-1))
+    g_whole = w * np.einsum("tan,ta->n", arrays, coef[..., k])
+    return offsets, good, g_seg, g_whole
+
+
+def _propagated_sigmas(observed, g_seg, g_whole, starts, hp_sigma):
+    """(K + 1) noise sigmas of linear functions of the grid's data: gradient ``g_seg`` restricted to
+    each segment (starting at ``starts``), then ``g_whole``, propagated back through the high-pass
+    filter and the spline to the native pixels' errors.
+
+    Each segment's vertex depends on its own pixels only, the whole's on all. The segments' columns
+    go through the transposed spline solve packed: those whose native windows (the high-pass
+    window and :data:`SPLINE_REACH` pixels) do not overlap share a column (a colour), and each
+    segment's error is summed over its own window (5-6 columns for 10 segments instead of 10,
+    measured; what leaks between segments of one colour is below 1e-36 of them).
+    """
+    lo, hi = segment_windows(starts, g_seg.size, hp_sigma)
+    x = observed.spline_x
+    nlo = np.maximum(np.searchsorted(x, observed.grid[lo]) - SPLINE_REACH, 0)
+    nhi = np.minimum(np.searchsorted(x, observed.grid[hi - 1], side="right") + SPLINE_REACH, x.size)
+    colour = _colours(nlo, nhi)
+    u = np.concatenate([_segments_highpass_adjoint(g_seg, starts, hp_sigma, observed.valid, colour),
+                        _highpass_adjoint(g_whole, hp_sigma, observed.valid)[:, None]], axis=1)
+    z = spline_adjoint(x, observed.grid)(u)          # (native pixels, colours + 1)
+    sz = observed.native_sigma[:, None] * z
+    sig = np.empty(starts.size + 1)
+    for j, (a, b, c) in enumerate(zip(nlo, nhi, colour)):
+        sig[j] = math.sqrt(float(np.sum(sz[a:b, c] ** 2)))
+    sig[-1] = math.sqrt(float(np.sum(sz[:, -1] ** 2)))
+    return sig
 
 
 def segment_errors(observed, search, members, m, resels):
@@ -325,26 +473,19 @@ def segment_errors(observed, search, members, m, resels):
     n = lags.n
     h = 0.5
     shifted = _shifted_templates(search, members, m, h)
-    slope = shifted[0, 0, 0] - shifted[0, 0, 2]     # the best template at s0 + h minus at s0 - h
+    # the best template at s0 + h minus at s0 - h (a difference of the single-precision transforms'
+    # values, in single precision as they came)
+    slope = shifted[0, 0, 0].astype(np.float32) - shifted[0, 0, 2].astype(np.float32)
     starts = _segments(search.side.weight * slope ** 2, int(np.clip(resels // 25, 2, 10)), n / max(resels, 1.0))
     total_w = sum(wt for _, _, wt in members)
     mean_lag = sum(wt * s0 for _, s0, wt in members) / total_w
     offsets = np.zeros(starts.size + 1)
     good = np.ones(starts.size + 1, bool)
-    g_seg, g_whole = np.zeros(n), np.zeros(n)
-    off, ok, gs, gw = _template_segments(search, shifted, starts, h)
+    off, ok, g_seg, g_whole = _template_segments(search, shifted, starts, h, [wt / total_w for _, _, wt in members])
     for i, (_, s0, wt) in enumerate(members):
         offsets += wt / total_w * (s0 + np.where(ok[i], off[i], 0.0) - mean_lag)
         good &= ok[i]
-        g_seg += wt / total_w * gs[i]
-        g_whole += wt / total_w * gw[i]
-    # (n, K + 1): each segment's vertex depends on its own pixels only, the whole's on all
-    grads = np.zeros((n, starts.size + 1))
-    grads[np.arange(n), np.repeat(np.arange(starts.size), np.diff(np.append(starts, n)))] = g_seg
-    grads[:, -1] = g_whole
-    u = _highpass_adjoint(grads, lags.hp_sigma, observed.valid)
-    z = spline_adjoint(observed.spline_x, observed.grid)(u)          # (native pixels, K + 1)
-    sig = np.sqrt(np.sum((observed.native_sigma[:, None] * z) ** 2, axis=0))
+    sig = _propagated_sigmas(observed, g_seg, g_whole, starts, lags.hp_sigma)
     seg_off, seg_sig = np.where(good, offsets, np.nan)[:-1], sig[:-1]
     use = good[:-1] & (seg_sig > 0)
     birge = float("nan")
