@@ -412,6 +412,12 @@ def _template_segments(search, shifted, starts, h, weights):
     mu = rows[1] / c2v
     energy = np.clip(rows[2] - rows[1] ** 2 / c2v, 1e-300, None)
     data_energy = np.clip(rows[4][:, 1] - rows[3][:, 1] ** 2 / c2v[:, 1], 1e-300, None)
+    # a segment where the template (e.g. a line mask) or the data carry no signal has no velocity of
+    # its own: its vertex is 0/0 and its gradient ~1/sqrt(1e-300), which overflowed the single-precision
+    # adjoint (measured: a G2 V line mask on the Kurucz Sun); such segments are not good
+    tiny = 1e-12
+    good &= ((energy[:, 0] > tiny * energy[:, 0, -1:]) & (energy[:, 2] > tiny * energy[:, 2, -1:])
+             & (data_energy > tiny * data_energy[:, -1:]))
     # per template and segment (T, K + 1): gradient = w (a+ T(+h) - b+ V(+h) - a- T(-h) + b- V(-h)),
     # the coefficients made per segment (the templates' weights in them) and only then spread over
     # its pixels, the templates summed in the same product
