@@ -139,7 +139,7 @@ def fitting_work(cases):
 
     counts = dict.fromkeys(("voigt problems", "voigt batch iterations", "voigt fits one by one",
                             "gauss problems"), 0)
-    real = batchfit.voigt_batch, batchfit._VoigtModel.__call__, batchfit.fit_profile, batchfit.gauss_batch
+    real = batchfit.voigt_batch, batchfit._VoigtModel.__call__, batchfit.fit_profile_lean, batchfit.gauss_batch
 
     def counted(name, func, size=None):
         def call(*args, **kwargs):
@@ -149,7 +149,7 @@ def fitting_work(cases):
 
     batchfit.voigt_batch = counted("voigt problems", real[0], 1)
     batchfit._VoigtModel.__call__ = counted("voigt batch iterations", real[1])
-    batchfit.fit_profile = counted("voigt fits one by one", real[2])
+    batchfit.fit_profile_lean = counted("voigt fits one by one", real[2])
     batchfit.gauss_batch = counted("gauss problems", real[3], 1)
     from specan.lines import measurement
     held = measurement.voigt_batch
@@ -158,7 +158,7 @@ def fitting_work(cases):
         for spec, known in cases:
             lines.measure(spec, **known)
     finally:
-        batchfit.voigt_batch, batchfit._VoigtModel.__call__, batchfit.fit_profile, batchfit.gauss_batch = real
+        batchfit.voigt_batch, batchfit._VoigtModel.__call__, batchfit.fit_profile_lean, batchfit.gauss_batch = real
         measurement.voigt_batch = held
     n = len(cases)
     print("  fitting work per spectrum: " + "; ".join(f"{name} {value / n:.1f}" for name, value in counts.items()))

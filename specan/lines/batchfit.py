@@ -23,7 +23,8 @@ its arithmetic (scipy's ``least_squares`` alone spent ~2.7 ms a Voigt fit, measu
   integral (:func:`_direct_starts`). Where the optimum is well determined it converges to
   the one ``least_squares`` finds, more tightly than that one stops (its ``ftol`` of 1e-6);
   where it is not (flat valleys where the equivalent width is below its own error) the
-  one-by-one fit is made and reported. Both are measured in ``tests/test_lines_batched.py``.
+  one-by-one fit is made and reported (by :func:`.profiles.fit_profile_lean`: scipy's algorithm
+  without scipy's overhead, :mod:`.leastsq`). Both are measured in ``tests/test_lines_batched.py``.
 """
 
 from __future__ import annotations
@@ -34,7 +35,7 @@ from scipy.special import voigt_profile
 from ..resolution import GAUSS_FWHM
 from .profiles import (
     best_grid_point,
-    fit_profile,
+    fit_profile_lean,
     fit_summary,
     start_and_bounds,
     voigt_and_derivatives,
@@ -60,7 +61,7 @@ COST_TOL = 1e-12
 #: 40 spectra of ``benchmarks/bench_lines.py``, measured, 11 before the bound-crossing steps were
 #: solved again; mostly hydrogen lines whose equivalent
 #: width and damping width trade along a long curved valley) is fitted on its own by
-#: :func:`specan.lines.profiles.fit_profile`, the one-by-one path.
+#: :func:`specan.lines.profiles.fit_profile_lean`, the one-by-one path's algorithm.
 MAX_ITER = 40
 #: the signs of the Jacobian's shift, sigma and gamma columns against the weighted sums of the
 #: profile's derivatives (the model is ``cont (1 - sum W V)``: d/dshift = -d/dx)
@@ -247,7 +248,8 @@ def voigt_batch(data, problems, max_iter=MAX_ITER, decrement=DECREMENT, cost_tol
         ``(lo, hi, cont, centres, max_shift, sig_inst, sign, skip, free_width)`` as
         :func:`fit_profile` takes them.
     max_iter : int
-        Most iterations; a problem not converged by then is fitted by :func:`fit_profile`.
+        Most iterations; a problem not converged by then is fitted by
+        :func:`~specan.lines.profiles.fit_profile_lean` (the one-by-one fit, the same iterates).
     decrement, cost_tol : float
         Convergence: a full Gauss-Newton step would lower the cost by less than ``decrement``
         or than ``cost_tol`` times the cost.
@@ -377,7 +379,7 @@ def voigt_batch(data, problems, max_iter=MAX_ITER, decrement=DECREMENT, cost_tol
         if not converged[row]:
             if finite[row]:
                 lo, hi, cnt, cen, max_shift, sig_inst, sign, skip, free_width = problems[k]
-                out[k] = fit_profile(data, lo, hi, cnt, cen, "voigt", max_shift, sig_inst, sign, skip, free_width)
+                out[k] = fit_profile_lean(data, lo, hi, cnt, cen, "voigt", max_shift, sig_inst, sign, skip, free_width)
             continue
         n = 3 + ncomp[row]
         if row in covs:
@@ -397,7 +399,7 @@ def voigt_batch(data, problems, max_iter=MAX_ITER, decrement=DECREMENT, cost_tol
             # +- 3e5 A, FWHM 43 against 15 A at about the same chi2: measured), so the one-by-one
             # fit is made and reported, as the one-by-one path reports it
             lo, hi, cnt, cen, max_shift, sig_inst, sign, skip, free_width = problems[k]
-            slow = fit_profile(data, lo, hi, cnt, cen, "voigt", max_shift, sig_inst, sign, skip, free_width)
+            slow = fit_profile_lean(data, lo, hi, cnt, cen, "voigt", max_shift, sig_inst, sign, skip, free_width)
             if slow is not None:
                 out[k] = slow
     return out
