@@ -306,79 +306,88 @@ def voigt_batch(data, problems, max_iter=MAX_ITER, decrement=DECREMENT, cost_tol
     near_lo, near_hi = LB + 1e-12 * span, UB - 1e-12 * span
     lam, nu = np.full(act.size, 1e-3), np.full(act.size, 2.0)
     work = model.rows(act)
-    for it in range(max_iter):
-        if not act.size:
-            break
-        grad = (R[:, None, :] @ J)[:, 0]
-        jtj = J.transpose(0, 2, 1) @ J
-        if act.size <= TAIL_SIZE and it >= TAIL_START and _all_ill_determined(P, jtj):
-            # the batch's tail: the few problems left are ill-determined where they are, and an
-            # ill-determined fit is reported from the one-by-one algorithm anyway (below); left
-            # unconverged, they go to it now instead of iterating on alone
-            break
-        # on a bound with the gradient pushing outward: held there this step
-        held = ~REAL | ((P <= near_lo) & (grad > 0)) | ((P >= near_hi) & (grad < 0))
-        diag = jtj.diagonal(axis1=1, axis2=2)
-        # Marquardt's scaling by the curvature of each parameter (floored: a flat direction)
-        diag = np.maximum(diag, 1e-12 * diag.max(axis=1, keepdims=True) + 1e-300)
-        free = ~held
-        keep = free[:, :, None] & free[:, None, :]
-        held_eye = held[:, :, None] * eye
-        diag_eye = diag[:, :, None] * eye
-        rhs = np.where(held, 0.0, -grad)
-        # the Gauss-Newton decrement (the cost a full undamped step would remove): ~0 only
-        # at an optimum, whatever the damping, so it is what tells convergence
-        gn = _solve(np.where(keep, jtj + 1e-12 * diag_eye, 0.0) + held_eye, rhs)
-        small = 0.5 * (rhs * gn).sum(axis=1) <= np.maximum(decrement, cost_tol * C)
-        # stop: at the optimum (the decrement a negligible fraction of the cost), or the damping
-        # has grown so large that no step lowers the cost; before the step, whose model
-        # evaluation a converged problem does not need
-        stop = small | (lam > 1e12)
-        if stop.any():
-            rows = act[stop]
-            p[rows], jac[rows], cost[rows] = P[stop], J[stop], C[stop]
-            converged[rows] = small[stop]
-            go = ~stop
-            act = act[go]
+    # (a tiny predicted decrease overflows rho, which is clipped to [0, 1] below)
+    with np.errstate(over="ignore"):
+        for it in range(max_iter):
             if not act.size:
                 break
-            P, R, J, C, LB, UB, REAL = P[go], R[go], J[go], C[go], LB[go], UB[go], REAL[go]
-            near_lo, near_hi, lam, nu = near_lo[go], near_hi[go], lam[go], nu[go]
-            grad, jtj, held, keep, held_eye, diag_eye, rhs = (grad[go], jtj[go], held[go], keep[go], held_eye[go],
-                                                              diag_eye[go], rhs[go])
-            work = model.rows(act)
-        step = _solve(np.where(keep, jtj + lam[:, None, None] * diag_eye, 0.0) + held_eye, rhs)
-        # a step that would cross bounds: those parameters go to their bound and the others are
-        # solved again with them held there. Clipping the step alone spoils it (its predicted
-        # decrease can turn negative, and the damping then grows over several failed steps): with
-        # it the batch took ~12 iterations a fit, with this ~8, and left 6 of 502 unconverged
-        # instead of 11 (benchmarks/bench_lines.py's spectra, measured)
-        cross = (P + step < LB) | (P + step > UB)
-        if cross.any():
-            to_bound = np.where(cross, np.minimum(np.maximum(P + step, LB), UB) - P, 0.0)
-            held2 = held | cross
-            free2 = ~held2
-            rhs2 = np.where(held2, 0.0, -grad - (jtj @ to_bound[:, :, None])[:, :, 0])
-            step2 = _solve(np.where(free2[:, :, None] & free2[:, None, :], jtj + lam[:, None, None] * diag_eye, 0.0)
-                           + held2[:, :, None] * eye, rhs2)
-            step = np.where(cross.any(axis=1)[:, None], step2 + to_bound, step)
-        pn = np.minimum(np.maximum(P + step, LB), UB)
-        st = pn - P
-        predicted = -(grad * st).sum(axis=1) - 0.5 * np.einsum("bn,bnm,bm->b", st, jtj, st)
-        rn, jn = work(pn)
-        cn = 0.5 * (rn * rn).sum(axis=1)
-        better = np.isfinite(cn) & (cn < C)
-        # Nielsen's (1999) damping update: by how well the linearised model predicted the
-        # decrease (rho), gently; doubling factors after failures (from memory)
-        with np.errstate(over="ignore"):   # a tiny predicted decrease: rho is clipped to [0, 1] below
+            grad = (R[:, None, :] @ J)[:, 0]
+            jtj = J.transpose(0, 2, 1) @ J
+            if act.size <= TAIL_SIZE and it >= TAIL_START and _all_ill_determined(P, jtj):
+                # the batch's tail: the few problems left are ill-determined where they are, and an
+                # ill-determined fit is reported from the one-by-one algorithm anyway (below); left
+                # unconverged, they go to it now instead of iterating on alone
+                break
+            # on a bound with the gradient pushing outward: held there this step
+            held = ~REAL | ((P <= near_lo) & (grad > 0)) | ((P >= near_hi) & (grad < 0))
+            diag = jtj.diagonal(axis1=1, axis2=2)
+            # Marquardt's scaling by the curvature of each parameter (floored: a flat direction)
+            diag = np.maximum(diag, 1e-12 * diag.max(axis=1, keepdims=True) + 1e-300)
+            free = ~held
+            keep = free[:, :, None] & free[:, None, :]
+            held_eye = held[:, :, None] * eye
+            diag_eye = diag[:, :, None] * eye
+            rhs = np.where(held, 0.0, -grad)
+            # the Gauss-Newton step (its decrement, the cost a full undamped step would remove, is
+            # ~0 only at an optimum, whatever the damping, so it is what tells convergence) and the
+            # damped step, both systems solved in one call
+            gn, step = _solve_pair(keep, jtj, diag_eye, held_eye, rhs, lam)
+            small = 0.5 * (rhs * gn).sum(axis=1) <= np.maximum(decrement, cost_tol * C)
+            # stop: at the optimum (the decrement a negligible fraction of the cost), or the damping
+            # has grown so large that no step lowers the cost; before the step, whose model
+            # evaluation a converged problem does not need
+            stop = small | (lam > 1e12)
+            if stop.any():
+                rows = act[stop]
+                p[rows], jac[rows], cost[rows] = P[stop], J[stop], C[stop]
+                converged[rows] = small[stop]
+                go = ~stop
+                act = act[go]
+                if not act.size:
+                    break
+                P, R, J, C, LB, UB, REAL = P[go], R[go], J[go], C[go], LB[go], UB[go], REAL[go]
+                near_lo, near_hi, lam, nu = near_lo[go], near_hi[go], lam[go], nu[go]
+                grad, jtj, held, keep, held_eye, diag_eye, rhs, step = (
+                    grad[go], jtj[go], held[go], keep[go], held_eye[go], diag_eye[go], rhs[go],
+                    step[go] if step is not None else None)
+                work = model.rows(act)
+            if step is None:   # (a singular system: solved again alone, as before the pairing)
+                step = _solve(np.where(keep, jtj + lam[:, None, None] * diag_eye, 0.0) + held_eye, rhs)
+            # a step that would cross bounds: those parameters go to their bound and the others are
+            # solved again with them held there. Clipping the step alone spoils it (its predicted
+            # decrease can turn negative, and the damping then grows over several failed steps): with
+            # it the batch took ~12 iterations a fit, with this ~8, and left 6 of 502 unconverged
+            # instead of 11 (benchmarks/bench_lines.py's spectra, measured)
+            to = P + step
+            cross = (to < LB) | (to > UB)
+            if cross.any():
+                to_bound = np.where(cross, np.minimum(np.maximum(to, LB), UB) - P, 0.0)
+                held2 = held | cross
+                free2 = ~held2
+                rhs2 = np.where(held2, 0.0, -grad - (jtj @ to_bound[:, :, None])[:, :, 0])
+                step2 = _solve(np.where(free2[:, :, None] & free2[:, None, :], jtj + lam[:, None, None] * diag_eye,
+                                        0.0) + held2[:, :, None] * eye, rhs2)
+                step = np.where(cross.any(axis=1)[:, None], step2 + to_bound, step)
+                to = P + step
+            pn = np.minimum(np.maximum(to, LB), UB)
+            st = pn - P
+            predicted = -(grad * st).sum(axis=1) - 0.5 * np.einsum("bn,bnm,bm->b", st, jtj, st)
+            rn, jn = work(pn)
+            cn = 0.5 * (rn * rn).sum(axis=1)
+            better = np.isfinite(cn) & (cn < C)
+            # Nielsen's (1999) damping update: by how well the linearised model predicted the
+            # decrease (rho), gently; doubling factors after failures (from memory)
             rho = (C - cn) / np.maximum(predicted, 1e-300)
-        lam = np.maximum(np.where(better, lam * np.maximum(1.0 / 3.0, 1.0 - (2.0 * np.clip(rho, 0, 1) - 1.0) ** 3),
-                                  lam * nu), 1e-15)
-        nu = np.where(better, 2.0, 2.0 * nu)
-        P = np.where(better[:, None], pn, P)
-        R = np.where(better[:, None], rn, R)
-        J = np.where(better[:, None, None], jn, J)
-        C = np.where(better, cn, C)
+            lam = np.maximum(np.where(better, lam * np.maximum(1.0 / 3.0, 1.0 - (2.0 * np.clip(rho, 0, 1) - 1.0) ** 3),
+                                      lam * nu), 1e-15)
+            nu = np.where(better, 2.0, 2.0 * nu)
+            if better.all():
+                P, R, J, C = pn, rn, jn, cn
+            else:
+                P = np.where(better[:, None], pn, P)
+                R = np.where(better[:, None], rn, R)
+                J = np.where(better[:, None, None], jn, J)
+                C = np.where(better, cn, C)
     # the covariances of all converged problems in one call: a padded parameter's Jacobian column
     # is zero, so its row and column of the normal matrix are too, and the pseudo-inverse of the
     # rest is that of the problem's own block (to rounding)
@@ -464,6 +473,22 @@ def _direct_starts(data, problems, live, x, y, cont, wts, ncomp, p, lb, ub):
         p[rows, col] = np.clip(value, lb[rows, col] + 1e-6 * span[:, col], ub[rows, col] - 1e-6 * span[:, col])
 
 
+def _solve_pair(keep, jtj, diag_eye, held_eye, rhs, lam):
+    """The undamped (1e-12) and damped (``lam``) systems of every problem in one solve: ``(gn, step)``.
+
+    np.linalg.solve solves each matrix of a stack on its own, so these are the values of two
+    separate calls; where one system is singular, ``step`` is None (then solved alone by
+    :func:`_solve`, for the problems that go on) and ``gn`` comes from :func:`_solve`, as before.
+    """
+    coef = np.stack((np.full(lam.size, 1e-12), lam))[:, :, None, None]
+    both = np.where(keep, jtj + coef * diag_eye, 0.0) + held_eye
+    try:
+        sol = np.linalg.solve(both, rhs[..., None])[..., 0]
+    except np.linalg.LinAlgError:
+        return _solve(both[0], rhs), None
+    return sol[0], sol[1]
+
+
 def _solve(m, rhs):
     """Solutions of the stacked systems ``m x = rhs`` (least squares where one is singular)."""
     try:
@@ -490,12 +515,20 @@ class _VoigtModel:
     def __init__(self, x, y, cont, wts, centres, components):
         self.x, self.y, self.cont, self.wts, self.centres = x, y, cont, wts, centres
         self.components = components
-        self.where = components[:, :, None] & (wts > 0)[:, None, :]     # (b, C, P)
-        # points evaluated per problem: each problem's sigma and gamma repeated that often are
-        # the values at the evaluated points, in their order (np.broadcast_to cost more)
-        self.count = self.where.sum(axis=(1, 2))
+        where = components[:, :, None] & (wts > 0)[:, None, :]     # (b, C, P)
+        self.shape = where.shape
+        self.at = np.flatnonzero(where)   # the evaluated points, as flat indices
+        # each evaluated point's problem, wavelength and component centre, made once: a model
+        # evaluation then takes the points' shift, sigma and gamma from their problem's
+        # parameters (the same offsets x - (centre + shift) as on the whole grid, at those points)
+        b_at, c_at, p_at = np.unravel_index(self.at, where.shape)
+        self.problem_at, self.x_at, self.centre_at = b_at, x[b_at, p_at], centres[b_at, c_at]
+        # the model's constant factors (the continuum times the weights, with the Jacobian's signs)
         self.cw = cont * wts
-        self.at = np.flatnonzero(self.where)   # the evaluated points, as flat indices
+        self.cw_signs = self.cw[:, :, None] * _JAC_SIGNS
+        self.minus_cw = -self.cw[:, None, :]
+        # profile and derivatives at every point of the grid; those never evaluated stay zero
+        self.parts = np.zeros((4, where.size))
 
     def rows(self, rows):
         """The model of the problems ``rows`` only."""
@@ -503,19 +536,15 @@ class _VoigtModel:
                            self.components[rows])
 
     def __call__(self, p):
-        dx = self.x[:, None, :] - (self.centres[:, :, None] + p[:, 0, None, None])   # (b, C, P)
-        sig = np.repeat(p[:, 1], self.count)
-        gam = np.repeat(p[:, 2], self.count)
+        q = p[self.problem_at, :3]
+        dx = self.x_at - (self.centre_at + q[:, 0])
         # profile and its three derivatives in one array (4, b, C, P) and their sums over the
         # components weighted by the equivalent widths in one call: a model evaluation is a
         # dozen numpy calls on small arrays, their count (not the arithmetic) its cost
-        parts = np.zeros((4, dx.size))
-        voigt_and_derivatives(dx.take(self.at), sig, gam, out=parts, at=self.at)
-        parts = parts.reshape((4,) + dx.shape)
+        parts = voigt_and_derivatives(dx, q[:, 1], q[:, 2], out=self.parts, at=self.at).reshape((4,) + self.shape)
         sums = np.einsum("bc,kbcp->bpk", p[:, 3:], parts)
-        cw = self.cw
         r = (self.cont * (1.0 - sums[:, :, 0]) - self.y) * self.wts
-        jac = np.empty((p.shape[0], dx.shape[2], p.shape[1]))
-        jac[:, :, :3] = sums[:, :, 1:] * (cw[:, :, None] * _JAC_SIGNS)
-        jac[:, :, 3:] = (parts[0] * -cw[:, None, :]).transpose(0, 2, 1)
+        jac = np.empty((p.shape[0], self.shape[2], p.shape[1]))
+        jac[:, :, :3] = sums[:, :, 1:] * self.cw_signs
+        jac[:, :, 3:] = (parts[0] * self.minus_cw).transpose(0, 2, 1)
         return r, jac
