@@ -406,3 +406,26 @@ def test_lean_trust_region_fit_equals_scipys():
             assert slow == lean, (name, slow, lean)
             compared += 1
     assert compared > 200
+
+
+def test_half_widths_equal_one_by_one():
+    # half_widths (every window's half-depth crossings at once) against half_width, on windows of
+    # every size around every pixel of a demo spectrum, absorption and emission, with masked
+    # (NaN) pixels: the same values to the bit
+    from specan.lines.data import LineData
+    from specan.lines.measurement import half_width, half_widths
+
+    truth = Table.read(DEMO / "truth.ecsv", format="ascii.ecsv")
+    data = LineData(prepare(read(DEMO / truth[~truth["broken"]]["file"][0])))
+    rng = np.random.default_rng(9)
+    n = data.wave.size
+    ic = rng.integers(0, n, 3000)
+    lo = np.maximum(ic - rng.integers(0, 40, ic.size), 0)
+    hi = np.minimum(ic + rng.integers(0, 40, ic.size), n - 1)
+    sign = np.where(rng.uniform(size=ic.size) < 0.2, -1.0, 1.0)
+    for flux in (data.flux, np.where(rng.uniform(size=n) < 0.05, np.nan, data.flux)):
+        data.flux = flux
+        many = half_widths(data, ic, lo, hi, sign)
+        one = np.array([half_width(data, *args) for args in zip(ic, lo, hi, sign)])
+        assert np.array_equal(one, many, equal_nan=True)
+        assert np.isfinite(one).sum() > 300
