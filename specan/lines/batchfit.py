@@ -313,7 +313,7 @@ def voigt_batch(data, problems, max_iter=MAX_ITER, decrement=DECREMENT, cost_tol
                 break
             grad = (R[:, None, :] @ J)[:, 0]
             jtj = J.transpose(0, 2, 1) @ J
-            if act.size <= TAIL_SIZE and it >= TAIL_START and _all_ill_determined(P, jtj):
+            if act.size <= TAIL_SIZE and it >= TAIL_START and _all_ill_determined(P, jtj, REAL):
                 # the batch's tail: the few problems left are ill-determined where they are, and an
                 # ill-determined fit is reported from the one-by-one algorithm anyway (below); left
                 # unconverged, they go to it now instead of iterating on alone
@@ -426,11 +426,16 @@ def voigt_batch(data, problems, max_iter=MAX_ITER, decrement=DECREMENT, cost_tol
     return out
 
 
-def _all_ill_determined(p, jtj):
+def _all_ill_determined(p, jtj, real):
     """Whether every problem's equivalent width (component 0, parameter 3) is no larger than its
-    error from the normal matrix ``jtj`` at parameters ``p``: the test the converged fits get."""
+    error from the normal matrix ``jtj`` at parameters ``p`` (``real``: the problem's own
+    parameters, not padding): the test the converged fits get, from the inverse of the normal
+    matrix (a padded parameter's row and column are zero: a one on its diagonal leaves the
+    problem's own block as it is); False where a normal matrix is singular."""
+    unit = np.zeros((p.shape[0], p.shape[1], 1))
+    unit[:, 3] = 1.0
     try:
-        var = np.linalg.pinv(jtj)[:, 3, 3]
+        var = np.linalg.solve(jtj + (~real)[:, :, None] * np.eye(p.shape[1]), unit)[:, 3, 0]
     except np.linalg.LinAlgError:
         return False
     return bool(np.all(~(np.abs(p[:, 3]) > np.sqrt(np.maximum(var, 0.0)))))
@@ -480,7 +485,8 @@ def _solve_pair(keep, jtj, diag_eye, held_eye, rhs, lam):
     separate calls; where one system is singular, ``step`` is None (then solved alone by
     :func:`_solve`, for the problems that go on) and ``gn`` comes from :func:`_solve`, as before.
     """
-    coef = np.stack((np.full(lam.size, 1e-12), lam))[:, :, None, None]
+    coef = np.empty((2, lam.size, 1, 1))
+    coef[0], coef[1, :, 0, 0] = 1e-12, lam
     both = np.where(keep, jtj + coef * diag_eye, 0.0) + held_eye
     try:
         sol = np.linalg.solve(both, rhs[..., None])[..., 0]
