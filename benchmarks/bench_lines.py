@@ -134,7 +134,8 @@ def steps(cases, repeats):
 def fitting_work(cases):
     """Counts of the fitting work per spectrum, which the machine's load does not move: Voigt problems
     and the batch's model evaluations (one per iteration of a batch), the Voigt fits made one by one
-    (scipy's least_squares: a batch problem not converged, or ill-determined), the Gaussian problems."""
+    (scipy's least_squares algorithm, specan.lines.leastsq: a batch problem not converged, or
+    ill-determined), the Gaussian problems."""
     from specan.lines import batchfit
 
     counts = dict.fromkeys(("voigt problems", "voigt batch iterations", "voigt fits one by one",
