@@ -420,33 +420,40 @@ def plan_lines(data, features, targets, which, profile, starts, windows):
     # window_features: each line's features of its own kind between its window's edges
     bounds = {key: (np.searchsorted(mine, x0, "left"), np.searchsorted(mine, x1, "right"))
               for key, mine in kinds.items()}
+    # the per-line values as Python floats, read once (the same values; a loop over numpy scalars
+    # spent a quarter of the planning on them, benchmarks/bench_lines.py)
+    ew_int_l, ew_int_err_l, signif_l, depth_l = ew_int.tolist(), ew_int_err.tolist(), signif.tolist(), depth.tolist()
+    x0_l, x1_l, voigt_l, hyd_l, length_l = x0.tolist(), x1.tolist(), voigt.tolist(), hyd.tolist(), length.tolist()
+    lo_feature = {key: b[0].tolist() for key, b in bounds.items()}
+    hi_feature = {key: b[1].tolist() for key, b in bounds.items()}
     for m, i in enumerate(found):
-        fw, hydrogen = fws[m], bool(hyd[m])
+        fw, hydrogen = fws[m], hyd_l[m]
         window = wins[m]
         st = starts[i]
-        result = LineResult(wave_obs=st.centre, ew_int=float(ew_int[m]), ew_int_err=float(ew_int_err[m]),
-                            significance=float(signif[m]), depth=float(depth[m]),
-                            window_min=x0[m], window_max=x1[m], emission=st.sign < 0)
+        result = LineResult(wave_obs=st.centre, ew_int=ew_int_l[m], ew_int_err=ew_int_err_l[m],
+                            significance=signif_l[m], depth=depth_l[m],
+                            window_min=x0_l[m], window_max=x1_l[m], emission=st.sign < 0)
         if kinds:
             key = 1.0 if st.sign > 0 else -1.0
-            in_win = kinds[key][bounds[key][0][m]:bounds[key][1][m]]
+            in_win = kinds[key][lo_feature[key][m]:hi_feature[key][m]]
         else:
             in_win = np.zeros(0)
         centres = _centres(pred[companion[m]] + (st.centre - pred[i]), in_win, hydrogen, st.centre, fw)
         skip = wing_mask(data, targets, i, st.centre, window, in_win, centres) if hydrogen else None
         plans[i] = LinePlan(result, fw, hydrogen, st.ic, st.sign, st.detected, st.max_shift, window,
-                            cont[m, :length[m]], centres, skip, bool(voigt[m]), wants_fit=st.detected)
+                            cont[m, :length_l[m]], centres, skip, voigt_l[m], wants_fit=st.detected)
     return plans
 
 
 def _centres(listed, in_win, hydrogen, centre, fw):
     """:func:`~specan.lines.components.component_centres` from the line's shifted listed companions."""
-    candidates = list(listed) if hydrogen else list(listed) + list(in_win)
+    candidates = listed.tolist() if hydrogen else listed.tolist() + in_win.tolist()
     if not candidates:
         return np.array([centre])
     centres = [centre]
+    apart = MIN_SEPARATION * fw
     for c in candidates:
-        if min(abs(c - x) for x in centres) > MIN_SEPARATION * fw:
+        if min(abs(c - x) for x in centres) > apart:
             centres.append(c)
     return np.array(centres)
 
