@@ -20,6 +20,10 @@ Run the same script against another checkout for a before/after figure::
 
     OPENBLAS_NUM_THREADS=1 python benchmarks/bench_lines.py --profile --steps
     OPENBLAS_NUM_THREADS=1 PYTHONPATH=/path/to/old/checkout python benchmarks/bench_lines.py
+
+or, less moved by the machine's load, both in one process by turns (``--against``)::
+
+    OPENBLAS_NUM_THREADS=1 python benchmarks/bench_lines.py --against /path/to/old/checkout
 """
 
 import argparse
@@ -134,12 +138,13 @@ def steps(cases, repeats):
 def fitting_work(cases):
     """Counts of the fitting work per spectrum, which the machine's load does not move: Voigt problems
     and the batch's model evaluations (one per iteration of a batch), the Voigt fits made one by one
-    (scipy's least_squares: a batch problem not converged, or ill-determined), the Gaussian problems."""
+    (scipy's least_squares algorithm, specan.lines.leastsq: a batch problem not converged, or
+    ill-determined), the Gaussian problems."""
     from specan.lines import batchfit
 
     counts = dict.fromkeys(("voigt problems", "voigt batch iterations", "voigt fits one by one",
                             "gauss problems"), 0)
-    real = batchfit.voigt_batch, batchfit._VoigtModel.__call__, batchfit.fit_profile, batchfit.gauss_batch
+    real = batchfit.voigt_batch, batchfit._VoigtModel.__call__, batchfit.fit_profile_lean, batchfit.gauss_batch
 
     def counted(name, func, size=None):
         def call(*args, **kwargs):
@@ -149,7 +154,7 @@ def fitting_work(cases):
 
     batchfit.voigt_batch = counted("voigt problems", real[0], 1)
     batchfit._VoigtModel.__call__ = counted("voigt batch iterations", real[1])
-    batchfit.fit_profile = counted("voigt fits one by one", real[2])
+    batchfit.fit_profile_lean = counted("voigt fits one by one", real[2])
     batchfit.gauss_batch = counted("gauss problems", real[3], 1)
     from specan.lines import measurement
     held = measurement.voigt_batch
@@ -158,7 +163,7 @@ def fitting_work(cases):
         for spec, known in cases:
             lines.measure(spec, **known)
     finally:
-        batchfit.voigt_batch, batchfit._VoigtModel.__call__, batchfit.fit_profile, batchfit.gauss_batch = real
+        batchfit.voigt_batch, batchfit._VoigtModel.__call__, batchfit.fit_profile_lean, batchfit.gauss_batch = real
         measurement.voigt_batch = held
     n = len(cases)
     print("  fitting work per spectrum: " + "; ".join(f"{name} {value / n:.1f}" for name, value in counts.items()))
@@ -185,6 +190,58 @@ def hot_spots(cases, top):
         print(f"    {1e3 * tt / n:6.2f} {1e3 * ct / n:7.2f} {nc / n:8.1f}  {name}")
 
 
+def other_checkout(path):
+    """The ``specan`` package of another checkout, imported under another name (``specan_other``),
+    so that both can be timed in one process; None when it cannot be imported."""
+    import importlib
+    import shutil
+
+    src = Path(path) / "specan"
+    if not (src / "__init__.py").is_file():
+        return None
+    # a copy under another name: the package imports its own modules relatively
+    where = Path(tempfile.mkdtemp(prefix="specan-other-"))
+    shutil.copytree(src, where / "specan_other", ignore=shutil.ignore_patterns("__pycache__"))
+    sys.path.insert(0, str(where))
+    return importlib.import_module("specan_other")
+
+
+def alternated(cases, other, rounds, block=5):
+    """CPU ms per spectrum of ``measure`` here and in ``other`` (:func:`other_checkout`), the two run
+    by turns on blocks of ``block`` spectra in one process: the machine's load, which moves the CPU
+    time of a process by +-20% from one minute to the next, then weighs on both alike."""
+    import copy
+    import importlib
+
+    other_lines = importlib.import_module(other.__name__ + ".lines")
+    other_info = importlib.import_module(other.__name__ + ".obsinfo").ObsInfo
+    theirs = []
+    for spec, known in cases:
+        # the other package's own carrier of the metadata (it checks for its own class)
+        twin = copy.copy(spec)
+        twin.meta = dict(spec.meta)
+        info = other_info()
+        info.__dict__.update(vars(spec.meta["specan"]))
+        twin.meta["specan"] = info
+        theirs.append((twin, known))
+    for (spec, known), (twin, _) in zip(cases, theirs):   # imports, caches
+        lines.measure(spec, **known)
+        other_lines.measure(twin, **known)
+    here = there = 0.0
+    for _ in range(rounds):
+        for start in range(0, len(cases), block):
+            c = time.process_time()
+            for spec, known in cases[start:start + block]:
+                lines.measure(spec, **known)
+            here += time.process_time() - c
+            c = time.process_time()
+            for twin, known in theirs[start:start + block]:
+                other_lines.measure(twin, **known)
+            there += time.process_time() - c
+    n = rounds * len(cases)
+    return 1e3 * here / n, 1e3 * there / n
+
+
 def main(argv=None):
     parser = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     parser.add_argument("--count", type=int, default=40, help="pipeline spectra (at most 40 distinct)")
@@ -194,6 +251,8 @@ def main(argv=None):
     parser.add_argument("--steps", action="store_true", help="CPU ms per spectrum of each step of measure")
     parser.add_argument("--work", action="store_true", help="counts of the fitting work per spectrum")
     parser.add_argument("--workdir", type=Path, default=None)
+    parser.add_argument("--against", type=Path, default=None, metavar="CHECKOUT",
+                        help="also time another checkout's measure, by turns with this one in one process")
     args = parser.parse_args(argv)
     work = args.workdir or Path(tempfile.mkdtemp(prefix="specan-bench-lines-"))
     has_switch = "_batched" in inspect.signature(lines.measure).parameters
@@ -213,6 +272,14 @@ def main(argv=None):
         if name == "pipeline":
             # issue 12's target for the lines stage of a night run
             print(f"# lines stage {fast:.1f} ms per spectrum against <= 15 ms: {'met' if fast <= 15.0 else 'not met'}")
+        if args.against is not None:
+            other = other_checkout(args.against)
+            if other is None:
+                print(f"  no specan package in {args.against}")
+            else:
+                here, there = alternated(cases, other, args.repeats)
+                print(f"  alternated in one process (load average {os.getloadavg()[0]:.1f}): CPU {here:.1f} ms per "
+                      f"spectrum here, {there:.1f} in {args.against} ({there / here:.2f}x)")
         if args.work:
             fitting_work(cases)
         if args.steps:

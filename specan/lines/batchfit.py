@@ -23,7 +23,8 @@ its arithmetic (scipy's ``least_squares`` alone spent ~2.7 ms a Voigt fit, measu
   integral (:func:`_direct_starts`). Where the optimum is well determined it converges to
   the one ``least_squares`` finds, more tightly than that one stops (its ``ftol`` of 1e-6);
   where it is not (flat valleys where the equivalent width is below its own error) the
-  one-by-one fit is made and reported. Both are measured in ``tests/test_lines_batched.py``.
+  one-by-one fit is made and reported (by :func:`.profiles.fit_profile_lean`: scipy's algorithm
+  without scipy's overhead, :mod:`.leastsq`). Both are measured in ``tests/test_lines_batched.py``.
 """
 
 from __future__ import annotations
@@ -34,7 +35,7 @@ from scipy.special import voigt_profile
 from ..resolution import GAUSS_FWHM
 from .profiles import (
     best_grid_point,
-    fit_profile,
+    fit_profile_lean,
     fit_summary,
     start_and_bounds,
     voigt_and_derivatives,
@@ -60,8 +61,25 @@ COST_TOL = 1e-12
 #: 40 spectra of ``benchmarks/bench_lines.py``, measured, 11 before the bound-crossing steps were
 #: solved again; mostly hydrogen lines whose equivalent
 #: width and damping width trade along a long curved valley) is fitted on its own by
-#: :func:`specan.lines.profiles.fit_profile`, the one-by-one path.
+#: :func:`specan.lines.profiles.fit_profile_lean`, the one-by-one path's algorithm.
 MAX_ITER = 40
+#: The batch's tail: once no more than ``TAIL_SIZE`` problems are left after ``TAIL_START``
+#: iterations, and each is ill-determined where it stands, they are left to the one-by-one fit.
+#: On the 40 spectra of ``benchmarks/bench_lines.py`` two thirds of the batch's model evaluations
+#: carried one or two problems, all of them hydrogen fits with a free width, a fifth of the
+#: iterations only problems that ended ill-determined or unconverged (measured). With the tail
+#: left to the one-by-one fit: 30.6 -> 24.8 batch iterations a spectrum, 0.85 -> 0.9 fits one by
+#: one; a problem left that would have converged determined gets the one-by-one fit, which is the
+#: reference the batch is tested against (the 40 spectra: 2 moved, by at most 0.002 of an error).
+TAIL_SIZE = 2
+TAIL_START = 6
+#: The damping every problem starts with (relative to the curvature of each parameter). Batch
+#: iterations a spectrum on ``benchmarks/bench_lines.py``'s sets (pipeline / dense), measured:
+#: 1e-4: 26.4 / -, 1e-3: 24.8 / 55, 1e-2: 23.2 / 52, 0.1: 21.4 / 51, 0.3: 23.4 / 46, 1: 25.9 / -,
+#: 10: 30.5 / -. Not taken: from another damping the free-width hydrogen fits stop elsewhere in
+#: their long valleys, and through the division by them every line moves (with 0.1, all 40
+#: spectra, equivalent widths by up to 0.048 of their error, FWHM by up to 1%: measured).
+LAMBDA0 = 1e-3
 #: the signs of the Jacobian's shift, sigma and gamma columns against the weighted sums of the
 #: profile's derivatives (the model is ``cont (1 - sum W V)``: d/dshift = -d/dx)
 _JAC_SIGNS = np.array([1.0, -1.0, -1.0])
@@ -247,7 +265,8 @@ def voigt_batch(data, problems, max_iter=MAX_ITER, decrement=DECREMENT, cost_tol
         ``(lo, hi, cont, centres, max_shift, sig_inst, sign, skip, free_width)`` as
         :func:`fit_profile` takes them.
     max_iter : int
-        Most iterations; a problem not converged by then is fitted by :func:`fit_profile`.
+        Most iterations; a problem not converged by then is fitted by
+        :func:`~specan.lines.profiles.fit_profile_lean` (the one-by-one fit, the same iterates).
     decrement, cost_tol : float
         Convergence: a full Gauss-Newton step would lower the cost by less than ``decrement``
         or than ``cost_tol`` times the cost.
@@ -295,76 +314,90 @@ def voigt_batch(data, problems, max_iter=MAX_ITER, decrement=DECREMENT, cost_tol
     LB, UB, REAL = lb[act], ub[act], real[act]
     span = UB - LB
     near_lo, near_hi = LB + 1e-12 * span, UB - 1e-12 * span
-    lam, nu = np.full(act.size, 1e-3), np.full(act.size, 2.0)
+    lam, nu = np.full(act.size, LAMBDA0), np.full(act.size, 2.0)
     work = model.rows(act)
-    for _ in range(max_iter):
-        if not act.size:
-            break
-        grad = (R[:, None, :] @ J)[:, 0]
-        jtj = J.transpose(0, 2, 1) @ J
-        # on a bound with the gradient pushing outward: held there this step
-        held = ~REAL | ((P <= near_lo) & (grad > 0)) | ((P >= near_hi) & (grad < 0))
-        diag = jtj.diagonal(axis1=1, axis2=2)
-        # Marquardt's scaling by the curvature of each parameter (floored: a flat direction)
-        diag = np.maximum(diag, 1e-12 * diag.max(axis=1, keepdims=True) + 1e-300)
-        free = ~held
-        keep = free[:, :, None] & free[:, None, :]
-        held_eye = held[:, :, None] * eye
-        diag_eye = diag[:, :, None] * eye
-        rhs = np.where(held, 0.0, -grad)
-        # the Gauss-Newton decrement (the cost a full undamped step would remove): ~0 only
-        # at an optimum, whatever the damping, so it is what tells convergence
-        gn = _solve(np.where(keep, jtj + 1e-12 * diag_eye, 0.0) + held_eye, rhs)
-        small = 0.5 * (rhs * gn).sum(axis=1) <= np.maximum(decrement, cost_tol * C)
-        # stop: at the optimum (the decrement a negligible fraction of the cost), or the damping
-        # has grown so large that no step lowers the cost; before the step, whose model
-        # evaluation a converged problem does not need
-        stop = small | (lam > 1e12)
-        if stop.any():
-            rows = act[stop]
-            p[rows], jac[rows], cost[rows] = P[stop], J[stop], C[stop]
-            converged[rows] = small[stop]
-            go = ~stop
-            act = act[go]
+    # (a tiny predicted decrease overflows rho, which is clipped to [0, 1] below)
+    with np.errstate(over="ignore"):
+        for it in range(max_iter):
             if not act.size:
                 break
-            P, R, J, C, LB, UB, REAL = P[go], R[go], J[go], C[go], LB[go], UB[go], REAL[go]
-            near_lo, near_hi, lam, nu = near_lo[go], near_hi[go], lam[go], nu[go]
-            grad, jtj, held, keep, held_eye, diag_eye, rhs = (grad[go], jtj[go], held[go], keep[go], held_eye[go],
-                                                              diag_eye[go], rhs[go])
-            work = model.rows(act)
-        step = _solve(np.where(keep, jtj + lam[:, None, None] * diag_eye, 0.0) + held_eye, rhs)
-        # a step that would cross bounds: those parameters go to their bound and the others are
-        # solved again with them held there. Clipping the step alone spoils it (its predicted
-        # decrease can turn negative, and the damping then grows over several failed steps): with
-        # it the batch took ~12 iterations a fit, with this ~8, and left 6 of 502 unconverged
-        # instead of 11 (benchmarks/bench_lines.py's spectra, measured)
-        cross = (P + step < LB) | (P + step > UB)
-        if cross.any():
-            to_bound = np.where(cross, np.minimum(np.maximum(P + step, LB), UB) - P, 0.0)
-            held2 = held | cross
-            free2 = ~held2
-            rhs2 = np.where(held2, 0.0, -grad - (jtj @ to_bound[:, :, None])[:, :, 0])
-            step2 = _solve(np.where(free2[:, :, None] & free2[:, None, :], jtj + lam[:, None, None] * diag_eye, 0.0)
-                           + held2[:, :, None] * eye, rhs2)
-            step = np.where(cross.any(axis=1)[:, None], step2 + to_bound, step)
-        pn = np.minimum(np.maximum(P + step, LB), UB)
-        st = pn - P
-        predicted = -(grad * st).sum(axis=1) - 0.5 * np.einsum("bn,bnm,bm->b", st, jtj, st)
-        rn, jn = work(pn)
-        cn = 0.5 * (rn * rn).sum(axis=1)
-        better = np.isfinite(cn) & (cn < C)
-        # Nielsen's (1999) damping update: by how well the linearised model predicted the
-        # decrease (rho), gently; doubling factors after failures (from memory)
-        with np.errstate(over="ignore"):   # a tiny predicted decrease: rho is clipped to [0, 1] below
+            grad = (R[:, None, :] @ J)[:, 0]
+            jtj = J.transpose(0, 2, 1) @ J
+            if act.size <= TAIL_SIZE and it >= TAIL_START and _all_ill_determined(P, jtj, REAL):
+                # the batch's tail: the few problems left are ill-determined where they are, and an
+                # ill-determined fit is reported from the one-by-one algorithm anyway (below); left
+                # unconverged, they go to it now instead of iterating on alone
+                break
+            # on a bound with the gradient pushing outward: held there this step
+            held = ~REAL | ((P <= near_lo) & (grad > 0)) | ((P >= near_hi) & (grad < 0))
+            diag = jtj.diagonal(axis1=1, axis2=2)
+            # Marquardt's scaling by the curvature of each parameter (floored: a flat direction)
+            diag = np.maximum(diag, 1e-12 * diag.max(axis=1, keepdims=True) + 1e-300)
+            free = ~held
+            keep = free[:, :, None] & free[:, None, :]
+            held_eye = held[:, :, None] * eye
+            diag_eye = diag[:, :, None] * eye
+            rhs = np.where(held, 0.0, -grad)
+            # the Gauss-Newton step (its decrement, the cost a full undamped step would remove, is
+            # ~0 only at an optimum, whatever the damping, so it is what tells convergence) and the
+            # damped step, both systems solved in one call
+            gn, step = _solve_pair(keep, jtj, diag_eye, held_eye, rhs, lam)
+            small = 0.5 * (rhs * gn).sum(axis=1) <= np.maximum(decrement, cost_tol * C)
+            # stop: at the optimum (the decrement a negligible fraction of the cost), or the damping
+            # has grown so large that no step lowers the cost; before the step, whose model
+            # evaluation a converged problem does not need
+            stop = small | (lam > 1e12)
+            if stop.any():
+                rows = act[stop]
+                p[rows], jac[rows], cost[rows] = P[stop], J[stop], C[stop]
+                converged[rows] = small[stop]
+                go = ~stop
+                act = act[go]
+                if not act.size:
+                    break
+                P, R, J, C, LB, UB, REAL = P[go], R[go], J[go], C[go], LB[go], UB[go], REAL[go]
+                near_lo, near_hi, lam, nu = near_lo[go], near_hi[go], lam[go], nu[go]
+                grad, jtj, held, keep, held_eye, diag_eye, rhs, step = (
+                    grad[go], jtj[go], held[go], keep[go], held_eye[go], diag_eye[go], rhs[go],
+                    step[go] if step is not None else None)
+                work = model.rows(act)
+            if step is None:   # (a singular system: solved again alone, as before the pairing)
+                step = _solve(np.where(keep, jtj + lam[:, None, None] * diag_eye, 0.0) + held_eye, rhs)
+            # a step that would cross bounds: those parameters go to their bound and the others are
+            # solved again with them held there. Clipping the step alone spoils it (its predicted
+            # decrease can turn negative, and the damping then grows over several failed steps): with
+            # it the batch took ~12 iterations a fit, with this ~8, and left 6 of 502 unconverged
+            # instead of 11 (benchmarks/bench_lines.py's spectra, measured)
+            to = P + step
+            cross = (to < LB) | (to > UB)
+            if cross.any():
+                to_bound = np.where(cross, np.minimum(np.maximum(to, LB), UB) - P, 0.0)
+                held2 = held | cross
+                free2 = ~held2
+                rhs2 = np.where(held2, 0.0, -grad - (jtj @ to_bound[:, :, None])[:, :, 0])
+                step2 = _solve(np.where(free2[:, :, None] & free2[:, None, :], jtj + lam[:, None, None] * diag_eye,
+                                        0.0) + held2[:, :, None] * eye, rhs2)
+                step = np.where(cross.any(axis=1)[:, None], step2 + to_bound, step)
+                to = P + step
+            pn = np.minimum(np.maximum(to, LB), UB)
+            st = pn - P
+            predicted = -(grad * st).sum(axis=1) - 0.5 * np.einsum("bn,bnm,bm->b", st, jtj, st)
+            rn, jn = work(pn)
+            cn = 0.5 * (rn * rn).sum(axis=1)
+            better = np.isfinite(cn) & (cn < C)
+            # Nielsen's (1999) damping update: by how well the linearised model predicted the
+            # decrease (rho), gently; doubling factors after failures (from memory)
             rho = (C - cn) / np.maximum(predicted, 1e-300)
-        lam = np.maximum(np.where(better, lam * np.maximum(1.0 / 3.0, 1.0 - (2.0 * np.clip(rho, 0, 1) - 1.0) ** 3),
-                                  lam * nu), 1e-15)
-        nu = np.where(better, 2.0, 2.0 * nu)
-        P = np.where(better[:, None], pn, P)
-        R = np.where(better[:, None], rn, R)
-        J = np.where(better[:, None, None], jn, J)
-        C = np.where(better, cn, C)
+            lam = np.maximum(np.where(better, lam * np.maximum(1.0 / 3.0, 1.0 - (2.0 * np.clip(rho, 0, 1) - 1.0) ** 3),
+                                      lam * nu), 1e-15)
+            nu = np.where(better, 2.0, 2.0 * nu)
+            if better.all():
+                P, R, J, C = pn, rn, jn, cn
+            else:
+                P = np.where(better[:, None], pn, P)
+                R = np.where(better[:, None], rn, R)
+                J = np.where(better[:, None, None], jn, J)
+                C = np.where(better, cn, C)
     # the covariances of all converged problems in one call: a padded parameter's Jacobian column
     # is zero, so its row and column of the normal matrix are too, and the pseudo-inverse of the
     # rest is that of the problem's own block (to rounding)
@@ -377,7 +410,7 @@ def voigt_batch(data, problems, max_iter=MAX_ITER, decrement=DECREMENT, cost_tol
         if not converged[row]:
             if finite[row]:
                 lo, hi, cnt, cen, max_shift, sig_inst, sign, skip, free_width = problems[k]
-                out[k] = fit_profile(data, lo, hi, cnt, cen, "voigt", max_shift, sig_inst, sign, skip, free_width)
+                out[k] = fit_profile_lean(data, lo, hi, cnt, cen, "voigt", max_shift, sig_inst, sign, skip, free_width)
             continue
         n = 3 + ncomp[row]
         if row in covs:
@@ -397,10 +430,25 @@ def voigt_batch(data, problems, max_iter=MAX_ITER, decrement=DECREMENT, cost_tol
             # +- 3e5 A, FWHM 43 against 15 A at about the same chi2: measured), so the one-by-one
             # fit is made and reported, as the one-by-one path reports it
             lo, hi, cnt, cen, max_shift, sig_inst, sign, skip, free_width = problems[k]
-            slow = fit_profile(data, lo, hi, cnt, cen, "voigt", max_shift, sig_inst, sign, skip, free_width)
+            slow = fit_profile_lean(data, lo, hi, cnt, cen, "voigt", max_shift, sig_inst, sign, skip, free_width)
             if slow is not None:
                 out[k] = slow
     return out
+
+
+def _all_ill_determined(p, jtj, real):
+    """Whether every problem's equivalent width (component 0, parameter 3) is no larger than its
+    error from the normal matrix ``jtj`` at parameters ``p`` (``real``: the problem's own
+    parameters, not padding): the test the converged fits get, from the inverse of the normal
+    matrix (a padded parameter's row and column are zero: a one on its diagonal leaves the
+    problem's own block as it is); False where a normal matrix is singular."""
+    unit = np.zeros((p.shape[0], p.shape[1], 1))
+    unit[:, 3] = 1.0
+    try:
+        var = np.linalg.solve(jtj + (~real)[:, :, None] * np.eye(p.shape[1]), unit)[:, 3, 0]
+    except np.linalg.LinAlgError:
+        return False
+    return bool(np.all(~(np.abs(p[:, 3]) > np.sqrt(np.maximum(var, 0.0)))))
 
 
 def _direct_starts(data, problems, live, x, y, cont, wts, ncomp, p, lb, ub):
@@ -440,6 +488,23 @@ def _direct_starts(data, problems, live, x, y, cont, wts, ncomp, p, lb, ub):
         p[rows, col] = np.clip(value, lb[rows, col] + 1e-6 * span[:, col], ub[rows, col] - 1e-6 * span[:, col])
 
 
+def _solve_pair(keep, jtj, diag_eye, held_eye, rhs, lam):
+    """The undamped (1e-12) and damped (``lam``) systems of every problem in one solve: ``(gn, step)``.
+
+    np.linalg.solve solves each matrix of a stack on its own, so these are the values of two
+    separate calls; where one system is singular, ``step`` is None (then solved alone by
+    :func:`_solve`, for the problems that go on) and ``gn`` comes from :func:`_solve`, as before.
+    """
+    coef = np.empty((2, lam.size, 1, 1))
+    coef[0], coef[1, :, 0, 0] = 1e-12, lam
+    both = np.where(keep, jtj + coef * diag_eye, 0.0) + held_eye
+    try:
+        sol = np.linalg.solve(both, rhs[..., None])[..., 0]
+    except np.linalg.LinAlgError:
+        return _solve(both[0], rhs), None
+    return sol[0], sol[1]
+
+
 def _solve(m, rhs):
     """Solutions of the stacked systems ``m x = rhs`` (least squares where one is singular)."""
     try:
@@ -466,12 +531,20 @@ class _VoigtModel:
     def __init__(self, x, y, cont, wts, centres, components):
         self.x, self.y, self.cont, self.wts, self.centres = x, y, cont, wts, centres
         self.components = components
-        self.where = components[:, :, None] & (wts > 0)[:, None, :]     # (b, C, P)
-        # points evaluated per problem: each problem's sigma and gamma repeated that often are
-        # the values at the evaluated points, in their order (np.broadcast_to cost more)
-        self.count = self.where.sum(axis=(1, 2))
+        where = components[:, :, None] & (wts > 0)[:, None, :]     # (b, C, P)
+        self.shape = where.shape
+        self.at = np.flatnonzero(where)   # the evaluated points, as flat indices
+        # each evaluated point's problem, wavelength and component centre, made once: a model
+        # evaluation then takes the points' shift, sigma and gamma from their problem's
+        # parameters (the same offsets x - (centre + shift) as on the whole grid, at those points)
+        b_at, c_at, p_at = np.unravel_index(self.at, where.shape)
+        self.problem_at, self.x_at, self.centre_at = b_at, x[b_at, p_at], centres[b_at, c_at]
+        # the model's constant factors (the continuum times the weights, with the Jacobian's signs)
         self.cw = cont * wts
-        self.at = np.flatnonzero(self.where)   # the evaluated points, as flat indices
+        self.cw_signs = self.cw[:, :, None] * _JAC_SIGNS
+        self.minus_cw = -self.cw[:, None, :]
+        # profile and derivatives at every point of the grid; those never evaluated stay zero
+        self.parts = np.zeros((4, where.size))
 
     def rows(self, rows):
         """The model of the problems ``rows`` only."""
@@ -479,19 +552,15 @@ class _VoigtModel:
                            self.components[rows])
 
     def __call__(self, p):
-        dx = self.x[:, None, :] - (self.centres[:, :, None] + p[:, 0, None, None])   # (b, C, P)
-        sig = np.repeat(p[:, 1], self.count)
-        gam = np.repeat(p[:, 2], self.count)
+        q = p[self.problem_at, :3]
+        dx = self.x_at - (self.centre_at + q[:, 0])
         # profile and its three derivatives in one array (4, b, C, P) and their sums over the
         # components weighted by the equivalent widths in one call: a model evaluation is a
         # dozen numpy calls on small arrays, their count (not the arithmetic) its cost
-        parts = np.zeros((4, dx.size))
-        voigt_and_derivatives(dx.take(self.at), sig, gam, out=parts, at=self.at)
-        parts = parts.reshape((4,) + dx.shape)
+        parts = voigt_and_derivatives(dx, q[:, 1], q[:, 2], out=self.parts, at=self.at).reshape((4,) + self.shape)
         sums = np.einsum("bc,kbcp->bpk", p[:, 3:], parts)
-        cw = self.cw
         r = (self.cont * (1.0 - sums[:, :, 0]) - self.y) * self.wts
-        jac = np.empty((p.shape[0], dx.shape[2], p.shape[1]))
-        jac[:, :, :3] = sums[:, :, 1:] * (cw[:, :, None] * _JAC_SIGNS)
-        jac[:, :, 3:] = (parts[0] * -cw[:, None, :]).transpose(0, 2, 1)
+        jac = np.empty((p.shape[0], self.shape[2], p.shape[1]))
+        jac[:, :, :3] = sums[:, :, 1:] * self.cw_signs
+        jac[:, :, 3:] = (parts[0] * self.minus_cw).transpose(0, 2, 1)
         return r, jac

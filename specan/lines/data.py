@@ -227,8 +227,24 @@ class LineData:
             self._rungs = _ladder(self.sig_pix)
         self.signif, self.smooth, self.smooth_err = matched_filter(self.flux, self.weight, self.sig_pix,
                                                                    self._rungs)
-        s3 = 3.0 * float(np.median(self.sig_pix))
-        self.smooth_wide, self.smooth_wide_err = wide_smooth(self.flux, self.weight, s3)
+        # the wide smoothing only when a window walks on it (hydrogen lines: the copy divided by
+        # the hydrogen lines, which measures the other lines, never needs it)
+        self._wide = None
+
+    @property
+    def smooth_wide(self):
+        """Weighted flux smoothed over three line widths (:func:`wide_smooth`), made on first use."""
+        return self._wide_smoothing()[0]
+
+    @property
+    def smooth_wide_err(self):
+        """The noise of :attr:`smooth_wide`."""
+        return self._wide_smoothing()[1]
+
+    def _wide_smoothing(self):
+        if self._wide is None:
+            self._wide = wide_smooth(self.flux, self.weight, 3.0 * float(np.median(self.sig_pix)))
+        return self._wide
 
     def divided(self, model):
         """A copy with flux and noise divided by ``model`` (filters recomputed)."""

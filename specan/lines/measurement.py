@@ -35,7 +35,7 @@ from .windows import line_window, line_windows, local_continuum, profile_window,
 
 __all__ = ["measure", "cayrel_error", "Targets", "LineResult", "line_targets", "measure_lines",
            "measure_line", "LinePlan", "LineStart", "line_start", "line_starts", "plan_line", "plan_lines",
-           "finish_line", "finish_lines", "wing_fits", "window_noises",
+           "finish_line", "finish_lines", "wing_fits", "window_noises", "half_widths",
            "match_feature", "integrated_ew", "central_depth", "use_voigt", "fit_line", "chosen_ew",
            "window_noise", "half_width", "line_table", "wing_fit"]
 
@@ -420,33 +420,40 @@ def plan_lines(data, features, targets, which, profile, starts, windows):
     # window_features: each line's features of its own kind between its window's edges
     bounds = {key: (np.searchsorted(mine, x0, "left"), np.searchsorted(mine, x1, "right"))
               for key, mine in kinds.items()}
+    # the per-line values as Python floats, read once (the same values; a loop over numpy scalars
+    # spent a quarter of the planning on them, benchmarks/bench_lines.py)
+    ew_int_l, ew_int_err_l, signif_l, depth_l = ew_int.tolist(), ew_int_err.tolist(), signif.tolist(), depth.tolist()
+    x0_l, x1_l, voigt_l, hyd_l, length_l = x0.tolist(), x1.tolist(), voigt.tolist(), hyd.tolist(), length.tolist()
+    lo_feature = {key: b[0].tolist() for key, b in bounds.items()}
+    hi_feature = {key: b[1].tolist() for key, b in bounds.items()}
     for m, i in enumerate(found):
-        fw, hydrogen = fws[m], bool(hyd[m])
+        fw, hydrogen = fws[m], hyd_l[m]
         window = wins[m]
         st = starts[i]
-        result = LineResult(wave_obs=st.centre, ew_int=float(ew_int[m]), ew_int_err=float(ew_int_err[m]),
-                            significance=float(signif[m]), depth=float(depth[m]),
-                            window_min=x0[m], window_max=x1[m], emission=st.sign < 0)
+        result = LineResult(wave_obs=st.centre, ew_int=ew_int_l[m], ew_int_err=ew_int_err_l[m],
+                            significance=signif_l[m], depth=depth_l[m],
+                            window_min=x0_l[m], window_max=x1_l[m], emission=st.sign < 0)
         if kinds:
             key = 1.0 if st.sign > 0 else -1.0
-            in_win = kinds[key][bounds[key][0][m]:bounds[key][1][m]]
+            in_win = kinds[key][lo_feature[key][m]:hi_feature[key][m]]
         else:
             in_win = np.zeros(0)
         centres = _centres(pred[companion[m]] + (st.centre - pred[i]), in_win, hydrogen, st.centre, fw)
         skip = wing_mask(data, targets, i, st.centre, window, in_win, centres) if hydrogen else None
         plans[i] = LinePlan(result, fw, hydrogen, st.ic, st.sign, st.detected, st.max_shift, window,
-                            cont[m, :length[m]], centres, skip, bool(voigt[m]), wants_fit=st.detected)
+                            cont[m, :length_l[m]], centres, skip, voigt_l[m], wants_fit=st.detected)
     return plans
 
 
 def _centres(listed, in_win, hydrogen, centre, fw):
     """:func:`~specan.lines.components.component_centres` from the line's shifted listed companions."""
-    candidates = list(listed) if hydrogen else list(listed) + list(in_win)
+    candidates = listed.tolist() if hydrogen else listed.tolist() + in_win.tolist()
     if not candidates:
         return np.array([centre])
     centres = [centre]
+    apart = MIN_SEPARATION * fw
     for c in candidates:
-        if min(abs(c - x) for x in centres) > MIN_SEPARATION * fw:
+        if min(abs(c - x) for x in centres) > apart:
             centres.append(c)
     return np.array(centres)
 
@@ -489,9 +496,12 @@ def finish_line(data, features, targets, i, plan, fitter):
 
 def finish_lines(data, features, targets, plans):
     """:func:`finish_line` of every plan (``{index: LinePlan}``), the wing fits batched (:func:`wing_fits`)."""
+    unfitted = [plan for plan in plans.values() if plan.window is not None and plan.fit is None]
+    widths = dict(zip(map(id, unfitted), half_widths(data, [p.ic for p in unfitted], [p.window.lo for p in unfitted],
+                                                     [p.window.hi for p in unfitted], [p.sign for p in unfitted])))
     for i, plan in plans.items():
         if plan.window is not None:
-            _fitted(data, plan)
+            _fitted(data, plan, widths.get(id(plan)))
             if plan.hydrogen:
                 less_blends(data, features, targets, i, plan)
     strong = [i for i, plan in plans.items() if plan.window is not None and _wants_wings(plan)]
@@ -505,8 +515,9 @@ def finish_lines(data, features, targets, plans):
             for i, plan in plans.items()}
 
 
-def _fitted(data, plan):
-    """The result's fitted (or, without a fit, half-depth) quantities and its chosen equivalent width."""
+def _fitted(data, plan, width=None):
+    """The result's fitted (or, without a fit, half-depth) quantities and its chosen equivalent width
+    (``width``: its :func:`half_width` when already known)."""
     result, fit, window = plan.result, plan.fit, plan.window
     if fit is not None:
         result.profile = "voigt" if plan.voigt else "gauss"
@@ -514,7 +525,7 @@ def _fitted(data, plan):
         result.ew_fit, result.ew_fit_err, result.fit_chi2 = fit["ew"], fit["ew_err"], fit["chi2"]
         result.fwhm, result.wave_obs = fit["fwhm"], fit["centre"]
     else:
-        result.fwhm = half_width(data, plan.ic, window.lo, window.hi, plan.sign)
+        result.fwhm = half_width(data, plan.ic, window.lo, window.hi, plan.sign) if width is None else width
     result.method, result.ew, result.ew_err = chosen_ew(fit, result.profile, window.cut, len(plan.centres) - 1,
                                                         plan.hydrogen, result.ew_int, result.ew_int_err)
 
@@ -784,6 +795,53 @@ def half_width(data, ic, lo, hi, sign):
     xl = np.interp(half, [d[a], d[a + 1]], [x[a], x[a + 1]]) if d[a + 1] != d[a] else x[a]
     xr = np.interp(half, [d[b], d[b - 1]], [x[b], x[b - 1]]) if d[b - 1] != d[b] else x[b]
     return float(xr - xl)
+
+
+def half_widths(data, ic, lo, hi, sign):
+    """:func:`half_width` of many lines at once (sequences, one element per line): the same values.
+
+    The half-depth crossings of every window are found on the windows padded to one length, and
+    each is interpolated between its two pixels with :func:`numpy.interp`'s arithmetic (the
+    crossing lies strictly above the lower pixel's depth, so the interpolation is the plain slope
+    form, or the upper pixel itself where it sits exactly at half depth). Windows with a
+    non-finite depth near a crossing are left to :func:`half_width` itself.
+    """
+    ic, lo, hi, sign = (np.asarray(v) for v in (ic, lo, hi, sign))
+    out = np.full(ic.size, np.nan)
+    if not ic.size:
+        return out
+    n = data.wave.size
+    length = hi - lo + 1
+    k = np.arange(int(length.max()))
+    inside = k[None, :] < length[:, None]
+    pix = np.minimum(lo[:, None] + k[None, :], n - 1)
+    d = sign[:, None] * (1.0 - data.flux[pix])
+    x = data.wave[pix]
+    rows = np.arange(ic.size)
+    j = ic - lo
+    inner = (j >= 0) & (j < length)
+    j = np.where(inner, j, 0)
+    dj = np.where(inner, d[rows, j], np.nan)
+    half = 0.5 * dj
+    below = inside & (d < half[:, None])
+    left_ok = (below & (k[None, :] < j[:, None])).any(axis=1)
+    after = below & (k[None, :] >= j[:, None])
+    right_ok = after.any(axis=1)
+    a = np.where(left_ok, k.size - 1 - np.argmax((below & (k[None, :] < j[:, None]))[:, ::-1], axis=1), 0)
+    b = np.where(right_ok, np.argmax(after, axis=1), 1)
+    ok = (length >= 3) & (dj > 0) & left_ok & right_ok
+    a1, b1 = np.minimum(a + 1, k.size - 1), np.maximum(b - 1, 0)
+    da, da1, db, db1 = d[rows, a], d[rows, a1], d[rows, b], d[rows, b1]
+    xa, xa1, xb, xb1 = x[rows, a], x[rows, a1], x[rows, b], x[rows, b1]
+    finite = np.isfinite(da) & np.isfinite(da1) & np.isfinite(db) & np.isfinite(db1) & np.isfinite(half)
+    with np.errstate(divide="ignore", invalid="ignore"):
+        xl = np.where(half == da1, xa1, (xa1 - xa) / (da1 - da) * (half - da) + xa)
+        xr = np.where(half == db1, xb1, (xb1 - xb) / (db1 - db) * (half - db) + xb)
+    easy = ok & finite
+    out[easy] = (xr - xl)[easy]
+    for m in np.flatnonzero((~finite & (length >= 3) & np.isfinite(dj) & (dj > 0)) | ~inner):
+        out[m] = half_width(data, int(ic[m]), int(lo[m]), int(hi[m]), float(sign[m]))
+    return out
 
 
 _FLOAT_COLUMNS = ("wave_obs", "ew", "ew_err", "ew_err_cayrel", "ew_int", "ew_int_err", "ew_fit", "ew_fit_err",

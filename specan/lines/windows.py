@@ -84,7 +84,7 @@ def adaptive_windows(data, ic, sign, min_half, max_half, wide):
     ends, levels, cuts = [], [], []
     for step in (-1, 1):
         end, level, cut = _walks(data, ic, sign, min_half, max_half, wide, step)
-        err_end = np.where(wide, data.smooth_wide_err[end], data.smooth_err[end])
+        err_end = _on_smoothing(wide, lambda: data.smooth_wide_err[end], data.smooth_err[end])
         # a plateau within the noise of the continuum is the continuum
         level = np.where(np.abs(1.0 - level) <= 3.0 * err_end, 1.0, level)
         ends.append(end)
@@ -118,10 +118,10 @@ def _walks(data, ic, sign, min_half, max_half, wide, step):
     # the first step that leaves the spectrum or passes max_half ends the walk one pixel back
     valid &= np.logical_and.accumulate(valid, axis=1)
     w = wide[:, None]
-    smooth = np.where(w, data.smooth_wide[idc], data.smooth[idc])
-    err = np.where(w, data.smooth_wide_err[idc], data.smooth_err[idc])
+    smooth = _on_smoothing(w, lambda: data.smooth_wide[idc], data.smooth[idc])
+    err = _on_smoothing(w, lambda: data.smooth_wide_err[idc], data.smooth_err[idc])
     depth = sign[:, None] * (1.0 - smooth)
-    s0 = np.where(wide, data.smooth_wide[ic], data.smooth[ic])
+    s0 = _on_smoothing(wide, lambda: data.smooth_wide[ic], data.smooth[ic])
     depth0 = sign * (1.0 - s0)
     d0 = np.maximum(depth0, 0.0)
     # the running minimum of the depth (the walk's ``best``) and the step it was last lowered at
@@ -162,9 +162,14 @@ def _walks(data, ic, sign, min_half, max_half, wide, step):
     return end.astype(int), level, cut
 
 
+def _on_smoothing(wide, on_wide, on_line):
+    """``np.where(wide, on_wide(), on_line)``, the wide smoothing not asked for where no line walks on it."""
+    return np.where(wide, on_wide(), on_line) if np.any(wide) else on_line
+
+
 def _depth_at(data, pixels, sign, wide):
     """Depth ``sign (1 - smoothed flux)`` at ``pixels`` (lines x steps), on the wide smoothing where ``wide``."""
-    return sign[:, None] * (1.0 - np.where(wide[:, None], data.smooth_wide[pixels], data.smooth[pixels]))
+    return sign[:, None] * (1.0 - _on_smoothing(wide[:, None], lambda: data.smooth_wide[pixels], data.smooth[pixels]))
 
 
 def fixed_window(data, centre, fwhm):
