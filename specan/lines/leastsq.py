@@ -14,7 +14,11 @@ It follows scipy 1.17's ``scipy/optimize/_lsq/trf.py`` (``trf_bounds``) and
 ``_lsq/common.py`` step by step, the same formulas in the same order (Branch, Coleman & Li
 1999; More 1977 for the trust-region subproblem), for a linear loss, ``x_scale="jac"`` and the
 exact (SVD) subproblem solver; the SVD is LAPACK's ``gesdd`` through scipy, as there. Tested
-against ``least_squares`` in ``tests/test_lines_batched.py``.
+against ``least_squares`` in ``tests/test_lines_batched.py`` (to the bit with scipy 1.17; another
+scipy release may move those fits within the batched path's tested tolerance).
+
+Derived from SciPy, which is distributed under the BSD 3-Clause License (Copyright (c) 2001-2002
+Enthought, Inc. 2003, SciPy Developers); its licence terms apply to this derived part.
 """
 
 from __future__ import annotations
