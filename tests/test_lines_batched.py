@@ -59,6 +59,22 @@ EW_TOL = 0.05      # of the line's own error
 ERR_TOL = 0.01     # relative, between the two paths' errors
 PLACE_TOL = 0.01   # of the FWHM, for the centre and the FWHM
 
+def demo_line_plans(count, kind):
+    """(file, data, targets, features, which, starts, windows, plans) of the demo spectra of
+    :func:`demo_line_setups`: every listed line's start, window and plan (``plan_lines`` with ``kind``)."""
+    from specan.lines.data import DETECT_SIGMA
+    from specan.lines.measurement import line_starts, plan_lines
+    from specan.lines.windows import line_windows
+
+    for name, data, listed, targets, features in demo_line_setups(count):
+        which = list(range(targets.pred.size))
+        starts = dict(zip(which, line_starts(data, features, targets, np.array(which), DETECT_SIGMA)))
+        found = [i for i in which if starts[i] is not None]
+        windows = dict(zip(found, line_windows(data, [starts[i] for i in found], targets.fwhm[found],
+                                               targets.hydrogen[found])))
+        plans = plan_lines(data, features, targets, which, kind, starts, windows)
+        yield name, data, targets, features, which, starts, windows, plans
+
 
 def _values(t, col):
     return np.asarray(getattr(t[col], "value", t[col]), float)
@@ -258,17 +274,10 @@ def test_dersnr_from_arrays_equals_specutils():
 def test_vectorised_plans_equal_one_by_one():
     # plan_lines (continua, integrals, depths of all lines as array operations) against plan_line
     from specan.lines.data import DETECT_SIGMA
-    from specan.lines.measurement import line_starts, plan_line, plan_lines
-    from specan.lines.windows import line_windows
+    from specan.lines.measurement import plan_line
 
     compared = 0
-    for name, data, listed, targets, features in demo_line_setups(6):
-        which = list(range(targets.pred.size))
-        starts = dict(zip(which, line_starts(data, features, targets, np.array(which), DETECT_SIGMA)))
-        found = [i for i in which if starts[i] is not None]
-        windows = dict(zip(found, line_windows(data, [starts[i] for i in found], targets.fwhm[found],
-                                               targets.hydrogen[found])))
-        many = plan_lines(data, features, targets, which, "auto", starts, windows)
+    for name, data, targets, features, which, starts, windows, many in demo_line_plans(6, "auto"):
         for i in which:
             one = plan_line(data, features, targets, i, "auto", DETECT_SIGMA, starts[i], windows.get(i))
             two = many[i]
@@ -384,19 +393,10 @@ def test_lean_trust_region_fit_equals_scipys():
     # against profiles.fit_profile (scipy's least_squares): every Voigt fit of demo spectra, the
     # hydrogen lines with their free width and every other detected line forced to a Voigt profile
     # (flat valleys, bounds, blends). Measured: the same fit to the last bit in all of them.
-    from specan.lines.data import DETECT_SIGMA
-    from specan.lines.measurement import line_starts, plan_lines
     from specan.lines.profiles import fit_profile, fit_profile_lean
-    from specan.lines.windows import line_windows
 
     compared = failed = 0
-    for name, data, listed, targets, features in demo_line_setups(5):
-        which = list(range(targets.pred.size))
-        starts = dict(zip(which, line_starts(data, features, targets, np.array(which), DETECT_SIGMA)))
-        found = [i for i in which if starts[i] is not None]
-        windows = dict(zip(found, line_windows(data, [starts[i] for i in found], targets.fwhm[found],
-                                               targets.hydrogen[found])))
-        plans = plan_lines(data, features, targets, which, "voigt", starts, windows)
+    for name, data, targets, features, which, starts, windows, plans in demo_line_plans(5, "voigt"):
         for plan in plans.values():
             if not plan.wants_fit:
                 continue

@@ -162,19 +162,28 @@ def _vacuum_wavelengths(spectrum, info):
     the conversion (:func:`specan.obsinfo.air_to_vacuum`, an inversion of Morton's formula) costs
     ~1 ms a spectrum (measured), the same for every exposure of a survey's wavelength solution.
     """
-    import hashlib
-
     if info.medium == "vacuum":
         return wavelength_in(spectrum, "vacuum")
     own = wavelength_in(spectrum, info.medium)
-    key = (hashlib.sha1(np.ascontiguousarray(own).tobytes()).hexdigest(), own.size, info.medium)
-    found = _VACUUM.get(key)
+    return _kept(_VACUUM, (_digest(own), own.size, info.medium), lambda: wavelength_in(spectrum, "vacuum"))
+
+
+def _digest(array):
+    import hashlib
+
+    return hashlib.sha1(np.ascontiguousarray(array).tobytes()).hexdigest()
+
+
+def _kept(store, key, make, size=8):
+    """``store[key]``, made read-only by ``make()`` where absent; the oldest of ``size`` out first
+    (the array is returned, not looked up again, so dropping it is safe)."""
+    found = store.get(key)
     if found is None:
-        found = wavelength_in(spectrum, "vacuum")
+        found = make()
         found.flags.writeable = False
-        while len(_VACUUM) >= 8:   # oldest out first; the array is returned, not looked up again
-            _VACUUM.pop(next(iter(_VACUUM)), None)
-        _VACUUM[key] = found
+        while len(store) >= size:
+            store.pop(next(iter(store)), None)
+        store[key] = found
     return found
 
 
@@ -263,19 +272,9 @@ def _edge_taper(valid, first=0, last=None):
     """Weights rising as a cosine over ~ 2% of the data's range (grid points ``first`` to ``last``)
     at both ends and 5 pixels at gap edges (read-only; the last few masks' kept: spectra of a
     survey share their masks, and a hash of the mask costs a tenth of making the taper)."""
-    import hashlib
-
     n = valid.size
     last = n - 1 if last is None else last
-    key = (hashlib.sha1(np.ascontiguousarray(valid).tobytes()).hexdigest(), n, first, last)
-    found = _TAPERS.get(key)
-    if found is None:
-        found = _make_edge_taper(valid, first, last)
-        found.flags.writeable = False
-        while len(_TAPERS) >= 8:   # oldest out first; the array is returned, not looked up again
-            _TAPERS.pop(next(iter(_TAPERS)), None)
-        _TAPERS[key] = found
-    return found
+    return _kept(_TAPERS, (_digest(valid), n, first, last), lambda: _make_edge_taper(valid, first, last))
 
 
 def _make_edge_taper(valid, first, last):
