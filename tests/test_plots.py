@@ -1,5 +1,6 @@
 """Per-spectrum figures: what they show must be readable."""
 
+import astropy.units as u
 import numpy as np
 
 from specan import lines, plots, prepare, synth
@@ -70,3 +71,37 @@ def test_kept_text_pixels_change_nothing_but_the_texts_by_a_subpixel():
         rows_at, cols_at = np.indices(ink[1].shape)
         centres = [np.array([(w * rows_at).sum(), (w * cols_at).sum()]) / w.sum() for w in ink]
         assert np.all(np.abs(centres[0] - centres[1]) <= 1.0), t.get_text()
+
+
+def _analysed(sptype, lumclass, seed):
+    import specan
+    from specan import velocity
+
+    spec = prepare.prepare(synth.spectrum(sptype, lumclass, resolving_power=2000, snr=60, seed=seed,
+                                          rv=40.0 * u.km / u.s))
+    vel = velocity.measure(spec)
+    return spec, lines.measure(spec, rv=vel["rv_topo"]), vel, specan.classify(spec, rv=vel["rv_topo"])
+
+
+def test_reused_figure_keeps_nothing_of_the_spectrum_before():
+    # The figure and its artists are made once per process and given each spectrum's data; a
+    # spectrum drawn after another must be the picture a fresh figure gives it, pixel for pixel
+    # (a cool star with thirty names, then a hot one with few: no name, marker, point or
+    # legend entry of the first may be left, and the limits must follow the new data).
+    cool, hot = _analysed("K3", "III", 4), _analysed("A0", "V", 1)
+
+    def drawn(item):
+        spec, table, vel, cls = item
+        return plots.spectrum_figures(spec, lines=table, velocity=vel, classification=cls, title="t")
+
+    plots._REUSED.clear()
+    fresh_hot = drawn(hot)
+    plots._REUSED.clear()
+    fresh_cool = drawn(cool)
+    reused_hot = drawn(hot)       # on the figure the cool star was drawn on
+    reused_cool = drawn(cool)
+    assert reused_hot == fresh_hot and reused_cool == fresh_cool
+    figure = plots._REUSED["figure"]
+    named = [t for t in figure.axes[0].texts if t.get_visible()]
+    assert 10 <= len(named) <= plots.MAX_NAMED_LINES   # the cool star's names, not the hidden rest
+    assert figure.axes[1].get_legend() is not None and figure.axes[2].get_legend() is not None
