@@ -489,6 +489,26 @@ class _ReusedFigure:
         self.spectrum = _SpectrumArtists(self.axes[0])
         self.ccf = _CCFArtists(self.axes[1])
         self.criteria = _CriteriaArtists(self.axes[2])
+        self._fixed_label_places()
+
+    def _fixed_label_places(self):
+        """The axes' x labels held where matplotlib puts them, below the tick labels.
+
+        At every draw matplotlib lays out every tick label of an axis a second time to place
+        the axis label clear of them (a sixth of a figure's time). Below the axes that place
+        does not depend on the spectrum: tick labels of one font are one line high whatever
+        their digits, so it is found once here, on a first draw, and kept. The y labels stay
+        matplotlib's to place (beside the tick labels, whose width changes); the criteria
+        panel has no y label, so its names are not measured for one.
+        """
+        for ax in self.axes:
+            ax.set_xlabel("x")
+        self.figure.canvas.draw()
+        for ax in self.axes:
+            _, y = ax.xaxis.label.get_position()   # in pixels, under the axes
+            ax.xaxis.set_label_coords(0.5, (y - ax.bbox.y0) / ax.bbox.height)
+            ax.set_xlabel("")
+        self.axes[2].yaxis.set_label_coords(0.0, 0.5)
 
     def emptied(self):
         """The figure without what the previous spectrum drew (its own artists hidden, the rest removed)."""
