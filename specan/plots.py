@@ -575,7 +575,7 @@ def _encode_png(image) -> bytes:
     raw[:, 1:].reshape(height, width, 3)[...] = change[:, :, :3]   # through a view of the rows
     header = struct.pack(">IIBBBBB", width, height, 8, 2, 0, 0, 0)   # 8 bits, RGB, no interlace
     return b"".join((b"\x89PNG\r\n\x1a\n", _png_chunk(b"IHDR", header),
-                     _png_chunk(b"IDAT", zlib.compress(raw.tobytes(), 1)), _png_chunk(b"IEND", b"")))
+                     _png_chunk(b"IDAT", zlib.compress(raw, 1)), _png_chunk(b"IEND", b"")))
 
 
 def _png_chunk(kind, data) -> bytes:
