@@ -5,9 +5,14 @@ than through pyplot: no global figure registry (memory stays flat over
 thousands of spectra) and no GUI backend, so this works in worker processes
 and on machines without a display.
 
-A process draws every spectrum on one figure, made once and cleared between
-spectra (making a figure and its grid of axes was a fifth of a drawing), and
-the figure is rendered once: the PNG is encoded from the rendered pixels, and
+A process draws every spectrum on one figure, made once with its artists (the
+spectrum, the line markers and names, the CCF and its peaks, the criteria's
+points, the legends), which each spectrum gives new data; anything else a
+spectrum drew is removed before the next (making the figure and its grid of
+axes was a fifth of a drawing, making the artists again another fifth). Its
+x labels are held where matplotlib first put them, below tick labels whose
+height never changes (placing them again lays out every tick label a second
+time). The figure is rendered once: the PNG is encoded from the rendered pixels, and
 the thumbnail is the spectrum panel of the same pixels, shrunk. The figure's
 renderer keeps the pixels of every string it has drawn (tick values, line and
 criterion names, axis labels: the same few hundred on every figure of a night),

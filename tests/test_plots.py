@@ -73,12 +73,17 @@ def test_kept_text_pixels_change_nothing_but_the_texts_by_a_subpixel():
         assert np.all(np.abs(centres[0] - centres[1]) <= 1.0), t.get_text()
 
 
-def _analysed(sptype, lumclass, seed):
+def _analysed(sptype, lumclass, seed, binary=False):
     import specan
     from specan import velocity
 
-    spec = prepare.prepare(synth.spectrum(sptype, lumclass, resolving_power=2000, snr=60, seed=seed,
-                                          rv=40.0 * u.km / u.s))
+    if binary:   # a double-lined binary: the CCF panel marks a second peak
+        # as tests/test_velocity.py's well separated pair
+        raw = synth.binary(("G0", "V"), ("K0", "V"), rv1=-120 * u.km / u.s, rv2=180 * u.km / u.s, light_ratio=0.6,
+                           resolving_power=5000, snr=100, seed=seed)
+    else:
+        raw = synth.spectrum(sptype, lumclass, resolving_power=2000, snr=60, seed=seed, rv=40.0 * u.km / u.s)
+    spec = prepare.prepare(raw)
     vel = velocity.measure(spec)
     return spec, lines.measure(spec, rv=vel["rv_topo"]), vel, specan.classify(spec, rv=vel["rv_topo"])
 
@@ -105,3 +110,24 @@ def test_reused_figure_keeps_nothing_of_the_spectrum_before():
     named = [t for t in figure.axes[0].texts if t.get_visible()]
     assert 10 <= len(named) <= plots.MAX_NAMED_LINES   # the cool star's names, not the hidden rest
     assert figure.axes[1].get_legend() is not None and figure.axes[2].get_legend() is not None
+
+
+def test_reused_figure_after_a_binary_has_no_second_peak_left():
+    # A binary's CCF panel has a second peak and a two-entry legend; the single star drawn
+    # after it on the same figure must look as on a fresh figure.
+    pair, single = _analysed(None, None, 8, binary=True), _analysed("G2", "V", 2)
+    assert pair[2]["second_peak_rv"] is not None and single[2]["second_peak_rv"] is None
+
+    def drawn(item):
+        spec, table, vel, cls = item
+        return plots.spectrum_figures(spec, lines=table, velocity=vel, classification=cls, title="t")
+
+    plots._REUSED.clear()
+    fresh_single = drawn(single)
+    plots._REUSED.clear()
+    fresh_pair = drawn(pair)
+    legend = plots._REUSED["figure"].axes[1].get_legend()
+    assert [t.get_text() for t in legend.get_texts()] == ["peak", "second peak"]
+    assert drawn(single) == fresh_single and drawn(pair) == fresh_pair
+    legend = plots._REUSED["figure"].axes[1].get_legend()
+    assert [t.get_text() for t in legend.get_texts()] == ["peak", "second peak"]
