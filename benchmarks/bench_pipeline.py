@@ -31,13 +31,19 @@ these synthetic spectra come out ``peculiar`` or ``composite``), and:
   of one figure and its parts (the artists, the rendering, the PNG, the
   thumbnail); run it with ``PYTHONPATH`` set to another checkout to time that
   checkout's figure on the same spectra;
-* ``--overhead N``: runs ``specan run`` on N of them (one job, no figures)
-  in a fresh process with every stage call timed, and prints the run's own
-  CPU time outside the stages per spectrum: start-up (interpreter, imports, the
-  settings' hashes, until the first input is read), per input between stages
-  (hashing the input, the row, storing the record) and the end (catalogue,
-  diagram, report), each also with this code's and another checkout's specan
-  when ``--compare-with`` names one;
+* ``--overhead N``: runs ``specan run`` on N of them (one job, for each
+  ``--plots`` choice) in a fresh process with every stage call and every
+  figure timed, and prints the run's CPU time per spectrum: in the stages, in
+  the figures (how many, the first one, which also imports matplotlib and
+  lays out the reused figure, and the median one), and outside both: start-up
+  (interpreter, imports, the settings' hashes, until the first input is read),
+  per input between stages (hashing the input, the row, storing the record)
+  and the end (catalogue, diagram, report); each also with this code's and
+  another checkout's specan when ``--compare-with`` names one, the checkouts
+  alternated twice;
+* ``--figures K --compare-with DIR``: the same figures drawn by this
+  checkout's plots module and by DIR's, loaded side by side in this process
+  and alternated, with the CPU ms of each and whether their PNGs are the same;
 * ``--compare-with DIR``: runs the demo night (``sample_spectra``) with this
   code and with the specan of another checkout (e.g. the slow path before the
   night run was made fast) and compares every catalogue column both have.
@@ -47,8 +53,8 @@ Usage::
     python benchmarks/bench_pipeline.py --profile 40
     python benchmarks/bench_pipeline.py --counts 1000 --jobs 1,2 --plots none,flagged
     python benchmarks/bench_pipeline.py --counts 1000,100000 --jobs 1 --plots none --stages read,prepare
-    python benchmarks/bench_pipeline.py --overhead 300 [--compare-with /tmp/before]
-    python benchmarks/bench_pipeline.py --figures 30
+    python benchmarks/bench_pipeline.py --overhead 300 --plots none,flagged [--compare-with /tmp/before]
+    python benchmarks/bench_pipeline.py --figures 30 [--compare-with /tmp/before]
     git archive 1a733f4 | tar -x -C /tmp/slow && python benchmarks/bench_pipeline.py --compare-with /tmp/slow
 """
 
@@ -286,15 +292,70 @@ def figures(paths, rounds=3):
             setattr(plots, name, func)
 
 
+def figures_side_by_side(paths, other, rounds=5):
+    """CPU ms of one figure with this checkout's plots module and another's, alternated in one process.
+
+    The other checkout's ``specan/plots.py`` is loaded beside this one's (as a module of this
+    specan, so it draws with the same matplotlib, fonts and stage results); each round draws
+    every kept spectrum with one, then with the other, so the machine's load moves both alike.
+    Also says whether the two give the same pixels.
+    """
+    import importlib.util
+
+    from specan import pipeline, plots
+
+    spec = importlib.util.spec_from_file_location("specan._plots_compared", Path(other) / "specan" / "plots.py")
+    theirs = importlib.util.module_from_spec(spec)
+    spec.loader.exec_module(theirs)
+    kept = []
+
+    def keep(rec, path, spectrum, lines, velocity, classification):
+        kept.append((spectrum, lines, velocity, classification, f"{rec.values.get('object')}  ({Path(path).name})"))
+        return {}
+
+    real_plots, pipeline._plots = pipeline._plots, keep
+    settings = {"plots": "all", "calibration": str(CALIBRATION)}
+    for p in paths:
+        pipeline.analyse_file(str(p), settings)
+    pipeline._plots = real_plots
+
+    def draw(module, item):
+        spectrum, lines, velocity, classification, title = item
+        return module.spectrum_figures(spectrum, lines=lines, velocity=velocity, classification=classification,
+                                       title=title)
+
+    same = [draw(plots, k) == draw(theirs, k) for k in kept]   # also: each figure made, fonts loaded
+    times = {"this": [], "other": []}
+    for _ in range(rounds):
+        for name, module in (("this", plots), ("other", theirs)):
+            c = time.process_time()
+            for k in kept:
+                draw(module, k)
+            times[name].append(1e3 * (time.process_time() - c) / len(kept))
+    this, that = np.median(times["this"]), np.median(times["other"])
+    print(f"# one figure, CPU ms, median of {rounds} alternated rounds of {len(kept)} figures, load average "
+          f"{os.getloadavg()[0]:.1f}: {this:.1f} with {Path(plots.__file__).parents[1]} "
+          f"({', '.join(f'{t:.1f}' for t in times['this'])}), {that:.1f} with {other} "
+          f"({', '.join(f'{t:.1f}' for t in times['other'])}): {this / that:.2f}x; "
+          f"the same PNG bytes for {sum(same)} of {len(same)} figures")
+
+
 # --------------------------------------------------------------------------- the run's own overhead
 
 #: Run in the timed process: ``specan run`` with each stage call timed; the stage times and the
 #: moments the first input started and the last one ended go to the file named by argv[1].
 _TIMED_RUN = r"""
 import json, sys, time
-record = {"stages": 0.0, "first": None, "last": None, "count": 0}
+record = {"stages": 0.0, "first": None, "last": None, "count": 0, "figures": []}
 from specan import pipeline
-real_stage, real_analyse = pipeline._stage_function, pipeline.analyse_file
+real_stage, real_analyse, real_plots = pipeline._stage_function, pipeline.analyse_file, pipeline._plots
+
+def timed_plots(*args, **kwargs):
+    t = time.process_time()
+    try:
+        return real_plots(*args, **kwargs)
+    finally:
+        record["figures"].append(time.process_time() - t)
 
 def timed_stage(name):
     func = real_stage(name)
@@ -314,7 +375,7 @@ def analyse(*args, **kwargs):
     finally:
         record["last"], record["count"] = time.process_time(), record["count"] + 1
 
-pipeline._stage_function, pipeline.analyse_file = timed_stage, analyse
+pipeline._stage_function, pipeline.analyse_file, pipeline._plots = timed_stage, analyse, timed_plots
 from specan.cli import main
 try:
     status = main(sys.argv[2:])
@@ -325,37 +386,45 @@ sys.exit(status)
 """
 
 
-def overhead(paths_folder, count, work, checkouts):
-    """The run's own CPU time outside the stages, ms per spectrum, for each checkout's specan.
+def overhead(paths_folder, count, work, checkouts, plot_choices=("none",)):
+    """The run's CPU time in the stages, in the figures and outside both, ms per spectrum, for each checkout.
 
-    CPU time of the run's process (its stages timed inside it): on a machine others load, the
-    wall clock of the same run moved by a factor of two, its CPU time far less.
+    CPU time of the run's process (its stages and figures timed inside it): on a machine
+    others load, the wall clock of the same run moved by a factor of two, its CPU time far
+    less. With figures, what a flagged run costs more than one without is then split into
+    the figures themselves and everything else.
     """
     import json
 
-    print(f"# specan run on {count} spectra, --jobs 1 --plots none; CPU ms per spectrum (start-up and end: "
-          f"CPU ms per run / {count}); load average before: {os.getloadavg()[0]:.1f}")
-    print(f"{'checkout':>28} {'wall':>7} {'CPU':>7} {'stages':>7} {'outside':>8} {'start-up':>9} {'between':>8} "
-          f"{'end':>6}   start-up s  end s")
+    print(f"# specan run on {count} spectra, --jobs 1; CPU ms per spectrum (start-up and end: CPU ms per run / "
+          f"{count}; first and median figure: ms per figure); load average before: {os.getloadavg()[0]:.1f}")
+    print(f"{'checkout':>28} {'plots':>8} {'wall':>7} {'CPU':>7} {'stages':>7} {'figures':>8} {'drawn':>6} "
+          f"{'first':>6} {'median':>7} {'outside':>8} {'start-up':>9} {'between':>8} {'end':>6}   start-up s  end s")
     for _ in range(2):   # twice, alternating: the machine's load moves both alike
-        for path in checkouts:
-            out = work / "out_overhead"
-            shutil.rmtree(out, ignore_errors=True)
-            report = work / "overhead.json"
-            cmd = [sys.executable, "-c", _TIMED_RUN, str(report), "run", str(paths_folder), "--out", str(out),
-                   "--jobs", "1", "--plots", "none", "--calibration", str(CALIBRATION)]
-            env = dict(os.environ, PYTHONPATH=str(path))
-            t0 = time.perf_counter()
-            subprocess.run(cmd, env=env, cwd=str(path), stdout=subprocess.DEVNULL, stderr=subprocess.DEVNULL)
-            wall = time.perf_counter() - t0
-            r = json.loads(report.read_text())
-            n = r["count"]
-            start, end = r["first"], r["end"] - r["last"]
-            between = (r["last"] - r["first"]) - r["stages"]
-            outside = r["end"] - r["stages"]
-            print(f"{str(path)[-28:]:>28} {1e3 * wall / n:7.1f} {1e3 * r['end'] / n:7.1f} {1e3 * r['stages'] / n:7.1f} "
-                  f"{1e3 * outside / n:8.1f} {1e3 * start / n:9.2f} {1e3 * between / n:8.2f} "
-                  f"{1e3 * end / n:6.2f}   {start:9.2f} {end:6.2f}   load {os.getloadavg()[0]:.1f}", flush=True)
+        for plots in plot_choices:
+            for path in checkouts:
+                out = work / "out_overhead"
+                shutil.rmtree(out, ignore_errors=True)
+                report = work / "overhead.json"
+                cmd = [sys.executable, "-c", _TIMED_RUN, str(report), "run", str(paths_folder), "--out", str(out),
+                       "--jobs", "1", "--plots", plots, "--calibration", str(CALIBRATION)]
+                env = dict(os.environ, PYTHONPATH=str(path))
+                t0 = time.perf_counter()
+                subprocess.run(cmd, env=env, cwd=str(path), stdout=subprocess.DEVNULL, stderr=subprocess.DEVNULL)
+                wall = time.perf_counter() - t0
+                r = json.loads(report.read_text())
+                n = r["count"]
+                figures = r.get("figures", [])
+                drawn = sum(figures)
+                start, end = r["first"], r["end"] - r["last"]
+                between = (r["last"] - r["first"]) - r["stages"] - drawn
+                outside = r["end"] - r["stages"] - drawn
+                first = 1e3 * figures[0] if figures else float("nan")
+                median = 1e3 * float(np.median(figures[1:])) if len(figures) > 1 else float("nan")
+                print(f"{str(path)[-28:]:>28} {plots:>8} {1e3 * wall / n:7.1f} {1e3 * r['end'] / n:7.1f} "
+                      f"{1e3 * r['stages'] / n:7.1f} {1e3 * drawn / n:8.1f} {len(figures):>6} {first:6.0f} "
+                      f"{median:7.1f} {1e3 * outside / n:8.1f} {1e3 * start / n:9.2f} {1e3 * between / n:8.2f} "
+                      f"{1e3 * end / n:6.2f}   {start:9.2f} {end:6.2f}   load {os.getloadavg()[0]:.1f}", flush=True)
 
 
 # --------------------------------------------------------------------------- whole runs
@@ -490,7 +559,9 @@ def main(argv=None):
     args = parser.parse_args(argv)
     work = args.workdir or Path(tempfile.mkdtemp(prefix="specan-bench-"))
     work.mkdir(parents=True, exist_ok=True)
-    if args.figures:
+    if args.figures and args.compare_with:
+        figures_side_by_side(make_spectra(work / "spectra_all", args.figures), Path(args.compare_with))
+    elif args.figures:
         figures(make_spectra(work / "spectra_all", args.figures))
     elif args.overhead:
         make_spectra(work / "spectra_all", args.overhead)
@@ -500,7 +571,8 @@ def main(argv=None):
             for i in range(args.overhead):
                 name = f"bench_{i:06d}.fits"
                 os.link(work / "spectra_all" / name, folder / name)
-        overhead(folder, args.overhead, work, [ROOT] + ([Path(args.compare_with)] if args.compare_with else []))
+        overhead(folder, args.overhead, work, [ROOT] + ([Path(args.compare_with)] if args.compare_with else []),
+                 [p.strip() for p in args.plots.split(",")])
     elif args.compare_with:
         compare(args.compare_with, work)
     elif args.profile:

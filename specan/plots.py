@@ -5,9 +5,14 @@ than through pyplot: no global figure registry (memory stays flat over
 thousands of spectra) and no GUI backend, so this works in worker processes
 and on machines without a display.
 
-A process draws every spectrum on one figure, made once and cleared between
-spectra (making a figure and its grid of axes was a fifth of a drawing), and
-the figure is rendered once: the PNG is encoded from the rendered pixels, and
+A process draws every spectrum on one figure, made once with its artists (the
+spectrum, the line markers and names, the CCF and its peaks, the criteria's
+points, the legends), which each spectrum gives new data; anything else a
+spectrum drew is removed before the next (making the figure and its grid of
+axes was a fifth of a drawing, making the artists again another fifth). Its
+x labels are held where matplotlib first put them, below tick labels whose
+height never changes (placing them again lays out every tick label a second
+time). The figure is rendered once: the PNG is encoded from the rendered pixels, and
 the thumbnail is the spectrum panel of the same pixels, shrunk. The figure's
 renderer keeps the pixels of every string it has drawn (tick values, line and
 criterion names, axis labels: the same few hundred on every figure of a night),
@@ -212,13 +217,44 @@ def _line_positions(lines, limit=None):
     return [(float(wave[i]), str(lines[label_col][i]) if label_col else "") for i in index[:limit]]
 
 
-#: Font size (points) of the line names on the spectrum.
+#: Font size (points) of the line names on the spectrum, and how many lines are named at most.
 LINE_LABEL_SIZE = 6
+MAX_NAMED_LINES = 30
 
 
-def _draw_spectrum(ax, spectrum, lines, normalized, small=False):
+class _SpectrumArtists:
+    """The spectrum panel's artists: the spectrum, the line markers and the line names.
+
+    Made once on the reused figure and given each spectrum's data (making them again for
+    every spectrum, the thirty names above all, was a fifth of a figure's time); on a
+    fresh axes they are made for that one drawing. Names are made as many as are needed.
+    """
+
+    def __init__(self, ax, small=False):
+        self.ax = ax
+        self.line = ax.plot([], [], lw=0.5 if small else 0.6, color="k")[0]
+        # one collection for the markers (an axvline each was a tenth of the drawing)
+        self.markers = ax.vlines([], 0.0, 1.0, transform=ax.get_xaxis_transform(), color="tab:blue", lw=0.4,
+                                 alpha=0.5)
+        self.names = []
+
+    def artists(self):
+        return [self.line, self.markers, *self.names]
+
+    def name(self, k):
+        """The k-th line name's text artist (made when first needed)."""
+        while len(self.names) <= k:
+            self.names.append(self.ax.text(0.0, 0.0, "", rotation=90, fontsize=LINE_LABEL_SIZE, ha="center",
+                                           va="top", color="tab:blue", clip_on=True, visible=False))
+        return self.names[k]
+
+
+def _draw_spectrum(ax, spectrum, lines, normalized, small=False, artists=None):
+    artists = artists or _SpectrumArtists(ax, small)
     wave, flux = _spectrum_arrays(spectrum)
-    ax.plot(wave, flux, lw=0.5 if small else 0.6, color="k")
+    artists.line.set_data(wave, flux)
+    artists.line.set_visible(True)
+    _autoscaled(ax)
     finite = flux[np.isfinite(flux)]
     if finite.size:
         # the full depth of absorption lines and the full height of emission lines set the scale
@@ -239,17 +275,18 @@ def _draw_spectrum(ax, spectrum, lines, normalized, small=False):
         x_pt = ax.transData.transform([(w, 0.0) for w, _ in candidates])[:, 0] * 72.0 / ax.figure.dpi
         kept = []
         for i in range(len(candidates)):   # deepest first
-            if len(kept) == 30:
+            if len(kept) == MAX_NAMED_LINES:
                 break
             if all(abs(x_pt[i] - x_pt[j]) >= 1.3 * LINE_LABEL_SIZE for j in kept):
                 kept.append(i)
-        # one collection for the markers (an axvline each was a tenth of the drawing)
-        ax.vlines([candidates[i][0] for i in kept], 0.0, 1.0, transform=ax.get_xaxis_transform(),
-                  color="tab:blue", lw=0.4, alpha=0.5)
-        for i in sorted(kept):
+        artists.markers.set_segments([[(candidates[i][0], 0.0), (candidates[i][0], 1.0)] for i in kept])
+        artists.markers.set_visible(True)
+        for k, i in enumerate(sorted(kept)):
             w, label = candidates[i]
-            ax.text(w, top, label, rotation=90, fontsize=LINE_LABEL_SIZE, ha="center", va="top", color="tab:blue",
-                    clip_on=True)
+            text = artists.name(k)
+            text.set_position((w, top))
+            text.set_text(label)
+            text.set_visible(True)
     ax.set_xlabel("wavelength (Angstrom)")
     ax.set_ylabel("normalised flux" if normalized else "flux")
 
@@ -303,7 +340,40 @@ def _draw_rest_frame_lines(ax, spectrum, lines, velocity):
     return True
 
 
-def _draw_ccf(ax, velocity, spectrum=None, lines=None):
+def _autoscaled(ax):
+    """The axes' limits from the artists shown now, as plotting them would set them.
+
+    An artist given new data does not move the limits as a new one does (the data limits
+    are the shown artists' again, then the view follows them where no limit is set).
+    """
+    ax.relim(visible_only=True)
+    ax.autoscale_view()
+
+
+class _CCFArtists:
+    """The CCF panel's artists (the function, its peak and second peak) and its two legends."""
+
+    def __init__(self, ax):
+        # "_" names: a legend gathered from the panel (the rest-frame profiles') leaves them out
+        self.line = ax.plot([], [], color="k", lw=0.7, label="_ccf")[0]
+        self.peak = ax.axvline(0.0, color="tab:red", lw=0.7, label="_peak", visible=False)
+        self.second = ax.axvline(0.0, color="tab:orange", lw=0.7, ls="--", label="_second peak", visible=False)
+        self.legends = {}
+
+    def artists(self):
+        return [self.line, self.peak, self.second]
+
+    def legend(self, ax, with_second):
+        """The panel's legend (made once for each set of entries, as ``ax.legend`` makes it)."""
+        if with_second not in self.legends:
+            handles, labels = [self.peak], ["peak"]
+            if with_second:
+                handles, labels = [self.peak, self.second], ["peak", "second peak"]
+            self.legends[with_second] = ax.legend(handles, labels, fontsize=6, loc="upper right")
+        ax.legend_ = self.legends[with_second]
+
+
+def _draw_ccf(ax, velocity, spectrum=None, lines=None, artists=None):
     """Cross-correlation function if the velocity stage returned one."""
     ccf = None
     # the keys specan.velocity.measure returns
@@ -318,11 +388,14 @@ def _draw_ccf(ax, velocity, spectrum=None, lines=None):
         return
     import astropy.units as u
 
+    artists = artists or _CCFArtists(ax)
     v = ccf[0].to_value(u.km / u.s) if hasattr(ccf[0], "unit") else np.asarray(ccf[0], float)
     c = np.asarray(getattr(ccf[1], "value", ccf[1]), float)
-    ax.plot(v, c, color="k", lw=0.7)
+    artists.line.set_data(v, c)
+    artists.line.set_visible(True)
     peak = v[np.nanargmax(c)] if np.isfinite(c).any() else 0.0
-    ax.axvline(peak, color="tab:red", lw=0.7, label="peak")
+    artists.peak.set_xdata([peak, peak])
+    artists.peak.set_visible(True)
     second = velocity.get("second_peak_rv")
     if second is not None:
         second = second.to_value(u.km / u.s) if hasattr(second, "unit") else float(second)
@@ -331,15 +404,45 @@ def _draw_ccf(ax, velocity, spectrum=None, lines=None):
             # second_peak_rv is in the frame of rv; the CCF axis is topocentric
             second -= float(u.Quantity(rv, u.km / u.s).value - u.Quantity(rv_topo, u.km / u.s).value)
         if np.isfinite(second):
-            ax.axvline(second, color="tab:orange", lw=0.7, ls="--", label="second peak")
+            artists.second.set_xdata([second, second])
+            artists.second.set_visible(True)
+    _autoscaled(ax)
     # the peak and its neighbourhood (a companion within 1,500 km/s), not the whole lag range
     ax.set_xlim(peak - 1500, peak + 1500)
-    ax.legend(fontsize=6, loc="upper right")
+    artists.legend(ax, artists.second.get_visible())
     ax.set_xlabel("velocity of the template shift (km/s)")
     ax.set_ylabel("CCF")
 
 
-def _draw_criteria(ax, classification):
+class _CriteriaArtists:
+    """The criteria panel's two sets of points (the star's, the standards') and its two legends."""
+
+    def __init__(self, ax):
+        self.star = ax.scatter([], [], color="k", s=10, label="_this star", zorder=3)
+        self.standard = ax.scatter([], [], facecolor="none", edgecolor="tab:red", s=25, label="_standard",
+                                   visible=False)
+        self.legends = {}
+
+    def artists(self):
+        return [self.star, self.standard]
+
+    def legend(self, ax, with_standard):
+        """The panel's legend (made once for each set of entries, as ``ax.legend`` makes it)."""
+        if with_standard not in self.legends:
+            handles, labels = [self.star], ["this star"]
+            if with_standard:
+                handles, labels = [self.star, self.standard], ["this star", "standard"]
+            self.legends[with_standard] = ax.legend(handles, labels, fontsize=6, loc="best")
+        ax.legend_ = self.legends[with_standard]
+
+
+def _points(x, y):
+    """(n, 2) offsets of the finite points (what ``scatter`` draws of x, y with NaNs)."""
+    good = np.isfinite(x) & np.isfinite(y)
+    return np.column_stack([x[good], y[good]])
+
+
+def _draw_criteria(ax, classification, artists=None):
     """Classification criteria measured on this star against the standards' values, if given."""
     crit = classification.get("criteria") if isinstance(classification, dict) else None
     if not crit:
@@ -349,6 +452,7 @@ def _draw_criteria(ax, classification):
         ax.text(0.5, 0.5, text, ha="center", va="center", fontsize=7, transform=ax.transAxes)
         ax.set_axis_off()
         return
+    artists = artists or _CriteriaArtists(ax)
     names, star, standard = [], [], []
     # specan.classify gives {name: {"value": star's or None, "standard": the relation's at the fitted type}}
     for name, value in crit.items():
@@ -362,46 +466,86 @@ def _draw_criteria(ax, classification):
     keep = np.sort(np.argsort(strength)[::-1][:15])
     names, star, standard = names[keep], star[keep], standard[keep]
     y = np.arange(len(names))
-    ax.scatter(star, y, color="k", s=10, label="this star", zorder=3)
+    artists.star.set_offsets(_points(star, y))
+    artists.star.set_visible(True)
     if np.isfinite(standard).any():
-        ax.scatter(standard, y, facecolor="none", edgecolor="tab:red", s=25, label="standard")
+        artists.standard.set_offsets(_points(standard, y))
+        artists.standard.set_visible(True)
     ax.set_yticks(y, names, fontsize=6)
-    ax.legend(fontsize=6, loc="best")
+    _autoscaled(ax)   # after the ticks: naming them widened the view
+    artists.legend(ax, artists.standard.get_visible())
     mk = classification.get("mk")
     ax.set_title(f"strongest criteria, against the standards' relations at {mk}" if mk else
                  "strongest criteria", fontsize=7, y=1.0)
     ax.set_xlabel("criterion value")
 
 
-_REUSED = {}
+class _ReusedFigure:
+    """This process's figure for spectra: three axes (spectrum, CCF, criteria) and their artists, made once."""
 
-
-def _spectrum_figure():
-    """This process's figure for spectra and its three axes (spectrum, CCF, criteria), made once."""
-    if "figure" not in _REUSED:
+    def __init__(self):
         fig = _canvas(10, 7, cached_text=True)
         fig.set_dpi(FIGURE_DPI)
         # fixed margins: tight_layout would draw the figure twice (a fifth of the time per spectrum)
         grid = fig.add_gridspec(2, 2, height_ratios=[1.2, 1], left=0.07, right=0.98, bottom=0.08, top=0.95,
                                 hspace=0.3, wspace=0.3)
-        axes = (fig.add_subplot(grid[0, :]), fig.add_subplot(grid[1, 0]), fig.add_subplot(grid[1, 1]))
-        _REUSED["figure"] = (fig, axes)
-    fig, axes = _REUSED["figure"]
-    for ax in axes:
-        _emptied(ax)
-    return fig, axes
+        self.figure = fig
+        self.axes = (fig.add_subplot(grid[0, :]), fig.add_subplot(grid[1, 0]), fig.add_subplot(grid[1, 1]))
+        self.spectrum = _SpectrumArtists(self.axes[0])
+        self.ccf = _CCFArtists(self.axes[1])
+        self.criteria = _CriteriaArtists(self.axes[2])
+        self._fixed_label_places()
+
+    def _fixed_label_places(self):
+        """The axes' x labels held where matplotlib puts them, below the tick labels.
+
+        At every draw matplotlib lays out every tick label of an axis a second time to place
+        the axis label clear of them (a sixth of a figure's time). Below the axes that place
+        does not depend on the spectrum: tick labels of one font are one line high whatever
+        their digits, so it is found once here, on a first draw, and kept. The y labels stay
+        matplotlib's to place (beside the tick labels, whose width changes); the criteria
+        panel has no y label, so its names are not measured for one.
+        """
+        for ax in self.axes:
+            ax.set_xlabel("x")
+        self.figure.canvas.draw()
+        for ax in self.axes:
+            _, y = ax.xaxis.label.get_position()   # in pixels, under the axes
+            ax.xaxis.set_label_coords(0.5, (y - ax.bbox.y0) / ax.bbox.height)
+            ax.set_xlabel("")
+        self.axes[2].yaxis.set_label_coords(0.0, 0.5)
+
+    def emptied(self):
+        """The figure without what the previous spectrum drew (its own artists hidden, the rest removed)."""
+        for ax, kept in zip(self.axes, (self.spectrum, self.ccf, self.criteria)):
+            _emptied(ax, kept.artists())
+        return self
 
 
-def _emptied(ax):
-    """The axes without what the previous spectrum drew, its ticks kept.
+_REUSED = {}
+
+
+def _spectrum_figure():
+    """This process's :class:`_ReusedFigure`, emptied."""
+    if "figure" not in _REUSED:
+        _REUSED["figure"] = _ReusedFigure()
+    return _REUSED["figure"].emptied()
+
+
+def _emptied(ax, kept=()):
+    """The axes without what the previous spectrum drew: ``kept`` artists hidden, others removed, ticks kept.
 
     ``Axes.clear`` would drop the tick objects too, and making them again on the next draw
     was a third of a figure's time.
     """
     from matplotlib.ticker import AutoLocator, ScalarFormatter
 
+    kept = {id(a) for a in kept}
     for artist in [*ax.lines, *ax.collections, *ax.texts, *ax.patches, *ax.images]:
-        artist.remove()
+        if id(artist) in kept:
+            artist.set_visible(False)
+        else:
+            artist.remove()
     if ax.get_legend() is not None:
         ax.get_legend().remove()
     ax.set_title("")
@@ -410,7 +554,7 @@ def _emptied(ax):
     for axis in (ax.xaxis, ax.yaxis):   # the criteria panel names its ticks
         axis.set_major_locator(AutoLocator())
         axis.set_major_formatter(ScalarFormatter())
-    ax.relim()
+    ax.relim(visible_only=True)
     ax.set_autoscale_on(True)
     ax.set_axis_on()   # a panel with nothing to show was switched off for the previous spectrum
 
@@ -436,7 +580,7 @@ def _encode_png(image) -> bytes:
     raw[:, 1:].reshape(height, width, 3)[...] = change[:, :, :3]   # through a view of the rows
     header = struct.pack(">IIBBBBB", width, height, 8, 2, 0, 0, 0)   # 8 bits, RGB, no interlace
     return b"".join((b"\x89PNG\r\n\x1a\n", _png_chunk(b"IHDR", header),
-                     _png_chunk(b"IDAT", zlib.compress(raw.tobytes(), 1)), _png_chunk(b"IEND", b"")))
+                     _png_chunk(b"IDAT", zlib.compress(raw, 1)), _png_chunk(b"IEND", b"")))
 
 
 def _png_chunk(kind, data) -> bytes:
@@ -479,13 +623,14 @@ def spectrum_figures(spectrum, lines=None, velocity=None, classification=None, t
     from .obsinfo import get_info
 
     normalized = bool(get_info(spectrum).normalized)
-    fig, (ax, ax_ccf, ax_criteria) = _spectrum_figure()
-    _draw_spectrum(ax, spectrum, lines, normalized)
+    reused = _spectrum_figure()
+    fig, (ax, ax_ccf, ax_criteria) = reused.figure, reused.axes
+    _draw_spectrum(ax, spectrum, lines, normalized, artists=reused.spectrum)
     # y given: matplotlib then does not measure the tick labels to see whether the title must
     # move up (it never must here: no ticks on top), a tenth of the drawing
     ax.set_title(title, fontsize=9, y=1.0)
-    _draw_ccf(ax_ccf, velocity, spectrum, lines)
-    _draw_criteria(ax_criteria, classification)
+    _draw_ccf(ax_ccf, velocity, spectrum, lines, artists=reused.ccf)
+    _draw_criteria(ax_criteria, classification, artists=reused.criteria)
     fig.canvas.draw()
     rgba = np.asarray(fig.canvas.buffer_rgba())
     return {"full": _encode_png(rgba), "thumb": _thumbnail(rgba[:, :, :3], ax)}

@@ -1,5 +1,6 @@
 """Per-spectrum figures: what they show must be readable."""
 
+import astropy.units as u
 import numpy as np
 
 from specan import lines, plots, prepare, synth
@@ -70,3 +71,63 @@ def test_kept_text_pixels_change_nothing_but_the_texts_by_a_subpixel():
         rows_at, cols_at = np.indices(ink[1].shape)
         centres = [np.array([(w * rows_at).sum(), (w * cols_at).sum()]) / w.sum() for w in ink]
         assert np.all(np.abs(centres[0] - centres[1]) <= 1.0), t.get_text()
+
+
+def _analysed(sptype, lumclass, seed, binary=False):
+    import specan
+    from specan import velocity
+
+    if binary:   # a double-lined binary: the CCF panel marks a second peak
+        # as tests/test_velocity.py's well separated pair
+        raw = synth.binary(("G0", "V"), ("K0", "V"), rv1=-120 * u.km / u.s, rv2=180 * u.km / u.s, light_ratio=0.6,
+                           resolving_power=5000, snr=100, seed=seed)
+    else:
+        raw = synth.spectrum(sptype, lumclass, resolving_power=2000, snr=60, seed=seed, rv=40.0 * u.km / u.s)
+    spec = prepare.prepare(raw)
+    vel = velocity.measure(spec)
+    return spec, lines.measure(spec, rv=vel["rv_topo"]), vel, specan.classify(spec, rv=vel["rv_topo"])
+
+
+def test_reused_figure_keeps_nothing_of_the_spectrum_before():
+    # The figure and its artists are made once per process and given each spectrum's data; a
+    # spectrum drawn after another must be the picture a fresh figure gives it, pixel for pixel
+    # (a cool star with thirty names, then a hot one with few: no name, marker, point or
+    # legend entry of the first may be left, and the limits must follow the new data).
+    cool, hot = _analysed("K3", "III", 4), _analysed("A0", "V", 1)
+
+    def drawn(item):
+        spec, table, vel, cls = item
+        return plots.spectrum_figures(spec, lines=table, velocity=vel, classification=cls, title="t")
+
+    plots._REUSED.clear()
+    fresh_hot = drawn(hot)
+    plots._REUSED.clear()
+    fresh_cool = drawn(cool)
+    reused_hot = drawn(hot)       # on the figure the cool star was drawn on
+    reused_cool = drawn(cool)
+    assert reused_hot == fresh_hot and reused_cool == fresh_cool
+    figure = plots._REUSED["figure"]
+    named = [t for t in figure.axes[0].texts if t.get_visible()]
+    assert 10 <= len(named) <= plots.MAX_NAMED_LINES   # the cool star's names, not the hidden rest
+    assert figure.axes[1].get_legend() is not None and figure.axes[2].get_legend() is not None
+
+
+def test_reused_figure_after_a_binary_has_no_second_peak_left():
+    # A binary's CCF panel has a second peak and a two-entry legend; the single star drawn
+    # after it on the same figure must look as on a fresh figure.
+    pair, single = _analysed(None, None, 8, binary=True), _analysed("G2", "V", 2)
+    assert pair[2]["second_peak_rv"] is not None and single[2]["second_peak_rv"] is None
+
+    def drawn(item):
+        spec, table, vel, cls = item
+        return plots.spectrum_figures(spec, lines=table, velocity=vel, classification=cls, title="t")
+
+    plots._REUSED.clear()
+    fresh_single = drawn(single)
+    plots._REUSED.clear()
+    fresh_pair = drawn(pair)
+    legend = plots._REUSED["figure"].axes[1].get_legend()
+    assert [t.get_text() for t in legend.get_texts()] == ["peak", "second peak"]
+    assert drawn(single) == fresh_single and drawn(pair) == fresh_pair
+    legend = plots._REUSED["figure"].axes[1].get_legend()
+    assert [t.get_text() for t in legend.get_texts()] == ["peak", "second peak"]
