@@ -234,11 +234,10 @@ def profile(paths, out):
 # --------------------------------------------------------------------------- one figure
 
 
-def figures(paths, rounds=3):
-    """CPU ms of one per-spectrum figure and of its parts, on the figures of these spectra."""
-    from matplotlib.backends.backend_agg import FigureCanvasAgg
-
-    from specan import pipeline, plots
+def _figure_inputs(paths):
+    """Analyse ``paths`` in this process and keep what each one's figure is drawn from
+    (spectrum, lines, velocity, classification, title), drawing nothing."""
+    from specan import pipeline
 
     kept = []
 
@@ -248,9 +247,21 @@ def figures(paths, rounds=3):
 
     real_plots, pipeline._plots = pipeline._plots, keep
     settings = {"plots": "all", "calibration": str(CALIBRATION)}
-    for p in paths:
-        pipeline.analyse_file(str(p), settings)
-    pipeline._plots = real_plots
+    try:
+        for p in paths:
+            pipeline.analyse_file(str(p), settings)
+    finally:
+        pipeline._plots = real_plots
+    return kept
+
+
+def figures(paths, rounds=3):
+    """CPU ms of one per-spectrum figure and of its parts, on the figures of these spectra."""
+    from matplotlib.backends.backend_agg import FigureCanvasAgg
+
+    from specan import plots
+
+    kept = _figure_inputs(paths)
     parts = collections.defaultdict(float)
 
     def timed(name, func):
@@ -302,22 +313,12 @@ def figures_side_by_side(paths, other, rounds=5):
     """
     import importlib.util
 
-    from specan import pipeline, plots
+    from specan import plots
 
     spec = importlib.util.spec_from_file_location("specan._plots_compared", Path(other) / "specan" / "plots.py")
     theirs = importlib.util.module_from_spec(spec)
     spec.loader.exec_module(theirs)
-    kept = []
-
-    def keep(rec, path, spectrum, lines, velocity, classification):
-        kept.append((spectrum, lines, velocity, classification, f"{rec.values.get('object')}  ({Path(path).name})"))
-        return {}
-
-    real_plots, pipeline._plots = pipeline._plots, keep
-    settings = {"plots": "all", "calibration": str(CALIBRATION)}
-    for p in paths:
-        pipeline.analyse_file(str(p), settings)
-    pipeline._plots = real_plots
+    kept = _figure_inputs(paths)
 
     def draw(module, item):
         spectrum, lines, velocity, classification, title = item

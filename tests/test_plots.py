@@ -28,7 +28,7 @@ def test_line_names_do_not_cover_each_other_and_the_deepest_is_named():
     assert str(deepest["id"]) in {t.get_text() for t in texts}
 
 
-def _drawn(spec, table, kept_text):
+def __drawn(spec, table, kept_text):
     fig = plots._canvas(10, 7, cached_text=kept_text)
     fig.set_dpi(plots.FIGURE_DPI)
     ax = fig.add_subplot()
@@ -45,8 +45,8 @@ def test_kept_text_pixels_change_nothing_but_the_texts_by_a_subpixel():
     # text must stay within a pixel of where Agg writes it.
     spec = prepare.prepare(synth.spectrum("K3", "III", resolving_power=2000, snr=100, seed=4))
     table = lines.measure(spec)
-    fig, kept = _drawn(spec, table, kept_text=True)
-    _, agg = _drawn(spec, table, kept_text=False)
+    fig, kept = __drawn(spec, table, kept_text=True)
+    _, agg = __drawn(spec, table, kept_text=False)
     renderer = fig.canvas.get_renderer()
     texts = [t for ax in fig.axes for t in [*ax.texts, ax.title, ax.xaxis.label, ax.yaxis.label,
                                                *ax.get_xticklabels(), *ax.get_yticklabels()] if t.get_text()]
@@ -88,6 +88,12 @@ def _analysed(sptype, lumclass, seed, binary=False):
     return spec, lines.measure(spec, rv=vel["rv_topo"]), vel, specan.classify(spec, rv=vel["rv_topo"])
 
 
+def _drawn(item):
+    """The PNG bytes of an analysed star's figure (see :func:`_analysed`)."""
+    spec, table, vel, cls = item
+    return plots.spectrum_figures(spec, lines=table, velocity=vel, classification=cls, title="t")
+
+
 def test_reused_figure_keeps_nothing_of_the_spectrum_before():
     # The figure and its artists are made once per process and given each spectrum's data; a
     # spectrum drawn after another must be the picture a fresh figure gives it, pixel for pixel
@@ -95,16 +101,12 @@ def test_reused_figure_keeps_nothing_of_the_spectrum_before():
     # legend entry of the first may be left, and the limits must follow the new data).
     cool, hot = _analysed("K3", "III", 4), _analysed("A0", "V", 1)
 
-    def drawn(item):
-        spec, table, vel, cls = item
-        return plots.spectrum_figures(spec, lines=table, velocity=vel, classification=cls, title="t")
-
     plots._REUSED.clear()
-    fresh_hot = drawn(hot)
+    fresh_hot = _drawn(hot)
     plots._REUSED.clear()
-    fresh_cool = drawn(cool)
-    reused_hot = drawn(hot)       # on the figure the cool star was drawn on
-    reused_cool = drawn(cool)
+    fresh_cool = _drawn(cool)
+    reused_hot = _drawn(hot)       # on the figure the cool star was drawn on
+    reused_cool = _drawn(cool)
     assert reused_hot == fresh_hot and reused_cool == fresh_cool
     figure = plots._REUSED["figure"]
     named = [t for t in figure.axes[0].texts if t.get_visible()]
@@ -118,16 +120,12 @@ def test_reused_figure_after_a_binary_has_no_second_peak_left():
     pair, single = _analysed(None, None, 8, binary=True), _analysed("G2", "V", 2)
     assert pair[2]["second_peak_rv"] is not None and single[2]["second_peak_rv"] is None
 
-    def drawn(item):
-        spec, table, vel, cls = item
-        return plots.spectrum_figures(spec, lines=table, velocity=vel, classification=cls, title="t")
-
     plots._REUSED.clear()
-    fresh_single = drawn(single)
+    fresh_single = _drawn(single)
     plots._REUSED.clear()
-    fresh_pair = drawn(pair)
+    fresh_pair = _drawn(pair)
     legend = plots._REUSED["figure"].axes[1].get_legend()
     assert [t.get_text() for t in legend.get_texts()] == ["peak", "second peak"]
-    assert drawn(single) == fresh_single and drawn(pair) == fresh_pair
+    assert _drawn(single) == fresh_single and _drawn(pair) == fresh_pair
     legend = plots._REUSED["figure"].axes[1].get_legend()
     assert [t.get_text() for t in legend.get_texts()] == ["peak", "second peak"]
