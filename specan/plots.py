@@ -350,6 +350,15 @@ def _autoscaled(ax):
     ax.autoscale_view()
 
 
+
+def _kept_legend(legends, ax, entries, with_second, loc):
+    """Put on ``ax`` the legend of the first entry, or of both with ``with_second``: made by
+    ``ax.legend`` once for each choice and kept in ``legends``, then reused."""
+    if with_second not in legends:
+        chosen = entries if with_second else entries[:1]
+        legends[with_second] = ax.legend([h for h, _ in chosen], [t for _, t in chosen], fontsize=6, loc=loc)
+    ax.legend_ = legends[with_second]
+
 class _CCFArtists:
     """The CCF panel's artists (the function, its peak and second peak) and its two legends."""
 
@@ -365,12 +374,8 @@ class _CCFArtists:
 
     def legend(self, ax, with_second):
         """The panel's legend (made once for each set of entries, as ``ax.legend`` makes it)."""
-        if with_second not in self.legends:
-            handles, labels = [self.peak], ["peak"]
-            if with_second:
-                handles, labels = [self.peak, self.second], ["peak", "second peak"]
-            self.legends[with_second] = ax.legend(handles, labels, fontsize=6, loc="upper right")
-        ax.legend_ = self.legends[with_second]
+        _kept_legend(self.legends, ax, [(self.peak, "peak"), (self.second, "second peak")], with_second,
+                     "upper right")
 
 
 def _draw_ccf(ax, velocity, spectrum=None, lines=None, artists=None):
@@ -428,12 +433,8 @@ class _CriteriaArtists:
 
     def legend(self, ax, with_standard):
         """The panel's legend (made once for each set of entries, as ``ax.legend`` makes it)."""
-        if with_standard not in self.legends:
-            handles, labels = [self.star], ["this star"]
-            if with_standard:
-                handles, labels = [self.star, self.standard], ["this star", "standard"]
-            self.legends[with_standard] = ax.legend(handles, labels, fontsize=6, loc="best")
-        ax.legend_ = self.legends[with_standard]
+        _kept_legend(self.legends, ax, [(self.star, "this star"), (self.standard, "standard")], with_standard,
+                     "best")
 
 
 def _points(x, y):
