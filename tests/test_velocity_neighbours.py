@@ -14,33 +14,15 @@ from pathlib import Path
 
 import astropy.units as u
 import numpy as np
-import pytest
-from astropy.nddata import StdDevUncertainty
-from scipy.interpolate import make_interp_spline
-from specutils import Spectrum
 
 import specan
 from specan import synth, templates, velocity
-from specan.obsinfo import META_KEY, ObsInfo
 from specan.velocity import bank, choice
+from test_velocity_fast_path import kurucz_spectrum  # the Kurucz model Sun at v km/s, S/N 50
 
 ROOT = Path(__file__).resolve().parents[1]
 KMS = u.km / u.s
 GRID = {f"synthetic {a} {b}" for a, b in templates.automatic_types()}
-
-
-def kurucz_spectrum(kurucz_sun, v, seed, snr=50.0):
-    """The Kurucz model Sun (R 2000 as carried) at ``v`` km/s on 4,000 linear pixels."""
-    w, f, c = kurucz_sun
-    model = make_interp_spline(np.log(w), f / c, k=3)
-    pix = np.arange(4000.0, 4000.0 + 4000 * 0.625, 0.625)
-    flux = model(np.log(pix) - np.log(velocity.doppler_factor(v * KMS)))
-    sig = np.sqrt(np.clip(flux, 1e-3, None)) / snr
-    flux = flux + np.random.default_rng(seed).normal(size=flux.size) * sig
-    info = ObsInfo(object="Kurucz Sun", medium="vacuum", medium_assumed=False, resolving_power=2000.0,
-                   normalized=True)
-    return Spectrum(flux=flux * u.dimensionless_unscaled, spectral_axis=pix * u.AA,
-                    uncertainty=StdDevUncertainty(sig), meta={META_KEY: info})
 
 
 def summary(res):
