@@ -199,6 +199,9 @@ def _observer_table(geocentric, day):
     from astropy.coordinates import EarthLocation, get_body_barycentric_posvel
     from astropy.time import Time
 
+    from ._offline import load_earth_orientation
+
+    load_earth_orientation()   # the site's velocity needs Earth orientation: parsed once, then cached on disk
     margin = TABLE_ORDER // 2
     nodes = TABLE_STEP * np.arange(-margin, round(1.0 / TABLE_STEP) + margin + 1)
     times = Time(day + nodes, format="mjd", scale="utc")

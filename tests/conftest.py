@@ -19,6 +19,22 @@ JHC_DIR = ROOT.parent / "shared" / "reference" / "jhc1984"
 MILES_DIR = ROOT.parent / "shared" / "reference" / "miles"
 
 
+@pytest.fixture(scope="session", autouse=True)
+def _own_cache_folder(tmp_path_factory):
+    """specan's cache (the parsed Earth-orientation table) in a folder of this test session's, for it and
+    the commands it starts: tests never write into the user's ~/.cache."""
+    import os
+
+    folder = tmp_path_factory.mktemp("specan_cache")
+    saved = os.environ.get("SPECAN_CACHE_DIR")
+    os.environ["SPECAN_CACHE_DIR"] = str(folder)
+    yield folder
+    if saved is None:
+        os.environ.pop("SPECAN_CACHE_DIR", None)
+    else:
+        os.environ["SPECAN_CACHE_DIR"] = saved
+
+
 @pytest.fixture(scope="session")
 def jhc1984():
     """Folder of the JHC (1984) reference library, or skip with the reason."""

@@ -122,3 +122,94 @@ def test_galactic_rest_frame_velocity_agrees_with_astropys_galactocentric_frame(
             assert got.to_value(u.km / u.s) == pytest.approx(
                 frames.galactic_rest_frame_velocity(rv * u.km / u.s, c).to_value(u.km / u.s), abs=1e-9)
     assert worst < 1e-6
+
+
+@pytest.fixture
+def fresh_earth_orientation(tmp_path, monkeypatch):
+    """A cache folder of the test's own and no table parsed yet; astropy's table as it was afterwards."""
+    from astropy.utils import iers
+
+    before = iers.IERS_Auto.iers_table
+    monkeypatch.setenv("SPECAN_CACHE_DIR", str(tmp_path / "cache"))
+    iers.IERS_Auto.iers_table = None
+    yield tmp_path / "cache"
+    iers.IERS_Auto.iers_table = before
+
+
+def _astropys_own_parse():
+    """astropy's parse of its bundled IERS tables, made here without specan."""
+    from astropy.utils import iers
+
+    saved, iers.IERS_Auto.iers_table = iers.IERS_Auto.iers_table, None
+    try:
+        return iers.IERS_Auto.open()
+    finally:
+        iers.IERS_Auto.iers_table = saved
+
+
+def test_cached_earth_orientation_is_astropys_table_to_the_bit(fresh_earth_orientation):
+    """The table read back from specan's cache has astropy's own parse's numbers, column by column, and
+    astropy gives the same site velocity with either (astropy's bundled IERS tables are the reference)."""
+    from astropy.utils import iers
+
+    from specan._offline import load_earth_orientation
+
+    parsed = load_earth_orientation()                   # no cache yet: astropy parses, specan keeps it
+    files = list(fresh_earth_orientation.glob("iers-*.pickle"))
+    assert len(files) == 1
+    iers.IERS_Auto.iers_table = None
+    cached = load_earth_orientation()                   # read back from the file
+    assert cached is not parsed and iers.IERS_Auto.iers_table is cached
+    reference = _astropys_own_parse()
+    assert cached.colnames == reference.colnames and len(cached) == len(reference) > 10000
+    for name in reference.colnames:
+        a, b = np.asarray(cached[name]), np.asarray(reference[name])
+        assert a.dtype == b.dtype and np.array_equal(a, b, equal_nan=a.dtype.kind == "f"), name
+    assert cached.meta["predictive_mjd"] == reference.meta["predictive_mjd"]
+    loc = EarthLocation.from_geodetic(-17.88 * u.deg, 28.76 * u.deg, 2396 * u.m)
+    t = Time("2021-09-05T22:45:10", scale="utc") + np.arange(5) * u.hour
+    with iers.earth_orientation_table.set(reference):
+        want = loc.get_gcrs_posvel(t)[1].xyz.to_value(u.m / u.s)
+    got = loc.get_gcrs_posvel(t)[1].xyz.to_value(u.m / u.s)
+    assert np.array_equal(got, want)
+    # and the table matters: polar motion and UT1-UTC set to zero move the site velocity measurably
+    zeroed = reference.copy()
+    for name in ("UT1_UTC", "PM_x", "PM_y"):
+        zeroed[name] = 0 * zeroed[name]
+    with iers.earth_orientation_table.set(zeroed):
+        assert not np.array_equal(loc.get_gcrs_posvel(t)[1].xyz.to_value(u.m / u.s), want)
+
+
+def test_broken_earth_orientation_cache_is_parsed_again(fresh_earth_orientation):
+    """A truncated or foreign cache file costs the parse, not the run, and is replaced by a good one."""
+    import pickle
+
+    from astropy.utils import iers
+
+    from specan._offline import load_earth_orientation
+
+    load_earth_orientation()
+    (path,) = fresh_earth_orientation.glob("iers-*.pickle")
+    for junk in (path.read_bytes()[:1000], pickle.dumps({"not": "a table"})):
+        path.write_bytes(junk)
+        iers.IERS_Auto.iers_table = None
+        table = load_earth_orientation()
+        assert isinstance(table, iers.IERS_Auto) and len(table) > 10000
+        assert isinstance(pickle.loads(path.read_bytes()), iers.IERS_Auto)
+
+
+def test_earth_orientation_cache_can_be_turned_off_or_unwritable(fresh_earth_orientation, monkeypatch, tmp_path):
+    """SPECAN_CACHE_DIR="" writes nothing; a cache folder that cannot be made is left alone, the table still parsed."""
+    from astropy.utils import iers
+
+    from specan._offline import cache_dir, load_earth_orientation
+
+    monkeypatch.setenv("SPECAN_CACHE_DIR", "")
+    assert cache_dir() is None
+    assert len(load_earth_orientation()) > 10000
+    blocker = tmp_path / "a_file"
+    blocker.write_text("not a folder")
+    monkeypatch.setenv("SPECAN_CACHE_DIR", str(blocker / "cache"))
+    iers.IERS_Auto.iers_table = None
+    assert len(load_earth_orientation()) > 10000
+    assert blocker.read_text() == "not a folder" and not fresh_earth_orientation.exists()
