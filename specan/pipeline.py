@@ -89,6 +89,8 @@ STAGES = (
     ("physics", "specan.physics", "derive"),
 )
 
+#: What a local worker imports as it starts (:func:`specan.night.executors.local_workers`).
+WORKER_MODULES = (__name__,) + tuple(module for _, module, _ in STAGES)
 
 # --------------------------------------------------------------------------- stages
 
@@ -517,19 +519,21 @@ def run(paths, out_dir, jobs=1, dask=None, force=False, formats=("ecsv",), overr
     formats = _checked_formats(formats)
     choice = _checked_plot_choice(plots)
     named = tuple(str(n) for n in (plot_for or ()))
-    inputs = collect_inputs(paths)
     wanted = _checked_stages(stages)
-    stages = _stage_status(wanted)
-    settings = _run_settings(overrides, choice, named, wanted, photometry, calibration)
-    settings_hash = _settings_hash(settings, stages, photometry, calibration)
-    store = RecordStore(out)
-    wants = functools.partial(plot_wanted, choice=choice, named=named)
-    todo = list(inputs) if force else [p for p in inputs if _current(store, p, settings_hash, wants) is None]
-    reused = len(inputs) - len(todo)
-    with _progress_bar(len(inputs), reused, progress) as bar:
-        analysed, interrupted = _analyse_rest(todo, settings, settings_hash, store, executors.results, jobs,
-                                              dask, bar)
-    del todo
+    # local workers start first: their start-up overlaps with finding the inputs and what is current
+    with executors.local_workers(1 if dask else int(jobs), preload=WORKER_MODULES) as pool:
+        inputs = collect_inputs(paths)
+        stages = _stage_status(wanted)
+        settings = _run_settings(overrides, choice, named, wanted, photometry, calibration)
+        settings_hash = _settings_hash(settings, stages, photometry, calibration)
+        store = RecordStore(out)
+        wants = functools.partial(plot_wanted, choice=choice, named=named)
+        todo = list(inputs) if force else [p for p in inputs if _current(store, p, settings_hash, wants) is None]
+        reused = len(inputs) - len(todo)
+        with _progress_bar(len(inputs), reused, progress) as bar:
+            analysed, interrupted = _analyse_rest(todo, settings, settings_hash, store,
+                                                  functools.partial(executors.results, pool=pool), jobs, dask, bar)
+        del todo
     night = _write_night(inputs, store, settings_hash, out, formats, stages, settings, report, interrupted)
     flush_to_disk()
     summary = RunSummary(outputs=night["outputs"], counts=night["counts"], reused=reused, stages=stages,

@@ -858,6 +858,49 @@ def test_local_workers_compute_with_one_thread_per_library(monkeypatch):
     assert os.environ["OPENBLAS_NUM_THREADS"] == "7"
 
 
+def test_workers_started_early_take_the_work_and_stop_with_their_owner(monkeypatch):
+    # Workers started before the inputs are known (so that their start-up overlaps with the
+    # caller's) import the modules named, compute with one thread per library like the others,
+    # serve every input, and are gone when their owner leaves, also when it stopped taking results
+    # early (an interrupted run must not go on computing what was queued).
+    import sys
+
+    from specan.night import executors
+
+    monkeypatch.setenv("OPENBLAS_NUM_THREADS", "7")
+    names = ["OPENBLAS_NUM_THREADS", "OMP_NUM_THREADS", "MKL_NUM_THREADS"]
+    with executors.local_workers(2, preload=("specan.pipeline", "specan.lines", "no_such_module_here")) as pool:
+        processes = list(pool._pool)
+        assert len(processes) == 2
+        got = dict(executors.results_local(os.getenv, names, "unset", 2, pool=pool))
+        assert got == {name: "1" for name in names}
+        # the pool is still the owner's after one use: a second batch runs on the same workers
+        imported = dict(executors.results_local(_imported, ["specan.pipeline", "specan.lines"] * 4, None, 2,
+                                                pool=pool))
+        assert imported == {"specan.pipeline": True, "specan.lines": True}
+        assert all(p.is_alive() for p in processes)
+        slow = executors.results_local(_sleeping, [0.5] * 40, None, 2, pool=pool)
+        next(slow)
+        slow.close()
+    assert not any(p.is_alive() for p in processes)
+    with executors.local_workers(1) as none:
+        assert none is None
+    assert "no_such_module_here" not in sys.modules
+
+
+def _imported(name, _settings):
+    import sys
+
+    return name in sys.modules
+
+
+def _sleeping(seconds, _settings):
+    import time
+
+    time.sleep(seconds)
+    return seconds
+
+
 def test_row_unit_names_as_astropy_writes_them_each_time():
     # The row keeps each unit's name by the unit object (astropy's comparison and naming cost
     # ~20 us each, some 20 times a spectrum): the same names as astropy's, however often asked.
