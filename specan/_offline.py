@@ -86,7 +86,7 @@ def load_earth_orientation():
             if isinstance(table, iers.IERS_Auto) and len(table) > 0:
                 iers.IERS_Auto.iers_table = table
                 return table
-        except Exception:                            # truncated or from another environment: parse again
+        except Exception:  # noqa: BLE001, S110 - truncated, or from another environment: parsed again below
             pass
     table = iers.IERS_Auto.open()
     if path is not None:

@@ -101,7 +101,7 @@ def _worker_init(preload=()):
     for name in preload:
         try:
             importlib.import_module(name)
-        except Exception:   # noqa: BLE001 - a stage that cannot be imported is reported by the parent
+        except Exception:  # noqa: BLE001, S110 - a stage that cannot be imported is reported by the parent
             pass
 
 
