@@ -67,7 +67,8 @@ def automatic_types():
 
 
 class LibraryTemplate(NamedTuple):
-    """One library template: its name, nominal MK type, members and median parameters."""
+    """One library template: its name, nominal MK type, members, median parameters, and its zero point
+    against laboratory wavelengths with that zero point's error (km/s; see the module docstring)."""
 
     name: str
     sptype: str
