@@ -26,8 +26,10 @@ Kinds:
   at 2.5 A FWHM). The check, from other information: the template cross-correlated against the
   same synthetic spectrum in twelve wavelength segments, Balmer lines masked, median. The stored
   ``zero_point_err_kms`` is the lines' standard error times the Birge ratio of the two
-  measurements where they disagree beyond their errors (:func:`zero_point_error`). Groups with fewer than ``ZP_MIN_LINES`` usable lines (hot stars) keep
-  the library's frame (zero point 0), uncertain by how far the measured groups' frames scatter.
+  measurements where they disagree beyond their errors (:func:`zero_point_error`). A group with
+  fewer than ``ZP_MIN_LINES`` usable lines would keep the library's frame (zero point 0),
+  uncertain by the rms of the measured groups' zero points; the 35 groups have 13-60 lines each
+  (B and A stars the fewest: mostly He I, Si II, Mg II, Ti II; the metal-poor groups 41-57).
   Real stars' lines carry gravitational redshift and convective blueshift (about +0.6 and -0.3
   km/s for the Sun, # from memory); the laboratory scale removes them from the template, so
   velocities measured with it include the star's own.
