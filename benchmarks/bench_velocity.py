@@ -29,13 +29,18 @@
    choice (templates, weights) or velocity changed, and the CPU time with and without the skip.
 8. ``--miles``: MILES library stars (``../shared/reference/miles``, at rest in the library's
    frame), each measured without the library templates whose group it belongs to.
-9. ``--against DIR``: the speed test's spectra measured by this checkout's specan and by the specan of
+9. ``--kurucz``: the noiseless Kurucz Sun at rest (and at -640, +35, +820 km/s), R 1,000, 2,000 and
+   5,000 (the model file is R ~ 2000: "5,000" is R 2000 data declared finer), no template: the
+   bias of the default choice, and of each library template alone (``library:<name>``) with the
+   zero point the file gives it; the check of the templates' laboratory zero points (the Kurucz
+   model is static, its lines at laboratory wavelengths; it is not used to set them).
+10. ``--against DIR``: the speed test's spectra measured by this checkout's specan and by the specan of
    another checkout ``DIR`` (e.g. ``git archive <commit> | tar -x -C DIR``) in one process, each
    spectrum by both in turn (the order alternating): CPU ms per spectrum of each and their ratio, with
    the load drift of a shared machine cancelled (runs in separate processes differ by +-20% here).
 
 Run:  python benchmarks/bench_velocity.py [--quick] [--speed] [--floor] [--night-set] [--user] [--other-types] [--neighbours]
-      [--miles] [--against DIR]
+      [--miles] [--kurucz] [--against DIR]
 
 Timings depend on the machine's load; on a shared machine OPENBLAS_NUM_THREADS=1 avoids BLAS
 threads fighting other processes (the figures in the issue-4 report were measured that way).
@@ -586,9 +591,9 @@ def _member_sd():
     """{library template name: sd of its members' rest frames about the group's, km/s}.
 
     How far a group's members sat from each other's rest frames when the templates were built
-    (scripts/build_library_templates.py aligns them by cross-correlation and writes the median
-    member's standard error, 1.2533 sd / sqrt(n)): how uncertain "truth 0" is for one of its
-    stars (it also holds the members' mismatch).
+    (scripts/build_library_templates.py aligns them by cross-correlation and writes that sd,
+    ``member_sd_kms``): how uncertain "truth 0" is for one of its stars (it also holds the
+    members' mismatch).
     """
     from astropy.io import fits
     from astropy.table import Table
@@ -598,11 +603,41 @@ def _member_sd():
 
     with fits.open(Path(specan.__file__).parent / "data" / templates.LIBRARY_FILE) as hdus:
         groups = Table(hdus["GROUPS"].data)
+    if "member_sd_kms" in groups.colnames:
+        return {str(g["name"]): float(g["member_sd_kms"]) for g in groups}
+    # files before the laboratory zero points: the median member's standard error, 1.2533 sd / sqrt(n)
     return {str(g["name"]): float(g["zero_point_err_kms"]) * np.sqrt(int(g["n_stars"])) / 1.2533 for g in groups}
+
+
+def kurucz_rows(model):
+    """Bias (km/s) on the noiseless Kurucz Sun of the default choice and of every library template."""
+    from specan import templates
+
+    print("\n== Kurucz Sun, noiseless, no template: bias km/s (and % of a resolution element) ==")
+    rs = (1000.0, 2000.0, 5000.0)
+    print(f"{'template':26s} {'zero pt':>8s} " + " ".join(f"{'R ' + str(int(r)):>17s}" for r in rs))
+    rows = [("default (at rest)", None, (0.0,)), ("default (-640/35/820)", None, (-640.0, 35.0, 820.0))]
+    rows += [(f"library {t.name}", f"library:{t.name}", (0.0,)) for t in templates.library_templates()]
+    zp = {f"library {t.name}": getattr(t, "zero_point_kms", 0.0) for t in templates.library_templates()}
+    for label, template, speeds in rows:
+        cells, chosen = [], []
+        for r in rs:
+            dv = []
+            for v in speeds:
+                res = velocity.measure(observe(model, r, v), template=template, barycentric=False)
+                dv.append(res["rv"].to_value(KMS) - v)
+                chosen.append(res["template"])
+            b = float(np.mean(dv))
+            cells.append(f"{b:+7.2f} ({100 * b / (C_KMS / r):+5.2f}%)")
+        z = f"{zp[label]:+8.2f}" if label in zp else f"{'':8s}"
+        print(f"{label:26s} {z} " + " ".join(f"{c:>17s}" for c in cells)
+              + (f"  [{', '.join(sorted(set(chosen)))}]" if template is None else ""))
 
 
 def miles_stars(n):
     """MILES stars (at rest in the library's frame) without their own groups' templates."""
+    from specan import templates
+
     pick = _miles_inputs(n)
     if not pick:
         print("\n(MILES reference library not present: skipped)")
@@ -625,6 +660,15 @@ def miles_stars(n):
     print(f"the stars' own rest frames scatter by {np.median(truth_sd):.2f} km/s (median of their groups' member sd; "
           f"all groups: {typical_sd:.2f})")
     _pull_line("MILES, truth sd included", dv, both, C_KMS / 2000.0, None, float("nan"))
+    # Library templates whose file gives laboratory zero points measure on the laboratory scale; a
+    # star at rest in the library's frame then reads about its own groups' zero point (the frame
+    # its group's median member had), not 0.
+    zero = {t.name: getattr(t, "zero_point_kms", 0.0) for t in templates.library_templates()}
+    own = [np.mean([zero[g] for g in exclude]) if exclude else np.nan for _, exclude, _ in pick]
+    lab = np.isfinite(own)
+    if any(zero.values()) and lab.any():
+        _pull_line(f"MILES, truth own zero pt ({lab.sum()})", np.asarray(dv)[lab] - np.asarray(own)[lab],
+                   both[lab], C_KMS / 2000.0, None, float("nan"))
     print("types (star -> best template):", ", ".join(names[:20]))
 
 
@@ -653,5 +697,7 @@ if __name__ == "__main__":
         neighbours(model, 10 if quick else 40)
     if "--miles" in chosen:
         miles_stars(20 if quick else 60)
+    if "--kurucz" in chosen:
+        kurucz_rows(model)
     if "--against" in chosen:
         against(model, 10 if quick else 40, sys.argv[sys.argv.index("--against") + 1])

@@ -12,13 +12,16 @@ stars with a full MK type binned in type and luminosity group, and metal-poor st
 (``specan.prepare``), as for an observed spectrum. Stars whose published type is uncertain
 (``:``), peculiar (``p``), weak-lined (``w``), variable (``var``) or shows emission (``e``)
 are left out. Members are aligned on each other by cross-correlation before the median; the
-median member keeps the library's rest frame, so a template's zero point is the library's
-(its README: velocities of a few km/s at most against a solar model), uncertain by the
-standard error of that median, 1.2533 sd / sqrt(n) (written per template). Putting the
-templates on the wavelengths of specan's synthetic spectra instead was tried and rejected:
-their blends at R ~ 2000 move with type, and the zero points came out between -19 and +10 km/s
-(measured). What is written: the template fluxes (float32, air wavelengths, rest frame) and
-a table of groups with their members, never a star's spectrum.
+median member keeps the library's rest frame (its README: good to a few km/s). Each template's
+zero point against laboratory wavelengths is then measured (``specan.templates.measure_zero_point``:
+line centres against specan's synthetic spectrum of the type, checked by a segment-wise
+cross-correlation with it; see ``specan/templates.py``) and written beside it
+(``zero_point_kms``, ``zero_point_err_kms`` and the parts); the velocity stage takes it out.
+The fluxes stay in the library's frame. Putting the templates on the wavelengths of specan's
+synthetic spectra by one whole-spectrum correlation was tried and rejected: their blends at
+R ~ 2000 move with type, and the zero points came out between -19 and +10 km/s (measured).
+What is written: the template fluxes (float32, air wavelengths, library's rest frame) and a
+table of groups with their members and zero points, never a star's spectrum.
 
 Usage::
 
@@ -170,27 +173,49 @@ def main(argv=None):
     catalog = read_catalog(library, "build_library_templates")
     if catalog is None:
         return 1
+    from specan import templates
+
     wave = MILES_WAVE_AA
-    fluxes, rows = [], []
+    fluxes, rows, points = [], [], []
     for name, sptype, lumclass, members in groups(catalog):
         paths = [library / text(catalog["file"][i]) for i in members]
         flux, shifts = build_group(paths, wave)
-        # standard error of a median, 1.2533 sd / sqrt(n) (common practice)
-        zero_err = 1.2533 * float(np.std(shifts, ddof=1)) / np.sqrt(len(shifts))
         fluxes.append(flux.astype(np.float32))
+        # measured on the flux as written (float32), so that a re-measurement from the file agrees
+        zp = templates.measure_zero_point(wave, fluxes[-1].astype(float), FWHM_AA, sptype, lumclass)
+        points.append(zp)
         params = [np.nanmedian([value(catalog[c][i]) for i in members]) for c in ("teff_k", "logg", "feh")]
-        rows.append((name, sptype, lumclass, len(members), *params, zero_err,
-                     " ".join(text(catalog["id"][i]) for i in members)))
-        print(f"  {name:24s} {len(members):3d} stars, zero point uncertain by {zero_err:5.2f} km/s",
-              file=sys.stderr)
+        rows.append([name, sptype, lumclass, len(members), *params, float(np.std(shifts, ddof=1)),
+                     " ".join(text(catalog["id"][i]) for i in members)])
+    # groups with too few usable lines keep the library's frame, uncertain by how far the measured
+    # groups' frames are from the laboratory's (their rms)
+    measured = [z.lines_kms for z in points if z.n_lines >= templates.ZP_MIN_LINES]
+    frame_rms = float(np.sqrt(np.mean(np.square(measured)))) if measured else float("nan")
+    for row, zp in zip(rows, points):
+        if zp.n_lines >= templates.ZP_MIN_LINES:
+            value_kms, err_kms = zp.lines_kms, templates.zero_point_error(zp)
+        else:
+            value_kms, err_kms = 0.0, frame_rms
+        row[7:7] = [value_kms, err_kms, zp.lines_kms, zp.lines_err_kms, zp.n_lines, zp.check_kms,
+                    zp.check_err_kms, zp.n_segments]
+        print(f"  {row[0]:24s} {row[3]:3d} stars, zero point {value_kms:+6.2f} +- {err_kms:5.2f} km/s (lines "
+              f"{zp.lines_kms:+6.2f} +- {zp.lines_err_kms:4.2f}, {zp.n_lines} lines; check {zp.check_kms:+6.2f} +- "
+              f"{zp.check_err_kms:5.2f}, {zp.n_segments} segments)", file=sys.stderr)
     table = Table(rows=rows, names=("name", "sptype", "lumclass", "n_stars", "teff_k", "logg", "feh",
-                                    "zero_point_err_kms", "members"))
+                                    "zero_point_kms", "zero_point_err_kms", "zp_lines_kms", "zp_lines_err_kms",
+                                    "zp_n_lines", "zp_check_kms", "zp_check_err_kms", "zp_n_segments",
+                                    "member_sd_kms", "members"))
     primary = fits.PrimaryHDU(np.array(fluxes))
     h = primary.header
     h["CTYPE1"], h["CUNIT1"], h["CRPIX1"], h["CRVAL1"], h["CDELT1"] = "AWAV", "Angstrom", 1.0, wave[0], 0.9
     h["FWHM"] = (FWHM_AA, "instrumental FWHM, Angstrom (constant)")
     h["BUNIT"] = ("", "flux over specan's continuum; NaN where undefined")
     h["ORIGIN"] = "specan scripts/build_library_templates.py"
+    h["ZPMETHOD"] = ("line centres vs synthetic", "see specan.templates.measure_zero_point")
+    h["ZPCHECK"] = ("segment CCF vs synthetic", "zp_check_kms: Balmer lines masked")
+    h["ZPLIST"] = ("linelists/stellar.ecsv", "laboratory air wavelengths (NIST ASD)")
+    h["ZPSIGN"] = ("lines redward of lab > 0", "sign of zero_point_kms; flux not shifted")
+    h["ZPFRAME"] = (frame_rms, "rms of measured zero points, km/s")
     for k, part in enumerate(re.findall(".{1,68}", CITATION)):
         h[f"CITE{k}"] = part
     hdus = fits.HDUList([primary, fits.BinTableHDU(table, name="GROUPS")])

@@ -189,10 +189,10 @@ def test_builtin_templates_on_the_kurucz_sun(kurucz_model):
     assert np.all(np.abs(errs) < 0.02 * C_KMS / 2000.0), errs
 
 
-def _library_default_on_kurucz(kurucz_model):
+def _library_default_on_kurucz(kurucz_model, r=2000.0):
     errs, types = [], []
     for v in (-640.0, 35.0, 820.0):
-        res = velocity.measure(_observe(kurucz_model, 2000.0, v, snr=100, seed=abs(int(v)) + 7), barycentric=False)
+        res = velocity.measure(_observe(kurucz_model, r, v, snr=100, seed=abs(int(v)) + 7), barycentric=False)
         assert res["template_kind"] == "library", res["template"]
         types.append(res["template_type"])
         errs.append(res["rv"].to_value(KMS) - v)
@@ -202,22 +202,31 @@ def _library_default_on_kurucz(kurucz_model):
 def test_library_templates_by_default_on_the_kurucz_sun(kurucz_model):
     """No template given: an observed library template wins on a realistic spectrum, of the Sun's family.
 
-    The Kurucz model is not one of the library's stars (MILES, observed); its velocity against
-    the library G1 V group is 5.4 km/s low at R = 2000 (measured; -2.4 at R = 5000, -6 at
-    R = 1000 from the user-path benchmark): the model's blends against real stars', and the
-    library's own rest frame (a few km/s, its README). The bound guards that figure.
+    The Kurucz model is not one of the library's stars (MILES, observed). Before the library
+    templates had laboratory zero points its velocity against the library G1 V group was 5.4
+    km/s low at R = 2000 (measured); with them the default (G8 V) reads +0.8 to +1.3 km/s here
+    (-0.3 to +1.4 at R 1000; benchmarks/bench_velocity.py --kurucz). The bound guards the
+    family and a gross offset.
     """
     errs, types = _library_default_on_kurucz(kurucz_model)
     assert all(t.split()[0][0] == "G" for t in types), types  # the Sun is G2 V
     assert np.all(np.abs(errs) < 0.04 * C_KMS / 2000.0), errs
 
 
-@pytest.mark.xfail(strict=True, reason="measured: the library default is 4.7-5.2 km/s low on the Kurucz Sun at "
-                   "R = 2000 (3.2-3.5% of a resolution element; target 1%; 5.4 with the single best template "
-                   "before the average), model-versus-star mismatch and the library's rest frame")
-def test_library_default_bias_within_one_percent_of_a_resolution_element(kurucz_model):
-    errs, _ = _library_default_on_kurucz(kurucz_model)
-    assert np.all(np.abs(errs) < 0.01 * C_KMS / 2000.0), errs
+@pytest.mark.parametrize("r", [
+    1000.0,
+    2000.0,
+    pytest.param(5000.0, marks=pytest.mark.xfail(strict=True, reason=(
+        "measured: the library default reads +1.58 to +1.71 km/s on these spectra (S/N 100) and +1.60 "
+        "noiseless (benchmarks/bench_velocity.py --kurucz) on the Kurucz Sun declared R 5000 (2.7% of a "
+        "resolution element; target 1%, 0.6 km/s; the model file is R 2000, so the templates are compared "
+        "at a resolution neither has; -4.35 noiseless before the laboratory zero points)"))),
+])
+def test_library_default_bias_within_one_percent_of_a_resolution_element(kurucz_model, r):
+    """Issue 11's bias target on the Kurucz Sun (an outside model, not used to set the templates' zero
+    points, which come from laboratory wavelengths: ``specan.templates``), no template given."""
+    errs, _ = _library_default_on_kurucz(kurucz_model, r)
+    assert np.all(np.abs(errs) < 0.01 * C_KMS / r), errs
 
 
 def test_line_mask_with_a_segment_of_no_lines_warns_of_nothing(kurucz_model):
@@ -805,11 +814,13 @@ def test_user_path_scatter_within_twice_the_cramer_rao_bound(kurucz_model):
 
 
 @pytest.mark.slow
-@pytest.mark.xfail(strict=True, reason="measured (benchmarks/bench_velocity.py --user, 20 spectra a cell): on the "
-                   "Kurucz Sun the built-in templates read -3.6 to -5.9 km/s (-1.5 to -6.3% of a resolution element, "
-                   "R 1000-5000, S/N 10-200; target 1%) and the error budget covers part of it: pulls (measured - "
-                   "true)/rv_err have rms 1.27-1.71 at S/N >= 30, sd about their mean 0.03-0.74 (the offset is "
-                   "common to all spectra)")
+@pytest.mark.xfail(strict=True, reason="measured (this test's cells: R 2000 S/N 30 and 100, R 5000 S/N 100): bias "
+                   "+1.10, +1.33, +1.91 km/s (0.73, 0.89, 3.19% of a resolution element; target 1%), pulls "
+                   "(measured - true)/rv_err rms 0.19-0.32, sd 0.03-0.07: rv_err (6.0 km/s) is now dominated by "
+                   "the library templates' laboratory zero-point errors (about 5 km/s), which the Kurucz Sun "
+                   "suggests are conservative but may not be shrunk on it (it would be its own calibration). "
+                   "benchmarks/bench_velocity.py --user, 20 spectra a cell: bias -0.23 to +2.08 km/s over "
+                   "R 1000-5000, S/N 10-200; before the zero points -3.6 to -5.9 with pull rms 1.14-1.71")
 def test_user_path_bias_and_pulls(kurucz_model):
     """Issue 11's acceptance on the Kurucz Sun read as a user's file: bias within 1% of a resolution
     element, and (measured - true)/rv_err with rms and sd in 0.8-1.25."""

@@ -530,10 +530,11 @@ def error_budget(noise, birge, choice, zero_point):
 
 
 def zero_point_error(mixture):
-    """Rest-frame uncertainty (km/s) of the templates averaged: the library's per-template standard
-    error of its median member (:attr:`specan.templates.LibraryTemplate.zero_point_err_kms`),
-    weighted as the velocities are; 0 for synthetic and user templates (their zero point is
-    the line list's, or the user's ``template_rv``)."""
+    """Rest-frame uncertainty (km/s) of the templates averaged: each library template's error of
+    its zero point against laboratory wavelengths (:attr:`specan.templates.LibraryTemplate.zero_point_err_kms`,
+    measured when the file is built: see :mod:`specan.templates`), weighted as the velocities
+    are; 0 for synthetic and user templates (their zero point is the line list's, or the user's
+    ``template_rv``)."""
     from .. import templates
 
     zp = {t.name: t.zero_point_err_kms for t in templates.library_templates()}
