@@ -214,8 +214,9 @@ def _assumptions_html(distinct) -> str:
     kinds = distinct.get("template_kind") or []
     if kinds:
         items.append("Velocity templates: " + " and ".join(
-            {"library": "medians of MILES library stars (Sanchez-Blazquez et al. 2006; in the library's rest frame, "
-                        "its zero point uncertain by 0.7-5 km/s per template and counted in rv_err)",
+            {"library": "medians of MILES library stars (Sanchez-Blazquez et al. 2006), each shifted to laboratory "
+                        "wavelengths by a zero point measured on its strong lines (uncertain by 3-11 km/s per "
+                        "template, counted in rv_err)",
              "synth": "specan's synthetic spectra at laboratory wavelengths",
              "mask": "line masks at laboratory wavelengths",
              "spectrum": "spectra the user gave", "file": "spectra the user gave"}.get(k, _esc(k)) for k in kinds)
