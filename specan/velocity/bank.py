@@ -141,8 +141,8 @@ def score_bank(search, bank, data_short):
     # parabola vertex of the cross term about the integer peak (a smooth score: ranks must not
     # jump with the sub-pixel phase of the star)
     y1 = c1[rows, j]
-    y0 = c1[rows, np.clip(j - 1, 0, s.size - 1)]
-    y2 = c1[rows, np.clip(j + 1, 0, s.size - 1)]
+    y0 = c1[rows, np.maximum(j - 1, 0)]
+    y2 = c1[rows, np.minimum(j + 1, s.size - 1)]
     den = y0 - 2.0 * y1 + y2
     inner = (j > 0) & (j < s.size - 1) & (den < 0)
     vertex = np.where(inner, y1 - 0.125 * (y0 - y2) ** 2 / np.where(inner, den, -1.0), y1)
@@ -164,9 +164,11 @@ def score_bank(search, bank, data_short):
     e = c2t2 - c2t ** 2 / c2v
     d = c3v - c1v ** 2 / c2v
     with np.errstate(invalid="ignore", divide="ignore"):
-        h = (vertex - c1v * c2t / c2v) / np.sqrt(np.clip(e, 1e-300, None) * np.clip(d, 1e-300, None))
+        h = (vertex - c1v * c2t / c2v) / np.sqrt(np.maximum(e, 1e-300) * np.maximum(d, 1e-300))
     h = np.where(found & np.isfinite(h), h, -np.inf)
-    return BankScores([int(s[j[i]]) if np.isfinite(h[i]) else None for i in rows], h, vertex_lag)
+    # (the lags as plain ints from one conversion, not a numpy scalar per template)
+    lag = [int(x) if ok else None for x, ok in zip(s[j].tolist(), np.isfinite(h).tolist())]
+    return BankScores(lag, h, vertex_lag)
 
 
 def _windows(x, n):
@@ -247,7 +249,7 @@ def poly_peaks(offsets, values, degree=4, bound=None):
 
     for _ in range(12):
         g1, g2 = pv(d1, x), pv(d2, x)
-        step = np.clip(x - g1 / np.where(g2 < 0, g2, -1e-9), -bound, bound) - x
+        step = np.minimum(np.maximum(x - g1 / np.where(g2 < 0, g2, -1e-9), -bound), bound) - x
         x = x + step
         # converged (Newton's steps shrink quadratically): the next step would move no row
         # by more than 1e-12 pixel; the same rows always take the same number of steps

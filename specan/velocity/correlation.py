@@ -59,7 +59,7 @@ def correlation_arrays(d_minus_1, weight):
 def observed_side(observed, lags):
     """The :class:`ObservedSide` of an :class:`~.grid.ObservedGrid`, high-pass filtered as templates are."""
     # data side: weights = taper x inverse variance (normalised), zero on masked pixels
-    w_noise = 1.0 / np.clip(observed.sigma, 1e-12, None) ** 2
+    w_noise = 1.0 / np.maximum(observed.sigma, 1e-12) ** 2
     w_noise /= np.median(w_noise[observed.valid])
     weight = observed.taper * w_noise
     arrays = correlation_arrays(highpass(observed.flux - 1.0, lags.hp_sigma, observed.valid), weight)
@@ -110,7 +110,8 @@ class Correlation:
         e = c2t2 - c2t ** 2 / nw
         d = c3v - c1v ** 2 / nw
         with np.errstate(invalid="ignore", divide="ignore"):
-            return num / np.sqrt(np.clip(e, 1e-300, None) * np.clip(d, 1e-300, None)), c2v
+            # (np.maximum, not np.clip: the same values, NaN kept, without clip's wrapper per call)
+            return num / np.sqrt(np.maximum(e, 1e-300) * np.maximum(d, 1e-300)), c2v
 
     def integer_lags(self, frac=0.0, k=None, single=False):
         """Normalised CCF at lags s = pad - k + ... for k = 0..m-1 (or the indices ``k`` only), shifted

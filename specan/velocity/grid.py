@@ -74,7 +74,9 @@ def hot_pixels(f, sig, bad):
     filter sees it in one only and shifts the peak (a K1 I library spectrum against itself
     read 9.4 km/s instead of 0 when only the star was clipped, measured).
     """
-    hot = (f > 1.0 + np.maximum(5.0 * np.nan_to_num(sig, nan=np.inf), 0.05)) & ~bad
+    # (nan_to_num only where something is not finite: it copies and tests the array several times)
+    sig = sig if np.isfinite(sig).all() else np.nan_to_num(sig, nan=np.inf)
+    hot = (f > 1.0 + np.maximum(5.0 * sig, 0.05)) & ~bad
     if hot.any():
         hot = np.convolve(hot.astype(float), np.ones(7), mode="same") > 0
     return hot
@@ -361,11 +363,13 @@ def observe_on_grid(spectrum, *, step=None, telluric=True, clip_emission=True, n
     first, last = int(np.argmax(inside)), int(n - 1 - np.argmax(inside[::-1]))
     f_fill = np.where(bad, 1.0, f)
     valid = inside & ~(np.interp(grid, lnw, bad.astype(float)) > 1e-6)
+    # (the median and the replacements only where some error is not finite: the same arrays)
+    finite = bool(np.isfinite(sig).all())
     return ObservedGrid(
         info=info, noise_source=noise_source, spline_x=lnw, grid=grid, step=step, n=n,
         flux=spline_operators(lnw, grid).forward(f_fill),
-        sigma=np.interp(grid, lnw, np.where(np.isfinite(sig), sig, np.nanmedian(sig))),
-        native_flux=f_fill, native_sigma=np.where(bad, 0.0, np.nan_to_num(sig)),
+        sigma=np.interp(grid, lnw, sig if finite else np.where(np.isfinite(sig), sig, np.nanmedian(sig))),
+        native_flux=f_fill, native_sigma=np.where(bad, 0.0, sig if finite else np.nan_to_num(sig)),
         valid=valid, taper=_edge_taper(valid, first, last), n_data=last - first + 1)
 
 

@@ -410,8 +410,8 @@ def _template_segments(search, shifted, starts, h, weights):
     # template's and the data's energies there; the data energy's own change cancels at the peak)
     c2v = np.maximum(rows[5], 1e-300)
     mu = rows[1] / c2v
-    energy = np.clip(rows[2] - rows[1] ** 2 / c2v, 1e-300, None)
-    data_energy = np.clip(rows[4][:, 1] - rows[3][:, 1] ** 2 / c2v[:, 1], 1e-300, None)
+    energy = np.maximum(rows[2] - rows[1] ** 2 / c2v, 1e-300)
+    data_energy = np.maximum(rows[4][:, 1] - rows[3][:, 1] ** 2 / c2v[:, 1], 1e-300)
     # a segment where the template (e.g. a line mask) or the data carry no signal has no velocity of
     # its own: its vertex is 0/0 and its gradient ~1/sqrt(1e-300), which overflowed the single-precision
     # adjoint (measured: a G2 V line mask on the Kurucz Sun); such segments are not good
