@@ -20,7 +20,7 @@ import numpy as np
 from scipy import fft as sfft
 
 from .grid import turns
-from .prepared import prepare_builtin
+from .prepared import full_cover, prepare_builtin
 
 __all__ = ["TemplateBank", "BankScores", "short_length", "template_bank", "score_bank",
            "WEIGHT_SCALE", "SCORE_PRECISION", "MAX_MIXTURE", "MIN_WEIGHT", "mixture_weights", "mixture_threshold", "fit_matrix", "poly_peaks",
@@ -308,13 +308,22 @@ def _refine(templates, lags, data_ffts, m, pad, passes):
     """:func:`refine_peaks` from ``lags`` through the offset stencils ``passes``."""
     from .correlation import Correlation
 
-    bands = [t.band_ffts(m) for t in templates]
-    nf = max(x.size for b in bands for x in b)
-    FT, FT2, FV = (_stacked([b[i] for b in bands], nf) for i in range(3))
-    A = [a[:nf] for a in data_ffts]
     x0 = np.asarray(lags, float)
+    # where every template's coverage is 1 over all the pixels any lag of the passes uses (the data's
+    # n pixels: the template's less the pad on both sides), the three coverage rows are the data's own
+    # sums (their transforms' zero frequency), the same at every lag: three of the six sums not made
+    reach = sum(float(np.max(np.abs(offs))) for offs in passes)
+    full = full_cover(templates, x0, pad, templates[0].V.size - 2 * pad, reach)
+    bands = [t.band_ffts(m) for t in templates]
+    nf = max(x.size for b in bands for x in b[:2 if full else 3])
+    FT, FT2 = (_stacked([b[i] for b in bands], nf) for i in range(2))
+    FV = None if full else _stacked([b[2] for b in bands], nf)
+    A = [a[:nf] for a in data_ffts]
     height = curv = np.full(x0.size, np.nan)
     pairs = ((0, 0), (1, 0), (1, 1), (0, 2), (2, 2), (1, 2))   # (data, template) arrays of the six rows
+    if full:
+        pairs = pairs[:3]
+        cover = np.array([data_ffts[0][0].real, data_ffts[2][0].real, data_ffts[1][0].real])   # a1, a3, a2
     for offs in passes:
         # row (a, b) at lag s = x0 + o (index k = pad - s) is Re sum_f conj(A_a) B_b e^{i theta_t f} conj(p_o):
         # the per-template phase e^{i theta_t f} goes into the three template arrays, the cached
@@ -324,9 +333,11 @@ def _refine(templates, lags, data_ffts, m, pad, passes):
         # whatever the thread count). Six (T, nf) products instead of six (6, T, nf) arrays.
         turn = turns((2.0 * np.pi / m) * (pad - x0), nf)                     # (T, nf)
         p = _offset_phases(m, nf, tuple(offs))                                # (L, nf), cached
-        tv = [(B * turn).view(np.float64) for B in (FT, FT2, FV)]
-        dv = [(a[None, :] * p).view(np.float64) for a in A]
+        tv = [(B * turn).view(np.float64) for B in ((FT, FT2) if full else (FT, FT2, FV))]
+        dv = [(a[None, :] * p).view(np.float64) for a in (A[:2] if full else A)]
         rows = np.stack([np.einsum("tf,lf->tl", tv[j], dv[i]) for i, j in pairs])
+        if full:
+            rows = np.concatenate([rows, np.broadcast_to(cover[:, None, None], (3,) + rows.shape[1:])])
         c, _ = Correlation.combine(rows)
         ok = np.all(np.isfinite(c), axis=1)
         dx, h, cv = poly_peaks(offs, np.where(ok[:, None], c, 0.0))

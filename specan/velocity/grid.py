@@ -27,7 +27,7 @@ from ..obsinfo import ObsInfo, get_info, wavelength_in
 
 _KMS = u.km / u.s   # made once (composing a unit costs ~10 us)
 
-__all__ = ["SPLINE_K", "COVER_TAPER", "ObservedGrid", "TemplateGrid", "LagWindow", "normalised",
+__all__ = ["SPLINE_K", "COVER_TAPER", "FULL_COVER_MARGIN", "ObservedGrid", "TemplateGrid", "LagWindow", "normalised",
            "observe_on_grid", "lattice_step", "lag_window", "kms_per_pixel", "sigma_array", "hot_pixels",
            "noise_from_flux", "fast_length", "turns", "distance_to_invalid",
            "dersnr_sigma", "gauss_smooth", "gauss_kernel", "smoothed_coverage", "highpass", "cover_taper", "SplineOperators", "spline_operators"]
@@ -46,6 +46,12 @@ COVER_TAPER = 8
 #: 4,000 pixels). The numbers are our choice.
 STEP_LATTICE = 16
 GRID_BLOCK = 128
+#: Pixels beyond those a correlation uses over which a template's coverage must be exactly 1 for its
+#: coverage sums to be taken as the data's own (``PreparedTemplate.covers``): the band-limited shift of a
+#: coverage that steps down (a cosine over :data:`COVER_TAPER` pixels) departs from 1 by less than
+#: 1e-5 this far from the step (5.8e-6 measured, fractional shifts to 1.5 pixels; checked in
+#: tests/test_velocity_fast_path.py), and the data's weight is tapered where it would enter (our choice).
+FULL_COVER_MARGIN = 24
 
 
 # ---------------------------------------------------------------------------
