@@ -497,3 +497,23 @@ def test_full_cover_sums_are_the_coverage_rows(kurucz_sun, monkeypatch):
         assert abs(a.noise_px / b.noise_px - 1) < 1e-5 and abs(a.birge / b.birge - 1) < 1e-5
         np.testing.assert_allclose(a.sigmas, b.sigmas, rtol=1e-5)
         np.testing.assert_allclose(a.offsets, b.offsets, rtol=0, atol=1e-5)
+
+
+def test_full_cover_ccf_about_the_peak(kurucz_sun, monkeypatch):
+    """The CCF about the peak and the single-star model with the coverage rows as the data's (and the
+    model's) own sums: the same CCF (1e-6), Tonry & Davis error (1e-5) and flags as transformed."""
+    from specan.velocity import correlation
+
+    real = correlation.full_cover
+    taken = []
+    monkeypatch.setattr(correlation, "full_cover", lambda *a: taken.append(real(*a)) or taken[-1])
+    spectra = [kurucz_spectrum(kurucz_sun, v, seed) for v, seed, _ in KURUCZ_CASES[:3]]
+    spectra += [specan.prepare(specan.read(ROOT / "sample_spectra" / name)) for name in NIGHT_FILES]
+    fast = [velocity.measure(s, barycentric=False) for s in spectra]
+    monkeypatch.setattr(correlation, "full_cover", lambda *a: False)
+    slow = [velocity.measure(s, barycentric=False) for s in spectra]
+    assert taken and all(taken)
+    for a, b in zip(fast, slow):
+        np.testing.assert_allclose(np.asarray(a["ccf"]), np.asarray(b["ccf"]), rtol=0, atol=1e-6)
+        assert abs(a["rv_err_td"] / b["rv_err_td"] - 1) < 1e-5
+        assert a["flags"] == b["flags"] and (a["second_peak_rv"] is None) == (b["second_peak_rv"] is None)
