@@ -310,12 +310,9 @@ def spline_operators(x, grid):
     """The (cached) :class:`SplineOperators` from samples at ``x`` to ``grid``.
 
     The interpolant is B A^-1 y (A, B the B-spline design matrices at the samples and on the
-    grid): one LU of A serves both directions (A^T z = B^T u by its transposed solve). A is
-    banded (a cubic B-spline spans four samples: two diagonals on either side), so the LU is
-    LAPACK's banded one (``dgbtrf``/``dgbtrs``: 0.06 against 0.18 ms for the six columns of a
-    4,000-pixel spectrum's segment errors with a general sparse LU, measured); a wider band keeps
-    the sparse LU. Made once per set-up, keyed by the sample positions and the grid: spectra of a
-    survey share their pixels, and a factorised solve costs a fraction of building the spline anew.
+    grid): one sparse LU of A^T serves both directions (A c = y by its transposed solve). Made
+    once per set-up, keyed by the sample positions and the grid: spectra of a survey share
+    their pixels, and a factorised solve costs a fraction of building the spline anew.
     """
     import hashlib
 
@@ -327,47 +324,16 @@ def spline_operators(x, grid):
     if found is None:
         t = make_interp_spline(x, np.zeros_like(x), k=SPLINE_K).t
         b_grid = BSpline.design_matrix(np.clip(grid, x[0], x[-1]), t, SPLINE_K).tocsr()
-        design = BSpline.design_matrix(x, t, SPLINE_K).tocoo()
+        lu = splu(BSpline.design_matrix(x, t, SPLINE_K).T.tocsc())
         bt = b_grid.T.tocsr()
-        solve = _banded_solver(design)
-        if solve is None:
-            lu = splu(design.T.tocsc())
-            solve = lambda y, trans: lu.solve(y, trans="N" if trans else "T")   # noqa: E731 (lu of A^T)
-        found = SplineOperators(lambda y: np.asarray(b_grid @ solve(np.asarray(y, float), False)),
-                                lambda u: solve(np.asarray(bt @ u), True))
+        found = SplineOperators(lambda y: np.asarray(b_grid @ lu.solve(np.asarray(y, float), trans="T")),
+                                lambda u: lu.solve(np.asarray(bt @ u)))
         # a few set-ups at a time (oldest out first); the operators are returned, not looked up
         # again, so that another thread's eviction cannot take them away in between
         while len(_SPLINES) > 8:
             _SPLINES.pop(next(iter(_SPLINES)), None)
         _SPLINES[key] = found
     return found
-
-
-#: Widest band (diagonals on either side) :func:`spline_operators` solves as a band (our choice).
-MAX_BAND = 8
-
-
-def _banded_solver(matrix):
-    """``solve(y, trans)`` for the square sparse ``matrix`` A (A x = y, or A^T x = y with ``trans``;
-    y a vector or columns) through LAPACK's banded LU, or None when its band is wider than
-    :data:`MAX_BAND` or it is singular."""
-    from scipy.linalg import lapack
-
-    rows, cols, vals = matrix.row, matrix.col, matrix.data
-    kl, ku = int(max(0, np.max(rows - cols))), int(max(0, np.max(cols - rows)))
-    if max(kl, ku) > MAX_BAND:
-        return None
-    band = np.zeros((2 * kl + ku + 1, matrix.shape[1]))
-    np.add.at(band, (kl + ku + rows - cols, cols), vals)      # LAPACK's banded storage, kl rows for the fill
-    lu, piv, info = lapack.dgbtrf(band, kl, ku)
-    if info != 0:
-        return None
-
-    def solve(y, trans):
-        x, info = lapack.dgbtrs(lu, kl, ku, y, piv, trans=1 if trans else 0)
-        return x
-
-    return solve
 
 
 def observe_on_grid(spectrum, *, step=None, telluric=True, clip_emission=True, notes=None):
