@@ -522,3 +522,25 @@ def test_full_cover_ccf_about_the_peak(kurucz_sun, monkeypatch):
         np.testing.assert_allclose(np.asarray(a["ccf"]), np.asarray(b["ccf"]), rtol=0, atol=1e-6)
         assert abs(a["rv_err_td"] / b["rv_err_td"] - 1) < 1e-5
         assert a["flags"] == b["flags"] and (a["second_peak_rv"] is None) == (b["second_peak_rv"] is None)
+
+
+def test_full_cover_scores_take_the_data_sums(kurucz_sun, monkeypatch):
+    """Where every template of the bank covers every pixel the search lags use, the scores take the
+    coverage sums as the data's own: the same lags and heights (1e-9) as from the transformed coverages."""
+    from specan import templates
+    from specan.velocity import bank, choice
+    from specan.velocity.prepared import prepare_builtin
+
+    _, search, power = _kurucz_search(kurucz_sun, -120.0, 5)
+    lags = search.lags
+    r = power.template_key
+    cands = [choice.BuiltinCandidate(t.sptype, t.lumclass, r, "library", t.name) for t in templates.library_templates()]
+    cands += [choice.BuiltinCandidate(st, lc, r) for st, lc in templates.automatic_types()]
+    prepared = [prepare_builtin(c, lags.template_grid) for c in cands]
+    b = bank.TemplateBank(cands, prepared, lags.m)
+    assert b.covers(lags.pad, lags.smax, lags.n)
+    fast = bank.score_bank(search, b, search.side.ffts)
+    monkeypatch.setattr(bank.TemplateBank, "covers", lambda self, *a: False)
+    slow = bank.score_bank(search, b, search.side.ffts)
+    assert fast.lag == slow.lag
+    np.testing.assert_allclose(fast.height, slow.height, rtol=0, atol=1e-9)

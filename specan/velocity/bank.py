@@ -78,9 +78,18 @@ class TemplateBank:
         self.nf = int(keep[-1]) + 1 if keep.size else FT.shape[1]
         self.FT = np.ascontiguousarray(FT[:, :self.nf], dtype=SCORE_PRECISION)
         self.FV = np.ascontiguousarray(sfft.rfft(unique, m, axis=1))
+        self._covers = {}
 
     def __len__(self):
         return len(self.templates)
+
+    def covers(self, pad, smax, n):
+        """Whether every template's coverage is 1 on every pixel the lags |s| <= ``smax`` use over
+        ``n`` data pixels (:func:`~.prepared.full_cover`; kept per lag window)."""
+        key = (pad, smax, n)
+        if key not in self._covers:
+            self._covers[key] = full_cover(self.templates, [0.0] * len(self.templates), pad, n, smax)
+        return self._covers[key]
 
 
 @functools.lru_cache(maxsize=16)
@@ -130,8 +139,13 @@ def score_bank(search, bank, data_short):
     # one inverse transform for them all, instead of direct sums per distinct template lag):
     # only lags using enough of the spectrum's weight (the overlap, C(a2, V)) count
     g = bank.FV.shape[0]
-    cov = sfft.irfft((np.conj(np.stack([data_short[1], data_short[0], data_short[2]]))[:, None, :]
-                      * bank.FV[None]).reshape(3 * g, -1), m, axis=1)[:, pad - s].reshape(3, g, -1)
+    if bank.covers(pad, lags.smax, n):
+        # every coverage is 1 on every pixel these lags use: the sums are the data's own, at every lag
+        sums = np.array([data_short[1][0].real, data_short[0][0].real, data_short[2][0].real])
+        cov = np.repeat(sums[:, None, None], g * s.size, axis=1).reshape(3, g, s.size)
+    else:
+        cov = sfft.irfft((np.conj(np.stack([data_short[1], data_short[0], data_short[2]]))[:, None, :]
+                          * bank.FV[None]).reshape(3 * g, -1), m, axis=1)[:, pad - s].reshape(3, g, -1)
     over = cov[0]
     ok = over[bank.groups] >= search.min_overlap * side.total_weight
     masked = np.where(ok, c1, -np.inf)
