@@ -23,10 +23,10 @@ the kept vacuum wavelengths and tapers (the changes after) left 1.0118e-3 and 5.
 mixture changed, and moved the velocities of 253 spectra (the speed test's, the night benchmark's, the
 demo night, JHC and MILES stars; against the code before them) by at most 1.1e-11 of their errors and
 the errors by 1.4e-9. The coverage rows taken as the data's own sums where a template covers every pixel
-a lag uses (refinement, segment errors, the CCF about the peak; the change after) left 1.0118e-3 and
+a lag uses (scores, refinement, segment errors, the CCF about the peak; the changes after) left 1.0118e-3 and
 5.389e-4 (the resampled errors 7.4e-5, as before), no template or mixture changed, and moved the
 velocities of 232 spectra (the speed test's, the night benchmark's, the demo night, JHC and MILES
-stars; against the code before it, ``bench_velocity.py --against``) by at most 1.4e-5 of their errors
+stars; against the code before them, ``bench_velocity.py --against``) by at most 1.4e-5 of their errors
 and the errors by 1.3e-5.
 """
 
