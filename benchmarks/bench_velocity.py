@@ -37,7 +37,10 @@
 10. ``--against DIR``: the speed test's spectra measured by this checkout's specan and by the specan of
    another checkout ``DIR`` (e.g. ``git archive <commit> | tar -x -C DIR``) in one process, each
    spectrum by both in turn (the order alternating): CPU ms per spectrum of each and their ratio, with
-   the load drift of a shared machine cancelled (runs in separate processes differ by +-20% here).
+   the load drift of a shared machine cancelled (runs in separate processes differ by +-20% here); then
+   on how many of the speed test's, ``bench_pipeline.py``'s, the demo night's, the JHC (1984) and the
+   MILES inputs (own groups out) the best template, the mixture (names, weights) or the velocity (by more
+   than 0.05 of its error) differ between the two, and by how much at most.
 
 Run:  python benchmarks/bench_velocity.py [--quick] [--speed] [--floor] [--night-set] [--user] [--other-types] [--neighbours]
       [--miles] [--kurucz] [--against DIR]
@@ -286,7 +289,7 @@ def against(model, n, other, rounds=4):
 
         packages = {"this checkout": this, f"{other}": importlib.import_module("specan_other")}
         for pkg in packages.values():
-            for module in (".velocity", ".obsinfo"):
+            for module in (".velocity", ".obsinfo", ".prepare"):
                 importlib.import_module(pkg.__name__ + module)
         velocities = np.random.default_rng(5).uniform(-300, 300, n)
 
@@ -319,9 +322,67 @@ def against(model, n, other, rounds=4):
                   f"{np.percentile(t, 75):.2f})")
         ratio = np.asarray(cpu[names[1]]) / np.asarray(cpu[names[0]])
         print(f"{names[1]} / this checkout, per spectrum: median {np.median(ratio):.3f}")
+        choice_changes(packages, [{name: spectra[name][i] for name in names} for i in range(n)], n)
     finally:
         sys.path.remove(str(folder))
         shutil.rmtree(folder, ignore_errors=True)
+
+
+def _change_sets(packages, speed_inputs, n):
+    """{set name: [(inputs per package name, exclude)]}: the speed test's spectra, ``bench_pipeline.py``'s,
+    the demo night, the JHC (1984) library and MILES stars without their own groups' templates (where
+    present), each read and prepared by each package."""
+    import tempfile
+
+    sys.path.insert(0, str(Path(__file__).resolve().parent))
+    from bench_pipeline import make_spectra
+
+    root = Path(__file__).resolve().parents[1]
+    reference = root.parent / "shared" / "reference"
+    sets = {"speed test (Kurucz Sun)": [(x, ()) for x in speed_inputs]}
+
+    def read_all(path, **kw):
+        try:
+            return {name: pkg.prepare(pkg.read(path, **kw)) for name, pkg in packages.items()}
+        except Exception:    # the demo night's damaged files
+            return None
+
+    with tempfile.TemporaryDirectory() as tmp:
+        sets["bench_pipeline spectra"] = [(read_all(p), ()) for p in make_spectra(Path(tmp), n)]
+    sets["demo night"] = [(read_all(p), ()) for p in sorted((root / "sample_spectra").glob("trf3_*"))]
+    if (reference / "jhc1984" / "catalog.csv").is_file():
+        from astropy.table import Table
+
+        rows = Table.read(reference / "jhc1984" / "catalog.csv", format="ascii.csv")
+        sets["JHC (1984) library"] = [(read_all(reference / "jhc1984" / r["file"]), ()) for r in rows]
+    miles = _miles_inputs(n)
+    if miles:
+        sets["MILES stars, own groups out"] = [(read_all(reference / "miles" / r["file"], resolving_power=2000.0,
+                                                         medium="air"), ex) for _, ex, r in miles]
+    return {k: [(x, ex) for x, ex in v if x is not None] for k, v in sets.items()}
+
+
+def choice_changes(packages, speed_inputs, n):
+    """On how many inputs the two packages' template choice, mixture or velocity differ (no template given)."""
+    names = list(packages)
+    print(f"\n== {names[1]} against this checkout: template choice, mixture and velocity on the same inputs ==")
+    print(f"{'set':28s} {'n':>4s} {'best differs':>12s} {'mixture differs':>15s} {'|drv|>0.05 err':>14s} "
+          f"{'max |drv|/err':>13s} {'max |derr|/err':>14s}")
+    for label, inputs in _change_sets(packages, speed_inputs, n).items():
+        best = mix = moved = 0
+        drv = derr = 0.0
+        for spectra, exclude in inputs:
+            res = [packages[k].velocity.measure(spectra[k], barycentric=False, exclude_templates=exclude)
+                   for k in names]
+            a, b = res
+            best += a["template"] != b["template"]
+            mix += ([(m["name"], round(m["weight"], 6)) for m in a["templates"]]
+                    != [(m["name"], round(m["weight"], 6)) for m in b["templates"]])
+            d = abs((a["rv"] - b["rv"]) / b["rv_err"]).value
+            moved += d > 0.05
+            drv = max(drv, d)
+            derr = max(derr, abs((a["rv_err"] - b["rv_err"]) / b["rv_err"]).value)
+        print(f"{label:28s} {len(inputs):4d} {best:12d} {mix:15d} {moved:14d} {drv:13.2e} {derr:14.2e}")
 
 
 #: The steps of ``velocity.measure`` timed by :func:`floor` (names in ``specan.velocity``).

@@ -22,7 +22,12 @@ spline solves, the scores' coverage sums read off transforms, the single-star mo
 the kept vacuum wavelengths and tapers (the changes after) left 1.0118e-3 and 5.391e-4, no template or
 mixture changed, and moved the velocities of 253 spectra (the speed test's, the night benchmark's, the
 demo night, JHC and MILES stars; against the code before them) by at most 1.1e-11 of their errors and
-the errors by 1.4e-9. The library templates' laboratory zero points (``specan.templates``, a change of
+the errors by 1.4e-9. The coverage rows taken as the data's own sums where a template covers every pixel
+a lag uses (scores, refinement, segment errors, the CCF about the peak; the changes after) left 1.0118e-3 and
+5.389e-4 (the resampled errors 7.4e-5, as before), no template or mixture changed, and moved the
+velocities of 232 spectra (the speed test's, the night benchmark's, the demo night, JHC and MILES
+stars; against the code before them, ``bench_velocity.py --against``) by at most 1.4e-5 of their errors
+and the errors by 1.3e-5. The library templates' laboratory zero points (``specan.templates``, a change of
 what the templates are, not of the method) moved the Kurucz Sun's velocities by +5.72 km/s and its
 errors from 2.9-3.1 to 6.0-6.1 km/s (the zero points' own error): those five were recorded again then;
 the other spectra use synthetic templates and did not move.
@@ -432,3 +437,113 @@ def test_air_wavelengths_converted_once_per_set_of_pixels():
                        medium="air")
     other = _vacuum_wavelengths(b, specan.obsinfo.get_info(b))
     assert np.array_equal(other, wavelength_in(b, "vacuum")) and not np.array_equal(other, first)
+
+
+def test_shifted_coverage_is_one_beyond_the_full_cover_margin():
+    """A coverage stepping down by the template taper, shifted by a fraction of a pixel as the
+    correlations shift it (a band-limited Fourier shift), stays within 1e-5 of 1 on every pixel
+    FULL_COVER_MARGIN pixels or more from where it is below 1; nearer, it does not (the check can fail)."""
+    from scipy import fft as sfft
+
+    from specan.velocity.grid import FULL_COVER_MARGIN, cover_taper, fast_length
+
+    n = 3000
+    valid = np.zeros(n, bool)
+    valid[200:2800] = True
+    valid[1400:1430] = False                    # a gap, as a template's own masked band
+    cover = cover_taper(valid)
+    m = fast_length(n)
+    spectrum = sfft.rfft(cover, m)
+    freq = np.arange(spectrum.size)
+    below = np.flatnonzero(cover < 1.0)
+    # distance of each (shifted) pixel from the nearest pixel where the coverage is below 1
+    x = np.arange(n)
+
+    def worst(frac, near, far):
+        shifted = sfft.irfft(spectrum * np.exp(-2j * np.pi * freq * frac / m), m)[:n]
+        dist = np.min(np.abs((x + frac)[:, None] - below[None, :]), axis=1)
+        return np.max(np.abs(shifted[(dist >= near) & (dist < far)] - 1.0))
+
+    for frac in (-1.3, -0.5, 0.2, 0.75, 1.5):
+        assert worst(frac, FULL_COVER_MARGIN + 1, n) < 1e-5, frac
+    assert max(worst(frac, 2, 4) for frac in (-0.5, 0.75)) > 1e-5
+
+
+def test_full_cover_sums_are_the_coverage_rows(kurucz_sun, monkeypatch):
+    """Where the templates cover every pixel used, the refinement and the segments take the coverage
+    rows as the data's own sums: the same peaks (1e-7 pixel) and segment errors (1e-5) as with the
+    transformed coverage, and the shortcut is taken on these spectra."""
+    from specan.velocity import bank, prepared, uncertainty
+
+    refined, segments = [], []
+    real_refine, real_segments = bank._refine, uncertainty.segment_errors
+    monkeypatch.setattr(bank, "_refine", lambda *a: refined.append(a) or real_refine(*a))
+    monkeypatch.setattr(velocity, "segment_errors", lambda *a: segments.append(a) or real_segments(*a))
+    for v, seed, _ in KURUCZ_CASES[:3]:
+        velocity.measure(kurucz_spectrum(kurucz_sun, v, seed), barycentric=False)
+    monkeypatch.undo()
+    taken = []
+    real_full = prepared.full_cover
+
+    def spy(*a):
+        taken.append(real_full(*a))
+        return taken[-1]
+
+    for patch in (spy, lambda *a: False):
+        monkeypatch.setattr(bank, "full_cover", patch)
+        monkeypatch.setattr(uncertainty, "full_cover", patch)
+        if patch is spy:
+            fast = [bank._refine(*a) for a in refined], [uncertainty.segment_errors(*a) for a in segments]
+        else:
+            slow = [bank._refine(*a) for a in refined], [uncertainty.segment_errors(*a) for a in segments]
+    assert taken and all(taken)
+    for (x1, h1, c1), (x0, h0, c0) in zip(fast[0], slow[0]):
+        np.testing.assert_allclose(x1, x0, rtol=0, atol=1e-7)
+        np.testing.assert_allclose(h1, h0, rtol=1e-7)
+        np.testing.assert_allclose(c1, c0, rtol=1e-5)
+    for a, b in zip(fast[1], slow[1]):
+        assert abs(a.noise_px / b.noise_px - 1) < 1e-5 and abs(a.birge / b.birge - 1) < 1e-5
+        np.testing.assert_allclose(a.sigmas, b.sigmas, rtol=1e-5)
+        np.testing.assert_allclose(a.offsets, b.offsets, rtol=0, atol=1e-5)
+
+
+def test_full_cover_ccf_about_the_peak(kurucz_sun, monkeypatch):
+    """The CCF about the peak and the single-star model with the coverage rows as the data's (and the
+    model's) own sums: the same CCF (1e-6), Tonry & Davis error (1e-5) and flags as transformed."""
+    from specan.velocity import correlation
+
+    real = correlation.full_cover
+    taken = []
+    monkeypatch.setattr(correlation, "full_cover", lambda *a: taken.append(real(*a)) or taken[-1])
+    spectra = [kurucz_spectrum(kurucz_sun, v, seed) for v, seed, _ in KURUCZ_CASES[:3]]
+    spectra += [specan.prepare(specan.read(ROOT / "sample_spectra" / name)) for name in NIGHT_FILES]
+    fast = [velocity.measure(s, barycentric=False) for s in spectra]
+    monkeypatch.setattr(correlation, "full_cover", lambda *a: False)
+    slow = [velocity.measure(s, barycentric=False) for s in spectra]
+    assert taken and all(taken)
+    for a, b in zip(fast, slow):
+        np.testing.assert_allclose(np.asarray(a["ccf"]), np.asarray(b["ccf"]), rtol=0, atol=1e-6)
+        assert abs(a["rv_err_td"] / b["rv_err_td"] - 1) < 1e-5
+        assert a["flags"] == b["flags"] and (a["second_peak_rv"] is None) == (b["second_peak_rv"] is None)
+
+
+def test_full_cover_scores_take_the_data_sums(kurucz_sun, monkeypatch):
+    """Where every template of the bank covers every pixel the search lags use, the scores take the
+    coverage sums as the data's own: the same lags and heights (1e-9) as from the transformed coverages."""
+    from specan import templates
+    from specan.velocity import bank, choice
+    from specan.velocity.prepared import prepare_builtin
+
+    _, search, power = _kurucz_search(kurucz_sun, -120.0, 5)
+    lags = search.lags
+    r = power.template_key
+    cands = [choice.BuiltinCandidate(t.sptype, t.lumclass, r, "library", t.name) for t in templates.library_templates()]
+    cands += [choice.BuiltinCandidate(st, lc, r) for st, lc in templates.automatic_types()]
+    prepared = [prepare_builtin(c, lags.template_grid) for c in cands]
+    b = bank.TemplateBank(cands, prepared, lags.m)
+    assert b.covers(lags.pad, lags.smax, lags.n)
+    fast = bank.score_bank(search, b, search.side.ffts)
+    monkeypatch.setattr(bank.TemplateBank, "covers", lambda self, *a: False)
+    slow = bank.score_bank(search, b, search.side.ffts)
+    assert fast.lag == slow.lag
+    np.testing.assert_allclose(fast.height, slow.height, rtol=0, atol=1e-9)

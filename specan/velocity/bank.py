@@ -20,7 +20,7 @@ import numpy as np
 from scipy import fft as sfft
 
 from .grid import turns
-from .prepared import prepare_builtin
+from .prepared import full_cover, prepare_builtin
 
 __all__ = ["TemplateBank", "BankScores", "short_length", "template_bank", "score_bank",
            "WEIGHT_SCALE", "SCORE_PRECISION", "MAX_MIXTURE", "MIN_WEIGHT", "mixture_weights", "mixture_threshold", "fit_matrix", "poly_peaks",
@@ -78,9 +78,18 @@ class TemplateBank:
         self.nf = int(keep[-1]) + 1 if keep.size else FT.shape[1]
         self.FT = np.ascontiguousarray(FT[:, :self.nf], dtype=SCORE_PRECISION)
         self.FV = np.ascontiguousarray(sfft.rfft(unique, m, axis=1))
+        self._covers = {}
 
     def __len__(self):
         return len(self.templates)
+
+    def covers(self, pad, smax, n):
+        """Whether every template's coverage is 1 on every pixel the lags |s| <= ``smax`` use over
+        ``n`` data pixels (:func:`~.prepared.full_cover`; kept per lag window)."""
+        key = (pad, smax, n)
+        if key not in self._covers:
+            self._covers[key] = full_cover(self.templates, [0.0] * len(self.templates), pad, n, smax)
+        return self._covers[key]
 
 
 @functools.lru_cache(maxsize=16)
@@ -130,8 +139,13 @@ def score_bank(search, bank, data_short):
     # one inverse transform for them all, instead of direct sums per distinct template lag):
     # only lags using enough of the spectrum's weight (the overlap, C(a2, V)) count
     g = bank.FV.shape[0]
-    cov = sfft.irfft((np.conj(np.stack([data_short[1], data_short[0], data_short[2]]))[:, None, :]
-                      * bank.FV[None]).reshape(3 * g, -1), m, axis=1)[:, pad - s].reshape(3, g, -1)
+    if bank.covers(pad, lags.smax, n):
+        # every coverage is 1 on every pixel these lags use: the sums are the data's own, at every lag
+        sums = np.array([data_short[1][0].real, data_short[0][0].real, data_short[2][0].real])
+        cov = np.repeat(sums[:, None, None], g * s.size, axis=1).reshape(3, g, s.size)
+    else:
+        cov = sfft.irfft((np.conj(np.stack([data_short[1], data_short[0], data_short[2]]))[:, None, :]
+                          * bank.FV[None]).reshape(3 * g, -1), m, axis=1)[:, pad - s].reshape(3, g, -1)
     over = cov[0]
     ok = over[bank.groups] >= search.min_overlap * side.total_weight
     masked = np.where(ok, c1, -np.inf)
@@ -141,8 +155,8 @@ def score_bank(search, bank, data_short):
     # parabola vertex of the cross term about the integer peak (a smooth score: ranks must not
     # jump with the sub-pixel phase of the star)
     y1 = c1[rows, j]
-    y0 = c1[rows, np.clip(j - 1, 0, s.size - 1)]
-    y2 = c1[rows, np.clip(j + 1, 0, s.size - 1)]
+    y0 = c1[rows, np.maximum(j - 1, 0)]
+    y2 = c1[rows, np.minimum(j + 1, s.size - 1)]
     den = y0 - 2.0 * y1 + y2
     inner = (j > 0) & (j < s.size - 1) & (den < 0)
     vertex = np.where(inner, y1 - 0.125 * (y0 - y2) ** 2 / np.where(inner, den, -1.0), y1)
@@ -164,9 +178,11 @@ def score_bank(search, bank, data_short):
     e = c2t2 - c2t ** 2 / c2v
     d = c3v - c1v ** 2 / c2v
     with np.errstate(invalid="ignore", divide="ignore"):
-        h = (vertex - c1v * c2t / c2v) / np.sqrt(np.clip(e, 1e-300, None) * np.clip(d, 1e-300, None))
+        h = (vertex - c1v * c2t / c2v) / np.sqrt(np.maximum(e, 1e-300) * np.maximum(d, 1e-300))
     h = np.where(found & np.isfinite(h), h, -np.inf)
-    return BankScores([int(s[j[i]]) if np.isfinite(h[i]) else None for i in rows], h, vertex_lag)
+    # (the lags as plain ints from one conversion, not a numpy scalar per template)
+    lag = [int(x) if ok else None for x, ok in zip(s[j].tolist(), np.isfinite(h).tolist())]
+    return BankScores(lag, h, vertex_lag)
 
 
 def _windows(x, n):
@@ -247,7 +263,7 @@ def poly_peaks(offsets, values, degree=4, bound=None):
 
     for _ in range(12):
         g1, g2 = pv(d1, x), pv(d2, x)
-        step = np.clip(x - g1 / np.where(g2 < 0, g2, -1e-9), -bound, bound) - x
+        step = np.minimum(np.maximum(x - g1 / np.where(g2 < 0, g2, -1e-9), -bound), bound) - x
         x = x + step
         # converged (Newton's steps shrink quadratically): the next step would move no row
         # by more than 1e-12 pixel; the same rows always take the same number of steps
@@ -306,13 +322,22 @@ def _refine(templates, lags, data_ffts, m, pad, passes):
     """:func:`refine_peaks` from ``lags`` through the offset stencils ``passes``."""
     from .correlation import Correlation
 
-    bands = [t.band_ffts(m) for t in templates]
-    nf = max(x.size for b in bands for x in b)
-    FT, FT2, FV = (_stacked([b[i] for b in bands], nf) for i in range(3))
-    A = [a[:nf] for a in data_ffts]
     x0 = np.asarray(lags, float)
+    # where every template's coverage is 1 over all the pixels any lag of the passes uses (the data's
+    # n pixels: the template's less the pad on both sides), the three coverage rows are the data's own
+    # sums (their transforms' zero frequency), the same at every lag: three of the six sums not made
+    reach = sum(float(np.max(np.abs(offs))) for offs in passes)
+    full = full_cover(templates, x0, pad, templates[0].V.size - 2 * pad, reach)
+    bands = [t.band_ffts(m) for t in templates]
+    nf = max(x.size for b in bands for x in b[:2 if full else 3])
+    FT, FT2 = (_stacked([b[i] for b in bands], nf) for i in range(2))
+    FV = None if full else _stacked([b[2] for b in bands], nf)
+    A = [a[:nf] for a in data_ffts]
     height = curv = np.full(x0.size, np.nan)
     pairs = ((0, 0), (1, 0), (1, 1), (0, 2), (2, 2), (1, 2))   # (data, template) arrays of the six rows
+    if full:
+        pairs = pairs[:3]
+        cover = np.array([data_ffts[0][0].real, data_ffts[2][0].real, data_ffts[1][0].real])   # a1, a3, a2
     for offs in passes:
         # row (a, b) at lag s = x0 + o (index k = pad - s) is Re sum_f conj(A_a) B_b e^{i theta_t f} conj(p_o):
         # the per-template phase e^{i theta_t f} goes into the three template arrays, the cached
@@ -322,9 +347,11 @@ def _refine(templates, lags, data_ffts, m, pad, passes):
         # whatever the thread count). Six (T, nf) products instead of six (6, T, nf) arrays.
         turn = turns((2.0 * np.pi / m) * (pad - x0), nf)                     # (T, nf)
         p = _offset_phases(m, nf, tuple(offs))                                # (L, nf), cached
-        tv = [(B * turn).view(np.float64) for B in (FT, FT2, FV)]
-        dv = [(a[None, :] * p).view(np.float64) for a in A]
+        tv = [(B * turn).view(np.float64) for B in ((FT, FT2) if full else (FT, FT2, FV))]
+        dv = [(a[None, :] * p).view(np.float64) for a in (A[:2] if full else A)]
         rows = np.stack([np.einsum("tf,lf->tl", tv[j], dv[i]) for i, j in pairs])
+        if full:
+            rows = np.concatenate([rows, np.broadcast_to(cover[:, None, None], (3,) + rows.shape[1:])])
         c, _ = Correlation.combine(rows)
         ok = np.all(np.isfinite(c), axis=1)
         dx, h, cv = poly_peaks(offs, np.where(ok[:, None], c, 0.0))

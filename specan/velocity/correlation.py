@@ -20,6 +20,7 @@ from scipy import fft as sfft
 
 from ..errors import AnalysisError
 from .grid import LagWindow, highpass, turns
+from .prepared import full_cover
 
 __all__ = ["ObservedSide", "PeakSearch", "Correlation", "Peak", "PeakCCF", "correlation_arrays",
            "observed_side", "best_lag", "integer_peak", "quick_peak", "coverage_rows", "template_peaks",
@@ -59,7 +60,7 @@ def correlation_arrays(d_minus_1, weight):
 def observed_side(observed, lags):
     """The :class:`ObservedSide` of an :class:`~.grid.ObservedGrid`, high-pass filtered as templates are."""
     # data side: weights = taper x inverse variance (normalised), zero on masked pixels
-    w_noise = 1.0 / np.clip(observed.sigma, 1e-12, None) ** 2
+    w_noise = 1.0 / np.maximum(observed.sigma, 1e-12) ** 2
     w_noise /= np.median(w_noise[observed.valid])
     weight = observed.taper * w_noise
     arrays = correlation_arrays(highpass(observed.flux - 1.0, lags.hp_sigma, observed.valid), weight)
@@ -86,6 +87,9 @@ class Correlation:
         # cross-spectra: rows = C(a1,T), C(a2,T), C(a2,T2), C(a1,V), C(a3,V), C(a2,V)
         self.X = np.stack([np.conj(A1) * BT, np.conj(A2) * BT, np.conj(A2) * BT2,
                            np.conj(A1) * BV, np.conj(A3) * BV, np.conj(A2) * BV])
+        # the data's own sums of a1, a3, a2 (their transforms' zero frequency): the three coverage rows
+        # at lags where the template's coverage is 1 on every pixel used (:meth:`rows` with ``full``)
+        self.cover_sums = np.array([A1[0].real, A3[0].real, A2[0].real])
         self.freq = np.arange(self.X.shape[1])
         self._xw = None
 
@@ -110,7 +114,8 @@ class Correlation:
         e = c2t2 - c2t ** 2 / nw
         d = c3v - c1v ** 2 / nw
         with np.errstate(invalid="ignore", divide="ignore"):
-            return num / np.sqrt(np.clip(e, 1e-300, None) * np.clip(d, 1e-300, None)), c2v
+            # (np.maximum, not np.clip: the same values, NaN kept, without clip's wrapper per call)
+            return num / np.sqrt(np.maximum(e, 1e-300) * np.maximum(d, 1e-300)), c2v
 
     def integer_lags(self, frac=0.0, k=None, single=False):
         """Normalised CCF at lags s = pad - k + ... for k = 0..m-1 (or the indices ``k`` only), shifted
@@ -118,14 +123,18 @@ class Correlation:
         time, ~1e-7 of the peak), the normalisation in double."""
         return self.combine(self.rows(frac, k, single))
 
-    def rows(self, frac=0.0, k=None, single=False):
-        """The six correlation rows (before :meth:`combine`) of :meth:`integer_lags`, as doubles."""
-        X = self.X
+    def rows(self, frac=0.0, k=None, single=False, full=False):
+        """The six correlation rows (before :meth:`combine`) of :meth:`integer_lags`, as doubles;
+        ``full``: the template's coverage is 1 on every pixel these lags use (see
+        :func:`~.prepared.full_cover`), and the three coverage rows are the data's sums, not transformed."""
+        X = self.X[:3] if full else self.X
         if frac:
             X = X * turns(-2.0 * np.pi * frac / self.m, X.shape[1])
         c = sfft.irfft(X.astype(np.complex64) if single else X, self.m, axis=1)
-        c = c if k is None else c[:, k]
-        return np.asarray(c, np.float64)
+        c = np.asarray(c if k is None else c[:, k], np.float64)
+        if full:
+            c = np.concatenate([c, np.repeat(self.cover_sums[:, None], c.shape[1], axis=1)])
+        return c
 
     def at(self, s):
         """Normalised CCF at fractional lags ``s`` (array) by Fourier-series evaluation."""
@@ -241,15 +250,15 @@ def correlate(search, template, where=None):
     return corr, refine(corr, pk[0])
 
 
-def ccf_about(corr, s0, half, single=False, rows=False):
+def ccf_about(corr, s0, half, single=False, rows=False, full=False):
     """Normalised CCF at s0 + j for integer j in [-half, half] (exact fractional centring; ``single``:
-    see :meth:`Correlation.integer_lags`): (j, ccf, overlap weight), and the six correlation rows
-    (:meth:`Correlation.rows`) after them with ``rows``."""
+    see :meth:`Correlation.integer_lags`; ``full``: see :meth:`Correlation.rows`): (j, ccf, overlap
+    weight), and the six correlation rows (:meth:`Correlation.rows`) after them with ``rows``."""
     frac = s0 - math.floor(s0)
     base = math.floor(s0)
     j = np.arange(-half, half + 1)
     k = (corr.pad - (base + j)) % corr.m  # lag s = base + frac + j  <->  index pad - base - j after shift
-    c = corr.rows(frac=frac, k=k, single=single)
+    c = corr.rows(frac=frac, k=k, single=single, full=full)
     ccf, c2v = corr.combine(c)
     return (j, ccf, c2v, c) if rows else (j, ccf, c2v)
 
@@ -271,14 +280,16 @@ def fwhm_pixels(j, vals, h):
     return float(xr - xl)
 
 
-def single_star_ccf(template, valid, weight, pad, m, s0, half, data_rows=None):
+def single_star_ccf(template, valid, weight, pad, m, s0, half, data_rows=None, full=False):
     """CCF a noiseless star identical to the template, shifted by s0, would give (1 at the peak).
 
     The model star goes through the same steps as the data (window, masks, high-pass, weights),
     so edge and gap effects of those steps are in the model, not mistaken for noise.
     ``data_rows``: the data's six correlation rows about s0 (:func:`ccf_about` with ``rows``);
     where the template covers every pixel the data weigh, the model has the data's weights, so
-    the three rows of the weights alone are the data's and are not computed again.
+    the three rows of the weights alone are the data's and are not computed again. ``full``: the
+    template's coverage is 1 on every pixel the lags s0 +- ``half`` use (:func:`~.prepared.full_cover`):
+    the model is known everywhere and its coverage rows are its own sums, not transformed.
     """
     n = valid.size
     shift = turns(-2.0 * np.pi * (s0 - pad) / m, m // 2 + 1)
@@ -287,23 +298,31 @@ def single_star_ccf(template, valid, weight, pad, m, s0, half, data_rows=None):
     # continuum (both shifted in one inverse transform of the template's cached spectra)
     # (single precision in the transforms: the model is compared with a CCF whose noise is far above
     # 1e-7 of its peak; it sets error estimates and flags, not the velocity)
-    model, known = np.asarray(sfft.irfft((template.model_ffts(m) * shift).astype(np.complex64), m, axis=1)[:, :n],
-                              np.float64)
-    known = known > 0.5
+    if full:
+        model = np.asarray(sfft.irfft((template.model_ffts(m)[0] * shift).astype(np.complex64), m)[:n], np.float64)
+        known = np.ones(n, bool)
+    else:
+        model, known = np.asarray(sfft.irfft((template.model_ffts(m) * shift).astype(np.complex64), m,
+                                             axis=1)[:, :n], np.float64)
+        known = known > 0.5
     ok = valid & known
     model = highpass(model, template.hp_sigma, ok, single=True)
     if data_rows is not None and not np.any((weight > 0) & ~known):
         # rows (w d, T), (w, T), (w, T2), (w d, V), (w d^2, V), (w, V): those of w alone are the data's
         a1, _, a3 = correlation_arrays(model, weight)
-        A1, A3 = sfft.rfft(np.stack([a1, a3]), m, axis=1)
         BT, _, BV = template.ffts(m)
         frac = s0 - math.floor(s0)
-        X = np.stack([np.conj(A1) * BT, np.conj(A1) * BV, np.conj(A3) * BV])
+        if full:   # the model's coverage rows are its own sums: only its cross row is transformed
+            X = (np.conj(sfft.rfft(a1, m)) * BT)[None]
+        else:
+            A1, A3 = sfft.rfft(np.stack([a1, a3]), m, axis=1)
+            X = np.stack([np.conj(A1) * BT, np.conj(A1) * BV, np.conj(A3) * BV])
         if frac:
             X = X * turns(-2.0 * np.pi * frac / m, X.shape[1])
         k = (pad - (math.floor(s0) + np.arange(-half, half + 1))) % m
         c = np.asarray(sfft.irfft(X.astype(np.complex64), m, axis=1)[:, k], np.float64)
-        mvals, _ = Correlation.combine((c[0], data_rows[1], data_rows[2], c[1], c[2], data_rows[5]))
+        c1v, c3v = (np.sum(a1), np.sum(a3)) if full else (c[1], c[2])
+        mvals, _ = Correlation.combine((c[0], data_rows[1], data_rows[2], c1v, c3v, data_rows[5]))
     else:
         mcorr = Correlation(correlation_arrays(model, weight * ok), template, pad, m)
         _, mvals, _ = ccf_about(mcorr, s0, half, single=True)
@@ -329,7 +348,9 @@ def ccf_about_peak(corr, template, valid, weight, lags, peak):
     s0, h = peak.lag, peak.height
     # CCF about the peak, and the single-star shape (the template seen through the same window), in
     # single precision: they give the Tonry & Davis error, the second peak and the CCF reported
-    j, vals, _, rows = ccf_about(corr, s0, lags.half, single=True, rows=True)
-    model = single_star_ccf(template, valid, weight, lags.pad, lags.m, s0, lags.half, data_rows=rows)
+    # (where the template covers every pixel these lags use, the coverage rows are the data's sums)
+    full = full_cover([template], [s0], lags.pad, lags.n, lags.half + 1)
+    j, vals, _, rows = ccf_about(corr, s0, lags.half, single=True, rows=True, full=full)
+    model = single_star_ccf(template, valid, weight, lags.pad, lags.m, s0, lags.half, data_rows=rows, full=full)
     resid = vals - h * model if model is not None else vals
     return PeakCCF(j, vals, model, resid, fwhm_pixels(j, vals, h))

@@ -27,7 +27,7 @@ from ..obsinfo import ObsInfo, get_info, wavelength_in
 
 _KMS = u.km / u.s   # made once (composing a unit costs ~10 us)
 
-__all__ = ["SPLINE_K", "COVER_TAPER", "ObservedGrid", "TemplateGrid", "LagWindow", "normalised",
+__all__ = ["SPLINE_K", "COVER_TAPER", "FULL_COVER_MARGIN", "ObservedGrid", "TemplateGrid", "LagWindow", "normalised",
            "observe_on_grid", "lattice_step", "lag_window", "kms_per_pixel", "sigma_array", "hot_pixels",
            "noise_from_flux", "fast_length", "turns", "distance_to_invalid",
            "dersnr_sigma", "gauss_smooth", "gauss_kernel", "smoothed_coverage", "highpass", "cover_taper", "SplineOperators", "spline_operators"]
@@ -46,6 +46,12 @@ COVER_TAPER = 8
 #: 4,000 pixels). The numbers are our choice.
 STEP_LATTICE = 16
 GRID_BLOCK = 128
+#: Pixels beyond those a correlation uses over which a template's coverage must be exactly 1 for its
+#: coverage sums to be taken as the data's own (``PreparedTemplate.covers``): the band-limited shift of a
+#: coverage that steps down (a cosine over :data:`COVER_TAPER` pixels) departs from 1 by less than
+#: 1e-5 this far from the step (5.8e-6 measured, fractional shifts to 1.5 pixels; checked in
+#: tests/test_velocity_fast_path.py), and the data's weight is tapered where it would enter (our choice).
+FULL_COVER_MARGIN = 24
 
 
 # ---------------------------------------------------------------------------
@@ -74,7 +80,9 @@ def hot_pixels(f, sig, bad):
     filter sees it in one only and shifts the peak (a K1 I library spectrum against itself
     read 9.4 km/s instead of 0 when only the star was clipped, measured).
     """
-    hot = (f > 1.0 + np.maximum(5.0 * np.nan_to_num(sig, nan=np.inf), 0.05)) & ~bad
+    # (nan_to_num only where something is not finite: it copies and tests the array several times)
+    sig = sig if np.isfinite(sig).all() else np.nan_to_num(sig, nan=np.inf)
+    hot = (f > 1.0 + np.maximum(5.0 * sig, 0.05)) & ~bad
     if hot.any():
         hot = np.convolve(hot.astype(float), np.ones(7), mode="same") > 0
     return hot
@@ -361,11 +369,13 @@ def observe_on_grid(spectrum, *, step=None, telluric=True, clip_emission=True, n
     first, last = int(np.argmax(inside)), int(n - 1 - np.argmax(inside[::-1]))
     f_fill = np.where(bad, 1.0, f)
     valid = inside & ~(np.interp(grid, lnw, bad.astype(float)) > 1e-6)
+    # (the median and the replacements only where some error is not finite: the same arrays)
+    finite = bool(np.isfinite(sig).all())
     return ObservedGrid(
         info=info, noise_source=noise_source, spline_x=lnw, grid=grid, step=step, n=n,
         flux=spline_operators(lnw, grid).forward(f_fill),
-        sigma=np.interp(grid, lnw, np.where(np.isfinite(sig), sig, np.nanmedian(sig))),
-        native_flux=f_fill, native_sigma=np.where(bad, 0.0, np.nan_to_num(sig)),
+        sigma=np.interp(grid, lnw, sig if finite else np.where(np.isfinite(sig), sig, np.nanmedian(sig))),
+        native_flux=f_fill, native_sigma=np.where(bad, 0.0, sig if finite else np.nan_to_num(sig)),
         valid=valid, taper=_edge_taper(valid, first, last), n_data=last - first + 1)
 
 

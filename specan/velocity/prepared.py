@@ -23,9 +23,9 @@ from .. import templates
 from ..errors import AnalysisError
 from ..obsinfo import get_info, wavelength_in
 from ..resolution import FWHM_TO_SIGMA
-from .grid import SPLINE_K, cover_taper, highpass, hot_pixels, noise_from_flux, normalised, sigma_array
+from .grid import FULL_COVER_MARGIN, SPLINE_K, cover_taper, highpass, hot_pixels, noise_from_flux, normalised, sigma_array
 
-__all__ = ["PreparedTemplate", "BuiltinCandidate", "builtin_template", "prepare_builtin", "spectrum_template"]
+__all__ = ["PreparedTemplate", "full_cover", "BuiltinCandidate", "builtin_template", "prepare_builtin", "spectrum_template"]
 
 
 class PreparedTemplate:
@@ -70,6 +70,19 @@ class PreparedTemplate:
             self._fft[key] = sfft.rfft(np.stack([self.T0, (self.V > 0).astype(float)]), m, axis=1)
         return self._fft[key]
 
+    def covers(self, lo, hi):
+        """Whether the coverage V is exactly 1 on template pixels ``lo`` .. ``hi - 1`` (all inside).
+
+        Where it is over every pixel a correlation's lags use (the template covers the spectrum with
+        room to spare, the common case), the coverage sums of the correlation are the data's own
+        sums, the same at every lag and for every such template.
+        """
+        key = "ones"
+        if key not in self._fft:
+            self._fft[key] = np.concatenate([[0], np.cumsum(self.V == 1.0)])
+        ones = self._fft[key]
+        return 0 <= lo < hi <= self.V.size and int(ones[hi] - ones[lo]) == hi - lo
+
     def band_ffts(self, m):
         """:meth:`ffts` each cut where its power has fallen below 1e-14 of its peak for good
         (resolution and smooth coverage band-limit them: the rest adds nothing to a correlation)."""
@@ -82,6 +95,15 @@ class PreparedTemplate:
                 cut.append(np.ascontiguousarray(f[:int(keep[-1]) + 1]))
             self._fft[key] = tuple(cut)
         return self._fft[key]
+
+
+def full_cover(prepared, lags, pad, n, reach):
+    """Whether every template's coverage is 1 over all the pixels its correlations at ``lags`` +-
+    ``reach`` (pixels) use, :data:`~.grid.FULL_COVER_MARGIN` pixels beyond them included (lag s
+    uses template pixels x + pad - s for the ``n`` data pixels x)."""
+    margin = FULL_COVER_MARGIN
+    return all(t.covers(int(math.floor(pad - s - reach)) - margin, int(math.ceil(pad - s + reach)) + n + margin)
+               for t, s in zip(prepared, lags))
 
 
 # ---------------------------------------------------------------------------

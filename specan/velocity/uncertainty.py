@@ -18,6 +18,7 @@ import numpy as np
 from scipy import fft as sfft
 
 from .correlation import Correlation
+from .prepared import full_cover
 from .grid import gauss_kernel, fast_length, gauss_smooth, highpass, kms_per_pixel, smoothed_coverage, spline_operators, turns
 
 __all__ = ["TonryDavis", "VelocityErrors", "SegmentErrors", "tonry_davis", "resample_error", "estimate_errors",
@@ -363,12 +364,15 @@ def _offset_phases(offsets, m, nf):
     return np.exp(2j * np.pi * np.outer(np.asarray(offsets, float), np.arange(nf)) / m)
 
 
-def _shifted_templates(search, members, m, h):
+def _shifted_templates(search, members, m, h, full=False):
     """(T, 3, 3, n): each member template's arrays T, T^2 (weighted) and V on the data window at lags
     s0 + h, s0 and s0 - h (s0 its peak), all in one inverse transform (lag s uses template pixels
-    x + pad - s)."""
+    x + pad - s); (T, 2, 3, n), T and T^2 only, where the coverages are ``full`` (1 on every pixel
+    used, :func:`full_cover`): V is then 1 at every lag and not transformed."""
     lags = search.lags
     F = np.stack([template.ffts_single(m) for template, _, _ in members])            # (T, 3, nf)
+    if full:
+        F = F[:, :2]
     # the members' shifts in one call: exp(2 pi i f (pad - s0) / m) times the cached offset phases
     angles = (2.0 * np.pi / m) * (lags.pad - np.array([s0 for _, s0, _ in members], float))
     ph = turns(angles, F.shape[-1])[:, None, :] * _offset_phases((h, 0.0, -h), m, F.shape[-1])[None]
@@ -392,13 +396,21 @@ def _template_segments(search, shifted, starts, h, weights):
     n = search.lags.n
     a1, a2, a3 = search.side.arrays
     w = search.side.weight
-    bT, bT2, bV = shifted[:, 0], shifted[:, 1], shifted[:, 2]                         # each (T, 3 lags, n)
+    full = shifted.shape[1] == 2      # the coverage 1 on every pixel used (:func:`_shifted_templates`)
+    bT, bT2 = shifted[:, 0], shifted[:, 1]                                            # each (T, 3 lags, n)
 
     def sums(x):  # (T, 3 lags, n) -> (T, 3 lags, segments + whole); the segments cover the spectrum
         seg = np.add.reduceat(x, starts, axis=-1)
         return np.concatenate([seg, np.sum(seg, axis=-1, keepdims=True)], axis=-1)
 
-    rows = (sums(a1 * bT), sums(a2 * bT), sums(a2 * bT2), sums(a1 * bV), sums(a3 * bV), sums(a2 * bV))
+    if full:
+        # the coverage sums are the data's own over each segment, the same for every template and lag
+        cover_rows = tuple(np.broadcast_to(sums(a[None, None, :]), bT.shape[:2] + (starts.size + 1,))
+                           for a in (a1, a3, a2))
+    else:
+        bV = shifted[:, 2]
+        cover_rows = (sums(a1 * bV), sums(a3 * bV), sums(a2 * bV))
+    rows = (sums(a1 * bT), sums(a2 * bT), sums(a2 * bT2)) + cover_rows
     c, _ = Correlation.combine(rows)                                  # (T, 3 lags, K + 1)
     with np.errstate(invalid="ignore"):  # a segment with no overlap gives inf - inf: marked not good
         den = c[:, 0] - 2.0 * c[:, 1] + c[:, 2]
@@ -410,8 +422,8 @@ def _template_segments(search, shifted, starts, h, weights):
     # template's and the data's energies there; the data energy's own change cancels at the peak)
     c2v = np.maximum(rows[5], 1e-300)
     mu = rows[1] / c2v
-    energy = np.clip(rows[2] - rows[1] ** 2 / c2v, 1e-300, None)
-    data_energy = np.clip(rows[4][:, 1] - rows[3][:, 1] ** 2 / c2v[:, 1], 1e-300, None)
+    energy = np.maximum(rows[2] - rows[1] ** 2 / c2v, 1e-300)
+    data_energy = np.maximum(rows[4][:, 1] - rows[3][:, 1] ** 2 / c2v[:, 1], 1e-300)
     # a segment where the template (e.g. a line mask) or the data carry no signal has no velocity of
     # its own: its vertex is 0/0 and its gradient ~1/sqrt(1e-300), which overflowed the single-precision
     # adjoint (measured: a G2 V line mask on the Kurucz Sun); such segments are not good
@@ -425,9 +437,17 @@ def _template_segments(search, shifted, starts, h, weights):
     scale = scale * np.asarray(weights, float)[:, None]
     a_plus, a_minus = scale / np.sqrt(energy[:, 2]), scale / np.sqrt(energy[:, 0])
     coef = np.stack([a_plus, -mu[:, 2] * a_plus, -a_minus, mu[:, 0] * a_minus], axis=1)   # (T, 4, K + 1)
-    arrays = shifted[:, (0, 2, 0, 2), (2, 2, 0, 0)]                   # T(+h), V(+h), T(-h), V(-h): (T, 4, n)
     k = starts.size
     lengths = np.diff(np.append(starts, n))
+    if full:
+        # V(+h) = V(-h) = 1: their terms are the coefficients themselves, summed over the templates
+        arrays = shifted[:, (0, 0), (2, 0)]                           # T(+h), T(-h): (T, 2, n)
+        coef_t, coef_v = coef[:, (0, 2)], np.sum(coef[:, 1] + coef[:, 3], axis=0)    # (T, 2, K + 1), (K + 1)
+        g_seg = w * (np.einsum("tan,tan->n", arrays, np.repeat(coef_t[..., :k], lengths, axis=-1))
+                     + np.repeat(coef_v[:k], lengths))
+        g_whole = w * (np.einsum("tan,ta->n", arrays, coef_t[..., k]) + coef_v[k])
+        return offsets, good, g_seg, g_whole
+    arrays = shifted[:, (0, 2, 0, 2), (2, 2, 0, 0)]                   # T(+h), V(+h), T(-h), V(-h): (T, 4, n)
     g_seg = w * np.einsum("tan,tan->n", arrays, np.repeat(coef[..., :k], lengths, axis=-1))
     g_whole = w * np.einsum("tan,ta->n", arrays, coef[..., k])
     return offsets, good, g_seg, g_whole
@@ -478,7 +498,8 @@ def segment_errors(observed, search, members, m, resels):
     lags = search.lags
     n = lags.n
     h = 0.5
-    shifted = _shifted_templates(search, members, m, h)
+    full = full_cover([t for t, _, _ in members], [s0 for _, s0, _ in members], lags.pad, n, h)
+    shifted = _shifted_templates(search, members, m, h, full)
     # the best template at s0 + h minus at s0 - h (a difference of the single-precision transforms'
     # values, in single precision as they came)
     slope = shifted[0, 0, 0].astype(np.float32) - shifted[0, 0, 2].astype(np.float32)
