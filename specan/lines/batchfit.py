@@ -177,7 +177,14 @@ def _gauss_group(data, problems, ks, ncomp, nsh, out):
     ata = a @ a.transpose(0, 1, 3, 2) + 1e-12 * np.eye(ncomp)
     atb = a @ b[:, None, :, None]
     try:
-        w = np.linalg.solve(ata, atb)[..., 0]                            # (L, G, C)
+        if ncomp == 1:
+            # one component: LAPACK's solve of a 1 x 1 system is the division (the same bits, tested),
+            # without the solver's per-system overhead; a zero pivot stops it as it stops the solver
+            if not np.all(ata != 0):
+                raise np.linalg.LinAlgError("Singular matrix")
+            w = (atb / ata)[..., 0]
+        else:
+            w = np.linalg.solve(ata, atb)[..., 0]                        # (L, G, C)
     except np.linalg.LinAlgError:
         # one singular normal matrix stops the whole stack: fit that group line by line
         from .profiles import fit_gauss
@@ -203,7 +210,13 @@ def _gauss_group(data, problems, ks, ncomp, nsh, out):
         best[row], wbest[row], cbest[row] = bg, wb, cb
     ok = best >= 0
     try:
-        cov = np.linalg.inv(ata[rows[ok], best[ok]])
+        chosen = ata[rows[ok], best[ok]]
+        if ncomp == 1:   # (the inverse of a 1 x 1 matrix: LAPACK's is the division, the same bits)
+            if not np.all(chosen != 0):
+                raise np.linalg.LinAlgError("Singular matrix")
+            cov = 1.0 / chosen
+        else:
+            cov = np.linalg.inv(chosen)
     except np.linalg.LinAlgError:
         cov = None
     shifts = _refined_shifts(chi2, sh, np.maximum(best, 0), step, nsh)
@@ -229,8 +242,16 @@ def _gauss_group(data, problems, ks, ncomp, nsh, out):
 
 
 def _positive_counts(data):
-    """Running count of the pixels of non-zero weight: pixels lo..hi hold ``c[hi + 1] - c[lo]``."""
-    return np.concatenate([[0], np.cumsum(np.sqrt(data.weight) > 0)])
+    """Running count of the pixels of non-zero weight: pixels lo..hi hold ``c[hi + 1] - c[lo]``.
+
+    Made once per weight array (kept on ``data`` with the array it was made from: every group of
+    Gaussian fits of a spectrum asks for it)."""
+    held = getattr(data, "_counts", None)
+    if held is not None and held[0] is data.weight:
+        return held[1]
+    counts = np.concatenate([[0], np.cumsum(np.sqrt(data.weight) > 0)])
+    data._counts = (data.weight, counts)
+    return counts
 
 
 def _refined_shifts(chi2, sh, best, step, nsh):

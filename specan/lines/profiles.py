@@ -312,6 +312,13 @@ def best_grid_point(a, b, w, chi2, sign):
     chi-square), or (None, None, None).
     """
     order = np.argsort(chi2)
+    # the first of the five best points whose components all have the line's sign wins, whatever
+    # the constrained solutions of the points before it gave: those are made only when none has
+    # (the same choice as solving them in turn, without the solves it discards)
+    valid = np.all(sign * w[order[:5]] >= 0, axis=1)
+    if valid.any():
+        m = order[int(np.argmax(valid))]
+        return m, w[m], chi2[m]
     best, wbest, cbest = None, None, None
     for m in order[:5]:
         wm = w[m]
