@@ -411,6 +411,48 @@ def test_wide_voigt_profile_against_scipy():
     assert far_points > 0.8 * 500 * x.size   # most of the points took the series
 
 
+def test_one_component_gaussian_solves_are_lapacks():
+    # batchfit._gauss_group solves the normal equations of one-component fits by division: LAPACK's
+    # solve and inverse of 1 x 1 systems (np.linalg) give those very bits (measured: all 200,000)
+    rng = np.random.default_rng(13)
+    ata = rng.lognormal(0.0, 3.0, (200000, 1, 1)) + 1e-12
+    atb = rng.normal(0.0, 1.0, (200000, 1, 1)) * rng.lognormal(0.0, 3.0, (200000, 1, 1))
+    assert np.array_equal(np.linalg.solve(ata, atb), atb / ata)
+    assert np.array_equal(np.linalg.inv(ata), 1.0 / ata)
+
+
+def test_best_grid_point_as_solving_in_turn():
+    # profiles.best_grid_point skips the constrained (NNLS) solves of grid points that a later point
+    # of the right sign overrules: the same choice as solving the five best points in turn
+    from scipy.optimize import nnls
+
+    from specan.lines.profiles import best_grid_point
+
+    def in_turn(a, b, w, chi2, sign):
+        best = wbest = cbest = None
+        for m in np.argsort(chi2)[:5]:
+            if np.all(sign * w[m] >= 0):
+                return m, w[m], chi2[m]
+            wn, rn = nnls((sign * a[m]).T, b * sign)
+            if best is None or rn**2 < cbest:
+                best, wbest, cbest = m, sign * wn, rn**2
+        return best, wbest, cbest
+
+    rng = np.random.default_rng(14)
+    constrained = 0
+    for _ in range(400):
+        grid, ncomp, npix = int(rng.integers(3, 30)), int(rng.integers(1, 4)), int(rng.integers(8, 30))
+        a = rng.normal(0.0, 1.0, (grid, ncomp, npix))
+        b = rng.normal(0.0, 1.0, npix)
+        w = rng.normal(0.3, 1.0, (grid, ncomp))
+        chi2 = rng.uniform(0.0, 10.0, grid)
+        sign = 1.0 if rng.uniform() < 0.8 else -1.0
+        mine, theirs = best_grid_point(a, b, w, chi2, sign), in_turn(a, b, w, chi2, sign)
+        assert mine[0] == theirs[0] and np.array_equal(mine[1], theirs[1]) and mine[2] == theirs[2]
+        constrained += not np.any(np.all(sign * w[np.argsort(chi2)[:5]] >= 0, axis=1))
+    assert constrained > 20   # the constrained path is exercised too
+
+
 def test_lean_trust_region_fit_equals_scipys():
     # profiles.fit_profile_lean (leastsq.trf_bounded: scipy's trust-region reflective algorithm written
     # for small problems, which the batched path's ill-determined and unconverged Voigt fits go to)
