@@ -453,6 +453,30 @@ def test_best_grid_point_as_solving_in_turn():
     assert constrained > 20   # the constrained path is exercised too
 
 
+def test_voigt_model_of_some_problems_as_made_from_them():
+    # _VoigtModel.rows picks the remaining problems' points out of the whole batch's model: the same
+    # points, residuals and Jacobian as a model made of those problems alone
+    from specan.lines.batchfit import _VoigtModel
+
+    rng = np.random.default_rng(15)
+    nb, ncomp, npix = 9, 3, 40
+    x = np.sort(rng.uniform(4000.0, 4100.0, (nb, npix)), axis=1)
+    y = 1.0 - rng.uniform(0.0, 0.3, (nb, npix))
+    cont = rng.uniform(0.9, 1.1, (nb, npix))
+    wts = np.where(rng.uniform(size=(nb, npix)) < 0.2, 0.0, rng.uniform(10.0, 100.0, (nb, npix)))
+    centres = rng.uniform(4020.0, 4080.0, (nb, ncomp))
+    components = np.arange(ncomp)[None, :] < rng.integers(1, ncomp + 1, nb)[:, None]
+    p = np.column_stack([rng.normal(0.0, 0.1, nb), rng.uniform(0.5, 2.0, nb), rng.uniform(0.0, 1.0, nb),
+                         rng.uniform(0.0, 2.0, (nb, ncomp)) * components])
+    whole = _VoigtModel(x, y, cont, wts, centres, components)
+    for rows in (np.array([0, 3, 4, 8]), np.array([5]), np.arange(nb)):
+        picked, made = whole.rows(rows), _VoigtModel(x[rows], y[rows], cont[rows], wts[rows], centres[rows],
+                                                      components[rows])
+        assert np.array_equal(picked.at, made.at)
+        for a, b in zip(picked(p[rows]), made(p[rows])):
+            assert np.array_equal(a, b)
+
+
 def test_lean_trust_region_fit_equals_scipys():
     # profiles.fit_profile_lean (leastsq.trf_bounded: scipy's trust-region reflective algorithm written
     # for small problems, which the batched path's ill-determined and unconverged Voigt fits go to)

@@ -560,6 +560,7 @@ class _VoigtModel:
         # parameters (the same offsets x - (centre + shift) as on the whole grid, at those points)
         b_at, c_at, p_at = np.unravel_index(self.at, where.shape)
         self.problem_at, self.x_at, self.centre_at = b_at, x[b_at, p_at], centres[b_at, c_at]
+        self.offset_at = self.at - b_at * (where.shape[1] * where.shape[2])   # the point within its problem
         # the model's constant factors (the continuum times the weights, with the Jacobian's signs)
         self.cw = cont * wts
         self.cw_signs = self.cw[:, :, None] * _JAC_SIGNS
@@ -568,9 +569,26 @@ class _VoigtModel:
         self.parts = np.zeros((4, where.size))
 
     def rows(self, rows):
-        """The model of the problems ``rows`` only."""
-        return _VoigtModel(self.x[rows], self.y[rows], self.cont[rows], self.wts[rows], self.centres[rows],
-                           self.components[rows])
+        """The model of the problems ``rows`` only (indices in increasing order).
+
+        Their evaluated points picked out of this model's and renumbered, not found again: the same
+        points in the same order as a model made of those problems (each time problems leave the
+        batch, finding them again was a tenth of the batch's loop, measured)."""
+        new = object.__new__(_VoigtModel)
+        new.x, new.y, new.cont, new.wts = self.x[rows], self.y[rows], self.cont[rows], self.wts[rows]
+        new.centres, new.components = self.centres[rows], self.components[rows]
+        per_problem = self.shape[1] * self.shape[2]
+        new.shape = (len(rows),) + self.shape[1:]
+        renumbered = np.full(self.shape[0], -1)
+        renumbered[rows] = np.arange(len(rows))
+        new_b = renumbered[self.problem_at]
+        keep = new_b >= 0
+        new.problem_at, new.offset_at = new_b[keep], self.offset_at[keep]
+        new.at = new.problem_at * per_problem + new.offset_at
+        new.x_at, new.centre_at = self.x_at[keep], self.centre_at[keep]
+        new.cw, new.cw_signs, new.minus_cw = self.cw[rows], self.cw_signs[rows], self.minus_cw[rows]
+        new.parts = np.zeros((4, len(rows) * per_problem))
+        return new
 
     def __call__(self, p):
         q = p[self.problem_at, :3]
