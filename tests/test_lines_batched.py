@@ -477,6 +477,29 @@ def test_voigt_model_of_some_problems_as_made_from_them():
             assert np.array_equal(a, b)
 
 
+def test_windows_whatever_the_walks_look_ahead(monkeypatch):
+    # the vectorised walks test WALK_AHEAD steps first and walk the ones still going again in full:
+    # the same windows as testing every walk over its whole reach, looking ahead 1, 3 or 10 steps
+    # (most walks then walked again) or the default
+    from specan.lines import windows
+    from specan.lines.data import DETECT_SIGMA
+    from specan.lines.measurement import line_starts
+
+    default = windows.WALK_AHEAD
+    compared = 0
+    for name, data, listed, targets, features in demo_line_setups(4):
+        starts = line_starts(data, features, targets, np.arange(targets.pred.size), DETECT_SIGMA)
+        idx = [i for i, st in enumerate(starts) if st is not None]
+        args = (data, [starts[i] for i in idx], targets.fwhm[idx], targets.hydrogen[idx])
+        monkeypatch.setattr(windows, "WALK_AHEAD", 10**9)
+        whole = windows.line_windows(*args)
+        for ahead in (1, 3, 10, default):
+            monkeypatch.setattr(windows, "WALK_AHEAD", ahead)
+            assert windows.line_windows(*args) == whole, (name, ahead)
+        compared += len(whole)
+    assert compared > 400
+
+
 def test_lean_trust_region_fit_equals_scipys():
     # profiles.fit_profile_lean (leastsq.trf_bounded: scipy's trust-region reflective algorithm written
     # for small problems, which the batched path's ill-determined and unconverged Voigt fits go to)
