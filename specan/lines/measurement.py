@@ -427,6 +427,11 @@ def plan_lines(data, features, targets, which, profile, starts, windows):
     x0_l, x1_l, voigt_l, hyd_l, length_l = x0.tolist(), x1.tolist(), voigt.tolist(), hyd.tolist(), length.tolist()
     lo_feature = {key: b[0].tolist() for key, b in bounds.items()}
     hi_feature = {key: b[1].tolist() for key, b in bounds.items()}
+    # every line's listed companions shifted as the line is (its centre less its listed place), as lists
+    # cut from one array (row by row in list order: the same values as one line at a time)
+    rows, cols = np.nonzero(companion)
+    shifted = (pred[cols] + (centre[rows] - pred[idx[rows]])).tolist()
+    cuts = np.concatenate([[0], np.cumsum(np.bincount(rows, minlength=len(found)))]).tolist()
     for m, i in enumerate(found):
         fw, hydrogen = fws[m], hyd_l[m]
         window = wins[m]
@@ -439,7 +444,7 @@ def plan_lines(data, features, targets, which, profile, starts, windows):
             in_win = kinds[key][lo_feature[key][m]:hi_feature[key][m]]
         else:
             in_win = np.zeros(0)
-        centres = _centres(pred[companion[m]] + (st.centre - pred[i]), in_win, hydrogen, st.centre, fw)
+        centres = _centres(shifted[cuts[m]:cuts[m + 1]], in_win, hydrogen, st.centre, fw)
         skip = wing_mask(data, targets, i, st.centre, window, in_win, centres) if hydrogen else None
         plans[i] = LinePlan(result, fw, hydrogen, st.ic, st.sign, st.detected, st.max_shift, window,
                             cont[m, :length_l[m]], centres, skip, voigt_l[m], wants_fit=st.detected)
@@ -447,8 +452,8 @@ def plan_lines(data, features, targets, which, profile, starts, windows):
 
 
 def _centres(listed, in_win, hydrogen, centre, fw):
-    """:func:`~specan.lines.components.component_centres` from the line's shifted listed companions."""
-    candidates = listed.tolist() if hydrogen else listed.tolist() + in_win.tolist()
+    """:func:`~specan.lines.components.component_centres` from the line's shifted listed companions (a list)."""
+    candidates = listed if hydrogen else listed + in_win.tolist()
     if not candidates:
         return np.array([centre])
     centres = [centre]
