@@ -409,7 +409,7 @@ def voigt_batch(data, problems, max_iter=MAX_ITER, decrement=DECREMENT, cost_tol
             # Nielsen's (1999) damping update: by how well the linearised model predicted the
             # decrease (rho), gently; doubling factors after failures (from memory)
             rho = (C - cn) / np.maximum(predicted, 1e-300)
-            lam = np.maximum(np.where(better, lam * np.maximum(1.0 / 3.0, 1.0 - (2.0 * np.clip(rho, 0, 1) - 1.0) ** 3),
+            lam = np.maximum(np.where(better, lam * np.maximum(1.0 / 3.0, 1.0 - (2.0 * np.minimum(np.maximum(rho, 0.0), 1.0) - 1.0) ** 3),
                                       lam * nu), 1e-15)
             nu = np.where(better, 2.0, 2.0 * nu)
             if better.all():

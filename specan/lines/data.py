@@ -315,8 +315,15 @@ def _candidates(data, s, sign, detect_sigma, noise):
     """Pixels of matched-filter peaks, and of flux extrema the filter peaks do not already hold."""
     peaks, _ = find_peaks(s, height=detect_sigma)
     fwp = np.interp(peaks, np.arange(s.size), data.line_fwhm) if peaks.size else peaks
-    raw, _ = find_peaks(np.where(data.good, -sign * data.flux, -np.inf), prominence=3.0 * noise)
+    # the flux extrema where the filter is significant, prominent by 3 sigma: find_peaks(...,
+    # prominence=) measures the prominence of every extremum (most are noise, where the filter is
+    # not significant); a peak's prominence does not depend on the other peaks, so measuring it for
+    # the significant ones only keeps the same peaks
+    flipped = np.where(data.good, -sign * data.flux, -np.inf)
+    raw, _ = find_peaks(flipped)
     raw = raw[s[raw] >= detect_sigma]
+    if raw.size:
+        raw = raw[peak_prominences(flipped, raw)[0] >= 3.0 * noise]
     if raw.size and peaks.size:
         near = np.abs(data.wave[raw][:, None] - data.wave[peaks][None, :]) < 0.5 * fwp[None, :]
         raw = raw[~near.any(axis=1)]
