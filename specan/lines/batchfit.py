@@ -199,9 +199,21 @@ def _gauss_group(data, problems, ks, ncomp, nsh, out):
     rows = np.arange(len(ks))
     wbest = w[rows, best]
     cbest = chi2[rows, best]
-    for row in np.flatnonzero(~np.all(sign[:, None] * wbest >= 0, axis=1)):
-        # the best grid point has components of the wrong sign: the one-by-one rule (NNLS
-        # on the best few grid points) over this line's own pixels
+    wrong = np.flatnonzero(~np.all(sign[:, None] * wbest >= 0, axis=1))
+    if wrong.size:
+        # the one-by-one rule's first step for all these lines at once: the first of the five best grid
+        # points whose components all have the line's sign (profiles.best_grid_point: the same order,
+        # argsort row by row, and the same choice)
+        top = np.argsort(chi2[wrong], axis=1)[:, :5]
+        valid = np.all(sign[wrong, None, None] * w[wrong[:, None], top] >= 0, axis=2)
+        found = valid.any(axis=1)
+        pick = top[np.arange(wrong.size), np.argmax(valid, axis=1)][found]
+        rows_found = wrong[found]
+        best[rows_found], wbest[rows_found], cbest[rows_found] = pick, w[rows_found, pick], chi2[rows_found, pick]
+        wrong = wrong[~found]
+    for row in wrong:
+        # none of them has: the one-by-one rule (NNLS on the best few grid points) over this line's
+        # own pixels
         m = problems[ks[row]][1] - problems[ks[row]][0] + 1
         bg, wb, cb = best_grid_point(a[row, :, :, :m], b[row, :m], w[row], chi2[row], sign[row])
         if bg is None:
