@@ -141,16 +141,23 @@ def gauss_batch(data, problems):
 
 def _padded(data, problems, ks, skip_index=None):
     """Window arrays of problems ``ks`` padded to one length: x, y, cont, sqrt weights, good pixels."""
-    n = np.array([problems[k][1] - problems[k][0] + 1 for k in ks])
+    lo = np.array([problems[k][0] for k in ks])
+    hi = np.array([problems[k][1] for k in ks])
+    n = hi - lo + 1
     size = int(n.max())
-    shape = (len(ks), size)
-    x, y, cont, wts = np.empty(shape), np.zeros(shape), np.zeros(shape), np.zeros(shape)
-    for row, k in enumerate(ks):
-        pr = problems[k]
-        xs, ys, ws = window_arrays(data, pr[0], pr[1], None if skip_index is None else pr[skip_index])
-        m = xs.size
-        x[row, :m], x[row, m:] = xs, xs[-1]
-        y[row, :m], cont[row, :m], wts[row, :m] = ys, pr[2], ws
+    inside = np.arange(size)[None, :] < n[:, None]
+    # each window's pixels, the last one repeated past its end (window_arrays' values, gathered at once)
+    pix = np.minimum(lo[:, None] + np.arange(size)[None, :], hi[:, None])
+    x = data.wave[pix]
+    y = np.where(inside, data.flux[pix], 0.0)
+    wts = np.where(inside, np.sqrt(data.weight[pix]), 0.0)
+    cont = np.zeros(x.shape)
+    cont[inside] = np.concatenate([np.broadcast_to(problems[k][2], (m,)) for k, m in zip(ks, n.tolist())])
+    if skip_index is not None:
+        for row, k in enumerate(ks):
+            skip = problems[k][skip_index]
+            if skip is not None:
+                wts[row, :n[row]] = np.where(skip, 0.0, wts[row, :n[row]])
     return x, y, cont, wts, (wts > 0).sum(axis=1)
 
 
@@ -232,6 +239,17 @@ def _gauss_group(data, problems, ks, ncomp, nsh, out):
     except np.linalg.LinAlgError:
         cov = None
     shifts = _refined_shifts(chi2, sh, np.maximum(best, 0), step, nsh)
+    if cov is not None:
+        # every fit's summary from arrays (the same operations as row by row below, element by element)
+        okr = np.flatnonzero(ok)
+        sig = sg[okr, best[okr]]
+        ew = wbest[okr, 0]
+        columns = (ew, np.sqrt(np.maximum(cov[:, 0, 0], 0.0)), centres[okr, 0] + shifts[okr], GAUSS_FWHM * sig,
+                   ew / (sig * np.sqrt(2 * np.pi)), cbest[okr] / np.maximum(ngood[okr] - ncomp - 2, 1), sig)
+        for row, e, err, cen, fw, peak, c2, sg_ in zip(okr.tolist(), *(c.tolist() for c in columns)):
+            out[ks[row]] = {"ew": e, "ew_err": err, "centre": cen, "fwhm": fw, "depth": peak, "chi2": c2,
+                            "sigma": sg_, "gamma": 0.0}
+        return
     j = 0
     for row, k in enumerate(ks):
         if not ok[row]:
