@@ -516,9 +516,16 @@ def finish_lines(data, features, targets, plans):
     wing_of = dict(zip(strong, wings))
     done = [i for i, plan in plans.items() if plan.window is not None]
     final = [plans[i].window if wing_of.get(i) is None else wing_of[i][1] for i in done]
-    noise = dict(zip(done, window_noises(data, final)))
-    return {i: plan.result if plan.window is None else _finished(data, plan, wing_of.get(i), noise[i])
-            for i, plan in plans.items()}
+    out = {i: plan.result if plan.window is None else _finished(data, plan, wing_of.get(i), cayrel=False)
+           for i, plan in plans.items()}
+    if done:
+        # the Cayrel errors of all lines at once (_finished's arithmetic, element by element)
+        fwhm = np.array([out[i].fwhm for i in done], float)
+        fwhm_c = np.where(np.isfinite(fwhm), fwhm, np.array([plans[i].fw for i in done], float))
+        pixel = data.dx[np.array([plans[i].ic for i in done], int)]
+        for i, err in zip(done, cayrel_error(fwhm_c, pixel, 1.0 / window_noises(data, final)).tolist()):
+            out[i].ew_err_cayrel = err
+    return out
 
 
 def _fitted(data, plan, width=None):
@@ -541,10 +548,11 @@ def _wants_wings(plan):
     return plan.fit is not None and plan.voigt and not plan.hydrogen and plan.sign > 0
 
 
-def _finished(data, plan, wing, noise=None):
+def _finished(data, plan, wing, noise=None, cayrel=True):
     """The result with the wing fit ``(fit, window)`` (or None), detection and Cayrel error.
 
-    ``noise``: :func:`window_noise` of the final window, when already known.
+    ``noise``: :func:`window_noise` of the final window, when already known; ``cayrel`` False: the
+    Cayrel error is left to the caller (:func:`finish_lines` makes all at once).
     """
     result, window = plan.result, plan.window
     if wing is not None:
@@ -557,6 +565,8 @@ def _finished(data, plan, wing, noise=None):
         window = wwin
     # significant in the matched filter AND an equivalent width clear of its error
     result.detected = plan.detected and abs(result.ew) > 2.0 * result.ew_err
+    if not cayrel:
+        return result
     fwhm_c = result.fwhm if np.isfinite(result.fwhm) else plan.fw
     if noise is None:
         noise = window_noise(data, window)
