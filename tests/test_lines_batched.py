@@ -500,6 +500,33 @@ def test_windows_whatever_the_walks_look_ahead(monkeypatch):
     assert compared > 400
 
 
+def test_flux_extrema_as_find_peaks_with_prominence():
+    # data._candidates measures the prominence of the flux extrema only where the matched filter is
+    # significant: the same candidates as scipy's find_peaks(..., prominence=) over all of them, then
+    # kept where significant (the demo spectra, absorption and emission, two thresholds)
+    from scipy.signal import find_peaks
+
+    from specan.lines.data import DETECT_SIGMA, _candidates
+
+    compared = 0
+    for name, data, listed, targets, features in demo_line_setups(6):
+        noise = float(np.median(data.sigma[data.good]))
+        for sign in (1.0, -1.0):
+            s = sign * np.where(data.good, data.signif, 0.0)
+            for detect in (DETECT_SIGMA, 1.0):
+                mine = _candidates(data, s, sign, detect, noise)
+                peaks, _ = find_peaks(s, height=detect)
+                fwp = np.interp(peaks, np.arange(s.size), data.line_fwhm) if peaks.size else peaks
+                raw, _ = find_peaks(np.where(data.good, -sign * data.flux, -np.inf), prominence=3.0 * noise)
+                raw = raw[s[raw] >= detect]
+                if raw.size and peaks.size:
+                    near = np.abs(data.wave[raw][:, None] - data.wave[peaks][None, :]) < 0.5 * fwp[None, :]
+                    raw = raw[~near.any(axis=1)]
+                assert np.array_equal(mine, np.concatenate([peaks, raw]).astype(int)), name
+                compared += mine.size
+    assert compared > 500
+
+
 def test_lean_trust_region_fit_equals_scipys():
     # profiles.fit_profile_lean (leastsq.trf_bounded: scipy's trust-region reflective algorithm written
     # for small problems, which the batched path's ill-determined and unconverged Voigt fits go to)
