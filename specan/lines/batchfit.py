@@ -272,16 +272,9 @@ def _gauss_group(data, problems, ks, ncomp, nsh, out):
 
 
 def _positive_counts(data):
-    """Running count of the pixels of non-zero weight: pixels lo..hi hold ``c[hi + 1] - c[lo]``.
-
-    Made once per weight array (kept on ``data`` with the array it was made from: every group of
-    Gaussian fits of a spectrum asks for it)."""
-    held = getattr(data, "_counts", None)
-    if held is not None and held[0] is data.weight:
-        return held[1]
-    counts = np.concatenate([[0], np.cumsum(np.sqrt(data.weight) > 0)])
-    data._counts = (data.weight, counts)
-    return counts
+    """Running count of the pixels of non-zero weight: pixels lo..hi hold ``c[hi + 1] - c[lo]``
+    (:meth:`~specan.lines.data.LineData.positive_counts`, made once per weight array)."""
+    return data.positive_counts()
 
 
 def _refined_shifts(chi2, sh, best, step, nsh):

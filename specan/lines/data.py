@@ -255,6 +255,14 @@ class LineData:
         new._filter()
         return new
 
+    def positive_counts(self):
+        """Running count of the pixels of non-zero weight (pixels lo..hi hold ``c[hi + 1] - c[lo]``),
+        made once per weight array: every group of a spectrum's Gaussian fits asks for it."""
+        held = getattr(self, "_counts", None)
+        if held is None or held[0] is not self.weight:
+            held = self._counts = (self.weight, np.concatenate([[0], np.cumsum(np.sqrt(self.weight) > 0)]))
+        return held[1]
+
     def index(self, wave):
         """The first pixel at or above ``wave`` (clipped to the spectrum)."""
         return int(np.clip(np.searchsorted(self.wave, wave), 0, self.wave.size - 1))
