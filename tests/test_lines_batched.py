@@ -387,6 +387,146 @@ def test_voigt_and_derivatives_against_scipy_and_finite_differences():
     assert not out[:, 1::2].any()
 
 
+def test_wide_voigt_profile_against_scipy():
+    # profiles.voigt_wide (the hydrogen model's profile over the whole spectrum: far points from the
+    # Faddeeva function's asymptotic series) against scipy.special.voigt_profile: Gaussian widths
+    # 0.3-5 A, damping 1e-4 to 30 times that, over a 3600 A spectrum of 4000 px. Measured: at most
+    # 1.7e-15 of the profile's peak apart (at gamma 26 sigma, where the whole line is in the series).
+    from scipy.special import voigt_profile
+
+    from specan.lines.profiles import FAR_Z, voigt_wide
+
+    rng = np.random.default_rng(12)
+    x = np.linspace(3700.0, 7300.0, 4000)
+    far_points = 0
+    for _ in range(500):
+        sigma = rng.uniform(0.3, 5.0)
+        gamma = sigma * 10 ** rng.uniform(-4.0, 1.5)
+        dx = x - rng.uniform(3700.0, 7300.0)
+        mine, scipys = voigt_wide(dx, sigma, gamma), voigt_profile(dx, sigma, gamma)
+        assert np.max(np.abs(mine - scipys)) <= 3e-15 * scipys.max()
+        far = dx * dx + gamma * gamma >= (FAR_Z / (1.0 / (sigma * np.sqrt(2.0)))) ** 2   # as voigt_wide
+        assert np.array_equal(mine[~far], scipys[~far])   # the near points are scipy's own
+        far_points += far.sum()
+    assert far_points > 0.8 * 500 * x.size   # most of the points took the series
+
+
+def test_one_component_gaussian_solves_are_lapacks():
+    # batchfit._gauss_group solves the normal equations of one-component fits by division: LAPACK's
+    # solve and inverse of 1 x 1 systems (np.linalg) give those very bits (measured: all 200,000)
+    rng = np.random.default_rng(13)
+    ata = rng.lognormal(0.0, 3.0, (200000, 1, 1)) + 1e-12
+    atb = rng.normal(0.0, 1.0, (200000, 1, 1)) * rng.lognormal(0.0, 3.0, (200000, 1, 1))
+    assert np.array_equal(np.linalg.solve(ata, atb), atb / ata)
+    assert np.array_equal(np.linalg.inv(ata), 1.0 / ata)
+
+
+def test_best_grid_point_as_solving_in_turn():
+    # profiles.best_grid_point skips the constrained (NNLS) solves of grid points that a later point
+    # of the right sign overrules: the same choice as solving the five best points in turn
+    from scipy.optimize import nnls
+
+    from specan.lines.profiles import best_grid_point
+
+    def in_turn(a, b, w, chi2, sign):
+        best = wbest = cbest = None
+        for m in np.argsort(chi2)[:5]:
+            if np.all(sign * w[m] >= 0):
+                return m, w[m], chi2[m]
+            wn, rn = nnls((sign * a[m]).T, b * sign)
+            if best is None or rn**2 < cbest:
+                best, wbest, cbest = m, sign * wn, rn**2
+        return best, wbest, cbest
+
+    rng = np.random.default_rng(14)
+    constrained = 0
+    for _ in range(400):
+        grid, ncomp, npix = int(rng.integers(3, 30)), int(rng.integers(1, 4)), int(rng.integers(8, 30))
+        a = rng.normal(0.0, 1.0, (grid, ncomp, npix))
+        b = rng.normal(0.0, 1.0, npix)
+        w = rng.normal(0.3, 1.0, (grid, ncomp))
+        chi2 = rng.uniform(0.0, 10.0, grid)
+        sign = 1.0 if rng.uniform() < 0.8 else -1.0
+        mine, theirs = best_grid_point(a, b, w, chi2, sign), in_turn(a, b, w, chi2, sign)
+        assert mine[0] == theirs[0] and np.array_equal(mine[1], theirs[1]) and mine[2] == theirs[2]
+        constrained += not np.any(np.all(sign * w[np.argsort(chi2)[:5]] >= 0, axis=1))
+    assert constrained > 20   # the constrained path is exercised too
+
+
+def test_voigt_model_of_some_problems_as_made_from_them():
+    # _VoigtModel.rows picks the remaining problems' points out of the whole batch's model: the same
+    # points, residuals and Jacobian as a model made of those problems alone
+    from specan.lines.batchfit import _VoigtModel
+
+    rng = np.random.default_rng(15)
+    nb, ncomp, npix = 9, 3, 40
+    x = np.sort(rng.uniform(4000.0, 4100.0, (nb, npix)), axis=1)
+    y = 1.0 - rng.uniform(0.0, 0.3, (nb, npix))
+    cont = rng.uniform(0.9, 1.1, (nb, npix))
+    wts = np.where(rng.uniform(size=(nb, npix)) < 0.2, 0.0, rng.uniform(10.0, 100.0, (nb, npix)))
+    centres = rng.uniform(4020.0, 4080.0, (nb, ncomp))
+    components = np.arange(ncomp)[None, :] < rng.integers(1, ncomp + 1, nb)[:, None]
+    p = np.column_stack([rng.normal(0.0, 0.1, nb), rng.uniform(0.5, 2.0, nb), rng.uniform(0.0, 1.0, nb),
+                         rng.uniform(0.0, 2.0, (nb, ncomp)) * components])
+    whole = _VoigtModel(x, y, cont, wts, centres, components)
+    for rows in (np.array([0, 3, 4, 8]), np.array([5]), np.arange(nb)):
+        picked, made = whole.rows(rows), _VoigtModel(x[rows], y[rows], cont[rows], wts[rows], centres[rows],
+                                                      components[rows])
+        assert np.array_equal(picked.at, made.at)
+        for a, b in zip(picked(p[rows]), made(p[rows])):
+            assert np.array_equal(a, b)
+
+
+def test_windows_whatever_the_walks_look_ahead(monkeypatch):
+    # the vectorised walks test WALK_AHEAD steps first and walk the ones still going again in full:
+    # the same windows as testing every walk over its whole reach, looking ahead 1, 3 or 10 steps
+    # (most walks then walked again) or the default
+    from specan.lines import windows
+    from specan.lines.data import DETECT_SIGMA
+    from specan.lines.measurement import line_starts
+
+    default = windows.WALK_AHEAD
+    compared = 0
+    for name, data, listed, targets, features in demo_line_setups(4):
+        starts = line_starts(data, features, targets, np.arange(targets.pred.size), DETECT_SIGMA)
+        idx = [i for i, st in enumerate(starts) if st is not None]
+        args = (data, [starts[i] for i in idx], targets.fwhm[idx], targets.hydrogen[idx])
+        monkeypatch.setattr(windows, "WALK_AHEAD", 10**9)
+        whole = windows.line_windows(*args)
+        for ahead in (1, 3, 10, default):
+            monkeypatch.setattr(windows, "WALK_AHEAD", ahead)
+            assert windows.line_windows(*args) == whole, (name, ahead)
+        compared += len(whole)
+    assert compared > 400
+
+
+def test_flux_extrema_as_find_peaks_with_prominence():
+    # data._candidates measures the prominence of the flux extrema only where the matched filter is
+    # significant: the same candidates as scipy's find_peaks(..., prominence=) over all of them, then
+    # kept where significant (the demo spectra, absorption and emission, two thresholds)
+    from scipy.signal import find_peaks
+
+    from specan.lines.data import DETECT_SIGMA, _candidates
+
+    compared = 0
+    for name, data, listed, targets, features in demo_line_setups(6):
+        noise = float(np.median(data.sigma[data.good]))
+        for sign in (1.0, -1.0):
+            s = sign * np.where(data.good, data.signif, 0.0)
+            for detect in (DETECT_SIGMA, 1.0):
+                mine = _candidates(data, s, sign, detect, noise)
+                peaks, _ = find_peaks(s, height=detect)
+                fwp = np.interp(peaks, np.arange(s.size), data.line_fwhm) if peaks.size else peaks
+                raw, _ = find_peaks(np.where(data.good, -sign * data.flux, -np.inf), prominence=3.0 * noise)
+                raw = raw[s[raw] >= detect]
+                if raw.size and peaks.size:
+                    near = np.abs(data.wave[raw][:, None] - data.wave[peaks][None, :]) < 0.5 * fwp[None, :]
+                    raw = raw[~near.any(axis=1)]
+                assert np.array_equal(mine, np.concatenate([peaks, raw]).astype(int)), name
+                compared += mine.size
+    assert compared > 500
+
+
 def test_lean_trust_region_fit_equals_scipys():
     # profiles.fit_profile_lean (leastsq.trf_bounded: scipy's trust-region reflective algorithm written
     # for small problems, which the batched path's ill-determined and unconverged Voigt fits go to)

@@ -141,16 +141,23 @@ def gauss_batch(data, problems):
 
 def _padded(data, problems, ks, skip_index=None):
     """Window arrays of problems ``ks`` padded to one length: x, y, cont, sqrt weights, good pixels."""
-    n = np.array([problems[k][1] - problems[k][0] + 1 for k in ks])
+    lo = np.array([problems[k][0] for k in ks])
+    hi = np.array([problems[k][1] for k in ks])
+    n = hi - lo + 1
     size = int(n.max())
-    shape = (len(ks), size)
-    x, y, cont, wts = np.empty(shape), np.zeros(shape), np.zeros(shape), np.zeros(shape)
-    for row, k in enumerate(ks):
-        pr = problems[k]
-        xs, ys, ws = window_arrays(data, pr[0], pr[1], None if skip_index is None else pr[skip_index])
-        m = xs.size
-        x[row, :m], x[row, m:] = xs, xs[-1]
-        y[row, :m], cont[row, :m], wts[row, :m] = ys, pr[2], ws
+    inside = np.arange(size)[None, :] < n[:, None]
+    # each window's pixels, the last one repeated past its end (window_arrays' values, gathered at once)
+    pix = np.minimum(lo[:, None] + np.arange(size)[None, :], hi[:, None])
+    x = data.wave[pix]
+    y = np.where(inside, data.flux[pix], 0.0)
+    wts = np.where(inside, np.sqrt(data.weight[pix]), 0.0)
+    cont = np.zeros(x.shape)
+    cont[inside] = np.concatenate([np.broadcast_to(problems[k][2], (m,)) for k, m in zip(ks, n.tolist())])
+    if skip_index is not None:
+        for row, k in enumerate(ks):
+            skip = problems[k][skip_index]
+            if skip is not None:
+                wts[row, :n[row]] = np.where(skip, 0.0, wts[row, :n[row]])
     return x, y, cont, wts, (wts > 0).sum(axis=1)
 
 
@@ -177,7 +184,14 @@ def _gauss_group(data, problems, ks, ncomp, nsh, out):
     ata = a @ a.transpose(0, 1, 3, 2) + 1e-12 * np.eye(ncomp)
     atb = a @ b[:, None, :, None]
     try:
-        w = np.linalg.solve(ata, atb)[..., 0]                            # (L, G, C)
+        if ncomp == 1:
+            # one component: LAPACK's solve of a 1 x 1 system is the division (the same bits, tested),
+            # without the solver's per-system overhead; a zero pivot stops it as it stops the solver
+            if not np.all(ata != 0):
+                raise np.linalg.LinAlgError("Singular matrix")
+            w = (atb / ata)[..., 0]
+        else:
+            w = np.linalg.solve(ata, atb)[..., 0]                        # (L, G, C)
     except np.linalg.LinAlgError:
         # one singular normal matrix stops the whole stack: fit that group line by line
         from .profiles import fit_gauss
@@ -192,9 +206,21 @@ def _gauss_group(data, problems, ks, ncomp, nsh, out):
     rows = np.arange(len(ks))
     wbest = w[rows, best]
     cbest = chi2[rows, best]
-    for row in np.flatnonzero(~np.all(sign[:, None] * wbest >= 0, axis=1)):
-        # the best grid point has components of the wrong sign: the one-by-one rule (NNLS
-        # on the best few grid points) over this line's own pixels
+    wrong = np.flatnonzero(~np.all(sign[:, None] * wbest >= 0, axis=1))
+    if wrong.size:
+        # the one-by-one rule's first step for all these lines at once: the first of the five best grid
+        # points whose components all have the line's sign (profiles.best_grid_point: the same order,
+        # argsort row by row, and the same choice)
+        top = np.argsort(chi2[wrong], axis=1)[:, :5]
+        valid = np.all(sign[wrong, None, None] * w[wrong[:, None], top] >= 0, axis=2)
+        found = valid.any(axis=1)
+        pick = top[np.arange(wrong.size), np.argmax(valid, axis=1)][found]
+        rows_found = wrong[found]
+        best[rows_found], wbest[rows_found], cbest[rows_found] = pick, w[rows_found, pick], chi2[rows_found, pick]
+        wrong = wrong[~found]
+    for row in wrong:
+        # none of them has: the one-by-one rule (NNLS on the best few grid points) over this line's
+        # own pixels
         m = problems[ks[row]][1] - problems[ks[row]][0] + 1
         bg, wb, cb = best_grid_point(a[row, :, :, :m], b[row, :m], w[row], chi2[row], sign[row])
         if bg is None:
@@ -203,10 +229,27 @@ def _gauss_group(data, problems, ks, ncomp, nsh, out):
         best[row], wbest[row], cbest[row] = bg, wb, cb
     ok = best >= 0
     try:
-        cov = np.linalg.inv(ata[rows[ok], best[ok]])
+        chosen = ata[rows[ok], best[ok]]
+        if ncomp == 1:   # (the inverse of a 1 x 1 matrix: LAPACK's is the division, the same bits)
+            if not np.all(chosen != 0):
+                raise np.linalg.LinAlgError("Singular matrix")
+            cov = 1.0 / chosen
+        else:
+            cov = np.linalg.inv(chosen)
     except np.linalg.LinAlgError:
         cov = None
     shifts = _refined_shifts(chi2, sh, np.maximum(best, 0), step, nsh)
+    if cov is not None:
+        # every fit's summary from arrays (the same operations as row by row below, element by element)
+        okr = np.flatnonzero(ok)
+        sig = sg[okr, best[okr]]
+        ew = wbest[okr, 0]
+        columns = (ew, np.sqrt(np.maximum(cov[:, 0, 0], 0.0)), centres[okr, 0] + shifts[okr], GAUSS_FWHM * sig,
+                   ew / (sig * np.sqrt(2 * np.pi)), cbest[okr] / np.maximum(ngood[okr] - ncomp - 2, 1), sig)
+        for row, e, err, cen, fw, peak, c2, sg_ in zip(okr.tolist(), *(c.tolist() for c in columns)):
+            out[ks[row]] = {"ew": e, "ew_err": err, "centre": cen, "fwhm": fw, "depth": peak, "chi2": c2,
+                            "sigma": sg_, "gamma": 0.0}
+        return
     j = 0
     for row, k in enumerate(ks):
         if not ok[row]:
@@ -229,8 +272,9 @@ def _gauss_group(data, problems, ks, ncomp, nsh, out):
 
 
 def _positive_counts(data):
-    """Running count of the pixels of non-zero weight: pixels lo..hi hold ``c[hi + 1] - c[lo]``."""
-    return np.concatenate([[0], np.cumsum(np.sqrt(data.weight) > 0)])
+    """Running count of the pixels of non-zero weight: pixels lo..hi hold ``c[hi + 1] - c[lo]``
+    (:meth:`~specan.lines.data.LineData.positive_counts`, made once per weight array)."""
+    return data.positive_counts()
 
 
 def _refined_shifts(chi2, sh, best, step, nsh):
@@ -388,7 +432,7 @@ def voigt_batch(data, problems, max_iter=MAX_ITER, decrement=DECREMENT, cost_tol
             # Nielsen's (1999) damping update: by how well the linearised model predicted the
             # decrease (rho), gently; doubling factors after failures (from memory)
             rho = (C - cn) / np.maximum(predicted, 1e-300)
-            lam = np.maximum(np.where(better, lam * np.maximum(1.0 / 3.0, 1.0 - (2.0 * np.clip(rho, 0, 1) - 1.0) ** 3),
+            lam = np.maximum(np.where(better, lam * np.maximum(1.0 / 3.0, 1.0 - (2.0 * np.minimum(np.maximum(rho, 0.0), 1.0) - 1.0) ** 3),
                                       lam * nu), 1e-15)
             nu = np.where(better, 2.0, 2.0 * nu)
             if better.all():
@@ -539,6 +583,7 @@ class _VoigtModel:
         # parameters (the same offsets x - (centre + shift) as on the whole grid, at those points)
         b_at, c_at, p_at = np.unravel_index(self.at, where.shape)
         self.problem_at, self.x_at, self.centre_at = b_at, x[b_at, p_at], centres[b_at, c_at]
+        self.offset_at = self.at - b_at * (where.shape[1] * where.shape[2])   # the point within its problem
         # the model's constant factors (the continuum times the weights, with the Jacobian's signs)
         self.cw = cont * wts
         self.cw_signs = self.cw[:, :, None] * _JAC_SIGNS
@@ -547,9 +592,26 @@ class _VoigtModel:
         self.parts = np.zeros((4, where.size))
 
     def rows(self, rows):
-        """The model of the problems ``rows`` only."""
-        return _VoigtModel(self.x[rows], self.y[rows], self.cont[rows], self.wts[rows], self.centres[rows],
-                           self.components[rows])
+        """The model of the problems ``rows`` only (indices in increasing order).
+
+        Their evaluated points picked out of this model's and renumbered, not found again: the same
+        points in the same order as a model made of those problems (each time problems leave the
+        batch, finding them again was a tenth of the batch's loop, measured)."""
+        new = object.__new__(_VoigtModel)
+        new.x, new.y, new.cont, new.wts = self.x[rows], self.y[rows], self.cont[rows], self.wts[rows]
+        new.centres, new.components = self.centres[rows], self.components[rows]
+        per_problem = self.shape[1] * self.shape[2]
+        new.shape = (len(rows),) + self.shape[1:]
+        renumbered = np.full(self.shape[0], -1)
+        renumbered[rows] = np.arange(len(rows))
+        new_b = renumbered[self.problem_at]
+        keep = new_b >= 0
+        new.problem_at, new.offset_at = new_b[keep], self.offset_at[keep]
+        new.at = new.problem_at * per_problem + new.offset_at
+        new.x_at, new.centre_at = self.x_at[keep], self.centre_at[keep]
+        new.cw, new.cw_signs, new.minus_cw = self.cw[rows], self.cw_signs[rows], self.minus_cw[rows]
+        new.parts = np.zeros((4, len(rows) * per_problem))
+        return new
 
     def __call__(self, p):
         q = p[self.problem_at, :3]

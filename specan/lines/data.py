@@ -255,6 +255,14 @@ class LineData:
         new._filter()
         return new
 
+    def positive_counts(self):
+        """Running count of the pixels of non-zero weight (pixels lo..hi hold ``c[hi + 1] - c[lo]``),
+        made once per weight array: every group of a spectrum's Gaussian fits asks for it."""
+        held = getattr(self, "_counts", None)
+        if held is None or held[0] is not self.weight:
+            held = self._counts = (self.weight, np.concatenate([[0], np.cumsum(np.sqrt(self.weight) > 0)]))
+        return held[1]
+
     def index(self, wave):
         """The first pixel at or above ``wave`` (clipped to the spectrum)."""
         return int(np.clip(np.searchsorted(self.wave, wave), 0, self.wave.size - 1))
@@ -315,8 +323,15 @@ def _candidates(data, s, sign, detect_sigma, noise):
     """Pixels of matched-filter peaks, and of flux extrema the filter peaks do not already hold."""
     peaks, _ = find_peaks(s, height=detect_sigma)
     fwp = np.interp(peaks, np.arange(s.size), data.line_fwhm) if peaks.size else peaks
-    raw, _ = find_peaks(np.where(data.good, -sign * data.flux, -np.inf), prominence=3.0 * noise)
+    # the flux extrema where the filter is significant, prominent by 3 sigma: find_peaks(...,
+    # prominence=) measures the prominence of every extremum (most are noise, where the filter is
+    # not significant); a peak's prominence does not depend on the other peaks, so measuring it for
+    # the significant ones only keeps the same peaks
+    flipped = np.where(data.good, -sign * data.flux, -np.inf)
+    raw, _ = find_peaks(flipped)
     raw = raw[s[raw] >= detect_sigma]
+    if raw.size:
+        raw = raw[peak_prominences(flipped, raw)[0] >= 3.0 * noise]
     if raw.size and peaks.size:
         near = np.abs(data.wave[raw][:, None] - data.wave[peaks][None, :]) < 0.5 * fwp[None, :]
         raw = raw[~near.any(axis=1)]

@@ -7,7 +7,7 @@ import numpy as np
 
 from .components import MIN_SEPARATION
 from .data import find_features
-from .profiles import profiles
+from .profiles import profiles, voigt_wide
 
 __all__ = ["hydrogen_model", "without_hydrogen"]
 
@@ -61,9 +61,12 @@ def hydrogen_model(data, results, targets, ep_low):
             continue  # the profile does not describe the line (continuum trouble): leave it
         if others.size and np.min(np.abs(others - fit["centre"])) < MIN_SEPARATION * targets.fwhm[i]:
             continue  # an unresolvable blend with a listed line: keep it whole
-        _, prof = profiles(data.wave, np.array([fit["centre"]]), 0.0, fit["sigma"], fit["gamma"],
-                           fit["profile"])
-        model *= 1.0 - fit["ew"] * prof[0]
+        if fit["profile"] == "voigt":
+            # the profile over the whole spectrum, its far wings from their series (voigt_wide)
+            prof = voigt_wide(data.wave - fit["centre"], fit["sigma"], fit["gamma"])
+        else:
+            prof = profiles(data.wave, np.array([fit["centre"]]), 0.0, fit["sigma"], fit["gamma"], fit["profile"])[1][0]
+        model *= 1.0 - fit["ew"] * prof
         used += 1
     if not used:
         return None

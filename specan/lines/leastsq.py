@@ -56,16 +56,13 @@ def _norm(v):
 
 
 def _cl_scaling(x, g, lb, ub):
-    """Coleman-Li scaling vector and its derivative (finite bounds)."""
-    v = np.ones_like(x)
-    dv = np.zeros_like(x)
-    mask = g < 0
-    v[mask] = ub[mask] - x[mask]
-    dv[mask] = -1
-    mask = g > 0
-    v[mask] = x[mask] - lb[mask]
-    dv[mask] = 1
-    return v, dv
+    """Coleman-Li scaling vector and its derivative (finite bounds).
+
+    scipy's values, each element chosen by np.where instead of assigned through masks (a third of
+    the numpy calls on these four-element vectors; the same numbers)."""
+    up, down = g > 0, g < 0
+    v = np.where(down, ub - x, np.where(up, x - lb, 1.0))
+    return v, up * 1.0 - down * 1.0
 
 
 def _step_to_bound(x, s, lb, ub):
@@ -86,6 +83,8 @@ def _active(x, lb, ub, rtol):
 
 
 def _strictly_feasible(x, lb, ub, rstep):
+    if rstep == 0 and ((x > lb) & (x < ub)).all():
+        return x.copy()   # strictly inside already: nothing below moves it
     x_new = x.copy()
     if rstep == 0:
         active = np.zeros(x.shape, int)
@@ -154,11 +153,12 @@ def _trust_region_line(x, s, delta):
 def _subproblem(n, m, uf, s, v, delta, alpha0, rtol=0.01, max_iter=10):
     """scipy's ``solve_lsq_trust_region`` (More's method on one SVD)."""
     def phi_and_derivative(alpha):
-        denom = s**2 + alpha
+        denom = s2 + alpha
         p_norm = _norm(suf / denom)
-        return p_norm - delta, -np.sum(suf**2 / denom**3) / p_norm
+        return p_norm - delta, -(suf2 / denom**3).sum() / p_norm
 
     suf = s * uf
+    s2, suf2 = s**2, suf**2   # (made once: the same values each call)
     full_rank = s[-1] > _EPS * m * s[0] if m >= n else False
     if full_rank:
         p = -v.dot(uf / s)
@@ -183,7 +183,7 @@ def _subproblem(n, m, uf, s, v, delta, alpha0, rtol=0.01, max_iter=10):
         ratio = phi / phi_prime
         alpha_lower = max(alpha_lower, alpha - ratio)
         alpha -= (phi + delta) * ratio / delta
-        if np.abs(phi) < rtol * delta:
+        if abs(phi) < rtol * delta:
             break
     p = -v.dot(suf / (s**2 + alpha))
     p *= delta / _norm(p)
@@ -192,7 +192,8 @@ def _subproblem(n, m, uf, s, v, delta, alpha0, rtol=0.01, max_iter=10):
 
 def _select_step(x, jh, diag_h, g_h, p, p_h, d, delta, lb, ub, theta):
     """scipy's ``select_step``: the trust-region step, its reflection or the scaled gradient."""
-    if np.all((x + p >= lb) & (x + p <= ub)):
+    xp = x + p
+    if ((xp >= lb) & (xp <= ub)).all():
         return p, p_h, -_quadratic(jh, g_h, p_h, diag_h)
     p_stride, hits = _step_to_bound(x, p, lb, ub)
     r_h = np.copy(p_h)
@@ -282,12 +283,12 @@ def trf_bounded(fun, jac, x0, lb, ub, ftol, xtol, gtol, max_nfev):
     status = None
     while True:
         v, dv = _cl_scaling(x, g, lb, ub)
-        g_norm = np.max(np.abs(g * v))
+        g_norm = np.abs(g * v).max()
         if g_norm < gtol:
             status = 1
         if status is not None or nfev == max_nfev:
             break
-        v[dv != 0] *= scale_inv[dv != 0]
+        v = np.where(dv != 0, v * scale_inv, v)
         d = v**0.5 * scale
         diag_h = g * dv * scale
         g_h = d * g
@@ -295,7 +296,7 @@ def trf_bounded(fun, jac, x0, lb, ub, ftol, xtol, gtol, max_nfev):
         j_aug[:m] = jm * d
         jh = j_aug[:m]
         j_aug[m:] = np.diag(diag_h**0.5)
-        if not np.all(np.isfinite(j_aug)):   # scipy.linalg.svd's check_finite
+        if not np.isfinite(j_aug).all():   # scipy.linalg.svd's check_finite
             raise ValueError("array must not contain infs or NaNs")
         u, s, vt = _svd(j_aug)
         vv = vt.T
@@ -310,7 +311,7 @@ def trf_bounded(fun, jac, x0, lb, ub, ftol, xtol, gtol, max_nfev):
             f_new = np.atleast_1d(fun(x_new))
             nfev += 1
             step_h_norm = _norm(step_h)
-            if not np.all(np.isfinite(f_new)):
+            if not np.isfinite(f_new).all():
                 delta = 0.25 * step_h_norm
                 continue
             cost_new = 0.5 * np.dot(f_new, f_new)
@@ -344,7 +345,7 @@ def trf_bounded(fun, jac, x0, lb, ub, ftol, xtol, gtol, max_nfev):
             x, f, cost = x_new, f_new, cost_new
             jm = jac(x)
             g = jm.T.dot(f)
-            scale_inv = np.maximum(np.sum(jm**2, axis=0)**0.5, scale_inv)
+            scale_inv = np.maximum((jm**2).sum(axis=0)**0.5, scale_inv)
             scale = 1 / scale_inv
     if status is None:
         status = 0

@@ -16,6 +16,7 @@ vectorised, the fits batched (:mod:`specan.lines.batchfit`); the one-by-one path
 from __future__ import annotations
 
 from dataclasses import dataclass
+from operator import attrgetter
 from typing import NamedTuple
 
 import astropy.units as u
@@ -426,6 +427,11 @@ def plan_lines(data, features, targets, which, profile, starts, windows):
     x0_l, x1_l, voigt_l, hyd_l, length_l = x0.tolist(), x1.tolist(), voigt.tolist(), hyd.tolist(), length.tolist()
     lo_feature = {key: b[0].tolist() for key, b in bounds.items()}
     hi_feature = {key: b[1].tolist() for key, b in bounds.items()}
+    # every line's listed companions shifted as the line is (its centre less its listed place), as lists
+    # cut from one array (row by row in list order: the same values as one line at a time)
+    rows, cols = np.nonzero(companion)
+    shifted = (pred[cols] + (centre[rows] - pred[idx[rows]])).tolist()
+    cuts = np.concatenate([[0], np.cumsum(np.bincount(rows, minlength=len(found)))]).tolist()
     for m, i in enumerate(found):
         fw, hydrogen = fws[m], hyd_l[m]
         window = wins[m]
@@ -438,7 +444,7 @@ def plan_lines(data, features, targets, which, profile, starts, windows):
             in_win = kinds[key][lo_feature[key][m]:hi_feature[key][m]]
         else:
             in_win = np.zeros(0)
-        centres = _centres(pred[companion[m]] + (st.centre - pred[i]), in_win, hydrogen, st.centre, fw)
+        centres = _centres(shifted[cuts[m]:cuts[m + 1]], in_win, hydrogen, st.centre, fw)
         skip = wing_mask(data, targets, i, st.centre, window, in_win, centres) if hydrogen else None
         plans[i] = LinePlan(result, fw, hydrogen, st.ic, st.sign, st.detected, st.max_shift, window,
                             cont[m, :length_l[m]], centres, skip, voigt_l[m], wants_fit=st.detected)
@@ -446,8 +452,8 @@ def plan_lines(data, features, targets, which, profile, starts, windows):
 
 
 def _centres(listed, in_win, hydrogen, centre, fw):
-    """:func:`~specan.lines.components.component_centres` from the line's shifted listed companions."""
-    candidates = listed.tolist() if hydrogen else listed.tolist() + in_win.tolist()
+    """:func:`~specan.lines.components.component_centres` from the line's shifted listed companions (a list)."""
+    candidates = listed if hydrogen else listed + in_win.tolist()
     if not candidates:
         return np.array([centre])
     centres = [centre]
@@ -510,9 +516,16 @@ def finish_lines(data, features, targets, plans):
     wing_of = dict(zip(strong, wings))
     done = [i for i, plan in plans.items() if plan.window is not None]
     final = [plans[i].window if wing_of.get(i) is None else wing_of[i][1] for i in done]
-    noise = dict(zip(done, window_noises(data, final)))
-    return {i: plan.result if plan.window is None else _finished(data, plan, wing_of.get(i), noise[i])
-            for i, plan in plans.items()}
+    out = {i: plan.result if plan.window is None else _finished(data, plan, wing_of.get(i), cayrel=False)
+           for i, plan in plans.items()}
+    if done:
+        # the Cayrel errors of all lines at once (_finished's arithmetic, element by element)
+        fwhm = np.array([out[i].fwhm for i in done], float)
+        fwhm_c = np.where(np.isfinite(fwhm), fwhm, np.array([plans[i].fw for i in done], float))
+        pixel = data.dx[np.array([plans[i].ic for i in done], int)]
+        for i, err in zip(done, cayrel_error(fwhm_c, pixel, 1.0 / window_noises(data, final)).tolist()):
+            out[i].ew_err_cayrel = err
+    return out
 
 
 def _fitted(data, plan, width=None):
@@ -535,10 +548,11 @@ def _wants_wings(plan):
     return plan.fit is not None and plan.voigt and not plan.hydrogen and plan.sign > 0
 
 
-def _finished(data, plan, wing, noise=None):
+def _finished(data, plan, wing, noise=None, cayrel=True):
     """The result with the wing fit ``(fit, window)`` (or None), detection and Cayrel error.
 
-    ``noise``: :func:`window_noise` of the final window, when already known.
+    ``noise``: :func:`window_noise` of the final window, when already known; ``cayrel`` False: the
+    Cayrel error is left to the caller (:func:`finish_lines` makes all at once).
     """
     result, window = plan.result, plan.window
     if wing is not None:
@@ -551,6 +565,8 @@ def _finished(data, plan, wing, noise=None):
         window = wwin
     # significant in the matched filter AND an equivalent width clear of its error
     result.detected = plan.detected and abs(result.ew) > 2.0 * result.ew_err
+    if not cayrel:
+        return result
     fwhm_c = result.fwhm if np.isfinite(result.fwhm) else plan.fw
     if noise is None:
         noise = window_noise(data, window)
@@ -846,6 +862,7 @@ def half_widths(data, ic, lo, hi, sign):
 
 _FLOAT_COLUMNS = ("wave_obs", "ew", "ew_err", "ew_err_cayrel", "ew_int", "ew_int_err", "ew_fit", "ew_fit_err",
                   "fwhm", "depth", "significance", "window_min", "window_max", "fit_chi2")
+_FLOAT_VALUES = attrgetter(*_FLOAT_COLUMNS)
 
 
 def line_table(data, listed, targets, results, star_type=None):
@@ -853,7 +870,9 @@ def line_table(data, listed, targets, results, star_type=None):
     (``star_type``: see :func:`measure`)."""
     t = listed.rows
     ids = [str(i) for i in t["id"]]
-    cols = {name: np.array([getattr(r, name) for r in results], float) for name in _FLOAT_COLUMNS}
+    # every result's float values read in one pass (one attrgetter per result, not one getattr per value)
+    values = np.array([_FLOAT_VALUES(r) for r in results], float).reshape(len(results), len(_FLOAT_COLUMNS))
+    cols = dict(zip(_FLOAT_COLUMNS, np.ascontiguousarray(values.T)))
     aa, kms = u.AA, u.km / u.s
     # the columns built once and the table made from them in one call, text columns as arrays:
     # column by column from lists, astropy's conversions were ~2 ms a spectrum (bench_lines.py)
