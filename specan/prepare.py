@@ -125,21 +125,14 @@ def snr(spectrum, resolving_power=None):
     return _snr_arrays(wave, flux, err, mask, info.path, resolving_power or info.resolving_power)
 
 
-def _snr_arrays(wave, flux, err, mask, path=None, resolving_power=None, noise_mask=None):
-    """:func:`snr` on arrays; ``noise_mask`` (default ``mask``): the pixels the flux's noise is not measured on.
-
-    prepare() passes its defect mask alone there: the telluric bands hold noise like any other
-    pixel, and without them a spectrum reaching past 6800 A keeps mostly its blue, line-rich
-    pixels, whose lines tip the white-noise plateau test (the Kurucz Sun over 3700-8800 A at
-    S/N 300 read 39, DER_SNR, with them masked; 264 without, measured).
-    """
+def _snr_arrays(wave, flux, err, mask, path=None, resolving_power=None, noise_only=None):
+    """:func:`snr` on arrays; ``noise_only``: masked pixels that hold noise all the same (see flux_noise)."""
     from .noise import flux_noise, pixels_per_fwhm
 
     good = ~mask & np.isfinite(flux)
     if good.sum() < 10:
         raise AnalysisError("fewer than 10 usable pixels: cannot measure S/N", path)
-    noise_good = good if noise_mask is None else ~noise_mask & np.isfinite(flux)
-    est = flux_noise(flux, noise_good, pixels_per_fwhm(wave, resolving_power))
+    est = flux_noise(flux, good, pixels_per_fwhm(wave, resolving_power), noise_only=noise_only)
     from_err = None
     if err is not None:
         ok = good & np.isfinite(err) & (err > 0)
@@ -617,7 +610,9 @@ def prepare(spectrum, telluric=True, continuum=True, **fit_options):
     defects = mask.copy()
     if telluric:
         mask |= telluric_mask(wave, info.medium)
-    s = _snr_arrays(wave, flux, err, mask, info.path, info.resolving_power, noise_mask=defects)
+    # the telluric bands are masked for the lines, not for their noise: the flux's noise estimate
+    # tests its white-noise plateau on them too (specan.noise.flux_noise's noise_only)
+    s = _snr_arrays(wave, flux, err, mask, info.path, info.resolving_power, noise_only=mask & ~defects)
     info = info.copy()
     info.snr, info.snr_source, info.snr_err_array = s["snr"], s["snr_source"], s["snr_err_array"]
     info.snr_flux, info.snr_flux_method = s["snr_flux"], s["snr_flux_method"]

@@ -101,9 +101,9 @@ def _masked_telluric_bands_air():
 def _telluric_noise_pixels(spectrum, wave, flux, mask):
     """The masked pixels inside the telluric bands that hold usable flux: noise like any other pixel.
 
-    ``prepare`` masks the bands for the lines, not for a defect; left out of the noise estimate they
-    leave a spectrum reaching past 6800 A mostly its blue, line-rich pixels, whose lines tip the
-    white-noise plateau test of :func:`specan.noise.flux_noise` (H beta of the Kurucz Sun at S/N 300
+    ``prepare`` masks the bands for the lines, not for a defect; left out of the plateau test of
+    :func:`specan.noise.flux_noise` (its ``noise_only``) they leave a spectrum reaching past 6800 A
+    mostly its blue, line-rich pixels, whose lines tip the test (H beta of the Kurucz Sun at S/N 300
     without an error array read 1.75 A instead of 4.2, measured). Pixels masked for a defect stay out:
     non-finite or non-positive flux (``prepare``'s defects) or no continuum there.
     """
@@ -153,10 +153,13 @@ def normalised_arrays(spectrum, min_good=10, resolving_power=None, dersnr=False)
         sigma = np.full(flux.shape, _dersnr_noise(wave, flux, good))
         source = "DER_SNR"
     elif sigma is None:
-        from .noise import flux_noise, pixels_per_fwhm
+        from .noise import correlated_pixels, flux_noise, pixels_per_fwhm
 
-        est = flux_noise(flux, good | _telluric_noise_pixels(spectrum, wave, flux, mask),
-                         pixels_per_fwhm(wave, resolving_power or info.resolving_power))
+        # whether the pixels are correlated: as prepare found on the flux before normalisation
+        # (info.snr_flux_method), so that the S/N and the lines' errors rest on one decision
+        est = flux_noise(flux, good, pixels_per_fwhm(wave, resolving_power or info.resolving_power),
+                         correlated=correlated_pixels(info.snr_flux_method),
+                         noise_only=_telluric_noise_pixels(spectrum, wave, flux, mask))
         # no noise found (a noiseless model): the floor below stands in
         sigma = np.where(np.isfinite(est.sigma), est.sigma, 1e-5)
         source = est.method
