@@ -98,7 +98,7 @@ def _masked_telluric_bands_air():
                      t["wave_max_air"][keep].to_value("Angstrom").tolist()))
 
 
-def _telluric_noise_pixels(spectrum, wave, flux, mask):
+def _telluric_noise_pixels(spectrum, flux, mask):
     """The masked pixels inside the telluric bands that hold usable flux: noise like any other pixel.
 
     ``prepare`` masks the bands for the lines, not for a defect; left out of the plateau test of
@@ -148,6 +148,7 @@ def normalised_arrays(spectrum, min_good=10, resolving_power=None, dersnr=False)
     if good.sum() < min_good:
         raise AnalysisError(f"fewer than {min_good} usable pixels: no lines can be measured", info.path)
     idx = np.flatnonzero(good)
+    measured = flux
     flux = np.where(bad, np.interp(wave, wave[idx], flux[idx]), flux)
     if sigma is None and dersnr:
         sigma = np.full(flux.shape, _dersnr_noise(wave, flux, good))
@@ -157,9 +158,11 @@ def normalised_arrays(spectrum, min_good=10, resolving_power=None, dersnr=False)
 
         # whether the pixels are correlated: as prepare found on the flux before normalisation
         # (info.snr_flux_method), so that the S/N and the lines' errors rest on one decision
-        est = flux_noise(flux, good, pixels_per_fwhm(wave, resolving_power or info.resolving_power),
-                         correlated=correlated_pixels(info.snr_flux_method),
-                         noise_only=_telluric_noise_pixels(spectrum, wave, flux, mask))
+        # the telluric pixels with their measured flux (not the interpolation the lines get)
+        telluric = _telluric_noise_pixels(spectrum, measured, mask)
+        est = flux_noise(np.where(telluric, measured, flux), good,
+                         pixels_per_fwhm(wave, resolving_power or info.resolving_power),
+                         correlated=correlated_pixels(info.snr_flux_method), noise_only=telluric)
         # no noise found (a noiseless model): the floor below stands in
         sigma = np.where(np.isfinite(est.sigma), est.sigma, 1e-5)
         source = est.method

@@ -496,7 +496,7 @@ def test_continuum_spline_basis_is_scipys_design_matrix():
 
 
 def test_snr_through_prepare_on_kurucz_sun_with_telluric_bands(kurucz_sun):
-    # measured (seeds 10-12): 255-270 for 300, method the plateau's
+    # measured (seeds 10-12): 246-271 for 300, method the plateau's
     got = []
     for seed in (10, 11, 12):
         info = specan.get_info(prepare(_kurucz_with_noise(kurucz_sun, 300, seed)))
@@ -521,8 +521,8 @@ def test_noiseless_kurucz_sun_through_prepare_reads_no_low_snr(kurucz_sun):
 def test_lines_noise_through_prepare_on_kurucz_sun(kurucz_sun, snr_in):
     # The lines stage's noise (resolution.normalised_arrays on the prepared spectrum) without an
     # error array: the plateau as prepare found it, not DER_SNR's lines-as-noise (S/N 34 measured
-    # before, which widened H8's window to 3866-3913 A and read 15.7 A). Measured: 310 at 300,
-    # 474 at 1000 (the model's own structure near Nyquist reads as S/N ~450).
+    # before, which widened H8's window to 3866-3913 A and read 15.7 A). Measured: 272 at 300,
+    # 456 at 1000 (the model's own structure near Nyquist reads as S/N ~450).
     from specan.resolution import normalised_arrays
 
     arrays = normalised_arrays(prepare(_kurucz_with_noise(kurucz_sun, snr_in, 10)))
