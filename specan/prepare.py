@@ -125,13 +125,14 @@ def snr(spectrum, resolving_power=None):
     return _snr_arrays(wave, flux, err, mask, info.path, resolving_power or info.resolving_power)
 
 
-def _snr_arrays(wave, flux, err, mask, path=None, resolving_power=None):
+def _snr_arrays(wave, flux, err, mask, path=None, resolving_power=None, noise_only=None):
+    """:func:`snr` on arrays; ``noise_only``: masked pixels that hold noise all the same (see flux_noise)."""
     from .noise import flux_noise, pixels_per_fwhm
 
     good = ~mask & np.isfinite(flux)
     if good.sum() < 10:
         raise AnalysisError("fewer than 10 usable pixels: cannot measure S/N", path)
-    est = flux_noise(flux, good, pixels_per_fwhm(wave, resolving_power))
+    est = flux_noise(flux, good, pixels_per_fwhm(wave, resolving_power), noise_only=noise_only)
     from_err = None
     if err is not None:
         ok = good & np.isfinite(err) & (err > 0)
@@ -606,9 +607,12 @@ def prepare(spectrum, telluric=True, continuum=True, **fit_options):
     # One pass over the arrays (each Spectrum construction costs ~8 ms in specutils).
     wave, flux, err, mask = spectrum_arrays(spectrum)
     mask |= _bad_pixels(flux, err, normalized=False)
+    defects = mask.copy()
     if telluric:
         mask |= telluric_mask(wave, info.medium)
-    s = _snr_arrays(wave, flux, err, mask, info.path, info.resolving_power)
+    # the telluric bands are masked for the lines, not for their noise: the flux's noise estimate
+    # tests its white-noise plateau on them too (specan.noise.flux_noise's noise_only)
+    s = _snr_arrays(wave, flux, err, mask, info.path, info.resolving_power, noise_only=mask & ~defects)
     info = info.copy()
     info.snr, info.snr_source, info.snr_err_array = s["snr"], s["snr_source"], s["snr_err_array"]
     info.snr_flux, info.snr_flux_method = s["snr_flux"], s["snr_flux_method"]

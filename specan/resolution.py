@@ -8,6 +8,7 @@ Gaussian (common practice at R ~ 1,000-20,000), so widths add in quadrature.
 
 from __future__ import annotations
 
+import functools
 import math
 from typing import NamedTuple
 
@@ -86,6 +87,40 @@ def dersnr_sigma(flux, good):
     return np.where(good, max(_dersnr_noise(None, flux, good), 1e-5), np.inf)
 
 
+@functools.lru_cache(maxsize=1)
+def _masked_telluric_bands_air():
+    """(lo, hi) air Angstrom of the telluric bands ``prepare`` masks (the ``masked`` rows of the telluric list)."""
+    from .linelist import load_telluric
+
+    t = load_telluric()
+    keep = (t["kind"] == "absorption_band") & np.asarray(t["masked"], bool)
+    return tuple(zip(t["wave_min_air"][keep].to_value("Angstrom").tolist(),
+                     t["wave_max_air"][keep].to_value("Angstrom").tolist()))
+
+
+def _telluric_noise_pixels(spectrum, flux, mask):
+    """The masked pixels inside the telluric bands that hold usable flux: noise like any other pixel.
+
+    ``prepare`` masks the bands for the lines, not for a defect; left out of the plateau test of
+    :func:`specan.noise.flux_noise` (its ``noise_only``) they leave a spectrum reaching past 6800 A
+    mostly its blue, line-rich pixels, whose lines tip the test (H beta of the Kurucz Sun at S/N 300
+    without an error array read 1.75 A instead of 4.2, measured). Pixels masked for a defect stay out:
+    non-finite or non-positive flux (``prepare``'s defects) or no continuum there.
+    """
+    if not mask.any():
+        return np.zeros(mask.shape, bool)
+    w = wavelength_in(spectrum, "air")    # the bands' edges are air wavelengths, as prepare reads them
+    inside = np.zeros(w.shape, bool)
+    for lo, hi in _masked_telluric_bands_air():
+        inside |= (w >= lo) & (w <= hi)
+    usable = inside & mask & np.isfinite(flux) & (flux > 0)
+    cont = spectrum.meta.get("continuum") if spectrum.meta else None
+    if cont is not None and np.shape(cont) == flux.shape:
+        c = np.asarray(getattr(cont, "value", cont), float)
+        usable &= np.isfinite(c) & (c > 0)
+    return usable
+
+
 def normalised_arrays(spectrum, min_good=10, resolving_power=None, dersnr=False):
     """Wavelength, flux, noise and good-pixel mask of a normalised spectrum as plain arrays.
 
@@ -113,14 +148,21 @@ def normalised_arrays(spectrum, min_good=10, resolving_power=None, dersnr=False)
     if good.sum() < min_good:
         raise AnalysisError(f"fewer than {min_good} usable pixels: no lines can be measured", info.path)
     idx = np.flatnonzero(good)
+    measured = flux
     flux = np.where(bad, np.interp(wave, wave[idx], flux[idx]), flux)
     if sigma is None and dersnr:
         sigma = np.full(flux.shape, _dersnr_noise(wave, flux, good))
         source = "DER_SNR"
     elif sigma is None:
-        from .noise import flux_noise, pixels_per_fwhm
+        from .noise import correlated_pixels, flux_noise, pixels_per_fwhm
 
-        est = flux_noise(flux, good, pixels_per_fwhm(wave, resolving_power or info.resolving_power))
+        # whether the pixels are correlated: as prepare found on the flux before normalisation
+        # (info.snr_flux_method), so that the S/N and the lines' errors rest on one decision
+        # the telluric pixels with their measured flux (not the interpolation the lines get)
+        telluric = _telluric_noise_pixels(spectrum, measured, mask)
+        est = flux_noise(np.where(telluric, measured, flux), good,
+                         pixels_per_fwhm(wave, resolving_power or info.resolving_power),
+                         correlated=correlated_pixels(info.snr_flux_method), noise_only=telluric)
         # no noise found (a noiseless model): the floor below stands in
         sigma = np.where(np.isfinite(est.sigma), est.sigma, 1e-5)
         source = est.method
