@@ -18,7 +18,7 @@ from astropy.table import QTable
 from .errors import SpecanError
 from .obsinfo import air_to_vacuum, vacuum_to_air
 
-__all__ = ["load_linelist", "load_telluric", "load_bands", "list_path", "LINE_COLUMNS", "BAND_COLUMNS"]
+__all__ = ["load_linelist", "load_telluric", "masked_telluric_bands", "load_bands", "list_path", "LINE_COLUMNS", "BAND_COLUMNS"]
 
 #: Columns every line list has after loading.
 LINE_COLUMNS = ("id", "species", "ion", "wave_air", "wave_vac", "ep_low", "loggf", "kind", "source")
@@ -173,6 +173,20 @@ def load_telluric(name_or_path="telluric") -> QTable:
             raise SpecanError(f"telluric list {where} has no {edge}_air or {edge}_vac column")
     table.sort("wave_min_air")
     return table
+
+
+@lru_cache(maxsize=1)
+def masked_telluric_bands():
+    """(lo, hi, id) in air Angstrom of the absorption bands marked ``masked`` in the telluric list.
+
+    One definition for the whole package (``prepare`` masks them for the lines; the noise estimate
+    counts their pixels): ``linelists/telluric.ecsv`` (O2 gamma, B and A bands and the strong water
+    bands; common practice, edges from memory).
+    """
+    t = load_telluric()
+    keep = (t["kind"] == "absorption_band") & np.asarray(t["masked"], bool)
+    lo, hi = t["wave_min_air"][keep].to_value("Angstrom"), t["wave_max_air"][keep].to_value("Angstrom")
+    return tuple((float(a), float(b), str(i)) for a, b, i in zip(lo, hi, t["id"][keep]))
 
 
 def load_bands(name_or_path="bands") -> QTable:

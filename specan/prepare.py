@@ -13,6 +13,7 @@ import astropy.units as u
 import numpy as np
 
 from .errors import AnalysisError
+from .linelist import masked_telluric_bands
 from .obsinfo import META_KEY, get_info, replace_parts, spectrum_arrays, vacuum_to_air
 from .resolution import degrade
 
@@ -29,23 +30,9 @@ __all__ = ["TELLURIC_BANDS_AIR", "mask_bad", "mask_telluric", "snr", "fit_contin
 ANCHOR_TOLERANCE = 1.0
 
 
-def _default_telluric_bands():
-    """(lo, hi, id) in air Angstrom of the absorption bands marked ``masked`` in the telluric list.
-
-    One definition for the whole package: ``linelists/telluric.ecsv`` (O2 gamma, B and A bands
-    and the strong water bands; common practice, edges from memory).
-    """
-    from .linelist import load_telluric
-
-    t = load_telluric()
-    keep = (t["kind"] == "absorption_band") & np.asarray(t["masked"], bool)
-    lo, hi = t["wave_min_air"][keep].to_value(u.AA), t["wave_max_air"][keep].to_value(u.AA)
-    return tuple((float(a), float(b), str(i)) for a, b, i in zip(lo, hi, t["id"][keep]))
-
-
 #: Telluric absorption bands masked by default: (lo, hi, id), air wavelengths in Angstrom,
-#: read from the packaged telluric list (:func:`specan.linelist.load_telluric`).
-TELLURIC_BANDS_AIR = _default_telluric_bands()
+#: read from the packaged telluric list (:func:`specan.linelist.masked_telluric_bands`).
+TELLURIC_BANDS_AIR = masked_telluric_bands()
 
 
 def mask_bad(spectrum):

@@ -8,7 +8,6 @@ Gaussian (common practice at R ~ 1,000-20,000), so widths add in quadrature.
 
 from __future__ import annotations
 
-import functools
 import math
 from typing import NamedTuple
 
@@ -87,17 +86,6 @@ def dersnr_sigma(flux, good):
     return np.where(good, max(_dersnr_noise(None, flux, good), 1e-5), np.inf)
 
 
-@functools.lru_cache(maxsize=1)
-def _masked_telluric_bands_air():
-    """(lo, hi) air Angstrom of the telluric bands ``prepare`` masks (the ``masked`` rows of the telluric list)."""
-    from .linelist import load_telluric
-
-    t = load_telluric()
-    keep = (t["kind"] == "absorption_band") & np.asarray(t["masked"], bool)
-    return tuple(zip(t["wave_min_air"][keep].to_value("Angstrom").tolist(),
-                     t["wave_max_air"][keep].to_value("Angstrom").tolist()))
-
-
 def _telluric_noise_pixels(spectrum, flux, mask):
     """The masked pixels inside the telluric bands that hold usable flux: noise like any other pixel.
 
@@ -109,9 +97,11 @@ def _telluric_noise_pixels(spectrum, flux, mask):
     """
     if not mask.any():
         return np.zeros(mask.shape, bool)
+    from .linelist import masked_telluric_bands
+
     w = wavelength_in(spectrum, "air")    # the bands' edges are air wavelengths, as prepare reads them
     inside = np.zeros(w.shape, bool)
-    for lo, hi in _masked_telluric_bands_air():
+    for lo, hi, _ in masked_telluric_bands():
         inside |= (w >= lo) & (w <= hi)
     usable = inside & mask & np.isfinite(flux) & (flux > 0)
     cont = spectrum.meta.get("continuum") if spectrum.meta else None
