@@ -30,7 +30,7 @@ _KMS = u.km / u.s   # made once (composing a unit costs ~10 us)
 __all__ = ["SPLINE_K", "COVER_TAPER", "FULL_COVER_MARGIN", "ObservedGrid", "TemplateGrid", "LagWindow", "normalised",
            "observe_on_grid", "lattice_step", "lag_window", "kms_per_pixel", "sigma_array", "hot_pixels",
            "noise_from_flux", "fast_length", "turns", "distance_to_invalid",
-           "dersnr_sigma", "gauss_smooth", "gauss_kernel", "smoothed_coverage", "highpass", "cover_taper", "SplineOperators", "spline_operators"]
+           "dersnr_sigma", "gauss_smooth", "gauss_kernel", "smoothed_coverage", "highpass", "cover_taper", "cell_mean", "SplineOperators", "spline_operators"]
 
 #: Order of the spline that resamples spectra onto the ln-lambda grid.
 SPLINE_K = 3
@@ -430,13 +430,16 @@ class TemplateGrid:
     """Where templates are prepared for one set-up: ``n`` points of ``step`` from ``ln0`` (ln lambda_vac).
 
     It extends the spectrum's grid by the lag window on both sides; ``hp_sigma`` is the
-    high-pass sigma (grid pixels) both sides are filtered with, None for none.
+    high-pass sigma (grid pixels) both sides are filtered with, None for none; ``cell`` the width
+    (ln lambda) both sides are averaged over about each grid point, 0 for point values.
     """
 
     ln0: float
     step: float
     n: int
     hp_sigma: float | None
+    #: the observed grid's cell (:attr:`ObservedGrid.cell`): templates are averaged over it as the data are
+    cell: float = 0.0
 
 
 @dataclass(frozen=True)
@@ -483,7 +486,8 @@ def lag_window(observed, vmax, resolving_power, highpass):
     ln0 = observed.grid[0] - pad * step
     m = fast_length(n + 2 * pad)
     return LagWindow(step=step, n=n, vmax_kms=vmax_kms, smax=smax, half=half, pad=pad, m=m,
-                     template_grid=TemplateGrid(ln0=ln0, step=step, n=n + 2 * pad, hp_sigma=hp))
+                     template_grid=TemplateGrid(ln0=ln0, step=step, n=n + 2 * pad, hp_sigma=hp,
+                                                cell=observed.cell))
 
 
 @functools.lru_cache(maxsize=256)
@@ -607,6 +611,17 @@ def highpass(x, sigma, valid, single=False):
     den = den if x.ndim == 1 else den[:, None]
     low = num / den
     return (x - low) * vv
+
+
+def cell_mean(x, width):
+    """The band-limited samples ``x`` (zero beyond their ends) averaged over a box of ``width`` pixels
+    about each sample: the box's transfer function sinc(f width) applied by FFT, exact for samples of a
+    band-limited function (a template at its resolution on the grid), so that templates carry the
+    same cell means as the data (:func:`spline_operators` with a cell)."""
+    n = x.size
+    size = fast_length(n + 2 * int(math.ceil(width)) + 2)
+    f = np.arange(size // 2 + 1) / size
+    return sfft.irfft(sfft.rfft(x, size) * np.sinc(f * width), size)[:n]
 
 
 def cover_taper(valid, ntap=COVER_TAPER):
