@@ -2,7 +2,10 @@
 
 A spectrum is resampled onto a grid uniform in ln(vacuum wavelength), where a Doppler shift is
 a translation; masked pixels (tellurics, bad pixels, emission spikes) are marked invalid and the
-weights taper to zero at the ends and around gaps. :class:`LagWindow` fixes, for one spectrum,
+weights taper to zero at the ends and around gaps. Where the resolving power is stated the grid
+has no more than :data:`GRID_PER_RESEL` points a resolution element, and where that is coarser
+than the native pixels each grid point is the mean of their interpolant over its cell (the
+templates are averaged alike), so that the coarser grid keeps the pixels' information. :class:`LagWindow` fixes, for one spectrum,
 how far the lags reach and where (and on how many pixels) templates must be prepared so that no
 lag loses data. The high-pass filter and the coverage taper are applied alike to the spectrum
 and to every template.
