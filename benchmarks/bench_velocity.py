@@ -16,7 +16,8 @@
    +-900 km/s: bias (also in % of a resolution element), scatter / Cramer-Rao bound (from the
    noiseless input; Bouchy, Pepe & Queloz 2001), and the pulls (measured - true) / rv_err:
    their sd about their mean and their rms about zero (which also counts the bias).
-5. ``--other-types``: specan's synthetic stars of types the synthetic grid lacks, same figures.
+5. ``--other-types``: specan's synthetic stars of types the synthetic grid lacks, same figures; on specan's
+   own pixels (2.5 a FWHM) and on the user path's linear pixels (finer than the velocity grid in the red).
 6. ``--floor``: where the time of one velocity goes (the speed test's spectra, steady state): CPU
    ms of each step of ``velocity.measure``, and of the transforms inside (FFTs, spline solves);
    ``--night-set``: the same on ``bench_pipeline.py``'s 40 spectra (read and prepared, with the
@@ -525,11 +526,14 @@ def user_path(model, n):
 OTHER_TYPES = (("F3", "IV"), ("G4", "IV"), ("K2.5", "II"), ("A7", "III"), ("K5", "III"), ("G0", "III"))
 
 
-def other_types(n):
-    """specan's synthetic stars of types the synthetic grid lacks (no template given)."""
+def other_types(n, linear=False):
+    """specan's synthetic stars of types the synthetic grid lacks (no template given); ``linear``: on linear
+    pixels as the user path's (2.5 pixels a FWHM at 3850 A, 4.7 at 7300 A: finer than the velocity grid's 3
+    points a FWHM in the red, where its cell means matter), not on specan's own 2.5 pixels a FWHM in ln lambda."""
     from specan import synth
 
-    print("\n== synthetic stars of types off the synthetic grid, no template, +-900 km/s ==")
+    where = "linear pixels 2.5-4.7 per FWHM" if linear else "2.5 pixels per FWHM"
+    print(f"\n== synthetic stars of types off the synthetic grid, no template, +-900 km/s ({where}) ==")
     for r in (1000.0, 2000.0, 5000.0):
         for snr in (10.0, 30.0, 100.0, 200.0):
             rng = np.random.default_rng(11)
@@ -537,8 +541,9 @@ def other_types(n):
             for i in range(n):
                 st, lc = OTHER_TYPES[i % len(OTHER_TYPES)]
                 v = rng.uniform(-900, 900)
-                s = synth.spectrum(st, lc, resolving_power=r, rv=v * KMS, snr=snr, seed=300 + i,
-                                   wave_range=(3850, 7300) * u.AA)
+                place = ({"wave": np.arange(3850.0, 7300.0, 3850.0 / (r * 2.5)) * u.AA} if linear
+                         else {"wave_range": (3850, 7300) * u.AA})
+                s = synth.spectrum(st, lc, resolving_power=r, rv=v * KMS, snr=snr, seed=300 + i, **place)
                 t += _measured(s, v, dv, err)
             _pull_line(f"R {r:5.0f} S/N {snr:4.0f}", dv, err, C_KMS / r, None, 1e3 * t / n)
 
@@ -754,6 +759,7 @@ if __name__ == "__main__":
         user_path(model, 8 if quick else 20)
     if "--other-types" in chosen:
         other_types(6 if quick else 18)
+        other_types(6 if quick else 18, linear=True)
     if "--neighbours" in chosen:
         neighbours(model, 10 if quick else 40)
     if "--miles" in chosen:

@@ -93,17 +93,17 @@ class TemplateBank:
 
 
 @functools.lru_cache(maxsize=16)
-def _bank(candidates, ln0, step, n, hp_sigma, m):
+def _bank(candidates, ln0, step, n, hp_sigma, m, cell=0.0):
     from .grid import TemplateGrid
 
-    grid = TemplateGrid(ln0=ln0, step=step, n=n, hp_sigma=hp_sigma)
+    grid = TemplateGrid(ln0=ln0, step=step, n=n, hp_sigma=hp_sigma, cell=cell)
     return TemplateBank(candidates, [prepare_builtin(c, grid) for c in candidates], m)
 
 
 def template_bank(candidates, lags):
     """The (cached) :class:`TemplateBank` of ``candidates`` on the set-up of ``lags``."""
     g = lags.template_grid
-    return _bank(tuple(candidates), round(g.ln0, 12), g.step, g.n, g.hp_sigma, short_length(lags))
+    return _bank(tuple(candidates), round(g.ln0, 12), g.step, g.n, g.hp_sigma, short_length(lags), g.cell)
 
 
 class BankScores(NamedTuple):

@@ -2,7 +2,10 @@
 
 A spectrum is resampled onto a grid uniform in ln(vacuum wavelength), where a Doppler shift is
 a translation; masked pixels (tellurics, bad pixels, emission spikes) are marked invalid and the
-weights taper to zero at the ends and around gaps. :class:`LagWindow` fixes, for one spectrum,
+weights taper to zero at the ends and around gaps. Where the resolving power is stated the grid
+has no more than :data:`GRID_PER_RESEL` points a resolution element, and where that is coarser
+than the native pixels each grid point is the mean of their interpolant over its cell (the
+templates are averaged alike), so that the coarser grid keeps the pixels' information. :class:`LagWindow` fixes, for one spectrum,
 how far the lags reach and where (and on how many pixels) templates must be prepared so that no
 lag loses data. The high-pass filter and the coverage taper are applied alike to the spectrum
 and to every template.
@@ -30,7 +33,7 @@ _KMS = u.km / u.s   # made once (composing a unit costs ~10 us)
 __all__ = ["SPLINE_K", "COVER_TAPER", "FULL_COVER_MARGIN", "ObservedGrid", "TemplateGrid", "LagWindow", "normalised",
            "observe_on_grid", "lattice_step", "lag_window", "kms_per_pixel", "sigma_array", "hot_pixels",
            "noise_from_flux", "fast_length", "turns", "distance_to_invalid",
-           "dersnr_sigma", "gauss_smooth", "gauss_kernel", "smoothed_coverage", "highpass", "cover_taper", "SplineOperators", "spline_operators"]
+           "dersnr_sigma", "gauss_smooth", "gauss_kernel", "smoothed_coverage", "highpass", "cover_taper", "cell_mean", "SplineOperators", "spline_operators"]
 
 #: Order of the spline that resamples spectra onto the ln-lambda grid.
 SPLINE_K = 3
@@ -52,6 +55,13 @@ GRID_BLOCK = 128
 #: 1e-5 this far from the step (5.8e-6 measured, fractional shifts to 1.5 pixels; checked in
 #: tests/test_velocity_fast_path.py), and the data's weight is tapered where it would enter (our choice).
 FULL_COVER_MARGIN = 24
+#: Grid points per resolution element (FWHM) at least, where the resolving power is stated: a grid
+#: following the finest native pixels is finer than that on most spectra (5.2 points at the red end
+#: of R 2000 data sampled 2.5-4 pixels per FWHM); at 3 points a FWHM a Gaussian line profile's
+#: transform is down to exp(-9 pi^2 / (16 ln 2)) = 3.3e-4 of its peak at the grid's Nyquist frequency
+#: (1.5 / FWHM; the Gaussian's transform), and the grid's cells average the native pixels so that
+#: their noise is not aliased into the band a point value would keep (our choice of 3).
+GRID_PER_RESEL = 3
 
 
 # ---------------------------------------------------------------------------
@@ -150,6 +160,9 @@ class ObservedGrid:
     #: grid points from the spectrum's first to its last usable pixel (the rest pads the grid
     #: out to whole blocks, :data:`GRID_BLOCK`)
     n_data: int = 0
+    #: width (ln lambda) over which the interpolant is averaged onto each grid point, 0 for point
+    #: values (:func:`spline_operators`): every resampling of the native pixels uses the same
+    cell: float = 0.0
 
 
 class _Pixels(NamedTuple):
@@ -297,7 +310,7 @@ def _make_edge_taper(valid, first, last):
 class SplineOperators(NamedTuple):
     """The cubic interpolation (not-a-knot) from fixed sample positions to a fixed grid, as
     operators: ``forward(y)`` = S y (what ``make_interp_spline(x, y, k=3)(grid)`` gives, to
-    rounding), ``adjoint(u)`` = S^T u (y and u may have columns)."""
+    rounding, or its mean over each grid cell), ``adjoint(u)`` = S^T u (y and u may have columns)."""
 
     forward: object
     adjoint: object
@@ -305,25 +318,50 @@ class SplineOperators(NamedTuple):
 
 _SPLINES = {}
 
+#: Points per grid cell at least, and per native pixel in a cell at least, of the midpoint rule that
+#: averages the interpolant over a cell (:func:`spline_operators` with ``cell``): the cubic pieces
+#: are about a native pixel long; four points a piece put the rule within ~1e-3 of the exact mean of
+#: a spline through white noise (the worst case; tests/test_velocity_fast_path.py), and the average
+#: is a filter whatever the rule's own error (forward and adjoint are one matrix). Our choice.
+CELL_POINTS = 4
 
-def spline_operators(x, grid):
+
+def spline_operators(x, grid, cell=0.0):
     """The (cached) :class:`SplineOperators` from samples at ``x`` to ``grid``.
 
     The interpolant is B A^-1 y (A, B the B-spline design matrices at the samples and on the
     grid): one sparse LU of A^T serves both directions (A c = y by its transposed solve). Made
     once per set-up, keyed by the sample positions and the grid: spectra of a survey share
     their pixels, and a factorised solve costs a fraction of building the spline anew.
+
+    ``cell`` > 0: the interpolant's mean over [g - cell/2, g + cell/2] about each grid point g
+    instead of its value there (B then the mean of the design matrix over the cell, by the midpoint
+    rule): on a grid coarser than the samples a point value keeps one sample's noise per grid point
+    and aliases the rest, where the cell's mean keeps every sample's share (the anti-aliasing of a
+    rebinning, common practice).
     """
     import hashlib
 
     from scipy.interpolate import BSpline
     from scipy.sparse.linalg import splu
 
-    key = (hashlib.sha1(np.ascontiguousarray(x).tobytes()).hexdigest(), float(grid[0]), float(grid[-1]), grid.size)
+    key = (hashlib.sha1(np.ascontiguousarray(x).tobytes()).hexdigest(), float(grid[0]), float(grid[-1]), grid.size,
+           float(cell))
     found = _SPLINES.get(key)
     if found is None:
         t = make_interp_spline(x, np.zeros_like(x), k=SPLINE_K).t
-        b_grid = BSpline.design_matrix(np.clip(grid, x[0], x[-1]), t, SPLINE_K).tocsr()
+        if cell > 0:
+            dx = np.diff(x)
+            q = max(CELL_POINTS, int(math.ceil(CELL_POINTS * cell / float(np.min(dx[dx > 0])))))
+            nodes = (grid[:, None] + cell * ((np.arange(q) + 0.5) / q - 0.5)).ravel()
+            b_fine = BSpline.design_matrix(np.clip(nodes, x[0], x[-1]), t, SPLINE_K).tocsr()
+            from scipy import sparse
+
+            mean = sparse.csr_matrix((np.full(nodes.size, 1.0 / q), np.arange(nodes.size),
+                                      np.arange(0, nodes.size + 1, q)), shape=(grid.size, nodes.size))
+            b_grid = (mean @ b_fine).tocsr()
+        else:
+            b_grid = BSpline.design_matrix(np.clip(grid, x[0], x[-1]), t, SPLINE_K).tocsr()
         lu = splu(BSpline.design_matrix(x, t, SPLINE_K).T.tocsc())
         bt = b_grid.T.tocsr()
         found = SplineOperators(lambda y: np.asarray(b_grid @ lu.solve(np.asarray(y, float), trans="T")),
@@ -337,7 +375,9 @@ def spline_operators(x, grid):
 
 
 def observe_on_grid(spectrum, *, step=None, telluric=True, clip_emission=True, notes=None):
-    """The normalised ``spectrum`` on a ln-lambda grid of ``step`` (default: its finest sampling).
+    """The normalised ``spectrum`` on a ln-lambda grid of ``step`` (default: its finest sampling, or
+    :data:`GRID_PER_RESEL` points per resolution element where that is coarser and the resolving
+    power is stated; the grid's values are then means over its cells, :func:`spline_operators`).
 
     Tellurics (``telluric``) and pixels well above the continuum (``clip_emission``,
     :func:`hot_pixels`) are masked; a spectrum without errors gets DER_SNR noise
@@ -357,7 +397,13 @@ def observe_on_grid(spectrum, *, step=None, telluric=True, clip_emission=True, n
             notes.append(f"{int(hot.sum())} pixels above the continuum (emission/cosmic rays) excluded")
             bad |= hot
     lnw = np.log(w)
-    step = lattice_step(setup.native_step) if step is None else step
+    if step is None:
+        step = setup.native_step
+        if info.resolving_power:
+            step = max(step, 1.0 / (GRID_PER_RESEL * float(info.resolving_power)))
+        step = lattice_step(step)
+    # cells wider than the finest native pixels: each grid point the mean over its cell (anti-aliased)
+    cell = step if step > setup.native_step else 0.0
     good = ~bad
     lo, hi = lnw[good][0], lnw[good][-1]
     # whole blocks of the lattice of steps from ln lambda = 0 (GRID_BLOCK), covering the data
@@ -373,10 +419,10 @@ def observe_on_grid(spectrum, *, step=None, telluric=True, clip_emission=True, n
     finite = bool(np.isfinite(sig).all())
     return ObservedGrid(
         info=info, noise_source=noise_source, spline_x=lnw, grid=grid, step=step, n=n,
-        flux=spline_operators(lnw, grid).forward(f_fill),
+        flux=spline_operators(lnw, grid, cell).forward(f_fill),
         sigma=np.interp(grid, lnw, sig if finite else np.where(np.isfinite(sig), sig, np.nanmedian(sig))),
         native_flux=f_fill, native_sigma=np.where(bad, 0.0, sig if finite else np.nan_to_num(sig)),
-        valid=valid, taper=_edge_taper(valid, first, last), n_data=last - first + 1)
+        valid=valid, taper=_edge_taper(valid, first, last), n_data=last - first + 1, cell=cell)
 
 
 # ---------------------------------------------------------------------------
@@ -387,13 +433,16 @@ class TemplateGrid:
     """Where templates are prepared for one set-up: ``n`` points of ``step`` from ``ln0`` (ln lambda_vac).
 
     It extends the spectrum's grid by the lag window on both sides; ``hp_sigma`` is the
-    high-pass sigma (grid pixels) both sides are filtered with, None for none.
+    high-pass sigma (grid pixels) both sides are filtered with, None for none; ``cell`` the width
+    (ln lambda) both sides are averaged over about each grid point, 0 for point values.
     """
 
     ln0: float
     step: float
     n: int
     hp_sigma: float | None
+    #: the observed grid's cell (:attr:`ObservedGrid.cell`): templates are averaged over it as the data are
+    cell: float = 0.0
 
 
 @dataclass(frozen=True)
@@ -440,7 +489,8 @@ def lag_window(observed, vmax, resolving_power, highpass):
     ln0 = observed.grid[0] - pad * step
     m = fast_length(n + 2 * pad)
     return LagWindow(step=step, n=n, vmax_kms=vmax_kms, smax=smax, half=half, pad=pad, m=m,
-                     template_grid=TemplateGrid(ln0=ln0, step=step, n=n + 2 * pad, hp_sigma=hp))
+                     template_grid=TemplateGrid(ln0=ln0, step=step, n=n + 2 * pad, hp_sigma=hp,
+                                                cell=observed.cell))
 
 
 @functools.lru_cache(maxsize=256)
@@ -564,6 +614,17 @@ def highpass(x, sigma, valid, single=False):
     den = den if x.ndim == 1 else den[:, None]
     low = num / den
     return (x - low) * vv
+
+
+def cell_mean(x, width):
+    """The band-limited samples ``x`` (zero beyond their ends) averaged over a box of ``width`` pixels
+    about each sample: the box's transfer function sinc(f width) applied by FFT, exact for samples of a
+    band-limited function (a template at its resolution on the grid), so that templates carry the
+    same cell means as the data (:func:`spline_operators` with a cell)."""
+    n = x.size
+    size = fast_length(n + 2 * int(math.ceil(width)) + 2)
+    f = np.arange(size // 2 + 1) / size
+    return sfft.irfft(sfft.rfft(x, size) * np.sinc(f * width), size)[:n]
 
 
 def cover_taper(valid, ntap=COVER_TAPER):

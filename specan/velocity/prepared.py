@@ -23,7 +23,7 @@ from .. import templates
 from ..errors import AnalysisError
 from ..obsinfo import get_info, wavelength_in
 from ..resolution import FWHM_TO_SIGMA
-from .grid import FULL_COVER_MARGIN, SPLINE_K, cover_taper, highpass, hot_pixels, noise_from_flux, normalised, sigma_array
+from .grid import FULL_COVER_MARGIN, SPLINE_K, cell_mean, cover_taper, highpass, hot_pixels, noise_from_flux, normalised, sigma_array
 
 __all__ = ["PreparedTemplate", "full_cover", "BuiltinCandidate", "builtin_template", "prepare_builtin", "spectrum_template"]
 
@@ -121,11 +121,23 @@ class BuiltinCandidate(NamedTuple):
 
 
 @functools.lru_cache(maxsize=256)  # the library or synthetic grid, refinements, a few instrument set-ups
-def builtin_template(sptype, lumclass, resolving_power, ln0, step, n, kind="synth", hp_sigma=None, name=None):
-    """A built-in template (:func:`specan.templates.on_log_grid`) ready for correlation."""
+def builtin_template(sptype, lumclass, resolving_power, ln0, step, n, kind="synth", hp_sigma=None, name=None,
+                     cell=0.0):
+    """A built-in template (:func:`specan.templates.on_log_grid`) ready for correlation (averaged over
+    ``cell`` about each grid point where the data are, :func:`_cell_means`)."""
     label, flux, valid = templates.on_log_grid(sptype, lumclass, resolving_power, ln0, step, n, kind=kind,
                                                name=name)
-    return PreparedTemplate(label, flux - 1.0, cover_taper(valid), hp_sigma=hp_sigma)
+    return PreparedTemplate(label, _cell_means(flux, valid, cell, step) - 1.0, cover_taper(valid), hp_sigma=hp_sigma)
+
+
+def _cell_means(flux, valid, cell, step):
+    """``flux`` averaged over ``cell`` (ln lambda) about each point of a grid of ``step``, as the data on
+    a grid of cell means are (:func:`~.grid.spline_operators`): otherwise the data would be a box of
+    one cell broader than a template of the same resolution (2.5% in FWHM at 3 points a FWHM), a
+    mismatch of its own (the off-grid synthetic stars on linear pixels read 2-7% more scatter, measured)."""
+    if not cell:
+        return flux
+    return 1.0 + cell_mean(np.where(valid, flux - 1.0, 0.0), cell / step)
 
 
 def prepare_builtin(candidate, grid):
@@ -136,7 +148,7 @@ def prepare_builtin(candidate, grid):
     """
     return builtin_template(candidate.sptype, candidate.lumclass, candidate.resolving_power,
                             round(grid.ln0, 12), grid.step, grid.n, kind=candidate.kind, hp_sigma=grid.hp_sigma,
-                            name=candidate.name)
+                            name=candidate.name, cell=grid.cell)
 
 
 # ---------------------------------------------------------------------------
@@ -197,7 +209,8 @@ def spectrum_template(spec, grid, target_r, name, notes, rv_kms=0.0, clip=True):
     tinfo = get_info(spec)
     lnw, f, bad = _template_pixels(spec, clip, notes)
     flux, valid = _on_grid(lnw, f, bad, grid.ln0 + grid.step * np.arange(grid.n))
-    flux = _to_resolution(flux, valid, tinfo.resolving_power, target_r, grid.step, notes)
+    flux = _cell_means(_to_resolution(flux, valid, tinfo.resolving_power, target_r, grid.step, notes), valid,
+                       grid.cell, grid.step)
     if valid.sum() < 50:
         raise AnalysisError(f"template {name} does not overlap the spectrum")
     return PreparedTemplate(name, flux - 1.0, cover_taper(valid), rv_kms=rv_kms, info=tinfo,
