@@ -18,7 +18,7 @@ from astropy.table import QTable
 from .errors import SpecanError
 from .obsinfo import air_to_vacuum, vacuum_to_air
 
-__all__ = ["load_linelist", "load_telluric", "masked_telluric_bands", "load_bands", "list_path", "LINE_COLUMNS", "BAND_COLUMNS"]
+__all__ = ["load_linelist", "load_telluric", "masked_telluric_bands", "in_bands", "load_bands", "list_path", "LINE_COLUMNS", "BAND_COLUMNS"]
 
 #: Columns every line list has after loading.
 LINE_COLUMNS = ("id", "species", "ion", "wave_air", "wave_vac", "ep_low", "loggf", "kind", "source")
@@ -187,6 +187,15 @@ def masked_telluric_bands():
     keep = (t["kind"] == "absorption_band") & np.asarray(t["masked"], bool)
     lo, hi = t["wave_min_air"][keep].to_value("Angstrom"), t["wave_max_air"][keep].to_value("Angstrom")
     return tuple((float(a), float(b), str(i)) for a, b, i in zip(lo, hi, t["id"][keep]))
+
+
+def in_bands(wave, bands):
+    """Boolean array, True where ``wave`` (Angstrom) lies inside any ``(lo, hi, ...)`` of ``bands`` (edges included)."""
+    wave = np.asarray(wave, float)
+    inside = np.zeros(wave.shape, bool)
+    for lo, hi, *_ in bands:
+        inside |= (wave >= lo) & (wave <= hi)
+    return inside
 
 
 def load_bands(name_or_path="bands") -> QTable:

@@ -13,7 +13,7 @@ import astropy.units as u
 import numpy as np
 
 from .errors import AnalysisError
-from .linelist import masked_telluric_bands
+from .linelist import in_bands, masked_telluric_bands
 from .obsinfo import META_KEY, get_info, replace_parts, spectrum_arrays, vacuum_to_air
 from .resolution import degrade
 
@@ -64,11 +64,7 @@ def _bad_pixels(flux, err, normalized):
 def telluric_mask(wave_aa, medium="air", bands=TELLURIC_BANDS_AIR):
     """Boolean array, True inside the telluric bands (wavelengths in ``medium``)."""
     wave_aa = np.asarray(wave_aa, float)
-    w = wave_aa if medium == "air" else vacuum_to_air(wave_aa * u.AA).to_value(u.AA)
-    m = np.zeros(w.shape, bool)
-    for lo, hi, _ in bands:
-        m |= (w >= lo) & (w <= hi)
-    return m
+    return in_bands(wave_aa if medium == "air" else vacuum_to_air(wave_aa * u.AA).to_value(u.AA), bands)
 
 
 def mask_telluric(spectrum, bands=TELLURIC_BANDS_AIR):

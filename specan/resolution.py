@@ -97,13 +97,10 @@ def _telluric_noise_pixels(spectrum, flux, mask):
     """
     if not mask.any():
         return np.zeros(mask.shape, bool)
-    from .linelist import masked_telluric_bands
+    from .linelist import in_bands, masked_telluric_bands
 
-    w = wavelength_in(spectrum, "air")    # the bands' edges are air wavelengths, as prepare reads them
-    inside = np.zeros(w.shape, bool)
-    for lo, hi, _ in masked_telluric_bands():
-        inside |= (w >= lo) & (w <= hi)
-    usable = inside & mask & np.isfinite(flux) & (flux > 0)
+    # the bands' edges are air wavelengths, as prepare reads them
+    usable = in_bands(wavelength_in(spectrum, "air"), masked_telluric_bands()) & mask & np.isfinite(flux) & (flux > 0)
     cont = spectrum.meta.get("continuum") if spectrum.meta else None
     if cont is not None and np.shape(cont) == flux.shape:
         c = np.asarray(getattr(cont, "value", cont), float)
