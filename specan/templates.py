@@ -214,9 +214,10 @@ ZP_HALF_WINDOW_AA = 3.0
 ZP_CHECK_R = 1500.0
 ZP_CHECK_STEP = 1e-5
 ZP_CHECK_SEGMENTS = 12
-#: Balmer lines (air A, NIST ASD) masked in the segment check, with their pressure wings: half-width
-#: (A) for stars earlier than F5 and for the rest (# common practice: the wings' reach, roughly)
-ZP_BALMER_AA = (6562.79, 4861.35, 4340.47, 4101.74, 3970.07, 3889.05, 3835.38, 3797.90, 3770.63, 3750.15)
+#: Balmer lines masked in the segment check (their ids in the stellar line list, which gives their air
+#: wavelengths), with their pressure wings: half-width (A) for stars earlier than F5 and for the rest
+#: (# common practice: the wings' reach, roughly)
+ZP_BALMER_IDS = ("H_alpha", "H_beta", "H_gamma", "H_delta", "H_epsilon", "H_8", "H_9", "H_10", "H_11", "H_12")
 ZP_BALMER_HALF_AA = (60.0, 25.0)
 
 
@@ -343,6 +344,7 @@ def _segment_check(wave_air, flux, fwhm, sptype, lumclass):
     type, per wavelength segment, Balmer lines and their wings masked (see ``ZP_*``)."""
     from scipy.ndimage import gaussian_filter1d
 
+    from .linelist import load_linelist
     from .mktypes import sptype_to_code
 
     lo, hi = np.log(3700.0), np.log(7350.0)
@@ -359,7 +361,9 @@ def _segment_check(wave_air, flux, fwhm, sptype, lumclass):
     weight = valid.astype(float)
     half = ZP_BALMER_HALF_AA[0] if sptype_to_code(sptype) < 35 else ZP_BALMER_HALF_AA[1]
     wave_air_grid = vacuum_to_air(wave_vac * u.AA).to_value(u.AA)
-    for w0 in ZP_BALMER_AA:
+    listed = load_linelist("stellar")
+    balmer = listed["wave_air"][np.isin(np.asarray(listed["id"]).astype(str), ZP_BALMER_IDS)].to_value(u.AA)
+    for w0 in balmer:
         weight[np.abs(wave_air_grid - w0) < half] = 0.0
     edges = np.linspace(0, n, ZP_CHECK_SEGMENTS + 1).astype(int)
     out = []
