@@ -340,13 +340,11 @@ def spline_operators(x, grid, cell=0.0):
     and aliases the rest, where the cell's mean keeps every sample's share (the anti-aliasing of a
     rebinning, common practice).
     """
-    import hashlib
-
+    from scipy import sparse
     from scipy.interpolate import BSpline
     from scipy.sparse.linalg import splu
 
-    key = (hashlib.sha1(np.ascontiguousarray(x).tobytes()).hexdigest(), float(grid[0]), float(grid[-1]), grid.size,
-           float(cell))
+    key = (_digest(x), float(grid[0]), float(grid[-1]), grid.size, float(cell))
     found = _SPLINES.get(key)
     if found is None:
         t = make_interp_spline(x, np.zeros_like(x), k=SPLINE_K).t
@@ -355,8 +353,6 @@ def spline_operators(x, grid, cell=0.0):
             q = max(CELL_POINTS, int(math.ceil(CELL_POINTS * cell / float(np.min(dx[dx > 0])))))
             nodes = (grid[:, None] + cell * ((np.arange(q) + 0.5) / q - 0.5)).ravel()
             b_fine = BSpline.design_matrix(np.clip(nodes, x[0], x[-1]), t, SPLINE_K).tocsr()
-            from scipy import sparse
-
             mean = sparse.csr_matrix((np.full(nodes.size, 1.0 / q), np.arange(nodes.size),
                                       np.arange(0, nodes.size + 1, q)), shape=(grid.size, nodes.size))
             b_grid = (mean @ b_fine).tocsr()
