@@ -80,13 +80,26 @@ TAIL_START = 6
 #: their long valleys, and through the division by them every line moves (with 0.1, all 40
 #: spectra, equivalent widths by up to 0.048 of their error, FWHM by up to 1%: measured).
 LAMBDA0 = 1e-3
+#: The quick design's stopping rule (``voigt_batch(exact=False)``, the default of
+#: :func:`specan.lines.measure`): a full Gauss-Newton step would lower the cost by less than this,
+#: i.e. the fit is within ~sqrt(2 QUICK_DECREMENT) = 0.045 of each parameter's own error from the
+#: optimum where the convergence is quadratic.
+QUICK_DECREMENT = 1e-3
+#: The Gaussian fits' widths, times the line width: :func:`.profiles.fit_gauss`'s grid, and the
+#: quick design's (``gauss_batch(exact=False)``), the line width held.
+_GRID_WIDTHS = np.array([0.95, 1.0, 1.05])
+QUICK_WIDTHS = np.array([1.0])
+#: ... fitted again on the full grid above this reduced chi-square
+QUICK_CHI2 = 1.5
 #: the signs of the Jacobian's shift, sigma and gamma columns against the weighted sums of the
 #: profile's derivatives (the model is ``cont (1 - sum W V)``: d/dshift = -d/dx)
 _JAC_SIGNS = np.array([1.0, -1.0, -1.0])
 
 
-def fit_planned(data, plans):
+def fit_planned(data, plans, exact=True):
     """The profile fits ``plans`` ask for (:class:`~specan.lines.measurement.LinePlan`), in order.
+
+    ``exact``: see :func:`voigt_batch` and :func:`gauss_batch` (False: the quick design).
 
     Returns
     -------
@@ -97,9 +110,9 @@ def fit_planned(data, plans):
     gauss = [k for k, p in enumerate(plans) if not p.voigt]
     voigt = [k for k, p in enumerate(plans) if p.voigt]
     g = gauss_batch(data, [(p.window.lo, p.window.hi, p.cont, p.centres, p.max_shift, p.fw / GAUSS_FWHM, p.sign)
-                           for p in (plans[k] for k in gauss)])
+                           for p in (plans[k] for k in gauss)], exact=exact)
     v = voigt_batch(data, [(p.window.lo, p.window.hi, p.cont, p.centres, p.max_shift, p.fw / GAUSS_FWHM, p.sign,
-                            p.skip, p.hydrogen) for p in (plans[k] for k in voigt)])
+                            p.skip, p.hydrogen) for p in (plans[k] for k in voigt)], exact=exact)
     for k, fit in zip(gauss + voigt, g + v):
         fits[k] = fit
     return fits
@@ -116,7 +129,7 @@ def fit_batched_voigt(data, lo, hi, cont, centres, profile, max_shift, sig_inst,
 # ----------------------------------------------------------------------------- Gaussian
 
 
-def gauss_batch(data, problems):
+def gauss_batch(data, problems, exact=True):
     """:func:`specan.lines.profiles.fit_gauss` of every problem.
 
     Parameters
@@ -124,6 +137,11 @@ def gauss_batch(data, problems):
     data : LineData
     problems : list of tuple
         ``(lo, hi, cont, centres, max_shift, sig_line, sign)`` as :func:`fit_gauss` takes them.
+    exact : bool
+        True: :func:`fit_gauss`'s grid (widths 0.95, 1 and 1.05 times the line width). False (the
+        quick design): the width held at the line width, the spectrum's own (:data:`QUICK_WIDTHS`),
+        a third of the grid: a line the instrument does not resolve has the instrument's width, and
+        the two outer widths move an equivalent width by at most ~5% of itself.
 
     Returns
     -------
@@ -134,8 +152,15 @@ def gauss_batch(data, problems):
     for k, (lo, hi, cont, centres, max_shift, sig_line, sign) in enumerate(problems):
         nsh = int(np.floor(max_shift / (sig_line / 4.0)))
         groups.setdefault((len(centres), nsh), []).append(k)
+    widths = _GRID_WIDTHS if exact else QUICK_WIDTHS
     for (ncomp, nsh), ks in groups.items():
-        _gauss_group(data, problems, ks, ncomp, nsh, out)
+        _gauss_group(data, problems, ks, ncomp, nsh, out, widths)
+    if not exact:
+        # where the data ask for more than the line width (a reduced chi-square the held width does
+        # not bring down to the noise: a line wider than the instrument's, or a blend), the full grid
+        again = [k for k, fit in enumerate(out) if fit is not None and fit["chi2"] > QUICK_CHI2]
+        for k, fit in zip(again, gauss_batch(data, [problems[k] for k in again])):
+            out[k] = fit
     return out
 
 
@@ -161,7 +186,7 @@ def _padded(data, problems, ks, skip_index=None):
     return x, y, cont, wts, (wts > 0).sum(axis=1)
 
 
-def _gauss_group(data, problems, ks, ncomp, nsh, out):
+def _gauss_group(data, problems, ks, ncomp, nsh, out, widths=None):
     """The problems ``ks`` (``ncomp`` components, shift grid of ``2 nsh + 1`` steps) into ``out``."""
     # enough pixels of non-zero weight (counted from one running count of them, not per window)
     count = _positive_counts(data)
@@ -174,8 +199,11 @@ def _gauss_group(data, problems, ks, ncomp, nsh, out):
     sign = np.array([problems[k][6] for k in ks], float)
     step = sig_line / 4.0
     # the grid of shift_width_grid, line by line: shifts in steps of sigma/4, widths 0.95-1.05
-    sh = np.repeat(np.arange(-nsh, nsh + 1), 3)[None, :] * step[:, None]      # (L, G)
-    sg = sig_line[:, None] * np.tile(np.array([0.95, 1.0, 1.05]), 2 * nsh + 1)[None, :]
+    # (the quick design: the line width alone)
+    widths = _GRID_WIDTHS if widths is None else widths
+    nw = widths.size
+    sh = np.repeat(np.arange(-nsh, nsh + 1), nw)[None, :] * step[:, None]      # (L, G)
+    sg = sig_line[:, None] * np.tile(widths, 2 * nsh + 1)[None, :]
     b = (cont - y) * wts
     cw = cont * wts
     dx = x[:, None, None, :] - (centres[:, None, :, None] + sh[:, :, None, None])   # (L, G, C, P)
@@ -238,7 +266,7 @@ def _gauss_group(data, problems, ks, ncomp, nsh, out):
             cov = np.linalg.inv(chosen)
     except np.linalg.LinAlgError:
         cov = None
-    shifts = _refined_shifts(chi2, sh, np.maximum(best, 0), step, nsh)
+    shifts = _refined_shifts(chi2, sh, np.maximum(best, 0), step, nsh, nw)
     if cov is not None:
         # every fit's summary from arrays (the same operations as row by row below, element by element)
         okr = np.flatnonzero(ok)
@@ -277,18 +305,18 @@ def _positive_counts(data):
     return data.positive_counts()
 
 
-def _refined_shifts(chi2, sh, best, step, nsh):
-    """:func:`specan.lines.profiles.refined_shift` of every row (grid: shifts repeated over three widths).
+def _refined_shifts(chi2, sh, best, step, nsh, nw=3):
+    """:func:`specan.lines.profiles.refined_shift` of every row (grid: shifts repeated over ``nw`` widths).
 
-    On that grid the points of the best width are every third one, so the neighbours in shift
-    are ``best -+ 3``; the same parabola, the same arithmetic, for all rows at once.
+    On that grid the points of the best width are every ``nw``-th one, so the neighbours in shift
+    are ``best -+ nw``; the same parabola, the same arithmetic, for all rows at once.
     """
     rows = np.arange(best.size)
-    k = best // 3
+    k = best // nw
     inner = (k > 0) & (k < 2 * nsh)
-    c0 = chi2[rows, np.where(inner, best - 3, best)]
+    c0 = chi2[rows, np.where(inner, best - nw, best)]
     c1 = chi2[rows, best]
-    c2 = chi2[rows, np.where(inner, best + 3, best)]
+    c2 = chi2[rows, np.where(inner, best + nw, best)]
     den = c0 - 2 * c1 + c2
     with np.errstate(divide="ignore", invalid="ignore"):
         frac = np.clip(0.5 * (c0 - c2) / den, -0.5, 0.5)
@@ -299,7 +327,7 @@ def _refined_shifts(chi2, sh, best, step, nsh):
 # ----------------------------------------------------------------------------- Voigt
 
 
-def voigt_batch(data, problems, max_iter=MAX_ITER, decrement=DECREMENT, cost_tol=COST_TOL):
+def voigt_batch(data, problems, max_iter=MAX_ITER, decrement=DECREMENT, cost_tol=COST_TOL, exact=True):
     """:func:`specan.lines.profiles.fit_profile` (Voigt) of every problem, all iterated together.
 
     Parameters
@@ -314,12 +342,20 @@ def voigt_batch(data, problems, max_iter=MAX_ITER, decrement=DECREMENT, cost_tol
     decrement, cost_tol : float
         Convergence: a full Gauss-Newton step would lower the cost by less than ``decrement``
         or than ``cost_tol`` times the cost.
+    exact : bool
+        True: the fits the one-by-one path makes (problems the batch leaves unconverged or
+        ill-determined are fitted again by :func:`~specan.lines.profiles.fit_profile_lean`).
+        False (the quick design, :data:`QUICK_DECREMENT`): every problem is reported where the
+        batch stops, none fitted again; an ill-determined fit (equivalent width below its
+        error) then stands where the batch left it in its flat valley.
 
     Returns
     -------
     list of dict or None
     """
     out = [None] * len(problems)
+    if not exact:
+        decrement = max(decrement, QUICK_DECREMENT)
     live, starts = [], []
     for k, (lo, hi, cont, centres, max_shift, sig_inst, sign, skip, free_width) in enumerate(problems):
         x, _, wts = window_arrays(data, lo, hi, skip)
@@ -370,7 +406,9 @@ def voigt_batch(data, problems, max_iter=MAX_ITER, decrement=DECREMENT, cost_tol
             if act.size <= TAIL_SIZE and it >= TAIL_START and _all_ill_determined(P, jtj, REAL):
                 # the batch's tail: the few problems left are ill-determined where they are, and an
                 # ill-determined fit is reported from the one-by-one algorithm anyway (below); left
-                # unconverged, they go to it now instead of iterating on alone
+                # unconverged, they go to it now instead of iterating on alone (the quick design
+                # reports them where they stand: ill-determined, they are known no better anywhere
+                # along their valley)
                 break
             # on a bound with the gradient pushing outward: held there this step
             held = ~REAL | ((P <= near_lo) & (grad > 0)) | ((P >= near_hi) & (grad < 0))
@@ -442,6 +480,11 @@ def voigt_batch(data, problems, max_iter=MAX_ITER, decrement=DECREMENT, cost_tol
                 R = np.where(better[:, None], rn, R)
                 J = np.where(better[:, None, None], jn, J)
                 C = np.where(better, cn, C)
+    if not exact and act.size:
+        # the quick design: the problems still iterating (the tail, or past max_iter) reported where
+        # they stand, not fitted again one by one
+        p[act], jac[act], cost[act] = P, J, C
+        converged[act] = True
     # the covariances of all converged problems in one call: a padded parameter's Jacobian column
     # is zero, so its row and column of the normal matrix are too, and the pseudo-inverse of the
     # rest is that of the problem's own block (to rounding)
@@ -467,7 +510,7 @@ def voigt_batch(data, problems, max_iter=MAX_ITER, decrement=DECREMENT, cost_tol
                 continue
         dof = max(int(ngood[row]) - n, 1)
         out[k] = fit_summary(p[row, :n], cov, problems[k][3], True, float(2.0 * cost[row]) / dof)
-        if not abs(out[k]["ew"]) > out[k]["ew_err"]:
+        if exact and not abs(out[k]["ew"]) > out[k]["ew_err"]:
             # an ill-determined fit (a flat valley where depth and damping trade): where the batch
             # stops in it depends on its path (Fe I 3820 in a MILES G9.5 III star: chi2 0.748
             # against least_squares' 0.639; Fe I 3860 in two MILES M dwarfs, equivalent width 0

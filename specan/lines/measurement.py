@@ -67,7 +67,7 @@ def cayrel_error(fwhm, pixel, snr):
 
 def measure(spectrum, linelist=None, rv=0 * u.km / u.s, resolving_power=None, profile="auto",
             window=None, detect_sigma=DETECT_SIGMA, kinds=("atomic",), min_depth=MIN_DEPTH,
-            divide_hydrogen=True, star_type=None, _data=None, _batched=True):
+            divide_hydrogen=True, star_type=None, exact_fits=False, _data=None, _batched=True):
     """Measure every listed line the spectrum covers.
 
     Per line: the centre is the matched feature (see :func:`identify`) or the
@@ -121,6 +121,14 @@ def measure(spectrum, linelist=None, rv=0 * u.km / u.s, resolving_power=None, pr
         for it (He I absorption in a G star, :mod:`specan.lines.expected`) are measured but
         not ``detected``, and ``expected`` says so; emission is never ruled out. None: nothing
         is ruled out.
+    exact_fits : bool
+        False (default): the quick fitting design. Gaussian fits hold the width at the
+        spectrum's line width (the full grid of widths only where the reduced chi-square stays
+        above :data:`~specan.lines.batchfit.QUICK_CHI2`); Voigt fits stop at a looser decrement
+        (:data:`~specan.lines.batchfit.QUICK_DECREMENT`) and every fit is reported where the batch
+        leaves it (none made again one by one). True: the fits of the one-by-one design, batched
+        (slower; the reference the quick design is tested against in
+        ``tests/test_lines_quick.py``, with its stated tolerance).
 
     Returns
     -------
@@ -148,13 +156,13 @@ def measure(spectrum, linelist=None, rv=0 * u.km / u.s, resolving_power=None, pr
     # fitted hydrogen profiles, so a metal line in a Balmer wing is measured against the
     # wing (its local continuum), not against a continuum the wing lies far below.
     results = measure_lines(data, features, targets, np.flatnonzero(targets.hydrogen), profile, detect_sigma,
-                            _batched)
+                            _batched, exact_fits)
     data_m, features_m = data, features
     if divide_hydrogen:
         data_m, features_m = without_hydrogen(data, features, results, targets, listed.rows["ep_low"],
                                               detect_sigma, min_depth)
     results.update(measure_lines(data_m, features_m, targets, np.flatnonzero(~targets.hydrogen), profile,
-                                 detect_sigma, _batched))
+                                 detect_sigma, _batched, exact_fits))
     return line_table(data, listed, targets, [results[i] for i in range(targets.pred.size)], star_type)
 
 
@@ -201,12 +209,14 @@ class LineResult:
     fit: dict | None = None
 
 
-def measure_lines(data, features, targets, which, profile, detect_sigma, batched=True):
+def measure_lines(data, features, targets, which, profile, detect_sigma, batched=True, exact=False):
     """:func:`measure_line` of each line index in ``which``, as ``{index: LineResult}``.
 
     ``batched`` (default) fits all the lines together (:func:`specan.lines.batchfit.fit_planned`:
     one vectorised solve per kind of fit instead of one fit call per line); False fits them one
-    by one (:func:`measure_line`), the reference the batched path is tested against.
+    by one (:func:`measure_line`), the reference the batched path is tested against. ``exact``
+    (batched only): the batched fits of the one-by-one design (True) or the quick design (False,
+    see :func:`measure`'s ``exact_fits``).
     """
     if not batched:
         return {int(i): measure_line(data, features, targets, i, profile, detect_sigma) for i in which}
@@ -216,10 +226,10 @@ def measure_lines(data, features, targets, which, profile, detect_sigma, batched
                                            targets.hydrogen[found])))
     plans = plan_lines(data, features, targets, list(starts), profile, starts, windows)
     wanted = [p for p in plans.values() if p.wants_fit]
-    fits = fit_planned(data, wanted)
+    fits = fit_planned(data, wanted, exact=exact)
     for plan, fit in zip(wanted, fits):
         plan.fit = fit
-    return finish_lines(data, features, targets, plans)
+    return finish_lines(data, features, targets, plans, exact=exact)
 
 
 def measure_line(data, features, targets, i, profile, detect_sigma):
@@ -500,8 +510,9 @@ def finish_line(data, features, targets, i, plan, fitter):
     return _finished(data, plan, wing)
 
 
-def finish_lines(data, features, targets, plans):
-    """:func:`finish_line` of every plan (``{index: LinePlan}``), the wing fits batched (:func:`wing_fits`)."""
+def finish_lines(data, features, targets, plans, exact=True):
+    """:func:`finish_line` of every plan (``{index: LinePlan}``), the wing fits batched (:func:`wing_fits`;
+    ``exact``: see :func:`specan.lines.batchfit.voigt_batch`)."""
     unfitted = [plan for plan in plans.values() if plan.window is not None and plan.fit is None]
     widths = dict(zip(map(id, unfitted), half_widths(data, [p.ic for p in unfitted], [p.window.lo for p in unfitted],
                                                      [p.window.hi for p in unfitted], [p.sign for p in unfitted])))
@@ -512,7 +523,7 @@ def finish_lines(data, features, targets, plans):
                 less_blends(data, features, targets, i, plan)
     strong = [i for i, plan in plans.items() if plan.window is not None and _wants_wings(plan)]
     wings = wing_fits(data, features, targets, strong, [plans[i].result.wave_obs for i in strong],
-                      [plans[i].fit for i in strong], [plans[i].fw for i in strong])
+                      [plans[i].fit for i in strong], [plans[i].fw for i in strong], exact=exact)
     wing_of = dict(zip(strong, wings))
     done = [i for i, plan in plans.items() if plan.window is not None]
     final = [plans[i].window if wing_of.get(i) is None else wing_of[i][1] for i in done]
@@ -612,7 +623,7 @@ def wing_fit(data, features, targets, i, centre, fit, fwhm, max_iter=3, fitter=f
     return best
 
 
-def wing_fits(data, features, targets, which, centres, fits, fwhm, max_iter=3):
+def wing_fits(data, features, targets, which, centres, fits, fwhm, max_iter=3, exact=True):
     """:func:`wing_fit` of the lines ``which`` (their centres, first fits and widths), the fits of each
     round made together (:func:`specan.lines.batchfit.voigt_batch`): a list of ``(dict, Window)`` or None."""
     best = [None] * len(which)
@@ -631,7 +642,8 @@ def wing_fits(data, features, targets, which, centres, fits, fwhm, max_iter=3):
         if not asked:
             break
         made = voigt_batch(data, [(win.lo, win.hi, np.ones(win.hi - win.lo + 1), cen, 0.5 * fwhm[m],
-                                   fwhm[m] / GAUSS_FWHM, 1.0, skip, False) for m, (win, cen, skip, _) in asked])
+                                   fwhm[m] / GAUSS_FWHM, 1.0, skip, False) for m, (win, cen, skip, _) in asked],
+                           exact=exact)
         live = []
         for (m, (win, _, _, _)), new in zip(asked, made):
             if _determined(new, data.wave[win.hi] - data.wave[win.lo]):
