@@ -89,8 +89,9 @@ QUICK_DECREMENT = 1e-3
 #: quick design's (``gauss_batch(exact=False)``), the line width held.
 _GRID_WIDTHS = np.array([0.95, 1.0, 1.05])
 QUICK_WIDTHS = np.array([1.0])
-#: ... fitted again on the full grid above this reduced chi-square
-QUICK_CHI2 = 1.5
+#: ... fitted again on the full grid where the data ask for another width: the score test of the
+#: held width (:func:`_width_scores`) beyond this many standard errors
+QUICK_WIDTH_Z = 2.0
 #: the signs of the Jacobian's shift, sigma and gamma columns against the weighted sums of the
 #: profile's derivatives (the model is ``cont (1 - sum W V)``: d/dshift = -d/dx)
 _JAC_SIGNS = np.array([1.0, -1.0, -1.0])
@@ -153,13 +154,13 @@ def gauss_batch(data, problems, exact=True):
         nsh = int(np.floor(max_shift / (sig_line / 4.0)))
         groups.setdefault((len(centres), nsh), []).append(k)
     widths = _GRID_WIDTHS if exact else QUICK_WIDTHS
+    wider = None if exact else []
     for (ncomp, nsh), ks in groups.items():
-        _gauss_group(data, problems, ks, ncomp, nsh, out, widths)
-    if not exact:
-        # where the data ask for more than the line width (a reduced chi-square the held width does
-        # not bring down to the noise: a line wider than the instrument's, or a blend), the full grid
-        again = [k for k, fit in enumerate(out) if fit is not None and fit["chi2"] > QUICK_CHI2]
-        for k, fit in zip(again, gauss_batch(data, [problems[k] for k in again])):
+        _gauss_group(data, problems, ks, ncomp, nsh, out, widths, wider)
+    if wider:
+        # where the data ask for another width than the line width (its score test, in
+        # _gauss_group), the full grid of widths
+        for k, fit in zip(wider, gauss_batch(data, [problems[k] for k in wider])):
             out[k] = fit
     return out
 
@@ -186,8 +187,13 @@ def _padded(data, problems, ks, skip_index=None):
     return x, y, cont, wts, (wts > 0).sum(axis=1)
 
 
-def _gauss_group(data, problems, ks, ncomp, nsh, out, widths=None):
-    """The problems ``ks`` (``ncomp`` components, shift grid of ``2 nsh + 1`` steps) into ``out``."""
+def _gauss_group(data, problems, ks, ncomp, nsh, out, widths=None, wider=None):
+    """The problems ``ks`` (``ncomp`` components, shift grid of ``2 nsh + 1`` steps) into ``out``.
+
+    ``widths``: the grid's widths (times the line width; default :func:`fit_gauss`'s three).
+    ``wider``: a list, given with one width held (the quick design): the problems whose data
+    ask for another width (:func:`_width_scores` beyond :data:`QUICK_WIDTH_Z`) are appended to it.
+    """
     # enough pixels of non-zero weight (counted from one running count of them, not per window)
     count = _positive_counts(data)
     ks = [k for k in ks if count[problems[k][1] + 1] - count[problems[k][0]] >= 3 + ncomp]
@@ -267,6 +273,11 @@ def _gauss_group(data, problems, ks, ncomp, nsh, out, widths=None):
     except np.linalg.LinAlgError:
         cov = None
     shifts = _refined_shifts(chi2, sh, np.maximum(best, 0), step, nsh, nw)
+    if wider is not None:
+        okr = np.flatnonzero(best >= 0)
+        z = _width_scores(x[okr], b[okr], a[okr, best[okr]], ata[okr, best[okr]], wbest[okr],
+                          centres[okr] + sh[okr, best[okr]][:, None], sg[okr, best[okr]])
+        wider.extend(ks[r] for r in okr[~(np.abs(z) <= QUICK_WIDTH_Z)].tolist())
     if cov is not None:
         # every fit's summary from arrays (the same operations as row by row below, element by element)
         okr = np.flatnonzero(ok)
@@ -297,6 +308,31 @@ def _gauss_group(data, problems, ks, ncomp, nsh, out, widths=None):
         out[k] = {"ew": float(wbest[row, 0]), "ew_err": float(np.sqrt(max(c00, 0.0))),
                   "centre": float(centres[row, 0] + shift), "fwhm": float(GAUSS_FWHM * sig),
                   "depth": float(peak), "chi2": float(cbest[row]) / dof, "sigma": float(sig), "gamma": 0.0}
+
+
+def _width_scores(x, b, a, ata, w, centres, sig):
+    """The score test of the Gaussian width at the fitted point: how many standard errors the
+    chi-square's slope in the width stands from zero, the equivalent widths refitted (profiled).
+
+    ``x`` (L, P), ``b`` the weighted data (L, P), ``a`` the weighted design (L, C, P) and ``ata`` its
+    normal matrix (L, C, C) at the fitted shift and width ``sig`` (L), ``w`` the fitted equivalent
+    widths (L, C), ``centres`` the components' fitted places (L, C). The model's derivative in the
+    width, ``d = sum_c w_c a_c ((x - c)^2 / sig^3 - 1 / sig)``, less its part the equivalent widths
+    can take (its projection on the design); the residual is already orthogonal to the design, so
+    ``z = d.r / sqrt(d.d - d.A'(AA')^-1 A d)``: about N(0, 1) where the held width is right and
+    the noise (weights) is right (score test; common practice).
+    """
+    s = sig[:, None, None]
+    dx = x[:, None, :] - centres[:, :, None]
+    d = np.einsum("lc,lcp->lp", w, a * (dx * dx / s**3 - 1.0 / s))
+    r = b - np.einsum("lc,lcp->lp", w, a)
+    ad = np.einsum("lcp,lp->lc", a, d)
+    try:
+        proj = np.einsum("lc,lc->l", ad, np.linalg.solve(ata, ad[..., None])[..., 0])
+    except np.linalg.LinAlgError:
+        return np.full(sig.size, np.inf)
+    with np.errstate(divide="ignore", invalid="ignore"):
+        return np.einsum("lp,lp->l", d, r) / np.sqrt(np.maximum(np.einsum("lp,lp->l", d, d) - proj, 0.0))
 
 
 def _positive_counts(data):
