@@ -42,6 +42,9 @@ __all__ = ["measure", "cayrel_error", "Targets", "LineResult", "line_targets", "
 
 #: Profiles :func:`measure` can fit.
 PROFILES = ("auto", "gauss", "voigt")
+#: The quick design's rounds of a strong line's wing fit (:func:`wing_fits`; the exact design
+#: makes up to three, each over the reach the last one's profile sets).
+QUICK_WING_ROUNDS = 1
 
 
 def cayrel_error(fwhm, pixel, snr):
@@ -632,7 +635,7 @@ def wing_fits(data, features, targets, which, centres, fits, fwhm, max_iter=3, e
     noise = _typical_noise(data)
     fit, reach0 = list(fits), [0.0] * len(which)
     live = list(range(len(which)))
-    for _ in range(max_iter):
+    for _ in range(max_iter if exact else QUICK_WING_ROUNDS):
         asked = []
         for m in live:
             problem = _wing_problem(data, features, targets, which[m], centres[m], fit[m], fwhm[m], noise, reach0[m])
