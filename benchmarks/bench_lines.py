@@ -9,9 +9,10 @@ Two sets of spectra:
 * ``dense``: one normalised 4,000-px spectrum (3800-7000 A, R = 3000, S/N 100) carrying
   every atomic line of the default list (Gaussians of random EW; Voigt Balmer lines).
 
-For each it prints ms per spectrum of ``measure`` (median of ``--repeats`` passes), the
-one-by-one fits (``measure(_batched=False)``, when the specan being run has that switch)
-side by side, and with ``--profile`` the functions with the most time of their own under
+For each it prints ms per spectrum of ``measure`` (median of ``--repeats`` passes; its default,
+the quick fitting design), the exact design (``measure(exact_fits=True)``: the fits of the
+one-by-one design, batched) and the one-by-one fits (``measure(_batched=False)``), when the specan
+being run has those switches, side by side, and with ``--profile`` the functions with the most time of their own under
 cProfile, with ``--work`` the counts of the fitting work (Voigt batch iterations, fits made one
 by one: figures the machine's load does not move), and with ``--steps`` the CPU time of each step
 of ``measure`` (the arrays and filters, the listed lines, the features, the hydrogen lines, their
@@ -256,6 +257,7 @@ def main(argv=None):
     args = parser.parse_args(argv)
     work = args.workdir or Path(tempfile.mkdtemp(prefix="specan-bench-lines-"))
     has_switch = "_batched" in inspect.signature(lines.measure).parameters
+    has_exact = "exact_fits" in inspect.signature(lines.measure).parameters
     print(f"# specan from {Path(specan.__file__).parent}; load average {os.getloadavg()[0]:.1f}; "
           f"OPENBLAS_NUM_THREADS={os.environ.get('OPENBLAS_NUM_THREADS', 'unset')}")
     sets = {"pipeline": pipeline_spectra(args.count, work), "dense": [(dense_spectrum(), {})]}
@@ -265,6 +267,9 @@ def main(argv=None):
         table = lines.measure(cases[0][0], **cases[0][1])
         line = (f"{name:9s} {len(cases):3d} spectra, {len(table)} lines in the first: "
                 f"measure {fast:6.1f} ms per spectrum (CPU {fast_cpu:5.1f})")
+        if has_exact:
+            exact, exact_cpu = timed(cases, args.repeats, exact_fits=True)
+            line += f"; exact design {exact:6.1f} ms (CPU {exact_cpu:5.1f}; {exact_cpu / fast_cpu:.2f}x)"
         if has_switch:
             slow, slow_cpu = timed(cases, args.repeats, _batched=False)
             line += f"; one-by-one fits {slow:6.1f} ms (CPU {slow_cpu:5.1f}; {slow_cpu / fast_cpu:.2f}x)"

@@ -11,15 +11,23 @@ Stated tolerance against the exact design (``_differences``; an equivalent width
 its own error, times sqrt(reduced chi2) where the profile model limits the fit, as in
 tests/test_lines_batched.py):
 
-- demo night (18 spectra, 2773 lines): at most 6 lines change detection, method, profile or
+- demo night (18 spectra, 2773 lines): at most 8 lines change detection, method, profile or
   emission flag, at most 2% of the lines move their ``ew`` by more than their error, 5% by more
-  than half of it. Measured: 3 lines (all in hydrogen windows: the division's residuals, where the
-  hydrogen fits are ill-determined and the exact design refits them one by one), 1.05% and 3.3%.
+  than half of it. Measured: 5 lines, 1.05% and 3.3%. The 5: Mg I 3832 and 3838 of the O8 star
+  and Mg I 3838 of the B3 star (residuals of the hydrogen division between H8 and H9, where the
+  exact design refits ill-determined hydrogen fits one by one), He II 4859 of the G2 star (inside
+  H beta's window); with the star's type given, as the night run gives it, none of these is
+  detected either way (species the type rules out); and Si II 3856 of the B3 star, integration
+  in the exact design, a multi-component fit in the quick one.
 - Kurucz Sun (fitted and true continuum): no such flag change, at most 3 lines beyond one error
   each. Measured: none; 2 of 171 and 0 of 177 (strong lines whose wing fit takes one round, at a
   nominal S/N of 500).
-- MILES (every 45th star, 17 stars O-M): at most 8 flag changes, at most 1% beyond one error.
-  Measured: 4 and 0.34% (9 of 2686).
+- MILES (every 45th star, 17 stars O-M): at most 10 lines with a flag changed, at most 1% beyond
+  one error. Measured: 7 and 0.34% (9 of 2686). The 7, all in two K5 III and one M1 III star:
+  Fe I 4326, He II 4339 and Fe II 4352 in H gamma's blanketed window (through the hydrogen
+  division), Fe I 4384 and Fe I 3820 (ill-determined Voigt fits, error half the EW, that the exact
+  design refits one by one: now reported detected), Ti II 3761 and He II 6560 (the division's
+  residual in H alpha).
 
 Outside truth (the tests below): injected lines of known equivalent width, the solar strong lines
 against Moore, Minnaert & Houtgast (1966), damped lines of known area; and the types and
@@ -82,7 +90,7 @@ def test_quick_design_within_its_tolerance_on_the_demo_night():
         pairs.append((lines.measure(spec, rv=rv, exact_fits=True), lines.measure(spec, rv=rv)))
     n, flags, move = _compare_all(pairs)
     assert n > 2000
-    assert flags <= 6                        # measured: 3 of 2773
+    assert flags <= 8                        # measured: 5 of 2773
     assert np.mean(move > 1.0) <= 0.02       # measured: 0.0105
     assert np.mean(move > 0.5) <= 0.05       # measured: 0.033
 
@@ -112,7 +120,7 @@ def test_quick_design_within_its_tolerance_on_miles_stars(miles):
         pairs.append((lines.measure(spec, rv=0 * u.km / u.s, exact_fits=True), lines.measure(spec, rv=0 * u.km / u.s)))
     n, flags, move = _compare_all(pairs)
     assert n > 2000
-    assert flags <= 8                        # measured: 4 of 2686
+    assert flags <= 10                       # measured: 7 of 2686
     assert np.mean(move > 1.0) <= 0.01       # measured: 0.0034
 
 
@@ -225,8 +233,7 @@ def test_night_row_counts_on_the_demo_night():
     # the lines stage's columns of the night catalogue (specan/night/row.py: detected lines,
     # emission lines, the emission flag from H alpha / H beta), with the star's type given as the
     # night run gives it. Stated tolerance: n_lines moves by at most 2 in at most 4 of the 18 spectra,
-    # n_emission and the flag in none. Measured: no change at all (the 3 lines whose flags change
-    # without the type, above, are species the type rules out)
+    # n_emission and the flag in none. Measured: no change at all
     from specan.night.row import EMISSION_FLAG_LINES
 
     truth = Table.read(DEMO / "truth.ecsv", format="ascii.ecsv")
