@@ -178,7 +178,10 @@ def _padded(data, problems, ks, skip_index=None):
     y = np.where(inside, data.flux[pix], 0.0)
     wts = np.where(inside, np.sqrt(data.weight[pix]), 0.0)
     cont = np.zeros(x.shape)
-    cont[inside] = np.concatenate([np.broadcast_to(problems[k][2], (m,)) for k, m in zip(ks, n.tolist())])
+    # (a continuum given as one value per pixel is taken as it is; np.broadcast_to, ~10 us a call,
+    # only for the others: the same values)
+    cont[inside] = np.concatenate([c if np.shape(c) == (m,) else np.broadcast_to(c, (m,))
+                                   for c, m in zip((problems[k][2] for k in ks), n.tolist())])
     if skip_index is not None:
         for row, k in enumerate(ks):
             skip = problems[k][skip_index]
