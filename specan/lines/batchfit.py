@@ -25,6 +25,15 @@ its arithmetic (scipy's ``least_squares`` alone spent ~2.7 ms a Voigt fit, measu
   where it is not (flat valleys where the equivalent width is below its own error) the
   one-by-one fit is made and reported (by :func:`.profiles.fit_profile_lean`: scipy's algorithm
   without scipy's overhead, :mod:`.leastsq`). Both are measured in ``tests/test_lines_batched.py``.
+
+That is the exact design (``exact=True`` here, ``lines.measure(exact_fits=True)``). The quick
+design, ``lines.measure``'s default, gives up the one-by-one path's answers where they cost most
+for least: Gaussian fits hold the width at the line width (:data:`QUICK_WIDTHS`) and take the full
+width grid only where a score test of that width asks for it (:data:`QUICK_WIDTH_Z`); Voigt fits
+stop at a looser decrement (:data:`QUICK_DECREMENT`) and none is made again one by one (an
+ill-determined fit stands where the batch leaves it). Its tolerance against the exact design, and
+its check against outside truth (injected lines, the solar strong lines, damped lines), are in
+``tests/test_lines_quick.py``.
 """
 
 from __future__ import annotations
