@@ -1,8 +1,8 @@
 """The quick fitting design of ``lines.measure`` (the default) against the exact one (``exact_fits=True``).
 
 The quick design (specan/lines/batchfit.py, specan/lines/measurement.py): Gaussian fits hold the
-width at the spectrum's line width, with the full grid of widths only where a score test of the
-held width asks for another; Voigt fits stop at a looser decrement and are reported where the
+width at the spectrum's line width, with one Gauss-Newton step in the width (within the exact
+grid's 0.95-1.05) only where a score test of the held width asks for another; Voigt fits stop at a looser decrement and are reported where the
 batch leaves them (none made again one by one); a strong line's wing fit takes one round. Its
 results move, so they are held to a stated tolerance against the exact design, and, more
 important, to outside truth at least as well as the exact design meets it.
@@ -13,15 +13,15 @@ tests/test_lines_batched.py):
 
 - demo night (18 spectra, 2773 lines): at most 8 lines change detection, method, profile or
   emission flag, at most 2% of the lines move their ``ew`` by more than their error, 5% by more
-  than half of it. Measured: 5 lines, 1.05% and 3.3%. The 5: Mg I 3832 and 3838 of the O8 star
+  than half of it. Measured: 5 lines, 1.30% and 3.9%. The 5: Mg I 3832 and 3838 of the O8 star
   and Mg I 3838 of the B3 star (residuals of the hydrogen division between H8 and H9, where the
   exact design refits ill-determined hydrogen fits one by one), He II 4859 of the G2 star (inside
   H beta's window); with the star's type given, as the night run gives it, none of these is
   detected either way (species the type rules out); and Si II 3856 of the B3 star, integration
   in the exact design, a multi-component fit in the quick one.
 - Kurucz Sun (fitted and true continuum): no such flag change, at most 3 lines beyond one error
-  each. Measured: none; 2 of 171 and 0 of 177 (strong lines whose wing fit takes one round, at a
-  nominal S/N of 500).
+  each. Measured: none; 3 of 174 (fitted continuum; at most 3.8 errors, at a nominal S/N of 500)
+  and 0 of 174 (true continuum; at most 0.51 of an error).
 - MILES (every 45th star, 17 stars O-M): at most 10 lines with a flag changed, at most 1% beyond
   one error. Measured: 7 and 0.34% (9 of 2686). The 7, all in two K5 III and one M1 III star:
   Fe I 4326, He II 4339 and Fe II 4352 in H gamma's blanketed window (through the hydrogen
@@ -91,8 +91,8 @@ def test_quick_design_within_its_tolerance_on_the_demo_night():
     n, flags, move = _compare_all(pairs)
     assert n > 2000
     assert flags <= 8                        # measured: 5 of 2773
-    assert np.mean(move > 1.0) <= 0.02       # measured: 0.0105
-    assert np.mean(move > 0.5) <= 0.05       # measured: 0.033
+    assert np.mean(move > 1.0) <= 0.02       # measured: 0.0130
+    assert np.mean(move > 0.5) <= 0.05       # measured: 0.039
 
 
 @pytest.mark.parametrize("true_continuum", [False, True])
@@ -107,7 +107,7 @@ def test_quick_design_within_its_tolerance_on_the_kurucz_sun(kurucz_sun, true_co
                                      normalized=False))
     n, flags, move = _differences(lines.measure(spec, exact_fits=True), lines.measure(spec))
     assert flags == 0                        # measured: 0 (either continuum)
-    assert n > 150 and (move > 1.0).sum() <= 3   # measured: 2 of 171 (fitted continuum), 0 of 177 (true)
+    assert n > 150 and (move > 1.0).sum() <= 3   # measured: 3 of 174 (fitted continuum), 0 of 174 (true)
 
 
 def test_quick_design_within_its_tolerance_on_miles_stars(miles):
@@ -170,8 +170,8 @@ def test_quick_fits_recover_injected_lines_as_well_as_exact(broad, margin):
     # lines at the instrument's width (what the quick design holds) and 20% wider (rotation: the
     # score test must send them to the full grid). Measured (6 spectra, ~200 fitted lines each):
     # median |pull| at the instrument's width 0.82 quick against 0.95 exact; 20% wider 1.41 against
-    # 1.27 (the exact grid reaches 1.05 of the width, the quick one holds 1.0 where the score
-    # test does not ask for more: its stated cost, within 15%)
+    # 1.27 (both reach at most 1.05 of the width; the quick one holds 1.0 where the score test
+    # does not ask for more: its stated cost, within 15%); mean pull 1.68 / 1.73 and 0.00 / 0.14
     quick, exact = _fitted_pulls(broad, False), _fitted_pulls(broad, True)
     assert quick.size == exact.size and quick.size > 150
     assert np.median(np.abs(quick)) <= margin * np.median(np.abs(exact))

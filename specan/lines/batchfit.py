@@ -98,8 +98,8 @@ QUICK_DECREMENT = 1e-3
 #: quick design's (``gauss_batch(exact=False)``), the line width held.
 _GRID_WIDTHS = np.array([0.95, 1.0, 1.05])
 QUICK_WIDTHS = np.array([1.0])
-#: ... fitted again on the full grid where the data ask for another width: the score test of the
-#: held width (:func:`_width_scores`) beyond this many standard errors
+#: ... moved by one Gauss-Newton step in the width where the data ask for another: the score test
+#: of the held width (:func:`_width_scores`) beyond this many standard errors
 QUICK_WIDTH_Z = 2.0
 #: the signs of the Jacobian's shift, sigma and gamma columns against the weighted sums of the
 #: profile's derivatives (the model is ``cont (1 - sum W V)``: d/dshift = -d/dx)
@@ -149,9 +149,10 @@ def gauss_batch(data, problems, exact=True):
         ``(lo, hi, cont, centres, max_shift, sig_line, sign)`` as :func:`fit_gauss` takes them.
     exact : bool
         True: :func:`fit_gauss`'s grid (widths 0.95, 1 and 1.05 times the line width). False (the
-        quick design): the width held at the line width, the spectrum's own (:data:`QUICK_WIDTHS`),
-        a third of the grid: a line the instrument does not resolve has the instrument's width, and
-        the two outer widths move an equivalent width by at most ~5% of itself.
+        quick design): the grid at the line width alone, the spectrum's own (:data:`QUICK_WIDTHS`),
+        a third of it: a line the instrument does not resolve has the instrument's width. Where
+        the data ask for another (a score test of the held width beyond :data:`QUICK_WIDTH_Z`),
+        one Gauss-Newton step in the width within the same 0.95-1.05 (:func:`_step_widths`).
 
     Returns
     -------
@@ -163,14 +164,8 @@ def gauss_batch(data, problems, exact=True):
         nsh = int(np.floor(max_shift / (sig_line / 4.0)))
         groups.setdefault((len(centres), nsh), []).append(k)
     widths = _GRID_WIDTHS if exact else QUICK_WIDTHS
-    wider = None if exact else []
     for (ncomp, nsh), ks in groups.items():
-        _gauss_group(data, problems, ks, ncomp, nsh, out, widths, wider)
-    if wider:
-        # where the data ask for another width than the line width (its score test, in
-        # _gauss_group), the full grid of widths
-        for k, fit in zip(wider, gauss_batch(data, [problems[k] for k in wider])):
-            out[k] = fit
+        _gauss_group(data, problems, ks, ncomp, nsh, out, widths, not exact)
     return out
 
 
@@ -199,12 +194,12 @@ def _padded(data, problems, ks, skip_index=None):
     return x, y, cont, wts, (wts > 0).sum(axis=1)
 
 
-def _gauss_group(data, problems, ks, ncomp, nsh, out, widths=None, wider=None):
+def _gauss_group(data, problems, ks, ncomp, nsh, out, widths=None, width_step=False):
     """The problems ``ks`` (``ncomp`` components, shift grid of ``2 nsh + 1`` steps) into ``out``.
 
     ``widths``: the grid's widths (times the line width; default :func:`fit_gauss`'s three).
-    ``wider``: a list, given with one width held (the quick design): the problems whose data
-    ask for another width (:func:`_width_scores` beyond :data:`QUICK_WIDTH_Z`) are appended to it.
+    ``width_step``: with one width held (the quick design), the fits whose data ask for another
+    width take one Gauss-Newton step in it (:func:`_step_widths`).
     """
     # enough pixels of non-zero weight (counted from one running count of them, not per window)
     count = _positive_counts(data)
@@ -274,8 +269,12 @@ def _gauss_group(data, problems, ks, ncomp, nsh, out, widths=None, wider=None):
             continue
         best[row], wbest[row], cbest[row] = bg, wb, cb
     ok = best >= 0
+    # each fit's width and normal matrix at its chosen grid point (the quick design may move the width)
+    sig_best, ata_best = sg[rows, np.maximum(best, 0)], ata[rows, np.maximum(best, 0)]
+    if width_step:
+        _step_widths(x, b, a, cw, centres, sh, sig_line, sign, best, sig_best, ata_best, wbest, cbest)
     try:
-        chosen = ata[rows[ok], best[ok]]
+        chosen = ata_best[ok]
         if ncomp == 1:   # (the inverse of a 1 x 1 matrix: LAPACK's is the division, the same bits)
             if not np.all(chosen != 0):
                 raise np.linalg.LinAlgError("Singular matrix")
@@ -285,15 +284,10 @@ def _gauss_group(data, problems, ks, ncomp, nsh, out, widths=None, wider=None):
     except np.linalg.LinAlgError:
         cov = None
     shifts = _refined_shifts(chi2, sh, np.maximum(best, 0), step, nsh, nw)
-    if wider is not None:
-        okr = np.flatnonzero(best >= 0)
-        z = _width_scores(x[okr], b[okr], a[okr, best[okr]], ata[okr, best[okr]], wbest[okr],
-                          centres[okr] + sh[okr, best[okr]][:, None], sg[okr, best[okr]])
-        wider.extend(ks[r] for r in okr[~(np.abs(z) <= QUICK_WIDTH_Z)].tolist())
     if cov is not None:
         # every fit's summary from arrays (the same operations as row by row below, element by element)
         okr = np.flatnonzero(ok)
-        sig = sg[okr, best[okr]]
+        sig = sig_best[okr]
         ew = wbest[okr, 0]
         columns = (ew, np.sqrt(np.maximum(cov[:, 0, 0], 0.0)), centres[okr, 0] + shifts[okr], GAUSS_FWHM * sig,
                    ew / (sig * np.sqrt(2 * np.pi)), cbest[okr] / np.maximum(ngood[okr] - ncomp - 2, 1), sig)
@@ -307,13 +301,13 @@ def _gauss_group(data, problems, ks, ncomp, nsh, out, widths=None, wider=None):
             continue
         if cov is None:
             try:
-                c00 = np.linalg.inv(ata[row, best[row]])[0, 0]
+                c00 = np.linalg.inv(ata_best[row])[0, 0]
             except np.linalg.LinAlgError:
                 continue
         else:
             c00 = cov[j, 0, 0]
             j += 1
-        sig = sg[row, best[row]]
+        sig = sig_best[row]
         shift = shifts[row]
         dof = max(int(ngood[row]) - ncomp - 2, 1)
         peak = wbest[row, 0] / (sig * np.sqrt(2 * np.pi))
@@ -343,8 +337,42 @@ def _width_scores(x, b, a, ata, w, centres, sig):
         proj = np.einsum("lc,lc->l", ad, np.linalg.solve(ata, ad[..., None])[..., 0])
     except np.linalg.LinAlgError:
         return np.full(sig.size, np.inf)
+    info = np.maximum(np.einsum("lp,lp->l", d, d) - proj, 0.0)
+    score = np.einsum("lp,lp->l", d, r)
     with np.errstate(divide="ignore", invalid="ignore"):
-        return np.einsum("lp,lp->l", d, r) / np.sqrt(np.maximum(np.einsum("lp,lp->l", d, d) - proj, 0.0))
+        return score / np.sqrt(info), score / info
+
+
+def _step_widths(x, b, a, cw, centres, sh, sig_line, sign, best, sig_best, ata_best, wbest, cbest):
+    """The quick design's width: where the score test of the held width (:func:`_width_scores`)
+    stands beyond :data:`QUICK_WIDTH_Z`, one Gauss-Newton step in the width (the equivalent widths
+    profiled: ``score / information``), kept within 0.95-1.05 of the line width (the exact grid's
+    range), the equivalent widths solved again there; taken where it lowers the chi-square and
+    keeps every component's sign. Updates ``sig_best``, ``ata_best``, ``wbest``, ``cbest`` in place.
+    """
+    okr = np.flatnonzero(best >= 0)
+    if not okr.size:
+        return
+    cen = centres[okr] + sh[okr, best[okr]][:, None]
+    z, dsig = _width_scores(x[okr], b[okr], a[okr, best[okr]], ata_best[okr], wbest[okr], cen, sig_best[okr])
+    f = ~(np.abs(z) <= QUICK_WIDTH_Z) & np.isfinite(dsig)
+    if not f.any():
+        return
+    rows, cen = okr[f], cen[f]
+    s1 = np.clip(sig_best[rows] + dsig[f], _GRID_WIDTHS[0] * sig_line[rows], _GRID_WIDTHS[-1] * sig_line[rows])
+    s = s1[:, None, None]
+    dx = x[rows][:, None, :] - cen[:, :, None]
+    a1 = np.exp(-0.5 * (dx / s) ** 2) / (s * np.sqrt(2 * np.pi)) * cw[rows][:, None, :]
+    ata1 = a1 @ a1.transpose(0, 2, 1) + 1e-12 * np.eye(a1.shape[1])
+    atb1 = np.einsum("lcp,lp->lc", a1, b[rows])
+    try:
+        w1 = np.linalg.solve(ata1, atb1[..., None])[..., 0]
+    except np.linalg.LinAlgError:
+        return
+    c1 = np.einsum("lp,lp->l", b[rows], b[rows]) - np.sum(w1 * atb1, axis=1)
+    take = (c1 <= cbest[rows]) & np.all(sign[rows, None] * w1 >= 0, axis=1)
+    rows = rows[take]
+    sig_best[rows], ata_best[rows], wbest[rows], cbest[rows] = s1[take], ata1[take], w1[take], c1[take]
 
 
 def _positive_counts(data):
