@@ -126,8 +126,9 @@ def measure(spectrum, linelist=None, rv=0 * u.km / u.s, resolving_power=None, pr
         is ruled out.
     exact_fits : bool
         False (default): the quick fitting design. Gaussian fits hold the width at the
-        spectrum's line width (the full grid of widths only where the reduced chi-square stays
-        above :data:`~specan.lines.batchfit.QUICK_CHI2`); Voigt fits stop at a looser decrement
+        spectrum's line width (one Gauss-Newton step in the width where a score test of the
+        held width rejects it, :data:`~specan.lines.batchfit.QUICK_WIDTH_Z`); strong lines' wings
+        are fitted in one round (:data:`QUICK_WING_ROUNDS`); Voigt fits stop at a looser decrement
         (:data:`~specan.lines.batchfit.QUICK_DECREMENT`) and every fit is reported where the batch
         leaves it (none made again one by one). True: the fits of the one-by-one design, batched
         (slower; the reference the quick design is tested against in
