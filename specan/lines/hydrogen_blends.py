@@ -37,7 +37,7 @@ from ..resolution import GAUSS_FWHM
 from .components import MIN_SEPARATION, window_features
 
 __all__ = ["CORE_CLEARANCE", "LISTED_SIGNIFICANCE", "metal_absorption", "metal_lines", "blanketing",
-           "less_blends"]
+           "less_blends", "series_shares"]
 
 #: Metal lines closer than this many line widths to the hydrogen line's fitted centre are left
 #: in it: inside its core the profile's shape is least certain, and a Gaussian there takes up
@@ -204,10 +204,10 @@ def less_blends(data, features, targets, i, plan):
     """Take the metal lines inside hydrogen line ``i``'s window out of its integrated equivalent width.
 
     Changes ``plan.result`` in place where the line is an absorption line integrated over its
-    window with a Voigt fit: ``ew_err_blend`` (:func:`blanketing`) and ``ew_err`` (with it in
-    quadrature); where metal lines of some strength lie in the window also ``method``
-    ("integration_less_blends") and ``ew``, and ``blend_inside`` (the listed lines among them,
-    indices into ``targets``). Otherwise leaves it.
+    window: ``blanketing`` (:func:`blanketing`, made into ``ew_err_blend`` by :func:`series_shares`);
+    where it has a Voigt fit and metal lines of some strength lie in the window also ``method``
+    ("integration_less_blends"), ``ew``, ``ew_err`` and ``blend_inside`` (the listed lines among
+    them, indices into ``targets``). Otherwise leaves it.
 
     Parameters
     ----------
@@ -220,8 +220,11 @@ def less_blends(data, features, targets, i, plan):
         Its plan, fit made (:func:`specan.lines.measurement.finish_line`).
     """
     result, fit, window = plan.result, plan.fit, plan.window
-    if (window is None or fit is None or not plan.hydrogen or plan.sign < 0 or not plan.voigt
-            or result.method != "integration"):
+    if window is None or not plan.hydrogen or plan.sign < 0 or result.method != "integration":
+        return
+    # the absorption under the crests needs no fit (a failed one leaves the integral all the same)
+    result.blanketing = blanketing(data, window, plan.cont, result.wave_obs if fit is None else fit["centre"])
+    if fit is None or not plan.voigt:
         return
     sep = MIN_SEPARATION * plan.fw
     lo, hi = data.wave[window.lo], data.wave[window.hi]
@@ -241,9 +244,6 @@ def less_blends(data, features, targets, i, plan):
         # none where the hydrogen lines' own profiles are
         far = np.abs(positions[:, None] - plan.centres[None, :]).min(axis=1) > sep
         positions, owner = positions[far], owner[far]
-    sys = blanketing(data, window, plan.cont, fit["centre"])
-    result.ew_err_blend = sys
-    result.ew_err = float(np.hypot(result.ew_int_err, sys))
     if not positions.size:
         return
     # (metal_lines leaves out those within the core clearance: so here, to keep the owners in step)
@@ -264,4 +264,64 @@ def less_blends(data, features, targets, i, plan):
     result.blend_inside = tuple(int(k) for k in owner[(owner >= 0) & (each > 0)])
     # (the integral and the fit share pixels, so the two errors are not independent: their
     # quadratic sum is the larger, cautious figure)
-    result.ew_err = float(np.sqrt(result.ew_int_err ** 2 + err ** 2 + sys ** 2))
+    result.ew_err = float(np.hypot(result.ew_int_err, err))
+
+
+#: H delta's place (Angstrom, between its air and vacuum wavelengths, NIST ASD: 4101.74 air, 4102.89
+#: vacuum) and how far from it the line may fall (the two media, and 400 km/s: 5.5 A).
+ANCHOR_WAVE, ANCHOR_REACH = 4102.3, 8.0
+#: The Balmer series limit, Angstrom (NIST ASD: 3645.8 air, from memory).
+SERIES_LIMIT = 3640.0
+
+
+def series_shares(results, targets):
+    """The share of each high Balmer line the spectrum cannot assign: its ``ew_err_blend``.
+
+    Changes the results in place. A Balmer line above H delta (H epsilon, H8 and up, told by
+    wavelength: a user's list may name them otherwise) whose :func:`less_blends` measured the
+    absorption under its window's crests (``blanketing``) reports the middle of what it can be,
+    from all of its share its own to none of it: ``ew`` less half the share, ``ew_err_blend`` half
+    the share, ``ew_err`` with it in quadrature. The lower members keep their equivalent widths
+    (``ew_err_blend`` NaN): their windows reach farther from the crowded blue and the crests under
+    them are nearer the continuum (not assessed further here).
+
+    Without H delta in the spectrum the share is all the absorption under the crests. The
+    higher members' hydrogen holds no more than H
+    delta's (common practice: the higher members weaken toward the series limit; measured on 8
+    MILES A1-A7 V stars, H8-H12 read 8-14 A below H delta's 14-19 A), so where H delta's least
+    hydrogen (its equivalent width less the absorption under its own crests, plus twice its error)
+    already accounts for them, their crests are the hydrogen wings of the series (A stars, whose
+    crests between the high members lie below the continuum by those wings themselves): their
+    share is only what they hold beyond it, never more than under their crests (the Sun: most of
+    H8-H12; MILES G0-G2 V read 5-15 A there against H delta's 2-3 A). What they hold beyond all of
+    H delta's equivalent width (plus twice its error) is shared in any case, under crests or not:
+    an unresolved partner such as Ca II H, 1.6 A from H epsilon, makes no crest of its own.
+
+    Parameters
+    ----------
+    results : dict of int to LineResult
+        The hydrogen lines measured (:func:`specan.lines.measurement.measure_lines`).
+    targets : Targets
+    """
+    anchor_at, most, least = np.nan, np.inf, np.inf
+    near = [i for i in results if targets.hydrogen[i] and abs(targets.pred[i] - ANCHOR_WAVE) < ANCHOR_REACH]
+    if near:
+        a = results[near[0]]
+        if np.isfinite(a.ew) and np.isfinite(a.ew_err) and a.ew > 0:
+            anchor_at = targets.pred[near[0]]
+            # the most and the least hydrogen H delta holds: all or none of the absorption under
+            # its own crests (each with twice its error)
+            most = a.ew + 2.0 * a.ew_err
+            least = most - np.nan_to_num(a.blanketing)
+    for i, result in results.items():
+        share = result.blanketing
+        if not (targets.hydrogen[i] and np.isfinite(share) and np.isfinite(result.ew)
+                and SERIES_LIMIT < targets.pred[i] < ANCHOR_WAVE - ANCHOR_REACH):
+            continue
+        if np.isfinite(anchor_at):
+            # under its crests only what H delta's least hydrogen leaves over; and whatever H
+            # delta's most leaves over in any case (an unresolved partner: Ca II H in H epsilon)
+            share = max(min(share, result.ew - least), result.ew - most, 0.0)
+        result.ew = result.ew - 0.5 * share
+        result.ew_err_blend = 0.5 * share
+        result.ew_err = float(np.hypot(result.ew_err, 0.5 * share))

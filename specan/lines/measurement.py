@@ -28,7 +28,7 @@ from .components import MIN_SEPARATION, component_centres, window_features, wing
 from .data import DETECT_SIGMA, MIN_DEPTH, LineData, find_features, normalised
 from .hydrogen import without_hydrogen
 from .expected import expected_lines, star_code
-from .hydrogen_blends import less_blends
+from .hydrogen_blends import less_blends, series_shares
 from .listed import blends, line_widths, lines_in_range, match_windows, velocities
 from .batchfit import fit_planned, voigt_batch
 from .profiles import fit_gauss, fit_profile
@@ -129,9 +129,10 @@ def measure(spectrum, linelist=None, rv=0 * u.km / u.s, resolving_power=None, pr
         ``velocity``, ``ew``, ``ew_err``, ``ew_err_cayrel``, ``ew_int``,
         ``ew_int_err``, ``ew_fit``, ``ew_fit_err``, ``fwhm``, ``ew_err_blend``, ``depth``,
         ``significance``, ``fit_chi2``, ``window_min``, ``window_max``, ``method``,
-        ``profile``, ``blend``, ``detected``, ``emission``, ``expected``. ``ew_err_blend`` (hydrogen lines; NaN elsewhere) is the part of
-        ``ew`` the spectrum cannot assign between the line's wings and the blanketing of the weak
-        lines around it, a systematic term included in ``ew_err``; ``blend`` names the listed lines
+        ``profile``, ``blend``, ``detected``, ``emission``, ``expected``. ``ew_err_blend`` (hydrogen
+        lines; NaN elsewhere) is half the absorption the spectrum cannot assign between the line's
+        wings and the blanketing of the weak lines around it (``ew`` is the middle of that range), a
+        systematic term included in ``ew_err`` (:mod:`.hydrogen_blends`); ``blend`` names the listed lines
         within one resolution element and, for a hydrogen line, those modelled inside its window.
         ``meta`` holds rv, R, medium and ``star_type``. ``fit_chi2`` is the reduced chi-square of the profile fit (NaN when
         none was fitted): near 1 when noise limits the line; far above 1 when the
@@ -152,6 +153,7 @@ def measure(spectrum, linelist=None, rv=0 * u.km / u.s, resolving_power=None, pr
     # wing (its local continuum), not against a continuum the wing lies far below.
     results = measure_lines(data, features, targets, np.flatnonzero(targets.hydrogen), profile, detect_sigma,
                             _batched)
+    series_shares(results, targets)
     data_m, features_m = data, features
     if divide_hydrogen:
         data_m, features_m = without_hydrogen(data, features, results, targets, listed.rows["ep_low"],
@@ -199,6 +201,7 @@ class LineResult:
     window_max: float = np.nan
     fit_chi2: float = np.nan
     ew_err_blend: float = np.nan   #: what cannot be assigned (hydrogen lines, :mod:`.hydrogen_blends`)
+    blanketing: float = np.nan     #: absorption under the window's crests (hydrogen lines, the same)
     blend_inside: tuple = ()       #: listed lines modelled inside the window (indices into the targets)
     method: str = "none"
     profile: str = ""
@@ -572,9 +575,7 @@ def _finished(data, plan, wing, noise=None, cayrel=True):
         result.window_min, result.window_max = data.wave[wwin.lo], data.wave[wwin.hi]
         window = wwin
     # significant in the matched filter AND an equivalent width clear of its error
-    # detection against the noise alone: ew_err_blend says how much of the line is whose, not whether it is there
-    noise_err = np.sqrt(max(result.ew_err ** 2 - np.nan_to_num(result.ew_err_blend) ** 2, 0.0))
-    result.detected = plan.detected and abs(result.ew) > 2.0 * noise_err
+    result.detected = plan.detected and abs(result.ew) > 2.0 * result.ew_err
     if not cayrel:
         return result
     fwhm_c = result.fwhm if np.isfinite(result.fwhm) else plan.fw
