@@ -50,13 +50,18 @@ def series_limits(centre, fwhm, series):
     and a window walked outward on the smoothed flux of a crowded spectrum can pass the neighbour's
     core (measured, Kurucz Sun at R 2000: H12's window 3750-3781 A held H11 at 3771.7 A). Beyond
     half-way the absorption is more the neighbour's than the line's own; there the window ends.
-    Lines of the series within one line width of ``centre`` are the line itself.
+    Lines of the series within one line width of ``centre`` are the line itself. The last line
+    listed toward the series limit (H12 in the packaged list) has no listed neighbour there, though
+    the series goes on closer still: that side ends as far out as the other (measured, Kurucz Sun at
+    R 1000: H12's window reached 3715 A, past the unlisted H13-H15).
     """
     series = np.asarray(series, float)
     blue = series[series < centre - fwhm]
     red = series[series > centre + fwhm]
     lo = 0.5 * (centre + blue.max()) if blue.size else -np.inf
     hi = 0.5 * (centre + red.min()) if red.size else np.inf
+    if not blue.size and red.size:
+        lo = centre - (hi - centre)
     return lo, hi
 
 
