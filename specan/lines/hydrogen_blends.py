@@ -18,13 +18,15 @@ The metal lines modelled are the features found in the window and the listed lin
 hydrogen line's steep wing a metal line makes no local minimum of its own (the Kurucz Sun at R 2000:
 Mg I 3832 and 3838 beside H9 were no features, measured), so each listed line is given a column too,
 and kept where the flux, the hydrogen line's fitted profile taken off, dips at it (a listed line put
-where the spectrum shows none would only take up noise: never less than zero, so always some). The listed lines kept are named in the line's ``blend``.
+where the spectrum shows none would only take up noise: never less than zero, so always some). The
+listed lines kept are named in the line's ``blend``.
 
-What cannot be separated is stated as its own error term, ``ew_err_blend`` (:func:`blanketing`): at
-the resolutions this package meets (R 1000-5000) the crests between the weak lines of a G or K
-star's blue spectrum lie well below the true continuum (the Kurucz Sun at R 2000: 0.7-0.8 between
-3750 and 3900 A, measured), and whether that depression under a high Balmer line is its wing or the
-summed weak lines no feature stands for cannot be told from the spectrum.
+What cannot be separated is stated as its own error term, ``ew_err_blend`` (:func:`blanketing`,
+:func:`series_shares`): at the resolutions this package meets (R 1000-5000) the crests between the
+weak lines of a G or K star's blue spectrum lie well below the true continuum (the Kurucz Sun at
+R 2000: 0.6-0.8 between 3750 and 3900 A, measured), and whether that depression under a high
+Balmer line is its wing or the summed weak lines no feature stands for cannot be told from the
+spectrum; nor can a partner closer than a line width (Ca II H, 1.6 A from H epsilon).
 """
 
 from __future__ import annotations
@@ -285,10 +287,10 @@ def series_shares(results, targets):
     (``ew_err_blend`` NaN): their windows reach farther from the crowded blue and the crests under
     them are nearer the continuum (not assessed further here).
 
-    Without H delta in the spectrum the share is all the absorption under the crests. The
-    higher members' hydrogen holds no more than H
-    delta's (common practice: the higher members weaken toward the series limit; measured on 8
-    MILES A1-A7 V stars, H8-H12 read 8-14 A below H delta's 14-19 A), so where H delta's least
+    Without H delta in the spectrum the share is all the absorption under the crests. With it,
+    the higher members' hydrogen holds no more than H delta's (common practice: the higher
+    members weaken toward the series limit; measured on 8 MILES A1-A7 V stars, H8-H12 read
+    8-14 A below H delta's 14-19 A), so where H delta's least
     hydrogen (its equivalent width less the absorption under its own crests, plus twice its error)
     already accounts for them, their crests are the hydrogen wings of the series (A stars, whose
     crests between the high members lie below the continuum by those wings themselves): their
@@ -303,12 +305,12 @@ def series_shares(results, targets):
         The hydrogen lines measured (:func:`specan.lines.measurement.measure_lines`).
     targets : Targets
     """
-    anchor_at, most, least = np.nan, np.inf, np.inf
+    anchored, most, least = False, np.inf, np.inf
     near = [i for i in results if targets.hydrogen[i] and abs(targets.pred[i] - ANCHOR_WAVE) < ANCHOR_REACH]
     if near:
         a = results[near[0]]
         if np.isfinite(a.ew) and np.isfinite(a.ew_err) and a.ew > 0:
-            anchor_at = targets.pred[near[0]]
+            anchored = True
             # the most and the least hydrogen H delta holds: all or none of the absorption under
             # its own crests (each with twice its error)
             most = a.ew + 2.0 * a.ew_err
@@ -318,7 +320,7 @@ def series_shares(results, targets):
         if not (targets.hydrogen[i] and np.isfinite(share) and np.isfinite(result.ew)
                 and SERIES_LIMIT < targets.pred[i] < ANCHOR_WAVE - ANCHOR_REACH):
             continue
-        if np.isfinite(anchor_at):
+        if anchored:
             # under its crests only what H delta's least hydrogen leaves over; and whatever H
             # delta's most leaves over in any case (an unresolved partner: Ca II H in H epsilon)
             share = max(min(share, result.ew - least), result.ew - most, 0.0)
