@@ -287,7 +287,7 @@ def series_shares(results, targets):
     (``ew_err_blend`` NaN): their windows reach farther from the crowded blue and the crests under
     them are nearer the continuum (not assessed further here).
 
-    Without H delta in the spectrum the share is all the absorption under the crests. With it,
+    Without H delta found in the spectrum the share is all the absorption under the crests. With it,
     the higher members' hydrogen holds no more than H delta's (common practice: the higher
     members weaken toward the series limit; measured on 8 MILES A1-A7 V stars, H8-H12 read
     8-14 A below H delta's 14-19 A), so where H delta's least
@@ -309,7 +309,9 @@ def series_shares(results, targets):
     near = [i for i in results if targets.hydrogen[i] and abs(targets.pred[i] - ANCHOR_WAVE) < ANCHOR_REACH]
     if near:
         a = results[near[0]]
-        if np.isfinite(a.ew) and np.isfinite(a.ew_err) and a.ew > 0:
+        # (an H delta not found says nothing of the series: the demo night's A3 V at S/N 7 read
+        # 0.03 +- 0.40 A there, and every higher member would have been shared out against it)
+        if a.detected and np.isfinite(a.ew) and np.isfinite(a.ew_err) and a.ew > 0:
             anchored = True
             # the most and the least hydrogen H delta holds: all or none of the absorption under
             # its own crests (each with twice its error)
