@@ -93,14 +93,15 @@ def sun_true_continuum():
                 bound = hydrogen_bound(pix, clean, row["wave_vac"].to_value(u.AA), lo, hi)
                 ew, err = row["ew"].to_value(u.AA), row["ew_err"].to_value(u.AA)
                 share = row["ew_err_blend"].to_value(u.AA) if "ew_err_blend" in t.colnames else np.nan
-                print(f"   {line_id:10s} {ew:6.2f} +- {err:5.2f} [{share:5.2f}]  {lo:7.1f}-{hi:7.1f}  bound {bound:6.2f} "
-                      f"pull {(ew - bound) / err:+7.1f}  blend {row['blend']}")
+                print(f"   {line_id:10s} {ew:6.2f} +- {err:5.2f} [{share:5.2f}]  {lo:7.1f}-{hi:7.1f}  "
+                      f"bound {bound:6.2f} pull {(ew - bound) / err:+7.1f}  blend {row['blend']}")
 
 
 def sun_as_a_user_gets_it():
     from specan.cli.lines import lines_file
 
-    print("\n== Kurucz Sun times its continuum, S/N 100, through `specan lines` (continuum fitted, velocity measured) ==")
+    print("\n== Kurucz Sun times its continuum, S/N 100, through `specan lines` "
+          "(continuum fitted, velocity measured) ==")
     for r in (1000.0, 2000.0):
         pix, _, noisy, sig, cont = sun_arrays(r)
         for with_errors in (True, False):

@@ -132,7 +132,8 @@ def blends(waves, ids, fwhm, inside=None):
         for i, extra in enumerate(inside):
             if len(extra):
                 named = [b for b in out[i].split(",") if b]
-                out[i] = ",".join(named + [ids[k] for k in sorted(extra, key=lambda k: waves[k]) if ids[k] not in named])
+                more = [ids[k] for k in sorted(extra, key=lambda k: waves[k]) if ids[k] not in named]
+                out[i] = ",".join(named + more)
     return out
 
 

@@ -132,12 +132,12 @@ def measure(spectrum, linelist=None, rv=0 * u.km / u.s, resolving_power=None, pr
         ``profile``, ``blend``, ``detected``, ``emission``, ``expected``. ``ew_err_blend`` (hydrogen
         lines; NaN elsewhere) is half the absorption the spectrum cannot assign between the line's
         wings and the blanketing of the weak lines around it (``ew`` is the middle of that range), a
-        systematic term included in ``ew_err`` (:mod:`.hydrogen_blends`); ``blend`` names the listed lines
-        within one resolution element and, for a hydrogen line, those modelled inside its window.
-        ``meta`` holds rv, R, medium and ``star_type``. ``fit_chi2`` is the reduced chi-square of the profile fit (NaN when
-        none was fitted): near 1 when noise limits the line; far above 1 when the
-        profile model does (unresolved blends), and the errors, which count noise
-        only, then understate the equivalent width's true uncertainty.
+        systematic term included in ``ew_err`` (:mod:`.hydrogen_blends`); ``blend`` names the listed
+        lines within one resolution element and, for a hydrogen line, those modelled inside its
+        window. ``meta`` holds rv, R, medium and ``star_type``. ``fit_chi2`` is the reduced
+        chi-square of the profile fit (NaN when none was fitted): near 1 when noise limits the
+        line; far above 1 when the profile model does (unresolved blends), and the errors, which
+        count noise only, then understate the equivalent width's true uncertainty.
     """
     if profile not in PROFILES:
         raise ValueError("profile must be 'auto', 'gauss' or 'voigt'")
