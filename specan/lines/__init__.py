@@ -28,7 +28,8 @@ The modules, one concern each:
 - :mod:`.profiles`: Gaussian and Voigt profiles and their fits;
 - :mod:`.batchfit`: all the fits of a spectrum at once (the default path of :func:`measure`);
 - :mod:`.hydrogen`: the fitted hydrogen lines divided out;
-- :mod:`.hydrogen_blends`: the metal lines inside a hydrogen line's window taken out of it;
+- :mod:`.hydrogen_blends`: the metal lines inside a hydrogen line's window taken out of it, and the share
+  of the high Balmer lines no one can assign (``ew_err_blend``);
 - :mod:`.expected`: which species a star of a given type can show (the rest are not counted as found);
 - :mod:`.measurement`: :func:`measure`, step by step;
 - :mod:`.bands`: :func:`band_indices`;

@@ -111,8 +111,13 @@ def match_windows(pred, fwhm_at, window):
     return pred * win_kms / C_KMS
 
 
-def blends(waves, ids, fwhm):
-    """For each line, the ids of the other listed lines within one resolution element."""
+def blends(waves, ids, fwhm, inside=None):
+    """For each line, the ids of the other listed lines within one resolution element.
+
+    ``inside``: per line, the indices of further listed lines its measurement found inside its
+    window and modelled (a hydrogen line's metal lines, :mod:`specan.lines.hydrogen_blends`); they
+    are named too, after those within one element.
+    """
     waves = np.asarray(waves, float)
     order = np.argsort(waves)
     ws = waves[order]
@@ -123,6 +128,12 @@ def blends(waves, ids, fwhm):
     for i in np.flatnonzero(hi - lo > 1):
         others = [ids[order[j]] for j in range(lo[i], hi[i]) if order[j] != i]
         out[i] = ",".join(others)
+    if inside is not None:
+        for i, extra in enumerate(inside):
+            if len(extra):
+                named = [b for b in out[i].split(",") if b]
+                more = [ids[k] for k in sorted(extra, key=lambda k: waves[k]) if ids[k] not in named]
+                out[i] = ",".join(named + more)
     return out
 
 

@@ -28,7 +28,7 @@ from .components import MIN_SEPARATION, component_centres, window_features, wing
 from .data import DETECT_SIGMA, MIN_DEPTH, LineData, find_features, normalised
 from .hydrogen import without_hydrogen
 from .expected import expected_lines, star_code
-from .hydrogen_blends import less_blends
+from .hydrogen_blends import less_blends, series_shares
 from .listed import blends, line_widths, lines_in_range, match_windows, velocities
 from .batchfit import fit_planned, voigt_batch
 from .profiles import fit_gauss, fit_profile
@@ -139,13 +139,17 @@ def measure(spectrum, linelist=None, rv=0 * u.km / u.s, resolving_power=None, pr
     astropy.table.QTable
         Columns ``id``, ``species``, ``wave_air``, ``wave_vac``, ``wave_obs``,
         ``velocity``, ``ew``, ``ew_err``, ``ew_err_cayrel``, ``ew_int``,
-        ``ew_int_err``, ``ew_fit``, ``ew_fit_err``, ``fwhm``, ``depth``,
+        ``ew_int_err``, ``ew_fit``, ``ew_fit_err``, ``fwhm``, ``ew_err_blend``, ``depth``,
         ``significance``, ``fit_chi2``, ``window_min``, ``window_max``, ``method``,
-        ``profile``, ``blend``, ``detected``, ``emission``, ``expected``; ``meta`` holds rv, R,
-        medium and ``star_type``. ``fit_chi2`` is the reduced chi-square of the profile fit (NaN when
-        none was fitted): near 1 when noise limits the line; far above 1 when the
-        profile model does (unresolved blends), and the errors, which count noise
-        only, then understate the equivalent width's true uncertainty.
+        ``profile``, ``blend``, ``detected``, ``emission``, ``expected``. ``ew_err_blend`` (hydrogen
+        lines; NaN elsewhere) is half the absorption the spectrum cannot assign between the line's
+        wings and the blanketing of the weak lines around it (``ew`` is the middle of that range), a
+        systematic term included in ``ew_err`` (:mod:`.hydrogen_blends`); ``blend`` names the listed
+        lines within one resolution element and, for a hydrogen line, those modelled inside its
+        window. ``meta`` holds rv, R, medium and ``star_type``. ``fit_chi2`` is the reduced
+        chi-square of the profile fit (NaN when none was fitted): near 1 when noise limits the
+        line; far above 1 when the profile model does (unresolved blends), and the errors, which
+        count noise only, then understate the equivalent width's true uncertainty.
     """
     if profile not in PROFILES:
         raise ValueError("profile must be 'auto', 'gauss' or 'voigt'")
@@ -161,6 +165,7 @@ def measure(spectrum, linelist=None, rv=0 * u.km / u.s, resolving_power=None, pr
     # wing (its local continuum), not against a continuum the wing lies far below.
     results = measure_lines(data, features, targets, np.flatnonzero(targets.hydrogen), profile, detect_sigma,
                             _batched, exact_fits)
+    series_shares(results, targets)
     data_m, features_m = data, features
     if divide_hydrogen:
         data_m, features_m = without_hydrogen(data, features, results, targets, listed.rows["ep_low"],
@@ -177,13 +182,16 @@ class Targets(NamedTuple):
     fwhm: np.ndarray      #: the spectrum's line FWHM there, Angstrom
     match: np.ndarray     #: half-window for matching a feature, Angstrom
     hydrogen: np.ndarray  #: bool: a hydrogen line
+    ep_low: np.ndarray | None = None  #: lower-level excitation, eV (NaN unknown), where listed
 
 
 def line_targets(data, listed, window):
     """:class:`Targets` of the listed lines (``window``: matching half-window in velocity or None)."""
     fwhm_at = line_widths(data, listed.pred)
     hydrogen = np.array([str(s) == "H I" for s in listed.rows["species"]], bool)
-    return Targets(listed.pred, fwhm_at, match_windows(listed.pred, fwhm_at, window), hydrogen)
+    ep = listed.rows["ep_low"] if "ep_low" in listed.rows.colnames else None
+    ep = None if ep is None else np.asarray(getattr(ep, "value", ep), float)
+    return Targets(listed.pred, fwhm_at, match_windows(listed.pred, fwhm_at, window), hydrogen, ep)
 
 
 @dataclass
@@ -204,6 +212,9 @@ class LineResult:
     window_min: float = np.nan
     window_max: float = np.nan
     fit_chi2: float = np.nan
+    ew_err_blend: float = np.nan   #: what cannot be assigned (hydrogen lines, :mod:`.hydrogen_blends`)
+    blanketing: float = np.nan     #: absorption under the window's crests (hydrogen lines, the same)
+    blend_inside: tuple = ()       #: listed lines modelled inside the window (indices into the targets)
     method: str = "none"
     profile: str = ""
     detected: bool = False
@@ -227,7 +238,7 @@ def measure_lines(data, features, targets, which, profile, detect_sigma, batched
     starts = dict(zip((int(i) for i in which), line_starts(data, features, targets, which, detect_sigma)))
     found = [i for i, st in starts.items() if st is not None]
     windows = dict(zip(found, line_windows(data, [starts[i] for i in found], targets.fwhm[found],
-                                           targets.hydrogen[found])))
+                                           targets.hydrogen[found], targets.pred[targets.hydrogen])))
     plans = plan_lines(data, features, targets, list(starts), profile, starts, windows)
     wanted = [p for p in plans.values() if p.wants_fit]
     fits = fit_planned(data, wanted, exact=exact)
@@ -358,7 +369,7 @@ def plan_line(data, features, targets, i, profile, detect_sigma, start=None, win
     centre, max_shift, matched, ic, sign, detected = start
     s_c = float(data.signif[ic])
     if window is None:
-        window = line_window(data, ic, centre, sign, fw, hydrogen, matched)
+        window = line_window(data, ic, centre, sign, fw, hydrogen, matched, targets.pred[targets.hydrogen])
     cont = local_continuum(data, window)
     ew_int, ew_int_err = integrated_ew(data, window, cont)
     result = LineResult(wave_obs=centre, ew_int=ew_int, ew_int_err=ew_int_err, significance=s_c,
@@ -877,7 +888,7 @@ def half_widths(data, ic, lo, hi, sign):
 
 
 _FLOAT_COLUMNS = ("wave_obs", "ew", "ew_err", "ew_err_cayrel", "ew_int", "ew_int_err", "ew_fit", "ew_fit_err",
-                  "fwhm", "depth", "significance", "window_min", "window_max", "fit_chi2")
+                  "fwhm", "depth", "significance", "window_min", "window_max", "fit_chi2", "ew_err_blend")
 _FLOAT_VALUES = attrgetter(*_FLOAT_COLUMNS)
 
 
@@ -900,7 +911,8 @@ def line_table(data, listed, targets, results, star_type=None):
         "wave_obs": cols["wave_obs"] * aa,
         "velocity": velocities(cols["wave_obs"], listed.lab) * kms,
     }
-    for name in ("ew", "ew_err", "ew_err_cayrel", "ew_int", "ew_int_err", "ew_fit", "ew_fit_err", "fwhm"):
+    for name in ("ew", "ew_err", "ew_err_cayrel", "ew_int", "ew_int_err", "ew_fit", "ew_fit_err", "fwhm",
+                 "ew_err_blend"):
         columns[name] = cols[name] * aa
     columns["depth"] = cols["depth"]
     columns["significance"] = cols["significance"]
@@ -909,7 +921,8 @@ def line_table(data, listed, targets, results, star_type=None):
     columns["window_max"] = cols["window_max"] * aa
     columns["method"] = np.array([str(r.method) for r in results], str)
     columns["profile"] = np.array([str(r.profile) for r in results], str)
-    columns["blend"] = np.array([str(b) for b in blends(listed.pred, ids, targets.fwhm)], str)
+    columns["blend"] = np.array([str(b) for b in blends(listed.pred, ids, targets.fwhm,
+                                                        [r.blend_inside for r in results])], str)
     emission = np.array([r.emission for r in results], bool)
     detected = np.array([r.detected for r in results], bool)
     expected = expected_lines(columns["species"], star_type)
