@@ -14,7 +14,9 @@ and to every template.
 from __future__ import annotations
 
 import functools
+import itertools
 import math
+import threading
 from dataclasses import dataclass
 from typing import NamedTuple
 
@@ -189,10 +191,33 @@ def _vacuum_wavelengths(spectrum, info):
     return _kept(_VACUUM, (_digest(own), own.size, info.medium), lambda: wavelength_in(spectrum, "vacuum"))
 
 
-def _digest(array):
-    import hashlib
+#: The arrays whose contents the caches of this module are keyed by (:func:`_digest`), newest last:
+#: (dtype, shape, bytes, id) of the last :data:`CONTENTS_KEPT`.
+_CONTENTS = []
+_CONTENTS_LOCK = threading.Lock()
+_NEXT_CONTENT = itertools.count()
+CONTENTS_KEPT = 32
 
-    return hashlib.sha1(np.ascontiguousarray(array).tobytes()).hexdigest()
+
+def _digest(array):
+    """A number standing for the exact contents of ``array`` (its dtype, shape and bytes): the same for
+    equal contents while they are among the last :data:`CONTENTS_KEPT` seen, never the same for others.
+
+    The caches keyed by it (pixels, splines, tapers, coverages) see the same few arrays spectrum after
+    spectrum: comparing the bytes with those kept costs ~2 us for 4,000 wavelengths, a cryptographic
+    hash of them ~35 us (measured), and there were eight a spectrum. A content that comes back after
+    being dropped gets a new number: a cache miss, never a wrong hit.
+    """
+    a = np.ascontiguousarray(array)
+    data, kind = a.tobytes(), (a.dtype.str, a.shape)
+    with _CONTENTS_LOCK:
+        for dtype, shape, kept, number in reversed(_CONTENTS):
+            if (dtype, shape) == kind and kept == data:
+                return number
+        number = next(_NEXT_CONTENT)
+        _CONTENTS.append((kind[0], kind[1], data, number))
+        del _CONTENTS[:-CONTENTS_KEPT]
+    return number
 
 
 def _kept(store, key, make, size=8):
@@ -242,11 +267,9 @@ def _pixel_setup(w):
     the telluric mask (:func:`specan.prepare.telluric_mask`: air wavelengths, band look-ups) and the
     native step (a percentile and a median), 0.6 ms a spectrum between them (measured) for the same
     pixels spectrum after spectrum in a survey. Keyed by the wavelengths' bytes, a few at a time."""
-    import hashlib
-
     from ..prepare import telluric_mask
 
-    key = (hashlib.sha1(np.ascontiguousarray(w).tobytes()).hexdigest(), w.size)
+    key = (_digest(w), w.size)
     found = _PIXEL_SETUPS.get(key)
     if found is None:
         mask = np.asarray(telluric_mask(w, "vacuum"), bool)
@@ -578,9 +601,7 @@ _COVERAGE = {}
 def smoothed_coverage(valid, sigma):
     """``gauss_smooth(valid, sigma)`` floored at 1e-3: the high-pass filter's local weight, the
     same for a spectrum's data and its error propagation (kept for the last few coverages)."""
-    import hashlib
-
-    key = (hashlib.sha1(np.ascontiguousarray(valid).tobytes()).hexdigest(), valid.size, float(sigma))
+    key = (_digest(valid), valid.size, float(sigma))
     found = _COVERAGE.get(key)
     if found is None:
         found = np.maximum(gauss_smooth(valid.astype(float), sigma), 1e-3)
