@@ -254,6 +254,8 @@ def poly_peaks(offsets, values, degree=4, bound=None):
     d2 = d1[:, 1:] * powers[1:-1]
     bound = float(np.max(np.abs(offsets))) if bound is None else bound
     x = np.asarray(offsets)[np.argmax(values, axis=1)].astype(float)
+    if values.shape[0] <= SCALAR_ROWS and np.all(np.isfinite(coef)):
+        return _scalar_newton(coef.tolist(), x.tolist(), bound)
 
     def pv(c, xx):  # Horner
         out = c[:, -1].copy()
@@ -270,6 +272,38 @@ def poly_peaks(offsets, values, degree=4, bound=None):
         if np.all(np.abs(step) < 1e-12):
             break
     return x, pv(coef, x), pv(d2, x)
+
+
+#: Rows up to which :func:`poly_peaks` runs Newton's method on Python floats (our choice: a handful of numpy
+#: calls an iteration cost more than a few rows of scalar arithmetic; the mixture has at most 6 templates).
+SCALAR_ROWS = 8
+
+
+def _scalar_newton(coef, x, bound):
+    """:func:`poly_peaks`' iterations on Python floats, row by row but in step (every row takes as many
+    steps as the slowest, as there): the same operations in the same order as its arrays, so the same bits."""
+    d1 = [[c * p for p, c in enumerate(row) if p] for row in coef]
+    d2 = [[c * p for p, c in enumerate(row) if p] for row in d1]
+
+    def pv(c, xx):  # Horner, as poly_peaks' own
+        out = c[-1]
+        for ci in reversed(c[:-1]):
+            out = out * xx + ci
+        return out
+
+    for _ in range(12):
+        done = True
+        for i, xi in enumerate(x):
+            g1, g2 = pv(d1[i], xi), pv(d2[i], xi)
+            new = xi - g1 / (g2 if g2 < 0 else -1e-9)
+            new = min(max(new, -bound), bound)
+            step = new - xi
+            x[i] = xi + step
+            done = done and abs(step) < 1e-12
+        if done:
+            break
+    return (np.array(x), np.array([pv(c, xi) for c, xi in zip(coef, x)]),
+            np.array([pv(c, xi) for c, xi in zip(d2, x)]))
 
 
 def short_side(search):
@@ -289,6 +323,31 @@ def _stacked(arrays, nf=None):
     for i, x in enumerate(arrays):
         out[i, :x.size] = x
     return out
+
+
+_STACKED = {}
+
+
+def _stacked_bands(templates, m, full):
+    """(nf, FT, FT2, FV) of :func:`_refine`: the templates' :meth:`~.prepared.PreparedTemplate.band_ffts` at
+    length ``m`` stacked (FV None where ``full``), kept for the last few sets of templates (the mixtures of a
+    survey's spectra repeat; the prepared templates are cached objects, and the set is kept with its arrays,
+    so an identity stays theirs while kept)."""
+    key = (tuple(id(t) for t in templates), m, full)
+    found = _STACKED.get(key)
+    if found is None or any(a is not b for a, b in zip(found[0], templates)):
+        bands = [t.band_ffts(m) for t in templates]
+        nf = max(x.size for b in bands for x in b[:2 if full else 3])
+        FT, FT2 = (_stacked([b[i] for b in bands], nf) for i in range(2))
+        FV = None if full else _stacked([b[2] for b in bands], nf)
+        for x in (FT, FT2, FV):
+            if x is not None:
+                x.flags.writeable = False
+        found = (templates, (nf, FT, FT2, FV))
+        while len(_STACKED) >= 16:   # oldest out first; the arrays are returned, not looked up again
+            _STACKED.pop(next(iter(_STACKED)), None)
+        _STACKED[key] = found
+    return found[1]
 
 
 def refine_peaks(templates, lags, data_ffts, m, pad, starts=None):
@@ -328,10 +387,7 @@ def _refine(templates, lags, data_ffts, m, pad, passes):
     # sums (their transforms' zero frequency), the same at every lag: three of the six sums not made
     reach = sum(float(np.max(np.abs(offs))) for offs in passes)
     full = full_cover(templates, x0, pad, templates[0].V.size - 2 * pad, reach)
-    bands = [t.band_ffts(m) for t in templates]
-    nf = max(x.size for b in bands for x in b[:2 if full else 3])
-    FT, FT2 = (_stacked([b[i] for b in bands], nf) for i in range(2))
-    FV = None if full else _stacked([b[2] for b in bands], nf)
+    nf, FT, FT2, FV = _stacked_bands(tuple(templates), m, full)
     A = [a[:nf] for a in data_ffts]
     height = curv = np.full(x0.size, np.nan)
     pairs = ((0, 0), (1, 0), (1, 1), (0, 2), (2, 2), (1, 2))   # (data, template) arrays of the six rows

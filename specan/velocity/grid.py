@@ -243,9 +243,12 @@ def _usable_pixels(spectrum, info, telluric):
         bad |= np.asarray(spectrum.mask, bool)
     if sig is not None:
         bad |= ~np.isfinite(sig) | (sig <= 0)
-    order = np.argsort(w)
-    w, f, bad = w[order], f[order], bad[order]
-    sig = None if sig is None else sig[order]
+    if not (w.size > 1 and bool(np.all(w[1:] > w[:-1]))):
+        # (strictly increasing, as almost every file's: argsort's order is then the identity, and the
+        # sort and four copies are not made)
+        order = np.argsort(w)
+        w, f, bad = w[order], f[order], bad[order]
+        sig = None if sig is None else sig[order]
     if (~bad).sum() < 50:
         raise AnalysisError("fewer than 50 usable pixels: no velocity", info.path)
     setup = _pixel_setup(w)
