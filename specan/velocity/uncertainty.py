@@ -353,18 +353,24 @@ def _segments(info, n_seg, fwhm_px):
     reach = max(1, int(round(2 * fwhm_px)))
     equal = np.searchsorted(cum, cum[-1] * np.arange(1, n_seg) / n_seg, side="right")
     # the common case in one call: every window whole inside the spectrum, each past the one before
-    # (where the loop below starts each window at its own q - reach and ends it at q + reach + 1)
+    # (where :func:`_quietest_one_by_one` starts each window at its own q - reach, ends it at q + reach + 1)
     lo = equal - reach
     if equal.size and lo[0] >= 1 and equal[-1] + reach + 1 <= info.size - 1:
         found = lo + np.argmin(np.lib.stride_tricks.sliding_window_view(quiet, 2 * reach + 1)[lo], axis=1)
         if np.all(lo[1:] > found[:-1]):
             return np.concatenate([[0], found])
+    return _quietest_one_by_one(quiet, equal, reach)
+
+
+def _quietest_one_by_one(quiet, equal, reach):
+    """:func:`_segments`' boundaries one by one: each the quietest pixel within ``reach`` of its equal-share
+    point ``equal``, past the boundary before it and inside the spectrum (increasing, 0 first)."""
     starts = [0]
     for q in equal:
-        lo, hi = max(starts[-1] + 1, q - reach), min(info.size - 1, q + reach + 1)
+        lo, hi = max(starts[-1] + 1, q - reach), min(quiet.size - 1, q + reach + 1)
         if hi > lo:
             starts.append(lo + int(np.argmin(quiet[lo:hi])))
-    return np.asarray(starts)   # (increasing: each start is past the one before)
+    return np.asarray(starts)
 
 
 @functools.lru_cache(maxsize=32)
