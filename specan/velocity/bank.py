@@ -249,13 +249,14 @@ def poly_peaks(offsets, values, degree=4, bound=None):
     values = np.atleast_2d(values)
     fm = fit_matrix(offsets, degree)
     coef = np.sum(values[:, None, :] * fm[None, :, :], axis=2)  # (R, degree+1)
+    bound = max(abs(float(o)) for o in offsets) if bound is None else bound
+    if degree == 4 and values.shape[0] <= SCALAR_ROWS and np.isfinite(coef).all():
+        start = [float(offsets[i]) for i in np.argmax(values, axis=1).tolist()]
+        return _scalar_newton(coef.tolist(), start, bound)
     powers = np.arange(degree + 1)
     d1 = coef[:, 1:] * powers[1:]
     d2 = d1[:, 1:] * powers[1:-1]
-    bound = float(np.max(np.abs(offsets))) if bound is None else bound
     x = np.asarray(offsets)[np.argmax(values, axis=1)].astype(float)
-    if values.shape[0] <= SCALAR_ROWS and np.all(np.isfinite(coef)):
-        return _scalar_newton(coef.tolist(), x.tolist(), bound)
 
     def pv(c, xx):  # Horner
         out = c[:, -1].copy()
@@ -280,30 +281,27 @@ SCALAR_ROWS = 8
 
 
 def _scalar_newton(coef, x, bound):
-    """:func:`poly_peaks`' iterations on Python floats, row by row but in step (every row takes as many
-    steps as the slowest, as there): the same operations in the same order as its arrays, so the same bits."""
-    d1 = [[c * p for p, c in enumerate(row) if p] for row in coef]
-    d2 = [[c * p for p, c in enumerate(row) if p] for row in d1]
-
-    def pv(c, xx):  # Horner, as poly_peaks' own
-        out = c[-1]
-        for ci in reversed(c[:-1]):
-            out = out * xx + ci
-        return out
-
+    """:func:`poly_peaks`' iterations for quartics on Python floats, row by row but in step (every row takes
+    as many steps as the slowest, as there): its Horner sums written out, the same operations in the same
+    order as its arrays', so the same bits."""
+    d1 = [(c1 * 1, c2 * 2, c3 * 3, c4 * 4) for _, c1, c2, c3, c4 in coef]
+    d2 = [(b1 * 1, b2 * 2, b3 * 3) for _, b1, b2, b3 in d1]
     for _ in range(12):
         done = True
         for i, xi in enumerate(x):
-            g1, g2 = pv(d1[i], xi), pv(d2[i], xi)
-            new = xi - g1 / (g2 if g2 < 0 else -1e-9)
-            new = min(max(new, -bound), bound)
+            a0, a1, a2, a3 = d1[i]
+            b0, b1, b2 = d2[i]
+            g1 = ((a3 * xi + a2) * xi + a1) * xi + a0
+            g2 = (b2 * xi + b1) * xi + b0
+            new = min(max(xi - g1 / (g2 if g2 < 0 else -1e-9), -bound), bound)
             step = new - xi
             x[i] = xi + step
             done = done and abs(step) < 1e-12
         if done:
             break
-    return (np.array(x), np.array([pv(c, xi) for c, xi in zip(coef, x)]),
-            np.array([pv(c, xi) for c, xi in zip(d2, x)]))
+    height = [(((c4 * xi + c3) * xi + c2) * xi + c1) * xi + c0 for (c0, c1, c2, c3, c4), xi in zip(coef, x)]
+    curvature = [(b2 * xi + b1) * xi + b0 for (b0, b1, b2), xi in zip(d2, x)]
+    return np.array(x), np.array(height), np.array(curvature)
 
 
 def short_side(search):
