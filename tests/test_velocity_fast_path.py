@@ -720,3 +720,18 @@ def test_pixels_in_any_order_give_the_sorted_pixels_velocity():
     a = velocity.measure(s, barycentric=False)
     b = velocity.measure(flipped, barycentric=False)
     assert a["rv"] == b["rv"] and a["rv_err"] == b["rv_err"] and a["template"] == b["template"]
+
+
+def test_window_sums_in_place_are_the_gathered_ones():
+    """The scores' window sums, those at the most common lag summed in place and the rest gathered, equal
+    the sums over every row's gathered window to the bit (one lag for all rows, and several)."""
+    from specan.velocity import bank
+
+    rng = np.random.default_rng(21)
+    rows = [rng.normal(size=(12, 900)) for _ in range(2)]
+    weight = rng.uniform(size=700)
+    for start in (np.full(12, 40), np.array([40] * 8 + [39, 41, 41, 100])):
+        got = bank._window_sums(rows, start, 700, weight)
+        for x, g in zip(rows, got):
+            want = np.einsum("kn,n->k", bank._windows(x, 700)[np.arange(12), start], weight)
+            assert np.array_equal(g, want)
