@@ -218,8 +218,11 @@ def _window_sums(arrays, start, n, weight):
 
 
 def _windows(x, n):
-    """(rows, positions, n) view of every length-``n`` window of the rows of ``x`` (no copy)."""
-    return np.lib.stride_tricks.sliding_window_view(x, n, axis=1)
+    """(rows, positions, n) read-only view of every length-``n`` window of the rows of ``x`` (no copy; what
+    ``sliding_window_view(x, n, axis=1)`` gives, without its checks: 6 against 16 us, measured)."""
+    rows, size = x.shape
+    s0, s1 = x.strides
+    return np.lib.stride_tricks.as_strided(x, (rows, size - n + 1, n), (s0, s1, s1), writeable=False)
 
 
 def mixture_weights(heights):

@@ -366,13 +366,14 @@ def spline_operators(x, grid, cell=0.0):
     and aliases the rest, where the cell's mean keeps every sample's share (the anti-aliasing of a
     rebinning, common practice).
     """
-    from scipy import sparse
-    from scipy.interpolate import BSpline
-    from scipy.sparse.linalg import splu
-
     key = (_digest(x), float(grid[0]), float(grid[-1]), grid.size, float(cell))
     found = _SPLINES.get(key)
     if found is None:
+        # (imported here, on a miss only: three imports cost more than the look-up itself)
+        from scipy import sparse
+        from scipy.interpolate import BSpline
+        from scipy.sparse.linalg import splu
+
         t = make_interp_spline(x, np.zeros_like(x), k=SPLINE_K).t
         if cell > 0:
             dx = np.diff(x)

@@ -356,7 +356,7 @@ def _segments(info, n_seg, fwhm_px):
     # (where :func:`_quietest_one_by_one` starts each window at its own q - reach, ends it at q + reach + 1)
     lo = equal - reach
     if equal.size and lo[0] >= 1 and equal[-1] + reach + 1 <= info.size - 1:
-        found = lo + np.argmin(np.lib.stride_tricks.sliding_window_view(quiet, 2 * reach + 1)[lo], axis=1)
+        found = lo + np.argmin(quiet[lo[:, None] + np.arange(2 * reach + 1)], axis=1)
         if np.all(lo[1:] > found[:-1]):
             return np.concatenate([[0], found])
     return _quietest_one_by_one(quiet, equal, reach)
