@@ -735,3 +735,16 @@ def test_window_sums_in_place_are_the_gathered_ones():
         for x, g in zip(rows, got):
             want = np.einsum("kn,n->k", bank._windows(x, 700)[np.arange(12), start], weight)
             assert np.array_equal(g, want)
+
+
+def test_weights_median_is_numpys():
+    """The data weights' median (``correlation._median``) is ``np.median``'s value to the bit, odd and even
+    counts, and NaN where a value is."""
+    from specan.velocity.correlation import _median
+
+    rng = np.random.default_rng(5)
+    for n in (1, 2, 3, 4, 101, 2936, 3073):
+        a = 1.0 / rng.uniform(0.01, 0.03, n) ** 2
+        assert _median(a) == np.median(a), n
+    a[7] = np.nan
+    assert np.isnan(_median(a))

@@ -57,11 +57,21 @@ def correlation_arrays(d_minus_1, weight):
     return (weight * d, weight, weight * d * d)
 
 
+def _median(a):
+    """``np.median`` of a 1-D float array, the same value (its partition and its mean of the middle two
+    values, NaN when any is), without its generic wrapper (10 against 38 us for 3,000 values, measured)."""
+    k = a.size // 2
+    p = np.partition(a, (k - 1, k, a.size - 1) if a.size % 2 == 0 else (k, a.size - 1))
+    if np.isnan(p[-1]):
+        return np.nan
+    return (p[k - 1] + p[k]) / 2.0 if a.size % 2 == 0 else p[k]
+
+
 def observed_side(observed, lags):
     """The :class:`ObservedSide` of an :class:`~.grid.ObservedGrid`, high-pass filtered as templates are."""
     # data side: weights = taper x inverse variance (normalised), zero on masked pixels
     w_noise = 1.0 / np.maximum(observed.sigma, 1e-12) ** 2
-    w_noise /= np.median(w_noise[observed.valid])
+    w_noise /= _median(w_noise[observed.valid])
     weight = observed.taper * w_noise
     arrays = correlation_arrays(highpass(observed.flux - 1.0, lags.hp_sigma, observed.valid), weight)
     d_ffts = tuple(sfft.rfft(np.stack(arrays), lags.m, axis=1))   # (one call for the three)
