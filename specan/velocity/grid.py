@@ -498,22 +498,29 @@ def lag_window(observed, vmax, resolving_power, highpass):
 
     ``highpass`` is the high-pass sigma in resolution elements (None or 0: no filter).
     """
-    step, n = observed.step, observed.n
-    vmax_kms = u.Quantity(vmax, _KMS).value
+    vmax_kms = vmax.to_value(_KMS) if isinstance(vmax, u.Quantity) else u.Quantity(vmax, _KMS).value
+    highpass = float(highpass) if highpass else None
+    # (kept per set-up: the same few windows spectrum after spectrum, two frozen dataclasses and a unit
+    # conversion each)
+    return _lag_window(observed.step, observed.n, float(observed.grid[0]), observed.cell, float(vmax_kms),
+                       float(resolving_power), highpass)
+
+
+@functools.lru_cache(maxsize=64)
+def _lag_window(step, n, grid0, cell, vmax_kms, resolving_power, highpass):
     smax = int(math.ceil(math.log(factor_kms(vmax_kms)) / step))
     fwhm_grid = 1.0 / (resolving_power * step)  # resolution element in grid pixels
-    hp = float(highpass) * fwhm_grid if highpass else None
+    hp = highpass * fwhm_grid if highpass else None
     # lags examined for the error and second-peak statistics: the search range, and several
     # high-pass lengths so that the CCF noise decorrelates within the window
     half = int(max(smax, 40, math.ceil(6 * (hp or 0))))
     # templates reach past the data by every lag the CCF about any allowed peak uses, so that one
     # FFT length just above the template's serves every correlation: no lag ever wraps around
     pad = half + smax + COVER_TAPER + 4
-    ln0 = observed.grid[0] - pad * step
+    ln0 = grid0 - pad * step
     m = fast_length(n + 2 * pad)
     return LagWindow(step=step, n=n, vmax_kms=vmax_kms, smax=smax, half=half, pad=pad, m=m,
-                     template_grid=TemplateGrid(ln0=ln0, step=step, n=n + 2 * pad, hp_sigma=hp,
-                                                cell=observed.cell))
+                     template_grid=TemplateGrid(ln0=ln0, step=step, n=n + 2 * pad, hp_sigma=hp, cell=cell))
 
 
 @functools.lru_cache(maxsize=256)

@@ -49,7 +49,10 @@ def tonry_davis(about, peak):
     # itself has variance sigma_n^2 at every lag, so sigma_a = rms(residual) / sqrt2.
     w_curv = 2.3548 * math.sqrt(h / abs(curv)) if curv < 0 else about.fwhm_px
     core = np.abs(j) <= max(2.0, w_curv if curv < 0 else 2.0)
-    sig_a = float(np.sqrt(np.nanmean(about.residual[~core] ** 2)) / math.sqrt(2.0))
+    # (np.nanmean's own steps: NaN to zero, the sum over all, divided by the count; without its wrapper)
+    r2 = about.residual[~core] ** 2
+    missing = np.isnan(r2)
+    sig_a = float(np.sqrt(np.sum(np.where(missing, 0.0, r2)) / (r2.size - np.count_nonzero(missing))) / math.sqrt(2.0))
     r_td = h / (math.sqrt(2.0) * sig_a) if sig_a > 0 else float("inf")
     # Tonry & Davis write sigma = (3/8) w / (1 + r), the constant calibrated for their CCF and filter.
     # For this normalised CCF the small-noise limit is exact: the peak moves by
