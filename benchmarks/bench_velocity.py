@@ -19,7 +19,8 @@
 5. ``--other-types``: specan's synthetic stars of types the synthetic grid lacks, same figures; on specan's
    own pixels (2.5 a FWHM) and on the user path's linear pixels (finer than the velocity grid in the red).
 6. ``--floor``: where the time of one velocity goes (the speed test's spectra, steady state): CPU
-   ms of each step of ``velocity.measure``, and of the transforms inside (FFTs, spline solves);
+   ms of each step of ``velocity.measure``, and of the transforms inside (FFTs, spline solves), and the
+   Python and C function calls a spectrum makes (each has a cost of its own whatever its arrays' size);
    ``--night-set``: the same on ``bench_pipeline.py``'s 40 spectra (read and prepared, with the
    barycentric correction and the Galactic rest frame).
 7. ``--neighbours``: the automatic choice tries the neighbouring synthetic types of the best grid
