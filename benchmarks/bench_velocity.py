@@ -19,7 +19,8 @@
 5. ``--other-types``: specan's synthetic stars of types the synthetic grid lacks, same figures; on specan's
    own pixels (2.5 a FWHM) and on the user path's linear pixels (finer than the velocity grid in the red).
 6. ``--floor``: where the time of one velocity goes (the speed test's spectra, steady state): CPU
-   ms of each step of ``velocity.measure``, and of the transforms inside (FFTs, spline solves);
+   ms of each step of ``velocity.measure``, and of the transforms inside (FFTs, spline solves), and the
+   Python and C function calls a spectrum makes (each has a cost of its own whatever its arrays' size);
    ``--night-set``: the same on ``bench_pipeline.py``'s 40 spectra (read and prepared, with the
    barycentric correction and the Galactic rest frame).
 7. ``--neighbours``: the automatic choice tries the neighbouring synthetic types of the best grid
@@ -477,6 +478,28 @@ def where_time_goes(spectra, label, **options):
     for name in sorted(k for k in per if k.startswith("transforms")):
         print(f"{name:40s} {per[name]:7.2f}")
     print(f"{'transforms together (the floor as built)':40s} {inside:7.2f} ({100 * inside / (1e3 * total / n):.0f}% of the whole)")
+    python_calls, builtin_calls = calls_per_spectrum(spectra, **options)
+    print(f"calls a spectrum: {python_calls:.0f} Python functions, {builtin_calls:.0f} built-in and C functions "
+          "(numpy's, scipy's; operators on arrays not counted): each costs ~0.3-3 us whatever its size")
+
+
+def calls_per_spectrum(spectra, **options):
+    """(Python function calls, calls of built-in/C functions) a ``velocity.measure`` makes per spectrum, in
+    steady state (the interpreter's profile hook counts them; array operators are not calls and are not
+    counted)."""
+    counts = {"call": 0, "c_call": 0}
+
+    def hook(frame, event, arg):
+        if event in counts:
+            counts[event] += 1
+
+    sys.setprofile(hook)
+    try:
+        for s in spectra:
+            velocity.measure(s, **options)
+    finally:
+        sys.setprofile(None)
+    return counts["call"] / len(spectra), counts["c_call"] / len(spectra)
 
 
 def _pull_line(label, dv, err, resel, crb_kms, ms):

@@ -100,10 +100,25 @@ def _bank(candidates, ln0, step, n, hp_sigma, m, cell=0.0):
     return TemplateBank(candidates, [prepare_builtin(c, grid) for c in candidates], m)
 
 
+_LAST_BANK = [None]
+
+
 def template_bank(candidates, lags):
-    """The (cached) :class:`TemplateBank` of ``candidates`` on the set-up of ``lags``."""
+    """The (cached) :class:`TemplateBank` of ``candidates`` on the set-up of ``lags``.
+
+    The last bank is also kept with the very candidates tuple it was asked for: the automatic choice asks
+    with one kept tuple spectrum after spectrum, and comparing it by identity spares hashing its 49
+    candidates for the cache's look-up (~15 us).
+    """
     g = lags.template_grid
-    return _bank(tuple(candidates), round(g.ln0, 12), g.step, g.n, g.hp_sigma, short_length(lags), g.cell)
+    setup = (round(g.ln0, 12), g.step, g.n, g.hp_sigma, short_length(lags), g.cell)
+    last = _LAST_BANK[0]
+    if last is not None and last[0] is candidates and last[1] == setup:
+        return last[2]
+    bank = _bank(tuple(candidates), *setup)
+    if isinstance(candidates, tuple):   # (a list could change under the same identity)
+        _LAST_BANK[0] = (candidates, setup, bank)
+    return bank
 
 
 class BankScores(NamedTuple):
@@ -171,8 +186,7 @@ def score_bank(search, bank, data_short):
     # In double precision: in single, half the memory to gather and sum, 0.13 against 0.24 ms a sum
     # for 49 templates of 5,249 points, but the heights moved by up to 7.5e-7 from the all-double ones
     # instead of 1.6e-7 on 26 spectra, measured; the weights follow the heights.
-    c2t = np.einsum("kn,n->k", _windows(bank.T, n)[rows, start], a2)
-    c2t2 = np.einsum("kn,n->k", _windows(bank.T2, n)[rows, start], a2)
+    c2t, c2t2 = _window_sums((bank.T, bank.T2), start, n, a2)
     c2v, c1v, c3v = cov[:, bank.groups, j]
     c2v = np.maximum(c2v, 1e-300)
     e = c2t2 - c2t ** 2 / c2v
@@ -185,9 +199,30 @@ def score_bank(search, bank, data_short):
     return BankScores(lag, h, vertex_lag)
 
 
+def _window_sums(arrays, start, n, weight):
+    """sum_x weight(x) X[k, start[k] + x] over the ``n`` pixels x, for each row k of each of ``arrays``.
+
+    Most templates peak at one lag (27-49 of 49 on the speed test's spectra and synthetic stars, measured):
+    their windows are one slice of the stacked rows, summed in place (a view, no gathered copy of the rows:
+    the copies doubled the memory the sums move); the other rows are gathered by lag. The sums are the
+    same, row by row, as over gathered copies (the same contiguous inner loop).
+    """
+    low = int(start.min())
+    common = low + int(np.argmax(np.bincount(start - low)))   # (the smallest of the most frequent, as np.unique's)
+    out = [np.einsum("kn,n->k", x[:, common:common + n], weight) for x in arrays]
+    other = np.flatnonzero(start != common)
+    if other.size:
+        for x, o in zip(arrays, out):
+            o[other] = np.einsum("kn,n->k", _windows(x, n)[other, start[other]], weight)
+    return out
+
+
 def _windows(x, n):
-    """(rows, positions, n) view of every length-``n`` window of the rows of ``x`` (no copy)."""
-    return np.lib.stride_tricks.sliding_window_view(x, n, axis=1)
+    """(rows, positions, n) read-only view of every length-``n`` window of the rows of ``x`` (no copy; what
+    ``sliding_window_view(x, n, axis=1)`` gives, without its checks: 6 against 16 us, measured)."""
+    rows, size = x.shape
+    s0, s1 = x.strides
+    return np.lib.stride_tricks.as_strided(x, (rows, size - n + 1, n), (s0, s1, s1), writeable=False)
 
 
 def mixture_weights(heights):
@@ -249,10 +284,13 @@ def poly_peaks(offsets, values, degree=4, bound=None):
     values = np.atleast_2d(values)
     fm = fit_matrix(offsets, degree)
     coef = np.sum(values[:, None, :] * fm[None, :, :], axis=2)  # (R, degree+1)
+    bound = max(abs(float(o)) for o in offsets) if bound is None else bound
+    if degree == 4 and values.shape[0] <= SCALAR_ROWS and np.isfinite(coef).all():
+        start = [float(offsets[i]) for i in np.argmax(values, axis=1).tolist()]
+        return _scalar_newton(coef.tolist(), start, bound)
     powers = np.arange(degree + 1)
     d1 = coef[:, 1:] * powers[1:]
     d2 = d1[:, 1:] * powers[1:-1]
-    bound = float(np.max(np.abs(offsets))) if bound is None else bound
     x = np.asarray(offsets)[np.argmax(values, axis=1)].astype(float)
 
     def pv(c, xx):  # Horner
@@ -272,6 +310,35 @@ def poly_peaks(offsets, values, degree=4, bound=None):
     return x, pv(coef, x), pv(d2, x)
 
 
+#: Rows up to which :func:`poly_peaks` runs Newton's method on Python floats (our choice: a handful of numpy
+#: calls an iteration cost more than a few rows of scalar arithmetic; the mixture has at most 6 templates).
+SCALAR_ROWS = 8
+
+
+def _scalar_newton(coef, x, bound):
+    """:func:`poly_peaks`' iterations for quartics on Python floats, row by row but in step (every row takes
+    as many steps as the slowest, as there): its Horner sums written out, the same operations in the same
+    order as its arrays', so the same bits."""
+    d1 = [(c1 * 1, c2 * 2, c3 * 3, c4 * 4) for _, c1, c2, c3, c4 in coef]
+    d2 = [(b1 * 1, b2 * 2, b3 * 3) for _, b1, b2, b3 in d1]
+    for _ in range(12):
+        done = True
+        for i, xi in enumerate(x):
+            a0, a1, a2, a3 = d1[i]
+            b0, b1, b2 = d2[i]
+            g1 = ((a3 * xi + a2) * xi + a1) * xi + a0
+            g2 = (b2 * xi + b1) * xi + b0
+            new = min(max(xi - g1 / (g2 if g2 < 0 else -1e-9), -bound), bound)
+            step = new - xi
+            x[i] = xi + step
+            done = done and abs(step) < 1e-12
+        if done:
+            break
+    height = [(((c4 * xi + c3) * xi + c2) * xi + c1) * xi + c0 for (c0, c1, c2, c3, c4), xi in zip(coef, x)]
+    curvature = [(b2 * xi + b1) * xi + b0 for (b0, b1, b2), xi in zip(d2, x)]
+    return np.array(x), np.array(height), np.array(curvature)
+
+
 def short_side(search):
     """rFFTs of the spectrum's three data arrays at the bank length (:func:`short_length`)."""
     return search.side.ffts
@@ -289,6 +356,31 @@ def _stacked(arrays, nf=None):
     for i, x in enumerate(arrays):
         out[i, :x.size] = x
     return out
+
+
+_STACKED = {}
+
+
+def _stacked_bands(templates, m, full):
+    """(nf, FT, FT2, FV) of :func:`_refine`: the templates' :meth:`~.prepared.PreparedTemplate.band_ffts` at
+    length ``m`` stacked (FV None where ``full``), kept for the last few sets of templates (the mixtures of a
+    survey's spectra repeat; the prepared templates are cached objects, and the set is kept with its arrays,
+    so an identity stays theirs while kept)."""
+    key = (tuple(id(t) for t in templates), m, full)
+    found = _STACKED.get(key)
+    if found is None or any(a is not b for a, b in zip(found[0], templates)):
+        bands = [t.band_ffts(m) for t in templates]
+        nf = max(x.size for b in bands for x in b[:2 if full else 3])
+        FT, FT2 = (_stacked([b[i] for b in bands], nf) for i in range(2))
+        FV = None if full else _stacked([b[2] for b in bands], nf)
+        for x in (FT, FT2, FV):
+            if x is not None:
+                x.flags.writeable = False
+        found = (templates, (nf, FT, FT2, FV))
+        while len(_STACKED) >= 16:   # oldest out first; the arrays are returned, not looked up again
+            _STACKED.pop(next(iter(_STACKED)), None)
+        _STACKED[key] = found
+    return found[1]
 
 
 def refine_peaks(templates, lags, data_ffts, m, pad, starts=None):
@@ -328,10 +420,7 @@ def _refine(templates, lags, data_ffts, m, pad, passes):
     # sums (their transforms' zero frequency), the same at every lag: three of the six sums not made
     reach = sum(float(np.max(np.abs(offs))) for offs in passes)
     full = full_cover(templates, x0, pad, templates[0].V.size - 2 * pad, reach)
-    bands = [t.band_ffts(m) for t in templates]
-    nf = max(x.size for b in bands for x in b[:2 if full else 3])
-    FT, FT2 = (_stacked([b[i] for b in bands], nf) for i in range(2))
-    FV = None if full else _stacked([b[2] for b in bands], nf)
+    nf, FT, FT2, FV = _stacked_bands(tuple(templates), m, full)
     A = [a[:nf] for a in data_ffts]
     height = curv = np.full(x0.size, np.nan)
     pairs = ((0, 0), (1, 0), (1, 1), (0, 2), (2, 2), (1, 2))   # (data, template) arrays of the six rows

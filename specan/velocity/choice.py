@@ -221,6 +221,28 @@ def builtin_request(request, search, power, template_grid, notes, where=None, da
     return BuiltinCandidate(sptype, lumclass, r_key, "mask" if request.kind == "mask" else "synth"), scores
 
 
+_CANDIDATES = {}
+
+
+def _candidates(resolving_power, library, exclude, grid_types):
+    """The automatic choice's candidates: the library templates (``library``; those named in ``exclude``
+    left out), then the synthetic ``grid_types``, at ``resolving_power``; kept per request (the same few,
+    spectrum after spectrum), with the library's list they were made from (a new list, new candidates)."""
+    lib = templates.library_templates() if library else ()
+    key = (resolving_power, library, exclude, grid_types)
+    found = _CANDIDATES.get(key)
+    if found is None or found[0] is not lib:
+        left_out = set(exclude)
+        made = tuple([BuiltinCandidate(t.sptype, t.lumclass, resolving_power, "library", t.name)
+                      for t in lib if t.name not in left_out]
+                     + [BuiltinCandidate(st, lc, resolving_power) for st, lc in grid_types])
+        found = (lib, made)
+        while len(_CANDIDATES) >= 32:   # oldest out first
+            _CANDIDATES.pop(next(iter(_CANDIDATES)), None)
+        _CANDIDATES[key] = found
+    return found[1]
+
+
 def _scored(search, candidates, data_short):
     """(bank, :class:`~.bank.BankScores`) of ``candidates`` on the spectrum's set-up."""
     bank = template_bank(candidates, search.lags)
@@ -240,18 +262,15 @@ def automatic_mixture(search, resolving_power, template_grid, notes, where=None,
     between two templates gets both, so the velocity moves smoothly from one to the other
     instead of jumping when noise reorders them, and their disagreement enters the error.
     """
-    candidates = []
+    library = False
     if template_grid is None:
         cover = library_cover(search)
-        if cover >= LIBRARY_MIN_COVER:
-            candidates += [BuiltinCandidate(t.sptype, t.lumclass, resolving_power, "library", t.name)
-                           for t in templates.library_templates() if t.name not in set(exclude)]
-        else:
+        library = cover >= LIBRARY_MIN_COVER
+        if not library:
             notes.append(f"library templates cover {cover:.0%} of the spectrum (3545-7405 A): synthetic templates "
                          "used")
     grid_types = tuple(template_grid or templates.automatic_types())
-    synthetic = [BuiltinCandidate(st, lc, resolving_power) for st, lc in grid_types]
-    bank, sc = _scored(search, candidates + synthetic, data_short)
+    bank, sc = _scored(search, _candidates(resolving_power, library, tuple(exclude), grid_types), data_short)
     members = list(zip(bank.templates, sc.lag, bank.candidates, sc.height, sc.start))
     syn = [x for x in members if x[2].kind == "synth"]
     best_syn = max(range(len(syn)), key=lambda i: syn[i][3]) if syn else None

@@ -14,7 +14,9 @@ and to every template.
 from __future__ import annotations
 
 import functools
+import itertools
 import math
+import threading
 from dataclasses import dataclass
 from typing import NamedTuple
 
@@ -189,10 +191,33 @@ def _vacuum_wavelengths(spectrum, info):
     return _kept(_VACUUM, (_digest(own), own.size, info.medium), lambda: wavelength_in(spectrum, "vacuum"))
 
 
-def _digest(array):
-    import hashlib
+#: The arrays whose contents the caches of this module are keyed by (:func:`_digest`), newest last:
+#: (dtype, shape, bytes, id) of the last :data:`CONTENTS_KEPT`.
+_CONTENTS = []
+_CONTENTS_LOCK = threading.Lock()
+_NEXT_CONTENT = itertools.count()
+CONTENTS_KEPT = 32
 
-    return hashlib.sha1(np.ascontiguousarray(array).tobytes()).hexdigest()
+
+def _digest(array):
+    """A number standing for the exact contents of ``array`` (its dtype, shape and bytes): the same for
+    equal contents while they are among the last :data:`CONTENTS_KEPT` seen, never the same for others.
+
+    The caches keyed by it (pixels, splines, tapers, coverages) see the same few arrays spectrum after
+    spectrum: comparing the bytes with those kept costs ~2 us for 4,000 wavelengths, a cryptographic
+    hash of them ~35 us (measured), and there were eight a spectrum. A content that comes back after
+    being dropped gets a new number: a cache miss, never a wrong hit.
+    """
+    a = np.ascontiguousarray(array)
+    data, kind = a.tobytes(), (a.dtype.str, a.shape)
+    with _CONTENTS_LOCK:
+        for dtype, shape, kept, number in reversed(_CONTENTS):
+            if (dtype, shape) == kind and kept == data:
+                return number
+        number = next(_NEXT_CONTENT)
+        _CONTENTS.append((kind[0], kind[1], data, number))
+        del _CONTENTS[:-CONTENTS_KEPT]
+    return number
 
 
 def _kept(store, key, make, size=8):
@@ -218,9 +243,12 @@ def _usable_pixels(spectrum, info, telluric):
         bad |= np.asarray(spectrum.mask, bool)
     if sig is not None:
         bad |= ~np.isfinite(sig) | (sig <= 0)
-    order = np.argsort(w)
-    w, f, bad = w[order], f[order], bad[order]
-    sig = None if sig is None else sig[order]
+    if not (w.size > 1 and bool(np.all(w[1:] > w[:-1]))):
+        # (strictly increasing, as almost every file's: argsort's order is then the identity, and the
+        # sort and four copies are not made)
+        order = np.argsort(w)
+        w, f, bad = w[order], f[order], bad[order]
+        sig = None if sig is None else sig[order]
     if (~bad).sum() < 50:
         raise AnalysisError("fewer than 50 usable pixels: no velocity", info.path)
     setup = _pixel_setup(w)
@@ -242,11 +270,9 @@ def _pixel_setup(w):
     the telluric mask (:func:`specan.prepare.telluric_mask`: air wavelengths, band look-ups) and the
     native step (a percentile and a median), 0.6 ms a spectrum between them (measured) for the same
     pixels spectrum after spectrum in a survey. Keyed by the wavelengths' bytes, a few at a time."""
-    import hashlib
-
     from ..prepare import telluric_mask
 
-    key = (hashlib.sha1(np.ascontiguousarray(w).tobytes()).hexdigest(), w.size)
+    key = (_digest(w), w.size)
     found = _PIXEL_SETUPS.get(key)
     if found is None:
         mask = np.asarray(telluric_mask(w, "vacuum"), bool)
@@ -340,13 +366,14 @@ def spline_operators(x, grid, cell=0.0):
     and aliases the rest, where the cell's mean keeps every sample's share (the anti-aliasing of a
     rebinning, common practice).
     """
-    from scipy import sparse
-    from scipy.interpolate import BSpline
-    from scipy.sparse.linalg import splu
-
     key = (_digest(x), float(grid[0]), float(grid[-1]), grid.size, float(cell))
     found = _SPLINES.get(key)
     if found is None:
+        # (imported here, on a miss only: three imports cost more than the look-up itself)
+        from scipy import sparse
+        from scipy.interpolate import BSpline
+        from scipy.sparse.linalg import splu
+
         t = make_interp_spline(x, np.zeros_like(x), k=SPLINE_K).t
         if cell > 0:
             dx = np.diff(x)
@@ -471,22 +498,29 @@ def lag_window(observed, vmax, resolving_power, highpass):
 
     ``highpass`` is the high-pass sigma in resolution elements (None or 0: no filter).
     """
-    step, n = observed.step, observed.n
-    vmax_kms = u.Quantity(vmax, _KMS).value
+    vmax_kms = vmax.to_value(_KMS) if isinstance(vmax, u.Quantity) else u.Quantity(vmax, _KMS).value
+    highpass = float(highpass) if highpass else None
+    # (kept per set-up: the same few windows spectrum after spectrum, two frozen dataclasses and a unit
+    # conversion each)
+    return _lag_window(observed.step, observed.n, float(observed.grid[0]), observed.cell, float(vmax_kms),
+                       float(resolving_power), highpass)
+
+
+@functools.lru_cache(maxsize=64)
+def _lag_window(step, n, grid0, cell, vmax_kms, resolving_power, highpass):
     smax = int(math.ceil(math.log(factor_kms(vmax_kms)) / step))
     fwhm_grid = 1.0 / (resolving_power * step)  # resolution element in grid pixels
-    hp = float(highpass) * fwhm_grid if highpass else None
+    hp = highpass * fwhm_grid if highpass else None
     # lags examined for the error and second-peak statistics: the search range, and several
     # high-pass lengths so that the CCF noise decorrelates within the window
     half = int(max(smax, 40, math.ceil(6 * (hp or 0))))
     # templates reach past the data by every lag the CCF about any allowed peak uses, so that one
     # FFT length just above the template's serves every correlation: no lag ever wraps around
     pad = half + smax + COVER_TAPER + 4
-    ln0 = observed.grid[0] - pad * step
+    ln0 = grid0 - pad * step
     m = fast_length(n + 2 * pad)
     return LagWindow(step=step, n=n, vmax_kms=vmax_kms, smax=smax, half=half, pad=pad, m=m,
-                     template_grid=TemplateGrid(ln0=ln0, step=step, n=n + 2 * pad, hp_sigma=hp,
-                                                cell=observed.cell))
+                     template_grid=TemplateGrid(ln0=ln0, step=step, n=n + 2 * pad, hp_sigma=hp, cell=cell))
 
 
 @functools.lru_cache(maxsize=256)
@@ -578,9 +612,7 @@ _COVERAGE = {}
 def smoothed_coverage(valid, sigma):
     """``gauss_smooth(valid, sigma)`` floored at 1e-3: the high-pass filter's local weight, the
     same for a spectrum's data and its error propagation (kept for the last few coverages)."""
-    import hashlib
-
-    key = (hashlib.sha1(np.ascontiguousarray(valid).tobytes()).hexdigest(), valid.size, float(sigma))
+    key = (_digest(valid), valid.size, float(sigma))
     found = _COVERAGE.get(key)
     if found is None:
         found = np.maximum(gauss_smooth(valid.astype(float), sigma), 1e-3)

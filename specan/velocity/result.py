@@ -5,7 +5,7 @@ from __future__ import annotations
 import astropy.units as u
 import numpy as np
 
-from ..doppler import C_KMS, velocity_from_factor
+from ..doppler import C_KMS
 from .grid import kms_per_pixel
 
 __all__ = ["velocity_flags", "assumption_flags", "medium_shift_kms", "result_dict", "RESULT_UNITS"]
@@ -89,6 +89,12 @@ def _kms(value):
     return u.Quantity(value, _KMS)
 
 
+def _velocities(factor):
+    """:func:`specan.doppler.velocity_from_factor`'s arithmetic on an array of 1 + z, as plain km/s (the same
+    bits, without its unit composed and multiplied in: a third of the time)."""
+    return (factor * factor - 1.0) / (factor * factor + 1.0) * C_KMS
+
+
 def _kms_or_none(value):
     return None if value is None else _kms(value)
 
@@ -143,6 +149,6 @@ def result_dict(choice, peak, peaks, about, td, errors, budget, segments, compan
         "resolving_power": choice.power.value,
         "resolving_power_source": choice.power.source,
         "z_bary": None if frames.f_bary is None else frames.f_bary - 1.0,
-        "ccf_velocity": velocity_from_factor(np.exp((peak.lag + about.j) * step) * frames.template_factor),
+        "ccf_velocity": _kms(_velocities(np.exp((peak.lag + about.j) * step) * frames.template_factor)),
         "ccf": about.values,
     }

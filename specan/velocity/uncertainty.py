@@ -49,7 +49,10 @@ def tonry_davis(about, peak):
     # itself has variance sigma_n^2 at every lag, so sigma_a = rms(residual) / sqrt2.
     w_curv = 2.3548 * math.sqrt(h / abs(curv)) if curv < 0 else about.fwhm_px
     core = np.abs(j) <= max(2.0, w_curv if curv < 0 else 2.0)
-    sig_a = float(np.sqrt(np.nanmean(about.residual[~core] ** 2)) / math.sqrt(2.0))
+    # (np.nanmean's own steps: NaN to zero, the sum over all, divided by the count; without its wrapper)
+    r2 = about.residual[~core] ** 2
+    missing = np.isnan(r2)
+    sig_a = float(np.sqrt(np.sum(np.where(missing, 0.0, r2)) / (r2.size - np.count_nonzero(missing))) / math.sqrt(2.0))
     r_td = h / (math.sqrt(2.0) * sig_a) if sig_a > 0 else float("inf")
     # Tonry & Davis write sigma = (3/8) w / (1 + r), the constant calibrated for their CCF and filter.
     # For this normalised CCF the small-noise limit is exact: the peak moves by
@@ -351,12 +354,26 @@ def _segments(info, n_seg, fwhm_px):
     box = max(1, int(round(fwhm_px)))
     quiet = np.convolve(info, np.ones(box) / box, mode="same")
     reach = max(1, int(round(2 * fwhm_px)))
+    equal = np.searchsorted(cum, cum[-1] * np.arange(1, n_seg) / n_seg, side="right")
+    # the common case in one call: every window whole inside the spectrum, each past the one before
+    # (where :func:`_quietest_one_by_one` starts each window at its own q - reach, ends it at q + reach + 1)
+    lo = equal - reach
+    if equal.size and lo[0] >= 1 and equal[-1] + reach + 1 <= info.size - 1:
+        found = lo + np.argmin(quiet[lo[:, None] + np.arange(2 * reach + 1)], axis=1)
+        if np.all(lo[1:] > found[:-1]):
+            return np.concatenate([[0], found])
+    return _quietest_one_by_one(quiet, equal, reach)
+
+
+def _quietest_one_by_one(quiet, equal, reach):
+    """:func:`_segments`' boundaries one by one: each the quietest pixel within ``reach`` of its equal-share
+    point ``equal``, past the boundary before it and inside the spectrum (increasing, 0 first)."""
     starts = [0]
-    for q in np.searchsorted(cum, cum[-1] * np.arange(1, n_seg) / n_seg, side="right"):
-        lo, hi = max(starts[-1] + 1, q - reach), min(info.size - 1, q + reach + 1)
+    for q in equal:
+        lo, hi = max(starts[-1] + 1, q - reach), min(quiet.size - 1, q + reach + 1)
         if hi > lo:
             starts.append(lo + int(np.argmin(quiet[lo:hi])))
-    return np.unique(np.asarray(starts))
+    return np.asarray(starts)
 
 
 @functools.lru_cache(maxsize=32)
@@ -400,18 +417,26 @@ def _template_segments(search, shifted, starts, h, weights):
     full = shifted.shape[1] == 2      # the coverage 1 on every pixel used (:func:`_shifted_templates`)
     bT, bT2 = shifted[:, 0], shifted[:, 1]                                            # each (T, 3 lags, n)
 
-    def sums(x):  # (T, 3 lags, n) -> (T, 3 lags, segments + whole); the segments cover the spectrum
-        seg = np.add.reduceat(x, starts, axis=-1)
+    def sums(products):  # (..., n) -> (..., segments + whole); the segments cover the spectrum
+        seg = np.add.reduceat(products, starts, axis=-1)
         return np.concatenate([seg, np.sum(seg, axis=-1, keepdims=True)], axis=-1)
 
+    # the products of every row in one array and their segment sums in one call (the same sums, in the
+    # same order, as row by row: a call and two temporaries a row fewer)
+    k_rows = 3 if full else 6
+    products = np.empty((k_rows,) + bT.shape)
+    np.multiply(a1, bT, out=products[0])
+    np.multiply(a2, bT, out=products[1])
+    np.multiply(a2, bT2, out=products[2])
+    if not full:
+        bV = shifted[:, 2]
+        np.multiply(a1, bV, out=products[3])
+        np.multiply(a3, bV, out=products[4])
+        np.multiply(a2, bV, out=products[5])
+    rows = tuple(sums(products))
     if full:
         # the coverage sums are the data's own over each segment, the same for every template and lag
-        cover_rows = tuple(np.broadcast_to(sums(a[None, None, :]), bT.shape[:2] + (starts.size + 1,))
-                           for a in (a1, a3, a2))
-    else:
-        bV = shifted[:, 2]
-        cover_rows = (sums(a1 * bV), sums(a3 * bV), sums(a2 * bV))
-    rows = (sums(a1 * bT), sums(a2 * bT), sums(a2 * bT2)) + cover_rows
+        rows += tuple(np.broadcast_to(r, bT.shape[:2] + (starts.size + 1,)) for r in sums(np.stack([a1, a3, a2])))
     c, _ = Correlation.combine(rows)                                  # (T, 3 lags, K + 1)
     with np.errstate(invalid="ignore"):  # a segment with no overlap gives inf - inf: marked not good
         den = c[:, 0] - 2.0 * c[:, 1] + c[:, 2]
@@ -473,12 +498,16 @@ def _propagated_sigmas(observed, g_seg, g_whole, starts, hp_sigma):
     u = np.concatenate([_segments_highpass_adjoint(g_seg, starts, hp_sigma, observed.valid, colour),
                         _highpass_adjoint(g_whole, hp_sigma, observed.valid)[:, None]], axis=1)
     z = spline_adjoint(x, observed.grid, observed.cell)(u)          # (native pixels, colours + 1)
-    sz = observed.native_sigma[:, None] * z
+    sz2 = np.ascontiguousarray((observed.native_sigma[:, None] * z).T) ** 2   # (colours + 1, native pixels)
+    # each segment's sum over its window in its colour's row, all in one call: the windows of one colour
+    # are disjoint, so (start, end) pairs in the flattened rows, in order, bound each window's sum
+    size = sz2.shape[1]
+    bounds = np.stack([colour * size + nlo, colour * size + nhi], axis=1)
+    order = np.argsort(bounds[:, 0], kind="stable")
     sig = np.empty(starts.size + 1)
-    for j, (a, b, c) in enumerate(zip(nlo, nhi, colour)):
-        sig[j] = math.sqrt(float(np.sum(sz[a:b, c] ** 2)))
-    sig[-1] = math.sqrt(float(np.sum(sz[:, -1] ** 2)))
-    return sig
+    sig[order] = np.add.reduceat(sz2.ravel(), bounds[order].ravel())[::2]   # (the whole's row last: no end out of range)
+    sig[-1] = np.sum(sz2[-1])
+    return np.sqrt(sig)
 
 
 def segment_errors(observed, search, members, m, resels):
