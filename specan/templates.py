@@ -28,7 +28,7 @@ Kinds:
   error is its Maritz-Jarrett standard error (distribution-free: the offsets are heavy-tailed).
   The stored ``zero_point_err_kms`` is the lines' error times the library's Birge ratio of the two
   methods over all templates (:func:`library_birge`, in the file's header ``ZPBIRGE``: 1.06 from
-  35 templates, chi^2/n 1.12). The two methods are not averaged: the check reads 6.9 +- 1.9 km/s
+  35 templates, chi^2/n 1.12). The two methods are not averaged: the check reads 7.0 +- 1.9 km/s
   below the lines on average over the templates (weighted mean, measured), a systematic between
   them larger than the check's weight could average away, and its errors are 2-5x the lines'.
   A group with

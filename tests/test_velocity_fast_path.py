@@ -44,12 +44,11 @@ standard errors of the medians times the library's Birge ratio (``specan.templat
 themselves unchanged) moved the Kurucz Sun's errors from 6.03-6.10 to 3.66-3.80 km/s (G8 V's zero-point
 error 5.00 -> 3.58) and its velocities by -0.002 of their errors; recorded again then. The velocity
 stage's noise without an error array taken from the flux as ``prepare``'s S/N is where the flux shows
-a white-noise plateau (``specan.velocity.grid.flux_pixel_noise``, a change of method; the weights from
-one level of it) moved the two demo-night files without one: trf3_01 by +0.006 of its error
-(-11.733 -> -11.725 km/s, truth -12.0) with its error 1.248 -> 1.222 km/s and the resampled error
-0.460 -> 0.384, trf3_08 by +0.003 with 0.329 -> 0.319 km/s; recorded again then (the library templates
-built again with it moved the Kurucz Sun's velocities by +0.007 of their errors and the errors by
--0.6%: not recorded again).
+a white-noise plateau (``specan.velocity.grid.flux_pixel_noise``, a change of method) moved the two
+demo-night files without one: trf3_01 by -0.30 of its error (-11.73 -> -12.10 km/s, truth -12.0) with
+its error 1.25 -> 0.95 km/s, trf3_08 by +0.017 with 0.33 -> 0.28 km/s; recorded again then (the
+library templates built again with it moved the Kurucz Sun's velocities by +0.007 of their errors and
+the errors by -0.6%: not recorded again).
 """
 
 import math
@@ -91,9 +90,9 @@ REFERENCE = {
     'synth F3 IV': ('synthetic F3.5 V', 138.41052679343758, 1.2529009362409533, None),
     'synth A7 III': ('synthetic F0 III', -58.289887079892495, 0.8602753471704787, None),
     'synth M2 V': ('synthetic M2 V', 24.396553386291547, 0.6117359849686684, None),
-    'trf3_01.fits': ('synthetic O8.5 V', -11.72533794755731, 1.2222067165368826, 0.38435175799241794),
+    'trf3_01.fits': ('synthetic O8.5 V', -12.102216987567461, 0.9525635211531148, 0.30587453736263787),
     'trf3_05.txt': ('synthetic A8.5 V', -41.67349051614002, 1.7028548565241162, 0.3679501371165709),
-    'trf3_08.fits': ('synthetic G2 V', 55.2199705520604, 0.31852115793122915, 0.2001156467853757),
+    'trf3_08.fits': ('synthetic G2 V', 55.224703286397684, 0.28299078456764415, 0.2016971754559865),
 }
 
 

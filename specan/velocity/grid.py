@@ -99,8 +99,7 @@ def hot_pixels(f, sig, bad):
 
 
 def flux_pixel_noise(w, f, bad, info, noise_only=None):
-    """(per-pixel noise, the noise the weights are made from, how it was measured) of a normalised
-    spectrum without an error array.
+    """(per-pixel noise, how it was measured) of a normalised spectrum without an error array.
 
     The estimate ``prepare`` makes for the S/N and the lines stage for their errors
     (:func:`specan.noise.flux_noise`: the white-noise plateau near Nyquist with the lines' leak
@@ -128,8 +127,7 @@ def flux_pixel_noise(w, f, bad, info, noise_only=None):
         # line density, not the noise (the noiseless Kurucz Sun, read so, chose synthetic G5 III / G8 I
         # and read -5.4 to -6.7 km/s instead of library G8 V's -0.5 to +1.6; the library templates'
         # members, MILES stars with smoothed noise, aligned differently by up to 16 km/s, measured)
-        sig = noise_from_flux(f, bad)
-        return sig, sig, "DER_SNR at the continuum, scaled as sqrt(flux) (" + est.method + ")"
+        return noise_from_flux(f, bad), "DER_SNR at the continuum, scaled as sqrt(flux) (" + est.method + ")"
     level = np.clip(f, 0.05, None)
     n = f.size
     index = np.arange(n)
@@ -142,25 +140,20 @@ def flux_pixel_noise(w, f, bad, info, noise_only=None):
             centres.append(0.5 * (a + b) - 0.5)
             medians.append(float(np.median(level[a:b][ok])))
     ref = np.interp(index, centres, medians) if medians else np.ones(n)
-    # The level along the spectrum as a smooth curve, ln sigma linear in the pixel index (our choice),
-    # for the errors; one level for the weights. The blocks' own scatter (5-12% each, most in the
-    # line-rich blue) moved the weights with every noise realisation, and with them the template
-    # mismatch's share of the velocity. Measured on the Kurucz Sun, no error array, 12 realisations at
-    # one velocity, velocity scatter / noise error at R 2000, S/N 300: 4.3 with the blocks' levels as
-    # weights, 2.9 quadratic, 2.2 linear, 1.15 one level (1.09 with the error array). One level for the
-    # errors too read them 15-20% low where the noise is 2x higher in the blue than in the red (linear:
-    # within 3%). Weights need not be optimal: the errors are propagated through them with the pixels'
-    # own noise (``native_sigma``).
+    # The level along the spectrum as a smooth curve, ln sigma linear in the pixel index: the blocks'
+    # own scatter (5-12% each, most in the line-rich blue) moved the weights with every noise
+    # realisation, and with them the template mismatch's share of the velocity. Measured on the
+    # Kurucz Sun, no error array, 12 realisations at one velocity, velocity scatter / noise error at
+    # R 2000, S/N 300: 4.3 with the blocks' levels, 2.9 quadratic, 2.2 linear, 1.15 one level (1.09 with
+    # the error array); with a noise 2x higher in the blue than in the red one level read the noise
+    # error 15-20% low and scattered 1.4-2.2x it at S/N 30-300, linear 1.2-1.9x (our choice: linear)
     known = good & np.isfinite(est.sigma) & (est.sigma > 0)
-    block, flat = est.sigma, est.sigma
+    block = est.sigma
     if known.sum() >= 3 * BLOCK:
         x = (index - 0.5 * (n - 1)) / max(0.5 * (n - 1), 1.0)
-        logs = np.log(est.sigma[known][::8])
-        coef = np.polynomial.polynomial.polyfit(x[known][::8], logs, 1)
+        coef = np.polynomial.polynomial.polyfit(x[known][::8], np.log(est.sigma[known][::8]), 1)
         block = np.exp(np.polynomial.polynomial.polyval(x, coef))
-        flat = np.full(n, math.exp(float(np.mean(logs))))
-    scale = np.sqrt(level / ref)
-    return block * scale, flat * scale, est.method
+    return block * np.sqrt(level / ref), est.method
 
 
 def noise_from_flux(f, bad):
@@ -452,9 +445,8 @@ def observe_on_grid(spectrum, *, step=None, telluric=True, clip_emission=True, n
     if sig is None:
         # the telluric bands hold noise like any pixel: they enter the plateau test (not the lines)
         noise_only = setup.telluric & bad & np.isfinite(f) & (f > 0)
-        sig, weight_sig, noise_source = flux_pixel_noise(w, f, bad, info, noise_only)
+        sig, noise_source = flux_pixel_noise(w, f, bad, info, noise_only)
     else:
-        weight_sig = sig
         noise_source = "error array"
     if clip_emission:
         hot = hot_pixels(f, sig, bad)
@@ -485,8 +477,7 @@ def observe_on_grid(spectrum, *, step=None, telluric=True, clip_emission=True, n
     return ObservedGrid(
         info=info, noise_source=noise_source, spline_x=lnw, grid=grid, step=step, n=n,
         flux=spline_operators(lnw, grid, cell).forward(f_fill),
-        sigma=np.interp(grid, lnw, weight_sig if (finite if weight_sig is sig else bool(np.isfinite(weight_sig).all()))
-                        else np.where(np.isfinite(weight_sig), weight_sig, np.nanmedian(weight_sig))),
+        sigma=np.interp(grid, lnw, sig if finite else np.where(np.isfinite(sig), sig, np.nanmedian(sig))),
         native_flux=f_fill, native_sigma=np.where(bad, 0.0, sig if finite else np.nan_to_num(sig)),
         valid=valid, taper=_edge_taper(valid, first, last), n_data=last - first + 1, cell=cell)
 
