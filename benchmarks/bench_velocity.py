@@ -44,8 +44,12 @@
    MILES inputs (own groups out) the best template, the mixture (names, weights) or the velocity (by more
    than 0.05 of its error) differ between the two, and by how much at most.
 
+11. ``--noise``: the noise error without an error array (the flux's own noise) against with one, on
+   inputs of known noise: the Kurucz Sun (photon and constant noise, R 1,000-5,000, S/N 10-300) and
+   MILES stars with white noise added; the velocity's scatter over realisations / the noise error.
+
 Run:  python benchmarks/bench_velocity.py [--quick] [--speed] [--floor] [--night-set] [--user] [--other-types] [--neighbours]
-      [--miles] [--kurucz] [--against DIR]
+      [--miles] [--kurucz] [--noise] [--against DIR]
 
 Timings depend on the machine's load; on a shared machine OPENBLAS_NUM_THREADS=1 avoids BLAS
 threads fighting other processes (the figures in the issue-4 report were measured that way).
@@ -511,13 +515,16 @@ def _pull_line(label, dv, err, resel, crb_kms, ms):
           f"mean err {err.mean():6.2f} {ms:5.0f} ms")
 
 
-def _measured(spectrum, v_true, dv, err):
-    """Measure one spectrum with no template; append (measured - true) and rv_err; return the seconds."""
+def _measured(spectrum, v_true, dv, err, noise=None):
+    """Measure one spectrum with no template; append (measured - true) and rv_err (and to ``noise`` the
+    noise error); return the seconds."""
     t0 = time.perf_counter()
     res = velocity.measure(spectrum, barycentric=False)
     dt = time.perf_counter() - t0
     dv.append(res["rv"].value - v_true)
     err.append(res["rv_err"].value)
+    if noise is not None:
+        noise.append(res["rv_err_noise"].value)
     return dt
 
 
@@ -532,7 +539,7 @@ def user_path(model, n):
         clean, deriv = f(0.0), f(0.5) - f(-0.5)
         for snr in (10.0, 30.0, 100.0, 200.0):
             rng = np.random.default_rng(7)
-            dv, err, t = [], [], 0.0
+            dv, err, noise, t = [], [], [], 0.0
             crb_kms = 1.0 / np.sqrt(np.sum((deriv / (np.sqrt(clean) / snr)) ** 2))
             for i in range(n):
                 v = rng.uniform(-900, 900)
@@ -542,8 +549,14 @@ def user_path(model, n):
                 info = ObsInfo(object="sun", medium="vacuum", medium_assumed=False, resolving_power=r)
                 s = Spectrum(flux=obs * u.dimensionless_unscaled, spectral_axis=pix * u.AA,
                              uncertainty=StdDevUncertainty(sig * resp) if i % 2 == 0 else None, meta={META_KEY: info})
-                t += _measured(s, v, dv, err)
+                t += _measured(s, v, dv, err, noise)
             _pull_line(f"R {r:5.0f} S/N {snr:4.0f}", dv, err, C_KMS / r, crb_kms, 1e3 * t / n)
+            # the template's zero point is one systematic for every spectrum of a cell (one star, one
+            # template): noise realisations cannot sample it, so the pulls against the noise error alone,
+            # about their mean, say whether the noise part holds (bias aside)
+            pn = np.asarray(dv) / np.asarray(noise)
+            print(f"{'':26s} noise alone: pull sd {np.std(pn, ddof=1):4.2f} (about the mean {np.mean(pn):+6.2f}), "
+                  f"mean noise err {np.mean(noise):6.3f}")
 
 
 OTHER_TYPES = (("F3", "IV"), ("G4", "IV"), ("K2.5", "II"), ("A7", "III"), ("K5", "III"), ("G0", "III"))
@@ -761,6 +774,66 @@ def miles_stars(n):
     print("types (star -> best template):", ", ".join(names[:20]))
 
 
+def noise_pulls(model, n, miles_n=6):
+    """The noise error without an error array against with one, on inputs of known noise: the Kurucz Sun x
+    a smooth response (not normalised) at one velocity, photon (sqrt(flux)) and constant noise, R 1000-5000,
+    S/N 10-300, ``n`` realisations each measured with its error array and without; then MILES stars with
+    white noise of known sigma added (their own noise is small and smoothed), measured against the star
+    without the added noise. Printed per cell: the median noise error (``rv_err_noise``) of each and the
+    velocity's scatter over the realisations divided by it (1 where the noise error is right; the bias is
+    removed with the mean), the median rv_err."""
+    print(f"\n== noise error without an error array (flux) against with one (arr); {n} realisations at one velocity ==")
+    lo, hi = 3850.0, 7300.0
+    v = -345.6
+
+    def cell(make, truth):
+        out = {}
+        for with_err in (True, False):
+            rows = []
+            for i in range(n):
+                s = make(i, with_err)
+                res = velocity.measure(s, barycentric=False)
+                rows.append((res["rv"].value - truth, res["rv_err_noise"].value, res["rv_err"].value))
+            a = np.array(rows)
+            out[with_err] = (np.median(a[:, 1]), np.std(a[:, 0], ddof=1) / np.sqrt(np.mean(a[:, 1] ** 2)), np.median(a[:, 2]))
+        return " | ".join(f"{'arr' if k else 'flux'} err_noise {e:7.3f} scatter/err_noise {p:5.2f} rv_err {t:6.2f}"
+                          for k, (e, p, t) in out.items()) + f" | ratio flux/arr {out[False][0] / out[True][0]:5.2f}"
+
+    for kind in ("photon", "constant"):
+        for r in (1000.0, 2000.0, 5000.0):
+            pix = np.arange(lo, hi, lo / (r * 2.5))
+            resp = 1.0 + 0.3 * np.sin((pix - lo) / (hi - lo) * 2.5)
+            flux = model(r)(np.log(pix) - np.log(velocity.doppler_factor(v * KMS)))
+            for snr in (10.0, 30.0, 100.0, 300.0):
+                sig = (np.sqrt(np.clip(flux, 1e-3, None)) if kind == "photon" else np.ones_like(flux)) / snr
+
+                def make(i, with_err, sig=sig, flux=flux, pix=pix, resp=resp, r=r):
+                    noisy = (flux + np.random.default_rng(100 + i).normal(size=flux.size) * sig) * resp
+                    info = ObsInfo(object="sun", medium="vacuum", medium_assumed=False, resolving_power=r)
+                    return Spectrum(flux=noisy * u.dimensionless_unscaled, spectral_axis=pix * u.AA,
+                                    uncertainty=StdDevUncertainty(sig * resp) if with_err else None, meta={META_KEY: info})
+
+                print(f"Kurucz {kind:8s} R {r:5.0f} S/N {snr:4.0f} | {cell(make, v)}", flush=True)
+    from specan.obsinfo import get_info
+
+    for spec, _, row in _miles_inputs(miles_n):
+        wave = spec.spectral_axis
+        f0 = spec.flux.value
+        base = velocity.measure(spec, barycentric=False)["rv"].value
+        level = float(np.nanmedian(f0))
+        for snr in (30.0, 100.0):
+            sig = np.full(f0.size, level / snr)
+
+            def make(i, with_err, sig=sig, f0=f0, wave=wave, spec=spec):
+                noisy = f0 + np.random.default_rng(700 + i).normal(size=f0.size) * sig
+                info = get_info(spec).copy()
+                return Spectrum(flux=noisy * spec.flux.unit, spectral_axis=wave,
+                                uncertainty=StdDevUncertainty(sig) if with_err else None, meta={META_KEY: info})
+
+            print(f"MILES {str(row['mk']):10s} + S/N {snr:4.0f} | {cell(make, base)}", flush=True)
+    print(f"(load average {os.getloadavg()[0]:.2f})")
+
+
 if __name__ == "__main__":
     quick = "--quick" in sys.argv
     print(f"OPENBLAS_NUM_THREADS={os.environ.get('OPENBLAS_NUM_THREADS', 'unset')}")
@@ -789,5 +862,7 @@ if __name__ == "__main__":
         miles_stars(20 if quick else 60)
     if "--kurucz" in chosen:
         kurucz_rows(model)
+    if "--noise" in chosen:
+        noise_pulls(model, 8 if quick else 16)
     if "--against" in chosen:
         against(model, 10 if quick else 40, sys.argv[sys.argv.index("--against") + 1])

@@ -17,6 +17,8 @@ zero point against laboratory wavelengths is then measured (``specan.templates.m
 line centres against specan's synthetic spectrum of the type, checked by a segment-wise
 cross-correlation with it; see ``specan/templates.py``) and written beside it
 (``zero_point_kms``, ``zero_point_err_kms`` and the parts); the velocity stage takes it out.
+``--zero-points-only`` keeps the file's fluxes and measures their zero points again (a change of that
+method alone needs no library).
 The fluxes stay in the library's frame. Putting the templates on the wavelengths of specan's
 synthetic spectra by one whole-spectrum correlation was tried and rejected: their blends at
 R ~ 2000 move with type, and the zero points came out between -19 and +10 km/s (measured).
@@ -25,7 +27,7 @@ table of groups with their members and zero points, never a star's spectrum.
 
 Usage::
 
-    python scripts/build_library_templates.py [LIBRARY_DIR] [--out PATH]
+    python scripts/build_library_templates.py [LIBRARY_DIR] [--out PATH] [--zero-points-only]
 """
 
 from __future__ import annotations
@@ -161,39 +163,69 @@ def build_group(paths, wave):
     return combine(aligned, wave), shifts
 
 
+def from_file(path):
+    """(air wavelengths, fluxes, rows, zero points) of a templates file as written, the zero points measured
+    again on its fluxes: for a change of the zero points' method alone (``--zero-points-only``)."""
+    from astropy.io import fits
+    from astropy.table import Table
+
+    from specan import templates
+
+    with fits.open(path) as hdus:
+        h = hdus[0].header
+        fluxes = [np.asarray(f, np.float32) for f in hdus[0].data]
+        wave = h["CRVAL1"] + h["CDELT1"] * (np.arange(len(fluxes[0])) + 1.0 - h["CRPIX1"])
+        table = Table(hdus["GROUPS"].data)
+    rows, points = [], []
+    for row, flux in zip(table, fluxes):
+        rows.append([str(row["name"]), str(row["sptype"]), str(row["lumclass"]), int(row["n_stars"]),
+                     float(row["teff_k"]), float(row["logg"]), float(row["feh"]), float(row["member_sd_kms"]),
+                     str(row["members"])])
+        points.append(templates.measure_zero_point(wave, flux.astype(float), FWHM_AA, rows[-1][1], rows[-1][2]))
+    return wave, fluxes, rows, points
+
+
 def main(argv=None):
     parser = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     parser.add_argument("library", nargs="?", default=str(ROOT.parent / "shared" / "reference" / "miles"))
     parser.add_argument("--out", default=str(ROOT / "specan" / "data" / "templates_miles.fits"))
+    parser.add_argument("--zero-points-only", action="store_true",
+                        help="keep the fluxes of the file at --out and measure its zero points again")
     args = parser.parse_args(argv)
     from astropy.io import fits
     from astropy.table import Table
 
-    library = Path(args.library)
-    catalog = read_catalog(library, "build_library_templates")
-    if catalog is None:
-        return 1
     from specan import templates
 
-    wave = MILES_WAVE_AA
-    fluxes, rows, points = [], [], []
-    for name, sptype, lumclass, members in groups(catalog):
-        paths = [library / text(catalog["file"][i]) for i in members]
-        flux, shifts = build_group(paths, wave)
-        fluxes.append(flux.astype(np.float32))
-        # measured on the flux as written (float32), so that a re-measurement from the file agrees
-        zp = templates.measure_zero_point(wave, fluxes[-1].astype(float), FWHM_AA, sptype, lumclass)
-        points.append(zp)
-        params = [np.nanmedian([value(catalog[c][i]) for i in members]) for c in ("teff_k", "logg", "feh")]
-        rows.append([name, sptype, lumclass, len(members), *params, float(np.std(shifts, ddof=1)),
-                     " ".join(text(catalog["id"][i]) for i in members)])
+    if args.zero_points_only:
+        wave, fluxes, rows, points = from_file(args.out)
+    else:
+        library = Path(args.library)
+        catalog = read_catalog(library, "build_library_templates")
+        if catalog is None:
+            return 1
+        wave = MILES_WAVE_AA
+        fluxes, rows, points = [], [], []
+        for name, sptype, lumclass, members in groups(catalog):
+            paths = [library / text(catalog["file"][i]) for i in members]
+            flux, shifts = build_group(paths, wave)
+            fluxes.append(flux.astype(np.float32))
+            # measured on the flux as written (float32), so that a re-measurement from the file agrees
+            zp = templates.measure_zero_point(wave, fluxes[-1].astype(float), FWHM_AA, sptype, lumclass)
+            points.append(zp)
+            params = [np.nanmedian([value(catalog[c][i]) for i in members]) for c in ("teff_k", "logg", "feh")]
+            rows.append([name, sptype, lumclass, len(members), *params, float(np.std(shifts, ddof=1)),
+                         " ".join(text(catalog["id"][i]) for i in members)])
     # groups with too few usable lines keep the library's frame, uncertain by how far the measured
     # groups' frames are from the laboratory's (their rms)
     measured = [z.lines_kms for z in points if z.n_lines >= templates.ZP_MIN_LINES]
     frame_rms = float(np.sqrt(np.mean(np.square(measured)))) if measured else float("nan")
+    # the two methods' disagreement over the whole library scales every template's error alike
+    birge, n_pairs = templates.library_birge([z for z in points if z.n_lines >= templates.ZP_MIN_LINES])
+    print(f"  the two methods over {n_pairs} templates: Birge ratio {birge:.3f}", file=sys.stderr)
     for row, zp in zip(rows, points):
         if zp.n_lines >= templates.ZP_MIN_LINES:
-            value_kms, err_kms = zp.lines_kms, templates.zero_point_error(zp)
+            value_kms, err_kms = zp.lines_kms, templates.zero_point_error(zp, birge)
         else:
             value_kms, err_kms = 0.0, frame_rms
         row[7:7] = [value_kms, err_kms, zp.lines_kms, zp.lines_err_kms, zp.n_lines, zp.check_kms,
@@ -216,6 +248,8 @@ def main(argv=None):
     h["ZPLIST"] = ("linelists/stellar.ecsv", "laboratory air wavelengths (NIST ASD)")
     h["ZPSIGN"] = ("lines redward of lab > 0", "sign of zero_point_kms; flux not shifted")
     h["ZPFRAME"] = (frame_rms, "rms of measured zero points, km/s")
+    h["ZPERROR"] = ("Maritz-Jarrett SE of median", "x ZPBIRGE in zero_point_err_kms")
+    h["ZPBIRGE"] = (birge, "Birge ratio, lines vs check, all templates")
     for k, part in enumerate(re.findall(".{1,68}", CITATION)):
         h[f"CITE{k}"] = part
     hdus = fits.HDUList([primary, fits.BinTableHDU(table, name="GROUPS")])

@@ -115,7 +115,7 @@ def test_library_zero_points_are_stored_with_their_provenance():
 
 def test_stored_zero_points_are_what_the_measurement_gives():
     """The file's zero points re-measured from its own fluxes (a stale column would fail)."""
-    wave, flux, fwhm, table, _ = _file_arrays()
+    wave, flux, fwhm, table, header = _file_arrays()
     names = [str(n) for n in table["name"]]
     for name in SAMPLE:
         k = names.index(name)
@@ -124,7 +124,8 @@ def test_stored_zero_points_are_what_the_measurement_gives():
         assert zp.n_lines == int(row["zp_n_lines"]) and zp.n_lines >= templates.ZP_MIN_LINES, name
         assert zp.lines_kms == pytest.approx(float(row["zp_lines_kms"]), abs=1e-6), name
         assert zp.check_kms == pytest.approx(float(row["zp_check_kms"]), abs=1e-6), name
-        assert templates.zero_point_error(zp) == pytest.approx(float(row["zero_point_err_kms"]), rel=1e-9), name
+        assert templates.zero_point_error(zp, header["ZPBIRGE"]) == pytest.approx(float(row["zero_point_err_kms"]),
+                                                                               rel=1e-9), name
 
 
 def _served_on_air_grid(name, sptype, lumclass, resolving_power):
@@ -180,3 +181,34 @@ def test_zero_points_agree_with_an_independent_re_measurement():
         assert abs(check) < 3 * sigma, (t.name, check, check_err, t.zero_point_err_kms)
     # and not all on one side: the check's own median over the templates is within its error
     assert abs(np.median(off)) < 1.0, off
+
+
+def test_zero_point_errors_are_the_medians_own_spread():
+    """The stored lines' error against a bootstrap of the median of the same line offsets (an
+    independent way to the same quantity; # common practice): within 25%. The normal-theory
+    1.2533 sd / sqrt(n) stored before read 1.3-1.6x the bootstrap on these templates (measured;
+    the offsets are heavy-tailed)."""
+    wave, flux, fwhm, table, _ = _file_arrays()
+    names = [str(n) for n in table["name"]]
+    for name in SAMPLE:
+        row = table[names.index(name)]
+        zp = templates.measure_zero_point(wave, flux[names.index(name)], fwhm, str(row["sptype"]), str(row["lumclass"]))
+        offsets = np.array([x[2] for x in zp.lines])
+        rng = np.random.default_rng(5)
+        boot = np.std(np.median(rng.choice(offsets, (4000, offsets.size)), axis=1), ddof=1)
+        assert 0.8 < float(row["zp_lines_err_kms"]) / boot < 1.25, (name, float(row["zp_lines_err_kms"]), boot)
+
+
+def test_zero_point_errors_agree_with_the_two_methods_disagreement():
+    """Over all templates the two independent zero points (line centres; segment correlation) differ as
+    their errors say: chi^2 / n of (lines - check) / sqrt(err_l^2 + err_c^2) within 0.6-1.6 (ours: for
+    35 terms its own scatter is ~0.24), and the stored Birge ratio is that figure's root where above 1."""
+    _, _, _, table, header = _file_arrays()
+    d = np.asarray(table["zp_lines_kms"], float) - np.asarray(table["zp_check_kms"], float)
+    e = np.hypot(np.asarray(table["zp_lines_err_kms"], float), np.asarray(table["zp_check_err_kms"], float))
+    ok = np.isfinite(d) & np.isfinite(e) & (np.asarray(table["zp_n_lines"]) >= templates.ZP_MIN_LINES)
+    chi2n = float(np.mean((d[ok] / e[ok]) ** 2))
+    assert 0.6 < chi2n < 1.6, chi2n
+    assert header["ZPBIRGE"] == pytest.approx(np.sqrt(max(1.0, chi2n)), rel=1e-9)
+    stored = np.asarray(table["zero_point_err_kms"], float)[ok]
+    assert np.allclose(stored, np.asarray(table["zp_lines_err_kms"], float)[ok] * header["ZPBIRGE"], rtol=1e-9)

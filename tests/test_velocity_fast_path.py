@@ -39,7 +39,16 @@ velocities by at most 0.013 of their errors and the errors by 0.5%, and the demo
 mixture, the template-choice term 0.20 km/s; the noise errors within 0.7%); the synthetic stars
 (already 2.5 pixels a FWHM) moved by < 1e-6 of their errors. Recorded again with the accuracy run
 that showed the new results as good (``bench_velocity.py --user --other-types --miles`` before and
-after, in the commit that recorded them). The caches keyed by the arrays' bytes, the segment sums in one
+after, in the commit that recorded them). The library templates' zero-point errors made the Maritz-Jarrett
+standard errors of the medians times the library's Birge ratio (``specan.templates``; the zero points
+themselves unchanged) moved the Kurucz Sun's errors from 6.03-6.10 to 3.66-3.80 km/s (G8 V's zero-point
+error 5.00 -> 3.58) and its velocities by -0.002 of their errors; recorded again then. The velocity
+stage's noise without an error array taken from the flux as ``prepare``'s S/N is where the flux shows
+a white-noise plateau (``specan.velocity.grid.flux_pixel_noise``, a change of method) moved the two
+demo-night files without one: trf3_01 by -0.30 of its error (-11.73 -> -12.10 km/s, truth -12.0) with
+its error 1.25 -> 0.95 km/s, trf3_08 by +0.017 with 0.33 -> 0.28 km/s; recorded again then (the
+library templates built again with it moved the Kurucz Sun's velocities by +0.007 of their errors and
+the errors by -0.6%: not recorded again). The caches keyed by the arrays' bytes, the segment sums in one
 call, Newton's steps on floats, the scores' window sums in place and the other changes for speed alone
 after them moved no velocity of 232 spectra (the speed test's, the night benchmark's, the demo night, JHC
 and MILES stars; ``bench_velocity.py --against`` 226be32) and the errors by at most 4.4e-16 of themselves.
@@ -75,18 +84,18 @@ NIGHT_FILES = ("trf3_01.fits", "trf3_05.txt", "trf3_08.fits")
 
 # name -> (template, rv, rv_err, rv_err_mc or None), recorded with the grid of cell means (see the module docstring)
 REFERENCE = {
-    'kurucz -250': ('library G8 V', -247.28083704701135, 6.095235503963901, None),
-    'kurucz -90': ('library G8 V', -87.56277767853715, 6.060555913711971, None),
-    'kurucz +35': ('library G8 V', 36.684849138534865, 6.0276032955020815, 0.6227182774153683),
-    'kurucz +180': ('library G8 V', 181.03241580998932, 6.033757917079945, None),
-    'kurucz +290': ('library G8 V', 292.3822436365704, 6.078622166372349, 0.5809348140310465),
+    'kurucz -250': ('library G8 V', -247.29271446612566, 3.79848491756326, None),
+    'kurucz -90': ('library G8 V', -87.57284082952042, 3.7129800636909063, None),
+    'kurucz +35': ('library G8 V', 36.67399985463213, 3.6730874618664164, 0.6226705245646992),
+    'kurucz +180': ('library G8 V', 181.02145538727703, 3.6604348772012436, None),
+    'kurucz +290': ('library G8 V', 292.37159817691673, 3.7440798132703814, 0.5809038603509838),
     'synth K1 III': ('synthetic K1.5 III', -321.563763605606, 0.5404213810224551, None),
     'synth F3 IV': ('synthetic F3.5 V', 138.41052679343758, 1.2529009362409533, None),
     'synth A7 III': ('synthetic F0 III', -58.289887079892495, 0.8602753471704787, None),
     'synth M2 V': ('synthetic M2 V', 24.396553386291547, 0.6117359849686684, None),
-    'trf3_01.fits': ('synthetic O8.5 V', -11.733058459699189, 1.2476531733977543, 0.45950226812696315),
+    'trf3_01.fits': ('synthetic O8.5 V', -12.102216987567461, 0.9525635211531148, 0.30587453736263787),
     'trf3_05.txt': ('synthetic A8.5 V', -41.67349051614002, 1.7028548565241162, 0.3679501371165709),
-    'trf3_08.fits': ('synthetic G2 V', 55.219112797489004, 0.32911583382101983, 0.2018019567617698),
+    'trf3_08.fits': ('synthetic G2 V', 55.224703286397684, 0.28299078456764415, 0.2016971754559865),
 }
 
 
