@@ -21,55 +21,37 @@ Prints, with the specan on ``PYTHONPATH`` (run it against another checkout for a
 
 import argparse
 import os
+import sys
 from pathlib import Path
 
 import astropy.units as u
 import numpy as np
 from astropy.nddata import StdDevUncertainty
-from scipy.ndimage import gaussian_filter1d
 from specutils import Spectrum
 
 import specan
 from specan import lines
 from specan.obsinfo import ObsInfo
 
+# the tests' Kurucz Sun and hydrogen bound: the benchmark prints what they check
+sys.path.insert(0, str(Path(__file__).resolve().parents[1] / "tests"))
+from test_lines_balmer_high import hydrogen_bound
+from test_lines_balmer_high import sun_arrays as _sun_arrays
+
 IDS = ("H_delta", "H_epsilon", "H_8", "H_9", "H_10", "H_11", "H_12")
-R_FILE = 2000.0   # the rms-solar file's resolving power (kurucz-fsunallp.2000resam125)
 
 
 def _kurucz():
     import solar
 
     d = np.loadtxt(Path(solar.__file__).parent / "data_files" / "kurucz-fsunallp.2000resam125.txt")
-    w, f, c = d[:, 0] * 10.0, d[:, 1], d[:, 2]
-    keep = (w > 3600) & (w < 4500)
-    return w[keep], f[keep], c[keep]
+    return d[:, 0] * 10.0, d[:, 1], d[:, 2]
 
 
 def sun_arrays(resolving_power, snr=100.0, seed=0):
-    """(pixels, true normalised flux, noisy normalised flux, noise, continuum) of the Kurucz Sun."""
-    w, f, c = _kurucz()
-    lnw = np.linspace(np.log(w[0]), np.log(w[-1]), 8 * w.size)
-    fine = np.interp(lnw, np.log(w), f / c)
-    if resolving_power < R_FILE:
-        step = lnw[1] - lnw[0]
-        fine = 1.0 + gaussian_filter1d(fine - 1.0, np.sqrt(1 / resolving_power**2 - 1 / R_FILE**2) / 2.3548 / step)
-    pix = np.arange(3700.0, 4400.0, 3700.0 / (resolving_power * 2.5))
-    clean = np.interp(np.log(pix), lnw, fine)
-    sig = np.sqrt(np.clip(clean, 1e-3, None)) / snr
-    noisy = clean + np.random.default_rng(seed).normal(size=clean.size) * sig
-    cont = np.interp(pix, w, c)
-    return pix, clean, noisy, sig, cont / cont.max()
-
-
-def hydrogen_bound(pix, clean, centre, lo, hi):
-    sel = (pix >= lo) & (pix <= hi)
-    x, f = pix[sel], clean[sel]
-    env = np.empty(x.size)
-    red = x >= centre
-    env[red] = np.maximum.accumulate(f[red])
-    env[~red] = np.maximum.accumulate(f[~red][::-1])[::-1]
-    return float(np.sum(np.clip(1.0 - env, 0.0, None) * np.gradient(x)))
+    """(pixels, true normalised flux, noisy normalised flux, noise, continuum) of the Kurucz Sun:
+    the tests' own (tests/test_lines_balmer_high.py), so the benchmark prints what they check."""
+    return _sun_arrays(*_kurucz(), resolving_power, snr, seed)
 
 
 def _row(table, line_id):
@@ -143,7 +125,7 @@ def miles():
                 row = _row(t, k)
                 values[k].append((row["ew"].to_value(u.AA), row["ew_err"].to_value(u.AA)))
                 cells.append(f"{k[2:]} {values[k][-1][0]:5.2f}+-{values[k][-1][1]:4.2f}")
-            print(f"   {r['id']} {str(r['mk']):7s} " + " ".join(cells))
+            print(f"   {r['id']} {r['mk']!s:7s} " + " ".join(cells))
         ok = np.array([e for _, e in values["H_delta"]]) >= 0.05
         for k in IDS:
             v = np.array(values[k], float)[ok]

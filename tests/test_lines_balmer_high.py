@@ -14,7 +14,6 @@ Outside checks:
   hydrogen, keep errors of the noise alone.
 """
 
-from pathlib import Path
 
 import astropy.units as u
 import numpy as np
@@ -30,9 +29,11 @@ HIGH = ("H_epsilon", "H_8", "H_9", "H_10", "H_11", "H_12")
 R_KURUCZ = 2000.0   # resolving power of the rms-solar file (kurucz-fsunallp.2000resam125)
 
 
-def _sun(kurucz_sun, resolving_power, with_errors, snr=100.0, seed=0):
-    """(spectrum, true normalised flux on its pixels) of the Kurucz Sun at ``resolving_power``."""
-    w, f, c = kurucz_sun
+def sun_arrays(w, f, c, resolving_power, snr=100.0, seed=0):
+    """(pixels, true normalised flux, noisy normalised flux, noise, continuum scaled to 1) of the
+    Kurucz Sun (``w``, ``f``, ``c``: the model's vacuum Angstrom, flux and continuum) over
+    3700-4400 A at ``resolving_power``, 2.5 pixels a resolution element, photon noise of ``snr``
+    (also used by ``benchmarks/bench_balmer_high.py``)."""
     keep = (w > 3600) & (w < 4500)
     w, y = w[keep], f[keep] / c[keep]
     lnw = np.linspace(np.log(w[0]), np.log(w[-1]), 8 * w.size)
@@ -43,7 +44,14 @@ def _sun(kurucz_sun, resolving_power, with_errors, snr=100.0, seed=0):
     pix = np.arange(3700.0, 4400.0, 3700.0 / (resolving_power * 2.5))
     clean = np.interp(np.log(pix), lnw, fine)
     sig = np.sqrt(np.clip(clean, 1e-3, None)) / snr
-    flux = clean + np.random.default_rng(seed).normal(size=clean.size) * sig
+    noisy = clean + np.random.default_rng(seed).normal(size=clean.size) * sig
+    cont = np.interp(pix, w, c[keep])
+    return pix, clean, noisy, sig, cont / cont.max()
+
+
+def _sun(kurucz_sun, resolving_power, with_errors, snr=100.0, seed=0):
+    """(spectrum, true normalised flux on its pixels) of the Kurucz Sun at ``resolving_power``."""
+    pix, clean, flux, sig, _ = sun_arrays(*kurucz_sun, resolving_power, snr, seed)
     info = ObsInfo(object="Kurucz Sun", medium="vacuum", medium_assumed=False, resolving_power=resolving_power,
                    normalized=True)
     spec = Spectrum(flux=flux * u.dimensionless_unscaled, spectral_axis=pix * u.AA,

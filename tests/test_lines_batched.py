@@ -36,9 +36,9 @@ import astropy.units as u
 import numpy as np
 import pytest
 from astropy.table import Table
+from test_lines import make_spectrum
 
 from specan import lines, prepare, read
-from test_lines import make_spectrum
 
 DEMO = Path(__file__).resolve().parents[1] / "sample_spectra"
 
@@ -130,16 +130,20 @@ def test_batched_fits_match_one_by_one_on_the_demo_night():
     assert other <= 1   # measured: 0 (1, HeII 6560 in trf3_11, before the Voigt batch's direct starts)
 
 
-@pytest.mark.parametrize("true_continuum", [False, True])
-def test_batched_fits_match_one_by_one_on_the_kurucz_sun(kurucz_sun, true_continuum):
-    w, f, c = kurucz_sun   # Kurucz solar model (rms-solar), R 2000, vacuum wavelengths
+def kurucz_spectrum(kurucz_sun, true_continuum):
+    """The Kurucz solar model (rms-solar; R 2000, vacuum wavelengths) over 3700-8800 A at S/N 500,
+    normalised by its true continuum or by ``prepare``'s fitted one."""
+    w, f, c = kurucz_sun
     keep = (w > 3700) & (w < 8800)
     w, f, c = w[keep], f[keep], c[keep]
     if true_continuum:
-        spec = make_spectrum(w, f / c, sigma=f / c / 500.0, medium="vacuum", resolving_power=2000.0)
-    else:
-        spec = prepare(make_spectrum(w, f, sigma=f / 500.0, medium="vacuum", resolving_power=2000.0,
-                                     normalized=False))
+        return make_spectrum(w, f / c, sigma=f / c / 500.0, medium="vacuum", resolving_power=2000.0)
+    return prepare(make_spectrum(w, f, sigma=f / 500.0, medium="vacuum", resolving_power=2000.0, normalized=False))
+
+
+@pytest.mark.parametrize("true_continuum", [False, True])
+def test_batched_fits_match_one_by_one_on_the_kurucz_sun(kurucz_sun, true_continuum):
+    spec = kurucz_spectrum(kurucz_sun, true_continuum)
     slow = lines.measure(spec, _batched=False)
     fast = lines.measure(spec, exact_fits=True)
     assert (slow["profile"] == "voigt").sum() >= 5   # the Voigt path is exercised (Balmer, Ca II, Mg b)
@@ -163,10 +167,11 @@ def test_batched_fits_match_one_by_one_on_miles_stars(miles):
 
 def test_batched_voigt_converges_where_it_stops():
     # a single Voigt line with damping wings: both fits reach the same optimum
+    from scipy.special import voigt_profile
+
     from specan.lines import batchfit
     from specan.lines.data import LineData
     from specan.lines.profiles import fit_profile
-    from scipy.special import voigt_profile
 
     wave = np.arange(4800.0, 4920.0, 0.5)
     rng = np.random.default_rng(7)

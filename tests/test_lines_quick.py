@@ -44,11 +44,12 @@ from astropy.nddata import StdDevUncertainty
 from astropy.table import Table
 from scipy.special import voigt_profile
 from specutils import Spectrum
+from test_lines import SOLAR_STRONG_EW_AA, _damped_line, make_spectrum, one_line_list
+from test_lines_batched import kurucz_spectrum
 
 from specan import lines, prepare, read
 from specan.linelist import load_linelist
 from specan.obsinfo import ObsInfo
-from test_lines import SOLAR_STRONG_EW_AA, _damped_line, make_spectrum, one_line_list
 
 DEMO = Path(__file__).resolve().parents[1] / "sample_spectra"
 GAUSS_FWHM = 2.0 * np.sqrt(2.0 * np.log(2.0))
@@ -97,14 +98,7 @@ def test_quick_design_within_its_tolerance_on_the_demo_night():
 
 @pytest.mark.parametrize("true_continuum", [False, True])
 def test_quick_design_within_its_tolerance_on_the_kurucz_sun(kurucz_sun, true_continuum):
-    w, f, c = kurucz_sun   # Kurucz solar model (rms-solar), R 2000, vacuum wavelengths
-    keep = (w > 3700) & (w < 8800)
-    w, f, c = w[keep], f[keep], c[keep]
-    if true_continuum:
-        spec = make_spectrum(w, f / c, sigma=f / c / 500.0, medium="vacuum", resolving_power=2000.0)
-    else:
-        spec = prepare(make_spectrum(w, f, sigma=f / 500.0, medium="vacuum", resolving_power=2000.0,
-                                     normalized=False))
+    spec = kurucz_spectrum(kurucz_sun, true_continuum)   # Kurucz solar model (rms-solar), R 2000
     n, flags, move = _differences(lines.measure(spec, exact_fits=True), lines.measure(spec))
     assert flags == 0                        # measured: 0 (either continuum)
     assert n > 150 and (move > 1.0).sum() <= 3   # measured: 3 of 174 (fitted continuum), 0 of 174 (true)
@@ -179,7 +173,7 @@ def test_quick_fits_recover_injected_lines_as_well_as_exact(broad, margin):
 
 
 def test_quick_solar_strong_lines_as_near_the_published_values(kurucz_sun):
-    w, f, c = kurucz_sun
+    w, f, _ = kurucz_sun
     keep = (w > 3700) & (w < 8800)
     spec = prepare(make_spectrum(w[keep], f[keep], sigma=f[keep] / 500.0, medium="vacuum",
                                  resolving_power=2000.0, normalized=False))
