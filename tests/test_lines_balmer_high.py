@@ -243,3 +243,16 @@ def test_h_epsilon_error_covers_what_hydrogen_alone_holds_in_synthetic_stars(res
         hydrogen = float(np.sum((1.0 - alone.flux.value)[sel] * np.diff(pixel_edges(w))[sel]))
         pulls[sptype] = (row["ew"].to_value(u.AA) - hydrogen) / row["ew_err"].to_value(u.AA)
     assert max(abs(p) for p in pulls.values()) < 2.5, pulls
+
+
+def test_the_unassignable_share_reaches_the_command_line_output(kurucz_sun):
+    # what `specan lines --json` prints: the share is its own key and inside ew_err (the Kurucz Sun's
+    # H9 at R 2000 holds Mg I 3832/3838 on its wing: a share of several Angstrom, measured 8.85)
+    from specan.cli.lines import lines_file
+
+    spec, _, _ = _sun(kurucz_sun, 2000.0, True)
+    d = lines_file(spec, {}, {"linelist": None, "bands": None, "rv": 0.0, "profile": "auto", "star_type": None})
+    row = {r["id"]: r for r in d["lines"]}["H_9"]
+    assert row["ew_err_blend_aa"] > 1.0
+    assert row["ew_err_aa"] >= row["ew_err_blend_aa"]
+    assert {"MgI_3832", "MgI_3838"} <= set(row["blend"])

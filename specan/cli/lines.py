@@ -45,7 +45,8 @@ def lines_file(path, overrides, options):
             "wave_air_aa": _aa(r["wave_air"]), "wave_vac_aa": _aa(r["wave_vac"]),
             "wave_obs_aa": _aa(r["wave_obs"]),
             "ew_aa": _aa(r["ew"]), "ew_err_aa": _aa(r["ew_err"]),
-            "ew_err_cayrel_aa": _aa(r["ew_err_cayrel"]), "ew_fit_aa": _aa(r["ew_fit"]),
+            "ew_err_cayrel_aa": _aa(r["ew_err_cayrel"]), "ew_err_blend_aa": _aa(r["ew_err_blend"]),
+            "ew_fit_aa": _aa(r["ew_fit"]),
             "fwhm_aa": _aa(r["fwhm"]), "depth": float(r["depth"]), "fit_chi2": float(r["fit_chi2"]),
             "method": str(r["method"]),
             "blend": [b for b in str(r["blend"]).split(",") if b],
@@ -125,6 +126,9 @@ def command(ctx, files, linelist, bands, rv, profile, star_type, show_all, as_js
                 notes.append("not detected")
             if r["blend"]:
                 notes.append("blend: " + ",".join(r["blend"]))
+            if r["ew_err_blend_aa"] == r["ew_err_blend_aa"] and r["ew_err_blend_aa"] > 0:
+                # the high Balmer lines' share no one can assign (specan.lines.hydrogen_blends), inside ew_err
+                notes.append(f"+-{r['ew_err_blend_aa']:.2f} of it unassignable")
             click.echo(f"  {r['id']:<12} {lab:9.2f} {_fmt(r['wave_obs_aa'], '9.2f')} "
                        f"{_fmt(r['ew_aa'], '8.3f')} {_fmt(r['ew_err_aa'], '7.3f')} "
                        f"{_fmt(r['fwhm_aa'], '6.2f')} {_fmt(r['depth'], '6.3f')}  {'; '.join(notes)}")
