@@ -49,13 +49,16 @@ CCF about it), :mod:`.choice` (resolving power and template choice), :mod:`.unce
 
 from __future__ import annotations
 
+from typing import NamedTuple
+
 import astropy.units as u
 import numpy as np
 
 from ..doppler import doppler_factor, shift_to_rest, velocity_from_factor
 from ..frames import ESCAPE_SPEED, HIGH_VELOCITY, barycentric_correction, galactic_rest_frame_velocity
 from .bank import refine_peaks, short_length, short_side
-from .choice import choose_template, parse_template, settle_resolving_power
+from .choice import (BROADER_THAN_STATED, SEEN_SOURCE, ResolvingPower, choose_template, parse_template,
+                     seen_resolving_power, settle_resolving_power)
 from .companion import Companion, detect_companion
 from .correlation import Correlation, Peak, PeakSearch, ccf_about_peak, observed_side
 from .frame_velocities import apply_frames
@@ -151,18 +154,24 @@ def measure(spectrum, template=None, *, reference=None, template_rv=0 * u.km / u
     notes = []
     spectrum = normalised(spectrum, notes)
     observed = observe_on_grid(spectrum, telluric=telluric, clip_emission=clip_emission, notes=notes)
-    where = observed.info.path
     power = settle_resolving_power(observed, spectrum, notes)
-    lags = lag_window(observed, vmax, power.value, highpass)
-    search = PeakSearch(observed_side(observed, lags), lags, min_overlap)
-    data_short = short_side(search)
-    choice = choose_template(parse_template(template), search, power, reference=reference, template_rv=template_rv,
-                             template_grid=template_grid, clip_emission=clip_emission, notes=notes, where=where,
-                             data_short=data_short, exclude=tuple(exclude_templates))
-    peaks = _refined_peaks(search, choice.mixture, data_short, where)
-    best, peak = choice.mixture[0].template, peaks[0]
-    corr = Correlation(search.side.arrays, best, lags.pad, lags.m, search.side.ffts)
-    about = ccf_about_peak(corr, best, observed.valid, search.side.weight, lags, peak)
+    request = parse_template(template)
+    options = dict(reference=reference, template_rv=template_rv, template_grid=template_grid,
+                   clip_emission=clip_emission, where=observed.info.path, exclude=tuple(exclude_templates))
+    first = list(notes)
+    run = _correlated(observed, power, vmax, highpass, min_overlap, request, options, first)
+    seen = seen_resolving_power(run.choice, run.about, observed)
+    if power.source == "file" and seen is not None and seen * BROADER_THAN_STATED < power.value:
+        # the lines are broader than the stated R says (a nominal R in the header, a wide slit, a
+        # fast rotator): a high-pass and templates set at the stated R would strip and sharpen what
+        # the data have; both set at the resolution the correlation's own width shows instead
+        notes.append(f"lines broader than the stated resolving power R {power.value:.0f}: the correlation's "
+                     f"width shows R ~ {seen:.0f}; the low-frequency filter and the templates are set for that")
+        power = ResolvingPower(float(f"{seen:.3g}"), True, SEEN_SOURCE)
+        run = _correlated(observed, power, vmax, highpass, min_overlap, request, options, notes)
+    else:
+        notes[:] = first
+    lags, search, choice, peaks, best, peak, about = run
     td = tonry_davis(about, peak)
     errs = estimate_errors(errors, td, peak, observed, search, best, n_resample, seed, notes)
     resels = observed.n_data * lags.step * choice.power.value   # the data's span, not the grid's padding
@@ -191,6 +200,32 @@ def measure(spectrum, template=None, *, reference=None, template_rv=0 * u.km / u
     flags += assumption_flags(spectrum, observed.info, notes)
     return result_dict(choice, peak, peaks, about, td, errs, budget, segments, companion, frames, flags, notes,
                        lags.step, spectrum)
+
+
+class _Run(NamedTuple):
+    """One correlation of the spectrum at one resolving power: the lag window, the peak search, the
+    template choice, the refined peaks of its templates (the best first) and the CCF about the best's."""
+
+    lags: object
+    search: PeakSearch
+    choice: object
+    peaks: list
+    best: object
+    peak: Peak
+    about: object
+
+
+def _correlated(observed, power, vmax, highpass, min_overlap, request, options, notes):
+    """:class:`_Run` of ``observed`` with the high-pass and the built-in templates at ``power``."""
+    lags = lag_window(observed, vmax, power.value, highpass)
+    search = PeakSearch(observed_side(observed, lags), lags, min_overlap)
+    data_short = short_side(search)
+    choice = choose_template(request, search, power, notes=notes, data_short=data_short, **options)
+    peaks = _refined_peaks(search, choice.mixture, data_short, options["where"])
+    best, peak = choice.mixture[0].template, peaks[0]
+    corr = Correlation(search.side.arrays, best, lags.pad, lags.m, search.side.ffts)
+    about = ccf_about_peak(corr, best, observed.valid, search.side.weight, lags, peak)
+    return _Run(lags, search, choice, peaks, best, peak, about)
 
 
 def _refined_peaks(search, mixture, data_short, where):
