@@ -161,7 +161,8 @@ def measure(spectrum, template=None, *, reference=None, template_rv=0 * u.km / u
     first = list(notes)
     run = _correlated(observed, power, vmax, highpass, min_overlap, request, options, first)
     seen = seen_resolving_power(run.choice, run.about, observed)
-    if power.source == "file" and seen is not None and seen * BROADER_THAN_STATED < power.value:
+    if power.source == "file" and seen is not None and seen * BROADER_THAN_STATED < power.value \
+            and not _two_peaks(run, composite_min_ratio, composite_min_sigma):
         # the lines are broader than the stated R says (a nominal R in the header, a wide slit, a
         # fast rotator): a high-pass and templates set at the stated R would strip and sharpen what
         # the data have; both set at the resolution the correlation's own width shows instead
@@ -226,6 +227,14 @@ def _correlated(observed, power, vmax, highpass, min_overlap, request, options, 
     corr = Correlation(search.side.arrays, best, lags.pad, lags.m, search.side.ffts)
     about = ccf_about_peak(corr, best, observed.valid, search.side.weight, lags, peak)
     return _Run(lags, search, choice, peaks, best, peak, about)
+
+
+def _two_peaks(run, min_ratio, min_sigma):
+    """Whether the CCF of ``run`` holds a second star: a blended pair widens the CCF as broad lines
+    do, and is no reason to blunt the templates (that merged the two peaks of a pair two
+    resolution elements apart, tests/test_velocity.py)."""
+    td = tonry_davis(run.about, run.peak)
+    return detect_companion(run.about, run.peak, td.sigma_a, run.lags.smax, min_ratio, min_sigma, []).second is not None
 
 
 def _refined_peaks(search, mixture, data_short, where):
