@@ -14,7 +14,11 @@ fractional lags (band-limited interpolation, no parabola "peak locking").
 Before correlating, both sides lose their low frequencies (a Gaussian of
 ``highpass`` resolution elements is smoothed out: Tonry & Davis' filter, done in
 pixel space): broad bands, Balmer wings and continuum residuals then neither
-dominate the correlation nor make its noise correlated over many lags.
+dominate the correlation nor make its noise correlated over many lags. Where the automatic
+choice's correlation is broader than the stated resolving power allows (a nominal R in the header,
+a wide slit: :func:`~.choice.seen_resolving_power`, more than :data:`~.choice.BROADER_THAN_STATED`
+coarser), filter and templates are set at the resolution it shows and the velocity measured again
+(``resolving_power_source`` :data:`~.choice.SEEN_SOURCE`, and a note).
 
 Templates: with no template given every built-in template is scored in one batch (the empirical
 library and the synthetic grid, :mod:`.bank`); the velocity is the weighted mean of those whose
@@ -131,6 +135,8 @@ def measure(spectrum, template=None, *, reference=None, template_rv=0 * u.km / u
     highpass : float or None
         Low-frequency cut: a Gaussian of this sigma, in resolution elements, is smoothed out
         of spectrum and template (continuum residuals, band and wing shapes); None disables.
+        Resolution elements of the stated R, or of the one the correlation shows where that is
+        coarser (see the module's description).
     exclude_templates : sequence of str
         Library template names the automatic choice must not use (e.g. a group the star
         belongs to, when testing on library stars).
