@@ -120,7 +120,9 @@ def seen_resolving_power(choice, about, observed):
         return None
     r_template = choice.power.value
     if member.candidate.kind == "library":
-        middle = float(np.exp(np.median(observed.grid[observed.valid])))
+        # the middle valid grid point (a median's sort cost 20 us a spectrum, for a 0.1% better R)
+        idx = np.flatnonzero(observed.valid)
+        middle = float(np.exp(observed.grid[idx[idx.size // 2]])) if idx.size else float(np.exp(np.median(observed.grid)))
         r_template = min(r_template, middle / templates.library_fwhm())
     return r_template / float(np.sqrt(x))
 
