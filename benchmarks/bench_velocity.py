@@ -33,7 +33,8 @@
    frame), each measured without the library templates whose group it belongs to.
 9. ``--kurucz``: the noiseless Kurucz Sun at rest (and at -640, +35, +820 km/s), R 1,000, 2,000 and
    5,000 (the model file is R ~ 2000: "5,000" is R 2000 data declared finer), no template: the
-   bias of the default choice, and of each library template alone (``library:<name>``) with the
+   bias of the default choice (and the R it was measured at: the stated one, or the one the correlation's
+   width shows where that is coarser), and of each library template alone (``library:<name>``) with the
    zero point the file gives it; the check of the templates' laboratory zero points (the Kurucz
    model is static, its lines at laboratory wavelengths; it is not used to set them).
 10. ``--against DIR``: the speed test's spectra measured by this checkout's specan and by the specan of
@@ -722,18 +723,19 @@ def kurucz_rows(model):
     rows += [(f"library {t.name}", f"library:{t.name}", (0.0,)) for t in templates.library_templates()]
     zp = {f"library {t.name}": getattr(t, "zero_point_kms", 0.0) for t in templates.library_templates()}
     for label, template, speeds in rows:
-        cells, chosen = [], []
+        cells, chosen, used = [], [], []
         for r in rs:
             dv = []
             for v in speeds:
                 res = velocity.measure(observe(model, r, v), template=template, barycentric=False)
                 dv.append(res["rv"].to_value(KMS) - v)
                 chosen.append(res["template"])
+                used.append(f"{res['resolving_power']:.0f}")
             b = float(np.mean(dv))
             cells.append(f"{b:+7.2f} ({100 * b / (C_KMS / r):+5.2f}%)")
         z = f"{zp[label]:+8.2f}" if label in zp else f"{'':8s}"
         print(f"{label:26s} {z} " + " ".join(f"{c:>17s}" for c in cells)
-              + (f"  [{', '.join(sorted(set(chosen)))}]" if template is None else ""))
+              + (f"  [{', '.join(sorted(set(chosen)))}; R used {'/'.join(dict.fromkeys(used))}]" if template is None else ""))
 
 
 def miles_stars(n):

@@ -59,7 +59,7 @@ from .obsinfo import vacuum_to_air
 from .resolution import FWHM_TO_SIGMA, smooth_to_fwhm
 
 __all__ = ["KINDS", "LIBRARY_FILE", "LibraryTemplate", "ZeroPoint", "automatic_types", "library_templates",
-           "library_birge", "library_coverage", "measure_zero_point", "on_log_grid", "zero_point_error", "zero_point_lines",
+           "library_birge", "library_coverage", "library_fwhm", "measure_zero_point", "on_log_grid", "zero_point_error", "zero_point_lines",
            "ZP_MIN_LINES"]
 
 #: The kinds of built-in template, by the name the velocity stage asks for.
@@ -112,6 +112,11 @@ def _library():
 def library_templates():
     """The library templates (:class:`LibraryTemplate`), in file order."""
     return _library()[3]
+
+
+def library_fwhm():
+    """FWHM in Angstrom of the library templates' line profile (the same at every wavelength)."""
+    return _library()[2]
 
 
 def library_coverage():

@@ -217,16 +217,52 @@ def test_library_templates_by_default_on_the_kurucz_sun(kurucz_model):
     1000.0,
     2000.0,
     pytest.param(5000.0, marks=pytest.mark.xfail(strict=True, reason=(
-        "measured: the library default reads +1.58 to +1.71 km/s on these spectra (S/N 100) and +1.60 "
-        "noiseless (benchmarks/bench_velocity.py --kurucz) on the Kurucz Sun declared R 5000 (2.7% of a "
-        "resolution element; target 1%, 0.6 km/s; the model file is R 2000, so the templates are compared "
-        "at a resolution neither has; -4.35 noiseless before the laboratory zero points)"))),
+        "measured: the library default reads +1.14 to +1.29 km/s on these spectra (S/N 100) on the Kurucz Sun "
+        "declared R 5000 (1.9-2.2% of a resolution element; target 1%, 0.6 km/s), measured at the R ~2300 its "
+        "correlation width shows (the model file is R 2000; +1.59 to +1.74 with filter and templates at the "
+        "stated R 5000); at R 2000 itself the default reads +0.82 to +1.30, already above 0.6 km/s, so this "
+        "target needs a bias below what the data's own resolution gives (-4.35 noiseless before the "
+        "laboratory zero points)"))),
 ])
 def test_library_default_bias_within_one_percent_of_a_resolution_element(kurucz_model, r):
     """Issue 11's bias target on the Kurucz Sun (an outside model, not used to set the templates' zero
     points, which come from laboratory wavelengths: ``specan.templates``), no template given."""
     errs, _ = _library_default_on_kurucz(kurucz_model, r)
     assert np.all(np.abs(errs) < 0.01 * C_KMS / r), errs
+
+
+def test_lines_broader_than_the_stated_resolution_set_filter_and_templates(kurucz_model, monkeypatch):
+    """The Kurucz Sun (the rms-solar file is R 2000 by its name: ``kurucz-fsunallp.2000resam125``)
+    stated R 5000: the correlation's width shows the coarser resolution, the velocity is measured
+    at it (said in the notes) and its bias is smaller than with filter and templates at the stated R
+    (measured: +1.14 to +1.29 against +1.59 to +1.74 km/s on these spectra, S/N 100; R ~2300 shown)."""
+    shown, errs = [], []
+    for v in (-640.0, 35.0, 820.0):
+        res = velocity.measure(_observe(kurucz_model, 5000.0, v, snr=100, seed=abs(int(v)) + 7), barycentric=False)
+        assert res["resolving_power_source"] == velocity.SEEN_SOURCE
+        assert any("broader than the stated resolving power R 5000" in n for n in res["notes"])
+        shown.append(res["resolving_power"])
+        errs.append(res["rv"].to_value(KMS) - v)
+    # the file's R 2000, within the spread of a width read from a correlation with an observed template
+    assert np.all((np.array(shown) > 1500.0) & (np.array(shown) < 3300.0)), shown
+    monkeypatch.setattr(velocity, "BROADER_THAN_STATED", float("inf"))   # the stated R kept
+    stated = [velocity.measure(_observe(kurucz_model, 5000.0, v, snr=100, seed=abs(int(v)) + 7),
+                               barycentric=False)["rv"].to_value(KMS) - v for v in (-640.0, 35.0, 820.0)]
+    assert np.mean(np.abs(errs)) < np.mean(np.abs(stated)) - 0.2, (errs, stated)
+
+
+@pytest.mark.parametrize("make", ["kurucz 1000", "kurucz 2000", "synth 5000"])
+def test_stated_resolution_kept_where_the_lines_agree(kurucz_model, make):
+    """Where the stated R is the data's, the velocity is measured at it (no second pass)."""
+    kind, r = make.split()
+    if kind == "kurucz":
+        s = _observe(kurucz_model, float(r), 120.0, snr=50, seed=3)
+    else:
+        s = synth.spectrum("K2.5", "II", resolving_power=float(r), rv=120 * KMS, snr=50, seed=4)
+    res = velocity.measure(s, barycentric=False)
+    assert res["resolving_power_source"] == "file"
+    assert res["resolving_power"] == float(r)
+    assert not any("broader than the stated" in n for n in res["notes"])
 
 
 def test_line_mask_with_a_segment_of_no_lines_warns_of_nothing(kurucz_model):
@@ -815,14 +851,16 @@ def test_user_path_scatter_within_twice_the_cramer_rao_bound(kurucz_model):
 
 @pytest.mark.slow
 @pytest.mark.xfail(strict=True, reason="measured (this test's cells: R 2000 S/N 30 and 100, R 5000 S/N 100): bias "
-                   "+1.12, +1.41, +2.00 km/s (0.75, 0.94, 3.34% of a resolution element; target 1%), pulls "
-                   "(measured - true)/rv_err rms 0.31-0.56, sd 0.03-0.11: rv_err (3.6-3.8 km/s) is dominated by "
+                   "+1.12, +1.41, +1.66 km/s (0.75, 0.94, 2.76% of a resolution element; target 1%; R 5000 is the R 2000 "
+                   "file stated finer, measured at the R ~2300 its correlation width shows: +2.00, 3.34%, with filter "
+                   "and templates at the stated R), pulls "
+                   "(measured - true)/rv_err rms 0.31-0.45, sd 0.05-0.11: rv_err (3.6-4.0 km/s) is dominated by "
                    "the library templates' laboratory zero-point errors (G8 V 3.57 km/s, a Maritz-Jarrett standard "
                    "error of the lines' median), a per-template systematic that noise realisations of one star do "
                    "not sample (it cannot average down, so the sd of these pulls measures the noise part only); "
                    "before (1.2533 sd / sqrt n): rv_err 6.0 km/s, pull rms 0.19-0.32. "
-                   "benchmarks/bench_velocity.py --user, 8 spectra a cell: bias -0.40 to +3.45 km/s over "
-                   "R 1000-5000, S/N 10-200, pull rms 0.13-0.93")
+                   "benchmarks/bench_velocity.py --quick --user, 8 spectra a cell: bias -0.34 to +3.66 km/s over "
+                   "R 1000-5000, S/N 10-200, pull rms 0.11-0.94")
 def test_user_path_bias_and_pulls(kurucz_model):
     """Issue 11's acceptance on the Kurucz Sun read as a user's file: bias within 1% of a resolution
     element, and (measured - true)/rv_err with rms and sd in 0.8-1.25."""

@@ -14,7 +14,11 @@ fractional lags (band-limited interpolation, no parabola "peak locking").
 Before correlating, both sides lose their low frequencies (a Gaussian of
 ``highpass`` resolution elements is smoothed out: Tonry & Davis' filter, done in
 pixel space): broad bands, Balmer wings and continuum residuals then neither
-dominate the correlation nor make its noise correlated over many lags.
+dominate the correlation nor make its noise correlated over many lags. Where the automatic
+choice's correlation is broader than the stated resolving power allows (a nominal R in the header,
+a wide slit: :func:`~.choice.seen_resolving_power`, more than :data:`~.choice.BROADER_THAN_STATED`
+coarser), filter and templates are set at the resolution it shows and the velocity measured again
+(``resolving_power_source`` :data:`~.choice.SEEN_SOURCE`, and a note).
 
 Templates: with no template given every built-in template is scored in one batch (the empirical
 library and the synthetic grid, :mod:`.bank`); the velocity is the weighted mean of those whose
@@ -49,13 +53,16 @@ CCF about it), :mod:`.choice` (resolving power and template choice), :mod:`.unce
 
 from __future__ import annotations
 
+from typing import NamedTuple
+
 import astropy.units as u
 import numpy as np
 
 from ..doppler import doppler_factor, shift_to_rest, velocity_from_factor
 from ..frames import ESCAPE_SPEED, HIGH_VELOCITY, barycentric_correction, galactic_rest_frame_velocity
 from .bank import refine_peaks, short_length, short_side
-from .choice import choose_template, parse_template, settle_resolving_power
+from .choice import (BROADER_THAN_STATED, SEEN_SOURCE, ResolvingPower, choose_template, parse_template,
+                     seen_resolving_power, settle_resolving_power)
 from .companion import Companion, detect_companion
 from .correlation import Correlation, Peak, PeakSearch, ccf_about_peak, observed_side
 from .frame_velocities import apply_frames
@@ -73,6 +80,8 @@ __all__ = [
     "galactic_rest_frame_velocity",
     "HIGH_VELOCITY",
     "ESCAPE_SPEED",
+    "BROADER_THAN_STATED",
+    "SEEN_SOURCE",
 ]
 
 
@@ -126,6 +135,8 @@ def measure(spectrum, template=None, *, reference=None, template_rv=0 * u.km / u
     highpass : float or None
         Low-frequency cut: a Gaussian of this sigma, in resolution elements, is smoothed out
         of spectrum and template (continuum residuals, band and wing shapes); None disables.
+        Resolution elements of the stated R, or of the one the correlation shows where that is
+        coarser (see the module's description).
     exclude_templates : sequence of str
         Library template names the automatic choice must not use (e.g. a group the star
         belongs to, when testing on library stars).
@@ -151,18 +162,28 @@ def measure(spectrum, template=None, *, reference=None, template_rv=0 * u.km / u
     notes = []
     spectrum = normalised(spectrum, notes)
     observed = observe_on_grid(spectrum, telluric=telluric, clip_emission=clip_emission, notes=notes)
-    where = observed.info.path
     power = settle_resolving_power(observed, spectrum, notes)
-    lags = lag_window(observed, vmax, power.value, highpass)
-    search = PeakSearch(observed_side(observed, lags), lags, min_overlap)
-    data_short = short_side(search)
-    choice = choose_template(parse_template(template), search, power, reference=reference, template_rv=template_rv,
-                             template_grid=template_grid, clip_emission=clip_emission, notes=notes, where=where,
-                             data_short=data_short, exclude=tuple(exclude_templates))
-    peaks = _refined_peaks(search, choice.mixture, data_short, where)
-    best, peak = choice.mixture[0].template, peaks[0]
-    corr = Correlation(search.side.arrays, best, lags.pad, lags.m, search.side.ffts)
-    about = ccf_about_peak(corr, best, observed.valid, search.side.weight, lags, peak)
+    request = parse_template(template)
+    options = dict(reference=reference, template_rv=template_rv, template_grid=template_grid,
+                   clip_emission=clip_emission, where=observed.info.path, exclude=tuple(exclude_templates))
+    first = list(notes)
+    run = _correlated(observed, power, vmax, highpass, min_overlap, request, options, first)
+    seen = seen_resolving_power(run.choice, run.about, observed)
+    # the automatic choice only: against one template named by the caller a mismatch widens the CCF
+    # too (the Kurucz Sun against library K7 V at R 1000 read R ~700 and moved +10 to +18 km/s, measured)
+    if request.kind == "auto" and power.source == "file" and seen is not None and seen * BROADER_THAN_STATED < power.value \
+            and not _two_peaks(run, composite_min_ratio, composite_min_sigma):
+        # the lines are broader than the stated R says (a nominal R in the header, a wide slit, a
+        # fast rotator): a high-pass and templates set at the stated R would strip and sharpen what
+        # the data have; both set at the resolution the correlation's own width shows instead
+        notes.append(f"lines broader than the stated resolving power R {power.value:.0f}: the correlation's "
+                     f"width shows R ~ {seen:.0f}; the low-frequency filter and the templates are set for that")
+        # two significant figures: spectra of one set-up share the templates made at it
+        power = ResolvingPower(float(f"{seen:.2g}"), True, SEEN_SOURCE)
+        run = _correlated(observed, power, vmax, highpass, min_overlap, request, options, notes)
+    else:
+        notes[:] = first
+    lags, search, choice, peaks, best, peak, about = run
     td = tonry_davis(about, peak)
     errs = estimate_errors(errors, td, peak, observed, search, best, n_resample, seed, notes)
     resels = observed.n_data * lags.step * choice.power.value   # the data's span, not the grid's padding
@@ -191,6 +212,40 @@ def measure(spectrum, template=None, *, reference=None, template_rv=0 * u.km / u
     flags += assumption_flags(spectrum, observed.info, notes)
     return result_dict(choice, peak, peaks, about, td, errs, budget, segments, companion, frames, flags, notes,
                        lags.step, spectrum)
+
+
+class _Run(NamedTuple):
+    """One correlation of the spectrum at one resolving power: the lag window, the peak search, the
+    template choice, the refined peaks of its templates (the best first) and the CCF about the best's."""
+
+    lags: object
+    search: PeakSearch
+    choice: object
+    peaks: list
+    best: object
+    peak: Peak
+    about: object
+
+
+def _correlated(observed, power, vmax, highpass, min_overlap, request, options, notes):
+    """:class:`_Run` of ``observed`` with the high-pass and the built-in templates at ``power``."""
+    lags = lag_window(observed, vmax, power.value, highpass)
+    search = PeakSearch(observed_side(observed, lags), lags, min_overlap)
+    data_short = short_side(search)
+    choice = choose_template(request, search, power, notes=notes, data_short=data_short, **options)
+    peaks = _refined_peaks(search, choice.mixture, data_short, options["where"])
+    best, peak = choice.mixture[0].template, peaks[0]
+    corr = Correlation(search.side.arrays, best, lags.pad, lags.m, search.side.ffts)
+    about = ccf_about_peak(corr, best, observed.valid, search.side.weight, lags, peak)
+    return _Run(lags, search, choice, peaks, best, peak, about)
+
+
+def _two_peaks(run, min_ratio, min_sigma):
+    """Whether the CCF of ``run`` holds a second star: a blended pair widens the CCF as broad lines
+    do, and is no reason to blunt the templates (that merged the two peaks of a pair two
+    resolution elements apart, tests/test_velocity.py)."""
+    td = tonry_davis(run.about, run.peak)
+    return detect_companion(run.about, run.peak, td.sigma_a, run.lags.smax, min_ratio, min_sigma, []).second is not None
 
 
 def _refined_peaks(search, mixture, data_short, where):
