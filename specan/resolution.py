@@ -141,13 +141,14 @@ def normalised_arrays(spectrum, min_good=10, resolving_power=None, dersnr=False)
         sigma = np.full(flux.shape, _dersnr_noise(wave, flux, good))
         source = "DER_SNR"
     elif sigma is None:
-        from .noise import correlated_pixels, flux_noise, pixels_per_fwhm
+        from .noise import correlated_pixels, kept_flux_noise, pixels_per_fwhm
 
         # whether the pixels are correlated: as prepare found on the flux before normalisation
         # (info.snr_flux_method), so that the S/N and the lines' errors rest on one decision
         # the telluric pixels with their measured flux (not the interpolation the lines get)
         telluric = _telluric_noise_pixels(spectrum, measured, mask)
-        est = flux_noise(np.where(telluric, measured, flux), good,
+        # (kept: the velocity stage has made the same estimate of these pixels, specan.noise.kept_flux_noise)
+        est = kept_flux_noise(np.where(telluric, measured, flux), good,
                          pixels_per_fwhm(wave, resolving_power or info.resolving_power),
                          correlated=correlated_pixels(info.snr_flux_method), noise_only=telluric)
         # no noise found (a noiseless model): the floor below stands in

@@ -142,6 +142,36 @@ def test_estimate_with_telluric_pixels_is_the_direct_one(kurucz_sun, monkeypatch
         _agree(monkeypatch, noisy, ~tell, noise.pixels_per_fwhm(w, 2000.0), noise_only=tell)
 
 
+
+def test_kept_estimate_is_a_new_one_and_shared_across_media(kurucz_sun):
+    # The Kurucz Sun (rms-solar) with photon noise, its telluric bands noise-only, as the velocity and
+    # lines stages see one spectrum: the kept estimate is exactly flux_noise's, a second stage asking
+    # on the same pixels with wavelengths in air (widths ~1e-5 apart) gets it without a new estimate,
+    # and any other flux, mask or instrumental width gets a new one
+    from specan.obsinfo import vacuum_to_air
+
+    w, f, tell = _kurucz_telluric(kurucz_sun)
+    noisy = f + np.random.default_rng(5).normal(0.0, 1.0, f.size) * np.sqrt(f * f.max()) / 100
+    ppf_vac = noise.pixels_per_fwhm(w, 2000.0)
+    ppf_air = noise.pixels_per_fwhm(np.asarray(vacuum_to_air(w * u.AA).to_value(u.AA)), 2000.0)
+    assert 0 < np.max(np.abs(ppf_air / ppf_vac - 1)) < 1e-3
+    new = noise.flux_noise(noisy, ~tell, ppf_vac, noise_only=tell)
+    first = noise.kept_flux_noise(noisy, ~tell, ppf_vac, noise_only=tell)
+    np.testing.assert_array_equal(first.sigma, new.sigma)
+    assert (first.snr, first.method) == (new.snr, new.method)
+    assert noise.kept_flux_noise(noisy.copy(), ~tell, ppf_air, noise_only=tell.copy()) is first
+    with pytest.raises(ValueError):
+        first.sigma[0] = 1.0    # kept estimates are read-only
+    other = noisy.copy()
+    other[100] *= 1.0 + 1e-12
+    assert noise.kept_flux_noise(other, ~tell, ppf_vac, noise_only=tell) is not first
+    assert noise.kept_flux_noise(noisy, ~tell, 1.3 * ppf_vac, noise_only=tell) is not first
+    assert noise.kept_flux_noise(noisy, ~tell, ppf_vac, noise_only=None) is not first
+    wider = noise.kept_flux_noise(noisy, ~tell, 1.3 * ppf_vac, noise_only=tell)
+    ref = noise.flux_noise(noisy, ~tell, 1.3 * ppf_vac, noise_only=tell)
+    np.testing.assert_array_equal(wider.sigma, ref.sigma)
+
+
 def test_telluric_pixels_hold_noise_for_the_plateau(kurucz_sun):
     # The Kurucz Sun at S/N 300 with the telluric bands masked: without them the plateau test saw
     # mostly blue, line-rich pixels and fell back on DER_SNR (S/N 39, measured); with them as

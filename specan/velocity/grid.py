@@ -117,10 +117,11 @@ def flux_pixel_noise(w, f, bad, info, noise_only=None):
     the flux shows no white-noise plateau (correlated pixels, or no noise found) the noise is
     :func:`noise_from_flux`'s, DER_SNR at the continuum, as before.
     """
-    from ..noise import BLOCK, correlated_pixels, flux_noise, pixels_per_fwhm
+    from ..noise import BLOCK, correlated_pixels, kept_flux_noise, pixels_per_fwhm
 
     good = ~bad
-    est = flux_noise(f, good, pixels_per_fwhm(w, info.resolving_power),
+    # (kept: the lines stage asks for the same estimate of the same pixels next)
+    est = kept_flux_noise(f, good, pixels_per_fwhm(w, info.resolving_power),
                      correlated=correlated_pixels(info.snr_flux_method), noise_only=noise_only)
     if correlated_pixels(est.method) is not False or est.snr is None or not np.isfinite(est.sigma).any():
         # No white-noise plateau (pixels correlated, or a noiseless model whose line structure is all
