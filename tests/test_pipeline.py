@@ -15,6 +15,7 @@ import os
 import signal
 import subprocess
 import sys
+import tempfile
 import time
 from pathlib import Path
 
@@ -403,6 +404,34 @@ def test_jobs_and_dask_give_the_same_catalogue(tmp_path, fixed_code):
         assert by_dask[name] == ref[name], name
     for name in one.colnames:
         assert one[name].unit == two[name].unit == on_dask[name].unit
+
+
+
+@pytest.mark.slow
+def test_unguarded_script_with_jobs_stops_with_advice(tmp_path):
+    # Python's documentation (multiprocessing, "Safe importing of main module"): with the spawn start
+    # method every worker imports the main script again, so a script that starts a run at its top level
+    # re-runs it in each worker. That ran for ever before (workers dying and replaced, the parent
+    # waiting; measured); now it stops within seconds and says what to change, and no alarm file is
+    # left behind. The same call under `if __name__ == "__main__":` runs.
+    night = small_night(tmp_path / "night", count=2)
+    alarms_before = set(Path(tempfile.gettempdir()).glob("specan-alarm-*"))
+    call = f"from specan import pipeline\npipeline.run([{str(night)!r}], {str(tmp_path / 'out')!r}, jobs=2, plots=False)\n"
+    unguarded = tmp_path / "unguarded.py"
+    unguarded.write_text(call)
+    started = time.perf_counter()
+    proc = subprocess.run([sys.executable, str(unguarded)], capture_output=True, text=True, timeout=240, check=False,
+                          cwd=str(tmp_path))
+    assert proc.returncode != 0
+    assert 'if __name__ == "__main__":' in proc.stderr.splitlines()[-1]
+    assert time.perf_counter() - started < 200
+    guarded = tmp_path / "guarded.py"
+    guarded.write_text('if __name__ == "__main__":\n' + "".join("    " + line + "\n" for line in call.splitlines()))
+    proc = subprocess.run([sys.executable, str(guarded)], capture_output=True, text=True, timeout=240, check=False,
+                          cwd=str(tmp_path))
+    assert proc.returncode == 0, proc.stderr[-2000:]
+    assert len(Table.read(tmp_path / "out" / "catalogue.ecsv")) == 5
+    assert set(Path(tempfile.gettempdir()).glob("specan-alarm-*")) == alarms_before
 
 
 # ----------------------------------------------------------------------------- the demo night vs its truth table
