@@ -40,6 +40,7 @@ class ObservedSide(NamedTuple):
     ffts: tuple
     total_weight: float
     ceiling: float = 1.0
+    height_noise: float = 0.0
 
 
 class PeakSearch(NamedTuple):
@@ -78,7 +79,7 @@ def observed_side(observed, lags):
     weight = observed.taper * w_noise
     arrays = correlation_arrays(highpass(observed.flux - 1.0, lags.hp_sigma, observed.valid), weight)
     d_ffts = tuple(sfft.rfft(np.stack(arrays), lags.m, axis=1))   # (one call for the three)
-    return ObservedSide(weight, arrays, d_ffts, float(np.sum(weight)), noise_ceiling(observed, weight, arrays))
+    return ObservedSide(weight, arrays, d_ffts, float(np.sum(weight)), *noise_ceiling(observed, weight, arrays))
 
 
 #: Least squared ceiling :func:`noise_ceiling` returns (our choice: data read as almost all noise keep a
@@ -87,7 +88,8 @@ MIN_CEILING_SQUARED = 0.01
 
 
 def noise_ceiling(observed, weight, arrays):
-    """sqrt(1 - noise energy / data energy): the normalised correlation a perfect template would reach.
+    """(ceiling, height noise): sqrt(1 - noise energy / data energy), the normalised correlation a perfect
+    template would reach, and sqrt((1 - ceiling^2) / n), the noise's standard deviation of a height.
 
     With data d = s + n, the correlation with any template t is <s + n, t> / (|s + n| |t|), whose
     expectation is the noiseless one times |s| / |s + n| (the noise adds to the data's energy, not
@@ -97,15 +99,22 @@ def noise_ceiling(observed, weight, arrays):
     (:func:`~.grid.resampled_noise_variance`); the high-pass takes out a further ~1/(2 sqrt(pi) sigma)
     of white noise's energy (a few tenths of a percent at its tens of pixels), not counted. The
     data energy is the weighted variance of the filtered data (``arrays``: w d, w, w d^2).
+
+    The height's noise is the cross term's, <n, t> / (|d| |t|): its variance is a pixel's noise over
+    the data's energy per pixel, (1 - ceiling^2) / n with n the native pixels that carry the data (each
+    an independent noise; common practice for white noise), the scale below which two templates' heights
+    cannot be told apart.
     """
     a1, a2, a3 = arrays
     total = float(np.sum(a2))
     data = float(np.sum(a3)) - float(np.sum(a1)) ** 2 / total if total > 0 else 0.0
     if not data > 0:
-        return 1.0
+        return 1.0, 0.0
     share = resampled_noise_variance(observed.spline_x, observed.grid, observed.cell)
     noise = float(np.einsum("i,i,i->", weight, observed.sigma, observed.sigma * share))
-    return math.sqrt(min(1.0, max(1.0 - noise / data, MIN_CEILING_SQUARED)))
+    squared = min(1.0, max(1.0 - noise / data, MIN_CEILING_SQUARED))
+    pixels = max(int(np.count_nonzero(observed.native_sigma)), 1)
+    return math.sqrt(squared), math.sqrt((1.0 - squared) / pixels)
 
 
 # ---------------------------------------------------------------------------
