@@ -79,7 +79,7 @@ def observed_side(observed, lags):
     weight = observed.taper * w_noise
     arrays = correlation_arrays(highpass(observed.flux - 1.0, lags.hp_sigma, observed.valid), weight)
     d_ffts = tuple(sfft.rfft(np.stack(arrays), lags.m, axis=1))   # (one call for the three)
-    return ObservedSide(weight, arrays, d_ffts, float(np.sum(weight)), *noise_ceiling(observed, weight, arrays))
+    return ObservedSide(weight, arrays, d_ffts, float(np.sum(weight)), *noise_ceiling(observed, weight, arrays, lags.hp_sigma))
 
 
 #: Least squared ceiling :func:`noise_ceiling` returns (our choice: data read as almost all noise keep a
@@ -87,7 +87,7 @@ def observed_side(observed, lags):
 MIN_CEILING_SQUARED = 0.01
 
 
-def noise_ceiling(observed, weight, arrays):
+def noise_ceiling(observed, weight, arrays, hp_sigma=None):
     """(ceiling, height noise): sqrt(1 - noise energy / data energy), the normalised correlation a perfect
     template would reach, and sqrt((1 - ceiling^2) / n), the noise's standard deviation of a height.
 
@@ -96,9 +96,10 @@ def noise_ceiling(observed, weight, arrays):
     to the cross term): every template's height is scaled by this one factor, the ceiling.
     The noise energy is the weighted sum over the grid of each point's pixel variance
     (``observed.sigma``) times the share of it the resampling keeps
-    (:func:`~.grid.resampled_noise_variance`); the high-pass takes out a further ~1/(2 sqrt(pi) sigma)
-    of white noise's energy (a few tenths of a percent at its tens of pixels), not counted. The
-    data energy is the weighted variance of the filtered data (``arrays``: w d, w, w d^2).
+    (:func:`~.grid.resampled_noise_variance`), less what the high-pass (Gaussian of ``hp_sigma`` grid
+    pixels) takes out of white noise: x - g * x has variance 1 - 2 g(0) + sum g^2 = 1 - (2 / sqrt(2 pi) -
+    1 / (2 sqrt(pi))) / sigma (common practice: a normalised Gaussian kernel's sums; 1.4% at the user path's
+    38 pixels). The data energy is the weighted variance of the filtered data (``arrays``: w d, w, w d^2).
 
     The height's noise is the cross term's, <n, t> / (|d| |t|): its variance is a pixel's noise over
     the data's energy per pixel, (1 - ceiling^2) / n with n the native pixels that carry the data (each
@@ -112,6 +113,8 @@ def noise_ceiling(observed, weight, arrays):
         return 1.0, 0.0
     share = resampled_noise_variance(observed.spline_x, observed.grid, observed.cell)
     noise = float(np.einsum("i,i,i->", weight, observed.sigma, observed.sigma * share))
+    if hp_sigma:
+        noise *= max(1.0 - (2.0 / math.sqrt(2.0 * math.pi) - 0.5 / math.sqrt(math.pi)) / hp_sigma, 0.0)
     squared = min(1.0, max(1.0 - noise / data, MIN_CEILING_SQUARED))
     pixels = max(int(np.count_nonzero(observed.native_sigma)), 1)
     return math.sqrt(squared), math.sqrt((1.0 - squared) / pixels)
