@@ -972,15 +972,24 @@ def test_off_grid_types_bias_within_one_percent_of_a_resolution_element():
 
 
 @pytest.mark.slow
-@pytest.mark.xfail(strict=True, reason="measured (benchmarks/bench_velocity.py --other-types, 18 stars a cell): "
-                   "pulls (measured - true)/rv_err have sd 0.63-0.75 at R 5000, S/N >= 30 (errors too large: the "
-                   "segments' scatter and the templates' spread overstate what the average keeps); 0.89-1.21 "
-                   "elsewhere (before the lattice grid: 0.64-0.74, and 1.31 at R 2000, S/N 200)")
-def test_off_grid_types_pulls():
-    """Issue 11's acceptance on synthetic types no template has: (measured - true)/rv_err with sd in 0.8-1.25."""
-    for r, snr in ((2000.0, 30.0), (2000.0, 100.0), (5000.0, 100.0)):
-        dv, err = _off_grid_runs(r, snr)
-        assert 0.8 <= np.std(dv / err, ddof=1) <= 1.25, (r, snr, dv / err)
+@pytest.mark.parametrize("r, snr", [
+    (2000.0, 30.0),
+    (2000.0, 100.0),
+    (5000.0, 100.0),
+    pytest.param(2000.0, 200.0, marks=pytest.mark.xfail(strict=True, reason=(
+        "measured: pull sd 0.77 on these 12 stars (0.71 before the template weights' noise ceiling); "
+        "benchmarks/bench_velocity.py --other-types, 18 other stars a cell: 0.66-0.79 at R 5000, S/N >= 30 on "
+        "2.5 pixels a FWHM, 1.22-1.32 at R 2000, S/N >= 30 on linear pixels (errors too large, resp. too small; "
+        "an sd from 12-18 stars is itself uncertain by ~0.2)"))),
+])
+def test_off_grid_types_pulls(r, snr):
+    """Issue 11's acceptance on synthetic types no template has: (measured - true)/rv_err with sd in 0.8-1.25.
+
+    Measured on these stars: 1.20, 0.93, 0.89 in the first three cells (1.30, 0.88, 0.87 before the template
+    weights were scaled by the mismatch beyond the noise: the first cell was this test's known gap).
+    """
+    dv, err = _off_grid_runs(r, snr)
+    assert 0.8 <= np.std(dv / err, ddof=1) <= 1.25, (r, snr, dv / err)
 
 
 def test_spectra_of_one_setup_with_their_own_wavelength_solutions_share_one_grid():
