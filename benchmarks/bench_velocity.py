@@ -55,8 +55,12 @@
    weight, its own velocity's bias and its share of the bias (weight x bias); then one library template
    alone (``library:G8 V``), with and without error arrays, to separate the choice from the rest.
 
+13. ``--pull-parts``: the off-grid synthetic types of ``--other-types`` one type at a time (R 2000, S/N 100,
+   12 velocities a type, ``--quick`` 6), on specan's own pixels and on linear ones: each type's mean offset and its
+   scatter about it against the error budget's parts, the pulls' sd within each type and over all.
+
 Run:  python benchmarks/bench_velocity.py [--quick] [--speed] [--floor] [--night-set] [--user] [--other-types] [--neighbours]
-      [--miles] [--kurucz] [--noise] [--bias-parts] [--against DIR]
+      [--miles] [--kurucz] [--noise] [--bias-parts] [--pull-parts] [--against DIR]
 
 Timings depend on the machine's load; on a shared machine OPENBLAS_NUM_THREADS=1 avoids BLAS
 threads fighting other processes (the figures in the issue-4 report were measured that way).
@@ -886,6 +890,35 @@ def bias_parts(model, n, r=2000.0):
                                   f"share of the bias {np.sum(w * d) / n:+6.3f}")
 
 
+def pull_parts(n, r=2000.0, snr=100.0):
+    """Per off-grid type: mean offset, scatter about it, the error budget's parts and the pulls."""
+    from specan import synth
+
+    print(f"\n== off-grid synthetic types one at a time, R {r:.0f}, S/N {snr:.0f}, {n} velocities a type "
+          f"(load average {os.getloadavg()[0]:.2f}) ==")
+    for linear in (False, True):
+        print("linear pixels 2.5-4.7 per FWHM" if linear else "2.5 pixels per FWHM")
+        pulls = []
+        for st, lc in OTHER_TYPES:
+            rng = np.random.default_rng(5)
+            rows = []
+            for i in range(n):
+                v = rng.uniform(-900, 900)
+                place = ({"wave": np.arange(3850.0, 7300.0, 3850.0 / (r * 2.5)) * u.AA} if linear
+                         else {"wave_range": (3850, 7300) * u.AA})
+                s = synth.spectrum(st, lc, resolving_power=r, rv=v * KMS, snr=snr, seed=700 + i, **place)
+                res = velocity.measure(s, barycentric=False)
+                rows.append((res["rv"].value - v, res["rv_err"].value, res["rv_err_noise"].value,
+                             res["rv_err_mismatch"].value, res["rv_err_choice"].value))
+            a = np.array(rows)
+            p = a[:, 0] / a[:, 1]
+            pulls += list(p)
+            print(f"  {st + ' ' + lc:8s} offset {a[:, 0].mean():+6.3f} +- {a[:, 0].std(ddof=1) / np.sqrt(n):5.3f} scatter "
+                  f"{a[:, 0].std(ddof=1):5.3f} | rv_err {a[:, 1].mean():5.3f}: noise {a[:, 2].mean():5.3f} mismatch "
+                  f"{a[:, 3].mean():5.3f} choice {a[:, 4].mean():5.3f} | pulls: sd {np.std(p, ddof=1):4.2f}, rms {np.sqrt(np.mean(p ** 2)):4.2f}")
+        print(f"  all types: pull sd {np.std(pulls, ddof=1):.2f}, rms {np.sqrt(np.mean(np.square(pulls))):.2f}")
+
+
 if __name__ == "__main__":
     quick = "--quick" in sys.argv
     print(f"OPENBLAS_NUM_THREADS={os.environ.get('OPENBLAS_NUM_THREADS', 'unset')}")
@@ -918,5 +951,7 @@ if __name__ == "__main__":
         noise_pulls(model, 8 if quick else 16)
     if "--bias-parts" in chosen:
         bias_parts(model, 60 if quick else 400)
+    if "--pull-parts" in chosen:
+        pull_parts(6 if quick else 12)
     if "--against" in chosen:
         against(model, 10 if quick else 40, sys.argv[sys.argv.index("--against") + 1])
