@@ -49,8 +49,18 @@
    inputs of known noise: the Kurucz Sun (photon and constant noise, R 1,000-5,000, S/N 10-300) and
    MILES stars with white noise added; the velocity's scatter over realisations / the noise error.
 
+12. ``--bias-parts``: where the user path's bias at R 2000 comes from, on many realisations (``--quick``: 60 a
+   cell, else 400; the standard error is printed): the Kurucz Sun x a smooth response at S/N 10-100 and noiseless,
+   error arrays on every other spectrum, no template; the bias, and for each template of the mixtures its mean
+   weight, its own velocity's bias and its share of the bias (weight x bias); then one library template
+   alone (``library:G8 V``), with and without error arrays, to separate the choice from the rest.
+
+13. ``--pull-parts``: the off-grid synthetic types of ``--other-types`` one type at a time (R 2000, S/N 100,
+   12 velocities a type, ``--quick`` 6), on specan's own pixels and on linear ones: each type's mean offset and its
+   scatter about it against the error budget's parts, the pulls' sd within each type and over all.
+
 Run:  python benchmarks/bench_velocity.py [--quick] [--speed] [--floor] [--night-set] [--user] [--other-types] [--neighbours]
-      [--miles] [--kurucz] [--noise] [--against DIR]
+      [--miles] [--kurucz] [--noise] [--bias-parts] [--pull-parts] [--against DIR]
 
 Timings depend on the machine's load; on a shared machine OPENBLAS_NUM_THREADS=1 avoids BLAS
 threads fighting other processes (the figures in the issue-4 report were measured that way).
@@ -836,6 +846,79 @@ def noise_pulls(model, n, miles_n=6):
     print(f"(load average {os.getloadavg()[0]:.2f})")
 
 
+def bias_parts(model, n, r=2000.0):
+    """The user path's bias at ``r`` by S/N over ``n`` realisations, and what each template contributes."""
+    import collections
+
+    lo, hi = 3850.0, 7300.0
+    pix = np.arange(lo, hi, lo / (r * 2.5))
+    resp = 1.0 + 0.3 * np.sin((pix - lo) / (hi - lo) * 2.5)
+    velocities = np.random.default_rng(7).uniform(-900, 900, n)
+    resel = C_KMS / r
+
+    def spectrum(v, snr, i, errors):
+        flux = model(r)(np.log(pix) - np.log(velocity.doppler_factor(v * KMS)))
+        sig = np.sqrt(np.clip(flux, 1e-3, None)) / snr if snr else None
+        obs = (flux + np.random.default_rng(100 + i).normal(size=flux.size) * sig if snr else flux) * resp
+        info = ObsInfo(object="sun", medium="vacuum", medium_assumed=False, resolving_power=r)
+        return Spectrum(flux=obs * u.dimensionless_unscaled, spectral_axis=pix * u.AA,
+                        uncertainty=StdDevUncertainty(sig * resp) if snr and errors(i) else None, meta={META_KEY: info})
+
+    print(f"\n== the user path's bias at R {r:.0f} by S/N, {n} realisations a cell (Kurucz Sun x response; "
+          f"load average {os.getloadavg()[0]:.2f}) ==")
+    for template, modes in ((None, {"error arrays on every other": lambda i: i % 2 == 0}),
+                            ("library:G8 V", {"error arrays": lambda i: True, "no error arrays": lambda i: False})):
+        for mode, errors in modes.items():
+            # noiseless: no error array (one would state noise the flux has not), measured once a template
+            for snr in (10.0, 30.0, 100.0) + ((None,) if mode != "error arrays" else ()):
+                dv, parts = [], collections.defaultdict(list)
+                for i, v in enumerate(velocities):
+                    res = velocity.measure(spectrum(v, snr, i, errors), template=template, barycentric=False)
+                    d = res["rv"].value - v
+                    dv.append(d)
+                    for m in res["templates"]:
+                        parts[m["name"]].append((m["weight"], d + m["rv_offset"].value))
+                dv = np.asarray(dv)
+                label = f"{template or 'no template'}, {mode}, S/N {snr:.0f}" if snr else f"{template or 'no template'}, noiseless"
+                print(f"{label:52s} bias {dv.mean():+6.3f} +- {dv.std(ddof=1) / np.sqrt(n):5.3f} km/s "
+                      f"({100 * dv.mean() / resel:+5.2f}% resel), scatter {dv.std(ddof=1):6.3f}")
+                if template is None:
+                    for name, rows in sorted(parts.items(), key=lambda kv: -sum(w for w, _ in kv[1])):
+                        w, d = np.array(rows).T
+                        if w.sum() / n >= 0.01:
+                            print(f"    {name:30s} mean weight {w.sum() / n:5.3f}  its own bias {d.mean():+6.3f}  "
+                                  f"share of the bias {np.sum(w * d) / n:+6.3f}")
+
+
+def pull_parts(n, r=2000.0, snr=100.0):
+    """Per off-grid type: mean offset, scatter about it, the error budget's parts and the pulls."""
+    from specan import synth
+
+    print(f"\n== off-grid synthetic types one at a time, R {r:.0f}, S/N {snr:.0f}, {n} velocities a type "
+          f"(load average {os.getloadavg()[0]:.2f}) ==")
+    for linear in (False, True):
+        print("linear pixels 2.5-4.7 per FWHM" if linear else "2.5 pixels per FWHM")
+        pulls = []
+        for st, lc in OTHER_TYPES:
+            rng = np.random.default_rng(5)
+            rows = []
+            for i in range(n):
+                v = rng.uniform(-900, 900)
+                place = ({"wave": np.arange(3850.0, 7300.0, 3850.0 / (r * 2.5)) * u.AA} if linear
+                         else {"wave_range": (3850, 7300) * u.AA})
+                s = synth.spectrum(st, lc, resolving_power=r, rv=v * KMS, snr=snr, seed=700 + i, **place)
+                res = velocity.measure(s, barycentric=False)
+                rows.append((res["rv"].value - v, res["rv_err"].value, res["rv_err_noise"].value,
+                             res["rv_err_mismatch"].value, res["rv_err_choice"].value))
+            a = np.array(rows)
+            p = a[:, 0] / a[:, 1]
+            pulls += list(p)
+            print(f"  {st + ' ' + lc:8s} offset {a[:, 0].mean():+6.3f} +- {a[:, 0].std(ddof=1) / np.sqrt(n):5.3f} scatter "
+                  f"{a[:, 0].std(ddof=1):5.3f} | rv_err {a[:, 1].mean():5.3f}: noise {a[:, 2].mean():5.3f} mismatch "
+                  f"{a[:, 3].mean():5.3f} choice {a[:, 4].mean():5.3f} | pulls: sd {np.std(p, ddof=1):4.2f}, rms {np.sqrt(np.mean(p ** 2)):4.2f}")
+        print(f"  all types: pull sd {np.std(pulls, ddof=1):.2f}, rms {np.sqrt(np.mean(np.square(pulls))):.2f}")
+
+
 if __name__ == "__main__":
     quick = "--quick" in sys.argv
     print(f"OPENBLAS_NUM_THREADS={os.environ.get('OPENBLAS_NUM_THREADS', 'unset')}")
@@ -866,5 +949,9 @@ if __name__ == "__main__":
         kurucz_rows(model)
     if "--noise" in chosen:
         noise_pulls(model, 8 if quick else 16)
+    if "--bias-parts" in chosen:
+        bias_parts(model, 60 if quick else 400)
+    if "--pull-parts" in chosen:
+        pull_parts(6 if quick else 12)
     if "--against" in chosen:
         against(model, 10 if quick else 40, sys.argv[sys.argv.index("--against") + 1])

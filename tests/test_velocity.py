@@ -851,16 +851,16 @@ def test_user_path_scatter_within_twice_the_cramer_rao_bound(kurucz_model):
 
 @pytest.mark.slow
 @pytest.mark.xfail(strict=True, reason="measured (this test's cells: R 2000 S/N 30 and 100, R 5000 S/N 100): bias "
-                   "+1.12, +1.41, +1.66 km/s (0.75, 0.94, 2.76% of a resolution element; target 1%; R 5000 is the R 2000 "
-                   "file stated finer, measured at the R ~2300 its correlation width shows: +2.00, 3.34%, with filter "
-                   "and templates at the stated R), pulls "
-                   "(measured - true)/rv_err rms 0.31-0.45, sd 0.05-0.11: rv_err (3.6-4.0 km/s) is dominated by "
+                   "+0.95, +1.38, +1.62 km/s (0.64, 0.92, 2.71% of a resolution element; target 1%; before the template "
+                   "weights were scaled by the mismatch beyond the noise: +1.12, +1.41, +1.66; R 5000 is the R 2000 "
+                   "file stated finer, measured at the R ~2300 its correlation width shows), pulls "
+                   "(measured - true)/rv_err rms 0.27-0.45, sd 0.05-0.11: rv_err (3.6-4.0 km/s) is dominated by "
                    "the library templates' laboratory zero-point errors (G8 V 3.57 km/s, a Maritz-Jarrett standard "
                    "error of the lines' median), a per-template systematic that noise realisations of one star do "
-                   "not sample (it cannot average down, so the sd of these pulls measures the noise part only); "
-                   "before (1.2533 sd / sqrt n): rv_err 6.0 km/s, pull rms 0.19-0.32. "
-                   "benchmarks/bench_velocity.py --quick --user, 8 spectra a cell: bias -0.34 to +3.66 km/s over "
-                   "R 1000-5000, S/N 10-200, pull rms 0.11-0.94")
+                   "not sample (it cannot average down, so the sd of these pulls measures the noise part only). "
+                   "benchmarks/bench_velocity.py --user, 20 spectra a cell: bias -0.24 to +1.86 km/s over "
+                   "R 1000-5000, S/N 10-200 (R 2000: +1.86, +1.64, +1.53, +1.49 at S/N 10, 30, 100, 200; 400 a cell, "
+                   "--bias-parts: +1.54, +1.52, +1.48 at S/N 10, 30, 100), pull rms 0.13-0.91")
 def test_user_path_bias_and_pulls(kurucz_model):
     """Issue 11's acceptance on the Kurucz Sun read as a user's file: bias within 1% of a resolution
     element, and (measured - true)/rv_err with rms and sd in 0.8-1.25."""
@@ -870,6 +870,75 @@ def test_user_path_bias_and_pulls(kurucz_model):
         assert abs(np.mean(dv)) < 0.01 * C_KMS / r, (r, snr, np.mean(dv))
         assert 0.8 <= np.sqrt(np.mean(pull ** 2)) <= 1.25, (r, snr, pull)
         assert 0.8 <= np.std(pull, ddof=1) <= 1.25, (r, snr, pull)
+
+
+def _sun_as_a_user_file(kurucz_model, r, v, snr, seed, noise=True, errors=True):
+    """The Kurucz Sun at ``v`` times an unknown smooth response on linear pixels (the user path's input),
+    with photon noise of S/N ``snr`` (``noise``) and its error array (``errors``)."""
+    lng, fl = kurucz_model(r)
+    lo, hi = 3850.0, 7300.0
+    pix = np.arange(lo, hi, lo / (r * 2.5))
+    response = 1.0 + 0.3 * np.sin((pix - lo) / (hi - lo) * 2.5)
+    flux = make_interp_spline(lng, fl, k=3)(np.log(pix) - np.log(velocity.doppler_factor(v * KMS)))
+    sig = np.sqrt(np.clip(flux, 1e-3, None)) / snr
+    if noise:
+        flux = flux + np.random.default_rng(seed).normal(size=flux.size) * sig
+    info = ObsInfo(object="sun", medium="vacuum", medium_assumed=False, resolving_power=r)
+    return Spectrum(flux=flux * response * u.dimensionless_unscaled, spectral_axis=pix * u.AA,
+                    uncertainty=StdDevUncertainty(sig * response) if errors else None, meta={META_KEY: info})
+
+
+@pytest.mark.parametrize("snr", [10.0, 30.0])
+def test_noise_ceiling_is_what_noise_does_to_the_heights(kurucz_model, snr):
+    """Noise scales every template's correlation height by one factor, the ceiling the velocity stage
+    estimates from the pixel errors (``specan.velocity.correlation.noise_ceiling``): checked against
+    the heights themselves, the Kurucz Sun (rms-solar) as a user's file with and without its noise
+    (the same error array, so the same weights), one library template. Measured on these spectra: the
+    heights' ratio 0.762-0.772 at S/N 10 and 0.961-0.963 at S/N 30, the estimate's mean 0.0034 and 0.0001
+    below it (0.0094 and 0.0009 before the high-pass's share of the noise was counted)."""
+    from specan.velocity.choice import settle_resolving_power
+    from specan.velocity.correlation import observed_side
+    from specan.velocity.grid import lag_window, normalised, observe_on_grid
+
+    ceilings, ratios = [], []
+    for i, v in enumerate((-613.0, -77.0, 240.0, 815.0)):
+        noisy = _sun_as_a_user_file(kurucz_model, 2000.0, v, snr, seed=40 + i)
+        clean = _sun_as_a_user_file(kurucz_model, 2000.0, v, snr, seed=40 + i, noise=False)
+        h = [velocity.measure(s, template="library:G8 V", barycentric=False)["ccf_height"] for s in (noisy, clean)]
+        ratios.append(h[0] / h[1])
+        notes = []
+        spectrum = normalised(noisy, notes)
+        observed = observe_on_grid(spectrum, notes=notes)
+        power = settle_resolving_power(observed, spectrum, notes)
+        ceilings.append(observed_side(observed, lag_window(observed, 2000 * KMS, power.value, 8.0)).ceiling)
+    assert abs(np.mean(ceilings) - np.mean(ratios)) < 0.01, (ceilings, ratios)
+    assert np.mean(ratios) < (0.8 if snr == 10.0 else 0.98), ratios     # the noise does lower the heights
+
+
+def _giants_share(kurucz_model, snr, noise, n=12):
+    """Mean weight of luminosity class III library templates in the automatic choice's mixture, Kurucz Sun
+    (G2 V) as a user's file at R 2000."""
+    share = []
+    for i, v in enumerate(np.random.default_rng(3).uniform(-900, 900, n)):
+        # noiseless: no error array either (an error array would state noise the flux has not)
+        res = velocity.measure(_sun_as_a_user_file(kurucz_model, 2000.0, v, snr, seed=60 + i, noise=noise,
+                                                   errors=noise), barycentric=False)
+        share.append(sum(m["weight"] for m in res["templates"] if m["type"].split()[1] == "III"))
+    return float(np.mean(share))
+
+
+def test_template_weights_do_not_drift_with_noise(kurucz_model):
+    """The automatic choice's weights follow the templates' mismatch with the star, not the noise
+    (issue 11: the bias grew as the S/N fell). Kurucz Sun (rms-solar) as a user's file, R 2000: the
+    library giants, whose velocities read +2.1 to +2.7 km/s on the noiseless Sun against G8 V's +0.0
+    (benchmarks/bench_velocity.py --kurucz), took more of the weight as the noise rose when noise counted
+    as mismatch. Measured (their mean share on these spectra): noiseless 0.454, S/N 30 0.458, S/N 10 0.443;
+    before (weights scaled by 1 - h_best): 0.460, 0.524, 0.571. On 400 realisations a cell that moved the
+    bias from +1.81, +1.71, +1.51 km/s to +1.54, +1.52, +1.48 at S/N 10, 30, 100 (benchmarks/bench_velocity.py
+    --bias-parts; noiseless +1.23, the giants' offsets)."""
+    clean = _giants_share(kurucz_model, 30.0, noise=False)
+    for snr, bound in ((30.0, 0.03), (10.0, 0.07)):
+        assert abs(_giants_share(kurucz_model, snr, noise=True) - clean) < bound, snr
 
 
 #: Types the synthetic grid and its neighbour refinement do not contain (so the template is
@@ -903,15 +972,24 @@ def test_off_grid_types_bias_within_one_percent_of_a_resolution_element():
 
 
 @pytest.mark.slow
-@pytest.mark.xfail(strict=True, reason="measured (benchmarks/bench_velocity.py --other-types, 18 stars a cell): "
-                   "pulls (measured - true)/rv_err have sd 0.63-0.75 at R 5000, S/N >= 30 (errors too large: the "
-                   "segments' scatter and the templates' spread overstate what the average keeps); 0.89-1.21 "
-                   "elsewhere (before the lattice grid: 0.64-0.74, and 1.31 at R 2000, S/N 200)")
-def test_off_grid_types_pulls():
-    """Issue 11's acceptance on synthetic types no template has: (measured - true)/rv_err with sd in 0.8-1.25."""
-    for r, snr in ((2000.0, 30.0), (2000.0, 100.0), (5000.0, 100.0)):
-        dv, err = _off_grid_runs(r, snr)
-        assert 0.8 <= np.std(dv / err, ddof=1) <= 1.25, (r, snr, dv / err)
+@pytest.mark.parametrize("r, snr", [
+    (2000.0, 30.0),
+    (2000.0, 100.0),
+    (5000.0, 100.0),
+    pytest.param(2000.0, 200.0, marks=pytest.mark.xfail(strict=True, reason=(
+        "measured: pull sd 0.77 on these 12 stars (0.71 before the template weights' noise ceiling); "
+        "benchmarks/bench_velocity.py --other-types, 18 other stars a cell: 0.66-0.79 at R 5000, S/N >= 30 on "
+        "2.5 pixels a FWHM, 1.22-1.32 at R 2000, S/N >= 30 on linear pixels (errors too large, resp. too small; "
+        "an sd from 12-18 stars is itself uncertain by ~0.2)"))),
+])
+def test_off_grid_types_pulls(r, snr):
+    """Issue 11's acceptance on synthetic types no template has: (measured - true)/rv_err with sd in 0.8-1.25.
+
+    Measured on these stars: 1.20, 0.93, 0.89 in the first three cells (1.30, 0.88, 0.87 before the template
+    weights were scaled by the mismatch beyond the noise: the first cell was this test's known gap).
+    """
+    dv, err = _off_grid_runs(r, snr)
+    assert 0.8 <= np.std(dv / err, ddof=1) <= 1.25, (r, snr, dv / err)
 
 
 def test_spectra_of_one_setup_with_their_own_wavelength_solutions_share_one_grid():

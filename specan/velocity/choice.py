@@ -317,7 +317,7 @@ def automatic_mixture(search, resolving_power, template_grid, notes, where=None,
         c = syn[best_syn][2]
         # the neighbours of the best synthetic type can enter the mixture only if that type comes
         # within NEIGHBOUR_GAIN of the least height that does
-        if syn[best_syn][3] + NEIGHBOUR_GAIN < mixture_threshold(sc.height):
+        if syn[best_syn][3] + NEIGHBOUR_GAIN < mixture_threshold(sc.height, search.side.ceiling, search.side.height_noise):
             notes.append(f"neighbouring synthetic types not tried: the best synthetic template ({c.sptype} "
                          f"{c.lumclass}) is more than {NEIGHBOUR_GAIN} below the least height that enters the mixture")
             more = []
@@ -334,7 +334,7 @@ def automatic_mixture(search, resolving_power, template_grid, notes, where=None,
     # (plain floats and flags, not a numpy test per template: ~0.25 ms a spectrum for 49, measured)
     finite = finite.tolist()
     scores = {x[0].name: h for x, h, ok in zip(members, heights.tolist(), finite) if ok}
-    index, weights = mixture_weights(heights)
+    index, weights = mixture_weights(heights, search.side.ceiling, search.side.height_noise)
     chosen = [MixtureMember(members[i][0], float(wt), members[i][1], members[i][2], float(members[i][3]),
                             float(members[i][4]))
               for i, wt in zip(index, weights)]

@@ -19,11 +19,11 @@ import numpy as np
 from scipy import fft as sfft
 
 from ..errors import AnalysisError
-from .grid import LagWindow, highpass, turns
+from .grid import LagWindow, highpass, resampled_noise_variance, turns
 from .prepared import full_cover
 
 __all__ = ["ObservedSide", "PeakSearch", "Correlation", "Peak", "PeakCCF", "correlation_arrays",
-           "observed_side", "best_lag", "integer_peak", "quick_peak", "coverage_rows", "template_peaks",
+           "observed_side", "noise_ceiling", "MIN_CEILING_SQUARED", "best_lag", "integer_peak", "quick_peak", "coverage_rows", "template_peaks",
            "best_index", "refine", "ccf_about", "fwhm_pixels", "single_star_ccf", "correlate", "ccf_about_peak"]
 
 
@@ -31,12 +31,16 @@ __all__ = ["ObservedSide", "PeakSearch", "Correlation", "Peak", "PeakCCF", "corr
 # The spectrum's side of every correlation
 # ---------------------------------------------------------------------------
 class ObservedSide(NamedTuple):
-    """Weighted data arrays (w d, w, w d^2) of one spectrum, their FFTs and the total weight."""
+    """Weighted data arrays (w d, w, w d^2) of one spectrum, their FFTs and the total weight; ``ceiling``
+    the normalised correlation a template equal to the star's noiseless spectrum would reach against
+    these data (:func:`noise_ceiling`)."""
 
     weight: np.ndarray
     arrays: tuple
     ffts: tuple
     total_weight: float
+    ceiling: float = 1.0
+    height_noise: float = 0.0
 
 
 class PeakSearch(NamedTuple):
@@ -75,7 +79,45 @@ def observed_side(observed, lags):
     weight = observed.taper * w_noise
     arrays = correlation_arrays(highpass(observed.flux - 1.0, lags.hp_sigma, observed.valid), weight)
     d_ffts = tuple(sfft.rfft(np.stack(arrays), lags.m, axis=1))   # (one call for the three)
-    return ObservedSide(weight, arrays, d_ffts, float(np.sum(weight)))
+    return ObservedSide(weight, arrays, d_ffts, float(np.sum(weight)), *noise_ceiling(observed, weight, arrays, lags.hp_sigma))
+
+
+#: Least squared ceiling :func:`noise_ceiling` returns (our choice: data read as almost all noise keep a
+#: finite scale for the template weights).
+MIN_CEILING_SQUARED = 0.01
+
+
+def noise_ceiling(observed, weight, arrays, hp_sigma=None):
+    """(ceiling, height noise): sqrt(1 - noise energy / data energy), the normalised correlation a perfect
+    template would reach, and sqrt((1 - ceiling^2) / n), the noise's standard deviation of a height.
+
+    With data d = s + n, the correlation with any template t is <s + n, t> / (|s + n| |t|), whose
+    expectation is the noiseless one times |s| / |s + n| (the noise adds to the data's energy, not
+    to the cross term): every template's height is scaled by this one factor, the ceiling.
+    The noise energy is the weighted sum over the grid of each point's pixel variance
+    (``observed.sigma``) times the share of it the resampling keeps
+    (:func:`~.grid.resampled_noise_variance`), less what the high-pass (Gaussian of ``hp_sigma`` grid
+    pixels) takes out of white noise: x - g * x has variance 1 - 2 g(0) + sum g^2 = 1 - (2 / sqrt(2 pi) -
+    1 / (2 sqrt(pi))) / sigma (common practice: a normalised Gaussian kernel's sums; 1.4% at the user path's
+    38 pixels). The data energy is the weighted variance of the filtered data (``arrays``: w d, w, w d^2).
+
+    The height's noise is the cross term's, <n, t> / (|d| |t|): its variance is a pixel's noise over
+    the data's energy per pixel, (1 - ceiling^2) / n with n the native pixels that carry the data (each
+    an independent noise; common practice for white noise), the scale below which two templates' heights
+    cannot be told apart.
+    """
+    a1, a2, a3 = arrays
+    total = float(np.sum(a2))
+    data = float(np.sum(a3)) - float(np.sum(a1)) ** 2 / total if total > 0 else 0.0
+    if not data > 0:
+        return 1.0, 0.0
+    share = resampled_noise_variance(observed.spline_x, observed.grid, observed.cell)
+    noise = float(np.einsum("i,i,i->", weight, observed.sigma, observed.sigma * share))
+    if hp_sigma:
+        noise *= max(1.0 - (2.0 / math.sqrt(2.0 * math.pi) - 0.5 / math.sqrt(math.pi)) / hp_sigma, 0.0)
+    squared = min(1.0, max(1.0 - noise / data, MIN_CEILING_SQUARED))
+    pixels = max(int(np.count_nonzero(observed.native_sigma)), 1)
+    return math.sqrt(squared), math.sqrt((1.0 - squared) / pixels)
 
 
 # ---------------------------------------------------------------------------

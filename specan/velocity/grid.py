@@ -35,7 +35,8 @@ _KMS = u.km / u.s   # made once (composing a unit costs ~10 us)
 __all__ = ["SPLINE_K", "COVER_TAPER", "FULL_COVER_MARGIN", "ObservedGrid", "TemplateGrid", "LagWindow", "normalised",
            "observe_on_grid", "lattice_step", "lag_window", "kms_per_pixel", "sigma_array", "hot_pixels",
            "noise_from_flux", "flux_pixel_noise", "fast_length", "turns", "distance_to_invalid",
-           "dersnr_sigma", "gauss_smooth", "gauss_kernel", "smoothed_coverage", "highpass", "cover_taper", "cell_mean", "SplineOperators", "spline_operators"]
+           "dersnr_sigma", "gauss_smooth", "gauss_kernel", "smoothed_coverage", "highpass", "cover_taper", "cell_mean", "SplineOperators", "spline_operators",
+           "NOISE_PROBES", "resampled_noise_variance"]
 
 #: Order of the spline that resamples spectra onto the ln-lambda grid.
 SPLINE_K = 3
@@ -457,6 +458,30 @@ def spline_operators(x, grid, cell=0.0):
         while len(_SPLINES) > 8:
             _SPLINES.pop(next(iter(_SPLINES)), None)
         _SPLINES[key] = found
+    return found
+
+
+#: Seeded white-noise rows pushed through a set-up's resampling by :func:`resampled_noise_variance` (our
+#: choice: the sum over a spectrum's ~5,000 grid points of their mean square is then known to ~0.5%).
+NOISE_PROBES = 16
+_NOISE_VARIANCE = {}
+
+
+def resampled_noise_variance(x, grid, cell=0.0):
+    """Variance, at each grid point, of unit white noise on the samples ``x`` carried onto ``grid`` by
+    :func:`spline_operators` (``cell`` as there): what the resampling leaves of a pixel's noise (a cell
+    mean over several pixels keeps their share, an interpolant between two pixels a little less than
+    one). The mean square of :data:`NOISE_PROBES` seeded realisations (the same numbers every run), kept
+    per set-up; read-only."""
+    key = (_digest(x), float(grid[0]), float(grid[-1]), grid.size, float(cell))
+    found = _NOISE_VARIANCE.get(key)
+    if found is None:
+        probes = np.random.default_rng(20261204).standard_normal((x.size, NOISE_PROBES))
+        found = np.mean(np.asarray(spline_operators(x, grid, cell).forward(probes)) ** 2, axis=1)
+        found.flags.writeable = False
+        while len(_NOISE_VARIANCE) > 8:   # oldest out first; the array is returned, not looked up again
+            _NOISE_VARIANCE.pop(next(iter(_NOISE_VARIANCE)), None)
+        _NOISE_VARIANCE[key] = found
     return found
 
 
