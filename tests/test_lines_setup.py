@@ -102,3 +102,31 @@ def test_line_data_the_same_from_kept_set_up(monkeypatch):
     fresh = line_data.LineData(spec)
     for name in ("dx", "fwhm", "line_fwhm", "sig_pix", "signif", "smooth", "smooth_err", "weight"):
         assert np.array_equal(getattr(kept, name), getattr(fresh, name)), name
+
+
+def test_packaged_rows_kept_give_the_tables_of_the_list_given():
+    # the packaged list's covered rows and their values kept per coverage: the same table as the
+    # same list handed in as a table (nothing kept), column by column to the bit; and each table
+    # owns its columns (writing to one leaves the next as measured)
+    from test_lines import make_spectrum
+
+    from specan import lines
+    from specan.linelist import load_linelist
+
+    rng = np.random.default_rng(12)
+    wave = np.linspace(4800.0, 5400.0, 1500)
+    flux = 1.0 + rng.normal(0.0, 0.01, wave.size)
+    for centre in (4861.3, 5167.3, 5172.7, 5183.6):          # H beta, Mg b (NIST ASD, air)
+        flux -= 0.4 * np.exp(-0.5 * ((wave - centre) / 0.6) ** 2)
+    spec = make_spectrum(wave, flux, 0.01, resolving_power=3000.0)
+    first = lines.measure(spec)
+    kept = lines.measure(spec)
+    given = lines.measure(spec, linelist=load_linelist())
+    assert len(first) > 10
+    for name in first.colnames:
+        a, b = np.asarray(getattr(kept[name], "value", kept[name])), np.asarray(getattr(given[name], "value", given[name]))
+        assert np.array_equal(a, b, equal_nan=a.dtype.kind == "f"), name
+    first["wave_air"][0] = 0.0 * first["wave_air"].unit
+    first["id"][0] = "changed"
+    again = lines.measure(spec)
+    assert again["wave_air"][0] == kept["wave_air"][0] and again["id"][0] == kept["id"][0]
