@@ -294,16 +294,16 @@ def _grid_setup(key, wave):
 
 
 def _width_setup(key, wave, dx, resolving_power, broadening):
-    """``(fwhm, line_fwhm, sig_pix, ladder)`` of a grid at a resolving power and broadening, kept.
+    """``(fwhm, line_fwhm, sig_pix, ladder, wide)`` of a grid at a resolving power and broadening, kept.
 
     The instrument's FWHM at each pixel (never sampled finer than ~1 pixel per FWHM), the lines'
-    (times the broadening), the lines' Gaussian sigma in pixels and the matched filter's
-    :func:`_ladder` of it."""
+    (times the broadening), the lines' Gaussian sigma in pixels, the matched filter's
+    :func:`_ladder` of it and the width (pixels) of the wide smoothing (:func:`wide_smooth`)."""
     def make():
         fwhm = np.maximum(wave / resolving_power, dx)
         line_fwhm = fwhm * broadening
         sig_pix = line_fwhm / GAUSS_FWHM / dx
-        return fwhm, line_fwhm, sig_pix, _ladder(sig_pix)
+        return fwhm, line_fwhm, sig_pix, _ladder(sig_pix), 3.0 * float(np.median(sig_pix))
     return _kept(_WIDTHS, (key, float(resolving_power), float(broadening)), make)
 
 
@@ -339,7 +339,7 @@ class LineData:
         self.broadening = _broadening(self.narrow, self.resolving_power)
         # the widths along the spectrum and the matched filter's kernels depend on the grid, R and
         # the broadening alone: made once per set-up (a night's spectra share a few)
-        self.fwhm, self.line_fwhm, self.sig_pix, self._rungs = _width_setup(
+        self.fwhm, self.line_fwhm, self.sig_pix, self._rungs, self._wide_width = _width_setup(
             wave_key, self.wave, self.dx, self.resolving_power, self.broadening)
         self._filter()
 
@@ -364,7 +364,8 @@ class LineData:
 
     def _wide_smoothing(self):
         if self._wide is None:
-            self._wide = wide_smooth(self.flux, self.weight, 3.0 * float(np.median(self.sig_pix)))
+            # over three line widths (the median's, kept per set-up)
+            self._wide = wide_smooth(self.flux, self.weight, self._wide_width)
         return self._wide
 
     def divided(self, model):
