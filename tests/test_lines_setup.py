@@ -126,6 +126,10 @@ def test_packaged_rows_kept_give_the_tables_of_the_list_given():
     for name in first.colnames:
         a, b = np.asarray(getattr(kept[name], "value", kept[name])), np.asarray(getattr(given[name], "value", given[name]))
         assert np.array_equal(a, b, equal_nan=a.dtype.kind == "f"), name
+    # the list's columns as they are described there
+    for name in ("wave_air", "wave_vac"):
+        assert first[name].info.description == load_linelist()[name].info.description
+        assert first[name].info.description
     first["wave_air"][0] = 0.0 * first["wave_air"].unit
     first["id"][0] = "changed"
     again = lines.measure(spec)

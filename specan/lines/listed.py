@@ -38,8 +38,8 @@ class RowValues(NamedTuple):
     species: np.ndarray     #: species, array of str
     hydrogen: np.ndarray    #: bool: a hydrogen line
     ep_low: np.ndarray | None  #: lower-level excitation, eV (NaN unknown), where listed
-    wave_air: np.ndarray    #: air wavelengths, Angstrom
-    wave_vac: np.ndarray    #: vacuum wavelengths, Angstrom
+    wave_air: u.Quantity    #: air wavelengths in Angstrom, with the list column's description
+    wave_vac: u.Quantity    #: vacuum wavelengths in Angstrom, the same
 
 
 def row_values(listed):
@@ -54,9 +54,9 @@ def _row_values(rows):
     ep = rows["ep_low"] if "ep_low" in rows.colnames else None
     ep = None if ep is None else np.asarray(getattr(ep, "value", ep), float)
     values = RowValues(ids, np.array(ids, str), species, species == "H I", ep,
-                       rows["wave_air"].to_value(u.AA), rows["wave_vac"].to_value(u.AA))
+                       rows["wave_air"].to(u.AA), rows["wave_vac"].to(u.AA))
     for a in values[1:]:
-        if isinstance(a, np.ndarray):
+        if isinstance(a, np.ndarray):   # (Quantities too)
             a.flags.writeable = False
     return values
 

@@ -907,8 +907,8 @@ def line_table(data, listed, targets, results, star_type=None):
         # (copies of the values kept per set-up: each table owns its columns)
         "id": kept.id_array.copy(),
         "species": kept.species.copy(),
-        "wave_air": kept.wave_air * aa,
-        "wave_vac": kept.wave_vac * aa,
+        "wave_air": kept.wave_air.copy(),   # (the list's columns, their descriptions kept)
+        "wave_vac": kept.wave_vac.copy(),
         "wave_obs": cols["wave_obs"] * aa,
         "velocity": velocities(cols["wave_obs"], listed.lab) * kms,
     }
@@ -946,7 +946,11 @@ def line_table(data, listed, targets, results, star_type=None):
     columns["detected"] = detected & expected
     columns["emission"] = emission
     columns["expected"] = expected
-    out = QTable(list(columns.values()), names=list(columns), copy=False)
+    # (added one by one: the same table as QTable(list, names=...), without its default names, which it
+    # reads from astropy's configuration once a column, a fifth of the table's making; measured)
+    out = QTable()
+    for name, column in columns.items():
+        out.add_column(column, name=name, copy=False)
     out.meta.update(data.meta(listed.rv))
     out.meta["star_type"] = None if star_code(star_type) is None else str(star_type)
     return out
