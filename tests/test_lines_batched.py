@@ -208,6 +208,28 @@ def test_vectorised_windows_equal_the_walks():
     assert compared > 1000
 
 
+def test_hydrogen_windows_alone_equal_the_walks():
+    # the hydrogen lines are walked on their own (measure's first pass), in full at once with no
+    # look-ahead (specan/lines/windows.py, _walks): each window must be the one line_window walks
+    from specan.lines.data import DETECT_SIGMA
+    from specan.lines.measurement import line_start
+    from specan.lines.windows import line_window, line_windows
+
+    compared = 0
+    for name, data, listed, targets, features in demo_line_setups(12):
+        for d in (data, data.divided(0.97 + 0.03 * np.cos(data.wave / 50.0))):
+            idx = [i for i in np.flatnonzero(targets.hydrogen)
+                   if line_start(d, features, targets, i, DETECT_SIGMA) is not None]
+            starts = [line_start(d, features, targets, i, DETECT_SIGMA) for i in idx]
+            series = targets.pred[targets.hydrogen]
+            batch = line_windows(d, starts, targets.fwhm[idx], targets.hydrogen[idx], series)
+            for i, st, window in zip(idx, starts, batch):
+                one = line_window(d, st.ic, st.centre, st.sign, targets.fwhm[i], True, st.matched, series)
+                assert tuple(one) == tuple(window), (name, listed.rows["id"][i])
+                compared += 1
+    assert compared > 150
+
+
 def test_vectorised_line_starts_equal_one_by_one():
     # line_starts: matching, nearest pixel, saturated cores, masked cores, sign and detection
     import copy

@@ -733,7 +733,7 @@ class _VoigtModel:
         return new
 
     def __call__(self, p):
-        q = p[self.problem_at, :3]
+        q = np.take(p[:, :3], self.problem_at, axis=0)   # (the same rows as p[at, :3], gathered in half the time)
         dx = self.x_at - (self.centre_at + q[:, 0])
         # profile and its three derivatives in one array (4, b, C, P) and their sums over the
         # components weighted by the equivalent widths in one call: a model evaluation is a

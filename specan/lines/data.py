@@ -8,6 +8,7 @@ from __future__ import annotations
 
 import copy
 import functools
+import threading
 from typing import NamedTuple
 
 import numpy as np
@@ -123,6 +124,13 @@ class _Ladder(NamedTuple):
     """The widths the matched filter is made at and the pixels each serves (see :func:`matched_filter`)."""
 
     rungs: tuple   #: per width: (s, pixels it serves, stretch filtered, its pixels in that stretch, k1, k2)
+    #: the same kernels laid out per pixel (:func:`_banded`), or None where they reach too far
+    band: tuple | None = None
+
+
+#: Widest kernel (pixels from the centre) the banded matched filter (:func:`_banded`) takes; wider
+#: ones (lines broadened many times the instrument) are filtered rung by rung.
+BAND_REACH = 24
 
 
 def _ladder(sig_pix):
@@ -141,7 +149,45 @@ def _ladder(sig_pix):
         part = slice(max(idx[0] - reach, 0), min(idx[-1] + reach + 1, n))
         k1, k2 = _kernel_sums(s)  # sums of the kernel g and of g**2
         rungs.append((s, idx, part, sel[part], k1, k2))
-    return _Ladder(tuple(rungs))
+    return _Ladder(tuple(rungs), _banded(rungs, n))
+
+
+def _banded(rungs, n):
+    """Every pixel's kernels as columns: ``(main, half, k1, k2)``, or None past :data:`BAND_REACH`.
+
+    ``main[r, i]`` is the weight at distance r of the kernel pixel i is filtered with (its rung's
+    width s), ``half[r, i]`` the same of the kernel at s / sqrt(2), zero beyond each kernel's reach;
+    ``k1``, ``k2`` the rung's kernel sums at each pixel. Read-only: kept per set-up (:func:`_setup`).
+    """
+    reach = max(_gauss_weights(s).size // 2 for s, *_ in rungs)
+    if reach > BAND_REACH:
+        return None
+    main, half = np.zeros((reach + 1, n)), np.zeros((reach + 1, n))
+    k1, k2 = np.empty(n), np.empty(n)
+    for s, idx, _, _, a1, a2 in rungs:
+        for out, width in ((main, s), (half, s / np.sqrt(2.0))):
+            g = _gauss_weights(width)
+            r = g.size // 2
+            out[:r + 1, idx] = g[r:, None]      # (a symmetric kernel: g[r + j] = g[r - j])
+        k1[idx], k2[idx] = a1, a2
+    for a in (main, half, k1, k2):
+        a.flags.writeable = False
+    return main, half, k1, k2
+
+
+def _band_filter(values, weights):
+    """Each pixel's own symmetric kernel (``weights``, :func:`_banded`) correlated with ``values``
+    (rows), the edges extended with the nearest value: ``scipy.ndimage.correlate1d``'s sums to the
+    bit, term by term in its order (the centre, then the pairs of pixels at equal distance from the
+    outermost in; the zero weights past a pixel's own kernel add exact zeros before its first term)."""
+    reach = weights.shape[0] - 1
+    n = values.shape[-1]
+    padded = np.concatenate([np.repeat(values[..., :1], reach, axis=-1), values,
+                             np.repeat(values[..., -1:], reach, axis=-1)], axis=-1)
+    out = values * weights[0]
+    for r in range(reach, 0, -1):
+        out += (padded[..., reach - r:reach - r + n] + padded[..., reach + r:reach + r + n]) * weights[r]
+    return out
 
 
 def matched_filter(flux, weight, sig_pix, ladder=None):
@@ -150,16 +196,26 @@ def matched_filter(flux, weight, sig_pix, ladder=None):
     The instrument width in pixels (``sig_pix``, a Gaussian sigma) changes along the
     spectrum (constant R on a linear grid), so the arrays are filtered at a ladder of
     widths 5% apart and each pixel takes the result at its own width. ``ladder``: the
-    :func:`_ladder` of ``sig_pix`` when already made (the arrays divided by the hydrogen
-    lines keep their widths).
+    :func:`_ladder` of ``sig_pix`` when already made (kept per set-up, :func:`_setup`).
     """
     n = flux.size
     d = 1.0 - flux
     wd, wf, w = weight * d, weight * flux, weight
     if ladder is None:
         ladder = _ladder(sig_pix)
-    signif, smooth, smooth_err = np.empty(n), np.empty(n), np.empty(n)
     stacked = np.stack([wd, wf, w])
+    if ladder.band is not None:
+        # all widths at once, each pixel with its own kernel: a few dozen whole-array operations
+        # instead of two filter calls and a dozen small ones per width (the same values, bit for bit)
+        main, half, k1, k2 = ladder.band
+        f_wd, f_wf, f_w = _band_filter(stacked, main)
+        f_w2 = _band_filter(w, half)
+        signif = k1 * f_wd / np.sqrt(np.maximum(k2 * f_w2, 1e-300))
+        smooth = f_wf / np.maximum(f_w, 1e-300)
+        smooth_err = np.sqrt(k2 * f_w2 / np.maximum((k1 * f_w) ** 2, 1e-300))
+        smooth = np.where(np.isfinite(smooth), smooth, 1.0)
+        return signif, smooth, smooth_err
+    signif, smooth, smooth_err = np.empty(n), np.empty(n), np.empty(n)
     for s, idx, part, sub, k1, k2 in ladder.rungs:
         # the three arrays at width s in one call (row by row: the same sums as one call each)
         f_wd, f_wf, f_w = _gaussian_filter(stacked[:, part], s, axis=1)[:, sub]
@@ -186,6 +242,71 @@ def wide_smooth(flux, weight, s):
     return smooth, np.sqrt(k2 * f_w2 / np.maximum((k1 * f_w) ** 2, 1e-300))
 
 
+#: How many grids (and, per grid, resolving powers and broadenings) :func:`_grid_setup` and
+#: :func:`_width_setup` keep: a night mixes a few set-ups, not hundreds.
+SETUPS_KEPT = 8
+_CONTENTS = []
+_GRIDS = {}
+_WIDTHS = {}
+_SETUP_LOCK = threading.Lock()
+
+
+def _content_key(array):
+    """A number standing for the exact contents of ``array`` (dtype, shape, bytes) while it is among
+    the last :data:`SETUPS_KEPT` seen; another content never gets it (one that comes back after being
+    dropped gets a new number: a miss, never a wrong hit). Comparing 4,000 wavelengths' bytes with
+    the kept ones costs microseconds, the set-up work it saves a few tenths of a millisecond."""
+    a = np.ascontiguousarray(array)
+    data, kind = a.tobytes(), (a.dtype.str, a.shape)
+    global _NEXT_KEY
+    with _SETUP_LOCK:
+        for k, kept, number in reversed(_CONTENTS):
+            if k == kind and kept == data:
+                return number
+        _NEXT_KEY += 1
+        _CONTENTS.append((kind, data, _NEXT_KEY))
+        del _CONTENTS[:-SETUPS_KEPT]
+        return _NEXT_KEY
+
+
+_NEXT_KEY = 0
+
+
+def _kept(store, key, make):
+    """``store[key]``, made by ``make()`` where absent (its arrays read-only); the oldest out first."""
+    with _SETUP_LOCK:
+        found = store.get(key)
+    if found is None:
+        found = make()
+        for a in (found if isinstance(found, tuple) else (found,)):
+            if isinstance(a, np.ndarray):
+                a.flags.writeable = False
+        with _SETUP_LOCK:
+            while len(store) >= SETUPS_KEPT:
+                store.pop(next(iter(store)), None)
+            store[key] = found
+    return found
+
+
+def _grid_setup(key, wave):
+    """The pixel widths of the grid ``wave`` (content ``key``, :func:`_content_key`), kept."""
+    return _kept(_GRIDS, key, lambda: np.diff(pixel_edges(wave)))
+
+
+def _width_setup(key, wave, dx, resolving_power, broadening):
+    """``(fwhm, line_fwhm, sig_pix, ladder, wide)`` of a grid at a resolving power and broadening, kept.
+
+    The instrument's FWHM at each pixel (never sampled finer than ~1 pixel per FWHM), the lines'
+    (times the broadening), the lines' Gaussian sigma in pixels, the matched filter's
+    :func:`_ladder` of it and the width (pixels) of the wide smoothing (:func:`wide_smooth`)."""
+    def make():
+        fwhm = np.maximum(wave / resolving_power, dx)
+        line_fwhm = fwhm * broadening
+        sig_pix = line_fwhm / GAUSS_FWHM / dx
+        return fwhm, line_fwhm, sig_pix, _ladder(sig_pix), 3.0 * float(np.median(sig_pix))
+    return _kept(_WIDTHS, (key, float(resolving_power), float(broadening)), make)
+
+
 class LineData:
     """Plain arrays of one normalised spectrum plus everything derived once.
 
@@ -202,7 +323,8 @@ class LineData:
         self.medium = info.medium
         self.wave, self.flux, self.sigma, self.good, self.noise_source = normalised_arrays(
             spectrum, resolving_power=resolving_power)
-        self.dx = np.diff(pixel_edges(self.wave))  # pixel widths, Angstrom
+        wave_key = _content_key(self.wave)
+        self.dx = _grid_setup(wave_key, self.wave)  # pixel widths, Angstrom (read-only, kept per grid)
         # the narrowest-line search keeps the one-value DER_SNR noise its thresholds were set with
         # (what normalised_arrays(spectrum, dersnr=True) gives, from the arrays at hand)
         narrow_sigma = self.sigma if self.noise_source == "error array" else dersnr_sigma(self.flux, self.good)
@@ -214,17 +336,16 @@ class LineData:
             # measure it again at the resolving power found from the lines
             self.sigma = normalised_arrays(spectrum, resolving_power=self.resolving_power).sigma
         self.weight = np.where(self.good, 1.0 / self.sigma**2, 0.0)
-        # the instrument can never be sampled finer than ~1 pixel per FWHM
-        self.fwhm = np.maximum(self.wave / self.resolving_power, self.dx)
         self.broadening = _broadening(self.narrow, self.resolving_power)
-        self.line_fwhm = self.fwhm * self.broadening
-        self.sig_pix = self.line_fwhm / GAUSS_FWHM / self.dx
+        # the widths along the spectrum and the matched filter's kernels depend on the grid, R and
+        # the broadening alone: made once per set-up (a night's spectra share a few)
+        self.fwhm, self.line_fwhm, self.sig_pix, self._rungs, self._wide_width = _width_setup(
+            wave_key, self.wave, self.dx, self.resolving_power, self.broadening)
         self._filter()
 
     def _filter(self):
-        # the widths and the pixels each serves, made once (a copy divided by the hydrogen lines keeps them)
-        if getattr(self, "_rungs", None) is None:
-            self._rungs = _ladder(self.sig_pix)
+        # the widths and the pixels each serves: made once per set-up (a copy divided by the hydrogen
+        # lines keeps them)
         self.signif, self.smooth, self.smooth_err = matched_filter(self.flux, self.weight, self.sig_pix,
                                                                    self._rungs)
         # the wide smoothing only when a window walks on it (hydrogen lines: the copy divided by
@@ -243,7 +364,8 @@ class LineData:
 
     def _wide_smoothing(self):
         if self._wide is None:
-            self._wide = wide_smooth(self.flux, self.weight, 3.0 * float(np.median(self.sig_pix)))
+            # over three line widths (the median's, kept per set-up)
+            self._wide = wide_smooth(self.flux, self.weight, self._wide_width)
         return self._wide
 
     def divided(self, model):

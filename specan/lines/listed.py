@@ -14,7 +14,7 @@ from ..doppler import C_KMS, doppler_factor
 from ..linelist import load_linelist
 from .data import DETECT_SIGMA, find_features
 
-__all__ = ["ListedLines", "lines_in_range", "line_widths", "match_windows", "blends", "velocities"]
+__all__ = ["ListedLines", "RowValues", "row_values", "lines_in_range", "line_widths", "match_windows", "blends", "velocities"]
 
 
 class ListedLines(NamedTuple):
@@ -25,6 +25,40 @@ class ListedLines(NamedTuple):
     pred: np.ndarray        #: Doppler-shifted (predicted observed) wavelengths, Angstrom
     rv: u.Quantity          #: the velocity they are shifted by
     pred_all: np.ndarray    #: predicted wavelengths of the whole list (covered or not)
+    #: what the rows give every spectrum alike (:func:`row_values`), or None: made when asked for
+    values: "RowValues | None" = None
+
+
+class RowValues(NamedTuple):
+    """Plain values of the covered rows, the same for every spectrum that covers them (read-only
+    arrays: copy before handing them out)."""
+
+    ids: list               #: the lines' ids, str
+    id_array: np.ndarray    #: the same, as an array of str
+    species: np.ndarray     #: species, array of str
+    hydrogen: np.ndarray    #: bool: a hydrogen line
+    ep_low: np.ndarray | None  #: lower-level excitation, eV (NaN unknown), where listed
+    wave_air: u.Quantity    #: air wavelengths in Angstrom, with the list column's description
+    wave_vac: u.Quantity    #: vacuum wavelengths in Angstrom, the same
+
+
+def row_values(listed):
+    """The :class:`RowValues` of ``listed`` (:class:`ListedLines`): kept with the packaged list's
+    rows, made from the rows otherwise."""
+    return listed.values if listed.values is not None else _row_values(listed.rows)
+
+
+def _row_values(rows):
+    ids = [str(i) for i in rows["id"]]
+    species = np.array([str(s) for s in rows["species"]], str)
+    ep = rows["ep_low"] if "ep_low" in rows.colnames else None
+    ep = None if ep is None else np.asarray(getattr(ep, "value", ep), float)
+    values = RowValues(ids, np.array(ids, str), species, species == "H I", ep,
+                       rows["wave_air"].to(u.AA), rows["wave_vac"].to(u.AA))
+    for a in values[1:]:
+        if isinstance(a, np.ndarray):   # (Quantities too)
+            a.flags.writeable = False
+    return values
 
 
 def lines_in_range(data, linelist, kinds, rv):
@@ -35,11 +69,47 @@ def lines_in_range(data, linelist, kinds, rv):
     ListedLines
     """
     table = _prepare_list(linelist, kinds)
-    lab_all = table[_lab_column(data)].to_value(u.AA)
+    column = _lab_column(data)
+    packaged = linelist is None
+    lab_all = _packaged_lab(kinds, table, column) if packaged else table[column].to_value(u.AA)
     rv_q = _resolve_rv(data, rv, lab_all)
     pred_all = lab_all * doppler_factor(rv_q)
     cov = _covered(data, pred_all)
+    if packaged:
+        rows, values = _packaged_rows(kinds, column, table, cov)
+        return ListedLines(rows, lab_all[cov], pred_all[cov], rv_q, pred_all, values)
     return ListedLines(table[cov], lab_all[cov], pred_all[cov], rv_q, pred_all)
+
+
+#: The packaged list's laboratory wavelengths and covered rows (with their :class:`RowValues`), per
+#: kind selection, medium and coverage: a night's spectra cover the same lines set-up after set-up,
+#: and slicing the table and reading its rows' values took ~0.4 ms a spectrum (benchmarks/bench_lines.py).
+#: The packaged table itself is kept for the process (:data:`_PACKAGED`), so the rows are too.
+_PACKAGED_ROWS = {}
+_PACKAGED_LAB = {}
+ROWS_KEPT = 16
+
+
+def _packaged_lab(kinds, table, column):
+    key = (None if kinds is None else tuple(kinds), column)
+    lab = _PACKAGED_LAB.get(key)
+    if lab is None:
+        lab = table[column].to_value(u.AA)
+        lab.flags.writeable = False
+        _PACKAGED_LAB[key] = lab
+    return lab
+
+
+def _packaged_rows(kinds, column, table, cov):
+    key = (None if kinds is None else tuple(kinds), column, cov.tobytes())
+    found = _PACKAGED_ROWS.get(key)
+    if found is None:
+        rows = table[cov]
+        found = (rows, _row_values(rows))
+        while len(_PACKAGED_ROWS) >= ROWS_KEPT:
+            _PACKAGED_ROWS.pop(next(iter(_PACKAGED_ROWS)), None)
+        _PACKAGED_ROWS[key] = found
+    return found
 
 
 #: The packaged list, read and filtered once per process and kind selection: reading and

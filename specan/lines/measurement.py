@@ -29,7 +29,7 @@ from .data import DETECT_SIGMA, MIN_DEPTH, LineData, find_features, normalised
 from .hydrogen import without_hydrogen
 from .expected import expected_lines, star_code
 from .hydrogen_blends import less_blends, series_shares
-from .listed import blends, line_widths, lines_in_range, match_windows, velocities
+from .listed import blends, line_widths, lines_in_range, match_windows, row_values, velocities
 from .batchfit import fit_planned, voigt_batch
 from .profiles import fit_gauss, fit_profile
 from .windows import line_window, line_windows, local_continuum, profile_window, wing_reach
@@ -188,10 +188,10 @@ class Targets(NamedTuple):
 def line_targets(data, listed, window):
     """:class:`Targets` of the listed lines (``window``: matching half-window in velocity or None)."""
     fwhm_at = line_widths(data, listed.pred)
-    hydrogen = np.array([str(s) == "H I" for s in listed.rows["species"]], bool)
-    ep = listed.rows["ep_low"] if "ep_low" in listed.rows.colnames else None
-    ep = None if ep is None else np.asarray(getattr(ep, "value", ep), float)
-    return Targets(listed.pred, fwhm_at, match_windows(listed.pred, fwhm_at, window), hydrogen, ep)
+    # (the rows' own values, kept with the packaged list's rows: copies, the targets are the caller's)
+    values = row_values(listed)
+    ep = None if values.ep_low is None else values.ep_low.copy()
+    return Targets(listed.pred, fwhm_at, match_windows(listed.pred, fwhm_at, window), values.hydrogen.copy(), ep)
 
 
 @dataclass
@@ -895,8 +895,8 @@ _FLOAT_VALUES = attrgetter(*_FLOAT_COLUMNS)
 def line_table(data, listed, targets, results, star_type=None):
     """The table :func:`measure` returns, from one :class:`LineResult` per listed line
     (``star_type``: see :func:`measure`)."""
-    t = listed.rows
-    ids = [str(i) for i in t["id"]]
+    kept = row_values(listed)
+    ids = kept.ids
     # every result's float values read in one pass (one attrgetter per result, not one getattr per value)
     values = np.array([_FLOAT_VALUES(r) for r in results], float).reshape(len(results), len(_FLOAT_COLUMNS))
     cols = dict(zip(_FLOAT_COLUMNS, np.ascontiguousarray(values.T)))
@@ -904,10 +904,11 @@ def line_table(data, listed, targets, results, star_type=None):
     # the columns built once and the table made from them in one call, text columns as arrays:
     # column by column from lists, astropy's conversions were ~2 ms a spectrum (bench_lines.py)
     columns = {
-        "id": np.array(ids, str),
-        "species": np.array([str(s) for s in t["species"]], str),
-        "wave_air": t["wave_air"].to(aa),
-        "wave_vac": t["wave_vac"].to(aa),
+        # (copies of the values kept per set-up: each table owns its columns)
+        "id": kept.id_array.copy(),
+        "species": kept.species.copy(),
+        "wave_air": kept.wave_air.copy(),   # (the list's columns, their descriptions kept)
+        "wave_vac": kept.wave_vac.copy(),
         "wave_obs": cols["wave_obs"] * aa,
         "velocity": velocities(cols["wave_obs"], listed.lab) * kms,
     }
@@ -945,7 +946,11 @@ def line_table(data, listed, targets, results, star_type=None):
     columns["detected"] = detected & expected
     columns["emission"] = emission
     columns["expected"] = expected
-    out = QTable(list(columns.values()), names=list(columns), copy=False)
+    # (added one by one: the same table as QTable(list, names=...), without its default names, which it
+    # reads from astropy's configuration once a column, a fifth of the table's making; measured)
+    out = QTable()
+    for name, column in columns.items():
+        out.add_column(column, name=name, copy=False)
     out.meta.update(data.meta(listed.rv))
     out.meta["star_type"] = None if star_code(star_type) is None else str(star_type)
     return out

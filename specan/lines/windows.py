@@ -160,7 +160,13 @@ def _walks(data, ic, sign, min_half, max_half, wide, step):
 
     Every walk is tested over its first :data:`WALK_AHEAD` steps; those that no rule stopped by then
     and that could go on are tested again over their whole reach. A walk's tests at a step depend on
-    that step and the ones before it only, so the first step a rule holds is the same either way."""
+    that step and the ones before it only, so the first step a rule holds is the same either way.
+    Walks on the wide smoothing alone (the hydrogen lines, a few to a call) are walked in full at
+    once: one of them goes on past the look-ahead in most calls (benchmarks/bench_lines.py's 40
+    spectra: 50 of 80 calls, 127 of 784 walks), and the two passes then cost more than one (0.51 ->
+    0.34 ms a spectrum, CPU, the same windows; measured, load 4-5)."""
+    if np.all(wide):
+        return _walks_upto(data, ic, sign, min_half, max_half, wide, step, None)[:3]
     end, level, cut, going = _walks_upto(data, ic, sign, min_half, max_half, wide, step, WALK_AHEAD)
     if going.any():
         k = np.flatnonzero(going)
