@@ -175,11 +175,10 @@ def _refuse_start_in_worker():
         raise SpecanError(UNGUARDED_SCRIPT)
 
 
-def _check_alarm(pool):
-    """Raise :data:`UNGUARDED_SCRIPT` in the parent once a worker has left the alarm file."""
+def _alarm_raised(pool):
+    """Whether a worker of ``pool`` has left the alarm file (:func:`_refuse_start_in_worker`)."""
     alarm = getattr(pool, "specan_alarm", None)
-    if alarm and os.path.exists(alarm):
-        raise SpecanError(UNGUARDED_SCRIPT)
+    return bool(alarm) and os.path.exists(alarm)
 
 
 def _start_pool(jobs, preload=()):
@@ -252,7 +251,8 @@ def results_local(func, todo, settings, jobs, pool=None):
                 break
             except multiprocessing.TimeoutError:
                 # (waiting in short steps: a worker that cannot start is replaced by another for ever)
-                _check_alarm(pool)
+                if _alarm_raised(pool):
+                    raise SpecanError(UNGUARDED_SCRIPT) from None
                 continue
             yield from chunk
         if own:
