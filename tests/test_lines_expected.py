@@ -90,3 +90,26 @@ def test_emission_shared_with_an_allowed_line_is_that_lines():
         assert not row[he]["detected"] and not row[he]["expected"], he
     untyped = lines.measure(s, rv=None)
     assert list(untyped["id"][untyped["detected"]]).count("HeII_6560") == 1   # before: both claimed it
+
+
+def test_blends_name_no_line_the_type_rules_out(kurucz_sun):
+    # The Kurucz solar model (rms-solar; R 2000, S/N 500, prepare's continuum): H8, H gamma, H beta and
+    # H alpha coincide with He I 3889 and the He II Pickering lines 4339, 4859, 6560, which a G2 V
+    # photosphere cannot show (Gray & Corbally 2009, from memory): given the type, the blend column no
+    # longer names them; the metal partners stay (Ca II H in H epsilon, Fe I 6546 in H alpha). Without a
+    # type nothing is ruled out, and an O8 V type keeps the helium names (and drops the neutral metals).
+    from test_lines_batched import kurucz_spectrum
+
+    spec = kurucz_spectrum(kurucz_sun, False)
+
+    def names(star_type):
+        table = lines.measure(spec, star_type=star_type)
+        hydrogen = table[table["species"] == "H I"]
+        return {str(r["id"]): set(str(r["blend"]).split(",")) - {""} for r in hydrogen}
+
+    untyped, sun, hot = names(None), names("G2 V"), names("O8 V")
+    helium = {"HeI_3889", "HeII_4339", "HeII_4859", "HeII_6560"}
+    assert helium <= set().union(*untyped.values())
+    assert not helium & set().union(*sun.values())
+    assert "CaII_H" in sun["H_epsilon"] and "FeI_6546" in sun["H_alpha"]
+    assert {"HeII_4859"} <= hot["H_beta"] and "FeI_6546" not in hot["H_alpha"]

@@ -943,6 +943,12 @@ def line_table(data, listed, targets, results, star_type=None):
         inside = np.any((cols["window_min"][absorbing] <= cols["wave_obs"][k])
                         & (cols["wave_obs"][k] <= cols["window_max"][absorbing]))
         expected[k] = not (inside or any(detected[j] and allowed[j] for j in partners))
+    if not expected.all():
+        # a line the type rules out is no partner in a blend either: the Sun's H8 and H beta named He I 3889
+        # and He II 4859 (measured on the Kurucz model); the names were used above as they came
+        ruled_out = {ids[k] for k in np.flatnonzero(~expected)}
+        columns["blend"] = np.array([",".join(b for b in str(s).split(",") if b not in ruled_out)
+                                     for s in columns["blend"]], str)
     columns["detected"] = detected & expected
     columns["emission"] = emission
     columns["expected"] = expected
