@@ -43,7 +43,8 @@
    the load drift of a shared machine cancelled (runs in separate processes differ by +-20% here); then
    on how many of the speed test's, ``bench_pipeline.py``'s, the demo night's, the JHC (1984) and the
    MILES inputs (own groups out) the best template, the mixture (names, weights) or the velocity (by more
-   than 0.05 of its error) differ between the two, and by how much at most.
+   than 0.05 of its error) differ between the two, and by how much at most; and on how many any number of
+   the result (velocities, errors, weights, scores, the CCF) differs in any bit ("any bit moved").
 
 11. ``--noise``: the noise error without an error array (the flux's own noise) against with one, on
    inputs of known noise: the Kurucz Sun (photon and constant noise, R 1,000-5,000, S/N 10-300) and
@@ -384,9 +385,9 @@ def choice_changes(packages, speed_inputs, n):
     names = list(packages)
     print(f"\n== {names[1]} against this checkout: template choice, mixture and velocity on the same inputs ==")
     print(f"{'set':28s} {'n':>4s} {'best differs':>12s} {'mixture differs':>15s} {'|drv|>0.05 err':>14s} "
-          f"{'max |drv|/err':>13s} {'max |derr|/err':>14s}")
+          f"{'max |drv|/err':>13s} {'max |derr|/err':>14s} {'any bit moved':>13s}")
     for label, inputs in _change_sets(packages, speed_inputs, n).items():
-        best = mix = moved = 0
+        best = mix = moved = bits = 0
         drv = derr = 0.0
         for spectra, exclude in inputs:
             res = [packages[k].velocity.measure(spectra[k], barycentric=False, exclude_templates=exclude)
@@ -399,7 +400,27 @@ def choice_changes(packages, speed_inputs, n):
             moved += d > 0.05
             drv = max(drv, d)
             derr = max(derr, abs((a["rv_err"] - b["rv_err"]) / b["rv_err"]).value)
-        print(f"{label:28s} {len(inputs):4d} {best:12d} {mix:15d} {moved:14d} {drv:13.2e} {derr:14.2e}")
+            bits += _numbers(a) != _numbers(b)
+        print(f"{label:28s} {len(inputs):4d} {best:12d} {mix:15d} {moved:14d} {drv:13.2e} {derr:14.2e} {bits:13d}")
+
+
+def _numbers(result):
+    """Every number and name of a ``velocity.measure`` result as exact bytes (velocities, errors and their
+    parts, the mixture's names, weights, scores and offsets, the template scores, the CCF): equal only where
+    not one bit moved."""
+    out = []
+    for key in sorted(result):
+        value = result[key]
+        if key == "templates":
+            value = [(m["name"], m["weight"], m["score"], m["rv_offset"].value) for m in value]
+        elif key == "template_scores":
+            value = sorted(value.items())
+        elif hasattr(value, "unit"):
+            value = np.asarray(value.value).tobytes()
+        elif isinstance(value, np.ndarray):
+            value = value.tobytes()
+        out.append((key, repr(value)))
+    return out
 
 
 #: The steps of ``velocity.measure`` timed by :func:`floor` (names in ``specan.velocity``).

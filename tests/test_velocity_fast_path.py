@@ -60,7 +60,10 @@ by -0.017 and -0.002 (errors -5%, +3%) and its trf3_01 (O8 V, truth -12.0 km/s) 
 -12.10 +- 0.95 -> -12.60 +- 0.45 km/s: its mixture of O8.5 V and O7 V (0.76/0.24) became O8.5 V alone, the
 two templates' heights 0.0034 apart against a mismatch of 0.0012 (ceiling 0.9954) and a height noise of
 0.0017; recorded again then (``bench_velocity.py --user --other-types --miles
---bias-parts --against`` before and after, in the commit that recorded them).
+--bias-parts --against`` before and after, in the commit that recorded them). The members' transforms stacked once
+per set of templates, the data's three rows stacked once per spectrum and the other changes for speed alone after
+them moved no bit of any result of 232 spectra (the speed test's, the night benchmark's, the demo night, JHC and
+MILES stars; ``bench_velocity.py --against`` 11db813, "any bit moved" 0 in every set).
 """
 
 import math
@@ -769,3 +772,33 @@ def test_weights_median_is_numpys():
         assert _median(a) == np.median(a), n
     a[7] = np.nan
     assert np.isnan(_median(a))
+
+
+def test_kept_template_stacks_and_stacked_data_rows_change_no_bit(kurucz_sun, monkeypatch):
+    """The segment errors with the members' transforms stacked once per set of templates (kept) and the data's
+    rows summed from the side's one (3, n) stack are, to the bit, those with the stack made afresh and the rows
+    stacked again (the Kurucz Sun, rms-solar, as the speed test sees it); the kept stack is reused."""
+    from specan.velocity import uncertainty
+
+    calls = []
+    real = uncertainty.segment_errors
+    monkeypatch.setattr(velocity, "segment_errors", lambda *a: calls.append(a) or real(*a))
+    for v, seed, _ in KURUCZ_CASES[:3]:
+        velocity.measure(kurucz_spectrum(kurucz_sun, v, seed), barycentric=False)
+    monkeypatch.undo()
+    assert calls and all(a[1].side.stacked is not None for a in calls)
+    kept = [real(*a) for a in calls]
+    stacks = {key: found[1] for key, found in uncertainty._STACKED_SINGLE.items()}
+    again = [real(*a) for a in calls]
+    assert all(uncertainty._STACKED_SINGLE[key][1] is s for key, s in stacks.items())   # reused, not made again
+    uncertainty._STACKED_SINGLE.clear()
+    fresh = []
+    for observed, search, members, m, resels in calls:
+        side = search.side._replace(stacked=None)     # the rows stacked again in _template_segments
+        fresh.append(real(observed, search._replace(side=side), members, m, resels))
+    for a, b, c in zip(kept, again, fresh):
+        for x in (b, c):
+            assert np.float64(a.noise_px).tobytes() == np.float64(x.noise_px).tobytes()
+            assert np.float64(a.birge).tobytes() == np.float64(x.birge).tobytes()
+            assert a.offsets.tobytes() == x.offsets.tobytes() and a.sigmas.tobytes() == x.sigmas.tobytes()
+            assert a.n == x.n

@@ -41,6 +41,8 @@ class ObservedSide(NamedTuple):
     total_weight: float
     ceiling: float = 1.0
     height_noise: float = 0.0
+    #: the three arrays as the rows of one (3, n) array (``arrays`` are its rows), or None
+    stacked: np.ndarray | None = None
 
 
 class PeakSearch(NamedTuple):
@@ -77,9 +79,12 @@ def observed_side(observed, lags):
     w_noise = 1.0 / np.maximum(observed.sigma, 1e-12) ** 2
     w_noise /= _median(w_noise[observed.valid])
     weight = observed.taper * w_noise
-    arrays = correlation_arrays(highpass(observed.flux - 1.0, lags.hp_sigma, observed.valid), weight)
-    d_ffts = tuple(sfft.rfft(np.stack(arrays), lags.m, axis=1))   # (one call for the three)
-    return ObservedSide(weight, arrays, d_ffts, float(np.sum(weight)), *noise_ceiling(observed, weight, arrays, lags.hp_sigma))
+    stacked = np.stack(correlation_arrays(highpass(observed.flux - 1.0, lags.hp_sigma, observed.valid), weight))
+    stacked.flags.writeable = False
+    arrays = tuple(stacked)   # (its rows: the same values, and the stack made once for every use)
+    d_ffts = tuple(sfft.rfft(stacked, lags.m, axis=1))   # (one call for the three)
+    return ObservedSide(weight, arrays, d_ffts, float(np.sum(weight)),
+                        *noise_ceiling(observed, weight, arrays, lags.hp_sigma), stacked=stacked)
 
 
 #: Least squared ceiling :func:`noise_ceiling` returns (our choice: data read as almost all noise keep a

@@ -677,9 +677,10 @@ def gauss_smooth(x, sigma, single=False):
     """
     n = x.shape[0]
     size = fast_length(n + int(math.ceil(8 * sigma)))  # zero padding: no wrap-around
-    kern = gauss_kernel(size, float(sigma))
     if single:
-        x, kern = np.asarray(x, np.float32), kern.astype(np.float32)
+        x, kern = np.asarray(x, np.float32), gauss_kernel_single(size, float(sigma))
+    else:
+        kern = gauss_kernel(size, float(sigma))
     if x.ndim == 2:
         kern = kern[:, None]
     return np.asarray(sfft.irfft(sfft.rfft(x, size, axis=0) * kern, size, axis=0)[:n], np.float64)
@@ -691,6 +692,15 @@ def gauss_kernel(size, sigma):
     transform of length ``size`` (read-only: one per set-up, shared)."""
     k = np.arange(size // 2 + 1) / size
     kern = np.exp(-2.0 * (np.pi * sigma * k) ** 2)
+    kern.flags.writeable = False
+    return kern
+
+
+@functools.lru_cache(maxsize=32)
+def gauss_kernel_single(size, sigma):
+    """:func:`gauss_kernel` in single precision (read-only, one per set-up: the same values as converting
+    it at each use)."""
+    kern = gauss_kernel(size, sigma).astype(np.float32)
     kern.flags.writeable = False
     return kern
 

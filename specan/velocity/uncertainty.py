@@ -19,7 +19,7 @@ from scipy import fft as sfft
 
 from .correlation import Correlation
 from .prepared import full_cover
-from .grid import gauss_kernel, fast_length, gauss_smooth, highpass, kms_per_pixel, smoothed_coverage, spline_operators, turns
+from .grid import fast_length, gauss_kernel_single, gauss_smooth, highpass, kms_per_pixel, smoothed_coverage, spline_operators, turns
 
 __all__ = ["TonryDavis", "VelocityErrors", "SegmentErrors", "tonry_davis", "resample_error", "estimate_errors",
            "reported_error", "segment_errors", "segment_windows", "SEGMENT_REACH", "SPLINE_REACH", "zero_point_error", "content_seed", "spline_adjoint", "ErrorBudget", "error_budget"]
@@ -243,20 +243,26 @@ def _segments_highpass_adjoint(g, starts, sigma, valid, colour=None):
     v = valid.astype(float)
     vg = v * g
     out = np.zeros((int(colour.max()) + 1, n))   # a row per colour (rows: contiguous writes), transposed at the end
-    for j, (a, b) in enumerate(zip(starts, ends)):
-        out[colour[j], a:b] = vg[a:b]
+    # the loops below index with Python ints (one conversion each): numpy scalars as indices and slice
+    # bounds cost a conversion at every use
+    starts_l, ends_l, colour_l = starts.tolist(), ends.tolist(), colour.tolist()
+    for c, a, b in zip(colour_l, starts_l, ends_l):
+        out[c, a:b] = vg[a:b]
     if not sigma:
         return out.T
     lo, hi = segment_windows(starts, n, sigma)
+    lo_l, hi_l = lo.tolist(), hi.tolist()
     q = (vg / smoothed_coverage(valid, sigma)).astype(np.float32)
     for group, size in _transform_groups(ends - starts, 2 * int(math.ceil(SEGMENT_REACH * sigma))):
         rows = np.zeros((group.size, size), np.float32)
+        group = group.tolist()
         for i, j in enumerate(group):
-            rows[i, starts[j] - lo[j]:ends[j] - lo[j]] = q[starts[j]:ends[j]]
-        smooth = sfft.irfft(sfft.rfft(rows, axis=1) * _kernel32(size, float(sigma)), size, axis=1)
+            rows[i, starts_l[j] - lo_l[j]:ends_l[j] - lo_l[j]] = q[starts_l[j]:ends_l[j]]
+        smooth = sfft.irfft(sfft.rfft(rows, axis=1) * gauss_kernel_single(size, float(sigma)), size, axis=1)
         # back to the spectrum's pixels: each window's span of its row (a few segments' worth of pixels)
         for i, j in enumerate(group):
-            out[colour[j], lo[j]:hi[j]] -= v[lo[j]:hi[j]] * smooth[i, :hi[j] - lo[j]]
+            a, b = lo_l[j], hi_l[j]
+            out[colour_l[j], a:b] -= v[a:b] * smooth[i, :b - a]
     return out.T
 
 
@@ -291,7 +297,7 @@ def _colours(lo, hi):
     """Colours (0, 1, ...) of the windows [lo, hi) in order such that windows of one colour are
     disjoint: each takes the first colour whose last window ended at or before its start."""
     last_end, colour = [], []
-    for a, b in zip(lo, hi):
+    for a, b in zip(np.asarray(lo).tolist(), np.asarray(hi).tolist()):   # (Python ints: numpy scalars compare slower)
         c = next((i for i, e in enumerate(last_end) if e <= a), len(last_end))
         if c == len(last_end):
             last_end.append(b)
@@ -301,28 +307,6 @@ def _colours(lo, hi):
     return np.asarray(colour)
 
 
-@functools.lru_cache(maxsize=32)
-def _kernel32(size, sigma):
-    """:func:`~.grid.gauss_kernel` in single precision (read-only, one per set-up)."""
-    kern = gauss_kernel(size, sigma).astype(np.float32)
-    kern.flags.writeable = False
-    return kern
-    reach = int(math.ceil(SEGMENT_REACH * sigma))
-    lo, hi = np.maximum(starts - reach, 0), np.minimum(ends + reach, n)
-    size = fast_length(int(np.max(ends - starts)) + 2 * reach)
-    q = (v * g / smoothed_coverage(valid, sigma)).astype(np.float32)
-    rows = np.zeros((k, size), np.float32)
-    # row j holds its segment's values at offsets starts - lo ... ends - lo (one scatter for all)
-    pos = np.arange(n)
-    rows[seg, pos - lo[seg]] = q
-    kern = gauss_kernel(size, float(sigma)).astype(np.float32)
-    smooth = sfft.irfft(sfft.rfft(rows, axis=1) * kern, size, axis=1)
-    # back to the spectrum's pixels: each window's span of its row (a few segments' worth of pixels)
-    span = hi - lo
-    col = np.repeat(np.arange(k), span)
-    at = np.concatenate([np.arange(a, b) for a, b in zip(lo, hi)])
-    out[at, col] -= v[at] * smooth[col, at - np.repeat(lo, span)]
-    return out
 
 
 class SegmentErrors(NamedTuple):
@@ -382,13 +366,33 @@ def _offset_phases(offsets, m, nf):
     return np.exp(2j * np.pi * np.outer(np.asarray(offsets, float), np.arange(nf)) / m)
 
 
+_STACKED_SINGLE = {}
+
+
+def _stacked_single(templates, m):
+    """(T, 3, nf) the ``templates``' :meth:`~.prepared.PreparedTemplate.ffts_single` at length ``m`` stacked
+    (read-only), kept for the last few sets of templates: the mixtures of a survey's spectra repeat, and the
+    stack copied every template's three transforms again for each spectrum. The prepared templates are cached
+    objects and the set is kept with the stack, so an identity stays theirs while kept."""
+    key = (tuple(id(t) for t in templates), m)
+    found = _STACKED_SINGLE.get(key)
+    if found is None or any(a is not b for a, b in zip(found[0], templates)):
+        stacked = np.stack([t.ffts_single(m) for t in templates])
+        stacked.flags.writeable = False
+        found = (templates, stacked)
+        while len(_STACKED_SINGLE) >= 16:   # oldest out first; the array is returned, not looked up again
+            _STACKED_SINGLE.pop(next(iter(_STACKED_SINGLE)), None)
+        _STACKED_SINGLE[key] = found
+    return found[1]
+
+
 def _shifted_templates(search, members, m, h, full=False):
     """(T, 3, 3, n): each member template's arrays T, T^2 (weighted) and V on the data window at lags
     s0 + h, s0 and s0 - h (s0 its peak), all in one inverse transform (lag s uses template pixels
     x + pad - s); (T, 2, 3, n), T and T^2 only, where the coverages are ``full`` (1 on every pixel
     used, :func:`full_cover`): V is then 1 at every lag and not transformed."""
     lags = search.lags
-    F = np.stack([template.ffts_single(m) for template, _, _ in members])            # (T, 3, nf)
+    F = _stacked_single(tuple(template for template, _, _ in members), m)              # (T, 3, nf)
     if full:
         F = F[:, :2]
     # the members' shifts in one call: exp(2 pi i f (pad - s0) / m) times the cached offset phases
@@ -436,7 +440,11 @@ def _template_segments(search, shifted, starts, h, weights):
     rows = tuple(sums(products))
     if full:
         # the coverage sums are the data's own over each segment, the same for every template and lag
-        rows += tuple(np.broadcast_to(r, bT.shape[:2] + (starts.size + 1,)) for r in sums(np.stack([a1, a3, a2])))
+        # (the rows a1, a2, a3 summed as the side keeps them stacked, then ordered a1, a3, a2: each row's
+        # sums are its own, whatever the order of the rows)
+        stacked = search.side.stacked
+        data = sums(np.stack([a1, a2, a3]) if stacked is None else stacked)[[0, 2, 1]]
+        rows += tuple(np.broadcast_to(data[:, None, None, :], (3,) + bT.shape[:2] + (starts.size + 1,)))
     c, _ = Correlation.combine(rows)                                  # (T, 3 lags, K + 1)
     with np.errstate(invalid="ignore"):  # a segment with no overlap gives inf - inf: marked not good
         den = c[:, 0] - 2.0 * c[:, 1] + c[:, 2]
