@@ -11,9 +11,13 @@ Stated tolerance against the exact design (``_differences``; an equivalent width
 its own error, times sqrt(reduced chi2) where the profile model limits the fit, as in
 tests/test_lines_batched.py):
 
-- demo night (18 spectra, 2773 lines): at most 8 lines change detection, method, profile or
+- demo night (18 spectra, 2773 lines): at most 12 lines change detection, method, profile or
   emission flag, at most 2% of the lines move their ``ew`` by more than their error, 5% by more
-  than half of it. Measured: 5 lines, 1.30% and 3.9%. The 5: Mg I 3832 and 3838 of the O8 star
+  than half of it. Measured: 10 lines, 1.44% and 4.0% (5, 1.30% and 3.9% before hydrogen walks
+  started at the wide smoothing's bottom, specan.lines.windows.hydrogen_starts: the wider windows
+  of the crowded H8/H9 region part the two designs on five more: H9's method (with or without its
+  metal lines taken out) in the O8, B1 and B3 stars, and in the A3 star whether H8 or He I 3889,
+  0.4 A apart and unresolvable, is the detected one). The 5 before: Mg I 3832 and 3838 of the O8 star
   and Mg I 3838 of the B3 star (residuals of the hydrogen division between H8 and H9, where the
   exact design refits ill-determined hydrogen fits one by one), He II 4859 of the G2 star (inside
   H beta's window); with the star's type given, as the night run gives it, none of these is
@@ -91,9 +95,9 @@ def test_quick_design_within_its_tolerance_on_the_demo_night():
         pairs.append((lines.measure(spec, rv=rv, exact_fits=True), lines.measure(spec, rv=rv)))
     n, flags, move = _compare_all(pairs)
     assert n > 2000
-    assert flags <= 8                        # measured: 5 of 2773
-    assert np.mean(move > 1.0) <= 0.02       # measured: 0.0130
-    assert np.mean(move > 0.5) <= 0.05       # measured: 0.039
+    assert flags <= 12                       # measured: 10 of 2773 (5 before hydrogen_starts)
+    assert np.mean(move > 1.0) <= 0.02       # measured: 0.0144 (0.0130 before)
+    assert np.mean(move > 0.5) <= 0.05       # measured: 0.040 (0.039 before)
 
 
 @pytest.mark.parametrize("true_continuum", [False, True])
