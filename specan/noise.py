@@ -236,6 +236,18 @@ def correlated_pixels(method):
     return False if method.startswith(PLATEAU_METHOD) else None
 
 
+def _block_widths(n, pixels_per_fwhm, block):
+    """(block length, the instrument's Gaussian sigma in pixels at each block's centre) for ``n`` pixels:
+    the blocks :func:`_block_power` measures on, and the widths :func:`_leak` is asked for."""
+    blk = min(block, max(n // 2, 2 * _TAPS))
+    nb = max(n // blk, 1)
+    edges = np.linspace(0, n, nb + 1).astype(int)   # (as _block_power makes them)
+    centres = 0.5 * (edges[:-1] + edges[1:]) - 0.5
+    ppf = _DEFAULT_PIXELS_PER_FWHM if pixels_per_fwhm is None else pixels_per_fwhm
+    ppf = np.broadcast_to(np.asarray(ppf, float), (n,))
+    return blk, np.interp(centres, np.arange(n), ppf) / 2.3548   # FWHM -> Gaussian sigma (common practice)
+
+
 def flux_noise(flux, good=None, pixels_per_fwhm=None, block=BLOCK, correlated=None, noise_only=None):
     """Noise per pixel of a spectrum without an error array, from its high-frequency power.
 
@@ -280,18 +292,15 @@ def flux_noise(flux, good=None, pixels_per_fwhm=None, block=BLOCK, correlated=No
         return nan
     # the pixels the plateau is measured on: the good ones and those holding noise only
     usable = good if noise_only is None else good | (np.asarray(noise_only, bool) & np.isfinite(y))
-    ppf = _DEFAULT_PIXELS_PER_FWHM if pixels_per_fwhm is None else pixels_per_fwhm
-    ppf = np.broadcast_to(np.asarray(ppf, float), (n,))
     idx = np.flatnonzero(usable)
     filled = np.where(usable, y, np.interp(np.arange(n), idx, y[idx]))
     valid = valid_for(usable, _TAPS)
     passed = _band_passed(filled)    # high, middle, the high band's two halves
-    blk = min(block, max(n // 2, 2 * _TAPS))
+    blk, s_blk = _block_widths(n, pixels_per_fwhm, block)
     centres, (p_hi, p_mid) = _block_power(passed[:2], valid, blk)
     ok = np.isfinite(p_hi) & np.isfinite(p_mid)
     if not ok.any():
         return nan
-    s_blk = np.interp(centres, np.arange(n), ppf) / 2.3548   # FWHM -> Gaussian sigma (common practice)
     g = np.array([_leak(round(float(s), 2)) for s in s_blk])  # per block: (g_high, g_mid)
     # N + A g_hi = p_hi, N + A g_mid = p_mid; the lines' power A cannot be negative
     a = np.clip((p_mid - p_hi) / np.maximum(g[:, 1] - g[:, 0], 1e-12), 0.0, None)
@@ -360,14 +369,9 @@ def _what_counts(flux, good, pixels_per_fwhm, block, correlated, noise_only):
     n = y.size
     ok = np.isfinite(y) if good is None else (np.asarray(good, bool) & np.isfinite(y))
     extra = b"" if noise_only is None else np.ascontiguousarray(noise_only, dtype=bool).tobytes()
-    blk = min(block, max(n // 2, 2 * _TAPS))
-    nb = max(n // blk, 1)
-    edges = np.linspace(0, n, nb + 1).astype(int)
-    centres = 0.5 * (edges[:-1] + edges[1:]) - 0.5
-    ppf = _DEFAULT_PIXELS_PER_FWHM if pixels_per_fwhm is None else pixels_per_fwhm
-    ppf = np.broadcast_to(np.asarray(ppf, float), (n,))
-    s_blk = np.interp(centres, np.arange(n), ppf) / 2.3548
-    widths = np.round(s_blk, 2).tobytes() + np.round([float(np.median(s_blk))], 2).tobytes()
+    _, s_blk = _block_widths(n, pixels_per_fwhm, block)
+    # (rounded as flux_noise rounds them for _leak, so that equal keys mean equal arguments)
+    widths = tuple(round(float(s), 2) for s in s_blk) + (round(float(np.median(s_blk)), 2),)
     return (y.tobytes(), ok.tobytes(), extra, widths, int(block), correlated)
 
 

@@ -11,6 +11,8 @@ import numpy as np
 import pytest
 from scipy.ndimage import gaussian_filter1d
 
+from specan import contents
+from specan.contents import content_key
 from specan.lines import data as line_data
 
 
@@ -68,11 +70,11 @@ def test_set_up_kept_per_grid_and_resolving_power():
     wave = np.linspace(3700.0, 7300.0, 4000)
     other = wave.copy()
     other[-1] += 1e-9
-    key = line_data._content_key(wave)
-    assert line_data._content_key(wave.copy()) == key
-    assert line_data._content_key(other) != key
+    key = content_key(wave)
+    assert content_key(wave.copy()) == key
+    assert content_key(other) != key
     dx = line_data._grid_setup(key, wave)
-    assert line_data._grid_setup(line_data._content_key(wave.copy()), wave.copy()) is dx
+    assert line_data._grid_setup(content_key(wave.copy()), wave.copy()) is dx
     assert np.array_equal(dx, np.diff(line_data.pixel_edges(wave)))
     first = line_data._width_setup(key, wave, dx, 2000.0, 1.0)
     assert line_data._width_setup(key, wave, dx, 2000.0, 1.0) is first
@@ -98,7 +100,7 @@ def test_line_data_the_same_from_kept_set_up(monkeypatch):
     kept = line_data.LineData(spec)
     monkeypatch.setattr(line_data, "_GRIDS", {})
     monkeypatch.setattr(line_data, "_WIDTHS", {})
-    monkeypatch.setattr(line_data, "_CONTENTS", [])
+    monkeypatch.setattr(contents, "_CONTENTS", [])
     fresh = line_data.LineData(spec)
     for name in ("dx", "fwhm", "line_fwhm", "sig_pix", "signif", "smooth", "smooth_err", "weight"):
         assert np.array_equal(getattr(kept, name), getattr(fresh, name)), name

@@ -675,23 +675,23 @@ def test_full_cover_scores_take_the_data_sums(kurucz_sun, monkeypatch):
 
 
 def test_content_numbers_stand_for_the_bytes_only():
-    """The caches' content keys (``grid._digest``): equal contents the same number, other bytes, another
+    """The caches' content keys (``specan.contents.content_key``, shared by the lines and velocity stages): equal contents the same number, other bytes, another
     dtype or shape another, and a content dropped from the kept ones a new number (a miss, never a wrong hit)."""
-    from specan.velocity import grid
+    from specan import contents
 
     x = np.linspace(0.0, 1.0, 500)
-    first = grid._digest(x)
-    assert grid._digest(x.copy()) == first
-    assert grid._digest(x[::-1].copy()[::-1]) == first          # equal contents, other memory
+    first = contents.content_key(x)
+    assert contents.content_key(x.copy()) == first
+    assert contents.content_key(x[::-1].copy()[::-1]) == first          # equal contents, other memory
     y = x.copy()
     y[250] = np.nextafter(y[250], 2.0)                          # one bit of one value
-    assert grid._digest(y) != first
-    assert grid._digest(x.reshape(20, 25)) != first
-    assert grid._digest(x.view(np.int64)) != first
-    for k in range(grid.CONTENTS_KEPT):                         # push x out of the kept contents
-        grid._digest(np.full(3, float(k) + 0.5))
-    again = grid._digest(x)
-    assert again != first and grid._digest(x.copy()) == again
+    assert contents.content_key(y) != first
+    assert contents.content_key(x.reshape(20, 25)) != first
+    assert contents.content_key(x.view(np.int64)) != first
+    for k in range(contents.CONTENTS_KEPT):                         # push x out of the kept contents
+        contents.content_key(np.full(3, float(k) + 0.5))
+    again = contents.content_key(x)
+    assert again != first and contents.content_key(x.copy()) == again
 
 
 def test_peaks_of_a_few_rows_on_python_floats_are_the_arrays_to_the_bit(monkeypatch):

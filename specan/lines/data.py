@@ -8,13 +8,13 @@ from __future__ import annotations
 
 import copy
 import functools
-import threading
 from typing import NamedTuple
 
 import numpy as np
 from scipy.ndimage import correlate1d
 from scipy.signal import find_peaks, peak_prominences
 
+from ..contents import content_key, kept
 from ..obsinfo import get_info
 from .. import resolution
 from ..resolution import (DEFAULT_PIXELS_PER_FWHM, GAUSS_FWHM, dersnr_sigma, narrowest_line_width,
@@ -245,52 +245,13 @@ def wide_smooth(flux, weight, s):
 #: How many grids (and, per grid, resolving powers and broadenings) :func:`_grid_setup` and
 #: :func:`_width_setup` keep: a night mixes a few set-ups, not hundreds.
 SETUPS_KEPT = 8
-_CONTENTS = []
 _GRIDS = {}
 _WIDTHS = {}
-_SETUP_LOCK = threading.Lock()
-
-
-def _content_key(array):
-    """A number standing for the exact contents of ``array`` (dtype, shape, bytes) while it is among
-    the last :data:`SETUPS_KEPT` seen; another content never gets it (one that comes back after being
-    dropped gets a new number: a miss, never a wrong hit). Comparing 4,000 wavelengths' bytes with
-    the kept ones costs microseconds, the set-up work it saves a few tenths of a millisecond."""
-    a = np.ascontiguousarray(array)
-    data, kind = a.tobytes(), (a.dtype.str, a.shape)
-    global _NEXT_KEY
-    with _SETUP_LOCK:
-        for k, kept, number in reversed(_CONTENTS):
-            if k == kind and kept == data:
-                return number
-        _NEXT_KEY += 1
-        _CONTENTS.append((kind, data, _NEXT_KEY))
-        del _CONTENTS[:-SETUPS_KEPT]
-        return _NEXT_KEY
-
-
-_NEXT_KEY = 0
-
-
-def _kept(store, key, make):
-    """``store[key]``, made by ``make()`` where absent (its arrays read-only); the oldest out first."""
-    with _SETUP_LOCK:
-        found = store.get(key)
-    if found is None:
-        found = make()
-        for a in (found if isinstance(found, tuple) else (found,)):
-            if isinstance(a, np.ndarray):
-                a.flags.writeable = False
-        with _SETUP_LOCK:
-            while len(store) >= SETUPS_KEPT:
-                store.pop(next(iter(store)), None)
-            store[key] = found
-    return found
 
 
 def _grid_setup(key, wave):
-    """The pixel widths of the grid ``wave`` (content ``key``, :func:`_content_key`), kept."""
-    return _kept(_GRIDS, key, lambda: np.diff(pixel_edges(wave)))
+    """The pixel widths of the grid ``wave`` (content ``key``, :func:`specan.contents.content_key`), kept."""
+    return kept(_GRIDS, key, lambda: np.diff(pixel_edges(wave)), SETUPS_KEPT)
 
 
 def _width_setup(key, wave, dx, resolving_power, broadening):
@@ -304,7 +265,7 @@ def _width_setup(key, wave, dx, resolving_power, broadening):
         line_fwhm = fwhm * broadening
         sig_pix = line_fwhm / GAUSS_FWHM / dx
         return fwhm, line_fwhm, sig_pix, _ladder(sig_pix), 3.0 * float(np.median(sig_pix))
-    return _kept(_WIDTHS, (key, float(resolving_power), float(broadening)), make)
+    return kept(_WIDTHS, (key, float(resolving_power), float(broadening)), make, SETUPS_KEPT)
 
 
 class LineData:
@@ -323,7 +284,7 @@ class LineData:
         self.medium = info.medium
         self.wave, self.flux, self.sigma, self.good, self.noise_source = normalised_arrays(
             spectrum, resolving_power=resolving_power)
-        wave_key = _content_key(self.wave)
+        wave_key = content_key(self.wave)
         self.dx = _grid_setup(wave_key, self.wave)  # pixel widths, Angstrom (read-only, kept per grid)
         # the narrowest-line search keeps the one-value DER_SNR noise its thresholds were set with
         # (what normalised_arrays(spectrum, dersnr=True) gives, from the arrays at hand)

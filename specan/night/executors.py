@@ -182,7 +182,6 @@ def _alarm_raised(pool):
 
 
 def _start_pool(jobs, preload=()):
-    import multiprocessing
     import tempfile
 
     _refuse_start_in_worker()

@@ -14,9 +14,7 @@ and to every template.
 from __future__ import annotations
 
 import functools
-import itertools
 import math
-import threading
 from dataclasses import dataclass
 from typing import NamedTuple
 
@@ -25,6 +23,7 @@ import numpy as np
 from scipy import fft as sfft
 from scipy.interpolate import make_interp_spline
 
+from ..contents import content_key, kept
 from ..doppler import factor_kms
 from ..doppler import velocity_kms as _kms
 from ..errors import AnalysisError
@@ -252,49 +251,7 @@ def _vacuum_wavelengths(spectrum, info):
     if info.medium == "vacuum":
         return wavelength_in(spectrum, "vacuum")
     own = wavelength_in(spectrum, info.medium)
-    return _kept(_VACUUM, (_digest(own), own.size, info.medium), lambda: wavelength_in(spectrum, "vacuum"))
-
-
-#: The arrays whose contents the caches of this module are keyed by (:func:`_digest`), newest last:
-#: (dtype, shape, bytes, id) of the last :data:`CONTENTS_KEPT`.
-_CONTENTS = []
-_CONTENTS_LOCK = threading.Lock()
-_NEXT_CONTENT = itertools.count()
-CONTENTS_KEPT = 32
-
-
-def _digest(array):
-    """A number standing for the exact contents of ``array`` (its dtype, shape and bytes): the same for
-    equal contents while they are among the last :data:`CONTENTS_KEPT` seen, never the same for others.
-
-    The caches keyed by it (pixels, splines, tapers, coverages) see the same few arrays spectrum after
-    spectrum: comparing the bytes with those kept costs ~2 us for 4,000 wavelengths, a cryptographic
-    hash of them ~35 us (measured), and there were eight a spectrum. A content that comes back after
-    being dropped gets a new number: a cache miss, never a wrong hit.
-    """
-    a = np.ascontiguousarray(array)
-    data, kind = a.tobytes(), (a.dtype.str, a.shape)
-    with _CONTENTS_LOCK:
-        for dtype, shape, kept, number in reversed(_CONTENTS):
-            if (dtype, shape) == kind and kept == data:
-                return number
-        number = next(_NEXT_CONTENT)
-        _CONTENTS.append((kind[0], kind[1], data, number))
-        del _CONTENTS[:-CONTENTS_KEPT]
-    return number
-
-
-def _kept(store, key, make, size=8):
-    """``store[key]``, made read-only by ``make()`` where absent; the oldest of ``size`` out first
-    (the array is returned, not looked up again, so dropping it is safe)."""
-    found = store.get(key)
-    if found is None:
-        found = make()
-        found.flags.writeable = False
-        while len(store) >= size:
-            store.pop(next(iter(store)), None)
-        store[key] = found
-    return found
+    return kept(_VACUUM, (content_key(own), own.size, info.medium), lambda: wavelength_in(spectrum, "vacuum"))
 
 
 def _usable_pixels(spectrum, info, telluric):
@@ -336,7 +293,7 @@ def _pixel_setup(w):
     pixels spectrum after spectrum in a survey. Keyed by the wavelengths' bytes, a few at a time."""
     from ..prepare import telluric_mask
 
-    key = (_digest(w), w.size)
+    key = (content_key(w), w.size)
     found = _PIXEL_SETUPS.get(key)
     if found is None:
         mask = np.asarray(telluric_mask(w, "vacuum"), bool)
@@ -385,7 +342,7 @@ def _edge_taper(valid, first=0, last=None):
     survey share their masks, and a hash of the mask costs a tenth of making the taper)."""
     n = valid.size
     last = n - 1 if last is None else last
-    return _kept(_TAPERS, (_digest(valid), n, first, last), lambda: _make_edge_taper(valid, first, last))
+    return kept(_TAPERS, (content_key(valid), n, first, last), lambda: _make_edge_taper(valid, first, last))
 
 
 def _make_edge_taper(valid, first, last):
@@ -430,7 +387,7 @@ def spline_operators(x, grid, cell=0.0):
     and aliases the rest, where the cell's mean keeps every sample's share (the anti-aliasing of a
     rebinning, common practice).
     """
-    key = (_digest(x), float(grid[0]), float(grid[-1]), grid.size, float(cell))
+    key = (content_key(x), float(grid[0]), float(grid[-1]), grid.size, float(cell))
     found = _SPLINES.get(key)
     if found is None:
         # (imported here, on a miss only: three imports cost more than the look-up itself)
@@ -473,7 +430,7 @@ def resampled_noise_variance(x, grid, cell=0.0):
     mean over several pixels keeps their share, an interpolant between two pixels a little less than
     one). The mean square of :data:`NOISE_PROBES` seeded realisations (the same numbers every run), kept
     per set-up; read-only."""
-    key = (_digest(x), float(grid[0]), float(grid[-1]), grid.size, float(cell))
+    key = (content_key(x), float(grid[0]), float(grid[-1]), grid.size, float(cell))
     found = _NOISE_VARIANCE.get(key)
     if found is None:
         probes = np.random.default_rng(20261204).standard_normal((x.size, NOISE_PROBES))
@@ -711,7 +668,7 @@ _COVERAGE = {}
 def smoothed_coverage(valid, sigma):
     """``gauss_smooth(valid, sigma)`` floored at 1e-3: the high-pass filter's local weight, the
     same for a spectrum's data and its error propagation (kept for the last few coverages)."""
-    key = (_digest(valid), valid.size, float(sigma))
+    key = (content_key(valid), valid.size, float(sigma))
     found = _COVERAGE.get(key)
     if found is None:
         found = np.maximum(gauss_smooth(valid.astype(float), sigma), 1e-3)
