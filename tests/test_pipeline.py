@@ -10,8 +10,10 @@ scripts/make_demo_night.py.
 from __future__ import annotations
 
 import json
+import multiprocessing
 import re
 import os
+import shutil
 import signal
 import subprocess
 import sys
@@ -26,6 +28,7 @@ from astropy.table import Table
 
 from specan import pipeline
 from specan.cli import main as cli_main
+from specan.night import executors
 from specan.night import records as night_records
 from specan.obsinfo import get_info
 
@@ -390,7 +393,12 @@ def _comparable(cat):
 def test_jobs_and_dask_give_the_same_catalogue(tmp_path, fixed_code):
     night = small_night(tmp_path / "night", count=2)
     one = pipeline.run([night], tmp_path / "one", jobs=1, plots=False).catalogue
-    two = pipeline.run([night], tmp_path / "two", jobs=2, plots=False).catalogue
+    # local workers forked (Linux's choice here) and spawned (elsewhere, or where threads run)
+    with pytest.MonkeyPatch.context() as mp:
+        mp.setenv(executors.START_METHOD_VARIABLE, "fork")
+        two = pipeline.run([night], tmp_path / "two", jobs=2, plots=False).catalogue
+        mp.setenv(executors.START_METHOD_VARIABLE, "spawn")
+        spawned = pipeline.run([night], tmp_path / "spawned", jobs=2, plots=False).catalogue
 
     distributed = pytest.importorskip("distributed")
     with distributed.LocalCluster(n_workers=2, processes=True, threads_per_worker=1,
@@ -398,9 +406,10 @@ def test_jobs_and_dask_give_the_same_catalogue(tmp_path, fixed_code):
         on_dask = pipeline.run([night], tmp_path / "dask", dask=cluster.scheduler_address, plots=False).catalogue
     assert len(one) == 5
     assert one.colnames == two.colnames == on_dask.colnames
-    ref, by_jobs, by_dask = _comparable(one), _comparable(two), _comparable(on_dask)
+    ref, by_jobs, by_dask, by_spawned = _comparable(one), _comparable(two), _comparable(on_dask), _comparable(spawned)
     for name in one.colnames:
         assert by_jobs[name] == ref[name], name
+        assert by_spawned[name] == ref[name], name
         assert by_dask[name] == ref[name], name
     for name in one.colnames:
         assert one[name].unit == two[name].unit == on_dask[name].unit
@@ -414,14 +423,16 @@ def test_unguarded_script_with_jobs_stops_with_advice(tmp_path):
     # re-runs it in each worker. That ran for ever before (workers dying and replaced, the parent
     # waiting; measured); now it stops within seconds and says what to change, and no alarm file is
     # left behind. The same call under `if __name__ == "__main__":` runs.
+    # (spawned workers: where specan forks them, on Linux, the script is not imported again; below)
     night = small_night(tmp_path / "night", count=2)
     alarms_before = set(Path(tempfile.gettempdir()).glob("specan-alarm-*"))
     call = f"from specan import pipeline\npipeline.run([{str(night)!r}], {str(tmp_path / 'out')!r}, jobs=2, plots=False)\n"
     unguarded = tmp_path / "unguarded.py"
     unguarded.write_text(call)
+    spawn = dict(os.environ, **{executors.START_METHOD_VARIABLE: "spawn"})
     started = time.perf_counter()
     proc = subprocess.run([sys.executable, str(unguarded)], capture_output=True, text=True, timeout=240, check=False,
-                          cwd=str(tmp_path))
+                          cwd=str(tmp_path), env=spawn)
     assert proc.returncode != 0
     # (the parent's error, with the workers' own before it; multiprocessing's resource tracker may add a
     # warning after it under load, so not necessarily the last line)
@@ -431,9 +442,17 @@ def test_unguarded_script_with_jobs_stops_with_advice(tmp_path):
     guarded = tmp_path / "guarded.py"
     guarded.write_text('if __name__ == "__main__":\n' + "".join("    " + line + "\n" for line in call.splitlines()))
     proc = subprocess.run([sys.executable, str(guarded)], capture_output=True, text=True, timeout=240, check=False,
-                          cwd=str(tmp_path))
+                          cwd=str(tmp_path), env=spawn)
     assert proc.returncode == 0, proc.stderr[-2000:]
     assert len(Table.read(tmp_path / "out" / "catalogue.ecsv")) == 5
+    if "fork" in multiprocessing.get_all_start_methods():
+        # forked workers do not import the script again: the unguarded one runs as it is
+        shutil.rmtree(tmp_path / "out")
+        forked = dict(os.environ, **{executors.START_METHOD_VARIABLE: "fork"})
+        proc = subprocess.run([sys.executable, str(unguarded)], capture_output=True, text=True, timeout=240,
+                              check=False, cwd=str(tmp_path), env=forked)
+        assert proc.returncode == 0, proc.stderr[-2000:]
+        assert len(Table.read(tmp_path / "out" / "catalogue.ecsv")) == 5
     assert set(Path(tempfile.gettempdir()).glob("specan-alarm-*")) == alarms_before
 
 

@@ -29,7 +29,7 @@ from ..errors import SpecanError
 from ..threads import single_threaded
 
 __all__ = ["results", "results_local", "local_workers", "results_dask", "sigterm_as_interrupt", "chunk_size", "run_chunk",
-           "THREAD_VARIABLES", "single_threaded"]
+           "THREAD_VARIABLES", "single_threaded", "start_method", "START_METHOD_VARIABLE"]
 
 #: Environment variables that set the thread pools of the numerical libraries; 1 in every worker.
 THREAD_VARIABLES = ("OMP_NUM_THREADS", "OPENBLAS_NUM_THREADS", "MKL_NUM_THREADS", "BLIS_NUM_THREADS",
@@ -181,12 +181,48 @@ def _alarm_raised(pool):
     return bool(alarm) and os.path.exists(alarm)
 
 
+#: Environment variable that sets how local workers start ("fork" or "spawn"), for tests and benchmarks;
+#: unset, :func:`start_method` chooses.
+START_METHOD_VARIABLE = "SPECAN_START_METHOD"
+
+
+def start_method() -> str:
+    """How local workers start: ``"fork"`` on Linux in a single-threaded process, ``"spawn"`` elsewhere.
+
+    A forked worker starts with the modules this process imported before the pool was made
+    (:func:`local_workers`' ``preload``), where a spawned one imports them again (numpy, scipy,
+    astropy, specutils with the matplotlib and dask it brings, specan's stages: 1.5-2.7 s of CPU a
+    worker, measured). Fork is only safe where no other thread can hold a lock at the moment of the
+    copy, hence one thread only; macOS's system libraries are not fork-safe at all (Python spawns
+    there by default), nor is there fork on Windows. The numerical libraries' thread pools are limited
+    in the worker itself (:func:`run_chunk`), so the results are those of a spawned worker, to the bit.
+    """
+    forced = os.environ.get(START_METHOD_VARIABLE, "").strip()
+    if forced:
+        if forced not in ("fork", "spawn", "forkserver"):
+            raise SpecanError(f"{START_METHOD_VARIABLE}={forced!r}: use fork, spawn or forkserver")
+        return forced
+    import sys
+    import threading
+
+    if (sys.platform.startswith("linux") and "fork" in multiprocessing.get_all_start_methods()
+            and threading.active_count() == 1):
+        return "fork"
+    return "spawn"
+
+
 def _start_pool(jobs, preload=()):
+    import importlib
     import tempfile
 
     _refuse_start_in_worker()
-    # spawn: workers start clean (no copied threads or locks from this process).
-    ctx = multiprocessing.get_context("spawn")
+    method = start_method()
+    if method == "fork":
+        # imported here once, inherited by every worker (a spawned worker imports them in _worker_init)
+        for name in preload:
+            with contextlib.suppress(Exception):  # a stage that cannot be imported is reported by the parent
+                importlib.import_module(name)
+    ctx = multiprocessing.get_context(method)
     # (a name no file has yet: a worker that creates it raises the alarm)
     alarm = os.path.join(tempfile.gettempdir(), f"specan-alarm-{os.getpid()}-{os.urandom(6).hex()}")
     with _worker_environment(alarm):
@@ -208,10 +244,11 @@ def _stop_pool(pool):
 def local_workers(jobs, preload=()):
     """``jobs`` local worker processes started now (None when ``jobs`` <= 1), for :func:`results_local`'s ``pool``.
 
-    A spawned worker spends 1.5-2 s starting (Python, numpy, scipy, astropy, specutils and
+    A spawned worker spends 1.5-2.7 s starting (Python, numpy, scipy, astropy, specutils and
     specan's modules; measured). Started before the caller collects its inputs, checks its
     stages and finds which inputs are current already, the workers do that while it does,
-    instead of after. ``preload``: modules each worker imports as it starts.
+    instead of after. ``preload``: modules the workers need; forked workers (:func:`start_method`)
+    inherit them from this process, which imports them first, spawned ones import them as they start.
     On leaving, the workers are stopped: by then every result was taken, or the run was interrupted
     and what they still had queued is not wanted.
     """
