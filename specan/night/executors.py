@@ -94,6 +94,8 @@ def results(func, todo, settings, jobs=1, dask=None, pool=None):
 def _worker_init(preload=()):
     # The parent decides when to stop: a Ctrl-C must not print a traceback per worker.
     signal.signal(signal.SIGINT, signal.SIG_IGN)
+    # A forked worker inherits the caller's handlers; the pool stops its workers with SIGTERM.
+    signal.signal(signal.SIGTERM, signal.SIG_DFL)
     # Plots are drawn without pyplot; make sure no GUI backend is ever picked.
     os.environ.setdefault("MPLBACKEND", "Agg")
     # the modules the work needs, imported now, while the parent is still finding out what to do
