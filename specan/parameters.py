@@ -460,7 +460,9 @@ class _ReducedResiduals:
         self._x = None
 
     def _at(self, scaled):
-        if self._x is not None and np.array_equal(scaled, self._x):
+        # LM asks for the residuals and then the Jacobian at the same labels: made once (compared as
+        # np.array_equal does, without its wrapping: the fit evaluates ~40 times a star)
+        if self._x is not None and self._x.shape == np.shape(scaled) and bool((self._x == scaled).all()):
             return
         # A_red and its three derivatives, (4, 40, 4): the design's row and gradient through R
         parts = (_design_and_gradient(scaled) @ self.R).reshape(4, -1, _POLY_TERMS)
@@ -469,8 +471,11 @@ class _ReducedResiduals:
         A, dA = parts[0], parts[1:]
         G_inv = np.linalg.inv(A.T @ A)
         c = G_inv @ (A.T @ self.z)
-        r = self.z - A @ c
-        self._x, self._r, self._jac = np.array(scaled, float), np.append(r, self.rest), None
+        # the residuals written straight into the vector LM gets, |e| last (np.append's numbers, no copy)
+        full = np.empty(self.z.size + 1)
+        r = np.subtract(self.z, A @ c, out=full[:-1])
+        full[-1] = self.rest
+        self._x, self._r, self._jac = np.array(scaled, float), full, None
         self._parts = dA, A, G_inv, c, r
 
     def residuals(self, scaled):
