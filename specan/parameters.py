@@ -375,9 +375,8 @@ def _span_factor(model, k, basis, good):
     What :class:`_ReducedResiduals` needs of a pixel mask beyond Q's rows; it depends on the model, the
     node and the mask only, and a night's spectra of one set-up share a few masks (the telluric bands and
     the grid's ends, moved by the velocity: 30 spectra of the benchmark night had 6 masks), so it is kept
-    for the last :data:`NODE_MASKS_KEPT` (node, mask) pairs. Made as it was made for every spectrum, in
-    the caller's thread limit (the night run's workers hold one thread; :func:`specan.threads.single_threaded`
-    costs 1.1 ms a call, measured, more than the factor): the same numbers.
+    for the last :data:`NODE_MASKS_KEPT` (node, mask) pairs, made with one thread (:func:`_one_thread`): the
+    numbers the night run's one-thread workers made for every spectrum.
     Raises numpy.linalg.LinAlgError where the mask leaves the span ill-conditioned (then not kept).
     """
     def make():
@@ -393,7 +392,35 @@ def _span_factor(model, k, basis, good):
         return L
 
     store = model.__dict__.setdefault("_span_factors", {})
-    return kept(store, (int(k), basis.shape, content_key(good)), make, NODE_MASKS_KEPT)
+    return kept(store, (int(k), basis.shape, content_key(good)), _one_thread(make), NODE_MASKS_KEPT)
+
+
+@functools.lru_cache(maxsize=1)
+def _thread_controller():
+    """threadpoolctl's controller of the loaded BLAS/OpenMP libraries, made once (None without threadpoolctl).
+
+    Made at the first per-mask matrix, after numpy's and scipy's libraries are loaded. Limiting threads
+    through it costs 12 us; :func:`specan.threads.single_threaded` finds the libraries again at every
+    call, 1.1 ms (measured), more than the matrices it would guard.
+    """
+    try:
+        from threadpoolctl import ThreadpoolController
+    except ImportError:  # pragma: no cover - a dependency
+        return None
+    return ThreadpoolController()
+
+
+def _one_thread(make):
+    """``make`` run with one BLAS/OpenMP thread: what is kept from one spectrum to the next has the same
+    bits whoever made it (with two threads the products over a mask's pixels differ in their last bits,
+    tests/test_parameters.py), as :mod:`specan.threads` asks of every kept sum."""
+    def made():
+        controller = _thread_controller()
+        if controller is None:  # pragma: no cover
+            return make()
+        with controller.limit(limits=1):
+            return make()
+    return made
 
 
 def _node_span(model, k, basis):
@@ -614,10 +641,10 @@ def _guess_normal_matrices(model, w2, good, basis):
         return G
 
     # the matrices depend on the model, its weights and the pixel mask, not on the flux: kept on the model
-    # for the last few (weights, mask) pairs (a night's spectra of one set-up share a few masks), made in
-    # the caller's thread limit as they were for every spectrum (see _span_factor)
+    # for the last few (weights, mask) pairs (a night's spectra of one set-up share a few masks), made with
+    # one thread (see _span_factor)
     store = model.__dict__.setdefault("_guess_on_masks", {})
-    return kept(store, (basis.shape, content_key(w2), content_key(good)), make, MASKS_KEPT)
+    return kept(store, (basis.shape, content_key(w2), content_key(good)), _one_thread(make), MASKS_KEPT)
 
 
 def _first_guess(model, y, good, sigma, basis):

@@ -215,9 +215,31 @@ def _pixel_terms(good, reference):
 
     # they depend on the set and the star's pixel mask only, and a night's spectra of one set-up share a
     # few masks (the telluric bands and the grid's ends, moved by the velocity): kept for the last few
-    # masks of this set (59 kB each, with its sums above), made in the caller's thread limit as they were
-    # for every star
-    return kept(hit[3], content_key(good), make, MASKS_KEPT)
+    # masks of this set (59 kB each, with its sums above), made with one thread (their products differ in
+    # the last bits with two: tests/test_parameters.py), through threadpoolctl's controller made once
+    # (specan.threads.single_threaded finds the libraries again at every call: 1.1 ms against 12 us, measured)
+    return kept(hit[3], content_key(good), _one_thread(make), MASKS_KEPT)
+
+
+@functools.lru_cache(maxsize=1)
+def _thread_controller():
+    """threadpoolctl's controller of the loaded BLAS/OpenMP libraries, made once (None without threadpoolctl)."""
+    try:
+        from threadpoolctl import ThreadpoolController
+    except ImportError:  # pragma: no cover - a dependency
+        return None
+    return ThreadpoolController()
+
+
+def _one_thread(make):
+    """``make`` run with one BLAS/OpenMP thread (see :func:`_pixel_terms`)."""
+    def made():
+        controller = _thread_controller()
+        if controller is None:  # pragma: no cover
+            return make()
+        with controller.limit(limits=1):
+            return make()
+    return made
 
 
 #: How many pixel masks' normal matrices :func:`_pixel_terms` keeps per reference set.
