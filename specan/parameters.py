@@ -32,6 +32,7 @@ import astropy.units as u
 import numpy as np
 from scipy.optimize import leastsq
 
+from .contents import content_key, kept
 from .errors import AnalysisError
 from .obsinfo import get_info
 from .resolution import on_rest_grid
@@ -362,6 +363,65 @@ class _ProjectedResiduals:
 
 _POLY_TERMS = POLY_DEGREE + 1
 
+#: How many pixel masks' matrices are kept per model (in its ``__dict__``): the first guess's normal matrices
+#: (61 kB a mask for the packaged model) and each node's Cholesky factor on the mask (13 kB a node and mask).
+MASKS_KEPT = 16
+NODE_MASKS_KEPT = 64
+
+
+def _span_factor(model, k, basis, good):
+    """The Cholesky factor L of M = Q_g^T Q_g, Q_g node ``k``'s span (:func:`_node_span`) on the ``good`` pixels.
+
+    What :class:`_ReducedResiduals` needs of a pixel mask beyond Q's rows; it depends on the model, the
+    node and the mask only, and a night's spectra of one set-up share a few masks (the telluric bands and
+    the grid's ends, moved by the velocity: 30 spectra of the benchmark night had 6 masks), so it is kept
+    for the last :data:`NODE_MASKS_KEPT` (node, mask) pairs, made with one thread (:func:`_one_thread`): the
+    numbers the night run's one-thread workers made for every spectrum.
+    Raises numpy.linalg.LinAlgError where the mask leaves the span ill-conditioned (then not kept).
+    """
+    def make():
+        Q, _ = _node_span(model, k, basis)
+        bad = ~good
+        # M = I - Q_b^T Q_b when few pixels are out (the sums over all pixels are the identity)
+        M = (np.eye(Q.shape[1]) - Q[bad].T @ Q[bad]) if bad.sum() <= good.sum() else Q[good].T @ Q[good]
+        L = np.linalg.cholesky(M)
+        # condition of M below 1e8 (our choice): the reduced residuals then hold 1e-8 of the data's
+        # precision at worst, far below what a fit's errors feel
+        if np.min(np.diag(L)) ** 2 < 1e-8 * np.max(np.diag(L)) ** 2:
+            raise np.linalg.LinAlgError("usable pixels leave the model's span ill-conditioned")
+        return L
+
+    store = model.__dict__.setdefault("_span_factors", {})
+    return kept(store, (int(k), basis.shape, content_key(good)), _one_thread(make), NODE_MASKS_KEPT)
+
+
+@functools.lru_cache(maxsize=1)
+def _thread_controller():
+    """threadpoolctl's controller of the loaded BLAS/OpenMP libraries, made once (None without threadpoolctl).
+
+    Made at the first per-mask matrix, after numpy's and scipy's libraries are loaded. Limiting threads
+    through it costs 12 us; :func:`specan.threads.single_threaded` finds the libraries again at every
+    call, 1.1 ms (measured), more than the matrices it would guard.
+    """
+    try:
+        from threadpoolctl import ThreadpoolController
+    except ImportError:  # pragma: no cover - a dependency
+        return None
+    return ThreadpoolController()
+
+
+def _one_thread(make):
+    """``make`` run with one BLAS/OpenMP thread: what is kept from one spectrum to the next has the same
+    bits whoever made it (with two threads the products over a mask's pixels differ in their last bits,
+    tests/test_parameters.py), as :mod:`specan.threads` asks of every kept sum."""
+    def made():
+        controller = _thread_controller()
+        if controller is None:  # pragma: no cover
+            return make()
+        with controller.limit(limits=1):
+            return make()
+    return made
+
 
 def _node_span(model, k, basis):
     """An orthonormal basis Q (n, 40) of node ``k``'s weighted model columns and their coordinates R in it.
@@ -415,15 +475,8 @@ class _ReducedResiduals:
             Qg, z, self.Lt = Q, y * w, None
             a = u = Q.T @ z
         else:
+            L = _span_factor(model, k, basis, good)
             Qg, z = Q[good], y[good] * w[good]
-            bad = ~good
-            # M = I - Q_b^T Q_b when few pixels are out (the sums over all pixels are the identity)
-            M = (np.eye(Q.shape[1]) - Q[bad].T @ Q[bad]) if bad.sum() <= good.sum() else Qg.T @ Qg
-            L = np.linalg.cholesky(M)
-            # condition of M below 1e8 (our choice): the reduced residuals then hold 1e-8 of the data's
-            # precision at worst, far below what a fit's errors feel
-            if np.min(np.diag(L)) ** 2 < 1e-8 * np.max(np.diag(L)) ** 2:
-                raise np.linalg.LinAlgError("usable pixels leave the model's span ill-conditioned")
             from scipy.linalg import solve_triangular
 
             u = solve_triangular(L, Qg.T @ z, lower=True)
@@ -434,7 +487,9 @@ class _ReducedResiduals:
         self._x = None
 
     def _at(self, scaled):
-        if self._x is not None and np.array_equal(scaled, self._x):
+        # LM asks for the residuals and then the Jacobian at the same labels: made once (compared as
+        # np.array_equal does, without its wrapping: the fit evaluates ~40 times a star)
+        if self._x is not None and self._x.shape == np.shape(scaled) and bool((self._x == scaled).all()):
             return
         # A_red and its three derivatives, (4, 40, 4): the design's row and gradient through R
         parts = (_design_and_gradient(scaled) @ self.R).reshape(4, -1, _POLY_TERMS)
@@ -443,8 +498,11 @@ class _ReducedResiduals:
         A, dA = parts[0], parts[1:]
         G_inv = np.linalg.inv(A.T @ A)
         c = G_inv @ (A.T @ self.z)
-        r = self.z - A @ c
-        self._x, self._r, self._jac = np.array(scaled, float), np.append(r, self.rest), None
+        # the residuals written straight into the vector LM gets, |e| last (np.append's numbers, no copy)
+        full = np.empty(self.z.size + 1)
+        r = np.subtract(self.z, A @ c, out=full[:-1])
+        full[-1] = self.rest
+        self._x, self._r, self._jac = np.array(scaled, float), full, None
         self._parts = dA, A, G_inv, c, r
 
     def residuals(self, scaled):
@@ -490,12 +548,15 @@ def _node_terms(t):
                      [0, 0, 0, 0, 0, 0, 0, 0, 0, 1.0]])       # gf
 
 
+@functools.lru_cache(maxsize=1)   # constants of the module: made once (read only), not twice a spectrum
 def _guess_points():
     """The first guess's (g, f) grid points, E = (1, g, f, g^2, f^2, gf) at each, and E's pair products."""
     gg, ff = np.meshgrid(_GUESS_G, _GUESS_F, indexing="ij")
     g, f = gg.ravel(), ff.ravel()
     E = np.column_stack([np.ones_like(g), g, f, g * g, f * f, g * f])                 # (40, 6)
     EE = E[:, _PAIRS[0]] * E[:, _PAIRS[1]] * _PAIR_MULT                                 # (40, 21)
+    for a in (g, f, E, EE):
+        a.flags.writeable = False
     return g, f, E, EE
 
 
@@ -561,20 +622,29 @@ def _guess_normal_matrices(model, w2, good, basis):
         hit[1].flags.writeable = False
         _GUESS_SUMS.clear()
         _GUESS_SUMS[key] = hit
-    bad = ~good
-    n_bad = int(bad.sum())
-    if n_bad == 0:
-        Gu = hit[1]
-    elif n_bad <= good.size // 2:
-        Gu = hit[1] - _guess_normal_entries(model, w2, basis, np.flatnonzero(bad))
-    else:
-        Gu = _guess_normal_entries(model, w2, basis, np.flatnonzero(good))
-    P = basis.shape[1]
-    upper = np.triu_indices(P)
-    G = np.empty((Gu.shape[0], P, P))
-    G[:, upper[0], upper[1]] = Gu
-    G[:, upper[1], upper[0]] = Gu
-    return G
+    all_sums = hit[1]
+
+    def make():
+        bad = ~good
+        n_bad = int(bad.sum())
+        if n_bad == 0:
+            Gu = all_sums
+        elif n_bad <= good.size // 2:
+            Gu = all_sums - _guess_normal_entries(model, w2, basis, np.flatnonzero(bad))
+        else:
+            Gu = _guess_normal_entries(model, w2, basis, np.flatnonzero(good))
+        P = basis.shape[1]
+        upper = np.triu_indices(P)
+        G = np.empty((Gu.shape[0], P, P))
+        G[:, upper[0], upper[1]] = Gu
+        G[:, upper[1], upper[0]] = Gu
+        return G
+
+    # the matrices depend on the model, its weights and the pixel mask, not on the flux: kept on the model
+    # for the last few (weights, mask) pairs (a night's spectra of one set-up share a few masks), made with
+    # one thread (see _span_factor)
+    store = model.__dict__.setdefault("_guess_on_masks", {})
+    return kept(store, (basis.shape, content_key(w2), content_key(good)), _one_thread(make), MASKS_KEPT)
 
 
 def _first_guess(model, y, good, sigma, basis):
@@ -602,8 +672,9 @@ def _first_guess(model, y, good, sigma, basis):
     c = np.linalg.solve(G, b[:, :, None])[:, :, 0]
     chi2 = np.sum(w2 * yw * yw) - np.einsum("gi,gi->g", b, c)
     t = (model.nodes - SCALE_CENTRE[0]) / SCALE_WIDTH[0]
-    x = np.column_stack([np.repeat(t, g.size), np.tile(g, t.size), np.tile(f, t.size)])
-    return x[int(np.argmin(chi2))]
+    # the best point's row of the (node, g-f point) table, nodes outer: that row alone, not the table
+    node, point = divmod(int(np.argmin(chi2)), g.size)
+    return np.array([t[node], g[point], f[point]])
 
 
 def _residual_function(model, k, y, good, sigma, sig0, basis):

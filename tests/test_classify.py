@@ -347,6 +347,27 @@ def test_line_strength_scales_from_one_copy_per_side_are_the_selections(sun_spec
         assert all(np.array_equal(new[k], ref[k]) for k in ref)
 
 
+def test_criteria_hand_on_the_pixels_at_rest_that_rest_pixels_makes(sun_spectrum):
+    # The parameter model and the library comparison start from the spectrum's pixels at rest in air
+    # (specan.resolution.rest_pixels); the criteria's measurement makes the same arrays on its way and
+    # hands them on: the same numbers to the bit (the Kurucz Sun, vacuum, from rms-solar; at rest, receding,
+    # approaching, an axis that decreases, a masked stretch)
+    from specan.resolution import rest_pixels
+
+    w, f = sun_spectrum.spectral_axis.to_value(u.AA), sun_spectrum.flux.value
+    masked = Spectrum(flux=sun_spectrum.flux, spectral_axis=sun_spectrum.spectral_axis, mask=(w > 5000) & (w < 5100),
+                      meta=dict(sun_spectrum.meta))
+    backwards = _spectrum(w[::-1], f[::-1], medium="vacuum", resolving_power=2000.0, snr=500.0)
+    cal = C.default_calibration()
+    for spec in (sun_spectrum, masked, backwards):
+        for rv in (0.0, 35.0, -120.0):
+            got = C.spectrum_criteria(spec, cal.resolution, rv=rv * u.km / u.s)["pixels"]
+            want = rest_pixels(spec, rv * u.km / u.s)
+            assert got is not None
+            for a, b in zip(got, want):
+                assert np.array_equal(a, b)
+
+
 def test_criteria_track_temperature(jhc_criteria):
     # Published behaviour of the MK criteria (Gray & Corbally 2009, from memory): the Balmer
     # lines peak in the A stars, Ca II K grows from A to K, TiO appears only in M stars.

@@ -271,6 +271,54 @@ def test_kept_sums_are_the_same_bits_whatever_thread_count_built_them():
     assert np.array_equal(m2, m1) and np.array_equal(n2, n1)
 
 
+def _telluric_like_masks(n):
+    """Pixel masks as a night's spectra bring them: bands out (the telluric bands' share of the model's
+    pixels: 170 of 2029 on the benchmark night), moved by a pixel or two, ends cut, most pixels out."""
+    cols = np.arange(n)
+    bands = (np.abs(cols - 0.706 * n) < 0.02 * n) | (np.abs(cols - 0.93 * n) < 0.02 * n) | (cols > n - 4)
+    return [~bands, ~np.roll(bands, 1), ~np.roll(bands, -2) & (cols > 30), cols < 0.4 * n]
+
+
+def test_matrices_kept_per_pixel_mask_are_the_ones_made_afresh_whatever_thread_count():
+    # The first guess's normal matrices, each node's Cholesky factor and the library comparison's normal
+    # matrices are kept per pixel mask (a night's spectra share a few). Whatever the order the masks come
+    # in, and whether the kept ones were made with two threads or one, each is what is made afresh with
+    # one thread for that mask, to the bit (a wrong hit, a mask's matrices for another's, fails here).
+    from threadpoolctl import threadpool_limits
+
+    from specan.classify import neighbours
+
+    model = parameters.default_model()
+    basis = parameters._poly_basis(parameters.model_wavelengths().size)
+    w2 = 1.0 / model.typical_scatter ** 2
+    ref = neighbours.default_reference()
+    masks = _telluric_like_masks(basis.shape[0])
+    usables = _telluric_like_masks(ref.flux.shape[1])
+
+    def made(good, usable, k):
+        return (parameters._guess_normal_matrices(model, w2, good, basis), parameters._span_factor(model, k, basis, good),
+                neighbours._pixel_terms(usable, ref))
+
+    def forget():
+        for name in ("_guess_on_masks", "_span_factors"):
+            model.__dict__.pop(name, None)
+        neighbours._ALL_PIXELS.clear()
+
+    fresh = []
+    for good, usable in zip(masks, usables):
+        forget()
+        with threadpool_limits(limits=1):
+            fresh.append(made(good, usable, 5))
+    forget()
+    for threads in (2, 1):
+        with threadpool_limits(limits=threads):
+            for i in (0, 1, 2, 3, 1, 0, 3, 2):
+                G, L, (M, n) = made(masks[i], usables[i], 5)
+                assert np.array_equal(G, fresh[i][0]) and np.array_equal(L, fresh[i][1])
+                assert np.array_equal(M, fresh[i][2][0]) and np.array_equal(n, fresh[i][2][1])
+    assert len(model.__dict__["_guess_on_masks"]) == len(model.__dict__["_span_factors"]) == len(masks)
+
+
 # ---------------------------------------------------------------------------
 # The fit in the model's 41-dimensional span against the fit over every pixel
 # ---------------------------------------------------------------------------

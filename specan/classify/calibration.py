@@ -204,8 +204,11 @@ class Calibration:
         (:func:`specan.classify.classify` asks for it with the shipped calibration).
         """
         meas = spectrum_criteria(spectrum, self.resolution, rv=rv, resolving_power=resolving_power)
-        # the pixels at rest in air, sorted, made once for both grids
-        pixels = rest_pixels(spectrum, meas["rv"]) if (neighbours or parameters) else None
+        # the pixels at rest in air, sorted, made once for both grids (by the criteria's measurement already,
+        # where the axis increases: the same arrays)
+        pixels = None
+        if neighbours or parameters:
+            pixels = meas["pixels"] if meas["pixels"] is not None else rest_pixels(spectrum, meas["rv"])
         evidence = (_library_evidence(spectrum, meas["rv"], meas["notes"], meas["input_fwhm"],
                                       meas["input_resolving_power"], pixels) if neighbours else None)
         atmosphere = (measure_atmosphere(spectrum, meas["rv"], meas["notes"], meas["input_fwhm"],

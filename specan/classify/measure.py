@@ -15,7 +15,7 @@ from ..doppler import doppler_factor
 from ..errors import AnalysisError
 from ..lines import estimate_resolving_power
 from ..obsinfo import get_info, wavelength_in
-from ..resolution import smooth_to_fwhm
+from ..resolution import RestPixels, smooth_to_fwhm
 from .criteria import criteria_span, measure_criteria
 
 __all__ = ["spectrum_criteria", "snr_of"]
@@ -50,7 +50,10 @@ def spectrum_criteria(spectrum, resolution=4.5 * u.AA, rv=None, measure_velocity
     -------
     dict
         ``values`` and ``noise`` (ndarrays in :func:`criteria_names` order),
-        ``snr``, ``rv`` (Quantity or None), ``notes`` (list of str).
+        ``snr``, ``rv`` (Quantity or None), ``notes`` (list of str), ``input_fwhm`` (A) or
+        ``input_resolving_power`` (the resolution taken), ``pixels``: the whole spectrum at rest as
+        :func:`specan.resolution.rest_pixels` gives it at ``rv`` (None where the axis is not
+        strictly increasing; then make it with that function).
 
     Notes
     -----
@@ -70,6 +73,10 @@ def spectrum_criteria(spectrum, resolution=4.5 * u.AA, rv=None, measure_velocity
         rv, lines_r, lines_asked, notes = _measured_velocity(spectrum, info)
         resolving_power = lines_r if resolving_power is None else resolving_power
     wave, rv = _to_rest(wave, rv)
+    # the whole spectrum at rest is what rest_pixels(spectrum, rv) makes for the parameter model and the
+    # library comparison: the same wavelength conversion, velocity division and mask (where the axis is
+    # strictly increasing, as rest_pixels then leaves it): handed on instead of made again
+    pixels = RestPixels(wave, flux, good) if np.all(wave[1:] > wave[:-1]) else None
     wave, flux, good = _near_criteria(wave, flux, good, margin=10.0 * fwhm_out)
     pixel = float(np.median(np.diff(wave)))
     fwhm_in, note = _input_fwhm(spectrum, info, wave, pixel, fwhm_out, assume_resolution,
@@ -80,7 +87,8 @@ def spectrum_criteria(spectrum, resolution=4.5 * u.AA, rv=None, measure_velocity
     return {"values": values, "noise": noise, "snr": snr,
             "rv": None if rv is None else u.Quantity(rv, _KMS), "notes": notes + note,
             "input_fwhm": float(fwhm_in) if constant else None,
-            "input_resolving_power": None if constant else float(np.median(wave / fwhm_in))}
+            "input_resolving_power": None if constant else float(np.median(wave / fwhm_in)),
+            "pixels": pixels}
 
 
 def _usable_pixels(spectrum, info):

@@ -32,6 +32,7 @@ from typing import NamedTuple
 
 import numpy as np
 
+from ..contents import content_key, kept
 from ..errors import AnalysisError
 from ..obsinfo import get_info
 from ..resolution import on_rest_grid
@@ -195,20 +196,54 @@ def _pixel_terms(good, reference):
     hit = _ALL_PIXELS.get(id(reference))
     if hit is None or hit[0] is not reference:
         with single_threaded():   # the same bits whoever builds them (specan.threads)
-            hit = (reference, reference.flux_sq @ PP, reference.good_f.sum(axis=1))
+            hit = (reference, reference.flux_sq @ PP, reference.good_f.sum(axis=1), {})
         _ALL_PIXELS.clear()
         _ALL_PIXELS[id(reference)] = hit
-    bad = np.flatnonzero(~good)
-    if bad.size == 0:
-        G, n = hit[1], hit[2]
-    elif bad.size <= good.size // 2:
-        G = hit[1] - reference.flux_sq[:, bad] @ PP[bad]
-        n = hit[2] - reference.good_f[:, bad].sum(axis=1)
-    else:
-        use = np.flatnonzero(good)
-        G = reference.flux_sq[:, use] @ PP[use]
-        n = reference.good_f[:, use].sum(axis=1)
-    return G.reshape(-1, K, K), n
+
+    def make():
+        bad = np.flatnonzero(~good)
+        if bad.size == 0:
+            G, n = hit[1], hit[2]
+        elif bad.size <= good.size // 2:
+            G = hit[1] - reference.flux_sq[:, bad] @ PP[bad]
+            n = hit[2] - reference.good_f[:, bad].sum(axis=1)
+        else:
+            use = np.flatnonzero(good)
+            G = reference.flux_sq[:, use] @ PP[use]
+            n = reference.good_f[:, use].sum(axis=1)
+        return G.reshape(-1, K, K), n
+
+    # they depend on the set and the star's pixel mask only, and a night's spectra of one set-up share a
+    # few masks (the telluric bands and the grid's ends, moved by the velocity): kept for the last few
+    # masks of this set (59 kB each, with its sums above), made with one thread (their products differ in
+    # the last bits with two: tests/test_parameters.py), through threadpoolctl's controller made once
+    # (specan.threads.single_threaded finds the libraries again at every call: 1.1 ms against 12 us, measured)
+    return kept(hit[3], content_key(good), _one_thread(make), MASKS_KEPT)
+
+
+@functools.lru_cache(maxsize=1)
+def _thread_controller():
+    """threadpoolctl's controller of the loaded BLAS/OpenMP libraries, made once (None without threadpoolctl)."""
+    try:
+        from threadpoolctl import ThreadpoolController
+    except ImportError:  # pragma: no cover - a dependency
+        return None
+    return ThreadpoolController()
+
+
+def _one_thread(make):
+    """``make`` run with one BLAS/OpenMP thread (see :func:`_pixel_terms`)."""
+    def made():
+        controller = _thread_controller()
+        if controller is None:  # pragma: no cover
+            return make()
+        with controller.limit(limits=1):
+            return make()
+    return made
+
+
+#: How many pixel masks' normal matrices :func:`_pixel_terms` keeps per reference set.
+MASKS_KEPT = 16
 
 
 def mean_square_differences(flux, good, reference):
