@@ -36,7 +36,7 @@ from .contents import content_key, kept
 from .errors import AnalysisError
 from .obsinfo import get_info
 from .resolution import on_rest_grid
-from .threads import single_threaded
+from .threads import in_one_thread, single_threaded
 
 __all__ = ["MODEL_FILE", "MODEL_FWHM", "LABELS", "model_wavelengths", "scale_labels", "broader_than_model",
            "ModelInput", "on_model_grid", "ParameterModel",
@@ -375,7 +375,7 @@ def _span_factor(model, k, basis, good):
     What :class:`_ReducedResiduals` needs of a pixel mask beyond Q's rows; it depends on the model, the
     node and the mask only, and a night's spectra of one set-up share a few masks (the telluric bands and
     the grid's ends, moved by the velocity: 30 spectra of the benchmark night had 6 masks), so it is kept
-    for the last :data:`NODE_MASKS_KEPT` (node, mask) pairs, made with one thread (:func:`_one_thread`): the
+    for the last :data:`NODE_MASKS_KEPT` (node, mask) pairs, made with one thread (:func:`specan.threads.in_one_thread`): the
     numbers the night run's one-thread workers made for every spectrum.
     Raises numpy.linalg.LinAlgError where the mask leaves the span ill-conditioned (then not kept).
     """
@@ -392,35 +392,7 @@ def _span_factor(model, k, basis, good):
         return L
 
     store = model.__dict__.setdefault("_span_factors", {})
-    return kept(store, (int(k), basis.shape, content_key(good)), _one_thread(make), NODE_MASKS_KEPT)
-
-
-@functools.lru_cache(maxsize=1)
-def _thread_controller():
-    """threadpoolctl's controller of the loaded BLAS/OpenMP libraries, made once (None without threadpoolctl).
-
-    Made at the first per-mask matrix, after numpy's and scipy's libraries are loaded. Limiting threads
-    through it costs 12 us; :func:`specan.threads.single_threaded` finds the libraries again at every
-    call, 1.1 ms (measured), more than the matrices it would guard.
-    """
-    try:
-        from threadpoolctl import ThreadpoolController
-    except ImportError:  # pragma: no cover - a dependency
-        return None
-    return ThreadpoolController()
-
-
-def _one_thread(make):
-    """``make`` run with one BLAS/OpenMP thread: what is kept from one spectrum to the next has the same
-    bits whoever made it (with two threads the products over a mask's pixels differ in their last bits,
-    tests/test_parameters.py), as :mod:`specan.threads` asks of every kept sum."""
-    def made():
-        controller = _thread_controller()
-        if controller is None:  # pragma: no cover
-            return make()
-        with controller.limit(limits=1):
-            return make()
-    return made
+    return kept(store, (int(k), basis.shape, content_key(good)), in_one_thread(make), NODE_MASKS_KEPT)
 
 
 def _node_span(model, k, basis):
@@ -644,7 +616,7 @@ def _guess_normal_matrices(model, w2, good, basis):
     # for the last few (weights, mask) pairs (a night's spectra of one set-up share a few masks), made with
     # one thread (see _span_factor)
     store = model.__dict__.setdefault("_guess_on_masks", {})
-    return kept(store, (basis.shape, content_key(w2), content_key(good)), _one_thread(make), MASKS_KEPT)
+    return kept(store, (basis.shape, content_key(w2), content_key(good)), in_one_thread(make), MASKS_KEPT)
 
 
 def _first_guess(model, y, good, sigma, basis):

@@ -36,7 +36,7 @@ from ..contents import content_key, kept
 from ..errors import AnalysisError
 from ..obsinfo import get_info
 from ..resolution import on_rest_grid
-from ..threads import single_threaded
+from ..threads import in_one_thread, single_threaded
 
 __all__ = ["REFERENCE_FILE", "FWHM", "POLY_DEGREE", "NEIGHBOURS", "WIDTH", "CODE_SIGMA", "SHOWN",
            "wavelengths", "ReferenceSet", "default_reference", "on_grid", "mean_square_differences",
@@ -216,30 +216,9 @@ def _pixel_terms(good, reference):
     # they depend on the set and the star's pixel mask only, and a night's spectra of one set-up share a
     # few masks (the telluric bands and the grid's ends, moved by the velocity): kept for the last few
     # masks of this set (59 kB each, with its sums above), made with one thread (their products differ in
-    # the last bits with two: tests/test_parameters.py), through threadpoolctl's controller made once
-    # (specan.threads.single_threaded finds the libraries again at every call: 1.1 ms against 12 us, measured)
-    return kept(hit[3], content_key(good), _one_thread(make), MASKS_KEPT)
-
-
-@functools.lru_cache(maxsize=1)
-def _thread_controller():
-    """threadpoolctl's controller of the loaded BLAS/OpenMP libraries, made once (None without threadpoolctl)."""
-    try:
-        from threadpoolctl import ThreadpoolController
-    except ImportError:  # pragma: no cover - a dependency
-        return None
-    return ThreadpoolController()
-
-
-def _one_thread(make):
-    """``make`` run with one BLAS/OpenMP thread (see :func:`_pixel_terms`)."""
-    def made():
-        controller = _thread_controller()
-        if controller is None:  # pragma: no cover
-            return make()
-        with controller.limit(limits=1):
-            return make()
-    return made
+    # the last bits with two: tests/test_parameters.py)
+    # (specan.threads keeps its controller of the libraries: 12 us a call, against 1.1 ms for a new one, measured)
+    return kept(hit[3], content_key(good), in_one_thread(make), MASKS_KEPT)
 
 
 #: How many pixel masks' normal matrices :func:`_pixel_terms` keeps per reference set.
