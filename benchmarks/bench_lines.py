@@ -44,6 +44,7 @@ from scipy.special import voigt_profile
 from specutils import Spectrum
 
 import specan
+import specan.resolution  # (noise_kept)
 from specan import lines
 from specan.linelist import load_linelist
 from specan.obsinfo import ObsInfo
@@ -83,18 +84,38 @@ def pipeline_spectra(count, workdir):
     return out
 
 
+#: Whether each timed call finds the flux's noise estimate kept, as in the night run (``--cold``: not).
+WARM_NOISE = True
+
+
+def noise_kept(package, spec, known):
+    """The noise estimate of ``spec``'s normalised flux made (untimed) and kept, as the night run's
+    velocity stage leaves it for the lines stage (``specan.noise.kept_flux_noise`` keeps the last
+    two; the velocity stage's key and the lines stage's are the same: in ``specan run`` the lines
+    stage makes no estimate of its own, checked with a count of ``flux_noise`` calls). Without this,
+    timing 40 spectra in a row, each call would make the estimate again (~1 ms) that a night run
+    does not. ``package``: ``specan`` or another checkout's copy (its own store)."""
+    if WARM_NOISE and spec.meta["specan"].normalized:
+        package.resolution.normalised_arrays(spec, resolving_power=known.get("resolving_power"))
+
+
 def timed(cases, repeats, **options):
     """Median over ``repeats`` passes of the ms per spectrum of measuring ``cases``: (wall, CPU).
 
-    The CPU time of this process depends less on what else runs on the machine.
+    The CPU time of this process depends less on what else runs on the machine. Only the
+    ``measure`` calls are timed (:func:`noise_kept` before each is not).
     """
     wall, cpu = [], []
     for _ in range(repeats):
-        t0, c0 = time.perf_counter(), time.process_time()
+        spent_wall = spent_cpu = 0.0
         for spec, known in cases:
+            noise_kept(specan, spec, known)
+            t0, c0 = time.perf_counter(), time.process_time()
             lines.measure(spec, **known, **options)
-        wall.append((time.perf_counter() - t0) / len(cases))
-        cpu.append((time.process_time() - c0) / len(cases))
+            spent_wall += time.perf_counter() - t0
+            spent_cpu += time.process_time() - c0
+        wall.append(spent_wall / len(cases))
+        cpu.append(spent_cpu / len(cases))
     return 1e3 * float(np.median(wall)), 1e3 * float(np.median(cpu))
 
 
@@ -118,6 +139,7 @@ def steps(cases, repeats):
             return out
 
         for spec, known in cases:
+            noise_kept(specan, spec, known)
             data = step(names[0], LineData, normalised(spec), known.get("resolving_power"))
             listed = step(names[1], lines_in_range, data, None, ("atomic",), known.get("rv", 0 * u.km / u.s))
             targets = step(names[1], m.line_targets, data, listed, None)
@@ -173,10 +195,11 @@ def fitting_work(cases):
 def hot_spots(cases, top):
     """The ``top`` functions with the most own time under cProfile, ms per spectrum."""
     prof = cProfile.Profile()
-    prof.enable()
     for spec, known in cases:
+        noise_kept(specan, spec, known)
+        prof.enable()
         lines.measure(spec, **known)
-    prof.disable()
+        prof.disable()
     rows = []
     for (file, line, func), (cc, nc, tt, ct, callers) in pstats.Stats(prof).stats.items():
         where = file.split("/specan/", 1)[1] if "/specan/" in file else (
@@ -216,6 +239,7 @@ def alternated(cases, other, rounds, block=5):
 
     other_lines = importlib.import_module(other.__name__ + ".lines")
     other_info = importlib.import_module(other.__name__ + ".obsinfo").ObsInfo
+    importlib.import_module(other.__name__ + ".resolution")
     theirs = []
     for spec, known in cases:
         # the other package's own carrier of the metadata (it checks for its own class)
@@ -231,14 +255,16 @@ def alternated(cases, other, rounds, block=5):
     here = there = 0.0
     for _ in range(rounds):
         for start in range(0, len(cases), block):
-            c = time.process_time()
             for spec, known in cases[start:start + block]:
+                noise_kept(specan, spec, known)
+                c = time.process_time()
                 lines.measure(spec, **known)
-            here += time.process_time() - c
-            c = time.process_time()
+                here += time.process_time() - c
             for twin, known in theirs[start:start + block]:
+                noise_kept(other, twin, known)
+                c = time.process_time()
                 other_lines.measure(twin, **known)
-            there += time.process_time() - c
+                there += time.process_time() - c
     n = rounds * len(cases)
     return 1e3 * here / n, 1e3 * there / n
 
@@ -252,14 +278,20 @@ def main(argv=None):
     parser.add_argument("--steps", action="store_true", help="CPU ms per spectrum of each step of measure")
     parser.add_argument("--work", action="store_true", help="counts of the fitting work per spectrum")
     parser.add_argument("--workdir", type=Path, default=None)
+    parser.add_argument("--cold", action="store_true",
+                        help="time each spectrum with no noise estimate kept (the night run keeps the "
+                             "velocity stage's; before 2026-12-04 this script timed it cold)")
     parser.add_argument("--against", type=Path, default=None, metavar="CHECKOUT",
                         help="also time another checkout's measure, by turns with this one in one process")
     args = parser.parse_args(argv)
+    global WARM_NOISE
+    WARM_NOISE = not args.cold
     work = args.workdir or Path(tempfile.mkdtemp(prefix="specan-bench-lines-"))
     has_switch = "_batched" in inspect.signature(lines.measure).parameters
     has_exact = "exact_fits" in inspect.signature(lines.measure).parameters
     print(f"# specan from {Path(specan.__file__).parent}; load average {os.getloadavg()[0]:.1f}; "
-          f"OPENBLAS_NUM_THREADS={os.environ.get('OPENBLAS_NUM_THREADS', 'unset')}")
+          f"OPENBLAS_NUM_THREADS={os.environ.get('OPENBLAS_NUM_THREADS', 'unset')}; "
+          f"noise estimate {'kept, as in a night run' if WARM_NOISE else 'made in each call (--cold)'}")
     sets = {"pipeline": pipeline_spectra(args.count, work), "dense": [(dense_spectrum(), {})]}
     for name, cases in sets.items():
         lines.measure(cases[0][0], **cases[0][1])   # imports, caches
