@@ -50,9 +50,8 @@ def hydrogen_model(data, results, targets, ep_low):
     block: their share of an unresolvable blend goes to hydrogen.
     """
     pred, is_h = targets.pred, targets.hydrogen
-    model = np.ones(data.wave.size)
-    used = 0
     others = pred[(~is_h) & (np.nan_to_num(ep_low, nan=0.0) < 1.0)]
+    fits = []
     for i, result in results.items():
         fit = result.fit
         if fit is None or not is_h[i] or not result.detected or fit["sign"] < 0 or fit["ew"] <= 0:
@@ -61,13 +60,24 @@ def hydrogen_model(data, results, targets, ep_low):
             continue  # the profile does not describe the line (continuum trouble): leave it
         if others.size and np.min(np.abs(others - fit["centre"])) < MIN_SEPARATION * targets.fwhm[i]:
             continue  # an unresolvable blend with a listed line: keep it whole
-        if fit["profile"] == "voigt":
-            # the profile over the whole spectrum, its far wings from their series (voigt_wide)
-            prof = voigt_wide(data.wave - fit["centre"], fit["sigma"], fit["gamma"])
-        else:
-            prof = profiles(data.wave, np.array([fit["centre"]]), 0.0, fit["sigma"], fit["gamma"], fit["profile"])[1][0]
-        model *= 1.0 - fit["ew"] * prof
-        used += 1
-    if not used:
+        fits.append(fit)
+    if not fits:
         return None
+    # the Voigt profiles over the whole spectrum, their far wings from their series (voigt_wide), of
+    # all lines in one call: each point's arithmetic is the one of a call per line (its own line's
+    # sigma and gamma), so the same values, in one pass instead of one per line
+    voigt = [fit for fit in fits if fit["profile"] == "voigt"]
+    if voigt:
+        n = data.wave.size
+        prof = voigt_wide((data.wave[None, :] - np.array([f["centre"] for f in voigt])[:, None]).ravel(),
+                          np.repeat([f["sigma"] for f in voigt], n),
+                          np.repeat([f["gamma"] for f in voigt], n)).reshape(len(voigt), n)
+        rows = iter(prof)
+    model = np.ones(data.wave.size)
+    for fit in fits:   # (in the lines' order: the same products)
+        if fit["profile"] == "voigt":
+            line = next(rows)
+        else:
+            line = profiles(data.wave, np.array([fit["centre"]]), 0.0, fit["sigma"], fit["gamma"], fit["profile"])[1][0]
+        model *= 1.0 - fit["ew"] * line
     return np.clip(model, 0.05, 1.0)

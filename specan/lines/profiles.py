@@ -44,23 +44,31 @@ def voigt_wide(dx, sigma, gamma):
     voigt_profile's own; farther ones, most of a spectrum, come from the asymptotic series of the
     Faddeeva function (:data:`_FAR_SERIES`), which there agrees with it to a few units of the last
     bit of the profile's scale (tests/test_lines_batched.py measures it) at less than half the cost
-    (scipy's Faddeeva function spends ~60 ns a point in the wings, measured).
+    (scipy's Faddeeva function spends ~60 ns a point in the wings, measured). ``sigma`` and
+    ``gamma`` may be arrays of ``dx``'s shape (several lines at once, flattened).
     """
     dx = np.asarray(dx, float)
     inv = 1.0 / (sigma * np.sqrt(2.0))
     far = dx * dx + gamma * gamma >= (FAR_Z / inv) ** 2
     if not far.any():
         return voigt_profile(dx, sigma, gamma)
+    # (sigma and gamma: numbers, or one per point, as dx: several lines in one call; each point's
+    # arithmetic is the same either way)
+    per_point = np.ndim(sigma) > 0
+
+    def at(values, where):
+        return values[where] if per_point else values
+
     out = np.empty(dx.shape)
     near = ~far
-    out[near] = voigt_profile(dx[near], sigma, gamma)
-    r = 1.0 / ((dx[far] + 1j * gamma) * inv)          # 1 / z, the only division
+    out[near] = voigt_profile(dx[near], at(sigma, near), at(gamma, near))
+    r = 1.0 / ((dx[far] + 1j * at(gamma, far)) * at(inv, far))          # 1 / z, the only division
     u2 = r * r
     acc = _FAR_SERIES[-1] * u2
     for c in _FAR_SERIES[-2:0:-1]:
         acc = (acc + c) * u2
     # Re w = Re(i q / sqrt(pi)) = -Im(q) / sqrt(pi), q = (1 + acc) / z
-    out[far] = ((acc + 1.0) * r).imag * (-1.0 / (np.sqrt(np.pi) * sigma * np.sqrt(2.0 * np.pi)))
+    out[far] = ((acc + 1.0) * r).imag * (-1.0 / (np.sqrt(np.pi) * at(sigma, far) * np.sqrt(2.0 * np.pi)))
     return out
 
 
