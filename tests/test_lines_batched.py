@@ -600,3 +600,61 @@ def test_half_widths_equal_one_by_one():
         one = np.array([half_width(data, *args) for args in zip(ic, lo, hi, sign)])
         assert np.array_equal(one, many, equal_nan=True)
         assert np.isfinite(one).sum() > 300
+
+
+def test_wide_voigt_profiles_of_several_lines_in_one_call():
+    # hydrogen.hydrogen_model evaluates every hydrogen line's profile in one voigt_wide call (sigma
+    # and gamma one per point): the same bits as one call per line, and within voigt_wide's
+    # tolerance of scipy.special.voigt_profile (the outside reference) at each line's own widths
+    from scipy.special import voigt_profile
+
+    from specan.lines.profiles import voigt_wide
+
+    rng = np.random.default_rng(21)
+    x = np.linspace(3700.0, 7300.0, 4000)
+    for _ in range(20):
+        nl = int(rng.integers(1, 12))
+        sigma = rng.uniform(0.3, 5.0, nl)
+        gamma = sigma * 10 ** rng.uniform(-4.0, 1.5, nl)
+        centre = rng.uniform(3700.0, 7300.0, nl)
+        together = voigt_wide((x[None, :] - centre[:, None]).ravel(), np.repeat(sigma, x.size),
+                              np.repeat(gamma, x.size)).reshape(nl, x.size)
+        for k in range(nl):
+            alone = voigt_wide(x - centre[k], sigma[k], gamma[k])
+            assert np.array_equal(together[k], alone)
+            scipys = voigt_profile(x - centre[k], sigma[k], gamma[k])
+            assert np.max(np.abs(together[k] - scipys)) <= 3e-15 * scipys.max()
+
+
+def test_features_as_found_one_by_one():
+    # data.find_features gathers each sign's features as arrays and orders them by a lexical sort:
+    # the same arrays as made feature by feature and ordered as a sort of the tuples (position,
+    # significance, depth, emission), on the demo night's spectra and on their hydrogen-divided copies
+    from specan.lines.data import (
+        DETECT_SIGMA,
+        MIN_DEPTH,
+        _candidates,
+        _refined_positions,
+        _standing_out,
+        find_features,
+    )
+
+    def one_by_one(data):
+        out = []
+        noise = float(np.median(data.sigma[data.good]))
+        for sign in (1.0, -1.0):
+            s = sign * np.where(data.good, data.signif, 0.0)
+            kept = _standing_out(data, _candidates(data, s, sign, DETECT_SIGMA, noise), sign, MIN_DEPTH)
+            for pos, p in zip(_refined_positions(data, s, kept).tolist(), kept):
+                out.append((pos, sign * float(s[p]), 1.0 - float(data.smooth[p]), sign < 0))
+        out.sort()
+        return [np.array(v) for v in zip(*out)]
+
+    count = 0
+    for name, data, listed, targets, features in demo_line_setups(6):
+        for arrays in (data, data.divided(np.linspace(0.9, 1.0, data.wave.size))):
+            found = find_features(arrays, DETECT_SIGMA, MIN_DEPTH)
+            for mine, theirs in zip(found, one_by_one(arrays)):
+                assert mine.dtype == theirs.dtype and np.array_equal(mine, theirs)
+            count += found.position.size
+    assert count > 500

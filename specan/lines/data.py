@@ -387,19 +387,21 @@ def find_features(data, detect_sigma, min_depth=MIN_DEPTH):
     ``min_depth`` (prominence): at very high S/N, continuum ripples of a few tenths
     of a per cent are significant but are not lines.
     """
-    out = []
+    parts = []
     noise = float(np.median(data.sigma[data.good]))
     for sign in (1.0, -1.0):
         s = sign * np.where(data.good, data.signif, 0.0)
         cand = _candidates(data, s, sign, detect_sigma, noise)
         kept = _standing_out(data, cand, sign, min_depth)
-        for pos, p in zip(_refined_positions(data, s, kept), kept):
-            out.append((pos, sign * float(s[p]), 1.0 - float(data.smooth[p]), sign < 0))
-    out.sort()
-    if not out:
+        parts.append((_refined_positions(data, s, kept), sign * s[kept], 1.0 - data.smooth[kept],
+                      np.full(kept.size, sign < 0)))
+    pos, sig, depth, emis = (np.concatenate(v) for v in zip(*parts))
+    if not pos.size:
         return Features(np.zeros(0), np.zeros(0), np.zeros(0), np.zeros(0, bool))
-    pos, sig, depth, emis = (np.array(v) for v in zip(*out))
-    return Features(pos, sig, depth, emis.astype(bool))
+    # in the order of (position, significance, depth, emission), as a sort of those tuples: the same
+    # values as made feature by feature (a Python loop over some 150 features a call, measured)
+    order = np.lexsort((emis, depth, sig, pos))
+    return Features(pos[order], sig[order], depth[order], emis[order])
 
 
 def _candidates(data, s, sign, detect_sigma, noise):
@@ -452,4 +454,4 @@ def _refined_positions(data, s, peaks):
     den = a - 2 * b + c
     with np.errstate(divide="ignore", invalid="ignore"):
         frac[inner] = np.where(den < 0, 0.5 * (a - c) / den, 0.0)
-    return [float(v) for v in np.interp(peaks + np.clip(frac, -0.5, 0.5), np.arange(s.size), data.wave)]
+    return np.interp(peaks + np.clip(frac, -0.5, 0.5), np.arange(s.size), data.wave)
