@@ -165,12 +165,12 @@ def adaptive_windows(data, ic, sign, min_half, max_half, wide):
         levels.append(level)
         cuts.append(cut)
     out = []
-    for m in range(ic.size):
-        edges = [int(ends[0][m]), int(ends[1][m])]
-        lv = [float(levels[0][m]), float(levels[1][m])]
-        if edges[0] > edges[1]:
-            edges, lv = edges[::-1], lv[::-1]
-        out.append(Window(edges[0], edges[1], (lv[0], lv[1]), bool(cuts[0][m] or cuts[1][m])))
+    # (the arrays as Python numbers once: the same values as element by element)
+    for e0, e1, l0, l1, c0, c1 in zip(ends[0].tolist(), ends[1].tolist(), levels[0].tolist(), levels[1].tolist(),
+                                      cuts[0].tolist(), cuts[1].tolist()):
+        if e0 > e1:
+            e0, e1, l0, l1 = e1, e0, l1, l0
+        out.append(Window(e0, e1, (l0, l1), bool(c0 or c1)))
     return out
 
 
