@@ -296,7 +296,8 @@ def fixed_windows(data, centre, fwhm):
     hi = np.clip(np.searchsorted(data.wave, centre + fwhm), lo + 1, n - 1)
     lo = np.minimum(lo, hi - 1)
     left, right = data.smooth[lo], data.smooth[hi]
-    return [Window(int(a), int(b), (float(c), float(d)), False) for a, b, c, d in zip(lo, hi, left, right)]
+    # (as Python numbers read once: the same values)
+    return [Window(a, b, (c, d), False) for a, b, c, d in zip(lo.tolist(), hi.tolist(), left.tolist(), right.tolist())]
 
 
 def adaptive_window(data, ic, sign, min_half, max_half, wide=False):
