@@ -5,7 +5,10 @@ Two sets of spectra:
 * ``pipeline``: the 40 distinct synthetic spectra of ``benchmarks/bench_pipeline.py``
   (4,000 px, 3700-7299 A, R = 2000, S/N 12-150, types O-M; made by ``specan.synth``),
   read, prepared and given their velocity by the velocity stage first, so the lines stage
-  sees what ``specan run`` gives it (the figure issue 12 sets: lines <= 15 ms);
+  sees what ``specan run`` gives it (the figure issue 12 sets: lines <= 15 ms); each timed call
+  finds the noise estimate of the normalised flux kept, as ``specan run``'s velocity stage leaves
+  it for the lines stage (:func:`noise_kept`; ``--cold``: made in every call, as this script timed
+  it before 2026-12-04, ~1 ms a spectrum more than the night run spends);
 * ``dense``: one normalised 4,000-px spectrum (3800-7000 A, R = 3000, S/N 100) carrying
   every atomic line of the default list (Gaussians of random EW; Voigt Balmer lines).
 
