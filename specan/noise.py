@@ -44,6 +44,7 @@ from typing import NamedTuple
 import numpy as np
 
 __all__ = ["FluxNoise", "flux_noise", "kept_flux_noise", "spectrum_noise", "pixels_per_fwhm", "correlated_pixels", "BLOCK",
+           "block_edges", "block_medians",
            "NOISELESS_SNR", "PLATEAU_METHOD", "DERSNR_METHOD"]
 
 #: Above this S/N the flux is taken for a noiseless model (S/N reported as None).
@@ -170,6 +171,62 @@ def _block_power(y, valid, block):
         med = np.where(count % 2 == 1, hi, (lo + hi) / 2.0)
     out = np.where(count >= block // 4, med / _CHI2_1_MEDIAN, np.nan)
     return centres, out
+
+
+def block_edges(n, block=BLOCK):
+    """Edges of the blocks of ``n`` pixels the running noise level is measured on: ``max(n // block, 1)``
+    blocks as near equal as whole pixels allow (``np.linspace(0, n, nb + 1).astype(int)``)."""
+    return np.linspace(0, n, max(n // block, 1) + 1).astype(int)
+
+
+def block_medians(values, valid, edges):
+    """(median, count) of ``values`` over each block's ``valid`` pixels, blocks between ``edges``.
+
+    The median is ``np.median(values[a:b][valid[a:b]])``'s value to the bit (the middle element, or the
+    sum of the middle two halved, as numpy takes it; NaN for a block with none), for all blocks at once:
+    blocks of one length are rows of a reshaped view, unequal ones gathered into rows (the missing
+    entries +inf, past the valid ones); a partition about the middle positions puts there what a
+    sort would. A call of ``np.median`` per block cost ~20 us each, 15 a 4,000-pixel spectrum (measured).
+    ``values`` must be finite where ``valid``.
+
+    Parameters
+    ----------
+    values : array of float, (n,)
+    valid : array of bool, (n,)
+    edges : array of int
+        Increasing block edges from 0 to ``n`` (:func:`block_edges`).
+
+    Returns
+    -------
+    medians : array of float, (blocks,)
+    count : array of int, (blocks,)
+        Valid pixels in each block.
+    """
+    values = np.asarray(values, float)
+    valid = np.asarray(valid, bool)
+    edges = np.asarray(edges, int)
+    n = values.size
+    size = np.diff(edges)
+    nb = size.size
+    if size.min() == size.max() and edges[0] == 0 and edges[-1] == n:
+        rows, ok = values.reshape(nb, size[0]), valid.reshape(nb, size[0])
+    else:
+        k = np.arange(int(size.max()))
+        pix = np.minimum(edges[:-1, None] + k[None, :], n - 1)
+        ok = (k[None, :] < size[:, None]) & valid[pix]
+        rows = values[pix]
+    rows = np.where(ok, rows, np.inf)
+    count = ok.sum(axis=1)
+    lo_k, hi_k = np.maximum((count - 1) // 2, 0), count // 2
+    hi_k = np.minimum(hi_k, rows.shape[1] - 1)
+    kth = np.unique(np.concatenate([lo_k, hi_k]))
+    rows = np.partition(rows, kth, axis=1) if kth.size <= 8 else np.sort(rows, axis=1)
+    at = np.arange(nb)
+    lo, hi = rows[at, lo_k], rows[at, hi_k]
+    with np.errstate(invalid="ignore"):
+        # (lo + hi) / 2: np.median's mean of the middle two, a sum of two then a division
+        med = np.where(count % 2 == 1, hi, (lo + hi) / 2.0)
+    return np.where(count > 0, med, np.nan), count
 
 
 def valid_for(good, taps):

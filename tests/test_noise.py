@@ -246,3 +246,37 @@ def test_fewer_miles_stars_read_by_the_plateau(miles):
                                        "plateau method: their smoothed noise is taken for the lines' leak (measured)")
 def test_no_miles_star_reads_an_implausible_snr(miles):
     assert not [s for s in _miles_plateau_snrs(miles) if s > 1000]
+
+
+def test_block_medians_are_numpys_median_per_block():
+    """All blocks' medians at once (``block_medians``) against ``np.median`` of each block's valid
+    pixels (numpy itself the outside reference): the same bits, on equal blocks (a reshaped view) and
+    unequal ones (gathered), with odd and even counts, ties, invalid pixels holding NaN and empty blocks."""
+    rng = np.random.default_rng(12)
+    for trial in range(300):
+        n = int(rng.integers(20, 5000))
+        block = int(rng.choice([7, 64, 256, 250]))
+        edges = noise.block_edges(n, block)
+        if trial % 4 == 0:   # rounded values: ties
+            values = np.round(rng.uniform(0.05, 1.5, n), 2)
+        else:
+            values = rng.uniform(0.05, 1.5, n)
+        valid = rng.uniform(size=n) > (0.0 if trial % 3 == 0 else rng.uniform(0, 0.9))
+        if trial % 5 == 0:   # a block without a valid pixel
+            valid[edges[0]:edges[1]] = False
+        values = np.where(valid, values, np.nan)
+        med, count = noise.block_medians(values, valid, edges)
+        for i, (a, b) in enumerate(zip(edges[:-1], edges[1:])):
+            assert count[i] == valid[a:b].sum()
+            if count[i]:
+                assert med[i] == float(np.median(values[a:b][valid[a:b]])), (trial, i)
+            else:
+                assert np.isnan(med[i])
+
+
+def test_block_edges_are_the_blocks_flux_noise_measures_on():
+    """The velocity stage takes its flux levels on the blocks the noise level was measured on."""
+    for n in (300, 4000, 4096, 5121):
+        edges = noise.block_edges(n)
+        centres, _ = noise._block_power(np.ones(n), np.ones(n, bool), noise.BLOCK)
+        np.testing.assert_array_equal(0.5 * (edges[:-1] + edges[1:]) - 0.5, centres)
