@@ -251,12 +251,13 @@ def test_no_miles_star_reads_an_implausible_snr(miles):
 def test_block_medians_are_numpys_median_per_block():
     """All blocks' medians at once (``block_medians``) against ``np.median`` of each block's valid
     pixels (numpy itself the outside reference): the same bits, on equal blocks (a reshaped view) and
-    unequal ones (gathered), with odd and even counts, ties, invalid pixels holding NaN and empty blocks."""
+    unequal ones (gathered), with odd and even counts, ties, invalid pixels holding NaN and empty blocks;
+    the blocks those ``np.linspace`` edges give, as the noise level's."""
     rng = np.random.default_rng(12)
     for trial in range(300):
-        n = int(rng.integers(20, 5000))
+        n = int(rng.integers(20, 5000)) if trial % 2 else int(rng.integers(1, 20)) * 250
         block = int(rng.choice([7, 64, 256, 250]))
-        edges = noise.block_edges(n, block)
+        edges = np.linspace(0, n, max(n // block, 1) + 1).astype(int)
         if trial % 4 == 0:   # rounded values: ties
             values = np.round(rng.uniform(0.05, 1.5, n), 2)
         else:
@@ -265,7 +266,8 @@ def test_block_medians_are_numpys_median_per_block():
         if trial % 5 == 0:   # a block without a valid pixel
             valid[edges[0]:edges[1]] = False
         values = np.where(valid, values, np.nan)
-        med, count = noise.block_medians(values, valid, edges)
+        centres, med, count = noise.block_medians(values, valid, block)
+        np.testing.assert_array_equal(centres, 0.5 * (edges[:-1] + edges[1:]) - 0.5)
         for i, (a, b) in enumerate(zip(edges[:-1], edges[1:])):
             assert count[i] == valid[a:b].sum()
             if count[i]:
@@ -274,9 +276,17 @@ def test_block_medians_are_numpys_median_per_block():
                 assert np.isnan(med[i])
 
 
-def test_block_edges_are_the_blocks_flux_noise_measures_on():
-    """The velocity stage takes its flux levels on the blocks the noise level was measured on."""
-    for n in (300, 4000, 4096, 5121):
-        edges = noise.block_edges(n)
-        centres, _ = noise._block_power(np.ones(n), np.ones(n, bool), noise.BLOCK)
-        np.testing.assert_array_equal(0.5 * (edges[:-1] + edges[1:]) - 0.5, centres)
+def test_block_power_is_numpys_median_per_block():
+    """``_block_power`` against ``np.median`` of each block's valid squares (numpy the reference), also
+    where the blocks' valid counts differ so much that a full sort replaces the partition."""
+    rng = np.random.default_rng(13)
+    for trial in range(60):
+        n = int(rng.integers(300, 5000))
+        y = rng.normal(size=n)
+        valid = rng.uniform(size=n) > rng.uniform(0, 0.5) * (trial % 2)
+        centres, power = noise._block_power(y, valid, 64)
+        edges = np.linspace(0, n, max(n // 64, 1) + 1).astype(int)
+        for i, (a, b) in enumerate(zip(edges[:-1], edges[1:])):
+            ok = valid[a:b]
+            ref = np.median((y[a:b] * y[a:b])[ok]) / noise._CHI2_1_MEDIAN if ok.sum() >= 16 else np.nan
+            assert power[i] == ref or (np.isnan(ref) and np.isnan(power[i])), (trial, i)

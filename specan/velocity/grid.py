@@ -117,7 +117,7 @@ def flux_pixel_noise(w, f, bad, info, noise_only=None):
     the flux shows no white-noise plateau (correlated pixels, or no noise found) the noise is
     :func:`noise_from_flux`'s, DER_SNR at the continuum, as before.
     """
-    from ..noise import BLOCK, block_edges, block_medians, correlated_pixels, kept_flux_noise, pixels_per_fwhm
+    from ..noise import BLOCK, block_medians, correlated_pixels, kept_flux_noise, pixels_per_fwhm
 
     good = ~bad
     # (kept: the lines stage asks for the same estimate of the same pixels next)
@@ -136,10 +136,8 @@ def flux_pixel_noise(w, f, bad, info, noise_only=None):
     index = np.arange(n)
     # the block's median flux at its centre, interpolated (the blocks flux_noise measured its level on)
     # (all blocks' medians at once, np.median's values: specan.noise.block_medians)
-    edges = block_edges(n, BLOCK)
-    medians, count = block_medians(level, good, edges)
+    centres, medians, count = block_medians(level, good, BLOCK)
     use = count >= 8
-    centres = 0.5 * (edges[:-1] + edges[1:]) - 0.5
     ref = np.interp(index, centres[use], medians[use]) if use.any() else np.ones(n)
     # The level along the spectrum as a smooth curve, ln sigma linear in the pixel index: the blocks'
     # own scatter (5-12% each, most in the line-rich blue) moved the weights with every noise
