@@ -40,7 +40,8 @@
 10. ``--against DIR``: the speed test's spectra measured by this checkout's specan and by the specan of
    another checkout ``DIR`` (e.g. ``git archive <commit> | tar -x -C DIR``) in one process, each
    spectrum by both in turn (the order alternating): CPU ms per spectrum of each and their ratio, with
-   the load drift of a shared machine cancelled (runs in separate processes differ by +-20% here); then
+   the load drift of a shared machine cancelled (runs in separate processes differ by +-20% here); the same
+   on ``bench_pipeline.py``'s spectra as the night run calls the stage (no error array, barycentric); then
    on how many of the speed test's, ``bench_pipeline.py``'s, the demo night's, the JHC (1984) and the
    MILES inputs (own groups out) the best template, the mixture (names, weights) or the velocity (by more
    than 0.05 of its error) differ between the two, and by how much at most; and on how many any number of
@@ -340,10 +341,46 @@ def against(model, n, other, rounds=4):
                   f"{np.percentile(t, 75):.2f})")
         ratio = np.asarray(cpu[names[1]]) / np.asarray(cpu[names[0]])
         print(f"{names[1]} / this checkout, per spectrum: median {np.median(ratio):.3f}")
+        night_side_by_side(packages, n, rounds)
         choice_changes(packages, [{name: spectra[name][i] for name in names} for i in range(n)], n)
     finally:
         sys.path.remove(str(folder))
         shutil.rmtree(folder, ignore_errors=True)
+
+
+def night_side_by_side(packages, n, rounds=3):
+    """CPU ms per velocity as the night run calls it, each package's in turn: ``bench_pipeline.py``'s
+    spectra read and prepared by each package (FITS without an error array: the flux's own noise; with
+    time, site and pointing: the barycentric correction and v_GRF), ``velocity.measure(spectrum)`` with
+    its defaults, as ``specan.pipeline`` calls it."""
+    import tempfile
+
+    sys.path.insert(0, str(Path(__file__).resolve().parent))
+    from bench_pipeline import make_spectra
+
+    names = list(packages)
+    with tempfile.TemporaryDirectory() as tmp:
+        paths = make_spectra(Path(tmp), n)
+        spectra = {name: [pkg.prepare(pkg.read(str(p))) for p in paths] for name, pkg in packages.items()}
+    for name, pkg in packages.items():   # caches filled
+        for s in spectra[name]:
+            pkg.velocity.measure(s)
+    cpu = {name: [] for name in names}
+    load = os.getloadavg()[0]
+    for r in range(rounds):
+        for i in range(n):
+            for name in (names if (r + i) % 2 == 0 else names[::-1]):
+                c = time.process_time()
+                packages[name].velocity.measure(spectra[name][i])
+                cpu[name].append(time.process_time() - c)
+    print(f"\n== as the night run calls it: {n} bench_pipeline.py spectra (read, prepared; no error array; "
+          f"barycentric) x {rounds}, each by both in turn (load average {load:.2f} -> {os.getloadavg()[0]:.2f}) ==")
+    for name in names:
+        t = 1e3 * np.asarray(cpu[name])
+        print(f"{name:40s} CPU median {np.median(t):6.2f} ms (quartiles {np.percentile(t, 25):.2f}-"
+              f"{np.percentile(t, 75):.2f})")
+    ratio = np.asarray(cpu[names[1]]) / np.asarray(cpu[names[0]])
+    print(f"{names[1]} / this checkout, per spectrum: median {np.median(ratio):.3f}")
 
 
 def _change_sets(packages, speed_inputs, n):

