@@ -325,22 +325,11 @@ def against(model, n, other, rounds=4):
         for name, pkg in packages.items():   # set-ups built, caches filled
             for s in spectra[name]:
                 pkg.velocity.measure(s, barycentric=False)
-        cpu = {name: [] for name in packages}
         names = list(packages)
-        for r in range(rounds):
-            for i in range(len(velocities)):
-                for name in (names if (r + i) % 2 == 0 else names[::-1]):
-                    c = time.process_time()
-                    packages[name].velocity.measure(spectra[name][i], barycentric=False)
-                    cpu[name].append(time.process_time() - c)
+        cpu = _alternated(packages, spectra, len(velocities), rounds, barycentric=False)
         print(f"\n== side by side in one process: {n} speed-test spectra x {rounds}, each by both in turn "
               f"(load average {os.getloadavg()[0]:.2f}) ==")
-        for name in names:
-            t = 1e3 * np.asarray(cpu[name])
-            print(f"{name:40s} CPU median {np.median(t):6.2f} ms (quartiles {np.percentile(t, 25):.2f}-"
-                  f"{np.percentile(t, 75):.2f})")
-        ratio = np.asarray(cpu[names[1]]) / np.asarray(cpu[names[0]])
-        print(f"{names[1]} / this checkout, per spectrum: median {np.median(ratio):.3f}")
+        _print_alternated(names, cpu)
         night_side_by_side(packages, n, rounds)
         choice_changes(packages, [{name: spectra[name][i] for name in names} for i in range(n)], n)
     finally:
@@ -365,16 +354,29 @@ def night_side_by_side(packages, n, rounds=3):
     for name, pkg in packages.items():   # caches filled
         for s in spectra[name]:
             pkg.velocity.measure(s)
-    cpu = {name: [] for name in names}
     load = os.getloadavg()[0]
+    cpu = _alternated(packages, spectra, n, rounds)
+    print(f"\n== as the night run calls it: {n} bench_pipeline.py spectra (read, prepared; no error array; "
+          f"barycentric) x {rounds}, each by both in turn (load average {load:.2f} -> {os.getloadavg()[0]:.2f}) ==")
+    _print_alternated(names, cpu)
+
+
+def _alternated(packages, spectra, n, rounds, **kw):
+    """{package name: CPU seconds of each ``velocity.measure(spectra[name][i], **kw)``}, the packages in
+    turn, their order swapped from one spectrum to the next (the machine's drift falls on both alike)."""
+    names = list(packages)
+    cpu = {name: [] for name in names}
     for r in range(rounds):
         for i in range(n):
             for name in (names if (r + i) % 2 == 0 else names[::-1]):
                 c = time.process_time()
-                packages[name].velocity.measure(spectra[name][i])
+                packages[name].velocity.measure(spectra[name][i], **kw)
                 cpu[name].append(time.process_time() - c)
-    print(f"\n== as the night run calls it: {n} bench_pipeline.py spectra (read, prepared; no error array; "
-          f"barycentric) x {rounds}, each by both in turn (load average {load:.2f} -> {os.getloadavg()[0]:.2f}) ==")
+    return cpu
+
+
+def _print_alternated(names, cpu):
+    """Each package's CPU median and quartiles (ms), and the second's over the first's, per spectrum."""
     for name in names:
         t = 1e3 * np.asarray(cpu[name])
         print(f"{name:40s} CPU median {np.median(t):6.2f} ms (quartiles {np.percentile(t, 25):.2f}-"
