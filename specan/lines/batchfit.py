@@ -46,15 +46,13 @@ from .profiles import (
     best_grid_point,
     fit_profile_lean,
     fit_summary,
-    start_and_bounds,
     voigt_and_derivatives,
-    window_arrays,
 )
 
 #: Damping widths (times the Gaussian sigma) a start is chosen from (:func:`_direct_starts`).
 _DAMPING_GRID = np.logspace(-2.0, 2.5, 46)
 
-__all__ = ["fit_planned", "fit_batched_voigt", "gauss_batch", "voigt_batch"]
+__all__ = ["fit_planned", "fit_batched_voigt", "gauss_batch", "voigt_batch", "interp_rows"]
 
 #: The iteration stops when a full Gauss-Newton step would lower the cost (half the
 #: chi-square) by less than this: 1e-6 puts the fit within ~sqrt(2e-6) = 0.0014 of each
@@ -432,31 +430,11 @@ def voigt_batch(data, problems, max_iter=MAX_ITER, decrement=DECREMENT, cost_tol
     out = [None] * len(problems)
     if not exact:
         decrement = max(decrement, QUICK_DECREMENT)
-    live, starts = [], []
-    for k, (lo, hi, cont, centres, max_shift, sig_inst, sign, skip, free_width) in enumerate(problems):
-        x, _, wts = window_arrays(data, lo, hi, skip)
-        if (wts > 0).sum() < 3 + len(centres):
-            continue
-        p0, lb, ub = start_and_bounds(data, x, cont, centres, True, max_shift, sig_inst, sign, free_width)
-        if np.any(lb >= ub) or not np.all(np.isfinite(p0)):
-            continue   # least_squares refuses these (a ValueError, so no fit)
-        live.append(k)
-        starts.append((p0, lb, ub))
-    if not live:
+    setup = _voigt_setup(data, problems)
+    if setup is None:
         return out
-    x, y, cont, wts, ngood = _padded(data, problems, live, skip_index=7)
-    nb = len(live)
-    ncomp = np.array([len(problems[k][3]) for k in live])
-    npar = 3 + int(ncomp.max())
-    # padded components: no width, held at zero (their columns never enter a step)
-    centres = np.zeros((nb, npar - 3))
-    p, lb, ub = np.zeros((nb, npar)), np.full((nb, npar), -1.0), np.ones((nb, npar))
-    real = np.zeros((nb, npar), bool)
-    for row, k in enumerate(live):
-        n = 3 + ncomp[row]
-        centres[row, :ncomp[row]] = problems[k][3]
-        p[row, :n], lb[row, :n], ub[row, :n] = starts[row]
-        real[row, :n] = True
+    live, x, y, cont, wts, ngood, ncomp, centres, p, lb, ub, real = setup
+    nb, npar = p.shape
     _direct_starts(data, problems, live, x, y, cont, wts, ncomp, p, lb, ub)
     model = _VoigtModel(x, y, cont, wts, centres, real[:, 3:])
     r, jac = model(p)
@@ -566,26 +544,30 @@ def voigt_batch(data, problems, max_iter=MAX_ITER, decrement=DECREMENT, cost_tol
     # rest is that of the problem's own block (to rounding)
     done = np.flatnonzero(converged)
     try:
-        covs = dict(zip(done, np.linalg.pinv(jac[done].transpose(0, 2, 1) @ jac[done]))) if done.size else {}
+        covs = np.linalg.pinv(jac[done].transpose(0, 2, 1) @ jac[done]) if done.size else None
     except np.linalg.LinAlgError:
-        covs = {}
+        covs = None
+    if covs is not None:
+        # every converged fit's summary from arrays (fit_summary's arithmetic, element by element)
+        dof = np.maximum(ngood[done] - (3 + ncomp[done]), 1)
+        made = _voigt_summaries(p[done], covs[:, 3, 3], centres[done, 0], 2.0 * cost[done], dof)
+        for row, fit in zip(done.tolist(), made):
+            out[live[row]] = fit
     for row, k in enumerate(live):
         if not converged[row]:
             if finite[row]:
                 lo, hi, cnt, cen, max_shift, sig_inst, sign, skip, free_width = problems[k]
                 out[k] = fit_profile_lean(data, lo, hi, cnt, cen, "voigt", max_shift, sig_inst, sign, skip, free_width)
             continue
-        n = 3 + ncomp[row]
-        if row in covs:
-            cov = covs[row][:n, :n]
-        else:
+        if covs is None:
+            n = 3 + ncomp[row]
             jr = jac[row][:, :n]
             try:
                 cov = np.linalg.pinv(jr.T @ jr)
             except np.linalg.LinAlgError:
                 continue
-        dof = max(int(ngood[row]) - n, 1)
-        out[k] = fit_summary(p[row, :n], cov, problems[k][3], True, float(2.0 * cost[row]) / dof)
+            dof = max(int(ngood[row]) - n, 1)
+            out[k] = fit_summary(p[row, :n], cov, problems[k][3], True, float(2.0 * cost[row]) / dof)
         if exact and not abs(out[k]["ew"]) > out[k]["ew_err"]:
             # an ill-determined fit (a flat valley where depth and damping trade): where the batch
             # stops in it depends on its path (Fe I 3820 in a MILES G9.5 III star: chi2 0.748
@@ -597,6 +579,111 @@ def voigt_batch(data, problems, max_iter=MAX_ITER, decrement=DECREMENT, cost_tol
             if slow is not None:
                 out[k] = slow
     return out
+
+
+
+def _voigt_summaries(p, var_ew, centre0, chi2_sum, dof):
+    """:func:`~specan.lines.profiles.fit_summary` (Voigt) of many fits at once, as a list of dicts.
+
+    ``p`` the parameters (fits, 3 + components), ``var_ew`` the variance of component 0's equivalent
+    width, ``centre0`` component 0's listed centre, ``chi2_sum`` the chi-square and ``dof`` its degrees
+    of freedom: fit_summary's operations element by element (the same values), one call each for all.
+    """
+    sigma, gamma, ew = p[:, 1], p[:, 2], p[:, 3]
+    fl, fg = 2.0 * gamma, GAUSS_FWHM * sigma
+    # (np.float_power: C's pow, as a Python float's ** 2 in fit_summary; an array's ** 2 is the product
+    # x * x, which differs from pow in the last bit now and then, measured)
+    fwhm = 0.5346 * fl + np.sqrt(0.2166 * np.float_power(fl, 2.0) + np.float_power(fg, 2.0))   # Olivero & Longbothum (1977), from memory
+    peak = ew * voigt_profile(0.0, sigma, gamma)
+    columns = (ew, np.sqrt(np.maximum(var_ew, 0.0)), centre0 + p[:, 0], fwhm, peak, chi2_sum / dof, sigma, gamma)
+    keys = ("ew", "ew_err", "centre", "fwhm", "depth", "chi2", "sigma", "gamma")
+    return [dict(zip(keys, values)) for values in zip(*(c.tolist() for c in columns))]
+
+def _voigt_setup(data, problems):
+    """The batch's padded arrays, starts and bounds of the problems a fit can be made of, or None.
+
+    :func:`~specan.lines.profiles.start_and_bounds` (Voigt) of every problem at once, element by
+    element the same arithmetic (the same values; one call per problem, with its interpolations,
+    was a tenth of the batch, benchmarks/bench_lines.py). A problem is left out (no fit) with fewer
+    than 3 + its components pixels of non-zero weight, or where its bounds cross or its start is not
+    finite (``least_squares`` refuses those). The arrays are padded to the problems kept, as before.
+
+    Returns
+    -------
+    tuple or None
+        ``(live, x, y, cont, wts, ngood, ncomp, centres, p, lb, ub, real)``: the problems kept (indices
+        into ``problems``), their windows padded (:func:`_padded`), their counts of components, the
+        components' centres (padded with zeros), starts, lower and upper bounds (padded components held
+        at zero within [-1, 1]) and which parameters are the problems' own.
+    """
+    ks = list(range(len(problems)))
+    if not ks:
+        return None
+    x, y, cont, wts, ngood = _padded(data, problems, ks, skip_index=7)
+    ncomp = np.array([len(pr[3]) for pr in problems])
+    width = int(ncomp.max())
+    real_c = np.arange(width)[None, :] < ncomp[:, None]
+    centres = np.zeros((len(ks), width))
+    centres[real_c] = np.concatenate([np.asarray(pr[3], float).ravel() for pr in problems])
+    max_shift = np.array([pr[4] for pr in problems], float)
+    sig = np.array([pr[5] for pr in problems], float)
+    sign = np.array([pr[6] for pr in problems], float)
+    free_width = np.array([bool(pr[8]) for pr in problems])
+    length = np.array([pr[1] - pr[0] + 1 for pr in problems])
+    # start_and_bounds, element by element
+    span = np.maximum(data.wave[[pr[1] for pr in problems]] - data.wave[[pr[0] for pr in problems]], 2 * sig)
+    row_c = np.nonzero(real_c)[0]
+    at = centres[real_c]
+    with np.errstate(divide="ignore", invalid="ignore"):
+        d0 = 1.0 - np.interp(at, data.wave, data.smooth) / interp_rows(at, x[row_c], cont[row_c], length[row_c])
+    w0 = np.zeros((len(ks), width))
+    w0[real_c] = d0 * sig[row_c] * np.sqrt(2 * np.pi) * 1.2
+    wmax = 2.0 * span
+    w_lo = np.where(sign > 0, 0.0, -50.0 * wmax)
+    w_hi = np.where(sign > 0, wmax, 0.0)
+    p0 = np.column_stack([np.zeros(len(ks)), sig, 0.2 * sig, w0])
+    lb = np.column_stack([-max_shift, 0.95 * sig, np.zeros(len(ks)), np.repeat(w_lo[:, None], width, axis=1)])
+    ub = np.column_stack([max_shift, np.where(free_width, span, 1.05 * sig), span,
+                          np.repeat(w_hi[:, None], width, axis=1)])
+    real = np.column_stack([np.ones((len(ks), 3), bool), real_c])
+    with np.errstate(invalid="ignore"):
+        p0 = np.clip(p0, lb + 1e-6 * (ub - lb), ub - 1e-6 * (ub - lb))
+        usable = (ngood >= 3 + ncomp) & ~np.any(real & (lb >= ub), axis=1) & np.all(~real | np.isfinite(p0), axis=1)
+    live = np.flatnonzero(usable)
+    if not live.size:
+        return None
+    if live.size < len(ks):
+        # padded again to the problems kept (the padding's size enters the sums' rounding)
+        x, y, cont, wts, ngood = _padded(data, problems, live.tolist(), skip_index=7)
+        width = int(ncomp[live].max())
+        ncomp, centres, p0, lb, ub, real = (ncomp[live], centres[live, :width], p0[live, :3 + width],
+                                            lb[live, :3 + width], ub[live, :3 + width], real[live, :3 + width])
+    # padded components: no width, held at zero (their columns never enter a step)
+    p = np.where(real, p0, 0.0)
+    lb = np.where(real, lb, -1.0)
+    ub = np.where(real, ub, 1.0)
+    return live.tolist(), x, y, cont, wts, ngood, ncomp, centres, p, lb, ub, real
+
+
+def interp_rows(xv, xp, fp, length):
+    """``np.interp(xv[m], xp[m, :length[m]], fp[m, :length[m]])`` for every row m, with np.interp's rules
+    and arithmetic (the same values)."""
+    rows = np.arange(xv.size)
+    inside = np.arange(xp.shape[1])[None, :] < length[:, None]
+    j = np.sum(inside & (xp <= xv[:, None]), axis=1) - 1      # xp[j] <= x < xp[j + 1]
+    last = length - 1
+    jc = np.clip(j, 0, np.maximum(last - 1, 0))
+    jn = np.minimum(jc + 1, last)
+    xa, xb, fa, fb = xp[rows, jc], xp[rows, jn], fp[rows, jc], fp[rows, jn]
+    with np.errstate(divide="ignore", invalid="ignore"):
+        slope = (fb - fa) / (xb - xa)
+        val = slope * (xv - xa) + fa
+        # np.interp's fallback where the first form is NaN
+        val = np.where(np.isnan(val), np.where(fa == fb, fa, slope * (xv - xb) + fb), val)
+    val = np.where(xa == xv, fa, val)
+    val = np.where(j >= last, fp[rows, last], val)
+    val = np.where(xv > xp[rows, last], fp[rows, last], val)
+    return np.where(xv < xp[:, 0], fp[:, 0], val)
 
 
 def _all_ill_determined(p, jtj, real):

@@ -30,7 +30,7 @@ from .hydrogen import without_hydrogen
 from .expected import expected_lines, star_code
 from .hydrogen_blends import less_blends, series_shares
 from .listed import blends, line_widths, lines_in_range, match_windows, row_values, velocities
-from .batchfit import fit_planned, voigt_batch
+from .batchfit import fit_planned, interp_rows, voigt_batch
 from .profiles import fit_gauss, fit_profile
 from .windows import line_window, line_windows, local_continuum, profile_window, wing_reach
 
@@ -423,7 +423,7 @@ def plan_lines(data, features, targets, which, profile, starts, windows):
     ok = inside & np.isfinite(sig)
     ew_int_err = np.sqrt(np.sum(np.where(ok, sig / cont * dx, 0.0) ** 2, axis=1))
     # central_depth: the continuum at the centre as np.interp gives it from the window's pixels
-    c_mid = _interp_rows(centre, x, cont, length)
+    c_mid = interp_rows(centre, x, cont, length)
     near = ic[:, None] + np.arange(-1, 2)[None, :]
     in_near = (near >= 0) & (near < n)
     fl = data.flux[np.clip(near, 0, n - 1)]
@@ -493,26 +493,6 @@ def _centres(listed, in_win, hydrogen, centre, fw):
         else:
             centres.append(c)
     return np.array(centres)
-
-
-def _interp_rows(xv, xp, fp, length):
-    """``np.interp(xv[m], xp[m, :length[m]], fp[m, :length[m]])`` for every row m, with np.interp's rules."""
-    rows = np.arange(xv.size)
-    inside = np.arange(xp.shape[1])[None, :] < length[:, None]
-    j = np.sum(inside & (xp <= xv[:, None]), axis=1) - 1      # xp[j] <= x < xp[j + 1]
-    last = length - 1
-    jc = np.clip(j, 0, np.maximum(last - 1, 0))
-    jn = np.minimum(jc + 1, last)
-    xa, xb, fa, fb = xp[rows, jc], xp[rows, jn], fp[rows, jc], fp[rows, jn]
-    with np.errstate(divide="ignore", invalid="ignore"):
-        slope = (fb - fa) / (xb - xa)
-        val = slope * (xv - xa) + fa
-        # np.interp's fallback where the first form is NaN
-        val = np.where(np.isnan(val), np.where(fa == fb, fa, slope * (xv - xb) + fb), val)
-    val = np.where(xa == xv, fa, val)
-    val = np.where(j >= last, fp[rows, last], val)
-    val = np.where(xv > xp[rows, last], fp[rows, last], val)
-    return np.where(xv < xp[:, 0], fp[:, 0], val)
 
 
 def finish_line(data, features, targets, i, plan, fitter):

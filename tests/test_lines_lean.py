@@ -1,0 +1,123 @@
+"""The lines stage's work made in fewer, larger numpy calls (issue 12: lines <= 15 ms a spectrum)
+against the calls it replaces: the same values, to the last bit.
+
+Each rewrite below keeps every element's arithmetic and only changes how many elements one numpy
+call takes (or where its temporaries live), so it is held to equality with the code it replaced,
+written out here. The outside checks of the quantities themselves stay where they were:
+``tests/test_lines_batched.py`` (scipy's ``voigt_profile`` and ``least_squares``),
+``tests/test_lines_quick.py`` (injected lines, the solar strong lines of Moore, Minnaert &
+Houtgast 1966, damped lines of known area).
+"""
+
+import numpy as np
+from scipy.special import voigt_profile
+from test_lines_quick import _injected
+
+from specan.lines.data import LineData, normalised
+from specan.lines.profiles import _FAR_SERIES, FAR_Z, WIDE_BLOCK, fit_summary, start_and_bounds, voigt_wide, \
+    window_arrays
+
+
+def _line_data(seed=3):
+    spec, _ = _injected(seed, 1.0)   # every listed line injected, S/N 100 (tests/test_lines_quick.py)
+    return LineData(normalised(spec))
+
+
+def _problems(data, rng, count=40):
+    """Voigt problems as the batch gets them: windows, local continua, components, shifts, widths,
+    signs, skipped pixels, free widths; some with too few pixels to fit."""
+    out = []
+    n = data.wave.size
+    for k in range(count):
+        length = int(rng.integers(2, 120))
+        lo = int(rng.integers(0, n - length))
+        hi = lo + length - 1
+        ncomp = int(rng.integers(1, 5))
+        centres = np.sort(rng.uniform(data.wave[lo], data.wave[hi], ncomp))
+        levels = rng.uniform(0.8, 1.05, 2)
+        cont = np.ones(length) if k % 3 == 0 else np.linspace(levels[0], levels[1], length)
+        skip = (rng.uniform(size=length) < 0.2) if k % 4 == 1 else None
+        sig = float(rng.uniform(0.3, 2.0))
+        out.append((lo, hi, cont, centres, float(rng.uniform(0.1, 2.0)), sig, -1.0 if k % 5 == 2 else 1.0, skip,
+                    bool(k % 2)))
+    return out
+
+
+def test_voigt_setup_as_start_and_bounds():
+    # batchfit._voigt_setup: profiles.start_and_bounds (Voigt) of every problem at once, and the same
+    # problems left out (too few weighted pixels; crossed bounds), as the loop over problems it replaced
+    from specan.lines.batchfit import _padded, _voigt_setup
+
+    data = _line_data()
+    rng = np.random.default_rng(8)
+    for _ in range(5):
+        problems = _problems(data, rng)
+        live, starts = [], []
+        for k, (lo, hi, cont, centres, max_shift, sig, sign, skip, free_width) in enumerate(problems):
+            x, _, wts = window_arrays(data, lo, hi, skip)
+            if (wts > 0).sum() < 3 + len(centres):
+                continue
+            p0, lb, ub = start_and_bounds(data, x, cont, centres, True, max_shift, sig, sign, free_width)
+            if np.any(lb >= ub) or not np.all(np.isfinite(p0)):
+                continue
+            live.append(k)
+            starts.append((p0, lb, ub))
+        assert 0 < len(live) < len(problems)   # some left out
+        got = _voigt_setup(data, problems)
+        assert got[0] == live
+        padded = _padded(data, problems, live, skip_index=7)
+        for mine, theirs in zip(got[1:6], padded):
+            assert np.array_equal(mine, theirs)
+        ncomp, centres, p, lb, ub, real = got[6:]
+        for row, (p0, lb0, ub0) in enumerate(starts):
+            n = p0.size
+            assert ncomp[row] == n - 3
+            assert np.array_equal(centres[row, :n - 3], problems[live[row]][3])
+            assert np.array_equal(p[row, :n], p0) and np.array_equal(lb[row, :n], lb0)
+            assert np.array_equal(ub[row, :n], ub0)
+            assert real[row, :n].all() and not real[row, n:].any()
+            # padded components held at zero in [-1, 1]
+            assert np.all(p[row, n:] == 0.0) and np.all(lb[row, n:] == -1.0) and np.all(ub[row, n:] == 1.0)
+
+
+def test_voigt_summaries_as_fit_summary():
+    # batchfit._voigt_summaries: profiles.fit_summary (Voigt) of many fits from arrays, the same values
+    from specan.lines.batchfit import _voigt_summaries
+
+    rng = np.random.default_rng(4)
+    nb, npar = 4000, 6   # (enough fits that x ** 2 by pow and by x * x part somewhere)
+    p = np.column_stack([rng.normal(0.0, 0.3, nb), rng.uniform(0.2, 3.0, nb),
+                         rng.uniform(0.0, 5.0, nb) * (rng.uniform(size=nb) < 0.9), rng.uniform(-1.0, 20.0, (nb, 3))])
+    a = rng.normal(size=(nb, npar, npar))
+    cov = a @ a.transpose(0, 2, 1) - 0.05   # some negative variances: clipped at zero as fit_summary does
+    centres = rng.uniform(3800.0, 7000.0, (nb, 3))
+    chi2, dof = rng.uniform(10.0, 500.0, nb), rng.integers(1, 300, nb)
+    made = _voigt_summaries(p, cov[:, 3, 3], centres[:, 0], chi2, dof)
+    for row in range(nb):
+        assert made[row] == fit_summary(p[row], cov[row], centres[row], True, float(chi2[row]) / int(dof[row]))
+
+
+def test_wide_series_in_blocks_as_written():
+    # profiles.voigt_wide sums the far points' series in blocks, in place: the same values as the series
+    # written out over all points at once (its form before, kept here); scipy's voigt_profile is its
+    # outside check in tests/test_lines_batched.py
+    rng = np.random.default_rng(5)
+    x = np.linspace(3700.0, 7300.0, 4000)
+    nl = 11
+    sigma = np.repeat(rng.uniform(0.3, 5.0, nl), x.size)
+    gamma = np.repeat(np.concatenate([[0.0], rng.uniform(0.0, 20.0, nl - 1)]), x.size)
+    dx = (x[None, :] - rng.uniform(3700.0, 7300.0, nl)[:, None]).ravel()
+    inv = 1.0 / (sigma * np.sqrt(2.0))
+    far = dx * dx + gamma * gamma >= (FAR_Z / inv) ** 2
+    assert far.sum() > 3 * WIDE_BLOCK   # several blocks
+    written = np.empty(dx.size)
+    written[~far] = voigt_profile(dx[~far], sigma[~far], gamma[~far])
+    r = 1.0 / ((dx[far] + 1j * gamma[far]) * inv[far])
+    u2 = r * r
+    acc = _FAR_SERIES[-1] * u2
+    for c in _FAR_SERIES[-2:0:-1]:
+        acc = (acc + c) * u2
+    written[far] = ((acc + 1.0) * r).imag * (-1.0 / (np.sqrt(np.pi) * sigma[far] * np.sqrt(2.0 * np.pi)))
+    assert np.array_equal(voigt_wide(dx, sigma, gamma), written)
+    # one line, sigma and gamma as numbers
+    assert np.array_equal(voigt_wide(dx[:x.size], sigma[0], gamma[0]), written[:x.size])
