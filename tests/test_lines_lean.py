@@ -10,6 +10,7 @@ Houtgast 1966, damped lines of known area).
 """
 
 import numpy as np
+import pytest
 from scipy.special import voigt_profile
 from test_lines_quick import _injected
 
@@ -43,32 +44,47 @@ def _problems(data, rng, count=40):
     return out
 
 
-def test_voigt_setup_as_start_and_bounds():
-    # batchfit._voigt_setup: profiles.start_and_bounds (Voigt) of every problem at once, and the same
-    # problems left out (too few weighted pixels; crossed bounds), as the loop over problems it replaced
+def _setup_one_by_one(data, problems):
+    """(problems kept, their (start, lower, upper)) as the loop over problems made them before."""
+    live, starts = [], []
+    for k, (lo, hi, cont, centres, max_shift, sig, sign, skip, free_width) in enumerate(problems):
+        x, _, wts = window_arrays(data, lo, hi, skip)
+        if (wts > 0).sum() < 3 + len(centres):
+            continue
+        p0, lb, ub = start_and_bounds(data, x, cont, centres, True, max_shift, sig, sign, free_width)
+        if np.any(lb >= ub) or not np.all(np.isfinite(p0)):
+            continue
+        live.append(k)
+        starts.append((p0, lb, ub))
+    return live, starts
+
+
+@pytest.mark.parametrize("at_once", [1, 4, 1000])
+def test_voigt_setup_as_start_and_bounds(monkeypatch, at_once):
+    # batchfit._voigt_setup: profiles.start_and_bounds (Voigt) of every problem at once (batches of
+    # SETUP_AT_ONCE problems or more; smaller ones problem by problem), and the same problems left out
+    # (too few weighted pixels; crossed bounds), as the loop over problems it replaced
+    from specan.lines import batchfit
     from specan.lines.batchfit import _padded, _voigt_setup
 
+    monkeypatch.setattr(batchfit, "SETUP_AT_ONCE", at_once)
     data = _line_data()
     rng = np.random.default_rng(8)
-    for _ in range(5):
-        problems = _problems(data, rng)
-        live, starts = [], []
-        for k, (lo, hi, cont, centres, max_shift, sig, sign, skip, free_width) in enumerate(problems):
-            x, _, wts = window_arrays(data, lo, hi, skip)
-            if (wts > 0).sum() < 3 + len(centres):
-                continue
-            p0, lb, ub = start_and_bounds(data, x, cont, centres, True, max_shift, sig, sign, free_width)
-            if np.any(lb >= ub) or not np.all(np.isfinite(p0)):
-                continue
-            live.append(k)
-            starts.append((p0, lb, ub))
-        assert 0 < len(live) < len(problems)   # some left out
+    for size in (40, 40, 40, 3, 1):
+        problems = _problems(data, rng, size)
+        live, starts = _setup_one_by_one(data, problems)
         got = _voigt_setup(data, problems)
+        if not live:
+            assert got is None
+            continue
+        if size == 40:
+            assert len(live) < len(problems)   # some left out
         assert got[0] == live
         padded = _padded(data, problems, live, skip_index=7)
         for mine, theirs in zip(got[1:6], padded):
             assert np.array_equal(mine, theirs)
         ncomp, centres, p, lb, ub, real = got[6:]
+        assert p.shape == (len(live), 3 + max(s[0].size - 3 for s in starts))
         for row, (p0, lb0, ub0) in enumerate(starts):
             n = p0.size
             assert ncomp[row] == n - 3

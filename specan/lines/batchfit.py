@@ -46,7 +46,9 @@ from .profiles import (
     best_grid_point,
     fit_profile_lean,
     fit_summary,
+    start_and_bounds,
     voigt_and_derivatives,
+    window_arrays,
 )
 
 #: Damping widths (times the Gaussian sigma) a start is chosen from (:func:`_direct_starts`).
@@ -99,6 +101,11 @@ QUICK_WIDTHS = np.array([1.0])
 #: ... moved by one Gauss-Newton step in the width where the data ask for another: the score test
 #: of the held width (:func:`_width_scores`) beyond this many standard errors
 QUICK_WIDTH_Z = 2.0
+#: Voigt batches of this many problems or more make their starts and bounds all at once
+#: (:func:`_voigt_setup`); smaller ones problem by problem (:func:`_voigt_setup_each`), where the
+#: fixed cost of the ~60 calls at once exceeds the ~25 us a problem of the loop (benchmarks/
+#: bench_lines.py's spectra: the hydrogen batch holds ~10 problems, the metal lines' ~1.5; measured)
+SETUP_AT_ONCE = 4
 #: the signs of the Jacobian's shift, sigma and gamma columns against the weighted sums of the
 #: profile's derivatives (the model is ``cont (1 - sum W V)``: d/dshift = -d/dx)
 _JAC_SIGNS = np.array([1.0, -1.0, -1.0])
@@ -619,6 +626,8 @@ def _voigt_setup(data, problems):
     ks = list(range(len(problems)))
     if not ks:
         return None
+    if len(ks) < SETUP_AT_ONCE:
+        return _voigt_setup_each(data, problems)
     x, y, cont, wts, ngood = _padded(data, problems, ks, skip_index=7)
     ncomp = np.array([len(pr[3]) for pr in problems])
     width = int(ncomp.max())
@@ -664,6 +673,37 @@ def _voigt_setup(data, problems):
     ub = np.where(real, ub, 1.0)
     return live.tolist(), x, y, cont, wts, ngood, ncomp, centres, p, lb, ub, real
 
+
+
+def _voigt_setup_each(data, problems):
+    """:func:`_voigt_setup` problem by problem (:func:`~specan.lines.profiles.start_and_bounds` of each):
+    the same arrays, for batches of a few problems."""
+    live, starts = [], []
+    for k, (lo, hi, cont, centres, max_shift, sig_inst, sign, skip, free_width) in enumerate(problems):
+        x, _, wts = window_arrays(data, lo, hi, skip)
+        if (wts > 0).sum() < 3 + len(centres):
+            continue
+        p0, lb, ub = start_and_bounds(data, x, cont, centres, True, max_shift, sig_inst, sign, free_width)
+        if np.any(lb >= ub) or not np.all(np.isfinite(p0)):
+            continue   # least_squares refuses these (a ValueError, so no fit)
+        live.append(k)
+        starts.append((p0, lb, ub))
+    if not live:
+        return None
+    x, y, cont, wts, ngood = _padded(data, problems, live, skip_index=7)
+    nb = len(live)
+    ncomp = np.array([len(problems[k][3]) for k in live])
+    npar = 3 + int(ncomp.max())
+    # padded components: no width, held at zero (their columns never enter a step)
+    centres = np.zeros((nb, npar - 3))
+    p, lb, ub = np.zeros((nb, npar)), np.full((nb, npar), -1.0), np.ones((nb, npar))
+    real = np.zeros((nb, npar), bool)
+    for row, k in enumerate(live):
+        n = 3 + ncomp[row]
+        centres[row, :ncomp[row]] = problems[k][3]
+        p[row, :n], lb[row, :n], ub[row, :n] = starts[row]
+        real[row, :n] = True
+    return live, x, y, cont, wts, ngood, ncomp, centres, p, lb, ub, real
 
 def interp_rows(xv, xp, fp, length):
     """``np.interp(xv[m], xp[m, :length[m]], fp[m, :length[m]])`` for every row m, with np.interp's rules
