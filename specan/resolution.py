@@ -29,6 +29,7 @@ __all__ = [
     "NormalisedArrays",
     "normalised_arrays",
     "narrowest_line_width",
+    "grid_medians",
     "dersnr_sigma",
     "caruana_fwhms",
     "estimate_resolving_power",
@@ -161,7 +162,7 @@ def normalised_arrays(spectrum, min_good=10, resolving_power=None, dersnr=False)
     return NormalisedArrays(wave, flux, sigma, good, source)
 
 
-def narrowest_line_width(wave, flux, sigma, good):
+def narrowest_line_width(wave, flux, sigma, good, medians=None):
     """FWHM / lambda of the narrowest clean lines of a normalised spectrum, or None.
 
     Log-parabola (Caruana) fits below the local crest level to up to 40 isolated features of
@@ -171,8 +172,11 @@ def narrowest_line_width(wave, flux, sigma, good):
     blends; measured on the Kurucz solar model). Lines are never narrower than the
     instrument, so this is the instrument's width where lines are
     unresolved, and the stars' own broadening (rotation) where they are not.
+
+    ``medians``: ``(median pixel step, median wavelength)`` of the grid (:func:`grid_medians`) where
+    the caller keeps them per grid; made here otherwise.
     """
-    dx = np.median(np.diff(wave))
+    dx, mid = grid_medians(wave) if medians is None else medians
     d = np.where(good, 1.0 - flux, 0.0)
     w = np.where(good, 1.0 / sigma**2, 0.0)
     s = 1.0
@@ -192,11 +196,16 @@ def narrowest_line_width(wave, flux, sigma, good):
         return None
     order = np.argsort(sig[peaks])[::-1]
     peaks = peaks[order[peaks.size // 10:][:40]]
-    fwhms = caruana_fwhms(wave, flux, peaks)
+    fwhms = caruana_fwhms(wave, flux, peaks, step=dx)
     fwhms = fwhms[np.isfinite(fwhms)]
     if fwhms.size < 5:
         return None
-    return float(max(np.percentile(fwhms, 10), 1.5 * dx / np.median(wave)))
+    return float(max(np.percentile(fwhms, 10), 1.5 * dx / mid))
+
+
+def grid_medians(wave):
+    """``(median pixel step, median wavelength)`` of a grid, as :func:`narrowest_line_width` uses them."""
+    return float(np.median(np.diff(wave))), float(np.median(wave))
 
 
 def _caruana_fwhm(wave, flux, p):
@@ -226,13 +235,13 @@ def _caruana_fwhm(wave, flux, p):
     return GAUSS_FWHM * np.sqrt(-0.5 / a2) / wave[p]
 
 
-def caruana_fwhms(wave, flux, peaks):
+def caruana_fwhms(wave, flux, peaks, step=None):
     """:func:`_caruana_fwhm` of every pixel of ``peaks`` at once (NaN where it gives None).
 
     The same windows, cores and rules; the parabolas by their 3x3 normal equations in pixel
     offsets, all solved together, instead of one ``np.polyfit`` each (a tenth of the lines
     stage, benchmarks/bench_lines.py); the two differ by rounding only
-    (``tests/test_lines.py``).
+    (``tests/test_lines.py``). ``step``: the grid's median pixel step, where known.
     """
     peaks = np.asarray(peaks, int)
     n = wave.size
@@ -262,7 +271,7 @@ def caruana_fwhms(wave, flux, peaks):
         ok &= ~np.any(core & ~(depth > 0), axis=1)
         logd = np.where(core & ok[:, None], np.log(np.where(depth > 0, depth, 1.0)), 0.0)
     # least squares ln d = c2 t^2 + c1 t + c0 in pixel offsets t = x / step (well conditioned)
-    step = np.median(np.diff(wave))
+    step = np.median(np.diff(wave)) if step is None else step
     t = np.where(core, (wave[idc] - wave[peaks][:, None]) / step, 0.0)
     wgt = core.astype(float)
     m = np.stack([np.stack([(wgt * t ** (a + b)).sum(axis=1) for b in (2, 1, 0)], axis=-1)

@@ -137,3 +137,28 @@ def test_wide_series_in_blocks_as_written():
     assert np.array_equal(voigt_wide(dx, sigma, gamma), written)
     # one line, sigma and gamma as numbers
     assert np.array_equal(voigt_wide(dx[:x.size], sigma[0], gamma[0]), written[:x.size])
+
+
+def test_voigt_and_derivatives_into_the_batch_layout_as_written():
+    # profiles.voigt_and_derivatives with ``out`` (the batched fits' layout: z from its real and
+    # imaginary parts, the four rows scattered in one call) against its written form (without
+    # ``out``), to the bit; the written form is checked against scipy and finite differences in
+    # tests/test_lines_batched.py
+    from specan.lines.profiles import voigt_and_derivatives
+
+    rng = np.random.default_rng(6)
+    n = 5000
+    dx = rng.normal(0.0, 5.0, n)
+    dx[:10] = 0.0
+    dx[10:20] = -0.0
+    sigma, gamma = rng.uniform(0.2, 3.0, n), rng.uniform(0.0, 10.0, n) * (rng.uniform(size=n) < 0.9)
+    at = np.sort(rng.choice(3 * n, n, replace=False))
+    out = np.full((4, 3 * n), 7.0)
+    got = voigt_and_derivatives(dx, sigma, gamma, out=out, at=at)
+    assert got is out
+    written = voigt_and_derivatives(dx, sigma, gamma)
+    for row in range(4):
+        assert np.array_equal(out[row, at], written[row])
+    untouched = np.ones(3 * n, bool)
+    untouched[at] = False
+    assert np.all(out[:, untouched] == 7.0)

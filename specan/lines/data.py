@@ -17,7 +17,7 @@ from scipy.signal import find_peaks, peak_prominences
 from ..contents import content_key, kept
 from ..obsinfo import get_info
 from .. import resolution
-from ..resolution import (DEFAULT_PIXELS_PER_FWHM, GAUSS_FWHM, dersnr_sigma, narrowest_line_width,
+from ..resolution import (DEFAULT_PIXELS_PER_FWHM, GAUSS_FWHM, dersnr_sigma, grid_medians, narrowest_line_width,
                           normalised_arrays)
 
 __all__ = ["DETECT_SIGMA", "MIN_DEPTH", "LineData", "Features", "find_features", "normalised",
@@ -247,6 +247,8 @@ def wide_smooth(flux, weight, s):
 SETUPS_KEPT = 8
 _GRIDS = {}
 _WIDTHS = {}
+#: the grids' median pixel step and wavelength (:func:`specan.resolution.grid_medians`), kept per grid
+_MEDIANS = {}
 
 
 def _grid_setup(key, wave):
@@ -289,7 +291,8 @@ class LineData:
         # the narrowest-line search keeps the one-value DER_SNR noise its thresholds were set with
         # (what normalised_arrays(spectrum, dersnr=True) gives, from the arrays at hand)
         narrow_sigma = self.sigma if self.noise_source == "error array" else dersnr_sigma(self.flux, self.good)
-        self.narrow = narrowest_line_width(self.wave, self.flux, narrow_sigma, self.good)
+        self.narrow = narrowest_line_width(self.wave, self.flux, narrow_sigma, self.good,
+                                           medians=kept(_MEDIANS, wave_key, lambda: grid_medians(self.wave), SETUPS_KEPT))
         r, self.r_source = _resolving_power(resolving_power, info.resolving_power, self.narrow, self.wave)
         self.resolving_power = float(r)
         if self.noise_source != "error array" and resolving_power is None and info.resolving_power is None:

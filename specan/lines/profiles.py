@@ -94,6 +94,10 @@ def voigt_wide(dx, sigma, gamma):
     return out
 
 
+#: sqrt(2), sqrt(2 pi) and 2i / sqrt(pi), made once (the same values as made in every call)
+_SQRT2, _SQRT2PI, _DW0 = np.sqrt(2.0), np.sqrt(2.0 * np.pi), 2j / np.sqrt(np.pi)
+
+
 def voigt_and_derivatives(dx, sigma, gamma, out=None, at=None):
     """Voigt profile and its derivatives in x, sigma and gamma via the Faddeeva function.
 
@@ -106,20 +110,32 @@ def voigt_and_derivatives(dx, sigma, gamma, out=None, at=None):
     by the per-point factors are made once, as reciprocals: in the batched fits this function is
     most of a model evaluation's arithmetic.
     """
-    inv_s2 = 1.0 / (sigma * np.sqrt(2.0))
-    inv_norm = 1.0 / (sigma * np.sqrt(2.0 * np.pi))
-    z = (dx + 1j * gamma) * inv_s2
+    inv_s2 = 1.0 / (sigma * _SQRT2)
+    inv_norm = 1.0 / (sigma * _SQRT2PI)
+    if out is None:
+        z = (dx + 1j * gamma) * inv_s2
+    else:
+        # z from its real and imaginary parts, which are exactly those products (the written form's
+        # complex promotions only add and multiply zeros): the same values in fewer, real operations
+        z = np.empty(np.shape(dx), complex)
+        np.multiply(dx, inv_s2, out=z.real)
+        np.multiply(gamma, inv_s2, out=z.imag)
     w = wofz(z)
-    dw = 2j / np.sqrt(np.pi) - 2.0 * z * w
+    dw = _DW0 - 2.0 * z * w
     v = w.real * inv_norm
     scale = inv_s2 * inv_norm
-    d_x = dw.real * scale
-    d_sigma = -((dw * z).real * inv_norm + v) / sigma
-    d_gamma = -dw.imag * scale
     if out is None:
+        d_x = dw.real * scale
+        d_sigma = -((dw * z).real * inv_norm + v) / sigma
+        d_gamma = -dw.imag * scale
         return v, d_x, d_sigma, d_gamma
-    for row, part in enumerate((v, d_x, d_sigma, d_gamma)):
-        out[row, at] = part
+    # the four rows made in one block and scattered into out in one call (the same operations)
+    parts = np.empty((4, v.size))
+    parts[0] = v
+    np.multiply(dw.real, scale, out=parts[1])
+    np.divide(-((dw * z).real * inv_norm + v), sigma, out=parts[2])
+    np.multiply(-dw.imag, scale, out=parts[3])
+    out[:, at] = parts
     return out
 
 
