@@ -9,9 +9,6 @@ written out here. The outside checks of the quantities themselves stay where the
 Houtgast 1966, damped lines of known area).
 """
 
-from pathlib import Path
-
-import astropy.units as u
 import numpy as np
 import pytest
 from scipy.special import voigt_profile
@@ -165,76 +162,3 @@ def test_voigt_and_derivatives_into_the_batch_layout_as_written():
     untouched = np.ones(3 * n, bool)
     untouched[at] = False
     assert np.all(out[:, untouched] == 7.0)
-
-
-def test_blends_of_all_hydrogen_lines_at_once_as_one_by_one(monkeypatch):
-    # hydrogen_blends.less_blends_all (the crests and dips of every hydrogen line's window at once)
-    # against less_blends line by line: the same tables to the bit, on the demo night's cool stars,
-    # whose hydrogen windows hold metal lines (integration_less_blends), and hot ones
-    from astropy.table import Table
-
-    from specan import lines, prepare, read
-    from specan.lines import hydrogen_blends, measurement
-
-    demo = Path(__file__).resolve().parents[1] / "sample_spectra"
-    truth = Table.read(demo / "truth.ecsv", format="ascii.ecsv")
-
-    def one_by_one(data, features, targets, items):
-        for i, plan in items:
-            hydrogen_blends.less_blends(data, features, targets, i, plan)
-
-    taken = 0
-    for row in truth[~truth["broken"]][::2]:
-        spec = prepare(read(demo / row["file"]))
-        rv = row["rv_topo"] * u.km / u.s
-        together = lines.measure(spec, rv=rv)
-        with monkeypatch.context() as m:
-            m.setattr(measurement, "less_blends_all", one_by_one)
-            alone = lines.measure(spec, rv=rv)
-        for col in together.colnames:
-            a, b = np.asarray(getattr(together[col], "value", together[col])), \
-                np.asarray(getattr(alone[col], "value", alone[col]))
-            assert np.array_equal(a, b) or (a.dtype.kind == "f" and np.array_equal(a, b, equal_nan=True)), col
-        taken += int(np.sum(np.asarray(together["method"]) == "integration_less_blends"))
-        assert np.isfinite(np.asarray(together["ew_err_blend"].value)).any() or not np.asarray(together["species"] == "H I").any()
-    assert taken >= 3
-
-
-def test_crests_and_dips_of_many_windows_as_one_by_one():
-    # hydrogen_blends._crests and _dips_all (many windows at once) against blanketing and _dips (one
-    # window each), to the bit, on random windows, continua, hydrogen profiles and positions
-    from specan.lines.hydrogen_blends import _crests, _dip_depths, _dip_depths_all, _dips, _dips_all, blanketing
-    from specan.lines.windows import Window
-
-    data = _line_data(9)
-    rng = np.random.default_rng(10)
-    n = data.wave.size
-    windows, conts, centres, asked = [], [], [], []
-    for k in range(300):
-        length = int(rng.integers(1, 150))
-        lo = int(rng.integers(0, n - length))
-        w = Window(lo, lo + length - 1, (1.0, 1.0), False)
-        x = data.wave[w.lo:w.hi + 1]
-        cont = np.linspace(*rng.uniform(0.85, 1.05, 2), length)
-        # centres inside, outside and on a pixel
-        centre = float(rng.choice([rng.uniform(x[0] - 5.0, x[-1] + 5.0), x[length // 2]]))
-        windows.append(w)
-        conts.append(cont)
-        centres.append(centre)
-        fit = {"ew": float(rng.uniform(0.5, 15.0)), "centre": centre, "sigma": float(rng.uniform(0.5, 3.0)),
-               "gamma": float(rng.uniform(0.0, 4.0))}
-        positions = np.concatenate([rng.uniform(x[0] - 3.0, x[-1] + 3.0, int(rng.integers(1, 6))), x[:1]])
-        asked.append((w, cont, fit, float(rng.uniform(1.0, 4.0)), positions))
-    for w, cont, centre, under in zip(windows, conts, centres, _crests(data, windows, conts, centres)):
-        alone = blanketing(data, w, cont, centre)
-        together = 0.0 if under is None else float(under @ data.dx[w.lo:w.hi + 1])
-        assert together == alone
-    many = _dips_all(data, asked)
-    depth, threshold, cuts = _dip_depths_all(data, asked)
-    shown = 0
-    for args, dips, d, t in zip(asked, many, np.split(depth, cuts), np.split(threshold, cuts)):
-        assert np.array_equal(dips, _dips(data, *args))
-        d1, t1 = _dip_depths(data, *args)
-        assert np.array_equal(d, d1) and np.array_equal(t, t1)
-        shown += int(dips.sum())
-    assert 0 < shown < sum(a[4].size for a in asked)

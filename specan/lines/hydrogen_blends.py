@@ -36,11 +36,10 @@ from scipy.optimize import nnls
 from scipy.special import voigt_profile
 
 from ..resolution import GAUSS_FWHM
-from .batchfit import interp_rows
 from .components import MIN_SEPARATION, window_features
 
 __all__ = ["CORE_CLEARANCE", "LISTED_SIGNIFICANCE", "metal_absorption", "metal_lines", "blanketing",
-           "less_blends", "less_blends_all", "series_shares"]
+           "less_blends", "series_shares"]
 
 #: Metal lines closer than this many line widths to the hydrogen line's fitted centre are left
 #: in it: inside its core the profile's shape is least certain, and a Gaussian there takes up
@@ -156,13 +155,7 @@ def blanketing(data, window, cont, centre):
 
 
 def _dips(data, window, cont, fit, fwhm, positions):
-    """Whether the flux dips at each of ``positions`` (:func:`_dip_depths`: the dip beyond its threshold)."""
-    dip, threshold = _dip_depths(data, window, cont, fit, fwhm, positions)
-    return dip > threshold
-
-
-def _dip_depths(data, window, cont, fit, fwhm, positions):
-    """How far the flux dips at each of ``positions`` once the hydrogen line's fitted profile is taken off.
+    """Whether the flux dips at each of ``positions`` once the hydrogen line's fitted profile is taken off.
 
     The dip is the depth left (smoothed flux to the line width, below the local continuum, less the
     fitted profile) at the position less the mean of that left 1.5 line widths to either side: a
@@ -170,7 +163,6 @@ def _dip_depths(data, window, cont, fit, fwhm, positions):
     the wing almost none (a noiseless synthetic A2 V H alpha, which holds no metal line 18 A out,
     had the listed Fe I 6546 given 0.04 A by a test on the fit's error alone; measured). It must
     exceed :data:`LISTED_SIGNIFICANCE` times the smoothed flux's noise there and :data:`MIN_DIP`.
-    Returns the dips and those thresholds.
     """
     sel = slice(window.lo, window.hi + 1)
     x = data.wave[sel]
@@ -185,7 +177,7 @@ def _dip_depths(data, window, cont, fit, fwhm, positions):
     lb, lr = np.interp(blue, x, left), np.interp(red, x, left)
     side = np.where(use_b & use_r, 0.5 * (lb + lr), np.where(use_b, lb, lr))
     noise = np.interp(positions, x, data.smooth_err[sel])
-    return at - side, np.maximum(LISTED_SIGNIFICANCE * noise, MIN_DIP)
+    return at - side > np.maximum(LISTED_SIGNIFICANCE * noise, MIN_DIP)
 
 
 #: Smallest dip (fraction of the continuum) that shows a listed line with no feature of its own
@@ -229,59 +221,13 @@ def less_blends(data, features, targets, i, plan):
     plan : LinePlan
         Its plan, fit made (:func:`specan.lines.measurement.finish_line`).
     """
-    if not _takes_blends(plan):
-        return
     result, fit, window = plan.result, plan.fit, plan.window
+    if window is None or not plan.hydrogen or plan.sign < 0 or result.method != "integration":
+        return
     # the absorption under the crests needs no fit (a failed one leaves the integral all the same)
     result.blanketing = blanketing(data, window, plan.cont, result.wave_obs if fit is None else fit["centre"])
     if fit is None or not plan.voigt:
         return
-    found = _candidates(data, features, targets, plan)
-    if found is None:
-        return
-    positions, owner = found
-    # a listed line with no feature of its own is modelled only where the spectrum dips at it
-    shows = (owner < 0) | _dips(data, window, plan.cont, fit, plan.fw, positions)
-    _taken_out(data, plan, positions[shows], owner[shows])
-
-
-def less_blends_all(data, features, targets, lines):
-    """:func:`less_blends` of every ``(i, plan)`` in ``lines``: the same changes, the crests
-    (:func:`blanketing`) and dips (:func:`_dips`) of all the lines' windows found at once (their
-    element-by-element arithmetic; the sums over each window as before): one call each instead of one
-    set a line (a hydrogen line's less_blends was ~0.14 ms, benchmarks/bench_lines.py)."""
-    todo = [plan for _, plan in lines if _takes_blends(plan)]
-    if not todo:
-        return
-    levels = _crests(data, [plan.window for plan in todo], [plan.cont for plan in todo],
-                     [plan.result.wave_obs if plan.fit is None else plan.fit["centre"] for plan in todo])
-    asked = []
-    for plan, under in zip(todo, levels):
-        sel = slice(plan.window.lo, plan.window.hi + 1)
-        plan.result.blanketing = 0.0 if under is None else float(under @ data.dx[sel])
-        if plan.fit is None or not plan.voigt:
-            continue
-        found = _candidates(data, features, targets, plan)
-        if found is not None:
-            asked.append((plan, found))
-    if not asked:
-        return
-    dips = _dips_all(data, [(plan.window, plan.cont, plan.fit, plan.fw, found[0]) for plan, found in asked])
-    for (plan, (positions, owner)), dip in zip(asked, dips):
-        shows = (owner < 0) | dip
-        _taken_out(data, plan, positions[shows], owner[shows])
-
-
-def _takes_blends(plan):
-    """Whether :func:`less_blends` changes the plan's result: an absorption hydrogen line integrated."""
-    return (plan.window is not None and bool(plan.hydrogen) and not plan.sign < 0
-            and plan.result.method == "integration")
-
-
-def _candidates(data, features, targets, plan):
-    """``(positions, owner)`` of the metal lines :func:`less_blends` may model in the plan's window
-    (owner: the listed line's index, -1 for a feature), before the dip test; None where none is left."""
-    fit, window = plan.fit, plan.window
     sep = MIN_SEPARATION * plan.fw
     lo, hi = data.wave[window.lo], data.wave[window.hi]
     # the listed lines inside the window (not hydrogen) where the star's velocity puts them: not moved
@@ -301,22 +247,18 @@ def _candidates(data, features, targets, plan):
         far = np.abs(positions[:, None] - plan.centres[None, :]).min(axis=1) > sep
         positions, owner = positions[far], owner[far]
     if not positions.size:
-        return None
+        return
     # (metal_lines leaves out those within the core clearance: so here, to keep the owners in step)
     clear = np.abs(positions - fit["centre"]) > CORE_CLEARANCE * plan.fw
     positions, owner = positions[clear], owner[clear]
     if not positions.size:
-        return None
-    return positions, owner
-
-
-def _taken_out(data, plan, positions, owner):
-    """The metal lines at ``positions`` (listed ``owner``, -1 a feature) modelled and taken out of the
-    plan's integral (the end of :func:`less_blends`)."""
+        return
+    # a listed line with no feature of its own is modelled only where the spectrum dips at it
+    shows = (owner < 0) | _dips(data, window, plan.cont, fit, plan.fw, positions)
+    positions, owner = positions[shows], owner[shows]
     if not positions.size:
         return
-    result = plan.result
-    metal, err, each, _, _ = metal_lines(data, plan.window, plan.cont, plan.fit, plan.fw, positions)
+    metal, err, each, _, _ = metal_lines(data, window, plan.cont, fit, plan.fw, positions)
     if not np.count_nonzero(each):
         return
     result.method = "integration_less_blends"
@@ -325,94 +267,6 @@ def _taken_out(data, plan, positions, owner):
     # (the integral and the fit share pixels, so the two errors are not independent: their
     # quadratic sum is the larger, cautious figure)
     result.ew_err = float(np.hypot(result.ew_int_err, err))
-
-
-def _windows_padded(data, windows):
-    """Rows of the windows' pixels padded to one length: ``(pix, inside, length)`` (past a window's end
-    its last pixel, not inside)."""
-    lo = np.array([w.lo for w in windows])
-    length = np.array([w.hi for w in windows]) - lo + 1
-    k = np.arange(int(length.max()))
-    inside = k[None, :] < length[:, None]
-    return np.minimum(lo[:, None] + k[None, :], (lo + length - 1)[:, None]), inside, length
-
-
-def _padded_rows(values, length, size, fill):
-    """Per-window arrays (or numbers) as rows of ``size``, ``fill`` past each window's end."""
-    out = np.full((len(values), size), fill, float)
-    for row, (v, m) in enumerate(zip(values, length.tolist())):
-        out[row, :m] = v
-    return out
-
-
-def _crests(data, windows, conts, centres):
-    """What :func:`blanketing` integrates, ``clip(1 - crest, 0)`` over each window, for many windows at
-    once (None where a window has fewer than two pixels): its operations element by element, the two
-    crests' np.interp written out with np.interp's rules; the integral (a dot product) stays the
-    caller's, one per window, as in blanketing."""
-    pix, inside, length = _windows_padded(data, windows)
-    x = data.wave[pix]
-    cont = _padded_rows(conts, length, pix.shape[1], 1.0)
-    level = np.minimum(data.smooth[pix] / cont, 1.0)
-    centre = np.asarray(centres, float)
-    x0, x1 = x[:, 0], x[np.arange(len(windows)), length - 1]
-    split = np.where((x0 < centre) & (centre < x1), centre, 0.5 * (x0 + x1))
-    blue = x < split[:, None]
-    rows = np.arange(len(windows))
-    kb = np.argmax(np.where(blue & inside, level, -np.inf), axis=1)
-    kr = np.argmax(np.where(~blue & inside, level, -np.inf), axis=1)
-    xa, xb, la, lb = x[rows, kb], x[rows, kr], level[rows, kb], level[rows, kr]
-    # np.interp(x, [xa, xb], [la, lb]): la up to xa (and at it), lb from xb on, the slope form between
-    with np.errstate(divide="ignore", invalid="ignore"):
-        slope = (lb - la) / (xb - xa)
-        between = slope[:, None] * (x - xa[:, None]) + la[:, None]
-        again = slope[:, None] * (x - xb[:, None]) + lb[:, None]
-    between = np.where(np.isnan(between), np.where((la == lb)[:, None] & np.isnan(again), la[:, None], again),
-                       between)
-    crest = np.where(x <= xa[:, None], la[:, None], np.where(x >= xb[:, None], lb[:, None], between))
-    under = np.clip(1.0 - crest, 0.0, None)
-    return [under[row, :m] if m >= 2 else None for row, m in enumerate(length.tolist())]
-
-
-def _dips_all(data, asked):
-    """:func:`_dips` of many windows at once (``asked``: its arguments ``(window, cont, fit, fwhm,
-    positions)`` per window): a list of its boolean arrays."""
-    dip, threshold, cuts = _dip_depths_all(data, asked)
-    return np.split(dip > threshold, cuts)
-
-
-def _dip_depths_all(data, asked):
-    """:func:`_dip_depths` of many windows at once: the dips and thresholds of all positions in one
-    array each (window after window) and where each window's part begins; the same values (its
-    operations element by element, its np.interp calls by :func:`~specan.lines.batchfit.interp_rows`)."""
-    windows = [a[0] for a in asked]
-    pix, inside, length = _windows_padded(data, windows)
-    x = data.wave[pix]
-    size = pix.shape[1]
-    cont = _padded_rows([a[1] for a in asked], length, size, 1.0)
-    ew = np.array([a[2]["ew"] for a in asked], float)
-    centre = np.array([a[2]["centre"] for a in asked], float)
-    sig = np.array([a[2]["sigma"] for a in asked], float)
-    gam = np.array([a[2]["gamma"] for a in asked], float)
-    profile = voigt_profile(x - centre[:, None], np.repeat(sig[:, None], size, axis=1),
-                            np.repeat(gam[:, None], size, axis=1))
-    left = 1.0 - data.smooth[pix] / cont - ew[:, None] * profile
-    err = data.smooth_err[pix]
-    counts = [a[4].size for a in asked]
-    row = np.repeat(np.arange(len(asked)), counts)
-    positions = np.concatenate([a[4] for a in asked])
-    fwhm = np.repeat(np.array([a[3] for a in asked], float), counts)
-    xr, lr_, m = x[row], left[row], length[row]
-    at = interp_rows(positions, xr, lr_, m)
-    blue, red = positions - 1.5 * fwhm, positions + 1.5 * fwhm
-    near = CORE_CLEARANCE * fwhm
-    c = centre[row]
-    use_b = np.abs(blue - c) > near
-    use_r = np.abs(red - c) > near
-    lb, lr = interp_rows(blue, xr, lr_, m), interp_rows(red, xr, lr_, m)
-    side = np.where(use_b & use_r, 0.5 * (lb + lr), np.where(use_b, lb, lr))
-    noise = interp_rows(positions, xr, err[row], m)
-    return at - side, np.maximum(LISTED_SIGNIFICANCE * noise, MIN_DIP), np.cumsum(counts)[:-1]
 
 
 #: H delta's place (Angstrom, between its air and vacuum wavelengths, NIST ASD: 4101.74 air, 4102.89

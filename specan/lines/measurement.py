@@ -28,7 +28,7 @@ from .components import MIN_SEPARATION, component_centres, window_features, wing
 from .data import DETECT_SIGMA, MIN_DEPTH, LineData, find_features, normalised
 from .hydrogen import without_hydrogen
 from .expected import expected_lines, star_code
-from .hydrogen_blends import less_blends, less_blends_all, series_shares
+from .hydrogen_blends import less_blends, series_shares
 from .listed import blends, line_widths, lines_in_range, match_windows, row_values, velocities
 from .batchfit import fit_planned, interp_rows, voigt_batch
 from .profiles import fit_gauss, fit_profile
@@ -517,11 +517,11 @@ def finish_lines(data, features, targets, plans, exact=True):
     unfitted = [plan for plan in plans.values() if plan.window is not None and plan.fit is None]
     widths = dict(zip(map(id, unfitted), half_widths(data, [p.ic for p in unfitted], [p.window.lo for p in unfitted],
                                                      [p.window.hi for p in unfitted], [p.sign for p in unfitted])))
-    for plan in plans.values():
+    for i, plan in plans.items():
         if plan.window is not None:
             _fitted(data, plan, widths.get(id(plan)))
-    # (each hydrogen line's blends depend on its own plan alone: all of them at once)
-    less_blends_all(data, features, targets, [(i, plan) for i, plan in plans.items() if plan.hydrogen])
+            if plan.hydrogen:
+                less_blends(data, features, targets, i, plan)
     strong = [i for i, plan in plans.items() if plan.window is not None and _wants_wings(plan)]
     wings = wing_fits(data, features, targets, strong, [plans[i].result.wave_obs for i in strong],
                       [plans[i].fit for i in strong], [plans[i].fw for i in strong], exact=exact)
