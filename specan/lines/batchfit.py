@@ -452,7 +452,8 @@ def voigt_batch(data, problems, max_iter=MAX_ITER, decrement=DECREMENT, cost_tol
     # the problems still iterating, their state packed together (unpacked as each stops)
     act = np.flatnonzero(finite)
     P, R, J, C = p[act], r[act], jac[act], cost[act]
-    LB, UB, REAL = lb[act], ub[act], real[act]
+    LB, UB = lb[act], ub[act]
+    PADDED = ~real[act]   # (the padding's parameters: held at every step)
     span = UB - LB
     near_lo, near_hi = LB + 1e-12 * span, UB - 1e-12 * span
     lam, nu = np.full(act.size, LAMBDA0), np.full(act.size, 2.0)
@@ -464,7 +465,7 @@ def voigt_batch(data, problems, max_iter=MAX_ITER, decrement=DECREMENT, cost_tol
                 break
             grad = (R[:, None, :] @ J)[:, 0]
             jtj = J.transpose(0, 2, 1) @ J
-            if act.size <= TAIL_SIZE and it >= TAIL_START and _all_ill_determined(P, jtj, REAL):
+            if act.size <= TAIL_SIZE and it >= TAIL_START and _all_ill_determined(P, jtj, ~PADDED):
                 # the batch's tail: the few problems left are ill-determined where they are, and an
                 # ill-determined fit is reported from the one-by-one algorithm anyway (below); left
                 # unconverged, they go to it now instead of iterating on alone (the quick design
@@ -472,7 +473,7 @@ def voigt_batch(data, problems, max_iter=MAX_ITER, decrement=DECREMENT, cost_tol
                 # along their valley)
                 break
             # on a bound with the gradient pushing outward: held there this step
-            held = ~REAL | ((P <= near_lo) & (grad > 0)) | ((P >= near_hi) & (grad < 0))
+            held = PADDED | ((P <= near_lo) & (grad > 0)) | ((P >= near_hi) & (grad < 0))
             diag = jtj.diagonal(axis1=1, axis2=2)
             # Marquardt's scaling by the curvature of each parameter (floored: a flat direction)
             diag = np.maximum(diag, 1e-12 * diag.max(axis=1, keepdims=True) + 1e-300)
@@ -498,7 +499,7 @@ def voigt_batch(data, problems, max_iter=MAX_ITER, decrement=DECREMENT, cost_tol
                 act = act[go]
                 if not act.size:
                     break
-                P, R, J, C, LB, UB, REAL = P[go], R[go], J[go], C[go], LB[go], UB[go], REAL[go]
+                P, R, J, C, LB, UB, PADDED = P[go], R[go], J[go], C[go], LB[go], UB[go], PADDED[go]
                 near_lo, near_hi, lam, nu = near_lo[go], near_hi[go], lam[go], nu[go]
                 grad, jtj, held, keep, held_eye, diag_eye, rhs, step = (
                     grad[go], jtj[go], held[go], keep[go], held_eye[go], diag_eye[go], rhs[go],
@@ -527,16 +528,20 @@ def voigt_batch(data, problems, max_iter=MAX_ITER, decrement=DECREMENT, cost_tol
             predicted = -(grad * st).sum(axis=1) - 0.5 * np.einsum("bn,bnm,bm->b", st, jtj, st)
             rn, jn = work(pn)
             cn = 0.5 * (rn * rn).sum(axis=1)
-            better = np.isfinite(cn) & (cn < C)
+            # (C is finite, so cn < C holds only for a finite cn: the test of a finite, lower cost)
+            better = cn < C
             # Nielsen's (1999) damping update: by how well the linearised model predicted the
             # decrease (rho), gently; doubling factors after failures (from memory)
             rho = (C - cn) / np.maximum(predicted, 1e-300)
-            lam = np.maximum(np.where(better, lam * np.maximum(1.0 / 3.0, 1.0 - (2.0 * np.minimum(np.maximum(rho, 0.0), 1.0) - 1.0) ** 3),
-                                      lam * nu), 1e-15)
-            nu = np.where(better, 2.0, 2.0 * nu)
+            gentle = lam * np.maximum(1.0 / 3.0, 1.0 - (2.0 * np.minimum(np.maximum(rho, 0.0), 1.0) - 1.0) ** 3)
             if better.all():
+                # (the same values as the general case below, which then takes every first choice)
+                lam = np.maximum(gentle, 1e-15)
+                nu = np.full(nu.shape, 2.0)
                 P, R, J, C = pn, rn, jn, cn
             else:
+                lam = np.maximum(np.where(better, gentle, lam * nu), 1e-15)
+                nu = np.where(better, 2.0, 2.0 * nu)
                 P = np.where(better[:, None], pn, P)
                 R = np.where(better[:, None], rn, R)
                 J = np.where(better[:, None, None], jn, J)
@@ -869,6 +874,7 @@ class _VoigtModel:
         sums = np.einsum("bc,kbcp->bpk", p[:, 3:], parts)
         r = (self.cont * (1.0 - sums[:, :, 0]) - self.y) * self.wts
         jac = np.empty((p.shape[0], self.shape[2], p.shape[1]))
-        jac[:, :, :3] = sums[:, :, 1:] * self.cw_signs
-        jac[:, :, 3:] = (parts[0] * self.minus_cw).transpose(0, 2, 1)
+        # (the products written into the Jacobian's columns: the same values, no temporaries)
+        np.multiply(sums[:, :, 1:], self.cw_signs, out=jac[:, :, :3])
+        np.multiply(parts[0], self.minus_cw, out=jac[:, :, 3:].transpose(0, 2, 1))
         return r, jac
