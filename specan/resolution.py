@@ -251,7 +251,7 @@ def caruana_fwhms(wave, flux, peaks, step=None):
     k = np.arange(-5, 6)
     idx = peaks[:, None] + k[None, :]                       # (peaks, 11): offsets -5..5
     inside = (idx >= 0) & (idx < n)
-    idc = np.clip(idx, 0, n - 1)
+    idc = np.minimum(np.maximum(idx, 0), n - 1)
     seg = np.where(inside, flux[idc], -np.inf)
     # the window lo..hi-1 of _caruana_fwhm needs 7 pixels at least
     enough = inside.sum(axis=1) >= 7

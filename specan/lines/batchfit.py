@@ -364,7 +364,7 @@ def _step_widths(x, b, a, cw, centres, sh, sig_line, sign, best, sig_best, ata_b
     if not f.any():
         return
     rows, cen = okr[f], cen[f]
-    s1 = np.clip(sig_best[rows] + dsig[f], _GRID_WIDTHS[0] * sig_line[rows], _GRID_WIDTHS[-1] * sig_line[rows])
+    s1 = np.minimum(np.maximum(sig_best[rows] + dsig[f], _GRID_WIDTHS[0] * sig_line[rows]), _GRID_WIDTHS[-1] * sig_line[rows])
     s = s1[:, None, None]
     dx = x[rows][:, None, :] - cen[:, :, None]
     a1 = np.exp(-0.5 * (dx / s) ** 2) / (s * np.sqrt(2 * np.pi)) * cw[rows][:, None, :]
@@ -400,7 +400,7 @@ def _refined_shifts(chi2, sh, best, step, nsh, nw=3):
     c2 = chi2[rows, np.where(inner, best + nw, best)]
     den = c0 - 2 * c1 + c2
     with np.errstate(divide="ignore", invalid="ignore"):
-        frac = np.clip(0.5 * (c0 - c2) / den, -0.5, 0.5)
+        frac = np.minimum(np.maximum(0.5 * (c0 - c2) / den, -0.5), 0.5)
     shift = sh[rows, best]
     return np.where(inner & (den > 0), shift + step * frac, shift)
 
@@ -661,7 +661,7 @@ def _voigt_setup(data, problems):
                           np.repeat(w_hi[:, None], width, axis=1)])
     real = np.column_stack([np.ones((len(ks), 3), bool), real_c])
     with np.errstate(invalid="ignore"):
-        p0 = np.clip(p0, lb + 1e-6 * (ub - lb), ub - 1e-6 * (ub - lb))
+        p0 = np.minimum(np.maximum(p0, lb + 1e-6 * (ub - lb)), ub - 1e-6 * (ub - lb))
         usable = (ngood >= 3 + ncomp) & ~np.any(real & (lb >= ub), axis=1) & np.all(~real | np.isfinite(p0), axis=1)
     live = np.flatnonzero(usable)
     if not live.size:
@@ -717,7 +717,7 @@ def interp_rows(xv, xp, fp, length):
     inside = np.arange(xp.shape[1])[None, :] < length[:, None]
     j = np.sum(inside & (xp <= xv[:, None]), axis=1) - 1      # xp[j] <= x < xp[j + 1]
     last = length - 1
-    jc = np.clip(j, 0, np.maximum(last - 1, 0))
+    jc = np.minimum(np.maximum(j, 0), np.maximum(last - 1, 0))
     jn = np.minimum(jc + 1, last)
     xa, xb, fa, fb = xp[rows, jc], xp[rows, jn], fp[rows, jc], fp[rows, jn]
     with np.errstate(divide="ignore", invalid="ignore"):
@@ -780,7 +780,7 @@ def _direct_starts(data, problems, live, x, y, cont, wts, ncomp, p, lb, ub):
     rows, gamma, ew = rows[ok], gamma[ok], ew[ok]
     span = ub[rows] - lb[rows]
     for col, value in ((2, gamma), (3, ew)):
-        p[rows, col] = np.clip(value, lb[rows, col] + 1e-6 * span[:, col], ub[rows, col] - 1e-6 * span[:, col])
+        p[rows, col] = np.minimum(np.maximum(value, lb[rows, col] + 1e-6 * span[:, col]), ub[rows, col] - 1e-6 * span[:, col])
 
 
 def _solve_pair(keep, jtj, diag_eye, held_eye, rhs, lam):

@@ -351,7 +351,7 @@ class LineData:
 
     def index(self, wave):
         """The first pixel at or above ``wave`` (clipped to the spectrum)."""
-        return int(np.clip(np.searchsorted(self.wave, wave), 0, self.wave.size - 1))
+        return min(max(int(np.searchsorted(self.wave, wave)), 0), self.wave.size - 1)
 
     def nearest_pixel(self, wave):
         """The pixel whose centre is nearest ``wave``."""
@@ -434,7 +434,7 @@ def _standing_out(data, cand, sign, min_depth):
     ext, _ = find_peaks(sm)
     if not ext.size:
         return cand[:0]
-    j = np.clip(np.searchsorted(ext, cand), 1, max(ext.size - 1, 1))
+    j = np.minimum(np.maximum(np.searchsorted(ext, cand), 1), max(ext.size - 1, 1))
     left, right = ext[np.maximum(j - 1, 0)], ext[np.minimum(j, ext.size - 1)]
     nearest = np.where(np.abs(left - cand) <= np.abs(right - cand), left, right)
     prom = peak_prominences(sm, nearest)[0]
@@ -457,4 +457,4 @@ def _refined_positions(data, s, peaks):
     den = a - 2 * b + c
     with np.errstate(divide="ignore", invalid="ignore"):
         frac[inner] = np.where(den < 0, 0.5 * (a - c) / den, 0.0)
-    return np.interp(peaks + np.clip(frac, -0.5, 0.5), np.arange(s.size), data.wave)
+    return np.interp(peaks + np.minimum(np.maximum(frac, -0.5), 0.5), np.arange(s.size), data.wave)

@@ -151,7 +151,7 @@ def blanketing(data, window, cont, centre):
     kb = np.argmax(np.where(blue, level, -np.inf))
     kr = np.argmax(np.where(blue, -np.inf, level))
     crest = np.interp(x, [x[kb], x[kr]], [level[kb], level[kr]])
-    return float(np.clip(1.0 - crest, 0.0, None) @ data.dx[sel])
+    return float(np.maximum(1.0 - crest, 0.0) @ data.dx[sel])
 
 
 def _dips(data, window, cont, fit, fwhm, positions):

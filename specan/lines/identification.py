@@ -92,7 +92,7 @@ def _match(data, pred, win, features):
     emission = np.zeros(n, bool)
     used = np.zeros(pos.size, bool)
     if pos.size:
-        j = np.clip(np.searchsorted(pos, pred), 1, max(pos.size - 1, 1))
+        j = np.minimum(np.maximum(np.searchsorted(pos, pred), 1), max(pos.size - 1, 1))
         for i in range(n):
             cands = [k for k in (j[i] - 1, j[i]) if 0 <= k < pos.size and abs(pos[k] - pred[i]) <= win[i]]
             if not cands:

@@ -153,7 +153,7 @@ def _resolve_rv(data, rv, lab):
     keep = ~emis
     pos = pos[keep]
     ls = np.sort(lab)
-    j = np.clip(np.searchsorted(ls, pos), 1, ls.size - 1)
+    j = np.minimum(np.maximum(np.searchsorted(ls, pos), 1), ls.size - 1)
     near = np.where(np.abs(ls[j - 1] - pos) < np.abs(ls[j] - pos), ls[j - 1], ls[j])
     v = C_KMS * (pos - near) / near
     v = v[np.abs(v) < 400]

@@ -332,7 +332,7 @@ def line_starts(data, features, targets, which, detect_sigma):
         centre = pred.copy()
     max_shift = np.where(matched, 0.5 * fw, match)
     n = data.wave.size
-    ic = np.clip(np.searchsorted(data.wave, centre), 0, n - 1)
+    ic = np.minimum(np.maximum(np.searchsorted(data.wave, centre), 0), n - 1)
     prev = np.maximum(ic - 1, 0)
     ic = ic - ((ic > 0) & (np.abs(data.wave[prev] - centre) < np.abs(data.wave[ic] - centre)))
     # a saturated core at the listed place (see line_start)
@@ -426,7 +426,7 @@ def plan_lines(data, features, targets, which, profile, starts, windows):
     c_mid = interp_rows(centre, x, cont, length)
     near = ic[:, None] + np.arange(-1, 2)[None, :]
     in_near = (near >= 0) & (near < n)
-    fl = data.flux[np.clip(near, 0, n - 1)]
+    fl = data.flux[np.minimum(np.maximum(near, 0), n - 1)]
     extreme = np.where(sign > 0, np.where(in_near, fl, np.inf).min(axis=1), np.where(in_near, fl, -np.inf).max(axis=1))
     depth = 1.0 - extreme / c_mid
     # window_features: the features of each line's kind between its window's edges (positions sorted)

@@ -227,7 +227,7 @@ def start_and_bounds(data, x, cont, centres, voigt, max_shift, sig_inst, sign, f
     # (hydrogen: thermal and Stark broadening widen the core beyond the instrument)
     ub = [max_shift, span if free_width else 1.05 * sig_inst] + ([span] if voigt else []) + [w_hi] * ncomp
     lb, ub = np.array(lb), np.array(ub)
-    p0 = np.clip(np.array(p0, float), lb + 1e-6 * (ub - lb), ub - 1e-6 * (ub - lb))
+    p0 = np.minimum(np.maximum(np.array(p0, float), lb + 1e-6 * (ub - lb)), ub - 1e-6 * (ub - lb))
     return p0, lb, ub
 
 

@@ -217,7 +217,7 @@ def _walks_upto(data, ic, sign, min_half, max_half, wide, step, ahead):
     j = np.arange(1, jmax + 1)
     idx = ic[:, None] + step * j[None, :]                          # (lines, steps)
     inside = (idx >= 0) & (idx < n)
-    idc = np.clip(idx, 0, n - 1)
+    idc = np.minimum(np.maximum(idx, 0), n - 1)
     dist = np.abs(data.wave[idc] - x0[:, None])
     valid = inside & (dist <= max_half[:, None])
     # the first step that leaves the spectrum or passes max_half ends the walk one pixel back
@@ -240,7 +240,7 @@ def _walks_upto(data, ic, sign, min_half, max_half, wide, step, ahead):
     # the plateau test of _on_plateau: one line width back (hydrogen: five) along the walk
     back_steps = np.ceil(np.where(w, 5.0, 1.0) * mh / data.dx[idc]).astype(int)
     # (clipped: steps past the spectrum's end are not valid anyway)
-    back = np.clip(ic[:, None] + step * np.maximum(j[None, :] - back_steps, 0), 0, n - 1)
+    back = np.minimum(np.maximum(ic[:, None] + step * np.maximum(j[None, :] - back_steps, 0), 0), n - 1)
     fall = _depth_at(data, back, sign, wide) - depth
     flat = np.where(w, (dist >= 10.0 * mh) & (fall < np.maximum(2.0 * err, 0.1 * depth)),
                     (dist >= 2.0 * mh) & (fall < np.maximum(2.0 * err, 0.01 * d0[:, None])))
@@ -284,7 +284,7 @@ def fixed_window(data, centre, fwhm):
     that wing is the continuum.
     """
     lo = int(np.searchsorted(data.wave, centre - fwhm))
-    hi = int(np.clip(np.searchsorted(data.wave, centre + fwhm), lo + 1, data.wave.size - 1))
+    hi = min(max(int(np.searchsorted(data.wave, centre + fwhm)), lo + 1), data.wave.size - 1)
     lo = min(lo, hi - 1)
     return Window(lo, hi, (float(data.smooth[lo]), float(data.smooth[hi])), False)
 
@@ -293,7 +293,7 @@ def fixed_windows(data, centre, fwhm):
     """:func:`fixed_window` of many lines (arrays of centres and widths): the same windows."""
     n = data.wave.size
     lo = np.searchsorted(data.wave, centre - fwhm)
-    hi = np.clip(np.searchsorted(data.wave, centre + fwhm), lo + 1, n - 1)
+    hi = np.minimum(np.maximum(np.searchsorted(data.wave, centre + fwhm), lo + 1), n - 1)
     lo = np.minimum(lo, hi - 1)
     left, right = data.smooth[lo], data.smooth[hi]
     # (as Python numbers read once: the same values)
@@ -396,8 +396,8 @@ def profile_window(data, centre, reach, max_half=MAX_WING):
     so the local continuum is the normalised continuum itself, 1.
     """
     half = min(reach, max_half)
-    lo = int(np.clip(np.searchsorted(data.wave, centre - half), 0, data.wave.size - 2))
-    hi = int(np.clip(np.searchsorted(data.wave, centre + half), lo + 1, data.wave.size - 1))
+    lo = min(max(int(np.searchsorted(data.wave, centre - half)), 0), data.wave.size - 2)
+    hi = min(max(int(np.searchsorted(data.wave, centre + half)), lo + 1), data.wave.size - 1)
     return Window(lo, hi, (1.0, 1.0), False)
 
 
