@@ -141,9 +141,13 @@ def _covered(data, lab_obs):
     return (lab_obs > lo) & (lab_obs < hi)
 
 
+#: km/s, made once (a composite unit is ~20 us to make, measured)
+_KMS = u.km / u.s
+
+
 def _resolve_rv(data, rv, lab):
     if rv is not None:
-        return u.Quantity(rv, u.km / u.s)
+        return u.Quantity(rv, _KMS)
     # crude estimate: offsets of the strongest features to their nearest listed line within
     # +-400 km/s (specan choice: wider than the velocities of nearly all Galactic stars,
     # common practice), histogram mode refined by the median around it

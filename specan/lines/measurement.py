@@ -873,6 +873,8 @@ def half_widths(data, ic, lo, hi, sign):
     return out
 
 
+#: km/s, made once (a composite unit is ~20 us to make, measured)
+_KMS = u.km / u.s
 _FLOAT_COLUMNS = ("wave_obs", "ew", "ew_err", "ew_err_cayrel", "ew_int", "ew_int_err", "ew_fit", "ew_fit_err",
                   "fwhm", "depth", "significance", "window_min", "window_max", "fit_chi2", "ew_err_blend")
 _FLOAT_VALUES = attrgetter(*_FLOAT_COLUMNS)
@@ -886,7 +888,7 @@ def line_table(data, listed, targets, results, star_type=None):
     # every result's float values read in one pass (one attrgetter per result, not one getattr per value)
     values = np.array([_FLOAT_VALUES(r) for r in results], float).reshape(len(results), len(_FLOAT_COLUMNS))
     cols = dict(zip(_FLOAT_COLUMNS, np.ascontiguousarray(values.T)))
-    aa, kms = u.AA, u.km / u.s
+    aa, kms = u.AA, _KMS
     # the columns built once and the table made from them in one call, text columns as arrays:
     # column by column from lists, astropy's conversions were ~2 ms a spectrum (bench_lines.py)
     columns = {
