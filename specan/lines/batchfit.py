@@ -247,12 +247,12 @@ def _gauss_group(data, problems, ks, ncomp, nsh, out, widths=None, width_step=Fa
             out[k] = fit_gauss(data, lo, hi, cnt, cen, max_shift, sig, sgn)
         return
     atb = atb[..., 0]
-    chi2 = np.einsum("lp,lp->l", b, b)[:, None] - np.sum(w * atb, axis=2)     # (L, G)
-    best = np.argmin(chi2, axis=1)
+    chi2 = np.einsum("lp,lp->l", b, b)[:, None] - (w * atb).sum(axis=2)     # (L, G)
+    best = chi2.argmin(axis=1)
     rows = np.arange(len(ks))
     wbest = w[rows, best]
     cbest = chi2[rows, best]
-    wrong = np.flatnonzero(~np.all(sign[:, None] * wbest >= 0, axis=1))
+    wrong = (~(sign[:, None] * wbest >= 0).all(axis=1)).nonzero()[0]
     if wrong.size:
         # the one-by-one rule's first step for all these lines at once: the first of the five best grid
         # points whose components all have the line's sign (profiles.best_grid_point: the same order,
@@ -291,7 +291,7 @@ def _gauss_group(data, problems, ks, ncomp, nsh, out, widths=None, width_step=Fa
     shifts = _refined_shifts(chi2, sh, np.maximum(best, 0), step, nsh, nw)
     if cov is not None:
         # every fit's summary from arrays (the same operations as row by row below, element by element)
-        okr = np.flatnonzero(ok)
+        okr = ok.nonzero()[0]
         sig = sig_best[okr]
         ew = wbest[okr, 0]
         columns = (ew, np.sqrt(np.maximum(cov[:, 0, 0], 0.0)), centres[okr, 0] + shifts[okr], GAUSS_FWHM * sig,
@@ -355,7 +355,7 @@ def _step_widths(x, b, a, cw, centres, sh, sig_line, sign, best, sig_best, ata_b
     range), the equivalent widths solved again there; taken where it lowers the chi-square and
     keeps every component's sign. Updates ``sig_best``, ``ata_best``, ``wbest``, ``cbest`` in place.
     """
-    okr = np.flatnonzero(best >= 0)
+    okr = (best >= 0).nonzero()[0]
     if not okr.size:
         return
     cen = centres[okr] + sh[okr, best[okr]][:, None]
@@ -374,8 +374,8 @@ def _step_widths(x, b, a, cw, centres, sh, sig_line, sign, best, sig_best, ata_b
         w1 = np.linalg.solve(ata1, atb1[..., None])[..., 0]
     except np.linalg.LinAlgError:
         return
-    c1 = np.einsum("lp,lp->l", b[rows], b[rows]) - np.sum(w1 * atb1, axis=1)
-    take = (c1 <= cbest[rows]) & np.all(sign[rows, None] * w1 >= 0, axis=1)
+    c1 = np.einsum("lp,lp->l", b[rows], b[rows]) - (w1 * atb1).sum(axis=1)
+    take = (c1 <= cbest[rows]) & (sign[rows, None] * w1 >= 0).all(axis=1)
     rows = rows[take]
     sig_best[rows], ata_best[rows], wbest[rows], cbest[rows] = s1[take], ata1[take], w1[take], c1[take]
 
@@ -450,7 +450,7 @@ def voigt_batch(data, problems, max_iter=MAX_ITER, decrement=DECREMENT, cost_tol
     converged = np.zeros(nb, bool)
     eye = np.eye(npar)
     # the problems still iterating, their state packed together (unpacked as each stops)
-    act = np.flatnonzero(finite)
+    act = finite.nonzero()[0]
     P, R, J, C = p[act], r[act], jac[act], cost[act]
     LB, UB = lb[act], ub[act]
     PADDED = ~real[act]   # (the padding's parameters: held at every step)
@@ -554,7 +554,7 @@ def voigt_batch(data, problems, max_iter=MAX_ITER, decrement=DECREMENT, cost_tol
     # the covariances of all converged problems in one call: a padded parameter's Jacobian column
     # is zero, so its row and column of the normal matrix are too, and the pseudo-inverse of the
     # rest is that of the problem's own block (to rounding)
-    done = np.flatnonzero(converged)
+    done = converged.nonzero()[0]
     try:
         covs = np.linalg.pinv(jac[done].transpose(0, 2, 1) @ jac[done]) if done.size else None
     except np.linalg.LinAlgError:
@@ -715,7 +715,7 @@ def interp_rows(xv, xp, fp, length):
     and arithmetic (the same values)."""
     rows = np.arange(xv.size)
     inside = np.arange(xp.shape[1])[None, :] < length[:, None]
-    j = np.sum(inside & (xp <= xv[:, None]), axis=1) - 1      # xp[j] <= x < xp[j + 1]
+    j = (inside & (xp <= xv[:, None])).sum(axis=1) - 1      # xp[j] <= x < xp[j + 1]
     last = length - 1
     jc = np.minimum(np.maximum(j, 0), np.maximum(last - 1, 0))
     jn = np.minimum(jc + 1, last)
@@ -768,14 +768,14 @@ def _direct_starts(data, problems, live, x, y, cont, wts, ncomp, p, lb, ub):
     dx = np.where(inside, data.dx[pix], 0.0)
     good = wts[rows] > 0
     with np.errstate(divide="ignore", invalid="ignore"):
-        ew = (np.sum(np.where(good, (1.0 - y[rows] / cont[rows]) * dx, 0.0), axis=1)
-              * dx.sum(axis=1) / np.sum(np.where(good, dx, 0.0), axis=1))
+        ew = (np.where(good, (1.0 - y[rows] / cont[rows]) * dx, 0.0).sum(axis=1)
+              * dx.sum(axis=1) / np.where(good, dx, 0.0).sum(axis=1))
     sig, w0 = p[rows, 1], p[rows, 3]
     # the core depth start_and_bounds took (its start is that depth as a Gaussian's area, times 1.2)
     depth = w0 / (1.2 * sig * np.sqrt(2.0 * np.pi))
     grid = sig[:, None] * _DAMPING_GRID[None, :]
     peak = ew[:, None] * voigt_profile(0.0, sig[:, None], grid)
-    gamma = grid[np.arange(rows.size), np.argmin(np.abs(peak - depth[:, None]), axis=1)]
+    gamma = grid[np.arange(rows.size), np.abs(peak - depth[:, None]).argmin(axis=1)]
     ok = np.isfinite(ew) & (ew > 0) & (depth > 0)
     rows, gamma, ew = rows[ok], gamma[ok], ew[ok]
     span = ub[rows] - lb[rows]
@@ -828,7 +828,7 @@ class _VoigtModel:
         self.components = components
         where = components[:, :, None] & (wts > 0)[:, None, :]     # (b, C, P)
         self.shape = where.shape
-        self.at = np.flatnonzero(where)   # the evaluated points, as flat indices
+        self.at = where.ravel().nonzero()[0]   # the evaluated points, as flat indices
         # each evaluated point's problem, wavelength and component centre, made once: a model
         # evaluation then takes the points' shift, sigma and gamma from their problem's
         # parameters (the same offsets x - (centre + shift) as on the whole grid, at those points)

@@ -434,7 +434,7 @@ def _standing_out(data, cand, sign, min_depth):
     ext, _ = find_peaks(sm)
     if not ext.size:
         return cand[:0]
-    j = np.minimum(np.maximum(np.searchsorted(ext, cand), 1), max(ext.size - 1, 1))
+    j = np.minimum(np.maximum(ext.searchsorted(cand), 1), max(ext.size - 1, 1))
     left, right = ext[np.maximum(j - 1, 0)], ext[np.minimum(j, ext.size - 1)]
     nearest = np.where(np.abs(left - cand) <= np.abs(right - cand), left, right)
     prom = peak_prominences(sm, nearest)[0]

@@ -148,8 +148,8 @@ def blanketing(data, window, cont, centre):
     # (a line matched to a feature off its listed place)
     split = centre if x[0] < centre < x[-1] else 0.5 * (x[0] + x[-1])
     blue = x < split
-    kb = np.argmax(np.where(blue, level, -np.inf))
-    kr = np.argmax(np.where(blue, -np.inf, level))
+    kb = np.where(blue, level, -np.inf).argmax()
+    kr = np.where(blue, -np.inf, level).argmax()
     crest = np.interp(x, [x[kb], x[kr]], [level[kb], level[kr]])
     return float(np.maximum(1.0 - crest, 0.0) @ data.dx[sel])
 

@@ -195,8 +195,8 @@ def blends(waves, ids, fwhm, inside=None):
     waves = np.asarray(waves, float)
     order = np.argsort(waves)
     ws = waves[order]
-    lo = np.searchsorted(ws, waves - fwhm)
-    hi = np.searchsorted(ws, waves + fwhm, side="right")
+    lo = ws.searchsorted(waves - fwhm)
+    hi = ws.searchsorted(waves + fwhm, side="right")
     out = [""] * len(waves)
     # a line alone in its element (hi - lo == 1: itself) has no partners: only the others loop
     for i in np.flatnonzero(hi - lo > 1):

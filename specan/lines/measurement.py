@@ -324,7 +324,7 @@ def line_starts(data, features, targets, which, detect_sigma):
     pos = features.position
     if pos.size and which.size:
         dist = np.abs(pos[None, :] - pred[:, None])
-        k = np.argmin(dist, axis=1)
+        k = dist.argmin(axis=1)
         matched = dist[np.arange(which.size), k] <= match
         centre = np.where(matched, pos[k], pred)
     else:
@@ -332,7 +332,7 @@ def line_starts(data, features, targets, which, detect_sigma):
         centre = pred.copy()
     max_shift = np.where(matched, 0.5 * fw, match)
     n = data.wave.size
-    ic = np.minimum(np.maximum(np.searchsorted(data.wave, centre), 0), n - 1)
+    ic = np.minimum(np.maximum(data.wave.searchsorted(centre), 0), n - 1)
     prev = np.maximum(ic - 1, 0)
     ic = ic - ((ic > 0) & (np.abs(data.wave[prev] - centre) < np.abs(data.wave[ic] - centre)))
     # a saturated core at the listed place (see line_start)
@@ -340,8 +340,8 @@ def line_starts(data, features, targets, which, detect_sigma):
     matched = matched | saturated
     max_shift = np.where(saturated, 0.5 * fw, max_shift)
     # a good pixel within half a width (bisection for the candidates, then the exact test)
-    lo = np.maximum(np.searchsorted(data.wave, centre - 0.6 * fw) - 1, 0)
-    hi = np.searchsorted(data.wave, centre + 0.6 * fw) + 1
+    lo = np.maximum(data.wave.searchsorted(centre - 0.6 * fw) - 1, 0)
+    hi = data.wave.searchsorted(centre + 0.6 * fw) + 1
     span = int(max((hi - lo).max(), 1)) if which.size else 1
     pix = lo[:, None] + np.arange(span)[None, :]
     inside = pix < np.minimum(hi, n)[:, None]
@@ -418,10 +418,10 @@ def plan_lines(data, features, targets, which, profile, starts, windows):
     cont = np.where(inside, cont, 1.0)
     # integrated_ew
     dx = data.dx[pix]
-    ew_int = np.sum(np.where(inside, (1.0 - data.flux[pix] / cont) * dx, 0.0), axis=1)
+    ew_int = np.where(inside, (1.0 - data.flux[pix] / cont) * dx, 0.0).sum(axis=1)
     sig = data.sigma[pix]
     ok = inside & np.isfinite(sig)
-    ew_int_err = np.sqrt(np.sum(np.where(ok, sig / cont * dx, 0.0) ** 2, axis=1))
+    ew_int_err = np.sqrt((np.where(ok, sig / cont * dx, 0.0) ** 2).sum(axis=1))
     # central_depth: the continuum at the centre as np.interp gives it from the window's pixels
     c_mid = interp_rows(centre, x, cont, length)
     near = ic[:, None] + np.arange(-1, 2)[None, :]
@@ -444,7 +444,7 @@ def plan_lines(data, features, targets, which, profile, starts, windows):
     # use_voigt of every line: strong lines (deep core, window over four widths) or hydrogen
     voigt = (profile == "voigt") | ((profile == "auto") & (hyd | ((depth > 0.7) & ((x1 - x0) > 4.0 * fws))))
     # window_features: each line's features of its own kind between its window's edges
-    bounds = {key: (np.searchsorted(mine, x0, "left"), np.searchsorted(mine, x1, "right"))
+    bounds = {key: (mine.searchsorted(x0, "left"), mine.searchsorted(x1, "right"))
               for key, mine in kinds.items()}
     # the per-line values as Python floats, read once (the same values; a loop over numpy scalars
     # spent a quarter of the planning on them, benchmarks/bench_lines.py)
@@ -454,7 +454,7 @@ def plan_lines(data, features, targets, which, profile, starts, windows):
     hi_feature = {key: b[1].tolist() for key, b in bounds.items()}
     # every line's listed companions shifted as the line is (its centre less its listed place), as lists
     # cut from one array (row by row in list order: the same values as one line at a time)
-    rows, cols = np.nonzero(companion)
+    rows, cols = companion.nonzero()
     shifted = (pred[cols] + (centre[rows] - pred[idx[rows]])).tolist()
     cuts = np.concatenate([[0], np.cumsum(np.bincount(rows, minlength=len(found)))]).tolist()
     for m, i in enumerate(found):
@@ -672,7 +672,7 @@ def _wing_problem(data, features, targets, i, centre, fit, fwhm, noise, reach0):
     shift = centre - pred[i]
     win = profile_window(data, centre, reach)
     lo, hi = data.wave[win.lo], data.wave[win.hi]
-    others = np.flatnonzero((pred >= lo) & (pred <= hi) & ~targets.hydrogen)
+    others = ((pred >= lo) & (pred <= hi) & ~targets.hydrogen).nonzero()[0]
     others = others[others != i]
     depth_at = 1.0 - np.interp(pred[others] + shift, data.wave, data.smooth)
     strong = others[depth_at > 0.5]
@@ -856,8 +856,8 @@ def half_widths(data, ic, lo, hi, sign):
     left_ok = (below & (k[None, :] < j[:, None])).any(axis=1)
     after = below & (k[None, :] >= j[:, None])
     right_ok = after.any(axis=1)
-    a = np.where(left_ok, k.size - 1 - np.argmax((below & (k[None, :] < j[:, None]))[:, ::-1], axis=1), 0)
-    b = np.where(right_ok, np.argmax(after, axis=1), 1)
+    a = np.where(left_ok, k.size - 1 - (below & (k[None, :] < j[:, None]))[:, ::-1].argmax(axis=1), 0)
+    b = np.where(right_ok, after.argmax(axis=1), 1)
     ok = (length >= 3) & (dj > 0) & left_ok & right_ok
     a1, b1 = np.minimum(a + 1, k.size - 1), np.maximum(b - 1, 0)
     da, da1, db, db1 = d[rows, a], d[rows, a1], d[rows, b], d[rows, b1]
@@ -925,8 +925,8 @@ def line_table(data, listed, targets, results, star_type=None):
     # as emission in the demo's F8 V star, two line widths from H beta; measured).
     allowed = expected.copy()
     row_of = {name: k for k, name in enumerate(ids)}
-    absorbing = np.flatnonzero(detected & allowed & ~emission)
-    for k in np.flatnonzero(emission & ~allowed):
+    absorbing = (detected & allowed & ~emission).nonzero()[0]
+    for k in (emission & ~allowed).nonzero()[0]:
         partners = [row_of[b] for b in str(columns["blend"][k]).split(",") if b in row_of]
         inside = np.any((cols["window_min"][absorbing] <= cols["wave_obs"][k])
                         & (cols["wave_obs"][k] <= cols["window_max"][absorbing]))

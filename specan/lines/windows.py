@@ -64,7 +64,7 @@ def hydrogen_starts(data, ic, sign, fwhm):
     for m in range(out.size):
         reach = max(int(round(float(fwhm[m]) / float(dx[out[m]]))), 1)
         a, b = max(out[m] - reach, 0), min(out[m] + reach + 1, n)
-        out[m] = a + int(np.argmax(sign[m] * (1.0 - smooth[a:b])))
+        out[m] = a + int((sign[m] * (1.0 - smooth[a:b])).argmax())
     return out
 
 
@@ -192,11 +192,11 @@ def _walks(data, ic, sign, min_half, max_half, wide, step):
     once: one of them goes on past the look-ahead in most calls (benchmarks/bench_lines.py's 40
     spectra: 50 of 80 calls, 127 of 784 walks), and the two passes then cost more than one (0.51 ->
     0.34 ms a spectrum, CPU, the same windows; measured, load 4-5)."""
-    if np.all(wide):
+    if wide.all():
         return _walks_upto(data, ic, sign, min_half, max_half, wide, step, None)[:3]
     end, level, cut, going = _walks_upto(data, ic, sign, min_half, max_half, wide, step, WALK_AHEAD)
     if going.any():
-        k = np.flatnonzero(going)
+        k = going.nonzero()[0]
         end[k], level[k], cut[k], _ = _walks_upto(data, ic[k], sign[k], min_half[k], max_half[k], wide[k], step,
                                                   None)
     return end, level, cut
@@ -209,9 +209,9 @@ def _walks_upto(data, ic, sign, min_half, max_half, wide, step, ahead):
     nl = ic.size
     x0 = data.wave[ic]
     # steps a walk can take before the spectrum ends or max_half is passed
-    limit = np.where(step > 0, np.searchsorted(data.wave, x0 + max_half, side="right") - 1 - ic,
-                     ic - np.searchsorted(data.wave, x0 - max_half, side="left"))
-    jmax = int(max(np.max(limit) + 2, 2))
+    limit = np.where(step > 0, data.wave.searchsorted(x0 + max_half, side="right") - 1 - ic,
+                     ic - data.wave.searchsorted(x0 - max_half, side="left"))
+    jmax = int(max(limit.max() + 2, 2))
     if ahead is not None:
         jmax = min(jmax, ahead)
     j = np.arange(1, jmax + 1)
@@ -247,7 +247,7 @@ def _walks_upto(data, ic, sign, min_half, max_half, wide, step, ahead):
     plateau = ~(depth > 0.5 * d0[:, None]) & flat
     stops = valid & (at_continuum | neighbour | plateau)
     any_stop = stops.any(axis=1)
-    first = np.where(any_stop, np.argmax(stops, axis=1), -1)
+    first = np.where(any_stop, stops.argmax(axis=1), -1)
     rows = np.arange(nl)
     nvalid = valid.sum(axis=1)
     # no rule held: the walk ends at its last valid pixel (the limit), level 1, not cut
@@ -269,7 +269,7 @@ def _walks_upto(data, ic, sign, min_half, max_half, wide, step, ahead):
 
 def _on_smoothing(wide, on_wide, on_line):
     """``np.where(wide, on_wide(), on_line)``, the wide smoothing not asked for where no line walks on it."""
-    return np.where(wide, on_wide(), on_line) if np.any(wide) else on_line
+    return np.where(wide, on_wide(), on_line) if wide.any() else on_line
 
 
 def _depth_at(data, pixels, sign, wide):
@@ -283,8 +283,8 @@ def fixed_window(data, centre, fwhm):
     Nothing found here: the integral is an upper limit, and inside another line's wing
     that wing is the continuum.
     """
-    lo = int(np.searchsorted(data.wave, centre - fwhm))
-    hi = min(max(int(np.searchsorted(data.wave, centre + fwhm)), lo + 1), data.wave.size - 1)
+    lo = int(data.wave.searchsorted(centre - fwhm))
+    hi = min(max(int(data.wave.searchsorted(centre + fwhm)), lo + 1), data.wave.size - 1)
     lo = min(lo, hi - 1)
     return Window(lo, hi, (float(data.smooth[lo]), float(data.smooth[hi])), False)
 
@@ -292,8 +292,8 @@ def fixed_window(data, centre, fwhm):
 def fixed_windows(data, centre, fwhm):
     """:func:`fixed_window` of many lines (arrays of centres and widths): the same windows."""
     n = data.wave.size
-    lo = np.searchsorted(data.wave, centre - fwhm)
-    hi = np.minimum(np.maximum(np.searchsorted(data.wave, centre + fwhm), lo + 1), n - 1)
+    lo = data.wave.searchsorted(centre - fwhm)
+    hi = np.minimum(np.maximum(data.wave.searchsorted(centre + fwhm), lo + 1), n - 1)
     lo = np.minimum(lo, hi - 1)
     left, right = data.smooth[lo], data.smooth[hi]
     # (as Python numbers read once: the same values)
@@ -396,8 +396,8 @@ def profile_window(data, centre, reach, max_half=MAX_WING):
     so the local continuum is the normalised continuum itself, 1.
     """
     half = min(reach, max_half)
-    lo = min(max(int(np.searchsorted(data.wave, centre - half)), 0), data.wave.size - 2)
-    hi = min(max(int(np.searchsorted(data.wave, centre + half)), lo + 1), data.wave.size - 1)
+    lo = min(max(int(data.wave.searchsorted(centre - half)), 0), data.wave.size - 2)
+    hi = min(max(int(data.wave.searchsorted(centre + half)), lo + 1), data.wave.size - 1)
     return Window(lo, hi, (1.0, 1.0), False)
 
 
