@@ -162,3 +162,15 @@ def test_voigt_and_derivatives_into_the_batch_layout_as_written():
     untouched = np.ones(3 * n, bool)
     untouched[at] = False
     assert np.all(out[:, untouched] == 7.0)
+
+
+def test_median_as_numpys():
+    # data.median: np.median's value (the middle one, or the middle two summed and halved) to the bit,
+    # for odd and even counts, ties and one value
+    from specan.lines.data import median
+
+    rng = np.random.default_rng(11)
+    for n in list(range(1, 40)) + [3999, 4000]:
+        for values in (rng.normal(size=n), rng.uniform(1e-5, 1e-2, n), np.round(rng.normal(size=n), 1)):
+            assert median(values) == float(np.median(values))
+            assert np.float64(median(values)).tobytes() == np.median(values).tobytes()

@@ -21,7 +21,7 @@ from ..resolution import (DEFAULT_PIXELS_PER_FWHM, GAUSS_FWHM, dersnr_sigma, gri
                           normalised_arrays)
 
 __all__ = ["DETECT_SIGMA", "MIN_DEPTH", "LineData", "Features", "find_features", "normalised",
-           "estimate_resolving_power", "pixel_edges"]
+           "estimate_resolving_power", "pixel_edges", "median"]
 
 # Matched-filter significance above which a feature counts as detected (common practice: 3-5 sigma).
 DETECT_SIGMA = 4.0
@@ -370,6 +370,19 @@ class LineData:
 # ----------------------------------------------------------------------------- features
 
 
+
+def median(values):
+    """``float(np.median(values))`` of a 1-D array without NaN (at least one value), without its
+    overhead (~20 us a call, measured): the middle value, or the sum of the middle two halved, as
+    np.median takes them (the same value)."""
+    n = values.size
+    # (partitioned about the places np.median partitions about, the last one included, which it
+    # adds for NaN: the same elements there, signed zeros too)
+    h = n // 2
+    part = np.partition(values, [h, -1] if n % 2 else [h - 1, h, -1])
+    # (np.median's mean sums from +0.0: a -0.0 comes out +0.0, as there)
+    return float((0.0 + part[h]) if n % 2 else ((0.0 + part[h - 1]) + part[h]) / 2.0)
+
 class Features(NamedTuple):
     """Features found in a spectrum, sorted by position."""
 
@@ -391,7 +404,7 @@ def find_features(data, detect_sigma, min_depth=MIN_DEPTH):
     of a per cent are significant but are not lines.
     """
     parts = []
-    noise = float(np.median(data.sigma[data.good]))
+    noise = median(data.sigma[data.good])
     for sign in (1.0, -1.0):
         s = sign * np.where(data.good, data.signif, 0.0)
         cand = _candidates(data, s, sign, detect_sigma, noise)
