@@ -30,6 +30,7 @@ __all__ = [
     "normalised_arrays",
     "narrowest_line_width",
     "grid_medians",
+    "parabola_normal_equations",
     "dersnr_sigma",
     "caruana_fwhms",
     "estimate_resolving_power",
@@ -235,6 +236,20 @@ def _caruana_fwhm(wave, flux, p):
     return GAUSS_FWHM * np.sqrt(-0.5 / a2) / wave[p]
 
 
+#: the power k = a + b of the parabola's normal matrix entry (a, b), a and b the powers 2, 1, 0
+_MOMENT_OF = np.array([[4, 3, 2], [3, 2, 1], [2, 1, 0]])
+
+
+def parabola_normal_equations(t, wgt, y):
+    """Normal equations ``(m, rhs)`` of weighted least-squares parabolas y = c2 t^2 + c1 t + c0, one per row
+    of ``t``, ``wgt``, ``y`` (coefficients in the order c2, c1, c0): ``m[a, b] = sum(w t^(a+b))``,
+    ``rhs[a] = sum(w t^a y)``. The five distinct sums of w t^k are each made once (an entry's value is
+    its k's, the same as made entry by entry)."""
+    wt = [wgt * t ** k for k in range(5)]
+    sums = np.stack([w_k.sum(axis=1) for w_k in wt], axis=-1)
+    return sums[:, _MOMENT_OF], np.stack([(wt[a] * y).sum(axis=1) for a in (2, 1, 0)], axis=-1)
+
+
 def caruana_fwhms(wave, flux, peaks, step=None):
     """:func:`_caruana_fwhm` of every pixel of ``peaks`` at once (NaN where it gives None).
 
@@ -274,9 +289,7 @@ def caruana_fwhms(wave, flux, peaks, step=None):
     step = np.median(np.diff(wave)) if step is None else step
     t = np.where(core, (wave[idc] - wave[peaks][:, None]) / step, 0.0)
     wgt = core.astype(float)
-    m = np.stack([np.stack([(wgt * t ** (a + b)).sum(axis=1) for b in (2, 1, 0)], axis=-1)
-                  for a in (2, 1, 0)], axis=-2)
-    rhs = np.stack([(wgt * t ** a * logd).sum(axis=1) for a in (2, 1, 0)], axis=-1)
+    m, rhs = parabola_normal_equations(t, wgt, logd)
     m[~ok] = np.eye(3)
     rhs[~ok] = 0.0
     a2 = np.linalg.solve(m, rhs[..., None])[:, 0, 0] / step**2

@@ -174,3 +174,20 @@ def test_median_as_numpys():
         for values in (rng.normal(size=n), rng.uniform(1e-5, 1e-2, n), np.round(rng.normal(size=n), 1)):
             assert median(values) == float(np.median(values))
             assert np.float64(median(values)).tobytes() == np.median(values).tobytes()
+
+
+def test_parabola_normal_equations_as_entry_by_entry():
+    # resolution.parabola_normal_equations (the narrowest-line search's Caruana parabolas): each
+    # distinct power's sum made once, the same bits as the normal matrix and right-hand side made
+    # entry by entry (their form before)
+    from specan.resolution import parabola_normal_equations
+
+    rng = np.random.default_rng(13)
+    t = rng.uniform(-5.0, 5.0, (200, 11))
+    wgt = (rng.uniform(size=(200, 11)) < 0.6).astype(float)
+    y = rng.normal(size=(200, 11))
+    m, rhs = parabola_normal_equations(t, wgt, y)
+    m0 = np.stack([np.stack([(wgt * t ** (a + b)).sum(axis=1) for b in (2, 1, 0)], axis=-1)
+                   for a in (2, 1, 0)], axis=-2)
+    rhs0 = np.stack([(wgt * t ** a * y).sum(axis=1) for a in (2, 1, 0)], axis=-1)
+    assert np.array_equal(m, m0) and np.array_equal(rhs, rhs0)
