@@ -351,8 +351,11 @@ def line_starts(data, features, targets, which, detect_sigma):
     s_c = data.signif[ic]
     sign = np.where(s_c < -detect_sigma, -1.0, 1.0)
     detected = matched & (sign * s_c >= detect_sigma)
-    return [LineStart(float(centre[m]), float(max_shift[m]), bool(matched[m]), int(ic[m]), float(sign[m]),
-                      bool(detected[m])) if usable[m] else None for m in range(which.size)]
+    # (the arrays as Python numbers read once: the same values as element by element)
+    return [LineStart(*values) if ok else None
+            for ok, *values in zip(usable.tolist(), np.asarray(centre, float).tolist(),
+                                   np.asarray(max_shift, float).tolist(), matched.tolist(), ic.tolist(),
+                                   sign.tolist(), detected.tolist())]
 
 
 def plan_line(data, features, targets, i, profile, detect_sigma, start=None, window=None):
