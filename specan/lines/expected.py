@@ -60,7 +60,8 @@ def expected_lines(species, star_type):
 
     All True when the type is None or not understood (nothing is ruled out without a type).
     """
-    species = [str(s) for s in species]
+    # (an array's own Python strings in one call: the same as str() of each element)
+    species = species.tolist() if isinstance(species, np.ndarray) and species.dtype.kind == "U" else [str(s) for s in species]
     code = star_code(star_type)
     if code is None:
         return np.ones(len(species), bool)

@@ -199,8 +199,10 @@ def blends(waves, ids, fwhm, inside=None):
     hi = ws.searchsorted(waves + fwhm, side="right")
     out = [""] * len(waves)
     # a line alone in its element (hi - lo == 1: itself) has no partners: only the others loop
-    for i in np.flatnonzero(hi - lo > 1):
-        others = [ids[order[j]] for j in range(lo[i], hi[i]) if order[j] != i]
+    # (the index arrays as Python numbers read once: the same lines)
+    order_l, lo_l, hi_l = order.tolist(), lo.tolist(), hi.tolist()
+    for i in np.flatnonzero(hi - lo > 1).tolist():
+        others = [ids[order_l[j]] for j in range(lo_l[i], hi_l[i]) if order_l[j] != i]
         out[i] = ",".join(others)
     if inside is not None:
         for i, extra in enumerate(inside):
