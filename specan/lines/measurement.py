@@ -460,28 +460,33 @@ def plan_lines(data, features, targets, which, profile, starts, windows):
     rows, cols = companion.nonzero()
     shifted = (pred[cols] + (centre[rows] - pred[idx[rows]])).tolist()
     cuts = np.concatenate([[0], np.cumsum(np.bincount(rows, minlength=len(found)))]).tolist()
+    # each kind's feature positions as Python numbers too (a line's features: a slice of the list)
+    kinds_l = {key: mine.tolist() for key, mine in kinds.items()}
     for m, i in enumerate(found):
         fw, hydrogen = fws[m], hyd_l[m]
         window = wins[m]
-        st = starts[i]
-        result = LineResult(wave_obs=st.centre, ew_int=ew_int_l[m], ew_int_err=ew_int_err_l[m],
+        centre, max_shift, _, ic_m, sign_m, detected = starts[i]
+        result = LineResult(wave_obs=centre, ew_int=ew_int_l[m], ew_int_err=ew_int_err_l[m],
                             significance=signif_l[m], depth=depth_l[m],
-                            window_min=x0_l[m], window_max=x1_l[m], emission=st.sign < 0)
+                            window_min=x0_l[m], window_max=x1_l[m], emission=sign_m < 0)
         if kinds:
-            key = 1.0 if st.sign > 0 else -1.0
-            in_win = kinds[key][lo_feature[key][m]:hi_feature[key][m]]
+            key = 1.0 if sign_m > 0 else -1.0
+            a, b = lo_feature[key][m], hi_feature[key][m]
+            in_win = kinds_l[key][a:b]
         else:
-            in_win = np.zeros(0)
-        centres = _centres(shifted[cuts[m]:cuts[m + 1]], in_win, hydrogen, st.centre, fw)
-        skip = wing_mask(data, targets, i, st.centre, window, in_win, centres) if hydrogen else None
-        plans[i] = LinePlan(result, fw, hydrogen, st.ic, st.sign, st.detected, st.max_shift, window,
-                            cont[m, :length_l[m]], centres, skip, voigt_l[m], wants_fit=st.detected)
+            key, in_win = None, []
+        centres = _centres(shifted[cuts[m]:cuts[m + 1]], in_win, hydrogen, centre, fw)
+        # (the hydrogen lines' wing mask takes the features as an array, as before)
+        skip = wing_mask(data, targets, i, centre, window, kinds[key][a:b] if key is not None else np.zeros(0),
+                         centres) if hydrogen else None
+        plans[i] = LinePlan(result, fw, hydrogen, ic_m, sign_m, detected, max_shift, window,
+                            cont[m, :length_l[m]], centres, skip, voigt_l[m], wants_fit=detected)
     return plans
 
 
 def _centres(listed, in_win, hydrogen, centre, fw):
     """:func:`~specan.lines.components.component_centres` from the line's shifted listed companions (a list)."""
-    candidates = listed if hydrogen else listed + in_win.tolist()
+    candidates = listed if hydrogen else listed + list(in_win)
     if not candidates:
         return np.array([centre])
     centres = [centre]
