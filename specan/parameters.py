@@ -32,7 +32,7 @@ import astropy.units as u
 import numpy as np
 from scipy.optimize import leastsq
 
-from .contents import content_key, kept
+from .contents import content_key, forgettable, kept
 from .errors import AnalysisError
 from .obsinfo import get_info
 from .resolution import on_rest_grid
@@ -267,6 +267,7 @@ def _weighted_fit(x, flux, w, clip):
     return coef, s2
 
 
+@forgettable
 @functools.lru_cache(maxsize=1)
 def default_model():
     """The packaged :class:`ParameterModel` (cached)."""

@@ -57,8 +57,9 @@ import sys
 import time
 from pathlib import Path
 
+from .contents import forget_setups
 from .errors import SpecanError
-from .night import executors
+from .night import executors, heap
 from .night.catalogue import (CATALOGUE_FORMATS, CORE_COLUMNS, assemble_catalogue, catalogue_meta,  # noqa: F401
                               status_counts, write_catalogue)
 from .night.files import atomic_path, flush_to_disk  # noqa: F401 - atomic_path: part of this module's API
@@ -535,6 +536,10 @@ def run(paths, out_dir, jobs=1, dask=None, force=False, formats=("ecsv",), overr
             analysed, interrupted = _analyse_rest(todo, settings, settings_hash, store,
                                                   functools.partial(executors.results, pool=pool), jobs, dask, bar)
         del todo
+    # The writing needs no templates or calibrations: they and the analysis's freed memory go back
+    # first, so the writing fits under the analysis's peak however many rows it writes.
+    forget_setups()
+    heap.give_back()
     night = _write_night(inputs, store, settings_hash, out, formats, stages, settings, report, interrupted)
     flush_to_disk()
     summary = RunSummary(outputs=night["outputs"], counts=night["counts"], reused=reused, stages=stages,

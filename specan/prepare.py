@@ -12,6 +12,7 @@ import warnings
 import astropy.units as u
 import numpy as np
 
+from .contents import forgettable
 from .errors import AnalysisError
 from .linelist import in_bands, masked_telluric_bands
 from .obsinfo import META_KEY, get_info, replace_parts, spectrum_arrays, vacuum_to_air
@@ -463,6 +464,7 @@ def _stored_pairs(starts, indices, r):
     return a[keep], b[keep], offset[keep]
 
 
+@forgettable
 @functools.lru_cache(maxsize=16)
 def _consecutive_pairs(rows):
     """(a, b, column offset) of the stored-entry pairs of ``rows`` anchors of four consecutive columns each.

@@ -54,6 +54,7 @@ import numpy as np
 from scipy.interpolate import make_interp_spline
 
 from . import synth
+from .contents import forgettable
 from .doppler import C_KMS, doppler_factor
 from .obsinfo import vacuum_to_air
 from .resolution import FWHM_TO_SIGMA, smooth_to_fwhm
@@ -88,6 +89,7 @@ class LibraryTemplate(NamedTuple):
     zero_point_kms: float = 0.0
 
 
+@forgettable
 @functools.lru_cache(maxsize=1)
 def _library():
     """(air wavelengths A, fluxes (k, n), FWHM A, tuple of LibraryTemplate) of the packaged file."""

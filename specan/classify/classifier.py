@@ -6,6 +6,7 @@ import functools
 import json
 from importlib import resources
 
+from ..contents import forgettable
 from ..errors import AnalysisError
 from .calibration import Calibration
 
@@ -14,6 +15,7 @@ __all__ = ["DEFAULT_FILE", "default_calibration", "classify"]
 DEFAULT_FILE = "calibration_default.json"
 
 
+@forgettable
 @functools.lru_cache(maxsize=1)
 def default_calibration():
     """The calibration shipped with specan (fitted on the JHC 1984 and MILES libraries at 13 A FWHM)."""

@@ -32,7 +32,7 @@ from typing import NamedTuple
 
 import numpy as np
 
-from ..contents import content_key, kept
+from ..contents import content_key, forgettable, kept
 from ..errors import AnalysisError
 from ..obsinfo import get_info
 from ..resolution import on_rest_grid
@@ -179,7 +179,7 @@ def _basis():
 
 #: Every library star's normal matrix and pixel count summed over all the comparison pixels, for the
 #: last reference set seen (set-up work: the same for every star compared).
-_ALL_PIXELS = {}
+_ALL_PIXELS = forgettable({})
 
 
 def _pixel_terms(good, reference):

@@ -14,7 +14,7 @@ import numpy as np
 from scipy.ndimage import correlate1d
 from scipy.signal import find_peaks, peak_prominences
 
-from ..contents import content_key, kept
+from ..contents import content_key, forgettable, kept
 from ..obsinfo import get_info
 from .. import resolution
 from ..resolution import (DEFAULT_PIXELS_PER_FWHM, GAUSS_FWHM, dersnr_sigma, grid_medians, narrowest_line_width,
@@ -246,8 +246,9 @@ def wide_smooth(flux, weight, s):
 #: :func:`_width_setup` keep: a night mixes a few set-ups, not hundreds.
 SETUPS_KEPT = 8
 _GRIDS = {}
-_WIDTHS = {}
+_WIDTHS = forgettable({})
 #: the grids' median pixel step and wavelength (:func:`specan.resolution.grid_medians`), kept per grid
+#: (two numbers a grid: nothing to forget)
 _MEDIANS = {}
 
 

@@ -27,6 +27,7 @@ import signal
 
 from ..errors import SpecanError
 from ..threads import single_threaded
+from .heap import GiveBackEvery
 
 __all__ = ["results", "results_local", "local_workers", "results_dask", "sigterm_as_interrupt", "chunk_size", "run_chunk",
            "THREAD_VARIABLES", "single_threaded", "start_method", "START_METHOD_VARIABLE"]
@@ -57,10 +58,17 @@ def _chunks(todo, size):
         yield todo[i:i + size]
 
 
+#: This process's count of spectra analysed, handing freed memory back every so many (see
+#: :mod:`specan.night.heap`): a worker's memory stays flat over a night of any length.
+_ANALYSED = GiveBackEvery()
+
+
 def run_chunk(func, paths, settings):
     """``[(path, func(path, settings)) ...]`` for one chunk, single-threaded: what a worker runs."""
     with single_threaded():
-        return [(path, func(path, settings)) for path in paths]
+        done = [(path, func(path, settings)) for path in paths]
+    _ANALYSED.add(len(paths))
+    return done
 
 
 def results(func, todo, settings, jobs=1, dask=None, pool=None):
@@ -274,7 +282,9 @@ def results_local(func, todo, settings, jobs, pool=None):
     if jobs <= 1:  # also when there is nothing (left) to do: no workers to start
         with single_threaded():
             for path in todo:
-                yield path, func(path, settings)
+                result = func(path, settings)
+                _ANALYSED.add()
+                yield path, result
         return
     own = pool is None
     if own:

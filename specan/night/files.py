@@ -41,10 +41,12 @@ def _file_mode():
 _FILE_MODE = _file_mode()
 
 
-def atomic_write_bytes(path: Path, data: bytes):
-    """Write ``data`` to ``path`` atomically (temporary file beside it, then renamed over ``path``)."""
-    path.parent.mkdir(parents=True, exist_ok=True)
-    fd, tmp = tempfile.mkstemp(prefix=f".{path.name}.", suffix=".tmp", dir=path.parent)
+def atomic_write_bytes(path, data: bytes):
+    """Write ``data`` to ``path`` (str or path-like) atomically (temporary file beside it, then renamed over ``path``)."""
+    # os.path, not pathlib: called once a record, and 3.11's pathlib interns each name it parses
+    folder, name = os.path.split(os.fspath(path))
+    os.makedirs(folder, exist_ok=True)
+    fd, tmp = tempfile.mkstemp(prefix=f".{name}.", suffix=".tmp", dir=folder)
     try:
         os.fchmod(fd, _FILE_MODE)
         with os.fdopen(fd, "wb") as fh:

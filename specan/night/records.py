@@ -74,12 +74,15 @@ class RecordStore:
         # resolved once: a record's path is asked for several times per input (stored? current?
         # load, put), and resolving the folder each time was most of a night's end-of-run reading
         self._records = inside(self.out, Path("records"))
+        self._records_str = os.fspath(self._records)
 
-    def _record_path(self, pid) -> Path:
-        # a path id is hexadecimal (see specan.night.inputs.path_id): a name inside the folder
+    def _record_path(self, pid) -> str:
+        # a path id is hexadecimal (see specan.night.inputs.path_id): a name inside the folder.
+        # A plain string, not a Path: Python 3.11's pathlib interns every name it parses, and its
+        # intern table, grown to a night's record names, never shrinks (1.9 MB kept after 100,000).
         if not pid.isalnum():
             raise ValueError(f"record id {pid!r} is not a path id")
-        return self._records / f"{pid}.json"
+        return os.path.join(self._records_str, f"{pid}.json")
 
     def put(self, path, key, result) -> dict:
         """Write one input's plots, then its record (so a record always has its plots).
@@ -119,12 +122,13 @@ class RecordStore:
 
     def exists(self, path) -> bool:
         """Whether a record of this input is stored (current or not)."""
-        return self._record_path(path_id(path)).is_file()
+        return os.path.isfile(self._record_path(path_id(path)))
 
     def load(self, path):
         """The stored record of an input as it is (None when there is none or it cannot be read)."""
         try:
-            return json.loads(self._record_path(path_id(path)).read_bytes())
+            with open(self._record_path(path_id(path)), "rb") as fh:
+                return json.loads(fh.read())
         except (OSError, ValueError):
             return None
 

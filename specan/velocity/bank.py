@@ -20,6 +20,7 @@ from typing import NamedTuple
 import numpy as np
 from scipy import fft as sfft
 
+from ..contents import forgettable
 from .grid import turns
 from .prepared import full_cover, prepare_builtin
 
@@ -93,6 +94,7 @@ class TemplateBank:
         return self._covers[key]
 
 
+@forgettable
 @functools.lru_cache(maxsize=16)
 def _bank(candidates, ln0, step, n, hp_sigma, m, cell=0.0):
     from .grid import TemplateGrid
@@ -377,7 +379,7 @@ def _stacked(arrays, nf=None):
     return out
 
 
-_STACKED = {}
+_STACKED = forgettable({})
 
 
 def _stacked_bands(templates, m, full):

@@ -23,7 +23,7 @@ import numpy as np
 from scipy import fft as sfft
 from scipy.interpolate import make_interp_spline
 
-from ..contents import content_key, kept
+from ..contents import content_key, forgettable, kept
 from ..doppler import factor_kms
 from ..doppler import velocity_kms as _kms
 from ..errors import AnalysisError
@@ -359,7 +359,7 @@ class SplineOperators(NamedTuple):
     adjoint: object
 
 
-_SPLINES = {}
+_SPLINES = forgettable({})
 
 #: Points per grid cell at least, and per native pixel in a cell at least, of the midpoint rule that
 #: averages the interpolant over a cell (:func:`spline_operators` with ``cell``): the cubic pieces

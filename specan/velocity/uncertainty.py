@@ -17,6 +17,7 @@ from typing import NamedTuple
 import numpy as np
 from scipy import fft as sfft
 
+from ..contents import forgettable
 from .correlation import Correlation
 from .prepared import full_cover
 from .grid import fast_length, gauss_kernel_single, gauss_smooth, highpass, kms_per_pixel, smoothed_coverage, spline_operators, turns
@@ -366,7 +367,7 @@ def _offset_phases(offsets, m, nf):
     return np.exp(2j * np.pi * np.outer(np.asarray(offsets, float), np.arange(nf)) / m)
 
 
-_STACKED_SINGLE = {}
+_STACKED_SINGLE = forgettable({})
 
 
 def _stacked_single(templates, m):

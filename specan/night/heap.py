@@ -1,0 +1,81 @@
+"""Handing freed memory back to the system during a long night run.
+
+A night's analysis allocates and frees many mid-sized blocks (numpy temporaries, tables,
+decoded records). The C library's allocator keeps freed blocks for reuse instead of returning
+them, so a process's resident memory creeps up with the number of spectra and stays at the
+high-water mark while the catalogue, diagram and report are written. Measured on this
+project's benchmark night (1,000 spectra, one job, ``--plots none``): 295 MB resident at the
+end of the analysis, 251 MB after ``malloc_trim(0)``; without it the end's writing at 100,000
+rows lifted the peak from 303 to 333 MB.
+
+``malloc_trim`` is glibc's (Linux); elsewhere :func:`give_back` does nothing (other
+allocators return memory on their own schedules). No Python library offers it: the call is
+made through :mod:`ctypes`. It changes no result, only when memory goes back.
+"""
+
+from __future__ import annotations
+
+import ctypes
+import ctypes.util
+import functools
+import gc
+import threading
+
+__all__ = ["give_back", "GiveBackEvery", "GIVE_BACK_EVERY"]
+
+#: Spectra analysed between two hand-backs in one process. One ``malloc_trim`` of a ~300 MB
+#: heap costs about a millisecond (measured), against ~45 ms a spectrum: every 200 costs nothing
+#: measurable and keeps the creep to a few MB.
+GIVE_BACK_EVERY = 200
+
+
+@functools.lru_cache(maxsize=1)
+def _trim():
+    """glibc's ``malloc_trim``, or None where there is no glibc."""
+    name = ctypes.util.find_library("c")
+    if not name:
+        return None
+    try:
+        trim = ctypes.CDLL(name).malloc_trim
+    except (OSError, AttributeError):   # not glibc (musl, macOS, Windows)
+        return None
+    trim.argtypes, trim.restype = [ctypes.c_size_t], ctypes.c_int
+    return trim
+
+
+def give_back() -> bool:
+    """Collect unreachable cycles, then return the allocator's free memory to the system.
+
+    Returns False where the memory cannot be handed back (no glibc): the collection is done anyway.
+    """
+    # Cycles (tables, units and spectra refer to one another) wait for the oldest generation's
+    # rare collection; until they are collected their memory is not free to hand back.
+    gc.collect()
+    trim = _trim()
+    if trim is None:
+        return False
+    trim(0)
+    return True
+
+
+class GiveBackEvery:
+    """Counts analysed spectra and calls :func:`give_back` every ``every`` of them (thread-safe).
+
+    Parameters
+    ----------
+    every : int
+        Spectra between two hand-backs.
+    """
+
+    def __init__(self, every=GIVE_BACK_EVERY):
+        self.every = int(every)
+        self._count = 0
+        self._lock = threading.Lock()
+
+    def add(self, n=1):
+        """Count ``n`` spectra done; hand memory back when another ``every`` have been."""
+        with self._lock:
+            before, self._count = self._count, self._count + n
+            due = before // self.every != self._count // self.every
+        if due:
+            give_back()

@@ -1,0 +1,102 @@
+"""Memory handed back during a night run: the allocator's free pages, and the per-set-up caches.
+
+What is checked against something outside the project: the operating system's own count of the
+process's resident memory (``VmRSS`` in ``/proc/self/status``, Linux proc(5)); the rest checks that
+dropping the caches changes no result.
+"""
+
+import functools
+import math
+import sys
+from pathlib import Path
+
+import numpy as np
+import pytest
+
+import specan.pipeline as pipeline
+from specan import contents
+from specan.night import heap
+from specan.parameters import default_model
+from specan.velocity import bank
+
+ROOT = Path(__file__).resolve().parents[1]
+SAMPLE = ROOT / "sample_spectra" / "trf3_01.fits"
+
+
+def _resident_mb():
+    # proc(5): VmRSS, the resident set size, in kB
+    with open("/proc/self/status") as fh:
+        for line in fh:
+            if line.startswith("VmRSS:"):
+                return int(line.split()[1]) / 1024
+    raise AssertionError("no VmRSS line in /proc/self/status")
+
+
+@pytest.mark.skipif(not sys.platform.startswith("linux") or heap._trim() is None,
+                    reason="malloc_trim is glibc's (Linux): elsewhere give_back only collects")
+def test_give_back_returns_freed_pages_to_the_system():
+    # 200 MB in 2,000-byte blocks (above pymalloc's 512 bytes: the C library's malloc), one in
+    # ten kept, so the freed memory sits between live blocks and the heap's top cannot shrink.
+    blocks = [bytes(2000) for _ in range(100_000)]
+    kept = blocks[::10]
+    del blocks
+    before = _resident_mb()
+    assert heap.give_back() is True
+    after = _resident_mb()
+    assert len(kept) == 10_000
+    # 180 MB are free; the pages wholly inside the free runs (~4 of each ~18 KB run) go back
+    assert before - after > 60, f"{before:.0f} MB resident before, {after:.0f} after"
+
+
+def test_give_back_every_counts_across_calls(monkeypatch):
+    calls = []
+    monkeypatch.setattr(heap, "give_back", lambda: calls.append(1) or True)
+    counter = heap.GiveBackEvery(every=5)
+    for n in (1, 1, 1, 1):        # 4: not yet
+        counter.add(n)
+    assert calls == []
+    counter.add(3)                # 7: the fifth passed
+    assert len(calls) == 1
+    counter.add(2)                # 9
+    assert len(calls) == 1
+    counter.add(12)               # 21: past 10, 15 and 20, one hand-back is enough
+    assert len(calls) == 2
+
+
+def test_forgettable_registers_dicts_and_lru_caches():
+    store = contents.forgettable({})
+
+    @contents.forgettable
+    @functools.lru_cache(maxsize=4)
+    def square(x):
+        return x * x
+
+    store["a"] = np.ones(3)
+    square(3)
+    assert square.cache_info().currsize == 1
+    contents.forget_setups()
+    assert store == {}
+    assert square.cache_info().currsize == 0
+    assert square(4) == 16    # made again when next needed
+
+
+def test_forgetting_the_setups_changes_no_result():
+    first = pipeline.analyse_file(str(SAMPLE))
+    assert bank._bank.cache_info().currsize > 0      # the velocity templates' bank was kept
+    assert default_model.cache_info().currsize == 1
+    contents.forget_setups()
+    assert bank._bank.cache_info().currsize == 0
+    assert default_model.cache_info().currsize == 0
+    again = pipeline.analyse_file(str(SAMPLE))
+    a, b = first["values"], again["values"]
+    assert a.keys() == b.keys()
+    differing = [k for k in a if a[k] != b[k] and not (isinstance(a[k], float) and math.isnan(a[k])
+                                                       and isinstance(b[k], float) and math.isnan(b[k]))]
+    assert differing == []
+
+
+def test_night_run_drops_the_setups_before_writing(tmp_path):
+    pipeline.run([str(SAMPLE)], tmp_path / "out", plots="none", progress=False)
+    assert bank._bank.cache_info().currsize == 0
+    assert default_model.cache_info().currsize == 0
+    assert (tmp_path / "out" / "catalogue.ecsv").is_file()
