@@ -593,7 +593,6 @@ def voigt_batch(data, problems, max_iter=MAX_ITER, decrement=DECREMENT, cost_tol
     return out
 
 
-
 def _voigt_summaries(p, var_ew, centre0, chi2_sum, dof):
     """:func:`~specan.lines.profiles.fit_summary` (Voigt) of many fits at once, as a list of dicts.
 
@@ -610,6 +609,7 @@ def _voigt_summaries(p, var_ew, centre0, chi2_sum, dof):
     columns = (ew, np.sqrt(np.maximum(var_ew, 0.0)), centre0 + p[:, 0], fwhm, peak, chi2_sum / dof, sigma, gamma)
     keys = ("ew", "ew_err", "centre", "fwhm", "depth", "chi2", "sigma", "gamma")
     return [dict(zip(keys, values)) for values in zip(*(c.tolist() for c in columns))]
+
 
 def _voigt_setup(data, problems):
     """The batch's padded arrays, starts and bounds of the problems a fit can be made of, or None.
@@ -679,7 +679,6 @@ def _voigt_setup(data, problems):
     return live.tolist(), x, y, cont, wts, ngood, ncomp, centres, p, lb, ub, real
 
 
-
 def _voigt_setup_each(data, problems):
     """:func:`_voigt_setup` problem by problem (:func:`~specan.lines.profiles.start_and_bounds` of each):
     the same arrays, for batches of a few problems."""
@@ -709,6 +708,7 @@ def _voigt_setup_each(data, problems):
         p[row, :n], lb[row, :n], ub[row, :n] = starts[row]
         real[row, :n] = True
     return live, x, y, cont, wts, ngood, ncomp, centres, p, lb, ub, real
+
 
 def interp_rows(xv, xp, fp, length):
     """``np.interp(xv[m], xp[m, :length[m]], fp[m, :length[m]])`` for every row m, with np.interp's rules

@@ -371,7 +371,6 @@ class LineData:
 # ----------------------------------------------------------------------------- features
 
 
-
 def median(values):
     """``float(np.median(values))`` of a 1-D array without NaN (at least one value), without its
     overhead (~20 us a call, measured): the middle value, or the sum of the middle two halved, as
