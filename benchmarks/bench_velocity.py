@@ -312,13 +312,13 @@ def against(model, n, other, rounds=4):
                 importlib.import_module(pkg.__name__ + module)
         velocities = np.random.default_rng(5).uniform(-300, 300, n)
 
-        def spectrum(pkg, v, seed):
-            flux = model(SPEED_R)(np.log(SPEED_PIX) - np.log(pkg.velocity.doppler_factor(v * KMS)))
+        def spectrum(pkg, v, seed, pix=SPEED_PIX):
+            flux = model(SPEED_R)(np.log(pix) - np.log(pkg.velocity.doppler_factor(v * KMS)))
             sig = np.sqrt(np.clip(flux, 1e-3, None)) / 50.0
             flux = flux + np.random.default_rng(seed).normal(size=flux.size) * sig
             info = pkg.obsinfo.ObsInfo(object="Kurucz Sun", medium="vacuum", medium_assumed=False,
                                        resolving_power=SPEED_R, normalized=True)
-            return Spectrum(flux=flux * u.dimensionless_unscaled, spectral_axis=SPEED_PIX * u.AA,
+            return Spectrum(flux=flux * u.dimensionless_unscaled, spectral_axis=pix * u.AA,
                             uncertainty=StdDevUncertainty(sig), meta={pkg.obsinfo.META_KEY: info})
 
         spectra = {name: [spectrum(pkg, v, 200 + i) for i, v in enumerate(velocities)] for name, pkg in packages.items()}
@@ -329,6 +329,17 @@ def against(model, n, other, rounds=4):
         cpu = _alternated(packages, spectra, len(velocities), rounds, barycentric=False)
         print(f"\n== side by side in one process: {n} speed-test spectra x {rounds}, each by both in turn "
               f"(load average {os.getloadavg()[0]:.2f}) ==")
+        _print_alternated(names, cpu)
+        # a night whose exposures each carry their own wavelength solution (pixels 0-0.6 A apart): every
+        # spectrum a new pixel set-up (more spectra than the set-up stores keep, so none is found again)
+        starts = 4000.0 + np.random.default_rng(6).uniform(0.0, 0.6, max(n, 24))
+        own = {name: [spectrum(pkg, v, 300 + i, x + (SPEED_PIX - SPEED_PIX[0]))
+                      for i, (v, x) in enumerate(zip(np.resize(velocities, starts.size), starts))]
+               for name, pkg in packages.items()}
+        load = os.getloadavg()[0]
+        cpu = _alternated(packages, own, starts.size, 2, barycentric=False)
+        print(f"\n== each on its own wavelength solution: {starts.size} speed-test spectra x 2, each by both in "
+              f"turn (load average {load:.2f}) ==")
         _print_alternated(names, cpu)
         night_side_by_side(packages, n, rounds)
         choice_changes(packages, [{name: spectra[name][i] for name in names} for i in range(n)], n)

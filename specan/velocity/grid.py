@@ -21,7 +21,6 @@ from typing import NamedTuple
 import astropy.units as u
 import numpy as np
 from scipy import fft as sfft
-from scipy.interpolate import make_interp_spline
 
 from ..contents import content_key, forgettable, kept
 from ..doppler import factor_kms
@@ -31,7 +30,7 @@ from ..obsinfo import ObsInfo, get_info, wavelength_in
 
 _KMS = u.km / u.s   # made once (composing a unit costs ~10 us)
 
-__all__ = ["SPLINE_K", "COVER_TAPER", "FULL_COVER_MARGIN", "ObservedGrid", "TemplateGrid", "LagWindow", "normalised",
+__all__ = ["SPLINE_K", "not_a_knot", "COVER_TAPER", "FULL_COVER_MARGIN", "ObservedGrid", "TemplateGrid", "LagWindow", "normalised",
            "observe_on_grid", "lattice_step", "lag_window", "kms_per_pixel", "sigma_array", "hot_pixels",
            "noise_from_flux", "flux_pixel_noise", "fast_length", "turns", "distance_to_invalid",
            "dersnr_sigma", "gauss_smooth", "gauss_kernel", "smoothed_coverage", "highpass", "cover_taper", "cell_mean", "SplineOperators", "spline_operators",
@@ -361,6 +360,26 @@ class SplineOperators(NamedTuple):
 
 _SPLINES = forgettable({})
 
+
+def not_a_knot(x):
+    """The knots of the cubic interpolating spline through samples at ``x`` with not-a-knot ends: what
+    ``make_interp_spline(x, y, k=3).t`` holds, to the bit (``tests/test_velocity_setup.py``), without
+    solving for a spline to read them off (the knots do not depend on ``y``; de Boor's not-a-knot
+    condition drops the second and last-but-one samples as knots, common practice)."""
+    return np.r_[(x[0],) * (SPLINE_K + 1), x[2:-2], (x[-1],) * (SPLINE_K + 1)]
+
+
+def _design_matrix(points, t):
+    """``BSpline.design_matrix(points, t, 3)`` for points inside the knots' span (every caller's are:
+    the samples themselves, or grid points clipped to them). Asked with ``extrapolate=True``, which for
+    such points gives the same matrix to the bit (``tests/test_velocity_setup.py``) but skips scipy's
+    range check, a Python ``min`` and ``max`` over the points (1.3 ms each for a 20,000-point cell
+    grid, measured): once per new pixel set-up, which a night of exposures on their own wavelength
+    solutions pays for every spectrum."""
+    from scipy.interpolate import BSpline
+
+    return BSpline.design_matrix(points, t, SPLINE_K, extrapolate=True)
+
 #: Points per grid cell at least, and per native pixel in a cell at least, of the midpoint rule that
 #: averages the interpolant over a cell (:func:`spline_operators` with ``cell``): the cubic pieces
 #: are about a native pixel long; four points a piece put the rule within ~1e-3 of the exact mean of
@@ -388,21 +407,20 @@ def spline_operators(x, grid, cell=0.0):
     if found is None:
         # (imported here, on a miss only: three imports cost more than the look-up itself)
         from scipy import sparse
-        from scipy.interpolate import BSpline
         from scipy.sparse.linalg import splu
 
-        t = make_interp_spline(x, np.zeros_like(x), k=SPLINE_K).t
+        t = not_a_knot(x)
         if cell > 0:
             dx = np.diff(x)
             q = max(CELL_POINTS, int(math.ceil(CELL_POINTS * cell / float(np.min(dx[dx > 0])))))
             nodes = (grid[:, None] + cell * ((np.arange(q) + 0.5) / q - 0.5)).ravel()
-            b_fine = BSpline.design_matrix(np.clip(nodes, x[0], x[-1]), t, SPLINE_K).tocsr()
+            b_fine = _design_matrix(np.clip(nodes, x[0], x[-1]), t).tocsr()
             mean = sparse.csr_matrix((np.full(nodes.size, 1.0 / q), np.arange(nodes.size),
                                       np.arange(0, nodes.size + 1, q)), shape=(grid.size, nodes.size))
             b_grid = (mean @ b_fine).tocsr()
         else:
-            b_grid = BSpline.design_matrix(np.clip(grid, x[0], x[-1]), t, SPLINE_K).tocsr()
-        lu = splu(BSpline.design_matrix(x, t, SPLINE_K).T.tocsc())
+            b_grid = _design_matrix(np.clip(grid, x[0], x[-1]), t).tocsr()
+        lu = splu(_design_matrix(x, t).T.tocsc())
         bt = b_grid.T.tocsr()
         found = SplineOperators(lambda y: np.asarray(b_grid @ lu.solve(np.asarray(y, float), trans="T")),
                                 lambda u: lu.solve(np.asarray(bt @ u)))
@@ -420,6 +438,16 @@ NOISE_PROBES = 16
 _NOISE_VARIANCE = {}
 
 
+@functools.lru_cache(maxsize=4)
+def _noise_probes(size):
+    """The seeded probes of :func:`resampled_noise_variance` for ``size`` samples (read-only), kept: the
+    same numbers for every set-up of that many pixels, which a night of exposures on their own
+    wavelength solutions makes anew for each spectrum (1 ms of drawing for 4,000 pixels, measured)."""
+    probes = np.random.default_rng(20261204).standard_normal((size, NOISE_PROBES))
+    probes.flags.writeable = False
+    return probes
+
+
 def resampled_noise_variance(x, grid, cell=0.0):
     """Variance, at each grid point, of unit white noise on the samples ``x`` carried onto ``grid`` by
     :func:`spline_operators` (``cell`` as there): what the resampling leaves of a pixel's noise (a cell
@@ -429,8 +457,7 @@ def resampled_noise_variance(x, grid, cell=0.0):
     key = (content_key(x), float(grid[0]), float(grid[-1]), grid.size, float(cell))
     found = _NOISE_VARIANCE.get(key)
     if found is None:
-        probes = np.random.default_rng(20261204).standard_normal((x.size, NOISE_PROBES))
-        found = np.mean(np.asarray(spline_operators(x, grid, cell).forward(probes)) ** 2, axis=1)
+        found = np.mean(np.asarray(spline_operators(x, grid, cell).forward(_noise_probes(x.size))) ** 2, axis=1)
         found.flags.writeable = False
         while len(_NOISE_VARIANCE) > 8:   # oldest out first; the array is returned, not looked up again
             _NOISE_VARIANCE.pop(next(iter(_NOISE_VARIANCE)), None)
