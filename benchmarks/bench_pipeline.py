@@ -8,7 +8,10 @@ repository) and classifies them against the synthetic standards of the same
 model (``sample_spectra/tordo_calibration.json``, as the demo night is), so
 that about a tenth of them are flagged (the low-S/N ones, and the odd
 ``peculiar``; against the built-in calibration from real stars four fifths of
-these synthetic spectra come out ``peculiar`` or ``composite``), and:
+these synthetic spectra come out ``peculiar`` or ``composite``). They share one
+wavelength solution, the best case for the per-set-up stores; ``--own-solutions``
+gives each its own (CRVAL1 up to 0.6 A apart), as for exposures each calibrated
+with its own arc, where every spectrum builds its pixel set-up anew. Then:
 
 * ``--profile K``: runs :func:`specan.pipeline.analyse_file` in this process on
   K of them and prints ms per spectrum for each stage (read, prepare,
@@ -82,8 +85,15 @@ ROOT = Path(__file__).resolve().parents[1]
 CALIBRATION = ROOT / "sample_spectra" / "tordo_calibration.json"
 
 
-def make_spectra(folder: Path, count: int) -> list:
-    """Write ``count`` FITS spectra into ``folder`` (reusing files already there)."""
+#: How far apart the exposures' wavelength solutions start with ``--own-solutions`` (Angstrom; our choice:
+#: up to two thirds of a pixel, as the arcs of one night move a spectrograph's solution)
+OWN_SOLUTION_SPREAD = 0.6
+
+
+def make_spectra(folder: Path, count: int, own_solutions: bool = False) -> list:
+    """Write ``count`` FITS spectra into ``folder`` (reusing files already there); ``own_solutions``: each
+    file's wavelength solution starts up to :data:`OWN_SOLUTION_SPREAD` from the others' (CRVAL1), as
+    for exposures each calibrated with its own arc, so that no two share their pixels."""
     import astropy.units as u
     from astropy.io import fits
 
@@ -117,6 +127,8 @@ def make_spectra(folder: Path, count: int) -> list:
         h = template.copy()
         h["OBJECT"] = f"BENCH-{i:06d}"
         h["RA"], h["DEC"] = float(i % 360), 30.0
+        if own_solutions:
+            h["CRVAL1"] = START + float(np.random.default_rng([7, i]).uniform(0.0, OWN_SOLUTION_SPREAD))
         fits.PrimaryHDU(flux, header=h).writeto(path)
     return paths
 
@@ -465,9 +477,11 @@ def throughput(args, work):
     counts = [int(c) for c in args.counts.split(",")]
     jobs_list = [int(j) for j in args.jobs.split(",")]
     plot_list = [p.strip() for p in args.plots.split(",")]
+    own = "_own" if args.own_solutions else ""
     t0 = time.perf_counter()
-    make_spectra(work / "spectra_all", max(counts))
-    print(f"# {max(counts)} spectra of {PIXELS} px ready in {time.perf_counter() - t0:.1f} s in {work}")
+    make_spectra(work / f"spectra_all{own}", max(counts), args.own_solutions)
+    print(f"# {max(counts)} spectra of {PIXELS} px ready in {time.perf_counter() - t0:.1f} s in {work}"
+          + (" (each on its own wavelength solution)" if own else ""))
     print(f"# python {sys.version.split()[0]}, {os.cpu_count()} CPUs, stages: {args.stages or 'all'}, "
           f"load average before: {os.getloadavg()[0]:.1f}")
     # CPU ms per spectrum (the command and its workers, start-up included) does not depend on what
@@ -476,17 +490,17 @@ def throughput(args, work):
           f"{'drawn':>6} {'rerun s':>8} {'failed':>7}")
     rates = {}
     for count in counts:
-        folder = work / f"spectra_{count}"
+        folder = work / f"spectra_{count}{own}"
         if not folder.exists():
             folder.mkdir()
             for i in range(count):
                 name = f"bench_{i:06d}.fits"
-                os.link(work / "spectra_all" / name, folder / name)
+                os.link(work / f"spectra_all{own}" / name, folder / name)
         for plots in plot_list:
             for jobs in jobs_list:
                 extra = (["--plots", plots, "--calibration", str(CALIBRATION)]
                          + (["--stages", args.stages] if args.stages else []))
-                out = work / f"out_{count}_{jobs}_{plots}"
+                out = work / f"out_{count}_{jobs}_{plots}{own}"
                 shutil.rmtree(out, ignore_errors=True)  # the first run must compute everything
                 seconds, peak, failed, cpu = run_once(folder, out, jobs, extra)
                 again = run_once(folder, out, jobs, extra)[0] if args.rerun else float("nan")
@@ -557,6 +571,8 @@ def main(argv=None):
     parser.add_argument("--overhead", type=int, default=0, metavar="N",
                         help="the run's own cost outside the stages on N spectra")
     parser.add_argument("--workdir", type=Path, default=None, help="where to write spectra and outputs")
+    parser.add_argument("--own-solutions", action="store_true",
+                        help="each spectrum on its own wavelength solution (throughput runs)")
     args = parser.parse_args(argv)
     work = args.workdir or Path(tempfile.mkdtemp(prefix="specan-bench-"))
     work.mkdir(parents=True, exist_ok=True)
