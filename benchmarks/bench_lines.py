@@ -19,7 +19,9 @@ being run has those switches, side by side, and with ``--profile`` the functions
 cProfile, with ``--work`` the counts of the fitting work (Voigt batch iterations, fits made one
 by one: figures the machine's load does not move), and with ``--steps`` the CPU time of each step
 of ``measure`` (the arrays and filters, the listed lines, the features, the hydrogen lines, their
-division, the other lines, the table).
+division, the other lines, the table); with ``--against DIR --fits`` the batched fits alone, this
+checkout's and DIR's, made again by turns on the calls ``measure`` made, and whether they agree
+to the bit (:func:`fits_alternated`).
 Run the same script against another checkout for a before/after figure::
 
     OPENBLAS_NUM_THREADS=1 python benchmarks/bench_lines.py --profile --steps
@@ -272,6 +274,75 @@ def alternated(cases, other, rounds, block=5):
     return 1e3 * here / n, 1e3 * there / n
 
 
+def fit_batches(cases):
+    """Every call of the batched fits (``batchfit.voigt_batch``, the wing fits' rounds included, and
+    ``batchfit.gauss_batch``) that ``measure`` makes on ``cases``, recorded as ``{kind: [(data, problems,
+    args, kwargs)]}`` so they can be made again alone (:func:`fits_alternated`)."""
+    from specan.lines import batchfit, measurement
+
+    calls = {"voigt": [], "gauss": []}
+    real = batchfit.voigt_batch, batchfit.gauss_batch, measurement.voigt_batch
+
+    def recorded(kind, func):
+        def call(data, problems, *args, **kwargs):
+            calls[kind].append((data, problems, args, kwargs))
+            return func(data, problems, *args, **kwargs)
+        return call
+
+    batchfit.voigt_batch = measurement.voigt_batch = recorded("voigt", real[0])
+    batchfit.gauss_batch = recorded("gauss", real[1])
+    try:
+        for spec, known in cases:
+            noise_kept(specan, spec, known)
+            lines.measure(spec, **known)
+    finally:
+        batchfit.voigt_batch, batchfit.gauss_batch, measurement.voigt_batch = real
+    return calls
+
+
+def _same_fit(a, b):
+    """Whether two fits (dicts of numbers, or None) are the same to the bit."""
+    if a is None or b is None:
+        return a is None and b is None
+    return a.keys() == b.keys() and all(np.float64(a[k]).tobytes() == np.float64(b[k]).tobytes() for k in a)
+
+
+def fits_alternated(cases, other, rounds, block=10):
+    """The batched fits of ``cases`` (:func:`fit_batches`) made again by this checkout's
+    ``specan.lines.batchfit`` and by ``other``'s (:func:`other_checkout`), by turns on blocks of
+    ``block`` calls in one process: ``{kind: (here CPU ms per spectrum, there, the same fits to the bit)}``.
+
+    The fits are a third or more of the lines stage's time and their inputs are the same for both
+    (the arrays this checkout's ``measure`` made), so a change inside them is timed, and checked to
+    the bit, without the rest of the stage around it. Its own spread: the same batchfit code on
+    both sides read 0.977-1.021x (pipeline set, load 1.7-1.8, 2026-12-04); the whole stage's
+    alternation read 0.93-0.96x for the same pair of checkouts (whichever one is "here" reads slow).
+    """
+    import importlib
+
+    from specan.lines import batchfit
+
+    theirs = importlib.import_module(other.__name__ + ".lines.batchfit")
+    calls = fit_batches(cases)
+    out = {}
+    for kind, here, there in (("voigt", batchfit.voigt_batch, theirs.voigt_batch),
+                              ("gauss", batchfit.gauss_batch, theirs.gauss_batch)):
+        same = all(all(_same_fit(a, b) for a, b in zip(here(d, p, *a_, **k), there(d, p, *a_, **k)))
+                   for d, p, a_, k in calls[kind])
+        spent = [0.0, 0.0]
+        for r in range(rounds):
+            for start in range(0, len(calls[kind]), block):
+                for w in ((0, 1) if (r + start // block) % 2 == 0 else (1, 0)):
+                    func = (here, there)[w]
+                    c = time.process_time()
+                    for d, p, a_, k in calls[kind][start:start + block]:
+                        func(d, p, *a_, **k)
+                    spent[w] += time.process_time() - c
+        n = rounds * len(cases)
+        out[kind] = (1e3 * spent[0] / n, 1e3 * spent[1] / n, same)
+    return out
+
+
 def main(argv=None):
     parser = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     parser.add_argument("--count", type=int, default=40, help="pipeline spectra (at most 40 distinct)")
@@ -286,6 +357,9 @@ def main(argv=None):
                              "velocity stage's; before 2026-12-04 this script timed it cold)")
     parser.add_argument("--against", type=Path, default=None, metavar="CHECKOUT",
                         help="also time another checkout's measure, by turns with this one in one process")
+    parser.add_argument("--fits", action="store_true",
+                        help="with --against: also time the batched fits alone (this checkout's batchfit and the "
+                             "other's on the same recorded calls, by turns) and check they give the same fits")
     args = parser.parse_args(argv)
     global WARM_NOISE
     WARM_NOISE = not args.cold
@@ -320,6 +394,11 @@ def main(argv=None):
                 here, there = alternated(cases, other, args.repeats)
                 print(f"  alternated in one process (load average {os.getloadavg()[0]:.1f}): CPU {here:.1f} ms per "
                       f"spectrum here, {there:.1f} in {args.against} ({there / here:.2f}x)")
+                if args.fits:
+                    for kind, (mine, theirs, same) in fits_alternated(cases, other, max(args.repeats, 5)).items():
+                        print(f"  {kind} fits alone, alternated (load average {os.getloadavg()[0]:.1f}): CPU {mine:.2f} ms "
+                              f"per spectrum here, {theirs:.2f} there ({theirs / mine:.3f}x); the same fits to the "
+                              f"bit: {same}")
         if args.work:
             fitting_work(cases)
         if args.steps:
