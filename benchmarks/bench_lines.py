@@ -396,9 +396,9 @@ def main(argv=None):
                       f"spectrum here, {there:.1f} in {args.against} ({there / here:.2f}x)")
                 if args.fits:
                     for kind, (mine, theirs, same) in fits_alternated(cases, other, max(args.repeats, 5)).items():
-                        print(f"  {kind} fits alone, alternated (load average {os.getloadavg()[0]:.1f}): CPU {mine:.2f} ms "
-                              f"per spectrum here, {theirs:.2f} there ({theirs / mine:.3f}x); the same fits to the "
-                              f"bit: {same}")
+                        print(f"  {kind} fits alone, alternated (load average {os.getloadavg()[0]:.1f}): CPU "
+                              f"{mine:.2f} ms per spectrum here, {theirs:.2f} there ({theirs / mine:.3f}x); the "
+                              f"same fits to the bit: {same}")
         if args.work:
             fitting_work(cases)
         if args.steps:
