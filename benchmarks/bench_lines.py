@@ -307,6 +307,11 @@ def _same_fit(a, b):
     return a.keys() == b.keys() and all(np.float64(a[k]).tobytes() == np.float64(b[k]).tobytes() for k in a)
 
 
+def _same_fits(mine, theirs):
+    """Whether two batches' fits (lists of :func:`_same_fit`'s) are as many and each the same to the bit."""
+    return len(mine) == len(theirs) and all(_same_fit(a, b) for a, b in zip(mine, theirs))
+
+
 def fits_alternated(cases, other, rounds, block=10):
     """The batched fits of ``cases`` (:func:`fit_batches`) made again by this checkout's
     ``specan.lines.batchfit`` and by ``other``'s (:func:`other_checkout`), by turns on blocks of
@@ -327,8 +332,7 @@ def fits_alternated(cases, other, rounds, block=10):
     out = {}
     for kind, here, there in (("voigt", batchfit.voigt_batch, theirs.voigt_batch),
                               ("gauss", batchfit.gauss_batch, theirs.gauss_batch)):
-        same = all(all(_same_fit(a, b) for a, b in zip(here(d, p, *a_, **k), there(d, p, *a_, **k)))
-                   for d, p, a_, k in calls[kind])
+        same = all(_same_fits(here(d, p, *a_, **k), there(d, p, *a_, **k)) for d, p, a_, k in calls[kind])
         spent = [0.0, 0.0]
         for r in range(rounds):
             for start in range(0, len(calls[kind]), block):

@@ -465,7 +465,7 @@ def plan_lines(data, features, targets, which, profile, starts, windows):
     for m, i in enumerate(found):
         fw, hydrogen = fws[m], hyd_l[m]
         window = wins[m]
-        centre, max_shift, _, ic_m, sign_m, detected = starts[i]
+        centre, max_shift, _, ic_m, sign_m, detected = starts[i]   # (LineStart's fields, in their order)
         result = LineResult(wave_obs=centre, ew_int=ew_int_l[m], ew_int_err=ew_int_err_l[m],
                             significance=signif_l[m], depth=depth_l[m],
                             window_min=x0_l[m], window_max=x1_l[m], emission=sign_m < 0)
@@ -485,8 +485,9 @@ def plan_lines(data, features, targets, which, profile, starts, windows):
 
 
 def _centres(listed, in_win, hydrogen, centre, fw):
-    """:func:`~specan.lines.components.component_centres` from the line's shifted listed companions (a list)."""
-    candidates = listed if hydrogen else listed + list(in_win)
+    """:func:`~specan.lines.components.component_centres` from the line's shifted listed companions and its
+    window's features (both lists)."""
+    candidates = listed if hydrogen else listed + in_win
     if not candidates:
         return np.array([centre])
     centres = [centre]
