@@ -6,6 +6,7 @@ dropping the caches changes no result.
 """
 
 import functools
+import gc
 import math
 import sys
 from pathlib import Path
@@ -61,6 +62,49 @@ def test_give_back_every_counts_across_calls(monkeypatch):
     assert len(calls) == 1
     counter.add(12)               # 21: past 10, 15 and 20, one hand-back is enough
     assert len(calls) == 2
+
+
+class _Node:
+    def __init__(self):
+        self.me = self    # a reference cycle: only the cyclic collector frees it
+
+
+def _cycles_freed():
+    # gc.collect returns the number of unreachable objects it found (Python's gc module)
+    return gc.collect()
+
+
+def test_long_lived_set_aside_freezes_then_gives_back_and_frees_what_dies():
+    assert gc.get_freeze_count() == 0
+    garbage = _Node()
+    del garbage                           # unreachable before the block: collected, not set aside
+    with heap.long_lived_set_aside():
+        frozen = gc.get_freeze_count()
+        assert frozen > 1000              # the imported modules' objects (Python's gc.freeze count)
+        kept = _Node()                    # alive at the start of no block: the collector's as ever
+        del kept
+        assert _cycles_freed() >= 1
+        with heap.long_lived_set_aside():         # an inner block changes nothing
+            assert gc.get_freeze_count() == frozen
+        assert gc.get_freeze_count() == frozen
+    assert gc.get_freeze_count() == 0     # all back in the collector's care
+
+
+def test_collector_paused_restores_the_collector_as_it_was():
+    assert gc.isenabled()
+    with heap.collector_paused():
+        assert not gc.isenabled()
+    assert gc.isenabled()
+    gc.disable()
+    try:
+        with heap.collector_paused():
+            assert not gc.isenabled()
+        assert not gc.isenabled()         # it was off before: left off
+    finally:
+        gc.enable()
+    with pytest.raises(RuntimeError), heap.collector_paused():
+        raise RuntimeError("a failure inside")
+    assert gc.isenabled()
 
 
 def test_forgettable_registers_dicts_and_lru_caches():

@@ -9,6 +9,7 @@ scripts/make_demo_night.py.
 
 from __future__ import annotations
 
+import gc
 import json
 import multiprocessing
 import re
@@ -393,10 +394,14 @@ def _comparable(cat):
 def test_jobs_and_dask_give_the_same_catalogue(tmp_path, fixed_code):
     night = small_night(tmp_path / "night", count=2)
     one = pipeline.run([night], tmp_path / "one", jobs=1, plots=False).catalogue
+    # the run set the imported modules' objects aside from the collector (specan.night.heap) and gave
+    # them back: the caller's process is left as it was (Python's gc module)
+    assert gc.get_freeze_count() == 0 and gc.isenabled()
     # local workers forked (Linux's choice here) and spawned (elsewhere, or where threads run)
     with pytest.MonkeyPatch.context() as mp:
         mp.setenv(executors.START_METHOD_VARIABLE, "fork")
         two = pipeline.run([night], tmp_path / "two", jobs=2, plots=False).catalogue
+        assert gc.get_freeze_count() == 0 and gc.isenabled()
         mp.setenv(executors.START_METHOD_VARIABLE, "spawn")
         spawned = pipeline.run([night], tmp_path / "spawned", jobs=2, plots=False).catalogue
 

@@ -27,6 +27,7 @@ import signal
 
 from ..errors import SpecanError
 from ..threads import single_threaded
+from . import heap
 from .heap import GiveBackEvery
 
 __all__ = ["results", "results_local", "local_workers", "results_dask", "sigterm_as_interrupt", "chunk_size", "run_chunk",
@@ -109,11 +110,15 @@ def _worker_init(preload=()):
     # the modules the work needs, imported now, while the parent is still finding out what to do
     import importlib
 
-    for name in preload:
-        try:
-            importlib.import_module(name)
-        except Exception:  # noqa: BLE001, S110 - a stage that cannot be imported is reported by the parent
-            pass
+    with heap.collector_paused():
+        for name in preload:
+            try:
+                importlib.import_module(name)
+            except Exception:  # noqa: BLE001, S110 - a stage that cannot be imported is reported by the parent
+                pass
+        # what the modules hold lives as long as the worker: kept out of every full collection's visits
+        # (a forked worker's were set aside by the parent before the fork, which this then leaves alone)
+        heap.set_aside_now()
 
 
 def _task(args):
@@ -227,23 +232,37 @@ def _start_pool(jobs, preload=()):
 
     _refuse_start_in_worker()
     method = start_method()
+    aside = contextlib.ExitStack()
     if method == "fork":
-        # imported here once, inherited by every worker (a spawned worker imports them in _worker_init)
-        for name in preload:
-            with contextlib.suppress(Exception):  # a stage that cannot be imported is reported by the parent
-                importlib.import_module(name)
+        # imported here once, inherited by every worker (a spawned worker imports them in _worker_init);
+        # their objects then set aside from the collector's passes before the fork (see
+        # heap.long_lived_set_aside): every worker inherits them set aside, and its collections then
+        # neither visit them nor copy the pages they share with this process; given back in _stop_pool
+        with heap.collector_paused():
+            for name in preload:
+                with contextlib.suppress(Exception):  # a stage that cannot be imported is reported by the parent
+                    importlib.import_module(name)
+            aside.enter_context(heap.long_lived_set_aside())
     ctx = multiprocessing.get_context(method)
     # (a name no file has yet: a worker that creates it raises the alarm)
     alarm = os.path.join(tempfile.gettempdir(), f"specan-alarm-{os.getpid()}-{os.urandom(6).hex()}")
-    with _worker_environment(alarm):
-        pool = ctx.Pool(processes=jobs, initializer=_worker_init, initargs=(tuple(preload),))
+    try:
+        with _worker_environment(alarm):
+            pool = ctx.Pool(processes=jobs, initializer=_worker_init, initargs=(tuple(preload),))
+    except BaseException:
+        aside.close()
+        raise
     pool.specan_alarm = alarm
+    pool.specan_aside = aside
     return pool
 
 
 def _stop_pool(pool):
     pool.terminate()
     pool.join()
+    aside = getattr(pool, "specan_aside", None)
+    if aside is not None:
+        aside.close()
     alarm = getattr(pool, "specan_alarm", None)
     if alarm:
         with contextlib.suppress(OSError):
@@ -280,9 +299,16 @@ def results_local(func, todo, settings, jobs, pool=None):
     """
     jobs = min(jobs, len(todo))
     if jobs <= 1:  # also when there is nothing (left) to do: no workers to start
-        with single_threaded():
-            for path in todo:
-                result = func(path, settings)
+        with single_threaded(), contextlib.ExitStack() as aside:
+            for i, path in enumerate(todo):
+                if i == 0:
+                    # the first input imports the stages' modules and makes the set-up's templates and
+                    # calibration, kept from then on out of the collector's passes (heap.long_lived_set_aside)
+                    with heap.collector_paused():
+                        result = func(path, settings)
+                        aside.enter_context(heap.long_lived_set_aside())
+                else:
+                    result = func(path, settings)
                 _ANALYSED.add()
                 yield path, result
         return
