@@ -93,6 +93,31 @@ def pipeline_spectra(count, workdir):
 WARM_NOISE = True
 
 
+def demo_spectra():
+    """(prepared spectrum, options) of the demo night's readable spectra (``sample_spectra/``), as
+    ``specan run`` hands them to the lines stage: the velocity stage's shift (and R where the file
+    states none) and the classification's type (``--demo``: the set whose tables ``--against``
+    compares too)."""
+    from specan import classify, prepare, read, velocity
+    from specan.errors import SpecanError
+    from specan.pipeline import _known_from_velocity, _star_type
+
+    out = []
+    for path in sorted((Path(__file__).resolve().parents[1] / "sample_spectra").glob("trf3_*")):
+        try:
+            spec = prepare(read(str(path)))
+            vel = velocity.measure(spec)
+        except SpecanError:
+            continue   # (the demo night's broken inputs)
+        known = _known_from_velocity(vel)
+        try:
+            kind = classify(spec, **known)   # (as the night run calls it, with its default calibration)
+        except SpecanError:
+            kind = None
+        out.append((spec, {**known, "star_type": _star_type(kind, vel)}))
+    return out
+
+
 def noise_kept(package, spec, known):
     """The noise estimate of ``spec``'s normalised flux made (untimed) and kept, as the night run's
     velocity stage leaves it for the lines stage (``specan.noise.kept_flux_noise`` keeps the last
@@ -274,6 +299,66 @@ def alternated(cases, other, rounds, block=5):
     return 1e3 * here / n, 1e3 * there / n
 
 
+def _same_value(a, b):
+    """Whether two table values (numbers, arrays, Quantities, str, None) are the same to the bit."""
+    if hasattr(a, "unit") or hasattr(b, "unit"):
+        return getattr(a, "unit", None) == getattr(b, "unit", None) and _same_value(np.asarray(a), np.asarray(b))
+    if isinstance(a, (np.ndarray, float, np.floating)) or isinstance(b, (np.ndarray, float, np.floating)):
+        a, b = np.asarray(a), np.asarray(b)
+        return a.dtype == b.dtype and a.shape == b.shape and a.tobytes() == b.tobytes()
+    return type(a) is type(b) and a == b
+
+
+def same_table(a, b):
+    """Whether two tables of ``measure`` are the same to the bit: column names and order, each
+    column's class, dtype, unit, description, format, meta and values (bytes: NaNs and signed zeros
+    too), and the table's meta."""
+    if a.colnames != b.colnames or list(a.meta) != list(b.meta):
+        return False
+    if not all(_same_value(a.meta[key], b.meta[key]) for key in a.meta):
+        return False
+    for name in a.colnames:
+        ca, cb = a[name], b[name]
+        if type(ca) is not type(cb) or not _same_value(ca, cb):
+            return False
+        if any(getattr(ca.info, attr) != getattr(cb.info, attr) for attr in ("name", "description", "format", "meta")):
+            return False
+    return True
+
+
+def same_tables(cases, other):
+    """How many of ``cases`` give this checkout's ``measure`` and ``other``'s (:func:`other_checkout`) the
+    same table to the bit (:func:`same_table`), in the quick and in the exact design: ``(quick, exact)``."""
+    import importlib
+
+    other_lines = importlib.import_module(other.__name__ + ".lines")
+    counts = [0, 0]
+    for spec, known in _twins(cases, other):
+        for k, exact in enumerate((False, True)):
+            mine = lines.measure(spec[0], **known, exact_fits=exact)
+            theirs = other_lines.measure(spec[1], **known, exact_fits=exact)
+            counts[k] += same_table(mine, theirs)
+    return tuple(counts)
+
+
+def _twins(cases, other):
+    """``((spectrum, its twin for other), options)`` of each case: the twin carries the other
+    package's own metadata class (it checks for its own class)."""
+    import copy
+    import importlib
+
+    other_info = importlib.import_module(other.__name__ + ".obsinfo").ObsInfo
+    out = []
+    for spec, known in cases:
+        twin = copy.copy(spec)
+        twin.meta = dict(spec.meta)
+        info = other_info()
+        info.__dict__.update(vars(spec.meta["specan"]))
+        twin.meta["specan"] = info
+        out.append(((spec, twin), known))
+    return out
+
+
 def fit_batches(cases):
     """Every call of the batched fits (``batchfit.voigt_batch``, the wing fits' rounds included, and
     ``batchfit.gauss_batch``) that ``measure`` makes on ``cases``, recorded as ``{kind: [(data, problems,
@@ -361,6 +446,8 @@ def main(argv=None):
                              "velocity stage's; before 2026-12-04 this script timed it cold)")
     parser.add_argument("--against", type=Path, default=None, metavar="CHECKOUT",
                         help="also time another checkout's measure, by turns with this one in one process")
+    parser.add_argument("--demo", action="store_true",
+                        help="also the demo night's spectra (sample_spectra/, with the type the night run gives them)")
     parser.add_argument("--fits", action="store_true",
                         help="with --against: also time the batched fits alone (this checkout's batchfit and the "
                              "other's on the same recorded calls, by turns) and check they give the same fits")
@@ -374,6 +461,8 @@ def main(argv=None):
           f"OPENBLAS_NUM_THREADS={os.environ.get('OPENBLAS_NUM_THREADS', 'unset')}; "
           f"noise estimate {'kept, as in a night run' if WARM_NOISE else 'made in each call (--cold)'}")
     sets = {"pipeline": pipeline_spectra(args.count, work), "dense": [(dense_spectrum(), {})]}
+    if args.demo:
+        sets["demo"] = demo_spectra()
     for name, cases in sets.items():
         lines.measure(cases[0][0], **cases[0][1])   # imports, caches
         fast, fast_cpu = timed(cases, args.repeats)
@@ -395,6 +484,9 @@ def main(argv=None):
             if other is None:
                 print(f"  no specan package in {args.against}")
             else:
+                quick, exact = same_tables(cases, other)
+                print(f"  the same tables to the bit as {args.against}'s: {quick} of {len(cases)} (quick design), "
+                      f"{exact} of {len(cases)} (exact design)")
                 here, there = alternated(cases, other, args.repeats)
                 print(f"  alternated in one process (load average {os.getloadavg()[0]:.1f}): CPU {here:.1f} ms per "
                       f"spectrum here, {there:.1f} in {args.against} ({there / here:.2f}x)")
