@@ -522,30 +522,62 @@ def finish_line(data, features, targets, i, plan, fitter):
 
 def finish_lines(data, features, targets, plans, exact=True):
     """:func:`finish_line` of every plan (``{index: LinePlan}``), the wing fits batched (:func:`wing_fits`;
-    ``exact``: see :func:`specan.lines.batchfit.voigt_batch`)."""
-    unfitted = [plan for plan in plans.values() if plan.window is not None and plan.fit is None]
-    widths = dict(zip(map(id, unfitted), half_widths(data, [p.ic for p in unfitted], [p.window.lo for p in unfitted],
-                                                     [p.window.hi for p in unfitted], [p.sign for p in unfitted])))
-    for i, plan in plans.items():
-        if plan.window is not None:
-            _fitted(data, plan, widths.get(id(plan)))
-            if plan.hydrogen:
-                less_blends(data, features, targets, i, plan)
-    strong = [i for i, plan in plans.items() if plan.window is not None and _wants_wings(plan)]
+    ``exact``: see :func:`specan.lines.batchfit.voigt_batch`).
+
+    The lines are finished in plain loops over their results, :func:`_fitted`'s, :func:`chosen_ew`'s
+    and (without a wing fit) :func:`_finished`'s arithmetic written out (no call a line): the same
+    results (``tests/test_lines_lean.py``).
+    """
+    live = [(i, plan) for i, plan in plans.items() if plan.window is not None]
+    unfitted = [plan for _, plan in live if plan.fit is None]
+    widths = half_widths(data, [p.ic for p in unfitted], [p.window.lo for p in unfitted],
+                         [p.window.hi for p in unfitted], [p.sign for p in unfitted])
+    # _fitted without a fit: the half-depth width, and chosen_ew's integral (no fit, whatever the window)
+    for plan, width in zip(unfitted, widths):
+        result = plan.result
+        result.fwhm = width
+        result.method, result.ew, result.ew_err = "integration", result.ew_int, result.ew_int_err
+    for i, plan in live:
+        fit = plan.fit
+        if fit is not None:
+            # _fitted with a fit, and chosen_ew's choice, written out
+            result = plan.result
+            result.profile = profile = "voigt" if plan.voigt else "gauss"
+            result.fit = dict(fit, profile=profile, sign=plan.sign, ew_int=result.ew_int)
+            ew, ew_err = fit["ew"], fit["ew_err"]
+            result.ew_fit, result.ew_fit_err, result.fit_chi2 = ew, ew_err, fit["chi2"]
+            result.fwhm, result.wave_obs = fit["fwhm"], fit["centre"]
+            n_extra = len(plan.centres) - 1
+            if (plan.window.cut or n_extra) and not plan.hydrogen:
+                result.method = ("multi_" if n_extra else "") + profile + "_fit"
+                result.ew, result.ew_err = ew, ew_err
+            else:
+                result.method, result.ew, result.ew_err = "integration", result.ew_int, result.ew_int_err
+        if plan.hydrogen:   # (its own plan only, once its fitted quantities are in)
+            less_blends(data, features, targets, i, plan)
+    strong = [i for i, plan in live if _wants_wings(plan)]
     wings = wing_fits(data, features, targets, strong, [plans[i].result.wave_obs for i in strong],
                       [plans[i].fit for i in strong], [plans[i].fw for i in strong], exact=exact)
-    wing_of = dict(zip(strong, wings))
-    done = [i for i, plan in plans.items() if plan.window is not None]
-    final = [plans[i].window if wing_of.get(i) is None else wing_of[i][1] for i in done]
-    out = {i: plan.result if plan.window is None else _finished(data, plan, wing_of.get(i), cayrel=False)
-           for i, plan in plans.items()}
-    if done:
+    wing_of = {i: wing for i, wing in zip(strong, wings) if wing is not None}
+    final = []
+    for i, plan in live:
+        wing = wing_of.get(i)
+        if wing is None:
+            # _finished without a wing fit, its Cayrel error below
+            result = plan.result
+            result.detected = plan.detected and abs(result.ew) > 2.0 * result.ew_err
+            final.append(plan.window)
+        else:
+            _finished(data, plan, wing, cayrel=False)
+            final.append(wing[1])
+    out = {i: plan.result for i, plan in plans.items()}
+    if live:
         # the Cayrel errors of all lines at once (_finished's arithmetic, element by element)
-        fwhm = np.array([out[i].fwhm for i in done], float)
-        fwhm_c = np.where(np.isfinite(fwhm), fwhm, np.array([plans[i].fw for i in done], float))
-        pixel = data.dx[np.array([plans[i].ic for i in done], int)]
-        for i, err in zip(done, cayrel_error(fwhm_c, pixel, 1.0 / window_noises(data, final)).tolist()):
-            out[i].ew_err_cayrel = err
+        fwhm = np.array([plan.result.fwhm for _, plan in live], float)
+        fwhm_c = np.where(np.isfinite(fwhm), fwhm, np.array([plan.fw for _, plan in live], float))
+        pixel = data.dx[np.array([plan.ic for _, plan in live], int)]
+        for (_, plan), err in zip(live, cayrel_error(fwhm_c, pixel, 1.0 / window_noises(data, final)).tolist()):
+            plan.result.ew_err_cayrel = err
     return out
 
 
