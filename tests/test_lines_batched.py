@@ -300,8 +300,10 @@ def test_dersnr_from_arrays_equals_specutils():
 
 def test_vectorised_plans_equal_one_by_one():
     # plan_lines (continua, integrals, depths of all lines as array operations) against plan_line
+    from dataclasses import fields
+
     from specan.lines.data import DETECT_SIGMA
-    from specan.lines.measurement import plan_line
+    from specan.lines.measurement import LineResult, plan_line
 
     compared = 0
     for name, data, targets, features, which, starts, windows, many in demo_line_plans(6, "auto"):
@@ -324,6 +326,11 @@ def test_vectorised_plans_equal_one_by_one():
                 assert getattr(one.result, name) == getattr(two.result, name), name
             for name in ("ew_int", "ew_int_err", "depth"):
                 assert getattr(two.result, name) == pytest.approx(getattr(one.result, name), rel=1e-12, abs=1e-14)
+            # every other field as plan_line's keywords leave it (plan_lines gives them in order, positionally)
+            for f in fields(LineResult):
+                if f.name not in ("ew_int", "ew_int_err", "depth"):
+                    a, b = getattr(one.result, f.name), getattr(two.result, f.name)
+                    assert a == b or (a != a and b != b), f.name
             compared += 1
     assert compared > 500
 

@@ -40,6 +40,8 @@ __all__ = ["measure", "cayrel_error", "Targets", "LineResult", "line_targets", "
            "match_feature", "integrated_ew", "central_depth", "use_voigt", "fit_line", "chosen_ew",
            "window_noise", "half_width", "line_table", "wing_fit"]
 
+#: NaN, the value of a quantity not measured (:class:`LineResult`'s default)
+_NAN = np.nan
 #: Profiles :func:`measure` can fit.
 PROFILES = ("auto", "gauss", "voigt")
 #: The quick design's rounds of a strong line's wing fit (:func:`wing_fits`; the exact design
@@ -466,9 +468,12 @@ def plan_lines(data, features, targets, which, profile, starts, windows):
         fw, hydrogen = fws[m], hyd_l[m]
         window = wins[m]
         centre, max_shift, _, ic_m, sign_m, detected = starts[i]   # (LineStart's fields, in their order)
-        result = LineResult(wave_obs=centre, ew_int=ew_int_l[m], ew_int_err=ew_int_err_l[m],
-                            significance=signif_l[m], depth=depth_l[m],
-                            window_min=x0_l[m], window_max=x1_l[m], emission=sign_m < 0)
+        # (LineResult's fields given in their order, as LineResult(wave_obs=centre, ew_int=..., ew_int_err=...,
+        # significance=..., depth=..., window_min=..., window_max=..., emission=...) makes them with the other
+        # fields at their defaults: a third of that call's time, whose keywords the dataclass matches one by
+        # one; tests/test_lines_batched.py holds the order against plan_line)
+        result = LineResult(centre, _NAN, _NAN, _NAN, ew_int_l[m], ew_int_err_l[m], _NAN, _NAN, _NAN, depth_l[m],
+                            signif_l[m], x0_l[m], x1_l[m], _NAN, _NAN, _NAN, (), "none", "", False, sign_m < 0)
         if kinds:
             key = 1.0 if sign_m > 0 else -1.0
             a, b = lo_feature[key][m], hi_feature[key][m]
@@ -480,7 +485,7 @@ def plan_lines(data, features, targets, which, profile, starts, windows):
         skip = wing_mask(data, targets, i, centre, window, kinds[key][a:b] if key is not None else np.zeros(0),
                          centres) if hydrogen else None
         plans[i] = LinePlan(result, fw, hydrogen, ic_m, sign_m, detected, max_shift, window,
-                            cont[m, :length_l[m]], centres, skip, voigt_l[m], wants_fit=detected)
+                            cont[m, :length_l[m]], centres, skip, voigt_l[m], detected)
     return plans
 
 
