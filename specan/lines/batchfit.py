@@ -188,8 +188,9 @@ def _padded(data, problems, ks, skip_index=None):
     wts = np.where(inside, np.sqrt(data.weight[pix]), 0.0)
     cont = np.zeros(x.shape)
     # (a continuum given as one value per pixel is taken as it is; np.broadcast_to, ~10 us a call,
-    # only for the others: the same values)
-    cont[inside] = np.concatenate([c if np.shape(c) == (m,) else np.broadcast_to(c, (m,))
+    # only for the others: the same values. The shape read as the attribute: np.shape is a dispatched
+    # call a problem)
+    cont[inside] = np.concatenate([c if getattr(c, "shape", None) == (m,) else np.broadcast_to(c, (m,))
                                    for c, m in zip((problems[k][2] for k in ks), n.tolist())])
     if skip_index is not None:
         for row, k in enumerate(ks):
