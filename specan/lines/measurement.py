@@ -25,7 +25,7 @@ from astropy.table import QTable
 
 from ..resolution import GAUSS_FWHM
 from .components import MIN_SEPARATION, component_centres, window_features, wing_mask
-from .data import DETECT_SIGMA, MIN_DEPTH, LineData, find_features, median, normalised
+from .data import DETECT_SIGMA, MIN_DEPTH, LineData, find_features, normalised
 from .hydrogen import without_hydrogen
 from .expected import expected_lines, star_code
 from .hydrogen_blends import less_blends, series_shares
@@ -702,7 +702,7 @@ def wing_fits(data, features, targets, which, centres, fits, fwhm, max_iter=3, e
 def _typical_noise(data):
     """Median noise of the good pixels (1e-3 without any)."""
     # (the good pixels' noise is finite: np.nanmedian's value is np.median's)
-    return median(data.sigma[data.good]) if data.good.any() else 1e-3
+    return data.typical_noise() if data.good.any() else 1e-3
 
 
 def _wing_problem(data, features, targets, i, centre, fit, fwhm, noise, reach0):
