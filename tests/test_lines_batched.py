@@ -303,9 +303,10 @@ def test_vectorised_plans_equal_one_by_one():
     from dataclasses import fields
 
     from specan.lines.data import DETECT_SIGMA
+    from specan.lines.components import window_features
     from specan.lines.measurement import LineResult, plan_line
 
-    compared = 0
+    compared = hydrogen_features = 0
     for name, data, targets, features, which, starts, windows, many in demo_line_plans(6, "auto"):
         for i in which:
             one = plan_line(data, features, targets, i, "auto", DETECT_SIGMA, starts[i], windows.get(i))
@@ -321,6 +322,12 @@ def test_vectorised_plans_equal_one_by_one():
             assert (one.skip is None) == (two.skip is None)
             if one.skip is not None:
                 np.testing.assert_array_equal(one.skip, two.skip)
+            # the features a hydrogen line's blends are taken from, kept with its plan: window_features'
+            assert (two.in_win is not None) == two.hydrogen
+            if two.hydrogen:
+                found = window_features(data, features, two.window, two.sign)
+                assert two.in_win.dtype == found.dtype and two.in_win.tobytes() == found.tobytes()
+                hydrogen_features += found.size
             np.testing.assert_allclose(two.cont, one.cont, rtol=1e-14, atol=1e-15)
             for name in ("wave_obs", "significance", "window_min", "window_max", "emission", "method"):
                 assert getattr(one.result, name) == getattr(two.result, name), name
@@ -332,7 +339,7 @@ def test_vectorised_plans_equal_one_by_one():
                     a, b = getattr(one.result, f.name), getattr(two.result, f.name)
                     assert a == b or (a != a and b != b), f.name
             compared += 1
-    assert compared > 500
+    assert compared > 500 and hydrogen_features > 20
 
 
 def test_block_medians_equal_one_median_per_block():

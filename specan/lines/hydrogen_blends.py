@@ -246,7 +246,7 @@ def less_blends(data, features, targets, i, plan):
                             & _below_hydrogen(targets))
     at = targets.pred[listed]
     # the features found in the window, where no listed line stands for them
-    found = window_features(data, features, window, plan.sign)
+    found = plan.in_win if plan.in_win is not None else window_features(data, features, window, plan.sign)
     if found.size and at.size:
         found = found[np.abs(found[:, None] - at[None, :]).min(axis=1) > sep]
     positions = np.concatenate([found, at])

@@ -283,6 +283,9 @@ class LinePlan:
     wants_fit: bool = False
     #: the profile fit once made (None: none asked for, or it failed)
     fit: dict | None = None
+    #: the positions of the features of the line's kind inside its window (:func:`~specan.lines.components.
+    #: window_features`), where the plan kept them (the hydrogen lines': their blends are taken out later)
+    in_win: np.ndarray | None = None
 
 
 class LineStart(NamedTuple):
@@ -481,11 +484,13 @@ def plan_lines(data, features, targets, which, profile, starts, windows):
         else:
             key, in_win = None, []
         centres = _centres(shifted[cuts[m]:cuts[m + 1]], in_win, hydrogen, centre, fw)
-        # (the hydrogen lines' wing mask takes the features as an array, as before)
-        skip = wing_mask(data, targets, i, centre, window, kinds[key][a:b] if key is not None else np.zeros(0),
-                         centres) if hydrogen else None
+        # (the hydrogen lines' wing mask takes the features as an array, as before; kept for their blends)
+        found_h = skip = None
+        if hydrogen:
+            found_h = kinds[key][a:b] if key is not None else np.zeros(0)
+            skip = wing_mask(data, targets, i, centre, window, found_h, centres)
         plans[i] = LinePlan(result, fw, hydrogen, ic_m, sign_m, detected, max_shift, window,
-                            cont[m, :length_l[m]], centres, skip, voigt_l[m], detected)
+                            cont[m, :length_l[m]], centres, skip, voigt_l[m], detected, None, found_h)
     return plans
 
 
