@@ -16,6 +16,7 @@ vectorised, the fits batched (:mod:`specan.lines.batchfit`); the one-by-one path
 from __future__ import annotations
 
 from dataclasses import dataclass
+from functools import partial
 from operator import attrgetter
 from typing import NamedTuple
 
@@ -940,7 +941,8 @@ def line_table(data, listed, targets, results, star_type=None):
     # every result's float values read in one pass (one attrgetter per result, not one getattr per value)
     values = np.array([_FLOAT_VALUES(r) for r in results], float).reshape(len(results), len(_FLOAT_COLUMNS))
     cols = dict(zip(_FLOAT_COLUMNS, np.ascontiguousarray(values.T)))
-    aa, kms = u.AA, _KMS
+    # (units attached to the rows made above, no copy: ``values * unit`` copies them again, twice the time)
+    aa = partial(u.Quantity, unit=u.AA, copy=False)
     # the columns built once and the table made from them in one call, text columns as arrays:
     # column by column from lists, astropy's conversions were ~2 ms a spectrum (bench_lines.py)
     columns = {
@@ -949,17 +951,17 @@ def line_table(data, listed, targets, results, star_type=None):
         "species": kept.species.copy(),
         "wave_air": kept.wave_air.copy(),   # (the list's columns, their descriptions kept)
         "wave_vac": kept.wave_vac.copy(),
-        "wave_obs": cols["wave_obs"] * aa,
-        "velocity": velocities(cols["wave_obs"], listed.lab) * kms,
+        "wave_obs": aa(cols["wave_obs"]),
+        "velocity": u.Quantity(velocities(cols["wave_obs"], listed.lab), _KMS, copy=False),
     }
     for name in ("ew", "ew_err", "ew_err_cayrel", "ew_int", "ew_int_err", "ew_fit", "ew_fit_err", "fwhm",
                  "ew_err_blend"):
-        columns[name] = cols[name] * aa
+        columns[name] = aa(cols[name])
     columns["depth"] = cols["depth"]
     columns["significance"] = cols["significance"]
     columns["fit_chi2"] = cols["fit_chi2"]
-    columns["window_min"] = cols["window_min"] * aa
-    columns["window_max"] = cols["window_max"] * aa
+    columns["window_min"] = aa(cols["window_min"])
+    columns["window_max"] = aa(cols["window_max"])
     columns["method"] = np.array([str(r.method) for r in results], str)
     columns["profile"] = np.array([str(r.profile) for r in results], str)
     columns["blend"] = np.array([str(b) for b in blends(listed.pred, ids, targets.fwhm,
