@@ -38,6 +38,8 @@ its check against outside truth (injected lines, the solar strong lines, damped 
 
 from __future__ import annotations
 
+import math
+
 import numpy as np
 from scipy.special import voigt_profile
 
@@ -166,7 +168,7 @@ def gauss_batch(data, problems, exact=True):
     out = [None] * len(problems)
     groups = {}
     for k, (lo, hi, cont, centres, max_shift, sig_line, sign) in enumerate(problems):
-        nsh = int(np.floor(max_shift / (sig_line / 4.0)))
+        nsh = math.floor(max_shift / (sig_line / 4.0))   # (np.floor's integer, without a ufunc call a problem)
         groups.setdefault((len(centres), nsh), []).append(k)
     widths = _GRID_WIDTHS if exact else QUICK_WIDTHS
     for (ncomp, nsh), ks in groups.items():

@@ -238,7 +238,7 @@ def measure_lines(data, features, targets, which, profile, detect_sigma, batched
     """
     if not batched:
         return {int(i): measure_line(data, features, targets, i, profile, detect_sigma) for i in which}
-    starts = dict(zip((int(i) for i in which), line_starts(data, features, targets, which, detect_sigma)))
+    starts = dict(zip(np.asarray(which).tolist(), line_starts(data, features, targets, which, detect_sigma)))
     found = [i for i, st in starts.items() if st is not None]
     windows = dict(zip(found, line_windows(data, [starts[i] for i in found], targets.fwhm[found],
                                            targets.hydrogen[found], targets.pred[targets.hydrogen])))
@@ -407,12 +407,13 @@ def plan_lines(data, features, targets, which, profile, starts, windows):
         return plans
     wave, n = data.wave, data.wave.size
     wins = [windows[i] for i in found]
-    lo = np.array([w.lo for w in wins])
-    hi = np.array([w.hi for w in wins])
-    lv = np.array([w.levels for w in wins], float).reshape(len(found), 2)
-    centre = np.array([starts[i].centre for i in found])
-    ic = np.array([starts[i].ic for i in found])
-    sign = np.array([starts[i].sign for i in found])
+    # (the windows' and starts' fields gathered by one transposition each, not one pass a field: the same
+    # tuples of Python numbers, so the same arrays)
+    lo_t, hi_t, levels_t, _ = zip(*wins)
+    centre_t, _, _, ic_t, sign_t, _ = zip(*[starts[i] for i in found])
+    lo, hi = np.array(lo_t), np.array(hi_t)
+    lv = np.array(levels_t, float).reshape(len(found), 2)
+    centre, ic, sign = np.array(centre_t), np.array(ic_t), np.array(sign_t)
     length = hi - lo + 1
     k = np.arange(int(length.max()))
     inside = k[None, :] < length[:, None]
