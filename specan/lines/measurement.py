@@ -17,6 +17,7 @@ from __future__ import annotations
 
 from dataclasses import dataclass
 from functools import partial
+from itertools import chain
 from operator import attrgetter
 from typing import NamedTuple
 
@@ -940,7 +941,10 @@ def line_table(data, listed, targets, results, star_type=None):
     kept = row_values(listed)
     ids = kept.ids
     # every result's float values read in one pass (one attrgetter per result, not one getattr per value)
-    values = np.array([_FLOAT_VALUES(r) for r in results], float).reshape(len(results), len(_FLOAT_COLUMNS))
+    # (as one flat run of Python floats into np.fromiter: the same values as np.array of the tuples, without its
+    # nested-sequence discovery)
+    values = np.fromiter(chain.from_iterable(map(_FLOAT_VALUES, results)), float,
+                         len(results) * len(_FLOAT_COLUMNS)).reshape(len(results), len(_FLOAT_COLUMNS))
     cols = dict(zip(_FLOAT_COLUMNS, np.ascontiguousarray(values.T)))
     # (units attached to the rows made above, no copy: ``values * unit`` copies them again, twice the time)
     aa = partial(u.Quantity, unit=u.AA, copy=False)
@@ -963,10 +967,10 @@ def line_table(data, listed, targets, results, star_type=None):
     columns["fit_chi2"] = cols["fit_chi2"]
     columns["window_min"] = aa(cols["window_min"])
     columns["window_max"] = aa(cols["window_max"])
-    columns["method"] = np.array([str(r.method) for r in results], str)
-    columns["profile"] = np.array([str(r.profile) for r in results], str)
-    columns["blend"] = np.array([str(b) for b in blends(listed.pred, ids, targets.fwhm,
-                                                        [r.blend_inside for r in results])], str)
+    # (the text columns from the strings as they are: np.array(..., str) makes the same array of any str)
+    columns["method"] = np.array([r.method for r in results], str)
+    columns["profile"] = np.array([r.profile for r in results], str)
+    columns["blend"] = np.array(blends(listed.pred, ids, targets.fwhm, [r.blend_inside for r in results]), str)
     emission = np.array([r.emission for r in results], bool)
     detected = np.array([r.detected for r in results], bool)
     expected = expected_lines(columns["species"], star_type)
@@ -979,9 +983,11 @@ def line_table(data, listed, targets, results, star_type=None):
     # The same holds inside the window of any allowed line found in absorption (He II 4859 read
     # as emission in the demo's F8 V star, two line widths from H beta; measured).
     allowed = expected.copy()
-    row_of = {name: k for k, name in enumerate(ids)}
-    absorbing = (detected & allowed & ~emission).nonzero()[0]
-    for k in (emission & ~allowed).nonzero()[0]:
+    ruled = (emission & ~allowed).nonzero()[0]
+    if ruled.size:   # (the rows by id, and the absorbing lines, only where an emission line asks)
+        row_of = {name: k for k, name in enumerate(ids)}
+        absorbing = (detected & allowed & ~emission).nonzero()[0]
+    for k in ruled:
         partners = [row_of[b] for b in str(columns["blend"][k]).split(",") if b in row_of]
         inside = np.any((cols["window_min"][absorbing] <= cols["wave_obs"][k])
                         & (cols["wave_obs"][k] <= cols["window_max"][absorbing]))
