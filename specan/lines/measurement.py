@@ -730,13 +730,16 @@ def _wing_problem(data, features, targets, i, centre, fit, fwhm, noise, reach0):
     others = ((pred >= lo) & (pred <= hi) & ~targets.hydrogen).nonzero()[0]
     others = others[others != i]
     depth_at = 1.0 - np.interp(pred[others] + shift, data.wave, data.smooth)
-    strong = others[depth_at > 0.5]
+    deep = depth_at > 0.5
+    strong = others[deep]
     centres = [centre]
     for c in pred[strong] + shift:
         if min(abs(c - x) for x in centres) > MIN_SEPARATION * fwhm:
             centres.append(c)
     centres = np.array(centres)
-    weak_pos = np.concatenate([pred[np.setdiff1d(others, strong)] + shift, features.position[
+    # (the others not strong: ``others`` is sorted and unique, so these are np.setdiff1d(others, strong),
+    # without its sorts)
+    weak_pos = np.concatenate([pred[others[~deep]] + shift, features.position[
         (features.position >= lo) & (features.position <= hi)]])
     x = data.wave[win.lo:win.hi + 1]
     far = np.abs(weak_pos[:, None] - centres[None, :]).min(axis=1) > MIN_SEPARATION * fwhm
