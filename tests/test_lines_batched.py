@@ -463,6 +463,12 @@ def test_one_component_gaussian_solves_are_lapacks():
     atb = rng.normal(0.0, 1.0, (200000, 1, 1)) * rng.lognormal(0.0, 3.0, (200000, 1, 1))
     assert np.array_equal(np.linalg.solve(ata, atb), atb / ata)
     assert np.array_equal(np.linalg.inv(ata), 1.0 / ata)
+    # batchfit._solve_normal (the quick design's width step and its score test): the same
+    from specan.lines.batchfit import _solve_normal
+
+    assert _solve_normal(ata, atb).tobytes() == np.linalg.solve(ata, atb).tobytes()
+    with pytest.raises(np.linalg.LinAlgError):
+        _solve_normal(np.zeros((2, 1, 1)), np.ones((2, 1, 1)))
 
 
 def test_best_grid_point_as_solving_in_turn():

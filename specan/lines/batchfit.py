@@ -342,7 +342,7 @@ def _width_scores(x, b, a, ata, w, centres, sig):
     r = b - np.einsum("lc,lcp->lp", w, a)
     ad = np.einsum("lcp,lp->lc", a, d)
     try:
-        proj = np.einsum("lc,lc->l", ad, np.linalg.solve(ata, ad[..., None])[..., 0])
+        proj = np.einsum("lc,lc->l", ad, _solve_normal(ata, ad[..., None])[..., 0])
     except np.linalg.LinAlgError:
         return np.full(sig.size, np.inf)
     info = np.maximum(np.einsum("lp,lp->l", d, d) - proj, 0.0)
@@ -374,13 +374,24 @@ def _step_widths(x, b, a, cw, centres, sh, sig_line, sign, best, sig_best, ata_b
     ata1 = a1 @ a1.transpose(0, 2, 1) + 1e-12 * np.eye(a1.shape[1])
     atb1 = np.einsum("lcp,lp->lc", a1, b[rows])
     try:
-        w1 = np.linalg.solve(ata1, atb1[..., None])[..., 0]
+        w1 = _solve_normal(ata1, atb1[..., None])[..., 0]
     except np.linalg.LinAlgError:
         return
     c1 = np.einsum("lp,lp->l", b[rows], b[rows]) - (w1 * atb1).sum(axis=1)
     take = (c1 <= cbest[rows]) & (sign[rows, None] * w1 >= 0).all(axis=1)
     rows = rows[take]
     sig_best[rows], ata_best[rows], wbest[rows], cbest[rows] = s1[take], ata1[take], w1[take], c1[take]
+
+
+def _solve_normal(m, rhs):
+    """``np.linalg.solve(m, rhs)`` of stacked normal matrices; one-component ones (1 x 1) by division,
+    LAPACK's very bits without its per-system overhead (tests/test_lines_batched.py), a zero pivot
+    raising as the solver raises."""
+    if m.shape[-1] != 1:
+        return np.linalg.solve(m, rhs)
+    if not np.all(m != 0):
+        raise np.linalg.LinAlgError("Singular matrix")
+    return rhs / m
 
 
 def _positive_counts(data):
