@@ -30,6 +30,10 @@ Run the same script against another checkout for a before/after figure::
 or, less moved by the machine's load, both in one process by turns (``--against``)::
 
     OPENBLAS_NUM_THREADS=1 python benchmarks/bench_lines.py --against /path/to/old/checkout
+
+``--against`` also says whether the two checkouts give the same tables to the bit on each set
+(:func:`same_table`, quick and exact design); ``--demo`` adds the demo night's spectra
+(``sample_spectra/``, with the type the night run gives them) to the sets.
 """
 
 import argparse

@@ -264,3 +264,18 @@ def test_finish_lines_as_line_by_line(exact):
                 compared += 1
                 fitted += before[i].fit is not None
     assert compared > 600 and fitted > 50
+
+
+def test_wing_problem_weak_lines_as_the_complement():
+    # measurement._wing_problem takes the weaker listed lines as others[~deep] instead of
+    # np.setdiff1d(others, others[deep]): the same indices in the same order wherever ``others`` is
+    # sorted and unique (nonzero's indices, less the line itself), NaN depths (not deep) included
+    rng = np.random.default_rng(7)
+    for _ in range(2000):
+        others = np.flatnonzero(rng.uniform(size=int(rng.integers(0, 60))) < 0.4)
+        others = others[others != int(rng.integers(0, 60))]
+        depth = rng.uniform(0.0, 1.0, others.size)
+        depth[rng.uniform(size=others.size) < 0.05] = np.nan
+        deep = depth > 0.5
+        mine, before = others[~deep], np.setdiff1d(others, others[deep])
+        assert mine.dtype == before.dtype and np.array_equal(mine, before)
