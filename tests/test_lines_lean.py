@@ -279,3 +279,30 @@ def test_wing_problem_weak_lines_as_the_complement():
         deep = depth > 0.5
         mine, before = others[~deep], np.setdiff1d(others, others[deep])
         assert mine.dtype == before.dtype and np.array_equal(mine, before)
+
+
+def test_width_step_leaves_a_singular_stack_as_it_is():
+    # batchfit._step_widths with a singular normal matrix among the fits: _width_scores returned one
+    # array where two are unpacked (a ValueError for any number of fits but two); now no step is taken
+    # and every fit keeps its held width and values
+    from specan.lines.batchfit import _step_widths, _width_scores
+
+    rng = np.random.default_rng(3)
+    lines, comps, pix = 3, 2, 25
+    x = np.tile(np.linspace(-3.0, 3.0, pix), (lines, 1))
+    centres = np.zeros((lines, comps))                      # two components on one place: singular
+    sig = np.ones(lines)
+    a = np.exp(-0.5 * (x[:, None, :] - centres[:, :, None]) ** 2)
+    b = rng.normal(size=(lines, pix))
+    ata = a @ a.transpose(0, 2, 1)
+    ata[:] = 0.0                                             # exactly singular: LAPACK refuses it
+    w = np.ones((lines, comps))
+    z, step = _width_scores(x, b, a, ata, w, centres, sig)
+    assert z.shape == step.shape == (lines,) and np.all(np.isinf(z)) and not np.any(np.isfinite(step))
+    best = np.zeros(lines, int)
+    held = (sig.copy(), ata.copy(), w.copy(), np.ones(lines))
+    sig_best, ata_best, wbest, cbest = (v.copy() for v in held)
+    _step_widths(x, b, a[:, None], a.sum(axis=1), centres, np.zeros((lines, 1)), sig, np.ones(lines), best,
+                 sig_best, ata_best, wbest, cbest)
+    for before, after in zip(held, (sig_best, ata_best, wbest, cbest)):
+        assert np.array_equal(before, after)

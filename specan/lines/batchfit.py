@@ -344,7 +344,9 @@ def _width_scores(x, b, a, ata, w, centres, sig):
     try:
         proj = np.einsum("lc,lc->l", ad, _solve_normal(ata, ad[..., None])[..., 0])
     except np.linalg.LinAlgError:
-        return np.full(sig.size, np.inf)
+        # a singular normal matrix in the stack: no score, and no step (the held width stands); the
+        # caller unpacks two arrays (one was returned: a ValueError unless exactly two fits)
+        return np.full(sig.size, np.inf), np.full(sig.size, np.nan)
     info = np.maximum(np.einsum("lp,lp->l", d, d) - proj, 0.0)
     score = np.einsum("lp,lp->l", d, r)
     with np.errstate(divide="ignore", invalid="ignore"):
