@@ -248,8 +248,8 @@ def hot_spots(cases, top):
         print(f"    {1e3 * tt / n:6.2f} {1e3 * ct / n:7.2f} {nc / n:8.1f}  {name}")
 
 
-def other_checkout(path):
-    """The ``specan`` package of another checkout, imported under another name (``specan_other``),
+def other_checkout(path, name="specan_other"):
+    """The ``specan`` package of another checkout, imported under another name (``name``),
     so that both can be timed in one process; None when it cannot be imported."""
     import importlib
     import shutil
@@ -259,9 +259,46 @@ def other_checkout(path):
         return None
     # a copy under another name: the package imports its own modules relatively
     where = Path(tempfile.mkdtemp(prefix="specan-other-"))
-    shutil.copytree(src, where / "specan_other", ignore=shutil.ignore_patterns("__pycache__"))
+    shutil.copytree(src, where / name, ignore=shutil.ignore_patterns("__pycache__"))
     sys.path.insert(0, str(where))
-    return importlib.import_module("specan_other")
+    package = importlib.import_module(name)
+    for module in ("lines", "resolution", "obsinfo"):
+        importlib.import_module(f"{name}.{module}")
+    return package
+
+
+def copies_alternated(cases, other, rounds):
+    """CPU ms per spectrum of this checkout's ``measure`` and ``other``'s, both imported as copies
+    (:func:`other_checkout`: neither is the ``specan`` the cases were made with), by turns spectrum by
+    spectrum, the order swapped from one spectrum and one round to the next: ``(here, there)`` as the
+    sums over the spectra of each spectrum's least and median time over the rounds.
+
+    :func:`alternated` times ``specan`` itself against a copy, in blocks, always in the same order, and
+    read 0.92-1.02x for two identical checkouts (2026-12-04, load 0.5-1.6). This read 1.013x (least) and
+    0.998x (median) for identical ones on the pipeline set (load 2.0), and 1.020x / 1.042x for the lines20
+    branch against b61dd72 (load 2.0; the same method in a script, both orders: 1.022-1.033x least, load
+    1.7-2.0), where the block alternation read 1.01-1.07x one way and 0.97-1.00x the other."""
+    mine = other_checkout(Path(__file__).resolve().parents[1], "specan_here")
+    pairs = []
+    for package in (mine, other):
+        lines_module = sys.modules[package.__name__ + ".lines"]
+        pairs.append((package, lines_module, [spec for (spec, _) in _twins_for(cases, package)]))
+    spent = np.zeros((2, rounds, len(cases)))
+    for (package, lines_module, specs) in pairs:   # imports, caches
+        for spec, (_, known) in zip(specs, cases):
+            lines_module.measure(spec, **known)
+    for r in range(rounds):
+        for i, (_, known) in enumerate(cases):
+            for w in ((0, 1) if (i + r) % 2 == 0 else (1, 0)):
+                package, lines_module, specs = pairs[w]
+                noise_kept(package, specs[i], known)
+                c = time.process_time()
+                lines_module.measure(specs[i], **known)
+                spent[w, r, i] = time.process_time() - c
+    n = len(cases)
+    least = spent.min(axis=1).sum(axis=1) / n * 1e3
+    middle = np.median(spent, axis=1).sum(axis=1) / n * 1e3
+    return (least[0], middle[0]), (least[1], middle[1])
 
 
 def alternated(cases, other, rounds, block=5):
@@ -346,20 +383,25 @@ def same_tables(cases, other):
 
 
 def _twins(cases, other):
-    """``((spectrum, its twin for other), options)`` of each case: the twin carries the other
-    package's own metadata class (it checks for its own class)."""
+    """``((spectrum, its twin for other), options)`` of each case (:func:`_twins_for`)."""
+    return [((spec, twin), known) for (spec, known), (twin, _) in zip(cases, _twins_for(cases, other))]
+
+
+def _twins_for(cases, package):
+    """``(twin, options)`` of each case: the spectrum with ``package``'s own metadata class (each
+    checkout's copy checks for its own class)."""
     import copy
     import importlib
 
-    other_info = importlib.import_module(other.__name__ + ".obsinfo").ObsInfo
+    info_class = importlib.import_module(package.__name__ + ".obsinfo").ObsInfo
     out = []
     for spec, known in cases:
         twin = copy.copy(spec)
         twin.meta = dict(spec.meta)
-        info = other_info()
+        info = info_class()
         info.__dict__.update(vars(spec.meta["specan"]))
         twin.meta["specan"] = info
-        out.append(((spec, twin), known))
+        out.append((twin, known))
     return out
 
 
@@ -452,6 +494,9 @@ def main(argv=None):
                         help="also time another checkout's measure, by turns with this one in one process")
     parser.add_argument("--demo", action="store_true",
                         help="also the demo night's spectra (sample_spectra/, with the type the night run gives them)")
+    parser.add_argument("--copies", action="store_true",
+                        help="with --against: also time both checkouts as copies (neither the specan the spectra were "
+                             "made with), by turns spectrum by spectrum, order swapped each time (least and median)")
     parser.add_argument("--fits", action="store_true",
                         help="with --against: also time the batched fits alone (this checkout's batchfit and the "
                              "other's on the same recorded calls, by turns) and check they give the same fits")
@@ -494,6 +539,11 @@ def main(argv=None):
                 here, there = alternated(cases, other, args.repeats)
                 print(f"  alternated in one process (load average {os.getloadavg()[0]:.1f}): CPU {here:.1f} ms per "
                       f"spectrum here, {there:.1f} in {args.against} ({there / here:.2f}x)")
+                if args.copies:
+                    (l0, m0), (l1, m1) = copies_alternated(cases, other, max(args.repeats, 8))
+                    print(f"  both as copies, by turns (load average {os.getloadavg()[0]:.1f}): CPU ms per spectrum, "
+                          f"least {l0:.2f} here, {l1:.2f} there ({l1 / l0:.3f}x); median {m0:.2f}, {m1:.2f} "
+                          f"({m1 / m0:.3f}x)")
                 if args.fits:
                     for kind, (mine, theirs, same) in fits_alternated(cases, other, max(args.repeats, 5)).items():
                         print(f"  {kind} fits alone, alternated (load average {os.getloadavg()[0]:.1f}): CPU "
