@@ -30,6 +30,10 @@ Run the same script against another checkout for a before/after figure::
 or, less moved by the machine's load, both in one process by turns (``--against``)::
 
     OPENBLAS_NUM_THREADS=1 python benchmarks/bench_lines.py --against /path/to/old/checkout
+
+``--against`` also says whether the two checkouts give the same tables to the bit on each set
+(:func:`same_table`, quick and exact design); ``--demo`` adds the demo night's spectra
+(``sample_spectra/``, with the type the night run gives them) to the sets.
 """
 
 import argparse
@@ -91,6 +95,31 @@ def pipeline_spectra(count, workdir):
 
 #: Whether each timed call finds the flux's noise estimate kept, as in the night run (``--cold``: not).
 WARM_NOISE = True
+
+
+def demo_spectra():
+    """(prepared spectrum, options) of the demo night's readable spectra (``sample_spectra/``), as
+    ``specan run`` hands them to the lines stage: the velocity stage's shift (and R where the file
+    states none) and the classification's type (``--demo``: the set whose tables ``--against``
+    compares too)."""
+    from specan import classify, prepare, read, velocity
+    from specan.errors import SpecanError
+    from specan.pipeline import _known_from_velocity, _star_type
+
+    out = []
+    for path in sorted((Path(__file__).resolve().parents[1] / "sample_spectra").glob("trf3_*")):
+        try:
+            spec = prepare(read(str(path)))
+            vel = velocity.measure(spec)
+        except SpecanError:
+            continue   # (the demo night's broken inputs)
+        known = _known_from_velocity(vel)
+        try:
+            kind = classify(spec, **known)   # (as the night run calls it, with its default calibration)
+        except SpecanError:
+            kind = None
+        out.append((spec, {**known, "star_type": _star_type(kind, vel)}))
+    return out
 
 
 def noise_kept(package, spec, known):
@@ -219,8 +248,8 @@ def hot_spots(cases, top):
         print(f"    {1e3 * tt / n:6.2f} {1e3 * ct / n:7.2f} {nc / n:8.1f}  {name}")
 
 
-def other_checkout(path):
-    """The ``specan`` package of another checkout, imported under another name (``specan_other``),
+def other_checkout(path, name="specan_other"):
+    """The ``specan`` package of another checkout, imported under another name (``name``),
     so that both can be timed in one process; None when it cannot be imported."""
     import importlib
     import shutil
@@ -230,9 +259,46 @@ def other_checkout(path):
         return None
     # a copy under another name: the package imports its own modules relatively
     where = Path(tempfile.mkdtemp(prefix="specan-other-"))
-    shutil.copytree(src, where / "specan_other", ignore=shutil.ignore_patterns("__pycache__"))
+    shutil.copytree(src, where / name, ignore=shutil.ignore_patterns("__pycache__"))
     sys.path.insert(0, str(where))
-    return importlib.import_module("specan_other")
+    package = importlib.import_module(name)
+    for module in ("lines", "resolution", "obsinfo"):
+        importlib.import_module(f"{name}.{module}")
+    return package
+
+
+def copies_alternated(cases, other, rounds):
+    """CPU ms per spectrum of this checkout's ``measure`` and ``other``'s, both imported as copies
+    (:func:`other_checkout`: neither is the ``specan`` the cases were made with), by turns spectrum by
+    spectrum, the order swapped from one spectrum and one round to the next: ``(here, there)`` as the
+    sums over the spectra of each spectrum's least and median time over the rounds.
+
+    :func:`alternated` times ``specan`` itself against a copy, in blocks, always in the same order, and
+    read 0.92-1.02x for two identical checkouts (2026-12-04, load 0.5-1.6). This read 1.013x (least) and
+    0.998x (median) for identical ones on the pipeline set (load 2.0), and 1.020x / 1.042x for the lines20
+    branch against b61dd72 (load 2.0; the same method in a script, both orders: 1.022-1.033x least, load
+    1.7-2.0), where the block alternation read 1.01-1.07x one way and 0.97-1.00x the other."""
+    mine = other_checkout(Path(__file__).resolve().parents[1], "specan_here")
+    pairs = []
+    for package in (mine, other):
+        lines_module = sys.modules[package.__name__ + ".lines"]
+        pairs.append((package, lines_module, [spec for (spec, _) in _twins_for(cases, package)]))
+    spent = np.zeros((2, rounds, len(cases)))
+    for (package, lines_module, specs) in pairs:   # imports, caches
+        for spec, (_, known) in zip(specs, cases):
+            lines_module.measure(spec, **known)
+    for r in range(rounds):
+        for i, (_, known) in enumerate(cases):
+            for w in ((0, 1) if (i + r) % 2 == 0 else (1, 0)):
+                package, lines_module, specs = pairs[w]
+                noise_kept(package, specs[i], known)
+                c = time.process_time()
+                lines_module.measure(specs[i], **known)
+                spent[w, r, i] = time.process_time() - c
+    n = len(cases)
+    least = spent.min(axis=1).sum(axis=1) / n * 1e3
+    middle = np.median(spent, axis=1).sum(axis=1) / n * 1e3
+    return (least[0], middle[0]), (least[1], middle[1])
 
 
 def alternated(cases, other, rounds, block=5):
@@ -272,6 +338,71 @@ def alternated(cases, other, rounds, block=5):
                 there += time.process_time() - c
     n = rounds * len(cases)
     return 1e3 * here / n, 1e3 * there / n
+
+
+def _same_value(a, b):
+    """Whether two table values (numbers, arrays, Quantities, str, None) are the same to the bit."""
+    if hasattr(a, "unit") or hasattr(b, "unit"):
+        return getattr(a, "unit", None) == getattr(b, "unit", None) and _same_value(np.asarray(a), np.asarray(b))
+    if isinstance(a, (np.ndarray, float, np.floating)) or isinstance(b, (np.ndarray, float, np.floating)):
+        a, b = np.asarray(a), np.asarray(b)
+        return a.dtype == b.dtype and a.shape == b.shape and a.tobytes() == b.tobytes()
+    return type(a) is type(b) and a == b
+
+
+def same_table(a, b):
+    """Whether two tables of ``measure`` are the same to the bit: column names and order, each
+    column's class, dtype, unit, description, format, meta and values (bytes: NaNs and signed zeros
+    too), and the table's meta."""
+    if a.colnames != b.colnames or list(a.meta) != list(b.meta):
+        return False
+    if not all(_same_value(a.meta[key], b.meta[key]) for key in a.meta):
+        return False
+    for name in a.colnames:
+        ca, cb = a[name], b[name]
+        if type(ca) is not type(cb) or not _same_value(ca, cb):
+            return False
+        if any(getattr(ca.info, attr) != getattr(cb.info, attr) for attr in ("name", "description", "format", "meta")):
+            return False
+    return True
+
+
+def same_tables(cases, other):
+    """How many of ``cases`` give this checkout's ``measure`` and ``other``'s (:func:`other_checkout`) the
+    same table to the bit (:func:`same_table`), in the quick and in the exact design: ``(quick, exact)``."""
+    import importlib
+
+    other_lines = importlib.import_module(other.__name__ + ".lines")
+    counts = [0, 0]
+    for spec, known in _twins(cases, other):
+        for k, exact in enumerate((False, True)):
+            mine = lines.measure(spec[0], **known, exact_fits=exact)
+            theirs = other_lines.measure(spec[1], **known, exact_fits=exact)
+            counts[k] += same_table(mine, theirs)
+    return tuple(counts)
+
+
+def _twins(cases, other):
+    """``((spectrum, its twin for other), options)`` of each case (:func:`_twins_for`)."""
+    return [((spec, twin), known) for (spec, known), (twin, _) in zip(cases, _twins_for(cases, other))]
+
+
+def _twins_for(cases, package):
+    """``(twin, options)`` of each case: the spectrum with ``package``'s own metadata class (each
+    checkout's copy checks for its own class)."""
+    import copy
+    import importlib
+
+    info_class = importlib.import_module(package.__name__ + ".obsinfo").ObsInfo
+    out = []
+    for spec, known in cases:
+        twin = copy.copy(spec)
+        twin.meta = dict(spec.meta)
+        info = info_class()
+        info.__dict__.update(vars(spec.meta["specan"]))
+        twin.meta["specan"] = info
+        out.append((twin, known))
+    return out
 
 
 def fit_batches(cases):
@@ -361,6 +492,11 @@ def main(argv=None):
                              "velocity stage's; before 2026-12-04 this script timed it cold)")
     parser.add_argument("--against", type=Path, default=None, metavar="CHECKOUT",
                         help="also time another checkout's measure, by turns with this one in one process")
+    parser.add_argument("--demo", action="store_true",
+                        help="also the demo night's spectra (sample_spectra/, with the type the night run gives them)")
+    parser.add_argument("--copies", action="store_true",
+                        help="with --against: also time both checkouts as copies (neither the specan the spectra were "
+                             "made with), by turns spectrum by spectrum, order swapped each time (least and median)")
     parser.add_argument("--fits", action="store_true",
                         help="with --against: also time the batched fits alone (this checkout's batchfit and the "
                              "other's on the same recorded calls, by turns) and check they give the same fits")
@@ -374,6 +510,8 @@ def main(argv=None):
           f"OPENBLAS_NUM_THREADS={os.environ.get('OPENBLAS_NUM_THREADS', 'unset')}; "
           f"noise estimate {'kept, as in a night run' if WARM_NOISE else 'made in each call (--cold)'}")
     sets = {"pipeline": pipeline_spectra(args.count, work), "dense": [(dense_spectrum(), {})]}
+    if args.demo:
+        sets["demo"] = demo_spectra()
     for name, cases in sets.items():
         lines.measure(cases[0][0], **cases[0][1])   # imports, caches
         fast, fast_cpu = timed(cases, args.repeats)
@@ -395,9 +533,17 @@ def main(argv=None):
             if other is None:
                 print(f"  no specan package in {args.against}")
             else:
+                quick, exact = same_tables(cases, other)
+                print(f"  the same tables to the bit as {args.against}'s: {quick} of {len(cases)} (quick design), "
+                      f"{exact} of {len(cases)} (exact design)")
                 here, there = alternated(cases, other, args.repeats)
                 print(f"  alternated in one process (load average {os.getloadavg()[0]:.1f}): CPU {here:.1f} ms per "
                       f"spectrum here, {there:.1f} in {args.against} ({there / here:.2f}x)")
+                if args.copies:
+                    (l0, m0), (l1, m1) = copies_alternated(cases, other, max(args.repeats, 8))
+                    print(f"  both as copies, by turns (load average {os.getloadavg()[0]:.1f}): CPU ms per spectrum, "
+                          f"least {l0:.2f} here, {l1:.2f} there ({l1 / l0:.3f}x); median {m0:.2f}, {m1:.2f} "
+                          f"({m1 / m0:.3f}x)")
                 if args.fits:
                     for kind, (mine, theirs, same) in fits_alternated(cases, other, max(args.repeats, 5)).items():
                         print(f"  {kind} fits alone, alternated (load average {os.getloadavg()[0]:.1f}): CPU "

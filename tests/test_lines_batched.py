@@ -197,15 +197,18 @@ def test_vectorised_windows_equal_the_walks():
         # on the spectrum and on a copy with a ripple (other plateaus, other cuts)
         for d in (data, data.divided(0.97 + 0.03 * np.cos(data.wave / 50.0))):
             starts = [line_start(d, features, targets, i, DETECT_SIGMA) for i in range(targets.pred.size)]
-            idx = [i for i, st in enumerate(starts) if st is not None]
-            batch = line_windows(d, [starts[i] for i in idx], targets.fwhm[idx], targets.hydrogen[idx])
-            for i, window in zip(idx, batch):
-                st = starts[i]
-                one = line_window(d, st.ic, st.centre, st.sign, targets.fwhm[i], bool(targets.hydrogen[i]),
-                                  st.matched)
-                assert tuple(one) == tuple(window), (name, listed.rows["id"][i])
-                compared += 1
-    assert compared > 1000
+            # every line together (hydrogen walks among the others), and the other lines alone (measure's
+            # second pass: no walk on the wide smoothing)
+            for chosen in (np.ones(targets.pred.size, bool), ~targets.hydrogen):
+                idx = [i for i, st in enumerate(starts) if st is not None and chosen[i]]
+                batch = line_windows(d, [starts[i] for i in idx], targets.fwhm[idx], targets.hydrogen[idx])
+                for i, window in zip(idx, batch):
+                    st = starts[i]
+                    one = line_window(d, st.ic, st.centre, st.sign, targets.fwhm[i], bool(targets.hydrogen[i]),
+                                      st.matched)
+                    assert tuple(one) == tuple(window), (name, listed.rows["id"][i])
+                    compared += 1
+    assert compared > 2000
 
 
 def test_hydrogen_windows_alone_equal_the_walks():
@@ -300,10 +303,13 @@ def test_dersnr_from_arrays_equals_specutils():
 
 def test_vectorised_plans_equal_one_by_one():
     # plan_lines (continua, integrals, depths of all lines as array operations) against plan_line
-    from specan.lines.data import DETECT_SIGMA
-    from specan.lines.measurement import plan_line
+    from dataclasses import fields
 
-    compared = 0
+    from specan.lines.data import DETECT_SIGMA
+    from specan.lines.components import window_features
+    from specan.lines.measurement import LineResult, plan_line
+
+    compared = hydrogen_features = 0
     for name, data, targets, features, which, starts, windows, many in demo_line_plans(6, "auto"):
         for i in which:
             one = plan_line(data, features, targets, i, "auto", DETECT_SIGMA, starts[i], windows.get(i))
@@ -319,13 +325,24 @@ def test_vectorised_plans_equal_one_by_one():
             assert (one.skip is None) == (two.skip is None)
             if one.skip is not None:
                 np.testing.assert_array_equal(one.skip, two.skip)
+            # the features a hydrogen line's blends are taken from, kept with its plan: window_features'
+            assert (two.in_win is not None) == two.hydrogen
+            if two.hydrogen:
+                found = window_features(data, features, two.window, two.sign)
+                assert two.in_win.dtype == found.dtype and two.in_win.tobytes() == found.tobytes()
+                hydrogen_features += found.size
             np.testing.assert_allclose(two.cont, one.cont, rtol=1e-14, atol=1e-15)
             for name in ("wave_obs", "significance", "window_min", "window_max", "emission", "method"):
                 assert getattr(one.result, name) == getattr(two.result, name), name
             for name in ("ew_int", "ew_int_err", "depth"):
                 assert getattr(two.result, name) == pytest.approx(getattr(one.result, name), rel=1e-12, abs=1e-14)
+            # every other field as plan_line's keywords leave it (plan_lines gives them in order, positionally)
+            for f in fields(LineResult):
+                if f.name not in ("ew_int", "ew_int_err", "depth"):
+                    a, b = getattr(one.result, f.name), getattr(two.result, f.name)
+                    assert a == b or (a != a and b != b), f.name
             compared += 1
-    assert compared > 500
+    assert compared > 500 and hydrogen_features > 20
 
 
 def test_block_medians_equal_one_median_per_block():
@@ -446,6 +463,12 @@ def test_one_component_gaussian_solves_are_lapacks():
     atb = rng.normal(0.0, 1.0, (200000, 1, 1)) * rng.lognormal(0.0, 3.0, (200000, 1, 1))
     assert np.array_equal(np.linalg.solve(ata, atb), atb / ata)
     assert np.array_equal(np.linalg.inv(ata), 1.0 / ata)
+    # batchfit._solve_normal (the quick design's width step and its score test): the same
+    from specan.lines.batchfit import _solve_normal
+
+    assert _solve_normal(ata, atb).tobytes() == np.linalg.solve(ata, atb).tobytes()
+    with pytest.raises(np.linalg.LinAlgError):
+        _solve_normal(np.zeros((2, 1, 1)), np.ones((2, 1, 1)))
 
 
 def test_best_grid_point_as_solving_in_turn():

@@ -191,3 +191,118 @@ def test_parabola_normal_equations_as_entry_by_entry():
                    for a in (2, 1, 0)], axis=-2)
     rhs0 = np.stack([(wgt * t ** a * y).sum(axis=1) for a in (2, 1, 0)], axis=-1)
     assert np.array_equal(m, m0) and np.array_equal(rhs, rhs0)
+
+
+def _finish_lines_before(data, features, targets, plans, exact):
+    """measurement.finish_lines as it was: _fitted and _finished called line by line."""
+    from specan.lines.hydrogen_blends import less_blends
+    from specan.lines.measurement import _finished, _fitted, _wants_wings, cayrel_error, half_widths, wing_fits, \
+        window_noises
+
+    unfitted = [plan for plan in plans.values() if plan.window is not None and plan.fit is None]
+    widths = dict(zip(map(id, unfitted), half_widths(data, [p.ic for p in unfitted], [p.window.lo for p in unfitted],
+                                                     [p.window.hi for p in unfitted], [p.sign for p in unfitted])))
+    for i, plan in plans.items():
+        if plan.window is not None:
+            _fitted(data, plan, widths.get(id(plan)))
+            if plan.hydrogen:
+                less_blends(data, features, targets, i, plan)
+    strong = [i for i, plan in plans.items() if plan.window is not None and _wants_wings(plan)]
+    wings = wing_fits(data, features, targets, strong, [plans[i].result.wave_obs for i in strong],
+                      [plans[i].fit for i in strong], [plans[i].fw for i in strong], exact=exact)
+    wing_of = dict(zip(strong, wings))
+    done = [i for i, plan in plans.items() if plan.window is not None]
+    final = [plans[i].window if wing_of.get(i) is None else wing_of[i][1] for i in done]
+    out = {i: plan.result if plan.window is None else _finished(data, plan, wing_of.get(i), cayrel=False)
+           for i, plan in plans.items()}
+    if done:
+        fwhm = np.array([out[i].fwhm for i in done], float)
+        fwhm_c = np.where(np.isfinite(fwhm), fwhm, np.array([plans[i].fw for i in done], float))
+        pixel = data.dx[np.array([plans[i].ic for i in done], int)]
+        for i, err in zip(done, cayrel_error(fwhm_c, pixel, 1.0 / window_noises(data, final)).tolist()):
+            out[i].ew_err_cayrel = err
+    return out
+
+
+def _same_value(a, b):
+    if isinstance(a, dict) or isinstance(b, dict):
+        return (a is None) == (b is None) and a.keys() == b.keys() and all(_same_value(a[k], b[k]) for k in a)
+    if isinstance(a, np.ndarray) or isinstance(b, np.ndarray):
+        a, b = np.asarray(a), np.asarray(b)
+        return a.shape == b.shape and a.tobytes() == b.tobytes()
+    if isinstance(a, (float, np.floating)) and isinstance(b, (float, np.floating)):
+        return np.float64(a).tobytes() == np.float64(b).tobytes()
+    return type(a) is type(b) and a == b
+
+
+@pytest.mark.parametrize("exact", [False, True])
+def test_finish_lines_as_line_by_line(exact):
+    # measurement.finish_lines: the lines with no fit and no wing fit finished in plain loops, against
+    # the function it replaced (every line through _fitted and _finished): the same results to the bit,
+    # every field, on the demo night's lines (both designs: their wing fits differ)
+    import copy
+    from dataclasses import fields
+
+    from test_lines_batched import demo_line_plans
+
+    from specan.lines.batchfit import fit_planned
+    from specan.lines.measurement import LineResult, finish_lines
+
+    compared = fitted = 0
+    for _, data, targets, features, which, _, _, plans in demo_line_plans(6, "auto"):
+        for kind in (targets.hydrogen, ~targets.hydrogen):
+            chosen = {i: plans[i] for i in which if kind[i]}
+            wanted = [p for p in chosen.values() if p.wants_fit]
+            for plan, fit in zip(wanted, fit_planned(data, wanted, exact=exact)):
+                plan.fit = fit
+            before = _finish_lines_before(data, features, targets, copy.deepcopy(chosen), exact)
+            after = finish_lines(data, features, targets, copy.deepcopy(chosen), exact=exact)
+            assert list(before) == list(after)
+            for i in before:
+                for f in fields(LineResult):
+                    assert _same_value(getattr(before[i], f.name), getattr(after[i], f.name)), (i, f.name)
+                compared += 1
+                fitted += before[i].fit is not None
+    assert compared > 600 and fitted > 50
+
+
+def test_wing_problem_weak_lines_as_the_complement():
+    # measurement._wing_problem takes the weaker listed lines as others[~deep] instead of
+    # np.setdiff1d(others, others[deep]): the same indices in the same order wherever ``others`` is
+    # sorted and unique (nonzero's indices, less the line itself), NaN depths (not deep) included
+    rng = np.random.default_rng(7)
+    for _ in range(2000):
+        others = np.flatnonzero(rng.uniform(size=int(rng.integers(0, 60))) < 0.4)
+        others = others[others != int(rng.integers(0, 60))]
+        depth = rng.uniform(0.0, 1.0, others.size)
+        depth[rng.uniform(size=others.size) < 0.05] = np.nan
+        deep = depth > 0.5
+        mine, before = others[~deep], np.setdiff1d(others, others[deep])
+        assert mine.dtype == before.dtype and np.array_equal(mine, before)
+
+
+def test_width_step_leaves_a_singular_stack_as_it_is():
+    # batchfit._step_widths with a singular normal matrix among the fits: _width_scores returned one
+    # array where two are unpacked (a ValueError for any number of fits but two); now no step is taken
+    # and every fit keeps its held width and values
+    from specan.lines.batchfit import _step_widths, _width_scores
+
+    rng = np.random.default_rng(3)
+    lines, comps, pix = 3, 2, 25
+    x = np.tile(np.linspace(-3.0, 3.0, pix), (lines, 1))
+    centres = np.zeros((lines, comps))                      # two components on one place: singular
+    sig = np.ones(lines)
+    a = np.exp(-0.5 * (x[:, None, :] - centres[:, :, None]) ** 2)
+    b = rng.normal(size=(lines, pix))
+    ata = a @ a.transpose(0, 2, 1)
+    ata[:] = 0.0                                             # exactly singular: LAPACK refuses it
+    w = np.ones((lines, comps))
+    z, step = _width_scores(x, b, a, ata, w, centres, sig)
+    assert z.shape == step.shape == (lines,) and np.all(np.isinf(z)) and not np.any(np.isfinite(step))
+    best = np.zeros(lines, int)
+    held = (sig.copy(), ata.copy(), w.copy(), np.ones(lines))
+    sig_best, ata_best, wbest, cbest = (v.copy() for v in held)
+    _step_widths(x, b, a[:, None], a.sum(axis=1), centres, np.zeros((lines, 1)), sig, np.ones(lines), best,
+                 sig_best, ata_best, wbest, cbest)
+    for before, after in zip(held, (sig_best, ata_best, wbest, cbest)):
+        assert np.array_equal(before, after)

@@ -38,6 +38,8 @@ its check against outside truth (injected lines, the solar strong lines, damped 
 
 from __future__ import annotations
 
+import math
+
 import numpy as np
 from scipy.special import voigt_profile
 
@@ -166,7 +168,7 @@ def gauss_batch(data, problems, exact=True):
     out = [None] * len(problems)
     groups = {}
     for k, (lo, hi, cont, centres, max_shift, sig_line, sign) in enumerate(problems):
-        nsh = int(np.floor(max_shift / (sig_line / 4.0)))
+        nsh = math.floor(max_shift / (sig_line / 4.0))   # (np.floor's integer, without a ufunc call a problem)
         groups.setdefault((len(centres), nsh), []).append(k)
     widths = _GRID_WIDTHS if exact else QUICK_WIDTHS
     for (ncomp, nsh), ks in groups.items():
@@ -188,8 +190,9 @@ def _padded(data, problems, ks, skip_index=None):
     wts = np.where(inside, np.sqrt(data.weight[pix]), 0.0)
     cont = np.zeros(x.shape)
     # (a continuum given as one value per pixel is taken as it is; np.broadcast_to, ~10 us a call,
-    # only for the others: the same values)
-    cont[inside] = np.concatenate([c if np.shape(c) == (m,) else np.broadcast_to(c, (m,))
+    # only for the others: the same values. The shape read as the attribute: np.shape is a dispatched
+    # call a problem)
+    cont[inside] = np.concatenate([c if getattr(c, "shape", None) == (m,) else np.broadcast_to(c, (m,))
                                    for c, m in zip((problems[k][2] for k in ks), n.tolist())])
     if skip_index is not None:
         for row, k in enumerate(ks):
@@ -339,9 +342,11 @@ def _width_scores(x, b, a, ata, w, centres, sig):
     r = b - np.einsum("lc,lcp->lp", w, a)
     ad = np.einsum("lcp,lp->lc", a, d)
     try:
-        proj = np.einsum("lc,lc->l", ad, np.linalg.solve(ata, ad[..., None])[..., 0])
+        proj = np.einsum("lc,lc->l", ad, _solve_normal(ata, ad[..., None])[..., 0])
     except np.linalg.LinAlgError:
-        return np.full(sig.size, np.inf)
+        # a singular normal matrix in the stack: no score, and no step (the held width stands); the
+        # caller unpacks two arrays (one was returned: a ValueError unless exactly two fits)
+        return np.full(sig.size, np.inf), np.full(sig.size, np.nan)
     info = np.maximum(np.einsum("lp,lp->l", d, d) - proj, 0.0)
     score = np.einsum("lp,lp->l", d, r)
     with np.errstate(divide="ignore", invalid="ignore"):
@@ -371,13 +376,24 @@ def _step_widths(x, b, a, cw, centres, sh, sig_line, sign, best, sig_best, ata_b
     ata1 = a1 @ a1.transpose(0, 2, 1) + 1e-12 * np.eye(a1.shape[1])
     atb1 = np.einsum("lcp,lp->lc", a1, b[rows])
     try:
-        w1 = np.linalg.solve(ata1, atb1[..., None])[..., 0]
+        w1 = _solve_normal(ata1, atb1[..., None])[..., 0]
     except np.linalg.LinAlgError:
         return
     c1 = np.einsum("lp,lp->l", b[rows], b[rows]) - (w1 * atb1).sum(axis=1)
     take = (c1 <= cbest[rows]) & (sign[rows, None] * w1 >= 0).all(axis=1)
     rows = rows[take]
     sig_best[rows], ata_best[rows], wbest[rows], cbest[rows] = s1[take], ata1[take], w1[take], c1[take]
+
+
+def _solve_normal(m, rhs):
+    """``np.linalg.solve(m, rhs)`` of stacked normal matrices; one-component ones (1 x 1) by division,
+    LAPACK's very bits without its per-system overhead (tests/test_lines_batched.py), a zero pivot
+    raising as the solver raises."""
+    if m.shape[-1] != 1:
+        return np.linalg.solve(m, rhs)
+    if not np.all(m != 0):
+        raise np.linalg.LinAlgError("Singular matrix")
+    return rhs / m
 
 
 def _positive_counts(data):

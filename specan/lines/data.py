@@ -350,6 +350,14 @@ class LineData:
             held = self._counts = (self.weight, np.concatenate([[0], np.cumsum(np.sqrt(self.weight) > 0)]))
         return held[1]
 
+    def typical_noise(self):
+        """:func:`median` noise of the good pixels, made once per noise array: the features' search and
+        the wing fits of the same arrays ask for it."""
+        held = getattr(self, "_typical", None)
+        if held is None or held[0] is not self.sigma or held[1] is not self.good:
+            held = self._typical = (self.sigma, self.good, median(self.sigma[self.good]))
+        return held[2]
+
     def index(self, wave):
         """The first pixel at or above ``wave`` (clipped to the spectrum)."""
         return min(max(int(np.searchsorted(self.wave, wave)), 0), self.wave.size - 1)
@@ -404,7 +412,7 @@ def find_features(data, detect_sigma, min_depth=MIN_DEPTH):
     of a per cent are significant but are not lines.
     """
     parts = []
-    noise = median(data.sigma[data.good])
+    noise = data.typical_noise()
     for sign in (1.0, -1.0):
         s = sign * np.where(data.good, data.signif, 0.0)
         cand = _candidates(data, s, sign, detect_sigma, noise)

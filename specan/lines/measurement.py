@@ -16,6 +16,8 @@ vectorised, the fits batched (:mod:`specan.lines.batchfit`); the one-by-one path
 from __future__ import annotations
 
 from dataclasses import dataclass
+from functools import partial
+from itertools import chain
 from operator import attrgetter
 from typing import NamedTuple
 
@@ -25,7 +27,7 @@ from astropy.table import QTable
 
 from ..resolution import GAUSS_FWHM
 from .components import MIN_SEPARATION, component_centres, window_features, wing_mask
-from .data import DETECT_SIGMA, MIN_DEPTH, LineData, find_features, median, normalised
+from .data import DETECT_SIGMA, MIN_DEPTH, LineData, find_features, normalised
 from .hydrogen import without_hydrogen
 from .expected import expected_lines, star_code
 from .hydrogen_blends import less_blends, series_shares
@@ -40,6 +42,8 @@ __all__ = ["measure", "cayrel_error", "Targets", "LineResult", "line_targets", "
            "match_feature", "integrated_ew", "central_depth", "use_voigt", "fit_line", "chosen_ew",
            "window_noise", "half_width", "line_table", "wing_fit"]
 
+#: NaN, the value of a quantity not measured (:class:`LineResult`'s default)
+_NAN = np.nan
 #: Profiles :func:`measure` can fit.
 PROFILES = ("auto", "gauss", "voigt")
 #: The quick design's rounds of a strong line's wing fit (:func:`wing_fits`; the exact design
@@ -235,7 +239,7 @@ def measure_lines(data, features, targets, which, profile, detect_sigma, batched
     """
     if not batched:
         return {int(i): measure_line(data, features, targets, i, profile, detect_sigma) for i in which}
-    starts = dict(zip((int(i) for i in which), line_starts(data, features, targets, which, detect_sigma)))
+    starts = dict(zip(np.asarray(which).tolist(), line_starts(data, features, targets, which, detect_sigma)))
     found = [i for i, st in starts.items() if st is not None]
     windows = dict(zip(found, line_windows(data, [starts[i] for i in found], targets.fwhm[found],
                                            targets.hydrogen[found], targets.pred[targets.hydrogen])))
@@ -281,6 +285,9 @@ class LinePlan:
     wants_fit: bool = False
     #: the profile fit once made (None: none asked for, or it failed)
     fit: dict | None = None
+    #: the positions of the features of the line's kind inside its window (:func:`~specan.lines.components.
+    #: window_features`), where the plan kept them (the hydrogen lines': their blends are taken out later)
+    in_win: np.ndarray | None = None
 
 
 class LineStart(NamedTuple):
@@ -401,12 +408,13 @@ def plan_lines(data, features, targets, which, profile, starts, windows):
         return plans
     wave, n = data.wave, data.wave.size
     wins = [windows[i] for i in found]
-    lo = np.array([w.lo for w in wins])
-    hi = np.array([w.hi for w in wins])
-    lv = np.array([w.levels for w in wins], float).reshape(len(found), 2)
-    centre = np.array([starts[i].centre for i in found])
-    ic = np.array([starts[i].ic for i in found])
-    sign = np.array([starts[i].sign for i in found])
+    # (the windows' and starts' fields gathered by one transposition each, not one pass a field: the same
+    # tuples of Python numbers, so the same arrays)
+    lo_t, hi_t, levels_t, _ = zip(*wins)
+    centre_t, _, _, ic_t, sign_t, _ = zip(*[starts[i] for i in found])
+    lo, hi = np.array(lo_t), np.array(hi_t)
+    lv = np.array(levels_t, float).reshape(len(found), 2)
+    centre, ic, sign = np.array(centre_t), np.array(ic_t), np.array(sign_t)
     length = hi - lo + 1
     k = np.arange(int(length.max()))
     inside = k[None, :] < length[:, None]
@@ -466,9 +474,12 @@ def plan_lines(data, features, targets, which, profile, starts, windows):
         fw, hydrogen = fws[m], hyd_l[m]
         window = wins[m]
         centre, max_shift, _, ic_m, sign_m, detected = starts[i]   # (LineStart's fields, in their order)
-        result = LineResult(wave_obs=centre, ew_int=ew_int_l[m], ew_int_err=ew_int_err_l[m],
-                            significance=signif_l[m], depth=depth_l[m],
-                            window_min=x0_l[m], window_max=x1_l[m], emission=sign_m < 0)
+        # (LineResult's fields given in their order, as LineResult(wave_obs=centre, ew_int=..., ew_int_err=...,
+        # significance=..., depth=..., window_min=..., window_max=..., emission=...) makes them with the other
+        # fields at their defaults: a third of that call's time, whose keywords the dataclass matches one by
+        # one; tests/test_lines_batched.py holds the order against plan_line)
+        result = LineResult(centre, _NAN, _NAN, _NAN, ew_int_l[m], ew_int_err_l[m], _NAN, _NAN, _NAN, depth_l[m],
+                            signif_l[m], x0_l[m], x1_l[m], _NAN, _NAN, _NAN, (), "none", "", False, sign_m < 0)
         if kinds:
             key = 1.0 if sign_m > 0 else -1.0
             a, b = lo_feature[key][m], hi_feature[key][m]
@@ -476,11 +487,13 @@ def plan_lines(data, features, targets, which, profile, starts, windows):
         else:
             key, in_win = None, []
         centres = _centres(shifted[cuts[m]:cuts[m + 1]], in_win, hydrogen, centre, fw)
-        # (the hydrogen lines' wing mask takes the features as an array, as before)
-        skip = wing_mask(data, targets, i, centre, window, kinds[key][a:b] if key is not None else np.zeros(0),
-                         centres) if hydrogen else None
+        # (the hydrogen lines' wing mask takes the features as an array, as before; kept for their blends)
+        found_h = skip = None
+        if hydrogen:
+            found_h = kinds[key][a:b] if key is not None else np.zeros(0)
+            skip = wing_mask(data, targets, i, centre, window, found_h, centres)
         plans[i] = LinePlan(result, fw, hydrogen, ic_m, sign_m, detected, max_shift, window,
-                            cont[m, :length_l[m]], centres, skip, voigt_l[m], wants_fit=detected)
+                            cont[m, :length_l[m]], centres, skip, voigt_l[m], detected, None, found_h)
     return plans
 
 
@@ -522,30 +535,62 @@ def finish_line(data, features, targets, i, plan, fitter):
 
 def finish_lines(data, features, targets, plans, exact=True):
     """:func:`finish_line` of every plan (``{index: LinePlan}``), the wing fits batched (:func:`wing_fits`;
-    ``exact``: see :func:`specan.lines.batchfit.voigt_batch`)."""
-    unfitted = [plan for plan in plans.values() if plan.window is not None and plan.fit is None]
-    widths = dict(zip(map(id, unfitted), half_widths(data, [p.ic for p in unfitted], [p.window.lo for p in unfitted],
-                                                     [p.window.hi for p in unfitted], [p.sign for p in unfitted])))
-    for i, plan in plans.items():
-        if plan.window is not None:
-            _fitted(data, plan, widths.get(id(plan)))
-            if plan.hydrogen:
-                less_blends(data, features, targets, i, plan)
-    strong = [i for i, plan in plans.items() if plan.window is not None and _wants_wings(plan)]
+    ``exact``: see :func:`specan.lines.batchfit.voigt_batch`).
+
+    The lines are finished in plain loops over their results, :func:`_fitted`'s, :func:`chosen_ew`'s
+    and (without a wing fit) :func:`_finished`'s arithmetic written out (no call a line): the same
+    results (``tests/test_lines_lean.py``).
+    """
+    live = [(i, plan) for i, plan in plans.items() if plan.window is not None]
+    unfitted = [plan for _, plan in live if plan.fit is None]
+    widths = half_widths(data, [p.ic for p in unfitted], [p.window.lo for p in unfitted],
+                         [p.window.hi for p in unfitted], [p.sign for p in unfitted])
+    # _fitted without a fit: the half-depth width, and chosen_ew's integral (no fit, whatever the window)
+    for plan, width in zip(unfitted, widths):
+        result = plan.result
+        result.fwhm = width
+        result.method, result.ew, result.ew_err = "integration", result.ew_int, result.ew_int_err
+    for i, plan in live:
+        fit = plan.fit
+        if fit is not None:
+            # _fitted with a fit, and chosen_ew's choice, written out
+            result = plan.result
+            result.profile = profile = "voigt" if plan.voigt else "gauss"
+            result.fit = dict(fit, profile=profile, sign=plan.sign, ew_int=result.ew_int)
+            ew, ew_err = fit["ew"], fit["ew_err"]
+            result.ew_fit, result.ew_fit_err, result.fit_chi2 = ew, ew_err, fit["chi2"]
+            result.fwhm, result.wave_obs = fit["fwhm"], fit["centre"]
+            n_extra = len(plan.centres) - 1
+            if (plan.window.cut or n_extra) and not plan.hydrogen:
+                result.method = ("multi_" if n_extra else "") + profile + "_fit"
+                result.ew, result.ew_err = ew, ew_err
+            else:
+                result.method, result.ew, result.ew_err = "integration", result.ew_int, result.ew_int_err
+        if plan.hydrogen:   # (its own plan only, once its fitted quantities are in)
+            less_blends(data, features, targets, i, plan)
+    strong = [i for i, plan in live if _wants_wings(plan)]
     wings = wing_fits(data, features, targets, strong, [plans[i].result.wave_obs for i in strong],
                       [plans[i].fit for i in strong], [plans[i].fw for i in strong], exact=exact)
-    wing_of = dict(zip(strong, wings))
-    done = [i for i, plan in plans.items() if plan.window is not None]
-    final = [plans[i].window if wing_of.get(i) is None else wing_of[i][1] for i in done]
-    out = {i: plan.result if plan.window is None else _finished(data, plan, wing_of.get(i), cayrel=False)
-           for i, plan in plans.items()}
-    if done:
+    wing_of = {i: wing for i, wing in zip(strong, wings) if wing is not None}
+    final = []
+    for i, plan in live:
+        wing = wing_of.get(i)
+        if wing is None:
+            # _finished without a wing fit, its Cayrel error below
+            result = plan.result
+            result.detected = plan.detected and abs(result.ew) > 2.0 * result.ew_err
+            final.append(plan.window)
+        else:
+            _finished(data, plan, wing, cayrel=False)
+            final.append(wing[1])
+    out = {i: plan.result for i, plan in plans.items()}
+    if live:
         # the Cayrel errors of all lines at once (_finished's arithmetic, element by element)
-        fwhm = np.array([out[i].fwhm for i in done], float)
-        fwhm_c = np.where(np.isfinite(fwhm), fwhm, np.array([plans[i].fw for i in done], float))
-        pixel = data.dx[np.array([plans[i].ic for i in done], int)]
-        for i, err in zip(done, cayrel_error(fwhm_c, pixel, 1.0 / window_noises(data, final)).tolist()):
-            out[i].ew_err_cayrel = err
+        fwhm = np.array([plan.result.fwhm for _, plan in live], float)
+        fwhm_c = np.where(np.isfinite(fwhm), fwhm, np.array([plan.fw for _, plan in live], float))
+        pixel = data.dx[np.array([plan.ic for _, plan in live], int)]
+        for (_, plan), err in zip(live, cayrel_error(fwhm_c, pixel, 1.0 / window_noises(data, final)).tolist()):
+            plan.result.ew_err_cayrel = err
     return out
 
 
@@ -665,7 +710,7 @@ def wing_fits(data, features, targets, which, centres, fits, fwhm, max_iter=3, e
 def _typical_noise(data):
     """Median noise of the good pixels (1e-3 without any)."""
     # (the good pixels' noise is finite: np.nanmedian's value is np.median's)
-    return median(data.sigma[data.good]) if data.good.any() else 1e-3
+    return data.typical_noise() if data.good.any() else 1e-3
 
 
 def _wing_problem(data, features, targets, i, centre, fit, fwhm, noise, reach0):
@@ -685,13 +730,16 @@ def _wing_problem(data, features, targets, i, centre, fit, fwhm, noise, reach0):
     others = ((pred >= lo) & (pred <= hi) & ~targets.hydrogen).nonzero()[0]
     others = others[others != i]
     depth_at = 1.0 - np.interp(pred[others] + shift, data.wave, data.smooth)
-    strong = others[depth_at > 0.5]
+    deep = depth_at > 0.5
+    strong = others[deep]
     centres = [centre]
     for c in pred[strong] + shift:
         if min(abs(c - x) for x in centres) > MIN_SEPARATION * fwhm:
             centres.append(c)
     centres = np.array(centres)
-    weak_pos = np.concatenate([pred[np.setdiff1d(others, strong)] + shift, features.position[
+    # (the others not strong: ``others`` is sorted and unique, so these are np.setdiff1d(others, strong),
+    # without its sorts)
+    weak_pos = np.concatenate([pred[others[~deep]] + shift, features.position[
         (features.position >= lo) & (features.position <= hi)]])
     x = data.wave[win.lo:win.hi + 1]
     far = np.abs(weak_pos[:, None] - centres[None, :]).min(axis=1) > MIN_SEPARATION * fwhm
@@ -896,9 +944,13 @@ def line_table(data, listed, targets, results, star_type=None):
     kept = row_values(listed)
     ids = kept.ids
     # every result's float values read in one pass (one attrgetter per result, not one getattr per value)
-    values = np.array([_FLOAT_VALUES(r) for r in results], float).reshape(len(results), len(_FLOAT_COLUMNS))
+    # (as one flat run of Python floats into np.fromiter: the same values as np.array of the tuples, without its
+    # nested-sequence discovery)
+    values = np.fromiter(chain.from_iterable(map(_FLOAT_VALUES, results)), float,
+                         len(results) * len(_FLOAT_COLUMNS)).reshape(len(results), len(_FLOAT_COLUMNS))
     cols = dict(zip(_FLOAT_COLUMNS, np.ascontiguousarray(values.T)))
-    aa, kms = u.AA, _KMS
+    # (units attached to the rows made above, no copy: ``values * unit`` copies them again, twice the time)
+    aa = partial(u.Quantity, unit=u.AA, copy=False)
     # the columns built once and the table made from them in one call, text columns as arrays:
     # column by column from lists, astropy's conversions were ~2 ms a spectrum (bench_lines.py)
     columns = {
@@ -907,21 +959,21 @@ def line_table(data, listed, targets, results, star_type=None):
         "species": kept.species.copy(),
         "wave_air": kept.wave_air.copy(),   # (the list's columns, their descriptions kept)
         "wave_vac": kept.wave_vac.copy(),
-        "wave_obs": cols["wave_obs"] * aa,
-        "velocity": velocities(cols["wave_obs"], listed.lab) * kms,
+        "wave_obs": aa(cols["wave_obs"]),
+        "velocity": u.Quantity(velocities(cols["wave_obs"], listed.lab), _KMS, copy=False),
     }
     for name in ("ew", "ew_err", "ew_err_cayrel", "ew_int", "ew_int_err", "ew_fit", "ew_fit_err", "fwhm",
                  "ew_err_blend"):
-        columns[name] = cols[name] * aa
+        columns[name] = aa(cols[name])
     columns["depth"] = cols["depth"]
     columns["significance"] = cols["significance"]
     columns["fit_chi2"] = cols["fit_chi2"]
-    columns["window_min"] = cols["window_min"] * aa
-    columns["window_max"] = cols["window_max"] * aa
-    columns["method"] = np.array([str(r.method) for r in results], str)
-    columns["profile"] = np.array([str(r.profile) for r in results], str)
-    columns["blend"] = np.array([str(b) for b in blends(listed.pred, ids, targets.fwhm,
-                                                        [r.blend_inside for r in results])], str)
+    columns["window_min"] = aa(cols["window_min"])
+    columns["window_max"] = aa(cols["window_max"])
+    # (the text columns from the strings as they are: np.array(..., str) makes the same array of any str)
+    columns["method"] = np.array([r.method for r in results], str)
+    columns["profile"] = np.array([r.profile for r in results], str)
+    columns["blend"] = np.array(blends(listed.pred, ids, targets.fwhm, [r.blend_inside for r in results]), str)
     emission = np.array([r.emission for r in results], bool)
     detected = np.array([r.detected for r in results], bool)
     expected = expected_lines(columns["species"], star_type)
@@ -934,9 +986,11 @@ def line_table(data, listed, targets, results, star_type=None):
     # The same holds inside the window of any allowed line found in absorption (He II 4859 read
     # as emission in the demo's F8 V star, two line widths from H beta; measured).
     allowed = expected.copy()
-    row_of = {name: k for k, name in enumerate(ids)}
-    absorbing = (detected & allowed & ~emission).nonzero()[0]
-    for k in (emission & ~allowed).nonzero()[0]:
+    ruled = (emission & ~allowed).nonzero()[0]
+    if ruled.size:   # (the rows by id, and the absorbing lines, only where an emission line asks)
+        row_of = {name: k for k, name in enumerate(ids)}
+        absorbing = (detected & allowed & ~emission).nonzero()[0]
+    for k in ruled:
         partners = [row_of[b] for b in str(columns["blend"][k]).split(",") if b in row_of]
         inside = np.any((cols["window_min"][absorbing] <= cols["wave_obs"][k])
                         & (cols["wave_obs"][k] <= cols["window_max"][absorbing]))

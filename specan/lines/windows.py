@@ -209,8 +209,11 @@ def _walks_upto(data, ic, sign, min_half, max_half, wide, step, ahead):
     nl = ic.size
     x0 = data.wave[ic]
     # steps a walk can take before the spectrum ends or max_half is passed
-    limit = np.where(step > 0, data.wave.searchsorted(x0 + max_half, side="right") - 1 - ic,
-                     ic - data.wave.searchsorted(x0 - max_half, side="left"))
+    # (the direction's own limit: np.where on the step made both)
+    if step > 0:
+        limit = data.wave.searchsorted(x0 + max_half, side="right") - 1 - ic
+    else:
+        limit = ic - data.wave.searchsorted(x0 - max_half, side="left")
     jmax = int(max(limit.max() + 2, 2))
     if ahead is not None:
         jmax = min(jmax, ahead)
@@ -237,13 +240,23 @@ def _walks_upto(data, ic, sign, min_half, max_half, wide, step, ahead):
     mh = min_half[:, None]
     at_continuum = (depth <= np.maximum(err, 2e-3)) & (dist >= mh)
     neighbour = (depth > best + np.maximum(3.0 * err, 5e-3)) & (dist >= 0.5 * mh)
-    # the plateau test of _on_plateau: one line width back (hydrogen: five) along the walk
-    back_steps = np.ceil(np.where(w, 5.0, 1.0) * mh / data.dx[idc]).astype(int)
+    # the plateau test of _on_plateau: one line width back (hydrogen: five) along the walk. (A call's
+    # walks are mostly all hydrogen or all not: the other kind's tests, which np.where would make over
+    # every step and discard, are made only where some walk is of that kind; the same values.)
+    some_wide = bool(wide.any())
+    all_wide = some_wide and bool(wide.all())
+    back_steps = np.ceil((5.0 if all_wide else np.where(w, 5.0, 1.0) if some_wide else 1.0) * mh
+                         / data.dx[idc]).astype(int)
     # (clipped: steps past the spectrum's end are not valid anyway)
     back = np.minimum(np.maximum(ic[:, None] + step * np.maximum(j[None, :] - back_steps, 0), 0), n - 1)
     fall = _depth_at(data, back, sign, wide) - depth
-    flat = np.where(w, (dist >= 10.0 * mh) & (fall < np.maximum(2.0 * err, 0.1 * depth)),
-                    (dist >= 2.0 * mh) & (fall < np.maximum(2.0 * err, 0.01 * d0[:, None])))
+    if all_wide:
+        flat = (dist >= 10.0 * mh) & (fall < np.maximum(2.0 * err, 0.1 * depth))
+    elif not some_wide:
+        flat = (dist >= 2.0 * mh) & (fall < np.maximum(2.0 * err, 0.01 * d0[:, None]))
+    else:
+        flat = np.where(w, (dist >= 10.0 * mh) & (fall < np.maximum(2.0 * err, 0.1 * depth)),
+                        (dist >= 2.0 * mh) & (fall < np.maximum(2.0 * err, 0.01 * d0[:, None])))
     plateau = ~(depth > 0.5 * d0[:, None]) & flat
     stops = valid & (at_continuum | neighbour | plateau)
     any_stop = stops.any(axis=1)
