@@ -305,21 +305,12 @@ def alternated(cases, other, rounds, block=5):
     """CPU ms per spectrum of ``measure`` here and in ``other`` (:func:`other_checkout`), the two run
     by turns on blocks of ``block`` spectra in one process: the machine's load, which moves the CPU
     time of a process by +-20% from one minute to the next, then weighs on both alike."""
-    import copy
     import importlib
 
     other_lines = importlib.import_module(other.__name__ + ".lines")
-    other_info = importlib.import_module(other.__name__ + ".obsinfo").ObsInfo
     importlib.import_module(other.__name__ + ".resolution")
-    theirs = []
-    for spec, known in cases:
-        # the other package's own carrier of the metadata (it checks for its own class)
-        twin = copy.copy(spec)
-        twin.meta = dict(spec.meta)
-        info = other_info()
-        info.__dict__.update(vars(spec.meta["specan"]))
-        twin.meta["specan"] = info
-        theirs.append((twin, known))
+    # the other package's own carrier of the metadata (it checks for its own class)
+    theirs = _twins_for(cases, other)
     for (spec, known), (twin, _) in zip(cases, theirs):   # imports, caches
         lines.measure(spec, **known)
         other_lines.measure(twin, **known)
