@@ -299,8 +299,9 @@ def _read_rows(out):
 def test_killed_run_then_rerun_gives_complete_catalogue(tmp_path, sig):
     # read + prepare take 2-10 ms a file, so the run must still have many files to go when the
     # signal lands: with 8, and later with 24, it once finished its loop before the signal came
-    # (done == n, measured); 120 files leave hundreds of milliseconds of work
-    n = 120
+    # (done == n, measured), and with 120 on a machine loaded by other work (load 2 on 2 cores: the
+    # test's own process waited its turn while the run went on); 400 files leave seconds of work
+    n = 400
     night = plain_night(tmp_path / "night", n, pixels=800)
     out = tmp_path / "out"
     cmd = [sys.executable, "-m", "specan", "run", str(night), "--out", str(out), "--no-plots", *BASIC_CLI]
