@@ -336,7 +336,7 @@ def test_vectorised_plans_equal_one_by_one():
                 assert getattr(one.result, name) == getattr(two.result, name), name
             for name in ("ew_int", "ew_int_err", "depth"):
                 assert getattr(two.result, name) == pytest.approx(getattr(one.result, name), rel=1e-12, abs=1e-14)
-            # every other field as plan_line's keywords leave it (plan_lines gives them in order, positionally)
+            # every other field as plan_line's keywords leave it
             for f in fields(LineResult):
                 if f.name not in ("ew_int", "ew_int_err", "depth"):
                     a, b = getattr(one.result, f.name), getattr(two.result, f.name)

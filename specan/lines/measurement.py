@@ -42,8 +42,6 @@ __all__ = ["measure", "cayrel_error", "Targets", "LineResult", "line_targets", "
            "match_feature", "integrated_ew", "central_depth", "use_voigt", "fit_line", "chosen_ew",
            "window_noise", "half_width", "line_table", "wing_fit"]
 
-#: NaN, the value of a quantity not measured (:class:`LineResult`'s default)
-_NAN = np.nan
 #: Profiles :func:`measure` can fit.
 PROFILES = ("auto", "gauss", "voigt")
 #: The quick design's rounds of a strong line's wing fit (:func:`wing_fits`; the exact design
@@ -474,12 +472,9 @@ def plan_lines(data, features, targets, which, profile, starts, windows):
         fw, hydrogen = fws[m], hyd_l[m]
         window = wins[m]
         centre, max_shift, _, ic_m, sign_m, detected = starts[i]   # (LineStart's fields, in their order)
-        # (LineResult's fields given in their order, as LineResult(wave_obs=centre, ew_int=..., ew_int_err=...,
-        # significance=..., depth=..., window_min=..., window_max=..., emission=...) makes them with the other
-        # fields at their defaults: a third of that call's time, whose keywords the dataclass matches one by
-        # one; tests/test_lines_batched.py holds the order against plan_line)
-        result = LineResult(centre, _NAN, _NAN, _NAN, ew_int_l[m], ew_int_err_l[m], _NAN, _NAN, _NAN, depth_l[m],
-                            signif_l[m], x0_l[m], x1_l[m], _NAN, _NAN, _NAN, (), "none", "", False, sign_m < 0)
+        result = LineResult(wave_obs=centre, ew_int=ew_int_l[m], ew_int_err=ew_int_err_l[m],
+                            significance=signif_l[m], depth=depth_l[m],
+                            window_min=x0_l[m], window_max=x1_l[m], emission=sign_m < 0)
         if kinds:
             key = 1.0 if sign_m > 0 else -1.0
             a, b = lo_feature[key][m], hi_feature[key][m]
@@ -493,7 +488,7 @@ def plan_lines(data, features, targets, which, profile, starts, windows):
             found_h = kinds[key][a:b] if key is not None else np.zeros(0)
             skip = wing_mask(data, targets, i, centre, window, found_h, centres)
         plans[i] = LinePlan(result, fw, hydrogen, ic_m, sign_m, detected, max_shift, window,
-                            cont[m, :length_l[m]], centres, skip, voigt_l[m], detected, None, found_h)
+                            cont[m, :length_l[m]], centres, skip, voigt_l[m], wants_fit=detected, in_win=found_h)
     return plans
 
 
@@ -535,62 +530,30 @@ def finish_line(data, features, targets, i, plan, fitter):
 
 def finish_lines(data, features, targets, plans, exact=True):
     """:func:`finish_line` of every plan (``{index: LinePlan}``), the wing fits batched (:func:`wing_fits`;
-    ``exact``: see :func:`specan.lines.batchfit.voigt_batch`).
-
-    The lines are finished in plain loops over their results, :func:`_fitted`'s, :func:`chosen_ew`'s
-    and (without a wing fit) :func:`_finished`'s arithmetic written out (no call a line): the same
-    results (``tests/test_lines_lean.py``).
-    """
-    live = [(i, plan) for i, plan in plans.items() if plan.window is not None]
-    unfitted = [plan for _, plan in live if plan.fit is None]
-    widths = half_widths(data, [p.ic for p in unfitted], [p.window.lo for p in unfitted],
-                         [p.window.hi for p in unfitted], [p.sign for p in unfitted])
-    # _fitted without a fit: the half-depth width, and chosen_ew's integral (no fit, whatever the window)
-    for plan, width in zip(unfitted, widths):
-        result = plan.result
-        result.fwhm = width
-        result.method, result.ew, result.ew_err = "integration", result.ew_int, result.ew_int_err
-    for i, plan in live:
-        fit = plan.fit
-        if fit is not None:
-            # _fitted with a fit, and chosen_ew's choice, written out
-            result = plan.result
-            result.profile = profile = "voigt" if plan.voigt else "gauss"
-            result.fit = dict(fit, profile=profile, sign=plan.sign, ew_int=result.ew_int)
-            ew, ew_err = fit["ew"], fit["ew_err"]
-            result.ew_fit, result.ew_fit_err, result.fit_chi2 = ew, ew_err, fit["chi2"]
-            result.fwhm, result.wave_obs = fit["fwhm"], fit["centre"]
-            n_extra = len(plan.centres) - 1
-            if (plan.window.cut or n_extra) and not plan.hydrogen:
-                result.method = ("multi_" if n_extra else "") + profile + "_fit"
-                result.ew, result.ew_err = ew, ew_err
-            else:
-                result.method, result.ew, result.ew_err = "integration", result.ew_int, result.ew_int_err
-        if plan.hydrogen:   # (its own plan only, once its fitted quantities are in)
-            less_blends(data, features, targets, i, plan)
-    strong = [i for i, plan in live if _wants_wings(plan)]
+    ``exact``: see :func:`specan.lines.batchfit.voigt_batch`)."""
+    unfitted = [plan for plan in plans.values() if plan.window is not None and plan.fit is None]
+    widths = dict(zip(map(id, unfitted), half_widths(data, [p.ic for p in unfitted], [p.window.lo for p in unfitted],
+                                                     [p.window.hi for p in unfitted], [p.sign for p in unfitted])))
+    for i, plan in plans.items():
+        if plan.window is not None:
+            _fitted(data, plan, widths.get(id(plan)))
+            if plan.hydrogen:
+                less_blends(data, features, targets, i, plan)
+    strong = [i for i, plan in plans.items() if plan.window is not None and _wants_wings(plan)]
     wings = wing_fits(data, features, targets, strong, [plans[i].result.wave_obs for i in strong],
                       [plans[i].fit for i in strong], [plans[i].fw for i in strong], exact=exact)
-    wing_of = {i: wing for i, wing in zip(strong, wings) if wing is not None}
-    final = []
-    for i, plan in live:
-        wing = wing_of.get(i)
-        if wing is None:
-            # _finished without a wing fit, its Cayrel error below
-            result = plan.result
-            result.detected = plan.detected and abs(result.ew) > 2.0 * result.ew_err
-            final.append(plan.window)
-        else:
-            _finished(data, plan, wing, cayrel=False)
-            final.append(wing[1])
-    out = {i: plan.result for i, plan in plans.items()}
-    if live:
+    wing_of = dict(zip(strong, wings))
+    done = [i for i, plan in plans.items() if plan.window is not None]
+    final = [plans[i].window if wing_of.get(i) is None else wing_of[i][1] for i in done]
+    out = {i: plan.result if plan.window is None else _finished(data, plan, wing_of.get(i), cayrel=False)
+           for i, plan in plans.items()}
+    if done:
         # the Cayrel errors of all lines at once (_finished's arithmetic, element by element)
-        fwhm = np.array([plan.result.fwhm for _, plan in live], float)
-        fwhm_c = np.where(np.isfinite(fwhm), fwhm, np.array([plan.fw for _, plan in live], float))
-        pixel = data.dx[np.array([plan.ic for _, plan in live], int)]
-        for (_, plan), err in zip(live, cayrel_error(fwhm_c, pixel, 1.0 / window_noises(data, final)).tolist()):
-            plan.result.ew_err_cayrel = err
+        fwhm = np.array([out[i].fwhm for i in done], float)
+        fwhm_c = np.where(np.isfinite(fwhm), fwhm, np.array([plans[i].fw for i in done], float))
+        pixel = data.dx[np.array([plans[i].ic for i in done], int)]
+        for i, err in zip(done, cayrel_error(fwhm_c, pixel, 1.0 / window_noises(data, final)).tolist()):
+            out[i].ew_err_cayrel = err
     return out
 
 
