@@ -1,0 +1,288 @@
+"""The Voigt batch's Levenberg-Marquardt iteration compiled (numba), where numba is installed.
+
+PROTOTYPE (branch lines21): a measurement of what compiling :func:`.batchfit.voigt_batch`'s
+per-iteration arithmetic gives. In numpy an iteration is ~125 calls on a handful of small
+problems, their count (not their arithmetic) its cost; here the same steps are two compiled calls
+an iteration, around the model evaluation, which stays in numpy (scipy's Faddeeva function):
+
+- :func:`lm_propose`: gradient and normal matrix, the parameters held on their bounds, the
+  Gauss-Newton and the damped solves (small dense systems, LU with partial pivoting, written here),
+  the stopping tests, the bound-crossing re-solve, the trial point and its predicted decrease;
+- :func:`lm_accept`: the trial's cost, acceptance, Nielsen's damping update, written into the
+  batch's full arrays in place.
+
+The arithmetic is that of the numpy loop step by step, but sums are made in another order, so
+the iterates differ in the last bits and a fit can stop one iteration earlier or later (see the
+report of branch lines21 for how far the tables move). ``AVAILABLE`` is False where numba is
+absent; :mod:`.batchfit` then takes its numpy loop.
+"""
+
+from __future__ import annotations
+
+import numpy as np
+
+try:   # numba is optional: without it the numpy loop of batchfit runs
+    from numba import njit
+    AVAILABLE = True
+except ImportError:   # pragma: no cover - exercised where numba is absent
+    AVAILABLE = False
+
+    def njit(*args, **kwargs):
+        def wrap(func):
+            return func
+        return wrap
+
+__all__ = ["AVAILABLE", "lm_accept", "lm_propose", "lu_solve"]
+
+
+@njit(cache=True)
+def lu_solve(m, rhs, out):
+    """Solve ``m x = rhs`` (n x n, small) by LU with partial pivoting (as LAPACK's gesv) into ``out``.
+
+    ``m`` is overwritten. Returns False where a pivot is exactly zero (LAPACK's singular test).
+    """
+    n = m.shape[0]
+    for i in range(n):
+        out[i] = rhs[i]
+    for k in range(n):
+        piv = k
+        best = abs(m[k, k])
+        for i in range(k + 1, n):
+            if abs(m[i, k]) > best:
+                best = abs(m[i, k])
+                piv = i
+        if m[piv, k] == 0.0:
+            return False
+        if piv != k:
+            for j in range(n):
+                t = m[k, j]
+                m[k, j] = m[piv, j]
+                m[piv, j] = t
+            t = out[k]
+            out[k] = out[piv]
+            out[piv] = t
+        inv = 1.0 / m[k, k]
+        for i in range(k + 1, n):
+            f = m[i, k] * inv
+            if f != 0.0:
+                m[i, k] = f
+                for j in range(k + 1, n):
+                    m[i, j] -= f * m[k, j]
+                out[i] -= f * out[k]
+    for i in range(n - 1, -1, -1):
+        s = out[i]
+        for j in range(i + 1, n):
+            s -= m[i, j] * out[j]
+        out[i] = s / m[i, i]
+    return True
+
+
+@njit(cache=True)
+def _solve_or_lstsq(m, rhs, out):
+    """:func:`lu_solve`, and a least-squares solution where the system is singular (as batchfit's
+    ``_solve``)."""
+    work = m.copy()
+    if lu_solve(work, rhs, out):
+        return
+    # (numpy's lstsq with rcond=None: machine epsilon times the larger dimension)
+    sol = np.linalg.lstsq(m, rhs, 2.220446049250313e-16 * m.shape[0])[0]
+    for i in range(out.size):
+        out[i] = sol[i]
+
+
+@njit(cache=True)
+def lm_propose(act, p, r, jac, cost, lb, ub, padded, lam, decrement, cost_tol, tail):
+    """One iteration's proposal for the problems ``act`` (indices into the batch's full arrays).
+
+    Parameters
+    ----------
+    act : int array (a,)
+    p, r, jac, cost : the batch's parameters (b, n), weighted residuals (b, m), Jacobians (b, m, n)
+        and costs (b,)
+    lb, ub, padded : bounds (b, n) and the padding's parameters (b, n, bool)
+    lam : damping (b,)
+    decrement, cost_tol : float
+        the stopping tests of :func:`.batchfit.voigt_batch`
+    tail : bool
+        also test whether each problem's equivalent width is within its error (the batch's tail)
+
+    Returns
+    -------
+    small, stop : bool arrays (a,)
+        converged; stopping (converged, or the damping beyond 1e12)
+    pn : (a, n) the trial parameters (rows that stop: their parameters)
+    predicted : (a,) the linear model's predicted decrease
+    ill : (a,) with ``tail``: whether the equivalent width is no larger than its error (False where
+        the normal matrix is singular, and for all without ``tail``)
+    singular : bool, whether a tail test met a singular matrix (then no problem counts as ill)
+    """
+    na = act.size
+    _, m, n = jac.shape
+    small = np.zeros(na, np.bool_)
+    stop = np.zeros(na, np.bool_)
+    ill = np.zeros(na, np.bool_)
+    pn = np.empty((na, n))
+    predicted = np.zeros(na)
+    singular = False
+    grad = np.empty(n)
+    jtj = np.empty((n, n))
+    diag = np.empty(n)
+    held = np.empty(n, np.bool_)
+    held2 = np.empty(n, np.bool_)
+    mat = np.empty((n, n))
+    rhs = np.empty(n)
+    gn = np.empty(n)
+    step = np.empty(n)
+    tob = np.empty(n)
+    unit = np.zeros(n)
+    sol = np.empty(n)
+    for i in range(na):
+        b = act[i]
+        J = jac[b]
+        R = r[b]
+        P = p[b]
+        # gradient J'r and normal matrix J'J
+        for a in range(n):
+            grad[a] = 0.0
+            for c in range(n):
+                jtj[a, c] = 0.0
+        for k in range(m):
+            rk = R[k]
+            for a in range(n):
+                ja = J[k, a]
+                if ja == 0.0:
+                    continue
+                grad[a] += ja * rk
+                for c in range(a, n):
+                    jtj[a, c] += ja * J[k, c]
+        for a in range(n):
+            for c in range(a):
+                jtj[a, c] = jtj[c, a]
+        if tail:
+            # the variance of the equivalent width (parameter 3): (J'J + padding's ones)^-1 [3, 3]
+            for a in range(n):
+                unit[a] = 0.0
+                for c in range(n):
+                    mat[a, c] = jtj[a, c]
+                if padded[b, a]:
+                    mat[a, a] += 1.0
+            unit[3] = 1.0
+            if lu_solve(mat, unit, sol):
+                var = max(sol[3], 0.0)
+                ill[i] = not (abs(P[3]) > np.sqrt(var))
+            else:
+                singular = True
+        # held: the padding, and parameters on a bound with the gradient pushing outward
+        dmax = 0.0
+        for a in range(n):
+            span = ub[b, a] - lb[b, a]
+            held[a] = padded[b, a] or (P[a] <= lb[b, a] + 1e-12 * span and grad[a] > 0.0) or \
+                (P[a] >= ub[b, a] - 1e-12 * span and grad[a] < 0.0)
+            diag[a] = jtj[a, a]
+            dmax = max(dmax, diag[a])
+        floor = 1e-12 * dmax + 1e-300
+        for a in range(n):
+            diag[a] = max(diag[a], floor)
+            rhs[a] = 0.0 if held[a] else -grad[a]
+        # the Gauss-Newton step (damping 1e-12): its decrement tells convergence
+        for a in range(n):
+            for c in range(n):
+                mat[a, c] = jtj[a, c] if not (held[a] or held[c]) else 0.0
+            if held[a]:
+                mat[a, a] = 1.0
+            else:
+                mat[a, a] = jtj[a, a] + 1e-12 * diag[a]
+        _solve_or_lstsq(mat, rhs, gn)
+        dec = 0.0
+        for a in range(n):
+            dec += rhs[a] * gn[a]
+        small[i] = 0.5 * dec <= max(decrement, cost_tol * cost[b])
+        stop[i] = small[i] or lam[b] > 1e12
+        if stop[i]:
+            for a in range(n):
+                pn[i, a] = P[a]
+            continue
+        # the damped step
+        lb_ = lam[b]
+        for a in range(n):
+            for c in range(n):
+                mat[a, c] = jtj[a, c] if not (held[a] or held[c]) else 0.0
+            if held[a]:
+                mat[a, a] = 1.0
+            else:
+                mat[a, a] = jtj[a, a] + lb_ * diag[a]
+        _solve_or_lstsq(mat, rhs, step)
+        # a step crossing bounds: those parameters to their bound, the others solved again
+        crossed = False
+        for a in range(n):
+            to = P[a] + step[a]
+            c_ = to < lb[b, a] or to > ub[b, a]
+            held2[a] = held[a] or c_
+            if c_:
+                crossed = True
+                tob[a] = min(max(to, lb[b, a]), ub[b, a]) - P[a]
+            else:
+                tob[a] = 0.0
+        if crossed:
+            for a in range(n):
+                if held2[a]:
+                    rhs[a] = 0.0
+                else:
+                    s = -grad[a]
+                    for c in range(n):
+                        s -= jtj[a, c] * tob[c]
+                    rhs[a] = s
+                for c in range(n):
+                    mat[a, c] = jtj[a, c] if not (held2[a] or held2[c]) else 0.0
+                if held2[a]:
+                    mat[a, a] = 1.0
+                else:
+                    mat[a, a] = jtj[a, a] + lb_ * diag[a]
+            _solve_or_lstsq(mat, rhs, step)
+            for a in range(n):
+                step[a] += tob[a]
+        # the trial point within the bounds, and the decrease the linear model predicts
+        for a in range(n):
+            pn[i, a] = min(max(P[a] + step[a], lb[b, a]), ub[b, a])
+            step[a] = pn[i, a] - P[a]
+        lin = 0.0
+        quad = 0.0
+        for a in range(n):
+            lin += grad[a] * step[a]
+            s = 0.0
+            for c in range(n):
+                s += jtj[a, c] * step[c]
+            quad += step[a] * s
+        predicted[i] = -lin - 0.5 * quad
+    return small, stop, pn, predicted, ill, singular
+
+
+@njit(cache=True)
+def lm_accept(act, pn, rn, jn, predicted, p, r, jac, cost, lam, nu):
+    """The trials ``pn`` of the problems ``act`` (their residuals ``rn`` and Jacobians ``jn``) taken
+    where they lower the cost, the damping updated (Nielsen 1999, as :func:`.batchfit.voigt_batch`),
+    in the full arrays ``p, r, jac, cost, lam, nu`` in place."""
+    na = act.size
+    m = rn.shape[1]
+    n = pn.shape[1]
+    for i in range(na):
+        b = act[i]
+        cn = 0.0
+        for k in range(m):
+            cn += rn[i, k] * rn[i, k]
+        cn *= 0.5
+        if cn < cost[b]:
+            rho = (cost[b] - cn) / max(predicted[i], 1e-300)
+            t = 2.0 * min(max(rho, 0.0), 1.0) - 1.0
+            lam[b] = max(lam[b] * max(1.0 / 3.0, 1.0 - t * t * t), 1e-15)
+            nu[b] = 2.0
+            cost[b] = cn
+            for a in range(n):
+                p[b, a] = pn[i, a]
+            for k in range(m):
+                r[b, k] = rn[i, k]
+                for a in range(n):
+                    jac[b, k, a] = jn[i, k, a]
+        else:
+            lam[b] = max(lam[b] * nu[b], 1e-15)
+            nu[b] = 2.0 * nu[b]
