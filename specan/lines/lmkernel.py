@@ -32,7 +32,7 @@ except ImportError:   # pragma: no cover - exercised where numba is absent
             return func
         return wrap
 
-__all__ = ["AVAILABLE", "lm_accept", "lm_propose", "lu_solve"]
+__all__ = ["AVAILABLE", "lm_accept", "lm_propose", "lu_solve", "symmetric_lstsq"]
 
 
 @njit(cache=True)
@@ -78,16 +78,68 @@ def lu_solve(m, rhs, out):
 
 
 @njit(cache=True)
+def symmetric_lstsq(m, rhs, out):
+    """Minimum-norm least-squares solution of ``m x = rhs`` for a small symmetric ``m``, into ``out``.
+
+    The eigen-decomposition by cyclic Jacobi rotations (common practice, Golub & Van Loan ch. 8, from
+    memory), eigenvalues below ``n eps max|eigenvalue|`` dropped: for a symmetric matrix the singular
+    values are the eigenvalues' sizes, so this is numpy's ``lstsq(m, rhs, rcond=None)`` (tested against
+    it). Written here rather than numba's ``np.linalg.lstsq``, whose compilation alone took 5.2 s.
+    """
+    n = m.shape[0]
+    a = m.copy()
+    v = np.eye(n)
+    for _ in range(100):
+        off = 0.0
+        for i in range(n):
+            for j in range(i + 1, n):
+                off += a[i, j] * a[i, j]
+        if off == 0.0:
+            break
+        for i in range(n):
+            for j in range(i + 1, n):
+                if a[i, j] == 0.0:
+                    continue
+                theta = (a[j, j] - a[i, i]) / (2.0 * a[i, j])
+                t = (1.0 if theta >= 0 else -1.0) / (abs(theta) + np.sqrt(theta * theta + 1.0))
+                c = 1.0 / np.sqrt(t * t + 1.0)
+                s = t * c
+                for k in range(n):   # columns i, j
+                    aki, akj = a[k, i], a[k, j]
+                    a[k, i] = c * aki - s * akj
+                    a[k, j] = s * aki + c * akj
+                for k in range(n):   # rows i, j
+                    aik, ajk = a[i, k], a[j, k]
+                    a[i, k] = c * aik - s * ajk
+                    a[j, k] = s * aik + c * ajk
+                for k in range(n):
+                    vki, vkj = v[k, i], v[k, j]
+                    v[k, i] = c * vki - s * vkj
+                    v[k, j] = s * vki + c * vkj
+    big = 0.0
+    for i in range(n):
+        big = max(big, abs(a[i, i]))
+    cut = n * 2.220446049250313e-16 * big   # (numpy's lstsq, rcond=None: eps times the larger dimension)
+    for i in range(n):
+        out[i] = 0.0
+    for e in range(n):
+        if abs(a[e, e]) <= cut:
+            continue
+        proj = 0.0
+        for k in range(n):
+            proj += v[k, e] * rhs[k]
+        proj /= a[e, e]
+        for k in range(n):
+            out[k] += proj * v[k, e]
+
+
+@njit(cache=True)
 def _solve_or_lstsq(m, rhs, out):
-    """:func:`lu_solve`, and a least-squares solution where the system is singular (as batchfit's
-    ``_solve``)."""
+    """:func:`lu_solve`, and the least-squares solution where the system is singular (as batchfit's
+    ``_solve``; the systems here are symmetric)."""
     work = m.copy()
-    if lu_solve(work, rhs, out):
-        return
-    # (numpy's lstsq with rcond=None: machine epsilon times the larger dimension)
-    sol = np.linalg.lstsq(m, rhs, 2.220446049250313e-16 * m.shape[0])[0]
-    for i in range(out.size):
-        out[i] = sol[i]
+    if not lu_solve(work, rhs, out):
+        symmetric_lstsq(m, rhs, out)
 
 
 @njit(cache=True)
