@@ -42,7 +42,7 @@ import math
 import os
 
 import numpy as np
-from scipy.special import voigt_profile
+from scipy.special import voigt_profile, wofz
 
 from ..resolution import GAUSS_FWHM
 from . import lmkernel
@@ -116,6 +116,9 @@ _JAC_SIGNS = np.array([1.0, -1.0, -1.0])
 #: PROTOTYPE (branch lines21): the Voigt batch's iterations compiled (:mod:`.lmkernel`) where numba is
 #: installed; ``voigt_batch(compiled=...)`` overrides it per call, SPECAN_COMPILED=0 for the process
 COMPILED = os.environ.get("SPECAN_COMPILED", "1") != "0"
+#: ... and with it the model's arithmetic around scipy's Faddeeva function (:func:`.lmkernel.lm_accept_model`;
+#: SPECAN_COMPILED_MODEL=0: the model evaluated in numpy, :class:`_VoigtModel`)
+COMPILED_MODEL = os.environ.get("SPECAN_COMPILED_MODEL", "1") != "0"
 
 
 def fit_planned(data, plans, exact=True):
@@ -489,7 +492,13 @@ def _compiled_iterations(model, p, r, jac, cost, lb, ub, real, finite, converged
     lam, nu = np.full(nb, LAMBDA0), np.full(nb, 2.0)
     # (the kernels write into these arrays in place, compiled for C-contiguous ones: the model's are)
     assert r.flags.c_contiguous and jac.flags.c_contiguous and p.flags.c_contiguous
-    work = model.rows(act)
+    if COMPILED_MODEL:
+        # the model's points laid out once: problem b's are first[b]:first[b + 1] (model.at is sorted)
+        first = np.searchsorted(model.problem_at, np.arange(nb + 1))
+        comp_at, pix_at = np.divmod(model.offset_at, model.shape[2])
+        work = None
+    else:
+        work = model.rows(act)
     for it in range(max_iter):
         if not act.size:
             break
@@ -504,9 +513,16 @@ def _compiled_iterations(model, p, r, jac, cost, lb, ub, real, finite, converged
             act, pn, predicted = act[go], pn[go], predicted[go]
             if not act.size:
                 break
-            work = model.rows(act)
-        rn, jn = work(pn)
-        lmkernel.lm_accept(act, pn, rn, jn, predicted, p, r, jac, cost, lam, nu)
+            if work is not None:
+                work = model.rows(act)
+        if work is None:
+            # three compiled calls around scipy's Faddeeva function, nothing else an iteration
+            z = lmkernel.lm_points(act, pn, first, model.x_at, model.centre_at)
+            lmkernel.lm_accept_model(act, pn, z, wofz(z), predicted, first, comp_at, pix_at, model.cont, model.y,
+                                     model.wts, p, r, jac, cost, lam, nu)
+        else:
+            rn, jn = work(pn)
+            lmkernel.lm_accept(act, pn, rn, jn, predicted, p, r, jac, cost, lam, nu)
     return act
 
 

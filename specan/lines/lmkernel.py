@@ -32,7 +32,7 @@ except ImportError:   # pragma: no cover - exercised where numba is absent
             return func
         return wrap
 
-__all__ = ["AVAILABLE", "lm_accept", "lm_propose", "lu_solve", "symmetric_lstsq"]
+__all__ = ["AVAILABLE", "lm_accept", "lm_accept_model", "lm_points", "lm_propose", "lu_solve", "symmetric_lstsq"]
 
 
 @njit(cache=True)
@@ -335,6 +335,101 @@ def lm_accept(act, pn, rn, jn, predicted, p, r, jac, cost, lam, nu):
                 r[b, k] = rn[i, k]
                 for a in range(n):
                     jac[b, k, a] = jn[i, k, a]
+        else:
+            lam[b] = max(lam[b] * nu[b], 1e-15)
+            nu[b] = 2.0 * nu[b]
+
+
+# ----------------------------------------------------------------------------- the model around wofz
+# (prototype, second variant: the model's arithmetic compiled as well, scipy's Faddeeva function
+# still called from numpy, once an iteration, on the points these kernels lay out)
+
+_SQRT2 = np.sqrt(2.0)
+_SQRT2PI = np.sqrt(2.0 * np.pi)
+_DW0 = 2j / np.sqrt(np.pi)   # w'(z) = -2 z w(z) + 2i / sqrt(pi), Abramowitz & Stegun 7.1.20
+
+
+@njit(cache=True)
+def lm_points(act, pn, first, x_at, centre_at):
+    """The Faddeeva function's arguments ``z = (x - centre - shift + i gamma) / (sigma sqrt 2)`` at the
+    evaluated points of the problems ``act`` (trial parameters ``pn``, one row each), in order; problem
+    ``b``'s points are ``first[b]:first[b + 1]`` of ``x_at``, ``centre_at``."""
+    total = 0
+    for i in range(act.size):
+        total += first[act[i] + 1] - first[act[i]]
+    z = np.empty(total, np.complex128)
+    k = 0
+    for i in range(act.size):
+        b = act[i]
+        inv_s2 = 1.0 / (pn[i, 1] * _SQRT2)
+        im = pn[i, 2] * inv_s2
+        for q in range(first[b], first[b + 1]):
+            z[k] = complex((x_at[q] - (centre_at[q] + pn[i, 0])) * inv_s2, im)
+            k += 1
+    return z
+
+
+@njit(cache=True)
+def lm_accept_model(act, pn, z, w, predicted, first, comp_at, pix_at, cont, y, wts, p, r, jac, cost, lam, nu):
+    """:func:`lm_accept` with the trial's residuals and Jacobian made here from the Faddeeva function's
+    values ``w`` at ``z`` (:func:`lm_points`' layout): the model of ``batchfit._VoigtModel``,
+    ``cont (1 - sum_c W_c V(x - c_c - shift; sigma, gamma))``, weighted."""
+    _, m, n = jac.shape
+    rn = np.empty(m)
+    jn = np.empty((m, n))
+    k = 0
+    for i in range(act.size):
+        b = act[i]
+        sigma = pn[i, 1]
+        inv_s2 = 1.0 / (sigma * _SQRT2)
+        inv_norm = 1.0 / (sigma * _SQRT2PI)
+        scale = inv_s2 * inv_norm
+        for q in range(m):
+            rn[q] = 0.0   # (holds the weighted sum of profiles until the residual is made)
+            for a in range(n):
+                jn[q, a] = 0.0
+        for q in range(first[b], first[b + 1]):
+            zz = z[k]
+            ww = w[k]
+            k += 1
+            dw = _DW0 - 2.0 * zz * ww
+            v = ww.real * inv_norm
+            d_x = dw.real * scale
+            d_sigma = -((dw * zz).real * inv_norm + v) / sigma
+            d_gamma = -dw.imag * scale
+            c = comp_at[q]
+            px = pix_at[q]
+            wc = pn[i, 3 + c]
+            rn[px] += wc * v
+            jn[px, 0] += wc * d_x
+            jn[px, 1] += wc * d_sigma
+            jn[px, 2] += wc * d_gamma
+            jn[px, 3 + c] = v
+        cn = 0.0
+        for q in range(m):
+            cw = cont[b, q] * wts[b, q]
+            res = (cont[b, q] * (1.0 - rn[q]) - y[b, q]) * wts[b, q]
+            rn[q] = res
+            cn += res * res
+            # the Jacobian's signs: d/dshift = -d/dx of the profile, and the model is cont (1 - ...)
+            jn[q, 0] = jn[q, 0] * cw
+            jn[q, 1] = -jn[q, 1] * cw
+            jn[q, 2] = -jn[q, 2] * cw
+            for a in range(3, n):
+                jn[q, a] = -jn[q, a] * cw
+        cn *= 0.5
+        if cn < cost[b]:
+            rho = (cost[b] - cn) / max(predicted[i], 1e-300)
+            t = 2.0 * min(max(rho, 0.0), 1.0) - 1.0
+            lam[b] = max(lam[b] * max(1.0 / 3.0, 1.0 - t * t * t), 1e-15)
+            nu[b] = 2.0
+            cost[b] = cn
+            for a in range(n):
+                p[b, a] = pn[i, a]
+            for q in range(m):
+                r[b, q] = rn[q]
+                for a in range(n):
+                    jac[b, q, a] = jn[q, a]
         else:
             lam[b] = max(lam[b] * nu[b], 1e-15)
             nu[b] = 2.0 * nu[b]
