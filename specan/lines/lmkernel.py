@@ -433,3 +433,36 @@ def lm_accept_model(act, pn, z, w, predicted, first, comp_at, pix_at, cont, y, w
         else:
             lam[b] = max(lam[b] * nu[b], 1e-15)
             nu[b] = 2.0 * nu[b]
+
+
+def warm():
+    """Compile (or load from numba's cache) every kernel for the argument types the Voigt batch passes,
+    on a tiny problem: called in a process that forks workers, the workers inherit the machine code
+    instead of each loading (~0.27 s CPU) or compiling (~5 s) it on its first spectrum. Does nothing
+    without numba."""
+    if not AVAILABLE:
+        return
+    n, m = 4, 6
+    act = np.arange(1)
+    p = np.array([[0.0, 1.0, 0.2, 0.5]])
+    jac = np.ones((1, m, n))
+    r = np.ones((1, m))
+    cost = np.ones(1)
+    lb, ub = p - 1.0, p + 1.0
+    padded = np.zeros((1, n), np.bool_)
+    lam, nu = np.full(1, 1e-3), np.full(1, 2.0)
+    _, _, pn, predicted, _, _ = lm_propose(act, p, r, jac, cost, lb, ub, padded, lam, 1e-6, 1e-12,
+                                                           True)
+    lm_accept(act, pn, r.copy(), jac.copy(), predicted, p.copy(), r.copy(), jac.copy(), cost.copy(), lam.copy(),
+              nu.copy())
+    first = np.array([0, m])
+    x_at = np.linspace(-1.0, 1.0, m)
+    z = lm_points(act, pn, first, x_at, np.zeros(m))
+    lm_accept_model(act, pn, z, z.copy(), predicted, first, np.zeros(m, np.int64), np.arange(m), np.ones((1, m)),
+                    np.ones((1, m)), np.ones((1, m)), p.copy(), r.copy(), jac.copy(), cost.copy(), lam.copy(),
+                    nu.copy())
+
+
+if AVAILABLE and __import__("os").environ.get("SPECAN_COMPILED_WARM", "0") == "1":
+    # (prototype switch: measured with specan run --jobs 2, see the branch's report)
+    warm()
