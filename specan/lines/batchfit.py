@@ -119,6 +119,8 @@ COMPILED = os.environ.get("SPECAN_COMPILED", "1") != "0"
 #: ... and with it the model's arithmetic around scipy's Faddeeva function (:func:`.lmkernel.lm_accept_model`;
 #: SPECAN_COMPILED_MODEL=0: the model evaluated in numpy, :class:`_VoigtModel`)
 COMPILED_MODEL = os.environ.get("SPECAN_COMPILED_MODEL", "1") != "0"
+#: ... and the Gaussian groups' grid (:func:`.lmkernel.gauss_grid`; SPECAN_COMPILED_GAUSS=1, off by default)
+COMPILED_GAUSS = COMPILED and os.environ.get("SPECAN_COMPILED_GAUSS", "0") == "1"
 
 
 def fit_planned(data, plans, exact=True):
@@ -235,30 +237,33 @@ def _gauss_group(data, problems, ks, ncomp, nsh, out, widths=None, width_step=Fa
     sg = sig_line[:, None] * np.tile(widths, 2 * nsh + 1)[None, :]
     b = (cont - y) * wts
     cw = cont * wts
-    dx = x[:, None, None, :] - (centres[:, None, :, None] + sh[:, :, None, None])   # (L, G, C, P)
-    s4 = sg[:, :, None, None]
-    a = np.exp(-0.5 * (dx / s4) ** 2) / (s4 * np.sqrt(2 * np.pi)) * cw[:, None, None, :]
-    ata = a @ a.transpose(0, 1, 3, 2) + 1e-12 * np.eye(ncomp)
-    atb = a @ b[:, None, :, None]
-    try:
-        if ncomp == 1:
-            # one component: LAPACK's solve of a 1 x 1 system is the division (the same bits, tested),
-            # without the solver's per-system overhead; a zero pivot stops it as it stops the solver
-            if not np.all(ata != 0):
-                raise np.linalg.LinAlgError("Singular matrix")
-            w = (atb / ata)[..., 0]
-        else:
-            w = np.linalg.solve(ata, atb)[..., 0]                        # (L, G, C)
-    except np.linalg.LinAlgError:
-        # one singular normal matrix stops the whole stack: fit that group line by line
-        from .profiles import fit_gauss
-
-        for k in ks:
-            lo, hi, cnt, cen, max_shift, sig, sgn = problems[k]
-            out[k] = fit_gauss(data, lo, hi, cnt, cen, max_shift, sig, sgn)
-        return
-    atb = atb[..., 0]
-    chi2 = np.einsum("lp,lp->l", b, b)[:, None] - (w * atb).sum(axis=2)     # (L, G)
+    if COMPILED_GAUSS and lmkernel.AVAILABLE:
+        # (prototype: the grid's design, normal matrices, solves and chi-squares in one compiled call)
+        a, ata, w, chi2, solved = lmkernel.gauss_grid(x, cw, b, centres, sh, sg)
+        if not solved:
+            _gauss_one_by_one(data, problems, ks, out)
+            return
+    else:
+        dx = x[:, None, None, :] - (centres[:, None, :, None] + sh[:, :, None, None])   # (L, G, C, P)
+        s4 = sg[:, :, None, None]
+        a = np.exp(-0.5 * (dx / s4) ** 2) / (s4 * np.sqrt(2 * np.pi)) * cw[:, None, None, :]
+        ata = a @ a.transpose(0, 1, 3, 2) + 1e-12 * np.eye(ncomp)
+        atb = a @ b[:, None, :, None]
+        try:
+            if ncomp == 1:
+                # one component: LAPACK's solve of a 1 x 1 system is the division (the same bits, tested),
+                # without the solver's per-system overhead; a zero pivot stops it as it stops the solver
+                if not np.all(ata != 0):
+                    raise np.linalg.LinAlgError("Singular matrix")
+                w = (atb / ata)[..., 0]
+            else:
+                w = np.linalg.solve(ata, atb)[..., 0]                        # (L, G, C)
+        except np.linalg.LinAlgError:
+            # one singular normal matrix stops the whole stack: fit that group line by line
+            _gauss_one_by_one(data, problems, ks, out)
+            return
+        atb = atb[..., 0]
+        chi2 = np.einsum("lp,lp->l", b, b)[:, None] - (w * atb).sum(axis=2)     # (L, G)
     best = chi2.argmin(axis=1)
     rows = np.arange(len(ks))
     wbest = w[rows, best]
@@ -330,6 +335,15 @@ def _gauss_group(data, problems, ks, ncomp, nsh, out, widths=None, width_step=Fa
         out[k] = {"ew": float(wbest[row, 0]), "ew_err": float(np.sqrt(max(c00, 0.0))),
                   "centre": float(centres[row, 0] + shift), "fwhm": float(GAUSS_FWHM * sig),
                   "depth": float(peak), "chi2": float(cbest[row]) / dof, "sigma": float(sig), "gamma": 0.0}
+
+
+def _gauss_one_by_one(data, problems, ks, out):
+    """:func:`.profiles.fit_gauss` of each problem ``ks`` into ``out`` (a group with a singular normal matrix)."""
+    from .profiles import fit_gauss
+
+    for k in ks:
+        lo, hi, cnt, cen, max_shift, sig, sgn = problems[k]
+        out[k] = fit_gauss(data, lo, hi, cnt, cen, max_shift, sig, sgn)
 
 
 def _width_scores(x, b, a, ata, w, centres, sig):

@@ -32,7 +32,7 @@ except ImportError:   # pragma: no cover - exercised where numba is absent
             return func
         return wrap
 
-__all__ = ["AVAILABLE", "lm_accept", "lm_accept_model", "lm_points", "lm_propose", "lu_solve", "symmetric_lstsq"]
+__all__ = ["AVAILABLE", "gauss_grid", "lm_accept", "lm_accept_model", "lm_points", "lm_propose", "lu_solve", "symmetric_lstsq"]
 
 
 @njit(cache=True)
@@ -466,3 +466,59 @@ def warm():
 if AVAILABLE and __import__("os").environ.get("SPECAN_COMPILED_WARM", "0") == "1":
     # (prototype switch: measured with specan run --jobs 2, see the branch's report)
     warm()
+
+
+@njit(cache=True)
+def gauss_grid(x, cw, b, centres, sh, sg):
+    """The Gaussian groups' grid (``batchfit._gauss_group``) compiled: for every line l and grid point g
+    (shift ``sh[l, g]``, width ``sg[l, g]``) the weighted design ``a`` (L, G, C, P) of unit-area Gaussians
+    at ``centres + shift``, its normal matrix ``ata`` (+ 1e-12 on the diagonal), the equivalent widths
+    ``w`` solving it against the weighted data ``b`` and the chi-square ``chi2`` (L, G). ``ok`` is False
+    where a normal matrix is singular (the caller then fits the group line by line, as before)."""
+    L, P = x.shape
+    G = sh.shape[1]
+    C = centres.shape[1]
+    a = np.empty((L, G, C, P))
+    ata = np.empty((L, G, C, C))
+    w = np.empty((L, G, C))
+    chi2 = np.empty((L, G))
+    atb = np.empty(C)
+    mat = np.empty((C, C))
+    sol = np.empty(C)
+    norm = np.sqrt(2.0 * np.pi)
+    for l in range(L):
+        bb = 0.0
+        for q in range(P):
+            bb += b[l, q] * b[l, q]
+        for g in range(G):
+            s = sg[l, g]
+            inv = 1.0 / s
+            scale = 1.0 / (s * norm)
+            for c in range(C):
+                cen = centres[l, c] + sh[l, g]
+                t = 0.0
+                for q in range(P):
+                    u = (x[l, q] - cen) * inv
+                    v = np.exp(-0.5 * u * u) * scale * cw[l, q]
+                    a[l, g, c, q] = v
+                    t += v * b[l, q]
+                atb[c] = t
+            for c in range(C):
+                for d in range(c, C):
+                    t = 0.0
+                    for q in range(P):
+                        t += a[l, g, c, q] * a[l, g, d, q]
+                    ata[l, g, c, d] = t
+                    ata[l, g, d, c] = t
+                ata[l, g, c, c] += 1e-12
+            for c in range(C):
+                for d in range(C):
+                    mat[c, d] = ata[l, g, c, d]
+            if not lu_solve(mat, atb, sol):
+                return a, ata, w, chi2, False
+            t = bb
+            for c in range(C):
+                w[l, g, c] = sol[c]
+                t -= sol[c] * atb[c]
+            chi2[l, g] = t
+    return a, ata, w, chi2, True
