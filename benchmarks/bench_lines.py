@@ -373,6 +373,48 @@ def same_tables(cases, other):
     return tuple(counts)
 
 
+def table_moves(cases, other, exact=False):
+    """How far this checkout's tables stand from ``other``'s (:func:`other_checkout`) on ``cases``, where
+    they are not the same to the bit (a compiled fitting loop sums in another order): a dict of the
+    lines compared, the lines whose ``method``, ``profile``, ``blend``, ``detected``, ``emission`` or
+    ``expected`` differ (or whose row is another line), the largest |change| of ``ew`` and ``ew_fit``
+    in units of their own errors (``ew_err``, ``ew_fit_err``, the other checkout's), of ``fwhm``
+    (relative) and of ``wave_obs`` (km/s: the table carries no error of either), and how many tables
+    differ at all (:func:`same_table`)."""
+    import importlib
+
+    other_lines = importlib.import_module(other.__name__ + ".lines")
+    out = {"lines": 0, "flags": 0, "tables_differ": 0, "ew/err": 0.0, "ew_fit/err": 0.0, "fwhm_rel": 0.0,
+           "wave_obs_kms": 0.0, "ew/err>0.01": 0}
+    for (spec, twin), known in _twins(cases, other):
+        mine = lines.measure(spec, **known, exact_fits=exact)
+        theirs = other_lines.measure(twin, **known, exact_fits=exact)
+        out["tables_differ"] += not same_table(mine, theirs)
+        if len(mine) != len(theirs) or list(mine["id"]) != list(theirs["id"]):
+            out["flags"] += max(len(mine), len(theirs))
+            continue
+        out["lines"] += len(mine)
+        changed = np.zeros(len(mine), bool)
+        for col in ("method", "profile", "blend", "detected", "emission", "expected"):
+            changed |= np.asarray(mine[col]) != np.asarray(theirs[col])
+        out["flags"] += int(changed.sum())
+        with np.errstate(divide="ignore", invalid="ignore"):
+            for col, err in (("ew", "ew_err"), ("ew_fit", "ew_fit_err")):
+                a, b = np.asarray(mine[col].value), np.asarray(theirs[col].value)
+                move = np.abs(a - b) / np.asarray(theirs[err].value)
+                move = move[np.isfinite(move)]
+                out[f"{col}/err"] = max(out[f"{col}/err"], float(move.max(initial=0.0)))
+                if col == "ew":
+                    out["ew/err>0.01"] += int((move > 0.01).sum())
+            a, b = np.asarray(mine["fwhm"].value), np.asarray(theirs["fwhm"].value)
+            rel = np.abs(a - b) / np.abs(b)
+            out["fwhm_rel"] = max(out["fwhm_rel"], float(rel[np.isfinite(rel)].max(initial=0.0)))
+            a, b = np.asarray(mine["wave_obs"].value), np.asarray(theirs["wave_obs"].value)
+            kms = np.abs(a - b) / b * 299792.458   # (km/s: the speed of light, exact by definition)
+            out["wave_obs_kms"] = max(out["wave_obs_kms"], float(kms[np.isfinite(kms)].max(initial=0.0)))
+    return out
+
+
 def _twins(cases, other):
     """``((spectrum, its twin for other), options)`` of each case (:func:`_twins_for`)."""
     return [((spec, twin), known) for (spec, known), (twin, _) in zip(cases, _twins_for(cases, other))]
@@ -488,6 +530,8 @@ def main(argv=None):
     parser.add_argument("--copies", action="store_true",
                         help="with --against: also time both checkouts as copies (neither the specan the spectra were "
                              "made with), by turns spectrum by spectrum, order swapped each time (least and median)")
+    parser.add_argument("--moves", action="store_true",
+                        help="with --against: how far the tables move against the other checkout's (table_moves)")
     parser.add_argument("--fits", action="store_true",
                         help="with --against: also time the batched fits alone (this checkout's batchfit and the "
                              "other's on the same recorded calls, by turns) and check they give the same fits")
@@ -535,6 +579,10 @@ def main(argv=None):
                     print(f"  both as copies, by turns (load average {os.getloadavg()[0]:.1f}): CPU ms per spectrum, "
                           f"least {l0:.2f} here, {l1:.2f} there ({l1 / l0:.3f}x); median {m0:.2f}, {m1:.2f} "
                           f"({m1 / m0:.3f}x)")
+                if args.moves:
+                    for exact in (False, True):
+                        print(f"  {'exact' if exact else 'quick'} design, tables against the other checkout's: "
+                              f"{table_moves(cases, other, exact)}", flush=True)
                 if args.fits:
                     for kind, (mine, theirs, same) in fits_alternated(cases, other, max(args.repeats, 5)).items():
                         print(f"  {kind} fits alone, alternated (load average {os.getloadavg()[0]:.1f}): CPU "

@@ -27,6 +27,7 @@ The modules, one concern each:
 - :mod:`.components`: the components of a blend fit;
 - :mod:`.profiles`: Gaussian and Voigt profiles and their fits;
 - :mod:`.batchfit`: all the fits of a spectrum at once (the default path of :func:`measure`);
+- :mod:`.lmkernel`: the Voigt batch's iteration compiled (numba);
 - :mod:`.hydrogen`: the fitted hydrogen lines divided out;
 - :mod:`.hydrogen_blends`: the metal lines inside a hydrogen line's window taken out of it, and the share
   of the high Balmer lines no one can assign (``ew_err_blend``);
@@ -48,4 +49,17 @@ from .identification import identify
 from .measurement import cayrel_error, measure
 
 __all__ = ["identify", "measure", "band_indices", "analyse", "cayrel_error", "doppler_factor",
-           "estimate_resolving_power"]
+           "estimate_resolving_power", "warm_up"]
+
+
+def warm_up():
+    """Compile the stage's compiled kernels now (or load them from numba's on-disk cache).
+
+    They are otherwise compiled on the first spectrum with a Voigt fit. A process that forks
+    workers calls this first (:mod:`specan.night.executors`), so that every worker inherits the
+    machine code instead of loading it (~0.3 s each) or, on a new installation, compiling it (~5 s
+    each, at once).
+    """
+    from . import lmkernel
+
+    lmkernel.warm()

@@ -39,11 +39,13 @@ its check against outside truth (injected lines, the solar strong lines, damped 
 from __future__ import annotations
 
 import math
+import os
 
 import numpy as np
-from scipy.special import voigt_profile
+from scipy.special import voigt_profile, wofz
 
 from ..resolution import GAUSS_FWHM
+from . import lmkernel
 from .profiles import (
     best_grid_point,
     fit_profile_lean,
@@ -111,6 +113,11 @@ SETUP_AT_ONCE = 4
 #: the signs of the Jacobian's shift, sigma and gamma columns against the weighted sums of the
 #: profile's derivatives (the model is ``cont (1 - sum W V)``: d/dshift = -d/dx)
 _JAC_SIGNS = np.array([1.0, -1.0, -1.0])
+#: the Voigt batch's iterations compiled (:mod:`.lmkernel`, numba) where numba imports: in numpy an
+#: iteration is ~125 calls on a handful of small problems, and their count, not their arithmetic, is
+#: the cost; ``voigt_batch(compiled=...)`` overrides it per call, SPECAN_COMPILED=0 for the process
+#: (the numpy loop, :func:`_numpy_iterations`: the results within tests/test_lines_compiled.py's tolerance)
+COMPILED = os.environ.get("SPECAN_COMPILED", "1") != "0"
 
 
 def fit_planned(data, plans, exact=True):
@@ -424,7 +431,8 @@ def _refined_shifts(chi2, sh, best, step, nsh, nw=3):
 # ----------------------------------------------------------------------------- Voigt
 
 
-def voigt_batch(data, problems, max_iter=MAX_ITER, decrement=DECREMENT, cost_tol=COST_TOL, exact=True):
+def voigt_batch(data, problems, max_iter=MAX_ITER, decrement=DECREMENT, cost_tol=COST_TOL, exact=True,
+                compiled=None):
     """:func:`specan.lines.profiles.fit_profile` (Voigt) of every problem, all iterated together.
 
     Parameters
@@ -457,14 +465,60 @@ def voigt_batch(data, problems, max_iter=MAX_ITER, decrement=DECREMENT, cost_tol
     if setup is None:
         return out
     live, x, y, cont, wts, ngood, ncomp, centres, p, lb, ub, real = setup
-    nb, npar = p.shape
     _direct_starts(data, problems, live, x, y, cont, wts, ncomp, p, lb, ub)
     model = _VoigtModel(x, y, cont, wts, centres, real[:, 3:])
     r, jac = model(p)
     cost = 0.5 * np.einsum("bp,bp->b", r, r)
     finite = np.isfinite(cost)   # least_squares: "residuals are not finite in the initial point"
-    converged = np.zeros(nb, bool)
-    eye = np.eye(npar)
+    converged = np.zeros(p.shape[0], bool)
+    if (COMPILED if compiled is None else compiled) and lmkernel.AVAILABLE:
+        act = _compiled_iterations(model, p, r, jac, cost, lb, ub, real, finite, converged, max_iter, decrement,
+                                   cost_tol)
+    else:
+        act = _numpy_iterations(model, p, r, jac, cost, lb, ub, real, finite, converged, max_iter, decrement,
+                                cost_tol)
+    return _voigt_results(data, problems, out, live, p, jac, cost, converged, finite, act, ngood, ncomp, centres,
+                          exact)
+
+
+def _compiled_iterations(model, p, r, jac, cost, lb, ub, real, finite, converged, max_iter, decrement, cost_tol):
+    """:func:`_numpy_iterations` compiled (:mod:`.lmkernel`): the same steps, three compiled calls an
+    iteration around scipy's Faddeeva function; the full arrays updated in place, the problems still
+    iterating returned (indices)."""
+    nb = p.shape[0]
+    act = finite.nonzero()[0]
+    padded = ~real
+    lam, nu = np.full(nb, LAMBDA0), np.full(nb, 2.0)
+    # (the kernels write into these arrays in place, compiled for C-contiguous ones: the model's are)
+    assert r.flags.c_contiguous and jac.flags.c_contiguous and p.flags.c_contiguous
+    # the model's points laid out once: problem b's are first[b]:first[b + 1] (model.at is sorted)
+    first = np.searchsorted(model.problem_at, np.arange(nb + 1))
+    comp_at, pix_at = np.divmod(model.offset_at, model.shape[2])
+    for it in range(max_iter):
+        if not act.size:
+            break
+        tail = act.size <= TAIL_SIZE and it >= TAIL_START
+        small, stop, pn, predicted, ill, singular = lmkernel.lm_propose(act, p, r, jac, cost, lb, ub, padded, lam,
+                                                                      decrement, cost_tol, tail)
+        if tail and not singular and ill.all():
+            break   # the batch's tail (see _numpy_iterations)
+        if stop.any():
+            converged[act[stop]] = small[stop]
+            go = ~stop
+            act, pn, predicted = act[go], pn[go], predicted[go]
+            if not act.size:
+                break
+        z = lmkernel.lm_points(act, pn, first, model.x_at, model.centre_at)
+        lmkernel.lm_accept_model(act, pn, z, wofz(z), predicted, first, comp_at, pix_at, model.cont, model.y,
+                                 model.wts, p, r, jac, cost, lam, nu)
+    return act
+
+
+def _numpy_iterations(model, p, r, jac, cost, lb, ub, real, finite, converged, max_iter, decrement, cost_tol):
+    """The batch's Levenberg-Marquardt iterations in numpy: ``p``, ``jac``, ``cost`` and ``converged``
+    updated in place for the problems that stop; returns the problems still iterating (indices) with
+    their state written back."""
+    eye = np.eye(p.shape[1])
     # the problems still iterating, their state packed together (unpacked as each stops)
     act = finite.nonzero()[0]
     P, R, J, C = p[act], r[act], jac[act], cost[act]
@@ -562,10 +616,16 @@ def voigt_batch(data, problems, max_iter=MAX_ITER, decrement=DECREMENT, cost_tol
                 R = np.where(better[:, None], rn, R)
                 J = np.where(better[:, None, None], jn, J)
                 C = np.where(better, cn, C)
+    if act.size:
+        p[act], jac[act], cost[act] = P, J, C
+    return act
+
+
+def _voigt_results(data, problems, out, live, p, jac, cost, converged, finite, act, ngood, ncomp, centres, exact):
+    """The fits of :func:`voigt_batch` from the iterations' end state (``act``: problems not stopped)."""
     if not exact and act.size:
         # the quick design: the problems still iterating (the tail, or past max_iter) reported where
         # they stand, not fitted again one by one
-        p[act], jac[act], cost[act] = P, J, C
         converged[act] = True
     # the covariances of all converged problems in one call: a padded parameter's Jacobian column
     # is zero, so its row and column of the normal matrix are too, and the pseudo-inverse of the

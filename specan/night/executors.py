@@ -24,6 +24,7 @@ import math
 import multiprocessing
 import os
 import signal
+import sys
 
 from ..errors import SpecanError
 from ..threads import single_threaded
@@ -116,9 +117,20 @@ def _worker_init(preload=()):
                 importlib.import_module(name)
             except Exception:  # noqa: BLE001, S110 - a stage that cannot be imported is reported by the parent
                 pass
+        _warm_up(preload)
         # what the modules hold lives as long as the worker: kept out of every full collection's visits
         # (a forked worker's were set aside by the parent before the fork, which this then leaves alone)
         heap.set_aside_now()
+
+
+def _warm_up(modules):
+    """Call ``warm_up()`` of each of ``modules`` that is imported and has one (the lines stage: its
+    compiled kernels made or loaded once, here, rather than on each worker's first spectrum)."""
+    for name in modules:
+        warm = getattr(sys.modules.get(name), "warm_up", None)
+        if callable(warm):
+            with contextlib.suppress(Exception):  # a stage that fails here fails, and is reported, in its work
+                warm()
 
 
 def _task(args):
@@ -242,6 +254,7 @@ def _start_pool(jobs, preload=()):
             for name in preload:
                 with contextlib.suppress(Exception):  # a stage that cannot be imported is reported by the parent
                     importlib.import_module(name)
+            _warm_up(preload)
             aside.enter_context(heap.long_lived_set_aside())
     ctx = multiprocessing.get_context(method)
     # (a name no file has yet: a worker that creates it raises the alarm)
