@@ -45,7 +45,6 @@ import numpy as np
 from scipy.special import voigt_profile, wofz
 
 from ..resolution import GAUSS_FWHM
-from . import lmkernel
 from .profiles import (
     best_grid_point,
     fit_profile_lean,
@@ -471,7 +470,7 @@ def voigt_batch(data, problems, max_iter=MAX_ITER, decrement=DECREMENT, cost_tol
     cost = 0.5 * np.einsum("bp,bp->b", r, r)
     finite = np.isfinite(cost)   # least_squares: "residuals are not finite in the initial point"
     converged = np.zeros(p.shape[0], bool)
-    if (COMPILED if compiled is None else compiled) and lmkernel.AVAILABLE:
+    if (COMPILED if compiled is None else compiled) and _kernels_available():
         act = _compiled_iterations(model, p, r, jac, cost, lb, ub, real, finite, converged, max_iter, decrement,
                                    cost_tol)
     else:
@@ -481,10 +480,20 @@ def voigt_batch(data, problems, max_iter=MAX_ITER, decrement=DECREMENT, cost_tol
                           exact)
 
 
+def _kernels_available():
+    """Whether numba imports (:mod:`.lmkernel` imported here, on the first Voigt batch: numba's import
+    alone takes ~0.2 s, which a process that never fits a Voigt profile need not pay)."""
+    from . import lmkernel
+
+    return lmkernel.AVAILABLE
+
+
 def _compiled_iterations(model, p, r, jac, cost, lb, ub, real, finite, converged, max_iter, decrement, cost_tol):
     """:func:`_numpy_iterations` compiled (:mod:`.lmkernel`): the same steps, three compiled calls an
     iteration around scipy's Faddeeva function; the full arrays updated in place, the problems still
     iterating returned (indices)."""
+    from . import lmkernel
+
     nb = p.shape[0]
     act = finite.nonzero()[0]
     padded = ~real
