@@ -155,19 +155,21 @@ def adaptive_windows(data, ic, sign, min_half, max_half, wide):
     pixel where one holds (in the order :func:`_walk` tests them). The comparisons are the
     same, so are the windows.
     """
-    ends, levels, cuts = [], [], []
-    for step in (-1, 1):
-        end, level, cut = _walks(data, ic, sign, min_half, max_half, wide, step)
-        err_end = _on_smoothing(wide, lambda: data.smooth_wide_err[end], data.smooth_err[end])
-        # a plateau within the noise of the continuum is the continuum
-        level = np.where(np.abs(1.0 - level) <= 3.0 * err_end, 1.0, level)
-        ends.append(end)
-        levels.append(level)
-        cuts.append(cut)
+    # both directions' walks as the rows of one set of arrays (blue walks first, then red): each row's
+    # tests are its own, so the same as one direction at a time, in half the calls (the arrays are
+    # small: a call's cost is mostly its number of numpy operations)
+    nl = ic.size
+    step = np.repeat(np.array([-1, 1]), nl)
+    twice = (np.concatenate([a, a]) for a in (ic, sign, min_half, max_half, wide))
+    ic2, sign2, min_half2, max_half2, wide2 = twice
+    end, level, cut = _walks(data, ic2, sign2, min_half2, max_half2, wide2, step)
+    err_end = _on_smoothing(wide2, lambda: data.smooth_wide_err[end], data.smooth_err[end])
+    # a plateau within the noise of the continuum is the continuum
+    level = np.where(np.abs(1.0 - level) <= 3.0 * err_end, 1.0, level)
+    ends, levels, cuts = end.tolist(), level.tolist(), cut.tolist()
     out = []
     # (the arrays as Python numbers once: the same values as element by element)
-    for e0, e1, l0, l1, c0, c1 in zip(ends[0].tolist(), ends[1].tolist(), levels[0].tolist(), levels[1].tolist(),
-                                      cuts[0].tolist(), cuts[1].tolist()):
+    for e0, e1, l0, l1, c0, c1 in zip(ends[:nl], ends[nl:], levels[:nl], levels[nl:], cuts[:nl], cuts[nl:]):
         if e0 > e1:
             e0, e1, l0, l1 = e1, e0, l1, l0
         out.append(Window(e0, e1, (l0, l1), bool(c0 or c1)))
@@ -183,7 +185,7 @@ WALK_AHEAD = 32
 
 
 def _walks(data, ic, sign, min_half, max_half, wide, step):
-    """:func:`_walk` of every line in direction ``step``: (edge pixels, levels there, cut).
+    """:func:`_walk` of every line in its direction ``step`` (-1 or 1 per line): (edge pixels, levels there, cut).
 
     Every walk is tested over its first :data:`WALK_AHEAD` steps; those that no rule stopped by then
     and that could go on are tested again over their whole reach. A walk's tests at a step depend on
@@ -197,8 +199,8 @@ def _walks(data, ic, sign, min_half, max_half, wide, step):
     end, level, cut, going = _walks_upto(data, ic, sign, min_half, max_half, wide, step, WALK_AHEAD)
     if going.any():
         k = going.nonzero()[0]
-        end[k], level[k], cut[k], _ = _walks_upto(data, ic[k], sign[k], min_half[k], max_half[k], wide[k], step,
-                                                  None)
+        end[k], level[k], cut[k], _ = _walks_upto(data, ic[k], sign[k], min_half[k], max_half[k], wide[k],
+                                                  step[k], None)
     return end, level, cut
 
 
@@ -208,17 +210,18 @@ def _walks_upto(data, ic, sign, min_half, max_half, wide, step, ahead):
     n = data.wave.size
     nl = ic.size
     x0 = data.wave[ic]
-    # steps a walk can take before the spectrum ends or max_half is passed
-    # (the direction's own limit: np.where on the step made both)
-    if step > 0:
-        limit = data.wave.searchsorted(x0 + max_half, side="right") - 1 - ic
-    else:
-        limit = ic - data.wave.searchsorted(x0 - max_half, side="left")
+    # steps a walk can take before the spectrum ends or max_half is passed (each its own direction's)
+    up = step > 0
+    limit = np.where(up, data.wave.searchsorted(x0 + max_half, side="right") - 1 - ic,
+                     ic - data.wave.searchsorted(x0 - max_half, side="left"))
+    # (the steps past a walk's own limit are not valid: tested over more of them, as for the longest
+    # walk of the other direction, it ends where it did)
     jmax = int(max(limit.max() + 2, 2))
     if ahead is not None:
         jmax = min(jmax, ahead)
     j = np.arange(1, jmax + 1)
-    idx = ic[:, None] + step * j[None, :]                          # (lines, steps)
+    step_c = step[:, None]
+    idx = ic[:, None] + step_c * j[None, :]                        # (lines, steps)
     inside = (idx >= 0) & (idx < n)
     idc = np.minimum(np.maximum(idx, 0), n - 1)
     dist = np.abs(data.wave[idc] - x0[:, None])
@@ -248,7 +251,7 @@ def _walks_upto(data, ic, sign, min_half, max_half, wide, step, ahead):
     back_steps = np.ceil((5.0 if all_wide else np.where(w, 5.0, 1.0) if some_wide else 1.0) * mh
                          / data.dx[idc]).astype(int)
     # (clipped: steps past the spectrum's end are not valid anyway)
-    back = np.minimum(np.maximum(ic[:, None] + step * np.maximum(j[None, :] - back_steps, 0), 0), n - 1)
+    back = np.minimum(np.maximum(ic[:, None] + step_c * np.maximum(j[None, :] - back_steps, 0), 0), n - 1)
     fall = _depth_at(data, back, sign, wide) - depth
     if all_wide:
         flat = (dist >= 10.0 * mh) & (fall < np.maximum(2.0 * err, 0.1 * depth))
