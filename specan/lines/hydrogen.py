@@ -64,14 +64,12 @@ def hydrogen_model(data, results, targets, ep_low):
     if not fits:
         return None
     # the Voigt profiles over the whole spectrum, their far wings from their series (voigt_wide), of
-    # all lines in one call: each point's arithmetic is the one of a call per line (its own line's
-    # sigma and gamma), so the same values, in one pass instead of one per line
+    # all lines in one call, a line a row with its sigma and gamma as a column: each point's arithmetic
+    # is the one of a call per line, so the same values, in one pass instead of one per line
     voigt = [fit for fit in fits if fit["profile"] == "voigt"]
     if voigt:
-        n = data.wave.size
-        prof = voigt_wide((data.wave[None, :] - np.array([f["centre"] for f in voigt])[:, None]).ravel(),
-                          np.repeat([f["sigma"] for f in voigt], n),
-                          np.repeat([f["gamma"] for f in voigt], n)).reshape(len(voigt), n)
+        prof = voigt_wide(data.wave[None, :] - np.array([f["centre"] for f in voigt])[:, None],
+                          np.array([[f["sigma"]] for f in voigt]), np.array([[f["gamma"]] for f in voigt]))
         rows = iter(prof)
     model = np.ones(data.wave.size)
     for fit in fits:   # (in the lines' order: the same products)
