@@ -185,8 +185,13 @@ def _band_filter(values, weights):
     padded = np.concatenate([np.repeat(values[..., :1], reach, axis=-1), values,
                              np.repeat(values[..., -1:], reach, axis=-1)], axis=-1)
     out = values * weights[0]
+    # (each pair's sum and its weighted term made in one array kept for the loop: the same operations,
+    # without two new arrays a distance)
+    term = np.empty_like(out)
     for r in range(reach, 0, -1):
-        out += (padded[..., reach - r:reach - r + n] + padded[..., reach + r:reach + r + n]) * weights[r]
+        np.add(padded[..., reach - r:reach - r + n], padded[..., reach + r:reach + r + n], out=term)
+        term *= weights[r]
+        out += term
     return out
 
 
