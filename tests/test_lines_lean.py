@@ -233,3 +233,34 @@ def test_width_step_leaves_a_singular_stack_as_it_is():
                  sig_best, ata_best, wbest, cbest)
     for before, after in zip(held, (sig_best, ata_best, wbest, cbest)):
         assert np.array_equal(before, after)
+
+
+def test_metal_lines_without_share_errors_as_with_them():
+    # hydrogen_blends.metal_lines(share_errors=False), as less_blends calls it: the same sum, its error,
+    # shares and kept positions to the bit as with the shares' errors made (which it then leaves out)
+    from specan.linelist import load_linelist
+    from specan.lines.hydrogen_blends import metal_lines
+    from specan.lines.windows import Window
+
+    data = _line_data()
+    rows = load_linelist()
+    listed = rows["wave_air"].to_value("AA")[(rows["species"] != "H I") & (rows["kind"] == "atomic")]
+    rng = np.random.default_rng(8)
+    compared = 0
+    for centre in (3970.1, 4101.7, 4340.5, 4861.3, 6562.8):
+        lo, hi = (int(v) for v in data.wave.searchsorted([centre - 40.0, centre + 40.0]))
+        window = Window(lo, hi, (1.0, 1.0), False)
+        cont = np.linspace(rng.uniform(0.95, 1.0), rng.uniform(0.95, 1.0), hi - lo + 1)
+        fit = {"centre": centre, "sigma": rng.uniform(0.8, 2.0), "gamma": rng.uniform(0.1, 3.0),
+               "ew": rng.uniform(1.0, 8.0)}
+        # the listed metal lines there (every listed line is injected) and a few places with none
+        positions = np.sort(np.concatenate([listed[np.abs(listed - centre) < 38.0],
+                                            rng.uniform(centre - 38.0, centre + 38.0, 3)]))
+        fwhm = float(data.line_fwhm[(lo + hi) // 2])
+        full = metal_lines(data, window, cont, fit, fwhm, positions)
+        lean = metal_lines(data, window, cont, fit, fwhm, positions, share_errors=False)
+        assert lean[3] is None and full[3] is not None
+        for a, b in zip(full[:3] + full[4:], lean[:3] + lean[4:]):
+            assert np.asarray(a).tobytes() == np.asarray(b).tobytes()
+        compared += int(np.count_nonzero(full[2]))
+    assert compared > 10
