@@ -264,3 +264,39 @@ def test_metal_lines_without_share_errors_as_with_them():
             assert np.asarray(a).tobytes() == np.asarray(b).tobytes()
         compared += int(np.count_nonzero(full[2]))
     assert compared > 10
+
+
+def test_feature_candidates_as_written():
+    # data._candidates takes find_peaks' height test as a comparison and the line width at each peak
+    # by index: the same candidates as find_peaks(..., height=) and np.interp at the peaks (its form
+    # before, written out here), on a spectrum, a noisier copy and one divided by a ripple
+    from scipy.signal import find_peaks, peak_prominences
+
+    from specan.lines.data import DETECT_SIGMA, _candidates
+
+    def written(data, s, sign, detect_sigma, noise):
+        peaks, _ = find_peaks(s, height=detect_sigma)
+        fwp = np.interp(peaks, np.arange(s.size), data.line_fwhm) if peaks.size else peaks
+        flipped = np.where(data.good, -sign * data.flux, -np.inf)
+        raw, _ = find_peaks(flipped)
+        raw = raw[s[raw] >= detect_sigma]
+        if raw.size:
+            raw = raw[peak_prominences(flipped, raw)[0] >= 3.0 * noise]
+        if raw.size and peaks.size:
+            near = np.abs(data.wave[raw][:, None] - data.wave[peaks][None, :]) < 0.5 * fwp[None, :]
+            raw = raw[~near.any(axis=1)]
+        return np.concatenate([peaks, raw]).astype(int)
+
+    compared = 0
+    for seed in (3, 4):
+        data = _line_data(seed)
+        for d in (data, data.divided(0.97 + 0.03 * np.cos(data.wave / 50.0))):
+            noise = d.typical_noise()
+            for sign in (1.0, -1.0):
+                for sigma in (DETECT_SIGMA, 1.0):
+                    s = sign * np.where(d.good, d.signif, 0.0)
+                    mine = _candidates(d, s, sign, sigma, noise)
+                    assert mine.dtype == written(d, s, sign, sigma, noise).dtype
+                    assert np.array_equal(mine, written(d, s, sign, sigma, noise))
+                    compared += mine.size
+    assert compared > 500

@@ -435,8 +435,11 @@ def find_features(data, detect_sigma, min_depth=MIN_DEPTH):
 
 def _candidates(data, s, sign, detect_sigma, noise):
     """Pixels of matched-filter peaks, and of flux extrema the filter peaks do not already hold."""
-    peaks, _ = find_peaks(s, height=detect_sigma)
-    fwp = np.interp(peaks, np.arange(s.size), data.line_fwhm) if peaks.size else peaks
+    # (find_peaks' height test is this comparison, made here without its properties' bookkeeping)
+    peaks, _ = find_peaks(s)
+    peaks = peaks[s[peaks] >= detect_sigma]
+    # the line width at each peak's pixel (np.interp at the nodes, as this was made: their own values)
+    fwp = data.line_fwhm[peaks]
     # the flux extrema where the filter is significant, prominent by 3 sigma: find_peaks(...,
     # prominence=) measures the prominence of every extremum (most are noise, where the filter is
     # not significant); a peak's prominence does not depend on the other peaks, so measuring it for
