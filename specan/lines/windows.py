@@ -180,8 +180,11 @@ def adaptive_windows(data, ic, sign, min_half, max_half, wide):
 #: spectrum and reach not ended) are walked again in full. Most windows end within it, and the test
 #: arrays of a walk to the full reach (25 line widths, hydrogen 80 A) were mostly past every window's
 #: end: adaptive_windows 1.47 -> 1.10 ms a spectrum on benchmarks/bench_lines.py's 40 (16 steps: 1.21,
-#: 24: 1.17; measured, alternated, load 2.6).
-WALK_AHEAD = 32
+#: 24: 1.17; measured, alternated, load 2.6). With both directions walked in one call (their walks still
+#: going are walked again in one call too) 24 steps read 0.55 ms against 32 steps' 0.58 (16: 0.54, 20:
+#: 0.56, 28: 0.57, 40: 0.62, 48: 0.65; the bench's 80 calls replayed, CPU, least of 20 rounds
+#: alternated with c258075's, load 1.6-1.8).
+WALK_AHEAD = 24
 
 
 def _walks(data, ic, sign, min_half, max_half, wide, step):
