@@ -204,20 +204,24 @@ def matched_filter(flux, weight, sig_pix, ladder=None):
     :func:`_ladder` of ``sig_pix`` when already made (kept per set-up, :func:`_setup`).
     """
     n = flux.size
-    d = 1.0 - flux
-    wd, wf, w = weight * d, weight * flux, weight
+    w = weight
+    # the weighted depth, flux and weight made in their rows of one array (the same products as made
+    # apart and stacked)
+    stacked = np.empty((3, n))
+    np.multiply(weight, 1.0 - flux, out=stacked[0])
+    np.multiply(weight, flux, out=stacked[1])
+    stacked[2] = weight
     if ladder is None:
         ladder = _ladder(sig_pix)
-    stacked = np.stack([wd, wf, w])
     if ladder.band is not None:
         # all widths at once, each pixel with its own kernel: a few dozen whole-array operations
         # instead of two filter calls and a dozen small ones per width (the same values, bit for bit)
         main, half, k1, k2 = ladder.band
         f_wd, f_wf, f_w = _band_filter(stacked, main)
-        f_w2 = _band_filter(w, half)
-        signif = k1 * f_wd / np.sqrt(np.maximum(k2 * f_w2, 1e-300))
+        kw2 = k2 * _band_filter(w, half)   # (made once for both: the same product)
+        signif = k1 * f_wd / np.sqrt(np.maximum(kw2, 1e-300))
         smooth = f_wf / np.maximum(f_w, 1e-300)
-        smooth_err = np.sqrt(k2 * f_w2 / np.maximum((k1 * f_w) ** 2, 1e-300))
+        smooth_err = np.sqrt(kw2 / np.maximum((k1 * f_w) ** 2, 1e-300))
         smooth = np.where(np.isfinite(smooth), smooth, 1.0)
         return signif, smooth, smooth_err
     signif, smooth, smooth_err = np.empty(n), np.empty(n), np.empty(n)
