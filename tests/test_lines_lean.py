@@ -300,3 +300,30 @@ def test_feature_candidates_as_written():
                     assert np.array_equal(mine, written(d, s, sign, sigma, noise))
                     compared += mine.size
     assert compared > 500
+
+
+def test_hydrogen_starts_as_written():
+    # windows.hydrogen_starts finds every line's deepest wide-smoothed pixel within its width at once
+    # (rows padded with -inf): the same pixels as the loop over the lines it replaced, written out here,
+    # for absorption and emission, widths of a fraction of a pixel to many, near the spectrum's ends
+    from specan.lines.windows import hydrogen_starts
+
+    def written(data, ic, sign, fwhm):
+        smooth = data.smooth_wide
+        n = smooth.size
+        out = np.array(ic, int)
+        for m in range(out.size):
+            reach = max(int(round(float(fwhm[m]) / float(data.dx[out[m]]))), 1)
+            a, b = max(out[m] - reach, 0), min(out[m] + reach + 1, n)
+            out[m] = a + int((sign[m] * (1.0 - smooth[a:b])).argmax())
+        return out
+
+    data = _line_data()
+    rng = np.random.default_rng(9)
+    n = data.wave.size
+    for _ in range(50):
+        count = int(rng.integers(1, 15))
+        ic = np.concatenate([rng.integers(0, n, count), [0, n - 1]])
+        sign = rng.choice([-1.0, 1.0], ic.size)
+        fwhm = rng.uniform(0.1, 20.0, ic.size) * np.median(data.dx)
+        assert np.array_equal(hydrogen_starts(data, ic, sign, fwhm), written(data, ic, sign, fwhm))

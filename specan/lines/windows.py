@@ -59,13 +59,18 @@ def hydrogen_starts(data, ic, sign, fwhm):
     """
     smooth = data.smooth_wide
     n = smooth.size
-    out = np.array(ic, int)
-    dx = data.dx
-    for m in range(out.size):
-        reach = max(int(round(float(fwhm[m]) / float(dx[out[m]]))), 1)
-        a, b = max(out[m] - reach, 0), min(out[m] + reach + 1, n)
-        out[m] = a + int((sign[m] * (1.0 - smooth[a:b])).argmax())
-    return out
+    ic = np.asarray(ic, int)
+    if not ic.size:
+        return ic.copy()
+    # each line's pixels within its width, as the rows of one array (past a row's own pixels -inf, which
+    # no depth reaches: argmax, the first of the greatest, picks what it picks over the row's own slice)
+    # (np.round rounds halves to even, as Python's round)
+    reach = np.maximum(np.round(np.asarray(fwhm, float) / data.dx[ic]).astype(int), 1)
+    a, b = np.maximum(ic - reach, 0), np.minimum(ic + reach + 1, n)
+    k = np.arange(int((b - a).max()))
+    pix = a[:, None] + k[None, :]
+    depth = np.asarray(sign, float)[:, None] * (1.0 - smooth[np.minimum(pix, n - 1)])
+    return a + np.where(pix < b[:, None], depth, -np.inf).argmax(axis=1)
 
 
 def series_limits(centre, fwhm, series):
