@@ -327,3 +327,37 @@ def test_hydrogen_starts_as_written():
         sign = rng.choice([-1.0, 1.0], ic.size)
         fwhm = rng.uniform(0.1, 20.0, ic.size) * np.median(data.dx)
         assert np.array_equal(hydrogen_starts(data, ic, sign, fwhm), written(data, ic, sign, fwhm))
+
+
+def test_blanketing_as_written():
+    # hydrogen_blends.blanketing takes each side's crest over its own stretch of the window: the same
+    # absorption under the crests, to the bit, as over the whole window with the other side at -inf
+    # (its form before, written out here); centres inside, at the edges of and outside the window
+    from specan.lines.hydrogen_blends import blanketing
+    from specan.lines.windows import Window
+
+    def written(data, window, cont, centre):
+        sel = slice(window.lo, window.hi + 1)
+        x = data.wave[sel]
+        if x.size < 2:
+            return 0.0
+        level = np.minimum(data.smooth[sel] / cont, 1.0)
+        split = centre if x[0] < centre < x[-1] else 0.5 * (x[0] + x[-1])
+        blue = x < split
+        kb = np.where(blue, level, -np.inf).argmax()
+        kr = np.where(blue, -np.inf, level).argmax()
+        crest = np.interp(x, [x[kb], x[kr]], [level[kb], level[kr]])
+        return float(np.maximum(1.0 - crest, 0.0) @ data.dx[sel])
+
+    data = _line_data()
+    rng = np.random.default_rng(10)
+    n = data.wave.size
+    for _ in range(300):
+        lo = int(rng.integers(0, n - 2))
+        hi = min(lo + int(rng.integers(0, 200)), n - 1)
+        window = Window(lo, hi, (1.0, 1.0), False)
+        cont = np.linspace(rng.uniform(0.9, 1.05), rng.uniform(0.9, 1.05), hi - lo + 1)
+        x0, x1 = data.wave[lo], data.wave[hi]
+        centre = rng.choice([rng.uniform(x0, x1), x0, x1, x0 - 5.0, x1 + 5.0, data.wave[(lo + hi) // 2]])
+        mine = blanketing(data, window, cont, centre)
+        assert np.float64(mine).tobytes() == np.float64(written(data, window, cont, centre)).tobytes()

@@ -151,9 +151,12 @@ def blanketing(data, window, cont, centre):
     # the two sides split at the centre, or at the window's middle where the centre lies outside it
     # (a line matched to a feature off its listed place)
     split = centre if x[0] < centre < x[-1] else 0.5 * (x[0] + x[-1])
-    blue = x < split
-    kb = np.where(blue, level, -np.inf).argmax()
-    kr = np.where(blue, -np.inf, level).argmax()
+    # the blue side is the pixels below the split, a first stretch of the (increasing) wavelengths; each
+    # side's highest point the first of its greatest, 0 for a side with no pixel (as np.argmax over the
+    # window with the other side at -inf, as this was made)
+    m = int(x.searchsorted(split))
+    kb = int(level[:m].argmax()) if m else 0
+    kr = m + int(level[m:].argmax()) if m < x.size else 0
     crest = np.interp(x, [x[kb], x[kr]], [level[kb], level[kr]])
     return float(np.maximum(1.0 - crest, 0.0) @ data.dx[sel])
 
