@@ -361,3 +361,64 @@ def test_blanketing_as_written():
         centre = rng.choice([rng.uniform(x0, x1), x0, x1, x0 - 5.0, x1 + 5.0, data.wave[(lo + hi) // 2]])
         mine = blanketing(data, window, cont, centre)
         assert np.float64(mine).tobytes() == np.float64(written(data, window, cont, centre)).tobytes()
+
+
+def test_hydrogen_model_as_written():
+    # hydrogen.hydrogen_model tests every kept line's blend with a listed low-excitation line at once,
+    # and takes the profiles a line a row: the same transmission, to the bit, as its form before
+    # (line by line, the profiles' widths one per point), written out here; lines placed on, near and
+    # far from listed lines, some not detected, some emission, some failing the integral test
+    import astropy.units as u
+
+    from specan.lines.hydrogen import hydrogen_model
+    from specan.lines.listed import lines_in_range
+    from specan.lines.measurement import LineResult, line_targets
+
+    def written(data, results, targets, ep_low):
+        pred, is_h = targets.pred, targets.hydrogen
+        others = pred[(~is_h) & (np.nan_to_num(ep_low, nan=0.0) < 1.0)]
+        fits = []
+        for i, result in results.items():
+            fit = result.fit
+            if fit is None or not is_h[i] or not result.detected or fit["sign"] < 0 or fit["ew"] <= 0:
+                continue
+            if not abs(fit["ew"] - fit["ew_int"]) <= 0.3 * abs(fit["ew_int"]):
+                continue
+            if others.size and np.min(np.abs(others - fit["centre"])) < 0.6 * targets.fwhm[i]:
+                continue
+            fits.append(fit)
+        if not fits:
+            return None
+        n = data.wave.size
+        prof = voigt_wide((data.wave[None, :] - np.array([f["centre"] for f in fits])[:, None]).ravel(),
+                          np.repeat([f["sigma"] for f in fits], n), np.repeat([f["gamma"] for f in fits], n))
+        model = np.ones(n)
+        for fit, line in zip(fits, prof.reshape(len(fits), n)):
+            model *= 1.0 - fit["ew"] * line
+        return np.clip(model, 0.05, 1.0)
+
+    data = _line_data()
+    listed = lines_in_range(data, None, ("atomic",), 0 * u.km / u.s)
+    targets = line_targets(data, listed, None)
+    ep_low = listed.rows["ep_low"].to_value(u.eV)
+    hydrogen = np.flatnonzero(targets.hydrogen)
+    low = targets.pred[~targets.hydrogen & (np.nan_to_num(ep_low, nan=0.0) < 1.0)]
+    rng = np.random.default_rng(11)
+    blocked = 0
+    for _ in range(60):
+        results = {}
+        for i in hydrogen:
+            near = low[np.argmin(np.abs(low - targets.pred[i]))]
+            centre = rng.choice([targets.pred[i], near + rng.uniform(-1.0, 1.0) * targets.fwhm[i],
+                                 targets.pred[i] + rng.normal(0.0, 2.0)])
+            ew = rng.uniform(0.5, 10.0)
+            fit = {"centre": float(centre), "sigma": rng.uniform(0.5, 3.0), "gamma": rng.uniform(0.0, 4.0),
+                   "ew": ew, "ew_int": ew * rng.choice([1.0, 1.2, 2.0]), "sign": rng.choice([1.0, 1.0, -1.0]),
+                   "profile": "voigt"}
+            results[int(i)] = LineResult(detected=bool(rng.uniform() < 0.9), fit=fit)
+            blocked += abs(centre - near) < 0.6 * targets.fwhm[i]
+        mine, theirs = hydrogen_model(data, results, targets, ep_low), written(data, results, targets, ep_low)
+        assert (mine is None) == (theirs is None)
+        if mine is not None:
+            assert mine.tobytes() == theirs.tobytes()
+    assert blocked > 20
