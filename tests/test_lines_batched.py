@@ -212,8 +212,8 @@ def test_vectorised_windows_equal_the_walks():
 
 
 def test_hydrogen_windows_alone_equal_the_walks():
-    # the hydrogen lines are walked on their own (measure's first pass), in full at once with no
-    # look-ahead (specan/lines/windows.py, _walks): each window must be the one line_window walks
+    # the hydrogen lines are walked on their own (measure's first pass), with their own look-ahead
+    # (specan/lines/windows.py, _walks, WIDE_WALK_AHEAD): each window must be the one line_window walks
     from specan.lines.data import DETECT_SIGMA
     from specan.lines.measurement import line_start
     from specan.lines.windows import line_window, line_windows

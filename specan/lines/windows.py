@@ -190,6 +190,10 @@ def adaptive_windows(data, ic, sign, min_half, max_half, wide):
 #: 0.56, 28: 0.57, 40: 0.62, 48: 0.65; the bench's 80 calls replayed, CPU, least of 20 rounds
 #: alternated with c258075's, load 1.6-1.8).
 WALK_AHEAD = 24
+#: The look-ahead of a call whose walks are all on the wide smoothing (the hydrogen lines, walked farther:
+#: 80 A at least). Walked in full at once they read 0.57-0.58 ms a spectrum in adaptive_windows against
+#: 0.55 with 64 steps ahead (48: 0.54, 96: 0.56; the same replay, load 1.4-1.6).
+WIDE_WALK_AHEAD = 64
 
 
 def _walks(data, ic, sign, min_half, max_half, wide, step):
@@ -198,13 +202,12 @@ def _walks(data, ic, sign, min_half, max_half, wide, step):
     Every walk is tested over its first :data:`WALK_AHEAD` steps; those that no rule stopped by then
     and that could go on are tested again over their whole reach. A walk's tests at a step depend on
     that step and the ones before it only, so the first step a rule holds is the same either way.
-    Walks on the wide smoothing alone (the hydrogen lines, a few to a call) are walked in full at
-    once: one of them goes on past the look-ahead in most calls (benchmarks/bench_lines.py's 40
-    spectra: 50 of 80 calls, 127 of 784 walks), and the two passes then cost more than one (0.51 ->
-    0.34 ms a spectrum, CPU, the same windows; measured, load 4-5)."""
-    if wide.all():
-        return _walks_upto(data, ic, sign, min_half, max_half, wide, step, None)[:3]
-    end, level, cut, going = _walks_upto(data, ic, sign, min_half, max_half, wide, step, WALK_AHEAD)
+    Walks on the wide smoothing alone (the hydrogen lines, a few to a call) look farther ahead
+    (:data:`WIDE_WALK_AHEAD`): one of them went on past 32 steps in most calls (benchmarks/bench_lines.py's
+    40 spectra: 50 of 80 calls, 127 of 784 walks), and two passes of 32 steps cost more than walking in
+    full (0.51 -> 0.34 ms a spectrum, CPU, the same windows; measured, load 4-5, a direction a call)."""
+    end, level, cut, going = _walks_upto(data, ic, sign, min_half, max_half, wide, step,
+                                         WIDE_WALK_AHEAD if wide.all() else WALK_AHEAD)
     if going.any():
         k = going.nonzero()[0]
         end[k], level[k], cut[k], _ = _walks_upto(data, ic[k], sign[k], min_half[k], max_half[k], wide[k],
