@@ -410,9 +410,12 @@ def plan_lines(data, features, targets, which, profile, starts, windows):
     # tuples of Python numbers, so the same arrays)
     lo_t, hi_t, levels_t, _ = zip(*wins)
     centre_t, _, _, ic_t, sign_t, _ = zip(*[starts[i] for i in found])
-    lo, hi = np.array(lo_t), np.array(hi_t)
-    lv = np.array(levels_t, float).reshape(len(found), 2)
-    centre, ic, sign = np.array(centre_t), np.array(ic_t), np.array(sign_t)
+    # (read by np.fromiter with their types given: the same arrays as np.array of the tuples, without its
+    # discovery of their type and shape)
+    nf = len(found)
+    lo, hi = np.fromiter(lo_t, int, nf), np.fromiter(hi_t, int, nf)
+    lv = np.fromiter(chain.from_iterable(levels_t), float, 2 * nf).reshape(nf, 2)
+    centre, ic, sign = np.fromiter(centre_t, float, nf), np.fromiter(ic_t, int, nf), np.fromiter(sign_t, float, nf)
     length = hi - lo + 1
     k = np.arange(int(length.max()))
     inside = k[None, :] < length[:, None]
