@@ -552,9 +552,10 @@ def finish_lines(data, features, targets, plans, exact=True):
            for i, plan in plans.items()}
     if done:
         # the Cayrel errors of all lines at once (_finished's arithmetic, element by element)
-        fwhm = np.array([out[i].fwhm for i in done], float)
-        fwhm_c = np.where(np.isfinite(fwhm), fwhm, np.array([plans[i].fw for i in done], float))
-        pixel = data.dx[np.array([plans[i].ic for i in done], int)]
+        # (np.fromiter, types given: the same arrays as np.array of the lists)
+        fwhm = np.fromiter((out[i].fwhm for i in done), float, len(done))
+        fwhm_c = np.where(np.isfinite(fwhm), fwhm, np.fromiter((plans[i].fw for i in done), float, len(done)))
+        pixel = data.dx[np.fromiter((plans[i].ic for i in done), int, len(done))]
         for i, err in zip(done, cayrel_error(fwhm_c, pixel, 1.0 / window_noises(data, final)).tolist()):
             out[i].ew_err_cayrel = err
     return out
@@ -815,8 +816,8 @@ def window_noises(data, windows):
     out = np.full(len(windows), np.nan)
     if not windows:
         return out
-    lo = np.array([w.lo for w in windows])
-    length = np.array([w.hi for w in windows]) - lo + 1
+    lo = np.fromiter((w.lo for w in windows), int, len(windows))
+    length = np.fromiter((w.hi for w in windows), int, len(windows)) - lo + 1
     k = np.arange(int(length.max()))
     inside = k[None, :] < length[:, None]
     sig = data.sigma[np.minimum(lo[:, None] + k[None, :], data.wave.size - 1)]
@@ -940,8 +941,8 @@ def line_table(data, listed, targets, results, star_type=None):
     columns["method"] = np.array([r.method for r in results], str)
     columns["profile"] = np.array([r.profile for r in results], str)
     columns["blend"] = np.array(blends(listed.pred, ids, targets.fwhm, [r.blend_inside for r in results]), str)
-    emission = np.array([r.emission for r in results], bool)
-    detected = np.array([r.detected for r in results], bool)
+    emission = np.fromiter((r.emission for r in results), bool, len(results))
+    detected = np.fromiter((r.detected for r in results), bool, len(results))
     expected = expected_lines(columns["species"], star_type)
     # Emission is not ruled out: a cool star's chromosphere or a hot companion can show He I /
     # He II in emission (flare M dwarfs, symbiotics; common practice), unless the "emission"

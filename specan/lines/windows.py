@@ -132,7 +132,7 @@ def line_windows(data, starts, fwhm, hydrogen, series=None):
     walk = [k for k, st in enumerate(starts) if st[2]]
     fixed = [k for k, st in enumerate(starts) if not st[2]]
     if fixed:
-        for k, window in zip(fixed, fixed_windows(data, np.array([starts[k][0] for k in fixed]),
+        for k, window in zip(fixed, fixed_windows(data, np.fromiter((starts[k][0] for k in fixed), float, len(fixed)),
                                                   np.asarray(fwhm, float)[fixed])):
             out[k] = window
     if walk:
@@ -140,8 +140,9 @@ def line_windows(data, starts, fwhm, hydrogen, series=None):
         k = np.array(walk)
         fw = np.asarray(fwhm, float)[k]
         wide = np.asarray(hydrogen, bool)[k]
-        ic = np.array([starts[j][3] for j in walk])
-        sign = np.array([starts[j][4] for j in walk], float)
+        # (np.fromiter, types given: the same arrays as np.array of the lists)
+        ic = np.fromiter((starts[j][3] for j in walk), int, len(walk))
+        sign = np.fromiter((starts[j][4] for j in walk), float, len(walk))
         if wide.any():
             ic[wide] = hydrogen_starts(data, ic[wide], sign[wide], fw[wide])
         max_half = np.where(wide, np.maximum(25.0 * fw, 80.0), 25.0 * fw)
