@@ -356,11 +356,11 @@ def line_starts(data, features, targets, which, detect_sigma):
     s_c = data.signif[ic]
     sign = np.where(s_c < -detect_sigma, -1.0, 1.0)
     detected = matched & (sign * s_c >= detect_sigma)
-    # (the arrays as Python numbers read once: the same values as element by element)
-    return [LineStart(*values) if ok else None
-            for ok, *values in zip(usable.tolist(), np.asarray(centre, float).tolist(),
-                                   np.asarray(max_shift, float).tolist(), matched.tolist(), ic.tolist(),
-                                   sign.tolist(), detected.tolist())]
+    # (the arrays as Python numbers read once: the same values as element by element; each start made
+    # from its fields' tuple, LineStart._make, without unpacking them into a call)
+    made = map(LineStart._make, zip(np.asarray(centre, float).tolist(), np.asarray(max_shift, float).tolist(),
+                                    matched.tolist(), ic.tolist(), sign.tolist(), detected.tolist()))
+    return [start if ok else None for ok, start in zip(usable.tolist(), made)]
 
 
 def plan_line(data, features, targets, i, profile, detect_sigma, start=None, window=None):
