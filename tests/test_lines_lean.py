@@ -422,3 +422,38 @@ def test_hydrogen_model_as_written():
         if mine is not None:
             assert mine.tobytes() == theirs.tobytes()
     assert blocked > 20
+
+
+def test_series_limits_of_many_lines_as_written():
+    # windows.series_limits of many lines at once (the sorted series' stretches below and above each
+    # line, as line_windows calls it) and of one: the same limits, to the bit, as the form it replaced
+    # (one line at a time over the series as given), written out here; lines on members, within a width
+    # of one, beyond the series' ends, series given unsorted, of one member and of none
+    from specan.lines.windows import series_limits
+
+    def written(centre, fwhm, series):
+        series = np.asarray(series, float)
+        blue = series[series < centre - fwhm]
+        red = series[series > centre + fwhm]
+        lo = 0.5 * (centre + blue.max()) if blue.size else -np.inf
+        hi = 0.5 * (centre + red.min()) if red.size else np.inf
+        if not blue.size and red.size:
+            lo = centre - (hi - centre)
+        return lo, hi
+
+    rng = np.random.default_rng(12)
+    for trial in range(200):
+        series = rng.permutation(rng.uniform(3650.0, 6600.0, int(rng.integers(0, 12))))
+        count = int(rng.integers(1, 12))
+        centre = rng.uniform(3500.0, 6800.0, count)
+        if series.size:
+            picks = rng.integers(0, series.size, count)
+            near = series[picks] + rng.choice([0.0, 1.0, -1.0], count)   # on a member, or a width off it
+            centre = np.where(rng.uniform(size=count) < 0.5, near, centre)
+        fwhm = rng.choice([1.0, 2.5, rng.uniform(0.5, 5.0)], count)
+        lo, hi = series_limits(centre, fwhm, series)
+        for m in range(count):
+            one = series_limits(centre[m], fwhm[m], series)
+            for mine in ((lo[m], hi[m]), one):
+                assert np.float64(mine[0]).tobytes() == np.float64(written(centre[m], fwhm[m], series)[0]).tobytes()
+                assert np.float64(mine[1]).tobytes() == np.float64(written(centre[m], fwhm[m], series)[1]).tobytes()

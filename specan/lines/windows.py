@@ -84,15 +84,23 @@ def series_limits(centre, fwhm, series):
     listed toward the series limit (H12 in the packaged list) has no listed neighbour there, though
     the series goes on closer still: that side ends as far out as the other (measured, Kurucz Sun at
     R 1000: H12's window reached 3715 A, past the unlisted H13-H15).
+
+    ``centre`` and ``fwhm`` may be arrays (one element a line): the limits are then arrays.
     """
-    series = np.asarray(series, float)
-    blue = series[series < centre - fwhm]
-    red = series[series > centre + fwhm]
-    lo = 0.5 * (centre + blue.max()) if blue.size else -np.inf
-    hi = 0.5 * (centre + red.min()) if red.size else np.inf
-    if not blue.size and red.size:
-        lo = centre - (hi - centre)
-    return lo, hi
+    series = np.sort(np.asarray(series, float))
+    centre, fwhm = np.asarray(centre, float), np.asarray(fwhm, float)
+    if not series.size:
+        shape = np.broadcast_shapes(centre.shape, fwhm.shape)
+        return np.full(shape, -np.inf)[()], np.full(shape, np.inf)[()]
+    # the members below centre - fwhm are a first stretch of the sorted series and those above centre +
+    # fwhm a last one: the nearest of each is the stretch's end (the greatest below, the least above)
+    below = series.searchsorted(centre - fwhm, side="left")
+    above = series.searchsorted(centre + fwhm, side="right")
+    blue, red = below > 0, above < series.size
+    lo = np.where(blue, 0.5 * (centre + series[np.maximum(below - 1, 0)]), -np.inf)
+    hi = np.where(red, 0.5 * (centre + series[np.minimum(above, series.size - 1)]), np.inf)
+    lo = np.where(~blue & red, centre - (hi - centre), lo)
+    return lo[()], hi[()]
 
 
 def _within(data, window, lo, hi):
@@ -136,20 +144,23 @@ def line_windows(data, starts, fwhm, hydrogen, series=None):
                                                   np.asarray(fwhm, float)[fixed])):
             out[k] = window
     if walk:
-        is_h, fw_all = np.asarray(hydrogen, bool), np.asarray(fwhm, float)
         k = np.array(walk)
         fw = np.asarray(fwhm, float)[k]
         wide = np.asarray(hydrogen, bool)[k]
         # (np.fromiter, types given: the same arrays as np.array of the lists)
         ic = np.fromiter((starts[j][3] for j in walk), int, len(walk))
         sign = np.fromiter((starts[j][4] for j in walk), float, len(walk))
+        limits = {}
+        if series is not None and wide.any():
+            # each hydrogen line's limits in its series, from its matched pixel (all lines in one call)
+            h = np.flatnonzero(wide)
+            lo, hi = series_limits(data.wave[ic[h]], fw[h], series)
+            limits = dict(zip(h.tolist(), zip(lo.tolist(), hi.tolist())))
         if wide.any():
             ic[wide] = hydrogen_starts(data, ic[wide], sign[wide], fw[wide])
         max_half = np.where(wide, np.maximum(25.0 * fw, 80.0), 25.0 * fw)
-        for j, window in zip(walk, adaptive_windows(data, ic, sign, fw, max_half, wide)):
-            if series is not None and is_h[j]:
-                window = _within(data, window, *series_limits(data.wave[starts[j][3]], fw_all[j], series))
-            out[j] = window
+        for m, (j, window) in enumerate(zip(walk, adaptive_windows(data, ic, sign, fw, max_half, wide))):
+            out[j] = _within(data, window, *limits[m]) if m in limits else window
     return out
 
 
