@@ -212,8 +212,8 @@ def test_vectorised_windows_equal_the_walks():
 
 
 def test_hydrogen_windows_alone_equal_the_walks():
-    # the hydrogen lines are walked on their own (measure's first pass), in full at once with no
-    # look-ahead (specan/lines/windows.py, _walks): each window must be the one line_window walks
+    # the hydrogen lines are walked on their own (measure's first pass), with their own look-ahead
+    # (specan/lines/windows.py, _walks, WIDE_WALK_AHEAD): each window must be the one line_window walks
     from specan.lines.data import DETECT_SIGMA
     from specan.lines.measurement import line_start
     from specan.lines.windows import line_window, line_windows
@@ -626,9 +626,10 @@ def test_half_widths_equal_one_by_one():
 
 
 def test_wide_voigt_profiles_of_several_lines_in_one_call():
-    # hydrogen.hydrogen_model evaluates every hydrogen line's profile in one voigt_wide call (sigma
-    # and gamma one per point): the same bits as one call per line, and within voigt_wide's
-    # tolerance of scipy.special.voigt_profile (the outside reference) at each line's own widths
+    # hydrogen.hydrogen_model evaluates every hydrogen line's profile in one voigt_wide call (a line a
+    # row, sigma and gamma a column; also given one per point): the same bits as one call per line,
+    # and within voigt_wide's tolerance of scipy.special.voigt_profile (the outside reference) at each
+    # line's own widths
     from scipy.special import voigt_profile
 
     from specan.lines.profiles import voigt_wide
@@ -642,6 +643,7 @@ def test_wide_voigt_profiles_of_several_lines_in_one_call():
         centre = rng.uniform(3700.0, 7300.0, nl)
         together = voigt_wide((x[None, :] - centre[:, None]).ravel(), np.repeat(sigma, x.size),
                               np.repeat(gamma, x.size)).reshape(nl, x.size)
+        assert np.array_equal(voigt_wide(x[None, :] - centre[:, None], sigma[:, None], gamma[:, None]), together)
         for k in range(nl):
             alone = voigt_wide(x - centre[k], sigma[k], gamma[k])
             assert np.array_equal(together[k], alone)

@@ -233,3 +233,227 @@ def test_width_step_leaves_a_singular_stack_as_it_is():
                  sig_best, ata_best, wbest, cbest)
     for before, after in zip(held, (sig_best, ata_best, wbest, cbest)):
         assert np.array_equal(before, after)
+
+
+def test_metal_lines_without_share_errors_as_with_them():
+    # hydrogen_blends.metal_lines(share_errors=False), as less_blends calls it: the same sum, its error,
+    # shares and kept positions to the bit as with the shares' errors made (which it then leaves out)
+    from specan.linelist import load_linelist
+    from specan.lines.hydrogen_blends import metal_lines
+    from specan.lines.windows import Window
+
+    data = _line_data()
+    rows = load_linelist()
+    listed = rows["wave_air"].to_value("AA")[(rows["species"] != "H I") & (rows["kind"] == "atomic")]
+    rng = np.random.default_rng(8)
+    compared = 0
+    for centre in (3970.1, 4101.7, 4340.5, 4861.3, 6562.8):
+        lo, hi = (int(v) for v in data.wave.searchsorted([centre - 40.0, centre + 40.0]))
+        window = Window(lo, hi, (1.0, 1.0), False)
+        cont = np.linspace(rng.uniform(0.95, 1.0), rng.uniform(0.95, 1.0), hi - lo + 1)
+        fit = {"centre": centre, "sigma": rng.uniform(0.8, 2.0), "gamma": rng.uniform(0.1, 3.0),
+               "ew": rng.uniform(1.0, 8.0)}
+        # the listed metal lines there (every listed line is injected) and a few places with none
+        positions = np.sort(np.concatenate([listed[np.abs(listed - centre) < 38.0],
+                                            rng.uniform(centre - 38.0, centre + 38.0, 3)]))
+        fwhm = float(data.line_fwhm[(lo + hi) // 2])
+        full = metal_lines(data, window, cont, fit, fwhm, positions)
+        lean = metal_lines(data, window, cont, fit, fwhm, positions, share_errors=False)
+        assert lean[3] is None and full[3] is not None
+        for a, b in zip(full[:3] + full[4:], lean[:3] + lean[4:]):
+            assert np.asarray(a).tobytes() == np.asarray(b).tobytes()
+        compared += int(np.count_nonzero(full[2]))
+    assert compared > 10
+
+
+def test_feature_candidates_as_written():
+    # data._candidates takes find_peaks' height test as a comparison and the line width at each peak
+    # by index: the same candidates as find_peaks(..., height=) and np.interp at the peaks (its form
+    # before, written out here), on a spectrum, a noisier copy and one divided by a ripple
+    from scipy.signal import find_peaks, peak_prominences
+
+    from specan.lines.data import DETECT_SIGMA, _candidates
+
+    def written(data, s, sign, detect_sigma, noise):
+        peaks, _ = find_peaks(s, height=detect_sigma)
+        fwp = np.interp(peaks, np.arange(s.size), data.line_fwhm) if peaks.size else peaks
+        flipped = np.where(data.good, -sign * data.flux, -np.inf)
+        raw, _ = find_peaks(flipped)
+        raw = raw[s[raw] >= detect_sigma]
+        if raw.size:
+            raw = raw[peak_prominences(flipped, raw)[0] >= 3.0 * noise]
+        if raw.size and peaks.size:
+            near = np.abs(data.wave[raw][:, None] - data.wave[peaks][None, :]) < 0.5 * fwp[None, :]
+            raw = raw[~near.any(axis=1)]
+        return np.concatenate([peaks, raw]).astype(int)
+
+    compared = 0
+    for seed in (3, 4):
+        data = _line_data(seed)
+        for d in (data, data.divided(0.97 + 0.03 * np.cos(data.wave / 50.0))):
+            noise = d.typical_noise()
+            for sign in (1.0, -1.0):
+                for sigma in (DETECT_SIGMA, 1.0):
+                    s = sign * np.where(d.good, d.signif, 0.0)
+                    mine = _candidates(d, s, sign, sigma, noise)
+                    assert mine.dtype == written(d, s, sign, sigma, noise).dtype
+                    assert np.array_equal(mine, written(d, s, sign, sigma, noise))
+                    compared += mine.size
+    assert compared > 500
+
+
+def test_hydrogen_starts_as_written():
+    # windows.hydrogen_starts finds every line's deepest wide-smoothed pixel within its width at once
+    # (rows padded with -inf): the same pixels as the loop over the lines it replaced, written out here,
+    # for absorption and emission, widths of a fraction of a pixel to many, near the spectrum's ends
+    from specan.lines.windows import hydrogen_starts
+
+    def written(data, ic, sign, fwhm):
+        smooth = data.smooth_wide
+        n = smooth.size
+        out = np.array(ic, int)
+        for m in range(out.size):
+            reach = max(int(round(float(fwhm[m]) / float(data.dx[out[m]]))), 1)
+            a, b = max(out[m] - reach, 0), min(out[m] + reach + 1, n)
+            out[m] = a + int((sign[m] * (1.0 - smooth[a:b])).argmax())
+        return out
+
+    data = _line_data()
+    rng = np.random.default_rng(9)
+    n = data.wave.size
+    for _ in range(50):
+        count = int(rng.integers(1, 15))
+        ic = np.concatenate([rng.integers(0, n, count), [0, n - 1]])
+        sign = rng.choice([-1.0, 1.0], ic.size)
+        fwhm = rng.uniform(0.1, 20.0, ic.size) * np.median(data.dx)
+        assert np.array_equal(hydrogen_starts(data, ic, sign, fwhm), written(data, ic, sign, fwhm))
+
+
+def test_blanketing_as_written():
+    # hydrogen_blends.blanketing takes each side's crest over its own stretch of the window: the same
+    # absorption under the crests, to the bit, as over the whole window with the other side at -inf
+    # (its form before, written out here); centres inside, at the edges of and outside the window
+    from specan.lines.hydrogen_blends import blanketing
+    from specan.lines.windows import Window
+
+    def written(data, window, cont, centre):
+        sel = slice(window.lo, window.hi + 1)
+        x = data.wave[sel]
+        if x.size < 2:
+            return 0.0
+        level = np.minimum(data.smooth[sel] / cont, 1.0)
+        split = centre if x[0] < centre < x[-1] else 0.5 * (x[0] + x[-1])
+        blue = x < split
+        kb = np.where(blue, level, -np.inf).argmax()
+        kr = np.where(blue, -np.inf, level).argmax()
+        crest = np.interp(x, [x[kb], x[kr]], [level[kb], level[kr]])
+        return float(np.maximum(1.0 - crest, 0.0) @ data.dx[sel])
+
+    data = _line_data()
+    rng = np.random.default_rng(10)
+    n = data.wave.size
+    for _ in range(300):
+        lo = int(rng.integers(0, n - 2))
+        hi = min(lo + int(rng.integers(0, 200)), n - 1)
+        window = Window(lo, hi, (1.0, 1.0), False)
+        cont = np.linspace(rng.uniform(0.9, 1.05), rng.uniform(0.9, 1.05), hi - lo + 1)
+        x0, x1 = data.wave[lo], data.wave[hi]
+        centre = rng.choice([rng.uniform(x0, x1), x0, x1, x0 - 5.0, x1 + 5.0, data.wave[(lo + hi) // 2]])
+        mine = blanketing(data, window, cont, centre)
+        assert np.float64(mine).tobytes() == np.float64(written(data, window, cont, centre)).tobytes()
+
+
+def test_hydrogen_model_as_written():
+    # hydrogen.hydrogen_model tests every kept line's blend with a listed low-excitation line at once,
+    # and takes the profiles a line a row: the same transmission, to the bit, as its form before
+    # (line by line, the profiles' widths one per point), written out here; lines placed on, near and
+    # far from listed lines, some not detected, some emission, some failing the integral test
+    import astropy.units as u
+
+    from specan.lines.hydrogen import hydrogen_model
+    from specan.lines.listed import lines_in_range
+    from specan.lines.measurement import LineResult, line_targets
+
+    def written(data, results, targets, ep_low):
+        pred, is_h = targets.pred, targets.hydrogen
+        others = pred[(~is_h) & (np.nan_to_num(ep_low, nan=0.0) < 1.0)]
+        fits = []
+        for i, result in results.items():
+            fit = result.fit
+            if fit is None or not is_h[i] or not result.detected or fit["sign"] < 0 or fit["ew"] <= 0:
+                continue
+            if not abs(fit["ew"] - fit["ew_int"]) <= 0.3 * abs(fit["ew_int"]):
+                continue
+            if others.size and np.min(np.abs(others - fit["centre"])) < 0.6 * targets.fwhm[i]:
+                continue
+            fits.append(fit)
+        if not fits:
+            return None
+        n = data.wave.size
+        prof = voigt_wide((data.wave[None, :] - np.array([f["centre"] for f in fits])[:, None]).ravel(),
+                          np.repeat([f["sigma"] for f in fits], n), np.repeat([f["gamma"] for f in fits], n))
+        model = np.ones(n)
+        for fit, line in zip(fits, prof.reshape(len(fits), n)):
+            model *= 1.0 - fit["ew"] * line
+        return np.clip(model, 0.05, 1.0)
+
+    data = _line_data()
+    listed = lines_in_range(data, None, ("atomic",), 0 * u.km / u.s)
+    targets = line_targets(data, listed, None)
+    ep_low = listed.rows["ep_low"].to_value(u.eV)
+    hydrogen = np.flatnonzero(targets.hydrogen)
+    low = targets.pred[~targets.hydrogen & (np.nan_to_num(ep_low, nan=0.0) < 1.0)]
+    rng = np.random.default_rng(11)
+    blocked = 0
+    for _ in range(60):
+        results = {}
+        for i in hydrogen:
+            near = low[np.argmin(np.abs(low - targets.pred[i]))]
+            centre = rng.choice([targets.pred[i], near + rng.uniform(-1.0, 1.0) * targets.fwhm[i],
+                                 targets.pred[i] + rng.normal(0.0, 2.0)])
+            ew = rng.uniform(0.5, 10.0)
+            fit = {"centre": float(centre), "sigma": rng.uniform(0.5, 3.0), "gamma": rng.uniform(0.0, 4.0),
+                   "ew": ew, "ew_int": ew * rng.choice([1.0, 1.2, 2.0]), "sign": rng.choice([1.0, 1.0, -1.0]),
+                   "profile": "voigt"}
+            results[int(i)] = LineResult(detected=bool(rng.uniform() < 0.9), fit=fit)
+            blocked += abs(centre - near) < 0.6 * targets.fwhm[i]
+        mine, theirs = hydrogen_model(data, results, targets, ep_low), written(data, results, targets, ep_low)
+        assert (mine is None) == (theirs is None)
+        if mine is not None:
+            assert mine.tobytes() == theirs.tobytes()
+    assert blocked > 20
+
+
+def test_series_limits_of_many_lines_as_written():
+    # windows.series_limits of many lines at once (the sorted series' stretches below and above each
+    # line, as line_windows calls it) and of one: the same limits, to the bit, as the form it replaced
+    # (one line at a time over the series as given), written out here; lines on members, within a width
+    # of one, beyond the series' ends, series given unsorted, of one member and of none
+    from specan.lines.windows import series_limits
+
+    def written(centre, fwhm, series):
+        series = np.asarray(series, float)
+        blue = series[series < centre - fwhm]
+        red = series[series > centre + fwhm]
+        lo = 0.5 * (centre + blue.max()) if blue.size else -np.inf
+        hi = 0.5 * (centre + red.min()) if red.size else np.inf
+        if not blue.size and red.size:
+            lo = centre - (hi - centre)
+        return lo, hi
+
+    rng = np.random.default_rng(12)
+    for trial in range(200):
+        series = rng.permutation(rng.uniform(3650.0, 6600.0, int(rng.integers(0, 12))))
+        count = int(rng.integers(1, 12))
+        centre = rng.uniform(3500.0, 6800.0, count)
+        if series.size:
+            picks = rng.integers(0, series.size, count)
+            near = series[picks] + rng.choice([0.0, 1.0, -1.0], count)   # on a member, or a width off it
+            centre = np.where(rng.uniform(size=count) < 0.5, near, centre)
+        fwhm = rng.choice([1.0, 2.5, rng.uniform(0.5, 5.0)], count)
+        lo, hi = series_limits(centre, fwhm, series)
+        for m in range(count):
+            one = series_limits(centre[m], fwhm[m], series)
+            for mine in ((lo[m], hi[m]), one):
+                assert np.float64(mine[0]).tobytes() == np.float64(written(centre[m], fwhm[m], series)[0]).tobytes()
+                assert np.float64(mine[1]).tobytes() == np.float64(written(centre[m], fwhm[m], series)[1]).tobytes()

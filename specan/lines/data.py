@@ -185,8 +185,13 @@ def _band_filter(values, weights):
     padded = np.concatenate([np.repeat(values[..., :1], reach, axis=-1), values,
                              np.repeat(values[..., -1:], reach, axis=-1)], axis=-1)
     out = values * weights[0]
+    # (each pair's sum and its weighted term made in one array kept for the loop: the same operations,
+    # without two new arrays a distance)
+    term = np.empty_like(out)
     for r in range(reach, 0, -1):
-        out += (padded[..., reach - r:reach - r + n] + padded[..., reach + r:reach + r + n]) * weights[r]
+        np.add(padded[..., reach - r:reach - r + n], padded[..., reach + r:reach + r + n], out=term)
+        term *= weights[r]
+        out += term
     return out
 
 
@@ -199,20 +204,24 @@ def matched_filter(flux, weight, sig_pix, ladder=None):
     :func:`_ladder` of ``sig_pix`` when already made (kept per set-up, :func:`_setup`).
     """
     n = flux.size
-    d = 1.0 - flux
-    wd, wf, w = weight * d, weight * flux, weight
+    w = weight
+    # the weighted depth, flux and weight made in their rows of one array (the same products as made
+    # apart and stacked)
+    stacked = np.empty((3, n))
+    np.multiply(weight, 1.0 - flux, out=stacked[0])
+    np.multiply(weight, flux, out=stacked[1])
+    stacked[2] = weight
     if ladder is None:
         ladder = _ladder(sig_pix)
-    stacked = np.stack([wd, wf, w])
     if ladder.band is not None:
         # all widths at once, each pixel with its own kernel: a few dozen whole-array operations
         # instead of two filter calls and a dozen small ones per width (the same values, bit for bit)
         main, half, k1, k2 = ladder.band
         f_wd, f_wf, f_w = _band_filter(stacked, main)
-        f_w2 = _band_filter(w, half)
-        signif = k1 * f_wd / np.sqrt(np.maximum(k2 * f_w2, 1e-300))
+        kw2 = k2 * _band_filter(w, half)   # (made once for both: the same product)
+        signif = k1 * f_wd / np.sqrt(np.maximum(kw2, 1e-300))
         smooth = f_wf / np.maximum(f_w, 1e-300)
-        smooth_err = np.sqrt(k2 * f_w2 / np.maximum((k1 * f_w) ** 2, 1e-300))
+        smooth_err = np.sqrt(kw2 / np.maximum((k1 * f_w) ** 2, 1e-300))
         smooth = np.where(np.isfinite(smooth), smooth, 1.0)
         return signif, smooth, smooth_err
     signif, smooth, smooth_err = np.empty(n), np.empty(n), np.empty(n)
@@ -430,8 +439,11 @@ def find_features(data, detect_sigma, min_depth=MIN_DEPTH):
 
 def _candidates(data, s, sign, detect_sigma, noise):
     """Pixels of matched-filter peaks, and of flux extrema the filter peaks do not already hold."""
-    peaks, _ = find_peaks(s, height=detect_sigma)
-    fwp = np.interp(peaks, np.arange(s.size), data.line_fwhm) if peaks.size else peaks
+    # (find_peaks' height test is this comparison, made here without its properties' bookkeeping)
+    peaks, _ = find_peaks(s)
+    peaks = peaks[s[peaks] >= detect_sigma]
+    # the line width at each peak's pixel (np.interp at the nodes, as this was made: their own values)
+    fwp = data.line_fwhm[peaks]
     # the flux extrema where the filter is significant, prominent by 3 sigma: find_peaks(...,
     # prominence=) measures the prominence of every extremum (most are noise, where the filter is
     # not significant); a peak's prominence does not depend on the other peaks, so measuring it for

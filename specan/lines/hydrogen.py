@@ -51,27 +51,31 @@ def hydrogen_model(data, results, targets, ep_low):
     """
     pred, is_h = targets.pred, targets.hydrogen
     others = pred[(~is_h) & (np.nan_to_num(ep_low, nan=0.0) < 1.0)]
-    fits = []
+    kept = []
     for i, result in results.items():
         fit = result.fit
         if fit is None or not is_h[i] or not result.detected or fit["sign"] < 0 or fit["ew"] <= 0:
             continue
         if not abs(fit["ew"] - fit["ew_int"]) <= 0.3 * abs(fit["ew_int"]):
             continue  # the profile does not describe the line (continuum trouble): leave it
-        if others.size and np.min(np.abs(others - fit["centre"])) < MIN_SEPARATION * targets.fwhm[i]:
-            continue  # an unresolvable blend with a listed line: keep it whole
-        fits.append(fit)
+        kept.append((i, fit))
+    if kept and others.size:
+        # an unresolvable blend with a listed line: keep it whole (each line's nearest such line, all
+        # lines at once: the same distances and test as line by line)
+        idx = np.array([i for i, _ in kept])
+        centres = np.array([fit["centre"] for _, fit in kept], float)
+        blend = np.abs(others[None, :] - centres[:, None]).min(axis=1) < MIN_SEPARATION * targets.fwhm[idx]
+        kept = [k for k, b in zip(kept, blend.tolist()) if not b]
+    fits = [fit for _, fit in kept]
     if not fits:
         return None
     # the Voigt profiles over the whole spectrum, their far wings from their series (voigt_wide), of
-    # all lines in one call: each point's arithmetic is the one of a call per line (its own line's
-    # sigma and gamma), so the same values, in one pass instead of one per line
+    # all lines in one call, a line a row with its sigma and gamma as a column: each point's arithmetic
+    # is the one of a call per line, so the same values, in one pass instead of one per line
     voigt = [fit for fit in fits if fit["profile"] == "voigt"]
     if voigt:
-        n = data.wave.size
-        prof = voigt_wide((data.wave[None, :] - np.array([f["centre"] for f in voigt])[:, None]).ravel(),
-                          np.repeat([f["sigma"] for f in voigt], n),
-                          np.repeat([f["gamma"] for f in voigt], n)).reshape(len(voigt), n)
+        prof = voigt_wide(data.wave[None, :] - np.array([f["centre"] for f in voigt])[:, None],
+                          np.array([[f["sigma"]] for f in voigt]), np.array([[f["gamma"]] for f in voigt]))
         rows = iter(prof)
     model = np.ones(data.wave.size)
     for fit in fits:   # (in the lines' order: the same products)

@@ -78,17 +78,18 @@ def metal_absorption(data, window, cont, fit, fwhm, positions):
     return metal, err, int(np.count_nonzero(each))
 
 
-def metal_lines(data, window, cont, fit, fwhm, positions, profile=None):
+def metal_lines(data, window, cont, fit, fwhm, positions, profile=None, share_errors=True):
     """:func:`metal_absorption` with each line's share: ``(metal, err, each, each_err, kept)``.
 
     ``each`` and ``each_err`` are the equivalent width inside the window of each position in ``kept``
     (the positions left after the core clearance, in their order) and its error (NaN where the
     line's strength is held at zero). ``profile``: the fit's unit-area profile over the window's
-    pixels (:func:`_fitted_profile`) when already made.
+    pixels (:func:`_fitted_profile`) when already made. ``share_errors`` False: ``each_err`` is
+    None (not made: :func:`less_blends` uses the sum's error alone).
     """
     positions = np.asarray(positions, float)
     kept = positions[np.abs(positions - fit["centre"]) > CORE_CLEARANCE * fwhm]
-    none = (0.0, 0.0, np.zeros(kept.size), np.full(kept.size, np.nan), kept)
+    none = (0.0, 0.0, np.zeros(kept.size), np.full(kept.size, np.nan) if share_errors else None, kept)
     if not kept.size:
         return none
     sel = slice(window.lo, window.hi + 1)
@@ -124,8 +125,10 @@ def metal_lines(data, window, cont, fit, fwhm, positions, profile=None):
     except np.linalg.LinAlgError:   # two features on one pixel: their sum is still known
         cov = np.linalg.pinv(normal)
     var = float(g @ cov @ g)
-    each_err = np.full(kept.size, np.nan)
-    each_err[free[1:]] = np.sqrt(np.clip(np.diag(cov)[1:], 0.0, None)) * area[free[1:]]
+    each_err = None
+    if share_errors:
+        each_err = np.full(kept.size, np.nan)
+        each_err[free[1:]] = np.sqrt(np.clip(np.diag(cov)[1:], 0.0, None)) * area[free[1:]]
     return metal, float(np.sqrt(max(var, 0.0))), each, each_err, kept
 
 
@@ -148,9 +151,12 @@ def blanketing(data, window, cont, centre):
     # the two sides split at the centre, or at the window's middle where the centre lies outside it
     # (a line matched to a feature off its listed place)
     split = centre if x[0] < centre < x[-1] else 0.5 * (x[0] + x[-1])
-    blue = x < split
-    kb = np.where(blue, level, -np.inf).argmax()
-    kr = np.where(blue, -np.inf, level).argmax()
+    # the blue side is the pixels below the split, a first stretch of the (increasing) wavelengths; each
+    # side's highest point the first of its greatest, 0 for a side with no pixel (as np.argmax over the
+    # window with the other side at -inf, as this was made)
+    m = int(x.searchsorted(split))
+    kb = int(level[:m].argmax()) if m else 0
+    kr = m + int(level[m:].argmax()) if m < x.size else 0
     crest = np.interp(x, [x[kb], x[kr]], [level[kb], level[kr]])
     return float(np.maximum(1.0 - crest, 0.0) @ data.dx[sel])
 
@@ -269,7 +275,7 @@ def less_blends(data, features, targets, i, plan):
     positions, owner = positions[shows], owner[shows]
     if not positions.size:
         return
-    metal, err, each, _, _ = metal_lines(data, window, plan.cont, fit, plan.fw, positions, profile)
+    metal, err, each, _, _ = metal_lines(data, window, plan.cont, fit, plan.fw, positions, profile, share_errors=False)
     if not np.count_nonzero(each):
         return
     result.method = "integration_less_blends"

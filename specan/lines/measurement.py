@@ -356,11 +356,11 @@ def line_starts(data, features, targets, which, detect_sigma):
     s_c = data.signif[ic]
     sign = np.where(s_c < -detect_sigma, -1.0, 1.0)
     detected = matched & (sign * s_c >= detect_sigma)
-    # (the arrays as Python numbers read once: the same values as element by element)
-    return [LineStart(*values) if ok else None
-            for ok, *values in zip(usable.tolist(), np.asarray(centre, float).tolist(),
-                                   np.asarray(max_shift, float).tolist(), matched.tolist(), ic.tolist(),
-                                   sign.tolist(), detected.tolist())]
+    # (the arrays as Python numbers read once: the same values as element by element; each start made
+    # from its fields' tuple, LineStart._make, without unpacking them into a call)
+    made = map(LineStart._make, zip(np.asarray(centre, float).tolist(), np.asarray(max_shift, float).tolist(),
+                                    matched.tolist(), ic.tolist(), sign.tolist(), detected.tolist()))
+    return [start if ok else None for ok, start in zip(usable.tolist(), made)]
 
 
 def plan_line(data, features, targets, i, profile, detect_sigma, start=None, window=None):
@@ -410,9 +410,12 @@ def plan_lines(data, features, targets, which, profile, starts, windows):
     # tuples of Python numbers, so the same arrays)
     lo_t, hi_t, levels_t, _ = zip(*wins)
     centre_t, _, _, ic_t, sign_t, _ = zip(*[starts[i] for i in found])
-    lo, hi = np.array(lo_t), np.array(hi_t)
-    lv = np.array(levels_t, float).reshape(len(found), 2)
-    centre, ic, sign = np.array(centre_t), np.array(ic_t), np.array(sign_t)
+    # (read by np.fromiter with their types given: the same arrays as np.array of the tuples, without its
+    # discovery of their type and shape)
+    nf = len(found)
+    lo, hi = np.fromiter(lo_t, int, nf), np.fromiter(hi_t, int, nf)
+    lv = np.fromiter(chain.from_iterable(levels_t), float, 2 * nf).reshape(nf, 2)
+    centre, ic, sign = np.fromiter(centre_t, float, nf), np.fromiter(ic_t, int, nf), np.fromiter(sign_t, float, nf)
     length = hi - lo + 1
     k = np.arange(int(length.max()))
     inside = k[None, :] < length[:, None]
@@ -549,9 +552,10 @@ def finish_lines(data, features, targets, plans, exact=True):
            for i, plan in plans.items()}
     if done:
         # the Cayrel errors of all lines at once (_finished's arithmetic, element by element)
-        fwhm = np.array([out[i].fwhm for i in done], float)
-        fwhm_c = np.where(np.isfinite(fwhm), fwhm, np.array([plans[i].fw for i in done], float))
-        pixel = data.dx[np.array([plans[i].ic for i in done], int)]
+        # (np.fromiter, types given: the same arrays as np.array of the lists)
+        fwhm = np.fromiter((out[i].fwhm for i in done), float, len(done))
+        fwhm_c = np.where(np.isfinite(fwhm), fwhm, np.fromiter((plans[i].fw for i in done), float, len(done)))
+        pixel = data.dx[np.fromiter((plans[i].ic for i in done), int, len(done))]
         for i, err in zip(done, cayrel_error(fwhm_c, pixel, 1.0 / window_noises(data, final)).tolist()):
             out[i].ew_err_cayrel = err
     return out
@@ -812,8 +816,8 @@ def window_noises(data, windows):
     out = np.full(len(windows), np.nan)
     if not windows:
         return out
-    lo = np.array([w.lo for w in windows])
-    length = np.array([w.hi for w in windows]) - lo + 1
+    lo = np.fromiter((w.lo for w in windows), int, len(windows))
+    length = np.fromiter((w.hi for w in windows), int, len(windows)) - lo + 1
     k = np.arange(int(length.max()))
     inside = k[None, :] < length[:, None]
     sig = data.sigma[np.minimum(lo[:, None] + k[None, :], data.wave.size - 1)]
@@ -937,8 +941,8 @@ def line_table(data, listed, targets, results, star_type=None):
     columns["method"] = np.array([r.method for r in results], str)
     columns["profile"] = np.array([r.profile for r in results], str)
     columns["blend"] = np.array(blends(listed.pred, ids, targets.fwhm, [r.blend_inside for r in results]), str)
-    emission = np.array([r.emission for r in results], bool)
-    detected = np.array([r.detected for r in results], bool)
+    emission = np.fromiter((r.emission for r in results), bool, len(results))
+    detected = np.fromiter((r.detected for r in results), bool, len(results))
     expected = expected_lines(columns["species"], star_type)
     # Emission is not ruled out: a cool star's chromosphere or a hot companion can show He I /
     # He II in emission (flare M dwarfs, symbiotics; common practice), unless the "emission"

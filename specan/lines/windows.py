@@ -59,13 +59,18 @@ def hydrogen_starts(data, ic, sign, fwhm):
     """
     smooth = data.smooth_wide
     n = smooth.size
-    out = np.array(ic, int)
-    dx = data.dx
-    for m in range(out.size):
-        reach = max(int(round(float(fwhm[m]) / float(dx[out[m]]))), 1)
-        a, b = max(out[m] - reach, 0), min(out[m] + reach + 1, n)
-        out[m] = a + int((sign[m] * (1.0 - smooth[a:b])).argmax())
-    return out
+    ic = np.asarray(ic, int)
+    if not ic.size:
+        return ic.copy()
+    # each line's pixels within its width, as the rows of one array (past a row's own pixels -inf, which
+    # no depth reaches: argmax, the first of the greatest, picks what it picks over the row's own slice)
+    # (np.round rounds halves to even, as Python's round)
+    reach = np.maximum(np.round(np.asarray(fwhm, float) / data.dx[ic]).astype(int), 1)
+    a, b = np.maximum(ic - reach, 0), np.minimum(ic + reach + 1, n)
+    k = np.arange(int((b - a).max()))
+    pix = a[:, None] + k[None, :]
+    depth = np.asarray(sign, float)[:, None] * (1.0 - smooth[np.minimum(pix, n - 1)])
+    return a + np.where(pix < b[:, None], depth, -np.inf).argmax(axis=1)
 
 
 def series_limits(centre, fwhm, series):
@@ -79,15 +84,23 @@ def series_limits(centre, fwhm, series):
     listed toward the series limit (H12 in the packaged list) has no listed neighbour there, though
     the series goes on closer still: that side ends as far out as the other (measured, Kurucz Sun at
     R 1000: H12's window reached 3715 A, past the unlisted H13-H15).
+
+    ``centre`` and ``fwhm`` may be arrays (one element a line): the limits are then arrays.
     """
-    series = np.asarray(series, float)
-    blue = series[series < centre - fwhm]
-    red = series[series > centre + fwhm]
-    lo = 0.5 * (centre + blue.max()) if blue.size else -np.inf
-    hi = 0.5 * (centre + red.min()) if red.size else np.inf
-    if not blue.size and red.size:
-        lo = centre - (hi - centre)
-    return lo, hi
+    series = np.sort(np.asarray(series, float))
+    centre, fwhm = np.asarray(centre, float), np.asarray(fwhm, float)
+    if not series.size:
+        shape = np.broadcast_shapes(centre.shape, fwhm.shape)
+        return np.full(shape, -np.inf)[()], np.full(shape, np.inf)[()]
+    # the members below centre - fwhm are a first stretch of the sorted series and those above centre +
+    # fwhm a last one: the nearest of each is the stretch's end (the greatest below, the least above)
+    below = series.searchsorted(centre - fwhm, side="left")
+    above = series.searchsorted(centre + fwhm, side="right")
+    blue, red = below > 0, above < series.size
+    lo = np.where(blue, 0.5 * (centre + series[np.maximum(below - 1, 0)]), -np.inf)
+    hi = np.where(red, 0.5 * (centre + series[np.minimum(above, series.size - 1)]), np.inf)
+    lo = np.where(~blue & red, centre - (hi - centre), lo)
+    return lo[()], hi[()]
 
 
 def _within(data, window, lo, hi):
@@ -127,23 +140,27 @@ def line_windows(data, starts, fwhm, hydrogen, series=None):
     walk = [k for k, st in enumerate(starts) if st[2]]
     fixed = [k for k, st in enumerate(starts) if not st[2]]
     if fixed:
-        for k, window in zip(fixed, fixed_windows(data, np.array([starts[k][0] for k in fixed]),
+        for k, window in zip(fixed, fixed_windows(data, np.fromiter((starts[k][0] for k in fixed), float, len(fixed)),
                                                   np.asarray(fwhm, float)[fixed])):
             out[k] = window
     if walk:
-        is_h, fw_all = np.asarray(hydrogen, bool), np.asarray(fwhm, float)
         k = np.array(walk)
         fw = np.asarray(fwhm, float)[k]
         wide = np.asarray(hydrogen, bool)[k]
-        ic = np.array([starts[j][3] for j in walk])
-        sign = np.array([starts[j][4] for j in walk], float)
+        # (np.fromiter, types given: the same arrays as np.array of the lists)
+        ic = np.fromiter((starts[j][3] for j in walk), int, len(walk))
+        sign = np.fromiter((starts[j][4] for j in walk), float, len(walk))
+        limits = {}
+        if series is not None and wide.any():
+            # each hydrogen line's limits in its series, from its matched pixel (all lines in one call)
+            h = np.flatnonzero(wide)
+            lo, hi = series_limits(data.wave[ic[h]], fw[h], series)
+            limits = dict(zip(h.tolist(), zip(lo.tolist(), hi.tolist())))
         if wide.any():
             ic[wide] = hydrogen_starts(data, ic[wide], sign[wide], fw[wide])
         max_half = np.where(wide, np.maximum(25.0 * fw, 80.0), 25.0 * fw)
-        for j, window in zip(walk, adaptive_windows(data, ic, sign, fw, max_half, wide)):
-            if series is not None and is_h[j]:
-                window = _within(data, window, *series_limits(data.wave[starts[j][3]], fw_all[j], series))
-            out[j] = window
+        for m, (j, window) in enumerate(zip(walk, adaptive_windows(data, ic, sign, fw, max_half, wide))):
+            out[j] = _within(data, window, *limits[m]) if m in limits else window
     return out
 
 
@@ -155,19 +172,21 @@ def adaptive_windows(data, ic, sign, min_half, max_half, wide):
     pixel where one holds (in the order :func:`_walk` tests them). The comparisons are the
     same, so are the windows.
     """
-    ends, levels, cuts = [], [], []
-    for step in (-1, 1):
-        end, level, cut = _walks(data, ic, sign, min_half, max_half, wide, step)
-        err_end = _on_smoothing(wide, lambda: data.smooth_wide_err[end], data.smooth_err[end])
-        # a plateau within the noise of the continuum is the continuum
-        level = np.where(np.abs(1.0 - level) <= 3.0 * err_end, 1.0, level)
-        ends.append(end)
-        levels.append(level)
-        cuts.append(cut)
+    # both directions' walks as the rows of one set of arrays (blue walks first, then red): each row's
+    # tests are its own, so the same as one direction at a time, in half the calls (the arrays are
+    # small: a call's cost is mostly its number of numpy operations)
+    nl = ic.size
+    step = np.repeat(np.array([-1, 1]), nl)
+    twice = (np.concatenate([a, a]) for a in (ic, sign, min_half, max_half, wide))
+    ic2, sign2, min_half2, max_half2, wide2 = twice
+    end, level, cut = _walks(data, ic2, sign2, min_half2, max_half2, wide2, step)
+    err_end = _on_smoothing(wide2, lambda: data.smooth_wide_err[end], data.smooth_err[end])
+    # a plateau within the noise of the continuum is the continuum
+    level = np.where(np.abs(1.0 - level) <= 3.0 * err_end, 1.0, level)
+    ends, levels, cuts = end.tolist(), level.tolist(), cut.tolist()
     out = []
     # (the arrays as Python numbers once: the same values as element by element)
-    for e0, e1, l0, l1, c0, c1 in zip(ends[0].tolist(), ends[1].tolist(), levels[0].tolist(), levels[1].tolist(),
-                                      cuts[0].tolist(), cuts[1].tolist()):
+    for e0, e1, l0, l1, c0, c1 in zip(ends[:nl], ends[nl:], levels[:nl], levels[nl:], cuts[:nl], cuts[nl:]):
         if e0 > e1:
             e0, e1, l0, l1 = e1, e0, l1, l0
         out.append(Window(e0, e1, (l0, l1), bool(c0 or c1)))
@@ -178,27 +197,33 @@ def adaptive_windows(data, ic, sign, min_half, max_half, wide):
 #: spectrum and reach not ended) are walked again in full. Most windows end within it, and the test
 #: arrays of a walk to the full reach (25 line widths, hydrogen 80 A) were mostly past every window's
 #: end: adaptive_windows 1.47 -> 1.10 ms a spectrum on benchmarks/bench_lines.py's 40 (16 steps: 1.21,
-#: 24: 1.17; measured, alternated, load 2.6).
-WALK_AHEAD = 32
+#: 24: 1.17; measured, alternated, load 2.6). With both directions walked in one call (their walks still
+#: going are walked again in one call too) 24 steps read 0.55 ms against 32 steps' 0.58 (16: 0.54, 20:
+#: 0.56, 28: 0.57, 40: 0.62, 48: 0.65; the bench's 80 calls replayed, CPU, least of 20 rounds
+#: alternated with c258075's, load 1.6-1.8).
+WALK_AHEAD = 24
+#: The look-ahead of a call whose walks are all on the wide smoothing (the hydrogen lines, walked farther:
+#: 80 A at least). Walked in full at once they read 0.57-0.58 ms a spectrum in adaptive_windows against
+#: 0.55 with 64 steps ahead (48: 0.54, 96: 0.56; the same replay, load 1.4-1.6).
+WIDE_WALK_AHEAD = 64
 
 
 def _walks(data, ic, sign, min_half, max_half, wide, step):
-    """:func:`_walk` of every line in direction ``step``: (edge pixels, levels there, cut).
+    """:func:`_walk` of every line in its direction ``step`` (-1 or 1 per line): (edge pixels, levels there, cut).
 
     Every walk is tested over its first :data:`WALK_AHEAD` steps; those that no rule stopped by then
     and that could go on are tested again over their whole reach. A walk's tests at a step depend on
     that step and the ones before it only, so the first step a rule holds is the same either way.
-    Walks on the wide smoothing alone (the hydrogen lines, a few to a call) are walked in full at
-    once: one of them goes on past the look-ahead in most calls (benchmarks/bench_lines.py's 40
-    spectra: 50 of 80 calls, 127 of 784 walks), and the two passes then cost more than one (0.51 ->
-    0.34 ms a spectrum, CPU, the same windows; measured, load 4-5)."""
-    if wide.all():
-        return _walks_upto(data, ic, sign, min_half, max_half, wide, step, None)[:3]
-    end, level, cut, going = _walks_upto(data, ic, sign, min_half, max_half, wide, step, WALK_AHEAD)
+    Walks on the wide smoothing alone (the hydrogen lines, a few to a call) look farther ahead
+    (:data:`WIDE_WALK_AHEAD`): one of them went on past 32 steps in most calls (benchmarks/bench_lines.py's
+    40 spectra: 50 of 80 calls, 127 of 784 walks), and two passes of 32 steps cost more than walking in
+    full (0.51 -> 0.34 ms a spectrum, CPU, the same windows; measured, load 4-5, a direction a call)."""
+    end, level, cut, going = _walks_upto(data, ic, sign, min_half, max_half, wide, step,
+                                         WIDE_WALK_AHEAD if wide.all() else WALK_AHEAD)
     if going.any():
         k = going.nonzero()[0]
-        end[k], level[k], cut[k], _ = _walks_upto(data, ic[k], sign[k], min_half[k], max_half[k], wide[k], step,
-                                                  None)
+        end[k], level[k], cut[k], _ = _walks_upto(data, ic[k], sign[k], min_half[k], max_half[k], wide[k],
+                                                  step[k], None)
     return end, level, cut
 
 
@@ -208,17 +233,18 @@ def _walks_upto(data, ic, sign, min_half, max_half, wide, step, ahead):
     n = data.wave.size
     nl = ic.size
     x0 = data.wave[ic]
-    # steps a walk can take before the spectrum ends or max_half is passed
-    # (the direction's own limit: np.where on the step made both)
-    if step > 0:
-        limit = data.wave.searchsorted(x0 + max_half, side="right") - 1 - ic
-    else:
-        limit = ic - data.wave.searchsorted(x0 - max_half, side="left")
+    # steps a walk can take before the spectrum ends or max_half is passed (each its own direction's)
+    up = step > 0
+    limit = np.where(up, data.wave.searchsorted(x0 + max_half, side="right") - 1 - ic,
+                     ic - data.wave.searchsorted(x0 - max_half, side="left"))
+    # (the steps past a walk's own limit are not valid: tested over more of them, as for the longest
+    # walk of the other direction, it ends where it did)
     jmax = int(max(limit.max() + 2, 2))
     if ahead is not None:
         jmax = min(jmax, ahead)
     j = np.arange(1, jmax + 1)
-    idx = ic[:, None] + step * j[None, :]                          # (lines, steps)
+    step_c = step[:, None]
+    idx = ic[:, None] + step_c * j[None, :]                        # (lines, steps)
     inside = (idx >= 0) & (idx < n)
     idc = np.minimum(np.maximum(idx, 0), n - 1)
     dist = np.abs(data.wave[idc] - x0[:, None])
@@ -248,7 +274,7 @@ def _walks_upto(data, ic, sign, min_half, max_half, wide, step, ahead):
     back_steps = np.ceil((5.0 if all_wide else np.where(w, 5.0, 1.0) if some_wide else 1.0) * mh
                          / data.dx[idc]).astype(int)
     # (clipped: steps past the spectrum's end are not valid anyway)
-    back = np.minimum(np.maximum(ic[:, None] + step * np.maximum(j[None, :] - back_steps, 0), 0), n - 1)
+    back = np.minimum(np.maximum(ic[:, None] + step_c * np.maximum(j[None, :] - back_steps, 0), 0), n - 1)
     fall = _depth_at(data, back, sign, wide) - depth
     if all_wide:
         flat = (dist >= 10.0 * mh) & (fall < np.maximum(2.0 * err, 0.1 * depth))
