@@ -149,6 +149,20 @@ def _solve_or_lstsq(m, rhs, out):
 
 
 @njit(cache=True)
+def _damped(jtj, held, diag, damping, mat):
+    """Into ``mat``: the normal matrix ``jtj`` damped (``damping`` times ``diag`` added on the diagonal),
+    the ``held`` parameters' rows and columns replaced by the identity's (their step is zero)."""
+    n = jtj.shape[0]
+    for a in range(n):
+        for c in range(n):
+            mat[a, c] = jtj[a, c] if not (held[a] or held[c]) else 0.0
+        if held[a]:
+            mat[a, a] = 1.0
+        else:
+            mat[a, a] = jtj[a, a] + damping * diag[a]
+
+
+@njit(cache=True)
 def lm_propose(act, p, r, jac, cost, lb, ub, padded, lam, decrement, cost_tol, tail):
     """One iteration's proposal for the problems ``act`` (indices into the batch's full arrays).
 
@@ -243,13 +257,7 @@ def lm_propose(act, p, r, jac, cost, lb, ub, padded, lam, decrement, cost_tol, t
             diag[a] = max(diag[a], floor)
             rhs[a] = 0.0 if held[a] else -grad[a]
         # the Gauss-Newton step (damping 1e-12): its decrement tells convergence
-        for a in range(n):
-            for c in range(n):
-                mat[a, c] = jtj[a, c] if not (held[a] or held[c]) else 0.0
-            if held[a]:
-                mat[a, a] = 1.0
-            else:
-                mat[a, a] = jtj[a, a] + 1e-12 * diag[a]
+        _damped(jtj, held, diag, 1e-12, mat)
         _solve_or_lstsq(mat, rhs, gn)
         dec = 0.0
         for a in range(n):
@@ -262,13 +270,7 @@ def lm_propose(act, p, r, jac, cost, lb, ub, padded, lam, decrement, cost_tol, t
             continue
         # the damped step
         lb_ = lam[b]
-        for a in range(n):
-            for c in range(n):
-                mat[a, c] = jtj[a, c] if not (held[a] or held[c]) else 0.0
-            if held[a]:
-                mat[a, a] = 1.0
-            else:
-                mat[a, a] = jtj[a, a] + lb_ * diag[a]
+        _damped(jtj, held, diag, lb_, mat)
         _solve_or_lstsq(mat, rhs, step)
         # a step crossing bounds: those parameters to their bound, the others solved again
         crossed = False
@@ -290,12 +292,7 @@ def lm_propose(act, p, r, jac, cost, lb, ub, padded, lam, decrement, cost_tol, t
                     for c in range(n):
                         s -= jtj[a, c] * tob[c]
                     rhs[a] = s
-                for c in range(n):
-                    mat[a, c] = jtj[a, c] if not (held2[a] or held2[c]) else 0.0
-                if held2[a]:
-                    mat[a, a] = 1.0
-                else:
-                    mat[a, a] = jtj[a, a] + lb_ * diag[a]
+            _damped(jtj, held2, diag, lb_, mat)
             _solve_or_lstsq(mat, rhs, step)
             for a in range(n):
                 step[a] += tob[a]
