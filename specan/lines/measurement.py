@@ -534,12 +534,13 @@ def finish_line(data, features, targets, i, plan, fitter):
 def finish_lines(data, features, targets, plans, exact=True):
     """:func:`finish_line` of every plan (``{index: LinePlan}``), the wing fits batched (:func:`wing_fits`;
     ``exact``: see :func:`specan.lines.batchfit.voigt_batch`)."""
-    unfitted = [plan for plan in plans.values() if plan.window is not None and plan.fit is None]
-    widths = dict(zip(map(id, unfitted), half_widths(data, [p.ic for p in unfitted], [p.window.lo for p in unfitted],
-                                                     [p.window.hi for p in unfitted], [p.sign for p in unfitted])))
+    unfitted = [i for i, plan in plans.items() if plan.window is not None and plan.fit is None]
+    got = [plans[i] for i in unfitted]
+    widths = dict(zip(unfitted, half_widths(data, [p.ic for p in got], [p.window.lo for p in got],
+                                            [p.window.hi for p in got], [p.sign for p in got])))
     for i, plan in plans.items():
         if plan.window is not None:
-            _fitted(data, plan, widths.get(id(plan)))
+            _fitted(data, plan, widths.get(i))
             if plan.hydrogen:
                 less_blends(data, features, targets, i, plan)
     strong = [i for i, plan in plans.items() if plan.window is not None and _wants_wings(plan)]
