@@ -15,7 +15,7 @@ valley converges or is left where it stands, and where: there at most 3 lines of
 1e-6 of their error, none beyond 1 error (the quick design's own tolerance against the exact one,
 tests/test_lines_quick.py, allows 2% of the lines beyond 1 error).
 
-Measured (2026-12-03, branch lines21), the demo night with its planted velocities (this test): exact
+Measured (2026-12-04, branch lines21, now merged), the demo night with its planted velocities (this test): exact
 design 2.5e-11 of the error at most; quick design 2 lines beyond 1e-6: H alpha of trf3_17 0.50 of its
 error (FWHM 10.9 -> 24.7 A, fit chi2 1.660 -> 1.610: numpy's loop left it in the batch's tail, the
 compiled one converged) and H8 of the same star 0.008 (the other tail problem). With the velocity
