@@ -28,7 +28,11 @@ with its own arc, where every spectrum builds its pixel set-up anew. Then:
   (largest process: the run itself or one of its workers, from ``wait4``),
   the share of spectra drawn, and the same command again on the finished
   folder (everything current, nothing recomputed). Cases run side by side,
-  so their ratios come from one run of this script.
+  so their ratios come from one run of this script; ``--rounds K`` runs each
+  case K times, the job counts by turns (1, 2, then 2, 1), and gives each
+  round's ratio of two jobs to one, their median and range: this shared
+  machine's speed moves by up to a third within minutes, as much as the
+  ratio's margin, so one pair is one draw of it.
 * ``--figures K``: analyses K of them in this process, keeps what their
   figures are drawn from, then draws every figure again and prints the CPU ms
   of one figure and its parts (the artists, the rendering, the PNG, the
@@ -55,6 +59,7 @@ Usage::
 
     python benchmarks/bench_pipeline.py --profile 40
     python benchmarks/bench_pipeline.py --counts 1000 --jobs 1,2 --plots none,flagged
+    python benchmarks/bench_pipeline.py --counts 1000 --jobs 1,2 --plots none --rounds 6
     python benchmarks/bench_pipeline.py --counts 1000,100000 --jobs 1 --plots none --stages read,prepare
     python benchmarks/bench_pipeline.py --overhead 300 --plots none,flagged [--compare-with /tmp/before]
     python benchmarks/bench_pipeline.py --figures 30 [--compare-with /tmp/before]
@@ -488,7 +493,7 @@ def throughput(args, work):
     # else runs on the machine: equal figures for 1 and 2 jobs mean that 2 free cores give 2x
     print(f"{'spectra':>8} {'jobs':>5} {'plots':>8} {'seconds':>9} {'spectra/s':>10} {'cpu ms':>7} {'peak MB':>8} "
           f"{'drawn':>6} {'rerun s':>8} {'failed':>7}")
-    rates = {}
+    rates = {}   # (count, jobs, plots) -> [(spectra/s, CPU s a spectrum), ...], one per round
     for count in counts:
         folder = work / f"spectra_{count}{own}"
         if not folder.exists():
@@ -497,31 +502,46 @@ def throughput(args, work):
                 name = f"bench_{i:06d}.fits"
                 os.link(work / f"spectra_all{own}" / name, folder / name)
         for plots in plot_list:
-            for jobs in jobs_list:
-                extra = (["--plots", plots, "--calibration", str(CALIBRATION)]
-                         + (["--stages", args.stages] if args.stages else []))
-                out = work / f"out_{count}_{jobs}_{plots}{own}"
-                shutil.rmtree(out, ignore_errors=True)  # the first run must compute everything
-                seconds, peak, failed, cpu = run_once(folder, out, jobs, extra)
-                again = run_once(folder, out, jobs, extra)[0] if args.rerun else float("nan")
-                print(f"{count:>8} {jobs:>5} {plots:>8} {seconds:>9.1f} {count / seconds:>10.2f} "
-                      f"{1e3 * cpu / count:>7.0f} {peak:>8.0f} "
-                      f"{drawn_share(out):>6.1%} {again:>8.1f} {failed:>7}   load {os.getloadavg()[0]:.1f}",
-                      flush=True)
-                rates[count, jobs, plots] = (count / seconds, cpu / count)
-                if not args.keep:
-                    shutil.rmtree(out, ignore_errors=True)
+            for round_ in range(args.rounds):
+                # the job counts by turns (1, 2 then 2, 1, ...): a drift of the machine's speed through the
+                # rounds then moves both sides of the ratio alike instead of always the later one
+                for jobs in (jobs_list if round_ % 2 == 0 else jobs_list[::-1]):
+                    extra = (["--plots", plots, "--calibration", str(CALIBRATION)]
+                             + (["--stages", args.stages] if args.stages else []))
+                    out = work / f"out_{count}_{jobs}_{plots}{own}"
+                    shutil.rmtree(out, ignore_errors=True)  # the first run must compute everything
+                    seconds, peak, failed, cpu = run_once(folder, out, jobs, extra)
+                    again = run_once(folder, out, jobs, extra)[0] if args.rerun else float("nan")
+                    print(f"{count:>8} {jobs:>5} {plots:>8} {seconds:>9.1f} {count / seconds:>10.2f} "
+                          f"{1e3 * cpu / count:>7.0f} {peak:>8.0f} "
+                          f"{drawn_share(out):>6.1%} {again:>8.1f} {failed:>7}   load {os.getloadavg()[0]:.1f}"
+                          + (f"   round {round_ + 1}" if args.rounds > 1 else ""), flush=True)
+                    rates.setdefault((count, jobs, plots), []).append((count / seconds, cpu / count))
+                    if not args.keep:
+                        shutil.rmtree(out, ignore_errors=True)
     # the issue's targets (issue 12), from the figures above
     for count in counts:
         for plots, target in (("none", 20.0), ("flagged", 15.0)):
             if (count, 1, plots) in rates:
-                rate = rates[count, 1, plots][0]
-                print(f"# {count} spectra, one job, figures {plots}: {rate:.2f} spectra/s against >= {target:.0f}: "
-                      f"{'met' if rate >= target else 'not met'}")
+                one = [r for r, _ in rates[count, 1, plots]]
+                print(f"# {count} spectra, one job, figures {plots}: {_spread(one)} spectra/s against >= {target:.0f}: "
+                      f"{'met' if np.median(one) >= target else 'not met'}" + (" (median)" if len(one) > 1 else ""))
             if (count, 1, plots) in rates and (count, 2, plots) in rates:
-                (r1, c1), (r2, c2) = rates[count, 1, plots], rates[count, 2, plots]
-                print(f"# {count} spectra, figures {plots}: 2 jobs / 1 job = {r2 / r1:.2f}x wall clock (>= 1.8: "
-                      f"{'met' if r2 / r1 >= 1.8 else 'not met'}); CPU per spectrum {c2 / c1:.2f}x")
+                # each round's ratio from its own pair of runs, made minutes apart
+                pairs = list(zip(rates[count, 1, plots], rates[count, 2, plots]))
+                wall = [r2 / r1 for (r1, _), (r2, _) in pairs]
+                cpu = [c2 / c1 for (_, c1), (_, c2) in pairs]
+                print(f"# {count} spectra, figures {plots}: 2 jobs / 1 job = {_spread(wall)}x wall clock (>= 1.8: "
+                      f"{'met' if np.median(wall) >= 1.8 else 'not met'}" + (" by the median of the rounds; "
+                      f"{sum(w >= 1.8 for w in wall)} of {len(wall)} rounds" if len(wall) > 1 else "")
+                      + f"); CPU per spectrum {_spread(cpu)}x")
+
+
+def _spread(values):
+    """One figure, or the median of several with their range: '1.87 (1.74-1.95)'."""
+    if len(values) == 1:
+        return f"{values[0]:.2f}"
+    return f"{np.median(values):.2f} ({min(values):.2f}-{max(values):.2f})"
 
 
 def compare(other, work):
@@ -562,6 +582,8 @@ def main(argv=None):
     parser.add_argument("--jobs", default="1,2", help="numbers of jobs, comma-separated")
     parser.add_argument("--plots", default="none,flagged", help="--plots choices to run, comma-separated")
     parser.add_argument("--stages", default=None, help="passed to specan run --stages (default: all)")
+    parser.add_argument("--rounds", type=int, default=1, metavar="K",
+                        help="run each case K times, the job counts by turns, and give the median and range")
     parser.add_argument("--rerun", action="store_true", help="time a second run on the finished folder")
     parser.add_argument("--keep", action="store_true", help="keep the output folders")
     parser.add_argument("--profile", type=int, default=0, metavar="K", help="per-stage profile of K spectra")

@@ -522,6 +522,16 @@ def run(paths, out_dir, jobs=1, dask=None, force=False, formats=("ecsv",), overr
     choice = _checked_plot_choice(plots)
     named = tuple(str(n) for n in (plot_for or ()))
     wanted = _checked_stages(stages)
+    # what the analysis sets aside from the collector's passes (the imported libraries) stays aside
+    # through the writing: its hand-back's full collection then visits what the analysis left
+    with heap.held_aside():
+        return _run(paths, out, jobs, dask, force, formats, overrides, choice, named, report, progress, wanted,
+                    photometry, calibration, t0)
+
+
+def _run(paths, out, jobs, dask, force, formats, overrides, choice, named, report, progress, wanted,
+         photometry, calibration, t0) -> RunSummary:
+    """:func:`run`'s analysis and writing, with its arguments checked."""
     # local workers start first: their start-up overlaps with finding the inputs and what is current
     with executors.local_workers(1 if dask else int(jobs), preload=WORKER_MODULES) as pool:
         inputs = collect_inputs(paths)

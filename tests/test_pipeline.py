@@ -873,10 +873,16 @@ def test_chunks_cover_every_input_once():
         size = executors.chunk_size(count, workers)
         assert 1 <= size <= executors.MAX_CHUNK
         todo = [str(i) for i in range(count)]
-        chunks = list(executors._chunks(todo, size))
+        chunks = list(executors._chunks(todo, size, workers))
         assert [p for c in chunks for p in c] == todo
         # many tasks per worker (so that the last ones end close together), or chunks as large as allowed
         assert len(chunks) >= min(count, executors.TASKS_PER_WORKER * workers) // 2 or size == executors.MAX_CHUNK
+        lengths = [len(c) for c in chunks]
+        assert max(lengths) == size
+        # never longer towards the end, and the last ones single inputs: no worker left with a long tail
+        assert lengths == sorted(lengths, reverse=True) and lengths[-1] == 1
+        if count >= 2 * workers:
+            assert lengths[-min(workers, len(lengths)):] == [1] * min(workers, len(lengths))
 
 
 def test_catalogue_and_report_written_a_few_rows_at_a_time(tmp_path, fixed_code, monkeypatch):

@@ -55,9 +55,19 @@ def chunk_size(count, workers) -> int:
     return max(1, min(MAX_CHUNK, math.ceil(count / (TASKS_PER_WORKER * max(1, workers)))))
 
 
-def _chunks(todo, size):
-    for i in range(0, len(todo), size):
-        yield todo[i:i + size]
+def _chunks(todo, size, workers=1):
+    """Consecutive chunks of ``todo``, ``size`` long until the last inputs, then shorter.
+
+    Each chunk is at most a ``2 * workers``-th of what is left: the last few are of one or two
+    inputs, so the workers end within about a spectrum of one another (with chunks of eight to the
+    end, one worker waited for the other's last chunk for half a chunk on average: 0.15-0.2 s of a
+    two-job run of 1,000 spectra at ~40 ms a spectrum).
+    """
+    i, n = 0, len(todo)
+    while i < n:
+        step = max(1, min(size, math.ceil((n - i) / (2 * max(1, workers)))))
+        yield todo[i:i + step]
+        i += step
 
 
 #: This process's count of spectra analysed, handing freed memory back every so many (see
@@ -330,7 +340,7 @@ def results_local(func, todo, settings, jobs, pool=None):
         pool = _start_pool(jobs)
     size = chunk_size(len(todo), jobs)
     try:
-        chunks = pool.imap_unordered(_task, ((func, c, settings) for c in _chunks(todo, size)))
+        chunks = pool.imap_unordered(_task, ((func, c, settings) for c in _chunks(todo, size, jobs)))
         while True:
             try:
                 chunk = chunks.next(timeout=ALARM_POLL)
@@ -361,7 +371,7 @@ def results_dask(func, todo, settings, address):
                           "check the address or run with --jobs instead") from exc
     with client:
         workers = max(1, sum(client.nthreads().values()))
-        chunks = list(_chunks(todo, chunk_size(len(todo), workers)))
+        chunks = list(_chunks(todo, chunk_size(len(todo), workers), workers))
         futures = [client.submit(run_chunk, func, c, settings, pure=False) for c in chunks]
         try:
             for fut in as_completed(futures, loop=client.loop):
