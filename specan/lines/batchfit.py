@@ -152,7 +152,7 @@ def fit_batched_voigt(data, lo, hi, cont, centres, profile, max_shift, sig_inst,
 # ----------------------------------------------------------------------------- Gaussian
 
 
-def gauss_batch(data, problems, exact=True):
+def gauss_batch(data, problems, exact=True, compiled=None):
     """:func:`specan.lines.profiles.fit_gauss` of every problem.
 
     Parameters
@@ -166,6 +166,9 @@ def gauss_batch(data, problems, exact=True):
         a third of it: a line the instrument does not resolve has the instrument's width. Where
         the data ask for another (a score test of the held width beyond :data:`QUICK_WIDTH_Z`),
         one Gauss-Newton step in the width within the same 0.95-1.05 (:func:`_step_widths`).
+    compiled : bool, optional
+        Each group by the compiled kernels (:func:`_compiled_gauss_group`) or in numpy; None (default):
+        compiled where :data:`COMPILED` and numba imports.
 
     Returns
     -------
@@ -178,7 +181,7 @@ def gauss_batch(data, problems, exact=True):
         groups.setdefault((len(centres), nsh), []).append(k)
     widths = _GRID_WIDTHS if exact else QUICK_WIDTHS
     for (ncomp, nsh), ks in groups.items():
-        _gauss_group(data, problems, ks, ncomp, nsh, out, widths, not exact)
+        _gauss_group(data, problems, ks, ncomp, nsh, out, widths, not exact, compiled)
     return out
 
 
@@ -208,12 +211,14 @@ def _padded(data, problems, ks, skip_index=None):
     return x, y, cont, wts, (wts > 0).sum(axis=1)
 
 
-def _gauss_group(data, problems, ks, ncomp, nsh, out, widths=None, width_step=False):
+def _gauss_group(data, problems, ks, ncomp, nsh, out, widths=None, width_step=False, compiled=None):
     """The problems ``ks`` (``ncomp`` components, shift grid of ``2 nsh + 1`` steps) into ``out``.
 
     ``widths``: the grid's widths (times the line width; default :func:`fit_gauss`'s three).
     ``width_step``: with one width held (the quick design), the fits whose data ask for another
-    width take one Gauss-Newton step in it (:func:`_step_widths`).
+    width take one Gauss-Newton step in it (:func:`_step_widths`). ``compiled``: the group by
+    :func:`_compiled_gauss_group` (None: where :data:`COMPILED` and numba imports), else in numpy
+    below (the fallback, and the reference tests/test_lines_compiled.py holds it to).
     """
     # enough pixels of non-zero weight (counted from one running count of them, not per window)
     count = _positive_counts(data)
@@ -233,12 +238,21 @@ def _gauss_group(data, problems, ks, ncomp, nsh, out, widths=None, width_step=Fa
     sg = sig_line[:, None] * np.tile(widths, 2 * nsh + 1)[None, :]
     b = (cont - y) * wts
     cw = cont * wts
+    if (COMPILED if compiled is None else compiled) and _kernels_available():
+        if _compiled_gauss_group(problems, ks, x, b, cw, centres, sh, sg, sig_line, step, sign, ngood, nsh, nw,
+                                 width_step, out):
+            return
+        singular = True
+    else:
+        singular = False
     dx = x[:, None, None, :] - (centres[:, None, :, None] + sh[:, :, None, None])   # (L, G, C, P)
     s4 = sg[:, :, None, None]
     a = np.exp(-0.5 * (dx / s4) ** 2) / (s4 * np.sqrt(2 * np.pi)) * cw[:, None, None, :]
     ata = a @ a.transpose(0, 1, 3, 2) + 1e-12 * np.eye(ncomp)
     atb = a @ b[:, None, :, None]
     try:
+        if singular:   # (the compiled grid found a singular system: fitted line by line, below)
+            raise np.linalg.LinAlgError("Singular matrix")
         if ncomp == 1:
             # one component: LAPACK's solve of a 1 x 1 system is the division (the same bits, tested),
             # without the solver's per-system overhead; a zero pivot stops it as it stops the solver
@@ -328,6 +342,39 @@ def _gauss_group(data, problems, ks, ncomp, nsh, out, widths=None, width_step=Fa
         out[k] = {"ew": float(wbest[row, 0]), "ew_err": float(np.sqrt(max(c00, 0.0))),
                   "centre": float(centres[row, 0] + shift), "fwhm": float(GAUSS_FWHM * sig),
                   "depth": float(peak), "chi2": float(cbest[row]) / dof, "sigma": float(sig), "gamma": 0.0}
+
+
+def _compiled_gauss_group(problems, ks, x, b, cw, centres, sh, sg, sig_line, step, sign, ngood, nsh, nw, width_step,
+                          out):
+    """:func:`_gauss_group`'s grid, choice of grid point, width step, covariance and refined shift by two
+    compiled calls (:func:`.lmkernel.gauss_grid_choice`, :func:`.lmkernel.gauss_finish`), the one-by-one
+    rule's NNLS between them (:func:`.profiles.best_grid_point`, for the lines none of whose five best
+    grid points has every component of the line's sign). The same steps as the numpy path, its sums
+    made in another order (tests/test_lines_compiled.py states how far the tables may move). Fits into
+    ``out``; False where a normal matrix of the grid is singular (nothing written: the caller fits the
+    group line by line, as the numpy path does)."""
+    from . import lmkernel
+
+    a, ata, w, chi2, best, ok = lmkernel.gauss_grid_choice(x, b, cw, centres, sh, sg, sign)
+    if not ok:
+        return False
+    rows = np.arange(len(ks))
+    wbest = w[rows, np.maximum(best, 0)]
+    cbest = chi2[rows, np.maximum(best, 0)]
+    for row in (best == -2).nonzero()[0].tolist():
+        m = problems[ks[row]][1] - problems[ks[row]][0] + 1
+        bg, wb, cb = best_grid_point(a[row, :, :, :m], b[row, :m], w[row], chi2[row], sign[row])
+        if bg is None:
+            best[row] = -1
+            continue
+        best[row], wbest[row], cbest[row] = bg, wb, cb
+    cols, fitted = lmkernel.gauss_finish(x, b, cw, a, ata, chi2, centres, sh, sg, sig_line, step, sign, ngood, best,
+                                         wbest, cbest, nsh, nw, width_step, QUICK_WIDTH_Z, _GRID_WIDTHS[0],
+                                         _GRID_WIDTHS[-1], GAUSS_FWHM)
+    for row, (e, err, cen, fw, peak, c2, sg_) in zip(fitted.nonzero()[0].tolist(), cols[fitted].tolist()):
+        out[ks[row]] = {"ew": e, "ew_err": err, "centre": cen, "fwhm": fw, "depth": peak, "chi2": c2,
+                        "sigma": sg_, "gamma": 0.0}
+    return True
 
 
 def _width_scores(x, b, a, ata, w, centres, sig):
