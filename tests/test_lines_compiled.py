@@ -171,9 +171,10 @@ def test_workers_warm_up_the_preloaded_modules(monkeypatch):
 # path, on every Gaussian group measure() makes on the demo night. Stated tolerance: the same lines
 # fitted (None where numpy's is None), equivalent width and its error within 1e-9 of the error, centre,
 # FWHM and sigma within 1e-9 of the FWHM, reduced chi-square within 1e-9 relative (the same grid point
-# chosen; only the sums' order differs). Measured (2026-12-04, lines23): on the bench's 40 spectra,
-# the dense one and the demo night, both designs (9,270 fits): 2.9e-13 of the error at most, centre
-# 4.4e-13 of the FWHM, chi-square 8.6e-13 relative.
+# chosen; the sums are made in another order, the grid's exponentials by a recurrence along the shifts).
+# Measured (2026-12-04, lines23): on the bench's 40 spectra, the dense one and the demo night, both
+# designs (9,270 fits): 2.2e-11 of the error at most, centre 9.2e-13 of the FWHM, chi-square 1.4e-11
+# relative (2.9e-13, 4.4e-13 and 8.6e-13 with one exponential a grid point).
 GAUSS_TOL = 1e-9
 
 
@@ -257,7 +258,7 @@ def test_compiled_gaussian_group_singular_as_numpy(monkeypatch):
     x = data.wave[lo:lo + 21][None, :]
     cw = (1e8 * np.sqrt(a))[None, :]
     ok = lmkernel.gauss_grid_choice(x, np.zeros((1, 21)), cw, np.array([[centre, centre]]), np.zeros((1, 1)),
-                                    np.full((1, 1), sig), np.ones(1))[-1]
+                                    np.full((1, 1), sig), np.full(1, sig / 4.0), 1, np.ones(1))[-1]
     assert not ok
     for exact in (False, True):
         slow = batchfit.gauss_batch(data, problems, exact=exact, compiled=False)

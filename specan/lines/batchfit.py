@@ -355,7 +355,7 @@ def _compiled_gauss_group(problems, ks, x, b, cw, centres, sh, sg, sig_line, ste
     group line by line, as the numpy path does)."""
     from . import lmkernel
 
-    a, ata, w, chi2, best, ok = lmkernel.gauss_grid_choice(x, b, cw, centres, sh, sg, sign)
+    a, ata, w, chi2, best, ok = lmkernel.gauss_grid_choice(x, b, cw, centres, sh, sg, step, nw, sign)
     if not ok:
         return False
     rows = np.arange(len(ks))
