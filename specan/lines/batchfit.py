@@ -225,7 +225,6 @@ def _gauss_group(data, problems, ks, ncomp, nsh, out, widths=None, width_step=Fa
     ks = [k for k in ks if count[problems[k][1] + 1] - count[problems[k][0]] >= 3 + ncomp]
     if not ks:
         return
-    x, y, cont, wts, ngood = _padded(data, problems, ks)
     centres = np.array([problems[k][3] for k in ks], float)          # (L, C)
     sig_line = np.array([problems[k][5] for k in ks], float)
     sign = np.array([problems[k][6] for k in ks], float)
@@ -236,15 +235,14 @@ def _gauss_group(data, problems, ks, ncomp, nsh, out, widths=None, width_step=Fa
     nw = widths.size
     sh = np.repeat(np.arange(-nsh, nsh + 1), nw)[None, :] * step[:, None]      # (L, G)
     sg = sig_line[:, None] * np.tile(widths, 2 * nsh + 1)[None, :]
-    b = (cont - y) * wts
-    cw = cont * wts
+    singular = False
     if (COMPILED if compiled is None else compiled) and _kernels_available():
-        if _compiled_gauss_group(problems, ks, x, b, cw, centres, sh, sg, sig_line, step, sign, ngood, nsh, nw,
-                                 width_step, out):
+        if _compiled_gauss_group(data, problems, ks, centres, sh, sg, sig_line, step, sign, nsh, nw, width_step, out):
             return
         singular = True
-    else:
-        singular = False
+    x, y, cont, wts, ngood = _padded(data, problems, ks)
+    b = (cont - y) * wts
+    cw = cont * wts
     dx = x[:, None, None, :] - (centres[:, None, :, None] + sh[:, :, None, None])   # (L, G, C, P)
     s4 = sg[:, :, None, None]
     a = np.exp(-0.5 * (dx / s4) ** 2) / (s4 * np.sqrt(2 * np.pi)) * cw[:, None, None, :]
@@ -344,17 +342,24 @@ def _gauss_group(data, problems, ks, ncomp, nsh, out, widths=None, width_step=Fa
                   "depth": float(peak), "chi2": float(cbest[row]) / dof, "sigma": float(sig), "gamma": 0.0}
 
 
-def _compiled_gauss_group(problems, ks, x, b, cw, centres, sh, sg, sig_line, step, sign, ngood, nsh, nw, width_step,
-                          out):
+def _compiled_gauss_group(data, problems, ks, centres, sh, sg, sig_line, step, sign, nsh, nw, width_step, out):
     """:func:`_gauss_group`'s grid, choice of grid point, width step, covariance and refined shift by two
     compiled calls (:func:`.lmkernel.gauss_grid_choice`, :func:`.lmkernel.gauss_finish`), the one-by-one
     rule's NNLS between them (:func:`.profiles.best_grid_point`, for the lines none of whose five best
     grid points has every component of the line's sign). The same steps as the numpy path, its sums
     made in another order (tests/test_lines_compiled.py states how far the tables may move). Fits into
     ``out``; False where a normal matrix of the grid is singular (nothing written: the caller fits the
-    group line by line, as the numpy path does)."""
+    group line by line, as the numpy path does). The windows are padded by the kernel too
+    (:func:`.lmkernel.gauss_windows`: :func:`_padded`'s values)."""
     from . import lmkernel
 
+    lo = np.fromiter((problems[k][0] for k in ks), np.int64, len(ks))
+    hi = np.fromiter((problems[k][1] for k in ks), np.int64, len(ks))
+    # (each continuum as one value per pixel, as _padded takes it)
+    conts = [problems[k][2] for k in ks]
+    flat = np.concatenate([c if getattr(c, "shape", None) == (m,) else np.broadcast_to(c, (m,))
+                           for c, m in zip(conts, (hi - lo + 1).tolist())])
+    x, b, cw, ngood = lmkernel.gauss_windows(lo, hi, data.wave, data.flux, data.weight, np.asarray(flat, float))
     a, ata, w, chi2, best, ok = lmkernel.gauss_grid_choice(x, b, cw, centres, sh, sg, step, nw, sign)
     if not ok:
         return False

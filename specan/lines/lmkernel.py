@@ -43,7 +43,7 @@ except ImportError:   # pragma: no cover - exercised where numba is absent
             return func
         return wrap
 
-__all__ = ["AVAILABLE", "gauss_finish", "gauss_grid_choice", "lm_accept_model", "lm_points", "lm_propose", "lu_solve",
+__all__ = ["AVAILABLE", "gauss_finish", "gauss_grid_choice", "gauss_windows", "lm_accept_model", "lm_points", "lm_propose", "lu_solve",
            "symmetric_lstsq", "warm"]
 
 
@@ -465,6 +465,37 @@ def _normal_solve(a, b, at, ata, atb, mat, sol):
     return lu_solve(mat, atb, sol)
 
 
+@njit(cache=True)
+def gauss_windows(lo, hi, wave, flux, weight, cont):
+    """The windows ``lo[l]..hi[l]`` padded to one length, as ``batchfit._padded`` pads them (the last pixel
+    repeated past a window's end, with zero weight): wavelengths ``x``, weighted data ``b = (cont - y) w``
+    and weighted continua ``cw = cont w`` (L, P), ``w`` the square root of ``weight``, and the count of
+    pixels of non-zero weight (L,); ``cont`` holds the windows' continua one after the other. The same
+    values as numpy's (one square root, difference and product each)."""
+    L = lo.shape[0]
+    P = 0
+    for l in range(L):
+        P = max(P, hi[l] - lo[l] + 1)
+    x = np.empty((L, P))
+    b = np.zeros((L, P))
+    cw = np.zeros((L, P))
+    ngood = np.zeros(L, np.int64)
+    k = 0
+    for l in range(L):
+        n = hi[l] - lo[l] + 1
+        for q in range(P):
+            x[l, q] = wave[lo[l] + min(q, n - 1)]
+        for q in range(n):
+            wq = np.sqrt(weight[lo[l] + q])
+            c = cont[k + q]
+            b[l, q] = (c - flux[lo[l] + q]) * wq
+            cw[l, q] = c * wq
+            if wq > 0:
+                ngood[l] += 1
+        k += n
+    return x, b, cw, ngood
+
+
 @njit(cache=True, error_model="numpy")
 def gauss_grid_choice(x, b, cw, centres, sh, sg, step, nw, sign):
     """The grid of every line of a Gaussian group and its chosen point (``batchfit._gauss_group``'s
@@ -757,13 +788,13 @@ def warm():
                     np.ones((1, m)), np.ones((1, m)), p.copy(), r.copy(), jac.copy(), cost.copy(), lam.copy(),
                     nu.copy())
     # the Gaussian groups' kernels (batchfit._compiled_gauss_group), on one line of one component
-    x = np.linspace(-2.0, 2.0, m)[None, :]
-    cw = np.ones((1, m))
-    b = 0.3 * np.exp(-0.5 * x * x)
+    wave = np.linspace(-2.0, 2.0, m)
+    x, b, cw, ngood = gauss_windows(np.zeros(1, np.int64), np.full(1, m - 1), wave, 1.0 - 0.3 * np.exp(-0.5 * wave * wave),
+                                    np.ones(m), np.ones(m))
     centres = np.zeros((1, 1))
     sh = np.array([[-0.25, 0.0, 0.25]])
     sg = np.ones((1, 3))
     sign = np.ones(1)
     a, ata, w, chi2, best, _ = gauss_grid_choice(x, b, cw, centres, sh, sg, np.full(1, 0.25), 1, sign)
-    gauss_finish(x, b, cw, a, ata, chi2, centres, sh, sg, np.ones(1), np.full(1, 0.25), sign, np.full(1, m), best,
+    gauss_finish(x, b, cw, a, ata, chi2, centres, sh, sg, np.ones(1), np.full(1, 0.25), sign, ngood, best,
                  w[:, 0].copy(), chi2[:, 0].copy(), 1, 1, True, 2.0, 0.95, 1.05, 2.3548200450309493)
