@@ -343,14 +343,13 @@ def _gauss_group(data, problems, ks, ncomp, nsh, out, widths=None, width_step=Fa
 
 
 def _compiled_gauss_group(data, problems, ks, centres, sh, sg, sig_line, step, sign, nsh, nw, width_step, out):
-    """:func:`_gauss_group`'s grid, choice of grid point, width step, covariance and refined shift by two
-    compiled calls (:func:`.lmkernel.gauss_grid_choice`, :func:`.lmkernel.gauss_finish`), the one-by-one
-    rule's NNLS between them (:func:`.profiles.best_grid_point`, for the lines none of whose five best
+    """:func:`_gauss_group`'s padded windows, grid, choice of grid point, width step, covariance and refined
+    shift by three compiled calls (:func:`.lmkernel.gauss_windows`, :func:`.lmkernel.gauss_grid_choice`,
+    :func:`.lmkernel.gauss_finish`), the one-by-one rule's NNLS between the last two (:func:`.profiles.best_grid_point`, for the lines none of whose five best
     grid points has every component of the line's sign). The same steps as the numpy path, its sums
     made in another order (tests/test_lines_compiled.py states how far the tables may move). Fits into
     ``out``; False where a normal matrix of the grid is singular (nothing written: the caller fits the
-    group line by line, as the numpy path does). The windows are padded by the kernel too
-    (:func:`.lmkernel.gauss_windows`: :func:`_padded`'s values)."""
+    group line by line, as the numpy path does). The padded windows are :func:`_padded`'s values (tested)."""
     from . import lmkernel
 
     lo = np.fromiter((problems[k][0] for k in ks), np.int64, len(ks))

@@ -18,10 +18,10 @@ iterates differ in the last bits and a fit can stop an iteration earlier or late
 tests/test_lines_compiled.py states and checks how far the tables may move. ``AVAILABLE`` is False
 where numba does not import; :mod:`.batchfit` then takes its numpy loop.
 
-The Gaussian groups of :func:`.batchfit.gauss_batch` are compiled here too (:func:`gauss_grid_choice`,
-:func:`gauss_finish`: the grid, the choice of grid point, the quick design's width step, the
-covariance and refined shift, two calls a group; ``batchfit._gauss_group``'s numpy path the fallback
-and the reference, tests/test_lines_compiled.py).
+The Gaussian groups of :func:`.batchfit.gauss_batch` are compiled here too (:func:`gauss_windows`,
+:func:`gauss_grid_choice`, :func:`gauss_finish`: the padded windows, the grid, the choice of grid
+point, the quick design's width step, the covariance and refined shift, three calls a group;
+``batchfit._gauss_group``'s numpy path the fallback and the reference, tests/test_lines_compiled.py).
 
 The kernels are compiled on first use and kept in numba's on-disk cache (``cache=True``: ~5 s once
 per installation, ~0.3 s loading in each new process after that); :func:`warm` does it ahead, so
@@ -420,8 +420,8 @@ def lm_accept_model(act, pn, z, w, predicted, first, comp_at, pix_at, cont, y, w
 # design, normal matrices, solves, the choice of grid point, the quick design's width step, the
 # covariance, the refined shift): their count, not their arithmetic, was its time. The grid alone
 # compiled saved 0.2 ms a spectrum (lines21's prototype, ff87a0b): the rest of the group stayed numpy
-# calls. Here the whole group is two compiled calls (:func:`gauss_grid_choice`, :func:`gauss_finish`),
-# with the one-by-one rule's NNLS (rare, scipy's) between them in Python.
+# calls. Here the whole group is three compiled calls (:func:`gauss_windows`, :func:`gauss_grid_choice`,
+# :func:`gauss_finish`), with the one-by-one rule's NNLS (rare, scipy's) before the last in Python.
 
 #: sqrt(2 pi) as numpy's ``np.sqrt(2 * np.pi)`` gives it (sqrt is correctly rounded in both)
 _SQRT_2PI = np.sqrt(2 * np.pi)
