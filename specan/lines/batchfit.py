@@ -345,8 +345,9 @@ def _gauss_group(data, problems, ks, ncomp, nsh, out, widths=None, width_step=Fa
 def _compiled_gauss_group(data, problems, ks, centres, sh, sg, sig_line, step, sign, nsh, nw, width_step, out):
     """:func:`_gauss_group`'s padded windows, grid, choice of grid point, width step, covariance and refined
     shift by three compiled calls (:func:`.lmkernel.gauss_windows`, :func:`.lmkernel.gauss_grid_choice`,
-    :func:`.lmkernel.gauss_finish`), the one-by-one rule's NNLS between the last two (:func:`.profiles.best_grid_point`, for the lines none of whose five best
-    grid points has every component of the line's sign). The same steps as the numpy path, its sums
+    :func:`.lmkernel.gauss_finish`); the one-by-one rule's NNLS (the lines none of whose five best grid
+    points has every component of the line's sign) in the kernel too (:func:`.lmkernel.nnls_rows`; where
+    it fails, :func:`.profiles.best_grid_point` between the last two). The same steps as the numpy path, its sums
     made in another order (tests/test_lines_compiled.py states how far the tables may move). Fits into
     ``out``; False where a normal matrix of the grid is singular (nothing written: the caller fits the
     group line by line, as the numpy path does). The padded windows are :func:`_padded`'s values (tested)."""
@@ -359,13 +360,10 @@ def _compiled_gauss_group(data, problems, ks, centres, sh, sg, sig_line, step, s
     flat = np.concatenate([c if getattr(c, "shape", None) == (m,) else np.broadcast_to(c, (m,))
                            for c, m in zip(conts, (hi - lo + 1).tolist())])
     x, b, cw, ngood = lmkernel.gauss_windows(lo, hi, data.wave, data.flux, data.weight, np.asarray(flat, float))
-    a, ata, w, chi2, best, ok = lmkernel.gauss_grid_choice(x, b, cw, centres, sh, sg, step, nw, sign)
+    a, ata, w, chi2, best, wbest, cbest, ok = lmkernel.gauss_grid_choice(x, b, cw, centres, sh, sg, step, nw, sign)
     if not ok:
         return False
-    rows = np.arange(len(ks))
-    wbest = w[rows, np.maximum(best, 0)]
-    cbest = chi2[rows, np.maximum(best, 0)]
-    for row in (best == -2).nonzero()[0].tolist():
+    for row in (best == -2).nonzero()[0].tolist():   # (a sign-constrained solve the kernel left to scipy)
         m = problems[ks[row]][1] - problems[ks[row]][0] + 1
         bg, wb, cb = best_grid_point(a[row, :, :, :m], b[row, :m], w[row], chi2[row], sign[row])
         if bg is None:

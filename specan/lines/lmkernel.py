@@ -43,7 +43,7 @@ except ImportError:   # pragma: no cover - exercised where numba is absent
             return func
         return wrap
 
-__all__ = ["AVAILABLE", "gauss_finish", "gauss_grid_choice", "gauss_windows", "lm_accept_model", "lm_points", "lm_propose", "lu_solve",
+__all__ = ["AVAILABLE", "gauss_finish", "gauss_grid_choice", "gauss_windows", "nnls_rows", "lm_accept_model", "lm_points", "lm_propose", "lu_solve",
            "symmetric_lstsq", "warm"]
 
 
@@ -497,6 +497,103 @@ def gauss_windows(lo, hi, wave, flux, weight, cont):
 
 
 @njit(cache=True, error_model="numpy")
+def nnls_rows(a, b, at, sign, out):
+    """Non-negative least squares of ``sign * a`` (C, P: one row a component) against ``sign * b`` (P,) over
+    the pixels ``at``: ``min |A' x - r|`` with ``x >= 0``, by Lawson and Hanson's active-set algorithm (as
+    scipy's ``nnls``; Lawson & Hanson 1995, ch. 23, from memory), each passive set's least squares by its
+    normal equations (LU). ``out`` gets ``sign * x`` (the one-by-one rule's equivalent widths); returns the
+    residual's squared norm, or -1 where a passive set's normal matrix is singular or the iterations
+    (3 C, scipy's default) run out (the caller then asks scipy)."""
+    C = a.shape[0]
+    ata = np.empty((C, C))
+    atr = np.empty(C)
+    for c in range(C):
+        t = 0.0
+        for q in at:
+            t += (sign * a[c, q]) * (sign * b[q])
+        atr[c] = t
+        for d in range(c, C):
+            t = 0.0
+            for q in at:
+                t += (sign * a[c, q]) * (sign * a[d, q])
+            ata[c, d] = t
+            ata[d, c] = t
+    x = np.zeros(C)
+    z = np.zeros(C)
+    grad = atr.copy()
+    passive = np.zeros(C, np.bool_)
+    idx = np.empty(C, np.int64)
+    big = 0.0
+    for c in range(C):
+        big = max(big, abs(atr[c]))
+    tol = 1e-13 * big
+    it = 0
+    while True:
+        j = -1
+        top = tol
+        for c in range(C):
+            if not passive[c] and grad[c] > top:
+                top = grad[c]
+                j = c
+        if j < 0:
+            break
+        passive[j] = True
+        while True:
+            it += 1
+            if it > 3 * C:
+                return -1.0
+            k = 0
+            for c in range(C):
+                if passive[c]:
+                    idx[k] = c
+                    k += 1
+            mat = np.empty((k, k))
+            rhs = np.empty(k)
+            sol = np.empty(k)
+            for e in range(k):
+                rhs[e] = atr[idx[e]]
+                for f in range(k):
+                    mat[e, f] = ata[idx[e], idx[f]]
+            if not lu_solve(mat, rhs, sol):
+                return -1.0
+            for c in range(C):
+                z[c] = 0.0
+            positive = True
+            for e in range(k):
+                z[idx[e]] = sol[e]
+                if sol[e] <= 0:
+                    positive = False
+            if positive:
+                for c in range(C):
+                    x[c] = z[c]
+                break
+            # back along the segment to the first component that reaches zero, which leaves the passive set
+            alpha = np.inf
+            for c in range(C):
+                if passive[c] and z[c] <= 0:
+                    alpha = min(alpha, x[c] / (x[c] - z[c]))
+            for c in range(C):
+                x[c] += alpha * (z[c] - x[c])
+                if passive[c] and x[c] <= 0:
+                    passive[c] = False
+                    x[c] = 0.0
+        for c in range(C):
+            t = atr[c]
+            for d in range(C):
+                t -= ata[c, d] * x[d]
+            grad[c] = t
+    res = 0.0
+    for q in at:
+        t = -(sign * b[q])
+        for c in range(C):
+            t += (sign * a[c, q]) * x[c]
+        res += t * t
+    for c in range(C):
+        out[c] = sign * x[c]
+    return res
+
+
+@njit(cache=True, error_model="numpy")
 def gauss_grid_choice(x, b, cw, centres, sh, sg, step, nw, sign):
     """The grid of every line of a Gaussian group and its chosen point (``batchfit._gauss_group``'s
     first half, compiled).
@@ -513,12 +610,14 @@ def gauss_grid_choice(x, b, cw, centres, sh, sg, step, nw, sign):
 
     Returns
     -------
-    a, ata, w, chi2, best, ok
+    a, ata, w, chi2, best, wbest, cbest, ok
         The weighted designs (L, G, C, P), normal matrices (L, G, C, C), equivalent widths (L, G, C) and
-        chi-squares (L, G) of the grid; ``best`` the grid point of least chi-square whose components
-        all have the line's sign among the five best (as ``profiles.best_grid_point``), -2 where none
-        has (the caller's NNLS decides); ``ok`` False where a normal matrix is singular (the caller then
-        fits the group line by line, as numpy's path does).
+        chi-squares (L, G) of the grid; ``best`` the chosen grid point as ``profiles.best_grid_point``
+        chooses it (the point of least chi-square whose components all have the line's sign among the
+        five best; where none has, the one of least chi-square solved with the sign constraint,
+        :func:`nnls_rows`), -2 where that NNLS failed (the caller's scipy decides), and its equivalent
+        widths (L, C) and chi-square (L,); ``ok`` False where a normal matrix is singular (the caller
+        then fits the group line by line, as numpy's path does).
     """
     L, P = x.shape
     G = sh.shape[1]
@@ -528,6 +627,9 @@ def gauss_grid_choice(x, b, cw, centres, sh, sg, step, nw, sign):
     w = np.empty((L, G, C))
     chi2 = np.empty((L, G))
     best = np.full(L, -2, np.int64)
+    wbest = np.zeros((L, C))
+    cbest = np.zeros(L)
+    sol = np.empty(C)
     at = np.empty(P, np.int64)
     atb = np.empty(C)
     mat = np.empty((C, C))
@@ -565,7 +667,7 @@ def gauss_grid_choice(x, b, cw, centres, sh, sg, step, nw, sign):
                         r *= shrink
         for g in range(G):
             if not _normal_solve(a[l, g], b[l], at[:n_at], ata[l, g], atb, mat, w[l, g]):
-                return a, ata, w, chi2, best, False
+                return a, ata, w, chi2, best, wbest, cbest, False
             t = 0.0
             for c in range(C):
                 t += w[l, g, c] * atb[c]
@@ -592,7 +694,28 @@ def gauss_grid_choice(x, b, cw, centres, sh, sg, step, nw, sign):
             if valid:
                 best[l] = g
                 break
-    return a, ata, w, chi2, best, True
+        if best[l] == -2:
+            # none has: the one-by-one rule (profiles.best_grid_point), each of the five best solved with
+            # the sign constraint, the least of their chi-squares taken (the first of equal ones)
+            low = np.inf
+            for j in range(min(5, G)):
+                g = order[j]
+                c2 = nnls_rows(a[l, g], b[l], at[:n_at], sign[l], sol)
+                if c2 < 0:   # (left to scipy's nnls, by the caller)
+                    best[l] = -2
+                    break
+                if best[l] == -2 or c2 < low:
+                    low = c2
+                    best[l] = g
+                    for c in range(C):
+                        wbest[l, c] = sol[c]
+            if best[l] >= 0:
+                cbest[l] = low
+        elif best[l] >= 0:
+            cbest[l] = chi2[l, best[l]]
+            for c in range(C):
+                wbest[l, c] = w[l, best[l], c]
+    return a, ata, w, chi2, best, wbest, cbest, True
 
 
 @njit(cache=True, error_model="numpy")
@@ -795,6 +918,7 @@ def warm():
     sh = np.array([[-0.25, 0.0, 0.25]])
     sg = np.ones((1, 3))
     sign = np.ones(1)
-    a, ata, w, chi2, best, _ = gauss_grid_choice(x, b, cw, centres, sh, sg, np.full(1, 0.25), 1, sign)
+    a, ata, w, chi2, best, wbest, cbest, _ = gauss_grid_choice(x, b, cw, centres, sh, sg, np.full(1, 0.25), 1, sign)
     gauss_finish(x, b, cw, a, ata, chi2, centres, sh, sg, np.ones(1), np.full(1, 0.25), sign, ngood, best,
-                 w[:, 0].copy(), chi2[:, 0].copy(), 1, 1, True, 2.0, 0.95, 1.05, 2.3548200450309493)
+                 wbest, cbest, 1, 1, True, 2.0, 0.95, 1.05, 2.3548200450309493)
+    nnls_rows(a[0, 0], b[0], np.arange(m), 1.0, np.empty(1))
