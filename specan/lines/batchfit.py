@@ -152,7 +152,7 @@ def fit_batched_voigt(data, lo, hi, cont, centres, profile, max_shift, sig_inst,
 # ----------------------------------------------------------------------------- Gaussian
 
 
-def gauss_batch(data, problems, exact=True):
+def gauss_batch(data, problems, exact=True, compiled=None):
     """:func:`specan.lines.profiles.fit_gauss` of every problem.
 
     Parameters
@@ -166,6 +166,9 @@ def gauss_batch(data, problems, exact=True):
         a third of it: a line the instrument does not resolve has the instrument's width. Where
         the data ask for another (a score test of the held width beyond :data:`QUICK_WIDTH_Z`),
         one Gauss-Newton step in the width within the same 0.95-1.05 (:func:`_step_widths`).
+    compiled : bool, optional
+        Each group by the compiled kernels (:func:`_compiled_gauss_group`) or in numpy; None (default):
+        compiled where :data:`COMPILED` and numba imports.
 
     Returns
     -------
@@ -178,7 +181,7 @@ def gauss_batch(data, problems, exact=True):
         groups.setdefault((len(centres), nsh), []).append(k)
     widths = _GRID_WIDTHS if exact else QUICK_WIDTHS
     for (ncomp, nsh), ks in groups.items():
-        _gauss_group(data, problems, ks, ncomp, nsh, out, widths, not exact)
+        _gauss_group(data, problems, ks, ncomp, nsh, out, widths, not exact, compiled)
     return out
 
 
@@ -208,19 +211,20 @@ def _padded(data, problems, ks, skip_index=None):
     return x, y, cont, wts, (wts > 0).sum(axis=1)
 
 
-def _gauss_group(data, problems, ks, ncomp, nsh, out, widths=None, width_step=False):
+def _gauss_group(data, problems, ks, ncomp, nsh, out, widths=None, width_step=False, compiled=None):
     """The problems ``ks`` (``ncomp`` components, shift grid of ``2 nsh + 1`` steps) into ``out``.
 
     ``widths``: the grid's widths (times the line width; default :func:`fit_gauss`'s three).
     ``width_step``: with one width held (the quick design), the fits whose data ask for another
-    width take one Gauss-Newton step in it (:func:`_step_widths`).
+    width take one Gauss-Newton step in it (:func:`_step_widths`). ``compiled``: the group by
+    :func:`_compiled_gauss_group` (None: where :data:`COMPILED` and numba imports), else in numpy
+    below (the fallback, and the reference tests/test_lines_compiled.py holds it to).
     """
     # enough pixels of non-zero weight (counted from one running count of them, not per window)
     count = _positive_counts(data)
     ks = [k for k in ks if count[problems[k][1] + 1] - count[problems[k][0]] >= 3 + ncomp]
     if not ks:
         return
-    x, y, cont, wts, ngood = _padded(data, problems, ks)
     centres = np.array([problems[k][3] for k in ks], float)          # (L, C)
     sig_line = np.array([problems[k][5] for k in ks], float)
     sign = np.array([problems[k][6] for k in ks], float)
@@ -231,6 +235,12 @@ def _gauss_group(data, problems, ks, ncomp, nsh, out, widths=None, width_step=Fa
     nw = widths.size
     sh = np.repeat(np.arange(-nsh, nsh + 1), nw)[None, :] * step[:, None]      # (L, G)
     sg = sig_line[:, None] * np.tile(widths, 2 * nsh + 1)[None, :]
+    singular = False
+    if (COMPILED if compiled is None else compiled) and _kernels_available():
+        if _compiled_gauss_group(data, problems, ks, centres, sh, sg, sig_line, step, sign, nsh, nw, width_step, out):
+            return
+        singular = True
+    x, y, cont, wts, ngood = _padded(data, problems, ks)
     b = (cont - y) * wts
     cw = cont * wts
     dx = x[:, None, None, :] - (centres[:, None, :, None] + sh[:, :, None, None])   # (L, G, C, P)
@@ -239,6 +249,8 @@ def _gauss_group(data, problems, ks, ncomp, nsh, out, widths=None, width_step=Fa
     ata = a @ a.transpose(0, 1, 3, 2) + 1e-12 * np.eye(ncomp)
     atb = a @ b[:, None, :, None]
     try:
+        if singular:   # (the compiled grid found a singular system: fitted line by line, below)
+            raise np.linalg.LinAlgError("Singular matrix")
         if ncomp == 1:
             # one component: LAPACK's solve of a 1 x 1 system is the division (the same bits, tested),
             # without the solver's per-system overhead; a zero pivot stops it as it stops the solver
@@ -328,6 +340,43 @@ def _gauss_group(data, problems, ks, ncomp, nsh, out, widths=None, width_step=Fa
         out[k] = {"ew": float(wbest[row, 0]), "ew_err": float(np.sqrt(max(c00, 0.0))),
                   "centre": float(centres[row, 0] + shift), "fwhm": float(GAUSS_FWHM * sig),
                   "depth": float(peak), "chi2": float(cbest[row]) / dof, "sigma": float(sig), "gamma": 0.0}
+
+
+def _compiled_gauss_group(data, problems, ks, centres, sh, sg, sig_line, step, sign, nsh, nw, width_step, out):
+    """:func:`_gauss_group`'s padded windows, grid, choice of grid point, width step, covariance and refined
+    shift by three compiled calls (:func:`.lmkernel.gauss_windows`, :func:`.lmkernel.gauss_grid_choice`,
+    :func:`.lmkernel.gauss_finish`); the one-by-one rule's NNLS (the lines none of whose five best grid
+    points has every component of the line's sign) in the kernel too (:func:`.lmkernel.nnls_rows`; where
+    it fails, :func:`.profiles.best_grid_point` between the last two). The same steps as the numpy path, its sums
+    made in another order (tests/test_lines_compiled.py states how far the tables may move). Fits into
+    ``out``; False where a normal matrix of the grid is singular (nothing written: the caller fits the
+    group line by line, as the numpy path does). The padded windows are :func:`_padded`'s values (tested)."""
+    from . import lmkernel
+
+    lo = np.fromiter((problems[k][0] for k in ks), np.int64, len(ks))
+    hi = np.fromiter((problems[k][1] for k in ks), np.int64, len(ks))
+    # (each continuum as one value per pixel, as _padded takes it)
+    conts = [problems[k][2] for k in ks]
+    flat = np.concatenate([c if getattr(c, "shape", None) == (m,) else np.broadcast_to(c, (m,))
+                           for c, m in zip(conts, (hi - lo + 1).tolist())])
+    x, b, cw, ngood = lmkernel.gauss_windows(lo, hi, data.wave, data.flux, data.weight, np.asarray(flat, float))
+    a, ata, w, chi2, best, wbest, cbest, ok = lmkernel.gauss_grid_choice(x, b, cw, centres, sh, sg, step, nw, sign)
+    if not ok:
+        return False
+    for row in (best == -2).nonzero()[0].tolist():   # (a sign-constrained solve the kernel left to scipy)
+        m = problems[ks[row]][1] - problems[ks[row]][0] + 1
+        bg, wb, cb = best_grid_point(a[row, :, :, :m], b[row, :m], w[row], chi2[row], sign[row])
+        if bg is None:
+            best[row] = -1
+            continue
+        best[row], wbest[row], cbest[row] = bg, wb, cb
+    cols, fitted = lmkernel.gauss_finish(x, b, cw, a, ata, chi2, centres, sh, sg, sig_line, step, sign, ngood, best,
+                                         wbest, cbest, nsh, nw, width_step, QUICK_WIDTH_Z, _GRID_WIDTHS[0],
+                                         _GRID_WIDTHS[-1], GAUSS_FWHM)
+    for row, (e, err, cen, fw, peak, c2, sg_) in zip(fitted.nonzero()[0].tolist(), cols[fitted].tolist()):
+        out[ks[row]] = {"ew": e, "ew_err": err, "centre": cen, "fwhm": fw, "depth": peak, "chi2": c2,
+                        "sigma": sg_, "gamma": 0.0}
+    return True
 
 
 def _width_scores(x, b, a, ata, w, centres, sig):
