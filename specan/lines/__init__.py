@@ -28,6 +28,7 @@ The modules, one concern each:
 - :mod:`.profiles`: Gaussian and Voigt profiles and their fits;
 - :mod:`.batchfit`: all the fits of a spectrum at once (the default path of :func:`measure`);
 - :mod:`.lmkernel`: the Voigt batch's iteration compiled (numba);
+- :mod:`.walkkernel`: the windows' walks compiled (numba; :mod:`.compiled` says whether they run);
 - :mod:`.hydrogen`: the fitted hydrogen lines divided out;
 - :mod:`.hydrogen_blends`: the metal lines inside a hydrogen line's window taken out of it, and the share
   of the high Balmer lines no one can assign (``ew_err_blend``);
@@ -60,6 +61,11 @@ def warm_up():
     machine code instead of loading it (~0.3 s each) or, on a new installation, compiling it (~5 s
     each, at once).
     """
-    from . import lmkernel
+    from . import compiled, lmkernel
 
     lmkernel.warm()
+    # the windows' walks (imported here: compiled, or loaded from numba's cache, as it is imported)
+    if compiled.COMPILED:
+        from . import walkkernel
+
+        walkkernel.warm()
