@@ -46,10 +46,10 @@ def _setups(count):
 def _both(monkeypatch, func, *args):
     """``func(*args)`` with the kernel and with the numpy code."""
     monkeypatch.setattr(compiled, "COMPILED", True)
-    assert compiled.kernels() is walkkernel
+    assert compiled.walks() is walkkernel
     made = func(*args)
     monkeypatch.setattr(compiled, "COMPILED", False)
-    assert compiled.kernels() is None
+    assert compiled.walks() is None
     reference = func(*args)
     monkeypatch.setattr(compiled, "COMPILED", True)
     return made, reference
@@ -136,7 +136,7 @@ def test_switched_off_by_the_environment():
     import sys
 
     code = ("from specan.lines import compiled; import sys; "
-            "print(compiled.kernels() is None, 'specan.lines.walkkernel' in sys.modules)")
+            "print(compiled.walks() is None, 'specan.lines.walkkernel' in sys.modules)")
     out = subprocess.run([sys.executable, "-c", code], env={**os.environ, "SPECAN_COMPILED": "0"},
                          capture_output=True, text=True, check=True).stdout.split()
     assert out == ["True", "False"]

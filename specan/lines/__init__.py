@@ -28,7 +28,8 @@ The modules, one concern each:
 - :mod:`.profiles`: Gaussian and Voigt profiles and their fits;
 - :mod:`.batchfit`: all the fits of a spectrum at once (the default path of :func:`measure`);
 - :mod:`.lmkernel`: the Voigt batch's iteration compiled (numba);
-- :mod:`.walkkernel`: the windows' walks compiled (numba; :mod:`.compiled` says whether they run);
+- :mod:`.walkkernel`, :mod:`.wingkernel`: the windows' walks and the hydrogen lines' far wings compiled
+  (numba; :mod:`.compiled` says whether they run);
 - :mod:`.hydrogen`: the fitted hydrogen lines divided out;
 - :mod:`.hydrogen_blends`: the metal lines inside a hydrogen line's window taken out of it, and the share
   of the high Balmer lines no one can assign (``ew_err_blend``);
@@ -64,8 +65,10 @@ def warm_up():
     from . import compiled, lmkernel
 
     lmkernel.warm()
-    # the windows' walks (imported here: compiled, or loaded from numba's cache, as it is imported)
+    # the windows' walks (compiled, or loaded from numba's cache, as it is imported) and the hydrogen
+    # lines' far wings
     if compiled.COMPILED:
-        from . import walkkernel
+        from . import walkkernel, wingkernel
 
         walkkernel.warm()
+        wingkernel.warm()

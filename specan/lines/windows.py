@@ -221,10 +221,10 @@ def _walks(data, ic, sign, min_half, max_half, wide, step):
     40 spectra: 50 of 80 calls, 127 of 784 walks), and two passes of 32 steps cost more than walking in
     full (0.51 -> 0.34 ms a spectrum, CPU, the same windows; measured, load 4-5, a direction a call).
 
-    Compiled (:func:`specan.lines.walkkernel.walks`, where :func:`specan.lines.compiled.kernels`
+    Compiled (:func:`specan.lines.walkkernel.walks`, where :func:`specan.lines.compiled.walks`
     gives it) each walk goes a step at a time to its end instead: the same tests on the same values,
     the same windows (tests/test_lines_walkkernel.py)."""
-    kernels = compiled.kernels()
+    kernels = compiled.walks()
     if kernels is not None:
         nl = ic.size
         end, level, cut = np.empty(nl, np.int64), np.empty(nl), np.empty(nl, bool)
