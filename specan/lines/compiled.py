@@ -1,9 +1,11 @@
 """Whether the lines stage's compiled kernels of its own arrays run (numba): the windows' walks
-(:mod:`.walkkernel`) and the hydrogen lines' far wings (:mod:`.wingkernel`).
+(:mod:`.walkkernel`), the hydrogen lines' far wings (:mod:`.wingkernel`) and the metal lines in
+their windows (:mod:`.blendkernel`).
 
 ``SPECAN_COMPILED=0`` in the environment (the switch :mod:`.batchfit` reads for the Voigt batch) or
 numba failing to import keeps every caller on its numpy code, which stays the reference the kernels
-are tested against (tests/test_lines_walkkernel.py, tests/test_lines_wingkernel.py). Set
+are tested against (tests/test_lines_walkkernel.py, tests/test_lines_wingkernel.py,
+tests/test_lines_blendkernel.py). Set
 :data:`COMPILED` to False to do the same in a running process (the tests do, to compare the two).
 """
 
@@ -11,7 +13,7 @@ from __future__ import annotations
 
 import os
 
-__all__ = ["COMPILED", "walks", "wings"]
+__all__ = ["COMPILED", "walks", "wings", "blends"]
 
 #: False: the numpy code runs, numba is not imported for it
 COMPILED = os.environ.get("SPECAN_COMPILED", "1") != "0"
@@ -44,3 +46,13 @@ def wings():
     if not _WINGS_AGREE:
         _WINGS_AGREE.append(wingkernel.AVAILABLE and wingkernel.numpy_agrees())
     return wingkernel if _WINGS_AGREE[0] else None
+
+
+def blends():
+    """:mod:`.blendkernel` where its kernel runs (numba imports, :data:`COMPILED`), else None. Imported on
+    first use, as :func:`walks`."""
+    if not COMPILED:
+        return None
+    from . import blendkernel
+
+    return blendkernel if blendkernel.AVAILABLE else None
