@@ -28,8 +28,9 @@ The modules, one concern each:
 - :mod:`.profiles`: Gaussian and Voigt profiles and their fits;
 - :mod:`.batchfit`: all the fits of a spectrum at once (the default path of :func:`measure`);
 - :mod:`.lmkernel`: the Voigt batch's iteration compiled (numba);
-- :mod:`.walkkernel`, :mod:`.wingkernel`, :mod:`.blendkernel`: the windows' walks, the hydrogen lines' far
-  wings and the metal lines in their windows compiled (numba; :mod:`.compiled` says whether they run);
+- :mod:`.walkkernel`, :mod:`.wingkernel`, :mod:`.blendkernel`, :mod:`.filterkernel`: the windows' walks, the
+  hydrogen lines' far wings, the metal lines in their windows and the matched filter's and wide
+  smoothing's correlations compiled (numba; :mod:`.compiled` says whether they run);
 - :mod:`.hydrogen`: the fitted hydrogen lines divided out;
 - :mod:`.hydrogen_blends`: the metal lines inside a hydrogen line's window taken out of it, and the share
   of the high Balmer lines no one can assign (``ew_err_blend``);
@@ -68,8 +69,9 @@ def warm_up():
     # the windows' walks (compiled, or loaded from numba's cache, as it is imported) and the hydrogen
     # lines' far wings
     if compiled.COMPILED:
-        from . import blendkernel, walkkernel, wingkernel
+        from . import blendkernel, filterkernel, walkkernel, wingkernel
 
         walkkernel.warm()
         wingkernel.warm()
         blendkernel.warm()
+        filterkernel.warm()

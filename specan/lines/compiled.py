@@ -1,11 +1,12 @@
 """Whether the lines stage's compiled kernels of its own arrays run (numba): the windows' walks
-(:mod:`.walkkernel`), the hydrogen lines' far wings (:mod:`.wingkernel`) and the metal lines in
-their windows (:mod:`.blendkernel`).
+(:mod:`.walkkernel`), the hydrogen lines' far wings (:mod:`.wingkernel`), the metal lines in
+their windows (:mod:`.blendkernel`) and the matched filter's and wide smoothing's correlations
+(:mod:`.filterkernel`).
 
 ``SPECAN_COMPILED=0`` in the environment (the switch :mod:`.batchfit` reads for the Voigt batch) or
 numba failing to import keeps every caller on its numpy code, which stays the reference the kernels
 are tested against (tests/test_lines_walkkernel.py, tests/test_lines_wingkernel.py,
-tests/test_lines_blendkernel.py). Set
+tests/test_lines_blendkernel.py, tests/test_lines_filterkernel.py). Set
 :data:`COMPILED` to False to do the same in a running process (the tests do, to compare the two).
 """
 
@@ -13,7 +14,7 @@ from __future__ import annotations
 
 import os
 
-__all__ = ["COMPILED", "walks", "wings", "blends"]
+__all__ = ["COMPILED", "walks", "wings", "blends", "filters"]
 
 #: False: the numpy code runs, numba is not imported for it
 COMPILED = os.environ.get("SPECAN_COMPILED", "1") != "0"
@@ -56,3 +57,13 @@ def blends():
     from . import blendkernel
 
     return blendkernel if blendkernel.AVAILABLE else None
+
+
+def filters():
+    """:mod:`.filterkernel` where its kernels run (numba imports, :data:`COMPILED`), else None. Imported on
+    first use, as :func:`walks`."""
+    if not COMPILED:
+        return None
+    from . import filterkernel
+
+    return filterkernel if filterkernel.AVAILABLE else None
