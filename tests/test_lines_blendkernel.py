@@ -1,10 +1,12 @@
-"""The metal lines of a hydrogen line's window chosen by a numba kernel (specan/lines/blendkernel.py)
-against the numpy code it stands in for (specan/lines/hydrogen_blends.py, ``_metal_candidates``: the
-fallback, SPECAN_COMPILED=0 or no numba).
+"""The metal lines of a hydrogen line's window chosen, its crests and its dips, by numba kernels
+(specan/lines/blendkernel.py), against the numpy code they stand in for (specan/lines/hydrogen_blends.py:
+``_metal_candidates``, ``blanketing``, ``_dips``; the fallback, SPECAN_COMPILED=0 or no numba), and
+their interpolation against np.interp.
 
-Stated tolerance: none; the same positions and owners, in the same order, to the bit (the kernel makes
-the same comparisons on the same numbers). Measured on the bench's 40 spectra, the dense spectrum and
-the demo night (benchmarks/bench_lines.py --against): the same tables to the bit as before the kernel.
+Stated tolerance: none; the same positions, owners, sums and flags to the bit (the kernels make the same
+comparisons and arithmetic on the same numbers, in the same order). Measured on the bench's 40 spectra,
+the dense spectrum and the demo night (benchmarks/bench_lines.py --against): the same tables to the bit
+as before the kernels.
 """
 
 import copy
@@ -118,3 +120,43 @@ def test_hydrogen_lines_the_same(monkeypatch):
                 assert same, (row["file"], i, key)
             less += a.method == "integration_less_blends"
     assert less > 10
+
+
+def test_interp_is_numpys():
+    # the kernels' interpolation against np.interp itself: points between, at and beyond the nodes, the
+    # last node, NaN, flat stretches, one node, and (fused arithmetic would show here) long mantissas
+    rng = np.random.default_rng(4)
+    for trial in range(300):
+        n = int(rng.integers(1, 60))
+        xp = np.cumsum(rng.uniform(0.1, 2.0, n)) + 3800.0
+        fp = rng.normal(size=n)
+        if n > 3:
+            fp[1:3] = fp[0]
+        keys = np.concatenate([rng.uniform(xp[0] - 3.0, xp[-1] + 3.0, 40), xp, [xp[0], xp[-1], np.nan]])
+        for key in keys:
+            mine, numpys = blendkernel._interp(key, xp, fp), np.interp(key, xp, fp)
+            assert np.float64(mine).tobytes() == np.float64(numpys).tobytes(), (trial, key)
+
+
+def test_crests_and_dips_are_numpys(monkeypatch):
+    # blanketing (the absorption under the crests) and _dips (the listed lines the spectrum shows) of every
+    # fitted hydrogen line of the demo spectra, at its window's listed lines and at made-up positions
+    # (ends, outside, on the core), with its own centre and with one outside its window
+    rng = np.random.default_rng(6)
+    tested = 0
+    for name, data, features, targets, plans in _hydrogen_plans(12):
+        for i, plan in plans.items():
+            if plan.fit is None or plan.window is None or plan.window.hi - plan.window.lo < 1:
+                continue
+            fit, window = plan.fit, plan.window
+            lo, hi = data.wave[window.lo], data.wave[window.hi]
+            for centre in (fit["centre"], lo - 5.0, 0.5 * (lo + hi)):
+                made, reference = _both(monkeypatch, hydrogen_blends.blanketing, data, window, plan.cont, centre)
+                assert np.float64(made).tobytes() == np.float64(reference).tobytes(), (name, i)
+            inside = targets.pred[(targets.pred >= lo) & (targets.pred <= hi)]
+            positions = np.concatenate([inside, rng.uniform(lo - 2.0, hi + 2.0, 8), [lo, hi, fit["centre"]]])
+            made, reference = _both(monkeypatch, hydrogen_blends._dips, data, window, plan.cont, fit, plan.fw,
+                                    positions)
+            assert made.dtype == reference.dtype and np.array_equal(made, reference), (name, i)
+            tested += 1
+    assert tested > 40

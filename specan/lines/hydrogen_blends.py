@@ -148,6 +148,13 @@ def blanketing(data, window, cont, centre):
     x = data.wave[sel]
     if x.size < 2:
         return 0.0
+    kernels = compiled.blends()
+    if kernels is not None:
+        # compiled (:func:`specan.lines.blendkernel.crest_excess`: the same crests, np.interp's values), the
+        # sum as below
+        excess = np.empty(x.size)
+        kernels.crest_excess(x, data.smooth[sel], cont, centre, excess)
+        return float(excess @ data.dx[sel])
     level = np.minimum(data.smooth[sel] / cont, 1.0)
     # the two sides split at the centre, or at the window's middle where the centre lies outside it
     # (a line matched to a feature off its listed place)
@@ -182,6 +189,13 @@ def _dips(data, window, cont, fit, fwhm, positions, profile=None):
     x = data.wave[sel]
     if profile is None:
         profile = _fitted_profile(data, window, fit)
+    kernels = compiled.blends()
+    if kernels is not None:
+        # compiled (:func:`specan.lines.blendkernel.dips`: the same arithmetic, np.interp's values)
+        out = np.empty(np.size(positions), bool)
+        kernels.dips(x, data.smooth[sel], data.smooth_err[sel], cont, fit["ew"], profile, fit["centre"], fwhm,
+                     np.asarray(positions, float), CORE_CLEARANCE * fwhm, LISTED_SIGNIFICANCE, MIN_DIP, out)
+        return out
     left = 1.0 - data.smooth[sel] / cont - fit["ew"] * profile
     at = np.interp(positions, x, left)
     blue, red = positions - 1.5 * fwhm, positions + 1.5 * fwhm
