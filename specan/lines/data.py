@@ -17,9 +17,9 @@ from scipy.signal import find_peaks, peak_prominences
 from ..contents import content_key, forgettable, kept
 from ..obsinfo import get_info
 from .. import resolution
-from . import compiled
 from ..resolution import (DEFAULT_PIXELS_PER_FWHM, GAUSS_FWHM, dersnr_sigma, grid_medians, narrowest_line_width,
                           normalised_arrays)
+from . import compiled
 
 __all__ = ["DETECT_SIGMA", "MIN_DEPTH", "LineData", "Features", "find_features", "normalised",
            "estimate_resolving_power", "pixel_edges", "median"]
