@@ -97,10 +97,3 @@ def test_symmetric_filter_is_scipys():
             filterkernel.symmetric_filter(values, weights, out)
             assert _same(out, correlate1d(values, weights, axis=1, mode="nearest")), (s, shape)
             assert _same(out, gaussian_filter1d(values, s, axis=1, mode="nearest")), (s, shape)
-
-
-def test_warm_up_compiles_the_filters():
-    from specan import lines
-
-    lines.warm_up()
-    assert filterkernel.band_filter.signatures and filterkernel.symmetric_filter.signatures

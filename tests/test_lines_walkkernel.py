@@ -117,16 +117,23 @@ def test_compiled_windows_are_the_one_line_walks(monkeypatch):
     assert compared > 1500
 
 
-def test_warm_up_loads_the_walks():
-    # the stage's warm-up (called before the night run forks its workers) imports the kernel, whose
-    # signature is given: compiled, or loaded from numba's cache, by then
+def test_warm_up_compiles_the_kernels():
+    # the stage's warm-up (called before the night run forks its workers) leaves every kernel of the
+    # stage's own arrays compiled (or loaded from numba's cache) for the types the stage passes, in a new
+    # process that has measured nothing yet
+    import os
+    import subprocess
     import sys
 
-    from specan import lines
-
-    lines.warm_up()
-    assert "specan.lines.walkkernel" in sys.modules
-    assert walkkernel.walks.signatures   # (compiled for its one signature)
+    code = ("import sys; from specan import lines; lines.warm_up(); "
+            "from specan.lines import walkkernel, wingkernel, blendkernel, filterkernel; "
+            "print(len(walkkernel.walks.signatures), len(wingkernel.far_wings.signatures), "
+            "len(blendkernel.metal_candidates.signatures), len(blendkernel.crest_excess.signatures), "
+            "len(blendkernel.dips.signatures), len(filterkernel.band_filter.signatures), "
+            "len(filterkernel.symmetric_filter.signatures))")
+    out = subprocess.run([sys.executable, "-c", code], env={**os.environ, "SPECAN_COMPILED": "1"},
+                         capture_output=True, text=True, check=True).stdout.split()
+    assert all(int(k) >= 1 for k in out) and len(out) == 7
 
 
 def test_switched_off_by_the_environment():

@@ -124,10 +124,3 @@ def test_kernel_used_only_where_numpy_agrees(monkeypatch):
     monkeypatch.setattr(compiled, "_WINGS_AGREE", [])
     monkeypatch.setattr(compiled, "COMPILED", False)
     assert compiled.wings() is None
-
-
-def test_warm_up_compiles_the_wings():
-    from specan import lines
-
-    lines.warm_up()
-    assert wingkernel.far_wings.signatures   # (compiled, or loaded from the cache, for its types)
