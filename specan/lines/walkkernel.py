@@ -13,6 +13,9 @@ The kernel's signature is given, so it is compiled (or loaded from numba's on-di
 process that forks workers, which then inherit the machine code. Its inputs are typed as read-only
 arrays of any layout (the set-up's read-only arrays and views pass without a copy); its outputs are
 C-contiguous arrays the caller makes.
+
+Measured: the bench's (benchmarks/bench_lines.py) 80 calls of ``_walks`` replayed, 0.59-0.62 -> 0.036-0.044
+ms a spectrum (CPU, alternated in one process, load 2.2).
 """
 
 from __future__ import annotations
