@@ -14,6 +14,8 @@ the same comparisons and arithmetic on the same numbers in the same order, so th
 - :func:`dips`: whether the spectrum dips at each listed line (:func:`specan.lines.hydrogen_blends._dips`).
 
 Their interpolation is np.interp's, rules and arithmetic (:func:`_interp`, tested against it).
+Measured: less_blends replayed on the bench's, the dense and the demo spectra's 534 calls 0.91-0.95 ->
+0.63-0.64 ms a spectrum (CPU, alternated in one process, load 1-2).
 
 Compiled on first use, or loaded from numba's on-disk cache (``cache=True``); :func:`warm` (the
 stage's ``warm_up``) does it ahead, so that forked workers inherit the machine code.

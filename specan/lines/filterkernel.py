@@ -11,7 +11,10 @@ and scipy's; the numpy code stays the fallback, :mod:`.compiled`).
 
 The interior pixels are summed over slices (a pair's two pixels and the output as three views, read
 from index 0 up): indexed at ``i - r`` and ``i + r`` directly, numba's handling of negative indices kept
-the compiler from vectorising the loop (2x slower than numpy, measured).
+the compiler from vectorising the loop (2x slower than numpy, measured). Measured with slices:
+``matched_filter`` on the bench's 40 spectra 0.19-0.20 -> 0.097-0.099 ms a call; ``_band_filter`` of 3 x
+4,000 values at reach 24, 0.29 -> 0.08 ms; the wide smoothing's correlation of 2 x 4,000 values at its
+widths (4-11 pixels), scipy's 67-223 us -> 23-67 us (CPU, alternated in one process, load 1-2).
 
 Compiled on first use, or loaded from numba's on-disk cache (``cache=True``); :func:`warm` (the
 stage's ``warm_up``) does it ahead for the types the stage passes, so that forked workers inherit the
