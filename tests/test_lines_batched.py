@@ -530,11 +530,13 @@ def test_voigt_model_of_some_problems_as_made_from_them():
 def test_windows_whatever_the_walks_look_ahead(monkeypatch):
     # the vectorised walks test WALK_AHEAD steps first and walk the ones still going again in full:
     # the same windows as testing every walk over its whole reach, looking ahead 1, 3 or 10 steps
-    # (most walks then walked again) or the default
-    from specan.lines import windows
+    # (most walks then walked again) or the default. (The numpy walks: the compiled ones, which
+    # tests/test_lines_walkkernel.py holds to them, walk each line to its end and look nowhere ahead.)
+    from specan.lines import compiled, windows
     from specan.lines.data import DETECT_SIGMA
     from specan.lines.measurement import line_starts
 
+    monkeypatch.setattr(compiled, "COMPILED", False)
     default = windows.WALK_AHEAD
     compared = 0
     for name, data, listed, targets, features in demo_line_setups(4):

@@ -28,6 +28,9 @@ The modules, one concern each:
 - :mod:`.profiles`: Gaussian and Voigt profiles and their fits;
 - :mod:`.batchfit`: all the fits of a spectrum at once (the default path of :func:`measure`);
 - :mod:`.lmkernel`: the Voigt batch's iteration compiled (numba);
+- :mod:`.walkkernel`, :mod:`.wingkernel`, :mod:`.blendkernel`, :mod:`.filterkernel`: the windows' walks, the
+  hydrogen lines' far wings, the metal lines in their windows and the matched filter's and wide
+  smoothing's correlations compiled (numba; :mod:`.compiled` says whether they run);
 - :mod:`.hydrogen`: the fitted hydrogen lines divided out;
 - :mod:`.hydrogen_blends`: the metal lines inside a hydrogen line's window taken out of it, and the share
   of the high Balmer lines no one can assign (``ew_err_blend``);
@@ -60,6 +63,15 @@ def warm_up():
     machine code instead of loading it (~0.3 s each) or, on a new installation, compiling it (~5 s
     each, at once).
     """
-    from . import lmkernel
+    from . import compiled, lmkernel
 
     lmkernel.warm()
+    # the windows' walks (compiled, or loaded from numba's cache, as it is imported) and the hydrogen
+    # lines' far wings
+    if compiled.COMPILED:
+        from . import blendkernel, filterkernel, walkkernel, wingkernel
+
+        walkkernel.warm()
+        wingkernel.warm()
+        blendkernel.warm()
+        filterkernel.warm()

@@ -19,6 +19,7 @@ from ..obsinfo import get_info
 from .. import resolution
 from ..resolution import (DEFAULT_PIXELS_PER_FWHM, GAUSS_FWHM, dersnr_sigma, grid_medians, narrowest_line_width,
                           normalised_arrays)
+from . import compiled
 
 __all__ = ["DETECT_SIGMA", "MIN_DEPTH", "LineData", "Features", "find_features", "normalised",
            "estimate_resolving_power", "pixel_edges", "median"]
@@ -179,7 +180,16 @@ def _band_filter(values, weights):
     """Each pixel's own symmetric kernel (``weights``, :func:`_banded`) correlated with ``values``
     (rows), the edges extended with the nearest value: ``scipy.ndimage.correlate1d``'s sums to the
     bit, term by term in its order (the centre, then the pairs of pixels at equal distance from the
-    outermost in; the zero weights past a pixel's own kernel add exact zeros before its first term)."""
+    outermost in; the zero weights past a pixel's own kernel add exact zeros before its first term).
+
+    Compiled where :func:`specan.lines.compiled.filters` gives the kernels
+    (:func:`specan.lines.filterkernel.band_filter`: the same sums, vectorised in one pass a distance)."""
+    kernels = compiled.filters()
+    if kernels is not None:
+        rows = np.ascontiguousarray(values).reshape(-1, values.shape[-1])
+        out = np.empty(rows.shape)
+        kernels.band_filter(rows, weights, out)
+        return out.reshape(values.shape)
     reach = weights.shape[0] - 1
     n = values.shape[-1]
     padded = np.concatenate([np.repeat(values[..., :1], reach, axis=-1), values,
@@ -239,15 +249,28 @@ def matched_filter(flux, weight, sig_pix, ladder=None):
     return signif, smooth, smooth_err
 
 
+def _rows_filtered(values, s):
+    """``_gaussian_filter(values, s, axis=-1)`` of a 1-D or 2-D array: compiled where
+    :func:`specan.lines.compiled.filters` gives the kernels (:func:`specan.lines.filterkernel.symmetric_filter`:
+    correlate1d's sums, vectorised; its own loop takes a pixel at a time)."""
+    kernels = compiled.filters()
+    if kernels is None:
+        return _gaussian_filter(values, s, axis=-1)
+    rows = np.ascontiguousarray(values).reshape(-1, values.shape[-1])
+    out = np.empty(rows.shape)
+    kernels.symmetric_filter(rows, _gauss_weights(s), out)
+    return out.reshape(values.shape)
+
+
 def wide_smooth(flux, weight, s):
     """Weighted flux smoothed by a Gaussian of ``s`` pixels, and its noise."""
     wf, w = weight * flux, weight
-    f_wf, f_w = _gaussian_filter(np.stack([wf, w]), s, axis=1)
+    f_wf, f_w = _rows_filtered(np.stack([wf, w]), s)
     f_w = np.maximum(f_w, 1e-300)
     smooth = f_wf / f_w
     smooth = np.where(np.isfinite(smooth), smooth, 1.0)
     k1, k2 = _kernel_sums(s)
-    f_w2 = _gaussian_filter(w, s / np.sqrt(2.0))
+    f_w2 = _rows_filtered(w, s / np.sqrt(2.0))
     return smooth, np.sqrt(k2 * f_w2 / np.maximum((k1 * f_w) ** 2, 1e-300))
 
 

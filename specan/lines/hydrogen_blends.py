@@ -36,6 +36,7 @@ from scipy.optimize import nnls
 from scipy.special import voigt_profile
 
 from ..resolution import GAUSS_FWHM
+from . import compiled
 from .components import MIN_SEPARATION, window_features
 
 __all__ = ["CORE_CLEARANCE", "LISTED_SIGNIFICANCE", "metal_absorption", "metal_lines", "blanketing",
@@ -147,6 +148,13 @@ def blanketing(data, window, cont, centre):
     x = data.wave[sel]
     if x.size < 2:
         return 0.0
+    kernels = compiled.blends()
+    if kernels is not None:
+        # compiled (:func:`specan.lines.blendkernel.crest_excess`: the same crests, np.interp's values), the
+        # sum as below
+        excess = np.empty(x.size)
+        kernels.crest_excess(x, data.smooth[sel], cont, centre, excess)
+        return float(excess @ data.dx[sel])
     level = np.minimum(data.smooth[sel] / cont, 1.0)
     # the two sides split at the centre, or at the window's middle where the centre lies outside it
     # (a line matched to a feature off its listed place)
@@ -181,6 +189,13 @@ def _dips(data, window, cont, fit, fwhm, positions, profile=None):
     x = data.wave[sel]
     if profile is None:
         profile = _fitted_profile(data, window, fit)
+    kernels = compiled.blends()
+    if kernels is not None:
+        # compiled (:func:`specan.lines.blendkernel.dips`: the same arithmetic, np.interp's values)
+        out = np.empty(np.size(positions), bool)
+        kernels.dips(x, data.smooth[sel], data.smooth_err[sel], cont, fit["ew"], profile, fit["centre"], fwhm,
+                     np.asarray(positions, float), CORE_CLEARANCE * fwhm, LISTED_SIGNIFICANCE, MIN_DIP, out)
+        return out
     left = 1.0 - data.smooth[sel] / cont - fit["ew"] * profile
     at = np.interp(positions, x, left)
     blue, red = positions - 1.5 * fwhm, positions + 1.5 * fwhm
@@ -243,29 +258,9 @@ def less_blends(data, features, targets, i, plan):
     result.blanketing = blanketing(data, window, plan.cont, result.wave_obs if fit is None else fit["centre"])
     if fit is None or not plan.voigt:
         return
-    sep = MIN_SEPARATION * plan.fw
-    lo, hi = data.wave[window.lo], data.wave[window.hi]
-    # the listed lines inside the window (not hydrogen) where the star's velocity puts them: not moved
-    # with the hydrogen line's fitted offset, which the blend itself can pull (H9 of the Kurucz Sun at
-    # R 2000 was fitted 0.96 A blue of its place, between Mg I 3832 and 3838; measured)
-    listed = np.flatnonzero(~targets.hydrogen & (targets.pred >= lo) & (targets.pred <= hi)
-                            & _below_hydrogen(targets))
-    at = targets.pred[listed]
-    # the features found in the window, where no listed line stands for them
+    # the features found in the window (where no listed line stands for them)
     found = plan.in_win if plan.in_win is not None else window_features(data, features, window, plan.sign)
-    if found.size and at.size:
-        found = found[np.abs(found[:, None] - at[None, :]).min(axis=1) > sep]
-    positions = np.concatenate([found, at])
-    owner = np.concatenate([np.full(found.size, -1), listed])
-    if positions.size:
-        # none where the hydrogen lines' own profiles are
-        far = np.abs(positions[:, None] - plan.centres[None, :]).min(axis=1) > sep
-        positions, owner = positions[far], owner[far]
-    if not positions.size:
-        return
-    # (metal_lines leaves out those within the core clearance: so here, to keep the owners in step)
-    clear = np.abs(positions - fit["centre"]) > CORE_CLEARANCE * plan.fw
-    positions, owner = positions[clear], owner[clear]
+    positions, owner = _metal_candidates(data, targets, plan, fit, found)
     if not positions.size:
         return
     # a listed line with no feature of its own is modelled only where the spectrum dips at it (the
@@ -284,6 +279,45 @@ def less_blends(data, features, targets, i, plan):
     # (the integral and the fit share pixels, so the two errors are not independent: their
     # quadratic sum is the larger, cautious figure)
     result.ew_err = float(np.hypot(result.ew_int_err, err))
+
+
+def _metal_candidates(data, targets, plan, fit, found):
+    """The positions (Angstrom) in hydrogen line ``plan``'s window where metal lines may lie, and whose
+    they are (the listed line's index, -1 for a feature ``found`` there): the listed lines not hydrogen
+    there, before them the features no listed line stands for; none at the hydrogen lines' own profiles
+    (``plan.centres``) nor within the core clearance of the line's fitted centre.
+
+    Compiled where :func:`specan.lines.compiled.blends` gives the kernel
+    (:func:`specan.lines.blendkernel.metal_candidates`: the same comparisons, the same positions)."""
+    window = plan.window
+    sep = MIN_SEPARATION * plan.fw
+    lo, hi = data.wave[window.lo], data.wave[window.hi]
+    kernels = compiled.blends()
+    if kernels is not None:
+        ep = getattr(targets, "ep_low", None)
+        ep = np.full(targets.pred.size, np.nan) if ep is None else np.asarray(ep, float)
+        size = found.size + targets.pred.size
+        positions, owner = np.empty(size), np.empty(size, np.int64)
+        m = kernels.metal_candidates(targets.pred, targets.hydrogen, ep, BALMER_LOWER_LEVEL, lo, hi, found,
+                                     plan.centres, sep, fit["centre"], CORE_CLEARANCE * plan.fw, positions, owner)
+        return positions[:m], owner[:m]
+    # the listed lines inside the window (not hydrogen) where the star's velocity puts them: not moved
+    # with the hydrogen line's fitted offset, which the blend itself can pull (H9 of the Kurucz Sun at
+    # R 2000 was fitted 0.96 A blue of its place, between Mg I 3832 and 3838; measured)
+    listed = np.flatnonzero(~targets.hydrogen & (targets.pred >= lo) & (targets.pred <= hi)
+                            & _below_hydrogen(targets))
+    at = targets.pred[listed]
+    if found.size and at.size:
+        found = found[np.abs(found[:, None] - at[None, :]).min(axis=1) > sep]
+    positions = np.concatenate([found, at])
+    owner = np.concatenate([np.full(found.size, -1), listed])
+    if positions.size:
+        # none where the hydrogen lines' own profiles are
+        far = np.abs(positions[:, None] - plan.centres[None, :]).min(axis=1) > sep
+        positions, owner = positions[far], owner[far]
+    # (metal_lines leaves out those within the core clearance: so here, to keep the owners in step)
+    clear = np.abs(positions - fit["centre"]) > CORE_CLEARANCE * plan.fw
+    return positions[clear], owner[clear]
 
 
 #: H delta's place (Angstrom, between its air and vacuum wavelengths, NIST ASD: 4101.74 air, 4102.89

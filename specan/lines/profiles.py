@@ -15,6 +15,7 @@ from scipy.optimize import least_squares, nnls
 from scipy.special import voigt_profile, wofz
 
 from ..resolution import GAUSS_FWHM
+from . import compiled
 from .leastsq import trf_bounded
 
 __all__ = ["profiles", "voigt_wide", "fit_profile", "fit_profile_lean", "fit_gauss"]
@@ -26,6 +27,9 @@ FAR_Z = 14.0
 #: (Abramowitz & Stegun 7.1.23, from memory); the first term left out, c_9 / |z|^18, is below
 #: 1.7e-16 of |w| from |z| = 14 on
 _FAR_SERIES = (1.0, 0.5, 0.75, 1.875, 6.5625, 29.53125, 162.421875, 1055.7421875, 7918.06640625)
+#: the same, as the compiled series takes them (:func:`specan.lines.wingkernel.far_wings`)
+_SERIES = np.array(_FAR_SERIES)
+_SERIES.flags.writeable = False
 
 
 def profiles(x, centres, shift, sigma, gamma, profile):
@@ -57,6 +61,11 @@ def voigt_wide(dx, sigma, gamma):
     """
     dx = np.asarray(dx, float)
     inv = 1.0 / (sigma * np.sqrt(2.0))
+    kernels = compiled.wings()
+    if kernels is not None and dx.ndim in (1, 2):
+        out = _compiled_wide(kernels, dx, sigma, gamma, inv)
+        if out is not None:
+            return out
     far = dx * dx + gamma * gamma >= (FAR_Z / inv) ** 2
     if not far.any():
         return voigt_profile(dx, sigma, gamma)
@@ -105,6 +114,35 @@ def voigt_wide(dx, sigma, gamma):
     if near.any():
         out[near] = voigt_profile(dx[near], np.broadcast_to(sigma, dx.shape)[near],
                                   np.broadcast_to(gamma, dx.shape)[near])
+    return out
+
+
+def _compiled_wide(kernels, dx, sigma, gamma, inv):
+    """:func:`voigt_wide` by the compiled series (:func:`specan.lines.wingkernel.far_wings`: numpy's
+    arithmetic point by point, the same values), where the widths are given one per row of ``dx`` (or
+    as numbers); None otherwise (then the numpy code runs)."""
+    rows = dx.shape[0] if dx.ndim == 2 else 1
+
+    def per_row(values):
+        v = np.asarray(values, float)
+        if v.ndim == 0:
+            return np.full(rows, v)
+        if v.shape == (rows, 1) and dx.ndim == 2:
+            return np.ascontiguousarray(v[:, 0])
+        return None
+
+    inv_r, gamma_r, sigma_r = per_row(inv), per_row(gamma), per_row(sigma)
+    if inv_r is None or gamma_r is None or sigma_r is None:
+        return None
+    # (the far test's limit and the factor as the numpy code makes them, of the row's widths)
+    limit = per_row((FAR_Z / inv) ** 2)
+    factor = -1.0 / (np.sqrt(np.pi) * sigma_r * np.sqrt(2.0 * np.pi))
+    out = np.empty(dx.shape)
+    near = np.empty(dx.shape, bool)
+    if kernels.far_wings(np.ascontiguousarray(dx).reshape(rows, -1), inv_r, gamma_r, factor, limit, _SERIES,
+                         out.reshape(rows, -1), near.reshape(rows, -1)):
+        at = near.nonzero()
+        out[at] = voigt_profile(dx[at], np.broadcast_to(sigma, dx.shape)[at], np.broadcast_to(gamma, dx.shape)[at])
     return out
 
 

@@ -6,6 +6,8 @@ from typing import NamedTuple
 
 import numpy as np
 
+from . import compiled
+
 __all__ = ["Window", "line_window", "line_windows", "hydrogen_starts", "adaptive_window", "adaptive_windows", "fixed_window",
            "fixed_windows",
            "profile_window", "wing_reach", "local_continuum", "series_limits", "MAX_WING"]
@@ -217,7 +219,23 @@ def _walks(data, ic, sign, min_half, max_half, wide, step):
     Walks on the wide smoothing alone (the hydrogen lines, a few to a call) look farther ahead
     (:data:`WIDE_WALK_AHEAD`): one of them went on past 32 steps in most calls (benchmarks/bench_lines.py's
     40 spectra: 50 of 80 calls, 127 of 784 walks), and two passes of 32 steps cost more than walking in
-    full (0.51 -> 0.34 ms a spectrum, CPU, the same windows; measured, load 4-5, a direction a call)."""
+    full (0.51 -> 0.34 ms a spectrum, CPU, the same windows; measured, load 4-5, a direction a call).
+
+    Compiled (:func:`specan.lines.walkkernel.walks`, where :func:`specan.lines.compiled.walks`
+    gives it) each walk goes a step at a time to its end instead: the same tests on the same values,
+    the same windows (tests/test_lines_walkkernel.py)."""
+    kernels = compiled.walks()
+    if kernels is not None:
+        nl = ic.size
+        end, level, cut = np.empty(nl, np.int64), np.empty(nl), np.empty(nl, bool)
+        # (the wide smoothing made only where a walk is on it; the narrow one stands in otherwise, unread)
+        some_wide = bool(wide.any())
+        kernels.walks(data.wave, data.dx, data.smooth, data.smooth_err,
+                      data.smooth_wide if some_wide else data.smooth, data.smooth_wide_err if some_wide else data.smooth_err,
+                      ic.astype(np.int64, copy=False), sign.astype(float, copy=False),
+                      min_half.astype(float, copy=False), max_half.astype(float, copy=False),
+                      wide.astype(bool, copy=False), step.astype(np.int64, copy=False), end, level, cut)
+        return end, level, cut
     end, level, cut, going = _walks_upto(data, ic, sign, min_half, max_half, wide, step,
                                          WIDE_WALK_AHEAD if wide.all() else WALK_AHEAD)
     if going.any():
