@@ -57,6 +57,10 @@ def cli(ctx, debug):
 def main(argv=None):
     """Entry point of the ``specan`` console script."""
     debug = "--debug" in (argv if argv is not None else sys.argv[1:])
+    # the process's exit then skips the collections of every library object (~0.9 s after a night run)
+    from ..night.heap import set_aside_at_exit
+
+    set_aside_at_exit()
     try:
         return cli.main(args=argv, prog_name="specan", standalone_mode=False) or 0
     except click.exceptions.Abort:

@@ -15,6 +15,7 @@ made through :mod:`ctypes`. It changes no result, only when memory goes back.
 
 from __future__ import annotations
 
+import atexit
 import contextlib
 import ctypes
 import ctypes.util
@@ -23,7 +24,7 @@ import gc
 import threading
 
 __all__ = ["give_back", "GiveBackEvery", "GIVE_BACK_EVERY", "long_lived_set_aside", "set_aside_now", "collector_paused",
-           "held_aside"]
+           "held_aside", "set_aside_at_exit"]
 
 #: Spectra analysed between two hand-backs in one process. One :func:`give_back` on a ~290 MB
 #: heap took 93-103 ms (measured; mostly the full collection, which visits every one of the ~217,000
@@ -165,3 +166,22 @@ class GiveBackEvery:
             due = before // self.every != self._count // self.every
         if due:
             give_back()
+
+
+_AT_EXIT = []
+
+
+def set_aside_at_exit():
+    """At this process's exit, set every object alive aside from the collector (``gc.freeze``) before
+    the interpreter tears itself down; for a command-line process, whose objects all die with it.
+
+    Python's finalisation runs full collections while it clears the modules, each visiting every
+    object the imported libraries hold: 0.8-0.9 s of a night run's exit (measured: 200 spectra,
+    ``--jobs 2``, 0.94 s from the last exit handler to the process's end, 0.12 s with the objects set
+    aside). Objects still go when their last reference does, as at any exit; only reference cycles
+    are left to the system, which takes back the whole process anyway. Registered once a process;
+    registered early, the handler runs after those registered later (atexit's order).
+    """
+    if not _AT_EXIT:
+        atexit.register(gc.freeze)
+        _AT_EXIT.append(True)
