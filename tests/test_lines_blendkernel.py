@@ -9,8 +9,6 @@ the dense spectrum and the demo night (benchmarks/bench_lines.py --against): the
 as before the kernels.
 """
 
-import copy
-from pathlib import Path
 
 import astropy.units as u
 import numpy as np
@@ -23,7 +21,7 @@ pytest.importorskip("numba", reason="numba not installed: the numpy code alone r
 
 from specan.lines import blendkernel, compiled, hydrogen_blends  # noqa: E402
 
-DEMO = Path(__file__).resolve().parents[1] / "sample_spectra"
+from kernel_pairs import DEMO, demo_line_inputs, same_bits, with_and_without  # noqa: E402
 
 
 def _hydrogen_plans(count):
@@ -53,19 +51,6 @@ def _hydrogen_plans(count):
         yield row["file"], data, features, targets, plans
 
 
-def _both(monkeypatch, func, *args):
-    monkeypatch.setattr(compiled, "COMPILED", True)
-    assert compiled.blends() is blendkernel
-    made = func(*args)
-    monkeypatch.setattr(compiled, "COMPILED", False)
-    assert compiled.blends() is None
-    reference = func(*args)
-    monkeypatch.setattr(compiled, "COMPILED", True)
-    return made, reference
-
-
-def _same(a, b):
-    return a.dtype == b.dtype and a.shape == b.shape and a.tobytes() == b.tobytes()
 
 
 def test_compiled_candidates_are_numpys(monkeypatch):
@@ -85,28 +70,22 @@ def test_compiled_candidates_are_numpys(monkeypatch):
             no_ep = targets._replace(ep_low=None)
             for found in (plan.in_win if plan.in_win is not None else np.zeros(0), made_up, np.zeros(0)):
                 for t in (targets, no_ep):
-                    made, reference = _both(monkeypatch, hydrogen_blends._metal_candidates, data, t, plan,
+                    made, reference = with_and_without(monkeypatch, compiled.blends, hydrogen_blends._metal_candidates, data, t, plan,
                                             plan.fit, found)
-                    assert _same(made[0], reference[0]) and _same(made[1], reference[1]), (name, i)
+                    assert same_bits(made[0], reference[0]) and same_bits(made[1], reference[1]), (name, i)
                     chosen += made[0].size
     assert chosen > 500
 
 
-def test_hydrogen_lines_the_same(monkeypatch):
+def test_hydrogen_lines_thesame_bits(monkeypatch):
     # the hydrogen lines' results (less_blends among the steps: method, ew, its error, the listed lines
     # inside) of the demo spectra, every field to the bit
-    from specan.lines.data import DETECT_SIGMA, MIN_DEPTH, LineData, find_features
-    from specan.lines.listed import lines_in_range
-    from specan.lines.measurement import line_targets, measure_lines
+    from specan.lines.data import DETECT_SIGMA
+    from specan.lines.measurement import measure_lines
 
-    truth = Table.read(DEMO / "truth.ecsv", format="ascii.ecsv")
     less = 0
-    for row in truth[~truth["broken"]][:12]:
-        data = LineData(prepare(read(DEMO / row["file"])))
-        listed = lines_in_range(data, None, ("atomic",), row["rv_topo"] * u.km / u.s)
-        targets = line_targets(data, listed, None)
-        features = find_features(data, DETECT_SIGMA, MIN_DEPTH)
-        made, reference = _both(monkeypatch, measure_lines, data, features, targets, np.flatnonzero(targets.hydrogen),
+    for k, (data, _, features, targets) in enumerate(demo_line_inputs(12)):
+        made, reference = with_and_without(monkeypatch, compiled.blends, measure_lines, data, features, targets, np.flatnonzero(targets.hydrogen),
                                 "auto", DETECT_SIGMA)
         assert made.keys() == reference.keys()
         for i, a in made.items():
@@ -117,7 +96,7 @@ def test_hydrogen_lines_the_same(monkeypatch):
                     (x == y if not isinstance(x, dict) else x.keys() == y.keys() and all(
                         np.float64(x[k]).tobytes() == np.float64(y[k]).tobytes() if isinstance(x[k], float) else x[k] == y[k]
                         for k in x))
-                assert same, (row["file"], i, key)
+                assert same, (k, i, key)
             less += a.method == "integration_less_blends"
     assert less > 10
 
@@ -151,11 +130,11 @@ def test_crests_and_dips_are_numpys(monkeypatch):
             fit, window = plan.fit, plan.window
             lo, hi = data.wave[window.lo], data.wave[window.hi]
             for centre in (fit["centre"], lo - 5.0, 0.5 * (lo + hi)):
-                made, reference = _both(monkeypatch, hydrogen_blends.blanketing, data, window, plan.cont, centre)
+                made, reference = with_and_without(monkeypatch, compiled.blends, hydrogen_blends.blanketing, data, window, plan.cont, centre)
                 assert np.float64(made).tobytes() == np.float64(reference).tobytes(), (name, i)
             inside = targets.pred[(targets.pred >= lo) & (targets.pred <= hi)]
             positions = np.concatenate([inside, rng.uniform(lo - 2.0, hi + 2.0, 8), [lo, hi, fit["centre"]]])
-            made, reference = _both(monkeypatch, hydrogen_blends._dips, data, window, plan.cont, fit, plan.fw,
+            made, reference = with_and_without(monkeypatch, compiled.blends, hydrogen_blends._dips, data, window, plan.cont, fit, plan.fw,
                                     positions)
             assert made.dtype == reference.dtype and np.array_equal(made, reference), (name, i)
             tested += 1

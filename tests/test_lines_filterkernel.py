@@ -7,7 +7,6 @@ order, none fused). Measured on the bench's 40 spectra, the dense spectrum and t
 (benchmarks/bench_lines.py --against): the same tables to the bit as before the kernels.
 """
 
-from pathlib import Path
 
 import numpy as np
 import pytest
@@ -20,23 +19,9 @@ pytest.importorskip("numba", reason="numba not installed: the numpy filters alon
 
 from specan.lines import compiled, data as linedata, filterkernel  # noqa: E402
 
-DEMO = Path(__file__).resolve().parents[1] / "sample_spectra"
+from kernel_pairs import DEMO, same_bits, with_and_without  # noqa: E402
 
 
-def _both(monkeypatch, func, *args):
-    monkeypatch.setattr(compiled, "COMPILED", True)
-    assert compiled.filters() is filterkernel
-    made = func(*args)
-    monkeypatch.setattr(compiled, "COMPILED", False)
-    assert compiled.filters() is None
-    reference = func(*args)
-    monkeypatch.setattr(compiled, "COMPILED", True)
-    return made, reference
-
-
-def _same(a, b):
-    a, b = np.asarray(a), np.asarray(b)
-    return a.dtype == b.dtype and a.shape == b.shape and a.tobytes() == b.tobytes()
 
 
 def _values(rng, shape):
@@ -63,11 +48,11 @@ def test_band_filter_is_numpys(monkeypatch):
         n = data.wave.size
         rows = np.stack([data.weight * (1.0 - data.flux), data.weight * data.flux, data.weight])
         for values, weights in ((rows, main), (data.weight, half), (_values(rng, (3, n)), main)):
-            made, reference = _both(monkeypatch, linedata._band_filter, values, weights)
-            assert _same(made, reference), row["file"]
+            made, reference = with_and_without(monkeypatch, compiled.filters, linedata._band_filter, values, weights)
+            assert same_bits(made, reference), row["file"]
         for m in (1, 5, 2 * main.shape[0] - 3):
-            made, reference = _both(monkeypatch, linedata._band_filter, _values(rng, (2, m)), main[:, :m])
-            assert _same(made, reference), (row["file"], m)
+            made, reference = with_and_without(monkeypatch, compiled.filters, linedata._band_filter, _values(rng, (2, m)), main[:, :m])
+            assert same_bits(made, reference), (row["file"], m)
         banded += 1
     assert banded >= 4
 
@@ -78,10 +63,10 @@ def test_matched_filter_is_numpys(monkeypatch):
     for row in truth[~truth["broken"]][:6]:
         data = linedata.LineData(prepare(read(DEMO / row["file"])))
         for d in (data, data.divided(0.97 + 0.03 * np.cos(data.wave / 50.0))):
-            made, reference = _both(monkeypatch, linedata.matched_filter, d.flux, d.weight, d.sig_pix, d._rungs)
-            assert all(_same(a, b) for a, b in zip(made, reference)), row["file"]
-            made, reference = _both(monkeypatch, linedata.wide_smooth, d.flux, d.weight, d._wide_width)
-            assert all(_same(a, b) for a, b in zip(made, reference)), row["file"]
+            made, reference = with_and_without(monkeypatch, compiled.filters, linedata.matched_filter, d.flux, d.weight, d.sig_pix, d._rungs)
+            assert all(same_bits(a, b) for a, b in zip(made, reference)), row["file"]
+            made, reference = with_and_without(monkeypatch, compiled.filters, linedata.wide_smooth, d.flux, d.weight, d._wide_width)
+            assert all(same_bits(a, b) for a, b in zip(made, reference)), row["file"]
 
 
 def test_symmetric_filter_is_scipys():
@@ -95,5 +80,5 @@ def test_symmetric_filter_is_scipys():
             values = _values(rng, shape)
             out = np.empty(shape)
             filterkernel.symmetric_filter(values, weights, out)
-            assert _same(out, correlate1d(values, weights, axis=1, mode="nearest")), (s, shape)
-            assert _same(out, gaussian_filter1d(values, s, axis=1, mode="nearest")), (s, shape)
+            assert same_bits(out, correlate1d(values, weights, axis=1, mode="nearest")), (s, shape)
+            assert same_bits(out, gaussian_filter1d(values, s, axis=1, mode="nearest")), (s, shape)

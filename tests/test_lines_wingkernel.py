@@ -10,37 +10,23 @@ bench's 40 spectra, the dense spectrum and the demo night (benchmarks/bench_line
 tables to the bit as before the kernel.
 """
 
-from pathlib import Path
 
 import astropy.units as u
 import numpy as np
 import pytest
-from astropy.table import Table
 from scipy.special import voigt_profile
 
-from specan import prepare, read
 
 pytest.importorskip("numba", reason="numba not installed: the numpy series alone runs")
 
 from specan.lines import compiled, wingkernel  # noqa: E402
 from specan.lines.profiles import FAR_Z, voigt_wide  # noqa: E402
 
-DEMO = Path(__file__).resolve().parents[1] / "sample_spectra"
+from kernel_pairs import demo_line_inputs, with_and_without  # noqa: E402
 
 needs_agreement = pytest.mark.skipif(not wingkernel.numpy_agrees(),
                                      reason="numpy's complex arithmetic here is not the kernel's: not used")
 
-
-def _both(monkeypatch, func, *args):
-    """``func(*args)`` with the kernel and with the numpy code."""
-    monkeypatch.setattr(compiled, "COMPILED", True)
-    assert compiled.wings() is wingkernel
-    made = func(*args)
-    monkeypatch.setattr(compiled, "COMPILED", False)
-    assert compiled.wings() is None
-    reference = func(*args)
-    monkeypatch.setattr(compiled, "COMPILED", True)
-    return made, reference
 
 
 def test_fused_rounding_reference():
@@ -66,7 +52,7 @@ def test_compiled_wings_are_numpys(monkeypatch):
             gamma[0] = 0.0
         for args in ((x[None, :] - centre[:, None], sigma[:, None], gamma[:, None]),
                      (x - centre[0], sigma[0], gamma[0]), (x - centre[0], float(sigma[0]), float(gamma[0]))):
-            made, reference = _both(monkeypatch, voigt_wide, *args)
+            made, reference = with_and_without(monkeypatch, compiled.wings, voigt_wide, *args)
             assert made.shape == reference.shape and made.tobytes() == reference.tobytes(), trial
 
 
@@ -89,27 +75,21 @@ def test_compiled_wings_against_scipys_profile(monkeypatch):
 
 
 @needs_agreement
-def test_hydrogen_models_the_same(monkeypatch):
+def test_hydrogen_models_thesame_bits(monkeypatch):
     # the transmission of the fitted hydrogen lines the other lines are measured against, on demo spectra
-    from specan.lines.data import DETECT_SIGMA, MIN_DEPTH, LineData, find_features
+    from specan.lines.data import DETECT_SIGMA
     from specan.lines.hydrogen import hydrogen_model
-    from specan.lines.listed import lines_in_range
-    from specan.lines.measurement import line_targets, measure_lines
+    from specan.lines.measurement import measure_lines
 
-    truth = Table.read(DEMO / "truth.ecsv", format="ascii.ecsv")
     models = 0
-    for row in truth[~truth["broken"]][:8]:
-        data = LineData(prepare(read(DEMO / row["file"])))
-        listed = lines_in_range(data, None, ("atomic",), row["rv_topo"] * u.km / u.s)
-        targets = line_targets(data, listed, None)
-        results = measure_lines(data, find_features(data, DETECT_SIGMA, MIN_DEPTH), targets,
-                                np.flatnonzero(targets.hydrogen), "auto", DETECT_SIGMA)
+    for k, (data, listed, features, targets) in enumerate(demo_line_inputs(8)):
+        results = measure_lines(data, features, targets, np.flatnonzero(targets.hydrogen), "auto", DETECT_SIGMA)
         ep = listed.rows["ep_low"].to_value(u.eV)
-        made, reference = _both(monkeypatch, hydrogen_model, data, results, targets, ep)
+        made, reference = with_and_without(monkeypatch, compiled.wings, hydrogen_model, data, results, targets, ep)
         if reference is None:
             assert made is None
             continue
-        assert made.tobytes() == reference.tobytes(), row["file"]
+        assert made.tobytes() == reference.tobytes(), k
         models += 1
     assert models >= 5
 

@@ -285,15 +285,8 @@ def _gauss_group(data, problems, ks, ncomp, nsh, out, widths=None, width_step=Fa
         rows_found = wrong[found]
         best[rows_found], wbest[rows_found], cbest[rows_found] = pick, w[rows_found, pick], chi2[rows_found, pick]
         wrong = wrong[~found]
-    for row in wrong:
-        # none of them has: the one-by-one rule (NNLS on the best few grid points) over this line's
-        # own pixels
-        m = problems[ks[row]][1] - problems[ks[row]][0] + 1
-        bg, wb, cb = best_grid_point(a[row, :, :, :m], b[row, :m], w[row], chi2[row], sign[row])
-        if bg is None:
-            best[row] = -1
-            continue
-        best[row], wbest[row], cbest[row] = bg, wb, cb
+    # none of them has: the one-by-one rule (NNLS on the best few grid points) over each line's own pixels
+    _one_by_one_rule(wrong, problems, ks, a, b, w, chi2, sign, best, wbest, cbest)
     ok = best >= 0
     # each fit's width and normal matrix at its chosen grid point (the quick design may move the width)
     sig_best, ata_best = sg[rows, np.maximum(best, 0)], ata[rows, np.maximum(best, 0)]
@@ -342,6 +335,18 @@ def _gauss_group(data, problems, ks, ncomp, nsh, out, widths=None, width_step=Fa
                   "depth": float(peak), "chi2": float(cbest[row]) / dof, "sigma": float(sig), "gamma": 0.0}
 
 
+def _one_by_one_rule(rows, problems, ks, a, b, w, chi2, sign, best, wbest, cbest):
+    """:func:`.profiles.best_grid_point` (NNLS on the best few grid points, over the line's own pixels) for
+    each of ``rows``, written into ``best``, ``wbest`` and ``cbest`` (-1 in ``best``: no grid point)."""
+    for row in rows:
+        m = problems[ks[row]][1] - problems[ks[row]][0] + 1
+        bg, wb, cb = best_grid_point(a[row, :, :, :m], b[row, :m], w[row], chi2[row], sign[row])
+        if bg is None:
+            best[row] = -1
+            continue
+        best[row], wbest[row], cbest[row] = bg, wb, cb
+
+
 def _compiled_gauss_group(data, problems, ks, centres, sh, sg, sig_line, step, sign, nsh, nw, width_step, out):
     """:func:`_gauss_group`'s padded windows, grid, choice of grid point, width step, covariance and refined
     shift by three compiled calls (:func:`.lmkernel.gauss_windows`, :func:`.lmkernel.gauss_grid_choice`,
@@ -363,13 +368,8 @@ def _compiled_gauss_group(data, problems, ks, centres, sh, sg, sig_line, step, s
     a, ata, w, chi2, best, wbest, cbest, ok = lmkernel.gauss_grid_choice(x, b, cw, centres, sh, sg, step, nw, sign)
     if not ok:
         return False
-    for row in (best == -2).nonzero()[0].tolist():   # (a sign-constrained solve the kernel left to scipy)
-        m = problems[ks[row]][1] - problems[ks[row]][0] + 1
-        bg, wb, cb = best_grid_point(a[row, :, :, :m], b[row, :m], w[row], chi2[row], sign[row])
-        if bg is None:
-            best[row] = -1
-            continue
-        best[row], wbest[row], cbest[row] = bg, wb, cb
+    # (a sign-constrained solve the kernel left to scipy)
+    _one_by_one_rule((best == -2).nonzero()[0].tolist(), problems, ks, a, b, w, chi2, sign, best, wbest, cbest)
     cols, fitted = lmkernel.gauss_finish(x, b, cw, a, ata, chi2, centres, sh, sg, sig_line, step, sign, ngood, best,
                                          wbest, cbest, nsh, nw, width_step, QUICK_WIDTH_Z, _GRID_WIDTHS[0],
                                          _GRID_WIDTHS[-1], GAUSS_FWHM)
