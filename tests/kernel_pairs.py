@@ -13,16 +13,15 @@ from specan.lines import compiled
 DEMO = Path(__file__).resolve().parents[1] / "sample_spectra"
 
 
-def with_and_without(monkeypatch, which, func, *args):
-    """``func(*args)`` with the kernel that ``which`` (e.g. ``compiled.walks``) gives, then with the numpy
-    code (``compiled.COMPILED`` False), as ``(made, reference)``; the switch is checked to take effect."""
-    monkeypatch.setattr(compiled, "COMPILED", True)
-    assert which() is not None
+def with_and_without(monkeypatch, which, kernel, func, *args):
+    """``func(*args)`` with ``kernel``, the module ``which`` (e.g. ``compiled.walks``) gives (checked), then
+    with that step's numpy code (``which`` made to give None; every other kernel as it was), as
+    ``(made, reference)``."""
+    assert which() is kernel
     made = func(*args)
-    monkeypatch.setattr(compiled, "COMPILED", False)
-    assert which() is None
+    monkeypatch.setattr(compiled, which.__name__, lambda: None)
     reference = func(*args)
-    monkeypatch.setattr(compiled, "COMPILED", True)
+    monkeypatch.setattr(compiled, which.__name__, which)
     return made, reference
 
 

@@ -70,14 +70,14 @@ def test_compiled_candidates_are_numpys(monkeypatch):
             no_ep = targets._replace(ep_low=None)
             for found in (plan.in_win if plan.in_win is not None else np.zeros(0), made_up, np.zeros(0)):
                 for t in (targets, no_ep):
-                    made, reference = with_and_without(monkeypatch, compiled.blends, hydrogen_blends._metal_candidates, data, t, plan,
+                    made, reference = with_and_without(monkeypatch, compiled.blends, blendkernel, hydrogen_blends._metal_candidates, data, t, plan,
                                             plan.fit, found)
                     assert same_bits(made[0], reference[0]) and same_bits(made[1], reference[1]), (name, i)
                     chosen += made[0].size
     assert chosen > 500
 
 
-def test_hydrogen_lines_thesame_bits(monkeypatch):
+def test_hydrogen_lines_the_same(monkeypatch):
     # the hydrogen lines' results (less_blends among the steps: method, ew, its error, the listed lines
     # inside) of the demo spectra, every field to the bit
     from specan.lines.data import DETECT_SIGMA
@@ -85,7 +85,7 @@ def test_hydrogen_lines_thesame_bits(monkeypatch):
 
     less = 0
     for k, (data, _, features, targets) in enumerate(demo_line_inputs(12)):
-        made, reference = with_and_without(monkeypatch, compiled.blends, measure_lines, data, features, targets, np.flatnonzero(targets.hydrogen),
+        made, reference = with_and_without(monkeypatch, compiled.blends, blendkernel, measure_lines, data, features, targets, np.flatnonzero(targets.hydrogen),
                                 "auto", DETECT_SIGMA)
         assert made.keys() == reference.keys()
         for i, a in made.items():
@@ -130,11 +130,11 @@ def test_crests_and_dips_are_numpys(monkeypatch):
             fit, window = plan.fit, plan.window
             lo, hi = data.wave[window.lo], data.wave[window.hi]
             for centre in (fit["centre"], lo - 5.0, 0.5 * (lo + hi)):
-                made, reference = with_and_without(monkeypatch, compiled.blends, hydrogen_blends.blanketing, data, window, plan.cont, centre)
+                made, reference = with_and_without(monkeypatch, compiled.blends, blendkernel, hydrogen_blends.blanketing, data, window, plan.cont, centre)
                 assert np.float64(made).tobytes() == np.float64(reference).tobytes(), (name, i)
             inside = targets.pred[(targets.pred >= lo) & (targets.pred <= hi)]
             positions = np.concatenate([inside, rng.uniform(lo - 2.0, hi + 2.0, 8), [lo, hi, fit["centre"]]])
-            made, reference = with_and_without(monkeypatch, compiled.blends, hydrogen_blends._dips, data, window, plan.cont, fit, plan.fw,
+            made, reference = with_and_without(monkeypatch, compiled.blends, blendkernel, hydrogen_blends._dips, data, window, plan.cont, fit, plan.fw,
                                     positions)
             assert made.dtype == reference.dtype and np.array_equal(made, reference), (name, i)
             tested += 1

@@ -35,7 +35,7 @@ from specan import lines, prepare, read
 
 numba = pytest.importorskip("numba", reason="numba not installed: the numpy loop alone runs")
 
-from specan.lines import batchfit, lmkernel
+from specan.lines import batchfit, compiled, lmkernel
 
 DEMO = Path(__file__).resolve().parents[1] / "sample_spectra"
 EW_TOL = 1e-6      # of the line's own error
@@ -84,10 +84,10 @@ def _both_loops(monkeypatch, spec, **options):
     kernel = lmkernel.lm_propose
     # (the compiled loop counted, so that the comparison cannot pass by taking the numpy loop twice)
     monkeypatch.setattr(lmkernel, "lm_propose", lambda *args: calls.append(1) or kernel(*args))
-    monkeypatch.setattr(batchfit, "COMPILED", False)
+    monkeypatch.setattr(compiled, "COMPILED", False)
     slow = lines.measure(spec, **options)
     assert not calls
-    monkeypatch.setattr(batchfit, "COMPILED", True)
+    monkeypatch.setattr(compiled, "COMPILED", True)
     fast = lines.measure(spec, **options)
     assert calls or not (slow["profile"] == "voigt").any()
     monkeypatch.setattr(lmkernel, "lm_propose", kernel)
@@ -305,3 +305,17 @@ def test_nnls_rows_is_scipys_nnls():
         held += int((ref == 0).sum())
     assert held > 100   # the constraint was active in many (measured: 836 components held at zero; the
     # solutions within 2.3e-12 of the largest component, the squared residuals 4.4e-15 relative)
+
+
+def test_one_switch_turns_every_kernel_off(monkeypatch):
+    # SPECAN_COMPILED=0 (compiled.COMPILED) keeps every step on its numpy code: no accessor gives a kernel
+    from specan.lines import wingkernel
+
+    # (the far wings' kernel runs only where numpy's complex arithmetic is its own: wingkernel.numpy_agrees)
+    accessors = (compiled.lm, compiled.walks, compiled.blends, compiled.filters) + (
+        (compiled.wings,) if wingkernel.numpy_agrees() else ())
+    assert all(get() is not None for get in accessors)     # numba here: each kernel runs (the premise)
+    assert batchfit._kernels() and batchfit._kernels(True) and not batchfit._kernels(False)
+    monkeypatch.setattr(compiled, "COMPILED", False)
+    assert all(get() is None for get in accessors)
+    assert not batchfit._kernels() and batchfit._kernels(True)   # a call's own choice still decides

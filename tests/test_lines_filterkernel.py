@@ -48,10 +48,10 @@ def test_band_filter_is_numpys(monkeypatch):
         n = data.wave.size
         rows = np.stack([data.weight * (1.0 - data.flux), data.weight * data.flux, data.weight])
         for values, weights in ((rows, main), (data.weight, half), (_values(rng, (3, n)), main)):
-            made, reference = with_and_without(monkeypatch, compiled.filters, linedata._band_filter, values, weights)
+            made, reference = with_and_without(monkeypatch, compiled.filters, filterkernel, linedata._band_filter, values, weights)
             assert same_bits(made, reference), row["file"]
         for m in (1, 5, 2 * main.shape[0] - 3):
-            made, reference = with_and_without(monkeypatch, compiled.filters, linedata._band_filter, _values(rng, (2, m)), main[:, :m])
+            made, reference = with_and_without(monkeypatch, compiled.filters, filterkernel, linedata._band_filter, _values(rng, (2, m)), main[:, :m])
             assert same_bits(made, reference), (row["file"], m)
         banded += 1
     assert banded >= 4
@@ -63,9 +63,9 @@ def test_matched_filter_is_numpys(monkeypatch):
     for row in truth[~truth["broken"]][:6]:
         data = linedata.LineData(prepare(read(DEMO / row["file"])))
         for d in (data, data.divided(0.97 + 0.03 * np.cos(data.wave / 50.0))):
-            made, reference = with_and_without(monkeypatch, compiled.filters, linedata.matched_filter, d.flux, d.weight, d.sig_pix, d._rungs)
+            made, reference = with_and_without(monkeypatch, compiled.filters, filterkernel, linedata.matched_filter, d.flux, d.weight, d.sig_pix, d._rungs)
             assert all(same_bits(a, b) for a, b in zip(made, reference)), row["file"]
-            made, reference = with_and_without(monkeypatch, compiled.filters, linedata.wide_smooth, d.flux, d.weight, d._wide_width)
+            made, reference = with_and_without(monkeypatch, compiled.filters, filterkernel, linedata.wide_smooth, d.flux, d.weight, d._wide_width)
             assert all(same_bits(a, b) for a, b in zip(made, reference)), row["file"]
 
 

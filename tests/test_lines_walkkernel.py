@@ -19,7 +19,7 @@ from specan import prepare, read
 
 pytest.importorskip("numba", reason="numba not installed: the numpy walks alone run")
 
-from specan.lines import compiled, windows  # noqa: E402
+from specan.lines import compiled, walkkernel, windows  # noqa: E402
 
 from kernel_pairs import DEMO, with_and_without  # noqa: E402
 
@@ -60,7 +60,7 @@ def test_compiled_walks_are_numpys(monkeypatch):
             step = np.repeat(np.array([-1, 1]), ic.size)
             args = (data, np.concatenate([ic, ic]), np.concatenate([sign, sign]), np.concatenate([fw, fw]),
                     np.concatenate([max_half, max_half]), np.concatenate([wide, wide]), step)
-            made, reference = with_and_without(monkeypatch, compiled.walks, windows._walks, *args)
+            made, reference = with_and_without(monkeypatch, compiled.walks, walkkernel, windows._walks, *args)
             for a, b in zip(made, reference):
                 assert a.dtype == b.dtype and np.array_equal(a, b), name
             walked += step.size
@@ -80,7 +80,7 @@ def test_compiled_walks_at_the_edges_and_limits(monkeypatch):
     min_half = rng.uniform(0.5, 8.0, m)
     max_half = np.concatenate([[1e-3, 5e3, 1e-3, 5e3, 0.0, 1.0], rng.uniform(0.1, 400.0, m - 6)])
     for wide in (np.zeros(m, bool), np.ones(m, bool), rng.random(m) < 0.5):
-        made, reference = with_and_without(monkeypatch, compiled.walks, windows._walks, data, ic, sign, min_half, max_half, wide, step)
+        made, reference = with_and_without(monkeypatch, compiled.walks, walkkernel, windows._walks, data, ic, sign, min_half, max_half, wide, step)
         for a, b in zip(made, reference):
             assert a.dtype == b.dtype and np.array_equal(a, b)
 

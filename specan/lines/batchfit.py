@@ -39,12 +39,12 @@ its check against outside truth (injected lines, the solar strong lines, damped 
 from __future__ import annotations
 
 import math
-import os
 
 import numpy as np
 from scipy.special import voigt_profile, wofz
 
 from ..resolution import GAUSS_FWHM
+from . import compiled as switch
 from .profiles import (
     best_grid_point,
     fit_profile_lean,
@@ -112,11 +112,6 @@ SETUP_AT_ONCE = 4
 #: the signs of the Jacobian's shift, sigma and gamma columns against the weighted sums of the
 #: profile's derivatives (the model is ``cont (1 - sum W V)``: d/dshift = -d/dx)
 _JAC_SIGNS = np.array([1.0, -1.0, -1.0])
-#: the Voigt batch's iterations compiled (:mod:`.lmkernel`, numba) where numba imports: in numpy an
-#: iteration is ~125 calls on a handful of small problems, and their count, not their arithmetic, is
-#: the cost; ``voigt_batch(compiled=...)`` overrides it per call, SPECAN_COMPILED=0 for the process
-#: (the numpy loop, :func:`_numpy_iterations`: the results within tests/test_lines_compiled.py's tolerance)
-COMPILED = os.environ.get("SPECAN_COMPILED", "1") != "0"
 
 
 def fit_planned(data, plans, exact=True):
@@ -168,7 +163,7 @@ def gauss_batch(data, problems, exact=True, compiled=None):
         one Gauss-Newton step in the width within the same 0.95-1.05 (:func:`_step_widths`).
     compiled : bool, optional
         Each group by the compiled kernels (:func:`_compiled_gauss_group`) or in numpy; None (default):
-        compiled where :data:`COMPILED` and numba imports.
+        compiled where :data:`specan.lines.compiled.COMPILED` and numba imports.
 
     Returns
     -------
@@ -217,7 +212,7 @@ def _gauss_group(data, problems, ks, ncomp, nsh, out, widths=None, width_step=Fa
     ``widths``: the grid's widths (times the line width; default :func:`fit_gauss`'s three).
     ``width_step``: with one width held (the quick design), the fits whose data ask for another
     width take one Gauss-Newton step in it (:func:`_step_widths`). ``compiled``: the group by
-    :func:`_compiled_gauss_group` (None: where :data:`COMPILED` and numba imports), else in numpy
+    :func:`_compiled_gauss_group` (None: see :func:`_kernels`), else in numpy
     below (the fallback, and the reference tests/test_lines_compiled.py holds it to).
     """
     # enough pixels of non-zero weight (counted from one running count of them, not per window)
@@ -236,7 +231,7 @@ def _gauss_group(data, problems, ks, ncomp, nsh, out, widths=None, width_step=Fa
     sh = np.repeat(np.arange(-nsh, nsh + 1), nw)[None, :] * step[:, None]      # (L, G)
     sg = sig_line[:, None] * np.tile(widths, 2 * nsh + 1)[None, :]
     singular = False
-    if (COMPILED if compiled is None else compiled) and _kernels_available():
+    if _kernels(compiled):
         if _compiled_gauss_group(data, problems, ks, centres, sh, sg, sig_line, step, sign, nsh, nw, width_step, out):
             return
         singular = True
@@ -519,7 +514,7 @@ def voigt_batch(data, problems, max_iter=MAX_ITER, decrement=DECREMENT, cost_tol
     cost = 0.5 * np.einsum("bp,bp->b", r, r)
     finite = np.isfinite(cost)   # least_squares: "residuals are not finite in the initial point"
     converged = np.zeros(p.shape[0], bool)
-    if (COMPILED if compiled is None else compiled) and _kernels_available():
+    if _kernels(compiled):
         act = _compiled_iterations(model, p, r, jac, cost, lb, ub, real, finite, converged, max_iter, decrement,
                                    cost_tol)
     else:
@@ -529,9 +524,17 @@ def voigt_batch(data, problems, max_iter=MAX_ITER, decrement=DECREMENT, cost_tol
                           exact)
 
 
-def _kernels_available():
-    """Whether numba imports (:mod:`.lmkernel` imported here, on the first Voigt batch: numba's import
-    alone takes ~0.2 s, which a process that never fits a Voigt profile need not pay)."""
+def _kernels(choice=None):
+    """Whether the fits run compiled (:mod:`.lmkernel`, numba): in numpy a Voigt iteration or a Gaussian
+    group is ~60-125 calls on a handful of small problems, and their count, not their arithmetic, is the
+    cost. ``choice`` (the ``compiled`` argument of :func:`voigt_batch` and :func:`gauss_batch`) decides
+    where given, else :data:`specan.lines.compiled.COMPILED` (``SPECAN_COMPILED=0``: the numpy code, within
+    tests/test_lines_compiled.py's tolerance); never without numba. lmkernel is imported here, on the
+    first fit, as numba's import alone takes ~0.2 s."""
+    if choice is None:
+        return switch.lm() is not None
+    if not choice:
+        return False
     from . import lmkernel
 
     return lmkernel.AVAILABLE

@@ -736,7 +736,6 @@ def gauss_finish(x, b, cw, a, ata, chi2, centres, sh, sg, sig_line, step, sign, 
         ``fitted`` (L,) False where no fit is reported (no grid point, or a singular normal matrix).
     """
     L, P = x.shape
-    G = sh.shape[1]
     C = centres.shape[1]
     sig_best = np.empty(L)
     ata_best = np.empty((L, C, C))
