@@ -48,6 +48,7 @@ from pathlib import Path
 
 import astropy.units as u
 import numpy as np
+from astropy.constants import c as SPEED_OF_LIGHT
 from astropy.nddata import StdDevUncertainty
 from scipy.special import voigt_profile
 from specutils import Spectrum
@@ -415,7 +416,7 @@ def table_moves(cases, other, exact=False):
             rel = np.abs(a - b) / np.abs(b)
             out["fwhm_rel"] = max(out["fwhm_rel"], float(rel[np.isfinite(rel)].max(initial=0.0)))
             a, b = np.asarray(mine["wave_obs"].value), np.asarray(theirs["wave_obs"].value)
-            kms = np.abs(a - b) / b * 299792.458   # (km/s: the speed of light, exact by definition)
+            kms = np.abs(a - b) / b * SPEED_OF_LIGHT.to_value(u.km / u.s)
             out["wave_obs_kms"] = max(out["wave_obs_kms"], float(kms[np.isfinite(kms)].max(initial=0.0)))
     return out
 
