@@ -17,6 +17,7 @@ def with_and_without(monkeypatch, which, kernel, func, *args):
     """``func(*args)`` with ``kernel``, the module ``which`` (e.g. ``compiled.walks``) gives (checked), then
     with that step's numpy code (``which`` made to give None; every other kernel as it was), as
     ``(made, reference)``."""
+    monkeypatch.setattr(compiled, "COMPILED", True)   # (also where SPECAN_COMPILED=0 set it off for the process)
     assert which() is kernel
     made = func(*args)
     monkeypatch.setattr(compiled, which.__name__, lambda: None)

@@ -314,6 +314,7 @@ def test_one_switch_turns_every_kernel_off(monkeypatch):
     # (the far wings' kernel runs only where numpy's complex arithmetic is its own: wingkernel.numpy_agrees)
     accessors = (compiled.lm, compiled.walks, compiled.blends, compiled.filters) + (
         (compiled.wings,) if wingkernel.numpy_agrees() else ())
+    monkeypatch.setattr(compiled, "COMPILED", True)     # (also where SPECAN_COMPILED=0 set it off)
     assert all(get() is not None for get in accessors)     # numba here: each kernel runs (the premise)
     assert batchfit._kernels() and batchfit._kernels(True) and not batchfit._kernels(False)
     monkeypatch.setattr(compiled, "COMPILED", False)
