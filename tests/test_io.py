@@ -545,3 +545,24 @@ def test_wavelengths_in_angstrom_are_astropys_conversion(unit):
         assert np.array_equal(w, s.spectral_axis.to_value(u.AA))
         w[0] = -1.0
         assert s.spectral_axis[0].to_value(u.AA) > 0
+
+
+# --- start-up: specutils without ndcube's pyplot (specan/_imports.py) ----------------------
+
+def test_reader_import_leaves_pyplot_out_and_the_plotter_still_works():
+    # A fresh interpreter: importing the reader imports specutils but not matplotlib.pyplot
+    # (ndcube resolves its plotter at class definition only for a docstring); a Spectrum's
+    # .plotter, ndcube's own plotting entry, still imports it when used.
+    import subprocess
+    import sys
+
+    code = ("import sys, numpy as np, astropy.units as u\n"
+            "import specan.io\n"
+            "print('specutils' in sys.modules, 'matplotlib.pyplot' in sys.modules,"
+            " 'ndcube.visualization.mpl_plotter' in sys.modules)\n"
+            "from specutils import Spectrum\n"
+            "s = Spectrum(flux=np.ones(5) * u.Jy, spectral_axis=np.arange(1.0, 6.0) * u.AA)\n"
+            "print(type(s.plotter).__name__, 'matplotlib.pyplot' in sys.modules)\n")
+    done = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, timeout=120)
+    assert done.returncode == 0, done.stderr
+    assert done.stdout.split("\n")[:2] == ["True False False", "MatplotlibPlotter True"]

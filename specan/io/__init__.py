@@ -21,6 +21,11 @@ from ..errors import (CorruptFileError, EmptyFileError, MetadataError, NoWavelen
 from ..obsinfo import META_KEY, ObsInfo
 from . import fits_image, fits_table, text
 from ._common import RawSpectrum, parse_angle, parse_site
+from .._imports import import_specutils
+
+# Every spectrum specan reads becomes a specutils Spectrum, so import it now, the light way
+# (see specan/_imports.py), before any "from specutils import ..." below or elsewhere.
+import_specutils()
 
 __all__ = ["read", "READERS", "OVERRIDES", "parse_angle", "parse_site"]
 
