@@ -114,3 +114,80 @@ def _write_whole(path, data):
             os.unlink(tmp)
         except OSError:
             pass
+
+
+#: How many megabytes of files of one kind :func:`cached_arrays` keeps, the least recently used going
+#: first: one instrument set-up's velocity templates take ~13 files and 9 MB (measured on the
+#: benchmark night), so this keeps about ten set-ups.
+ARRAYS_KEPT_MB = 100
+
+
+_CODE_KEY = []
+
+
+def _code_and_libraries():
+    """What computed arrays depend on besides their own arguments: specan's code and data files,
+    numpy's and scipy's versions (computed once a process; specan's code does not change under a run)."""
+    if not _CODE_KEY:
+        import numpy
+        import scipy
+
+        from .night.records import code_fingerprint
+
+        _CODE_KEY.append(f"{code_fingerprint()} numpy {numpy.__version__} scipy {scipy.__version__}")
+    return _CODE_KEY[0]
+
+
+def cached_arrays(kind, key, build):
+    """The arrays ``build()`` returns (a dict of name -> numpy array), from :func:`cache_dir` when kept there.
+
+    For work every new process repeats on the same inputs, such as the velocity templates of an
+    instrument set-up (0.2 s a process, measured): a file named by ``kind`` and a hash of ``key``
+    (the arguments, as text), of specan's code and data and of numpy's and scipy's versions, so
+    that other code or other arguments never meet a kept file. The arrays come back as they were
+    saved (numpy's own format, to the bit). A missing or unreadable file costs only ``build()``;
+    a folder that cannot be written is left alone; ``SPECAN_CACHE_DIR=""`` turns this off.
+    """
+    import contextlib
+    import hashlib
+    import io
+    import os
+
+    import numpy as np
+
+    folder = cache_dir()
+    if folder is None:
+        return build()
+    digest = hashlib.sha256(f"{_code_and_libraries()}\n{key}".encode()).hexdigest()[:24]
+    path = folder / f"{kind}-{digest}.npz"
+    if path.is_file():
+        try:
+            with np.load(path, allow_pickle=False) as kept:
+                arrays = {name: kept[name] for name in kept.files}
+            with contextlib.suppress(OSError):
+                os.utime(path)   # used: the newest to keep (_prune)
+            return arrays
+        except Exception:  # noqa: BLE001, S110 - truncated or foreign: made again below
+            pass
+    arrays = build()
+    buffer = io.BytesIO()
+    np.savez(buffer, **arrays)
+    _write_whole(path, buffer.getvalue())
+    _prune(folder, kind)
+    return arrays
+
+
+def _prune(folder, kind):
+    """Keep the newest files of ``kind`` that fit in :data:`ARRAYS_KEPT_MB`."""
+    import contextlib
+
+    try:
+        files = [(p.stat().st_mtime, p.stat().st_size, p) for p in folder.glob(f"{kind}-*.npz")]
+    except OSError:   # one went meanwhile (another process pruned): next time
+        return
+    total = 0
+    for _, size, path in sorted(files, key=lambda f: f[0], reverse=True):
+        total += size
+        if total > ARRAYS_KEPT_MB * 1e6:
+            with contextlib.suppress(OSError):
+                path.unlink()

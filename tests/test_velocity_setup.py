@@ -56,3 +56,111 @@ def test_noise_probes_are_drawn_once_and_unchanged():
         probes[0, 0] = 1.0
     fresh = np.random.default_rng(20261204).standard_normal((1234, vgrid.NOISE_PROBES))
     assert np.array_equal(probes, fresh)
+
+
+def _same(a, b):
+    """Equal to the bit, through dicts, lists, tuples, quantities and arrays (NaN equal to NaN)."""
+    if isinstance(a, dict):
+        return a.keys() == b.keys() and all(_same(a[k], b[k]) for k in a)
+    if isinstance(a, (list, tuple)):
+        return len(a) == len(b) and all(_same(x, y) for x, y in zip(a, b))
+    if hasattr(a, "unit") and hasattr(a, "value"):
+        return a.unit == b.unit and _same(a.value, b.value)
+    if isinstance(a, (np.ndarray, float, np.floating)):
+        return np.array_equal(a, b, equal_nan=True)
+    return a == b
+
+
+def test_velocity_templates_kept_on_disk_are_the_templates_made(tmp_path, monkeypatch):
+    # specan/_offline.py cached_arrays: a set-up's template bank read back from the cache folder
+    # gives the bank made in the process, and the velocity measured with it, to the bit
+    import astropy.units as u
+
+    from specan import synth, velocity
+    from specan.contents import forget_setups
+    from specan.velocity import bank
+
+    banks = []
+
+    class Seen(bank.TemplateBank):
+        def __init__(self, *args, **kwargs):
+            super().__init__(*args, **kwargs)
+            banks.append(self)
+
+    monkeypatch.setattr(bank, "TemplateBank", Seen)
+    star = synth.spectrum("K1", "III", rv=-40.0 * u.km / u.s, snr=60.0, seed=5)
+
+    def measured():
+        forget_setups()
+        banks.clear()
+        return velocity.measure(star, barycentric=False), list(banks)
+
+    monkeypatch.setenv("SPECAN_CACHE_DIR", "")            # no cache: made here
+    made, made_banks = measured()
+    monkeypatch.setenv("SPECAN_CACHE_DIR", str(tmp_path))
+    written, _ = measured()                                # made again, and written
+    assert len(list(tmp_path.glob("velocity-bank-*.npz"))) == len(made_banks) > 0
+
+    def not_made(*args):
+        raise AssertionError("a kept template bank was made again")
+
+    monkeypatch.setattr(bank, "prepare_builtin", not_made)
+    read, read_banks = measured()                          # read back, nothing made
+    assert len(read_banks) == len(made_banks) > 0
+    for a, b in zip(made_banks, read_banks):
+        assert a.names == b.names and a.m == b.m and a.nf == b.nf
+        for name in ("T", "T2", "V_unique", "groups", "FT", "FV"):
+            assert np.array_equal(getattr(a, name), getattr(b, name)), name
+    assert _same(made, written) and _same(made, read)
+
+
+def test_a_damaged_kept_bank_is_made_again(tmp_path, monkeypatch):
+    from specan._offline import cached_arrays
+
+    monkeypatch.setenv("SPECAN_CACHE_DIR", str(tmp_path))
+    calls = []
+
+    def build():
+        calls.append(1)
+        return {"x": np.arange(5.0)}
+
+    assert np.array_equal(cached_arrays("test", "key", build)["x"], np.arange(5.0))
+    (kept,) = tmp_path.glob("test-*.npz")
+    assert np.array_equal(cached_arrays("test", "key", build)["x"], np.arange(5.0)) and len(calls) == 1
+    kept.write_bytes(kept.read_bytes()[:40])               # truncated
+    assert np.array_equal(cached_arrays("test", "key", build)["x"], np.arange(5.0)) and len(calls) == 2
+    assert np.array_equal(cached_arrays("test", "other key", build)["x"], np.arange(5.0)) and len(calls) == 3
+    monkeypatch.setenv("SPECAN_CACHE_DIR", "")
+    cached_arrays("test", "key", build)
+    assert len(calls) == 4 and len(list(tmp_path.glob("test-*.npz"))) == 2
+
+
+def test_kept_arrays_stay_within_their_room(tmp_path, monkeypatch):
+    # once a kind's files pass ARRAYS_KEPT_MB, the least recently used go first
+    import os
+
+    from specan import _offline
+
+    monkeypatch.setenv("SPECAN_CACHE_DIR", str(tmp_path))
+    monkeypatch.setattr(_offline, "ARRAYS_KEPT_MB", 2.5e-3)      # 2,500 bytes: two files of 1,056
+    calls = []
+
+    def keep(key, when=None):
+        _offline.cached_arrays("room", key, lambda: calls.append(key) or {"x": np.zeros(100)})
+        if when is not None:
+            for p in tmp_path.glob("room-*.npz"):
+                if p.stat().st_mtime > 1e6:                   # the one just written (the rest are set back)
+                    os.utime(p, (when, when))
+        return {p.stat().st_mtime for p in tmp_path.glob("room-*.npz")}
+
+    assert keep("a", 100) == {100}
+    assert keep("b", 200) == {100, 200}
+    assert keep("c", 300) == {200, 300}                          # a went
+    keep("b")                                                    # read: b is now the newest
+    assert calls == ["a", "b", "c"]
+    assert 300 not in keep("d")                                  # c went, b stayed
+    assert len(list(tmp_path.glob("room-*.npz"))) == 2
+    keep("b")
+    assert calls == ["a", "b", "c", "d"]
+    keep("c")
+    assert calls == ["a", "b", "c", "d", "c"]

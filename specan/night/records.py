@@ -27,7 +27,8 @@ def code_fingerprint() -> str:
     """Hash of specan's own code and data files: results computed by other code are not current."""
     root = Path(__file__).resolve().parents[1]   # the specan package, whatever subfolder this is in
     h = hashlib.sha256()
-    files = sorted(p for p in root.rglob("*") if p.suffix in (".py", ".ecsv", ".json") and p.is_file())
+    # (.fits: the library templates and tables in specan/data, which results depend on as on the code)
+    files = sorted(p for p in root.rglob("*") if p.suffix in (".py", ".ecsv", ".json", ".fits") and p.is_file())
     linelists = root.parent / "linelists"
     if linelists.is_dir():
         files += sorted(linelists.glob("*.ecsv"))
