@@ -132,7 +132,7 @@ def _code_and_libraries():
         import numpy
         import scipy
 
-        from .night.records import code_fingerprint
+        from .contents import code_fingerprint
 
         _CODE_KEY.append(f"{code_fingerprint()} numpy {numpy.__version__} scipy {scipy.__version__}")
     return _CODE_KEY[0]

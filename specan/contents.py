@@ -5,6 +5,7 @@ A night's spectra share a few wavelength grids and masks, spectrum after spectru
 what depends on those alone. Comparing an array's bytes with the few kept costs ~2 us for 4,000
 wavelengths, a cryptographic hash of them ~35 us (measured), and a stage asks several times a
 spectrum. Used by the lines and velocity stages alike (one copy, at the bottom of the imports).
+Also the fingerprint of specan's code and data, which what is kept across runs is keyed on.
 """
 
 from __future__ import annotations
@@ -14,7 +15,7 @@ import threading
 
 import numpy as np
 
-__all__ = ["CONTENTS_KEPT", "content_key", "kept", "forgettable", "forget_setups"]
+__all__ = ["CONTENTS_KEPT", "code_fingerprint", "content_key", "kept", "forgettable", "forget_setups"]
 
 #: How many distinct contents :func:`content_key` remembers (a night mixes a few set-ups; each
 #: spectrum brings a handful of arrays: wavelengths, masks, grids).
@@ -85,3 +86,22 @@ def forget_setups():
         for cache in _FORGETTABLE:
             (cache.cache_clear if hasattr(cache, "cache_clear") else cache.clear)()
         _CONTENTS.clear()   # numbers are never given twice: a later key cannot hit a dropped entry
+
+
+def code_fingerprint() -> str:
+    """Hash of specan's own code and data files: what was computed by other code is not current
+    (the night run's records, the kept velocity templates)."""
+    import hashlib
+    from pathlib import Path
+
+    root = Path(__file__).resolve().parent   # the specan package
+    h = hashlib.sha256()
+    # (.fits: the library templates and tables in specan/data, which results depend on as on the code)
+    files = sorted(p for p in root.rglob("*") if p.suffix in (".py", ".ecsv", ".json", ".fits") and p.is_file())
+    linelists = root.parent / "linelists"
+    if linelists.is_dir():
+        files += sorted(linelists.glob("*.ecsv"))
+    for p in files:
+        h.update(str(p.relative_to(p.parents[1])).encode())
+        h.update(p.read_bytes())
+    return h.hexdigest()

@@ -164,3 +164,20 @@ def test_kept_arrays_stay_within_their_room(tmp_path, monkeypatch):
     assert calls == ["a", "b", "c", "d"]
     keep("c")
     assert calls == ["a", "b", "c", "d", "c"]
+
+
+def test_the_code_fingerprint_covers_the_library_data(monkeypatch):
+    # what is kept across runs (records, template banks) is stale once specan/data's FITS files change
+    from pathlib import Path
+
+    from specan.contents import code_fingerprint
+
+    before = code_fingerprint()
+    real = Path.read_bytes
+
+    def changed(self):
+        data = real(self)
+        return data + b"changed" if self.name == "templates_miles.fits" else data
+
+    monkeypatch.setattr(Path, "read_bytes", changed)
+    assert code_fingerprint() != before

@@ -10,32 +10,17 @@ the hash of the run settings (which include specan's own code, see
 
 from __future__ import annotations
 
-import hashlib
 import json
 import os
 from pathlib import Path
 
+from ..contents import code_fingerprint
 from .files import atomic_write_bytes, inside
 from .inputs import path_id, safe_stem, sha256_file
 
 __all__ = ["RECORD_VERSION", "code_fingerprint", "content_hash", "record_key", "not_run_record", "RecordStore"]
 
 RECORD_VERSION = 2
-
-
-def code_fingerprint() -> str:
-    """Hash of specan's own code and data files: results computed by other code are not current."""
-    root = Path(__file__).resolve().parents[1]   # the specan package, whatever subfolder this is in
-    h = hashlib.sha256()
-    # (.fits: the library templates and tables in specan/data, which results depend on as on the code)
-    files = sorted(p for p in root.rglob("*") if p.suffix in (".py", ".ecsv", ".json", ".fits") and p.is_file())
-    linelists = root.parent / "linelists"
-    if linelists.is_dir():
-        files += sorted(linelists.glob("*.ecsv"))
-    for p in files:
-        h.update(str(p.relative_to(p.parents[1])).encode())
-        h.update(p.read_bytes())
-    return h.hexdigest()
 
 
 def content_hash(path) -> str:
