@@ -182,12 +182,12 @@ def _prune(folder, kind):
     import contextlib
 
     try:
-        files = [(p.stat().st_mtime, p.stat().st_size, p) for p in folder.glob(f"{kind}-*.npz")]
+        files = [(p, p.stat()) for p in folder.glob(f"{kind}-*.npz")]
     except OSError:   # one went meanwhile (another process pruned): next time
         return
     total = 0
-    for _, size, path in sorted(files, key=lambda f: f[0], reverse=True):
-        total += size
+    for path, st in sorted(files, key=lambda f: f[1].st_mtime, reverse=True):
+        total += st.st_size
         if total > ARRAYS_KEPT_MB * 1e6:
             with contextlib.suppress(OSError):
                 path.unlink()
