@@ -63,7 +63,7 @@ from .night import executors, heap
 from .night.catalogue import (CATALOGUE_FORMATS, CORE_COLUMNS, assemble_catalogue, catalogue_meta,  # noqa: F401
                               status_counts, write_catalogue)
 from .night.files import atomic_path, flush_to_disk  # noqa: F401 - atomic_path: part of this module's API
-from .night.inputs import SPECTRUM_SUFFIXES, collect_inputs, safe_stem, sha256_file  # noqa: F401
+from .night.inputs import SPECTRUM_SUFFIXES, InputList, collect_inputs, safe_stem, sha256_file  # noqa: F401
 from .night.records import RecordStore, code_fingerprint, content_hash, not_run_record, record_key
 from .night.row import (EMISSION_FLAG_LINES, LOW_SNR, PLOT_CHOICES, Recorder, final_info, info_columns,  # noqa: F401
                         lines_columns, plot_wanted)
@@ -532,16 +532,25 @@ def run(paths, out_dir, jobs=1, dask=None, force=False, formats=("ecsv",), overr
 def _run(paths, out, jobs, dask, force, formats, overrides, choice, named, report, progress, wanted,
          photometry, calibration, t0) -> RunSummary:
     """:func:`run`'s analysis and writing, with its arguments checked."""
+    import numpy as np
+
     # local workers start first: their start-up overlaps with finding the inputs and what is current
     with executors.local_workers(1 if dask else int(jobs), preload=WORKER_MODULES) as pool:
-        inputs = collect_inputs(paths)
+        # held compactly: a run keeps its inputs to the end, and 100,000 str took 12.9 MB
+        inputs = InputList(collect_inputs(paths))
         stages = _stage_status(wanted)
         settings = _run_settings(overrides, choice, named, wanted, photometry, calibration)
         settings_hash = _settings_hash(settings, stages, photometry, calibration)
         store = RecordStore(out)
         wants = functools.partial(plot_wanted, choice=choice, named=named)
-        todo = list(inputs) if force else [p for p in inputs if _current(store, p, settings_hash, wants) is None]
+        stale = np.ones(len(inputs), bool) if force else np.fromiter(
+            (_current(store, p, settings_hash, wants) is None for p in inputs), bool, count=len(inputs))
+        todo = inputs if stale.all() else inputs.take(np.flatnonzero(stale))
         reused = len(inputs) - len(todo)
+        del stale
+        # what finding the inputs freed goes back before the set-up is built over it: left, it
+        # kept a 100,000-input night ~6 MB above a 1,000-input one throughout (measured)
+        heap.give_back()
         with _progress_bar(len(inputs), reused, progress) as bar:
             analysed, interrupted = _analyse_rest(todo, settings, settings_hash, store,
                                                   functools.partial(executors.results, pool=pool), jobs, dask, bar)

@@ -44,10 +44,12 @@ def _canvas(width, height, cached_text=False):
 
 
 #: Texts whose pixels a process keeps (tick values, line and criterion names, axis labels; a
-#: night's figures share most of them). Past this many the store starts again.
+#: night's figures share most of them). Past this many the store starts again; so does the
+#: list of texts drawn only once so far.
 TEXT_CACHE_SIZE = 4000
 
 _TEXT_CLASSES = {}
+_NOT_KEPT = object()
 
 
 def _cached_text_canvas():
@@ -87,7 +89,7 @@ def _cached_text_canvas():
     class CachedTextRenderer(RendererAgg):
         def __init__(self, width, height, dpi):
             super().__init__(width, height, dpi)
-            self._texts, self._heights = {}, {}
+            self._texts, self._heights, self._seen_once = {}, {}, set()
 
         def draw_text(self, gc, x, y, s, prop, angle, ismath=False, mtext=None):
             if ismath or not np.isfinite(x) or not np.isfinite(y):
@@ -98,9 +100,9 @@ def _cached_text_canvas():
             key = (s, hash(prop), angle, gc.get_antialiased(), get_hinting_flag(),
                    getattr(mtext, "get_fontfeatures", lambda: None)(), getattr(mtext, "get_language", lambda: None)())
             x0, y0 = round(x), round(y)
-            entry = self._texts.get(key)
-            if entry is None:
-                # drawn once by Agg itself, at the origin moved to a whole pixel, with the glyphs kept
+            entry = self._texts.get(key, _NOT_KEPT)
+            if entry is _NOT_KEPT:
+                # drawn by Agg itself, at the origin moved to a whole pixel, with the glyphs kept
                 core, recorder = self._renderer, _Recorder(self._renderer)
                 self._renderer = recorder
                 try:
@@ -108,9 +110,20 @@ def _cached_text_canvas():
                 finally:
                     self._renderer = core
                 entry = _merged_glyphs(recorder.glyphs, x0, y0) if recorder.usable else False
-                if len(self._texts) >= TEXT_CACHE_SIZE:
-                    self._texts.clear()
-                self._texts[key] = entry
+                # Kept from a text's second drawing on: a figure's title (the object's and the
+                # file's names) is drawn once in a night, and keeping every title's pixels made a
+                # long night's memory grow by ~3 kB a figure until the store was cleared
+                # (tracemalloc on 2,600 spectra). Only the key's hash is noted the first time.
+                seen = hash(key)
+                if seen in self._seen_once:
+                    if len(self._texts) >= TEXT_CACHE_SIZE:
+                        self._texts.clear()
+                    self._texts[key] = entry
+                    self._seen_once.discard(seen)
+                else:
+                    if len(self._seen_once) >= TEXT_CACHE_SIZE:
+                        self._seen_once.clear()
+                    self._seen_once.add(seen)
                 if entry is False:
                     return
             elif entry is False:

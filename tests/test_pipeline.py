@@ -120,6 +120,22 @@ def test_collect_inputs_expands_folders_globs_and_keeps_missing(tmp_path):
     assert names[5:] == ["nope.fits", "none_*.fits"]
 
 
+def test_input_list_gives_back_every_path_exactly():
+    # A run holds its inputs as a few arrays (specan.night.inputs.InputList); every path must
+    # come back as the very string given: folders shared or not, relative, non-ASCII, a name
+    # os.listdir surrogate-escaped (bytes that are not UTF-8), a folder alone, an empty path.
+    paths = ["/night/a/star_01.fits", "star_02.fits", "/night/a/\udcffbad.fits", "/night/b/",
+             "/night/a/star_01.fits", "/nuit/étoile/ß.txt", "", "/night/a/star_03.fits"]
+    got = pipeline.InputList(paths)
+    assert len(got) == len(paths) and list(got) == paths
+    assert [got[i] for i in range(-len(paths), 0)] == paths and got[2:5] == paths[2:5]
+    picked = [7, 0, 6, 2, 2]
+    assert list(got.take(picked)) == [paths[i] for i in picked]
+    assert list(got.take([])) == [] and list(pipeline.InputList([])) == []
+    with pytest.raises(IndexError):
+        got[len(paths)]
+
+
 def test_safe_stem_is_plain_ascii():
     assert pipeline.safe_stem("../../etc/pass wd.fits") == "pass_wd"
     assert pipeline.safe_stem("a<b>&c 'd'.txt") == "a_b_c_d"

@@ -35,7 +35,10 @@ def __drawn(spec, table, kept_text):
     plots._draw_spectrum(ax, spec, table, normalized=True)
     ax.set_title("K3 III, S/N 100", y=1.0)
     fig.canvas.draw()
-    fig.canvas.draw()   # the second time from the kept pixels
+    fig.canvas.draw()   # the second drawing keeps the texts' pixels,
+    fig.canvas.draw()   # the third draws from them
+    if kept_text:
+        assert len(fig.canvas.get_renderer()._texts) > 30
     return fig, np.asarray(fig.canvas.buffer_rgba())[:, :, :3].astype(int)
 
 
@@ -71,6 +74,31 @@ def test_kept_text_pixels_change_nothing_but_the_texts_by_a_subpixel():
         rows_at, cols_at = np.indices(ink[1].shape)
         centres = [np.array([(w * rows_at).sum(), (w * cols_at).sum()]) / w.sum() for w in ink]
         assert np.all(np.abs(centres[0] - centres[1]) <= 1.0), t.get_text()
+
+
+def test_texts_drawn_once_are_not_kept_and_the_store_is_bounded(monkeypatch):
+    # A night's figures each have a title of their own; keeping those pixels grew a long
+    # night's memory (~3 kB a figure, tracemalloc). A text is kept from its second drawing on,
+    # the same pixels either way, and the store never passes TEXT_CACHE_SIZE texts.
+    monkeypatch.setattr(plots, "TEXT_CACHE_SIZE", 5)
+    fig = plots._canvas(4, 2, cached_text=True)
+    ax = fig.add_subplot()
+    ax.set_axis_off()
+    renderer = fig.canvas.get_renderer()
+    pictures = []
+    for title in ["star 1", "star 2", "star 3", "star 2", "star 2"]:
+        ax.set_title(title)
+        fig.canvas.draw()
+        pictures.append(np.asarray(fig.canvas.buffer_rgba()).copy())
+    kept = {key[0] for key in renderer._texts}
+    assert kept == {"star 2"}                                    # drawn thrice: kept; the others once
+    assert np.array_equal(pictures[1], pictures[3]) and np.array_equal(pictures[1], pictures[4])
+    for i in range(8):                                           # eight more texts kept: past the bound
+        for _ in range(2):
+            ax.set_title(f"again {i}")
+            fig.canvas.draw()
+    assert {key[0] for key in renderer._texts} >= {"again 7"}
+    assert len(renderer._texts) <= 5 and len(renderer._seen_once) <= 5
 
 
 def _analysed(sptype, lumclass, seed, binary=False):

@@ -2,12 +2,16 @@
 
 from __future__ import annotations
 
+import array
 import glob
 import hashlib
 import os
 import re
+from collections.abc import Sequence
 
-__all__ = ["SPECTRUM_SUFFIXES", "collect_inputs", "sha256_file", "path_id", "safe_stem"]
+import numpy as np
+
+__all__ = ["SPECTRUM_SUFFIXES", "InputList", "collect_inputs", "sha256_file", "path_id", "safe_stem"]
 
 #: File suffixes taken from a folder given as input (a folder also holds notes,
 #: tables and plots, which are not spectra). Files named explicitly or matched
@@ -44,6 +48,77 @@ def collect_inputs(paths) -> list:
                 seen.add(key)
                 out.append(str(found))
     return out
+
+
+class InputList(Sequence):
+    """A night's input paths, held as a few arrays rather than one string object each.
+
+    A run keeps its inputs from start to end (what to analyse, then the catalogue's rows in
+    their order). As a list of str, 100,000 paths took 12.9 MB of the process (measured),
+    a quarter of what a 100,000-spectrum night needed beyond a 1,000-spectrum one; here
+    they take ~30 bytes each: the folder part once per folder, the names in one bytes
+    object. Items come back as the exact strings given (any str, surrogates included).
+
+    Parameters
+    ----------
+    paths : iterable of str
+        The paths, in order.
+    """
+
+    # UTF-8 with surrogates passed through: a two-way map for every str, including the
+    # surrogate-escaped names os.listdir gives for bytes that are not UTF-8
+    _ENCODING = ("utf-8", "surrogatepass")
+
+    def __init__(self, paths=()):
+        # built without a Python object kept per path on the way: freed, 100,000 small
+        # objects left the process ~13 MB larger for the rest of the run (measured)
+        heads, head_of, names = {}, array.array("i"), []
+        for p in paths:
+            p = os.fspath(p)
+            cut = max(p.rfind(os.sep), p.rfind(os.altsep) if os.altsep else -1) + 1
+            head_of.append(heads.setdefault(p[:cut], len(heads)))
+            names.append(p[cut:])
+        # one encoding of all the names, cut at the NULs between them (no path holds a NUL)
+        self._names = "\0".join(names).encode(*self._ENCODING)
+        del names
+        self._heads = list(heads)
+        self._head_of = np.frombuffer(head_of, np.int32).copy()
+        nul = np.flatnonzero(np.frombuffer(self._names, np.uint8) == 0)
+        self._starts = np.concatenate([[0], nul + 1]).astype(np.int64) if len(self._head_of) else np.zeros(0, np.int64)
+        self._ends = np.concatenate([nul, [len(self._names)]]).astype(np.int64) if len(self._head_of) else self._starts
+
+    def __len__(self):
+        return len(self._head_of)
+
+    def __getitem__(self, index):
+        if isinstance(index, slice):
+            return [self[i] for i in range(*index.indices(len(self)))]
+        i = range(len(self))[index]    # IndexError, negative indices, as a list does
+        name = self._names[int(self._starts[i]):int(self._ends[i])].decode(*self._ENCODING)
+        return self._heads[self._head_of[i]] + name
+
+    def __iter__(self):
+        return (self[i] for i in range(len(self)))
+
+    def take(self, indices):
+        """An InputList of the items at ``indices`` (in that order), made with array operations."""
+        idx = np.asarray(indices, np.int64).reshape(-1)
+        new = InputList()
+        new._heads = self._heads
+        new._head_of = self._head_of[idx]
+        starts, ends = self._starts[idx], self._ends[idx]
+        lengths = ends - starts
+        # each kept name and the NUL after it, copied from the old bytes in one gather
+        spans = lengths + 1
+        new._starts = np.concatenate([[0], np.cumsum(spans)[:-1]]).astype(np.int64) if len(idx) else starts
+        new._ends = new._starts + lengths
+        source = np.repeat(starts - new._starts, spans) + np.arange(int(spans.sum()))
+        old = np.frombuffer(self._names + b"\0", np.uint8)   # a NUL after the last name too
+        new._names = old[np.minimum(source, len(old) - 1)].tobytes()
+        return new
+
+    def __repr__(self):
+        return f"InputList({len(self)} paths)"
 
 
 def _expand(p) -> list:
