@@ -48,14 +48,21 @@ def _trim():
     return trim
 
 
-def give_back() -> bool:
+def give_back(collect=True) -> bool:
     """Collect unreachable cycles, then return the allocator's free memory to the system.
+
+    Parameters
+    ----------
+    collect : bool
+        Run the full collection first; False where what was freed held no cycles (a full
+        collection before the libraries' objects are set aside takes ~0.1 s).
 
     Returns False where the memory cannot be handed back (no glibc): the collection is done anyway.
     """
     # Cycles (tables, units and spectra refer to one another) wait for the oldest generation's
     # rare collection; until they are collected their memory is not free to hand back.
-    gc.collect()
+    if collect:
+        gc.collect()
     trim = _trim()
     if trim is None:
         return False
