@@ -93,6 +93,13 @@ STAGES = (
 #: What a local worker imports as it starts (:func:`specan.night.executors.local_workers`): the stages, and
 #: specutils, which the reader imports on first use (1.1 s of a worker's start, measured; it brings matplotlib).
 WORKER_MODULES = (__name__,) + tuple(module for _, module, _ in STAGES) + ("specutils",)
+#: What drawing a figure imports: 0.5-0.7 s, matplotlib's figure and Agg canvas (measured). Workers
+#: that will draw import it as they start (forked ones inherit it from the run's process, imported
+#: once there), rather than each on its first figure.
+DRAWING_MODULES = ("specan.plots", "matplotlib.figure", "matplotlib.backends.backend_agg")
+#: What writing the night diagram and the report imports beyond the analysis; with workers, the
+#: run's process imports it while they analyse, instead of after them.
+PRODUCT_MODULES = ("specan.hrdiagram", "specan.report") + DRAWING_MODULES
 
 # --------------------------------------------------------------------------- stages
 
@@ -535,7 +542,9 @@ def _run(paths, out, jobs, dask, force, formats, overrides, choice, named, repor
     import numpy as np
 
     # local workers start first: their start-up overlaps with finding the inputs and what is current
-    with executors.local_workers(1 if dask else int(jobs), preload=WORKER_MODULES) as pool:
+    draws = choice != "none" or bool(named)
+    preload = WORKER_MODULES + (DRAWING_MODULES if draws else ())
+    with executors.local_workers(1 if dask else int(jobs), preload=preload) as pool:
         # held compactly: a run keeps its inputs to the end, and 100,000 str took 12.9 MB
         inputs = InputList(collect_inputs(paths))
         stages = _stage_status(wanted)
@@ -553,8 +562,9 @@ def _run(paths, out, jobs, dask, force, formats, overrides, choice, named, repor
         # a 1,000-input one throughout (measured)
         heap.give_back(collect=False)
         with _progress_bar(len(inputs), reused, progress) as bar:
-            analysed, interrupted = _analyse_rest(todo, settings, settings_hash, store,
-                                                  functools.partial(executors.results, pool=pool), jobs, dask, bar)
+            meanwhile = functools.partial(executors.import_modules, PRODUCT_MODULES) if report else None
+            executor = functools.partial(executors.results, pool=pool, meanwhile=meanwhile)
+            analysed, interrupted = _analyse_rest(todo, settings, settings_hash, store, executor, jobs, dask, bar)
         del todo
     # The writing needs no templates or calibrations: they and the analysis's freed memory go back
     # first, so the writing fits under the analysis's peak however many rows it writes.

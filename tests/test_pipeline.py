@@ -967,6 +967,64 @@ def test_workers_started_early_take_the_work_and_stop_with_their_owner(monkeypat
     assert "no_such_module_here" not in sys.modules
 
 
+def test_caller_prepares_while_workers_work(tmp_path):
+    # With workers, `meanwhile` runs once, in the calling process, when the workers have the work
+    # already: the run imports there what its diagram and report need, while the spectra are being
+    # analysed rather than after. It is not called when the work runs in this process, and what it
+    # raises does not stop the results.
+    calls = []
+
+    def meanwhile():
+        calls.append(os.getpid())
+        # a worker has started on its chunk: the work was handed out before this was called
+        deadline = time.monotonic() + 60
+        while not any(tmp_path.iterdir()) and time.monotonic() < deadline:
+            time.sleep(0.01)
+        calls.append(any(tmp_path.iterdir()))
+
+    marks = [str(tmp_path / f"m{i}") for i in range(6)]
+    got = executors.results_local(_marking, marks, 0.1, 2, meanwhile=meanwhile)
+    assert sorted(p for p, _ in got) == sorted(marks)
+    assert calls == [os.getpid(), True]
+
+    calls.clear()
+    assert len(list(executors.results_local(_marking, [str(tmp_path / "x")], 0.0, 1, meanwhile=meanwhile))) == 1
+    assert calls == []
+
+    def failing():
+        raise RuntimeError("cannot prepare")
+
+    got = list(executors.results_local(_marking, [str(tmp_path / f"f{i}") for i in range(4)], 0.0, 2,
+                                       meanwhile=failing))
+    assert len(got) == 4
+
+
+def test_workers_that_will_draw_start_with_the_drawing_modules(tmp_path, fixed_code, monkeypatch):
+    # Workers that will draw figures import matplotlib as they start (inherited from the run's
+    # process when forked), not each at its first figure; workers that draw nothing do not.
+    started = []
+    real = executors.local_workers
+
+    def spy(jobs, preload=()):
+        started.append(tuple(preload))
+        return real(jobs, preload=preload)
+
+    monkeypatch.setattr(executors, "local_workers", spy)
+    night = plain_night(tmp_path / "night", 2)
+    pipeline.run([night], tmp_path / "none", jobs=2, stages=BASIC, plots="none")
+    pipeline.run([night], tmp_path / "flagged", jobs=2, stages=BASIC, plots="flagged")
+    pipeline.run([night], tmp_path / "named", jobs=2, stages=BASIC, plots="none", plot_for=["S1"])
+    drawing = set(pipeline.DRAWING_MODULES)
+    assert [drawing <= set(p) for p in started] == [False, True, True]
+    assert all(set(pipeline.WORKER_MODULES) <= set(p) for p in started)
+
+
+def _marking(path, seconds):
+    open(path, "w").close()
+    time.sleep(seconds)
+    return path
+
+
 def _imported(name, _settings):
     import sys
 

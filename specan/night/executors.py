@@ -32,7 +32,7 @@ from . import heap
 from .heap import GiveBackEvery
 
 __all__ = ["results", "results_local", "local_workers", "results_dask", "sigterm_as_interrupt", "chunk_size", "run_chunk",
-           "THREAD_VARIABLES", "single_threaded", "start_method", "START_METHOD_VARIABLE"]
+           "THREAD_VARIABLES", "single_threaded", "start_method", "START_METHOD_VARIABLE", "import_modules"]
 
 #: Environment variables that set the thread pools of the numerical libraries; 1 in every worker.
 THREAD_VARIABLES = ("OMP_NUM_THREADS", "OPENBLAS_NUM_THREADS", "MKL_NUM_THREADS", "BLIS_NUM_THREADS",
@@ -83,7 +83,23 @@ def run_chunk(func, paths, settings):
     return done
 
 
-def results(func, todo, settings, jobs=1, dask=None, pool=None):
+def import_modules(names):
+    """Import each of ``names`` that can be; one that cannot is left for its user to report."""
+    import importlib
+
+    for name in names:
+        with contextlib.suppress(Exception):  # its user imports it again, and says what failed
+            importlib.import_module(name)
+
+
+def _meanwhile(task):
+    """Run ``task()`` (if any) while other processes work; what it raises is left for later."""
+    if task is not None:
+        with contextlib.suppress(Exception):  # the work it prepares for does it again, and reports
+            task()
+
+
+def results(func, todo, settings, jobs=1, dask=None, pool=None, meanwhile=None):
     """Yield ``(path, func(path, settings))`` for each input, on dask when an address is given.
 
     Parameters
@@ -100,6 +116,11 @@ def results(func, todo, settings, jobs=1, dask=None, pool=None):
         Address of a dask.distributed scheduler.
     pool : multiprocessing.pool.Pool, optional
         Local workers started already (:func:`local_workers`); not used with ``dask``.
+    meanwhile : callable, optional
+        Called once, with no arguments, in this process once other processes (local workers or
+        dask's) have the work, before the first result is taken: for what this process will need
+        after the analysis (imports), done while it would otherwise wait. Not called when the work
+        runs in this process. What it raises is ignored.
 
     Returns
     -------
@@ -107,8 +128,8 @@ def results(func, todo, settings, jobs=1, dask=None, pool=None):
         Of ``(path, result)`` in the order they finish (a chunk at a time); ``close()`` it to stop early.
     """
     if dask:
-        return results_dask(func, todo, settings, dask)
-    return results_local(func, todo, settings, max(1, int(jobs)), pool=pool)
+        return results_dask(func, todo, settings, dask, meanwhile=meanwhile)
+    return results_local(func, todo, settings, max(1, int(jobs)), pool=pool, meanwhile=meanwhile)
 
 
 def _worker_init(preload=()):
@@ -119,14 +140,8 @@ def _worker_init(preload=()):
     # Plots are drawn without pyplot; make sure no GUI backend is ever picked.
     os.environ.setdefault("MPLBACKEND", "Agg")
     # the modules the work needs, imported now, while the parent is still finding out what to do
-    import importlib
-
     with heap.collector_paused():
-        for name in preload:
-            try:
-                importlib.import_module(name)
-            except Exception:  # noqa: BLE001, S110 - a stage that cannot be imported is reported by the parent
-                pass
+        import_modules(preload)   # (a stage that cannot be imported is reported by the parent)
         _warm_up(preload)
         # what the modules hold lives as long as the worker: kept out of every full collection's visits
         # (a forked worker's were set aside by the parent before the fork, which this then leaves alone)
@@ -249,7 +264,6 @@ def start_method() -> str:
 
 
 def _start_pool(jobs, preload=()):
-    import importlib
     import tempfile
 
     _refuse_start_in_worker()
@@ -261,9 +275,7 @@ def _start_pool(jobs, preload=()):
         # heap.long_lived_set_aside): every worker inherits them set aside, and its collections then
         # neither visit them nor copy the pages they share with this process; given back in _stop_pool
         with heap.collector_paused():
-            for name in preload:
-                with contextlib.suppress(Exception):  # a stage that cannot be imported is reported by the parent
-                    importlib.import_module(name)
+            import_modules(preload)   # (a stage that cannot be imported is reported by the parent)
             _warm_up(preload)
             aside.enter_context(heap.long_lived_set_aside())
     ctx = multiprocessing.get_context(method)
@@ -314,11 +326,12 @@ def local_workers(jobs, preload=()):
         _stop_pool(pool)
 
 
-def results_local(func, todo, settings, jobs, pool=None):
+def results_local(func, todo, settings, jobs, pool=None, meanwhile=None):
     """Yield (path, result) for each input, in this process or in ``jobs`` local processes.
 
     ``pool``: workers started already (:func:`local_workers`), used instead of starting new ones
-    and left running for their owner to stop.
+    and left running for their owner to stop. ``meanwhile``: see :func:`results` (called only when
+    the work runs in other processes).
     """
     jobs = min(jobs, len(todo))
     if jobs <= 1:  # also when there is nothing (left) to do: no workers to start
@@ -341,6 +354,8 @@ def results_local(func, todo, settings, jobs, pool=None):
     size = chunk_size(len(todo), jobs)
     try:
         chunks = pool.imap_unordered(_task, ((func, c, settings) for c in _chunks(todo, size, jobs)))
+        # (the pool hands the chunks out from its own thread: the workers have them already)
+        _meanwhile(meanwhile)
         while True:
             try:
                 chunk = chunks.next(timeout=ALARM_POLL)
@@ -360,8 +375,11 @@ def results_local(func, todo, settings, jobs, pool=None):
             _stop_pool(pool)
 
 
-def results_dask(func, todo, settings, address):
-    """Yield (path, result) for each input from a dask.distributed cluster, a chunk per task."""
+def results_dask(func, todo, settings, address, meanwhile=None):
+    """Yield (path, result) for each input from a dask.distributed cluster, a chunk per task.
+
+    ``meanwhile``: see :func:`results`.
+    """
     from distributed import Client, as_completed
 
     try:
@@ -373,6 +391,7 @@ def results_dask(func, todo, settings, address):
         workers = max(1, sum(client.nthreads().values()))
         chunks = list(_chunks(todo, chunk_size(len(todo), workers), workers))
         futures = [client.submit(run_chunk, func, c, settings, pure=False) for c in chunks]
+        _meanwhile(meanwhile)
         try:
             for fut in as_completed(futures, loop=client.loop):
                 chunk = fut.result()
