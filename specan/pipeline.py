@@ -570,7 +570,8 @@ def _run(paths, out, jobs, dask, force, formats, overrides, choice, named, repor
     # first, so the writing fits under the analysis's peak however many rows it writes.
     forget_setups()
     heap.give_back()
-    night = _write_night(inputs, store, settings_hash, out, formats, stages, settings, report, interrupted)
+    night = _write_night(inputs, store, settings_hash, out, formats, stages, settings, report, interrupted,
+                         draw_aside=not dask and int(jobs) > 1)
     flush_to_disk()
     summary = RunSummary(outputs=night["outputs"], counts=night["counts"], reused=reused, stages=stages,
                          interrupted=interrupted, seconds=time.perf_counter() - t0, notes=night["notes"],
@@ -640,8 +641,13 @@ def _progress_bar(total, done, progress):
     """A progress bar over the inputs with the rate and the time left (by default only on a terminal)."""
     from tqdm import tqdm
 
+    class Bar(tqdm):
+        # No monitor thread (tqdm's, which would outlive the bar): the bar is advanced once a spectrum
+        # and needs none, and with no other thread left the run may fork (DiagramAside) safely.
+        monitor_interval = 0
+
     show = sys.stderr.isatty() if progress is None else bool(progress)
-    bar = tqdm(total=total, initial=done, disable=not show, unit="spectrum", desc="specan run", file=sys.stderr,
+    bar = Bar(total=total, initial=done, disable=not show, unit="spectrum", desc="specan run", file=sys.stderr,
                smoothing=0.05, bar_format="{desc}: {percentage:3.0f}%|{bar}| {n_fmt}/{total_fmt} "
                                          "[{elapsed} elapsed, {remaining} left, {rate_fmt}]")
     try:
@@ -748,12 +754,15 @@ class _Tally:
         return sorted(self.flags.items(), key=lambda t: (-t[1], t[0]))
 
 
-def _write_night(inputs, store, settings_hash, out, formats, stages, settings, report, interrupted) -> dict:
+def _write_night(inputs, store, settings_hash, out, formats, stages, settings, report, interrupted,
+                 draw_aside=False) -> dict:
     """Catalogue in each format, then the night diagram and report, from the stored records.
 
     Two passes over the records: the first learns the columns and counts, the second writes
     the rows a chunk at a time (catalogue, report rows, diagram points); memory holds one
-    chunk, not the night.
+    chunk, not the night. ``draw_aside`` (a run given several processes): the diagram is drawn
+    by a copy of this process (:class:`specan.night.products.DiagramAside`) during the second
+    pass, which gathers its stars from the records itself.
     """
     import numpy as np
 
@@ -771,9 +780,25 @@ def _write_night(inputs, store, settings_hash, out, formats, stages, settings, r
     with executors.sigterm_as_interrupt():
         night_rows = None
         if report:
-            from .night.products import NightRows
+            from .night.products import DiagramAside, NightRows
 
-            night_rows = NightRows(out, schema.table([]))
+            def gather():
+                # the stars of the diagram, gathered as the second pass below gathers them
+                from .hrdiagram import HRPoints
+
+                points = HRPoints()
+                for chunk in _chunked(_night_records(inputs, store, settings_hash, interrupted, present),
+                                      WRITE_CHUNK):
+                    points.add(schema.table([r for _, r in chunk]))
+                return points
+
+            aside = DiagramAside.start(out, gather) if draw_aside else None
+            try:
+                night_rows = NightRows(out, schema.table([]), aside=aside)
+            except BaseException:
+                if aside is not None:
+                    aside.stop()
+                raise
         try:
             with CatalogueWriter(schema, out, formats, meta) as writer:
                 for chunk in _chunked(_night_records(inputs, store, settings_hash, interrupted, present),

@@ -435,6 +435,11 @@ def test_jobs_and_dask_give_the_same_catalogue(tmp_path, fixed_code):
         assert by_dask[name] == ref[name], name
     for name in one.colnames:
         assert one[name].unit == two[name].unit == on_dask[name].unit
+    # the forked two-job run drew its diagram in a copy of itself (DiagramAside), the spawned one and
+    # the one-job run here: the same image to the byte
+    diagram = (tmp_path / "one" / "night_diagram.png").read_bytes()
+    assert (tmp_path / "two" / "night_diagram.png").read_bytes() == diagram
+    assert (tmp_path / "spawned" / "night_diagram.png").read_bytes() == diagram
 
 
 
@@ -1017,6 +1022,72 @@ def test_workers_that_will_draw_start_with_the_drawing_modules(tmp_path, fixed_c
     drawing = set(pipeline.DRAWING_MODULES)
     assert [drawing <= set(p) for p in started] == [False, True, True]
     assert all(set(pipeline.WORKER_MODULES) <= set(p) for p in started)
+
+
+def _stars():
+    from specan.hrdiagram import HRPoints
+
+    points = HRPoints()
+    points.add([{"object": "TORDO-A", "status": "ok", "teff_k": 5772.0, "teff_err_k": 80.0, "m_v_abs": 4.8,
+                 "m_v_abs_err": 0.2},
+                {"object": "TORDO-B", "status": "ok", "code": 25.0, "lumclass": "III"}])
+    return points
+
+
+def test_diagram_drawn_aside_is_the_diagram_drawn_here(tmp_path):
+    # A run with workers draws its night diagram in a forked copy of itself while it writes the
+    # catalogue: the same file as drawn in this process; a failure there comes back as the note
+    # a failure here gives; where workers are not forked (spawn), or a thread runs, nothing is
+    # forked here either (the caller draws).
+    import threading
+
+    from specan.night import products
+
+    here_dir, aside_dir = tmp_path / "here", tmp_path / "aside"
+    here_path, here_note = products._diagram(here_dir, _stars())
+    assert here_path.is_file()
+    with pytest.MonkeyPatch.context() as mp:
+        mp.setenv(executors.START_METHOD_VARIABLE, "fork")
+        aside = products.DiagramAside.start(aside_dir, _stars)
+        assert aside is not None
+        path, note = aside.result()
+        assert (path, note) == (aside_dir / "night_diagram.png", here_note)
+        assert path.read_bytes() == here_path.read_bytes()
+
+        def failing():
+            raise RuntimeError("records unreadable")
+
+        assert products.DiagramAside.start(tmp_path / "f", failing).result() == (
+            None, "night diagram not drawn: RuntimeError: records unreadable")
+        assert not (tmp_path / "f" / "night_diagram.png").exists()
+
+        slow = products.DiagramAside.start(tmp_path / "slow", lambda: time.sleep(60))
+        slow.stop()
+        assert not slow._process.is_alive()
+
+        mp.setenv(executors.START_METHOD_VARIABLE, "spawn")
+        assert products.DiagramAside.start(tmp_path / "s", _stars) is None
+        # left to choose, nothing is forked while another thread runs
+        mp.delenv(executors.START_METHOD_VARIABLE)
+        stop = threading.Event()
+        waiting = threading.Thread(target=stop.wait)
+        waiting.start()
+        try:
+            assert products.DiagramAside.start(tmp_path / "t", _stars) is None
+        finally:
+            stop.set()
+            waiting.join()
+
+
+def test_progress_bar_leaves_no_thread_behind(tmp_path, fixed_code):
+    # The bar runs without tqdm's monitor thread (which outlives its bar): after a run the process
+    # has the threads it had, so that the run can fork its diagram's copy safely.
+    import threading
+
+    before = threading.active_count()
+    night = plain_night(tmp_path / "night", 2)
+    pipeline.run([night], tmp_path / "out", stages=BASIC, plots="none", progress=True)
+    assert threading.active_count() == before
 
 
 def _marking(path, seconds):
