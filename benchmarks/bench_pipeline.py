@@ -32,7 +32,10 @@ with its own arc, where every spectrum builds its pixel set-up anew. Then:
   case K times, the job counts by turns (1, 2, then 2, 1), and gives each
   round's ratio of two jobs to one, their median and range: this shared
   machine's speed moves by up to a third within minutes, as much as the
-  ratio's margin, so one pair is one draw of it.
+  ratio's margin, so one pair is one draw of it; ``--against DIR`` runs
+  every case with DIR's specan too (e.g. ``git archive`` of an earlier
+  commit, its numba kernels compiled once by a run of its own first), the
+  two checkouts' runs by turns, and gives each checkout's ratios.
 * ``--figures K``: analyses K of them in this process, keeps what their
   figures are drawn from, then draws every figure again and prints the CPU ms
   of one figure and its parts (the artists, the rendering, the PNG, the
@@ -60,6 +63,7 @@ Usage::
     python benchmarks/bench_pipeline.py --profile 40
     python benchmarks/bench_pipeline.py --counts 1000 --jobs 1,2 --plots none,flagged
     python benchmarks/bench_pipeline.py --counts 1000 --jobs 1,2 --plots none --rounds 6
+    python benchmarks/bench_pipeline.py --counts 1000 --rounds 3 --against /tmp/before
     python benchmarks/bench_pipeline.py --counts 1000,100000 --jobs 1 --plots none --stages read,prepare
     python benchmarks/bench_pipeline.py --overhead 300 --plots none,flagged [--compare-with /tmp/before]
     python benchmarks/bench_pipeline.py --figures 30 [--compare-with /tmp/before]
@@ -493,7 +497,8 @@ def throughput(args, work):
     # else runs on the machine: equal figures for 1 and 2 jobs mean that 2 free cores give 2x
     print(f"{'spectra':>8} {'jobs':>5} {'plots':>8} {'seconds':>9} {'spectra/s':>10} {'cpu ms':>7} {'peak MB':>8} "
           f"{'drawn':>6} {'rerun s':>8} {'failed':>7}")
-    rates = {}   # (count, jobs, plots) -> [(spectra/s, CPU s a spectrum), ...], one per round
+    rates = {}   # (count, jobs, plots, checkout) -> [(spectra/s, CPU s a spectrum), ...], one per round
+    checkouts = [("this", None)] + ([("against", Path(args.against))] if args.against else [])
     for count in counts:
         folder = work / f"spectra_{count}{own}"
         if not folder.exists():
@@ -504,37 +509,45 @@ def throughput(args, work):
         for plots in plot_list:
             for round_ in range(args.rounds):
                 # the job counts by turns (1, 2 then 2, 1, ...): a drift of the machine's speed through the
-                # rounds then moves both sides of the ratio alike instead of always the later one
-                for jobs in (jobs_list if round_ % 2 == 0 else jobs_list[::-1]):
+                # rounds then moves both sides of the ratio alike instead of always the later one; with
+                # --against, the checkouts by turns too (this 1, 2, that 2, 1; then the reverse)
+                order = [(name, path, jobs) for i, (name, path) in enumerate(checkouts)
+                         for jobs in (jobs_list if (round_ + i) % 2 == 0 else jobs_list[::-1])]
+                for name, path, jobs in (order if round_ % 2 == 0 else order[::-1]):
                     extra = (["--plots", plots, "--calibration", str(CALIBRATION)]
                              + (["--stages", args.stages] if args.stages else []))
-                    out = work / f"out_{count}_{jobs}_{plots}{own}"
+                    out = work / f"out_{count}_{jobs}_{plots}{own}_{name}"
                     shutil.rmtree(out, ignore_errors=True)  # the first run must compute everything
-                    seconds, peak, failed, cpu = run_once(folder, out, jobs, extra)
-                    again = run_once(folder, out, jobs, extra)[0] if args.rerun else float("nan")
+                    seconds, peak, failed, cpu = run_once(folder, out, jobs, extra, pythonpath=path)
+                    again = run_once(folder, out, jobs, extra, pythonpath=path)[0] if args.rerun else float("nan")
                     print(f"{count:>8} {jobs:>5} {plots:>8} {seconds:>9.1f} {count / seconds:>10.2f} "
                           f"{1e3 * cpu / count:>7.0f} {peak:>8.0f} "
                           f"{drawn_share(out):>6.1%} {again:>8.1f} {failed:>7}   load {os.getloadavg()[0]:.1f}"
-                          + (f"   round {round_ + 1}" if args.rounds > 1 else ""), flush=True)
-                    rates.setdefault((count, jobs, plots), []).append((count / seconds, cpu / count))
+                          + (f"   round {round_ + 1}" if args.rounds > 1 else "")
+                          + (f"   {path or 'this checkout'}" if args.against else ""), flush=True)
+                    rates.setdefault((count, jobs, plots, name), []).append((count / seconds, cpu / count))
                     if not args.keep:
                         shutil.rmtree(out, ignore_errors=True)
     # the issue's targets (issue 12), from the figures above
-    for count in counts:
-        for plots, target in (("none", 20.0), ("flagged", 15.0)):
-            if (count, 1, plots) in rates:
-                one = [r for r, _ in rates[count, 1, plots]]
-                print(f"# {count} spectra, one job, figures {plots}: {_spread(one)} spectra/s against >= {target:.0f}: "
-                      f"{'met' if np.median(one) >= target else 'not met'}" + (" (median)" if len(one) > 1 else ""))
-            if (count, 1, plots) in rates and (count, 2, plots) in rates:
-                # each round's ratio from its own pair of runs, made minutes apart
-                pairs = list(zip(rates[count, 1, plots], rates[count, 2, plots]))
-                wall = [r2 / r1 for (r1, _), (r2, _) in pairs]
-                cpu = [c2 / c1 for (_, c1), (_, c2) in pairs]
-                print(f"# {count} spectra, figures {plots}: 2 jobs / 1 job = {_spread(wall)}x wall clock (>= 1.8: "
-                      f"{'met' if np.median(wall) >= 1.8 else 'not met'}" + (" by the median of the rounds; "
-                      f"{sum(w >= 1.8 for w in wall)} of {len(wall)} rounds" if len(wall) > 1 else "")
-                      + f"); CPU per spectrum {_spread(cpu)}x")
+    for name, path in checkouts:
+        who = f" [{path or 'this checkout'}]" if args.against else ""
+        for count in counts:
+            for plots, target in (("none", 20.0), ("flagged", 15.0)):
+                if (count, 1, plots, name) in rates:
+                    one = [r for r, _ in rates[count, 1, plots, name]]
+                    print(f"# {count} spectra, one job, figures {plots}: {_spread(one)} spectra/s against >= "
+                          f"{target:.0f}: {'met' if np.median(one) >= target else 'not met'}"
+                          + (" (median)" if len(one) > 1 else "") + who)
+                if (count, 1, plots, name) in rates and (count, 2, plots, name) in rates:
+                    # each round's ratio from its own pair of runs, made minutes apart
+                    pairs = list(zip(rates[count, 1, plots, name], rates[count, 2, plots, name]))
+                    wall = [r2 / r1 for (r1, _), (r2, _) in pairs]
+                    cpu = [c2 / c1 for (_, c1), (_, c2) in pairs]
+                    print(f"# {count} spectra, figures {plots}: 2 jobs / 1 job = {_spread(wall)}x wall clock "
+                          f"(>= 1.8: {'met' if np.median(wall) >= 1.8 else 'not met'}"
+                          + (f" by the median of the rounds; {sum(w >= 1.8 for w in wall)} of {len(wall)} rounds"
+                             if len(wall) > 1 else "")
+                          + f"); CPU per spectrum {_spread(cpu)}x" + who)
 
 
 def _spread(values):
@@ -593,6 +606,8 @@ def main(argv=None):
     parser.add_argument("--overhead", type=int, default=0, metavar="N",
                         help="the run's own cost outside the stages on N spectra")
     parser.add_argument("--workdir", type=Path, default=None, help="where to write spectra and outputs")
+    parser.add_argument("--against", default=None, metavar="DIR",
+                        help="whole runs: the same cases with DIR's specan too, by turns with this checkout's")
     parser.add_argument("--own-solutions", action="store_true",
                         help="each spectrum on its own wavelength solution (throughput runs)")
     args = parser.parse_args(argv)
