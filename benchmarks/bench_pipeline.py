@@ -35,7 +35,7 @@ with its own arc, where every spectrum builds its pixel set-up anew. Then:
   ratio's margin, so one pair is one draw of it; ``--against DIR`` runs
   every case with DIR's specan too (e.g. ``git archive`` of an earlier
   commit, its numba kernels compiled once by a run of its own first), the
-  two checkouts' runs by turns, and gives each checkout's ratios.
+  two checkouts' runs by turns, and gives each checkout's ratios;
 * ``--figures K``: analyses K of them in this process, keeps what their
   figures are drawn from, then draws every figure again and prints the CPU ms
   of one figure and its parts (the artists, the rendering, the PNG, the
@@ -54,6 +54,11 @@ with its own arc, where every spectrum builds its pixel set-up anew. Then:
 * ``--figures K --compare-with DIR``: the same figures drawn by this
   checkout's plots module and by DIR's, loaded side by side in this process
   and alternated, with the CPU ms of each and whether their PNGs are the same;
+* ``--ceiling K``: analyses K spectra (plus one, untimed, for the set-up) in
+  one process, then in two processes at once, ``--rounds`` times: the ratio
+  of two jobs to one that this machine's two cores allow when nothing has to
+  be done once (no start-up, catalogue or report), the bound the whole
+  runs' ratio approaches with many spectra;
 * ``--compare-with DIR``: runs the demo night (``sample_spectra``) with this
   code and with the specan of another checkout (e.g. the slow path before the
   night run was made fast) and compares every catalogue column both have.
@@ -64,6 +69,7 @@ Usage::
     python benchmarks/bench_pipeline.py --counts 1000 --jobs 1,2 --plots none,flagged
     python benchmarks/bench_pipeline.py --counts 1000 --jobs 1,2 --plots none --rounds 6
     python benchmarks/bench_pipeline.py --counts 1000 --rounds 3 --against /tmp/before
+    python benchmarks/bench_pipeline.py --ceiling 300 --rounds 4 --plots none
     python benchmarks/bench_pipeline.py --counts 1000,100000 --jobs 1 --plots none --stages read,prepare
     python benchmarks/bench_pipeline.py --overhead 300 --plots none,flagged [--compare-with /tmp/before]
     python benchmarks/bench_pipeline.py --figures 30 [--compare-with /tmp/before]
@@ -408,6 +414,60 @@ sys.exit(status)
 """
 
 
+_ANALYSIS_LOOP = r"""
+import sys, time
+from specan import pipeline
+from specan.night import executors
+paths, plots, calibration = sys.argv[1].split("\n"), sys.argv[2], sys.argv[3]
+settings = {"plots": plots, "calibration": calibration}
+with executors.single_threaded():
+    pipeline.analyse_file(paths[0], settings)   # imports, set-up, kernels: not timed
+    print("ready", flush=True)
+    sys.stdin.readline()
+    t = time.perf_counter()
+    for path in paths[1:]:
+        pipeline.analyse_file(path, settings)
+    print(time.perf_counter() - t, flush=True)
+"""
+
+
+def ceiling(paths, rounds=3, plots="none"):
+    """The two-job ratio this machine allows: the same spectra analysed in one process, then in two at once.
+
+    Each process imports, sets up and analyses a first spectrum untimed, waits until every process
+    is ready, then analyses the spectra (the same ones in each) timed: the throughput of two processes
+    against one with nothing that does not divide (no start-up, no catalogue), i.e. the bound of the
+    ``--jobs 2`` ratio on this machine's two cores. One process, then two, alternated ``rounds`` times.
+    """
+    env = dict(os.environ, OPENBLAS_NUM_THREADS="1", OMP_NUM_THREADS="1", MKL_NUM_THREADS="1")
+    arg = "\n".join(str(p) for p in paths)
+
+    def timed(n):
+        procs = [subprocess.Popen([sys.executable, "-c", _ANALYSIS_LOOP, arg, plots, str(CALIBRATION)],
+                                  stdin=subprocess.PIPE, stdout=subprocess.PIPE, text=True, env=env, cwd=str(ROOT))
+                 for _ in range(n)]
+        for p in procs:
+            if p.stdout.readline().strip() != "ready":
+                raise SystemExit("analysis loop failed to start")
+        for p in procs:
+            p.stdin.write("go\n")
+            p.stdin.flush()
+        seconds = [float(p.stdout.readline()) for p in procs]
+        for p in procs:
+            p.wait()
+        return max(seconds)
+
+    print(f"# {len(paths) - 1} spectra a process, figures {plots}; seconds for one process, for two at once "
+          f"(the slower), and two processes' throughput against one's")
+    ratios = []
+    for round_ in range(rounds):
+        one, two = (timed(1), timed(2)) if round_ % 2 == 0 else (timed(2), timed(1))[::-1]
+        ratios.append(2 * one / two)
+        print(f"round {round_ + 1}: one {one:6.2f} s  two {two:6.2f} s  ->  {ratios[-1]:.3f}x   "
+              f"load {os.getloadavg()[0]:.1f}", flush=True)
+    print(f"# two processes against one, nothing but the analysis: {_spread(ratios)}x")
+
+
 def overhead(paths_folder, count, work, checkouts, plot_choices=("none",)):
     """The run's CPU time in the stages, in the figures and outside both, ms per spectrum, for each checkout.
 
@@ -509,11 +569,18 @@ def throughput(args, work):
         for plots in plot_list:
             for round_ in range(args.rounds):
                 # the job counts by turns (1, 2 then 2, 1, ...): a drift of the machine's speed through the
-                # rounds then moves both sides of the ratio alike instead of always the later one; with
-                # --against, the checkouts by turns too (this 1, 2, that 2, 1; then the reverse)
-                order = [(name, path, jobs) for i, (name, path) in enumerate(checkouts)
-                         for jobs in (jobs_list if (round_ + i) % 2 == 0 else jobs_list[::-1])]
-                for name, path, jobs in (order if round_ % 2 == 0 else order[::-1]):
+                # rounds then moves both sides of the ratio alike instead of always the later one. With
+                # --against, by job count, the checkouts by turns (this 1, that 1, this 2, that 2; then
+                # that 1, this 1, that 2, this 2): over two rounds each run follows a one-job run once and
+                # a two-job run once. (Measured: with "this 1, 2, that 2, 1" and its reverse, the other
+                # checkout's one-job run always came right after a two-job run and took 47-58 s where
+                # this one's took 41-46, the same code on that path; its ratio then read 1.91 against 1.79.)
+                if len(checkouts) == 1:
+                    order = [(*checkouts[0], jobs) for jobs in (jobs_list if round_ % 2 == 0 else jobs_list[::-1])]
+                else:
+                    turn = checkouts if round_ % 2 == 0 else checkouts[::-1]
+                    order = [(name, path, jobs) for jobs in jobs_list for name, path in turn]
+                for name, path, jobs in order:
                     extra = (["--plots", plots, "--calibration", str(CALIBRATION)]
                              + (["--stages", args.stages] if args.stages else []))
                     out = work / f"out_{count}_{jobs}_{plots}{own}_{name}"
@@ -606,6 +673,8 @@ def main(argv=None):
     parser.add_argument("--overhead", type=int, default=0, metavar="N",
                         help="the run's own cost outside the stages on N spectra")
     parser.add_argument("--workdir", type=Path, default=None, help="where to write spectra and outputs")
+    parser.add_argument("--ceiling", type=int, default=0, metavar="K",
+                        help="the analysis of K spectra in one process against two at once (the two-job bound)")
     parser.add_argument("--against", default=None, metavar="DIR",
                         help="whole runs: the same cases with DIR's specan too, by turns with this checkout's")
     parser.add_argument("--own-solutions", action="store_true",
@@ -627,6 +696,8 @@ def main(argv=None):
                 os.link(work / "spectra_all" / name, folder / name)
         overhead(folder, args.overhead, work, [ROOT] + ([Path(args.compare_with)] if args.compare_with else []),
                  [p.strip() for p in args.plots.split(",")])
+    elif args.ceiling:
+        ceiling(make_spectra(work / "spectra_all", args.ceiling + 1), args.rounds, args.plots.split(",")[0])
     elif args.compare_with:
         compare(args.compare_with, work)
     elif args.profile:
