@@ -776,6 +776,12 @@ def _write_night(inputs, store, settings_hash, out, formats, stages, settings, r
         tally.add(record)
     meta = catalogue_meta(len(inputs), tally.counts, interrupted, stages, settings["overrides"])
     outputs, notes = {}, []
+
+    def tables():
+        """(input number of the first row, table of WRITE_CHUNK rows) in input order: the second pass."""
+        for chunk in _chunked(_night_records(inputs, store, settings_hash, interrupted, present), WRITE_CHUNK):
+            yield chunk[0][0], schema.table([r for _, r in chunk])
+
     # Catalogue first: even if the report fails, the results are safe.
     with executors.sigterm_as_interrupt():
         night_rows = None
@@ -783,13 +789,12 @@ def _write_night(inputs, store, settings_hash, out, formats, stages, settings, r
             from .night.products import DiagramAside, NightRows
 
             def gather():
-                # the stars of the diagram, gathered as the second pass below gathers them
+                # the diagram's stars from the same row tables as the second pass below
                 from .hrdiagram import HRPoints
 
                 points = HRPoints()
-                for chunk in _chunked(_night_records(inputs, store, settings_hash, interrupted, present),
-                                      WRITE_CHUNK):
-                    points.add(schema.table([r for _, r in chunk]))
+                for _, table in tables():
+                    points.add(table)
                 return points
 
             aside = DiagramAside.start(out, gather) if draw_aside else None
@@ -801,12 +806,10 @@ def _write_night(inputs, store, settings_hash, out, formats, stages, settings, r
                 raise
         try:
             with CatalogueWriter(schema, out, formats, meta) as writer:
-                for chunk in _chunked(_night_records(inputs, store, settings_hash, interrupted, present),
-                                      WRITE_CHUNK):
-                    table = schema.table([r for _, r in chunk])
+                for first, table in tables():
                     writer.write(table)
                     if night_rows is not None:
-                        night_rows.add(table, chunk[0][0])
+                        night_rows.add(table, first)
             outputs.update(writer.paths)
             if night_rows is not None:
                 night = {"inputs": len(inputs), "counts": tally.counts, "flags": tally.flag_list(),
