@@ -1028,6 +1028,8 @@ def _stars():
     from specan.hrdiagram import HRPoints
 
     points = HRPoints()
+    # drawing input only: a Sun-like star (Teff 5772 K, IAU 2015 Resolution B3; M_V 4.8, from memory)
+    # and one placed from its type alone
     points.add([{"object": "TORDO-A", "status": "ok", "teff_k": 5772.0, "teff_err_k": 80.0, "m_v_abs": 4.8,
                  "m_v_abs_err": 0.2},
                 {"object": "TORDO-B", "status": "ok", "code": 25.0, "lumclass": "III"}])
